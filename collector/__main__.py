@@ -1,0 +1,5 @@
+"""Allow ``python -m collector``."""
+
+from collector.cli import app
+
+app(prog_name="collector")

@@ -1,0 +1,141 @@
+"""The one error tree of collector.
+
+Every error a user can meet derives from :class:`CollectorError`; its ``str()`` is the message
+shown after ``Error:`` and its ``exit_code`` is what the command line exits with. Any other
+exception escaping to the CLI is a bug and keeps its traceback.
+
+::
+
+    CollectorError                   base (exit 1)
+    ├── RecipeError                  recipe.toml has problems (exit 2); .problems lists them all
+    ├── CollectionError              folder missing, not a collection, not empty, locked (exit 2)
+    ├── LedgerError                  the SQLite ledger could not be read or written
+    ├── StoreError                   a file could not be stored (disk full: .errno == ENOSPC)
+    ├── SourceError                  a source could not be read (bad JSON, selector matched nothing)
+    ├── ImageRejected                an image failed the ingest checks (.reason is the ledger reason)
+    └── FetchError                   a request failed; .url is already redacted
+        ├── UnsafeURL                scheme not http/https, or an address the recipe does not allow
+        ├── RobotsDenied             refused by robots.txt (.rule names the matching rule)
+        ├── HostParked               the host asked us to wait too long, or keeps failing
+        ├── TooLarge                 Content-Length or decoded bytes over the cap
+        └── DownloadTimeout          the overall download deadline passed
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+
+class CollectorError(Exception):
+    """Base of every error a user can act on."""
+
+    exit_code: int = 1
+
+
+@dataclass(frozen=True)
+class RecipeProblem:
+    """One problem in a recipe: which file, which key path, what is expected."""
+
+    file: str
+    key_path: str
+    message: str
+
+    def __str__(self) -> str:
+        where = f"{self.file}: {self.key_path}" if self.key_path else self.file
+        return f"{where}: {self.message}"
+
+
+class RecipeError(CollectorError):
+    """The recipe has one or more problems; all of them are listed at once."""
+
+    exit_code = 2
+
+    def __init__(self, problems: list[RecipeProblem]) -> None:
+        self.problems = list(problems)
+        count = len(self.problems)
+        head = f"the recipe has {count} problem{'s' if count != 1 else ''}:"
+        super().__init__("\n".join([head, *(f"  - {p}" for p in self.problems)]))
+
+
+class CollectionError(CollectorError):
+    """The collection folder is missing, is not a collection, is not empty, or is locked."""
+
+    exit_code = 2
+
+
+class LedgerError(CollectorError):
+    """The SQLite ledger could not be read or written."""
+
+
+class StoreError(CollectorError):
+    """A file could not be written to the store; ``errno`` is kept (ENOSPC = disk full)."""
+
+    def __init__(self, message: str, errno: int | None = None) -> None:
+        super().__init__(message)
+        self.errno = errno
+
+
+class SourceError(CollectorError):
+    """A source could not be read: the answer was malformed or the recipe does not fit it."""
+
+    def __init__(self, source: str, url: str | None, reason: str) -> None:
+        self.source, self.url, self.reason = source, url, reason
+        where = f" at {url}" if url else ""
+        super().__init__(f"source {source!r}{where}: {reason}")
+
+
+class ImageRejected(CollectorError):
+    """An image failed the ingest checks; ``reason`` is the ledger reason (e.g. broken_image)."""
+
+    def __init__(self, reason: str, detail: str) -> None:
+        self.reason, self.detail = reason, detail
+        super().__init__(f"{reason}: {detail}")
+
+
+class FetchError(CollectorError):
+    """A request failed. ``url`` is already redacted; ``reason`` is the ledger reason."""
+
+    def __init__(self, url: str, reason: str, status: int | None = None, detail: str = "") -> None:
+        self.url, self.reason, self.status, self.detail = url, reason, status, detail
+        text = f"{reason} for {url}"
+        if status is not None:
+            text += f" (HTTP {status})"
+        if detail:
+            text += f": {detail}"
+        super().__init__(text)
+
+
+class UnsafeURL(FetchError):
+    """The URL's scheme is not http/https, or it resolves to an address the recipe does not allow."""
+
+
+class RobotsDenied(FetchError):
+    """robots.txt refuses this URL; ``rule`` is the matching rule or "unreachable"."""
+
+    def __init__(self, url: str, rule: str, reason: str = "robots_disallowed") -> None:
+        self.rule = rule
+        super().__init__(url, reason, detail=f"robots.txt rule {rule!r}")
+
+
+class HostParked(FetchError):
+    """The host asked us to wait longer than the cap, or keeps failing; ``until`` is epoch seconds."""
+
+    def __init__(self, url: str, host: str, until: float, why: str) -> None:
+        self.host, self.until = host, until
+        super().__init__(url, "host_parked", detail=f"{host} parked: {why}")
+
+
+class TooLarge(FetchError):
+    """The body is larger than the configured cap (``limit`` bytes)."""
+
+    def __init__(self, url: str, limit: int, detail: str = "") -> None:
+        self.limit = limit
+        super().__init__(url, "too_large", detail=detail or f"over the {limit:,}-byte cap")
+
+
+class DownloadTimeout(FetchError):
+    """The overall download deadline passed before the body was complete."""
+
+    def __init__(self, url: str, deadline: float) -> None:
+        self.deadline = deadline
+        super().__init__(url, "timeout", detail=f"not complete within {deadline:g} s")
