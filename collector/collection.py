@@ -111,3 +111,38 @@ def init_collection(root: Path, *, contact: str = "", name: str | None = None,
         Ledger.create(collection.ledger_path).close()
     collection.store.ensure()
     return collection
+
+
+@dataclass(frozen=True)
+class Recovery:
+    """What :func:`recover` mended after an interrupted run."""
+
+    temp_files_removed: int
+    orphan_files_removed: int
+    rows_reset: int
+
+
+def recover(collection: Collection, ledger: Ledger) -> Recovery:
+    """Bring the store and the ledger back into step after a crash.
+
+    A file enters the store before its ledger row is committed, so a crash can leave a temp
+    file (removed), or a stored file without a row (removed: its item is still pending and
+    will be fetched again). A row whose file is missing (deleted by hand) goes back to pending.
+    """
+    store = collection.store
+    temp_removed = store.clean_incoming()
+    known = ledger.known_sha256s()
+    orphans = 0
+    for sha, path in list(store.iter_stored()):
+        if sha not in known:
+            path.unlink(missing_ok=True)
+            orphans += 1
+    missing = [sha for sha in known if store.find(sha) is None]
+    reset = 0
+    with ledger.transaction():
+        for sha in missing:
+            reset += ledger.db.execute(
+                "UPDATE items SET state = 'pending', reason = NULL, file_sha256 = NULL "
+                "WHERE file_sha256 = ?", [sha]).rowcount
+            ledger.db.execute("DELETE FROM files WHERE sha256 = ?", [sha])
+    return Recovery(temp_removed, orphans, reset)
