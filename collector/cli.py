@@ -9,6 +9,7 @@ is a bug and keeps its traceback.
 from __future__ import annotations
 
 import json
+import sys
 from collections.abc import Callable, Iterator
 from contextlib import contextmanager
 from pathlib import Path
@@ -114,3 +115,95 @@ def check(
     for source in recipe.sources:
         typer.echo(f"  source {source['name']!r} ({source['kind']})")
 
+
+
+@app.command()
+def gather(
+    folder: Path = typer.Argument(Path("."), help="The collection folder."),
+    until: str = typer.Option(None, "--until", help="Stop at this local time, e.g. 07:00."),
+    duration: str = typer.Option(None, "--for", help="Stop after this long, e.g. 8h or 90m."),
+    max_items: int = typer.Option(None, "--max-items", min=0,
+                                  help="Stop after storing this many new items."),
+    dry_run: bool = typer.Option(False, "--dry-run",
+                                 help="Request nothing; show sources, budgets and an estimate."),
+    quiet: bool = typer.Option(False, "--quiet", help="Print only notes and the summary."),
+    log_json: bool = typer.Option(False, "--log-json", help="Print events as JSON lines."),
+) -> None:
+    """Run the recipe: list sources, decide licences, fetch politely, check, store, record.
+
+    Rerunning resumes: stored items are never requested again. Ctrl-C finishes the files in
+    flight and exits 130. Example: collector gather my-leaves --until 07:00
+    """
+    from collector.collection import open_collection
+    from collector.run import Gatherer, build_fetcher, prepared_run, stop_rules
+    from collector.summary import estimate, format_estimate, format_summary, summarise
+
+    with user_errors():
+        collection = open_collection(folder)
+        if dry_run:
+            recipe = collection.recipe()
+            with collection.ledger(readonly=True) as ledger:
+                for line in format_estimate(recipe, estimate(recipe, ledger)):
+                    typer.echo(line)
+            return
+        with prepared_run(collection) as (recipe, ledger):
+            stop = stop_rules(recipe, until=until, duration=duration, max_items=max_items)
+            progress = _progress_for(quiet=quiet, log_json=log_json)
+            fetcher = build_fetcher(recipe, ledger)
+            try:
+                gatherer = Gatherer(collection, recipe, ledger, fetcher, stop=stop,
+                                    progress=progress)
+                options = {"until": until, "for": duration, "max_items": max_items}
+                if hasattr(progress, "attach"):
+                    progress.attach(gatherer)
+                    with progress:
+                        result = gatherer.run(options)
+                else:
+                    result = gatherer.run(options)
+            finally:
+                fetcher.close()
+            lines = format_summary(summarise(ledger))
+    if not log_json:
+        typer.echo(f"Run #{result.run_id}: {result.outcome}")
+        for line in lines:
+            typer.echo(line)
+    if result.outcome == "interrupted":
+        typer.echo(f"Interrupted. Resume with: collector gather {folder}", err=True)
+    raise typer.Exit(result.exit_code)
+
+
+def _progress_for(*, quiet: bool, log_json: bool) -> Any:
+    from collector.display import JsonProgress, LiveProgress, PlainProgress
+
+    if log_json:
+        return JsonProgress()
+    if quiet or not sys.stdout.isatty():
+        return PlainProgress(quiet=quiet)
+    return LiveProgress()
+
+
+@app.command()
+def status(
+    folder: Path = typer.Argument(Path("."), help="The collection folder."),
+    as_json: bool = typer.Option(False, "--json", help="Print the summary as JSON."),
+) -> None:
+    """Summarise a collection from its ledger; works while a run is going.
+
+    Example: collector status my-leaves
+    """
+    from dataclasses import asdict
+
+    from collector.collection import open_collection
+    from collector.summary import format_summary, summarise
+
+    with user_errors():
+        collection = open_collection(folder)
+        with collection.ledger(readonly=True) as ledger:
+            summary = summarise(ledger)
+    if as_json:
+        data = asdict(summary)
+        data["reasons"] = {f"{s}/{r}": n for (s, r), n in summary.reasons.items()}
+        typer.echo(json.dumps(data, indent=2, default=str))
+        return
+    for line in format_summary(summary):
+        typer.echo(line)
