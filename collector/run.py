@@ -432,10 +432,11 @@ class Gatherer:
                 self._finish(item_id, state, reason, detail + "; not stored (recipe: drop)",
                              **extra)
                 return
+        size = path.stat().st_size
         self.store.adopt(path, sha, facts.ext)
         with self.ledger.transaction():
             self.ledger.add_file({
-                "sha256": sha, "size": facts.size, "ext": facts.ext, "format": facts.format,
+                "sha256": sha, "size": size, "ext": facts.ext, "format": facts.format,
                 "mime": facts.mime, "width": facts.width, "height": facts.height,
                 "mode": facts.mode, "bit_depth": facts.bit_depth, "alpha": facts.alpha,
                 "frames": facts.frames, "orientation": facts.orientation,
