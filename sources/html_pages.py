@@ -322,11 +322,12 @@ class _Walker:
         pages = 0
         for start in self.start_urls:
             url: str | None = strip_fragment(start)
+            if url in seen_pages:
+                continue  # reached already from an earlier start URL
             while url is not None:
                 if url in seen_pages:
-                    if url != strip_fragment(start):
-                        self.notes.add("loop", url, "the next-page link leads back to a page "
-                                       "already read; stopped following it")
+                    self.notes.add("loop", url, "the next-page link leads back to a page "
+                                   "already read; stopped following it")
                     break
                 if pages >= self.max_pages:
                     self.notes.add("max_pages", url, f"stopped after max_pages = "
@@ -364,7 +365,7 @@ class _Walker:
         matched = dict.fromkeys(k for k in ("link", "image", *TEXT_FIELDS) if k in self.select)
         for item in items:
             values: dict[str, Any] = {}
-            link = self._link(item, matched)
+            link = resolve_url(base, self._link(item, matched))
             values["page_url"] = strip_fragment(link) if link else None
             img_tag = self._one(item, "image", matched)
             if "image" not in self.select:
@@ -395,8 +396,11 @@ class _Walker:
     def _link(self, item: Tag, matched: dict[str, Any]) -> str | None:
         if "link" in self.select:
             tag = self._one(item, "link", matched)
-        else:
-            tag = item if item.name == "a" else item.find("a", href=True)
+        elif item.name == "a":
+            tag = item
+        else:  # the first ordinary link; a rel="license" link points at the licence, not the item
+            tag = next((a for a in item.find_all("a", href=True)
+                        if "license" not in rel_tokens(a)), None)
         if not isinstance(tag, Tag):
             return None
         href = tag.get("href")
@@ -404,8 +408,6 @@ class _Walker:
 
     def _finish(self, values: dict[str, Any], listing_url: str) -> Candidate | None:
         page_url = values["page_url"]
-        if page_url is not None:
-            page_url = resolve_url(listing_url, page_url)
         metadata: dict[str, Any] = {"listing_url": listing_url}
         if self.detail is not None and page_url:
             self._apply_detail(page_url, values, metadata)
