@@ -11,6 +11,7 @@ from email.utils import formatdate
 from pathlib import Path
 
 import pytest
+from fetcher_loopback import LoopbackSite, max_in_window, send
 
 from collector.errors import (
     DownloadTimeout,
@@ -22,7 +23,6 @@ from collector.errors import (
 )
 from collector.fetcher import Fetcher, FetchSettings
 from collector.ledger import Ledger
-from tests.fetcher_loopback import LoopbackSite, max_in_window, send
 
 ALLOWED = ("127.0.0.1", "127.0.0.2", "127.0.0.3")  # never 127.0.0.9: the guard's target
 
