@@ -20,15 +20,9 @@ import numpy as np
 
 from demo_site import pages
 from demo_site.builder import (
-    CRAWL_DELAY,
-    DEFAULT_RATE,
     GALLERY_PAGE,
     GENERATOR_VERSION,
-    HOST_ROLES,
-    HOSTS,
-    LAST_MODIFIED,
     POLICY,
-    RETRY_AFTER_FORM,
     SEED,
     SOURCE_ORDER,
     Builder,
@@ -42,6 +36,14 @@ from demo_site.content import (
     build_api_pages,
     build_gallery,
     build_scans,
+)
+from demo_site.hosts import (
+    CRAWL_DELAY,
+    DEFAULT_RATE,
+    HOST_ROLES,
+    HOSTS,
+    LAST_MODIFIED,
+    RETRY_AFTER_FORM,
 )
 
 ROBOTS_API = """# Fernhollow Field Society: API and media host
