@@ -213,7 +213,7 @@ class Gatherer:
         def note(n: Any) -> None:
             self.ledger.add_note(n.kind, n.message, url=n.url, run_id=self.run_id,
                                  source_id=source_id)
-            self.progress.event("note", source=source["name"], kind=n.kind, message=n.message)
+            self.progress.event("note", source=source["name"], note=n.kind, message=n.message)
 
         try:
             for candidate in adapters.iter_candidates(source, self.fetcher, note,
