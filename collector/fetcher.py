@@ -217,15 +217,17 @@ class Page:
         return _json.loads(self.body.decode(self.encoding or "utf-8-sig", errors="replace"))
 
     @property
-    def links(self) -> dict[str, dict[str, str]]:
-        """RFC 8288 Link header as {rel: {"url": ..., ...}} (like requests' ``Response.links``)."""
-        out: dict[str, dict[str, str]] = {}
+    def links(self) -> dict[str, str]:
+        """RFC 8288 Link header as {rel: url}; a link with several relation types
+        (``rel="next last"``, RFC 8288 section 3.3) is listed under each of them."""
+        out: dict[str, str] = {}
         header = self.headers.get("Link")
         if header:
             for link in parse_header_links(header):
-                key = link.get("rel") or link.get("url")
-                if key:
-                    out[key] = link
+                url = link.get("url", "").strip()
+                for rel in (link.get("rel") or "").lower().split():
+                    if url:
+                        out.setdefault(rel, url)
         return out
 
 

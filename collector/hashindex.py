@@ -44,7 +44,7 @@ class HashIndex:
     def __init__(self) -> None:
         self._hashes = np.zeros(1024, dtype=np.uint64)
         self._count = 0
-        self._keys: list[str] = []
+        self._keys: list[str | None] = []  # None: removed
         self._lock = threading.Lock()
 
     def __len__(self) -> int:
@@ -69,6 +69,11 @@ class HashIndex:
             self._keys.append(sha256)
             self._count += 1
 
+    def remove(self, sha256: str) -> None:
+        """Forget a file's hash (its bytes were removed from the store)."""
+        with self._lock:
+            self._keys = [None if k == sha256 else k for k in self._keys]
+
     def nearest(self, phash: int, mirror: int | None, max_distance: int) -> list[NearMatch]:
         """Stored files within ``max_distance`` bits, closest first. A match through the
         mirror-image hash is marked ``mirrored``; a direct match wins a tie."""
@@ -81,7 +86,10 @@ class HashIndex:
                     continue
                 distances = np.bitwise_count(hashes ^ np.uint64(query))
                 for i in np.flatnonzero(distances <= max_distance):
-                    match = NearMatch(keys[int(i)], int(distances[i]), mirrored)
+                    key = keys[int(i)]
+                    if key is None:
+                        continue
+                    match = NearMatch(key, int(distances[i]), mirrored)
                     best = found.get(match.sha256)
                     if best is None or match.distance < best.distance:
                         found[match.sha256] = match

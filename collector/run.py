@@ -41,7 +41,7 @@ from collector.errors import (
     TooLarge,
     UnsafeURL,
 )
-from collector.hashindex import HashIndex, to_signed
+from collector.hashindex import HashIndex, NearMatch, to_signed
 from collector.images import ImageFacts, inspect_image
 from collector.ledger import Ledger
 from collector.licences import licence_allowed, normalise_licence, rights_conflict
@@ -154,6 +154,10 @@ class Gatherer:
         self._ingest_lock = threading.Lock()
         self._stored_this_run = 0
         self._scan_sha: dict[tuple[int, str], str] = {}
+        self._source_ids = [ledger.source_id(src["name"], src["kind"], src)
+                            for src in recipe.sources]
+        self._source_rank = {sid: rank for rank, sid in enumerate(self._source_ids)}
+        self._item_source: dict[int, int] = {}
         self.run_id = 0
 
     # -- stopping ----------------------------------------------------------------------------
@@ -177,8 +181,9 @@ class Gatherer:
         if hasattr(self.fetcher, "run_id"):
             self.fetcher.run_id = self.run_id
         self.progress.event("run_started", run_id=self.run_id)
-        threads = [threading.Thread(target=self._list_source, args=(s,), daemon=True,
-                                    name=f"source-{s['name']}") for s in self.recipe.sources]
+        threads = [threading.Thread(target=self._list_source, args=(src, sid), daemon=True,
+                                    name=f"source-{src['name']}")
+                   for src, sid in zip(self.recipe.sources, self._source_ids, strict=True)]
         outcome = "finished"
         try:
             for t in threads:
@@ -207,8 +212,7 @@ class Gatherer:
                 t.join(0.2 if interruptible else None)
 
     # -- listing -----------------------------------------------------------------------------
-    def _list_source(self, source: dict[str, Any]) -> None:
-        source_id = self.ledger.source_id(source["name"], source["kind"], source)
+    def _list_source(self, source: dict[str, Any], source_id: int) -> None:
 
         def note(n: Any) -> None:
             self.ledger.add_note(n.kind, n.message, url=n.url, run_id=self.run_id,
@@ -252,6 +256,7 @@ class Gatherer:
             self.ledger.update_item(item_id, **fields)
         else:
             item_id = self.ledger.add_item(source_id, c.source_key, fields)
+        self._item_source[item_id] = source_id
         ok, reason = licence_allowed(licence.spdx_id, self.recipe.licences["allow"],
                                      self.recipe.licences["allow_unknown"])
         if not ok:
@@ -272,9 +277,13 @@ class Gatherer:
             "('stored', 'near_duplicate') AND file_sha256 IS NOT NULL LIMIT 1",
             (c.image_url, item_id))
         if same:
-            self._finish(item_id, "duplicate", "exact_duplicate",
-                         "same image URL as an item already stored; not fetched again",
-                         file_sha256=same[0]["file_sha256"], duplicate_of=same[0]["id"])
+            with self._ingest_lock:
+                if self._rank(item_id) < self._rank(same[0]["id"]):
+                    self._take_over(item_id, same[0]["id"], same[0]["file_sha256"], {})
+                else:
+                    self._finish(item_id, "duplicate", "exact_duplicate",
+                                 "same image URL as an item already stored; not fetched again",
+                                 file_sha256=same[0]["file_sha256"], duplicate_of=same[0]["id"])
             return
         self._enqueue(Job(item_id, c.image_url, licence.spdx_id))
 
@@ -404,12 +413,66 @@ class Gatherer:
             with contextlib.suppress(OSError):
                 path.unlink(missing_ok=True)
 
+    # Which item is "the original" must not depend on which download finished first: the
+    # item listed first (recipe source order, then listing order) is the original. When a
+    # later-listed item was stored first, the earlier one takes its place.
+    def _rank(self, item_id: int) -> tuple[int, int]:
+        source_id = self._item_source.get(item_id)
+        if source_id is None:
+            source_id = (self.ledger.item(item_id) or {}).get("source_id")
+        return self._source_rank.get(source_id, len(self._source_rank)), item_id
+
     def _record_duplicate(self, item_id: int, sha: str, path: Path,
                           extra: dict[str, Any]) -> None:
-        first = self.ledger.file(sha) or {}
+        first = (self.ledger.file(sha) or {}).get("first_item_id")
+        if first is not None and first != item_id and self._rank(item_id) < self._rank(first):
+            self._take_over(item_id, first, sha, extra)
+            return
         self._finish(item_id, "duplicate", "exact_duplicate",
                      "the same bytes are already stored", file_sha256=sha,
-                     duplicate_of=first.get("first_item_id"), **extra)
+                     duplicate_of=first, **extra)
+
+    def _take_over(self, new_id: int, old_id: int, sha: str, extra: dict[str, Any]) -> None:
+        """``new_id`` brought the same bytes as ``old_id`` and was listed earlier: it becomes
+        the item the file belongs to, and ``old_id`` its exact duplicate."""
+        old = self.ledger.item(old_id) or {}
+        with self.ledger.transaction():
+            self._finish(new_id, old.get("state") or "stored", old.get("reason"),
+                         old.get("detail"), file_sha256=sha,
+                         duplicate_of=old.get("duplicate_of"),
+                         near_distance=old.get("near_distance"),
+                         near_mirrored=old.get("near_mirrored"), **extra)
+            self.ledger.db.execute("UPDATE files SET first_item_id = ? WHERE sha256 = ?",
+                                   [new_id, sha])
+            self.ledger.db.execute("UPDATE items SET duplicate_of = ? WHERE duplicate_of = ?",
+                                   [new_id, old_id])
+            self.ledger.update_item(old_id, state="duplicate", reason="exact_duplicate",
+                                    detail="the same bytes as an item listed earlier",
+                                    duplicate_of=new_id, near_distance=None,
+                                    near_mirrored=None)
+        self._recount(old.get("state"), "duplicate")
+
+    def _demote(self, original_id: int, new_id: int, match: NearMatch) -> None:
+        """A stored original turns out to be a near copy of an earlier-listed item."""
+        detail = (f"probably a {'mirrored' if match.mirrored else 'resized or re-encoded'} "
+                  f"copy of item {new_id} (distance {match.distance})")
+        drop = self.recipe.images["near_duplicates"] == "drop"
+        with self.ledger.transaction():
+            self.ledger.update_item(original_id, state="near_duplicate",
+                                    reason="near_duplicate",
+                                    detail=detail + ("; not kept (recipe: drop)" if drop else ""),
+                                    duplicate_of=new_id, near_distance=match.distance,
+                                    near_mirrored=match.mirrored)
+            if drop:
+                self.ledger.db.execute("UPDATE items SET file_sha256 = NULL "
+                                       "WHERE file_sha256 = ?", [match.sha256])
+                self.ledger.db.execute("DELETE FROM files WHERE sha256 = ?", [match.sha256])
+        if drop:
+            self.index.remove(match.sha256)
+            stored = self.store.find(match.sha256)
+            if stored is not None:
+                stored.unlink(missing_ok=True)
+        self._recount("stored", "near_duplicate")
 
     def _store_new(self, item_id: int, spdx_id: str | None, path: Path, sha: str,
                    facts: ImageFacts, extra: dict[str, Any]) -> None:
@@ -420,18 +483,26 @@ class Gatherer:
         near = self.index.nearest(facts.phash, facts.phash_mirror,
                                   int(self.recipe.images["near_distance"]))
         state, reason, detail = "stored", None, conflict
+        demote: tuple[int, NearMatch] | None = None
         if near:
-            best = near[0]
-            original = self.ledger.file(best.sha256) or {}
-            extra = {**extra, "duplicate_of": original.get("first_item_id"),
-                     "near_distance": best.distance, "near_mirrored": best.mirrored}
-            state, reason = "near_duplicate", "near_duplicate"
-            detail = (f"probably a {'mirrored' if best.mirrored else 'resized or re-encoded'} "
-                      f"copy of {best.sha256[:12]} (distance {best.distance})")
-            if self.recipe.images["near_duplicates"] == "drop":
-                self._finish(item_id, state, reason, detail + "; not stored (recipe: drop)",
-                             **extra)
-                return
+            firsts = {m.sha256: (self.ledger.file(m.sha256) or {}).get("first_item_id")
+                      for m in near}
+            best = min(near, key=lambda m: (m.distance, self._rank(firsts[m.sha256] or 0)))
+            original_id = firsts[best.sha256]
+            original = self.ledger.item(original_id) if original_id else None
+            if (original and original["state"] == "stored"
+                    and self._rank(item_id) < self._rank(original_id)):
+                demote = (original_id, best)
+            else:
+                extra = {**extra, "duplicate_of": original_id,
+                         "near_distance": best.distance, "near_mirrored": best.mirrored}
+                state, reason = "near_duplicate", "near_duplicate"
+                detail = (f"probably a {'mirrored' if best.mirrored else 'resized or re-encoded'}"
+                          f" copy of item {original_id} (distance {best.distance})")
+                if self.recipe.images["near_duplicates"] == "drop":
+                    self._finish(item_id, state, reason,
+                                 detail + "; not stored (recipe: drop)", **extra)
+                    return
         size = path.stat().st_size
         self.store.adopt(path, sha, facts.ext, synced=True)
         with self.ledger.transaction():
@@ -446,6 +517,8 @@ class Gatherer:
             })
             self._finish(item_id, state, reason, detail, file_sha256=sha, **extra)
         self.index.add(sha, facts.phash)
+        if demote is not None:
+            self._demote(demote[0], item_id, demote[1])
         with self._lock:
             self._stored_this_run += 1
             if self.stop.max_items and self._stored_this_run >= self.stop.max_items:
@@ -461,6 +534,12 @@ class Gatherer:
     def _count(self, key: str) -> None:
         with self._lock:
             self.counts[key] += 1
+
+    def _recount(self, was: str | None, now: str) -> None:
+        with self._lock:
+            if was:
+                self.counts[was] -= 1
+            self.counts[now] += 1
 
 
 @dataclass(frozen=True)

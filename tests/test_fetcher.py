@@ -456,4 +456,4 @@ def test_page_exposes_json_text_and_link_header(sites: list[LoopbackSite]) -> No
                              "Link": '<http://127.0.0.1/list?page=2>; rel="next"'})
     page = Fetcher(settings(), None).get_page(site.url("/list"))
     assert page.json() == {"t": "Fernhollow \u00e9"} and "\u00e9" in page.text
-    assert page.links["next"]["url"] == "http://127.0.0.1/list?page=2"
+    assert page.links["next"] == "http://127.0.0.1/list?page=2"
