@@ -317,14 +317,22 @@ def render_markdown(facts: dict[str, Any], answers: dict[str, str]) -> str:
                 lines += [f"**Curator:** {_md(view.answer)}", ""]
             elif q.kind != "A":
                 lines += [f"*{NOT_ANSWERED}*", ""]
-    lines += _croissant_md(facts)
+    lines += _croissant_md(facts, answers)
     return "\n".join(lines).rstrip() + "\n"
 
 
-def _croissant_md(facts: dict[str, Any]) -> list[str]:
+def _croissant_notes(facts: dict[str, Any], answers: dict[str, str]) -> list[str]:
+    notes = ["croissant.json describes this folder (Croissant 1.0 with the RAI extension)."]
+    if "dataset.date_published" not in answers:
+        notes.append(f"Pre-filled, please confirm: datePublished is the export date "
+                     f"{facts['generated_at'][:10]}; set dataset.date_published to change it.")
+    return notes
+
+
+def _croissant_md(facts: dict[str, Any], answers: dict[str, str]) -> list[str]:
     problems = facts.get("croissant_problems") or []
-    out = ["## Croissant metadata", "",
-           "croissant.json describes this folder (Croissant 1.0 with the RAI extension)."]
+    out = ["## Croissant metadata", "", *(f"{_md(n)}\n" for n in
+                                          _croissant_notes(facts, answers))]
     if problems:
         out += ["", "Missing before it can be published:", ""]
         out += [f"- {_md(p)}" for p in problems]
@@ -404,8 +412,8 @@ def render_html(facts: dict[str, Any], answers: dict[str, str], plots: dict[str,
             elif q.kind != "A":
                 parts.append(f'<p class="none">{_e(NOT_ANSWERED)}</p>')
     problems = facts.get("croissant_problems") or []
-    parts.append("<h2>Croissant metadata</h2><p>croissant.json describes this folder "
-                 "(Croissant 1.0 with the RAI extension).</p>")
+    parts.append("<h2>Croissant metadata</h2>" + "".join(
+        f"<p>{_e(n)}</p>" for n in _croissant_notes(facts, answers)))
     if problems:
         parts.append("<p>Missing before it can be published:</p><ul>"
                      + "".join(f"<li>{_e(p)}</li>" for p in problems) + "</ul>")

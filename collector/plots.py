@@ -83,17 +83,26 @@ def render_plots(facts: dict[str, Any]) -> dict[str, str]:
     timeline = facts["timeline"]
     buckets = sorted(set(timeline["requests"]) | set(timeline["stored"]))
     if buckets:
+        from datetime import datetime
+
+        fmt = {"minute": "%Y-%m-%dT%H:%M", "hour": "%Y-%m-%dT%H", "day": "%Y-%m-%d"}
+        when = [datetime.strptime(b, fmt[timeline["unit"]]) for b in buckets]
         fig = Figure(figsize=(6.4, 3.4))
         ax = fig.add_subplot()
-        xs = list(range(len(buckets)))
-        ax.plot(xs, [timeline["requests"].get(b, 0) for b in buckets], marker="o", ms=3,
-                label="HTTP requests", color="#4c72b0")
-        ax.plot(xs, [timeline["stored"].get(b, 0) for b in buckets], marker="s", ms=3,
-                label="files stored", color="#dd8452")
-        ticks = xs[:: max(1, len(xs) // 6)]
-        ax.set_xticks(ticks, [buckets[i] for i in ticks], rotation=20, ha="right", fontsize=7)
-        ax.set_ylabel(f"per {timeline['unit']}")
+        # Stems on a true time axis: quiet periods show as gaps, not as a compressed axis.
+        for series, colour, marker, label in (("requests", "#4c72b0", "o", "HTTP requests"),
+                                              ("stored", "#dd8452", "s", "files stored")):
+            pts = [(w, timeline[series][b]) for w, b in zip(when, buckets, strict=True)
+                   if timeline[series].get(b)]
+            if not pts:
+                continue
+            xs, ys = zip(*pts, strict=True)
+            ax.vlines(xs, 0, ys, colors=colour, alpha=0.5)
+            ax.plot(xs, ys, marker, ms=4, color=colour, label=label)
+        ax.set_ylim(bottom=0)
+        ax.set_ylabel(f"per {timeline['unit']} (UTC)")
         ax.legend(frameon=False, fontsize=8)
+        fig.autofmt_xdate()
         ax.spines[["top", "right"]].set_visible(False)
         out["timeline"] = _svg(fig, "timeline")
     return out
