@@ -207,3 +207,35 @@ def status(
         return
     for line in format_summary(summary):
         typer.echo(line)
+
+
+@app.command()
+def datasheet(
+    folder: Path = typer.Argument(Path("."), help="The collection folder."),
+    out: Path = typer.Option(None, "--out", help="Output folder (default: FOLDER/datasheet)."),
+    answers: Path = typer.Option(None, "--answers",
+                                 help="TOML file with the curator's answers (question ids)."),
+    with_images: bool = typer.Option(False, "--with-images",
+                                     help="Link the released files into OUT/images/."),
+    exclude_flagged: bool = typer.Option(
+        False, "--exclude-flagged",
+        help="Leave out files flagged for personal data or licence conflicts."),
+    overwrite: bool = typer.Option(False, "--overwrite",
+                                   help="Replace this export's own files in a non-empty OUT."),
+) -> None:
+    """Write a datasheet (md + html), croissant.json, provenance.csv and attribution.csv.
+
+    Example: collector datasheet my-leaves --answers answers.toml --with-images
+    """
+    from collector.datasheet import export_datasheet
+
+    with user_errors():
+        result = export_datasheet(folder, out=out, answers_path=answers,
+                                  with_images=with_images, exclude_flagged=exclude_flagged,
+                                  overwrite=overwrite)
+    c = result.counts
+    typer.echo(f"Wrote {result.out}: {c.files} files described"
+               + (f" ({c.linked} linked, {c.copied} copied into images/)" if with_images else "")
+               + f"; left out {c.excluded_licence} by licence, {c.excluded_flagged} flagged")
+    for problem in result.croissant_problems:
+        typer.echo(f"croissant.json: {problem}", err=True)

@@ -1,0 +1,782 @@
+"""The datasheet export: facts from the ledger, the curator's answers, and the release folder.
+
+``collector datasheet DIR`` writes a folder with ``datasheet.md``/``datasheet.html`` (structured
+after "Datasheets for Datasets", Gebru et al.: seven sections of questions, asked here in our own
+words), ``croissant.json`` (MLCommons Croissant 1.0 + RAI 1.0, see :mod:`collector.croissant`),
+``provenance.csv`` (one row per file) and ``attribution.csv`` (title, author, source, licence per
+file: the Creative Commons attribution practice). With ``with_images`` the accepted files are
+hard-linked (or copied) into ``images/`` so the folder describes itself.
+
+Every number is computed by :func:`collect_facts` with SQL over the ledger and returned as plain
+data; the renderers (:mod:`collector.datasheet_render`) only format those numbers. Questions only
+the curator can answer come from an answers file (TOML, one key per question id) or are shown
+as "Not answered by the curator"; nothing is made up. Rows are streamed from SQLite, so memory
+stays flat for large collections.
+"""
+
+from __future__ import annotations
+
+import csv
+import errno
+import hashlib
+import json
+import os
+import shutil
+import sqlite3
+import tempfile
+import tomllib
+from collections.abc import Iterator
+from dataclasses import dataclass, field
+from datetime import UTC, datetime
+from pathlib import Path
+from typing import Any
+
+from collector import __version__
+from collector.errors import CollectionError, CollectorError, LedgerError, RecipeProblem
+from collector.licences import licence_allowed, licence_conditions, licence_deed_url
+from collector.recipe import Recipe, did_you_mean
+from collector.urls import host_key
+
+ACCEPTED_STATES = ("stored", "near_duplicate")
+# Flags from collector.images that point at personal data (GPS position, camera serial number,
+# camera owner's name); "licence_conflict" comes from collector.run when embedded rights
+# metadata contradicts the declared licence.
+PERSONAL_FLAGS = ("gps", "camera_serial", "owner_name")
+CONFLICT_FLAG = "licence_conflict"
+LOCAL_HOST = "(local files)"
+
+# The files this export writes; --overwrite replaces only these (and files under images/).
+OUR_FILES = ("datasheet.md", "datasheet.html", "croissant.json", "provenance.csv",
+             "attribution.csv")
+IMAGES_DIR = "images"
+
+PROVENANCE_COLUMNS = (
+    "file_name", "sha256", "source", "source_key", "page_url", "image_url", "title", "creator",
+    "licence_raw", "spdx_id", "licence_url", "fetched_at", "width", "height", "format", "mime",
+    "size", "flags",
+)
+ATTRIBUTION_COLUMNS = ("file_name", "title", "author", "source", "licence", "licence_url")
+
+# Source kinds (recipe) -> the RAI vocabulary's collection types (croissant-rai-spec.md,
+# dataCollectionType recommended terms). Scans are made by a person with a scanner.
+COLLECTION_TYPES = {"json_api": "Web API", "html": "Web Scraping",
+                    "scans": "Manual Human Curator"}
+MECHANISMS = {
+    "json_api": "a JSON web API, read page by page",
+    "html": "HTML listing pages (and item pages), read with CSS selectors",
+    "scans": "local scans of physical items, read from a folder",
+}
+
+
+class AnswersError(CollectorError):
+    """The answers file has one or more problems; all are listed at once (like the recipe)."""
+
+    exit_code = 2
+
+    def __init__(self, problems: list[RecipeProblem]) -> None:
+        self.problems = list(problems)
+        count = len(self.problems)
+        head = f"the answers file has {count} problem{'s' if count != 1 else ''}:"
+        super().__init__("\n".join([head, *(f"  - {p}" for p in self.problems)]))
+
+
+# --- the questions -------------------------------------------------------------------------------
+@dataclass(frozen=True)
+class Question:
+    """One datasheet question. kind: A = from the ledger, P = pre-filled facts the curator
+    confirms, C = only the curator can answer."""
+
+    id: str
+    kind: str
+    text: str
+
+
+SECTIONS: tuple[tuple[str, str, tuple[Question, ...]], ...] = (
+    ("motivation", "Motivation", (
+        Question("motivation.purpose", "C",
+                 "What was this collection put together for; which task or gap is it meant "
+                 "to serve?"),
+        Question("motivation.builders", "P",
+                 "Who assembled it, and for whom (a person, a group, an organisation)?"),
+        Question("motivation.funding", "C",
+                 "Who paid for the work (grant, employer, sponsor), if anyone?"),
+        Question("motivation.other", "C", "Anything else a reader should know about why it "
+                 "exists?"),
+    )),
+    ("composition", "Composition", (
+        Question("composition.instance", "P",
+                 "What is one item of the collection, and what does it show?"),
+        Question("composition.counts", "A", "How many items are there, of which kinds?"),
+        Question("composition.sample", "P",
+                 "Is this everything the sources offered, or a selection? How was it "
+                 "narrowed, and is it representative of anything larger?"),
+        Question("composition.contents", "A", "What does each item consist of?"),
+        Question("composition.labels", "P", "Does an item carry a label or target?"),
+        Question("composition.missing", "A",
+                 "Which information is missing for some items, and why?"),
+        Question("composition.relations", "P",
+                 "Are relations between items recorded (same source, copies, crops)?"),
+        Question("composition.splits", "C",
+                 "Are there suggested subsets (training, validation, test)?"),
+        Question("composition.errors", "P",
+                 "What is known about errors, noise and repeats in the collection?"),
+        Question("composition.external", "P",
+                 "Does the collection depend on outside resources, and could they change or "
+                 "vanish?"),
+        Question("composition.confidential", "C",
+                 "Could any item be confidential (privileged, private communication)?"),
+        Question("composition.offensive", "C",
+                 "Could any item offend, threaten or distress someone who sees it?"),
+        Question("composition.people", "C", "Do the items show or concern people?"),
+        Question("composition.subpopulations", "C",
+                 "If so, are groups of people (age, gender, ...) identified, and how are they "
+                 "distributed?"),
+        Question("composition.identification", "P",
+                 "Could a person be identified from an item, directly or by combining it "
+                 "with other data?"),
+        Question("composition.sensitive", "P",
+                 "Do items reveal sensitive matters (location, health, beliefs, biometrics)?"),
+        Question("composition.other", "C", "Anything else about what the collection holds?"),
+    )),
+    ("collection", "Collection process", (
+        Question("collection.acquisition", "A",
+                 "How was each item obtained, and was any of it checked?"),
+        Question("collection.mechanisms", "A",
+                 "Which programs or procedures gathered the items, and how politely?"),
+        Question("collection.sampling", "A",
+                 "Which rules decided what was kept and what was left out?"),
+        Question("collection.participants", "C",
+                 "Who took part in gathering (staff, volunteers, contractors), and how were "
+                 "they paid?"),
+        Question("collection.timeframe", "P",
+                 "Over what period was it gathered, and does that match when the pictures "
+                 "were made?"),
+        Question("collection.ethics_review", "C",
+                 "Was the work reviewed by an ethics board or similar? With what outcome?"),
+        Question("collection.third_party", "A",
+                 "Were the items obtained from the people concerned, or from third parties "
+                 "such as web sites?"),
+        Question("collection.notice", "C",
+                 "Were the people concerned told about the collection?"),
+        Question("collection.consent", "C",
+                 "Did they agree to it, and how? (A licence is not consent.)"),
+        Question("collection.withdrawal", "C",
+                 "Can someone ask for an item to be removed later, and how?"),
+        Question("collection.impact_analysis", "C",
+                 "Was the effect on the people concerned assessed (e.g. a data-protection "
+                 "impact assessment)?"),
+        Question("collection.other", "C", "Anything else about how it was gathered?"),
+    )),
+    ("preprocessing", "Preprocessing, cleaning, labelling", (
+        Question("preprocessing.steps", "A",
+                 "What was done to the items after they were received?"),
+        Question("preprocessing.raw_kept", "A",
+                 "Are the files kept exactly as received?"),
+        Question("preprocessing.software", "A",
+                 "Which software did it, and can others get it?"),
+        Question("preprocessing.other", "C", "Anything else about processing?"),
+    )),
+    ("uses", "Uses", (
+        Question("uses.prior", "C", "Has the collection been used for anything yet?"),
+        Question("uses.registry", "C",
+                 "Is there a place that lists work using it?"),
+        Question("uses.possible", "C", "What else could it reasonably be used for?"),
+        Question("uses.risks", "P",
+                 "Could the way it was composed, gathered or processed limit future uses or "
+                 "cause harm? What would reduce that?"),
+        Question("uses.avoid", "P", "For which uses should it not be used?"),
+        Question("uses.other", "C", "Anything else about uses?"),
+    )),
+    ("distribution", "Distribution", (
+        Question("distribution.third_parties", "C",
+                 "Will it be shared outside the group that built it?"),
+        Question("distribution.how", "C",
+                 "How will it be shared (archive, repository, API), and does it have a DOI?"),
+        Question("distribution.when", "C", "When will it be shared?"),
+        Question("distribution.licence", "P",
+                 "Under which licence or terms is it shared?"),
+        Question("distribution.restrictions", "P",
+                 "Do others' rights restrict what can be done with the items?"),
+        Question("distribution.regulation", "C",
+                 "Do export controls or other rules apply?"),
+        Question("distribution.other", "C", "Anything else about sharing?"),
+    )),
+    ("maintenance", "Maintenance", (
+        Question("maintenance.maintainer", "C", "Who looks after the collection?"),
+        Question("maintenance.contact", "P", "How can they be reached?"),
+        Question("maintenance.erratum", "P", "Is there a record of corrections and removals?"),
+        Question("maintenance.updates", "P",
+                 "Will it be updated: how often, by whom, and how will users hear of it?"),
+        Question("maintenance.retention", "C",
+                 "Are there limits on how long data about people may be kept?"),
+        Question("maintenance.old_versions", "C", "Will earlier versions stay available?"),
+        Question("maintenance.contributions", "C",
+                 "Can others add to it, and how are contributions checked?"),
+        Question("maintenance.other", "C", "Anything else about upkeep?"),
+    )),
+)
+
+QUESTIONS: dict[str, Question] = {q.id: q for _, _, qs in SECTIONS for q in qs}
+
+# Dataset-level answers used by croissant.json (its required properties) and the headings.
+DATASET_KEYS: dict[str, str] = {
+    "dataset.name": "the dataset's name (default: the recipe's [collection] name)",
+    "dataset.description": "one-paragraph description (default: [collection] description)",
+    "dataset.url": "where the dataset can be found (Croissant requires a URL)",
+    "dataset.creator": "who created it (default: [collection] curator)",
+    "dataset.date_published": "publication date, YYYY-MM-DD (default: the export date, "
+                              "marked for confirmation)",
+    "dataset.version": "version of this release, e.g. 1.0.0",
+    "dataset.cite_as": "how to cite it (e.g. a BibTeX entry)",
+}
+ANSWER_KEYS: tuple[str, ...] = (*DATASET_KEYS, *QUESTIONS)
+
+
+def answers_template() -> str:
+    """A commented answers file listing every key (for the README and new curators)."""
+    lines = ["# Answers for `collector datasheet --answers FILE`: one key per question.",
+             "# Leave a key out and the datasheet says 'Not answered by the curator'."]
+    for key, what in DATASET_KEYS.items():
+        lines.append(f"# {key} = \"...\"    # {what}")
+    for _, title, qs in SECTIONS:
+        lines.append(f"\n# --- {title} ---")
+        for q in qs:
+            lines.append(f"# {q.id} = \"...\"    # {q.text}")
+    return "\n".join(lines) + "\n"
+
+
+def _flatten(table: dict[str, Any], prefix: str = "") -> Iterator[tuple[str, Any]]:
+    for key, value in table.items():
+        path = f"{prefix}{key}"
+        if isinstance(value, dict):
+            yield from _flatten(value, path + ".")
+        else:
+            yield path, value
+
+
+def parse_answers(text: str, file: str = "answers.toml") -> dict[str, str]:
+    """Validate answers TOML text; every problem is reported at once in an AnswersError."""
+    try:
+        data = tomllib.loads(text)
+    except tomllib.TOMLDecodeError as exc:
+        raise AnswersError([RecipeProblem(file, "", f"not valid TOML: {exc}")]) from exc
+    problems: list[RecipeProblem] = []
+    answers: dict[str, str] = {}
+    for key, value in _flatten(data):
+        if key not in ANSWER_KEYS:
+            problems.append(RecipeProblem(file, key, "unknown key" + did_you_mean(
+                key, list(ANSWER_KEYS)) + "; see the datasheet's question ids"))
+        elif not isinstance(value, str):
+            problems.append(RecipeProblem(file, key, f"must be a string, got "
+                                          f"{type(value).__name__}"))
+        elif value.strip():
+            answers[key] = value.strip()
+    if "dataset.date_published" in answers:
+        try:
+            datetime.fromisoformat(answers["dataset.date_published"])
+        except ValueError:
+            problems.append(RecipeProblem(file, "dataset.date_published",
+                                          "must be an ISO 8601 date such as 2026-05-01"))
+    if problems:
+        raise AnswersError(problems)
+    return answers
+
+
+def load_answers(path: Path | None) -> dict[str, str]:
+    """Read an answers file (None: no answers)."""
+    if path is None:
+        return {}
+    try:
+        text = path.read_text(encoding="utf-8")
+    except OSError as exc:
+        raise AnswersError([RecipeProblem(str(path), "", f"cannot be read: {exc}")]) from exc
+    except UnicodeDecodeError as exc:
+        raise AnswersError([RecipeProblem(str(path), "", f"not UTF-8 text: {exc}")]) from exc
+    return parse_answers(text, str(path))
+
+
+# --- facts from the ledger -------------------------------------------------------------------
+def _host_of(url: str | None) -> str:
+    if not url:
+        return LOCAL_HOST
+    try:
+        return host_key(url)
+    except CollectorError:
+        return "?"
+
+
+def _connect(ledger_path: Path) -> sqlite3.Connection:
+    """A read-only connection of our own, with the host_of() SQL function."""
+    conn = sqlite3.connect(f"file:{ledger_path}?mode=ro", uri=True)
+    conn.create_function("host_of", 1, _host_of, deterministic=True)
+    return conn
+
+
+_ACCEPTED_FROM = (
+    "FROM files f JOIN items i ON i.id = f.first_item_id AND i.file_sha256 = f.sha256 "
+    "JOIN sources s ON s.id = i.source_id "
+    f"WHERE i.state IN ({', '.join(repr(s) for s in ACCEPTED_STATES)})"
+)
+
+
+def _pairs(conn: sqlite3.Connection, sql: str, params: tuple[Any, ...] = ()) -> dict[str, int]:
+    return {str(k): int(v) for k, v in conn.execute(sql, params)}
+
+
+def _one(conn: sqlite3.Connection, sql: str, params: tuple[Any, ...] = ()) -> Any:
+    row = conn.execute(sql, params).fetchone()
+    return None if row is None else row[0]
+
+
+def _median(conn: sqlite3.Connection, column: str) -> float | None:
+    """The median (mean of the two middle values for an even count), computed in SQL."""
+    n = _one(conn, f"SELECT count({column}) {_ACCEPTED_FROM}")
+    if not n:
+        return None
+    value = _one(conn, f"SELECT avg(v) FROM (SELECT {column} AS v {_ACCEPTED_FROM} "
+                       f"AND {column} IS NOT NULL ORDER BY v LIMIT ? OFFSET ?)",
+                 (2 - n % 2, (n - 1) // 2))
+    return float(value)
+
+
+def collect_facts(ledger_path: Path, recipe: Recipe, *, now: str | None = None) -> dict[str, Any]:
+    """Everything the ledger says about the collection, as plain JSON-able data."""
+    conn = _connect(ledger_path)
+    try:
+        return _facts(conn, recipe, now or datetime.now(UTC).isoformat(timespec="seconds")
+                      .replace("+00:00", "Z"))
+    except sqlite3.Error as exc:
+        raise LedgerError(f"cannot read the ledger {ledger_path}: {exc}") from exc
+    finally:
+        conn.close()
+
+
+def _facts(conn: sqlite3.Connection, recipe: Recipe, now: str) -> dict[str, Any]:
+    f: dict[str, Any] = {"generated_at": now, "tool_version": __version__}
+    f["collection"] = {"name": recipe.collection.get("name", ""),
+                       "description": recipe.collection.get("description", ""),
+                       "curator": recipe.collection.get("curator", ""),
+                       "contact": recipe.contact, "product_token": recipe.product_token}
+    items: dict[str, Any] = {
+        "total": _one(conn, "SELECT count(*) FROM items") or 0,
+        "by_state": _pairs(conn, "SELECT state, count(*) FROM items GROUP BY state "
+                                 "ORDER BY count(*) DESC, state"),
+        "by_reason": _pairs(conn, "SELECT state || '/' || reason, count(*) FROM items "
+                                  "WHERE reason IS NOT NULL GROUP BY state, reason "
+                                  "ORDER BY state, reason"),
+    }
+    f["items"] = items
+    acc: dict[str, Any] = {
+        "files": _one(conn, f"SELECT count(*) {_ACCEPTED_FROM}") or 0,
+        "bytes": _one(conn, f"SELECT coalesce(sum(f.size), 0) {_ACCEPTED_FROM}") or 0,
+        "formats": _pairs(conn, f"SELECT f.format, count(*) {_ACCEPTED_FROM} "
+                                "GROUP BY f.format ORDER BY count(*) DESC, f.format"),
+        "modes": _pairs(conn, f"SELECT f.mode, count(*) {_ACCEPTED_FROM} "
+                              "GROUP BY f.mode ORDER BY count(*) DESC, f.mode"),
+        "by_licence": _pairs(conn, f"SELECT coalesce(i.spdx_id, 'unknown'), count(*) "
+                                   f"{_ACCEPTED_FROM} GROUP BY 1 ORDER BY 2 DESC, 1"),
+        "by_source": _pairs(conn, f"SELECT s.name, count(*) {_ACCEPTED_FROM} "
+                                  "GROUP BY s.name ORDER BY 2 DESC, 1"),
+        "by_host": _pairs(conn, f"SELECT host_of(i.image_url), count(*) {_ACCEPTED_FROM} "
+                                "GROUP BY 1 ORDER BY 2 DESC, 1"),
+        "stored": _one(conn, f"SELECT count(*) {_ACCEPTED_FROM} AND i.state = 'stored'") or 0,
+        "near_kept": _one(conn, f"SELECT count(*) {_ACCEPTED_FROM} "
+                                "AND i.state = 'near_duplicate'") or 0,
+        "crops": _one(conn, f"SELECT count(*) {_ACCEPTED_FROM} "
+                            "AND i.parent_sha256 IS NOT NULL") or 0,
+    }
+    for dim in ("width", "height"):
+        lo, hi = conn.execute(f"SELECT min(f.{dim}), max(f.{dim}) {_ACCEPTED_FROM}").fetchone()
+        acc[dim] = {"min": lo, "median": _median(conn, f"f.{dim}"), "max": hi}
+    f["accepted"] = acc
+    f["missing"] = {
+        "no_title": _one(conn, f"SELECT count(*) {_ACCEPTED_FROM} "
+                               "AND coalesce(trim(i.title), '') = ''") or 0,
+        "no_creator": _one(conn, f"SELECT count(*) {_ACCEPTED_FROM} "
+                                 "AND coalesce(trim(i.creator), '') = ''") or 0,
+        "no_licence": _one(conn, f"SELECT count(*) {_ACCEPTED_FROM} "
+                                 "AND i.spdx_id IS NULL") or 0,
+        "no_page_url": _one(conn, f"SELECT count(*) {_ACCEPTED_FROM} "
+                                  "AND coalesce(i.page_url, '') = ''") or 0,
+        "no_date": _one(conn, f"SELECT count(*) {_ACCEPTED_FROM} "
+                              "AND coalesce(i.date, '') = ''") or 0,
+    }
+    f["flags"] = _pairs(conn, "SELECT CASE WHEN instr(j.value, ':') > 0 THEN "
+                              "substr(j.value, 1, instr(j.value, ':') - 1) ELSE j.value END, "
+                              f"count(*) {_ACCEPTED_FROM.replace('FROM files f', 'FROM files f, json_each(f.flags) j', 1)} "  # noqa: E501
+                              "GROUP BY 1 ORDER BY 2 DESC, 1")
+    personal = ", ".join(repr(p) for p in PERSONAL_FLAGS)
+    f["flagged"] = {
+        "personal": _one(conn, f"SELECT count(*) {_ACCEPTED_FROM} AND EXISTS (SELECT 1 FROM "
+                               f"json_each(f.flags) WHERE value IN ({personal}))") or 0,
+        "conflict": _one(conn, f"SELECT count(*) {_ACCEPTED_FROM} AND EXISTS (SELECT 1 FROM "
+                               f"json_each(f.flags) WHERE value = '{CONFLICT_FLAG}')") or 0,
+    }
+    f["duplicates"] = {
+        "exact": items["by_state"].get("duplicate", 0),
+        "near_kept": acc["near_kept"],
+        "near_dropped": _one(conn, "SELECT count(*) FROM items WHERE state = 'near_duplicate' "
+                                   "AND file_sha256 IS NULL") or 0,
+        "policy": recipe.images["near_duplicates"],
+        "near_distance": recipe.images["near_distance"],
+    }
+    f["licences"] = [
+        {"spdx_id": spdx, "files": n,
+         "conditions": licence_conditions(None if spdx == "unknown" else spdx),
+         "deed_url": licence_deed_url(None if spdx == "unknown" else spdx)}
+        for spdx, n in acc["by_licence"].items()]
+    f["timeframe"] = _timeframe(conn)
+    f["requests"] = {
+        "total": _one(conn, "SELECT count(*) FROM fetches WHERE status IS NOT NULL") or 0,
+        "attempts": _one(conn, "SELECT count(*) FROM fetches") or 0,
+        "status_429": _one(conn, "SELECT count(*) FROM fetches WHERE status = 429") or 0,
+        "status_503": _one(conn, "SELECT count(*) FROM fetches WHERE status = 503") or 0,
+        "errors": _one(conn, "SELECT count(*) FROM fetches WHERE error IS NOT NULL") or 0,
+        "robots_disallowed": _one(conn, "SELECT count(*) FROM fetches "
+                                        "WHERE robots_verdict = 'disallowed'") or 0,
+        "bytes": _one(conn, "SELECT coalesce(sum(bytes), 0) FROM fetches") or 0,
+        "by_purpose": _pairs(conn, "SELECT coalesce(purpose, '?'), count(*) FROM fetches "
+                                   "GROUP BY 1 ORDER BY 2 DESC, 1"),
+    }
+    f["hosts"] = _hosts(conn)
+    f["resolution_bins"] = _resolution_bins(conn, acc["width"]["max"], acc["height"]["max"])
+    f["timeline"] = _timeline(conn, f["timeframe"])
+    f["sources"] = [
+        {"name": name, "kind": kind, "items": n_items or 0, "accepted": n_acc or 0,
+         "mechanism": MECHANISMS.get(kind, kind),
+         "collection_type": COLLECTION_TYPES.get(kind, "Others")}
+        for name, kind, n_items, n_acc in conn.execute(
+            "SELECT s.name, s.kind, (SELECT count(*) FROM items i WHERE i.source_id = s.id), "
+            "(SELECT count(*) FROM items i JOIN files f ON f.first_item_id = i.id "
+            " AND f.sha256 = i.file_sha256 WHERE i.source_id = s.id AND i.state IN "
+            "('stored', 'near_duplicate')) FROM sources s ORDER BY s.name")]
+    runs = conn.execute("SELECT count(*), min(started_at), max(coalesce(ended_at, started_at)) "
+                        "FROM runs").fetchone()
+    f["runs"] = {
+        "count": runs[0] or 0, "first_started": runs[1], "last_ended": runs[2],
+        "tool_versions": [r[0] for r in conn.execute(
+            "SELECT DISTINCT tool_version FROM runs WHERE tool_version IS NOT NULL ORDER BY 1")],
+        "recipes": _one(conn, "SELECT count(DISTINCT recipe_sha256) FROM runs") or 0,
+        "outcomes": _pairs(conn, "SELECT outcome, count(*) FROM runs GROUP BY outcome "
+                                 "ORDER BY 2 DESC, 1"),
+    }
+    f["notes"] = _pairs(conn, "SELECT kind, count(*) FROM notes GROUP BY kind ORDER BY 2 DESC")
+    f["policy"] = {
+        "budgets": {k: recipe.budgets[k] for k in ("min_interval", "requests_per_hour",
+                                                   "bytes_per_hour", "max_connections",
+                                                   "max_attempts", "max_retry_after")},
+        "licence_allow": list(recipe.licences["allow"]),
+        "allow_unknown": bool(recipe.licences["allow_unknown"]),
+        "images": dict(recipe.images),
+        "max_image_bytes": recipe.network["max_image_bytes"],
+    }
+    return f
+
+
+def _timeframe(conn: sqlite3.Connection) -> dict[str, str | None]:
+    """First and last moment of gathering: request starts and file-store times."""
+    row = conn.execute(
+        "SELECT min(t), max(t) FROM (SELECT started_at AS t FROM fetches "
+        "WHERE started_at IS NOT NULL UNION ALL SELECT stored_at FROM files "
+        "WHERE stored_at IS NOT NULL)").fetchone()
+    return {"start": row[0], "end": row[1]}
+
+
+def _resolution_bins(conn: sqlite3.Connection, max_w: int | None,
+                     max_h: int | None) -> dict[str, Any]:
+    """Accepted files counted on a grid of width x height cells (about 30 per axis)."""
+    top = max(max_w or 0, max_h or 0)
+    step = 1
+    while top / step > 30:
+        step *= 2
+    cells = [[w, h, n] for w, h, n in conn.execute(
+        f"SELECT (f.width / ?) * ?, (f.height / ?) * ?, count(*) {_ACCEPTED_FROM} "
+        "AND f.width IS NOT NULL AND f.height IS NOT NULL GROUP BY 1, 2 ORDER BY 1, 2",
+        (step, step, step, step))]
+    return {"step": step, "cells": cells}
+
+
+def _timeline(conn: sqlite3.Connection, frame: dict[str, str | None]) -> dict[str, Any]:
+    """Requests and stored files per minute, hour or day (by the length of the time frame)."""
+    unit, width = "day", 10
+    if frame["start"] and frame["end"]:
+        try:
+            span = (datetime.fromisoformat(frame["end"].replace("Z", "+00:00"))
+                    - datetime.fromisoformat(frame["start"].replace("Z", "+00:00")))
+        except ValueError:
+            span = None
+        if span is not None and span.total_seconds() <= 3 * 3600:
+            unit, width = "minute", 16
+        elif span is not None and span.total_seconds() <= 4 * 86400:
+            unit, width = "hour", 13
+    return {
+        "unit": unit,
+        "requests": _pairs(conn, f"SELECT substr(started_at, 1, {width}), count(*) FROM "
+                                 "fetches WHERE started_at IS NOT NULL GROUP BY 1 ORDER BY 1"),
+        "stored": _pairs(conn, f"SELECT substr(f.stored_at, 1, {width}), count(*) "
+                               f"{_ACCEPTED_FROM} AND f.stored_at IS NOT NULL "
+                               "GROUP BY 1 ORDER BY 1"),
+    }
+
+
+def _hosts(conn: sqlite3.Connection) -> list[dict[str, Any]]:
+    out = []
+    for row in conn.execute(
+            "SELECT h.host, h.robots_url, h.robots_status, h.robots_fetched_at, "
+            "h.effective_budget, (SELECT count(*) FROM fetches x WHERE x.host = h.host AND "
+            "x.status IS NOT NULL), (SELECT count(*) FROM fetches x WHERE x.host = h.host AND "
+            "x.status = 429), (SELECT count(*) FROM fetches x WHERE x.host = h.host AND "
+            "x.status = 503), (SELECT count(*) FROM fetches x WHERE x.host = h.host AND "
+            "x.robots_verdict = 'disallowed') FROM hosts h ORDER BY h.host"):
+        try:
+            budget = json.loads(row[4]) if row[4] else {}
+        except ValueError:
+            budget = {}
+        out.append({"host": row[0], "robots_url": row[1], "robots_status": row[2],
+                    "robots_fetched_at": row[3], "effective_budget": budget,
+                    "requests": row[5], "status_429": row[6], "status_503": row[7],
+                    "robots_disallowed": row[8]})
+    return out
+
+
+# --- the release: CSVs and images ------------------------------------------------------------
+@dataclass
+class ReleaseCounts:
+    """What went into (and was left out of) the release."""
+
+    files: int = 0
+    bytes: int = 0
+    excluded_licence: int = 0
+    excluded_flagged: int = 0
+    missing_files: int = 0
+    linked: int = 0
+    copied: int = 0
+    by_ext: dict[str, dict[str, Any]] = field(default_factory=dict)  # ext -> {mime, files}
+    by_licence: dict[str, int] = field(default_factory=dict)
+
+
+def file_name_for(sha256: str, ext: str) -> str:
+    """The stable release name of a file: 16 hex digits of its sha256 and its extension."""
+    return f"{sha256[:16]}.{ext}"
+
+
+def iter_release_rows(conn: sqlite3.Connection, recipe: Recipe, counts: ReleaseCounts, *,
+                      exclude_flagged: bool) -> Iterator[dict[str, Any]]:
+    """Stream the accepted files that pass the licence policy (and the flag filter).
+
+    Counts what is left out; the caller counts what it keeps."""
+    allowed_cache: dict[str | None, bool] = {}
+    cur = conn.execute(
+        "SELECT f.sha256, f.ext, f.mime, f.format, f.width, f.height, f.size, f.flags, "
+        "f.stored_at, s.name, i.source_key, i.page_url, i.image_url, i.title, i.creator, "
+        "i.licence_raw, i.spdx_id, i.licence_url, "
+        "(SELECT max(x.started_at) FROM fetches x WHERE x.item_id = i.id AND "
+        " x.purpose = 'image' AND x.status BETWEEN 200 AND 299) "
+        f"{_ACCEPTED_FROM} ORDER BY f.sha256")
+    for r in cur:
+        (sha, ext, mime, fmt, width, height, size, flags_json, stored_at, source, key,
+         page_url, image_url, title, creator, licence_raw, spdx, licence_url, fetched_at) = r
+        if spdx not in allowed_cache:
+            allowed_cache[spdx] = licence_allowed(spdx, recipe.licences["allow"],
+                                                  recipe.licences["allow_unknown"])[0]
+        if not allowed_cache[spdx]:
+            counts.excluded_licence += 1
+            continue
+        try:
+            flags = json.loads(flags_json) if flags_json else []
+        except ValueError:
+            flags = []
+        if exclude_flagged and any(fl in PERSONAL_FLAGS or fl == CONFLICT_FLAG
+                                   for fl in flags):
+            counts.excluded_flagged += 1
+            continue
+        yield {
+            "file_name": file_name_for(sha, ext), "sha256": sha, "source": source,
+            "source_key": key, "page_url": page_url or "", "image_url": image_url or "",
+            "title": title or "", "creator": creator or "", "licence_raw": licence_raw or "",
+            "spdx_id": spdx or "", "licence_url": licence_url or licence_deed_url(spdx) or "",
+            "fetched_at": fetched_at or stored_at or "", "width": width, "height": height,
+            "format": fmt or "", "mime": mime or "", "size": size,
+            "flags": ";".join(flags), "_ext": ext,
+        }
+
+
+def _count_kept(counts: ReleaseCounts, row: dict[str, Any]) -> None:
+    counts.files += 1
+    counts.bytes += row["size"] or 0
+    slot = counts.by_ext.setdefault(row["_ext"], {"mime": row["mime"], "files": 0})
+    slot["files"] += 1
+    spdx = row["spdx_id"] or "unknown"
+    counts.by_licence[spdx] = counts.by_licence.get(spdx, 0) + 1
+
+
+def link_or_copy(src: Path, dst: Path) -> str:
+    """Hard-link ``src`` to ``dst``; copy where links are impossible. Returns 'linked'/'copied'.
+
+    An existing ``dst`` with the same size is kept (names are content hashes)."""
+    if dst.exists():
+        if dst.stat().st_size == src.stat().st_size:
+            return "kept"
+        raise CollectionError(f"{dst} exists with different content; remove it or choose an "
+                              "empty output folder")
+    try:
+        os.link(src, dst)
+        return "linked"
+    except OSError as exc:
+        # EXDEV: another filesystem; EPERM/ENOTSUP/EMLINK: links not allowed or too many.
+        if exc.errno not in (errno.EXDEV, errno.EPERM, errno.ENOTSUP, errno.EMLINK,
+                             errno.EACCES):
+            raise
+    tmp = dst.with_name(f".{dst.name}.part")
+    shutil.copyfile(src, tmp)
+    os.replace(tmp, dst)
+    return "copied"
+
+
+class HashingWriter:
+    """A text sink that writes UTF-8 to a file and hashes what it writes (FIPS 180-4 SHA-256)."""
+
+    def __init__(self, fh: Any) -> None:
+        self.fh = fh
+        self.digest = hashlib.sha256()
+
+    def write(self, text: str) -> int:
+        data = text.encode("utf-8")
+        self.digest.update(data)
+        self.fh.write(data)
+        return len(text)
+
+
+
+def _atomic_write_text(path: Path, text: str) -> None:
+    """Write a whole file through a temp file in the same folder and os.replace."""
+    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", dir=path.parent)
+    try:
+        os.fchmod(fd, 0o644)  # mkstemp makes 0600; these files are meant to be shared
+        with os.fdopen(fd, "w", encoding="utf-8", newline="") as fh:
+            fh.write(text)
+        os.replace(tmp, path)
+    except BaseException:
+        Path(tmp).unlink(missing_ok=True)
+        raise
+
+
+def check_out_folder(root: Path, out: Path, *, overwrite: bool) -> None:
+    """Refuse an output folder that is a file, lies in the store, or holds files (unless
+    --overwrite, which replaces only this export's own files)."""
+    store = (root / "files").resolve()
+    target = out.resolve()
+    if target == store or store in target.parents:
+        raise CollectionError(f"{out} is inside the collection's file store {store}; choose "
+                              "another output folder (e.g. the default DIR/datasheet)")
+    if out.exists() and not out.is_dir():
+        raise CollectionError(f"{out} exists and is not a folder; choose another --out")
+    if out.is_dir() and any(out.iterdir()) and not overwrite:
+        raise CollectionError(
+            f"{out} is not empty; nothing was written. Choose an empty or new folder, or pass "
+            "--overwrite to replace this export's own files (nothing else is touched or "
+            "deleted)")
+
+
+@dataclass
+class ExportResult:
+    """What :func:`export_datasheet` wrote."""
+
+    out: Path
+    counts: ReleaseCounts
+    facts: dict[str, Any]
+    croissant_problems: list[str]
+    files: list[Path]
+
+
+def write_release(conn: sqlite3.Connection, recipe: Recipe, out: Path, store_root: Path, *,
+                  with_images: bool, exclude_flagged: bool) -> tuple[ReleaseCounts, str]:
+    """Stream provenance.csv and attribution.csv (and link images/); returns the counts and
+    the sha256 of provenance.csv."""
+    from collector.store import Store
+
+    counts = ReleaseCounts()
+    store = Store(store_root)
+    images = out / IMAGES_DIR
+    if with_images:
+        images.mkdir(exist_ok=True)
+    prov_tmp = out / ".provenance.csv.part"
+    attr_tmp = out / ".attribution.csv.part"
+    with open(prov_tmp, "wb") as prov_fh, open(attr_tmp, "w", encoding="utf-8",
+                                                newline="") as attr_fh:
+        sink = HashingWriter(prov_fh)
+        prov = csv.DictWriter(sink, PROVENANCE_COLUMNS, extrasaction="ignore")
+        attr = csv.writer(attr_fh)
+        prov.writeheader()
+        attr.writerow(ATTRIBUTION_COLUMNS)
+        for row in iter_release_rows(conn, recipe, counts, exclude_flagged=exclude_flagged):
+            if with_images:
+                src = store.path_for(row["sha256"], row["_ext"])
+                if not src.is_file():
+                    counts.missing_files += 1
+                    continue
+                how = link_or_copy(src, images / row["file_name"])
+                if how == "linked":
+                    counts.linked += 1
+                elif how == "copied":
+                    counts.copied += 1
+            _count_kept(counts, row)
+            prov.writerow(row)
+            # CC attribution practice (standards.md section 8): title, author, source, licence.
+            attr.writerow([row["file_name"], row["title"], row["creator"],
+                           row["page_url"] or row["image_url"] or row["source"],
+                           row["spdx_id"] or row["licence_raw"] or "unknown",
+                           row["licence_url"]])
+    os.replace(prov_tmp, out / "provenance.csv")
+    os.replace(attr_tmp, out / "attribution.csv")
+    if with_images:
+        present = sum(1 for e in os.scandir(images) if not e.name.startswith("."))
+        if present != counts.files:
+            raise CollectionError(
+                f"{images} holds {present - counts.files} file(s) that are not part of this "
+                "release (left from an earlier export?); collector never deletes them. Remove "
+                "them, or export into an empty folder, then run again")
+    return counts, sink.digest.hexdigest()
+
+
+def export_datasheet(root: Path, *, out: Path | None = None, answers_path: Path | None = None,
+                     with_images: bool = False, exclude_flagged: bool = False,
+                     overwrite: bool = False, now: str | None = None) -> ExportResult:
+    """Write the datasheet folder for the collection at ``root``."""
+    from collector import croissant, plots
+    from collector.collection import open_collection
+    from collector.datasheet_render import render_html, render_markdown
+
+    collection = open_collection(root)
+    recipe = collection.recipe()
+    answers = load_answers(answers_path)
+    out = out if out is not None else root / "datasheet"
+    check_out_folder(root, out, overwrite=overwrite)
+    out.mkdir(parents=True, exist_ok=True)
+    conn = _connect(collection.ledger_path)
+    try:
+        counts, prov_sha = write_release(conn, recipe, out, collection.store.root,
+                                         with_images=with_images,
+                                         exclude_flagged=exclude_flagged)
+        facts = _facts(conn, recipe, now or datetime.now(UTC).isoformat(timespec="seconds")
+                       .replace("+00:00", "Z"))
+    finally:
+        conn.close()
+    facts["release"] = {
+        "files": counts.files, "bytes": counts.bytes, "with_images": with_images,
+        "exclude_flagged": exclude_flagged, "excluded_licence": counts.excluded_licence,
+        "excluded_flagged": counts.excluded_flagged, "missing_files": counts.missing_files,
+        "linked": counts.linked, "copied": counts.copied, "by_ext": counts.by_ext,
+        "by_licence": dict(sorted(counts.by_licence.items(), key=lambda kv: (-kv[1], kv[0]))),
+        "provenance_sha256": prov_sha,
+    }
+    doc = croissant.build_croissant(facts, answers)
+    problems = croissant.precheck(doc)
+    _atomic_write_text(out / "croissant.json", json.dumps(doc, indent=2, ensure_ascii=False)
+                       + "\n")
+    facts["croissant_problems"] = problems
+    _atomic_write_text(out / "datasheet.md", render_markdown(facts, answers))
+    _atomic_write_text(out / "datasheet.html",
+                       render_html(facts, answers, plots.render_plots(facts)))
+    written = [out / name for name in OUR_FILES]
+    return ExportResult(out, counts, facts, problems, written)
