@@ -15,6 +15,7 @@ import binascii
 import hashlib
 import json
 import math
+import sys
 import threading
 import time
 from collections.abc import Mapping
@@ -261,6 +262,12 @@ class _HostServer(ThreadingHTTPServer):
         self.demo = demo
         self.host_index = host_index
         super().__init__(address, _Handler)
+
+    def handle_error(self, request: Any, client_address: Any) -> None:
+        """A client that hangs up early (it refused an oversized body) is normal here."""
+        if isinstance(sys.exc_info()[1], ConnectionError):
+            return
+        super().handle_error(request, client_address)
 
 
 class _Handler(BaseHTTPRequestHandler):
