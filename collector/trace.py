@@ -284,8 +284,10 @@ def attribution_line(item: ItemRecord | None, *, modified: bool = False,
         return "No attribution: the file's origin is unknown."
     title = f'"{item.title}"' if item.title else "Untitled image"
     author = f"by {item.creator}" if item.creator else "by an author the source did not name"
+    scan = item.scan.local_path if item.scan and item.scan.local_path else None
+    local = item.local_path or (f"cut from {scan}" if scan else None)
     source = item.page_url or item.image_url or (
-        f"{item.source} ({item.local_path})" if item.local_path else item.source)
+        f"{item.source} ({local})" if local else item.source)
     parts = [f"{title} {author}"]
     if source:
         parts.append(source)
