@@ -224,6 +224,7 @@ def trace(
     Example: collector trace leaf.jpg --in my-leaves;  collector trace to-publish/ --csv
     """
     from collector.trace import (
+        CAUTION,
         Tracer,
         collect_targets,
         format_record,
@@ -242,6 +243,7 @@ def trace(
         typer.echo(to_json(results))
     elif as_csv:
         typer.echo(to_csv(results), nl=False)
+        typer.echo(CAUTION, err=True)  # stderr keeps the CSV clean for other tools
     else:
         if recipe_problem:
             typer.echo("Note: the recipe did not load, so the near-match threshold is 8 and "
