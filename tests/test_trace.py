@@ -9,6 +9,7 @@ through the real ``Gatherer`` ingest path for local candidates.
 from __future__ import annotations
 
 import csv
+import hashlib
 import io
 import json
 import random
@@ -31,7 +32,7 @@ from collector.ledger import Ledger
 from collector.licences import normalise_licence, rights_conflict
 from collector.phash import hamming, hash_image_file
 from collector.run import Gatherer
-from collector.trace import Tracer, attribution_line, summarise
+from collector.trace import Tracer, TraceResult, attribution_line, format_record, summarise
 
 runner = CliRunner()
 CAUTION_START = "Licence facts are as declared by the sources"
@@ -103,8 +104,6 @@ def _ingest_web(gatherer: Gatherer, ledger: Ledger, source_id: int, key: str, da
     fd, tmp = gatherer.store.new_temp()
     with open(fd, "wb") as fh:
         fh.write(data)
-    import hashlib
-
     gatherer._ingest(item_id, normalise_licence(licence, None).spdx_id, tmp,
                      hashlib.sha256(data).hexdigest(), content_type="image/jpeg",
                      url=image_url)
@@ -176,7 +175,7 @@ def built(tmp_path_factory: pytest.TempPathFactory) -> Built:
     return Built(root, items, shas, pictures, scan_path, boxes)
 
 
-def trace_one(built: Built, path: Path):  # type: ignore[no-untyped-def]
+def trace_one(built: Built, path: Path) -> TraceResult:
     """Trace one file through the library."""
     with Tracer.open(built.root) as tracer:
         return tracer.trace_file(path)
@@ -241,7 +240,7 @@ def test_duplicates_list_the_other_items_that_brought_the_same_bytes(built: Buil
     assert result.file is not None
     others = [(o.source, o.source_key, o.state) for o in result.file.others]
     assert others == [("gallery", "g-1", "duplicate")]
-    lines = "\n".join(__import__("collector.trace", fromlist=["x"]).format_record(result))
+    lines = "\n".join(format_record(result))
     assert "also from:    item #" in lines and "http://127.0.0.3:8080/gallery/1" in lines
 
 
@@ -255,8 +254,6 @@ def test_a_crop_traces_to_its_scan_and_box(built: Built) -> None:
     assert item.parent_sha256 == built.shas["bed-01"]
     assert item.crop_box == [460, 120, 400, 300]
     assert item.scan is not None and item.scan.local_path == str(built.scan_path)
-    from collector.trace import format_record
-
     text = "\n".join(format_record(result))
     assert f"cut from:     scan {built.shas['bed-01'][:12]} ({built.scan_path})" in text
     assert "x=460 y=120 w=400 h=300" in text
@@ -272,8 +269,6 @@ def test_a_resized_copy_traces_as_near_to_the_right_original(built: Built, tmp_p
     assert result.kind == "near"
     assert result.best is not None and result.best.sha256 == built.shas["FH-002"]
     assert not result.near[0].mirrored
-    from collector.trace import format_record
-
     head = format_record(result)[0]
     assert "probably a resized/re-encoded copy of " + built.shas["FH-002"][:12] in head
     assert result.attribution is not None and result.attribution.endswith(", modified")
