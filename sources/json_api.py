@@ -1,0 +1,618 @@
+"""Generic JSON API adapter: pagination, JMESPath field mapping, optional per-item detail requests.
+
+Everything about one API's shape lives in the recipe; this module only walks pages and maps
+fields. Problems with the answers (not JSON, wrong shape, a pagination loop) become SourceNotes
+and stop the source; max_pages is always enforced.
+"""
+
+from __future__ import annotations
+
+import difflib
+import string
+from collections.abc import Iterator, Mapping
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+from urllib.parse import quote
+
+import jmespath
+from jmespath.exceptions import JMESPathError
+from jmespath.parser import ParsedResult
+
+from sources.base import (
+    BOOL,
+    INT,
+    LIST,
+    STR,
+    TABLE,
+    Candidate,
+    FetchError,
+    Key,
+    NoteSink,
+    OnceNotes,
+    Page,
+    PageFetcher,
+    Problems,
+    RecipeProblem,
+    as_text,
+    capped_json,
+    check_http_url,
+    check_keys,
+    check_positive_int,
+    check_str_list,
+    check_str_table,
+    expand_env,
+    merge_query,
+    redact,
+    resolve_url,
+)
+
+STYLES = ("page", "offset", "cursor", "next_url", "link_header", "none")
+DEFAULT_MAX_PAGES = 1000
+
+SOURCE_KEYS: dict[str, Key] = {
+    "name": Key(STR, True),
+    "kind": Key(STR, True),
+    "url": Key(STR, True, 'the listing endpoint, e.g. "https://example.org/api/items"'),
+    "params": Key(TABLE),
+    "secret_params": Key(LIST),
+    "headers": Key(TABLE),
+    "pagination": Key(TABLE),
+    "fields": Key(TABLE, True, 'JMESPath expressions; at least items = "..." and id = "..."'),
+    "detail": Key(TABLE),
+}
+
+# Which pagination keys each style uses; REQUIRED lists the ones without a default.
+STYLE_KEYS: dict[str, tuple[str, ...]] = {
+    "page": ("param", "start"),
+    "offset": ("offset_param", "limit_param", "limit", "start"),
+    "cursor": ("cursor_path", "cursor_param"),
+    "next_url": ("next_path",),
+    "link_header": (),
+    "none": (),
+}
+STYLE_REQUIRED: dict[str, tuple[str, ...]] = {
+    "cursor": ("cursor_path", "cursor_param"),
+    "next_url": ("next_path",),
+}
+PAGINATION_KEYS: dict[str, Key] = {
+    "style": Key(STR, True, "one of " + ", ".join(STYLES)),
+    "param": Key(STR),
+    "start": Key(INT),
+    "offset_param": Key(STR),
+    "limit_param": Key(STR),
+    "limit": Key(INT),
+    "cursor_path": Key(STR),
+    "cursor_param": Key(STR),
+    "next_path": Key(STR),
+    "total_path": Key(STR),
+    "max_pages": Key(INT),
+}
+PAGINATION_PATHS = ("cursor_path", "next_path", "total_path")
+
+# Mapped item fields (JMESPath). candidate_* apply to each element of image_candidates.
+ITEM_FIELDS = ("title", "creator", "licence", "licence_url", "page_url", "date", "image_url")
+CANDIDATE_FIELDS = ("candidate_url", "candidate_width", "candidate_height", "candidate_label")
+FIELD_KEYS: dict[str, Key] = {
+    "items": Key(STR, True, 'where the item list is, e.g. "results" ("@" if the body is a list)'),
+    "id": Key(STR, True, 'a stable identifier per item, e.g. "id"'),
+    **{name: Key(STR) for name in ITEM_FIELDS},
+    "image_candidates": Key(STR),
+    **{name: Key(STR) for name in CANDIDATE_FIELDS},
+    "pick": Key(STR),
+}
+DETAIL_FIELD_KEYS: dict[str, Key] = {
+    k: v for k, v in FIELD_KEYS.items() if k not in ("items", "id")
+}
+DETAIL_KEYS: dict[str, Key] = {
+    "url": Key(STR, True, 'a template such as "https://example.org/api/items/{id}"'),
+    "fields": Key(TABLE, True, "JMESPath expressions into the detail answer"),
+    "when": Key(STR),
+    "include_params": Key(BOOL),
+}
+WHEN = ("missing", "always")
+
+
+# ---------------------------------------------------------------------------------------------
+# Validation
+
+
+def _check_jmespath(value: Any, path: str, problems: Problems) -> None:
+    if not isinstance(value, str):
+        return
+    try:
+        jmespath.compile(value)
+    except JMESPathError as exc:
+        first = str(exc).strip().splitlines()[0]
+        problems.add(path, f'is not a valid JMESPath expression ("{value}"): {first}')
+
+
+def _check_pick(value: Any, path: str, problems: Problems) -> None:
+    if not isinstance(value, str):
+        return
+    if value != "largest" and not (value.startswith("label:") and len(value) > len("label:")):
+        problems.add(path, 'must be "largest" or "label:<name>" (e.g. "label:original"), '
+                     f'got "{value}"')
+
+
+def _template_names(template: str) -> list[str]:
+    return [name for _, name, _, _ in string.Formatter().parse(template) if name is not None]
+
+
+def validate(table: dict[str, Any], prefix: str) -> list[RecipeProblem]:
+    """All problems of one json_api source table."""
+    problems = Problems("")
+    check_keys(table, SOURCE_KEYS, prefix, problems)
+    check_http_url(table.get("url"), f"{prefix}.url", problems)
+    check_str_table(table.get("params"), f"{prefix}.params", problems)
+    check_str_table(table.get("headers"), f"{prefix}.headers", problems)
+    secrets = table.get("secret_params")
+    if check_str_list(secrets, f"{prefix}.secret_params", problems, non_empty=False):
+        params = table.get("params") if isinstance(table.get("params"), dict) else {}
+        for i, name in enumerate(secrets):
+            if name not in params:
+                problems.add(f"{prefix}.secret_params[{i}]",
+                             f'"{name}" is not one of the params; list the names of params to hide')
+
+    pagination = table.get("pagination")
+    if isinstance(pagination, dict):
+        _validate_pagination(pagination, f"{prefix}.pagination", problems)
+
+    fields = table.get("fields")
+    detail = table.get("detail")
+    detail_fields = detail.get("fields") if isinstance(detail, dict) else None
+    if isinstance(fields, dict):
+        check_keys(fields, FIELD_KEYS, f"{prefix}.fields", problems)
+        _validate_field_exprs(fields, f"{prefix}.fields", problems)
+        has_image = any(k in fields for k in ("image_url", "image_candidates"))
+        if isinstance(detail_fields, dict):
+            has_image = has_image or any(
+                k in detail_fields for k in ("image_url", "image_candidates"))
+        if not has_image:
+            problems.add(f"{prefix}.fields.image_url",
+                         "required: give image_url (one URL) or image_candidates (a list), "
+                         "here or in detail.fields")
+    if isinstance(detail, dict):
+        path = f"{prefix}.detail"
+        check_keys(detail, DETAIL_KEYS, path, problems)
+        url = detail.get("url")
+        if isinstance(url, str):
+            try:
+                names = _template_names(url)
+            except ValueError as exc:
+                problems.add(f"{path}.url", f"is not a valid template: {exc}")
+                names = []
+            known = ("id", *ITEM_FIELDS)
+            for name in names:
+                if name not in known:
+                    problems.add(f"{path}.url", f'placeholder "{{{name}}}" is not a field; '
+                                 f"use one of {', '.join('{' + k + '}' for k in known)}")
+            filled = url
+            for name in names:
+                filled = filled.replace("{" + name + "}", "x")
+            check_http_url(filled, f"{path}.url", problems)
+        if isinstance(detail_fields, dict):
+            check_keys(detail_fields, DETAIL_FIELD_KEYS, f"{path}.fields", problems)
+            _validate_field_exprs(detail_fields, f"{path}.fields", problems)
+        when = detail.get("when")
+        if isinstance(when, str) and when not in WHEN:
+            problems.add(f"{path}.when", f'must be "missing" or "always", got "{when}"')
+    return problems.items
+
+
+def _validate_field_exprs(fields: Mapping[str, Any], path: str, problems: Problems) -> None:
+    for key, value in fields.items():
+        if key == "pick":
+            _check_pick(value, f"{path}.pick", problems)
+        elif key in FIELD_KEYS:
+            _check_jmespath(value, f"{path}.{key}", problems)
+    if any(k in fields for k in CANDIDATE_FIELDS) and "image_candidates" not in fields:
+        problems.add(f"{path}.image_candidates",
+                     "candidate_* keys need image_candidates (the list they apply to)")
+
+
+def _validate_pagination(pag: Mapping[str, Any], path: str, problems: Problems) -> None:
+    check_keys(pag, PAGINATION_KEYS, path, problems)
+    style = pag.get("style")
+    check_positive_int(pag.get("max_pages"), f"{path}.max_pages", problems)
+    check_positive_int(pag.get("limit"), f"{path}.limit", problems)
+    for key in PAGINATION_PATHS:
+        _check_jmespath(pag.get(key), f"{path}.{key}", problems)
+    if not isinstance(style, str):
+        return
+    if style not in STYLES:
+        close = difflib.get_close_matches(style, STYLES, n=1)
+        hint = f' (did you mean "{close[0]}"?)' if close else ""
+        problems.add(f"{path}.style", f"must be one of {', '.join(STYLES)}, got \"{style}\"{hint}")
+        return
+    for key in STYLE_REQUIRED.get(style, ()):
+        if key not in pag:
+            problems.add(f"{path}.{key}", f'required when style = "{style}"')
+    general = ("style", "total_path", "max_pages")
+    for key in pag:
+        if key in PAGINATION_KEYS and key not in general and key not in STYLE_KEYS[style]:
+            users = [s for s, keys in STYLE_KEYS.items() if key in keys]
+            problems.add(f"{path}.{key}", f'is not used with style = "{style}" '
+                         f"(only with {', '.join(users)}); remove it or change the style")
+
+
+# ---------------------------------------------------------------------------------------------
+# Compiled configuration
+
+
+def _compile(expr: str | None) -> ParsedResult | None:
+    return jmespath.compile(expr) if expr else None
+
+
+@dataclass
+class FieldMap:
+    """Compiled JMESPath expressions for one mapping (listing or detail)."""
+
+    exprs: dict[str, ParsedResult]
+    pick: str = "largest"
+
+    @classmethod
+    def from_table(cls, table: Mapping[str, Any], fallback: FieldMap | None = None) -> FieldMap:
+        """Compile every expression once; candidate_* fall back to the listing's."""
+        exprs = {k: jmespath.compile(v) for k, v in table.items() if k != "pick" and v}
+        if fallback is not None:
+            for key in CANDIDATE_FIELDS:
+                if key not in exprs and key in fallback.exprs:
+                    exprs[key] = fallback.exprs[key]
+        pick = table.get("pick") or (fallback.pick if fallback else "largest")
+        return cls(exprs=exprs, pick=pick)
+
+    def get(self, name: str, data: Any) -> Any:
+        """The value of one field in data, or None when unmapped or absent."""
+        expr = self.exprs.get(name)
+        return expr.search(data) if expr is not None else None
+
+    def maps_image(self) -> bool:
+        """Whether this mapping can produce an image URL."""
+        return "image_url" in self.exprs or "image_candidates" in self.exprs
+
+
+@dataclass
+class Config:
+    """One json_api source table, compiled."""
+
+    name: str
+    url: str
+    params: dict[str, str]
+    headers: dict[str, str]
+    secret_params: tuple[str, ...]
+    style: str
+    pag: dict[str, Any]
+    max_pages: int
+    listing: FieldMap
+    items: ParsedResult
+    id: ParsedResult
+    cursor: ParsedResult | None = None
+    next: ParsedResult | None = None
+    total: ParsedResult | None = None
+    detail_url: str | None = None
+    detail: FieldMap | None = None
+    detail_when: str = "missing"
+    detail_params: dict[str, str] = field(default_factory=dict)
+
+    @classmethod
+    def from_table(cls, table: Mapping[str, Any]) -> Config:
+        """Compile a validated table; expands "${ENV}" references (KeyError names a missing one)."""
+        fields = dict(table["fields"])
+        pag = dict(table.get("pagination") or {"style": "none"})
+        params = expand_env(table.get("params"))
+        secrets = tuple(table.get("secret_params") or ())
+        detail = table.get("detail")
+        listing = FieldMap.from_table({k: v for k, v in fields.items() if k not in ("items", "id")})
+        cfg = cls(
+            name=str(table["name"]),
+            url=str(table["url"]),
+            params=params,
+            headers=expand_env(table.get("headers")),
+            secret_params=secrets,
+            style=pag.get("style", "none"),
+            pag=pag,
+            max_pages=int(pag.get("max_pages", DEFAULT_MAX_PAGES)),
+            listing=listing,
+            items=jmespath.compile(fields["items"]),
+            id=jmespath.compile(fields["id"]),
+            cursor=_compile(pag.get("cursor_path")),
+            next=_compile(pag.get("next_path")),
+            total=_compile(pag.get("total_path")),
+        )
+        if isinstance(detail, Mapping):
+            cfg.detail_url = str(detail["url"])
+            cfg.detail = FieldMap.from_table(detail["fields"], fallback=listing)
+            cfg.detail_when = str(detail.get("when", "missing"))
+            # API keys usually have to travel with detail requests too; paging params do not.
+            if detail.get("include_params", False):
+                cfg.detail_params = dict(params)
+            else:
+                cfg.detail_params = {k: v for k, v in params.items() if k in secrets}
+        return cfg
+
+
+# ---------------------------------------------------------------------------------------------
+# Field mapping (pure)
+
+
+def _number(value: Any) -> float | None:
+    if isinstance(value, bool):
+        return None
+    if isinstance(value, int | float):
+        return float(value)
+    if isinstance(value, str):
+        try:
+            return float(value.strip().rstrip("wpxWPX"))
+        except ValueError:
+            return None
+    return None
+
+
+def pick_candidate(cands: list[dict[str, Any]], pick: str) -> dict[str, Any] | None:
+    """Choose one image candidate: "label:<name>" if present, else the largest by area/width.
+
+    Candidates without a size rank below sized ones; ties keep the first listed.
+    """
+    usable = [c for c in cands if c.get("url")]
+    if not usable:
+        return None
+    if pick.startswith("label:"):
+        wanted = pick[len("label:"):].strip().lower()
+        for cand in usable:
+            if str(cand.get("label") or "").strip().lower() == wanted:
+                return cand
+
+    def size(c: dict[str, Any]) -> float:
+        w, h = c.get("width"), c.get("height")
+        if w is None:
+            return -1.0
+        return w * h if h is not None else w
+
+    best = usable[0]
+    for cand in usable[1:]:
+        if size(cand) > size(best):
+            best = cand
+    return best
+
+
+def map_fields(data: Any, fm: FieldMap, base_url: str) -> dict[str, Any]:
+    """Mapped values of one item (or detail answer): text fields, resolved URLs, picked image."""
+    out: dict[str, Any] = {}
+    for name in ("title", "creator", "licence", "date"):
+        out[name] = as_text(fm.get(name, data))
+    for name in ("licence_url", "page_url", "image_url"):
+        out[name] = resolve_url(base_url, as_text(fm.get(name, data)))
+    if out["image_url"] is None and "image_candidates" in fm.exprs:
+        raw = fm.get("image_candidates", data)
+        if isinstance(raw, dict | str):
+            raw = [raw]
+        cands: list[dict[str, Any]] = []
+        for entry in raw if isinstance(raw, list) else []:
+            url = entry if isinstance(entry, str) else as_text(fm.get("candidate_url", entry))
+            cands.append({
+                "url": resolve_url(base_url, url),
+                "width": _number(fm.get("candidate_width", entry)),
+                "height": _number(fm.get("candidate_height", entry)),
+                "label": as_text(fm.get("candidate_label", entry)),
+            })
+        chosen = pick_candidate(cands, fm.pick)
+        if chosen is not None:
+            out["image_url"] = chosen["url"]
+            out["image_choice"] = {k: v for k, v in chosen.items() if k != "url" and v is not None}
+    return out
+
+
+def _describe_answer(page: Page) -> str:
+    ctype = page.headers.get("Content-Type") or page.headers.get("content-type") or "none"
+    start = page.text[:60].strip().replace("\n", " ") if page.text else ""
+    return f"Content-Type {ctype}; starts with {start!r}"
+
+
+def _type_name(value: Any) -> str:
+    return {dict: "an object", str: "a string", type(None): "nothing (null/missing)"}.get(
+        type(value), type(value).__name__)
+
+
+# ---------------------------------------------------------------------------------------------
+# Walking the pages
+
+
+class _Walker:
+    """State of one run over one json_api source."""
+
+    def __init__(self, cfg: Config, fetcher: PageFetcher, notes: OnceNotes) -> None:
+        self.cfg, self.fetcher, self.notes = cfg, fetcher, notes
+        self.seen_keys: set[str] = set()
+
+    def _red(self, url: str | None) -> str | None:
+        return redact(url, self.cfg.secret_params)
+
+    def fetch_json(self, url: str, params: Mapping[str, str] | None, purpose: str,
+                   ) -> tuple[Page, Any] | None:
+        """GET url and decode JSON; on any failure send a note and return None."""
+        cfg = self.cfg
+        try:
+            page = self.fetcher.get_page(url, purpose=purpose, params=dict(params or {}) or None,
+                                         headers=cfg.headers or None,
+                                         secret_params=cfg.secret_params)
+        except FetchError as exc:
+            self.notes.add("fetch_failed", exc.url, f"{purpose} request failed: {exc}")
+            return None
+        where = self._red(page.url)
+        if page.status >= 400:
+            self.notes.add("http_error", where, f"{purpose} answer was HTTP {page.status}")
+            return None
+        try:
+            return page, page.json()
+        except ValueError as exc:
+            text = (page.text or "").lstrip()
+            if text.startswith("<"):
+                what = "is not JSON (looks like HTML, e.g. an error page)"
+            else:
+                what = f"is malformed JSON ({str(exc).splitlines()[0]})"
+            self.notes.add("bad_json", where, f"the {purpose} answer {what}; "
+                           f"{_describe_answer(page)}; check the url and params of this source")
+            return None
+
+    def run(self) -> Iterator[Candidate]:
+        """Yield candidates page by page until a stop condition."""
+        cfg, pag = self.cfg, self.cfg.pag
+        url: str = cfg.url
+        params = dict(cfg.params)
+        page_no = int(pag.get("start", 1 if cfg.style == "page" else 0))
+        offset = page_no
+        seen_requests: set[str] = set()
+        seen_cursors: set[str] = set()
+        total_items = 0
+        for _ in range(cfg.max_pages):
+            if cfg.style == "page":
+                params[pag.get("param", "page")] = str(page_no)
+            elif cfg.style == "offset":
+                params[pag.get("offset_param", "offset")] = str(offset)
+                if "limit" in pag:
+                    params[pag.get("limit_param", "limit")] = str(pag["limit"])
+            request = merge_query(url, params)
+            if request in seen_requests:
+                self.notes.add("loop", self._red(request),
+                               "pagination came back to a page already read; stopped here")
+                return
+            seen_requests.add(request)
+            got = self.fetch_json(url, params, "listing")
+            if got is None:
+                return
+            page, body = got
+            items = cfg.items.search(body)
+            if not isinstance(items, list):
+                self.notes.add("wrong_shape", self._red(page.url),
+                               f'fields.items ("{cfg.items.expression}") gave {_type_name(items)}, '
+                               "not a list; check fields.items against the answer")
+                return
+            if not items:
+                return
+            before = len(self.seen_keys)
+            yield from self._page_items(items, page.url)
+            if len(self.seen_keys) == before and total_items > 0:
+                self.notes.add("loop", self._red(page.url),
+                               "this page repeated items already read (the API may ignore the "
+                               "pagination parameter); stopped here")
+                return
+            total_items += len(items)
+            if cfg.total is not None:
+                total = _number(cfg.total.search(body))
+                if total is not None and total_items >= total:
+                    return
+            # Next request.
+            if cfg.style == "page":
+                page_no += 1
+            elif cfg.style == "offset":
+                offset += len(items)
+            elif cfg.style == "cursor":
+                cursor = as_text(cfg.cursor.search(body)) if cfg.cursor else None
+                if cursor is None:
+                    return
+                if cursor in seen_cursors:
+                    self.notes.add("loop", self._red(page.url),
+                                   f'the cursor "{cursor:.40}" was already used; stopped here')
+                    return
+                seen_cursors.add(cursor)
+                params[pag["cursor_param"]] = cursor
+            elif cfg.style in ("next_url", "link_header"):
+                if cfg.style == "next_url":
+                    nxt = as_text(cfg.next.search(body)) if cfg.next else None
+                else:
+                    nxt = page.links.get("next") if page.links else None
+                nxt = resolve_url(page.url, nxt)
+                if nxt is None:
+                    return
+                # The next URL carries its own paging query; add only the recipe's params it
+                # lacks (API keys are often left out of next links).
+                url, params = merge_query(nxt, cfg.params), {}
+            else:
+                return
+        self.notes.add("max_pages", self._red(cfg.url),
+                       f"stopped after max_pages = {cfg.max_pages} pages; there may be more")
+
+    def _page_items(self, items: list[Any], base_url: str) -> Iterator[Candidate]:
+        cfg = self.cfg
+        for item in items:
+            key = as_text(cfg.id.search(item))
+            if key is None:
+                self.notes.add("missing_id", self._red(base_url),
+                               f'an item has no id at fields.id ("{cfg.id.expression}"); such '
+                               "items are skipped (reported once per run)", once_key="id")
+                continue
+            if key in self.seen_keys:
+                continue
+            self.seen_keys.add(key)
+            values = map_fields(item, cfg.listing, base_url)
+            metadata: dict[str, Any] = {"item": capped_json(item)}
+            if cfg.detail is not None and self._wants_detail(values):
+                merged = self._detail(key, values, metadata)
+                if merged is None and values.get("image_url") is None:
+                    continue
+                values = merged or values
+            if values.get("image_url") is None:
+                self.notes.add("missing_image", self._red(base_url),
+                               "an item has no image URL after mapping (check fields.image_url / "
+                               "image_candidates); such items are skipped (reported once per run)",
+                               once_key="image")
+                continue
+            if "image_choice" in values:
+                metadata["image_choice"] = values["image_choice"]
+            yield Candidate(
+                source_key=key, image_url=values["image_url"], page_url=values.get("page_url"),
+                title=values.get("title"), creator=values.get("creator"),
+                licence_raw=values.get("licence"), licence_url=values.get("licence_url"),
+                date=values.get("date"), metadata=metadata,
+            )
+
+    def _wants_detail(self, values: Mapping[str, Any]) -> bool:
+        assert self.cfg.detail is not None
+        if self.cfg.detail_when == "always":
+            return True
+        for name in self.cfg.detail.exprs:
+            target = "image_url" if name == "image_candidates" else name
+            if target in values and values[target] is None:
+                return True
+        return False
+
+    def _detail(self, key: str, values: Mapping[str, Any], metadata: dict[str, Any],
+                ) -> dict[str, Any] | None:
+        cfg = self.cfg
+        assert cfg.detail is not None and cfg.detail_url is not None
+        fill = {"id": quote(key, safe="")}
+        fill.update({k: quote(str(v), safe="") for k, v in values.items()
+                     if k in ITEM_FIELDS and v is not None})
+        try:
+            url = cfg.detail_url.format(**fill)
+        except (KeyError, IndexError) as exc:
+            self.notes.add("missing_field", cfg.detail_url,
+                           f"detail.url needs {exc} but an item lacks it; such items use the "
+                           "listing only (reported once per run)", once_key="detail-template")
+            return None
+        got = self.fetch_json(url, cfg.detail_params, "detail")
+        if got is None:
+            return None
+        page, body = got
+        metadata["detail"] = capped_json(body)
+        found = map_fields(body, cfg.detail, page.url)
+        merged = dict(values)
+        for name, value in found.items():
+            if value is not None:
+                merged[name] = value
+        return merged
+
+
+def iter_candidates(source: Mapping[str, Any], fetcher: PageFetcher, notes: NoteSink,
+                    base_dir: Path) -> Iterator[Candidate]:
+    """Yield the Candidates of one validated json_api source table."""
+    del base_dir  # not used by this kind
+    once = OnceNotes(notes, str(source.get("name", "")))
+    try:
+        cfg = Config.from_table(source)
+    except KeyError as exc:
+        once.add("config", None, f"environment variable {exc.args[0]} is not set but params or "
+                 "headers refer to it as ${...}; set it before running")
+        return
+    yield from _Walker(cfg, fetcher, once).run()

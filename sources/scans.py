@@ -1,0 +1,268 @@
+"""Local scans adapter: image files in a folder, described by the recipe, optionally split into
+the separate items lying on the scanner bed (see sources.splitter)."""
+
+from __future__ import annotations
+
+import os
+import re
+from collections.abc import Iterator, Mapping
+from datetime import UTC, datetime
+from pathlib import Path
+from typing import Any
+
+from PIL import Image, UnidentifiedImageError
+
+from sources import splitter
+from sources.base import (
+    BOOL,
+    DATEISH,
+    INT,
+    LIST,
+    NUM,
+    STR,
+    TABLE,
+    Candidate,
+    Key,
+    NoteSink,
+    OnceNotes,
+    PageFetcher,
+    Problems,
+    RecipeProblem,
+    check_http_url,
+    check_keys,
+    check_positive_int,
+    check_str_list,
+    date_text,
+)
+
+DEFAULT_INCLUDE = ("**/*.png", "**/*.jpg", "**/*.jpeg", "**/*.tif", "**/*.tiff", "**/*.webp",
+                   "**/*.bmp")
+
+SOURCE_KEYS: dict[str, Key] = {
+    "name": Key(STR, True),
+    "kind": Key(STR, True),
+    "path": Key(STR, True, 'the folder of scans, relative to the collection folder, e.g. "scans"'),
+    "include": Key(LIST),
+    "title": Key(STR),
+    "creator": Key(STR),
+    "licence": Key(STR),
+    "licence_url": Key(STR),
+    "device": Key(STR),
+    "date": Key(DATEISH),
+    "split": Key(TABLE),
+}
+SPLIT_KEYS: dict[str, Key] = {
+    "min_area": Key(INT),
+    "padding": Key(INT),
+    "deskew": Key(BOOL),
+    "threshold": Key(INT),
+    "min_solidity": Key(NUM),
+}
+
+# Baseline TIFF / Exif IFD0 tags a scanner writes (standards.md §6.1 for 271, 272, 306; TIFF 6.0
+# for 282, 283, 296, 305 — from memory).
+SCANNER_TAGS = {271: "Make", 272: "Model", 305: "Software", 306: "DateTime",
+                282: "XResolution", 283: "YResolution", 296: "ResolutionUnit"}
+
+_DATE = re.compile(r"^\d{4}(-\d{2}(-\d{2}([T ][0-9:.]+(Z|[+-]\d{2}:?\d{2})?)?)?)?$")
+
+
+def validate(table: dict[str, Any], prefix: str) -> list[RecipeProblem]:
+    """All problems of one scans source table."""
+    problems = Problems("")
+    check_keys(table, SOURCE_KEYS, prefix, problems)
+    path = table.get("path")
+    if isinstance(path, str) and not path.strip():
+        problems.add(f"{prefix}.path", "must not be empty")
+    include = table.get("include")
+    if check_str_list(include, f"{prefix}.include", problems):
+        for i, pattern in enumerate(include):
+            if pattern.startswith("/") or ".." in Path(pattern).parts:
+                problems.add(f"{prefix}.include[{i}]", f'"{pattern}" must be a pattern relative '
+                             'to the folder, like "**/*.png"')
+    check_http_url(table.get("licence_url"), f"{prefix}.licence_url", problems)
+    date = table.get("date")
+    if isinstance(date, str) and not _DATE.match(date.strip()):
+        problems.add(f"{prefix}.date", f'must be an ISO 8601 date like "2026-03-01", got "{date}"')
+    split = table.get("split")
+    if isinstance(split, dict):
+        sp = f"{prefix}.split"
+        check_keys(split, SPLIT_KEYS, sp, problems)
+        check_positive_int(split.get("min_area"), f"{sp}.min_area", problems)
+        check_positive_int(split.get("padding"), f"{sp}.padding", problems, minimum=0)
+        t = split.get("threshold")
+        if isinstance(t, int) and not isinstance(t, bool) and not 0 <= t <= 254:
+            problems.add(f"{sp}.threshold", f"must be a grey level 0-254, got {t}")
+        s = split.get("min_solidity")
+        if isinstance(s, int | float) and not isinstance(s, bool) and not 0 < s <= 1:
+            problems.add(f"{sp}.min_solidity", f"must be between 0 and 1, got {s}")
+    return problems.items
+
+
+def glob_regex(pattern: str) -> re.Pattern[str]:
+    """A case-insensitive regex for a glob over relative POSIX paths.
+
+    "**/" matches zero or more folders, "**" anything, "*" and "?" stay within one folder.
+    """
+    out, i = "", 0
+    while i < len(pattern):
+        if pattern.startswith("**/", i):
+            out, i = out + "(?:.*/)?", i + 3
+        elif pattern.startswith("**", i):
+            out, i = out + ".*", i + 2
+        elif pattern[i] == "*":
+            out, i = out + "[^/]*", i + 1
+        elif pattern[i] == "?":
+            out, i = out + "[^/]", i + 1
+        else:
+            out, i = out + re.escape(pattern[i]), i + 1
+    return re.compile(out + r"\Z", re.IGNORECASE)
+
+
+def list_files(root: Path, include: list[str] | tuple[str, ...]) -> list[tuple[str, Path]]:
+    """(relative POSIX path, path) of files under root matching any pattern, in sorted order."""
+    regexes = [glob_regex(p) for p in include]
+    found: list[tuple[str, Path]] = []
+    for folder, dirs, files in os.walk(root):
+        dirs.sort()
+        for name in sorted(files):
+            path = Path(folder) / name
+            rel = path.relative_to(root).as_posix()
+            if any(r.match(rel) for r in regexes):
+                found.append((rel, path))
+    return sorted(found)
+
+
+def _tag_value(value: Any) -> Any:
+    if isinstance(value, bytes):
+        value = value.decode("utf-8", "replace")
+    if isinstance(value, str):
+        return value.strip("\x00 ").strip() or None
+    if isinstance(value, int):
+        return value
+    try:
+        return round(float(value), 4)  # IFDRational and friends
+    except (TypeError, ValueError):
+        return str(value)
+
+
+def scanner_facts(im: Image.Image) -> dict[str, Any]:
+    """The scanner's own EXIF/TIFF tags (Make, Model, Software, DateTime, resolution)."""
+    facts: dict[str, Any] = {}
+    exif = im.getexif()
+    for tag, name in SCANNER_TAGS.items():
+        if tag in exif:
+            value = _tag_value(exif[tag])
+            if value is not None:
+                facts[name] = value
+    dpi = im.info.get("dpi")
+    if dpi and "XResolution" not in facts:
+        facts["dpi"] = [round(float(d), 2) for d in dpi]
+    return facts
+
+
+def _exif_date(value: Any) -> str | None:
+    # Exif DateTime is "YYYY:MM:DD HH:MM:SS" (standards.md §6.1, format from memory).
+    if not isinstance(value, str):
+        return None
+    m = re.match(r"^(\d{4}):(\d{2}):(\d{2})[ T](\d{2}:\d{2}:\d{2})", value)
+    return f"{m.group(1)}-{m.group(2)}-{m.group(3)}T{m.group(4)}" if m else None
+
+
+def iter_candidates(source: Mapping[str, Any], fetcher: PageFetcher | None, notes: NoteSink,
+                    base_dir: Path) -> Iterator[Candidate]:
+    """Yield one Candidate per matching file, then (with [split]) one per item on that scan."""
+    del fetcher  # local files: no network
+    once = OnceNotes(notes, str(source.get("name", "")))
+    root = Path(os.path.expanduser(str(source["path"])))
+    if not root.is_absolute():
+        root = Path(base_dir) / root
+    if not root.is_dir():
+        once.add("missing_folder", str(root), f"the scans folder {root} does not exist or is not "
+                 "a folder; check path (relative paths start at the collection folder)")
+        return
+    include = source.get("include") or DEFAULT_INCLUDE
+    files = list_files(root, include)
+    if not files:
+        once.add("no_files", str(root), f"no files in {root} match include = {list(include)}")
+        return
+    split = source.get("split")
+    for rel, path in files:
+        yield from _one_file(source, rel, path, split if isinstance(split, Mapping) else None,
+                             once)
+
+
+def _one_file(source: Mapping[str, Any], rel: str, path: Path,
+              split: Mapping[str, Any] | None, notes: OnceNotes) -> Iterator[Candidate]:
+    stat = path.stat()
+    common: dict[str, Any] = {
+        "creator": source.get("creator"),
+        "licence_raw": source.get("licence"),
+        "licence_url": source.get("licence_url"),
+    }
+    metadata: dict[str, Any] = {
+        "file": {"mtime": datetime.fromtimestamp(stat.st_mtime, UTC).isoformat()
+                 .replace("+00:00", "Z"), "size": stat.st_size},
+    }
+    if source.get("device"):
+        metadata["device"] = source["device"]
+    title = source.get("title")
+    try:
+        im = Image.open(path)
+    except (UnidentifiedImageError, OSError, Image.DecompressionBombError) as exc:
+        # Still yielded: the ingest checks reject it with a ledger reason.
+        if split is not None:
+            notes.add("unreadable_scan", rel, f"{rel} could not be opened as an image ({exc}); "
+                      "not split")
+        yield Candidate(source_key=rel, local_path=path, title=title,
+                        date=date_text(source.get("date")), metadata=metadata, **common)
+        return
+    with im:
+        scanner = scanner_facts(im)
+        if scanner:
+            metadata["scanner"] = scanner
+        date = date_text(source.get("date")) or _exif_date(scanner.get("DateTime"))
+        if split is None:
+            yield Candidate(source_key=rel, local_path=path, title=title, date=date,
+                            metadata=metadata, **common)
+            return
+        try:
+            im.load()
+        except (OSError, SyntaxError) as exc:
+            notes.add("unreadable_scan", rel, f"{rel} could not be decoded ({exc}); not split")
+            yield Candidate(source_key=rel, local_path=path, title=title, date=date,
+                            metadata=metadata, **common)
+            return
+        result = splitter.analyse_scan(
+            im, min_area=int(split.get("min_area", splitter.DEFAULT_MIN_AREA)),
+            threshold=split.get("threshold"),
+            min_solidity=float(split.get("min_solidity", splitter.DEFAULT_MIN_SOLIDITY)))
+        scan_meta = {**metadata, "role": "scan", "items": len(result.items),
+                     "split": {"threshold": result.threshold, "contrast": round(result.contrast, 1),
+                               "scale": result.scale}}
+        yield Candidate(source_key=rel, local_path=path, title=title, date=date,
+                        metadata=scan_meta, **common)
+        if result.blank:
+            notes.add("blank_scan", rel, f"{rel}: no items found on the scanner bed (contrast "
+                      f"{result.contrast:.0f} grey levels); the scan is kept without crops")
+            return
+        icc = im.info.get("icc_profile")
+        padding = int(split.get("padding", 0))
+        deskew = bool(split.get("deskew", False))
+        for n, item in enumerate(result.items, start=1):
+            if item.touching:
+                x, y, w, h = item.box
+                notes.add("touching_items", rel,
+                          f"{rel}: the item at box (x={x}, y={y}, w={w}, h={h}) looks like "
+                          f"several items touching (solidity {item.solidity:.2f}, area "
+                          f"{item.area} px); it is kept as one crop (#crop{n}); lay the items "
+                          "apart and rescan, or crop by hand")
+            crop, box = splitter.crop_item(im, item, padding=padding, deskew=deskew)
+            yield Candidate(
+                source_key=f"{rel}#crop{n}", title=f"{title} ({n})" if title else None,
+                date=date, content=splitter.png_bytes(crop, icc), parent_key=rel, crop_box=box,
+                metadata={**metadata, "role": "crop", "index": n,
+                          "angle": round(item.angle, 2),
+                          "deskewed": deskew and abs(item.angle) >= splitter.MIN_DESKEW_DEGREES,
+                          "solidity": round(item.solidity, 3), "touching": item.touching},
+                **common)

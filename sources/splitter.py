@@ -1,0 +1,256 @@
+"""Scanner-bed splitting: find the separate items on a near-white scan and crop each one.
+
+Pure computation on numpy arrays and Pillow images (no file I/O): Otsu threshold, morphology and
+connected components with scipy.ndimage, convex hull with scipy.spatial, a minimum-area
+rectangle by rotating calipers for deskewing. Big scans are analysed on a downscaled copy and the
+boxes mapped back, so memory stays bounded.
+"""
+
+from __future__ import annotations
+
+import io
+import math
+from dataclasses import dataclass
+
+import numpy as np
+from PIL import Image
+from scipy import ndimage
+from scipy.spatial import ConvexHull, QhullError
+
+DEFAULT_MIN_AREA = 2000  # px in the full-size scan (common practice, no source)
+DEFAULT_MIN_SOLIDITY = 0.85  # below this a component is probably several touching items
+DEFAULT_MIN_CONTRAST = 25.0  # grey levels between the two Otsu classes; less = blank bed
+DEFAULT_MAX_SIDE = 2000  # px; larger scans are analysed on a reduced copy
+AREA_OUTLIER = 2.2  # x the median item area, with >= 3 items: probably two items merged
+MIN_DESKEW_DEGREES = 0.3
+
+
+@dataclass(frozen=True)
+class SplitItem:
+    """One item found on a scan, in full-size scan pixel coordinates."""
+
+    box: tuple[int, int, int, int]  # x, y, w, h (tight, without padding)
+    angle: float  # degrees; rotating the crop by this (Pillow, counter-clockwise) levels it
+    rect_size: tuple[float, float]  # width, height of the minimum-area rectangle
+    rect_center: tuple[float, float]  # its centre x, y
+    area: int  # px of the filled component
+    solidity: float  # area / convex hull area
+    touching: bool  # probably several items touching each other
+
+
+@dataclass(frozen=True)
+class SplitResult:
+    """Outcome of analysing one scan."""
+
+    items: list[SplitItem]
+    threshold: int  # grey level; pixels at or below it count as items
+    contrast: float  # distance between the Otsu class means
+    scale: int  # reduction factor used for the analysis
+    blank: bool
+
+
+def otsu_threshold(hist: np.ndarray) -> tuple[int, float]:
+    """Otsu's threshold for a 256-bin histogram and the distance between the two class means.
+
+    Otsu, N. (1979), "A threshold selection method from gray-level histograms", IEEE Trans. SMC
+    9(1): maximise the between-class variance w0*w1*(mu0-mu1)^2 (from memory).
+    """
+    p = hist.astype(np.float64) / max(1.0, float(hist.sum()))
+    levels = np.arange(p.size, dtype=np.float64)
+    omega = np.cumsum(p)
+    mu = np.cumsum(p * levels)
+    mu_t = mu[-1]
+    denom = omega * (1.0 - omega)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        between = np.where(denom > 0, (mu_t * omega - mu) ** 2 / denom, 0.0)
+    t = int(np.argmax(between))
+    if omega[t] <= 0 or omega[t] >= 1:
+        return t, 0.0
+    mu0 = mu[t] / omega[t]
+    mu1 = (mu_t - mu[t]) / (1.0 - omega[t])
+    return t, float(mu1 - mu0)
+
+
+def min_area_rect(points: np.ndarray) -> tuple[float, float, float, tuple[float, float]]:
+    """Minimum-area enclosing rectangle of 2-D points (x, y) by rotating calipers over the hull.
+
+    Returns (angle in degrees within (-45, 45], width along that angle, height, centre). The
+    minimal rectangle has a side collinear with a hull edge (Freeman & Shapira 1975, from memory).
+    """
+    try:
+        hull = points[ConvexHull(points).vertices]
+    except (QhullError, ValueError):
+        hull = points
+    best: tuple[float, float, float, tuple[float, float]] | None = None
+    best_area = math.inf
+    edges = np.roll(hull, -1, axis=0) - hull
+    for theta in np.unique(np.round(np.arctan2(edges[:, 1], edges[:, 0]) % (math.pi / 2), 6)):
+        c, s = math.cos(theta), math.sin(theta)
+        u = hull[:, 0] * c + hull[:, 1] * s  # along the edge
+        v = -hull[:, 0] * s + hull[:, 1] * c  # across it
+        w, h = float(u.max() - u.min()), float(v.max() - v.min())
+        if w * h < best_area:
+            best_area = w * h
+            cu, cv = (u.max() + u.min()) / 2, (v.max() + v.min()) / 2
+            center = (float(cu * c - cv * s), float(cu * s + cv * c))
+            best = (math.degrees(theta), w, h, center)
+    assert best is not None
+    angle, w, h, center = best
+    if angle > 45.0:  # a 90-degree turn of the same rectangle, with sides swapped
+        angle, w, h = angle - 90.0, h, w
+    return angle, w, h, center
+
+
+def _pixel_corners(mask: np.ndarray) -> np.ndarray:
+    """Corner points of the boundary pixels of a boolean mask, as (x, y) floats."""
+    edge = mask & ~ndimage.binary_erosion(mask)
+    ys, xs = np.nonzero(edge)
+    pts = np.concatenate([
+        np.stack([xs, ys], 1), np.stack([xs + 1, ys], 1),
+        np.stack([xs, ys + 1], 1), np.stack([xs + 1, ys + 1], 1),
+    ]).astype(np.float64)
+    return np.unique(pts, axis=0)
+
+
+def find_items(gray: np.ndarray, *, scale: int = 1, min_area: int = DEFAULT_MIN_AREA,
+               threshold: int | None = None, min_solidity: float = DEFAULT_MIN_SOLIDITY,
+               min_contrast: float = DEFAULT_MIN_CONTRAST,
+               full_size: tuple[int, int] | None = None) -> SplitResult:
+    """Items on a greyscale scan (uint8 array, already reduced by `scale`), boxes in full size.
+
+    Items are darker than the near-white bed. Steps: threshold (Otsu unless given), drop specks
+    (opening), bridge small gaps (closing), fill holes, label 8-connected components, keep the
+    ones of at least min_area full-size pixels, and flag probable touching items.
+    """
+    hist = np.bincount(gray.ravel(), minlength=256)[:256]
+    t, contrast = otsu_threshold(hist)
+    if threshold is not None:
+        t = int(threshold)
+    elif contrast < min_contrast:
+        return SplitResult([], t, contrast, scale, True)
+    mask = gray <= t
+    st = np.ones((3, 3), dtype=bool)
+    mask = ndimage.binary_opening(mask, structure=st)
+    pad = 4  # closing near the border would otherwise erode items that touch it
+    mask = np.pad(mask, pad)
+    mask = ndimage.binary_closing(mask, structure=st, iterations=2)[pad:-pad, pad:-pad]
+    mask = ndimage.binary_fill_holes(mask)
+    mask = ndimage.binary_opening(mask, structure=st, iterations=2)
+    labels, count = ndimage.label(mask, structure=st)
+    areas = np.bincount(labels.ravel(), minlength=count + 1)
+    full_w, full_h = full_size or (gray.shape[1] * scale, gray.shape[0] * scale)
+    found: list[SplitItem] = []
+    for index, sl in enumerate(ndimage.find_objects(labels), start=1):
+        if sl is None or areas[index] * scale * scale < min_area:
+            continue
+        sub = labels[sl] == index
+        y0, x0 = sl[0].start, sl[1].start
+        pts = _pixel_corners(sub)
+        try:
+            hull_area = float(ConvexHull(pts).volume)  # in 2-D, "volume" is the area
+        except (QhullError, ValueError):
+            hull_area = float(areas[index])
+        solidity = min(1.0, float(areas[index]) / hull_area) if hull_area > 0 else 1.0
+        angle, rw, rh, (cx, cy) = min_area_rect(pts)
+        box = (x0 * scale, y0 * scale,
+               min(full_w, sl[1].stop * scale) - x0 * scale,
+               min(full_h, sl[0].stop * scale) - y0 * scale)
+        found.append(SplitItem(
+            box=box, angle=angle, rect_size=(rw * scale, rh * scale),
+            rect_center=((cx + x0) * scale, (cy + y0) * scale),
+            area=int(areas[index]) * scale * scale, solidity=solidity,
+            touching=solidity < min_solidity))
+    found = _flag_area_outliers(found)
+    return SplitResult(reading_order(found), t, contrast, scale, not found)
+
+
+def _flag_area_outliers(items: list[SplitItem]) -> list[SplitItem]:
+    if len(items) < 3:
+        return items
+    median = float(np.median([i.area for i in items]))
+    out = []
+    for item in items:
+        if item.area > AREA_OUTLIER * median and not item.touching:
+            item = SplitItem(item.box, item.angle, item.rect_size, item.rect_center, item.area,
+                             item.solidity, True)
+        out.append(item)
+    return out
+
+
+def reading_order(items: list[SplitItem]) -> list[SplitItem]:
+    """Items top-to-bottom in rows, left-to-right within a row (deterministic).
+
+    An item joins the current row when its top lies above the middle of the row's first item.
+    """
+    rest = sorted(items, key=lambda i: (i.box[1], i.box[0]))
+    ordered: list[SplitItem] = []
+    while rest:
+        first = rest[0]
+        middle = first.box[1] + first.box[3] / 2
+        row = [i for i in rest if i.box[1] < middle]
+        rest = [i for i in rest if i.box[1] >= middle]
+        ordered += sorted(row, key=lambda i: (i.box[0], i.box[1]))
+    return ordered
+
+
+def analyse_scan(im: Image.Image, *, min_area: int = DEFAULT_MIN_AREA,
+                 threshold: int | None = None, min_solidity: float = DEFAULT_MIN_SOLIDITY,
+                 max_side: int = DEFAULT_MAX_SIDE) -> SplitResult:
+    """Find the items on a scan; analyses a reduced greyscale copy when the scan is large."""
+    scale = max(1, math.ceil(max(im.size) / max_side))
+    small = im.reduce(scale) if scale > 1 else im
+    gray = np.asarray(_to_grey(small), dtype=np.uint8)
+    return find_items(gray, scale=scale, min_area=min_area, threshold=threshold,
+                      min_solidity=min_solidity, full_size=im.size)
+
+
+def _to_grey(im: Image.Image) -> Image.Image:
+    if im.mode in ("I;16", "I;16B", "I;16L", "I"):
+        return Image.fromarray((np.asarray(im, dtype=np.float64) / 257.0).clip(0, 255)
+                               .astype(np.uint8))
+    if im.mode in ("RGBA", "LA", "PA") or (im.mode == "P" and "transparency" in im.info):
+        bg = Image.new("RGBA", im.size, (255, 255, 255, 255))
+        return Image.alpha_composite(bg, im.convert("RGBA")).convert("L")
+    return im.convert("L")
+
+
+def _white(mode: str) -> int | tuple[int, ...]:
+    return {"L": 255, "RGB": (255, 255, 255), "RGBA": (255, 255, 255, 255)}[mode]
+
+
+def crop_item(im: Image.Image, item: SplitItem, *, padding: int = 0, deskew: bool = False,
+              ) -> tuple[Image.Image, tuple[int, int, int, int]]:
+    """The crop of one item (optionally levelled) and its padded box (x, y, w, h) in the scan."""
+    if im.mode not in ("L", "RGB", "RGBA"):
+        im = im.convert("RGBA" if "A" in im.getbands() else "RGB")
+    x, y, w, h = item.box
+    x0, y0 = max(0, x - padding), max(0, y - padding)
+    x1, y1 = min(im.width, x + w + padding), min(im.height, y + h + padding)
+    crop = im.crop((x0, y0, x1, y1))
+    box = (x0, y0, x1 - x0, y1 - y0)
+    if not deskew or abs(item.angle) < MIN_DESKEW_DEGREES:
+        return crop, box
+    rotated = crop.rotate(item.angle, resample=Image.Resampling.BICUBIC, expand=True,
+                          fillcolor=_white(crop.mode))
+    # Where the rectangle's centre lands: Pillow turns counter-clockwise on screen, which in
+    # y-down pixel coordinates maps an offset (dx, dy) from the centre to
+    # (dx cos a + dy sin a, -dx sin a + dy cos a).
+    a = math.radians(item.angle)
+    dx = item.rect_center[0] - (x0 + crop.width / 2)
+    dy = item.rect_center[1] - (y0 + crop.height / 2)
+    cx = rotated.width / 2 + dx * math.cos(a) + dy * math.sin(a)
+    cy = rotated.height / 2 - dx * math.sin(a) + dy * math.cos(a)
+    half_w, half_h = item.rect_size[0] / 2 + padding, item.rect_size[1] / 2 + padding
+    trim = (max(0, round(cx - half_w)), max(0, round(cy - half_h)),
+            min(rotated.width, round(cx + half_w)), min(rotated.height, round(cy + half_h)))
+    return rotated.crop(trim), box
+
+
+def png_bytes(im: Image.Image, icc_profile: bytes | None = None) -> bytes:
+    """The image encoded as PNG (lossless), keeping an ICC profile when there is one."""
+    buf = io.BytesIO()
+    if icc_profile:
+        im.save(buf, format="PNG", icc_profile=icc_profile)
+    else:
+        im.save(buf, format="PNG")
+    return buf.getvalue()
