@@ -239,3 +239,55 @@ def datasheet(
                + f"; left out {c.excluded_licence} by licence, {c.excluded_flagged} flagged")
     for problem in result.croissant_problems:
         typer.echo(f"croissant.json: {problem}", err=True)
+
+
+@app.command()
+def trace(
+    paths: list[Path] = typer.Argument(..., help="Image files or folders of images to trace."),
+    folder: Path = typer.Option(Path("."), "--in", envvar="COLLECTOR_COLLECTION",
+                                help="The collection folder (default: $COLLECTOR_COLLECTION, "
+                                     "else the current folder)."),
+    as_csv: bool = typer.Option(False, "--csv", help="Print the table as CSV."),
+    as_json: bool = typer.Option(False, "--json", help="Print full records as JSON."),
+) -> None:
+    """Say where files came from and under which licence, by content (not by name).
+
+    Exit 0 when every file traced (exact or near), 1 when some did not, 2 on usage errors.
+    Example: collector trace leaf.jpg --in my-leaves;  collector trace to-publish/ --csv
+    """
+    from collector.trace import (
+        CAUTION,
+        Tracer,
+        collect_targets,
+        format_record,
+        format_summary,
+        format_table,
+        to_csv,
+        to_json,
+    )
+
+    with user_errors():
+        targets = collect_targets(paths)
+        with Tracer.open(folder) as tracer:
+            results = list(tracer.trace_all(targets))
+            recipe_problem = tracer.recipe_problem
+    if as_json:
+        typer.echo(to_json(results))
+    elif as_csv:
+        typer.echo(to_csv(results), nl=False)
+        typer.echo(CAUTION, err=True)  # stderr keeps the CSV clean for other tools
+    else:
+        if recipe_problem:
+            typer.echo("Note: the recipe did not load, so the near-match threshold is 8 and "
+                       "the allowlist is unknown.", err=True)
+        for result in results:
+            if not result.listed:
+                for line in format_record(result):
+                    typer.echo(line)
+        listed = [r for r in results if r.listed]
+        if listed:
+            for line in format_table(listed):
+                typer.echo(line)
+        for line in format_summary(results):
+            typer.echo(line)
+    raise typer.Exit(0 if all(r.kind != "none" for r in results) else 1)

@@ -1,0 +1,646 @@
+"""``collector trace``: where did this file come from, and may I use it?
+
+A file is traced by its content, never its name:
+
+1. **Exact**: the sha256 of its bytes is the ``files`` primary key; the answer is the full
+   provenance record of the item that stored it (source, pages, licence, the successful image
+   fetch with its robots.txt verdict, flags) plus every other item that brought the same bytes,
+   and for a crop the scan it was cut from and the box.
+2. **Near**: otherwise its perceptual hash (the ingest pipeline, :func:`collector.phash.
+   hash_image_file`) is compared with every stored hash and mirror hash in the memory-mapped
+   hash file (:class:`collector.hashindex.HashFile`). The scan is brute force, so every stored
+   file within the threshold is found. A near match is worded as *probably* a copy, never as
+   certain: pHash cannot prove two files show the same picture.
+3. **None**: said plainly.
+
+The ledger is opened read-only, so tracing works while a gather runs. Licence facts are as
+declared by the sources; this module says what the ledger recorded, not what the law allows.
+"""
+
+from __future__ import annotations
+
+import csv
+import hashlib
+import io
+import json
+import os
+import struct
+from collections.abc import Iterable, Iterator
+from dataclasses import asdict, dataclass, field
+from pathlib import Path
+from typing import Any
+
+from collector.collection import FILES_NAME, Collection, open_collection
+from collector.errors import CollectorError
+from collector.hashindex import HASH_FILE_NAME, HashFile, NearMatch
+from collector.images import sniff_format
+from collector.ledger import Ledger, decode_row
+from collector.licences import licence_allowed, licence_deed_url
+
+__all__ = [
+    "CAUTION",
+    "DEFAULT_NEAR_DISTANCE",
+    "IMAGE_EXTENSIONS",
+    "PERSONAL_DATA_FLAGS",
+    "FetchFacts",
+    "FileRecord",
+    "ItemRecord",
+    "NearCandidate",
+    "TraceInputError",
+    "TraceResult",
+    "TraceSummary",
+    "Tracer",
+    "attribution_line",
+    "collect_targets",
+    "format_record",
+    "format_summary",
+    "format_table",
+    "iter_image_files",
+    "licence_label",
+    "sha256_file",
+    "summarise",
+    "to_csv",
+    "to_json",
+]
+
+# libraries.md section 2: a threshold of 8 found every resized, re-encoded, brightened and
+# (through the mirror hash) flipped copy, while no unrelated pair came closer than 14 bits.
+DEFAULT_NEAR_DISTANCE = 8
+CAUTION = ("Licence facts are as declared by the sources and recorded in the ledger; "
+           "this is not legal advice.")
+PERSONAL_CAUTION = ("Some files carry personal data (GPS position, camera serial, owner name); "
+                    "images may also show faces or names. Check before publishing.")
+# Flags set by collector.images that point at a person (GPS, device serial, owner name).
+PERSONAL_DATA_FLAGS = frozenset({"gps", "camera_serial", "owner_name"})
+IMAGE_EXTENSIONS = frozenset({".jpg", ".jpeg", ".jpe", ".png", ".gif", ".webp", ".tif",
+                              ".tiff", ".bmp"})
+_CHUNK = 1 << 20
+# What Pillow raises on a file it cannot decode (the same set collector.images handles).
+_DECODE_ERRORS = (OSError, SyntaxError, ValueError, EOFError, IndexError, TypeError,
+                  struct.error)
+
+
+class TraceInputError(CollectorError):
+    """A path given to trace does not exist or holds nothing to trace (usage error)."""
+
+    exit_code = 2
+
+
+# --- records ---------------------------------------------------------------------------------
+@dataclass
+class FetchFacts:
+    """The successful image download of an item (a ``fetches`` row)."""
+
+    url: str | None
+    status: int | None
+    fetched_at: str | None
+    etag: str | None
+    last_modified: str | None
+    robots_verdict: str | None
+    robots_rule: str | None
+    run_id: int | None
+
+
+@dataclass
+class ItemRecord:
+    """One ledger item that brought a file: where it was listed and under which licence."""
+
+    item_id: int
+    source: str | None
+    source_kind: str | None
+    source_key: str
+    state: str
+    page_url: str | None
+    image_url: str | None
+    title: str | None
+    creator: str | None
+    licence_raw: str | None
+    licence_url: str | None
+    spdx_id: str | None
+    deed_url: str | None
+    date: str | None
+    run_id: int | None
+    local_path: str | None
+    fetch: FetchFacts | None = None
+    parent_sha256: str | None = None
+    crop_box: list[int] | None = None
+    scan: ItemRecord | None = None  # for a crop: the item of the scan it was cut from
+    near_of: int | None = None  # the ledger's own near-duplicate note: the earlier item
+    near_distance: int | None = None
+
+
+@dataclass
+class FileRecord:
+    """A stored file and the items that brought it (the first one is the origin)."""
+
+    sha256: str
+    size: int | None
+    format: str | None
+    width: int | None
+    height: int | None
+    stored_at: str | None
+    stored_path: str | None
+    flags: list[str]
+    copyright: str | None
+    origin: ItemRecord | None
+    others: list[ItemRecord] = field(default_factory=list)
+
+
+@dataclass
+class NearCandidate:
+    """A stored file whose perceptual hash is close to the query's."""
+
+    distance: int
+    mirrored: bool
+    file: FileRecord
+
+
+@dataclass
+class TraceResult:
+    """What trace found for one file."""
+
+    path: str
+    sha256: str | None
+    kind: str  # exact | near | none
+    file: FileRecord | None = None
+    near: list[NearCandidate] = field(default_factory=list)
+    allowed: str = "unknown"  # yes | no | unknown (against the recipe's allowlist)
+    attribution: str | None = None
+    note: str | None = None  # e.g. why no perceptual hash could be computed
+    threshold: int = DEFAULT_NEAR_DISTANCE
+    listed: bool = False  # found by walking a folder (shown in the table)
+
+    @property
+    def best(self) -> FileRecord | None:
+        """The matched stored file: the exact one, or the closest near one."""
+        if self.file is not None:
+            return self.file
+        return self.near[0].file if self.near else None
+
+    @property
+    def distance(self) -> int | None:
+        """Hamming distance of the match (0 for exact, None without a match)."""
+        if self.kind == "exact":
+            return 0
+        return self.near[0].distance if self.near else None
+
+    @property
+    def item(self) -> ItemRecord | None:
+        """The origin item of the matched file."""
+        best = self.best
+        return best.origin if best else None
+
+    @property
+    def flags(self) -> list[str]:
+        """Flags of the matched file (GPS, camera serial, licence conflict...)."""
+        best = self.best
+        return list(best.flags) if best else []
+
+    @property
+    def personal_data(self) -> bool:
+        """Whether the matched file carries a personal-data flag."""
+        return any(f in PERSONAL_DATA_FLAGS for f in self.flags)
+
+
+# --- helpers -----------------------------------------------------------------------------------
+def sha256_file(path: Path) -> str:
+    """The sha256 hex digest of a file's bytes (FIPS 180-4), read in 1 MiB chunks."""
+    digest = hashlib.sha256()
+    with path.open("rb") as fh:
+        while chunk := fh.read(_CHUNK):
+            digest.update(chunk)
+    return digest.hexdigest()
+
+
+def _looks_like_image(path: Path) -> bool:
+    if path.suffix.lower() not in IMAGE_EXTENSIONS:
+        return False
+    try:
+        with path.open("rb") as fh:
+            return sniff_format(fh.read(16)) is not None
+    except OSError:
+        return False
+
+
+def iter_image_files(folder: Path) -> Iterator[Path]:
+    """Every image below ``folder`` (recursive, sorted): an image extension and image magic
+    bytes (standards.md section 9) are both required; hidden folders are skipped."""
+    for dirpath, dirnames, filenames in os.walk(folder):
+        dirnames[:] = sorted(d for d in dirnames if not d.startswith("."))
+        for name in sorted(filenames):
+            path = Path(dirpath) / name
+            if _looks_like_image(path):
+                yield path
+
+
+def collect_targets(paths: Iterable[Path]) -> list[tuple[Path, bool]]:
+    """Expand the command's arguments into (file, came_from_a_folder) pairs.
+
+    Raises TraceInputError for a missing path or a folder without images.
+    """
+    targets: list[tuple[Path, bool]] = []
+    for path in paths:
+        if path.is_dir():
+            found = list(iter_image_files(path))
+            if not found:
+                raise TraceInputError(f"{path} holds no image files (looked for "
+                                      f"{', '.join(sorted(IMAGE_EXTENSIONS))} with image "
+                                      "signatures); give an image file or a folder of images")
+            targets.extend((p, True) for p in found)
+        elif path.is_file():
+            targets.append((path, False))
+        else:
+            raise TraceInputError(f"{path} does not exist; give an image file or a folder")
+    return targets
+
+
+_LICENCE_NAMES = {"CC0-1.0": "CC0 1.0", "CC-PDM-1.0": "Public Domain Mark 1.0"}
+_PUBLIC_DOMAIN = frozenset({"CC0-1.0", "CC-PDM-1.0", "CC-PDDC"})
+
+
+def licence_label(spdx_id: str | None) -> str | None:
+    """The short name CC uses for a licence (``CC-BY-SA-4.0`` -> ``CC BY-SA 4.0``)."""
+    if not spdx_id:
+        return None
+    if spdx_id in _LICENCE_NAMES:
+        return _LICENCE_NAMES[spdx_id]
+    parts = spdx_id.split("-")
+    if spdx_id.startswith("CC-BY") and len(parts) >= 3:
+        # CC-<elements>-<version>[-<port>] (standards.md section 7)
+        idx = next((i for i, p in enumerate(parts) if p[:1].isdigit()), None)
+        if idx is not None:
+            elements = "-".join(parts[1:idx])
+            rest = " ".join(parts[idx:])
+            return f"CC {elements} {rest}"
+    return spdx_id
+
+
+def attribution_line(item: ItemRecord | None, *, modified: bool = False,
+                     copyright_notice: str | None = None) -> str:
+    """A ready-to-paste credit line following CC's recommended practice "TASL" (standards.md
+    section 8): Title, Author, Source, Licence with a link to its deed; "modified" when the
+    file is a changed copy; a copyright notice is kept when the file carried one."""
+    if item is None:
+        return "No attribution: the file's origin is unknown."
+    title = f'"{item.title}"' if item.title else "Untitled image"
+    author = f"by {item.creator}" if item.creator else "by an author the source did not name"
+    scan = item.scan.local_path if item.scan and item.scan.local_path else None
+    local = item.local_path or (f"cut from {scan}" if scan else None)
+    source = item.page_url or item.image_url or (
+        f"{item.source} ({local})" if local else item.source)
+    parts = [f"{title} {author}"]
+    if source:
+        parts.append(source)
+    label = licence_label(item.spdx_id)
+    if label:
+        deed = item.deed_url or item.licence_url
+        verb = "marked with" if item.spdx_id in _PUBLIC_DOMAIN else "licensed under"
+        parts.append(f"{verb} {label}" + (f" ({deed})" if deed else ""))
+    else:
+        raw = f" (the source said {item.licence_raw!r})" if item.licence_raw else ""
+        parts.append(f"licence unknown{raw}: find the licence before reusing this image")
+    if copyright_notice:
+        parts.append(copyright_notice)
+    if modified:
+        parts.append("modified")
+    return ", ".join(parts)
+
+
+# --- the tracer --------------------------------------------------------------------------------
+class Tracer:
+    """Traces files against one collection; open with :meth:`open`, use as a context manager.
+
+    ``near_distance`` and ``allow`` come from the recipe when it loads; otherwise the threshold
+    is :data:`DEFAULT_NEAR_DISTANCE` and the allowlist verdict is "unknown".
+    """
+
+    def __init__(self, collection: Collection, ledger: Ledger, hashes: HashFile, *,
+                 near_distance: int = DEFAULT_NEAR_DISTANCE,
+                 allow: list[str] | None = None, allow_unknown: bool = False,
+                 recipe_problem: str | None = None) -> None:
+        self.collection = collection
+        self.ledger = ledger
+        self.hashes = hashes
+        self.near_distance = near_distance
+        self.allow = allow
+        self.allow_unknown = allow_unknown
+        self.recipe_problem = recipe_problem
+        self._sources: dict[int, tuple[str, str]] | None = None
+
+    @classmethod
+    def open(cls, root: Path, *, near_distance: int | None = None) -> Tracer:
+        """Open a collection read-only and its hash file (rebuilt or extended if stale)."""
+        collection = open_collection(root)
+        allow: list[str] | None = None
+        allow_unknown = False
+        problem: str | None = None
+        threshold = DEFAULT_NEAR_DISTANCE
+        try:
+            recipe = collection.recipe()
+            threshold = int(recipe.images["near_distance"])
+            allow = list(recipe.licences["allow"])
+            allow_unknown = bool(recipe.licences["allow_unknown"])
+        except CollectorError as exc:
+            problem = str(exc)
+        ledger = collection.ledger(readonly=True)
+        try:
+            hashes = HashFile.open(ledger, collection.root / FILES_NAME / HASH_FILE_NAME)
+        except BaseException:
+            ledger.close()
+            raise
+        return cls(collection, ledger, hashes,
+                   near_distance=threshold if near_distance is None else near_distance,
+                   allow=allow, allow_unknown=allow_unknown, recipe_problem=problem)
+
+    def close(self) -> None:
+        """Close the ledger."""
+        self.ledger.close()
+
+    def __enter__(self) -> Tracer:
+        return self
+
+    def __exit__(self, *exc: object) -> None:
+        self.close()
+
+    # -- lookups ----------------------------------------------------------------------------
+    def lookup_exact(self, sha256: str) -> FileRecord | None:
+        """The stored file with this sha256 and every item that brought it, or None."""
+        row = self.ledger.file(sha256)
+        if row is None:
+            return None
+        items = [self._item(r) for r in self.ledger.query(
+            "SELECT * FROM items WHERE file_sha256 = ? ORDER BY id", (sha256,))]
+        origin = next((i for i in items if i.item_id == row.get("first_item_id")),
+                      items[0] if items else None)
+        rights = row.get("rights") or {}
+        notice = next((str(rights[k]) for k in ("exif_copyright", "iptc_copyright")
+                       if isinstance(rights, dict) and rights.get(k)), None)
+        stored = self.collection.store.find(sha256)
+        return FileRecord(
+            sha256=sha256, size=row.get("size"), format=row.get("format"),
+            width=row.get("width"), height=row.get("height"), stored_at=row.get("stored_at"),
+            stored_path=str(stored) if stored else None, flags=list(row.get("flags") or []),
+            copyright=notice, origin=origin,
+            others=[i for i in items if i is not origin])
+
+    def lookup_near(self, phash: int, mirror: int | None) -> list[NearMatch]:
+        """Stored files within the threshold of the hash or the mirror hash, closest first."""
+        return self.hashes.nearest(phash, mirror, self.near_distance)
+
+    def allowed(self, spdx_id: str | None) -> str:
+        """'yes' / 'no' against the recipe's allowlist; 'unknown' without a licence or recipe."""
+        if self.allow is None or not spdx_id:
+            return "unknown"
+        ok, reason = licence_allowed(spdx_id, self.allow, self.allow_unknown)
+        if ok:
+            return "yes"
+        return "unknown" if reason == "licence_unknown" else "no"
+
+    def trace_file(self, path: Path, *, listed: bool = False) -> TraceResult:
+        """Trace one file: exact by sha256, else near by perceptual hash, else none."""
+        sha = sha256_file(path)
+        result = TraceResult(str(path), sha, "none", threshold=self.near_distance,
+                             listed=listed)
+        exact = self.lookup_exact(sha)
+        if exact is not None:
+            result.kind, result.file = "exact", exact
+        else:
+            from PIL import Image
+
+            from collector.phash import hash_image_file  # scipy loads only when needed
+
+            try:
+                phash, mirror = hash_image_file(path)
+            except (*_DECODE_ERRORS, Image.DecompressionBombError) as exc:
+                result.note = f"not a readable image ({type(exc).__name__}: {exc})"
+                phash = None
+            if phash is not None:
+                for match in self.lookup_near(phash, mirror)[:5]:
+                    record = self.lookup_exact(match.sha256)
+                    if record is not None:
+                        result.near.append(NearCandidate(match.distance, match.mirrored, record))
+                if result.near:
+                    result.kind = "near"
+        best = result.best
+        if best is not None:
+            origin = best.origin
+            result.allowed = self.allowed(origin.spdx_id if origin else None)
+            result.attribution = attribution_line(origin, modified=result.kind == "near",
+                                                  copyright_notice=best.copyright)
+        return result
+
+    def trace_all(self, targets: Iterable[tuple[Path, bool]]) -> Iterator[TraceResult]:
+        """Trace each (path, listed) pair in turn."""
+        for path, listed in targets:
+            yield self.trace_file(path, listed=listed)
+
+    # -- ledger rows -------------------------------------------------------------------------
+    def _source(self, source_id: int | None) -> tuple[str | None, str | None]:
+        if self._sources is None:
+            self._sources = {r["id"]: (r["name"], r["kind"])
+                             for r in self.ledger.query("SELECT id, name, kind FROM sources")}
+        return self._sources.get(source_id, (None, None)) if source_id is not None else (
+            None, None)
+
+    def _fetch(self, item_id: int) -> FetchFacts | None:
+        rows = self.ledger.query(
+            "SELECT * FROM fetches WHERE item_id = ? AND purpose = 'image' AND status = 200 "
+            "ORDER BY id DESC LIMIT 1", (item_id,))
+        if not rows:
+            return None
+        r = rows[0]
+        return FetchFacts(url=r["url"], status=r["status"],
+                          fetched_at=r["ended_at"] or r["started_at"], etag=r["etag"],
+                          last_modified=r["last_modified"], robots_verdict=r["robots_verdict"],
+                          robots_rule=r["robots_rule"], run_id=r["run_id"])
+
+    def _item(self, raw: dict[str, Any], *, with_scan: bool = True) -> ItemRecord:
+        row = decode_row(raw) or {}
+        name, kind = self._source(row.get("source_id"))
+        box = row.get("crop_box")
+        item = ItemRecord(
+            item_id=row["id"], source=name, source_kind=kind, source_key=row["source_key"],
+            state=row["state"], page_url=row.get("page_url"), image_url=row.get("image_url"),
+            title=row.get("title"), creator=row.get("creator"),
+            licence_raw=row.get("licence_raw"), licence_url=row.get("licence_url"),
+            spdx_id=row.get("spdx_id"), deed_url=licence_deed_url(row.get("spdx_id")),
+            date=row.get("date"), run_id=row.get("run_id"), local_path=row.get("local_path"),
+            fetch=self._fetch(row["id"]), parent_sha256=row.get("parent_sha256"),
+            crop_box=list(box) if isinstance(box, list) else None,
+            near_of=row.get("duplicate_of") if row.get("state") == "near_duplicate" else None,
+            near_distance=row.get("near_distance"))
+        if with_scan and item.parent_sha256:
+            scans = self.ledger.query(
+                "SELECT * FROM items WHERE file_sha256 = ? ORDER BY id LIMIT 1",
+                (item.parent_sha256,))
+            if scans:
+                item.scan = self._item(scans[0], with_scan=False)
+        return item
+
+
+# --- summary and output ------------------------------------------------------------------------
+@dataclass(frozen=True)
+class TraceSummary:
+    """Counts over a set of traced files: the check before training on or publishing them."""
+
+    files: int
+    exact: int
+    near: int
+    untraced: int
+    outside_allowlist: int
+    personal_data: int
+
+    def line(self) -> str:
+        """The one-line summary."""
+        return (f"{self.files} files: {self.exact} exact, {self.near} near, {self.untraced} "
+                f"without known provenance, {self.outside_allowlist} with licences outside "
+                f"the allowlist, {self.personal_data} with personal-data flags")
+
+
+def summarise(results: Iterable[TraceResult]) -> TraceSummary:
+    """Count exact, near and untraced files, disallowed licences and personal-data flags."""
+    rs = list(results)
+    return TraceSummary(
+        files=len(rs), exact=sum(r.kind == "exact" for r in rs),
+        near=sum(r.kind == "near" for r in rs), untraced=sum(r.kind == "none" for r in rs),
+        outside_allowlist=sum(r.allowed == "no" for r in rs),
+        personal_data=sum(r.personal_data for r in rs))
+
+
+TABLE_COLUMNS = ("file", "match", "distance", "source", "spdx_id", "allowed", "flags",
+                 "matched_sha256")
+
+
+def table_row(result: TraceResult) -> dict[str, Any]:
+    """One row of the folder table / CSV."""
+    item = result.item
+    best = result.best
+    return {
+        "file": result.path, "match": result.kind,
+        "distance": "" if result.distance is None else result.distance,
+        "source": (item.source or "") if item else "",
+        "spdx_id": (item.spdx_id or "") if item else "",
+        "allowed": result.allowed, "flags": " ".join(result.flags),
+        "matched_sha256": best.sha256 if best else "",
+    }
+
+
+def to_csv(results: Iterable[TraceResult]) -> str:
+    """The table as CSV text (RFC 4180 quoting by the csv module)."""
+    out = io.StringIO()
+    writer = csv.DictWriter(out, fieldnames=TABLE_COLUMNS, lineterminator="\n")
+    writer.writeheader()
+    for r in results:
+        writer.writerow(table_row(r))
+    return out.getvalue()
+
+
+def to_json(results: list[TraceResult]) -> str:
+    """Every result with its full provenance record, plus the summary and the caution."""
+    data = {
+        "results": [{**asdict(r), "distance": r.distance} for r in results],
+        "summary": asdict(summarise(results)),
+        "caution": CAUTION,
+    }
+    return json.dumps(data, indent=2, default=str)
+
+
+def format_table(results: list[TraceResult]) -> list[str]:
+    """The folder table as aligned plain-text lines."""
+    rows = [table_row(r) for r in results]
+    cols = TABLE_COLUMNS[:-1]
+    cells = [[str(row[c]) if row[c] != "" else "-" for c in cols] for row in rows]
+    widths = [max([len(c)] + [len(line[i]) for line in cells]) for i, c in enumerate(cols)]
+    lines = ["  ".join(c.ljust(w) for c, w in zip(cols, widths, strict=True)).rstrip()]
+    lines += ["  ".join(v.ljust(w) for v, w in zip(line, widths, strict=True)).rstrip()
+              for line in cells]
+    return lines
+
+
+def _copy_words(mirrored: bool) -> str:
+    return "a mirrored copy" if mirrored else "a resized/re-encoded copy"
+
+
+def _item_lines(item: ItemRecord, indent: str = "  ") -> list[str]:
+    lines = [f"{indent}source:       {item.source or '?'} ({item.source_kind or '?'}), "
+             f"item #{item.item_id} {item.source_key!r}, state {item.state}"]
+    for label, value in (("title", item.title), ("creator", item.creator),
+                         ("item page", item.page_url), ("image URL", item.image_url),
+                         ("local file", item.local_path), ("date", item.date)):
+        if value:
+            lines.append(f"{indent}{label + ':':<13} {value}")
+    licence = " ".join(p for p in (
+        repr(item.licence_raw) if item.licence_raw else None,
+        f"-> {item.spdx_id}" if item.spdx_id else "-> no SPDX id (unknown licence)",
+        item.deed_url or item.licence_url) if p)
+    lines.append(f"{indent}licence:      {licence}")
+    if item.fetch:
+        f = item.fetch
+        extra = ", ".join(p for p in (
+            f"ETag {f.etag}" if f.etag else None,
+            f"Last-Modified {f.last_modified}" if f.last_modified else None) if p)
+        robots = f.robots_verdict or "not recorded"
+        if f.robots_rule:
+            robots += f" ({f.robots_rule})"
+        lines.append(f"{indent}fetched at:   {f.fetched_at} HTTP {f.status}"
+                     + (f", {extra}" if extra else "") + f"; robots.txt: {robots}")
+    if item.run_id is not None:
+        lines.append(f"{indent}run:          #{item.run_id}")
+    if item.parent_sha256:
+        box = item.crop_box or []
+        box_text = (f"x={box[0]} y={box[1]} w={box[2]} h={box[3]}" if len(box) == 4
+                    else "box not recorded")
+        scan = item.scan
+        where = f" ({scan.local_path or scan.source_key})" if scan else ""
+        lines.append(f"{indent}cut from:     scan {item.parent_sha256[:12]}{where}, {box_text}")
+    if item.near_of is not None:
+        lines.append(f"{indent}ledger note:  stored as a near duplicate of item #{item.near_of}"
+                     f" (distance {item.near_distance})")
+    return lines
+
+
+def _file_lines(record: FileRecord) -> list[str]:
+    size = f"{record.size:,} bytes" if record.size is not None else "size ?"
+    lines = [f"  stored file:  {record.sha256[:12]} ({record.format or '?'} "
+             f"{record.width}×{record.height}, {size}, stored {record.stored_at})"]
+    if record.origin:
+        lines += _item_lines(record.origin)
+    lines.append(f"  flags:        {', '.join(record.flags) if record.flags else 'none'}")
+    for other in record.others:
+        where = other.page_url or other.image_url or other.local_path or other.source_key
+        lines.append(f"  also from:    item #{other.item_id} ({other.source or '?'}, "
+                     f"{other.state}) {where}")
+    return lines
+
+
+def format_record(result: TraceResult) -> list[str]:
+    """The full human-readable provenance record of one traced file."""
+    if result.kind == "exact" and result.file:
+        lines = [f"{result.path}: exact match (same bytes, sha256 {result.sha256})"]
+        lines += _file_lines(result.file)
+    elif result.kind == "near":
+        best = result.near[0]
+        lines = [f"{result.path}: probably {_copy_words(best.mirrored)} of "
+                 f"{best.file.sha256[:12]} (pHash distance {best.distance} of 64 bits, "
+                 f"threshold {result.threshold}); not the same bytes, so not certain"]
+        lines += _file_lines(best.file)
+        for other in result.near[1:]:
+            lines.append(f"  also close:   {other.file.sha256[:12]} distance {other.distance}"
+                         + (" (mirrored)" if other.mirrored else ""))
+    else:
+        why = f" ({result.note})" if result.note else (
+            f": no stored file has these bytes, and none is within {result.threshold} bits "
+            "of its perceptual hash")
+        return [f"{result.path}: no match{why}. Its provenance is unknown to this collection."]
+    lines.append(f"  allowed:      {result.allowed} (the recipe's licence allowlist)")
+    lines.append(f"  attribution:  {result.attribution}")
+    return lines
+
+
+def format_summary(results: list[TraceResult]) -> list[str]:
+    """The summary line and the cautions that go with it."""
+    summary = summarise(results)
+    lines = [summary.line(), CAUTION]
+    if summary.personal_data:
+        lines.append(PERSONAL_CAUTION)
+    return lines

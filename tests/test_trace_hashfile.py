@@ -1,0 +1,144 @@
+"""The persistent hash file behind collector trace: in step with the ledger, exact scan."""
+
+from __future__ import annotations
+
+import random
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+from collector.hashindex import (
+    HashFile,
+    HashIndex,
+    ledger_mark,
+    scan,
+    to_signed,
+    to_unsigned,
+)
+from collector.ledger import Ledger
+
+
+def _sha(n: int) -> str:
+    return f"{n:064x}"
+
+
+def _add(ledger: Ledger, n: int, phash: int | None) -> None:
+    ledger.add_file({"sha256": _sha(n), "size": 1, "ext": "png",
+                     "phash": None if phash is None else to_signed(phash),
+                     "phash_mirror": None, "first_item_id": n})
+
+
+@pytest.fixture
+def ledger(tmp_path: Path) -> Ledger:
+    """A ledger with 50 random hashes and one file without a hash."""
+    led = Ledger.create(tmp_path / "ledger.sqlite")
+    rng = random.Random(7)
+    for n in range(50):
+        _add(led, n, rng.getrandbits(64))
+    _add(led, 50, None)
+    yield led
+    led.close()
+
+
+def _stored(ledger: Ledger) -> dict[str, int]:
+    return {r["sha256"]: to_unsigned(r["phash"]) for r in ledger.query(
+        "SELECT sha256, phash FROM files WHERE phash IS NOT NULL")}
+
+
+def test_hash_file_holds_every_hashed_file_of_the_ledger(ledger: Ledger, tmp_path: Path
+                                                         ) -> None:
+    """A new hash file has one entry per files row with a hash, keyed by sha256."""
+    hf = HashFile.open(ledger, tmp_path / "files" / ".phash-index")
+    assert hf.path is not None and hf.path.is_file()
+    assert hf.mark == ledger_mark(ledger)
+    got = {hf.keys[i].tobytes().hex(): int(hf.hashes[i]) for i in range(len(hf))}
+    assert got == _stored(ledger)
+
+
+def test_new_ledger_rows_are_appended_in_place(ledger: Ledger, tmp_path: Path) -> None:
+    """Rows stored after the file was written are appended without a rebuild."""
+    path = tmp_path / "files" / ".phash-index"
+    HashFile.open(ledger, path)
+    inode = path.stat().st_ino
+    _add(ledger, 60, 0x0123456789ABCDEF)
+    hf = HashFile.open(ledger, path)
+    assert path.stat().st_ino == inode  # same file: appended, not replaced
+    assert len(hf) == 51
+    assert hf.nearest(0x0123456789ABCDEF, None, 0)[0].sha256 == _sha(60)
+
+
+def test_deleted_rows_trigger_a_rebuild(ledger: Ledger, tmp_path: Path) -> None:
+    """A row removed by crash recovery makes the file stale; it is rebuilt without it."""
+    path = tmp_path / "files" / ".phash-index"
+    HashFile.open(ledger, path)
+    inode = path.stat().st_ino
+    with ledger.transaction():
+        ledger.db.execute("DELETE FROM files WHERE sha256 = ?", [_sha(3)])
+    hf = HashFile.open(ledger, path)
+    assert path.stat().st_ino != inode
+    keys = {hf.keys[i].tobytes().hex() for i in range(len(hf))}
+    assert keys == set(_stored(ledger)) and _sha(3) not in keys
+
+
+def test_a_reused_last_rowid_is_noticed(ledger: Ledger, tmp_path: Path) -> None:
+    """Deleting the newest row and storing another (same count, same max rowid) rebuilds."""
+    path = tmp_path / "files" / ".phash-index"
+    HashFile.open(ledger, path)
+    with ledger.transaction():
+        ledger.db.execute("DELETE FROM files WHERE sha256 = ?", [_sha(50)])
+    _add(ledger, 77, 42)
+    hf = HashFile.open(ledger, path)
+    assert {hf.keys[i].tobytes().hex() for i in range(len(hf))} == set(_stored(ledger))
+
+
+def test_a_corrupt_hash_file_is_rebuilt(ledger: Ledger, tmp_path: Path) -> None:
+    """A file with a wrong header is ignored and rebuilt from the ledger."""
+    path = tmp_path / "files" / ".phash-index"
+    path.parent.mkdir()
+    path.write_bytes(b"garbage" * 10)
+    hf = HashFile.open(ledger, path)
+    assert len(hf) == 50
+
+
+def test_unwritable_folder_falls_back_to_memory(ledger: Ledger, tmp_path: Path) -> None:
+    """When the hash file cannot be written the hashes are read into memory instead."""
+    blocker = tmp_path / "files"
+    blocker.write_text("a file where the store folder should be")  # mkdir fails, even as root
+    hf = HashFile.open(ledger, blocker / ".phash-index")
+    assert hf.path is None and len(hf) == 50
+    assert hf.nearest(next(iter(_stored(ledger).values())), None, 0)
+
+
+def test_scan_finds_every_hash_within_the_threshold() -> None:
+    """The numpy scan agrees with a plain popcount over every pair (no misses, no extras)."""
+    rng = random.Random(11)
+    stored = [rng.getrandbits(64) for _ in range(2000)]
+    query = rng.getrandbits(64)
+    for d in range(0, 11):  # planted neighbours at distance 0..10
+        flip = 0
+        for bit in rng.sample(range(64), d):
+            flip |= 1 << bit
+        stored.append(query ^ flip)
+    hashes = np.array(stored, dtype=np.uint64)
+    mirror = rng.getrandbits(64)
+    got = {(row, dist, mir) for row, dist, mir in scan(hashes, query, mirror, 8)}
+    expected = set()
+    for row, h in enumerate(stored):
+        direct, through = (h ^ query).bit_count(), (h ^ mirror).bit_count()
+        best = min(direct, through)
+        if best <= 8:
+            expected.add((row, best, through < direct))
+    assert got == expected and len(got) >= 9
+
+
+def test_in_memory_index_keeps_its_api() -> None:
+    """HashIndex.add/nearest (used by gather) still answer with NearMatch, closest first."""
+    index = HashIndex()
+    index.add("a" * 64, 0b1111)
+    index.add("b" * 64, 0)
+    matches = index.nearest(0b1, None, 4)
+    assert [(m.sha256, m.distance, m.mirrored) for m in matches] == [
+        ("b" * 64, 1, False), ("a" * 64, 3, False)]
+    far = 0xFFFF << 48  # 16+ bits from both; its mirror hash 0b111 is 1 bit from "a"
+    assert [(m.sha256, m.mirrored) for m in index.nearest(far, 0b111, 1)] == [("a" * 64, True)]
