@@ -21,7 +21,7 @@ DEFAULT_MIN_AREA = 2000  # px in the full-size scan (common practice, no source)
 DEFAULT_MIN_SOLIDITY = 0.85  # below this a component is probably several touching items
 DEFAULT_MIN_CONTRAST = 25.0  # grey levels between the two Otsu classes; less = blank bed
 DEFAULT_MAX_SIDE = 2000  # px; larger scans are analysed on a reduced copy
-AREA_OUTLIER = 2.2  # x the median item area, with >= 3 items: probably two items merged
+AREA_OUTLIER = 1.7  # x the median item area, with >= 3 items: probably two items merged
 MIN_DESKEW_DEGREES = 0.3
 
 
@@ -84,7 +84,7 @@ def min_area_rect(points: np.ndarray) -> tuple[float, float, float, tuple[float,
     best: tuple[float, float, float, tuple[float, float]] | None = None
     best_area = math.inf
     edges = np.roll(hull, -1, axis=0) - hull
-    for theta in np.unique(np.round(np.arctan2(edges[:, 1], edges[:, 0]) % (math.pi / 2), 6)):
+    for theta in np.unique(np.arctan2(edges[:, 1], edges[:, 0]) % (math.pi / 2)):
         c, s = math.cos(theta), math.sin(theta)
         u = hull[:, 0] * c + hull[:, 1] * s  # along the edge
         v = -hull[:, 0] * s + hull[:, 1] * c  # across it
