@@ -11,10 +11,10 @@ exception escaping to the CLI is a bug and keeps its traceback.
     ├── CollectionError              folder missing, not a collection, not empty, locked (exit 2)
     ├── LedgerError                  the SQLite ledger could not be read or written
     ├── StoreError                   a file could not be stored (disk full: .errno == ENOSPC)
-    ├── SourceError                  a source could not be read (bad JSON, selector matched nothing)
-    ├── ImageRejected                an image failed the ingest checks (.reason is the ledger reason)
+    ├── SourceError                  a source could not be read (bad JSON, empty selector)
+    ├── ImageRejected                an image failed the ingest checks (.reason: ledger reason)
     └── FetchError                   a request failed; .url is already redacted
-        ├── UnsafeURL                scheme not http/https, or an address the recipe does not allow
+        ├── UnsafeURL                not http/https, or an address the recipe does not allow
         ├── RobotsDenied             refused by robots.txt (.rule names the matching rule)
         ├── HostParked               the host asked us to wait too long, or keeps failing
         ├── TooLarge                 Content-Length or decoded bytes over the cap
@@ -106,7 +106,7 @@ class FetchError(CollectorError):
 
 
 class UnsafeURL(FetchError):
-    """The URL's scheme is not http/https, or it resolves to an address the recipe does not allow."""
+    """The URL is not http/https, or resolves to an address the recipe does not allow."""
 
 
 class RobotsDenied(FetchError):
@@ -118,7 +118,7 @@ class RobotsDenied(FetchError):
 
 
 class HostParked(FetchError):
-    """The host asked us to wait longer than the cap, or keeps failing; ``until`` is epoch seconds."""
+    """The host asked us to wait longer than the cap, or keeps failing; ``until``: epoch s."""
 
     def __init__(self, url: str, host: str, until: float, why: str) -> None:
         self.host, self.until = host, until

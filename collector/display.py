@@ -1,0 +1,125 @@
+"""Showing a run as it goes: a live table on a terminal, plain lines in a log, or JSON lines.
+
+Only this module and ``cli.py`` import rich. The run reports events through
+:class:`collector.run.Progress`; the live view also polls the gatherer for per-host numbers.
+"""
+
+from __future__ import annotations
+
+import json
+import sys
+import threading
+import time
+from collections import Counter
+from datetime import datetime
+from typing import Any, TextIO
+
+from rich.console import Console
+from rich.live import Live
+from rich.table import Table
+
+from collector.summary import human_seconds
+
+
+class PlainProgress:
+    """One line per event, for logs and pipes."""
+
+    def __init__(self, stream: TextIO | None = None, *, quiet: bool = False) -> None:
+        self.stream = stream or sys.stdout
+        self.quiet = quiet
+        self.counts: Counter[str] = Counter()
+        self._lock = threading.Lock()
+
+    def event(self, kind: str, **data: Any) -> None:
+        """Print the event as one line (only stops and notes when quiet)."""
+        with self._lock:
+            if kind == "item":
+                self.counts[data["state"]] += 1
+            if self.quiet and kind not in ("stopping", "note"):
+                return
+            stamp = datetime.now().strftime("%H:%M:%S")
+            if kind == "item":
+                reason = f" ({data['reason']})" if data.get("reason") else ""
+                text = f"item {data['item_id']}: {data['state']}{reason}"
+            elif kind == "note":
+                text = f"note from {data['source']}: {data['kind']}: {data['message']}"
+            elif kind == "stopping":
+                text = f"stopping: {data['why']}; finishing the files in flight"
+            else:
+                text = f"{kind} " + " ".join(f"{k}={v}" for k, v in data.items())
+            print(f"[{stamp}] {text}", file=self.stream, flush=True)
+
+
+class JsonProgress:
+    """One JSON object per line, for machines (``--log-json``)."""
+
+    def __init__(self, stream: TextIO | None = None) -> None:
+        self.stream = stream or sys.stdout
+        self._lock = threading.Lock()
+
+    def event(self, kind: str, **data: Any) -> None:
+        """Write the event as a JSON line."""
+        with self._lock:
+            line = json.dumps({"time": time.time(), "event": kind, **data}, default=str)
+            print(line, file=self.stream, flush=True)
+
+
+class LiveProgress:
+    """A rich live table: per host done/queued, errors, next request; overall counts."""
+
+    def __init__(self, console: Console | None = None) -> None:
+        self.console = console or Console()
+        self.counts: Counter[str] = Counter()
+        self.notes: list[str] = []
+        self.gatherer: Any = None
+        self.started = time.monotonic()
+        self._live: Live | None = None
+
+    def attach(self, gatherer: Any) -> None:
+        """Give the view the gatherer to poll for per-host numbers."""
+        self.gatherer = gatherer
+
+    def __enter__(self) -> LiveProgress:
+        self._live = Live(get_renderable=self.render, console=self.console,
+                          refresh_per_second=4, transient=False)
+        self._live.__enter__()
+        return self
+
+    def __exit__(self, *exc: object) -> None:
+        if self._live is not None:
+            self._live.__exit__(None, None, None)
+
+    def event(self, kind: str, **data: Any) -> None:
+        """Count items and keep the last notes."""
+        if kind == "item":
+            self.counts[data["state"]] += 1
+        elif kind == "note":
+            self.notes = [*self.notes[-3:], f"{data['source']}: {data['message']}"]
+        elif kind == "stopping":
+            self.notes = [*self.notes[-3:], f"stopping: {data['why']}"]
+
+    def render(self) -> Table:
+        """The current table."""
+        elapsed = time.monotonic() - self.started
+        title = (f"collector gather - {human_seconds(elapsed)} - "
+                 + ", ".join(f"{k} {v}" for k, v in sorted(self.counts.items())))
+        table = Table(title=title, expand=False)
+        for col in ("host", "done", "queued", "errors", "rate / budget", "next request"):
+            table.add_column(col)
+        g = self.gatherer
+        if g is not None:
+            budgets = getattr(g.fetcher, "budgets", None)
+            for host, st in sorted(g.hosts.items()):
+                rate = f"{st.done / elapsed * 60:.1f}/min" if elapsed > 0 else "-"
+                budget, wait = "-", "-"
+                if budgets is not None:
+                    try:
+                        budget = f"{60 / max(budgets.interval(host), 1e-9):.1f}/min"
+                        wait = "parked" if st.parked else human_seconds(budgets.wait_time(host))
+                    except Exception:  # the view must never break a run
+                        pass
+                table.add_row(host, str(st.done), str(st.queued), str(st.errors),
+                              f"{rate} / {budget}", wait)
+        for note in self.notes:
+            table.add_row(f"[yellow]{note}[/]", "", "", "", "", "")
+        return table

@@ -1,0 +1,310 @@
+"""The provenance ledger: one SQLite file per collection, written through sqlite-utils.
+
+The ledger is the memory of a collection: every run, source, candidate item, HTTP request, stored
+file and host policy is a row. It is opened in WAL mode so that ``collector status`` and
+``collector trace`` can read while ``gather`` writes. Schema changes are numbered migrations;
+``schema_version`` records which ones were applied.
+
+All methods are thread-safe (one connection, one lock): the gather worker pool writes from
+several threads.
+"""
+
+from __future__ import annotations
+
+import json
+import sqlite3
+import threading
+from collections.abc import Callable, Iterator
+from contextlib import contextmanager, suppress
+from datetime import UTC, datetime
+from pathlib import Path
+from typing import Any
+
+import sqlite_utils
+
+from collector.errors import LedgerError
+
+SCHEMA_VERSION = 1
+
+JSON_COLUMNS = {"options", "config", "metadata", "crop_box", "exif", "rights", "flags",
+                "effective_budget"}
+
+
+def utc_now() -> str:
+    """The current time as an ISO 8601 UTC string with milliseconds (the ledger's time format)."""
+    return datetime.now(UTC).isoformat(timespec="milliseconds").replace("+00:00", "Z")
+
+
+def _migration_1(db: sqlite_utils.Database) -> None:
+    """Create the first version of every table."""
+    db["runs"].create({
+        "id": int, "started_at": str, "ended_at": str, "recipe_sha256": str, "options": str,
+        "outcome": str, "tool_version": str,
+    }, pk="id")
+    db["sources"].create({"id": int, "name": str, "kind": str, "config": str}, pk="id")
+    db["sources"].create_index(["name"], unique=True)
+    db["items"].create({
+        "id": int, "source_id": int, "source_key": str, "image_url": str, "page_url": str,
+        "title": str, "creator": str, "licence_raw": str, "licence_url": str, "spdx_id": str,
+        "date": str, "metadata": str, "state": str, "reason": str, "detail": str,
+        "file_sha256": str, "duplicate_of": int, "near_distance": int, "near_mirrored": int,
+        "parent_sha256": str, "crop_box": str, "local_path": str, "run_id": int,
+        "created_at": str, "updated_at": str,
+    }, pk="id", foreign_keys=[("source_id", "sources", "id")])
+    db["items"].create_index(["source_id", "source_key"], unique=True)
+    db["items"].create_index(["image_url"])
+    db["items"].create_index(["state"])
+    db["items"].create_index(["file_sha256"])
+    db["fetches"].create({
+        "id": int, "run_id": int, "item_id": int, "purpose": str, "url": str, "host": str,
+        "status": int, "bytes": int, "started_at": str, "ended_at": str, "waited_s": float,
+        "attempt": int, "robots_verdict": str, "robots_rule": str, "error": str, "etag": str,
+        "last_modified": str, "content_type": str, "from_cache": int,
+    }, pk="id")
+    db["fetches"].create_index(["item_id"])
+    db["fetches"].create_index(["host"])
+    db["files"].create({
+        "sha256": str, "size": int, "ext": str, "format": str, "mime": str, "width": int,
+        "height": int, "mode": str, "bit_depth": int, "alpha": int, "frames": int,
+        "orientation": int, "phash": int, "phash_mirror": int, "hash_algo": str,
+        "first_item_id": int, "stored_at": str, "exif": str, "rights": str, "flags": str,
+    }, pk="sha256")
+    db["hosts"].create({
+        "host": str, "robots_url": str, "robots_fetched_at": str, "robots_status": int,
+        "robots_sha256": str, "robots_body": str, "effective_budget": str,
+        "parked_until": float, "failures": int,
+    }, pk="host")
+    db["notes"].create({
+        "id": int, "run_id": int, "source_id": int, "kind": str, "url": str, "message": str,
+        "created_at": str,
+    }, pk="id")
+
+
+MIGRATIONS: dict[int, Callable[[sqlite_utils.Database], None]] = {1: _migration_1}
+
+
+def _encode(row: dict[str, Any]) -> dict[str, Any]:
+    """JSON-encode the structured columns and booleans of a row before writing it."""
+    out: dict[str, Any] = {}
+    for key, value in row.items():
+        if key in JSON_COLUMNS and value is not None and not isinstance(value, str):
+            value = json.dumps(value, sort_keys=True, default=str)
+        elif isinstance(value, bool):
+            value = int(value)
+        out[key] = value
+    return out
+
+
+def decode_row(row: dict[str, Any] | None) -> dict[str, Any] | None:
+    """Decode the JSON columns of a row read from the ledger."""
+    if row is None:
+        return None
+    out = dict(row)
+    for key in JSON_COLUMNS & out.keys():
+        if isinstance(out[key], str):
+            with suppress(ValueError):
+                out[key] = json.loads(out[key])
+    return out
+
+
+class Ledger:
+    """One collection's ledger file. Create with :meth:`create`, open with :meth:`open`."""
+
+    def __init__(self, path: Path, conn: sqlite3.Connection) -> None:
+        self.path = path
+        self._conn = conn
+        self.db = sqlite_utils.Database(conn)
+        self._lock = threading.RLock()
+
+    # -- opening -----------------------------------------------------------------------------
+    @classmethod
+    def create(cls, path: Path) -> Ledger:
+        """Create a new ledger file at ``path`` with the current schema."""
+        if path.exists():
+            raise LedgerError(f"{path} already exists; open it instead of creating it")
+        return cls._connect(path)
+
+    @classmethod
+    def open(cls, path: Path, *, readonly: bool = False) -> Ledger:
+        """Open an existing ledger, applying any pending migrations (unless read-only)."""
+        if not path.is_file():
+            raise LedgerError(
+                f"no ledger at {path}; is this a collection folder? Create one with "
+                "'collector init DIR'")
+        return cls._connect(path, readonly=readonly)
+
+    @classmethod
+    def _connect(cls, path: Path, *, readonly: bool = False) -> Ledger:
+        try:
+            if readonly:
+                conn = sqlite3.connect(f"file:{path}?mode=ro", uri=True,
+                                       check_same_thread=False, timeout=30)
+            else:
+                conn = sqlite3.connect(path, check_same_thread=False, timeout=30)
+                conn.execute("PRAGMA journal_mode=WAL")
+                # FULL: a committed "stored" row survives power loss, not just a killed process.
+                conn.execute("PRAGMA synchronous=FULL")
+            conn.execute("PRAGMA foreign_keys=ON")
+            ledger = cls(path, conn)
+            if not readonly:
+                ledger.migrate()
+            return ledger
+        except sqlite3.DatabaseError as exc:
+            raise LedgerError(f"cannot open the ledger {path}: {exc}") from exc
+
+    def close(self) -> None:
+        """Close the connection (WAL contents are checkpointed by SQLite)."""
+        with self._lock:
+            self._conn.close()
+
+    def __enter__(self) -> Ledger:
+        return self
+
+    def __exit__(self, *exc: object) -> None:
+        self.close()
+
+    # -- schema ------------------------------------------------------------------------------
+    def schema_version(self) -> int:
+        """The highest migration applied (0 for an empty file)."""
+        if "schema_version" not in self.db.table_names():
+            return 0
+        row = self._conn.execute("SELECT max(version) FROM schema_version").fetchone()
+        return int(row[0] or 0)
+
+    def migrate(self) -> int:
+        """Apply every migration newer than the file's version; returns the new version."""
+        with self._lock, self._translate("migrate"):
+            current = self.schema_version()
+            if current > SCHEMA_VERSION:
+                raise LedgerError(
+                    f"{self.path} has schema version {current}, newer than this collector "
+                    f"understands ({SCHEMA_VERSION}); upgrade collector")
+            for version in range(current + 1, SCHEMA_VERSION + 1):
+                with self._conn:
+                    if "schema_version" not in self.db.table_names():
+                        self.db["schema_version"].create(
+                            {"version": int, "applied_at": str}, pk="version")
+                    MIGRATIONS[version](self.db)
+                    self.db["schema_version"].insert(
+                        {"version": version, "applied_at": utc_now()})
+            return SCHEMA_VERSION
+
+    @contextmanager
+    def _translate(self, what: str) -> Iterator[None]:
+        """Translate sqlite3 errors into LedgerError once, at this edge."""
+        try:
+            yield
+        except sqlite3.Error as exc:
+            raise LedgerError(f"ledger {self.path}: {what} failed: {exc}") from exc
+
+    @contextmanager
+    def transaction(self) -> Iterator[None]:
+        """Group several writes into one atomic transaction."""
+        with self._lock, self._translate("transaction"), self._conn:
+            yield
+
+    # -- generic helpers ---------------------------------------------------------------------
+    def query(self, sql: str, params: tuple[Any, ...] | dict[str, Any] = ()) -> list[dict]:
+        """Run a read query and return rows as dicts."""
+        with self._lock, self._translate("query"):
+            cur = self._conn.execute(sql, params)
+            names = [d[0] for d in cur.description or ()]
+            return [dict(zip(names, row, strict=True)) for row in cur.fetchall()]
+
+    def scalar(self, sql: str, params: tuple[Any, ...] | dict[str, Any] = ()) -> Any:
+        """Run a query that returns one value."""
+        with self._lock, self._translate("query"):
+            row = self._conn.execute(sql, params).fetchone()
+            return None if row is None else row[0]
+
+    def _insert(self, table: str, row: dict[str, Any], **kwargs: Any) -> int:
+        with self._lock, self._translate(f"write to {table}"), self._conn:
+            return self.db[table].insert(_encode(row), **kwargs).last_pk
+
+    def _update(self, table: str, pk: Any, fields: dict[str, Any]) -> None:
+        with self._lock, self._translate(f"update {table}"), self._conn:
+            self.db[table].update(pk, _encode(fields))
+
+    # -- runs --------------------------------------------------------------------------------
+    def start_run(self, recipe_sha256: str, options: dict[str, Any], tool_version: str) -> int:
+        """Record the start of a run and return its id."""
+        return self._insert("runs", {"started_at": utc_now(), "recipe_sha256": recipe_sha256,
+                                     "options": options, "tool_version": tool_version,
+                                     "outcome": "running"})
+
+    def end_run(self, run_id: int, outcome: str) -> None:
+        """Record how a run ended (finished, stopped, interrupted, failed: ...)."""
+        self._update("runs", run_id, {"ended_at": utc_now(), "outcome": outcome})
+
+    # -- sources -----------------------------------------------------------------------------
+    def source_id(self, name: str, kind: str, config: dict[str, Any]) -> int:
+        """The id of the named source, created or updated with its current config."""
+        with self._lock, self._translate("write to sources"), self._conn:
+            row = self.db.execute("SELECT id FROM sources WHERE name = ?", [name]).fetchone()
+            encoded = _encode({"name": name, "kind": kind, "config": config})
+            if row:
+                self.db["sources"].update(row[0], encoded)
+                return int(row[0])
+            return self.db["sources"].insert(encoded).last_pk
+
+    # -- items -------------------------------------------------------------------------------
+    def item(self, item_id: int) -> dict[str, Any] | None:
+        """One item row, JSON decoded."""
+        rows = self.query("SELECT * FROM items WHERE id = ?", (item_id,))
+        return decode_row(rows[0]) if rows else None
+
+    def item_by_key(self, source_id: int, source_key: str) -> dict[str, Any] | None:
+        """The item a source already listed under ``source_key``, or None."""
+        rows = self.query("SELECT * FROM items WHERE source_id = ? AND source_key = ?",
+                          (source_id, source_key))
+        return decode_row(rows[0]) if rows else None
+
+    def add_item(self, source_id: int, source_key: str, fields: dict[str, Any]) -> int:
+        """Insert a new candidate item (state ``pending`` unless given) and return its id."""
+        now = utc_now()
+        row = {"source_id": source_id, "source_key": source_key, "state": "pending",
+               "created_at": now, "updated_at": now, **fields}
+        return self._insert("items", row)
+
+    def update_item(self, item_id: int, **fields: Any) -> None:
+        """Change an item's columns (state, reason, file_sha256, ...)."""
+        self._update("items", item_id, {**fields, "updated_at": utc_now()})
+
+    # -- fetches -----------------------------------------------------------------------------
+    def record_fetch(self, **fields: Any) -> int:
+        """Record one HTTP request attempt; ``url`` must already be redacted."""
+        return self._insert("fetches", fields)
+
+    # -- files -------------------------------------------------------------------------------
+    def file(self, sha256: str) -> dict[str, Any] | None:
+        """The stored file with this sha256, JSON decoded, or None."""
+        rows = self.query("SELECT * FROM files WHERE sha256 = ?", (sha256,))
+        return decode_row(rows[0]) if rows else None
+
+    def add_file(self, row: dict[str, Any]) -> None:
+        """Record a stored file (ignored if the sha256 is already known)."""
+        with self._lock, self._translate("write to files"), self._conn:
+            self.db["files"].insert(_encode({"stored_at": utc_now(), **row}), ignore=True)
+
+    def known_sha256s(self) -> set[str]:
+        """Every sha256 the ledger has a files row for."""
+        return {r["sha256"] for r in self.query("SELECT sha256 FROM files")}
+
+    # -- hosts -------------------------------------------------------------------------------
+    def get_host(self, host: str) -> dict[str, Any] | None:
+        """The persisted robots.txt and budget facts of a host, or None."""
+        rows = self.query("SELECT * FROM hosts WHERE host = ?", (host,))
+        return decode_row(rows[0]) if rows else None
+
+    def put_host(self, host: str, **fields: Any) -> None:
+        """Insert or update a host's row."""
+        with self._lock, self._translate("write to hosts"), self._conn:
+            self.db["hosts"].upsert(_encode({"host": host, **fields}), pk="host")
+
+    # -- notes -------------------------------------------------------------------------------
+    def add_note(self, kind: str, message: str, *, url: str | None = None,
+                 run_id: int | None = None, source_id: int | None = None) -> int:
+        """Record a source-level problem (a selector that matched nothing, bad JSON, ...)."""
+        return self._insert("notes", {"kind": kind, "message": message, "url": url,
+                                      "run_id": run_id, "source_id": source_id,
+                                      "created_at": utc_now()})

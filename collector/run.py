@@ -1,0 +1,506 @@
+"""The overnight run behind ``collector gather``.
+
+Sources are listed in their own threads; every candidate is registered in the ledger and its
+licence decided *before* any image byte is requested. Work that needs the network goes into a
+queue per host, served by that host's own worker threads (as many as its ``max_connections``),
+so fifty slow hosts do not take fifty times as long while no host ever exceeds its budget: the
+one fetcher enforces the budget, the queues only keep hosts independent. Local scans are
+ingested in the source's thread.
+
+Rerunning is resuming: items in a final state are not requested again; ``pending``, ``failed``
+and ``deferred`` items are tried again, and licence/robots decisions are re-evaluated.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import hashlib
+import os
+import queue
+import threading
+import time
+from collections import Counter
+from collections.abc import Callable, Iterator
+from dataclasses import dataclass, field
+from datetime import datetime, timedelta
+from pathlib import Path
+from typing import Any, Protocol
+
+import sources as adapters
+from collector import __version__
+from collector.collection import Collection, recover
+from collector.errors import (
+    CollectorError,
+    FetchError,
+    HostParked,
+    ImageRejected,
+    RecipeError,
+    RecipeProblem,
+    RobotsDenied,
+    StoreError,
+    TooLarge,
+    UnsafeURL,
+)
+from collector.hashindex import HashIndex, to_signed
+from collector.images import ImageFacts, inspect_image
+from collector.ledger import Ledger
+from collector.licences import licence_allowed, normalise_licence, rights_conflict
+from collector.recipe import Recipe, parse_clock, parse_duration
+from collector.urls import host_key
+
+# States after which an item is not requested again.
+FINAL_STATES = frozenset({"stored", "duplicate", "near_duplicate", "rejected"})
+COPY_CHUNK = 1 << 20
+
+
+class Progress(Protocol):
+    """Receives run events; the CLI renders them (live display, plain lines or JSON)."""
+
+    def event(self, kind: str, **data: Any) -> None: ...
+
+
+class NullProgress:
+    """Progress sink that ignores everything (library use, tests)."""
+
+    def event(self, kind: str, **data: Any) -> None:
+        """Ignore the event."""
+
+
+@dataclass(frozen=True)
+class StopRules:
+    """When a run stops on its own: an epoch deadline and/or a number of newly stored items."""
+
+    deadline: float | None = None
+    max_items: int = 0
+
+
+def stop_rules(recipe: Recipe, *, until: str | None = None, duration: str | None = None,
+               max_items: int | None = None, now: datetime | None = None) -> StopRules:
+    """Combine the recipe's [stop] table with command-line options (options win)."""
+    now = now or datetime.now().astimezone()
+    deadlines: list[float] = []
+    until = until if until is not None else recipe.stop["until"]
+    duration = duration if duration is not None else recipe.stop["duration"]
+    try:
+        if until:
+            at = datetime.combine(now.date(), parse_clock(until), tzinfo=now.tzinfo)
+            if at <= now:
+                at += timedelta(days=1)  # "--until 07:00" in the evening means tomorrow
+            deadlines.append(at.timestamp())
+        if duration:
+            deadlines.append(now.timestamp() + parse_duration(duration))
+    except ValueError as exc:
+        raise RecipeError([RecipeProblem("command line", "--until/--for",
+                                         f"cannot read {exc.args[0]!r}: use HH:MM and e.g. 8h")]
+                          ) from exc
+    limit = max_items if max_items is not None else recipe.stop["max_items"]
+    return StopRules(min(deadlines) if deadlines else None, int(limit or 0))
+
+
+@dataclass
+class HostStats:
+    """Live counters of one host for the progress display."""
+
+    queued: int = 0
+    done: int = 0
+    errors: int = 0
+    parked: bool = False
+
+
+@dataclass
+class RunResult:
+    """How a run ended."""
+
+    run_id: int
+    outcome: str  # finished | stopped: <why> | interrupted | failed: <why>
+    counts: Counter[str] = field(default_factory=Counter)
+
+    @property
+    def exit_code(self) -> int:
+        """0 finished or stopped by a rule, 130 interrupted, 1 failed."""
+        if self.outcome == "interrupted":
+            return 130
+        return 1 if self.outcome.startswith("failed") else 0
+
+
+@dataclass
+class Job:
+    """One image to fetch for one item."""
+
+    item_id: int
+    url: str
+    spdx_id: str | None
+
+
+class Gatherer:
+    """One run of a recipe over a collection. Create, then call :meth:`run`."""
+
+    def __init__(self, collection: Collection, recipe: Recipe, ledger: Ledger, fetcher: Any,
+                 *, stop: StopRules = StopRules(), progress: Progress | None = None) -> None:
+        self.collection, self.recipe, self.ledger, self.fetcher = (
+            collection, recipe, ledger, fetcher)
+        self.store = collection.store
+        self.stop = stop
+        self.progress = progress or NullProgress()
+        self.stop_event = threading.Event()
+        self.stop_reason = ""
+        self.fatal: CollectorError | None = None
+        self.counts: Counter[str] = Counter()
+        self.hosts: dict[str, HostStats] = {}
+        self.index = HashIndex.from_ledger(ledger)
+        self._queues: dict[str, queue.Queue[Job | None]] = {}
+        self._workers: list[threading.Thread] = []
+        self._lock = threading.RLock()
+        self._ingest_lock = threading.Lock()
+        self._stored_this_run = 0
+        self._scan_sha: dict[tuple[int, str], str] = {}
+        self.run_id = 0
+
+    # -- stopping ----------------------------------------------------------------------------
+    def request_stop(self, why: str) -> None:
+        """Ask every thread to finish what it holds and stop taking new work."""
+        with self._lock:
+            if not self.stop_event.is_set():
+                self.stop_reason = why
+                self.stop_event.set()
+                self.progress.event("stopping", why=why)
+
+    def _should_stop(self) -> bool:
+        if self.stop.deadline is not None and time.time() >= self.stop.deadline:
+            self.request_stop("stopped: the time limit was reached")
+        return self.stop_event.is_set()
+
+    # -- the run -----------------------------------------------------------------------------
+    def run(self, options: dict[str, Any] | None = None) -> RunResult:
+        """Run every source to the end or until a stop rule fires."""
+        self.run_id = self.ledger.start_run(self.recipe.sha256, options or {}, __version__)
+        if hasattr(self.fetcher, "run_id"):
+            self.fetcher.run_id = self.run_id
+        self.progress.event("run_started", run_id=self.run_id)
+        threads = [threading.Thread(target=self._list_source, args=(s,), daemon=True,
+                                    name=f"source-{s['name']}") for s in self.recipe.sources]
+        outcome = "finished"
+        try:
+            for t in threads:
+                t.start()
+            self._wait(threads)
+            for q in list(self._queues.values()):
+                q.put(None)  # no more work: each worker ends after its queue drains
+            self._wait(self._workers)
+        except KeyboardInterrupt:
+            self.request_stop("interrupted")
+            for q in list(self._queues.values()):
+                q.put(None)
+            self._wait(self._workers + threads, interruptible=False)
+        if self.fatal is not None:
+            outcome = f"failed: {self.fatal}"
+        elif self.stop_event.is_set():
+            outcome = self.stop_reason
+        self.ledger.end_run(self.run_id, outcome)
+        self.progress.event("run_ended", outcome=outcome)
+        return RunResult(self.run_id, outcome, self.counts)
+
+    @staticmethod
+    def _wait(threads: list[threading.Thread], *, interruptible: bool = True) -> None:
+        for t in threads:
+            while t.is_alive():
+                t.join(0.2 if interruptible else None)
+
+    # -- listing -----------------------------------------------------------------------------
+    def _list_source(self, source: dict[str, Any]) -> None:
+        source_id = self.ledger.source_id(source["name"], source["kind"], source)
+
+        def note(n: Any) -> None:
+            self.ledger.add_note(n.kind, n.message, url=n.url, run_id=self.run_id,
+                                 source_id=source_id)
+            self.progress.event("note", source=source["name"], kind=n.kind, message=n.message)
+
+        try:
+            for candidate in adapters.iter_candidates(source, self.fetcher, note,
+                                                      self.collection.root):
+                if self._should_stop():
+                    break
+                self._register(source_id, candidate)
+        except HostParked as exc:
+            note(_Note("host_parked", exc.url, str(exc)))
+        except StoreError as exc:
+            self.fatal = exc
+            self.request_stop(f"failed: {exc}")
+        except FetchError as exc:
+            note(_Note(exc.reason, exc.url, f"listing stopped: {exc}"))
+        except CollectorError as exc:
+            note(_Note("source_error", None, str(exc)))
+
+    def _register(self, source_id: int, c: Any) -> None:
+        """Record a candidate and decide what happens to it before anything is downloaded."""
+        licence = normalise_licence(c.licence_raw, c.licence_url)
+        fields = {
+            "image_url": c.image_url, "page_url": c.page_url, "title": c.title,
+            "creator": c.creator, "licence_raw": c.licence_raw, "licence_url": c.licence_url,
+            "spdx_id": licence.spdx_id, "date": c.date, "metadata": c.metadata or None,
+            "crop_box": list(c.crop_box) if c.crop_box else None,
+            "local_path": str(c.local_path) if c.local_path else None, "run_id": self.run_id,
+        }
+        row = self.ledger.item_by_key(source_id, c.source_key)
+        if row and row["state"] in FINAL_STATES:
+            self._count("already_done")
+            if c.local_path and row.get("file_sha256"):
+                self._scan_sha[(source_id, c.source_key)] = row["file_sha256"]
+            return
+        if row:
+            item_id = row["id"]
+            self.ledger.update_item(item_id, **fields)
+        else:
+            item_id = self.ledger.add_item(source_id, c.source_key, fields)
+        ok, reason = licence_allowed(licence.spdx_id, self.recipe.licences["allow"],
+                                     self.recipe.licences["allow_unknown"])
+        if not ok:
+            detail = (f"licence {c.licence_raw or c.licence_url or '(none)'!r} "
+                      + (f"is {licence.spdx_id}, not in the allowlist" if licence.spdx_id
+                         else "could not be recognised"))
+            self._finish(item_id, "skipped", reason, detail)
+            return
+        if c.content is not None or c.local_path is not None:
+            self._ingest_local(source_id, item_id, c)
+            return
+        if not c.image_url:
+            self._finish(item_id, "rejected", "no_image_url",
+                         "the source gave no image URL for this item")
+            return
+        same = self.ledger.query(
+            "SELECT id, file_sha256 FROM items WHERE image_url = ? AND id != ? AND state IN "
+            "('stored', 'near_duplicate') AND file_sha256 IS NOT NULL LIMIT 1",
+            (c.image_url, item_id))
+        if same:
+            self._finish(item_id, "duplicate", "exact_duplicate",
+                         "same image URL as an item already stored; not fetched again",
+                         file_sha256=same[0]["file_sha256"], duplicate_of=same[0]["id"])
+            return
+        self._enqueue(Job(item_id, c.image_url, licence.spdx_id))
+
+    # -- per-host workers --------------------------------------------------------------------
+    def _enqueue(self, job: Job) -> None:
+        try:
+            host = host_key(job.url)
+        except CollectorError as exc:
+            self._finish(job.item_id, "failed", "unsafe_url", str(exc))
+            return
+        with self._lock:
+            q = self._queues.get(host)
+            if q is None:
+                q = self._queues[host] = queue.Queue()
+                self.hosts[host] = HostStats()
+                for n in range(int(self.recipe.budget_for(host)["max_connections"])):
+                    t = threading.Thread(target=self._host_worker, args=(host, q), daemon=True,
+                                         name=f"host-{host}-{n}")
+                    self._workers.append(t)
+                    t.start()
+            self.hosts[host].queued += 1
+        q.put(job)
+
+    def _host_worker(self, host: str, q: queue.Queue[Job | None]) -> None:
+        stats = self.hosts[host]
+        while True:
+            job = q.get()
+            if job is None:
+                q.put(None)  # let the host's other workers see the end too
+                return
+            stats.queued -= 1
+            if self._should_stop():
+                continue  # left pending: the next run picks it up
+            if stats.parked:
+                self._finish(job.item_id, "deferred", "host_parked",
+                             f"{host} was parked earlier in this run")
+                continue
+            try:
+                self._fetch_and_ingest(job)
+            except HostParked as exc:
+                stats.parked = True
+                self._finish(job.item_id, "deferred", "host_parked", str(exc))
+            except StoreError as exc:
+                self.fatal = exc
+                self.request_stop(f"failed: {exc}")
+            stats.done += 1
+
+    def _fetch_and_ingest(self, job: Job) -> None:
+        try:
+            download = self.fetcher.download(job.url, self.store.incoming_dir,
+                                             item_id=job.item_id)
+        except RobotsDenied as exc:
+            self._finish(job.item_id, "blocked", exc.reason, str(exc))
+            return
+        except HostParked:
+            raise
+        except UnsafeURL as exc:
+            self._finish(job.item_id, "failed", exc.reason, str(exc))
+            return
+        except TooLarge as exc:
+            self._finish(job.item_id, "rejected", "too_large", str(exc))
+            return
+        except FetchError as exc:
+            self.hosts[host_key(job.url)].errors += 1
+            self._finish(job.item_id, "failed", exc.reason, str(exc))
+            return
+        self._ingest(job.item_id, job.spdx_id, download.path, download.sha256,
+                     content_type=download.content_type, url=download.final_url)
+
+    # -- local files (scans and crops) ---------------------------------------------------------
+    def _ingest_local(self, source_id: int, item_id: int, c: Any) -> None:
+        fd, tmp = self.store.new_temp()
+        digest = hashlib.sha256()
+        try:
+            with os.fdopen(fd, "wb") as out:
+                if c.content is not None:
+                    out.write(c.content)
+                    digest.update(c.content)
+                else:
+                    with open(c.local_path, "rb") as src:
+                        while chunk := src.read(COPY_CHUNK):
+                            out.write(chunk)
+                            digest.update(chunk)
+                out.flush()
+                os.fsync(out.fileno())
+        except OSError as exc:
+            tmp.unlink(missing_ok=True)
+            if isinstance(exc, FileNotFoundError):
+                self._finish(item_id, "failed", "file_missing", f"{c.local_path}: {exc}")
+                return
+            raise StoreError(f"cannot copy {c.local_path} into the store: {exc}",
+                             errno=exc.errno) from exc
+        sha = digest.hexdigest()
+        extra: dict[str, Any] = {}
+        if c.parent_key is not None:
+            extra["parent_sha256"] = self._scan_sha.get((source_id, c.parent_key))
+        else:
+            self._scan_sha[(source_id, c.source_key)] = sha
+        licence = normalise_licence(c.licence_raw, c.licence_url)
+        self._ingest(item_id, licence.spdx_id, tmp, sha, url=str(c.local_path or ""), **extra)
+
+    # -- ingest ------------------------------------------------------------------------------
+    def _ingest(self, item_id: int, spdx_id: str | None, path: Path, sha: str, *,
+                content_type: str | None = None, url: str | None = None,
+                **extra: Any) -> None:
+        """Check a complete temp file and store it, or record why not. Always consumes it."""
+        try:
+            if self.ledger.file(sha):
+                self._record_duplicate(item_id, sha, path, extra)
+                return
+            images = self.recipe.images
+            try:
+                facts = inspect_image(path, content_type=content_type, url=url,
+                                      max_pixels=images["max_pixels"],
+                                      min_side=images["min_side"],
+                                      min_aspect=images["min_aspect"],
+                                      max_aspect=images["max_aspect"])
+            except ImageRejected as exc:
+                self._finish(item_id, "rejected", exc.reason, exc.detail, **extra)
+                return
+            with self._ingest_lock:
+                if self.ledger.file(sha):
+                    self._record_duplicate(item_id, sha, path, extra)
+                    return
+                self._store_new(item_id, spdx_id, path, sha, facts, extra)
+        finally:
+            with contextlib.suppress(OSError):
+                path.unlink(missing_ok=True)
+
+    def _record_duplicate(self, item_id: int, sha: str, path: Path,
+                          extra: dict[str, Any]) -> None:
+        first = self.ledger.file(sha) or {}
+        self._finish(item_id, "duplicate", "exact_duplicate",
+                     "the same bytes are already stored", file_sha256=sha,
+                     duplicate_of=first.get("first_item_id"), **extra)
+
+    def _store_new(self, item_id: int, spdx_id: str | None, path: Path, sha: str,
+                   facts: ImageFacts, extra: dict[str, Any]) -> None:
+        flags = list(facts.flags)
+        conflict = rights_conflict(spdx_id, facts.rights)
+        if conflict:
+            flags.append("licence_conflict")
+        near = self.index.nearest(facts.phash, facts.phash_mirror,
+                                  int(self.recipe.images["near_distance"]))
+        state, reason, detail = "stored", None, conflict
+        if near:
+            best = near[0]
+            original = self.ledger.file(best.sha256) or {}
+            extra = {**extra, "duplicate_of": original.get("first_item_id"),
+                     "near_distance": best.distance, "near_mirrored": best.mirrored}
+            state, reason = "near_duplicate", "near_duplicate"
+            detail = (f"probably a {'mirrored' if best.mirrored else 'resized or re-encoded'} "
+                      f"copy of {best.sha256[:12]} (distance {best.distance})")
+            if self.recipe.images["near_duplicates"] == "drop":
+                self._finish(item_id, state, reason, detail + "; not stored (recipe: drop)",
+                             **extra)
+                return
+        size = path.stat().st_size
+        self.store.adopt(path, sha, facts.ext)
+        with self.ledger.transaction():
+            self.ledger.add_file({
+                "sha256": sha, "size": size, "ext": facts.ext, "format": facts.format,
+                "mime": facts.mime, "width": facts.width, "height": facts.height,
+                "mode": facts.mode, "bit_depth": facts.bit_depth, "alpha": facts.alpha,
+                "frames": facts.frames, "orientation": facts.orientation,
+                "phash": to_signed(facts.phash), "phash_mirror": to_signed(facts.phash_mirror),
+                "hash_algo": facts.hash_algo, "first_item_id": item_id, "exif": facts.exif,
+                "rights": facts.rights, "flags": flags,
+            })
+            self._finish(item_id, state, reason, detail, file_sha256=sha, **extra)
+        self.index.add(sha, facts.phash)
+        with self._lock:
+            self._stored_this_run += 1
+            if self.stop.max_items and self._stored_this_run >= self.stop.max_items:
+                self.request_stop(f"stopped: {self.stop.max_items} new items stored")
+
+    def _finish(self, item_id: int, state: str, reason: str | None, detail: str | None,
+                **fields: Any) -> None:
+        self.ledger.update_item(item_id, state=state, reason=reason, detail=detail,
+                                run_id=self.run_id, **fields)
+        self._count(state)
+        self.progress.event("item", item_id=item_id, state=state, reason=reason)
+
+    def _count(self, key: str) -> None:
+        with self._lock:
+            self.counts[key] += 1
+
+
+@dataclass(frozen=True)
+class _Note:
+    kind: str
+    url: str | None
+    message: str
+
+
+def build_fetcher(recipe: Recipe, ledger: Ledger) -> Any:
+    """The one polite fetcher, configured from the recipe."""
+    from collector.fetcher import Fetcher, FetchSettings
+
+    return Fetcher(FetchSettings.from_recipe(recipe), ledger)
+
+
+@contextlib.contextmanager
+def prepared_run(collection: Collection) -> Iterator[tuple[Recipe, Ledger]]:
+    """Lock the folder, load the recipe, open the ledger and recover from any crash."""
+    recipe = collection.recipe()
+    if not recipe.sources:
+        raise RecipeError([RecipeProblem(str(recipe.path), "sources",
+                                         "no [[sources]] yet: add at least one source to "
+                                         "gather from")])
+    with collection.gather_lock(), collection.ledger() as ledger:
+        recover(collection, ledger)
+        yield recipe, ledger
+
+
+def gather(collection: Collection, *, stop: StopRules | None = None,
+           progress: Progress | None = None, options: dict[str, Any] | None = None,
+           fetcher_factory: Callable[[Recipe, Ledger], Any] = build_fetcher) -> RunResult:
+    """Run the collection's recipe: list, decide, fetch, check, store, record."""
+    with prepared_run(collection) as (recipe, ledger):
+        fetcher = fetcher_factory(recipe, ledger)
+        try:
+            gatherer = Gatherer(collection, recipe, ledger, fetcher, stop=stop or StopRules(),
+                                progress=progress)
+            return gatherer.run(options)
+        finally:
+            close = getattr(fetcher, "close", None)
+            if close:
+                close()

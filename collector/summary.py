@@ -1,0 +1,204 @@
+"""What a collection holds and how it was gathered, computed from the ledger alone.
+
+Used at the end of ``gather``, by ``collector status`` (also while a run is going: the ledger is
+in WAL mode) and by the dry-run estimate. Pure reads; formatting is plain text.
+"""
+
+from __future__ import annotations
+
+import json
+import math
+from collections import Counter
+from dataclasses import dataclass, field
+from typing import Any
+
+from collector.errors import CollectorError
+from collector.ledger import Ledger
+from collector.recipe import Recipe
+from collector.urls import host_key
+
+STORED_STATES = ("stored", "near_duplicate")
+
+
+@dataclass
+class HostPoliteness:
+    """Requests sent to one host and how the host answered."""
+
+    host: str
+    requests: int
+    too_many: int  # 429 answers received
+    unavailable: int  # 503 answers received
+    waited_s: float
+    errors: int
+    bytes: int
+
+
+@dataclass
+class Summary:
+    """Counts by state and reason, bytes, time, politeness, licences and flags."""
+
+    states: Counter[str] = field(default_factory=Counter)
+    reasons: Counter[tuple[str, str]] = field(default_factory=Counter)
+    files: int = 0
+    file_bytes: int = 0
+    fetched_bytes: int = 0
+    requests: int = 0
+    hosts: list[HostPoliteness] = field(default_factory=list)
+    licences: Counter[str] = field(default_factory=Counter)
+    flags: Counter[str] = field(default_factory=Counter)
+    notes: Counter[str] = field(default_factory=Counter)
+    runs: int = 0
+    last_run: dict[str, Any] | None = None
+
+    @property
+    def total_items(self) -> int:
+        return sum(self.states.values())
+
+
+def summarise(ledger: Ledger) -> Summary:
+    """Summarise the whole collection from its ledger."""
+    s = Summary()
+    for row in ledger.query("SELECT state, reason, count(*) AS n FROM items "
+                            "GROUP BY state, reason"):
+        s.states[row["state"]] += row["n"]
+        if row["reason"]:
+            s.reasons[(row["state"], row["reason"])] += row["n"]
+    s.files = ledger.scalar("SELECT count(*) FROM files") or 0
+    s.file_bytes = ledger.scalar("SELECT coalesce(sum(size), 0) FROM files") or 0
+    s.requests = ledger.scalar("SELECT count(*) FROM fetches WHERE status IS NOT NULL") or 0
+    s.fetched_bytes = ledger.scalar("SELECT coalesce(sum(bytes), 0) FROM fetches") or 0
+    for row in ledger.query(
+            "SELECT host, sum(status IS NOT NULL) AS requests, sum(status = 429) AS too_many, "
+            "sum(status = 503) AS unavailable, coalesce(sum(waited_s), 0) AS waited, "
+            "sum(error IS NOT NULL) AS errors, coalesce(sum(bytes), 0) AS bytes "
+            "FROM fetches GROUP BY host ORDER BY host"):
+        s.hosts.append(HostPoliteness(row["host"] or "?", row["requests"] or 0,
+                                      row["too_many"] or 0, row["unavailable"] or 0,
+                                      float(row["waited"]), row["errors"] or 0, row["bytes"]))
+    placeholders = ", ".join("?" for _ in STORED_STATES)
+    for row in ledger.query(
+            f"SELECT coalesce(spdx_id, 'unknown') AS spdx, count(*) AS n FROM items "
+            f"WHERE state IN ({placeholders}) GROUP BY spdx ORDER BY n DESC", STORED_STATES):
+        s.licences[row["spdx"]] = row["n"]
+    for row in ledger.query("SELECT flags FROM files WHERE flags IS NOT NULL AND flags != '[]'"):
+        for flag in json.loads(row["flags"]):
+            s.flags[flag.split(":", 1)[0]] += 1
+    for row in ledger.query("SELECT kind, count(*) AS n FROM notes GROUP BY kind"):
+        s.notes[row["kind"]] = row["n"]
+    s.runs = ledger.scalar("SELECT count(*) FROM runs") or 0
+    last = ledger.query("SELECT * FROM runs ORDER BY id DESC LIMIT 1")
+    s.last_run = last[0] if last else None
+    return s
+
+
+def human_bytes(n: float) -> str:
+    """1234567 -> '1.2 MB' (decimal units)."""
+    for unit in ("B", "kB", "MB", "GB", "TB"):
+        if abs(n) < 1000 or unit == "TB":
+            return f"{n:.0f} {unit}" if unit == "B" else f"{n:.1f} {unit}"
+        n /= 1000
+    return f"{n} B"
+
+
+def human_seconds(seconds: float) -> str:
+    """5400 -> '1 h 30 min'."""
+    seconds = max(0.0, seconds)
+    if seconds < 90:
+        return f"{seconds:.0f} s"
+    minutes = round(seconds / 60)
+    if minutes < 90:
+        return f"{minutes} min"
+    return f"{minutes // 60} h {minutes % 60:02d} min"
+
+
+def format_summary(s: Summary) -> list[str]:
+    """The summary as plain text lines."""
+    lines = [f"{s.total_items} items, {s.files} files stored ({human_bytes(s.file_bytes)}), "
+             f"{s.requests} requests ({human_bytes(s.fetched_bytes)} received), {s.runs} runs"]
+    if s.last_run:
+        lines.append(f"last run: #{s.last_run['id']} started {s.last_run['started_at']}, "
+                     f"{s.last_run['outcome']}")
+    lines.append("items by state:")
+    for state, n in sorted(s.states.items(), key=lambda kv: -kv[1]):
+        reasons = ", ".join(f"{r} {c}" for (st, r), c in sorted(s.reasons.items())
+                            if st == state)
+        lines.append(f"  {state:<15} {n:>6}" + (f"   ({reasons})" if reasons else ""))
+    if s.licences:
+        lines.append("licences of stored items: " + ", ".join(
+            f"{k} {v}" for k, v in s.licences.most_common()))
+    if s.hosts:
+        lines.append("politeness per host:")
+        for h in s.hosts:
+            lines.append(f"  {h.host:<24} {h.requests:>5} requests, {h.too_many} x 429, "
+                         f"{h.unavailable} x 503, waited {human_seconds(h.waited_s)}, "
+                         f"{h.errors} errors")
+    if s.flags:
+        lines.append("flags (review before publishing): " + ", ".join(
+            f"{k} {v}" for k, v in s.flags.most_common()))
+    if s.notes:
+        lines.append("source notes: " + ", ".join(f"{k} {v}" for k, v in s.notes.items())
+                     + "  (see the ledger's notes table)")
+    return lines
+
+
+@dataclass
+class Estimate:
+    """How long a run would take at the budgets in force (``gather --dry-run``)."""
+
+    per_host: dict[str, int]
+    interval: dict[str, float]
+    seconds: float
+    unknown_sources: list[str]
+
+
+def estimate(recipe: Recipe, ledger: Ledger) -> Estimate:
+    """Estimate a run from what earlier runs listed: per host, pending items times the
+    effective interval; hosts run in parallel, so the slowest host decides."""
+    per_host: Counter[str] = Counter()
+    for row in ledger.query("SELECT image_url FROM items WHERE state IN "
+                            "('pending', 'failed', 'deferred') AND image_url IS NOT NULL"):
+        try:
+            per_host[host_key(row["image_url"])] += 1
+        except CollectorError:  # a malformed URL is counted under an unknown host
+            per_host["?"] += 1
+    listed = {r["name"] for r in ledger.query(
+        "SELECT DISTINCT s.name FROM sources s JOIN items i ON i.source_id = s.id")}
+    unknown = [s["name"] for s in recipe.sources
+               if s["kind"] != "scans" and s["name"] not in listed]
+    interval: dict[str, float] = {}
+    seconds = 0.0
+    for host, n in per_host.items():
+        budget = recipe.budget_for(host)
+        row = ledger.get_host(host)
+        effective = (row or {}).get("effective_budget") or {}
+        step = max(float(budget["min_interval"]), 3600.0 / budget["requests_per_hour"],
+                   float(effective.get("min_interval", 0) or 0))
+        interval[host] = step
+        seconds = max(seconds, n * step / max(1, budget["max_connections"]))
+    return Estimate(dict(per_host), interval, math.ceil(seconds), unknown)
+
+
+def format_estimate(recipe: Recipe, est: Estimate) -> list[str]:
+    """The dry-run report as plain text lines."""
+    lines = ["dry run: nothing is requested.", "sources:"]
+    for source in recipe.sources:
+        lines.append(f"  {source['name']} ({source['kind']})")
+    lines.append(f"budget defaults: one request every {recipe.budgets['min_interval']:g} s at "
+                 f"most, {recipe.budgets['requests_per_hour']} per hour, "
+                 f"{recipe.budgets['max_connections']} connection(s) per host; robots.txt "
+                 "Crawl-delay can only slow this down")
+    if est.per_host:
+        lines.append("candidates waiting per host (from earlier listings):")
+        for host, n in sorted(est.per_host.items()):
+            lines.append(f"  {host:<24} {n:>6} images, one every {est.interval[host]:g} s "
+                         f"-> {human_seconds(n * est.interval[host])}")
+        lines.append(f"estimated time for the images already listed: "
+                     f"{human_seconds(est.seconds)} (hosts are served in parallel)")
+    if est.unknown_sources:
+        per_hour = 3600 / max(recipe.budgets["min_interval"], 3600 /
+                              recipe.budgets["requests_per_hour"])
+        lines.append(f"not listed yet: {', '.join(est.unknown_sources)}. Their size is unknown "
+                     f"until a run lists them; at these budgets one host gives at most "
+                     f"{per_hour:.0f} images per hour (20,000 images at one request every 3 s "
+                     f"take about 17 h).")
+    return lines

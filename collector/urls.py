@@ -1,0 +1,197 @@
+"""URL checks for the fetcher: scheme, host keys, address safety and redaction of secrets.
+
+Pure functions except :func:`check_address`, which resolves a host name through an injectable
+resolver (``socket.getaddrinfo`` by default).
+"""
+
+from __future__ import annotations
+
+import ipaddress
+import socket
+from collections.abc import Callable, Iterable, Mapping
+from urllib.parse import parse_qsl, quote, urlencode, urlsplit, urlunsplit
+
+from collector.errors import UnsafeURL
+
+REDACTED = "REDACTED"
+ALLOWED_SCHEMES = ("http", "https")
+DEFAULT_PORTS = {"http": 80, "https": 443}
+
+Resolver = Callable[..., list]
+IPAddress = ipaddress.IPv4Address | ipaddress.IPv6Address
+IPNetwork = ipaddress.IPv4Network | ipaddress.IPv6Network
+
+
+def split_checked(url: str) -> tuple[str, str, int]:
+    """Return (scheme, host, port) of an http/https URL; raise UnsafeURL for anything else."""
+    try:
+        parts = urlsplit(url)
+        port = parts.port
+    except ValueError as exc:
+        raise UnsafeURL(url, "unsafe_url", detail=f"not a valid URL ({exc})") from None
+    scheme = parts.scheme.lower()
+    if scheme not in ALLOWED_SCHEMES:
+        raise UnsafeURL(
+            url, "unsafe_url", detail=f"scheme {scheme or '(none)'!r} is not http or https"
+        )
+    host = (parts.hostname or "").lower()
+    if not host:
+        raise UnsafeURL(url, "unsafe_url", detail="the URL has no host")
+    return scheme, host, port if port is not None else DEFAULT_PORTS[scheme]
+
+
+def host_key(url: str) -> str:
+    """Budget and ledger key of a URL: ``host:port`` with the default port filled in."""
+    _, host, port = split_checked(url)
+    if ":" in host:  # IPv6 literal
+        host = f"[{host}]"
+    return f"{host}:{port}"
+
+
+def origin(url: str) -> str:
+    """``scheme://host:port`` — RFC 9309 §2.3: each scheme+host+port has its own robots.txt."""
+    scheme, _, _ = split_checked(url)
+    return f"{scheme}://{host_key(url)}"
+
+
+def robots_url(url: str) -> str:
+    """The robots.txt URL for a URL's authority (RFC 9309 §2.3: top-level ``/robots.txt``)."""
+    return origin(url) + "/robots.txt"
+
+
+def add_params(url: str, params: Mapping[str, object] | None) -> str:
+    """Append query parameters to a URL (values converted with ``str``)."""
+    if not params:
+        return url
+    parts = urlsplit(url)
+    extra = urlencode([(k, str(v)) for k, v in params.items()])
+    query = f"{parts.query}&{extra}" if parts.query else extra
+    return urlunsplit(parts._replace(query=query))
+
+
+def redact(url: str, secret_params: Iterable[str] = ()) -> str:
+    """Return ``url`` with the values of secret query parameters (and any password) replaced.
+
+    Parameter names compare case-insensitively; the value becomes ``REDACTED``.
+    """
+    secrets = {s.lower() for s in secret_params}
+    try:
+        parts = urlsplit(url)
+    except ValueError:
+        return url
+    netloc = parts.netloc
+    if parts.password is not None:
+        # user:password@host — the password is always a secret.
+        userinfo, _, hostport = netloc.rpartition("@")
+        user = userinfo.split(":", 1)[0]
+        netloc = f"{user}:{REDACTED}@{hostport}"
+    query = parts.query
+    if secrets and query:
+        pairs = parse_qsl(query, keep_blank_values=True)
+        if any(k.lower() in secrets for k, _ in pairs):
+            query = "&".join(
+                f"{quote(k, safe='')}={REDACTED if k.lower() in secrets else quote(v, safe='')}"
+                for k, v in pairs
+            )
+    return urlunsplit(parts._replace(netloc=netloc, query=query))
+
+
+def secret_values(url: str, secret_params: Iterable[str] = ()) -> list[str]:
+    """The raw values of the secret parameters (and password) in ``url``, for :func:`scrub`."""
+    secrets = {s.lower() for s in secret_params}
+    try:
+        parts = urlsplit(url)
+    except ValueError:
+        return []
+    found = [v for k, v in parse_qsl(parts.query, keep_blank_values=True) if k.lower() in secrets]
+    if parts.password:
+        found.append(parts.password)
+    return [v for v in found if v]
+
+
+def scrub(text: str, secrets: Iterable[str]) -> str:
+    """Replace every occurrence of each secret (raw and percent-encoded forms) in ``text``."""
+    for secret in sorted({s for s in secrets if s}, key=len, reverse=True):
+        for form in {secret, quote(secret, safe=""), quote_plus_safe(secret)}:
+            text = text.replace(form, REDACTED)
+    return text
+
+
+def quote_plus_safe(value: str) -> str:
+    """Form-encoding of ``value`` as ``urlencode`` writes it (spaces as ``+``)."""
+    return urlencode({"": value})[1:]
+
+
+def redact_headers(headers: Mapping[str, str], secret_headers: Iterable[str]) -> dict[str, str]:
+    """Copy of ``headers`` with the values of secret headers replaced (names case-insensitive)."""
+    secrets = {h.lower() for h in secret_headers}
+    return {k: (REDACTED if k.lower() in secrets else v) for k, v in headers.items()}
+
+
+def parse_allow_list(entries: Iterable[str]) -> list[IPNetwork]:
+    """Parse ``network.allow_addresses`` (addresses or CIDR blocks) into networks."""
+    return [ipaddress.ip_network(e.strip(), strict=False) for e in entries]
+
+
+def address_problem(addr: IPAddress) -> str | None:
+    """Why an address may not be contacted (e.g. "loopback"), or None for a public address."""
+    if isinstance(addr, ipaddress.IPv6Address) and addr.ipv4_mapped is not None:
+        # ::ffff:127.0.0.1 reaches 127.0.0.1; judge the IPv4 address it maps to.
+        return address_problem(addr.ipv4_mapped)
+    for kind in ("loopback", "private", "link_local", "multicast", "reserved", "unspecified"):
+        if getattr(addr, f"is_{kind}"):
+            return kind.replace("_", "-")
+    if not addr.is_global:
+        return "not globally routable"
+    return None
+
+
+def check_address(
+    host: str,
+    port: int,
+    allowed: Iterable[IPNetwork] = (),
+    resolver: Resolver = socket.getaddrinfo,
+    shown_url: str = "",
+) -> list[IPAddress]:
+    """Resolve ``host`` and refuse it if ANY of its addresses is not public and not allowed.
+
+    Checking every address (not just the first) stops a name that resolves to both a public and
+    a private address from slipping through. Raises UnsafeURL (carrying ``shown_url``, which
+    must already be redacted); returns the checked addresses.
+    """
+    allowed = list(allowed)
+    shown = shown_url or f"//{host}:{port}"
+    try:
+        literal: IPAddress | None = ipaddress.ip_address(host.strip("[]"))
+    except ValueError:
+        literal = None
+    if literal is not None:
+        addresses = [literal]
+    else:
+        try:
+            infos = resolver(host, port, type=socket.SOCK_STREAM)
+        except (OSError, UnicodeError) as exc:
+            raise UnsafeURL(
+                shown, "connection", detail=f"cannot resolve host {host!r}: {exc}"
+            ) from exc
+        addresses = []
+        for info in infos:
+            addr = ipaddress.ip_address(str(info[4][0]).split("%", 1)[0])
+            if addr not in addresses:
+                addresses.append(addr)
+        if not addresses:
+            raise UnsafeURL(shown, "connection", detail=f"{host!r} has no address")
+    for addr in addresses:
+        problem = address_problem(addr)
+        if problem is None:
+            continue
+        plain = addr.ipv4_mapped if isinstance(addr, ipaddress.IPv6Address) else None
+        if any((plain or addr) in net for net in allowed if (plain or addr).version == net.version):
+            continue
+        raise UnsafeURL(
+            shown,
+            "unsafe_url",
+            detail=f"{host} resolves to {addr} ({problem}); add it to network.allow_addresses "
+            "in the recipe if you really mean to contact it",
+        )
+    return addresses

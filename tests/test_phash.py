@@ -1,0 +1,193 @@
+"""pHash checked against the reference library imagehash 4.3 (libraries.md section 2)."""
+
+from __future__ import annotations
+
+import itertools
+import sqlite3
+from pathlib import Path
+
+import imagehash
+import numpy as np
+import pytest
+from PIL import Image, ImageDraw, ImageFilter
+
+from collector.phash import (
+    HASH_ALGO,
+    hamming,
+    hash_image_file,
+    phash_from_image,
+    to_signed64,
+    to_unsigned64,
+)
+
+# libraries.md section 2: threshold 8 separated resized/re-encoded copies from unrelated images.
+NEAR = 8
+
+
+def picture(seed: int, size: tuple[int, int] = (320, 240)) -> Image.Image:
+    """A structured synthetic picture: a background field plus shapes, sometimes noisy/blurred."""
+    rng = np.random.default_rng(seed)
+    w, h = size
+    y, x = np.mgrid[0:h, 0:w] / max(w, h)
+    kind = seed % 4
+    if kind == 0:  # linear gradient at a random angle
+        a = rng.uniform(0, np.pi)
+        field = np.cos(a) * x + np.sin(a) * y
+    elif kind == 1:  # radial
+        cx, cy = rng.uniform(0.2, 0.8, 2)
+        field = np.hypot(x - cx, y - cy)
+    elif kind == 2:  # sinusoid
+        fx, fy = rng.uniform(2, 9, 2)
+        field = np.sin(fx * x * 6.28) * np.cos(fy * y * 6.28)
+    else:  # low-pass noise
+        small = rng.random((6, 8))
+        field = np.asarray(Image.fromarray((small * 255).astype(np.uint8)).resize((w, h), 3))
+    field = (field - field.min()) / (np.ptp(field) or 1.0)
+    base = np.stack([field * rng.uniform(80, 255) for _ in range(3)], axis=-1)
+    im = Image.fromarray(base.astype(np.uint8), "RGB")
+    draw = ImageDraw.Draw(im)
+    for _ in range(int(rng.integers(2, 9))):
+        x0, x1 = sorted(rng.integers(0, w, 2))
+        y0, y1 = sorted(rng.integers(0, h, 2))
+        colour = tuple(int(c) for c in rng.integers(0, 256, 3))
+        if rng.random() < 0.5:
+            draw.rectangle([x0, y0, x1 + 4, y1 + 4], fill=colour)
+        else:
+            draw.ellipse([x0, y0, x1 + 4, y1 + 4], fill=colour)
+    if seed % 3 == 0:
+        noise = rng.normal(0, 12, (h, w, 3))
+        im = Image.fromarray(np.clip(np.asarray(im) + noise, 0, 255).astype(np.uint8))
+    if seed % 5 == 0:
+        im = im.filter(ImageFilter.GaussianBlur(2))
+    return im
+
+
+SIZES = [(320, 240), (240, 320), (257, 199), (512, 512), (100, 60), (33, 33)]
+MODES = ["RGB", "L", "RGBA", "P", "CMYK", "I;16"]
+
+
+def varied_images() -> list[Image.Image]:
+    """36 images: 6 sizes x 6 modes, each from a different seed."""
+    out = []
+    for i, (size, mode) in enumerate(itertools.product(SIZES, MODES)):
+        im = picture(i, size)
+        if mode == "I;16":
+            im = Image.fromarray(np.asarray(im.convert("L")).astype(np.uint16) * 257)
+        else:
+            im = im.convert(mode)
+        out.append(im)
+    return out
+
+
+def ref_hash(im: Image.Image) -> int:
+    """The reference value: imagehash's hex string read as an integer (first bit = MSB)."""
+    return int(str(imagehash.phash(im)), 16)
+
+
+def test_full_decode_hash_is_bit_identical_to_imagehash_on_36_images():
+    """phash_from_image equals imagehash.phash on every image, mode and size."""
+    mismatches = [
+        i for i, im in enumerate(varied_images()) if phash_from_image(im)[0] != ref_hash(im)
+    ]
+    assert mismatches == []
+
+
+def test_flat_and_gradient_images_still_match_imagehash():
+    """Images where DCT coefficients tie at the median still give imagehash's bits."""
+    grad = Image.fromarray(np.tile(np.arange(256, dtype=np.uint8), (64, 1)))
+    for im in [Image.new("RGB", (50, 40), (90, 120, 30)), Image.new("L", (7, 7), 0), grad]:
+        assert phash_from_image(im)[0] == ref_hash(im)
+
+
+def test_draft_pipeline_on_jpeg_is_within_two_bits_of_full_decode(tmp_path: Path):
+    """JPEG hashed via draft() differs from imagehash on the full decode by at most 2 bits."""
+    distances = []
+    for seed in range(30):
+        path = tmp_path / f"{seed}.jpg"
+        picture(seed, (800, 600)).save(path, quality=90)
+        with Image.open(path) as im:
+            full = ref_hash(im)
+        distances.append(hamming(hash_image_file(path)[0], full))
+    assert max(distances) <= 2, distances  # libraries.md section 2: 0/0/2 bits
+
+
+def test_mirror_hash_matches_the_hash_of_the_flipped_image():
+    """The mirror hash is within 2 bits of the flipped image's hash (libraries.md section 2)."""
+    distances = []
+    for seed in range(30):
+        im = picture(seed, (320, 240))
+        flipped = im.transpose(Image.Transpose.FLIP_LEFT_RIGHT)
+        distances.append(hamming(phash_from_image(im)[1], ref_hash(flipped)))
+    assert max(distances) <= 2, distances
+
+
+def test_flip_without_mirror_hash_looks_unrelated():
+    """A plain flip moves the hash far away, which is why the mirror hash exists."""
+    im = picture(7, (320, 240))
+    flipped = im.transpose(Image.Transpose.FLIP_LEFT_RIGHT)
+    assert hamming(phash_from_image(im)[0], phash_from_image(flipped)[0]) > NEAR
+
+
+def test_resized_and_reencoded_copies_stay_within_the_near_threshold(tmp_path: Path):
+    """50% resize + JPEG q70 re-encode stays within 8 bits (libraries.md section 2)."""
+    distances = []
+    for seed in range(30):
+        im = picture(seed, (800, 600))
+        original, copy = tmp_path / f"o{seed}.jpg", tmp_path / f"c{seed}.jpg"
+        im.save(original, quality=95)
+        im.resize((400, 300), Image.Resampling.LANCZOS).save(copy, quality=70)
+        distances.append(hamming(hash_image_file(original)[0], hash_image_file(copy)[0]))
+    assert max(distances) <= NEAR, distances
+
+
+def test_unrelated_images_are_mostly_beyond_the_near_threshold():
+    """Pairs of different pictures are more than 8 bits apart in nearly all cases."""
+    hashes = [phash_from_image(picture(seed, (320, 240)))[0] for seed in range(40)]
+    distances = [hamming(a, b) for a, b in itertools.combinations(hashes, 2)]
+    close = sum(d <= NEAR for d in distances)
+    # libraries.md section 2 found 0 of 19,900 unrelated pairs at <= 8; allow 1% on this small set.
+    assert close <= len(distances) // 100, sorted(distances)[:10]
+    assert np.median(distances) >= 20  # unrelated hashes sit near 32 bits apart
+
+
+def test_rotated_file_with_orientation_tag_hashes_like_the_upright_copy(tmp_path: Path):
+    """Orientation 6 stored sideways hashes like the upright image (hash after orientation)."""
+    im = picture(11, (640, 480))
+    upright = tmp_path / "upright.jpg"
+    im.save(upright, quality=95)
+    # Orientation 6: display by rotating 90 degrees clockwise (standards.md section 6.1), so
+    # store the pixels rotated 90 degrees counter-clockwise.
+    exif = Image.Exif()
+    exif[0x0112] = 6
+    sideways = tmp_path / "sideways.jpg"
+    im.transpose(Image.Transpose.ROTATE_90).save(sideways, quality=95, exif=exif)
+    assert hamming(hash_image_file(upright)[0], hash_image_file(sideways)[0]) <= 2
+
+
+def test_hamming_agrees_with_imagehash_subtraction():
+    """hamming(a, b) equals imagehash's ImageHash difference for the same images."""
+    a, b = picture(1), picture(2)
+    assert hamming(ref_hash(a), ref_hash(b)) == imagehash.phash(a) - imagehash.phash(b)
+
+
+@pytest.mark.parametrize("value", [0, 1, 2**63 - 1, 2**63, 2**64 - 1, 0xF0F0F0F0F0F0F0F0])
+def test_signed_conversion_round_trips_through_sqlite(value: int):
+    """A hash stored as signed 64-bit in SQLite reads back to the same unsigned value."""
+    db = sqlite3.connect(":memory:")
+    db.execute("create table h (v integer)")
+    db.execute("insert into h values (?)", (to_signed64(value),))
+    (stored,) = db.execute("select v from h").fetchone()
+    assert to_unsigned64(stored) == value
+    assert hamming(stored, value) == 0
+
+
+def test_sqlite_cannot_hold_the_unsigned_top_half():
+    """Why the signed form exists: sqlite3 refuses integers >= 2**63."""
+    db = sqlite3.connect(":memory:")
+    with pytest.raises(OverflowError):
+        db.execute("select ?", (2**63,))
+
+
+def test_hash_algo_names_the_draft_pipeline():
+    """The stored algorithm tag names the 64-bit DCT draft pipeline."""
+    assert HASH_ALGO == "dct-phash-64/draft-v1"
