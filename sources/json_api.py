@@ -437,7 +437,11 @@ class _Walker:
                                          headers=cfg.headers or None,
                                          secret_params=cfg.secret_params)
         except FetchError as exc:
-            self.notes.add("fetch_failed", exc.url, f"{purpose} request failed: {exc}")
+            if purpose == "listing":
+                raise  # the source cannot go on; the orchestrator records exc.reason
+            self.notes.add("fetch_failed", exc.url, f"detail request failed: {exc}; items "
+                           "whose detail request fails use the listing only (reported once per "
+                           "reason)", once_key=exc.reason)
             return None
         where = self._red(page.url)
         if page.status >= 400:
