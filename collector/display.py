@@ -42,7 +42,7 @@ class PlainProgress:
                 reason = f" ({data['reason']})" if data.get("reason") else ""
                 text = f"item {data['item_id']}: {data['state']}{reason}"
             elif kind == "note":
-                text = f"note from {data['source']}: {data['kind']}: {data['message']}"
+                text = f"note from {data['source']}: {data['note']}: {data['message']}"
             elif kind == "stopping":
                 text = f"stopping: {data['why']}; finishing the files in flight"
             else:

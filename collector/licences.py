@@ -21,7 +21,7 @@ from __future__ import annotations
 
 import re
 from dataclasses import dataclass
-from functools import cache
+from functools import cache, lru_cache
 
 import license_expression as le
 
@@ -221,6 +221,7 @@ def _from_text(text: str) -> tuple[str | None, str | None, str | None]:
     return None, None, None
 
 
+@lru_cache(maxsize=4096)  # archives repeat the same few licence strings
 def normalise_licence(text: str | None, url: str | None) -> LicenceInfo:
     """Map a licence text and/or URL to an SPDX id the index knows, or None."""
     t_id = t_method = t_note = None

@@ -213,7 +213,7 @@ class Gatherer:
         def note(n: Any) -> None:
             self.ledger.add_note(n.kind, n.message, url=n.url, run_id=self.run_id,
                                  source_id=source_id)
-            self.progress.event("note", source=source["name"], kind=n.kind, message=n.message)
+            self.progress.event("note", source=source["name"], note=n.kind, message=n.message)
 
         try:
             for candidate in adapters.iter_candidates(source, self.fetcher, note,
@@ -391,7 +391,7 @@ class Gatherer:
                                       max_pixels=images["max_pixels"],
                                       min_side=images["min_side"],
                                       min_aspect=images["min_aspect"],
-                                      max_aspect=images["max_aspect"])
+                                      max_aspect=images["max_aspect"], full_decode=False)
             except ImageRejected as exc:
                 self._finish(item_id, "rejected", exc.reason, exc.detail, **extra)
                 return
@@ -433,7 +433,7 @@ class Gatherer:
                              **extra)
                 return
         size = path.stat().st_size
-        self.store.adopt(path, sha, facts.ext)
+        self.store.adopt(path, sha, facts.ext, synced=True)
         with self.ledger.transaction():
             self.ledger.add_file({
                 "sha256": sha, "size": size, "ext": facts.ext, "format": facts.format,

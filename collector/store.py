@@ -22,20 +22,6 @@ SHA256_RE = re.compile(r"^[0-9a-f]{64}$")
 EXT_RE = re.compile(r"^[a-z0-9]{1,5}$")
 
 
-def _fsync_dir(path: Path) -> None:
-    """Make a rename durable by syncing its directory (POSIX; a no-op where unsupported)."""
-    try:
-        fd = os.open(path, os.O_RDONLY)
-    except OSError:
-        return
-    try:
-        os.fsync(fd)
-    except OSError:
-        pass
-    finally:
-        os.close(fd)
-
-
 def _store_error(exc: OSError, what: str) -> StoreError:
     if exc.errno == errno.ENOSPC:
         return StoreError(f"the disk is full while {what}; free some space and run again "
@@ -49,10 +35,16 @@ class Store:
     def __init__(self, root: Path) -> None:
         self.root = root
         self.incoming_dir = root / ".incoming"
+        self._made: set[Path] = set()  # folders known to exist: mkdir is slow on some disks
+
+    def _mkdir(self, folder: Path) -> None:
+        if folder not in self._made:
+            folder.mkdir(parents=True, exist_ok=True)
+            self._made.add(folder)
 
     def ensure(self) -> None:
         """Create the store folders if they are missing."""
-        self.incoming_dir.mkdir(parents=True, exist_ok=True)
+        self._mkdir(self.incoming_dir)
 
     def path_for(self, sha256: str, ext: str) -> Path:
         """Where a file with this digest and extension lives (whether or not it exists)."""
@@ -71,18 +63,21 @@ class Store:
             raise _store_error(exc, "creating a temp file") from exc
         return fd, Path(name)
 
-    def adopt(self, tmp_path: Path, sha256: str, ext: str) -> Path:
-        """Move a complete, fsynced temp file into place. An existing file is kept as it is."""
+    def adopt(self, tmp_path: Path, sha256: str, ext: str, *, synced: bool = False) -> Path:
+        """Move a complete temp file into place (fsynced here unless the writer already did:
+        ``synced``). An existing file is kept as it is."""
         target = self.path_for(sha256, ext)
         try:
             if target.exists():
                 tmp_path.unlink(missing_ok=True)
                 return target
-            target.parent.mkdir(parents=True, exist_ok=True)
-            with open(tmp_path, "rb+") as fh:
-                os.fsync(fh.fileno())
+            self._mkdir(target.parent)
+            if not synced:
+                with open(tmp_path, "rb+") as fh:
+                    os.fsync(fh.fileno())
             os.replace(tmp_path, target)
-            _fsync_dir(target.parent)
+            # The folder is not fsynced: after a power loss a rename may be lost, and
+            # collection.recover() then resets the item whose file is missing.
         except OSError as exc:
             with contextlib.suppress(OSError):
                 tmp_path.unlink(missing_ok=True)
@@ -104,7 +99,7 @@ class Store:
         except OSError as exc:
             tmp.unlink(missing_ok=True)
             raise _store_error(exc, f"writing {target.name}") from exc
-        return sha, self.adopt(tmp, sha, ext)
+        return sha, self.adopt(tmp, sha, ext, synced=True)
 
     def clean_incoming(self) -> int:
         """Remove temp files a crashed run left behind; returns how many were removed."""

@@ -100,14 +100,15 @@ def test_plain_text_and_unknown_bytes_are_not_images(tmp_path):
     assert rejected(blob).reason == "not_an_image"
 
 
-def test_jpeg_missing_only_the_eoi_marker_is_broken(tmp_path):
+@pytest.mark.parametrize("full_decode", [True, False])
+def test_jpeg_missing_only_the_eoi_marker_is_broken(tmp_path, full_decode):
     """Dropping the final FF D9 makes load() fail, so the file is broken_image (libraries.md 7)."""
     path = tmp_path / "cut.jpg"
     scene().save(path, quality=90)
     data = path.read_bytes()
     assert data[-2:] == b"\xff\xd9"  # EOI (standards.md section 9)
     path.write_bytes(data[:-2])
-    assert rejected(path).reason == "broken_image"
+    assert rejected(path, full_decode=full_decode).reason == "broken_image"
 
 
 def test_jpeg_cut_in_half_is_broken(tmp_path):

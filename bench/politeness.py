@@ -1,0 +1,142 @@
+"""Politeness bench: does the fetcher keep every host's budget, and how close does it get?
+
+For 1, 10 and 50 loopback hosts (one ThreadingHTTPServer per 127.0.0.x address, run in a child
+process so the client's CPU time is measured alone) the fetcher downloads a bounded number of
+small pages per host, one worker thread per host. The servers log server-side monotonic
+timestamps (CLOCK_MONOTONIC is system-wide on Linux, so they compare with the parent's).
+
+Printed per row: the per-host budget, achieved per-host rate as % of budget, the worst 1 s
+window seen by any host against the budget, violations (hosts whose worst window, shortened by
+a 50 ms jitter tolerance, exceeds the budget), aggregate rate, and client CPU seconds per 1000
+requests (time.process_time). Targets: zero violations, >= 95 % of budget, aggregate rate
+growing with hosts. Whole run stays well under 2 minutes.
+"""
+
+from __future__ import annotations
+
+import multiprocessing as mp
+import sys
+import threading
+import time
+from http.server import BaseHTTPRequestHandler, ThreadingHTTPServer
+from pathlib import Path
+
+sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
+
+import itertools
+
+from collector.fetcher import Fetcher, FetchSettings
+
+INTERVAL = 0.1  # s between request starts per host -> budget 10 requests/s
+BUDGET = round(1 / INTERVAL)
+TOLERANCE = 0.05  # s of arrival jitter allowed: half an interval, less than one request
+PLAN = [(1, 60), (10, 40), (50, 20)]  # (hosts, requests per host)
+
+
+def _serve(addresses: list[str], conn: mp.connection.Connection) -> None:
+    """Child process: one server per address; on request, send back the logs and stop."""
+    logs: dict[str, list[float]] = {a: [] for a in addresses}
+    lock = threading.Lock()
+    servers = []
+    for addr in addresses:
+        stamps = logs[addr]
+
+        class H(BaseHTTPRequestHandler):
+            protocol_version = "HTTP/1.1"
+            _stamps = stamps
+
+            def do_GET(self) -> None:
+                with lock:
+                    self._stamps.append(time.monotonic())
+                body = b"{}" if self.path != "/robots.txt" else b"user-agent: *\nallow: /\n"
+                self.send_response(200)
+                self.send_header("Content-Length", str(len(body)))
+                self.end_headers()
+                self.wfile.write(body)
+
+            def log_message(self, *args: object) -> None:
+                pass
+
+        server = ThreadingHTTPServer((addr, 0), H)
+        server.daemon_threads = True
+        threading.Thread(target=server.serve_forever, args=(0.05,), daemon=True).start()
+        servers.append(server)
+    conn.send([s.server_address[1] for s in servers])
+    conn.recv()
+    for s in servers:
+        s.shutdown()
+    with lock:
+        conn.send(logs)
+
+
+def max_in_window(stamps: list[float], window: float) -> int:
+    """Largest number of stamps in any half-open window [t, t + window)."""
+    stamps = sorted(stamps)
+    best, j = 0, 0
+    for i, start in enumerate(stamps):
+        while j < len(stamps) and stamps[j] < start + window:
+            j += 1
+        best = max(best, j - i)
+    return best
+
+
+def run(hosts: int, per_host: int) -> dict[str, float]:
+    addresses = [f"127.0.0.{10 + i}" for i in range(hosts)]
+    parent, child = mp.Pipe()
+    proc = mp.Process(target=_serve, args=(addresses, child), daemon=True)
+    proc.start()
+    ports = parent.recv()
+    settings = FetchSettings.from_recipe({
+        "contact": "bench@example.org",
+        "budgets": {"min_interval": INTERVAL, "requests_per_hour": 1_000_000},
+        "network": {"allow_addresses": ["127.0.0.0/8"]},
+    })
+    fetcher = Fetcher(settings, None)
+    urls = [f"http://{a}:{p}" for a, p in zip(addresses, ports, strict=True)]
+
+    def worker(base: str) -> None:
+        for i in range(per_host):
+            fetcher.get_page(f"{base}/item/{i}")
+
+    cpu0, wall0 = time.process_time(), time.monotonic()
+    threads = [threading.Thread(target=worker, args=(u,)) for u in urls]
+    for t in threads:
+        t.start()
+    for t in threads:
+        t.join()
+    cpu, wall = time.process_time() - cpu0, time.monotonic() - wall0
+    fetcher.close()
+    parent.send("stop")
+    logs = parent.recv()
+    proc.join(5)
+    rates, worst, violations, total = [], 0, 0, 0
+    gaps: list[float] = []
+    for stamps in logs.values():
+        stamps.sort()
+        total += len(stamps)
+        rates.append((len(stamps) - 1) / (stamps[-1] - stamps[0]))
+        worst = max(worst, max_in_window(stamps, 1.0))
+        gaps.append(min(b - a for a, b in itertools.pairwise(stamps)))
+        if max_in_window(stamps, 1.0 - TOLERANCE) > BUDGET:
+            violations += 1
+    return {"hosts": hosts, "requests": total, "achieved": 100 * min(rates) / BUDGET,
+            "mean": 100 * sum(rates) / len(rates) / BUDGET, "worst": worst,
+            "violations": violations, "aggregate": total / wall, "wall": wall,
+            "cpu_per_1000": 1000 * cpu / total, "min_gap": min(gaps)}
+
+
+def main() -> None:
+    print(f"budget per host: {BUDGET} req/s (min_interval {INTERVAL} s); "
+          f"jitter tolerance {TOLERANCE * 1000:.0f} ms")
+    print(f"{'hosts':>5} {'requests':>8} {'achieved min/mean %':>20} {'worst 1 s':>10} "
+          f"{'violations':>10} {'agg req/s':>9} {'wall s':>6} {'CPU s/1000':>10} "
+          f"{'min gap ms':>10}")
+    for hosts, per_host in PLAN:
+        r = run(hosts, per_host)
+        print(f"{r['hosts']:>5} {r['requests']:>8} {r['achieved']:>9.1f} / {r['mean']:<8.1f} "
+              f"{r['worst']:>5}/{BUDGET:<4} {r['violations']:>10} {r['aggregate']:>9.1f} "
+              f"{r['wall']:>6.1f} {r['cpu_per_1000']:>10.2f} {1000 * r['min_gap']:>10.1f}")
+
+
+if __name__ == "__main__":
+    main()

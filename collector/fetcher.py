@@ -1,0 +1,725 @@
+"""The one polite fetcher: every request of a run (robots.txt, API and HTML pages, images).
+
+For each URL, and again for each redirect hop (followed by hand, at most 10):
+
+1. the URL must be http/https and its host must resolve to addresses the recipe allows;
+2. robots.txt of that authority must allow it (fetched once per scheme+host+port, kept 24 h,
+   persisted in the ledger's ``hosts`` table);
+3. the contacted host's budget must allow a request start (:mod:`collector.budgets`);
+4. the request is sent, retried with tenacity on connection errors, timeouts, 429 and 5xx
+   (honouring Retry-After), and every attempt becomes a ``fetches`` row with a redacted URL.
+
+Bodies are streamed with a byte cap on decoded bytes and an overall deadline. Errors raised are
+:class:`collector.errors.FetchError` subclasses whose messages carry only redacted URLs.
+
+DNS rebinding: the address check resolves the name just before each request, but requests
+resolves it again when connecting. A name whose answer changes in between could slip past the
+check; closing that gap needs a connection pinned to the checked address, which we judged not
+worth a custom transport for a client that talks to sites the user chose. IP-literal URLs and
+names with stable answers are fully covered.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json as _json
+import logging
+import os
+import random
+import re
+import socket
+import tempfile
+import threading
+from collections.abc import Callable, Iterable, Mapping
+from dataclasses import dataclass, field
+from datetime import UTC, datetime
+from email.utils import parsedate_to_datetime
+from pathlib import Path
+from typing import Any
+from urllib.parse import urljoin
+
+import requests
+import urllib3.exceptions
+from requests.structures import CaseInsensitiveDict
+from requests.utils import parse_header_links
+from tenacity import Retrying, retry_if_exception_type, stop_after_attempt
+from tenacity.wait import wait_base
+
+from collector import __version__
+from collector.budgets import SYSTEM_CLOCK, Budget, Clock, HostBudgets, budgets_from_recipe
+from collector.errors import (
+    DownloadTimeout,
+    FetchError,
+    HostParked,
+    RobotsDenied,
+    TooLarge,
+    UnsafeURL,
+)
+from collector.robots import (
+    MAX_ROBOTS_BYTES,
+    MAX_ROBOTS_REDIRECTS,
+    ROBOTS_TTL,
+    UNREACHABLE_RETRY,
+    RobotsPolicy,
+    Verdict,
+    policy_from_fetch,
+    policy_from_stored,
+)
+from collector.urls import (
+    add_params,
+    check_address,
+    host_key,
+    parse_allow_list,
+    redact,
+    robots_url,
+    scrub,
+    secret_values,
+    split_checked,
+)
+
+log = logging.getLogger(__name__)
+
+# Retried statuses: 429 (RFC 6585 §4) and the temporary 5xx answers (RFC 9110 §15.6).
+RETRY_STATUSES = frozenset({429, 500, 502, 503, 504})
+# Statuses that ask the client to slow down: the host's budget is throttled too.
+SLOW_DOWN_STATUSES = frozenset({429, 503})
+REDIRECT_STATUSES = frozenset({301, 302, 303, 307, 308})
+CHUNK = 65536
+
+_IMF = re.compile(r"^[A-Z][a-z]{2}, \d{2} [A-Z][a-z]{2} \d{4} \d{2}:\d{2}:\d{2} GMT$")
+_RFC850 = re.compile(r"^[A-Z][a-z]+, \d{2}-[A-Z][a-z]{2}-\d{2} \d{2}:\d{2}:\d{2} GMT$")
+_ASCTIME = re.compile(r"^[A-Z][a-z]{2} [A-Z][a-z]{2} [ \d]\d \d{2}:\d{2}:\d{2} \d{4}$")
+
+
+def parse_http_date(value: str) -> float | None:
+    """Epoch seconds of an HTTP-date in any of the three RFC 9110 §5.6.7 forms, else None.
+
+    asctime carries no zone; email.utils returns it naive and §5.6.7 says it is UTC.
+    """
+    value = value.strip()
+    if not (_IMF.match(value) or _RFC850.match(value) or _ASCTIME.match(value)):
+        return None
+    try:
+        when = parsedate_to_datetime(value)
+    except (TypeError, ValueError):
+        return None
+    if when.tzinfo is None:
+        when = when.replace(tzinfo=UTC)
+    return when.timestamp()
+
+
+def parse_retry_after(value: str | None, now: float) -> tuple[float | None, str | None]:
+    """(seconds to wait, note) for a Retry-After value received at epoch ``now``.
+
+    RFC 9110 §10.2.3: ``HTTP-date / delay-seconds`` with ``delay-seconds = 1*DIGIT``. Anything
+    else ("-1", "1.5", "120s", garbage) is ignored and a note says so; a date in the past
+    means "no wait".
+    """
+    if value is None:
+        return None, None
+    text = value.strip()
+    if text.isascii() and text.isdigit():
+        return float(int(text)), None
+    when = parse_http_date(text)
+    if when is None:
+        return None, f"Retry-After {value[:40]!r} ignored (not delay-seconds or an HTTP-date)"
+    return max(0.0, when - now), None
+
+
+def expand_env(value: str) -> str:
+    """Replace ``${NAME}`` with the environment variable NAME (empty if unset)."""
+    return re.sub(r"\$\{([A-Za-z_][A-Za-z0-9_]*)\}", lambda m: os.environ.get(m[1], ""), value)
+
+
+@dataclass(frozen=True)
+class FetchSettings:
+    """Everything the fetcher needs from the recipe; build with :meth:`from_recipe`."""
+
+    contact: str
+    product_token: str = "collector"
+    budget: Budget = field(default_factory=Budget)
+    host_budgets: Mapping[str, Budget] = field(default_factory=dict)
+    connect_timeout: float = 10.0
+    read_timeout: float = 30.0
+    download_deadline: float = 300.0
+    max_image_bytes: int = 50_000_000
+    max_page_bytes: int = 10_000_000
+    allow_addresses: tuple[str, ...] = ()
+    secret_params: tuple[str, ...] = ()
+    secret_headers: tuple[str, ...] = ("Authorization", "Cookie")
+    headers: Mapping[str, str] = field(default_factory=dict)
+    max_redirects: int = 10
+    max_total_delay: float = 900.0  # s of back-off per request before giving up
+    breaker_threshold: int = 5  # consecutive failed attempts that open a host's breaker
+    breaker_cooldown: float = 600.0  # s a host stays parked after its breaker opens
+    robots_ttl: float = ROBOTS_TTL
+    robots_retry: float = UNREACHABLE_RETRY
+    resolver: Callable[..., list] = socket.getaddrinfo
+
+    @property
+    def user_agent(self) -> str:
+        """The User-Agent header: ``collector/<version> (+<contact>)``."""
+        return f"collector/{__version__} (+{self.contact})"
+
+    @classmethod
+    def from_recipe(cls, recipe: Any, **overrides: Any) -> FetchSettings:
+        """Build settings from a :class:`collector.recipe.Recipe` or a recipe dict.
+
+        A dict may be the parsed TOML (``budgets.hosts`` nested) or ``Recipe.as_dict()``
+        (``"budgets.hosts"`` as a top-level key). ``overrides`` set fields directly (tests).
+        """
+        if isinstance(recipe, Mapping):
+            get = recipe.get
+            budgets = dict(get("budgets") or {})
+            hosts = budgets.pop("hosts", None) or get("budgets.hosts") or {}
+            network = dict(get("network") or {})
+            contact, token = get("contact", ""), get("product_token") or "collector"
+        else:
+            budgets = dict(recipe.budgets)
+            hosts = dict(recipe.host_budgets)
+            network = dict(recipe.network)
+            contact, token = recipe.contact, recipe.product_token or "collector"
+        default, per_host = budgets_from_recipe({**budgets, "hosts": hosts})
+        values: dict[str, Any] = {
+            "contact": contact, "product_token": token, "budget": default,
+            "host_budgets": per_host,
+        }
+        for key in ("connect_timeout", "read_timeout", "download_deadline", "max_image_bytes",
+                    "max_page_bytes"):
+            if key in network:
+                values[key] = network[key]
+        for key in ("allow_addresses", "secret_params", "secret_headers"):
+            if key in network:
+                values[key] = tuple(network[key])
+        if "headers" in network:
+            values["headers"] = dict(network["headers"])
+        values.update(overrides)
+        return cls(**values)
+
+
+@dataclass
+class Page:
+    """A fetched page. ``url`` is the final URL (unredacted: the caller may need its params)."""
+
+    url: str
+    status: int
+    headers: CaseInsensitiveDict
+    body: bytes
+    encoding: str | None = None
+
+    @property
+    def text(self) -> str:
+        """The body decoded with the response charset (UTF-8 if none), bad bytes replaced."""
+        return self.body.decode(self.encoding or "utf-8", errors="replace")
+
+    def json(self) -> Any:
+        """The body parsed as JSON (raises ValueError on bad JSON)."""
+        return _json.loads(self.body.decode(self.encoding or "utf-8-sig", errors="replace"))
+
+    @property
+    def links(self) -> dict[str, dict[str, str]]:
+        """RFC 8288 Link header as {rel: {"url": ..., ...}} (like requests' ``Response.links``)."""
+        out: dict[str, dict[str, str]] = {}
+        header = self.headers.get("Link")
+        if header:
+            for link in parse_header_links(header):
+                key = link.get("rel") or link.get("url")
+                if key:
+                    out[key] = link
+        return out
+
+
+@dataclass
+class Download:
+    """A downloaded body in a temp file of ``dest_dir`` (None on 304); the caller adopts it."""
+
+    url: str
+    final_url: str
+    status: int
+    path: Path | None
+    sha256: str | None
+    size: int
+    content_type: str | None
+    etag: str | None
+    last_modified: str | None
+    not_modified: bool = False
+
+
+class _Retryable(Exception):
+    """One attempt failed in a way worth retrying."""
+
+    def __init__(self, reason: str, status: int | None, detail: str,
+                 retry_after: float | None = None) -> None:
+        super().__init__(detail)
+        self.reason, self.status, self.detail = reason, status, detail
+        self.retry_after = retry_after
+
+
+@dataclass
+class _Body:
+    data: bytes | None = None
+    path: Path | None = None
+    sha256: str | None = None
+    size: int = 0
+
+
+@dataclass
+class _Result:
+    url: str
+    status: int
+    headers: CaseInsensitiveDict
+    body: _Body
+    encoding: str | None
+
+
+class _Wait(wait_base):
+    """Retry-After when the server gave one, else exponential back-off with full jitter."""
+
+    def __init__(self, budget: Budget, rng: random.Random) -> None:
+        self.budget, self.rng = budget, rng
+
+    def __call__(self, retry_state: Any) -> float:
+        exc = retry_state.outcome.exception() if retry_state.outcome else None
+        if isinstance(exc, _Retryable) and exc.retry_after is not None:
+            return exc.retry_after  # RFC 9110 §10.2.3, honoured exactly
+        # Full jitter: uniform in [0, min(cap, base * 2^(n-1))] (common practice, no source).
+        ceiling = min(self.budget.backoff_max,
+                      self.budget.backoff_base * 2 ** (retry_state.attempt_number - 1))
+        return self.rng.uniform(0.0, ceiling)
+
+
+class Fetcher:
+    """The polite fetcher. Thread-safe: one instance serves the whole worker pool."""
+
+    def __init__(self, settings: FetchSettings, ledger: Any | None, *,
+                 clock: Clock = SYSTEM_CLOCK, session: requests.Session | None = None,
+                 run_id: int | None = None, rng: random.Random | None = None) -> None:
+        self.settings = settings
+        self.ledger = ledger
+        self.clock = clock
+        self.run_id = run_id
+        self.rng = rng or random.Random()
+        self.budgets = HostBudgets(settings.budget, settings.host_budgets, clock=clock)
+        self._allowed = parse_allow_list(settings.allow_addresses)
+        self._own_session = session is None
+        self.session = session or requests.Session()
+        if self._own_session:
+            adapter = requests.adapters.HTTPAdapter(pool_connections=100, pool_maxsize=10,
+                                                    max_retries=0)
+            self.session.mount("http://", adapter)
+            self.session.mount("https://", adapter)
+        self.session.trust_env = False  # no proxies from the environment: only what we check
+        self._lock = threading.Lock()
+        self._robots: dict[str, RobotsPolicy] = {}
+        self._robots_locks: dict[str, threading.Lock] = {}
+        self._parked: dict[str, float] = {}  # host -> epoch until
+        self._failures: dict[str, int] = {}
+        self._seen_hosts: set[str] = set()
+
+    # -- public API ----------------------------------------------------------------------------
+    def get_page(self, url: str, *, purpose: str = "listing", item_id: int | None = None,
+                 params: Mapping[str, Any] | None = None,
+                 headers: Mapping[str, str] | None = None,
+                 secret_params: Iterable[str] = ()) -> Page:
+        """GET a page (JSON/HTML) politely; raises FetchError unless the final status is 2xx."""
+        secrets = (*self.settings.secret_params, *secret_params)
+        if params:
+            params = {k: expand_env(v) if isinstance(v, str) else v for k, v in params.items()}
+        full = add_params(url, params)
+        result = self._fetch(full, purpose=purpose, item_id=item_id, headers=headers or {},
+                             secret_params=secrets, max_bytes=self.settings.max_page_bytes)
+        if not 200 <= result.status < 300:
+            raise FetchError(redact(result.url, secrets), f"http_{result.status}", result.status)
+        return Page(result.url, result.status, result.headers, result.body.data or b"",
+                    result.encoding)
+
+    def download(self, url: str, dest_dir: Path, *, item_id: int | None = None,
+                 etag: str | None = None, last_modified: str | None = None,
+                 secret_params: Iterable[str] = ()) -> Download:
+        """Stream ``url`` into a temp file in ``dest_dir``; 304 with ``not_modified=True``."""
+        secrets = (*self.settings.secret_params, *secret_params)
+        cond: dict[str, str] = {}
+        if etag:
+            cond["If-None-Match"] = etag  # RFC 9110 §13.1.2
+        if last_modified:
+            # RFC 9110 §13.1.3: ignored by the server when If-None-Match is present; harmless.
+            cond["If-Modified-Since"] = last_modified
+        result = self._fetch(url, purpose="image", item_id=item_id, headers=cond,
+                             secret_params=secrets, max_bytes=self.settings.max_image_bytes,
+                             dest_dir=Path(dest_dir))
+        hdr = result.headers
+        if result.status == 304:  # RFC 9110 §15.4.5: not modified, no content
+            return Download(url, result.url, 304, None, None, 0, hdr.get("Content-Type"),
+                            hdr.get("ETag") or etag, hdr.get("Last-Modified") or last_modified,
+                            not_modified=True)
+        if not 200 <= result.status < 300:
+            if result.body.path is not None:
+                result.body.path.unlink(missing_ok=True)
+            raise FetchError(redact(result.url, secrets), f"http_{result.status}", result.status)
+        return Download(url, result.url, result.status, result.body.path, result.body.sha256,
+                        result.body.size, hdr.get("Content-Type"), hdr.get("ETag"),
+                        hdr.get("Last-Modified"))
+
+    def robots_verdict(self, url: str) -> Verdict:
+        """What robots.txt says about ``url`` (fetching robots.txt politely if needed)."""
+        return self._robots_policy(url).verdict(url, self.settings.product_token)
+
+    def close(self) -> None:
+        """Close the HTTP session if this fetcher created it."""
+        if self._own_session:
+            self.session.close()
+
+    # -- the pipeline --------------------------------------------------------------------------
+    def _fetch(self, url: str, *, purpose: str, item_id: int | None,
+               headers: Mapping[str, str], secret_params: Iterable[str], max_bytes: int,
+               dest_dir: Path | None = None, robots: bool = False) -> _Result:
+        secret_params = tuple(secret_params)
+        max_hops = MAX_ROBOTS_REDIRECTS if robots else self.settings.max_redirects
+        current = url
+        hops = 0
+        while True:
+            shown = redact(current, secret_params)
+            row = {"purpose": purpose, "item_id": item_id, "url": shown}
+            try:
+                _, host, port = split_checked(current)
+                hk = host_key(current)
+                row["host"] = hk
+                check_address(host, port, self._allowed, self.settings.resolver, shown)
+            except UnsafeURL as exc:
+                self._record(row, attempt=0, error=str(exc))
+                raise
+            self._first_contact(hk)
+            if robots:
+                verdict = Verdict(True, "implicit", None)  # RFC 9309 §2.2.2
+            else:
+                verdict = self._robots_policy(current).verdict(current,
+                                                               self.settings.product_token)
+                if not verdict.allowed:
+                    rule = verdict.rule or "unreachable"
+                    reason = ("robots_unreachable" if verdict.verdict == "unreachable"
+                              else "robots_disallowed")
+                    self._record(row, attempt=0, robots_verdict=verdict.verdict,
+                                 robots_rule=verdict.rule, error=reason)
+                    raise RobotsDenied(shown, rule, reason)
+            self._check_parked(hk, shown, row)
+            result = self._attempts(current, shown, hk, row, verdict, headers, secret_params,
+                                    max_bytes, dest_dir, retry=not robots)
+            location = result.headers.get("Location")
+            if result.status not in REDIRECT_STATUSES or not location:
+                return result
+            if hops >= max_hops:
+                if robots:
+                    return result  # RFC 9309 §2.3.1.2: more than 5 -> unavailable
+                raise FetchError(shown, "redirect_blocked", result.status,
+                                 f"more than {max_hops} redirects")
+            hops += 1
+            current = urljoin(current, location)
+
+    def _attempts(self, url: str, shown: str, hk: str, row: dict[str, Any], verdict: Verdict,
+                  headers: Mapping[str, str], secret_params: tuple[str, ...], max_bytes: int,
+                  dest_dir: Path | None, retry: bool) -> _Result:
+        budget = self.budgets.budget_for(hk)
+        attempts = max(1, int(budget.max_attempts)) if retry else 1
+        secrets = secret_values(url, secret_params)
+        counter = [0]
+
+        def stop_total(state: Any) -> bool:
+            return state.idle_for + state.upcoming_sleep > self.settings.max_total_delay
+
+        def one() -> _Result:
+            counter[0] += 1
+            return self._attempt(url, shown, hk, row, verdict, headers, secrets, max_bytes,
+                                 dest_dir, counter[0], final=counter[0] >= attempts,
+                                 truncate=not retry)
+
+        retrying = Retrying(
+            stop=stop_after_attempt(attempts) | stop_total,
+            wait=_Wait(budget, self.rng),
+            retry=retry_if_exception_type(_Retryable),
+            sleep=self.clock.sleep,
+            reraise=True,
+        )
+        try:
+            return retrying(one)
+        except _Retryable as exc:
+            # Retries are used up: one more failed request for the host's circuit breaker.
+            self._failed(hk, shown)
+            if not retry and exc.status is None:
+                raise
+            raise FetchError(shown, exc.reason, exc.status, exc.detail) from None
+
+    def _attempt(self, url: str, shown: str, hk: str, row: dict[str, Any], verdict: Verdict,
+                 headers: Mapping[str, str], secrets: list[str], max_bytes: int,
+                 dest_dir: Path | None, attempt: int, final: bool, truncate: bool) -> _Result:
+        send_headers = {"User-Agent": self.settings.user_agent, "Accept-Encoding": "gzip"}
+        send_headers.update({k: expand_env(v) for k, v in self.settings.headers.items()})
+        send_headers.update({k: expand_env(v) for k, v in headers.items()})
+        all_secrets = secrets + [v for k, v in send_headers.items()
+                                 if k.lower() in {h.lower() for h in self.settings.secret_headers}]
+        base = {**row, "attempt": attempt, "robots_verdict": verdict.verdict,
+                "robots_rule": verdict.rule}
+        slot = self.budgets.acquire(hk)
+        started = self.clock.time()
+        base.update(started_at=_iso(started), waited_s=round(slot.waited, 3))
+        try:
+            try:
+                resp = self.session.get(
+                    url, headers=send_headers, stream=True, allow_redirects=False,
+                    timeout=(self.settings.connect_timeout, self.settings.read_timeout))
+            except requests.RequestException as exc:
+                reason = "timeout" if isinstance(exc, requests.Timeout) else "connection"
+                detail = scrub(f"{type(exc).__name__}: {exc}", all_secrets)
+                self._record(base, error=f"{reason}: {detail}", ended=True)
+                raise _Retryable(reason, None, detail) from None
+            with resp:
+                return self._handle(resp, url, shown, hk, base, max_bytes, dest_dir,
+                                    all_secrets, slot, truncate)
+        finally:
+            slot.release()
+
+    def _handle(self, resp: requests.Response, url: str, shown: str, hk: str,
+                base: dict[str, Any], max_bytes: int, dest_dir: Path | None,
+                secrets: list[str], slot: Any, truncate: bool) -> _Result:
+        status = resp.status_code
+        hdr = resp.headers
+        meta = {"status": status, "etag": hdr.get("ETag"),
+                "last_modified": hdr.get("Last-Modified"),
+                "content_type": hdr.get("Content-Type")}
+        if status in RETRY_STATUSES:
+            wait, note = parse_retry_after(hdr.get("Retry-After"), self.clock.time())
+            now_mono = self.clock.monotonic()
+            if status in SLOW_DOWN_STATUSES or wait is not None:
+                self.budgets.throttle(hk, now_mono + wait if wait is not None else None,
+                                      slow_down=status in SLOW_DOWN_STATUSES)
+            error = f"http_{status}" + (f"; {note}" if note else "")
+            if wait is not None:
+                error += f"; Retry-After {wait:g} s"
+            self._record({**base, **meta}, error=error, ended=True)
+            budget = self.budgets.budget_for(hk)
+            if wait is not None and wait > budget.max_retry_after:
+                until = self.clock.time() + wait
+                self._park(hk, until, now_mono + wait)
+                raise HostParked(shown, hk, until,
+                                 f"Retry-After {wait:g} s is over the {budget.max_retry_after:g}"
+                                 " s cap (budgets.max_retry_after)")
+            raise _Retryable(f"http_{status}", status, error, wait)
+        body = _Body()
+        if status not in REDIRECT_STATUSES and status != 304:
+            try:
+                body = self._read_body(resp, shown, max_bytes, dest_dir, slot, truncate)
+            except (TooLarge, DownloadTimeout) as exc:
+                self._record({**base, **meta}, error=str(exc), ended=True, size=exc_size(exc))
+                raise
+            except _Retryable as exc:
+                exc.detail = scrub(exc.detail, secrets)
+                self._record({**base, **meta}, error=exc.detail, ended=True)
+                raise
+        self._record({**base, **meta}, ended=True, size=body.size)
+        self._succeeded(hk)
+        return _Result(url, status, hdr, body, resp.encoding if "charset" in
+                       (hdr.get("Content-Type") or "").lower() else None)
+
+    def _read_body(self, resp: requests.Response, shown: str, max_bytes: int,
+                   dest_dir: Path | None, slot: Any, truncate: bool) -> _Body:
+        """Stream the body with a decoded-byte cap and an overall deadline (libraries.md §6)."""
+        length = resp.headers.get("Content-Length")
+        if not truncate and length and length.isdigit() and int(length) > max_bytes:
+            raise TooLarge(shown, max_bytes, f"Content-Length {int(length):,} is over the "
+                                             f"{max_bytes:,}-byte cap")
+        deadline = self.clock.monotonic() + self.settings.download_deadline
+        digest = hashlib.sha256()
+        size = 0
+        chunks: list[bytes] = []
+        handle = None
+        path: Path | None = None
+        if dest_dir is not None:
+            dest_dir.mkdir(parents=True, exist_ok=True)
+            fd, name = tempfile.mkstemp(prefix=".part-", dir=dest_dir)
+            handle, path = os.fdopen(fd, "wb"), Path(name)
+        try:
+            while True:
+                try:
+                    # read1 returns what has arrived, so the deadline check below runs even
+                    # against a server that drips one byte at a time (libraries.md §6).
+                    chunk = resp.raw.read1(CHUNK, decode_content=True)
+                except (urllib3.exceptions.ReadTimeoutError, TimeoutError) as exc:
+                    raise _Retryable("timeout", resp.status_code, f"read timeout: {exc}") from None
+                except (urllib3.exceptions.HTTPError, OSError) as exc:
+                    raise _Retryable("connection", resp.status_code,
+                                     f"{type(exc).__name__}: {exc}") from None
+                if not chunk:
+                    break
+                if size + len(chunk) > max_bytes:
+                    if truncate:  # robots.txt: parse the first MAX bytes (RFC 9309 §2.5)
+                        chunk = chunk[: max_bytes - size]
+                    else:
+                        err = TooLarge(shown, max_bytes, f"more than {max_bytes:,} bytes "
+                                                         "after decoding")
+                        err.size = size + len(chunk)  # type: ignore[attr-defined]
+                        raise err
+                size += len(chunk)
+                slot.add_bytes(len(chunk))
+                digest.update(chunk)
+                if handle is not None:
+                    handle.write(chunk)
+                else:
+                    chunks.append(chunk)
+                if truncate and size >= max_bytes:
+                    break
+                if self.clock.monotonic() > deadline:
+                    err2 = DownloadTimeout(shown, self.settings.download_deadline)
+                    err2.size = size  # type: ignore[attr-defined]
+                    raise err2
+            if handle is not None:
+                handle.flush()
+                os.fsync(handle.fileno())
+                handle.close()
+                handle = None
+        except BaseException:
+            if handle is not None:
+                handle.close()
+            if path is not None:
+                path.unlink(missing_ok=True)
+            raise
+        return _Body(data=None if path else b"".join(chunks), path=path,
+                     sha256=digest.hexdigest(), size=size)
+
+    # -- robots.txt ----------------------------------------------------------------------------
+    def _robots_policy(self, url: str) -> RobotsPolicy:
+        target = robots_url(url)
+        with self._lock:
+            lock = self._robots_locks.setdefault(target, threading.Lock())
+        with lock:  # one fetch per authority even with many workers
+            now = self.clock.time()
+            cached = self._robots.get(target)
+            if cached is not None and cached.is_fresh(now, self.settings.robots_ttl,
+                                                      self.settings.robots_retry):
+                return cached
+            hk = host_key(url)
+            if cached is None and self.ledger is not None:
+                stored = self._stored_policy(hk, target)
+                if stored is not None and stored.is_fresh(now, self.settings.robots_ttl,
+                                                          self.settings.robots_retry):
+                    self._use_policy(target, hk, stored)
+                    return stored
+            policy = self._fetch_robots(target)
+            self._use_policy(target, hk, policy)
+            if self.ledger is not None:
+                self.ledger.put_host(
+                    hk, robots_url=target, robots_fetched_at=_iso(policy.fetched_at),
+                    robots_status=policy.status, robots_sha256=policy.sha256,
+                    robots_body=policy.body if policy.body else None,
+                    effective_budget=self.budgets.effective(hk))
+            return policy
+
+    def _use_policy(self, target: str, hk: str, policy: RobotsPolicy) -> None:
+        self._robots[target] = policy
+        self.budgets.apply_hints(hk, policy.hints(self.settings.product_token))
+
+    def _stored_policy(self, hk: str, target: str) -> RobotsPolicy | None:
+        row = self.ledger.get_host(hk) if self.ledger is not None else None
+        if not row or row.get("robots_url") != target or not row.get("robots_fetched_at"):
+            return None
+        fetched = _from_iso(row["robots_fetched_at"])
+        if fetched is None:
+            return None
+        return policy_from_stored(row.get("robots_status"), row.get("robots_body"), fetched,
+                                  row.get("robots_sha256"))
+
+    def _fetch_robots(self, target: str) -> RobotsPolicy:
+        """Fetch robots.txt once (no retries: 5xx/unreachable means disallow, retried later)."""
+        fetched_at = self.clock.time()
+        try:
+            result = self._fetch(target, purpose="robots", item_id=None, headers={},
+                                 secret_params=(), max_bytes=MAX_ROBOTS_BYTES, robots=True)
+        except HostParked:
+            raise
+        except (FetchError, _Retryable) as exc:
+            # A final 429 is "unavailable" (§2.3.1.3); 5xx, a network error or an unsafe
+            # redirect is "unreachable" -> complete disallow (§2.3.1.4). classify_status decides.
+            status = getattr(exc, "status", None)
+            return policy_from_fetch(status if isinstance(exc, _Retryable) or
+                                     exc.reason.startswith("http_") else None, b"", fetched_at)
+        return policy_from_fetch(result.status, result.body.data or b"", fetched_at)
+
+    # -- failures, parking ---------------------------------------------------------------------
+    def _first_contact(self, hk: str) -> None:
+        """Load a host's persisted parking (a resumed run keeps honouring it)."""
+        with self._lock:
+            if hk in self._seen_hosts:
+                return
+            self._seen_hosts.add(hk)
+        if self.ledger is None:
+            return
+        row = self.ledger.get_host(hk)
+        until = (row or {}).get("parked_until")
+        if until and until > self.clock.time():
+            self._park(hk, float(until), self.clock.monotonic() + until - self.clock.time(),
+                       persist=False)
+
+    def _check_parked(self, hk: str, shown: str, row: dict[str, Any]) -> None:
+        with self._lock:
+            until = self._parked.get(hk)
+        if until is not None and until > self.clock.time():
+            self._record(row, attempt=0, error="host_parked")
+            raise HostParked(shown, hk, until, "parked earlier in this run; try it later")
+
+    def _park(self, hk: str, until: float, until_mono: float, persist: bool = True) -> None:
+        with self._lock:
+            self._parked[hk] = max(until, self._parked.get(hk, 0.0))
+            failures = self._failures.get(hk, 0)
+        self.budgets.park(hk, until_mono)
+        if persist and self.ledger is not None:
+            self.ledger.put_host(hk, parked_until=until, failures=failures)
+
+    def _failed(self, hk: str, shown: str) -> None:
+        """Count a failed request (retries used up); at the threshold the breaker opens."""
+        with self._lock:
+            count = self._failures.get(hk, 0) + 1
+            self._failures[hk] = count
+        if count >= self.settings.breaker_threshold:
+            cooldown = self.settings.breaker_cooldown
+            until = self.clock.time() + cooldown
+            self._park(hk, until, self.clock.monotonic() + cooldown)
+            with self._lock:
+                self._failures[hk] = 0  # half-open after the cooldown
+            raise HostParked(shown, hk, until,
+                             f"{count} consecutive failures; retrying after {cooldown:g} s")
+
+    def _succeeded(self, hk: str) -> None:
+        with self._lock:
+            self._failures[hk] = 0
+
+    # -- ledger --------------------------------------------------------------------------------
+    def _record(self, row: dict[str, Any], *, attempt: int | None = None,
+                error: str | None = None, ended: bool = False, size: int | None = None,
+                **extra: Any) -> None:
+        if self.ledger is None:
+            return
+        now = _iso(self.clock.time())
+        fields = {**row, **extra, "run_id": self.run_id, "error": error}
+        if attempt is not None:
+            fields["attempt"] = attempt
+        fields.setdefault("started_at", now)
+        if ended or attempt == 0:
+            fields["ended_at"] = now
+        if size is not None:
+            fields["bytes"] = size
+        self.ledger.record_fetch(**fields)
+
+
+def exc_size(exc: BaseException) -> int | None:
+    """Bytes read before a TooLarge/DownloadTimeout was raised, if known."""
+    return getattr(exc, "size", None)
+
+
+def _iso(epoch: float) -> str:
+    return (datetime.fromtimestamp(epoch, UTC).isoformat(timespec="milliseconds")
+            .replace("+00:00", "Z"))
+
+
+def _from_iso(text: str) -> float | None:
+    try:
+        return datetime.fromisoformat(text.replace("Z", "+00:00")).timestamp()
+    except ValueError:
+        return None

@@ -1,0 +1,142 @@
+"""Retry-After parsing, back-off and settings: narrow unit tests (fake clock, `responses` mocks)."""
+
+from __future__ import annotations
+
+import random
+from pathlib import Path
+
+import pytest
+import responses
+
+from collector.budgets import FakeClock
+from collector.errors import FetchError, HostParked
+from collector.fetcher import Fetcher, FetchSettings, parse_http_date, parse_retry_after
+from collector.recipe import parse_recipe
+
+# RFC 9110 §5.6.7 examples; all three forms are Unix 784111777 (standards.md §4).
+DATE_FORMS = [
+    "Sun, 06 Nov 1994 08:49:37 GMT",  # IMF-fixdate
+    "Sunday, 06-Nov-94 08:49:37 GMT",  # obsolete RFC 850
+    "Sun Nov  6 08:49:37 1994",  # obsolete asctime, naive -> UTC
+]
+
+
+@pytest.mark.parametrize("value", DATE_FORMS)
+def test_all_three_http_date_forms_parse_to_the_same_instant(value: str) -> None:
+    """IMF-fixdate, RFC 850 and asctime all give 784111777 (RFC 9110 §5.6.7)."""
+    assert parse_http_date(value) == 784111777.0
+
+
+def test_retry_after_delay_seconds_and_date_check_values() -> None:
+    """'120' -> 120 s; 'Fri, 31 Dec 1999 23:59:59 GMT' is Unix 946684799 (RFC 9110 §10.2.3)."""
+    assert parse_retry_after("120", now=0.0) == (120.0, None)
+    assert parse_retry_after("Fri, 31 Dec 1999 23:59:59 GMT", now=946684789.0) == (10.0, None)
+
+
+def test_retry_after_date_in_the_past_means_no_wait() -> None:
+    """A date already passed asks for no further delay."""
+    assert parse_retry_after(DATE_FORMS[0], now=784111800.0) == (0.0, None)
+
+
+@pytest.mark.parametrize("value", ["-1", "1.5", "", "120s", "soon", "Sun, 06 Nov 1994"])
+def test_invalid_retry_after_values_are_ignored_with_a_note(value: str) -> None:
+    """Values outside `HTTP-date / 1*DIGIT` are ignored and noted (RFC 9110 §10.2.3 ABNF)."""
+    wait, note = parse_retry_after(value, now=0.0)
+    assert wait is None and note and "ignored" in note
+
+
+def _settings(**kw: object) -> FetchSettings:
+    recipe = {"contact": "curator@example.org",
+              "budgets": {"min_interval": 0.0, "max_attempts": 4, "backoff_base": 1.0,
+                          "backoff_max": 300.0},
+              "network": {"allow_addresses": ["127.0.0.1"]}}
+    return FetchSettings.from_recipe(recipe, **kw)
+
+
+BASE = "http://127.0.0.1:8123"
+
+
+@responses.activate
+def test_backoff_is_exponential_with_full_jitter() -> None:
+    """No Retry-After: wait n is uniform in [0, base * 2^(n-1)] (common practice, no source)."""
+    responses.get(f"{BASE}/robots.txt", status=404)
+    responses.get(f"{BASE}/x", status=502)
+    clock = FakeClock()
+    fetcher = Fetcher(_settings(), None, clock=clock, rng=random.Random(4))
+    with pytest.raises(FetchError) as err:
+        fetcher.get_page(f"{BASE}/x")
+    assert err.value.reason == "http_502" and err.value.status == 502
+    assert len(clock.sleeps) == 3
+    for n, slept in enumerate(clock.sleeps, start=1):
+        assert 0.0 <= slept <= 2 ** (n - 1)
+
+
+@responses.activate
+def test_retry_after_is_slept_exactly_through_the_clock() -> None:
+    """A 503 with Retry-After: 7 sleeps exactly 7 s on the injected clock, then retries."""
+    responses.get(f"{BASE}/robots.txt", status=404)
+    responses.get(f"{BASE}/y", status=503, headers={"Retry-After": "7"})
+    responses.get(f"{BASE}/y", status=200, body=b"ok")
+    clock = FakeClock()
+    page = Fetcher(_settings(), None, clock=clock).get_page(f"{BASE}/y")
+    assert page.body == b"ok" and 7.0 in clock.sleeps
+    assert sum(clock.sleeps) == pytest.approx(7.0)
+
+
+@responses.activate
+def test_total_back_off_is_capped() -> None:
+    """Retrying stops before the summed waits pass max_total_delay."""
+    responses.get(f"{BASE}/robots.txt", status=404)
+    responses.get(f"{BASE}/z", status=429, headers={"Retry-After": "60"})
+    clock = FakeClock()
+    with pytest.raises(FetchError):
+        Fetcher(_settings(max_total_delay=100.0), None, clock=clock).get_page(f"{BASE}/z")
+    assert sum(clock.sleeps) <= 100.0
+    assert len(responses.calls) == 1 + 2  # robots.txt + two attempts (60 s + 60 s > 100 s)
+
+
+@responses.activate
+def test_retry_after_over_cap_parks_without_sleeping() -> None:
+    """Retry-After: 3600 over a 600 s cap raises HostParked at once; nothing sleeps an hour."""
+    responses.get(f"{BASE}/robots.txt", status=404)
+    responses.get(f"{BASE}/p", status=429, headers={"Retry-After": "3600"})
+    clock = FakeClock()
+    settings = FetchSettings.from_recipe(
+        {"contact": "c@example.org", "budgets": {"min_interval": 0.0, "max_retry_after": 600},
+         "network": {"allow_addresses": ["127.0.0.1"]}})
+    with pytest.raises(HostParked) as err:
+        Fetcher(settings, None, clock=clock).get_page(f"{BASE}/p")
+    assert err.value.until == pytest.approx(clock.time() + 3600.0)
+    assert clock.sleeps == []
+
+
+@responses.activate
+def test_not_found_is_not_retried() -> None:
+    """A 404 is final: one attempt, FetchError http_404."""
+    responses.get(f"{BASE}/robots.txt", status=404)
+    responses.get(f"{BASE}/gone", status=404)
+    with pytest.raises(FetchError) as err:
+        Fetcher(_settings(), None, clock=FakeClock()).get_page(f"{BASE}/gone")
+    assert err.value.reason == "http_404" and len(responses.calls) == 2
+
+
+def test_settings_are_built_from_a_validated_recipe(tmp_path: Path) -> None:
+    """FetchSettings.from_recipe reads contact, token, budgets, host overrides and network."""
+    text = """
+contact = "curator@example.org"
+product_token = "fernbot"
+[budgets]
+min_interval = 2.0
+[budgets.hosts."127.0.0.2:8080"]
+min_interval = 0.5
+[network]
+allow_addresses = ["127.0.0.2"]
+max_image_bytes = 1000
+secret_params = ["key"]
+"""
+    recipe = parse_recipe(text, tmp_path / "recipe.toml")
+    s = FetchSettings.from_recipe(recipe)
+    assert s.user_agent.startswith("collector/") and s.user_agent.endswith("(+curator@example.org)")
+    assert (s.product_token, s.budget.min_interval, s.max_image_bytes) == ("fernbot", 2.0, 1000)
+    assert s.host_budgets["127.0.0.2:8080"].min_interval == 0.5
+    assert s.allow_addresses == ("127.0.0.2",) and s.secret_params == ("key",)
