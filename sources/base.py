@@ -69,7 +69,7 @@ class Page(Protocol):
     headers: Mapping[str, str]
     body: bytes
     text: str
-    links: Mapping[str, str]
+    links: Mapping[str, Any]  # rel -> URL, or rel -> {"url": URL, ...} (collector.fetcher)
 
     def json(self) -> Any: ...
 

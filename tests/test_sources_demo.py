@@ -14,6 +14,7 @@ from test_sources_helpers import RequestsFetcher, collect
 from test_splitter import iou
 
 demo_site = pytest.importorskip("demo_site", reason="demo_site has not been merged yet")
+from collector.fetcher import Fetcher, FetchSettings  # noqa: E402
 from demo_site import DemoServer, generate  # noqa: E402
 from demo_site.recipes import render  # noqa: E402
 
@@ -104,3 +105,20 @@ def test_scanner_beds_split_into_the_manifest_boxes(demo: tuple[DemoServer, Path
                     assert score >= 0.8, (key, box, best.crop_box)
                 else:
                     assert score >= 0.9, (key, box, best.crop_box)
+
+
+@pytest.mark.parametrize("name", ["api-pages", "api-objects", "api-linked", "gallery"])
+def test_web_source_through_the_real_fetcher_lists_the_same_items(
+        demo: tuple[DemoServer, Path], name: str) -> None:
+    """Through collector.fetcher (robots.txt, budgets, Link parsing) the adapters list the
+    same item keys as the manifest."""
+    server, folder = demo
+    recipe = tomllib.loads(render("demo", server.port, folder / "scans"))
+    recipe["budgets"].update(min_interval=0.0, requests_per_hour=1_000_000)
+    fetcher = Fetcher(FetchSettings.from_recipe(recipe), None)
+    try:
+        cands, notes = collect(demo_sources(server, folder)[name], fetcher, folder)
+    finally:
+        fetcher.close()
+    assert {c.source_key for c in cands} == set(expected(server, name))
+    assert [n for n in notes if n.kind in ("bad_json", "wrong_shape", "loop", "max_pages")] == []

@@ -18,7 +18,7 @@ from test_sources_helpers import (
 )
 
 from collector.errors import RobotsDenied
-from sources.json_api import FieldMap, map_fields, pick_candidate
+from sources.json_api import FieldMap, link_target, map_fields, pick_candidate
 
 
 @pytest.fixture
@@ -384,3 +384,10 @@ def test_refused_listing_request_propagates_to_the_caller() -> None:
 
     with pytest.raises(RobotsDenied):
         collect(simple_recipe("http://127.0.0.1:9/api"), Refusing({}))
+
+
+def test_link_target_accepts_both_link_map_shapes() -> None:
+    """page.links may map rel to a URL or to {"url": ...} (requests/collector.fetcher style)."""
+    assert link_target({"next": "/p2"}, "next") == "/p2"
+    assert link_target({"next": {"url": "/p2", "rel": "next"}}, "next") == "/p2"
+    assert link_target({"prev": "/p0"}, "next") is None and link_target(None, "next") is None
