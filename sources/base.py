@@ -14,6 +14,7 @@ from pathlib import Path
 from typing import Any, Protocol
 from urllib.parse import parse_qsl, urlencode, urljoin, urlsplit, urlunsplit
 
+from collector import urls
 from collector.errors import FetchError, RecipeProblem, SourceError
 
 __all__ = [
@@ -68,7 +69,7 @@ class Page(Protocol):
     headers: Mapping[str, str]
     body: bytes
     text: str
-    links: Mapping[str, str]
+    links: Mapping[str, Any]  # rel -> URL, or rel -> {"url": URL, ...} (collector.fetcher)
 
     def json(self) -> Any: ...
 
@@ -127,15 +128,7 @@ def strip_fragment(url: str) -> str:
 
 def redact(url: str | None, secret_params: Iterable[str]) -> str | None:
     """URL with the values of secret query parameters replaced, for notes and messages."""
-    secrets = {s.lower() for s in secret_params}
-    if url is None or not secrets:
-        return url
-    parts = urlsplit(url)
-    query = [
-        (k, "REDACTED" if k.lower() in secrets else v)
-        for k, v in parse_qsl(parts.query, keep_blank_values=True)
-    ]
-    return urlunsplit((parts.scheme, parts.netloc, parts.path, urlencode(query), parts.fragment))
+    return None if url is None else urls.redact(url, secret_params)
 
 
 def merge_query(url: str, params: Mapping[str, str]) -> str:

@@ -301,8 +301,11 @@ class _Walker:
         try:
             page = self.fetcher.get_page(url, purpose=purpose)
         except FetchError as exc:
-            self.notes.add("fetch_failed", exc.url, f"{purpose} page request failed: {exc}",
-                           once_key=f"{purpose}:{exc.reason}" if purpose == "detail" else None)
+            if purpose == "listing":
+                raise  # the source cannot go on; the orchestrator records exc.reason
+            self.notes.add("fetch_failed", exc.url, f"detail page request failed: {exc}; "
+                           "such items keep their listing values (reported once per reason)",
+                           once_key=exc.reason)
             return None
         if page.status >= 400:
             self.notes.add("http_error", page.url, f"{purpose} page answered HTTP {page.status}")

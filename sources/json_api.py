@@ -403,6 +403,14 @@ def map_fields(data: Any, fm: FieldMap, base_url: str) -> dict[str, Any]:
     return out
 
 
+def link_target(links: Mapping[str, Any] | None, rel: str) -> str | None:
+    """The target of one relation in page.links, as {rel: url} or {rel: {"url": url, ...}}."""
+    value = (links or {}).get(rel)
+    if isinstance(value, Mapping):
+        value = value.get("url")
+    return value if isinstance(value, str) and value.strip() else None
+
+
 def _describe_answer(page: Page) -> str:
     ctype = page.headers.get("Content-Type") or page.headers.get("content-type") or "none"
     start = page.text[:60].strip().replace("\n", " ") if page.text else ""
@@ -437,7 +445,11 @@ class _Walker:
                                          headers=cfg.headers or None,
                                          secret_params=cfg.secret_params)
         except FetchError as exc:
-            self.notes.add("fetch_failed", exc.url, f"{purpose} request failed: {exc}")
+            if purpose == "listing":
+                raise  # the source cannot go on; the orchestrator records exc.reason
+            self.notes.add("fetch_failed", exc.url, f"detail request failed: {exc}; items "
+                           "whose detail request fails use the listing only (reported once per "
+                           "reason)", once_key=exc.reason)
             return None
         where = self._red(page.url)
         if page.status >= 400:
@@ -521,7 +533,7 @@ class _Walker:
                 if cfg.style == "next_url":
                     nxt = as_text(cfg.next.search(body)) if cfg.next else None
                 else:
-                    nxt = page.links.get("next") if page.links else None
+                    nxt = link_target(page.links, "next")
                 nxt = resolve_url(page.url, nxt)
                 if nxt is None:
                     return

@@ -21,7 +21,7 @@ DEFAULT_MIN_AREA = 2000  # px in the full-size scan (common practice, no source)
 DEFAULT_MIN_SOLIDITY = 0.85  # below this a component is probably several touching items
 DEFAULT_MIN_CONTRAST = 25.0  # grey levels between the two Otsu classes; less = blank bed
 DEFAULT_MAX_SIDE = 2000  # px; larger scans are analysed on a reduced copy
-AREA_OUTLIER = 2.2  # x the median item area, with >= 3 items: probably two items merged
+AREA_OUTLIER = 1.5  # x the median item area, with >= 3 items: probably two items merged
 MIN_DESKEW_DEGREES = 0.3
 
 
@@ -84,7 +84,7 @@ def min_area_rect(points: np.ndarray) -> tuple[float, float, float, tuple[float,
     best: tuple[float, float, float, tuple[float, float]] | None = None
     best_area = math.inf
     edges = np.roll(hull, -1, axis=0) - hull
-    for theta in np.unique(np.round(np.arctan2(edges[:, 1], edges[:, 0]) % (math.pi / 2), 6)):
+    for theta in np.unique(np.arctan2(edges[:, 1], edges[:, 0]) % (math.pi / 2)):
         c, s = math.cos(theta), math.sin(theta)
         u = hull[:, 0] * c + hull[:, 1] * s  # along the edge
         v = -hull[:, 0] * s + hull[:, 1] * c  # across it
@@ -112,15 +112,27 @@ def _pixel_corners(mask: np.ndarray) -> np.ndarray:
     return np.unique(pts, axis=0)
 
 
-def find_items(gray: np.ndarray, *, scale: int = 1, min_area: int = DEFAULT_MIN_AREA,
-               threshold: int | None = None, min_solidity: float = DEFAULT_MIN_SOLIDITY,
+def chroma_threshold(chroma: np.ndarray, background: np.ndarray) -> int:
+    """Chroma above which a pixel is item, not bed: twice the bed's own colour noise, >= 24."""
+    sample = chroma[background]
+    if sample.size > 200_000:  # a strided sample is plenty for a percentile
+        sample = sample[:: sample.size // 200_000]
+    noise = float(np.percentile(sample, 99.9)) if sample.size else 0.0
+    return max(24, round(2 * noise))
+
+
+def find_items(gray: np.ndarray, *, chroma: np.ndarray | None = None, scale: int = 1,
+               min_area: int = DEFAULT_MIN_AREA, threshold: int | None = None,
+               min_solidity: float = DEFAULT_MIN_SOLIDITY,
                min_contrast: float = DEFAULT_MIN_CONTRAST,
                full_size: tuple[int, int] | None = None) -> SplitResult:
     """Items on a greyscale scan (uint8 array, already reduced by `scale`), boxes in full size.
 
-    Items are darker than the near-white bed. Steps: threshold (Otsu unless given), drop specks
-    (opening), bridge small gaps (closing), fill holes, label 8-connected components, keep the
-    ones of at least min_area full-size pixels, and flag probable touching items.
+    Items are darker than the near-white bed, or coloured where the bed and the shadows on it
+    are neutral grey (chroma = max - min of R, G, B, if given). Steps: threshold (Otsu unless
+    given), drop specks (opening), bridge small gaps (closing, scaled to the image), fill
+    holes, label 8-connected components, keep the ones of at least min_area full-size pixels,
+    and flag probable touching items.
     """
     hist = np.bincount(gray.ravel(), minlength=256)[:256]
     t, contrast = otsu_threshold(hist)
@@ -129,11 +141,17 @@ def find_items(gray: np.ndarray, *, scale: int = 1, min_area: int = DEFAULT_MIN_
     elif contrast < min_contrast:
         return SplitResult([], t, contrast, scale, True)
     mask = gray <= t
+    if chroma is not None:
+        mask |= chroma >= chroma_threshold(chroma, ~mask)
+    raw = mask
     st = np.ones((3, 3), dtype=bool)
     mask = ndimage.binary_opening(mask, structure=st)
-    pad = 4  # closing near the border would otherwise erode items that touch it
+    # Bridge gaps of up to ~0.6% of the longer side (about 9 px at 1500 px): perforated or
+    # broken outlines close, so fill_holes can fill the item (common practice, no source).
+    reach = max(2, round(max(gray.shape) / 330))
+    pad = reach + 2  # closing near the border would otherwise erode items that touch it
     mask = np.pad(mask, pad)
-    mask = ndimage.binary_closing(mask, structure=st, iterations=2)[pad:-pad, pad:-pad]
+    mask = ndimage.binary_closing(mask, structure=st, iterations=reach)[pad:-pad, pad:-pad]
     mask = ndimage.binary_fill_holes(mask)
     mask = ndimage.binary_opening(mask, structure=st, iterations=2)
     labels, count = ndimage.label(mask, structure=st)
@@ -152,9 +170,9 @@ def find_items(gray: np.ndarray, *, scale: int = 1, min_area: int = DEFAULT_MIN_
             hull_area = float(areas[index])
         solidity = min(1.0, float(areas[index]) / hull_area) if hull_area > 0 else 1.0
         angle, rw, rh, (cx, cy) = min_area_rect(pts)
-        box = (x0 * scale, y0 * scale,
-               min(full_w, sl[1].stop * scale) - x0 * scale,
-               min(full_h, sl[0].stop * scale) - y0 * scale)
+        bx0, by0, bx1, by1 = _raw_extent(raw, labels, index, sl, reach + 2)
+        box = (bx0 * scale, by0 * scale,
+               min(full_w, bx1 * scale) - bx0 * scale, min(full_h, by1 * scale) - by0 * scale)
         found.append(SplitItem(
             box=box, angle=angle, rect_size=(rw * scale, rh * scale),
             rect_center=((cx + x0) * scale, (cy + y0) * scale),
@@ -162,6 +180,22 @@ def find_items(gray: np.ndarray, *, scale: int = 1, min_area: int = DEFAULT_MIN_
             touching=solidity < min_solidity))
     found = _flag_area_outliers(found)
     return SplitResult(reading_order(found), t, contrast, scale, not found)
+
+
+def _raw_extent(raw: np.ndarray, labels: np.ndarray, index: int, sl: tuple[slice, slice],
+                margin: int) -> tuple[int, int, int, int]:
+    """Extent (x0, y0, x1, y1) of the unsmoothed mask near one component.
+
+    Opening shaves thin parts (leaf tips, stalks); the raw threshold mask within a few pixels of
+    the cleaned component gives them back without picking up distant specks.
+    """
+    y0, x0 = max(0, sl[0].start - margin), max(0, sl[1].start - margin)
+    y1, x1 = min(raw.shape[0], sl[0].stop + margin), min(raw.shape[1], sl[1].stop + margin)
+    near = ndimage.binary_dilation(labels[y0:y1, x0:x1] == index, iterations=margin)
+    ys, xs = np.nonzero(raw[y0:y1, x0:x1] & near)
+    if ys.size == 0:
+        return sl[1].start, sl[0].start, sl[1].stop, sl[0].stop
+    return x0 + int(xs.min()), y0 + int(ys.min()), x0 + int(xs.max()) + 1, y0 + int(ys.max()) + 1
 
 
 def _flag_area_outliers(items: list[SplitItem]) -> list[SplitItem]:
@@ -200,7 +234,12 @@ def analyse_scan(im: Image.Image, *, min_area: int = DEFAULT_MIN_AREA,
     scale = max(1, math.ceil(max(im.size) / max_side))
     small = im.reduce(scale) if scale > 1 else im
     gray = np.asarray(_to_grey(small), dtype=np.uint8)
-    return find_items(gray, scale=scale, min_area=min_area, threshold=threshold,
+    chroma = None
+    if small.mode in ("RGB", "RGBA", "P", "CMYK", "YCbCr", "LAB", "HSV"):
+        rgb = np.asarray(small.convert("RGB"), dtype=np.int16)
+        chroma = (rgb.max(axis=2) - rgb.min(axis=2)).astype(np.uint8)
+        del rgb
+    return find_items(gray, chroma=chroma, scale=scale, min_area=min_area, threshold=threshold,
                       min_solidity=min_solidity, full_size=im.size)
 
 

@@ -17,7 +17,8 @@ from test_sources_helpers import (
     serve,
 )
 
-from sources.json_api import FieldMap, map_fields, pick_candidate
+from collector.errors import RobotsDenied
+from sources.json_api import FieldMap, link_target, map_fields, pick_candidate
 
 
 @pytest.fixture
@@ -351,3 +352,42 @@ def test_candidate_urls_resolve_against_the_answer_url() -> None:
     fm = FieldMap.from_table({"image_candidates": "m", "candidate_url": "h"})
     out = map_fields({"m": [{"h": "../x.png"}]}, fm, "http://127.0.0.1:9/a/b/c")
     assert out["image_url"] == "http://127.0.0.1:9/a/x.png"
+
+
+class FailingDetails(FakeFetcher):
+    """A fake fetcher whose detail requests are refused by robots.txt."""
+
+    def get_page(self, url: str, **kw: Any) -> Any:
+        """Raise RobotsDenied for detail requests; answer listings from memory."""
+        if kw.get("purpose") == "detail":
+            raise RobotsDenied(url, "Disallow: /item/")
+        return super().get_page(url, **kw)
+
+
+def test_failed_detail_requests_keep_listing_values_with_one_note() -> None:
+    """Refused detail requests give one note per reason; items keep their listing values."""
+    base = "http://127.0.0.1:9/api"
+    items = [{"id": n, "u": f"/{n}.jpg"} for n in (1, 2, 3)]
+    recipe = simple_recipe(base)
+    recipe["detail"] = {"url": "http://127.0.0.1:9/item/{id}", "fields": {"licence": "lic"}}
+    cands, notes = collect(recipe, FailingDetails({base: json_answer({"items": items})}))
+    assert [c.image_url for c in cands] == [f"http://127.0.0.1:9/{n}.jpg" for n in (1, 2, 3)]
+    assert [n.kind for n in notes] == ["fetch_failed"]
+    assert "robots_disallowed" in notes[0].message
+
+
+def test_refused_listing_request_propagates_to_the_caller() -> None:
+    """A FetchError on the listing itself is raised for the orchestrator to record."""
+    class Refusing(FakeFetcher):
+        def get_page(self, url: str, **kw: Any) -> Any:
+            raise RobotsDenied(url, "Disallow: /")
+
+    with pytest.raises(RobotsDenied):
+        collect(simple_recipe("http://127.0.0.1:9/api"), Refusing({}))
+
+
+def test_link_target_accepts_both_link_map_shapes() -> None:
+    """page.links may map rel to a URL or to {"url": ...} (requests/collector.fetcher style)."""
+    assert link_target({"next": "/p2"}, "next") == "/p2"
+    assert link_target({"next": {"url": "/p2", "rel": "next"}}, "next") == "/p2"
+    assert link_target({"prev": "/p0"}, "next") is None and link_target(None, "next") is None
