@@ -135,6 +135,7 @@ def gather(
     flight and exits 130. Example: collector gather my-leaves --until 07:00
     """
     from collector.collection import open_collection
+    from collector.display import LiveProgress
     from collector.run import Gatherer, build_fetcher, prepared_run, stop_rules
     from collector.summary import estimate, format_estimate, format_summary, summarise
 
@@ -154,8 +155,7 @@ def gather(
                 gatherer = Gatherer(collection, recipe, ledger, fetcher, stop=stop,
                                     progress=progress)
                 options = {"until": until, "for": duration, "max_items": max_items}
-                if hasattr(progress, "attach"):
-                    progress.attach(gatherer)
+                if isinstance(progress, LiveProgress):
                     with progress:
                         result = gatherer.run(options)
                 else:
@@ -291,3 +291,58 @@ def trace(
         for line in format_summary(results):
             typer.echo(line)
     raise typer.Exit(0 if all(r.kind != "none" for r in results) else 1)
+
+
+@app.command()
+def demo(
+    folder: Path = typer.Argument(Path("demo-collection"), help="Where to put the demo."),
+    fresh: bool = typer.Option(False, "--fresh", help="Start over instead of resuming."),
+    port: int = typer.Option(8642, "--port", help="Port for the demo archive on loopback."),
+    quiet: bool = typer.Option(False, "--quiet", help="Print only notes and the summary."),
+) -> None:
+    """Run the whole job on the embedded fictional archive: gather, trace, datasheet.
+
+    The archive (the invented Fernhollow Field Society) is served on 127.0.0.1-127.0.0.4;
+    nothing leaves this machine. Example: collector demo --fresh
+    """
+    from collector.demo import run_demo
+    from collector.display import LiveProgress
+    from collector.summary import format_summary, summarise
+    from collector.trace import Tracer, format_record
+
+    progress = _progress_for(quiet=quiet, log_json=False)
+    with user_errors():
+        if isinstance(progress, LiveProgress):
+            with progress:
+                result = run_demo(folder, fresh=fresh, port=port, progress=progress)
+        else:
+            result = run_demo(folder, fresh=fresh, port=port, progress=progress)
+        with result.collection.ledger(readonly=True) as ledger:
+            lines = format_summary(summarise(ledger))
+        traced: list[tuple[str, list[str]]] = []
+        with Tracer.open(folder) as tracer:
+            for label, path in (("a stored file", result.exact_file),
+                                ("a resized copy made just now", result.near_copy)):
+                if path is not None:
+                    traced.append((f"{label}: {path}", format_record(tracer.trace_file(path))))
+    say = typer.echo
+    say("")
+    say(("Resumed" if result.resumed else "Gathered") + f" the demo archive into {folder}: "
+        f"run #{result.run.run_id} {result.run.outcome}")
+    for line in lines:
+        say(line)
+    for title, record in traced:
+        say("")
+        say(f"$ collector trace  ({title})")
+        for line in record:
+            say("  " + line)
+    say("")
+    say("Where everything is:")
+    say(f"  recipe     {result.collection.recipe_path}")
+    say(f"  ledger     {result.collection.ledger_path}   (sqlite3 can read it)")
+    say(f"  files      {result.collection.store.root}/")
+    if result.datasheet_dir:
+        say(f"  datasheet  {result.datasheet_dir / 'datasheet.html'}   (open it in a browser)")
+    say("Next: collector status " + str(folder) + "  |  collector trace FILE --in " + str(folder)
+        + "  |  collector demo (resumes)  |  collector demo --fresh")
+    raise typer.Exit(result.run.exit_code)

@@ -28,7 +28,6 @@ import os
 import random
 import re
 import socket
-import tempfile
 import threading
 from collections.abc import Callable, Iterable, Mapping
 from dataclasses import dataclass, field
@@ -65,6 +64,7 @@ from collector.robots import (
     policy_from_fetch,
     policy_from_stored,
 )
+from collector.store import make_temp
 from collector.urls import (
     add_params,
     check_address,
@@ -536,8 +536,8 @@ class Fetcher:
         path: Path | None = None
         if dest_dir is not None:
             dest_dir.mkdir(parents=True, exist_ok=True)
-            fd, name = tempfile.mkstemp(prefix=".part-", dir=dest_dir)
-            handle, path = os.fdopen(fd, "wb"), Path(name)
+            fd, path = make_temp(dest_dir, prefix=".part-")
+            handle = os.fdopen(fd, "wb")
         try:
             while True:
                 try:

@@ -142,6 +142,9 @@ class Gatherer:
         self.store = collection.store
         self.stop = stop
         self.progress = progress or NullProgress()
+        attach = getattr(self.progress, "attach", None)
+        if attach is not None:
+            attach(self)  # a live view polls the per-host numbers
         self.stop_event = threading.Event()
         self.stop_reason = ""
         self.fatal: CollectorError | None = None

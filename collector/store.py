@@ -22,6 +22,14 @@ SHA256_RE = re.compile(r"^[0-9a-f]{64}$")
 EXT_RE = re.compile(r"^[a-z0-9]{1,5}$")
 
 
+def make_temp(folder: Path, prefix: str = "part-") -> tuple[int, Path]:
+    """A new temp file in ``folder`` that will be readable like any stored file once moved
+    into place (mkstemp creates 0600 files, which released hard links would inherit)."""
+    fd, name = tempfile.mkstemp(prefix=prefix, dir=folder)
+    os.fchmod(fd, 0o644)
+    return fd, Path(name)
+
+
 def _store_error(exc: OSError, what: str) -> StoreError:
     if exc.errno == errno.ENOSPC:
         return StoreError(f"the disk is full while {what}; free some space and run again "
@@ -58,10 +66,9 @@ class Store:
         """Open a new temp file in the incoming folder; returns (fd, path)."""
         self.ensure()
         try:
-            fd, name = tempfile.mkstemp(prefix="part-", dir=self.incoming_dir)
+            return make_temp(self.incoming_dir)
         except OSError as exc:
             raise _store_error(exc, "creating a temp file") from exc
-        return fd, Path(name)
 
     def adopt(self, tmp_path: Path, sha256: str, ext: str, *, synced: bool = False) -> Path:
         """Move a complete temp file into place (fsynced here unless the writer already did:

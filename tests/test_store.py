@@ -131,3 +131,9 @@ def test_recover_resets_items_whose_file_was_deleted(tmp_path: Path) -> None:
         assert result.rows_reset == 1
         assert ledger.item(item)["state"] == "pending"
         assert ledger.file(sha) is None
+
+
+def test_stored_files_are_readable_by_others_like_any_file(tmp_path: Path) -> None:
+    """Stored files get mode 0644 (mkstemp's 0600 would follow hard links into releases)."""
+    _, path = Store(tmp_path / "files").put_bytes(b"abc", "png")
+    assert path.stat().st_mode & 0o777 == 0o644
