@@ -123,7 +123,8 @@ def gather(
     until: str = typer.Option(None, "--until", help="Stop at this local time, e.g. 07:00."),
     duration: str = typer.Option(None, "--for", help="Stop after this long, e.g. 8h or 90m."),
     max_items: int = typer.Option(None, "--max-items", min=0,
-                                  help="Stop after storing this many new items."),
+                                  help="Stop after storing this many new items (files "
+                                       "already in flight are finished)."),
     dry_run: bool = typer.Option(False, "--dry-run",
                                  help="Request nothing; show sources, budgets and an estimate."),
     quiet: bool = typer.Option(False, "--quiet", help="Print only notes and the summary."),
@@ -191,19 +192,15 @@ def status(
 
     Example: collector status my-leaves
     """
-    from dataclasses import asdict
-
     from collector.collection import open_collection
-    from collector.summary import format_summary, summarise
+    from collector.summary import format_summary, summarise, summary_as_dict
 
     with user_errors():
         collection = open_collection(folder)
         with collection.ledger(readonly=True) as ledger:
             summary = summarise(ledger)
     if as_json:
-        data = asdict(summary)
-        data["reasons"] = {f"{s}/{r}": n for (s, r), n in summary.reasons.items()}
-        typer.echo(json.dumps(data, indent=2, default=str))
+        typer.echo(json.dumps(summary_as_dict(summary), indent=2, default=str))
         return
     for line in format_summary(summary):
         typer.echo(line)

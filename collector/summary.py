@@ -49,6 +49,8 @@ class Summary:
     notes: Counter[str] = field(default_factory=Counter)
     runs: int = 0
     last_run: dict[str, Any] | None = None
+    run_seconds: float = 0.0  # all runs together
+    last_run_seconds: float | None = None
 
     @property
     def total_items(self) -> int:
@@ -88,7 +90,29 @@ def summarise(ledger: Ledger) -> Summary:
     s.runs = ledger.scalar("SELECT count(*) FROM runs") or 0
     last = ledger.query("SELECT * FROM runs ORDER BY id DESC LIMIT 1")
     s.last_run = last[0] if last else None
+    # julianday() differences are in days; a run still going counts up to now.
+    s.run_seconds = float(ledger.scalar(
+        "SELECT coalesce(sum((julianday(coalesce(ended_at, 'now')) - julianday(started_at)) "
+        "* 86400.0), 0) FROM runs") or 0.0)
+    if s.last_run:
+        s.last_run_seconds = float(ledger.scalar(
+            "SELECT (julianday(coalesce(ended_at, 'now')) - julianday(started_at)) * 86400.0 "
+            "FROM runs WHERE id = ?", (s.last_run["id"],)) or 0.0)
     return s
+
+
+def summary_as_dict(s: Summary) -> dict[str, Any]:
+    """The summary as JSON-ready data (``collector status --json``)."""
+    return {
+        "items": s.total_items, "states": dict(s.states),
+        "reasons": {f"{state}/{reason}": n for (state, reason), n in s.reasons.items()},
+        "files": s.files, "file_bytes": s.file_bytes, "requests": s.requests,
+        "fetched_bytes": s.fetched_bytes,
+        "hosts": [vars(h) for h in s.hosts], "licences": dict(s.licences),
+        "flags": dict(s.flags), "notes": dict(s.notes), "runs": s.runs,
+        "run_seconds": round(s.run_seconds, 3), "last_run": s.last_run,
+        "last_run_seconds": s.last_run_seconds,
+    }
 
 
 def human_bytes(n: float) -> str:
@@ -114,10 +138,11 @@ def human_seconds(seconds: float) -> str:
 def format_summary(s: Summary) -> list[str]:
     """The summary as plain text lines."""
     lines = [f"{s.total_items} items, {s.files} files stored ({human_bytes(s.file_bytes)}), "
-             f"{s.requests} requests ({human_bytes(s.fetched_bytes)} received), {s.runs} runs"]
+             f"{s.requests} requests ({human_bytes(s.fetched_bytes)} received), {s.runs} runs "
+             f"taking {human_seconds(s.run_seconds)}"]
     if s.last_run:
         lines.append(f"last run: #{s.last_run['id']} started {s.last_run['started_at']}, "
-                     f"{s.last_run['outcome']}")
+                     f"{human_seconds(s.last_run_seconds or 0)}, {s.last_run['outcome']}")
     lines.append("items by state:")
     for state, n in sorted(s.states.items(), key=lambda kv: -kv[1]):
         reasons = ", ".join(f"{r} {c}" for (st, r), c in sorted(s.reasons.items())

@@ -1,0 +1,115 @@
+"""`collector gather` and `collector status` on the command line, against the demo archive."""
+
+from __future__ import annotations
+
+import json
+import signal
+import sqlite3
+import subprocess
+import sys
+import time
+from pathlib import Path
+
+import pytest
+from typer.testing import CliRunner
+
+from collector.cli import app
+from collector.collection import init_collection, recover
+from demo_site import DemoServer
+from demo_site.recipes import render
+
+runner = CliRunner()
+
+
+@pytest.fixture
+def demo_folder(fresh_demo_server: DemoServer, demo_content: Path, tmp_path: Path) -> Path:
+    """A collection folder with the demo recipe for the running demo server."""
+    col = init_collection(tmp_path / "c", contact="x@example.org")
+    col.recipe_path.write_text(render("demo", fresh_demo_server.port, demo_content / "scans"))
+    return col.root
+
+
+def test_dry_run_requests_nothing_and_explains_the_estimate(
+        demo_folder: Path, fresh_demo_server: DemoServer) -> None:
+    """--dry-run lists sources and budgets, says what is unknown, and sends no request."""
+    result = runner.invoke(app, ["gather", str(demo_folder), "--dry-run"])
+    assert result.exit_code == 0, result.output
+    assert "dry run: nothing is requested." in result.output
+    assert "api-pages (json_api)" in result.output
+    assert "not listed yet: api-pages, api-objects, api-linked, gallery" in result.output
+    assert "20,000 images at one request every 3 s take about 17 h" in result.output
+    assert fresh_demo_server.log == []
+
+
+def test_dry_run_after_a_partial_run_estimates_the_remaining_images(
+        demo_folder: Path, fresh_demo_server: DemoServer) -> None:
+    """After a run stopped by --max-items, the dry run counts waiting images per host and
+    estimates time from the interval in force (images x interval; hosts in parallel)."""
+    first = runner.invoke(app, ["gather", str(demo_folder), "--max-items", "5", "--quiet"])
+    assert first.exit_code == 0, first.output
+    assert "stopped: 5 new items stored" in first.output
+    fresh_demo_server.clear_log()
+    result = runner.invoke(app, ["gather", str(demo_folder), "--dry-run"])
+    assert result.exit_code == 0
+    assert "candidates waiting per host (from earlier listings):" in result.output
+    assert "estimated time for the images already listed:" in result.output
+    assert fresh_demo_server.log == []
+
+
+def test_log_json_prints_one_json_object_per_event(demo_folder: Path) -> None:
+    """--log-json output is JSON lines with an event name; the run's end is among them."""
+    result = runner.invoke(app, ["gather", str(demo_folder), "--max-items", "3",
+                                 "--log-json"])
+    assert result.exit_code == 0, result.output
+    events = [json.loads(line) for line in result.output.splitlines() if line.strip()]
+    kinds = {e["event"] for e in events}
+    assert {"run_started", "item", "run_ended"} <= kinds
+    assert events[-1]["outcome"] == "stopped: 3 new items stored"
+
+
+def test_status_reports_politeness_per_host(demo_folder: Path) -> None:
+    """status shows requests, 429s and time waited per host, and the run's duration."""
+    runner.invoke(app, ["gather", str(demo_folder), "--max-items", "3", "--quiet"])
+    result = runner.invoke(app, ["status", str(demo_folder)])
+    assert result.exit_code == 0
+    assert "politeness per host:" in result.output
+    assert "x 429" in result.output and "waited" in result.output
+    assert "runs taking" in result.output
+    as_json = json.loads(runner.invoke(app, ["status", str(demo_folder), "--json"]).output)
+    conn = sqlite3.connect(demo_folder / "ledger.sqlite")
+    assert as_json["files"] == conn.execute("SELECT count(*) FROM files").fetchone()[0] >= 3
+    conn.close()
+
+
+def files_in(ledger: Path) -> int:
+    conn = sqlite3.connect(ledger, timeout=30)
+    try:
+        return conn.execute("SELECT count(*) FROM files").fetchone()[0]
+    except sqlite3.OperationalError:
+        return 0
+    finally:
+        conn.close()
+
+
+def test_ctrl_c_finishes_in_flight_files_exits_130_and_says_how_to_resume(
+        demo_folder: Path) -> None:
+    """SIGINT (Ctrl-C) ends the run cleanly: exit 130 (128 + SIGINT, common practice, no
+    source), a resume hint, no temp files, nothing dangling in the ledger."""
+    proc = subprocess.Popen([sys.executable, "-m", "collector", "gather", str(demo_folder),
+                             "--quiet"], stdout=subprocess.PIPE, stderr=subprocess.PIPE,
+                            text=True)
+    started = time.monotonic()
+    while files_in(demo_folder / "ledger.sqlite") < 3 and time.monotonic() - started < 60:
+        time.sleep(0.05)
+    proc.send_signal(signal.SIGINT)
+    out, err = proc.communicate(timeout=60)
+    assert proc.returncode == 130, (out, err)
+    assert f"Interrupted. Resume with: collector gather {demo_folder}" in err
+    assert "interrupted" in out
+    assert list((demo_folder / "files" / ".incoming").iterdir()) == []
+    from collector.collection import open_collection
+
+    col = open_collection(demo_folder)
+    with col.ledger() as ledger:
+        mended = recover(col, ledger)
+    assert (mended.temp_files_removed, mended.orphan_files_removed, mended.rows_reset) == (0, 0, 0)
