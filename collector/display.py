@@ -99,13 +99,12 @@ class LiveProgress:
             self.notes = [*self.notes[-3:], f"stopping: {data['why']}"]
 
     def render(self) -> Table:
-        """The current table."""
+        """The current table: one row per host, notes as the caption."""
         elapsed = time.monotonic() - self.started
-        title = (f"collector gather - {human_seconds(elapsed)} - "
-                 + ", ".join(f"{k} {v}" for k, v in sorted(self.counts.items())))
-        table = Table(title=title, expand=False)
+        table = Table(expand=False)
         for col in ("host", "done", "queued", "errors", "rate / budget", "next request"):
             table.add_column(col)
+        eta = 0.0
         g = self.gatherer
         if g is not None:
             budgets = getattr(g.fetcher, "budgets", None)
@@ -114,12 +113,17 @@ class LiveProgress:
                 budget, wait = "-", "-"
                 if budgets is not None:
                     try:
-                        budget = f"{60 / max(budgets.interval(host), 1e-9):.1f}/min"
+                        interval = max(budgets.interval(host), 1e-9)
+                        budget = f"{60 / interval:.1f}/min"
                         wait = "parked" if st.parked else human_seconds(budgets.wait_time(host))
+                        eta = max(eta, st.queued * interval)
                     except Exception:  # the view must never break a run
                         pass
                 table.add_row(host, str(st.done), str(st.queued), str(st.errors),
                               f"{rate} / {budget}", wait)
-        for note in self.notes:
-            table.add_row(f"[yellow]{note}[/]", "", "", "", "", "")
+        counts = ", ".join(f"{k} {v}" for k, v in sorted(self.counts.items())) or "starting"
+        table.title = (f"collector gather - {human_seconds(elapsed)} - {counts} - "
+                       f"queued images need about {human_seconds(eta)} more at these budgets")
+        if self.notes:
+            table.caption = "\n".join(self.notes)
         return table
