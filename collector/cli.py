@@ -219,13 +219,20 @@ def datasheet(
         help="Leave out files flagged for personal data or licence conflicts."),
     overwrite: bool = typer.Option(False, "--overwrite",
                                    help="Replace this export's own files in a non-empty OUT."),
+    answers_template: bool = typer.Option(
+        False, "--answers-template",
+        help="Print a commented answers file listing every question id, and exit."),
 ) -> None:
     """Write a datasheet (md + html), croissant.json, provenance.csv and attribution.csv.
 
     Example: collector datasheet my-leaves --answers answers.toml --with-images
     """
+    from collector.datasheet import answers_template as template
     from collector.datasheet import export_datasheet
 
+    if answers_template:
+        typer.echo(template())
+        return
     with user_errors():
         result = export_datasheet(folder, out=out, answers_path=answers,
                                   with_images=with_images, exclude_flagged=exclude_flagged,
