@@ -308,7 +308,8 @@ def build_api_objects(b: Builder) -> None:
         b.serve_image(item, original_bytes, ctype)
         media = [{"href": item.image_path if host == 1 else item.image_url,
                   "width": original.width, "size": "original"}]
-        for label, width in (("medium", 360), ("thumb", 160)):
+        # candidates are strictly smaller than the original, so "largest" is unambiguous
+        for label, width in (("medium", min(360, original.width * 3 // 4)), ("thumb", 160)):
             h = round(original.height * width / original.width)
             small = original.resize((width, h), Image.Resampling.BILINEAR)
             path = f"{base}/{label}.jpg"

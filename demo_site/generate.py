@@ -155,11 +155,18 @@ def load_manifest(content_dir: Path) -> dict[str, Any]:
 
 
 def content_version() -> str:
-    """A short digest naming this generator's output (for cache folder names)."""
+    """A short digest naming this generator's output (for cache folder names).
+
+    It covers the generator's own source files, so editing them invalidates the cache.
+    """
     import PIL
 
-    text = f"{GENERATOR_VERSION}:{SEED}:{PIL.__version__}:{np.__version__}"
-    return hashlib.sha256(text.encode()).hexdigest()[:12]
+    h = hashlib.sha256(f"{GENERATOR_VERSION}:{SEED}:{PIL.__version__}:{np.__version__}"
+                       .encode())
+    for name in ("art", "builder", "catalogue", "content", "generate", "hosts", "metadata",
+                 "pages"):
+        h.update((Path(__file__).parent / f"{name}.py").read_bytes())
+    return h.hexdigest()[:12]
 
 
 def ensure_content(cache_root: Path | None = None) -> Path:

@@ -416,18 +416,9 @@ class DemoServer:
                 time.sleep(delay)
             assert self.site is not None
             reply = self.site.respond(host, method, req.path, req.headers)
-        sent = 0
-        try:
-            req.send_response(reply.status)
-            for k, v in reply.headers:
-                req.send_header(k, v)
-            req.send_header("Content-Length", str(len(reply.body)))
-            req.end_headers()
-            if method != "HEAD" and reply.status != 304:
-                req.wfile.write(reply.body)
-                sent = len(reply.body)
-        except (BrokenPipeError, ConnectionResetError):
-            req.close_connection = True
+        # The record is logged before the reply is written, so a client that has read
+        # the reply always finds its request in the log; "bytes" is the body length sent.
+        sent = 0 if method == "HEAD" or reply.status == 304 else len(reply.body)
         rec = RequestRecord(t=t0, t_end=time.monotonic(), client=req.client_address[0],
                             host=HOSTS[host], host_index=host, method=method, path=req.path,
                             status=reply.status, bytes=sent,
@@ -438,6 +429,16 @@ class DemoServer:
             if self._log_file:
                 self._log_file.write(json.dumps(rec.to_json()) + "\n")
                 self._log_file.flush()
+        try:
+            req.send_response(reply.status)
+            for k, v in reply.headers:
+                req.send_header(k, v)
+            req.send_header("Content-Length", str(len(reply.body)))
+            req.end_headers()
+            if sent:
+                req.wfile.write(reply.body)
+        except (BrokenPipeError, ConnectionResetError):
+            req.close_connection = True
 
     def _gate(self, host: int, target: str) -> Reply | None:
         """Rate limit (429) and scheduled maintenance (503), before routing."""
