@@ -707,6 +707,8 @@ class Fetcher:
             fields["ended_at"] = now
         if size is not None:
             fields["bytes"] = size
+        # A 304 answers a conditional request: the copy we hold is current (RFC 9110 15.4.5).
+        fields["from_cache"] = int(fields.get("status") == 304)
         self.ledger.record_fetch(**fields)
 
 

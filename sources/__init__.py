@@ -10,11 +10,11 @@ Public API::
 
 from __future__ import annotations
 
-import difflib
 from collections.abc import Iterator
 from pathlib import Path
 from typing import Any
 
+from collector.recipe import did_you_mean
 from sources import html_pages, json_api, scans
 from sources.base import (
     Candidate,
@@ -51,8 +51,7 @@ def validate_source(table: dict[str, Any], key_prefix: str) -> list[RecipeProble
     kind = table.get("kind")
     if kind not in _ADAPTERS:
         problems = Problems("")
-        close = difflib.get_close_matches(str(kind), list(KINDS), n=1)
-        hint = f' (did you mean "{close[0]}"?)' if close else ""
+        hint = did_you_mean(str(kind), list(KINDS))
         problems.add(f"{key_prefix}.kind", f"must be one of {', '.join(KINDS)}, got {kind!r}{hint}")
         return problems.items
     return _ADAPTERS[kind].validate(table, key_prefix)

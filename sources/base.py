@@ -3,7 +3,6 @@ small validation helpers every adapter kind uses."""
 
 from __future__ import annotations
 
-import difflib
 import json
 import os
 import re
@@ -16,6 +15,7 @@ from urllib.parse import parse_qsl, urlencode, urljoin, urlsplit, urlunsplit
 
 from collector import urls
 from collector.errors import FetchError, RecipeProblem, SourceError
+from collector.recipe import did_you_mean
 
 __all__ = [
     "Candidate",
@@ -248,10 +248,9 @@ def check_keys(
         path = f"{prefix}.{key}"
         spec = schema.get(key)
         if spec is None:
-            close = difflib.get_close_matches(str(key), list(schema), n=1, cutoff=0.6)
-            hint = f' (did you mean "{close[0]}"?)' if close else ""
-            known = ", ".join(sorted(schema))
-            problems.add(path, f"unknown key{hint}; known keys here: {known}")
+            # Same wording as the top-level recipe checks (collector.recipe).
+            problems.add(path, f"unknown key{did_you_mean(str(key), list(schema))}; allowed "
+                               f"here: {', '.join(schema)}")
             continue
         if not _type_ok(value, spec.types):
             wanted = " or ".join(_TYPE_NAMES.get(t, t.__name__) for t in spec.types)

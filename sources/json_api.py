@@ -7,7 +7,6 @@ and stop the source; max_pages is always enforced.
 
 from __future__ import annotations
 
-import difflib
 import string
 from collections.abc import Iterator, Mapping
 from dataclasses import dataclass, field
@@ -19,6 +18,7 @@ import jmespath
 from jmespath.exceptions import JMESPathError
 from jmespath.parser import ParsedResult
 
+from collector.recipe import did_you_mean
 from sources.base import (
     BOOL,
     INT,
@@ -221,8 +221,7 @@ def _validate_pagination(pag: Mapping[str, Any], path: str, problems: Problems) 
     if not isinstance(style, str):
         return
     if style not in STYLES:
-        close = difflib.get_close_matches(style, STYLES, n=1)
-        hint = f' (did you mean "{close[0]}"?)' if close else ""
+        hint = did_you_mean(style, list(STYLES))
         problems.add(f"{path}.style", f"must be one of {', '.join(STYLES)}, got \"{style}\"{hint}")
         return
     for key in STYLE_REQUIRED.get(style, ()):

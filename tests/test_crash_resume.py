@@ -18,6 +18,7 @@ import time
 from pathlib import Path
 
 import pytest
+from probes import files_count
 
 from collector.collection import Collection, init_collection
 from collector.run import gather
@@ -40,16 +41,6 @@ def stored_urls(ledger_path: Path) -> set[str]:
         return {r[0] for r in conn.execute(
             "SELECT image_url FROM items WHERE state IN ('stored', 'near_duplicate') "
             "AND image_url IS NOT NULL")}
-    finally:
-        conn.close()
-
-
-def files_count(ledger_path: Path) -> int:
-    conn = sqlite3.connect(ledger_path, timeout=30)
-    try:
-        return conn.execute("SELECT count(*) FROM files").fetchone()[0]
-    except sqlite3.OperationalError:
-        return 0
     finally:
         conn.close()
 

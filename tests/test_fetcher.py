@@ -387,9 +387,13 @@ def test_conditional_download_304_costs_no_bytes(sites: list[LoopbackSite], tmp_
             send(h, 200, b"new")  # type: ignore[arg-type]
 
     site.routes["/c.png"] = cond
-    got = Fetcher(settings(), None).download(site.url("/c.png"), tmp_path, etag='"v1"',
-                                             last_modified="Tue, 15 Nov 1994 12:45:26 GMT")
+    ledger = Ledger.create(tmp_path / "l.sqlite")
+    got = Fetcher(settings(), ledger).download(site.url("/c.png"), tmp_path, etag='"v1"',
+                                               last_modified="Tue, 15 Nov 1994 12:45:26 GMT")
     assert got.not_modified and got.path is None and got.size == 0
+    row = ledger.query("SELECT status, from_cache FROM fetches WHERE purpose = 'image'")[-1]
+    assert row == {"status": 304, "from_cache": 1}
+    ledger.close()
     assert site.hits_for("/c.png")[0].headers["If-Modified-Since"] == (
         "Tue, 15 Nov 1994 12:45:26 GMT")
 

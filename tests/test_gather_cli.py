@@ -11,6 +11,7 @@ import time
 from pathlib import Path
 
 import pytest
+from probes import files_count
 from typer.testing import CliRunner
 
 from collector.cli import app
@@ -81,16 +82,6 @@ def test_status_reports_politeness_per_host(demo_folder: Path) -> None:
     conn.close()
 
 
-def files_in(ledger: Path) -> int:
-    conn = sqlite3.connect(ledger, timeout=30)
-    try:
-        return conn.execute("SELECT count(*) FROM files").fetchone()[0]
-    except sqlite3.OperationalError:
-        return 0
-    finally:
-        conn.close()
-
-
 def test_ctrl_c_finishes_in_flight_files_exits_130_and_says_how_to_resume(
         demo_folder: Path) -> None:
     """SIGINT (Ctrl-C) ends the run cleanly: exit 130 (128 + SIGINT, common practice, no
@@ -99,7 +90,7 @@ def test_ctrl_c_finishes_in_flight_files_exits_130_and_says_how_to_resume(
                              "--quiet"], stdout=subprocess.PIPE, stderr=subprocess.PIPE,
                             text=True)
     started = time.monotonic()
-    while files_in(demo_folder / "ledger.sqlite") < 3 and time.monotonic() - started < 60:
+    while files_count(demo_folder / "ledger.sqlite") < 3 and time.monotonic() - started < 60:
         time.sleep(0.05)
     proc.send_signal(signal.SIGINT)
     out, err = proc.communicate(timeout=60)

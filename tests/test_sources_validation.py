@@ -56,7 +56,7 @@ def test_valid_tables_of_every_kind_have_no_problems() -> None:
 def test_unknown_key_suggests_the_close_one() -> None:
     """A misspelt key is rejected with a "did you mean" suggestion."""
     got = problems(json_source(paginaton={"style": "none"}))
-    assert 'did you mean "pagination"' in got["sources[1].paginaton"]
+    assert "did you mean 'pagination'" in got["sources[1].paginaton"]
 
 
 def test_cursor_style_needs_cursor_path_and_param() -> None:
@@ -69,7 +69,7 @@ def test_cursor_style_needs_cursor_path_and_param() -> None:
 def test_unknown_pagination_style_is_rejected_with_suggestion() -> None:
     """An unknown pagination style lists the known ones and suggests the closest."""
     got = problems(json_source(pagination={"style": "cursors"}))
-    assert 'did you mean "cursor"' in got["sources[1].pagination.style"]
+    assert "did you mean 'cursor'" in got["sources[1].pagination.style"]
 
 
 def test_bad_jmespath_is_reported_at_validation() -> None:
@@ -140,7 +140,7 @@ def test_scans_split_keys_and_values_are_checked() -> None:
     """Unknown split keys, negative padding and a bad date are all reported."""
     got = problems(scans_source(date="March 2026",
                                 split={"padding": -2, "deskw": True, "min_solidity": 2.0}))
-    assert 'did you mean "deskew"' in got["sources[1].split.deskw"]
+    assert "did you mean 'deskew'" in got["sources[1].split.deskw"]
     assert "at least 0" in got["sources[1].split.padding"]
     assert "between 0 and 1" in got["sources[1].split.min_solidity"]
     assert "ISO 8601" in got["sources[1].date"]
@@ -156,7 +156,7 @@ def test_scans_requires_path() -> None:
 def test_unknown_kind_is_reported_with_suggestion() -> None:
     """An unknown kind lists the known kinds."""
     got = problems({"name": "x", "kind": "jsonapi"}, "sources[0]")
-    assert 'did you mean "json_api"' in got["sources[0].kind"]
+    assert "did you mean 'json_api'" in got["sources[0].kind"]
 
 
 def test_iter_candidates_refuses_an_invalid_table() -> None:
