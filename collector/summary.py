@@ -197,7 +197,7 @@ def estimate(recipe: Recipe, ledger: Ledger) -> Estimate:
         row = ledger.get_host(host)
         effective = (row or {}).get("effective_budget") or {}
         step = max(float(budget["min_interval"]), 3600.0 / budget["requests_per_hour"],
-                   float(effective.get("min_interval", 0) or 0))
+                   float(effective.get("effective_interval", 0) or 0))
         interval[host] = step
         seconds = max(seconds, n * step / max(1, budget["max_connections"]))
     return Estimate(dict(per_host), interval, math.ceil(seconds), unknown)
