@@ -569,6 +569,10 @@ def prepared_run(collection: Collection) -> Iterator[tuple[Recipe, Ledger]]:
                                          "gather from")])
     with collection.gather_lock(), collection.ledger() as ledger:
         recover(collection, ledger)
+        # We hold the lock, so a run still marked "running" was killed (power loss, SIGKILL).
+        with ledger.transaction():
+            ledger.db.execute("UPDATE runs SET outcome = 'killed: did not end cleanly' "
+                              "WHERE outcome = 'running'")
         yield recipe, ledger
 
 
