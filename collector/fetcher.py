@@ -85,6 +85,9 @@ RETRY_STATUSES = frozenset({429, 500, 502, 503, 504})
 SLOW_DOWN_STATUSES = frozenset({429, 503})
 REDIRECT_STATUSES = frozenset({301, 302, 303, 307, 308})
 CHUNK = 65536
+# Longest Retry-After delay taken literally, ~31.7 years (common practice, no source): any
+# longer value parks the host just the same and keeps epoch arithmetic finite.
+MAX_RETRY_DELAY = 1e9
 
 _IMF = re.compile(r"^[A-Z][a-z]{2}, \d{2} [A-Z][a-z]{2} \d{4} \d{2}:\d{2}:\d{2} GMT$")
 _RFC850 = re.compile(r"^[A-Z][a-z]+, \d{2}-[A-Z][a-z]{2}-\d{2} \d{2}:\d{2}:\d{2} GMT$")
@@ -119,7 +122,9 @@ def parse_retry_after(value: str | None, now: float) -> tuple[float | None, str 
         return None, None
     text = value.strip()
     if text.isascii() and text.isdigit():
-        return float(int(text)), None
+        # float() of the digits, not int(): int() refuses more than 4300 digits and float(int)
+        # overflows past ~309; a hostile value stays a finite (parking) delay.
+        return min(float(text), MAX_RETRY_DELAY), None
     when = parse_http_date(text)
     if when is None:
         return None, f"Retry-After {value[:40]!r} ignored (not delay-seconds or an HTTP-date)"

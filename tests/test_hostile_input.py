@@ -1,0 +1,14 @@
+"""Hostile answers at the fetcher's edge: values a server controls never raise past it."""
+
+from __future__ import annotations
+
+from collector.fetcher import MAX_RETRY_DELAY, parse_retry_after
+
+
+def test_a_retry_after_of_hundreds_of_digits_is_a_long_finite_delay_not_a_crash() -> None:
+    """Retry-After with 400 or 5000 digits parses to a finite capped delay (RFC 9110 §10.2.3:
+    delay-seconds = 1*DIGIT, no upper bound, so the client must bound it itself)."""
+    for digits in (400, 5000):
+        wait, note = parse_retry_after("9" * digits, now=0.0)
+        assert wait == MAX_RETRY_DELAY and note is None
+    assert parse_retry_after("315360000", now=0.0) == (315360000.0, None)  # 10 years, as is
