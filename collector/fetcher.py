@@ -212,14 +212,21 @@ class Page:
     body: bytes
     encoding: str | None = None
 
+    def _decode(self, default: str) -> str:
+        try:
+            return self.body.decode(self.encoding or default, errors="replace")
+        except LookupError:  # the server named a charset that does not exist (or not text)
+            return self.body.decode(default, errors="replace")
+
     @property
     def text(self) -> str:
-        """The body decoded with the response charset (UTF-8 if none), bad bytes replaced."""
-        return self.body.decode(self.encoding or "utf-8", errors="replace")
+        """The body decoded with the response charset (UTF-8 if none or unknown), bad bytes
+        replaced."""
+        return self._decode("utf-8")
 
     def json(self) -> Any:
         """The body parsed as JSON (raises ValueError on bad JSON)."""
-        return _json.loads(self.body.decode(self.encoding or "utf-8-sig", errors="replace"))
+        return _json.loads(self._decode("utf-8-sig"))
 
     @property
     def links(self) -> dict[str, str]:

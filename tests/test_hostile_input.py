@@ -2,7 +2,9 @@
 
 from __future__ import annotations
 
-from collector.fetcher import MAX_RETRY_DELAY, parse_retry_after
+from requests.structures import CaseInsensitiveDict
+
+from collector.fetcher import MAX_RETRY_DELAY, Page, parse_retry_after
 
 
 def test_a_retry_after_of_hundreds_of_digits_is_a_long_finite_delay_not_a_crash() -> None:
@@ -12,3 +14,13 @@ def test_a_retry_after_of_hundreds_of_digits_is_a_long_finite_delay_not_a_crash(
         wait, note = parse_retry_after("9" * digits, now=0.0)
         assert wait == MAX_RETRY_DELAY and note is None
     assert parse_retry_after("315360000", now=0.0) == (315360000.0, None)  # 10 years, as is
+
+
+def test_a_page_with_an_unknown_charset_label_decodes_as_utf8() -> None:
+    """Content-Type "charset=x-no-such-charset" (or a non-text codec such as zlib) falls back
+    to UTF-8 instead of raising LookupError out of the source's thread."""
+    for label in ("x-no-such-charset", "zlib", "hex"):
+        page = Page("http://127.0.0.1/", 200, CaseInsensitiveDict(),
+                    '{"a": "café"}'.encode(), label)
+        assert page.text == '{"a": "café"}'
+        assert page.json() == {"a": "café"}
