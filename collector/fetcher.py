@@ -225,8 +225,11 @@ class Page:
         return self._decode("utf-8")
 
     def json(self) -> Any:
-        """The body parsed as JSON (raises ValueError on bad JSON)."""
-        return _json.loads(self._decode("utf-8-sig"))
+        """The body parsed as JSON (raises ValueError on bad JSON, nesting too deep included)."""
+        try:
+            return _json.loads(self._decode("utf-8-sig"))
+        except RecursionError:  # e.g. 100,000 nested arrays from a hostile server
+            raise ValueError("JSON nested too deeply to read") from None
 
     @property
     def links(self) -> dict[str, str]:

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import pytest
 from requests.structures import CaseInsensitiveDict
 
 from collector.fetcher import MAX_RETRY_DELAY, Page, parse_retry_after
@@ -24,3 +25,12 @@ def test_a_page_with_an_unknown_charset_label_decodes_as_utf8() -> None:
                     '{"a": "café"}'.encode(), label)
         assert page.text == '{"a": "café"}'
         assert page.json() == {"a": "café"}
+
+
+def test_json_nested_100000_deep_is_a_value_error_not_a_recursion_error() -> None:
+    """Page.json keeps its contract (ValueError on bad JSON) for 100,000 nested arrays, so the
+    json_api adapter turns it into a bad_json note."""
+    page = Page("http://127.0.0.1/", 200, CaseInsensitiveDict(),
+                b"[" * 100_000 + b"]" * 100_000, None)
+    with pytest.raises(ValueError, match="nested too deeply"):
+        page.json()
