@@ -675,13 +675,13 @@ class RunStats:
 
 
 def run_gather(folder: Path, *extra: str, timeout: float = 120.0,
-                   env: dict[str, str] | None = None) -> RunStats:
+               env: dict[str, str] | None = None, cwd: Path | None = None) -> RunStats:
     """Run ``collector gather FOLDER`` in a child process, reaped with ``os.wait4`` for its
     own peak RSS (``ru_maxrss``, KiB on Linux)."""
     started = time.monotonic()
     proc = subprocess.Popen([sys.executable, "-m", "collector", "gather", str(folder), *extra],
                             stdout=subprocess.PIPE, stderr=subprocess.PIPE,
-                            env={**os.environ, **(env or {})})
+                            env={**os.environ, **(env or {})}, cwd=cwd)
     chunks: dict[str, bytes] = {}
 
     def drain(name: str, stream: Any) -> None:
