@@ -21,6 +21,8 @@ names with stable answers are fully covered.
 
 from __future__ import annotations
 
+import contextlib
+import errno
 import hashlib
 import json as _json
 import logging
@@ -52,6 +54,7 @@ from collector.errors import (
     FetchError,
     HostParked,
     RobotsDenied,
+    StoreError,
     TooLarge,
     UnsafeURL,
 )
@@ -550,8 +553,11 @@ class Fetcher:
         handle = None
         path: Path | None = None
         if dest_dir is not None:
-            dest_dir.mkdir(parents=True, exist_ok=True)
-            fd, name = tempfile.mkstemp(prefix=".part-", dir=dest_dir)
+            try:
+                dest_dir.mkdir(parents=True, exist_ok=True)
+                fd, name = tempfile.mkstemp(prefix=".part-", dir=dest_dir)
+            except OSError as exc:
+                raise _write_error(exc, dest_dir) from exc
             handle, path = os.fdopen(fd, "wb"), Path(name)
         try:
             while True:
@@ -578,7 +584,10 @@ class Fetcher:
                 slot.add_bytes(len(chunk))
                 digest.update(chunk)
                 if handle is not None:
-                    handle.write(chunk)
+                    try:
+                        handle.write(chunk)
+                    except OSError as exc:
+                        raise _write_error(exc, dest_dir) from exc
                 else:
                     chunks.append(chunk)
                 if truncate and size >= max_bytes:
@@ -588,13 +597,17 @@ class Fetcher:
                     err2.size = size  # type: ignore[attr-defined]
                     raise err2
             if handle is not None:
-                handle.flush()
-                os.fsync(handle.fileno())
-                handle.close()
+                try:
+                    handle.flush()
+                    os.fsync(handle.fileno())
+                    handle.close()
+                except OSError as exc:
+                    raise _write_error(exc, dest_dir) from exc
                 handle = None
         except BaseException:
             if handle is not None:
-                handle.close()
+                with contextlib.suppress(OSError):  # flushing on a full disk fails again
+                    handle.close()
             if path is not None:
                 path.unlink(missing_ok=True)
             raise
@@ -723,6 +736,15 @@ class Fetcher:
         if size is not None:
             fields["bytes"] = size
         self.ledger.record_fetch(**fields)
+
+
+def _write_error(exc: OSError, folder: Path | None) -> StoreError:
+    """A local write failure while saving a download: the run must stop, not the worker die."""
+    if exc.errno == errno.ENOSPC:
+        return StoreError(f"the disk is full while downloading into {folder}; free some space "
+                          "and run again (the collection resumes where it stopped)",
+                          errno=exc.errno)
+    return StoreError(f"cannot write a download into {folder}: {exc}", errno=exc.errno)
 
 
 def exc_size(exc: BaseException) -> int | None:
