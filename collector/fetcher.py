@@ -21,6 +21,8 @@ names with stable answers are fully covered.
 
 from __future__ import annotations
 
+import contextlib
+import errno
 import hashlib
 import json as _json
 import logging
@@ -51,6 +53,7 @@ from collector.errors import (
     FetchError,
     HostParked,
     RobotsDenied,
+    StoreError,
     TooLarge,
     UnsafeURL,
 )
@@ -85,6 +88,9 @@ RETRY_STATUSES = frozenset({429, 500, 502, 503, 504})
 SLOW_DOWN_STATUSES = frozenset({429, 503})
 REDIRECT_STATUSES = frozenset({301, 302, 303, 307, 308})
 CHUNK = 65536
+# Longest Retry-After delay taken literally, ~31.7 years (common practice, no source): any
+# longer value parks the host just the same and keeps epoch arithmetic finite.
+MAX_RETRY_DELAY = 1e9
 
 _IMF = re.compile(r"^[A-Z][a-z]{2}, \d{2} [A-Z][a-z]{2} \d{4} \d{2}:\d{2}:\d{2} GMT$")
 _RFC850 = re.compile(r"^[A-Z][a-z]+, \d{2}-[A-Z][a-z]{2}-\d{2} \d{2}:\d{2}:\d{2} GMT$")
@@ -119,7 +125,9 @@ def parse_retry_after(value: str | None, now: float) -> tuple[float | None, str 
         return None, None
     text = value.strip()
     if text.isascii() and text.isdigit():
-        return float(int(text)), None
+        # float() of the digits, not int(): int() refuses more than 4300 digits and float(int)
+        # overflows past ~309; a hostile value stays a finite (parking) delay.
+        return min(float(text), MAX_RETRY_DELAY), None
     when = parse_http_date(text)
     if when is None:
         return None, f"Retry-After {value[:40]!r} ignored (not delay-seconds or an HTTP-date)"
@@ -207,14 +215,24 @@ class Page:
     body: bytes
     encoding: str | None = None
 
+    def _decode(self, default: str) -> str:
+        try:
+            return self.body.decode(self.encoding or default, errors="replace")
+        except LookupError:  # the server named a charset that does not exist (or not text)
+            return self.body.decode(default, errors="replace")
+
     @property
     def text(self) -> str:
-        """The body decoded with the response charset (UTF-8 if none), bad bytes replaced."""
-        return self.body.decode(self.encoding or "utf-8", errors="replace")
+        """The body decoded with the response charset (UTF-8 if none or unknown), bad bytes
+        replaced."""
+        return self._decode("utf-8")
 
     def json(self) -> Any:
-        """The body parsed as JSON (raises ValueError on bad JSON)."""
-        return _json.loads(self.body.decode(self.encoding or "utf-8-sig", errors="replace"))
+        """The body parsed as JSON (raises ValueError on bad JSON, nesting too deep included)."""
+        try:
+            return _json.loads(self._decode("utf-8-sig"))
+        except RecursionError:  # e.g. 100,000 nested arrays from a hostile server
+            raise ValueError("JSON nested too deeply to read") from None
 
     @property
     def links(self) -> dict[str, str]:
@@ -535,8 +553,11 @@ class Fetcher:
         handle = None
         path: Path | None = None
         if dest_dir is not None:
-            dest_dir.mkdir(parents=True, exist_ok=True)
-            fd, path = make_temp(dest_dir, prefix=".part-")
+            try:
+                dest_dir.mkdir(parents=True, exist_ok=True)
+                fd, path = make_temp(dest_dir, prefix=".part-")
+            except OSError as exc:
+                raise _write_error(exc, dest_dir) from exc
             handle = os.fdopen(fd, "wb")
         try:
             while True:
@@ -563,7 +584,10 @@ class Fetcher:
                 slot.add_bytes(len(chunk))
                 digest.update(chunk)
                 if handle is not None:
-                    handle.write(chunk)
+                    try:
+                        handle.write(chunk)
+                    except OSError as exc:
+                        raise _write_error(exc, dest_dir) from exc
                 else:
                     chunks.append(chunk)
                 if truncate and size >= max_bytes:
@@ -573,13 +597,17 @@ class Fetcher:
                     err2.size = size  # type: ignore[attr-defined]
                     raise err2
             if handle is not None:
-                handle.flush()
-                os.fsync(handle.fileno())
-                handle.close()
+                try:
+                    handle.flush()
+                    os.fsync(handle.fileno())
+                    handle.close()
+                except OSError as exc:
+                    raise _write_error(exc, dest_dir) from exc
                 handle = None
         except BaseException:
             if handle is not None:
-                handle.close()
+                with contextlib.suppress(OSError):  # flushing on a full disk fails again
+                    handle.close()
             if path is not None:
                 path.unlink(missing_ok=True)
             raise
@@ -710,6 +738,15 @@ class Fetcher:
         # A 304 answers a conditional request: the copy we hold is current (RFC 9110 15.4.5).
         fields["from_cache"] = int(fields.get("status") == 304)
         self.ledger.record_fetch(**fields)
+
+
+def _write_error(exc: OSError, folder: Path | None) -> StoreError:
+    """A local write failure while saving a download: the run must stop, not the worker die."""
+    if exc.errno == errno.ENOSPC:
+        return StoreError(f"the disk is full while downloading into {folder}; free some space "
+                          "and run again (the collection resumes where it stopped)",
+                          errno=exc.errno)
+    return StoreError(f"cannot write a download into {folder}: {exc}", errno=exc.errno)
 
 
 def exc_size(exc: BaseException) -> int | None:

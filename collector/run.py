@@ -15,6 +15,7 @@ from __future__ import annotations
 
 import contextlib
 import hashlib
+import json
 import os
 import queue
 import threading
@@ -46,7 +47,7 @@ from collector.images import ImageFacts, inspect_image
 from collector.ledger import Ledger
 from collector.licences import licence_allowed, normalise_licence, rights_conflict
 from collector.recipe import Recipe, parse_clock, parse_duration
-from collector.urls import host_key
+from collector.urls import host_key, redact, scrub
 
 # States after which an item is not requested again.
 FINAL_STATES = frozenset({"stored", "duplicate", "near_duplicate", "rejected"})
@@ -130,6 +131,7 @@ class Job:
     item_id: int
     url: str
     spdx_id: str | None
+    secret_params: tuple[str, ...] = ()
 
 
 class Gatherer:
@@ -160,6 +162,9 @@ class Gatherer:
         self._source_ids = [ledger.source_id(src["name"], src["kind"], src)
                             for src in recipe.sources]
         self._source_rank = {sid: rank for rank, sid in enumerate(self._source_ids)}
+        self._secret_params = {sid: tuple(src.get("secret_params") or ())
+                               for src, sid in zip(recipe.sources, self._source_ids, strict=True)}
+        self._secrets = secret_values(recipe)
         self._item_source: dict[int, int] = {}
         self.run_id = 0
 
@@ -248,6 +253,9 @@ class Gatherer:
             "crop_box": list(c.crop_box) if c.crop_box else None,
             "local_path": str(c.local_path) if c.local_path else None, "run_id": self.run_id,
         }
+        # Servers echo API keys into the URLs and items they send back: keep them out of the
+        # ledger (the job below still fetches the URL as given).
+        fields = self._scrub(fields, self._secret_params.get(source_id, ()))
         row = self.ledger.item_by_key(source_id, c.source_key)
         if row and row["state"] in FINAL_STATES:
             self._count("already_done")
@@ -278,7 +286,7 @@ class Gatherer:
         same = self.ledger.query(
             "SELECT id, file_sha256 FROM items WHERE image_url = ? AND id != ? AND state IN "
             "('stored', 'near_duplicate') AND file_sha256 IS NOT NULL LIMIT 1",
-            (c.image_url, item_id))
+            (fields["image_url"], item_id))
         if same:
             with self._ingest_lock:
                 if self._rank(item_id) < self._rank(same[0]["id"]):
@@ -288,7 +296,8 @@ class Gatherer:
                                  "same image URL as an item already stored; not fetched again",
                                  file_sha256=same[0]["file_sha256"], duplicate_of=same[0]["id"])
             return
-        self._enqueue(Job(item_id, c.image_url, licence.spdx_id))
+        self._enqueue(Job(item_id, c.image_url, licence.spdx_id,
+                          self._secret_params.get(source_id, ())))
 
     # -- per-host workers --------------------------------------------------------------------
     def _enqueue(self, job: Job) -> None:
@@ -337,7 +346,8 @@ class Gatherer:
     def _fetch_and_ingest(self, job: Job) -> None:
         try:
             download = self.fetcher.download(job.url, self.store.incoming_dir,
-                                             item_id=job.item_id)
+                                             item_id=job.item_id,
+                                             secret_params=job.secret_params)
         except RobotsDenied as exc:
             self._finish(job.item_id, "blocked", exc.reason, str(exc))
             return
@@ -527,6 +537,20 @@ class Gatherer:
             if self.stop.max_items and self._stored_this_run >= self.stop.max_items:
                 self.request_stop(f"stopped: {self.stop.max_items} new items stored")
 
+    def _scrub(self, fields: dict[str, Any], params: tuple[str, ...]) -> dict[str, Any]:
+        """Item fields with secret params redacted from URLs and secret values from text."""
+        out = dict(fields)
+        for key in ("image_url", "page_url", "licence_url"):
+            if out.get(key):
+                out[key] = redact(out[key], params)
+        if self._secrets:
+            for key, value in out.items():
+                if isinstance(value, str):
+                    out[key] = scrub(value, self._secrets)
+                elif key == "metadata" and value:
+                    out[key] = json.loads(scrub(json.dumps(value, default=str), self._secrets))
+        return out
+
     def _finish(self, item_id: int, state: str, reason: str | None, detail: str | None,
                 **fields: Any) -> None:
         self.ledger.update_item(item_id, state=state, reason=reason, detail=detail,
@@ -550,6 +574,29 @@ class _Note:
     kind: str
     url: str | None
     message: str
+
+
+def secret_values(recipe: Recipe) -> list[str]:
+    """The run-time values of the recipe's secrets: params listed in a source's
+    secret_params, and secret headers (also their last word, so "Bearer <token>" hides the
+    token)."""
+    from collector.fetcher import expand_env
+
+    found: list[str] = []
+    secret_headers = {h.lower() for h in recipe.network.get("secret_headers") or ()}
+    for src in recipe.sources:
+        params = src.get("params") or {}
+        found += [expand_env(str(params[n])) for n in src.get("secret_params") or ()
+                  if n in params]
+    for headers in [recipe.network.get("headers") or {},
+                    *(src.get("headers") or {} for src in recipe.sources)]:
+        for name, value in headers.items():
+            if name.lower() in secret_headers:
+                text = expand_env(str(value))
+                last = (text.split() or [""])[-1]  # "Bearer <token>", "session=<value>"
+                found += [text, last.rpartition("=")[2]]
+    # Very short values would scrub ordinary words; real keys are long.
+    return sorted({v for v in found if len(v) >= 6}, key=len, reverse=True)
 
 
 def build_fetcher(recipe: Recipe, ledger: Ledger) -> Any:

@@ -1,0 +1,60 @@
+"""Hostile servers, one at a time: each misbehaviour of tests/hostile_server.py gets its own
+`collector gather` child process (with the normal item beside it), and the table shows the
+ledger outcome, the reason and the child's peak RSS (wait4 ru_maxrss), next to a run of the
+normal item alone. Every row must end in a handled outcome; exit status 1 otherwise.
+
+Usage: python bench/hostile.py [case-name ...]
+"""
+
+from __future__ import annotations
+
+import sys
+import tempfile
+from pathlib import Path
+
+sys.path.insert(0, str(Path(__file__).resolve().parents[1] / "tests"))
+
+from hostile_server import CASES, HostileArchive, judge, run_gather
+
+from collector.collection import init_collection
+
+
+def one(cases: list, folder: Path) -> tuple[int, float, int, list]:
+    """Gather over ``cases``; (peak RSS KiB, seconds, exit code, verdicts)."""
+    with HostileArchive(cases=cases, outside=folder) as archive:
+        col = init_collection(folder / "col", contact="bench@example.org")
+        col.recipe_path.write_text(archive.recipe())
+        stats = run_gather(col.root, "--quiet", cwd=folder)
+        with col.ledger(readonly=True) as ledger:
+            verdicts = [judge(ledger, c) for c in cases]
+            normal = ledger.query("SELECT state FROM items WHERE source_key = 'normal'")
+        if not normal or normal[0]["state"] != "stored":
+            verdicts.append(None)  # the normal item was not stored: a failure
+    return stats.max_rss_kib, stats.seconds, stats.returncode, verdicts
+
+
+def main(names: list[str]) -> int:
+    cases = [c for c in CASES if not names or c.name in names]
+    with tempfile.TemporaryDirectory() as tmp:
+        base_rss, base_s, base_rc, _ = one([], Path(tmp) / "baseline")
+        print(f"baseline (normal item only): peak RSS {base_rss / 1024:.0f} MiB, "
+              f"{base_s:.1f} s, exit {base_rc}\n")
+        head = f"{'misbehaviour':<52} | {'outcome':<22} | {'ledger reason':<34} | peak MiB (+)"
+        print(head)
+        print("-" * len(head))
+        bad = 0
+        for n, case in enumerate(cases):
+            rss, _secs, rc, verdicts = one([case], Path(tmp) / f"case-{n}")
+            v = verdicts[0]
+            handled = rc == 0 and v.ok and None not in verdicts
+            bad += not handled
+            mark = "" if handled else "  <-- NOT HANDLED " + "; ".join(v.problems)
+            print(f"{case.misbehaviour[:52]:<52} | {v.outcome[:22]:<22} | {v.reason[:34]:<34} | "
+                  f"{rss / 1024:5.0f} ({(rss - base_rss) / 1024:+4.0f}){mark}")
+    print(f"\n{len(cases) - bad} of {len(cases)} misbehaviours handled; the normal item was "
+          "stored beside each.")
+    return 1 if bad else 0
+
+
+if __name__ == "__main__":
+    sys.exit(main(sys.argv[1:]))

@@ -1,0 +1,762 @@
+"""A hostile archive on loopback, and the table of its misbehaviours.
+
+Every :class:`Case` gets its own HTTP server on ``127.0.0.1`` (its own port, so its own host
+key, robots.txt, budget and circuit breaker: one case cannot park or throttle another). A
+*lister* site serves a JSON API whose items point at the image cases, plus a normal item that
+must still be stored. Listing cases are sources of their own. Two helper sites exist: the
+*fence* (127.0.0.1, robots.txt disallows ``/private/``) and the *forbidden* site on
+``127.0.0.9``, an address the recipe does not allow: it counts requests so that a test can
+prove the guard kept every connection away from it. No request ever leaves loopback.
+
+Used by ``tests/test_hostile.py`` and ``bench/hostile.py`` (one table for both).
+"""
+
+from __future__ import annotations
+
+import io
+import json
+import os
+import random
+import select
+import socket
+import struct
+import subprocess
+import sys
+import threading
+import time
+import zlib
+from collections.abc import Callable
+from dataclasses import dataclass, field
+from functools import cache
+from http.server import BaseHTTPRequestHandler, ThreadingHTTPServer
+from pathlib import Path
+from typing import Any
+
+from PIL import Image
+
+FORBIDDEN_HOST = "127.0.0.9"  # loopback, but not in the recipe's allow_addresses
+H = BaseHTTPRequestHandler
+
+
+# --- images --------------------------------------------------------------------------------
+@cache
+def noise_image(seed: str, fmt: str = "PNG", size: int = 64, **save: Any) -> bytes:
+    """A small random-noise picture; distinct seeds give unrelated perceptual hashes."""
+    rng = random.Random(seed)
+    im = Image.frombytes("RGB", (size, size), rng.randbytes(size * size * 3))
+    out = io.BytesIO()
+    im.save(out, fmt, **save)
+    return out.getvalue()
+
+
+def _chunk(kind: bytes, data: bytes) -> bytes:
+    # PNG chunk layout and CRC-32 over type+data: PNG specification (ISO/IEC 15948) §5.3.
+    return struct.pack(">I", len(data)) + kind + data + struct.pack(
+        ">I", zlib.crc32(kind + data) & 0xFFFFFFFF)
+
+
+@cache
+def png_bomb(side: int = 20000) -> bytes:
+    """A real PNG decompression bomb: a ``side``² 1-bit image of zeros, ~50 KB on the wire,
+    400 megapixels when decoded (Pillow refuses it at open, libraries.md §7)."""
+    comp = zlib.compressobj(9)
+    row = b"\x00" * (1 + (side + 7) // 8)  # filter byte + packed bits (PNG spec §7.2)
+    data = b"".join(comp.compress(row) for _ in range(side)) + comp.flush()
+    ihdr = struct.pack(">IIBBBBB", side, side, 1, 0, 0, 0, 0)
+    return (b"\x89PNG\r\n\x1a\n" + _chunk(b"IHDR", ihdr) + _chunk(b"IDAT", data)
+            + _chunk(b"IEND", b""))
+
+
+@cache
+def gif_bomb() -> bytes:
+    """A GIF whose screen and frame claim 65535x65535 pixels (4.3 gigapixels) in 40 bytes
+    (GIF89a specification §18 logical screen, §20 image descriptor)."""
+    return (b"GIF89a" + struct.pack("<HHBBB", 65535, 65535, 0x80, 0, 0)
+            + b"\x00\x00\x00\xff\xff\xff"  # 2-colour global colour table
+            + b"\x2c" + struct.pack("<HHHHB", 0, 0, 65535, 65535, 0)
+            + b"\x02\x02\x44\x01\x00" + b"\x3b")
+
+
+def png_bad_crc(seed: str) -> bytes:
+    """A PNG with one byte of its IDAT data flipped, so its CRC no longer matches."""
+    data = bytearray(noise_image(seed))
+    at = data.index(b"IDAT") + 4 + 20
+    data[at] ^= 0xFF
+    return bytes(data)
+
+
+def jpeg_with_trailer(seed: str) -> bytes:
+    """A whole JPEG followed by 64 KiB of random bytes after its EOI marker."""
+    return noise_image(seed, "JPEG", quality=90) + random.Random(seed).randbytes(65536)
+
+
+def png_huge_exif(seed: str, size: int = 900_000) -> bytes:
+    """A PNG whose eXIf chunk holds an ImageDescription of ``size`` bytes."""
+    exif = Image.Exif()
+    exif[0x010E] = "A" * size  # ImageDescription (Exif 2.32 §4.6.5)
+    exif[0x013B] = "Ann Example"  # Artist
+    rng = random.Random(seed)
+    im = Image.frombytes("RGB", (64, 64), rng.randbytes(64 * 64 * 3))
+    out = io.BytesIO()
+    im.save(out, "PNG", exif=exif.tobytes())
+    return out.getvalue()
+
+
+def _entities() -> bytes:
+    lines = [b'<!ENTITY l0 "lol">']
+    for n in range(1, 10):
+        lines.append(b'<!ENTITY l%d "%s">' % (n, b"".join(b"&l%d;" % (n - 1) for _ in range(10))))
+    return b"\n".join(lines)
+
+
+# Ten levels of ten references each: 10^9 copies of "lol" if a parser expanded them.
+XMP_BOMB = (b"<?xpacket begin='' id='W5M0MpCehiHzreSzNTczkc9d'?>\n<!DOCTYPE lolz [\n"
+            + _entities() + b"]>\n<x:xmpmeta xmlns:x='adobe:ns:meta/'><rdf:RDF "
+            b"xmlns:rdf='http://www.w3.org/1999/02/22-rdf-syntax-ns#'><rdf:Description "
+            b"xmlns:dc='http://purl.org/dc/elements/1.1/'><dc:rights>&l9;</dc:rights>"
+            b"</rdf:Description></rdf:RDF></x:xmpmeta><?xpacket end='w'?>")
+
+
+def jpeg_xmp_bomb(seed: str) -> bytes:
+    """A JPEG carrying an XMP packet with a billion-laughs entity expansion."""
+    return noise_image(seed, "JPEG", xmp=XMP_BOMB)
+
+
+# --- response helpers ----------------------------------------------------------------------
+def send(h: H, status: int, body: bytes = b"", headers: dict[str, str] | None = None,
+         length: int | None = None) -> None:
+    """A response; ``length`` overrides the Content-Length header (it may lie)."""
+    h.send_response(status)
+    for k, v in (headers or {}).items():
+        h.send_header(k, v)
+    h.send_header("Content-Length", str(len(body) if length is None else length))
+    h.end_headers()
+    if body:
+        h.wfile.write(body)
+        h.wfile.flush()
+
+
+def hold_until_client_leaves(h: H, limit: float = 30.0) -> None:
+    """Send nothing more; return when the client closes the connection (or after limit s)."""
+    h.close_connection = True
+    end = time.monotonic() + limit
+    sock = h.connection
+    while time.monotonic() < end:
+        ready, _, _ = select.select([sock], [], [], 0.2)
+        if ready:
+            try:
+                if not sock.recv(4096):
+                    return
+            except OSError:
+                return
+
+
+def redirect(to: str) -> Callable[[H, Ctx], None]:
+    """A handler answering 302 with a fixed Location (a template over the context)."""
+    def handle(h: H, ctx: Ctx) -> None:
+        send(h, 302, headers={"Location": ctx.fill(to)})
+    return handle
+
+
+def serve(body: bytes | Callable[[str], bytes], ctype: str = "image/png",
+          **headers: str) -> Callable[[H, Ctx], None]:
+    """A handler answering 200 with a fixed body (or one made from the case name)."""
+    def handle(h: H, ctx: Ctx) -> None:
+        data = body(ctx.name) if callable(body) else body
+        send(h, 200, data, {"Content-Type": ctype, **{k.replace("_", "-"): v
+                                                       for k, v in headers.items()}})
+    return handle
+
+
+def truncated_honest(h: H, ctx: Ctx) -> None:
+    """Content-Length of the whole image, half of it sent, then the connection closed."""
+    data = noise_image(ctx.name)
+    send(h, 200, data[: len(data) // 2], {"Content-Type": "image/png"}, length=len(data))
+    h.close_connection = True
+
+
+def truncated_lying(h: H, ctx: Ctx) -> None:
+    """A Content-Length that matches half the image: the HTTP body is 'whole', the PNG not."""
+    data = noise_image(ctx.name)
+    send(h, 200, data[: len(data) // 2], {"Content-Type": "image/png"})
+
+
+def endless(h: H, ctx: Ctx) -> None:
+    """No Content-Length, bytes forever (until the client hangs up)."""
+    h.send_response(200)
+    h.send_header("Content-Type", "image/png")
+    h.send_header("Connection", "close")
+    h.end_headers()
+    h.close_connection = True
+    block = b"\x89PNG\r\n\x1a\n" + b"\x00" * 65528
+    try:
+        for _ in range(100_000):  # 6.5 GB at most
+            h.wfile.write(block)
+    except OSError:
+        return
+
+
+def over_cap(h: H, ctx: Ctx) -> None:
+    """Content-Length of 10 GB, a few bytes, then silence."""
+    send(h, 200, b"\x89PNG\r\n\x1a\n", {"Content-Type": "image/png"}, length=10_000_000_000)
+    hold_until_client_leaves(h)
+
+
+def slow_drip(h: H, ctx: Ctx) -> None:
+    """A whole image announced, then one byte per second."""
+    data = noise_image(ctx.name)
+    h.send_response(200)
+    h.send_header("Content-Type", "image/png")
+    h.send_header("Content-Length", str(len(data)))
+    h.end_headers()
+    h.close_connection = True
+    try:
+        for i in range(len(data)):
+            h.wfile.write(data[i:i + 1])
+            h.wfile.flush()
+            time.sleep(ctx.drip_interval)
+    except OSError:
+        return
+
+
+def stalled(h: H, ctx: Ctx) -> None:
+    """Headers, then nothing at all."""
+    h.send_response(200)
+    h.send_header("Content-Type", "image/png")
+    h.send_header("Content-Length", "5000")
+    h.end_headers()
+    h.wfile.flush()
+    hold_until_client_leaves(h)
+
+
+def reset_mid_body(h: H, ctx: Ctx) -> None:
+    """Half the body, then a TCP reset (SO_LINGER 0 makes close() send RST)."""
+    data = noise_image(ctx.name)
+    h.send_response(200)
+    h.send_header("Content-Type", "image/png")
+    h.send_header("Content-Length", str(len(data)))
+    h.end_headers()
+    h.wfile.write(data[: len(data) // 2])
+    h.wfile.flush()
+    h.connection.setsockopt(socket.SOL_SOCKET, socket.SO_LINGER, struct.pack("ii", 1, 0))
+    h.close_connection = True
+    h.connection.close()
+
+
+def hops(h: H, ctx: Ctx) -> None:
+    """/hop/N redirects to /hop/N-1; /hop/0 is the image."""
+    n = int(h.path.rsplit("/", 1)[1].split(".")[0])
+    if n == 0:
+        send(h, 200, noise_image(ctx.name), {"Content-Type": "image/png"})
+    else:
+        send(h, 302, headers={"Location": f"/hop/{n - 1}.png"})
+
+
+def status(code: int, retry_after: str | None) -> Callable[[H, Ctx], None]:
+    """Always the same error status, with an optional Retry-After."""
+    def handle(h: H, ctx: Ctx) -> None:
+        send(h, code, b"busy", {"Retry-After": retry_after} if retry_after else None)
+    return handle
+
+
+def robots_redirect_loop(h: H, ctx: Ctx) -> None:
+    """robots.txt redirects to itself forever."""
+    send(h, 302, headers={"Location": "/robots.txt"})
+
+
+def big_robots(h: H, ctx: Ctx) -> None:
+    """A 5 MB robots.txt: one real group, then comment lines."""
+    head = b"User-agent: *\nDisallow: /private/\n"
+    pad = b"# padding line of a very long robots.txt file\n"
+    body = head + pad * ((5_000_000 - len(head)) // len(pad))
+    send(h, 200, body, {"Content-Type": "text/plain"})
+
+
+def binary_robots(h: H, ctx: Ctx) -> None:
+    """robots.txt made of random bytes."""
+    send(h, 200, random.Random("robots").randbytes(8192),
+         {"Content-Type": "application/octet-stream"})
+
+
+# --- listings ------------------------------------------------------------------------------
+def deep_json(h: H, ctx: Ctx) -> None:
+    """A JSON listing nested 100,000 arrays deep."""
+    send(h, 200, b"[" * 100_000 + b"]" * 100_000, {"Content-Type": "application/json"})
+
+
+def huge_json(h: H, ctx: Ctx) -> None:
+    """A 50 MB JSON listing (streamed, honest Content-Length)."""
+    item = b'{"id": "x", "image": "/nothing.png", "licence": "CC0-1.0"},'
+    count = 50_000_000 // len(item)
+    h.send_response(200)
+    h.send_header("Content-Type", "application/json")
+    h.send_header("Content-Length", str(len(b'{"items": [') + count * len(item) + 2))
+    h.end_headers()
+    h.close_connection = True
+    try:
+        h.wfile.write(b'{"items": [')
+        for _ in range(count // 1000):
+            h.wfile.write(item * 1000)
+        h.wfile.write(item * (count % 1000) + b"]}")
+    except OSError:
+        return
+
+
+def json_cycle(h: H, ctx: Ctx) -> None:
+    """Two JSON pages whose next links point at each other."""
+    page = "b" if h.path.startswith("/api/b") else "a"
+    body = {"items": [{"id": f"{ctx.name}-{page}", "image": f"/good-{page}.png",
+                       "licence": "CC0-1.0"}],
+            "next": "/api/b" if page == "a" else "/api/a"}
+    send(h, 200, json.dumps(body).encode(), {"Content-Type": "application/json"})
+
+
+def html_page(ctx: Ctx, extra: str = "", next_href: str | None = None,
+              image: str = "/good.png") -> bytes:
+    """A listing page with one item."""
+    nxt = f'<a rel="next" href="{next_href}">next</a>' if next_href else ""
+    return (f'<!doctype html><html><body><ul><li class="tile"><a href="/item/{image}">'
+            f'<img src="{image}"></a><span class="licence">CC0-1.0</span>{extra}</li>'
+            f"</ul>{nxt}</body></html>").encode()
+
+
+def html_invalid_utf8(h: H, ctx: Ctx) -> None:
+    """A listing labelled UTF-8 with invalid byte sequences in it."""
+    body = html_page(ctx, "<p>caf\xe9 \xff\xfe \xc3\x28 \xed\xa0\x80</p>".encode("latin-1")
+                     .decode("latin-1"))
+    body = body.replace(b"caf\xc3\xa9", b"caf\xe9").replace(b"\xc3\xbf\xc3\xbe", b"\xff\xfe")
+    send(h, 200, body, {"Content-Type": "text/html; charset=utf-8"})
+
+
+def html_bogus_charset(h: H, ctx: Ctx) -> None:
+    """A listing whose Content-Type names a charset that does not exist."""
+    send(h, 200, html_page(ctx), {"Content-Type": "text/html; charset=x-no-such-charset"})
+
+
+def html_wrong_charset(h: H, ctx: Ctx) -> None:
+    """A UTF-8 listing labelled UTF-16: decoded as UTF-16 it is noise."""
+    send(h, 200, html_page(ctx), {"Content-Type": "text/html; charset=utf-16"})
+
+
+def html_cycle(h: H, ctx: Ctx) -> None:
+    """Two HTML pages whose rel=next links point at each other."""
+    page = "b" if h.path.startswith("/list/b") else "a"
+    send(h, 200, html_page(ctx, next_href="/list/b" if page == "a" else "/list/a",
+                           image=f"/good-{page}.png"), {"Content-Type": "text/html"})
+
+
+# --- the table -----------------------------------------------------------------------------
+@dataclass(frozen=True)
+class Case:
+    """One misbehaviour: what the server does and how the run must record it.
+
+    kind "image": the lister lists one item (source_key = name) whose image URL is ``path`` on
+    the case's own host; ``state``/``reason`` are that item's expected ledger outcome.
+    kind "json"/"html": a source of its own starting at ``path``; ``reason`` is the note kind
+    the source must leave (or None), and every item it lists must be stored.
+    """
+
+    name: str
+    misbehaviour: str
+    kind: str
+    path: str
+    handler: Callable[[H, Ctx], None]
+    state: str | None = None
+    reason: str | None = None
+    flag: str | None = None  # a flag the stored file must carry
+    robots: Callable[[H, Ctx], None] | None = None
+    why: str = ""  # why this outcome is the right one (accepted cases)
+
+
+IMG = "/img/picture.png"
+CD = "attachment; filename="
+
+CASES: list[Case] = [
+    Case("truncated-honest", "truncated body, honest Content-Length", "image", IMG,
+         truncated_honest, "failed", "connection"),
+    Case("truncated-lying", "truncated body, Content-Length lies to match", "image", IMG,
+         truncated_lying, "rejected", "broken_image"),
+    Case("endless", "endless body, no Content-Length", "image", IMG, endless,
+         "rejected", "too_large"),
+    Case("over-cap", "Content-Length 10 GB (over max_image_bytes)", "image", IMG, over_cap,
+         "rejected", "too_large"),
+    Case("slow-drip", "slow drip, one byte per second", "image", IMG, slow_drip,
+         "failed", "timeout"),
+    Case("stalled", "headers, then a stalled connection", "image", IMG, stalled,
+         "failed", "timeout"),
+    Case("reset", "connection reset mid-body", "image", IMG, reset_mid_body,
+         "failed", "connection"),
+    Case("redirect-loop", "redirect loop (to itself)", "image", IMG, redirect(IMG),
+         "failed", "redirect_blocked"),
+    Case("redirect-chain", "20-hop redirect chain", "image", "/hop/20.png", hops,
+         "failed", "redirect_blocked"),
+    Case("redirect-file", "redirect to file:///etc/passwd", "image", IMG,
+         redirect("file:///etc/passwd"), "failed", "unsafe_url"),
+    Case("redirect-ftp", "redirect to ftp://", "image", IMG,
+         redirect("ftp://127.0.0.1/picture.png"), "failed", "unsafe_url"),
+    Case("redirect-data", "redirect to a data: URI", "image", IMG,
+         redirect("data:image/png;base64,iVBORw0KGgo="), "failed", "unsafe_url"),
+    Case("redirect-javascript", "redirect to javascript:", "image", IMG,
+         redirect("javascript:alert(1)"), "failed", "unsafe_url"),
+    Case("redirect-private", f"redirect to {FORBIDDEN_HOST} (not allowed)", "image", IMG,
+         redirect("{forbidden}/secret.png"), "failed", "unsafe_url"),
+    Case("link-private", f"listing links to {FORBIDDEN_HOST} (not allowed)", "image",
+         "{forbidden}/secret.png", serve(b""), "failed", "unsafe_url"),
+    Case("redirect-robots", "redirect to a robots-disallowed path on another host", "image",
+         IMG, redirect("{fence}/private/picture.png"), "blocked", "robots_disallowed"),
+    Case("html-as-image", "HTML page served as image/png", "image", IMG,
+         serve(b"<!DOCTYPE html><html><body>Not found</body></html>"), "rejected",
+         "not_an_image"),
+    Case("lying-extension", "JPEG bytes at .png, Content-Type image/png", "image", IMG,
+         serve(lambda n: noise_image(n, "JPEG")), "stored", None,
+         flag="type_mismatch:content_type+url_ext",
+         why="the bytes decide the format; the store names it .jpg and the file is flagged"),
+    Case("png-bomb", "PNG decompression bomb (400 MP in 50 KB)", "image", IMG,
+         serve(lambda n: png_bomb()), "rejected", "decompression_bomb"),
+    Case("gif-bomb", "GIF decompression bomb (65535x65535)", "image", "/img/picture.gif",
+         serve(lambda n: gif_bomb(), "image/gif"), "rejected", "decompression_bomb"),
+    Case("png-bad-crc", "PNG with a corrupt IDAT CRC", "image", IMG, serve(png_bad_crc),
+         "rejected", "broken_image"),
+    Case("jpeg-trailer", "JPEG with 64 KiB of garbage after EOI", "image", "/img/picture.jpg",
+         serve(jpeg_with_trailer, "image/jpeg"), "stored", None,
+         why="every pixel decodes and decoders stop at EOI (ITU T.81 B.2.1); cameras and "
+             "editors append trailers; the sha256 still covers every byte"),
+    Case("huge-exif", "PNG with a 900 KB EXIF description", "image", IMG,
+         serve(png_huge_exif), "stored", None,
+         why="metadata is read, not trusted; the image itself is sound"),
+    Case("xmp-bomb", "XMP with an entity-expansion (billion laughs) bomb", "image",
+         "/img/picture.jpg", serve(jpeg_xmp_bomb, "image/jpeg"), "stored", None,
+         flag="xmp_unreadable",
+         why="defusedxml refuses entities; the XMP is recorded as unreadable"),
+    Case("retry-after-10y", "503 with Retry-After of 10 years", "image", IMG,
+         status(503, "315360000"), "deferred", "host_parked"),
+    Case("retry-after-negative", "503 with Retry-After -30", "image", IMG,
+         status(503, "-30"), "failed", "http_503"),
+    Case("retry-after-garbage", "503 with Retry-After garbage", "image", IMG,
+         status(503, "soon-ish, maybe"), "failed", "http_503"),
+    Case("retry-after-huge", "503 with a 400-digit Retry-After", "image", IMG,
+         status(503, "9" * 400), "deferred", "host_parked"),
+    Case("storm-429", "429 on every request", "image", IMG, status(429, None),
+         "failed", "http_429"),
+    Case("robots-5mb", "robots.txt of 5 MB", "image", IMG, serve(noise_image), "stored", None,
+         robots=big_robots, why="the first 512 KiB are parsed (RFC 9309 §2.5)"),
+    Case("robots-binary", "robots.txt of random bytes", "image", IMG, serve(noise_image),
+         "stored", None, robots=binary_robots,
+         why="lines that do not parse are ignored (RFC 9309 §2.3.1.5); no rule, no limit"),
+    Case("robots-redirect-loop", "robots.txt redirect loop", "image", IMG, serve(noise_image),
+         "stored", None, robots=robots_redirect_loop,
+         why="more than five redirects: unavailable, MAY access anything (RFC 9309 §2.3.1.2)"),
+    Case("name-dotdot", "Content-Disposition filename ../../..", "image", IMG,
+         serve(noise_image, Content_Disposition=CD + '"../../../../escaped-dotdot.png"'),
+         "stored", None, why="files are named by sha256; the server's name is ignored"),
+    Case("name-absolute", "Content-Disposition absolute filename", "image", IMG,
+         serve(noise_image, Content_Disposition=CD + '"{outside}/escaped-absolute.png"'),
+         "stored", None, why="files are named by sha256; the server's name is ignored"),
+    Case("name-nul", "Content-Disposition filename with a NUL byte", "image", IMG,
+         serve(noise_image, Content_Disposition=CD + '"evil\x00.png"'), "stored", None,
+         why="files are named by sha256; the server's name is ignored"),
+    Case("name-device", "Content-Disposition filename CON / NUL.png", "image", IMG,
+         serve(noise_image, Content_Disposition=CD + '"CON"; filename*=UTF-8\'\'NUL.png'),
+         "stored", None, why="files are named by sha256; the server's name is ignored"),
+    Case("json-deep", "JSON listing nested 100,000 deep", "json", "/api/a", deep_json,
+         reason="bad_json"),
+    Case("json-50mb", "50 MB JSON listing (over max_page_bytes)", "json", "/api/a", huge_json,
+         reason="too_large"),
+    Case("json-cycle", "JSON pagination that cycles", "json", "/api/a", json_cycle,
+         reason="loop"),
+    Case("html-invalid-utf8", "HTML listing with invalid UTF-8", "html", "/list/a",
+         html_invalid_utf8, reason=None, why="bad bytes are replaced (U+FFFD)"),
+    Case("html-bogus-charset", "HTML listing with an unknown charset label", "html", "/list/a",
+         html_bogus_charset, reason=None, why="an unknown label falls back to UTF-8"),
+    Case("html-wrong-charset", "UTF-8 HTML listing labelled UTF-16", "html", "/list/a",
+         html_wrong_charset, reason="selector_empty",
+         why="the page decodes to noise; the selector note says so"),
+    Case("html-cycle", "HTML pagination that cycles", "html", "/list/a", html_cycle,
+         reason="loop"),
+]
+CASE_NAMES = [c.name for c in CASES]
+
+
+# --- servers -------------------------------------------------------------------------------
+@dataclass
+class Ctx:
+    """What a handler knows: its case name and the other sites' base URLs."""
+
+    name: str
+    sites: dict[str, str]
+    drip_interval: float = 1.0
+
+    def fill(self, template: str) -> str:
+        """Replace {forbidden}, {fence}, {outside} and {self} in a template."""
+        return template.format(**self.sites, self=self.sites.get(self.name, ""))
+
+
+class _Server(ThreadingHTTPServer):
+    daemon_threads = True
+    allow_reuse_address = True
+
+    def handle_error(self, request: Any, client_address: Any) -> None:
+        pass  # clients hanging up on hostile answers is the point
+
+
+class Site:
+    """One HTTP server: routes by path prefix; counts requests."""
+
+    def __init__(self, ctx: Ctx, host: str = "127.0.0.1",
+                 handler: Callable[[H, Ctx], None] | None = None,
+                 robots: Callable[[H, Ctx], None] | None = None,
+                 routes: dict[str, Callable[[H, Ctx], None]] | None = None) -> None:
+        self.ctx, self.hits = ctx, []
+        site = self
+
+        class _H(BaseHTTPRequestHandler):
+            protocol_version = "HTTP/1.1"
+
+            def do_GET(self) -> None:
+                site.hits.append(self.path)
+                path = self.path.split("?", 1)[0]
+                if path == "/robots.txt":
+                    if robots is not None:
+                        robots(self, site.ctx)
+                    else:
+                        send(self, 200, b"User-agent: *\nAllow: /\n",
+                             {"Content-Type": "text/plain"})
+                    return
+                for prefix, route in (routes or {}).items():
+                    if path.startswith(prefix):
+                        route(self, site.ctx)
+                        return
+                if handler is not None:
+                    handler(self, site.ctx)
+                else:
+                    send(self, 404, b"not here")
+
+            def log_message(self, *args: object) -> None:
+                pass
+
+        self.server = _Server((host, 0), _H)
+        self.base = f"http://{host}:{self.server.server_address[1]}"
+        self.thread = threading.Thread(target=self.server.serve_forever, args=(0.05,),
+                                       daemon=True)
+        self.thread.start()
+
+    def close(self) -> None:
+        """Stop serving."""
+        self.server.shutdown()
+        self.server.server_close()
+
+
+def _good(name: str) -> Callable[[H, Ctx], None]:
+    return serve(lambda _: noise_image(name))
+
+
+class HostileArchive:
+    """Every case's site plus the lister, the fence and the forbidden site."""
+
+    def __init__(self, cases: list[Case] | None = None, outside: Path | None = None,
+                 drip_interval: float = 1.0) -> None:
+        self.cases = list(CASES if cases is None else cases)
+        self.sites_base: dict[str, str] = {"outside": str(outside or "/nonexistent")}
+        self.sites: dict[str, Site] = {}
+
+        def ctx(name: str) -> Ctx:
+            return Ctx(name, self.sites_base, drip_interval)
+
+        self.forbidden = self._add("forbidden", Site(ctx("forbidden"), FORBIDDEN_HOST,
+                                                     serve(lambda _: noise_image("x"))))
+        self.fence = self._add("fence", Site(
+            ctx("fence"), handler=serve(lambda _: noise_image("fence")),
+            robots=serve(b"User-agent: *\nDisallow: /private/\n", "text/plain")))
+        for case in self.cases:
+            routes = {f"/good-{p}": _good(f"{case.name}-{p}") for p in ("a", "b")}
+            routes["/good"] = _good(f"{case.name}-good")
+            self._add(case.name, Site(ctx(case.name), handler=case.handler,
+                                      robots=case.robots, routes=routes))
+        self.lister = self._add("lister", Site(ctx("lister"), routes={
+            "/api/items": self._listing, "/good.png": _good("normal")}))
+
+    def _add(self, name: str, site: Site) -> Site:
+        self.sites[name] = site
+        self.sites_base[name] = site.base
+        return site
+
+    def url(self, case: Case) -> str:
+        """The absolute URL a case's item or source starts at."""
+        return Ctx(case.name, self.sites_base).fill(case.path) if "{" in case.path else (
+            self.sites[case.name].base + case.path)
+
+    def _listing(self, h: H, ctx: Ctx) -> None:
+        items = [{"id": c.name, "image": self.url(c), "licence": "CC0-1.0"}
+                 for c in self.cases if c.kind == "image"]
+        items.append({"id": "normal", "image": self.sites["lister"].base + "/good.png",
+                      "licence": "CC0-1.0"})
+        send(h, 200, json.dumps({"items": items}).encode(), {"Content-Type": "application/json"})
+
+    def recipe(self, *, read_timeout: float = 1.0, download_deadline: float = 2.5) -> str:
+        """A recipe over every case: short timeouts, small caps, fast back-off."""
+        parts = [f"""contact = "hostile-tests@example.org"
+
+[budgets]
+min_interval = 0.0
+max_attempts = 2
+max_retry_after = 5
+backoff_base = 0.05
+backoff_max = 0.2
+
+[network]
+connect_timeout = 2.0
+read_timeout = {read_timeout}
+download_deadline = {download_deadline}
+max_image_bytes = 1_000_000
+max_page_bytes = 1_000_000
+allow_addresses = ["127.0.0.1"]
+
+[[sources]]
+name = "lister"
+kind = "json_api"
+url = "{self.sites['lister'].base}/api/items"
+[sources.fields]
+items = "items"
+id = "id"
+image_url = "image"
+licence = "licence"
+"""]
+        for case in self.cases:
+            if case.kind == "json":
+                parts.append(f"""
+[[sources]]
+name = "{case.name}"
+kind = "json_api"
+url = "{self.url(case)}"
+[sources.pagination]
+style = "next_url"
+next_path = "next"
+[sources.fields]
+items = "items"
+id = "id"
+image_url = "image"
+licence = "licence"
+""")
+            elif case.kind == "html":
+                parts.append(f"""
+[[sources]]
+name = "{case.name}"
+kind = "html"
+start_urls = ["{self.url(case)}"]
+[sources.select]
+item = "li.tile"
+image = "img"
+licence = ".licence"
+""")
+        return "".join(parts)
+
+    def close(self) -> None:
+        """Stop every site."""
+        for site in self.sites.values():
+            site.close()
+
+    def __enter__(self) -> HostileArchive:
+        return self
+
+    def __exit__(self, *exc: object) -> None:
+        self.close()
+
+
+# --- running and judging -------------------------------------------------------------------
+@dataclass
+class RunStats:
+    """A gather subprocess: exit code, peak RSS (KiB), wall seconds, stderr."""
+
+    returncode: int
+    max_rss_kib: int
+    seconds: float
+    stderr: str
+    stdout: str = ""
+
+
+def run_gather(folder: Path, *extra: str, timeout: float = 120.0,
+               env: dict[str, str] | None = None, cwd: Path | None = None) -> RunStats:
+    """Run ``collector gather FOLDER`` in a child process, reaped with ``os.wait4`` for its
+    own peak RSS (``ru_maxrss``, KiB on Linux)."""
+    started = time.monotonic()
+    proc = subprocess.Popen([sys.executable, "-m", "collector", "gather", str(folder), *extra],
+                            stdout=subprocess.PIPE, stderr=subprocess.PIPE,
+                            env={**os.environ, **(env or {})}, cwd=cwd)
+    chunks: dict[str, bytes] = {}
+
+    def drain(name: str, stream: Any) -> None:
+        chunks[name] = stream.read()
+
+    readers = [threading.Thread(target=drain, args=(n, s), daemon=True)
+               for n, s in (("out", proc.stdout), ("err", proc.stderr))]
+    for r in readers:
+        r.start()
+    deadline = time.monotonic() + timeout
+    while True:
+        pid, wstatus, usage = os.wait4(proc.pid, os.WNOHANG)
+        if pid:
+            break
+        if time.monotonic() > deadline:
+            proc.kill()
+            os.wait4(proc.pid, 0)
+            raise TimeoutError(f"gather did not end within {timeout} s")
+        time.sleep(0.05)
+    proc.returncode = os.waitstatus_to_exitcode(wstatus)
+    for r in readers:
+        r.join()
+    return RunStats(proc.returncode, usage.ru_maxrss, time.monotonic() - started,
+                    chunks.get("err", b"").decode(errors="replace"),
+                    chunks.get("out", b"").decode(errors="replace"))
+
+
+@dataclass
+class Verdict:
+    """What the ledger says about one case, and whether that is the expected outcome."""
+
+    case: Case
+    outcome: str
+    reason: str
+    ok: bool
+    problems: list[str] = field(default_factory=list)
+
+
+def judge(ledger: Any, case: Case) -> Verdict:
+    """Read the ledger's record of one case and compare it with the table."""
+    problems: list[str] = []
+    if case.kind == "image":
+        rows = ledger.query(
+            "SELECT i.state, i.reason, i.detail, f.flags FROM items i JOIN sources s "
+            "ON s.id = i.source_id LEFT JOIN files f ON f.sha256 = i.file_sha256 "
+            "WHERE s.name = 'lister' AND i.source_key = ?", (case.name,))
+        if not rows:
+            return Verdict(case, "no ledger row", "", False, ["the item was never recorded"])
+        row = rows[0]
+        flags = json.loads(row["flags"]) if row["flags"] else []
+        outcome = row["state"]
+        reason = row["reason"] or (", ".join(flags) if flags else "")
+        if row["state"] != case.state:
+            problems.append(f"state {row['state']!r}, expected {case.state!r}")
+        if row["reason"] != case.reason:
+            problems.append(f"reason {row['reason']!r}, expected {case.reason!r}")
+        if case.state in ("failed", "rejected", "blocked", "deferred") and not row["detail"]:
+            problems.append("no detail text")
+        if case.flag and case.flag not in flags:
+            problems.append(f"flags {flags}, expected {case.flag!r}")
+        return Verdict(case, outcome, reason, not problems, problems)
+    notes = [r["kind"] for r in ledger.query(
+        "SELECT n.kind FROM notes n JOIN sources s ON s.id = n.source_id WHERE s.name = ?",
+        (case.name,))]
+    items = ledger.query(
+        "SELECT i.state FROM items i JOIN sources s ON s.id = i.source_id WHERE s.name = ?",
+        (case.name,))
+    states = sorted(r["state"] for r in items)
+    if case.reason is not None and case.reason not in notes:
+        problems.append(f"notes {notes}, expected {case.reason!r}")
+    if case.reason is None and notes:
+        problems.append(f"unexpected notes {notes}")
+    if any(s != "stored" for s in states):
+        problems.append(f"item states {states}, expected all stored")
+    if case.reason in (None, "loop") and not states:
+        problems.append("no item was listed")
+    outcome = f"note; {len(states)} item(s) stored" if notes else f"{len(states)} item(s) stored"
+    return Verdict(case, outcome, ", ".join(notes) or "-", not problems, problems)
