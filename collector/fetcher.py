@@ -139,6 +139,9 @@ def expand_env(value: str) -> str:
     return re.sub(r"\$\{([A-Za-z_][A-Za-z0-9_]*)\}", lambda m: os.environ.get(m[1], ""), value)
 
 
+PERSISTED_PARK_MAX = 86_400.0  # seconds a parking outlives the run that saw it
+
+
 @dataclass(frozen=True)
 class FetchSettings:
     """Everything the fetcher needs from the recipe; build with :meth:`from_recipe`."""
@@ -700,7 +703,10 @@ class Fetcher:
             failures = self._failures.get(hk, 0)
         self.budgets.park(hk, until_mono)
         if persist and self.ledger is not None:
-            self.ledger.put_host(hk, parked_until=until, failures=failures)
+            # Later runs honour the parking too, but for a day at most: a server that says
+            # "come back in ten years" is wrong more often than it means it.
+            stored = min(until, self.clock.time() + PERSISTED_PARK_MAX)
+            self.ledger.put_host(hk, parked_until=stored, failures=failures)
 
     def _failed(self, hk: str, shown: str) -> None:
         """Count a failed request (retries used up); at the threshold the breaker opens."""

@@ -137,6 +137,11 @@ def _type_mismatch(fmt: str, content_type: str | None, url: str | None) -> str |
 
 
 # --- small helpers -----------------------------------------------------------------------------
+# The longest IPTC text field, Caption/Abstract, is 2000 bytes (IIM 2:120); a longer embedded
+# text is kept in part so one file cannot bloat the ledger.
+MAX_TEXT = 2000
+
+
 def _text(value: Any) -> str | None:
     """Decode EXIF/IPTC values: bytes as UTF-8, else latin-1; strip NULs and blanks."""
     if value is None:
@@ -150,6 +155,8 @@ def _text(value: Any) -> str | None:
         except UnicodeDecodeError:
             value = value.decode("latin-1")
     text = str(value).replace("\x00", " ").strip()
+    if len(text) > MAX_TEXT:
+        text = text[:MAX_TEXT] + f"... [{len(text) - MAX_TEXT} more characters not kept]"
     return text or None
 
 

@@ -242,6 +242,11 @@ class Gatherer:
             note(_Note(exc.reason, exc.url, f"listing stopped: {exc}"))
         except CollectorError as exc:
             note(_Note("source_error", None, str(exc)))
+        except Exception as exc:
+            # A bug, not the archive's fault: leave a trace in the ledger, then fail loudly.
+            note(_Note("internal_error", None, f"listing stopped by an error in collector "
+                       f"({type(exc).__name__}: {exc}); please report it"))
+            raise
 
     def _register(self, source_id: int, c: Any) -> None:
         """Record a candidate and decide what happens to it before anything is downloaded."""

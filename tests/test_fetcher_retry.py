@@ -8,9 +8,11 @@ from pathlib import Path
 import pytest
 import responses
 
+from collector import urls
 from collector.budgets import FakeClock
 from collector.errors import FetchError, HostParked
 from collector.fetcher import Fetcher, FetchSettings, parse_http_date, parse_retry_after
+from collector.ledger import Ledger
 from collector.recipe import parse_recipe
 
 # RFC 9110 §5.6.7 examples; all three forms are Unix 784111777 (standards.md §4).
@@ -108,6 +110,28 @@ def test_retry_after_over_cap_parks_without_sleeping() -> None:
         Fetcher(settings, None, clock=clock).get_page(f"{BASE}/p")
     assert err.value.until == pytest.approx(clock.time() + 3600.0)
     assert clock.sleeps == []
+
+
+@responses.activate
+def test_parking_outlives_the_run_for_a_day_at_most(tmp_path: Path) -> None:
+    """A ten-year Retry-After parks the host in this run; the ledger keeps it 24 h at most,
+    so a later run tries again (project policy; RFC 9110 section 10.2.3 sets no maximum)."""
+    responses.get(f"{BASE}/robots.txt", status=404)
+    responses.get(f"{BASE}/p", status=503, headers={"Retry-After": "315360000"})
+    clock = FakeClock()
+    settings = FetchSettings.from_recipe(
+        {"contact": "c@example.org", "budgets": {"min_interval": 0.0, "max_retry_after": 600},
+         "network": {"allow_addresses": ["127.0.0.1"]}})
+    ledger = Ledger.create(tmp_path / "l.sqlite")
+    with pytest.raises(HostParked) as err:
+        Fetcher(settings, ledger, clock=clock).get_page(f"{BASE}/p")
+    assert err.value.until == pytest.approx(clock.time() + 315360000.0)
+    host = urls.host_key(f"{BASE}/p")
+    assert ledger.get_host(host)["parked_until"] == pytest.approx(clock.time() + 86400.0)
+    clock.advance(86401.0)
+    responses.replace(responses.GET, f"{BASE}/p", status=200, body=b"{}")
+    assert Fetcher(settings, ledger, clock=clock).get_page(f"{BASE}/p").status == 200
+    ledger.close()
 
 
 @responses.activate

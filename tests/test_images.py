@@ -279,6 +279,17 @@ def test_exif_artist_copyright_serial_and_owner_are_read(tmp_path):
     json.dumps(facts.exif), json.dumps(facts.rights)  # must be storable as JSON columns
 
 
+def test_very_long_embedded_text_is_kept_in_part(tmp_path):
+    """A 50,000-character EXIF Artist is cut to 2000 characters (the IIM Caption/Abstract
+    maximum, standards.md 6.2) plus a note of how much was left out."""
+    exif = Image.Exif()
+    exif[315] = "A" * 50_000
+    path = tmp_path / "long.jpg"
+    scene().save(path, exif=exif)
+    artist = inspect_image(path).rights["exif_artist"]
+    assert artist.startswith("A" * 2000) and artist.endswith("[48000 more characters not kept]")
+
+
 def _iptc_dataset(dataset: int, value: bytes) -> bytes:
     # IIM: tag marker 0x1C, record 2, dataset number, 2-byte length (standards.md section 6.2)
     return b"\x1c\x02" + bytes([dataset]) + struct.pack(">H", len(value)) + value
