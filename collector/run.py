@@ -162,7 +162,8 @@ class Gatherer:
         self._source_ids = [ledger.source_id(src["name"], src["kind"], src)
                             for src in recipe.sources]
         self._source_rank = {sid: rank for rank, sid in enumerate(self._source_ids)}
-        self._secret_params = {sid: tuple(src.get("secret_params") or ())
+        everywhere = tuple(recipe.network.get("secret_params") or ())
+        self._secret_params = {sid: (*(src.get("secret_params") or ()), *everywhere)
                                for src, sid in zip(recipe.sources, self._source_ids, strict=True)}
         self._secrets = secret_values(recipe)
         self._item_source: dict[int, int] = {}
@@ -589,10 +590,11 @@ def secret_values(recipe: Recipe) -> list[str]:
 
     found: list[str] = []
     secret_headers = {h.lower() for h in recipe.network.get("secret_headers") or ()}
+    everywhere = list(recipe.network.get("secret_params") or ())
     for src in recipe.sources:
         params = src.get("params") or {}
-        found += [expand_env(str(params[n])) for n in src.get("secret_params") or ()
-                  if n in params]
+        found += [expand_env(str(params[n]))
+                  for n in [*(src.get("secret_params") or ()), *everywhere] if n in params]
     for headers in [recipe.network.get("headers") or {},
                     *(src.get("headers") or {} for src in recipe.sources)]:
         for name, value in headers.items():

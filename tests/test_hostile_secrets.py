@@ -8,6 +8,7 @@ from __future__ import annotations
 import json
 from pathlib import Path
 
+import pytest
 from hostile_server import Ctx, Site, noise_image, run_gather, send
 
 from collector.collection import init_collection
@@ -71,13 +72,21 @@ licence = "licence"
 """
 
 
-def test_secrets_never_reach_the_ledger_logs_exports_or_messages(tmp_path: Path) -> None:
+NETWORK_LEVEL = RECIPE.replace('secret_params = ["key"]\n', "").replace(
+    "[network]\n", '[network]\nsecret_params = ["key"]\n')
+
+
+@pytest.mark.parametrize("recipe", [RECIPE, NETWORK_LEVEL], ids=["source-level",
+                                                                 "network-level"])
+def test_secrets_never_reach_the_ledger_logs_exports_or_messages(
+        tmp_path: Path, recipe: str) -> None:
     """Ledger bytes (+ -wal), --log-json stdout, stderr and every datasheet file are free
-    of the key, the bearer token and the cookie, while the run did use them."""
+    of the key, the bearer token and the cookie, while the run did use them, whether the
+    key is marked secret in the source or in [network]."""
     site = leaky_site()
     try:
         col = init_collection(tmp_path / "col", contact="x@example.org")
-        col.recipe_path.write_text(RECIPE.format(base=site.base))
+        col.recipe_path.write_text(recipe.format(base=site.base))
         stats = run_gather(col.root, "--log-json", env=ENV)
         hits = list(site.hits)
     finally:
