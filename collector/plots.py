@@ -83,9 +83,12 @@ def render_plots(facts: dict[str, Any]) -> dict[str, str]:
     timeline = facts["timeline"]
     buckets = sorted(set(timeline["requests"]) | set(timeline["stored"]))
     if buckets:
-        from datetime import datetime
+        from datetime import datetime, timedelta
 
-        fmt = {"minute": "%Y-%m-%dT%H:%M", "hour": "%Y-%m-%dT%H", "day": "%Y-%m-%d"}
+        from matplotlib import dates as mdates
+
+        fmt = {"second": "%Y-%m-%dT%H:%M:%S", "minute": "%Y-%m-%dT%H:%M", "hour": "%Y-%m-%dT%H",
+               "day": "%Y-%m-%d"}
         when = [datetime.strptime(b, fmt[timeline["unit"]]) for b in buckets]
         fig = Figure(figsize=(6.4, 3.4))
         ax = fig.add_subplot()
@@ -100,9 +103,17 @@ def render_plots(facts: dict[str, Any]) -> dict[str, str]:
             ax.vlines(xs, 0, ys, colors=colour, alpha=0.5)
             ax.plot(xs, ys, marker, ms=4, color=colour, label=label)
         ax.set_ylim(bottom=0)
+        # Frame the data with one bucket either side; a single bucket would otherwise get
+        # matplotlib's default span of years.
+        step = {"second": timedelta(seconds=1), "minute": timedelta(minutes=1),
+                "hour": timedelta(hours=1),
+                "day": timedelta(days=1)}[timeline["unit"]]
+        ax.set_xlim(min(when) - step, max(when) + step)
+        locator = mdates.AutoDateLocator()
+        ax.xaxis.set_major_locator(locator)
+        ax.xaxis.set_major_formatter(mdates.ConciseDateFormatter(locator))
         ax.set_ylabel(f"per {timeline['unit']} (UTC)")
         ax.legend(frameon=False, fontsize=8)
-        fig.autofmt_xdate()
         ax.spines[["top", "right"]].set_visible(False)
         out["timeline"] = _svg(fig, "timeline")
     return out
