@@ -171,8 +171,7 @@ class Ledger:
         """The highest migration applied (0 for an empty file)."""
         if "schema_version" not in self.db.table_names():
             return 0
-        row = self._conn.execute("SELECT max(version) FROM schema_version").fetchone()
-        return int(row[0] or 0)
+        return int(self.scalar("SELECT max(version) FROM schema_version") or 0)
 
     def migrate(self) -> int:
         """Apply every migration newer than the file's version; returns the new version."""
@@ -217,15 +216,18 @@ class Ledger:
     def scalar(self, sql: str, params: tuple[Any, ...] | dict[str, Any] = ()) -> Any:
         """Run a query that returns one value."""
         with self._lock, self._translate("query"):
-            row = self._conn.execute(sql, params).fetchone()
-            return None if row is None else row[0]
+            rows = self._conn.execute(sql, params).fetchall()  # all: leave no statement open
+            return rows[0][0] if rows else None
 
     def _columns(self, table: str) -> frozenset[str]:
-        cols = self._column_cache.get(table)
-        if cols is None:
-            cols = frozenset(c.name for c in self.db[table].columns)
-            self._column_cache[table] = cols
-        return cols
+        # Under the lock: the connection is shared by threads, and a PRAGMA read running
+        # while another thread writes the same table fails with "database table is locked".
+        with self._lock:
+            cols = self._column_cache.get(table)
+            if cols is None:
+                cols = frozenset(c.name for c in self.db[table].columns)
+                self._column_cache[table] = cols
+            return cols
 
     def _checked(self, table: str, row: dict[str, Any]) -> dict[str, Any]:
         unknown = row.keys() - self._columns(table)
@@ -270,7 +272,8 @@ class Ledger:
     def source_id(self, name: str, kind: str, config: dict[str, Any]) -> int:
         """The id of the named source, created or updated with its current config."""
         with self._lock, self._translate("write to sources"), self._conn:
-            row = self.db.execute("SELECT id FROM sources WHERE name = ?", [name]).fetchone()
+            rows = self.db.execute("SELECT id FROM sources WHERE name = ?", [name]).fetchall()
+            row = rows[0] if rows else None
             encoded = _encode({"name": name, "kind": kind, "config": config})
             if row:
                 self.db["sources"].update(row[0], encoded)
@@ -327,8 +330,13 @@ class Ledger:
 
     def put_host(self, host: str, **fields: Any) -> None:
         """Insert or update a host's row."""
+        data = self._checked("hosts", {"host": host, **fields})
+        names = ", ".join(data)
+        marks = ", ".join("?" for _ in data)
+        sets = ", ".join(f"{n} = excluded.{n}" for n in data if n != "host") or "host = host"
         with self._lock, self._translate("write to hosts"), self._conn:
-            self.db["hosts"].upsert(_encode({"host": host, **fields}), pk="host")
+            self._conn.execute(f"INSERT INTO hosts ({names}) VALUES ({marks}) "
+                               f"ON CONFLICT(host) DO UPDATE SET {sets}", list(data.values()))
 
     # -- notes -------------------------------------------------------------------------------
     def add_note(self, kind: str, message: str, *, url: str | None = None,

@@ -60,6 +60,10 @@ def test_every_manifest_item_ends_in_its_expected_state(demo_run, demo_server) -
     """Accepted, skipped for licence, blocked by robots, duplicates, rejected: item by item."""
     col, _, result = demo_run
     assert result.outcome == "finished"
+    with col.ledger(readonly=True) as ledger:
+        notes = ledger.query("SELECT kind, url, message FROM notes")
+    assert {n["kind"] for n in notes} == {"touching_items", "blank_scan"}, [
+        n["message"] for n in notes]
     keyed = ledger_items(col)
     wrong = []
     for item in demo_server.manifest["items"]:
@@ -178,3 +182,34 @@ def test_rerun_requests_no_image_again(demo_run, demo_server) -> None:
     paths = [r.path for r in demo_server.log]
     assert "/robots.txt" not in paths
     assert {p.lstrip("/") for p in paths if p.startswith("/media/")} == failed
+
+
+def test_planted_variants_trace_to_their_original(demo_run, demo_server, demo_content,
+                                                  tmp_path: Path) -> None:
+    """The archive's resized, re-encoded and mirrored variants, re-encoded once more so that
+    no byte matches, trace as near matches that include the right original, mirroring named
+    (pHash distances within 8 bits, libraries.md section 2)."""
+    from PIL import Image
+
+    from collector.trace import Tracer
+
+    col, _, _ = demo_run
+    by_key = {(i["source"], i["key"]): i for i in demo_server.manifest["items"]}
+    variants = [i for i in demo_server.manifest["items"] if i["state"] == "near_duplicate"]
+    assert len(variants) == 3
+    with Tracer.open(col.root) as tracer:
+        for item in variants:
+            served = demo_content / "site" / str(item["image_host"]) / item["image_path"].lstrip(
+                "/")
+            copy = tmp_path / f"{item['key']}.jpg"
+            with Image.open(served) as im:
+                im.convert("RGB").save(copy, "JPEG", quality=85)
+            result = tracer.trace_file(copy)
+            assert result.kind == "near", item["key"]
+            original = by_key[(item["duplicate_of"]["source"], item["duplicate_of"]["key"])]
+            hits = {c.file.sha256: c for c in result.near}
+            assert original["sha256"] in hits, item["key"]
+            assert hits[original["sha256"]].mirrored == bool(item["mirrored"]), item["key"]
+        unrelated = tmp_path / "unrelated.png"
+        Image.effect_mandelbrot((256, 256), (-2.0, -1.5, 1.0, 1.5), 60).save(unrelated)
+        assert tracer.trace_file(unrelated).kind == "none"

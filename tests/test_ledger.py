@@ -99,3 +99,32 @@ def test_reader_sees_committed_rows_while_writer_is_open(tmp_path: Path) -> None
         writer.start_run("abc", {}, "0.1.0")
         with Ledger.open(path, readonly=True) as reader:
             assert reader.scalar("SELECT count(*) FROM runs") == 1
+
+
+def test_first_writes_from_many_threads_do_not_lock_each_other(tmp_path: Path) -> None:
+    """Threads writing hosts, fetches and items at once, on a fresh ledger whose column
+    lists are not cached yet, never see "database table is locked"."""
+    for attempt in range(30):
+        with Ledger.create(tmp_path / f"l{attempt}.sqlite") as ledger:
+            source = ledger.source_id("s", "json_api", {})
+            errors: list[BaseException] = []
+            start = threading.Barrier(6)
+
+            def work(n: int, ledger: Ledger = ledger, source: int = source,
+                     errors: list = errors, start: threading.Barrier = start) -> None:
+                start.wait()
+                try:
+                    for i in range(5):
+                        ledger.put_host(f"h{n}", robots_status=200, failures=i)
+                        ledger.record_fetch(url=f"http://h{n}/{i}", host=f"h{n}", status=200)
+                        ledger.add_item(source, f"{n}-{i}", {"image_url": f"http://h{n}/{i}"})
+                except BaseException as exc:
+                    errors.append(exc)
+
+            threads = [threading.Thread(target=work, args=(n,)) for n in range(6)]
+            for t in threads:
+                t.start()
+            for t in threads:
+                t.join()
+            assert errors == []
+            assert ledger.scalar("SELECT count(*) FROM hosts") == 6
