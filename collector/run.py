@@ -35,6 +35,7 @@ from collector.errors import (
     FetchError,
     HostParked,
     ImageRejected,
+    LedgerError,
     RecipeError,
     RecipeProblem,
     RobotsDenied,
@@ -236,7 +237,7 @@ class Gatherer:
                 self._register(source_id, candidate)
         except HostParked as exc:
             note(_Note("host_parked", exc.url, str(exc)))
-        except StoreError as exc:
+        except (StoreError, LedgerError) as exc:  # the disk or the ledger: nothing can go on
             self.fatal = exc
             self.request_stop(f"failed: {exc}")
         except FetchError as exc:
@@ -344,7 +345,7 @@ class Gatherer:
             except HostParked as exc:
                 stats.parked = True
                 self._finish(job.item_id, "deferred", "host_parked", str(exc))
-            except StoreError as exc:
+            except (StoreError, LedgerError) as exc:
                 self.fatal = exc
                 self.request_stop(f"failed: {exc}")
             stats.done += 1
