@@ -137,8 +137,9 @@ def human_seconds(seconds: float) -> str:
 
 def format_summary(s: Summary) -> list[str]:
     """The summary as plain text lines."""
+    runs = f"{s.runs} run" + ("" if s.runs == 1 else "s")
     lines = [f"{s.total_items} items, {s.files} files stored ({human_bytes(s.file_bytes)}), "
-             f"{s.requests} requests ({human_bytes(s.fetched_bytes)} received), {s.runs} runs "
+             f"{s.requests} requests ({human_bytes(s.fetched_bytes)} received), {runs} "
              f"taking {human_seconds(s.run_seconds)}"]
     if s.last_run:
         lines.append(f"last run: #{s.last_run['id']} started {s.last_run['started_at']}, "

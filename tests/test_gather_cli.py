@@ -75,7 +75,7 @@ def test_status_reports_politeness_per_host(demo_folder: Path) -> None:
     assert result.exit_code == 0
     assert "politeness per host:" in result.output
     assert "x 429" in result.output and "waited" in result.output
-    assert "runs taking" in result.output
+    assert "1 run taking" in result.output
     as_json = json.loads(runner.invoke(app, ["status", str(demo_folder), "--json"]).output)
     conn = sqlite3.connect(demo_folder / "ledger.sqlite")
     assert as_json["files"] == conn.execute("SELECT count(*) FROM files").fetchone()[0] >= 3
