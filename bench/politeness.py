@@ -22,8 +22,11 @@ from http.server import BaseHTTPRequestHandler, ThreadingHTTPServer
 from pathlib import Path
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
+sys.path.insert(0, str(Path(__file__).resolve().parents[1] / "tests"))
 
 import itertools
+
+from fetcher_loopback import max_in_window  # the same window count the tests use
 
 from collector.fetcher import Fetcher, FetchSettings
 
@@ -67,17 +70,6 @@ def _serve(addresses: list[str], conn: mp.connection.Connection) -> None:
         s.shutdown()
     with lock:
         conn.send(logs)
-
-
-def max_in_window(stamps: list[float], window: float) -> int:
-    """Largest number of stamps in any half-open window [t, t + window)."""
-    stamps = sorted(stamps)
-    best, j = 0, 0
-    for i, start in enumerate(stamps):
-        while j < len(stamps) and stamps[j] < start + window:
-            j += 1
-        best = max(best, j - i)
-    return best
 
 
 def run(hosts: int, per_host: int) -> dict[str, float]:
