@@ -514,6 +514,8 @@ class Fetcher:
             if status in SLOW_DOWN_STATUSES or wait is not None:
                 self.budgets.throttle(hk, now_mono + wait if wait is not None else None,
                                       slow_down=status in SLOW_DOWN_STATUSES)
+                if self.ledger is not None:  # the ledger shows the budget actually in force
+                    self.ledger.put_host(hk, effective_budget=self.budgets.effective(hk))
             error = f"http_{status}" + (f"; {note}" if note else "")
             if wait is not None:
                 error += f"; Retry-After {wait:g} s"

@@ -135,6 +135,21 @@ def test_parking_outlives_the_run_for_a_day_at_most(tmp_path: Path) -> None:
 
 
 @responses.activate
+def test_a_429_slows_the_host_and_the_ledger_shows_it(tmp_path: Path) -> None:
+    """After a 429 the host's interval is doubled for the run, and hosts.effective_budget
+    records the slow-down (RFC 6585 section 4: the client sent too many requests)."""
+    responses.get(f"{BASE}/robots.txt", status=404)
+    responses.get(f"{BASE}/p", status=429, headers={"Retry-After": "1"})
+    responses.get(f"{BASE}/p", status=200, body=b"{}")
+    ledger = Ledger.create(tmp_path / "l.sqlite")
+    page = Fetcher(_settings(), ledger, clock=FakeClock()).get_page(f"{BASE}/p")
+    assert page.status == 200
+    budget = ledger.get_host(urls.host_key(f"{BASE}/p"))["effective_budget"]
+    assert budget["slowdown"] == 2.0
+    ledger.close()
+
+
+@responses.activate
 def test_not_found_is_not_retried() -> None:
     """A 404 is final: one attempt, FetchError http_404."""
     responses.get(f"{BASE}/robots.txt", status=404)
