@@ -213,3 +213,26 @@ def test_planted_variants_trace_to_their_original(demo_run, demo_server, demo_co
         unrelated = tmp_path / "unrelated.png"
         Image.effect_mandelbrot((256, 256), (-2.0, -1.5, 1.0, 1.5), 60).save(unrelated)
         assert tracer.trace_file(unrelated).kind == "none"
+
+
+def test_every_stored_file_traces_exactly_to_its_item(demo_run) -> None:
+    """Each file in the store, traced by content, names the item that first brought it and
+    every other item with the same bytes."""
+    from collector.trace import Tracer
+
+    col, _, _ = demo_run
+    with col.ledger(readonly=True) as ledger:
+        first = {r["sha256"]: r["first_item_id"] for r in ledger.query(
+            "SELECT sha256, first_item_id FROM files")}
+        brought = {}
+        for r in ledger.query("SELECT id, file_sha256 FROM items WHERE file_sha256 IS NOT NULL"):
+            brought.setdefault(r["file_sha256"], set()).add(r["id"])
+    stored = dict(col.store.iter_stored())
+    assert set(stored) == set(first)
+    with Tracer.open(col.root) as tracer:
+        for sha, path in stored.items():
+            result = tracer.trace_file(path)
+            assert result.kind == "exact" and result.file is not None
+            assert result.file.origin.item_id == first[sha]
+            ids = {result.file.origin.item_id} | {o.item_id for o in result.file.others}
+            assert ids == brought[sha]
