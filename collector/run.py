@@ -53,6 +53,9 @@ from collector.urls import host_key, redact, scrub
 # States after which an item is not requested again.
 FINAL_STATES = frozenset({"stored", "duplicate", "near_duplicate", "rejected"})
 COPY_CHUNK = 1 << 20
+# "Not Found" / "Gone" (RFC 9110 sections 15.5.5, 15.5.11) in this many runs ends the retries.
+GONE_REASONS = frozenset({"http_404", "http_410"})
+GONE_RUNS = 3
 
 
 class Progress(Protocol):
@@ -269,6 +272,9 @@ class Gatherer:
             if c.local_path and row.get("file_sha256"):
                 self._scan_sha[(source_id, c.source_key)] = row["file_sha256"]
             return
+        if row and self._gone_for_good(row):
+            self._count("given_up")
+            return
         if row:
             item_id = row["id"]
             self.ledger.update_item(item_id, **fields)
@@ -432,6 +438,16 @@ class Gatherer:
         finally:
             with contextlib.suppress(OSError):
                 path.unlink(missing_ok=True)
+
+    def _gone_for_good(self, row: dict[str, Any]) -> bool:
+        """A failed item whose image the server said is gone (404/410) in GONE_RUNS runs is
+        not requested again: retrying a missing file every night only costs the archive."""
+        if row["state"] != "failed" or row["reason"] not in GONE_REASONS:
+            return False
+        runs = self.ledger.scalar(
+            "SELECT count(DISTINCT run_id) FROM fetches WHERE item_id = ? AND purpose = 'image' "
+            "AND status IN (404, 410)", (row["id"],))
+        return int(runs or 0) >= GONE_RUNS
 
     # Which item is "the original" must not depend on which download finished first: the
     # item listed first (recipe source order, then listing order) is the original. When a

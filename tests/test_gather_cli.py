@@ -104,3 +104,51 @@ def test_ctrl_c_finishes_in_flight_files_exits_130_and_says_how_to_resume(
     with col.ledger() as ledger:
         mended = recover(col, ledger)
     assert (mended.temp_files_removed, mended.orphan_files_removed, mended.rows_reset) == (0, 0, 0)
+
+
+ONE_SOURCE = """contact = "x@example.org"
+[budgets]
+min_interval = 0.05
+[network]
+allow_addresses = ["127.0.0.1"]
+[images]
+min_side = 128
+[[sources]]
+name = "api-pages"
+kind = "json_api"
+url = "http://127.0.0.1:{port}/api/v1/specimens"
+params = {{ per_page = "20" }}
+[sources.pagination]
+style = "page"
+param = "page"
+start = 1
+total_path = "meta.total"
+max_pages = 2
+[sources.fields]
+items = "results"
+id = "id"
+licence = "rights.licence"
+licence_url = "rights.url"
+image_url = "image.full"
+"""
+
+
+def test_an_image_the_server_says_is_gone_is_not_asked_for_after_three_runs(
+        fresh_demo_server: DemoServer, tmp_path: Path) -> None:
+    """A 404 is retried on the next runs, but after three runs that got 404 the item is left
+    alone (RFC 9110 section 15.5.5: the server found nothing at that URL)."""
+    from collector.run import gather
+
+    col = init_collection(tmp_path / "c", contact="x@example.org")
+    col.recipe_path.write_text(ONE_SOURCE.format(port=fresh_demo_server.port))
+    missing = [i for i in fresh_demo_server.manifest["items"]
+               if i["source"] == "api-pages" and i["reason"] == "http_404"]
+    assert missing, "the demo archive plants a 404 among its first 40 specimens"
+    path = fresh_demo_server.fill(missing[0]["image_url"]).split("/", 3)[3]
+    asked = []
+    for _ in range(4):
+        fresh_demo_server.clear_log()
+        result = gather(col)
+        asked.append(sum(1 for r in fresh_demo_server.log if r.path == "/" + path))
+    assert asked == [1, 1, 1, 0]
+    assert result.counts["given_up"] == 1
