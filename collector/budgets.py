@@ -20,6 +20,7 @@ from datetime import UTC, datetime
 from datetime import time as dtime
 from typing import Any, Protocol
 
+from collector.recipe import BUDGET_KEYS
 from collector.robots import Hints
 
 HOUR = 3600.0
@@ -86,16 +87,16 @@ class FakeClock:
 
 @dataclass(frozen=True)
 class Budget:
-    """Limits for one host (recipe ``[budgets]`` keys; CONTRACT.md "Recipe")."""
+    """Limits for one host: the recipe's ``[budgets]`` keys, with the recipe's defaults."""
 
-    min_interval: float = 3.0
-    requests_per_hour: int = 1000
-    bytes_per_hour: int = 2_000_000_000
-    max_connections: int = 1
-    max_attempts: int = 5
-    max_retry_after: float = 3600.0
-    backoff_base: float = 1.0
-    backoff_max: float = 300.0
+    min_interval: float = BUDGET_KEYS["min_interval"].default
+    requests_per_hour: int = BUDGET_KEYS["requests_per_hour"].default
+    bytes_per_hour: int = BUDGET_KEYS["bytes_per_hour"].default
+    max_connections: int = BUDGET_KEYS["max_connections"].default
+    max_attempts: int = BUDGET_KEYS["max_attempts"].default
+    max_retry_after: float = BUDGET_KEYS["max_retry_after"].default
+    backoff_base: float = BUDGET_KEYS["backoff_base"].default
+    backoff_max: float = BUDGET_KEYS["backoff_max"].default
 
     @classmethod
     def from_table(cls, table: Mapping[str, Any], base: Budget | None = None) -> Budget:
