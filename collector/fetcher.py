@@ -57,6 +57,7 @@ from collector.errors import (
     TooLarge,
     UnsafeURL,
 )
+from collector.recipe import expand_env
 from collector.robots import (
     MAX_ROBOTS_BYTES,
     MAX_ROBOTS_REDIRECTS,
@@ -132,11 +133,6 @@ def parse_retry_after(value: str | None, now: float) -> tuple[float | None, str 
     if when is None:
         return None, f"Retry-After {value[:40]!r} ignored (not delay-seconds or an HTTP-date)"
     return max(0.0, when - now), None
-
-
-def expand_env(value: str) -> str:
-    """Replace ``${NAME}`` with the environment variable NAME (empty if unset)."""
-    return re.sub(r"\$\{([A-Za-z_][A-Za-z0-9_]*)\}", lambda m: os.environ.get(m[1], ""), value)
 
 
 PERSISTED_PARK_MAX = 86_400.0  # seconds a parking outlives the run that saw it

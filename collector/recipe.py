@@ -11,6 +11,7 @@ from __future__ import annotations
 import difflib
 import hashlib
 import ipaddress
+import os
 import re
 import tomllib
 from collections.abc import Callable
@@ -28,6 +29,7 @@ PRODUCT_TOKEN_RE = re.compile(r"^[A-Za-z_-]+$")  # RFC 9309 section 2.2.1
 EMAIL_RE = re.compile(r"^[^@\s<>]+@[^@\s<>]+\.[^@\s<>]+$")
 DURATION_RE = re.compile(r"^(?:(\d+)h)?\s*(?:(\d+)m)?\s*(?:(\d+)s)?$")
 SPDX_ID_RE = re.compile(r"^[A-Za-z0-9][A-Za-z0-9.+-]*$")
+ENV_REF_RE = re.compile(r"\$\{([A-Za-z_][A-Za-z0-9_]*)\}")  # "${NAME}" in params and headers
 
 # The default allowlist: public-domain dedications and marks, CC BY and CC BY-SA (unported
 # versions). SPDX License List ids; see ../shared reference standards section 7.
@@ -117,6 +119,33 @@ def _check_spdx_list(values: Any) -> str | None:
         return (f"entries must be SPDX licence ids like \"CC-BY-4.0\" (see "
                 f"https://spdx.org/licenses/), got {bad[0]!r}")
     return None
+
+
+def expand_env(text: str, *, strict: bool = False) -> str:
+    """Replace each ``${NAME}`` with the environment variable NAME, so recipes can be shared
+    without their keys. Unset names become "" unless ``strict`` (KeyError names the first)."""
+    def value(match: re.Match[str]) -> str:
+        name = match.group(1)
+        if strict and name not in os.environ:
+            raise KeyError(name)
+        return os.environ.get(name, "")
+
+    return ENV_REF_RE.sub(value, text)
+
+
+def unset_env(recipe: Recipe) -> list[RecipeProblem]:
+    """A problem for every ``${NAME}`` the recipe uses whose variable is not set."""
+    places: list[tuple[str, Any]] = [
+        (f"network.headers.{k}", v) for k, v in recipe.network["headers"].items()]
+    for i, src in enumerate(recipe.sources):
+        for table in ("params", "headers"):
+            places += [(f"sources[{i}].{table}.{k}", v)
+                       for k, v in (src.get(table) or {}).items()]
+    return [RecipeProblem(str(recipe.path), path,
+                          f"uses ${{{name}}}, but the environment variable {name} is not set; "
+                          "set it before gathering")
+            for path, text in places if isinstance(text, str)
+            for name in ENV_REF_RE.findall(text) if name not in os.environ]
 
 
 def parse_clock(value: str) -> time:

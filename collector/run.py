@@ -47,7 +47,7 @@ from collector.hashindex import HashIndex, NearMatch, to_signed
 from collector.images import ImageFacts, inspect_image
 from collector.ledger import Ledger
 from collector.licences import licence_allowed, normalise_licence, rights_conflict
-from collector.recipe import Recipe, parse_clock, parse_duration
+from collector.recipe import Recipe, expand_env, parse_clock, parse_duration, unset_env
 from collector.urls import host_key, redact, scrub
 
 # States after which an item is not requested again.
@@ -603,8 +603,6 @@ def secret_values(recipe: Recipe) -> list[str]:
     """The run-time values of the recipe's secrets: params listed in a source's
     secret_params, and secret headers (also their last word, so "Bearer <token>" hides the
     token)."""
-    from collector.fetcher import expand_env
-
     found: list[str] = []
     secret_headers = {h.lower() for h in recipe.network.get("secret_headers") or ()}
     everywhere = list(recipe.network.get("secret_params") or ())
@@ -638,6 +636,9 @@ def prepared_run(collection: Collection) -> Iterator[tuple[Recipe, Ledger]]:
         raise RecipeError([RecipeProblem(str(recipe.path), "sources",
                                          "no [[sources]] yet: add at least one source to "
                                          "gather from")])
+    missing = unset_env(recipe)
+    if missing:
+        raise RecipeError(missing)
     with collection.gather_lock(), collection.ledger() as ledger:
         recover(collection, ledger)
         # We hold the lock, so a run still marked "running" was killed (power loss, SIGKILL).

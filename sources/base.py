@@ -4,8 +4,6 @@ small validation helpers every adapter kind uses."""
 from __future__ import annotations
 
 import json
-import os
-import re
 from collections.abc import Callable, Iterable, Mapping
 from dataclasses import dataclass, field
 from datetime import date, datetime
@@ -15,7 +13,7 @@ from urllib.parse import parse_qsl, urlencode, urljoin, urlsplit, urlunsplit
 
 from collector import urls
 from collector.errors import FetchError, RecipeProblem, SourceError
-from collector.recipe import did_you_mean
+from collector.recipe import did_you_mean, expand_env
 
 __all__ = [
     "Candidate",
@@ -142,23 +140,10 @@ def merge_query(url: str, params: Mapping[str, str]) -> str:
     return urlunsplit((parts.scheme, parts.netloc, parts.path, urlencode(query), parts.fragment))
 
 
-_ENV_REF = re.compile(r"\$\{([A-Za-z_][A-Za-z0-9_]*)\}")
-
-
-def expand_env(values: Mapping[str, Any] | None) -> dict[str, str]:
-    """Replace "${NAME}" references with environment values; KeyError names a missing one."""
-    out: dict[str, str] = {}
-    for key, value in (values or {}).items():
-        text = str(value)
-
-        def sub(match: re.Match[str]) -> str:
-            name = match.group(1)
-            if name not in os.environ:
-                raise KeyError(name)
-            return os.environ[name]
-
-        out[str(key)] = _ENV_REF.sub(sub, text)
-    return out
+def expand_env_values(values: Mapping[str, Any] | None) -> dict[str, str]:
+    """A params/headers table with "${NAME}" references filled from the environment;
+    KeyError names a missing one."""
+    return {str(k): expand_env(str(v), strict=True) for k, v in (values or {}).items()}
 
 
 def as_text(value: Any) -> str | None:

@@ -41,7 +41,7 @@ from sources.base import (
     check_positive_int,
     check_str_list,
     check_str_table,
-    expand_env,
+    expand_env_values,
     merge_query,
     redact,
     resolve_url,
@@ -299,7 +299,7 @@ class Config:
         """Compile a validated table; expands "${ENV}" references (KeyError names a missing one)."""
         fields = dict(table["fields"])
         pag = dict(table.get("pagination") or {"style": "none"})
-        params = expand_env(table.get("params"))
+        params = expand_env_values(table.get("params"))
         secrets = tuple(table.get("secret_params") or ())
         detail = table.get("detail")
         listing = FieldMap.from_table({k: v for k, v in fields.items() if k not in ("items", "id")})
@@ -307,7 +307,7 @@ class Config:
             name=str(table["name"]),
             url=str(table["url"]),
             params=params,
-            headers=expand_env(table.get("headers")),
+            headers=expand_env_values(table.get("headers")),
             secret_params=secrets,
             style=pag.get("style", "none"),
             pag=pag,

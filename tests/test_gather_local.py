@@ -156,3 +156,21 @@ def test_gather_without_sources_is_a_recipe_error(tmp_path: Path) -> None:
     result = CliRunner().invoke(app, ["gather", str(col.root)])
     assert result.exit_code == 2
     assert "no [[sources]] yet" in result.stderr
+
+
+def test_gather_refuses_a_recipe_whose_environment_variable_is_unset(
+        tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    """A ${NAME} the recipe uses but the environment lacks is named before anything is sent,
+    rather than sending an empty API key."""
+    monkeypatch.delenv("FERN_ARCHIVE_KEY", raising=False)
+    col = init_collection(tmp_path / "c", contact="me@example.org")
+    col.recipe_path.write_text(col.recipe_path.read_text() + (
+        '\n[[sources]]\nname = "api"\nkind = "json_api"\nurl = "http://127.0.0.9/items"\n'
+        'params = { key = "${FERN_ARCHIVE_KEY}" }\nsecret_params = ["key"]\n'
+        '[sources.fields]\nitems = "items"\nid = "id"\nimage_url = "image"\n'))
+    result = CliRunner().invoke(app, ["gather", str(col.root)])
+    assert result.exit_code == 2
+    assert ("sources[0].params.key: uses ${FERN_ARCHIVE_KEY}, but the environment variable "
+            "FERN_ARCHIVE_KEY is not set") in result.stderr
+    with col.ledger(readonly=True) as ledger:
+        assert ledger.scalar("SELECT count(*) FROM runs") == 0
