@@ -31,7 +31,7 @@ import random
 import re
 import socket
 import threading
-from collections.abc import Callable, Iterable, Mapping
+from collections.abc import Callable, Iterable, Iterator, Mapping
 from dataclasses import dataclass, field
 from datetime import UTC, datetime
 from email.utils import parsedate_to_datetime
@@ -57,6 +57,7 @@ from collector.errors import (
     TooLarge,
     UnsafeURL,
 )
+from collector.http_target import transport_target
 from collector.recipe import expand_env
 from collector.robots import (
     MAX_ROBOTS_BYTES,
@@ -78,7 +79,6 @@ from collector.urls import (
     robots_url,
     scrub,
     secret_values,
-    split_checked,
 )
 
 log = logging.getLogger(__name__)
@@ -307,6 +307,15 @@ class _Wait(wait_base):
         return self.rng.uniform(0.0, ceiling)
 
 
+class HopByHopSession(requests.Session):
+    """A requests session that never looks at redirects: the fetcher follows them itself,
+    hop by hop, through the guard and robots.txt. (A plain session parses every Location even
+    with ``allow_redirects=False``, and a malformed one raised ValueError out of ``get``.)"""
+
+    def resolve_redirects(self, *args: Any, **kwargs: Any) -> Iterator[Any]:
+        return iter(())
+
+
 class Fetcher:
     """The polite fetcher. Thread-safe: one instance serves the whole worker pool."""
 
@@ -321,7 +330,7 @@ class Fetcher:
         self.budgets = HostBudgets(settings.budget, settings.host_budgets, clock=clock)
         self._allowed = parse_allow_list(settings.allow_addresses)
         self._own_session = session is None
-        self.session = session or requests.Session()
+        self.session = session or HopByHopSession()
         if self._own_session:
             adapter = requests.adapters.HTTPAdapter(pool_connections=100, pool_maxsize=10,
                                                     max_retries=0)
@@ -400,10 +409,11 @@ class Fetcher:
             shown = redact(current, secret_params)
             row = {"purpose": purpose, "item_id": item_id, "url": shown}
             try:
-                _, host, port = split_checked(current)
+                target = transport_target(current, shown)
                 hk = host_key(current)
                 row["host"] = hk
-                check_address(host, port, self._allowed, self.settings.resolver, shown)
+                check_address(target.host, target.port, self._allowed, self.settings.resolver,
+                              shown)
             except UnsafeURL as exc:
                 self._record(row, attempt=0, error=str(exc))
                 raise
@@ -421,8 +431,8 @@ class Fetcher:
                                  robots_rule=verdict.rule, error=reason)
                     raise RobotsDenied(shown, rule, reason)
             self._check_parked(hk, shown, row)
-            result = self._attempts(current, shown, hk, row, verdict, headers, secret_params,
-                                    max_bytes, dest_dir, retry=not robots)
+            result = self._attempts(current, target.url, shown, hk, row, verdict, headers,
+                                    secret_params, max_bytes, dest_dir, retry=not robots)
             location = result.headers.get("Location")
             if result.status not in REDIRECT_STATUSES or not location:
                 return result
@@ -432,11 +442,15 @@ class Fetcher:
                 raise FetchError(shown, "redirect_blocked", result.status,
                                  f"more than {max_hops} redirects")
             hops += 1
-            current = urljoin(current, location)
+            try:
+                current = urljoin(current, location)
+            except ValueError:
+                current = location  # malformed: transport_target refuses it with its reason
 
-    def _attempts(self, url: str, shown: str, hk: str, row: dict[str, Any], verdict: Verdict,
-                  headers: Mapping[str, str], secret_params: tuple[str, ...], max_bytes: int,
-                  dest_dir: Path | None, retry: bool) -> _Result:
+    def _attempts(self, url: str, send_url: str, shown: str, hk: str, row: dict[str, Any],
+                  verdict: Verdict, headers: Mapping[str, str],
+                  secret_params: tuple[str, ...], max_bytes: int, dest_dir: Path | None,
+                  retry: bool) -> _Result:
         budget = self.budgets.budget_for(hk)
         attempts = max(1, int(budget.max_attempts)) if retry else 1
         secrets = secret_values(url, secret_params)
@@ -447,8 +461,8 @@ class Fetcher:
 
         def one() -> _Result:
             counter[0] += 1
-            return self._attempt(url, shown, hk, row, verdict, headers, secrets, max_bytes,
-                                 dest_dir, counter[0], final=counter[0] >= attempts,
+            return self._attempt(url, send_url, shown, hk, row, verdict, headers, secrets,
+                                 max_bytes, dest_dir, counter[0], final=counter[0] >= attempts,
                                  truncate=not retry)
 
         retrying = Retrying(
@@ -467,8 +481,8 @@ class Fetcher:
                 raise
             raise FetchError(shown, exc.reason, exc.status, exc.detail) from None
 
-    def _attempt(self, url: str, shown: str, hk: str, row: dict[str, Any], verdict: Verdict,
-                 headers: Mapping[str, str], secrets: list[str], max_bytes: int,
+    def _attempt(self, url: str, send_url: str, shown: str, hk: str, row: dict[str, Any],
+                 verdict: Verdict, headers: Mapping[str, str], secrets: list[str], max_bytes: int,
                  dest_dir: Path | None, attempt: int, final: bool, truncate: bool) -> _Result:
         send_headers = {"User-Agent": self.settings.user_agent, "Accept-Encoding": "gzip"}
         send_headers.update({k: expand_env(v) for k, v in self.settings.headers.items()})
@@ -482,14 +496,22 @@ class Fetcher:
         base.update(started_at=_iso(started), waited_s=round(slot.waited, 3))
         try:
             try:
+                # send_url is the URL exactly as transport_target checked it (http_target.py)
                 resp = self.session.get(
-                    url, headers=send_headers, stream=True, allow_redirects=False,
+                    send_url, headers=send_headers, stream=True, allow_redirects=False,
                     timeout=(self.settings.connect_timeout, self.settings.read_timeout))
             except requests.RequestException as exc:
                 reason = "timeout" if isinstance(exc, requests.Timeout) else "connection"
                 detail = scrub(f"{type(exc).__name__}: {exc}", all_secrets)
                 self._record(base, error=f"{reason}: {detail}", ended=True)
                 raise _Retryable(reason, None, detail) from None
+            except (ValueError, UnicodeError) as exc:
+                # Not a network failure: the HTTP library could not handle this exchange (a
+                # header it cannot encode or parse). One item fails; retrying would not help.
+                detail = scrub(f"the HTTP library refused the exchange ({type(exc).__name__}: "
+                               f"{exc})", all_secrets)
+                self._record(base, error=f"connection: {detail}", ended=True)
+                raise FetchError(shown, "connection", None, detail) from None
             with resp:
                 return self._handle(resp, url, shown, hk, base, max_bytes, dest_dir,
                                     all_secrets, slot, truncate)

@@ -115,12 +115,22 @@ def resolve_url(base: str, ref: str | None) -> str | None:
     ref = ref.strip()
     if not ref or ref.lower().startswith(("data:", "javascript:", "about:")):
         return None
-    return urljoin(base, ref)
+    try:
+        return urljoin(base, ref)
+    except ValueError:
+        # A malformed reference ("http://[::1/x", a full-width "@" in the host) is passed on
+        # as written: the fetcher's guard refuses it, so it fails as one item with its reason
+        # instead of ending the listing.
+        return ref
 
 
 def strip_fragment(url: str) -> str:
-    """URL without its #fragment (a fragment never reaches the server, RFC 3986 §3.5)."""
-    parts = urlsplit(url)
+    """URL without its #fragment (a fragment never reaches the server, RFC 3986 §3.5);
+    a URL that does not parse is returned as it is, for the fetcher's guard to refuse."""
+    try:
+        parts = urlsplit(url)
+    except ValueError:
+        return url
     return urlunsplit((parts.scheme, parts.netloc, parts.path, parts.query, ""))
 
 
@@ -250,7 +260,10 @@ def check_http_url(value: Any, path: str, problems: Problems) -> None:
     """An absolute http or https URL with a host."""
     if not isinstance(value, str):
         return
-    parts = urlsplit(value)
+    try:
+        parts = urlsplit(value)
+    except ValueError:
+        parts = urlsplit("")
     if parts.scheme.lower() not in ("http", "https") or not parts.netloc:
         problems.add(path, f'must be an absolute http:// or https:// URL, got "{value}"')
 

@@ -369,6 +369,8 @@ class Case:
 
 
 IMG = "/img/picture.png"
+BACKSLASH_TRICK = "http://{forbidden_netloc}\\@{fence_netloc}/picture.png"
+FULLWIDTH_TRICK = "http://{forbidden_netloc}\uff20{fence_netloc}/picture.png"
 CD = "attachment; filename="
 
 CASES: list[Case] = [
@@ -402,6 +404,17 @@ CASES: list[Case] = [
          redirect("{forbidden}/secret.png"), "failed", "unsafe_url"),
     Case("link-private", f"listing links to {FORBIDDEN_HOST} (not allowed)", "image",
          "{forbidden}/secret.png", serve(b""), "failed", "unsafe_url"),
+    # One URL reading for guard and transport (http_target.py): a backslash ends the
+    # authority for the HTTP library but not for urllib.parse, so these name the allowed
+    # fence host to one parser and the forbidden host to the other.
+    Case("redirect-backslash", "redirect to forbidden\\@allowed (parsers disagree)", "image",
+         IMG, redirect(BACKSLASH_TRICK), "failed", "unsafe_url"),
+    Case("link-backslash", "listing links to forbidden\\@allowed", "image", BACKSLASH_TRICK,
+         serve(b""), "failed", "unsafe_url"),
+    Case("link-fullwidth-at", "listing links to forbidden\uff20allowed (full-width @)", "image",
+         FULLWIDTH_TRICK, serve(b""), "failed", "unsafe_url"),
+    Case("redirect-bad-ipv6", "redirect to http://[::1/img/x.png (unclosed IPv6)", "image", IMG,
+         redirect("http://[::1/img/x.png"), "failed", "unsafe_url"),
     Case("redirect-robots", "redirect to a robots-disallowed path on another host", "image",
          IMG, redirect("{fence}/private/picture.png"), "blocked", "robots_disallowed"),
     Case("html-as-image", "HTML page served as image/png", "image", IMG,
@@ -578,6 +591,7 @@ class HostileArchive:
     def _add(self, name: str, site: Site) -> Site:
         self.sites[name] = site
         self.sites_base[name] = site.base
+        self.sites_base[f"{name}_netloc"] = site.base.split("//", 1)[1]
         return site
 
     def url(self, case: Case) -> str:
