@@ -24,6 +24,7 @@ RECIPE_NAME = "recipe.toml"
 LEDGER_NAME = "ledger.sqlite"
 FILES_NAME = "files"
 LOCK_NAME = ".gather.lock"
+ERROR_LOG_NAME = "errors.log"
 
 
 def recipe_template(contact: str = "", name: str = "My collection") -> str:
@@ -58,6 +59,22 @@ class Collection:
     def ledger(self, *, readonly: bool = False) -> Ledger:
         """Open the folder's ledger."""
         return Ledger.open(self.ledger_path, readonly=readonly)
+
+    @property
+    def error_log_path(self) -> Path:
+        return self.root / ERROR_LOG_NAME
+
+    def append_error_log(self, text: str) -> None:
+        """Append ``text`` to the folder's error log; a symlink planted there is refused
+        (O_NOFOLLOW), so the log never writes outside the folder."""
+        flags = os.O_WRONLY | os.O_APPEND | os.O_CREAT | os.O_NOFOLLOW
+        try:
+            fd = os.open(self.error_log_path, flags, 0o644)
+        except OSError as exc:
+            raise CollectionError(f"cannot write the error log {self.error_log_path}: {exc} "
+                                  "(a symlink there is refused)") from exc
+        with os.fdopen(fd, "a", encoding="utf-8") as fh:
+            fh.write(text if text.endswith("\n") else text + "\n")
 
     @contextlib.contextmanager
     def gather_lock(self) -> Iterator[None]:

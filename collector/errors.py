@@ -13,6 +13,7 @@ exception escaping to the CLI is a bug and keeps its traceback.
     ├── StoreError                   a file could not be stored (disk full: .errno == ENOSPC)
     ├── SourceError                  a source could not be read (bad JSON, empty selector)
     ├── ImageRejected                an image failed the ingest checks (.reason: ledger reason)
+    ├── InternalError                a bug in collector stopped a run (.where, traceback logged)
     └── FetchError                   a request failed; .url is already redacted
         ├── UnsafeURL                not http/https, or an address the recipe does not allow
         ├── RobotsDenied             refused by robots.txt (.rule names the matching rule)
@@ -90,6 +91,17 @@ class ImageRejected(CollectorError):
     def __init__(self, reason: str, detail: str) -> None:
         self.reason, self.detail = reason, detail
         super().__init__(f"{reason}: {detail}")
+
+
+class InternalError(CollectorError):
+    """A bug in collector (not the archive's fault) stopped a run; ``where`` names the
+    thread or step, and the traceback is in the collection's error log."""
+
+    def __init__(self, where: str, exc: BaseException, log_path: str) -> None:
+        self.where, self.log_path = where, log_path
+        super().__init__(f"internal error in {where} ({type(exc).__name__}: {exc}); the "
+                         f"traceback is in {log_path} - please report it. Nothing stored is "
+                         "lost: run gather again to resume")
 
 
 class FetchError(CollectorError):

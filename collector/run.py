@@ -18,8 +18,10 @@ import hashlib
 import json
 import os
 import queue
+import signal
 import threading
 import time
+import traceback
 from collections import Counter
 from collections.abc import Callable, Iterator
 from dataclasses import dataclass, field
@@ -35,6 +37,7 @@ from collector.errors import (
     FetchError,
     HostParked,
     ImageRejected,
+    InternalError,
     LedgerError,
     RecipeError,
     RecipeProblem,
@@ -45,7 +48,7 @@ from collector.errors import (
 )
 from collector.hashindex import HashIndex, NearMatch, to_signed
 from collector.images import ImageFacts, inspect_image
-from collector.ledger import Ledger
+from collector.ledger import Ledger, utc_now
 from collector.licences import licence_allowed, normalise_licence, rights_conflict
 from collector.recipe import Recipe, expand_env, parse_clock, parse_duration, unset_env
 from collector.urls import host_key, redact, scrub
@@ -119,13 +122,24 @@ class RunResult:
     run_id: int
     outcome: str  # finished | stopped: <why> | interrupted | failed: <why>
     counts: Counter[str] = field(default_factory=Counter)
+    terminated: bool = False  # interrupted by SIGTERM rather than Ctrl-C (SIGINT)
 
     @property
     def exit_code(self) -> int:
-        """0 finished or stopped by a rule, 130 interrupted, 1 failed."""
+        """0 finished or stopped by a rule, 130 interrupted (Ctrl-C), 143 terminated
+        (SIGTERM; 128 + signal number, common practice, no source), 1 failed."""
         if self.outcome == "interrupted":
-            return 130
+            return 143 if self.terminated else 130
         return 1 if self.outcome.startswith("failed") else 0
+
+
+class Terminated(KeyboardInterrupt):
+    """SIGTERM arrived: the run ends like a Ctrl-C (files in flight finished, run marked
+    interrupted)."""
+
+
+def _raise_terminated(signum: int, frame: Any) -> None:
+    raise Terminated()
 
 
 @dataclass
@@ -189,7 +203,17 @@ class Gatherer:
 
     # -- the run -----------------------------------------------------------------------------
     def run(self, options: dict[str, Any] | None = None) -> RunResult:
-        """Run every source to the end or until a stop rule fires."""
+        """Run every source to the end or until a stop rule fires. SIGTERM is handled like
+        Ctrl-C while the run lasts (when called from the main thread)."""
+        on_main = threading.current_thread() is threading.main_thread()
+        previous = signal.signal(signal.SIGTERM, _raise_terminated) if on_main else None
+        try:
+            return self._run(options)
+        finally:
+            if on_main:
+                signal.signal(signal.SIGTERM, previous)
+
+    def _run(self, options: dict[str, Any] | None) -> RunResult:
         self.run_id = self.ledger.start_run(self.recipe.sha256, options or {}, __version__)
         if hasattr(self.fetcher, "run_id"):
             self.fetcher.run_id = self.run_id
@@ -198,6 +222,7 @@ class Gatherer:
                                     name=f"source-{src['name']}")
                    for src, sid in zip(self.recipe.sources, self._source_ids, strict=True)]
         outcome = "finished"
+        terminated = False
         try:
             for t in threads:
                 t.start()
@@ -205,18 +230,53 @@ class Gatherer:
             for q in list(self._queues.values()):
                 q.put(None)  # no more work: each worker ends after its queue drains
             self._wait(self._workers)
-        except KeyboardInterrupt:
+        except KeyboardInterrupt as exc:
+            terminated = isinstance(exc, Terminated)
             self.request_stop("interrupted")
-            for q in list(self._queues.values()):
-                q.put(None)
-            self._wait(self._workers + threads, interruptible=False)
+            self._drain(threads)
+        except Exception as exc:
+            self._internal_error("the run's main thread", exc)
+            self._drain(threads)
         if self.fatal is not None:
             outcome = f"failed: {self.fatal}"
         elif self.stop_event.is_set():
             outcome = self.stop_reason
         self.ledger.end_run(self.run_id, outcome)
         self.progress.event("run_ended", outcome=outcome)
-        return RunResult(self.run_id, outcome, self.counts)
+        return RunResult(self.run_id, outcome, self.counts, terminated=terminated)
+
+    def _drain(self, threads: list[threading.Thread]) -> None:
+        """After a stop: let every worker finish what it holds, then return."""
+        for q in list(self._queues.values()):
+            q.put(None)
+        while True:  # a signal arriving now must not leave threads behind
+            try:
+                self._wait(self._workers + threads, interruptible=False)
+                return
+            except KeyboardInterrupt:
+                continue
+
+    def _internal_error(self, where: str, exc: BaseException, item_id: int | None = None) -> None:
+        """A bug (not the archive's fault): the item in hand fails with reason
+        ``internal_error``, the traceback goes to the ledger notes and the folder's error log,
+        and the run stops and ends ``failed: internal error in <where>`` (exit 1)."""
+        trace = "".join(traceback.format_exception(exc))
+        if self._secrets:
+            trace = scrub(trace, self._secrets)
+        log_path = str(self.collection.error_log_path)
+        error = InternalError(where, exc, log_path)
+        with contextlib.suppress(Exception):  # reporting a bug must not hide it
+            self.collection.append_error_log(
+                f"--- {utc_now()} run {self.run_id}: internal error in {where}\n{trace}")
+        with contextlib.suppress(Exception):
+            self.ledger.add_note("internal_error", f"{error}\n{trace}", run_id=self.run_id)
+        if item_id is not None:
+            with contextlib.suppress(Exception):
+                self._finish(item_id, "failed", "internal_error", str(error))
+        with self._lock:
+            if self.fatal is None:
+                self.fatal = error
+        self.request_stop(f"failed: {error}")
 
     @staticmethod
     def _wait(threads: list[threading.Thread], *, interruptible: bool = True) -> None:
@@ -247,11 +307,8 @@ class Gatherer:
             note(_Note(exc.reason, exc.url, f"listing stopped: {exc}"))
         except CollectorError as exc:
             note(_Note("source_error", None, str(exc)))
-        except Exception as exc:
-            # A bug, not the archive's fault: leave a trace in the ledger, then fail loudly.
-            note(_Note("internal_error", None, f"listing stopped by an error in collector "
-                       f"({type(exc).__name__}: {exc}); please report it"))
-            raise
+        except Exception as exc:  # a bug, not the archive's fault: the run fails loudly
+            self._internal_error(f"the listing of source {source['name']!r}", exc)
 
     def _register(self, source_id: int, c: Any) -> None:
         """Record a candidate and decide what happens to it before anything is downloaded."""
@@ -333,6 +390,12 @@ class Gatherer:
         q.put(job)
 
     def _host_worker(self, host: str, q: queue.Queue[Job | None]) -> None:
+        try:
+            self._serve_host(host, q)
+        except Exception as exc:  # a bug outside any one job: the run fails loudly
+            self._internal_error(f"the worker for host {host}", exc)
+
+    def _serve_host(self, host: str, q: queue.Queue[Job | None]) -> None:
         stats = self.hosts[host]
         while True:
             job = q.get()
@@ -354,6 +417,8 @@ class Gatherer:
             except (StoreError, LedgerError) as exc:
                 self.fatal = exc
                 self.request_stop(f"failed: {exc}")
+            except Exception as exc:  # a bug while handling this job: it fails, the run stops
+                self._internal_error(f"the worker for host {host}", exc, item_id=job.item_id)
             stats.done += 1
 
     def _fetch_and_ingest(self, job: Job) -> None:
