@@ -19,6 +19,7 @@ import typer
 
 from collector import __version__
 from collector.errors import CollectorError
+from collector.safe_text import for_terminal, one_line
 
 F = TypeVar("F", bound=Callable[..., Any])
 
@@ -41,7 +42,7 @@ def user_errors() -> Iterator[None]:
     try:
         yield
     except CollectorError as exc:
-        typer.echo(f"Error: {exc}", err=True)
+        typer.echo(for_terminal(f"Error: {exc}"), err=True)
         raise typer.Exit(exc.exit_code) from None
 
 
@@ -146,7 +147,7 @@ def gather(
             recipe = collection.recipe()
             with collection.ledger(readonly=True) as ledger:
                 for line in format_estimate(recipe, estimate(recipe, ledger)):
-                    typer.echo(line)
+                    typer.echo(one_line(line))
             return
         with prepared_run(collection) as (recipe, ledger):
             stop = stop_rules(recipe, until=until, duration=duration, max_items=max_items)
@@ -165,9 +166,9 @@ def gather(
                 fetcher.close()
             lines = format_summary(summarise(ledger))
     if not log_json:
-        typer.echo(f"Run #{result.run_id}: {result.outcome}")
+        typer.echo(one_line(f"Run #{result.run_id}: {result.outcome}"))
         for line in lines:
-            typer.echo(line)
+            typer.echo(one_line(line))
     if result.outcome == "interrupted":
         typer.echo(f"Interrupted. Resume with: collector gather {folder}", err=True)
     raise typer.Exit(result.exit_code)
@@ -203,7 +204,7 @@ def status(
         typer.echo(json.dumps(summary_as_dict(summary), indent=2, default=str))
         return
     for line in format_summary(summary):
-        typer.echo(line)
+        typer.echo(one_line(line))
 
 
 @app.command()
@@ -242,7 +243,7 @@ def datasheet(
                + (f" ({c.linked} linked, {c.copied} copied into images/)" if with_images else "")
                + f"; left out {c.excluded_licence} by licence, {c.excluded_flagged} flagged")
     for problem in result.croissant_problems:
-        typer.echo(f"croissant.json: {problem}", err=True)
+        typer.echo(one_line(f"croissant.json: {problem}"), err=True)
 
 
 @app.command()
@@ -278,7 +279,8 @@ def trace(
     if as_json:
         typer.echo(to_json(results))
     elif as_csv:
-        typer.echo(to_csv(results), nl=False)
+        text = to_csv(results)  # escaped for a terminal only: a pipe gets the exact CSV
+        typer.echo(for_terminal(text) if sys.stdout.isatty() else text, nl=False)
         typer.echo(CAUTION, err=True)  # stderr keeps the CSV clean for other tools
     else:
         if recipe_problem:
@@ -287,13 +289,13 @@ def trace(
         for result in results:
             if not result.listed:
                 for line in format_record(result):
-                    typer.echo(line)
+                    typer.echo(one_line(line))
         listed = [r for r in results if r.listed]
         if listed:
             for line in format_table(listed):
-                typer.echo(line)
+                typer.echo(one_line(line))
         for line in format_summary(results):
-            typer.echo(line)
+            typer.echo(one_line(line))
     raise typer.Exit(0 if all(r.kind != "none" for r in results) else 1)
 
 

@@ -35,6 +35,7 @@ from collector import __version__
 from collector.errors import CollectionError, CollectorError, LedgerError, RecipeProblem
 from collector.licences import licence_allowed, licence_conditions, licence_deed_url
 from collector.recipe import Recipe, did_you_mean
+from collector.safe_text import csv_cell, csv_row
 from collector.urls import host_key
 
 ACCEPTED_STATES = ("stored", "near_duplicate")
@@ -723,12 +724,12 @@ def write_release(conn: sqlite3.Connection, recipe: Recipe, out: Path, store_roo
                 elif how == "copied":
                     counts.copied += 1
             _count_kept(counts, row)
-            prov.writerow(row)
+            prov.writerow(csv_row(row))  # cells neutralised (OWASP CSV Injection)
             # CC attribution practice (standards.md section 8): title, author, source, licence.
-            attr.writerow([row["file_name"], row["title"], row["creator"],
-                           row["page_url"] or row["image_url"] or row["source"],
-                           row["spdx_id"] or row["licence_raw"] or "unknown",
-                           row["licence_url"]])
+            attr.writerow([csv_cell(v) for v in (
+                row["file_name"], row["title"], row["creator"],
+                row["page_url"] or row["image_url"] or row["source"],
+                row["spdx_id"] or row["licence_raw"] or "unknown", row["licence_url"])])
     os.replace(prov_tmp, out / "provenance.csv")
     os.replace(attr_tmp, out / "attribution.csv")
     if with_images:

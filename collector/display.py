@@ -17,7 +17,9 @@ from typing import Any, TextIO
 from rich.console import Console
 from rich.live import Live
 from rich.table import Table
+from rich.text import Text
 
+from collector.safe_text import one_line
 from collector.summary import human_seconds
 
 
@@ -47,7 +49,7 @@ class PlainProgress:
                 text = f"stopping: {data['why']}; finishing the files in flight"
             else:
                 text = f"{kind} " + " ".join(f"{k}={v}" for k, v in data.items())
-            print(f"[{stamp}] {text}", file=self.stream, flush=True)
+            print(f"[{stamp}] {one_line(text)}", file=self.stream, flush=True)
 
 
 class JsonProgress:
@@ -94,9 +96,9 @@ class LiveProgress:
         if kind == "item":
             self.counts[data["state"]] += 1
         elif kind == "note":
-            self.notes = [*self.notes[-3:], f"{data['source']}: {data['message']}"]
+            self.notes = [*self.notes[-3:], one_line(f"{data['source']}: {data['message']}")]
         elif kind == "stopping":
-            self.notes = [*self.notes[-3:], f"stopping: {data['why']}"]
+            self.notes = [*self.notes[-3:], one_line(f"stopping: {data['why']}")]
 
     def render(self) -> Table:
         """The current table: one row per host, notes as the caption."""
@@ -119,11 +121,11 @@ class LiveProgress:
                         eta = max(eta, st.queued * interval)
                     except Exception:  # the view must never break a run
                         pass
-                table.add_row(host, str(st.done), str(st.queued), str(st.errors),
+                table.add_row(Text(host), str(st.done), str(st.queued), str(st.errors),
                               f"{rate} / {budget}", wait)
         counts = ", ".join(f"{k} {v}" for k, v in sorted(self.counts.items())) or "starting"
         table.title = (f"collector gather - {human_seconds(elapsed)} - {counts} - "
                        f"queued images need about {human_seconds(eta)} more at these budgets")
-        if self.notes:
-            table.caption = "\n".join(self.notes)
+        if self.notes:  # Text, not a markup string: "[red]" from a server stays literal
+            table.caption = Text("\n".join(self.notes))
         return table

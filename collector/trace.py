@@ -36,6 +36,7 @@ from collector.hashindex import HASH_FILE_NAME, HashFile, NearMatch
 from collector.images import sniff_format
 from collector.ledger import Ledger, decode_row
 from collector.licences import licence_allowed, licence_deed_url
+from collector.safe_text import csv_row
 
 __all__ = [
     "CAUTION",
@@ -531,7 +532,7 @@ def to_csv(results: Iterable[TraceResult]) -> str:
     writer = csv.DictWriter(out, fieldnames=TABLE_COLUMNS, lineterminator="\n")
     writer.writeheader()
     for r in results:
-        writer.writerow(table_row(r))
+        writer.writerow(csv_row(table_row(r)))  # OWASP CSV Injection: cells neutralised
     return out.getvalue()
 
 

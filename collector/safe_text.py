@@ -1,0 +1,53 @@
+"""Untrusted text made safe for where it is shown: terminals and spreadsheets.
+
+Titles, creators, licence texts, URLs and error messages come from archives' servers and from
+files. Shown raw, an escape sequence can move the cursor, erase lines or retitle the terminal
+(ECMA-48 §5: C0 and C1 control functions; ESC starts every control sequence), and a bidi
+override can make text read backwards (Unicode TR 9 §2, explicit directional formatting
+characters). In a spreadsheet, a cell that starts with ``=``, ``+``, ``-``, ``@``, a tab or a
+carriage return is run as a formula (OWASP "CSV Injection": prefix such cells with a single
+quote). The ledger keeps the raw text; only what is shown or exported is changed.
+"""
+
+from __future__ import annotations
+
+import re
+from typing import Any
+
+# DEL, C1 controls, and the directional formatting characters of Unicode TR 9 (ALM, LRM, RLM,
+# LRE..RLO, LRI..PDI); with the C0 controls, all of them, or all but the line feed.
+_DEL_C1_BIDI = "\x7f-\x9f\u061c\u200e\u200f\u202a-\u202e\u2066-\u2069"
+_UNSAFE_ANY = re.compile(f"[\x00-\x1f{_DEL_C1_BIDI}]")
+_UNSAFE_BUT_NEWLINE = re.compile(f"[\x00-\x09\x0b-\x1f{_DEL_C1_BIDI}]")
+# OWASP CSV Injection: the characters that make a spreadsheet read a cell as a formula.
+FORMULA_STARTS = ("=", "+", "-", "@", "\t", "\r")
+
+
+def _escaped(match: re.Match[str]) -> str:
+    code = ord(match.group())
+    return f"\\x{code:02x}" if code < 0x100 else f"\\u{code:04x}"
+
+
+def one_line(text: Any) -> str:
+    """``text`` with every control and bidi character shown as an escape (``\\x1b``,
+    ``\\u202e``), newlines included: for a value inside one line of output."""
+    return _UNSAFE_ANY.sub(_escaped, str(text))
+
+
+def for_terminal(text: Any) -> str:
+    """Like :func:`one_line` but keeps line breaks: for a paragraph of output."""
+    return _UNSAFE_BUT_NEWLINE.sub(_escaped, str(text))
+
+
+def csv_cell(value: Any) -> Any:
+    """A CSV cell that no spreadsheet runs as a formula: text starting with ``=``, ``+``,
+    ``-``, ``@``, tab or CR gets a leading ``'`` (OWASP CSV Injection); numbers and None are
+    returned as they are."""
+    if isinstance(value, str) and value.startswith(FORMULA_STARTS):
+        return "'" + value
+    return value
+
+
+def csv_row(row: dict[str, Any]) -> dict[str, Any]:
+    """Every cell of a CSV row passed through :func:`csv_cell`."""
+    return {key: csv_cell(value) for key, value in row.items()}
