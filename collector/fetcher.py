@@ -71,9 +71,12 @@ from collector.robots import (
 )
 from collector.store import make_temp
 from collector.urls import (
+    MIN_SECRET_LEN,
     add_params,
     check_address,
+    header_secrets,
     host_key,
+    is_secret_header,
     parse_allow_list,
     redact,
     robots_url,
@@ -487,8 +490,9 @@ class Fetcher:
         send_headers = {"User-Agent": self.settings.user_agent, "Accept-Encoding": "gzip"}
         send_headers.update({k: expand_env(v) for k, v in self.settings.headers.items()})
         send_headers.update({k: expand_env(v) for k, v in headers.items()})
-        all_secrets = secrets + [v for k, v in send_headers.items()
-                                 if k.lower() in {h.lower() for h in self.settings.secret_headers}]
+        all_secrets = secrets + [part for k, v in send_headers.items()
+                                 if is_secret_header(k, self.settings.secret_headers)
+                                 for part in header_secrets(v) if len(part) >= MIN_SECRET_LEN]
         base = {**row, "attempt": attempt, "robots_verdict": verdict.verdict,
                 "robots_rule": verdict.rule}
         slot = self.budgets.acquire(hk)

@@ -51,7 +51,14 @@ from collector.images import ImageFacts, inspect_image
 from collector.ledger import Ledger, utc_now
 from collector.licences import licence_allowed, normalise_licence, rights_conflict
 from collector.recipe import Recipe, expand_env, parse_clock, parse_duration, unset_env
-from collector.urls import host_key, redact, scrub
+from collector.urls import (
+    MIN_SECRET_LEN,
+    header_secrets,
+    host_key,
+    is_secret_header,
+    redact,
+    scrub,
+)
 
 # States after which an item is not requested again.
 FINAL_STATES = frozenset({"stored", "duplicate", "near_duplicate", "rejected"})
@@ -669,7 +676,7 @@ def secret_values(recipe: Recipe) -> list[str]:
     secret_params, and secret headers (also their last word, so "Bearer <token>" hides the
     token)."""
     found: list[str] = []
-    secret_headers = {h.lower() for h in recipe.network.get("secret_headers") or ()}
+    listed = tuple(recipe.network.get("secret_headers") or ())
     everywhere = list(recipe.network.get("secret_params") or ())
     for src in recipe.sources:
         params = src.get("params") or {}
@@ -678,12 +685,9 @@ def secret_values(recipe: Recipe) -> list[str]:
     for headers in [recipe.network.get("headers") or {},
                     *(src.get("headers") or {} for src in recipe.sources)]:
         for name, value in headers.items():
-            if name.lower() in secret_headers:
-                text = expand_env(str(value))
-                last = (text.split() or [""])[-1]  # "Bearer <token>", "session=<value>"
-                found += [text, last.rpartition("=")[2]]
-    # Very short values would scrub ordinary words; real keys are long.
-    return sorted({v for v in found if len(v) >= 6}, key=len, reverse=True)
+            if is_secret_header(name, listed):
+                found += header_secrets(expand_env(str(value)))
+    return sorted({v for v in found if len(v) >= MIN_SECRET_LEN}, key=len, reverse=True)
 
 
 def build_fetcher(recipe: Recipe, ledger: Ledger) -> Any:

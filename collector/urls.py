@@ -7,6 +7,7 @@ resolver (``socket.getaddrinfo`` by default).
 from __future__ import annotations
 
 import ipaddress
+import json
 import socket
 from collections.abc import Callable, Iterable, Mapping
 from urllib.parse import parse_qsl, quote, urlencode, urlsplit, urlunsplit
@@ -14,6 +15,9 @@ from urllib.parse import parse_qsl, quote, urlencode, urlsplit, urlunsplit
 from collector.errors import UnsafeURL
 
 REDACTED = "REDACTED"
+# Parts of header values shorter than this are not scrubbed: they would hide ordinary words,
+# and real keys are long (common practice, no source).
+MIN_SECRET_LEN = 6
 ALLOWED_SCHEMES = ("http", "https")
 DEFAULT_PORTS = {"http": 80, "https": 443}
 
@@ -109,11 +113,45 @@ def secret_values(url: str, secret_params: Iterable[str] = ()) -> list[str]:
     return [v for v in found if v]
 
 
+# A header is secret when the recipe lists it in network.secret_headers, or when its name
+# holds one of these words (Authorization, Proxy-Authorization, X-Api-Key, X-Auth-Token,
+# Cookie, X-Session-Id, ...): common practice, no source.
+SECRET_HEADER_WORDS = ("key", "token", "secret", "auth", "cookie", "session", "password")
+
+
+def is_secret_header(name: str, listed: Iterable[str] = ()) -> bool:
+    """Whether a header's value must never be written anywhere (see SECRET_HEADER_WORDS)."""
+    lower = name.lower()
+    return lower in {h.lower() for h in listed} or any(w in lower for w in SECRET_HEADER_WORDS)
+
+
+def header_secrets(value: str) -> list[str]:
+    """The secret parts of a secret header's value: the whole value, and its last word (the
+    token of "Bearer <token>", the value of "session=<value>")."""
+    last = (value.split() or [""])[-1]
+    return [value, last, last.rpartition("=")[2]]
+
+
+def secret_forms(secret: str) -> set[str]:
+    """Every form in which a secret can reach a message: as it is, stripped of white space
+    (a token read from a file with Windows line endings ends in CR), percent- and
+    form-encoded (URLs), escaped as Python's repr and JSON write it (error texts, JSON
+    columns)."""
+    forms: set[str] = set()
+    for value in {secret, secret.strip()}:
+        if not value:
+            continue
+        forms |= {value, quote(value, safe=""), quote_plus_safe(value),
+                  repr(value)[1:-1], value.encode("unicode_escape").decode("ascii"),
+                  json.dumps(value)[1:-1], json.dumps(value, ensure_ascii=False)[1:-1]}
+    return {f for f in forms if f}
+
+
 def scrub(text: str, secrets: Iterable[str]) -> str:
-    """Replace every occurrence of each secret (raw and percent-encoded forms) in ``text``."""
-    for secret in sorted({s for s in secrets if s}, key=len, reverse=True):
-        for form in {secret, quote(secret, safe=""), quote_plus_safe(secret)}:
-            text = text.replace(form, REDACTED)
+    """Replace every form (:func:`secret_forms`) of each secret in ``text``, longest first."""
+    forms = {form for s in secrets if s for form in secret_forms(s)}
+    for form in sorted(forms, key=len, reverse=True):
+        text = text.replace(form, REDACTED)
     return text
 
 
@@ -123,9 +161,10 @@ def quote_plus_safe(value: str) -> str:
 
 
 def redact_headers(headers: Mapping[str, str], secret_headers: Iterable[str]) -> dict[str, str]:
-    """Copy of ``headers`` with the values of secret headers replaced (names case-insensitive)."""
-    secrets = {h.lower() for h in secret_headers}
-    return {k: (REDACTED if k.lower() in secrets else v) for k, v in headers.items()}
+    """Copy of ``headers`` with the values of secret headers (:func:`is_secret_header`)
+    replaced."""
+    listed = tuple(secret_headers)
+    return {k: (REDACTED if is_secret_header(k, listed) else v) for k, v in headers.items()}
 
 
 def parse_allow_list(entries: Iterable[str]) -> list[IPNetwork]:

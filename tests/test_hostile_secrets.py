@@ -110,3 +110,73 @@ def test_secrets_never_reach_the_ledger_logs_exports_or_messages(
     leaks = [(where, s) for where, data in places.items() for s in SECRETS
              if s.encode() in data]
     assert leaks == []
+
+
+def test_a_token_with_a_trailing_cr_is_redacted_in_every_form(
+        tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    """A bearer token read from a file with Windows line endings ("...\\r") makes the HTTP
+    library refuse the header; its error text (which shows the value escaped, "\\\\r")
+    reaches the ledger without the token in any form: raw, stripped or escaped."""
+    from collector.errors import FetchError
+    from collector.fetcher import Fetcher, FetchSettings
+    from collector.ledger import Ledger
+
+    site = leaky_site()
+    monkeypatch.setenv("CR_TOKEN", TOKEN + "\r")
+    recipe = {"contact": "x@example.org",
+              "budgets": {"min_interval": 0.0, "max_attempts": 1},
+              "network": {"allow_addresses": ["127.0.0.1"],
+                          "headers": {"Authorization": "Bearer ${CR_TOKEN}"}}}
+    ledger = Ledger.create(tmp_path / "ledger.sqlite")
+    fetcher = Fetcher(FetchSettings.from_recipe(recipe), ledger)
+    try:
+        with pytest.raises(FetchError) as caught:
+            fetcher.get_page(site.base + "/api/items")
+    finally:
+        fetcher.close()
+        ledger.close()
+        site.close()
+    errors = [r["error"] for r in Ledger.open(tmp_path / "ledger.sqlite").query(
+        "SELECT error FROM fetches WHERE error IS NOT NULL")]
+    assert errors  # the refusal was recorded
+    data = b"".join(p.read_bytes() for p in tmp_path.glob("ledger.sqlite*"))
+    for form in (TOKEN, TOKEN + "\\r", repr(TOKEN + "\r")[1:-1]):
+        assert form.encode() not in data
+        assert form not in str(caught.value)
+
+
+def test_an_api_key_header_is_secret_by_its_name(tmp_path: Path) -> None:
+    """X-Api-Key is not listed in secret_headers, yet a server echoing its value into item
+    titles does not get it into the ledger: header names holding key, token, secret, auth,
+    cookie, session or password are secret by default."""
+    def api(h, ctx: Ctx) -> None:
+        echoed = h.headers.get("X-Api-Key", "")
+        items = [{"id": "a", "title": f"for {echoed}", "image": f"{ctx.sites['keyed']}/img/a.png",
+                  "licence": "CC0-1.0"}]
+        send(h, 200, json.dumps({"items": items}).encode(), {"Content-Type": "application/json"})
+
+    def image(h, ctx: Ctx) -> None:
+        send(h, 200, noise_image("keyed"), {"Content-Type": "image/png"})
+
+    sites: dict[str, str] = {"outside": "/nonexistent"}
+    site = Site(Ctx("keyed", sites), routes={"/api": api, "/img": image})
+    sites["keyed"] = site.base
+    recipe = (RECIPE.format(base=site.base)
+              .replace('params = { key = "${HOSTILE_KEY}" }\nsecret_params = ["key"]\n', "")
+              .replace('headers = { Authorization = "Bearer ${HOSTILE_TOKEN}", '
+                       'Cookie = "session=${HOSTILE_COOKIE}" }',
+                       'headers = { X-Api-Key = "${HOSTILE_KEY}" }')
+              .replace('image_url = "image"', 'image_url = "image"\ntitle = "title"'))
+    assert "X-Api-Key" in recipe and "HOSTILE_TOKEN" not in recipe
+    try:
+        col = init_collection(tmp_path / "col", contact="x@example.org")
+        col.recipe_path.write_text(recipe)
+        stats = run_gather(col.root, "--quiet", env=ENV)
+    finally:
+        site.close()
+    assert stats.returncode == 0, stats.stderr
+    with col.ledger(readonly=True) as ledger:
+        titles = [r["title"] for r in ledger.query("SELECT title FROM items")]
+    assert titles == ["for REDACTED"]
+    data = b"".join(p.read_bytes() for p in col.root.glob("ledger.sqlite*"))
+    assert KEY.encode() not in data
