@@ -756,15 +756,20 @@ def export_datasheet(root: Path, *, out: Path | None = None, answers_path: Path 
     out = out if out is not None else root / "datasheet"
     check_out_folder(root, out, overwrite=overwrite)
     out.mkdir(parents=True, exist_ok=True)
-    conn = _connect(collection.ledger_path)
     try:
-        counts, prov_sha = write_release(conn, recipe, out, collection.store.root,
-                                         with_images=with_images,
-                                         exclude_flagged=exclude_flagged)
-        facts = _facts(conn, recipe, now or datetime.now(UTC).isoformat(timespec="seconds")
-                       .replace("+00:00", "Z"))
-    finally:
-        conn.close()
+        conn = _connect(collection.ledger_path)
+        try:
+            counts, prov_sha = write_release(conn, recipe, out, collection.store.root,
+                                             with_images=with_images,
+                                             exclude_flagged=exclude_flagged)
+            facts = _facts(conn, recipe, now or datetime.now(UTC).isoformat(timespec="seconds")
+                           .replace("+00:00", "Z"))
+        finally:
+            conn.close()
+    except sqlite3.Error as exc:  # translated once, here: the CLI shows one Error paragraph
+        raise LedgerError(f"cannot read the ledger {collection.ledger_path}: {exc}. If the "
+                          "file is damaged, restore a backup of it (see README, "
+                          "Troubleshooting)") from exc
     facts["release"] = {
         "files": counts.files, "bytes": counts.bytes, "with_images": with_images,
         "exclude_flagged": exclude_flagged, "excluded_licence": counts.excluded_licence,
