@@ -32,8 +32,8 @@ from pathlib import Path
 import numpy as np
 from PIL import Image, ImageDraw
 
-from collector.collection import FILES_NAME, init_collection
-from collector.hashindex import HASH_FILE_NAME, HashFile, ledger_mark, to_signed
+from collector.collection import Collection, init_collection
+from collector.hashindex import HashFile, ledger_mark, to_signed
 from collector.phash import HASH_ALGO, hash_image_file
 from collector.trace import Tracer
 
@@ -163,7 +163,7 @@ def main() -> int:
             pass
         table.append(("first open: hash file built from the ledger",
                       f"{time.perf_counter() - t0:.2f} s", "once"))
-        index_path = root / FILES_NAME / HASH_FILE_NAME
+        index_path = Collection(root).hash_index_path
         table.append(("hash file size", f"{index_path.stat().st_size / 1e6:.0f} MB", "-"))
 
         with Tracer.open(root) as tracer:

@@ -25,6 +25,12 @@ LEDGER_NAME = "ledger.sqlite"
 FILES_NAME = "files"
 LOCK_NAME = ".gather.lock"
 ERROR_LOG_NAME = "errors.log"
+# Derived files (rebuilt from the ledger whenever they are missing or stale) and their locks
+# live here, never in files/, which holds only content named by its SHA-256.
+CACHE_NAME = "cache"
+HASH_INDEX_NAME = "phash-index"
+# Where an older collector kept the near-duplicate index: inside the store (files/).
+_OLD_DERIVED = (".phash-index", ".phash-index.lock")
 
 
 def recipe_template(contact: str = "", name: str = "My collection") -> str:
@@ -59,6 +65,39 @@ class Collection:
     def ledger(self, *, readonly: bool = False) -> Ledger:
         """Open the folder's ledger."""
         return Ledger.open(self.ledger_path, readonly=readonly)
+
+    @property
+    def cache_dir(self) -> Path:
+        return self.root / CACHE_NAME
+
+    @property
+    def hash_index_path(self) -> Path:
+        return self.cache_dir / HASH_INDEX_NAME
+
+    def ensure_cache_dir(self) -> Path:
+        """Create the cache folder; a symlink in its place is refused (it could point
+        outside the collection)."""
+        if self.cache_dir.is_symlink():
+            raise CollectionError(f"{self.cache_dir} is a symlink; collector writes only "
+                                  "inside the collection folder. Remove the link and run again")
+        self.cache_dir.mkdir(exist_ok=True)
+        return self.cache_dir
+
+    def move_derived_out_of_store(self) -> int:
+        """Remove derived files an older collector kept inside ``files/`` (they are rebuilt
+        in the cache folder on demand); returns how many were removed. Links are removed as
+        links, never followed."""
+        store = self.root / FILES_NAME
+        if not store.is_dir():
+            return 0
+        stale = [store / name for name in _OLD_DERIVED]
+        stale += list(store.glob(".phash-index.tmp-*"))
+        removed = 0
+        for path in stale:
+            if path.is_symlink() or path.is_file():
+                path.unlink(missing_ok=True)
+                removed += 1
+        return removed
 
     @property
     def error_log_path(self) -> Path:
@@ -106,6 +145,8 @@ def open_collection(root: Path) -> Collection:
     if not collection.recipe_path.is_file() or not collection.ledger_path.is_file():
         raise CollectionError(f"{root} is not a collection folder (no {RECIPE_NAME} and "
                               f"{LEDGER_NAME}); create one with 'collector init {root}'")
+    with contextlib.suppress(OSError):  # a read-only folder keeps its old files, harmlessly
+        collection.move_derived_out_of_store()
     return collection
 
 

@@ -118,7 +118,8 @@ class HashIndex:
 
 
 # --- the persistent hash file ---------------------------------------------------------------
-# One file in the collection's store folder, memory-mapped by readers (little-endian):
+# One file in the collection's cache folder (Collection.hash_index_path), memory-mapped by
+# readers (little-endian):
 #   header (128 bytes): magic, capacity, entries, ledger_rows, max_rowid, last_sha (32 raw bytes)
 #   hashes:  capacity x uint64 at offset 128            (the pHash of each entry)
 #   keys:    capacity x 32 bytes after the hashes        (the raw sha256 of each entry)
@@ -127,7 +128,6 @@ class HashIndex:
 # ledger. New ledger rows are appended in place while there is capacity; anything else (rows
 # deleted by crash recovery, a replaced ledger, a full file) rebuilds the file and swaps it in
 # with os.replace, so a reader always maps either the old or the new file, never a mixture.
-HASH_FILE_NAME = ".phash-index"
 _MAGIC = b"CLPHX001"
 _HEADER = struct.Struct("<8sQQQq32s")
 _HEADER_SIZE = 128
@@ -307,7 +307,8 @@ def _rebuild(ledger: Ledger, path: Path) -> _Header:
 def _locked(path: Path) -> Iterator[None]:
     """Hold an exclusive lock beside the hash file while it is checked and updated."""
     path.parent.mkdir(parents=True, exist_ok=True)
-    fd = os.open(path.with_name(path.name + ".lock"), os.O_RDWR | os.O_CREAT, 0o644)
+    fd = os.open(path.with_name(path.name + ".lock"),
+                 os.O_RDWR | os.O_CREAT | os.O_NOFOLLOW, 0o644)
     try:
         fcntl.flock(fd, fcntl.LOCK_EX)
         yield

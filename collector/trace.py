@@ -30,9 +30,9 @@ from dataclasses import asdict, dataclass, field
 from pathlib import Path
 from typing import Any
 
-from collector.collection import FILES_NAME, Collection, open_collection
+from collector.collection import Collection, open_collection
 from collector.errors import CollectorError
-from collector.hashindex import HASH_FILE_NAME, HashFile, NearMatch
+from collector.hashindex import HashFile, NearMatch
 from collector.images import sniff_format
 from collector.ledger import Ledger, decode_row
 from collector.licences import licence_allowed, licence_deed_url
@@ -345,7 +345,8 @@ class Tracer:
             problem = str(exc)
         ledger = collection.ledger(readonly=True)
         try:
-            hashes = HashFile.open(ledger, collection.root / FILES_NAME / HASH_FILE_NAME)
+            collection.ensure_cache_dir()
+            hashes = HashFile.open(ledger, collection.hash_index_path)
         except BaseException:
             ledger.close()
             raise

@@ -70,3 +70,35 @@ def test_second_gather_lock_is_refused_with_a_clear_message(tmp_path: Path) -> N
         proc.wait()
     with col.gather_lock():
         pass
+
+
+def test_an_old_index_inside_the_store_is_removed_on_open(tmp_path: Path) -> None:
+    """A collection from an older collector kept its near-duplicate index in files/; opening
+    it removes that derived file (it is rebuilt in cache/ on demand), and nothing else."""
+    from collector.collection import open_collection
+
+    col = init_collection(tmp_path / "c", contact="me@example.org")
+    (col.store.root / ".phash-index").write_bytes(b"CLPHX001" + bytes(120))
+    (col.store.root / ".phash-index.lock").write_bytes(b"")
+    kept = col.store.root / "ab" / "cd" / ("abcd" + "0" * 60 + ".png")
+    kept.parent.mkdir(parents=True)
+    kept.write_bytes(b"content")
+    open_collection(col.root)
+    assert not (col.store.root / ".phash-index").exists()
+    assert not (col.store.root / ".phash-index.lock").exists()
+    assert kept.read_bytes() == b"content"
+
+
+def test_a_symlinked_cache_folder_is_refused(tmp_path: Path) -> None:
+    """cache/ pointing outside the folder is refused with a clear error; nothing is written
+    through it."""
+    from collector.errors import CollectionError
+    from collector.trace import Tracer
+
+    col = init_collection(tmp_path / "c", contact="me@example.org")
+    outside = tmp_path / "outside"
+    outside.mkdir()
+    col.cache_dir.symlink_to(outside, target_is_directory=True)
+    with pytest.raises(CollectionError, match="symlink"):
+        Tracer.open(col.root)
+    assert list(outside.iterdir()) == []

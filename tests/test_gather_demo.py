@@ -236,3 +236,26 @@ def test_every_stored_file_traces_exactly_to_its_item(demo_run) -> None:
             assert result.file.origin.item_id == first[sha]
             ids = {result.file.origin.item_id} | {o.item_id for o in result.file.others}
             assert ids == brought[sha]
+
+
+def test_the_store_holds_only_files_named_by_their_sha256(demo_run) -> None:
+    """After a demo run and a trace (which builds the near-duplicate index), every file below
+    files/ is files/ab/cd/<sha256>.<ext> of its own bytes (FIPS 180-4 SHA-256); the index
+    and its lock live in the cache folder. Only the empty temp folder .incoming is there too."""
+    import hashlib
+    import re
+
+    from collector.trace import Tracer
+
+    col, _, _ = demo_run
+    with Tracer.open(col.root):
+        pass
+    assert col.hash_index_path.is_file()
+    named = re.compile(r"^([0-9a-f]{2})/([0-9a-f]{2})/(\1\2[0-9a-f]{60})\.[a-z0-9]{1,5}$")
+    files = [p for p in col.store.root.rglob("*") if not p.is_dir()]
+    assert len(files) >= 50
+    for path in files:
+        match = named.match(path.relative_to(col.store.root).as_posix())
+        assert match, path
+        assert hashlib.sha256(path.read_bytes()).hexdigest() == match[3]
+    assert [p.name for p in col.store.root.iterdir() if p.name.startswith(".")] == [".incoming"]

@@ -49,7 +49,7 @@ def _stored(ledger: Ledger) -> dict[str, int]:
 def test_hash_file_holds_every_hashed_file_of_the_ledger(ledger: Ledger, tmp_path: Path
                                                          ) -> None:
     """A new hash file has one entry per files row with a hash, keyed by sha256."""
-    hf = HashFile.open(ledger, tmp_path / "files" / ".phash-index")
+    hf = HashFile.open(ledger, tmp_path / "cache" / "phash-index")
     assert hf.path is not None and hf.path.is_file()
     assert hf.mark == ledger_mark(ledger)
     got = {hf.keys[i].tobytes().hex(): int(hf.hashes[i]) for i in range(len(hf))}
@@ -58,7 +58,7 @@ def test_hash_file_holds_every_hashed_file_of_the_ledger(ledger: Ledger, tmp_pat
 
 def test_new_ledger_rows_are_appended_in_place(ledger: Ledger, tmp_path: Path) -> None:
     """Rows stored after the file was written are appended without a rebuild."""
-    path = tmp_path / "files" / ".phash-index"
+    path = tmp_path / "cache" / "phash-index"
     HashFile.open(ledger, path)
     inode = path.stat().st_ino
     _add(ledger, 60, 0x0123456789ABCDEF)
@@ -70,7 +70,7 @@ def test_new_ledger_rows_are_appended_in_place(ledger: Ledger, tmp_path: Path) -
 
 def test_deleted_rows_trigger_a_rebuild(ledger: Ledger, tmp_path: Path) -> None:
     """A row removed by crash recovery makes the file stale; it is rebuilt without it."""
-    path = tmp_path / "files" / ".phash-index"
+    path = tmp_path / "cache" / "phash-index"
     HashFile.open(ledger, path)
     inode = path.stat().st_ino
     with ledger.transaction():
@@ -83,7 +83,7 @@ def test_deleted_rows_trigger_a_rebuild(ledger: Ledger, tmp_path: Path) -> None:
 
 def test_a_reused_last_rowid_is_noticed(ledger: Ledger, tmp_path: Path) -> None:
     """Deleting the newest row and storing another (same count, same max rowid) rebuilds."""
-    path = tmp_path / "files" / ".phash-index"
+    path = tmp_path / "cache" / "phash-index"
     HashFile.open(ledger, path)
     with ledger.transaction():
         ledger.db.execute("DELETE FROM files WHERE sha256 = ?", [_sha(50)])
@@ -94,7 +94,7 @@ def test_a_reused_last_rowid_is_noticed(ledger: Ledger, tmp_path: Path) -> None:
 
 def test_a_corrupt_hash_file_is_rebuilt(ledger: Ledger, tmp_path: Path) -> None:
     """A file with a wrong header is ignored and rebuilt from the ledger."""
-    path = tmp_path / "files" / ".phash-index"
+    path = tmp_path / "cache" / "phash-index"
     path.parent.mkdir()
     path.write_bytes(b"garbage" * 10)
     hf = HashFile.open(ledger, path)
@@ -103,9 +103,9 @@ def test_a_corrupt_hash_file_is_rebuilt(ledger: Ledger, tmp_path: Path) -> None:
 
 def test_unwritable_folder_falls_back_to_memory(ledger: Ledger, tmp_path: Path) -> None:
     """When the hash file cannot be written the hashes are read into memory instead."""
-    blocker = tmp_path / "files"
-    blocker.write_text("a file where the store folder should be")  # mkdir fails, even as root
-    hf = HashFile.open(ledger, blocker / ".phash-index")
+    blocker = tmp_path / "cache"
+    blocker.write_text("a file where the cache folder should be")  # mkdir fails, even as root
+    hf = HashFile.open(ledger, blocker / "phash-index")
     assert hf.path is None and len(hf) == 50
     assert hf.nearest(next(iter(_stored(ledger).values())), None, 0)
 
