@@ -14,11 +14,13 @@ and ``deferred`` items are tried again, and licence/robots decisions are re-eval
 from __future__ import annotations
 
 import contextlib
+import errno
 import hashlib
 import json
 import os
 import queue
 import signal
+import stat
 import threading
 import time
 import traceback
@@ -27,7 +29,7 @@ from collections.abc import Callable, Iterator
 from dataclasses import dataclass, field
 from datetime import datetime, timedelta
 from pathlib import Path
-from typing import Any, Protocol
+from typing import Any, BinaryIO, Protocol
 
 import sources as adapters
 from collector import __version__
@@ -51,6 +53,7 @@ from collector.images import ImageFacts, inspect_image
 from collector.ledger import Ledger, utc_now
 from collector.licences import licence_allowed, normalise_licence, rights_conflict
 from collector.recipe import Recipe, expand_env, parse_clock, parse_duration, unset_env
+from collector.safe_text import shown_name
 from collector.urls import (
     MIN_SECRET_LEN,
     header_secrets,
@@ -325,7 +328,8 @@ class Gatherer:
             "creator": c.creator, "licence_raw": c.licence_raw, "licence_url": c.licence_url,
             "spdx_id": licence.spdx_id, "date": c.date, "metadata": c.metadata or None,
             "crop_box": list(c.crop_box) if c.crop_box else None,
-            "local_path": str(c.local_path) if c.local_path else None, "run_id": self.run_id,
+            "local_path": shown_name(str(c.local_path)) if c.local_path else None,
+            "run_id": self.run_id,
         }
         # Servers echo API keys into the URLs and items they send back: keep them out of the
         # ledger (the job below still fetches the URL as given).
@@ -461,7 +465,7 @@ class Gatherer:
                     out.write(c.content)
                     digest.update(c.content)
                 else:
-                    with open(c.local_path, "rb") as src:
+                    with open_regular(c.local_path) as src:
                         while chunk := src.read(COPY_CHUNK):
                             out.write(chunk)
                             digest.update(chunk)
@@ -469,10 +473,17 @@ class Gatherer:
                 os.fsync(out.fileno())
         except OSError as exc:
             tmp.unlink(missing_ok=True)
+            shown = shown_name(str(c.local_path))
             if isinstance(exc, FileNotFoundError):
-                self._finish(item_id, "failed", "file_missing", f"{c.local_path}: {exc}")
+                self._finish(item_id, "failed", "file_missing", f"{shown}: {exc.strerror}")
                 return
-            raise StoreError(f"cannot copy {c.local_path} into the store: {exc}",
+            if isinstance(exc, NotARegularFile):
+                self._finish(item_id, "failed", "not_a_file", f"{shown}: {exc}")
+                return
+            if exc.filename is not None and Path(exc.filename) == c.local_path:
+                self._finish(item_id, "failed", "unreadable_file", f"{shown}: {exc.strerror}")
+                return
+            raise StoreError(f"cannot copy {shown} into the store: {exc}",
                              errno=exc.errno) from exc
         sha = digest.hexdigest()
         extra: dict[str, Any] = {}
@@ -481,7 +492,8 @@ class Gatherer:
         else:
             self._scan_sha[(source_id, c.source_key)] = sha
         licence = normalise_licence(c.licence_raw, c.licence_url)
-        self._ingest(item_id, licence.spdx_id, tmp, sha, url=str(c.local_path or ""), **extra)
+        self._ingest(item_id, licence.spdx_id, tmp, sha,
+                     url=shown_name(str(c.local_path or "")), **extra)
 
     # -- ingest ------------------------------------------------------------------------------
     def _ingest(self, item_id: int, spdx_id: str | None, path: Path, sha: str, *,
@@ -662,6 +674,26 @@ class Gatherer:
             if was:
                 self.counts[was] -= 1
             self.counts[now] += 1
+
+
+class NotARegularFile(OSError):
+    """A local file turned out to be a FIFO, socket, device or folder when it was opened."""
+
+
+def open_regular(path: Path) -> BinaryIO:
+    """Open a local file for reading only if it is a regular file: opened non-blocking (a
+    FIFO would otherwise block until a writer comes) and checked with fstat before any read."""
+    fd = os.open(path, os.O_RDONLY | os.O_NONBLOCK)
+    try:
+        mode = os.fstat(fd).st_mode
+        if not stat.S_ISREG(mode):
+            raise NotARegularFile(errno.EINVAL, "not a regular file (FIFO, socket, device or "
+                                                "folder); not read", str(path))
+        os.set_blocking(fd, True)
+        return os.fdopen(fd, "rb")
+    except BaseException:
+        os.close(fd)
+        raise
 
 
 @dataclass(frozen=True)

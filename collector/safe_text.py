@@ -39,6 +39,12 @@ def for_terminal(text: Any) -> str:
     return _UNSAFE_BUT_NEWLINE.sub(_escaped, str(text))
 
 
+def shown_name(text: str) -> str:
+    """A file name or path as text that can be shown and stored: bytes that are not UTF-8
+    (kept by Python as surrogate escapes, PEP 383) appear as ``\\xNN``."""
+    return text.encode("utf-8", "surrogateescape").decode("utf-8", "backslashreplace")
+
+
 def csv_cell(value: Any) -> Any:
     """A CSV cell that no spreadsheet runs as a formula: text starting with ``=``, ``+``,
     ``-``, ``@``, tab or CR gets a leading ``'`` (OWASP CSV Injection); numbers and None are

@@ -36,7 +36,7 @@ from collector.hashindex import HashFile, NearMatch
 from collector.images import sniff_format
 from collector.ledger import Ledger, decode_row
 from collector.licences import licence_allowed, licence_deed_url
-from collector.safe_text import csv_row
+from collector.safe_text import csv_row, shown_name
 
 __all__ = [
     "CAUTION",
@@ -214,7 +214,8 @@ def sha256_file(path: Path) -> str:
 
 
 def _looks_like_image(path: Path) -> bool:
-    if path.suffix.lower() not in IMAGE_EXTENSIONS:
+    # is_file() reads the file type without opening: a FIFO would block the open.
+    if path.suffix.lower() not in IMAGE_EXTENSIONS or not path.is_file():
         return False
     try:
         with path.open("rb") as fh:
@@ -250,6 +251,9 @@ def collect_targets(paths: Iterable[Path]) -> list[tuple[Path, bool]]:
             targets.extend((p, True) for p in found)
         elif path.is_file():
             targets.append((path, False))
+        elif path.exists():
+            raise TraceInputError(f"{path} is not a regular file (a FIFO, socket or device); "
+                                  "give an image file or a folder")
         else:
             raise TraceInputError(f"{path} does not exist; give an image file or a folder")
     return targets
@@ -518,7 +522,7 @@ def table_row(result: TraceResult) -> dict[str, Any]:
     item = result.item
     best = result.best
     return {
-        "file": result.path, "match": result.kind,
+        "file": shown_name(str(result.path)), "match": result.kind,
         "distance": "" if result.distance is None else result.distance,
         "source": (item.source or "") if item else "",
         "spdx_id": (item.spdx_id or "") if item else "",
@@ -618,11 +622,11 @@ def _file_lines(record: FileRecord) -> list[str]:
 def format_record(result: TraceResult) -> list[str]:
     """The full human-readable provenance record of one traced file."""
     if result.kind == "exact" and result.file:
-        lines = [f"{result.path}: exact match (same bytes, sha256 {result.sha256})"]
+        lines = [f"{shown_name(str(result.path))}: exact match (same bytes, sha256 {result.sha256})"]
         lines += _file_lines(result.file)
     elif result.kind == "near":
         best = result.near[0]
-        lines = [f"{result.path}: probably {_copy_words(best.mirrored)} of "
+        lines = [f"{shown_name(str(result.path))}: probably {_copy_words(best.mirrored)} of "
                  f"{best.file.sha256[:12]} (pHash distance {best.distance} of 64 bits, "
                  f"threshold {result.threshold}); not the same bytes, so not certain"]
         lines += _file_lines(best.file)
@@ -633,7 +637,7 @@ def format_record(result: TraceResult) -> list[str]:
         why = f" ({result.note})" if result.note else (
             f": no stored file has these bytes, and none is within {result.threshold} bits "
             "of its perceptual hash")
-        return [f"{result.path}: no match{why}. Its provenance is unknown to this collection."]
+        return [f"{shown_name(str(result.path))}: no match{why}. Its provenance is unknown to this collection."]
     lines.append(f"  allowed:      {result.allowed} (the recipe's licence allowlist)")
     lines.append(f"  attribution:  {result.attribution}")
     return lines

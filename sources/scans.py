@@ -3,15 +3,18 @@ the separate items lying on the scanner bed (see sources.splitter)."""
 
 from __future__ import annotations
 
+import errno
 import os
 import re
-from collections.abc import Iterator, Mapping
+import stat
+from collections.abc import Callable, Iterator, Mapping
 from datetime import UTC, datetime
 from pathlib import Path
 from typing import Any
 
 from PIL import Image, UnidentifiedImageError
 
+from collector.safe_text import shown_name
 from sources import splitter
 from sources.base import (
     BOOL,
@@ -50,6 +53,7 @@ SOURCE_KEYS: dict[str, Key] = {
     "device": Key(STR),
     "date": Key(DATEISH),
     "split": Key(TABLE),
+    "allow_outside_links": Key(BOOL),
 }
 SPLIT_KEYS: dict[str, Key] = {
     "min_area": Key(INT),
@@ -119,17 +123,56 @@ def glob_regex(pattern: str) -> re.Pattern[str]:
     return re.compile(out + r"\Z", re.IGNORECASE)
 
 
-def list_files(root: Path, include: list[str] | tuple[str, ...]) -> list[tuple[str, Path]]:
-    """(relative POSIX path, path) of files under root matching any pattern, in sorted order."""
+Skipped = Callable[[str, str, str], None]  # (note kind, shown relative path, message)
+
+
+def _why_skipped(path: Path, root: Path, allow_outside_links: bool) -> tuple[str, str] | None:
+    """(note kind, reason) when ``path`` must not be read, else None. Nothing is opened:
+    a FIFO would block the run, a device could be anything."""
+    try:
+        st = path.lstat()
+        if stat.S_ISLNK(st.st_mode):
+            target = path.resolve(strict=True)
+            if not allow_outside_links and not target.is_relative_to(root.resolve()):
+                return "link_outside", (f"is a symlink to {shown_name(str(target))}, outside the "
+                                        "scans folder; skipped (allow_outside_links = true in "
+                                        "the source reads such links)")
+            st = target.stat()
+    except RuntimeError:  # Path.resolve(strict=True) on a symlink loop (Python < 3.13)
+        return "link_loop", "is a symlink loop; skipped"
+    except OSError as exc:
+        if exc.errno == errno.ELOOP:
+            return "link_loop", "is a symlink loop; skipped"
+        return "unreadable_file", f"cannot be read ({exc.strerror or exc}); skipped"
+    if not stat.S_ISREG(st.st_mode):
+        kind = ("a FIFO" if stat.S_ISFIFO(st.st_mode) else "a socket" if stat.S_ISSOCK(st.st_mode)
+                else "a device" if stat.S_ISCHR(st.st_mode) or stat.S_ISBLK(st.st_mode)
+                else "not a regular file")
+        return "not_a_file", f"is {kind}, not a regular file; skipped without opening it"
+    return None
+
+
+def list_files(root: Path, include: list[str] | tuple[str, ...], *,
+               skipped: Skipped | None = None,
+               allow_outside_links: bool = False) -> list[tuple[str, Path]]:
+    """(relative POSIX path, path) of regular files under root matching any pattern, in
+    sorted order. The relative path shows undecodable name bytes as ``\\xNN``. Symlinked
+    folders are not entered; symlinks leaving ``root`` (unless allowed), symlink loops,
+    FIFOs, sockets and devices are left out and reported to ``skipped``."""
     regexes = [glob_regex(p) for p in include]
     found: list[tuple[str, Path]] = []
     for folder, dirs, files in os.walk(root):
         dirs.sort()
         for name in sorted(files):
             path = Path(folder) / name
-            rel = path.relative_to(root).as_posix()
-            if any(r.match(rel) for r in regexes):
+            rel = shown_name(path.relative_to(root).as_posix())
+            if not any(r.match(rel) for r in regexes):
+                continue
+            why = _why_skipped(path, root, allow_outside_links)
+            if why is None:
                 found.append((rel, path))
+            elif skipped is not None:
+                skipped(why[0], rel, f"{rel} {why[1]}")
     return sorted(found)
 
 
@@ -182,7 +225,9 @@ def iter_candidates(source: Mapping[str, Any], fetcher: PageFetcher | None, note
                  "a folder; check path (relative paths start at the collection folder)")
         return
     include = source.get("include") or DEFAULT_INCLUDE
-    files = list_files(root, include)
+    files = list_files(root, include, allow_outside_links=bool(source.get("allow_outside_links")),
+                       skipped=lambda kind, rel, message: once.add(kind, rel, message,
+                                                                   once_key=rel))
     if not files:
         once.add("no_files", str(root), f"no files in {root} match include = {list(include)}")
         return
