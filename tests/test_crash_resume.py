@@ -18,7 +18,7 @@ import time
 from pathlib import Path
 
 import pytest
-from probes import files_count
+from support.probes import files_count
 
 from collector.collection import Collection, init_collection
 from collector.run import gather

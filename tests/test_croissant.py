@@ -9,7 +9,7 @@ import sqlite3
 from pathlib import Path
 
 import pytest
-from datasheet_fixture import build_collection
+from support.datasheet_fixture import build_collection
 
 from collector.croissant import precheck, spdx_url
 from collector.datasheet import ExportResult, export_datasheet

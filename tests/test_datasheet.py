@@ -16,7 +16,7 @@ from pathlib import Path
 from urllib.parse import urlsplit
 
 import pytest
-from datasheet_fixture import HOSTILE_TITLE, build_collection
+from support.datasheet_fixture import HOSTILE_TITLE, build_collection
 from typer.testing import CliRunner
 
 from collector import datasheet as ds

@@ -7,7 +7,7 @@ import sys
 from pathlib import Path
 
 import pytest
-from datasheet_fixture import build_collection
+from support.datasheet_fixture import build_collection
 
 from collector.datasheet import export_datasheet
 

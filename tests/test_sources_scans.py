@@ -9,7 +9,7 @@ from pathlib import Path
 
 import numpy as np
 from PIL import Image
-from test_sources_helpers import collect
+from support.fetcher import collect
 from test_splitter import _item, add_noise, iou, make_bed, place
 
 from sources.scans import glob_regex
