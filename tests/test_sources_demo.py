@@ -81,6 +81,7 @@ def test_scanner_beds_split_into_the_manifest_boxes(demo: tuple[DemoServer, Path
         if c.parent_key:
             by_scan.setdefault(c.parent_key, []).append(c)
     note_kinds = {(n.kind, n.url) for n in notes}
+    assert server.manifest["scans"] and by_scan
     for scan in server.manifest["scans"]:
         key = Path(scan["file"]).name
         crops = by_scan.get(key, [])
