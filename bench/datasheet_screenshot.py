@@ -1,7 +1,8 @@
 """Open datasheet.html in headless Chromium: collect console errors and take a screenshot.
 
 Usage: python bench/datasheet_screenshot.py [DATASHEET_HTML] [PNG]
-Without arguments it builds the test fixture collection in a temp folder first. Chromium gets
+Without arguments it gathers the demo archive (``collector.demo.run_demo``, content generated
+into a temp folder) and exports its datasheet with thumbnails first. Chromium gets
 no network use: background networking, component updates and sync are off, and the page
 itself loads nothing from outside.
 """
@@ -46,12 +47,14 @@ def main() -> int:
         html = Path(sys.argv[1])
         png = Path(sys.argv[2]) if len(sys.argv) > 2 else html.with_suffix(".png")
     else:
-        sys.path.insert(0, str(Path(__file__).resolve().parents[1] / "tests"))
-        from datasheet_fixture import build_collection
-
         from collector.datasheet import export_datasheet
+        from collector.demo import run_demo
+        from demo_site import generate
 
-        root = build_collection(Path(tempfile.mkdtemp()) / "leaves")
+        tmp = Path(tempfile.mkdtemp())
+        generate(tmp / "content")
+        root = run_demo(tmp / "demo", port=0, datasheet=False,
+                        content=tmp / "content").collection.root
         html = export_datasheet(root, with_images=True).out / "datasheet.html"
         png = Path("datasheet-screenshot.png")
     if chromium() is None:

@@ -1,4 +1,4 @@
-"""Hostile servers, one at a time: each misbehaviour of tests/hostile_server.py gets its own
+"""Hostile servers, one at a time: each misbehaviour of demo_site/hostile.py gets its own
 `collector gather` child process (with the normal item beside it), and the table shows the
 ledger outcome, the reason and the child's peak RSS (wait4 ru_maxrss), next to a run of the
 normal item alone. Every row must end in a handled outcome; exit status 1 otherwise.
@@ -12,11 +12,9 @@ import sys
 import tempfile
 from pathlib import Path
 
-sys.path.insert(0, str(Path(__file__).resolve().parents[1] / "tests"))
-
-from hostile_server import CASES, HostileArchive, judge, run_gather
-
 from collector.collection import init_collection
+from demo_site.hostile import CASES, HostileArchive
+from demo_site.hostile_run import judge, run_gather
 
 
 def one(cases: list, folder: Path) -> tuple[int, float, int, list]:

@@ -14,21 +14,14 @@ growing with hosts. Whole run stays well under 2 minutes.
 
 from __future__ import annotations
 
+import itertools
 import multiprocessing as mp
-import sys
 import threading
 import time
-from http.server import BaseHTTPRequestHandler, ThreadingHTTPServer
-from pathlib import Path
-
-sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
-sys.path.insert(0, str(Path(__file__).resolve().parents[1] / "tests"))
-
-import itertools
-
-from fetcher_loopback import max_in_window  # the same window count the tests use
 
 from collector.fetcher import Fetcher, FetchSettings
+from demo_site.loopback import LoopbackServer
+from demo_site.requestlog import max_in_window  # the same window count the tests use
 
 INTERVAL = 0.1  # s between request starts per host -> budget 10 requests/s
 BUDGET = round(1 / INTERVAL)
@@ -38,38 +31,17 @@ PLAN = [(1, 60), (10, 40), (50, 20)]  # (hosts, requests per host)
 
 def _serve(addresses: list[str], conn: mp.connection.Connection) -> None:
     """Child process: one server per address; on request, send back the logs and stop."""
-    logs: dict[str, list[float]] = {a: [] for a in addresses}
-    lock = threading.Lock()
     servers = []
     for addr in addresses:
-        stamps = logs[addr]
-
-        class H(BaseHTTPRequestHandler):
-            protocol_version = "HTTP/1.1"
-            _stamps = stamps
-
-            def do_GET(self) -> None:
-                with lock:
-                    self._stamps.append(time.monotonic())
-                body = b"{}" if self.path != "/robots.txt" else b"user-agent: *\nallow: /\n"
-                self.send_response(200)
-                self.send_header("Content-Length", str(len(body)))
-                self.end_headers()
-                self.wfile.write(body)
-
-            def log_message(self, *args: object) -> None:
-                pass
-
-        server = ThreadingHTTPServer((addr, 0), H)
-        server.daemon_threads = True
-        threading.Thread(target=server.serve_forever, args=(0.05,), daemon=True).start()
+        server = LoopbackServer(addr)
+        server.route("/robots.txt", (200, b"user-agent: *\nallow: /\n"))
+        server.fallback = (200, b"{}")
         servers.append(server)
-    conn.send([s.server_address[1] for s in servers])
+    conn.send([s.port for s in servers])
     conn.recv()
     for s in servers:
-        s.shutdown()
-    with lock:
-        conn.send(logs)
+        s.close()
+    conn.send({a: [h.mono for h in s.hits] for a, s in zip(addresses, servers, strict=True)})
 
 
 def run(hosts: int, per_host: int) -> dict[str, float]:

@@ -621,12 +621,13 @@ def _file_lines(record: FileRecord) -> list[str]:
 
 def format_record(result: TraceResult) -> list[str]:
     """The full human-readable provenance record of one traced file."""
+    shown = shown_name(str(result.path))
     if result.kind == "exact" and result.file:
-        lines = [f"{shown_name(str(result.path))}: exact match (same bytes, sha256 {result.sha256})"]
+        lines = [f"{shown}: exact match (same bytes, sha256 {result.sha256})"]
         lines += _file_lines(result.file)
     elif result.kind == "near":
         best = result.near[0]
-        lines = [f"{shown_name(str(result.path))}: probably {_copy_words(best.mirrored)} of "
+        lines = [f"{shown}: probably {_copy_words(best.mirrored)} of "
                  f"{best.file.sha256[:12]} (pHash distance {best.distance} of 64 bits, "
                  f"threshold {result.threshold}); not the same bytes, so not certain"]
         lines += _file_lines(best.file)
@@ -637,7 +638,7 @@ def format_record(result: TraceResult) -> list[str]:
         why = f" ({result.note})" if result.note else (
             f": no stored file has these bytes, and none is within {result.threshold} bits "
             "of its perceptual hash")
-        return [f"{shown_name(str(result.path))}: no match{why}. Its provenance is unknown to this collection."]
+        return [f"{shown}: no match{why}. Its provenance is unknown to this collection."]
     lines.append(f"  allowed:      {result.allowed} (the recipe's licence allowlist)")
     lines.append(f"  attribution:  {result.attribution}")
     return lines

@@ -15,6 +15,11 @@ item; ``start`` serves it on 127.0.0.1-127.0.0.4 (one port, four hosts):
 * host 4 (127.0.0.4) "annex": JSON API v3 paged by RFC 8288 Link rel="next"; robots.txt
   redirects to /policies/robots.txt (Disallow: /drafts/); Retry-After as HTTP-date.
 
+Beside the archive: ``loopback`` (a scriptable one-host loopback server with a request log),
+``requestlog`` (counting a request log's busiest window) and ``hostile`` / ``hostile_run`` (an
+archive that misbehaves on purpose, and the judge of a gather against it), shared by the tests
+and the benches.
+
 This package never imports ``collector``: it stands in for a real server.
 """
 

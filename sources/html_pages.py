@@ -307,9 +307,6 @@ class _Walker:
                            "such items keep their listing values (reported once per reason)",
                            once_key=exc.reason)
             return None
-        if page.status >= 400:
-            self.notes.add("http_error", page.url, f"{purpose} page answered HTTP {page.status}")
-            return None
         return page.url, BeautifulSoup(page.text or "", "html.parser")
 
     def _selector_empty(self, section: str, key: str, url: str) -> None:

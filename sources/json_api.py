@@ -451,9 +451,6 @@ class _Walker:
                            "reason)", once_key=exc.reason)
             return None
         where = self._red(page.url)
-        if page.status >= 400:
-            self.notes.add("http_error", where, f"{purpose} answer was HTTP {page.status}")
-            return None
         try:
             return page, page.json()
         except ValueError as exc:

@@ -18,7 +18,7 @@ import time
 from pathlib import Path
 
 import pytest
-from probes import files_count
+from support.probes import files_count
 
 from collector.collection import Collection, init_collection
 from collector.run import gather
@@ -103,5 +103,6 @@ def test_killed_runs_resume_to_the_same_result_without_refetching(
     stored = dict(col.store.iter_stored())
     assert set(stored) == set(dict(reference.store.iter_stored()))
     assert list(col.store.incoming_dir.iterdir()) == []
+    assert stored  # the resumed run stored the demo's files
     for sha, path in stored.items():
         assert hashlib.sha256(path.read_bytes()).hexdigest() == sha

@@ -16,7 +16,7 @@ from pathlib import Path
 from urllib.parse import urlsplit
 
 import pytest
-from datasheet_fixture import HOSTILE_TITLE, build_collection
+from support.datasheet_fixture import HOSTILE_TITLE, build_collection
 from typer.testing import CliRunner
 
 from collector import datasheet as ds
@@ -64,6 +64,7 @@ def test_counts_by_state_and_reason_match_the_ledger(coll: Path, export: ds.Expo
         coll, "SELECT state, reason, count(*) FROM items WHERE reason IS NOT NULL "
               "GROUP BY state, reason")}
     assert export.facts["items"]["by_reason"] == reasons
+    assert reasons  # the fixture has skipped, rejected and duplicate items
     for key, n in reasons.items():
         assert f"| {key} | {n} |" in md
 
@@ -111,8 +112,10 @@ def test_licences_hosts_and_sources_match_the_ledger(coll: Path,
                              f"sources s ON s.id = i.source_id WHERE i.state IN {ACCEPTED} "
                              "AND i.file_sha256 IS NOT NULL GROUP BY s.name"))
     assert facts["accepted"]["by_source"] == by_source
+    assert sum(by_source.values()) == len(rows) == 10
     for name, n in by_source.items():
         assert f"| {name} | {n} |" in md
+    assert facts["release"]["by_licence"]
     for spdx, n in facts["release"]["by_licence"].items():
         assert re.search(rf"\| {re.escape(spdx)} \| {n} \|", md)
 
@@ -263,7 +266,7 @@ def test_with_images_hard_links_exactly_the_release(coll: Path, export: ds.Expor
     with open(export.out / "provenance.csv", newline="") as fh:
         prov = {r["file_name"]: r["sha256"] for r in csv.DictReader(fh)}
     files = {p.name: p for p in (export.out / "images").iterdir()}
-    assert set(files) == set(prov)
+    assert set(files) == set(prov) and len(files) == 10
     for name, path in files.items():
         assert hashlib.sha256(path.read_bytes()).hexdigest() == prov[name]  # FIPS 180-4
         assert path.stat().st_nlink >= 2
@@ -279,7 +282,9 @@ def test_copies_when_a_hard_link_is_impossible(coll: Path, tmp_path: Path,
     monkeypatch.setattr(ds.os, "link", no_link)
     result = export_datasheet(coll, out=tmp_path / "o", with_images=True)
     assert result.counts.copied == result.counts.files == 10 and result.counts.linked == 0
-    for path in (tmp_path / "o/images").iterdir():
+    copies = list((tmp_path / "o/images").iterdir())
+    assert len(copies) == 10
+    for path in copies:
         assert path.stat().st_nlink == 1
         assert hashlib.sha256(path.read_bytes()).hexdigest().startswith(path.stem)
 
@@ -290,7 +295,8 @@ def test_exclude_flagged_leaves_out_personal_data_and_conflicts(coll: Path,
     result = export_datasheet(coll, out=tmp_path / "o", with_images=True, exclude_flagged=True)
     assert result.counts.excluded_flagged == 2 and result.counts.files == 8
     with open(tmp_path / "o/provenance.csv", newline="") as fh:
-        assert all(r["flags"] == "" for r in csv.DictReader(fh))
+        rows = list(csv.DictReader(fh))
+    assert len(rows) == 8 and all(r["flags"] == "" for r in rows)
     assert len(list((tmp_path / "o/images").iterdir())) == 8
 
 

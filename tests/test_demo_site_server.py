@@ -251,6 +251,7 @@ def test_every_referenced_image_url_exists_or_is_deliberately_broken(
     _, referenced = _crawl(fast_server)
     broken = {fast_server.fill(i["image_url"]) for i in manifest["items"]
               if i["deliberate"] == "missing"}
+    assert len(referenced) >= 100
     for url in sorted(referenced):
         status, headers, _ = fetch(url, method="HEAD")
         hops = 0
@@ -287,6 +288,7 @@ def test_recipes_render_to_toml_with_port_scans_and_loopback_only(tmp_path: Path
     for name in recipes.names():
         data = tomllib.loads(recipes.render(name, 43210, tmp_path / "scans"))
         assert data["contact"].endswith("example.org")  # RFC 2606 reserved domain
+        assert data["sources"], name
         for source in data["sources"]:
             for url in [source.get("url"), *source.get("start_urls", [])]:
                 if url:

@@ -11,7 +11,7 @@ from email.utils import formatdate
 from pathlib import Path
 
 import pytest
-from fetcher_loopback import LoopbackSite, max_in_window, send
+from support.server import LoopbackServer, send
 
 from collector.errors import (
     DownloadTimeout,
@@ -23,13 +23,14 @@ from collector.errors import (
 )
 from collector.fetcher import Fetcher, FetchSettings
 from collector.ledger import Ledger
+from demo_site.requestlog import max_in_window
 
 ALLOWED = ("127.0.0.1", "127.0.0.2", "127.0.0.3")  # never 127.0.0.9: the guard's target
 
 
 @pytest.fixture
-def sites() -> Iterator[list[LoopbackSite]]:
-    made = [LoopbackSite(a) for a in ALLOWED]
+def sites() -> Iterator[list[LoopbackServer]]:
+    made = [LoopbackServer(a) for a in ALLOWED]
     for s in made:
         s.routes["/robots.txt"] = (200, b"user-agent: *\ndisallow: /private/\n")
     yield made
@@ -99,7 +100,7 @@ def test_no_host_ever_exceeds_five_requests_per_second(fresh_demo_server) -> Non
         assert {r.status for r in pages} == {200}
 
 
-def test_retry_after_seconds_delays_the_next_request(sites: list[LoopbackSite]) -> None:
+def test_retry_after_seconds_delays_the_next_request(sites: list[LoopbackServer]) -> None:
     """429 + Retry-After: 2 -> next request to the host starts >= 2 s later (RFC 9110 §10.2.3)."""
     site = sites[0]
     calls = {"n": 0}
@@ -118,7 +119,7 @@ def test_retry_after_seconds_delays_the_next_request(sites: list[LoopbackSite]) 
     assert second.mono - first.mono >= 2.0
 
 
-def test_retry_after_http_date_is_honoured(sites: list[LoopbackSite]) -> None:
+def test_retry_after_http_date_is_honoured(sites: list[LoopbackServer]) -> None:
     """503 with an IMF-fixdate ~3 s ahead: the retry starts no earlier than that date (§10.2.3)."""
     site = sites[1]
     state: dict[str, float] = {}
@@ -136,7 +137,8 @@ def test_retry_after_http_date_is_honoured(sites: list[LoopbackSite]) -> None:
     assert retry.wall >= state["until"]
 
 
-def test_retry_after_over_the_cap_parks_the_host(sites: list[LoopbackSite], ledger: Ledger) -> None:
+def test_retry_after_over_the_cap_parks_the_host(sites: list[LoopbackServer],
+                                                 ledger: Ledger) -> None:
     """Retry-After above budgets.max_retry_after raises HostParked and sends nothing more."""
     site = sites[0]
     site.routes["/busy"] = (429, b"", {"Retry-After": "7200"})
@@ -146,12 +148,12 @@ def test_retry_after_over_the_cap_parks_the_host(sites: list[LoopbackSite], ledg
     assert err.value.until >= time.time() + 7000
     with pytest.raises(HostParked):
         fetcher.get_page(site.url("/other"))
-    assert site.paths() == ["/robots.txt", "/busy"]
+    assert site.targets() == ["/robots.txt", "/busy"]
     assert ledger.get_host(site.key)["parked_until"] >= time.time() + 7000
 
 
 def test_garbage_retry_after_falls_back_to_backoff_and_is_noted(
-        sites: list[LoopbackSite], ledger: Ledger) -> None:
+        sites: list[LoopbackServer], ledger: Ledger) -> None:
     """Retry-After '1.5' is not delay-seconds (RFC 9110 §10.2.3): ignored, noted, backed off."""
     site = sites[0]
     calls = {"n": 0}
@@ -170,7 +172,7 @@ def test_garbage_retry_after_falls_back_to_backoff_and_is_noted(
     assert "ignored" in rows[0]["error"]
 
 
-def test_every_attempt_is_a_fetches_row(sites: list[LoopbackSite], ledger: Ledger) -> None:
+def test_every_attempt_is_a_fetches_row(sites: list[LoopbackServer], ledger: Ledger) -> None:
     """A request that fails twice then succeeds leaves three rows with attempts 1, 2, 3."""
     site = sites[0]
     calls = {"n": 0}
@@ -188,7 +190,7 @@ def test_every_attempt_is_a_fetches_row(sites: list[LoopbackSite], ledger: Ledge
 
 
 def test_robots_503_means_no_request_beyond_robots_txt(
-        sites: list[LoopbackSite], ledger: Ledger) -> None:
+        sites: list[LoopbackServer], ledger: Ledger) -> None:
     """robots.txt 503 -> complete disallow (RFC 9309 §2.3.1.4), recorded as unreachable."""
     site = sites[2]
     site.routes["/robots.txt"] = (503, b"")
@@ -197,12 +199,12 @@ def test_robots_503_means_no_request_beyond_robots_txt(
         with pytest.raises(RobotsDenied) as err:
             fetcher.get_page(site.url(path))
         assert err.value.rule == "unreachable"
-    assert site.paths() == ["/robots.txt"]
+    assert site.targets() == ["/robots.txt"]
     refused = [r for r in fetches(ledger) if r["purpose"] != "robots"]
     assert {r["robots_verdict"] for r in refused} == {"unreachable"}
 
 
-def test_robots_404_allows_everything(sites: list[LoopbackSite]) -> None:
+def test_robots_404_allows_everything(sites: list[LoopbackServer]) -> None:
     """robots.txt answering 404 is "unavailable": any URL may be fetched (RFC 9309 §2.3.1.3)."""
     site = sites[0]
     site.routes["/robots.txt"] = (404, b"")
@@ -211,18 +213,18 @@ def test_robots_404_allows_everything(sites: list[LoopbackSite]) -> None:
 
 
 def test_disallowed_url_is_refused_and_recorded_with_rule(
-        sites: list[LoopbackSite], ledger: Ledger) -> None:
+        sites: list[LoopbackServer], ledger: Ledger) -> None:
     """A URL robots.txt disallows is never requested; the row names the matching rule."""
     site = sites[0]
     with pytest.raises(RobotsDenied):
         Fetcher(settings(), ledger).get_page(site.url("/private/secret.html"))
-    assert "/private/secret.html" not in site.paths()
+    assert "/private/secret.html" not in site.targets()
     row = fetches(ledger)[-1]
     assert (row["robots_verdict"], row["robots_rule"]) == ("disallowed", "Disallow: /private/")
 
 
 def test_product_token_selects_our_group_and_user_agent_names_contact(
-        sites: list[LoopbackSite]) -> None:
+        sites: list[LoopbackServer]) -> None:
     """Groups are matched by product token (RFC 9309 §2.2.1); the UA header carries the contact."""
     site = sites[0]
     site.routes["/robots.txt"] = (200, b"user-agent: fernbot\ndisallow: /\n\nuser-agent: *\n")
@@ -234,16 +236,16 @@ def test_product_token_selects_our_group_and_user_agent_names_contact(
 
 
 def test_redirect_to_disallowed_path_on_another_host_is_not_followed(
-        sites: list[LoopbackSite]) -> None:
+        sites: list[LoopbackServer]) -> None:
     """A redirect to a path another host's robots.txt disallows is not followed (RobotsDenied)."""
     a, b = sites[0], sites[1]
     a.routes["/go"] = (302, b"", {"Location": b.url("/private/img.png")})
     with pytest.raises(RobotsDenied):
         Fetcher(settings(), None).get_page(a.url("/go"))
-    assert b.paths() == ["/robots.txt"]
+    assert b.targets() == ["/robots.txt"]
 
 
-def test_redirect_to_unlisted_loopback_address_is_refused(sites: list[LoopbackSite]) -> None:
+def test_redirect_to_unlisted_loopback_address_is_refused(sites: list[LoopbackServer]) -> None:
     """A redirect to 127.0.0.9 (not in allow_addresses) is refused before any connection."""
     a = sites[0]
     a.routes["/hop"] = (302, b"", {"Location": "http://127.0.0.9:9/steal"})
@@ -251,7 +253,7 @@ def test_redirect_to_unlisted_loopback_address_is_refused(sites: list[LoopbackSi
         Fetcher(settings(), None).get_page(a.url("/hop"))
 
 
-def test_non_http_scheme_is_refused(sites: list[LoopbackSite]) -> None:
+def test_non_http_scheme_is_refused(sites: list[LoopbackServer]) -> None:
     """Only http and https are fetched; a redirect to file:// is refused."""
     a = sites[0]
     a.routes["/file"] = (302, b"", {"Location": "file:///etc/passwd"})
@@ -259,7 +261,7 @@ def test_non_http_scheme_is_refused(sites: list[LoopbackSite]) -> None:
         Fetcher(settings(), None).get_page(a.url("/file"))
 
 
-def test_redirects_are_followed_up_to_ten_hops(sites: list[LoopbackSite]) -> None:
+def test_redirects_are_followed_up_to_ten_hops(sites: list[LoopbackServer]) -> None:
     """Ten redirects are followed; the eleventh is refused (CONTRACT: max 10 hops)."""
     a = sites[0]
     for i in range(12):
@@ -273,7 +275,7 @@ def test_redirects_are_followed_up_to_ten_hops(sites: list[LoopbackSite]) -> Non
     assert err.value.reason == "redirect_blocked"
 
 
-def test_robots_redirects_up_to_five_are_followed(sites: list[LoopbackSite]) -> None:
+def test_robots_redirects_up_to_five_are_followed(sites: list[LoopbackServer]) -> None:
     """robots.txt reached through 5 redirects applies to the first authority (RFC 9309 §2.3.1.2)."""
     a, b = sites[0], sites[1]
     a.routes["/robots.txt"] = (301, b"", {"Location": b.url("/rb1")})
@@ -284,7 +286,7 @@ def test_robots_redirects_up_to_five_are_followed(sites: list[LoopbackSite]) -> 
         Fetcher(settings(), None).get_page(a.url("/no"))
 
 
-def test_robots_more_than_five_redirects_means_allow_all(sites: list[LoopbackSite]) -> None:
+def test_robots_more_than_five_redirects_means_allow_all(sites: list[LoopbackServer]) -> None:
     """Over 5 robots.txt redirects the file counts as unavailable: allow all (RFC 9309 §2.3.1.2)."""
     a = sites[0]
     a.routes["/robots.txt"] = (301, b"", {"Location": "/rb1"})
@@ -293,23 +295,23 @@ def test_robots_more_than_five_redirects_means_allow_all(sites: list[LoopbackSit
     a.routes["/rb8"] = (200, b"user-agent: *\ndisallow: /\n")
     a.routes["/no"] = (200, b"fetched")
     assert Fetcher(settings(), None).get_page(a.url("/no")).body == b"fetched"
-    assert "/rb6" not in a.paths()
+    assert "/rb6" not in a.targets()
 
 
 def test_robots_is_fetched_once_and_reused_from_the_ledger(
-        sites: list[LoopbackSite], ledger: Ledger) -> None:
+        sites: list[LoopbackServer], ledger: Ledger) -> None:
     """A second fetcher on the same ledger within 24 h reuses robots.txt (RFC 9309 §2.4)."""
     site = sites[0]
     site.routes["/x"] = (200, b"x")
     Fetcher(settings(), ledger).get_page(site.url("/x"))
     Fetcher(settings(), ledger).get_page(site.url("/x"))
-    assert site.paths().count("/robots.txt") == 1
+    assert site.targets().count("/robots.txt") == 1
     row = ledger.get_host(site.key)
     assert row["robots_status"] == 200 and row["robots_sha256"]
 
 
 def test_slow_drip_download_stops_at_the_deadline(
-        sites: list[LoopbackSite], tmp_path: Path) -> None:
+        sites: list[LoopbackServer], tmp_path: Path) -> None:
     """A server dripping a byte every 0.1 s is cut off at the overall deadline (libraries.md §6)."""
     site = sites[0]
 
@@ -334,7 +336,7 @@ def test_slow_drip_download_stops_at_the_deadline(
     assert list(tmp_path.iterdir()) == []
 
 
-def test_gzip_bomb_is_capped_on_decoded_bytes(sites: list[LoopbackSite], tmp_path: Path) -> None:
+def test_gzip_bomb_is_capped_on_decoded_bytes(sites: list[LoopbackServer], tmp_path: Path) -> None:
     """10 MB of zeros sent gzip-compressed (~10 KB) is stopped at a 1 MB decoded-bytes cap."""
     site = sites[0]
     bomb = gzip.compress(b"\0" * 10_000_000)
@@ -346,7 +348,7 @@ def test_gzip_bomb_is_capped_on_decoded_bytes(sites: list[LoopbackSite], tmp_pat
 
 
 def test_content_length_over_the_cap_is_rejected_before_the_body(
-        sites: list[LoopbackSite], tmp_path: Path) -> None:
+        sites: list[LoopbackServer], tmp_path: Path) -> None:
     """A declared 50 MB body over a 1 MB cap is refused from the header, without reading it."""
     site = sites[0]
 
@@ -371,7 +373,7 @@ def test_content_length_over_the_cap_is_rejected_before_the_body(
 
 
 def test_download_streams_to_temp_file_with_sha256(
-        sites: list[LoopbackSite], tmp_path: Path) -> None:
+        sites: list[LoopbackServer], tmp_path: Path) -> None:
     """The body lands in a temp file in dest_dir with its SHA-256 (FIPS 180-4 vector for "abc")."""
     site = sites[0]
     site.routes["/abc.png"] = (200, b"abc", {"Content-Type": "image/png", "ETag": '"v1"'})
@@ -382,7 +384,8 @@ def test_download_streams_to_temp_file_with_sha256(
     assert hashlib.sha256(got.path.read_bytes()).hexdigest() == got.sha256
 
 
-def test_conditional_download_304_costs_no_bytes(sites: list[LoopbackSite], tmp_path: Path) -> None:
+def test_conditional_download_304_costs_no_bytes(sites: list[LoopbackServer],
+                                                 tmp_path: Path) -> None:
     """An ETag sends If-None-Match; a 304 is success without a file (RFC 9110 §15.4.5)."""
     site = sites[0]
 
@@ -404,7 +407,7 @@ def test_conditional_download_304_costs_no_bytes(sites: list[LoopbackSite], tmp_
         "Tue, 15 Nov 1994 12:45:26 GMT")
 
 
-def test_failing_host_opens_the_circuit_breaker(sites: list[LoopbackSite]) -> None:
+def test_failing_host_opens_the_circuit_breaker(sites: list[LoopbackServer]) -> None:
     """After breaker_threshold failed requests the host is parked; other hosts carry on."""
     bad, good = sites[0], sites[1]
     bad.routes["/down"] = (500, b"")
@@ -417,13 +420,13 @@ def test_failing_host_opens_the_circuit_breaker(sites: list[LoopbackSite]) -> No
         fetcher.get_page(bad.url("/down"))
     with pytest.raises(HostParked):
         fetcher.get_page(bad.url("/down"))
-    assert bad.paths().count("/down") == 6  # 2 requests x 3 attempts, then nothing
+    assert bad.targets().count("/down") == 6  # 2 requests x 3 attempts, then nothing
     assert fetcher.get_page(good.url("/up")).body == b"up"
 
 
 def test_connection_refused_is_a_fetch_error_not_a_crash() -> None:
     """A host that refuses connections yields FetchError('connection') after retries."""
-    closed = LoopbackSite("127.0.0.1")
+    closed = LoopbackServer("127.0.0.1")
     url = closed.url("/x")
     closed.close()
     with pytest.raises(FetchError) as err:
@@ -435,7 +438,7 @@ SECRET = "fern-Sekr3t-9431"
 
 
 def test_secrets_never_reach_the_ledger_file_or_errors(
-        sites: list[LoopbackSite], tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+        sites: list[LoopbackServer], tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
     """Secret params/headers are REDACTED in rows and messages; SQLite file and WAL lack them."""
     site = sites[0]
     site.routes["/api"] = (200, b'{"ok": true}', {"Content-Type": "application/json"})
@@ -458,7 +461,7 @@ def test_secrets_never_reach_the_ledger_file_or_errors(
     assert b"REDACTED" in blob
 
 
-def test_page_exposes_json_text_and_link_header(sites: list[LoopbackSite]) -> None:
+def test_page_exposes_json_text_and_link_header(sites: list[LoopbackServer]) -> None:
     """Page gives the decoded text, parsed JSON and RFC 8288 Link relations."""
     site = sites[0]
     site.routes["/list"] = (200, '{"t": "Fernhollow \u00e9"}'.encode(),

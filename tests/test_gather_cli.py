@@ -11,7 +11,7 @@ import time
 from pathlib import Path
 
 import pytest
-from probes import files_count
+from support.probes import files_count
 from typer.testing import CliRunner
 
 from collector.cli import app

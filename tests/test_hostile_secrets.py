@@ -9,9 +9,11 @@ import json
 from pathlib import Path
 
 import pytest
-from hostile_server import Ctx, Site, noise_image, run_gather, send
 
 from collector.collection import init_collection
+from demo_site.hostile import Ctx, case_server, noise_image
+from demo_site.hostile_run import run_gather
+from demo_site.loopback import LoopbackServer, send
 
 KEY = "k3y-Sup3rSecret-4711"
 TOKEN = "t0ken-AlsoSecret-0815"
@@ -20,7 +22,7 @@ SECRETS = [KEY, TOKEN, COOKIE]
 ENV = {"HOSTILE_KEY": KEY, "HOSTILE_TOKEN": TOKEN, "HOSTILE_COOKIE": COOKIE}
 
 
-def leaky_site() -> Site:
+def leaky_site() -> LoopbackServer:
     """An API that echoes the caller's key in redirects, error texts and (same-named) params."""
     def api(h, ctx: Ctx) -> None:
         base = ctx.sites["leaky"]
@@ -43,7 +45,7 @@ def leaky_site() -> Site:
                                                          "Set-Cookie": f"s={COOKIE}"})
 
     sites: dict[str, str] = {"outside": "/nonexistent"}
-    site = Site(Ctx("leaky", sites), routes={"/api": api, "/bounce": bounce,
+    site = case_server(Ctx("leaky", sites), routes={"/api": api, "/bounce": bounce,
                                              "/broken": broken, "/img": image})
     sites["leaky"] = site.base
     return site
@@ -88,7 +90,7 @@ def test_secrets_never_reach_the_ledger_logs_exports_or_messages(
         col = init_collection(tmp_path / "col", contact="x@example.org")
         col.recipe_path.write_text(recipe.format(base=site.base))
         stats = run_gather(col.root, "--log-json", env=ENV)
-        hits = list(site.hits)
+        hits = site.targets()
     finally:
         site.close()
     assert any(f"key={KEY}" in h for h in hits)  # the key was really sent
@@ -159,7 +161,7 @@ def test_an_api_key_header_is_secret_by_its_name(tmp_path: Path) -> None:
         send(h, 200, noise_image("keyed"), {"Content-Type": "image/png"})
 
     sites: dict[str, str] = {"outside": "/nonexistent"}
-    site = Site(Ctx("keyed", sites), routes={"/api": api, "/img": image})
+    site = case_server(Ctx("keyed", sites), routes={"/api": api, "/img": image})
     sites["keyed"] = site.base
     recipe = (RECIPE.format(base=site.base)
               .replace('params = { key = "${HOSTILE_KEY}" }\nsecret_params = ["key"]\n', "")

@@ -12,9 +12,8 @@ import sys
 import time
 from pathlib import Path
 
-from hostile_server import CASES, HostileArchive
-
 from collector.collection import init_collection
+from demo_site.hostile import CASES, HostileArchive
 
 SLOW = [c for c in CASES if c.name == "slow-drip"]
 

@@ -38,6 +38,7 @@ def test_readme_shows_one_recipe_per_source_kind() -> None:
 def test_command_reference_lists_every_command() -> None:
     """Every CLI command appears in the README's command reference table."""
     names = [c.name or c.callback.__name__ for c in app.registered_commands]
+    assert {"init", "gather", "trace"} <= set(names)
     for name in names:
         assert f"| `collector {name}" in README, name
 
@@ -46,7 +47,9 @@ def test_ledger_schema_section_documents_every_table_and_column(tmp_path: Path) 
     """Each table and column of a new ledger is named in the README's schema table."""
     section = README[README.index("## The ledger schema"):README.index("## Cautions")]
     with Ledger.create(tmp_path / "l.sqlite") as ledger:
-        for table in ledger.db.table_names():
+        tables = ledger.db.table_names()
+        assert {"items", "files", "fetches"} <= set(tables)
+        for table in tables:
             assert f"| `{table}` |" in section, table
             for column in ledger.db[table].columns:
                 assert f"`{column.name}`" in section, f"{table}.{column.name}"

@@ -10,13 +10,12 @@ from pathlib import Path
 from typing import Any
 
 import pytest
-from test_sources_helpers import RequestsFetcher, collect
+from support.fetcher import FakeFetcher, collect
 from test_splitter import iou
 
-demo_site = pytest.importorskip("demo_site", reason="demo_site has not been merged yet")
-from collector.fetcher import Fetcher, FetchSettings  # noqa: E402
-from demo_site import DemoServer, generate  # noqa: E402
-from demo_site.recipes import render  # noqa: E402
+from collector.fetcher import Fetcher, FetchSettings
+from demo_site import DemoServer, generate
+from demo_site.recipes import render
 
 
 @pytest.fixture(scope="module")
@@ -52,7 +51,7 @@ def test_web_source_yields_exactly_the_manifest_items(
     """A web source yields each manifest item once, with the manifest's image URL."""
     server, folder = demo
     source = demo_sources(server, folder)[name]
-    cands, notes = collect(source, RequestsFetcher(), folder)
+    cands, notes = collect(source, FakeFetcher(), folder)
     want = expected(server, name)
     got = {c.source_key: c.image_url for c in cands}
     assert len(cands) == len(got)  # no duplicates
@@ -82,6 +81,7 @@ def test_scanner_beds_split_into_the_manifest_boxes(demo: tuple[DemoServer, Path
         if c.parent_key:
             by_scan.setdefault(c.parent_key, []).append(c)
     note_kinds = {(n.kind, n.url) for n in notes}
+    assert server.manifest["scans"] and by_scan
     for scan in server.manifest["scans"]:
         key = Path(scan["file"]).name
         crops = by_scan.get(key, [])

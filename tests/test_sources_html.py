@@ -7,15 +7,10 @@ from collections.abc import Iterator
 
 import pytest
 from bs4 import BeautifulSoup
-from test_sources_helpers import (
-    FakeFetcher,
-    LoopbackServer,
-    RequestsFetcher,
-    collect,
-    html_answer,
-    serve,
-)
+from support.fetcher import FakeFetcher, collect
+from support.server import LoopbackServer, html_answer, on_query
 
+from collector.errors import FetchError
 from sources.html_pages import SrcCandidate, image_of, largest, page_base, parse_srcset
 
 CC_BY = "https://creativecommons.org/licenses/by/4.0/"
@@ -52,8 +47,9 @@ PAGE_2 = """<html><head><base href="/archive/">
 @pytest.fixture
 def gallery() -> Iterator[LoopbackServer]:
     """A two-page gallery whose second page links back to the first."""
-    with serve() as srv:
-        srv.route("/gallery/", lambda q: html_answer(PAGE_2 if q.get("page") == "2" else PAGE_1))
+    with LoopbackServer() as srv:
+        srv.route("/gallery/", on_query(
+            lambda q: html_answer(PAGE_2 if q.get("page") == "2" else PAGE_1)))
         yield srv
 
 
@@ -71,7 +67,7 @@ def recipe(base: str, **extra: object) -> dict[str, object]:
 def test_listing_pages_yield_items_with_resolved_urls_and_licences(
         gallery: LoopbackServer) -> None:
     """Both pages are read; links/images resolve against page or base; rel=license is found."""
-    cands, notes = collect(recipe(gallery.base), RequestsFetcher())
+    cands, notes = collect(recipe(gallery.base), FakeFetcher())
     b = gallery.base
     assert [c.source_key for c in cands] == [
         f"{b}/gallery/item/1.html", f"{b}/gallery/item/2.html", f"{b}/gallery/item/3.html",
@@ -92,13 +88,13 @@ def test_listing_pages_yield_items_with_resolved_urls_and_licences(
     # no ".by" at all, which is reported too.
     assert sorted(n.kind for n in notes) == ["loop", "selector_empty"]
     assert next(n for n in notes if n.kind == "loop").url == f"{b}/gallery/"
-    assert gallery.log == ["/gallery/", "/gallery/?page=2"]
+    assert gallery.targets() == ["/gallery/", "/gallery/?page=2"]
 
 
 def test_selector_matching_nothing_is_reported_once_per_run(gallery: LoopbackServer) -> None:
     """A wrong selector gives one selector_empty note naming it and the page, not one per page."""
     cands, notes = collect(recipe(gallery.base, select={
-        "item": "li.tile", "image": "img", "creator": ".author"}), RequestsFetcher())
+        "item": "li.tile", "image": "img", "creator": ".author"}), FakeFetcher())
     assert len(cands) == 5
     empty = [n for n in notes if n.kind == "selector_empty"]
     assert len(empty) == 1
@@ -128,8 +124,8 @@ def test_detail_pages_override_listing_values(gallery: LoopbackServer) -> None:
     """Detail pages are fetched with purpose "detail" and their image/licence/title win."""
     for n in (1, 2, 3):
         gallery.route(f"/gallery/item/{n}.html",
-                      lambda q, n=n: html_answer(DETAIL.replace("{n}", str(n))))
-    fetcher = RequestsFetcher()
+                      html_answer(DETAIL.replace("{n}", str(n))))
+    fetcher = FakeFetcher()
     table = recipe(gallery.base, detail={"image": "figure img.full", "title": "h1"},
                    start_urls=[f"{gallery.base}/gallery/"], max_pages=1)
     cands, notes = collect(table, fetcher)
@@ -138,6 +134,25 @@ def test_detail_pages_override_listing_values(gallery: LoopbackServer) -> None:
     assert cands[0].licence_url == CC0  # the detail page's rel=license replaces the listing's
     assert [c.purpose for c in fetcher.calls] == ["listing", "detail", "detail", "detail"]
     assert [n.kind for n in notes] == ["max_pages"]
+
+
+def test_missing_detail_pages_give_one_fetch_failed_note(gallery: LoopbackServer) -> None:
+    """Detail pages answering 404 reach the adapter as FetchError http_404 (as from
+    collector.fetcher): one fetch_failed note, and the items keep their listing values."""
+    table = recipe(gallery.base, detail={"image": "figure img.full"}, max_pages=1)
+    cands, notes = collect(table, FakeFetcher())
+    assert [c.image_url for c in cands] == [
+        f"{gallery.base}/gallery/large/1.jpg", f"{gallery.base}/gallery/big/2.jpg",
+        f"{gallery.base}/gallery/full/3.png"]
+    assert sorted(n.kind for n in notes) == ["fetch_failed", "max_pages"]
+    assert "http_404" in next(n for n in notes if n.kind == "fetch_failed").message
+
+
+def test_missing_listing_page_raises_for_the_orchestrator(gallery: LoopbackServer) -> None:
+    """A 404 start page is raised on as FetchError http_404 for the orchestrator to record."""
+    with pytest.raises(FetchError) as err:
+        collect(recipe(gallery.base, start_urls=[f"{gallery.base}/gone/"]), FakeFetcher())
+    assert err.value.reason == "http_404" and err.value.status == 404
 
 
 def test_srcset_parsing_follows_the_html_candidate_rules() -> None:
@@ -169,12 +184,12 @@ def test_picture_element_picks_the_largest_source() -> None:
 
 def test_licence_selector_text_wins_over_rel_license_text(gallery: LoopbackServer) -> None:
     """With a licence selector, its text is licence_raw and rel=license still gives the URL."""
-    gallery.route("/lic", lambda q: html_answer(
+    gallery.route("/lic", html_answer(
         '<div class=t><img src=a.jpg><span class=lic>Attribution 4.0</span>'
         f'<a rel=license href="{CC_BY}">see licence</a></div>'))
     table = {"name": "l", "kind": "html", "start_urls": [f"{gallery.base}/lic"],
              "select": {"item": "div.t", "licence": ".lic"}}
-    cands, notes = collect(table, RequestsFetcher())
+    cands, notes = collect(table, FakeFetcher())
     assert notes == []
     assert cands[0].licence_raw == "Attribution 4.0" and cands[0].licence_url == CC_BY
     assert cands[0].source_key == f"{gallery.base}/a.jpg"  # no link: the image URL is the key

@@ -7,24 +7,18 @@ from collections.abc import Iterator
 from typing import Any
 
 import pytest
-from test_sources_helpers import (
-    FakeFetcher,
-    LoopbackServer,
-    RequestsFetcher,
-    collect,
-    html_answer,
-    json_answer,
-    serve,
-)
+from support.fetcher import FakeFetcher, collect
+from support.server import Answer, LoopbackServer, html_answer, json_answer, on_query
 
-from collector.errors import RobotsDenied
+from collector.errors import FetchError, RobotsDenied
+from collector.fetcher import Fetcher, FetchSettings
 from sources.json_api import FieldMap, link_target, map_fields, pick_candidate
 
 
 @pytest.fixture
 def srv() -> Iterator[LoopbackServer]:
     """A loopback HTTP server for one test."""
-    with serve() as server:
+    with LoopbackServer() as server:
         yield server
 
 
@@ -48,7 +42,7 @@ A_RECORDS = [
 ]
 
 
-def api_a(query: dict[str, str]) -> tuple[int, dict[str, str], bytes]:
+def api_a(query: dict[str, str]) -> Answer:
     """Cursor API: 3 records per page, cursor is the index of the next record."""
     if query.get("key") != "s3cret":
         return json_answer({"error": "missing key"}, status=403)
@@ -76,8 +70,8 @@ def test_nested_items_with_cursor_pagination_are_all_found(
         srv: LoopbackServer, monkeypatch: pytest.MonkeyPatch) -> None:
     """A cursor API with nested items yields every record once, with mapped fields."""
     monkeypatch.setenv("FERN_TEST_KEY", "s3cret")
-    srv.route("/api/a/records", api_a)
-    fetcher = RequestsFetcher()
+    srv.route("/api/a/records", on_query(api_a))
+    fetcher = FakeFetcher()
     cands, notes = collect(recipe_a(srv.base), fetcher)
     assert notes == []
     assert [c.source_key for c in cands] == [r["uid"] for r in A_RECORDS]
@@ -88,8 +82,8 @@ def test_nested_items_with_cursor_pagination_are_all_found(
     # Relative URLs are resolved against the page URL (RFC 3986 §5.2).
     assert first.image_url == f"{srv.base}/files/1-l.jpg"
     assert first.metadata["item"]["extra"] == {"habitat": "shaded bank"}
-    assert len(srv.log) == 3  # pages of 3, 3, 1
-    assert all("after=" in p for p in srv.log[1:])
+    assert len(srv.targets()) == 3  # pages of 3, 3, 1
+    assert all("after=" in p for p in srv.targets()[1:])
     assert all(c.secret_params == ("key",) for c in fetcher.calls)
 
 
@@ -97,12 +91,12 @@ def test_missing_environment_secret_gives_a_config_note(
         srv: LoopbackServer, monkeypatch: pytest.MonkeyPatch) -> None:
     """A ${NAME} reference to an unset variable is reported and nothing is requested."""
     monkeypatch.delenv("FERN_TEST_KEY", raising=False)
-    srv.route("/api/a/records", api_a)
-    cands, notes = collect(recipe_a(srv.base), RequestsFetcher())
+    srv.route("/api/a/records", on_query(api_a))
+    cands, notes = collect(recipe_a(srv.base), FakeFetcher())
     assert cands == []
     assert [n.kind for n in notes] == ["config"]
     assert "FERN_TEST_KEY" in notes[0].message
-    assert srv.log == []
+    assert srv.targets() == []
 
 
 # --- API B: page numbers with a total, relative image URLs, detail requests ------------------
@@ -111,7 +105,7 @@ B_ITEMS = [{"id": n, "name": f"Moss {n}", "img": f"../img/b{n}.jpg",
             **({"lic": "CC0-1.0"} if n % 2 else {})} for n in range(1, 11)]
 
 
-def api_b(query: dict[str, str]) -> tuple[int, dict[str, str], bytes]:
+def api_b(query: dict[str, str]) -> Answer:
     """Page-number API with a total; pages past the end repeat the last page (a trap)."""
     per = int(query.get("per_page", "4"))
     page = min(int(query.get("page", "1")), 3)
@@ -119,7 +113,7 @@ def api_b(query: dict[str, str]) -> tuple[int, dict[str, str], bytes]:
                         "results": B_ITEMS[(page - 1) * per: page * per]})
 
 
-def api_b_detail(query: dict[str, str], n: int) -> tuple[int, dict[str, str], bytes]:
+def api_b_detail(query: dict[str, str], n: int) -> Answer:
     """Detail answer with the licence the listing lacks."""
     return json_answer({"licence": {"name": "CC-BY-SA-4.0"}, "files": {"original": f"/o/b{n}.tif"}})
 
@@ -127,9 +121,9 @@ def api_b_detail(query: dict[str, str], n: int) -> tuple[int, dict[str, str], by
 def test_page_numbers_stop_on_total_and_fetch_details_only_when_missing(
         srv: LoopbackServer) -> None:
     """Page-number pagination stops at total; details are requested only for items lacking them."""
-    srv.route("/api/b/list/items", api_b)
+    srv.route("/api/b/list/items", on_query(api_b))
     for n in range(1, 11):
-        srv.route(f"/api/b/item/{n}", lambda q, n=n: api_b_detail(q, n))
+        srv.route(f"/api/b/item/{n}", on_query(lambda q, n=n: api_b_detail(q, n)))
     recipe = {
         "name": "api-b", "kind": "json_api", "url": f"{srv.base}/api/b/list/items",
         "params": {"per_page": "4"},
@@ -139,14 +133,14 @@ def test_page_numbers_stop_on_total_and_fetch_details_only_when_missing(
         "detail": {"url": f"{srv.base}/api/b/item/{{id}}",
                    "fields": {"licence": "licence.name"}},
     }
-    cands, notes = collect(recipe, RequestsFetcher())
+    cands, notes = collect(recipe, FakeFetcher())
     assert notes == []
     assert [c.source_key for c in cands] == [str(n) for n in range(1, 11)]
     assert cands[0].image_url == f"{srv.base}/api/b/img/b1.jpg"
     assert cands[0].licence_raw == "CC0-1.0"  # odd ids: from the listing
     assert cands[1].licence_raw == "CC-BY-SA-4.0"  # even ids: merged from the detail answer
     assert cands[1].image_url == f"{srv.base}/api/b/img/b2.jpg"  # not mapped in detail.fields
-    listing = [p for p in srv.log if p.startswith("/api/b/list")]
+    listing = [p for p in srv.targets() if p.startswith("/api/b/list")]
     assert len(listing) == 3  # 4 + 4 + 2 = total 10, no fourth page
     details = sorted(p for p in srv.paths() if p.startswith("/api/b/item/"))
     assert details == sorted(f"/api/b/item/{n}" for n in range(2, 11, 2))
@@ -165,7 +159,7 @@ C_PAGES = {
 }
 
 
-def api_c(query: dict[str, str], base: str) -> tuple[int, dict[str, str], bytes]:
+def api_c(query: dict[str, str], base: str) -> Answer:
     """A list body; the next page is only in the Link header (RFC 8288)."""
     page = query.get("p", "1")
     # A relative target, resolved against the request URL (RFC 8288 §3.1).
@@ -176,7 +170,7 @@ def api_c(query: dict[str, str], base: str) -> tuple[int, dict[str, str], bytes]
 def test_link_header_pagination_and_label_pick_with_largest_fallback(
         srv: LoopbackServer) -> None:
     """rel="next" in a Link header is followed; pick label:original falls back to largest area."""
-    srv.route("/api/c/photos", lambda q: api_c(q, srv.base))
+    srv.route("/api/c/photos", on_query(lambda q: api_c(q, srv.base)))
     recipe = {
         "name": "api-c", "kind": "json_api", "url": f"{srv.base}/api/c/photos",
         "pagination": {"style": "link_header"},
@@ -184,14 +178,14 @@ def test_link_header_pagination_and_label_pick_with_largest_fallback(
                    "candidate_url": "src", "candidate_width": "w", "candidate_height": "h",
                    "candidate_label": "label", "pick": "label:original"},
     }
-    cands, notes = collect(recipe, RequestsFetcher())
+    cands, notes = collect(recipe, FakeFetcher())
     assert notes == []
     assert [c.image_url for c in cands] == [
         f"{srv.base}/api/c/o/c1.jpg",
         f"{srv.base}/api/c/h/c2.jpg",  # no "original": largest by width*height (800000 > 360000)
         f"{srv.base}/abs/c3.png",  # the label wins even though "big" is larger
     ]
-    assert srv.log == ["/api/c/photos", "/api/c/photos?p=2"]
+    assert srv.targets() == ["/api/c/photos", "/api/c/photos?p=2"]
 
 
 # --- Robustness --------------------------------------------------------------------------
@@ -208,18 +202,18 @@ def simple_recipe(url: str, **pagination: Any) -> dict[str, Any]:
 
 def test_malformed_json_gives_bad_json_note_and_stops(srv: LoopbackServer) -> None:
     """A truncated JSON body is reported as bad_json and the source stops."""
-    srv.route("/bad", lambda q: (200, {"Content-Type": "application/json"}, b'{"items": [{"id": 1'))
-    cands, notes = collect(simple_recipe(f"{srv.base}/bad", style="page"), RequestsFetcher())
+    srv.route("/bad", (200, b'{"items": [{"id": 1', {"Content-Type": "application/json"}))
+    cands, notes = collect(simple_recipe(f"{srv.base}/bad", style="page"), FakeFetcher())
     assert cands == []
     assert [n.kind for n in notes] == ["bad_json"]
     assert "malformed JSON" in notes[0].message
-    assert len(srv.log) == 1
+    assert len(srv.targets()) == 1
 
 
 def test_html_error_page_instead_of_json_gives_bad_json_note(srv: LoopbackServer) -> None:
     """An HTML page where JSON was expected is reported as not JSON, naming the content type."""
-    srv.route("/html", lambda q: html_answer("<!DOCTYPE html><h1>Maintenance</h1>"))
-    cands, notes = collect(simple_recipe(f"{srv.base}/html"), RequestsFetcher())
+    srv.route("/html", html_answer("<!DOCTYPE html><h1>Maintenance</h1>"))
+    cands, notes = collect(simple_recipe(f"{srv.base}/html"), FakeFetcher())
     assert cands == []
     assert notes[0].kind == "bad_json"
     assert "looks like HTML" in notes[0].message and "text/html" in notes[0].message
@@ -227,8 +221,8 @@ def test_html_error_page_instead_of_json_gives_bad_json_note(srv: LoopbackServer
 
 def test_items_path_giving_an_object_is_reported_as_wrong_shape(srv: LoopbackServer) -> None:
     """fields.items pointing at an object instead of a list gives a wrong_shape note."""
-    srv.route("/obj", lambda q: json_answer({"items": {"id": 1, "u": "/a.jpg"}}))
-    cands, notes = collect(simple_recipe(f"{srv.base}/obj"), RequestsFetcher())
+    srv.route("/obj", json_answer({"items": {"id": 1, "u": "/a.jpg"}}))
+    cands, notes = collect(simple_recipe(f"{srv.base}/obj"), FakeFetcher())
     assert cands == []
     assert [n.kind for n in notes] == ["wrong_shape"]
     assert '"items"' in notes[0].message and "an object" in notes[0].message
@@ -236,53 +230,78 @@ def test_items_path_giving_an_object_is_reported_as_wrong_shape(srv: LoopbackSer
 
 def test_repeating_cursor_is_a_loop_and_stops(srv: LoopbackServer) -> None:
     """A cursor that comes back again stops the source with a loop note."""
-    def api(q: dict[str, str]) -> tuple[int, dict[str, str], bytes]:
+    def api(q: dict[str, str]) -> Answer:
         n, nxt = {"": (0, "a"), "a": (1, "b"), "b": (2, "a")}[q.get("c", "")]
         return json_answer({"items": [{"id": n, "u": f"/{n}.jpg"}], "next": nxt})
-    srv.route("/cur", api)
+    srv.route("/cur", on_query(api))
     cands, notes = collect(simple_recipe(f"{srv.base}/cur", style="cursor", cursor_path="next",
-                                         cursor_param="c"), RequestsFetcher())
+                                         cursor_param="c"), FakeFetcher())
     assert [c.source_key for c in cands] == ["0", "1", "2"]
     assert [n.kind for n in notes] == ["loop"]
     assert '"a"' in notes[0].message
-    assert len(srv.log) == 3
+    assert len(srv.targets()) == 3
 
 
 def test_next_url_pointing_back_is_a_loop_and_stops(srv: LoopbackServer) -> None:
     """A next URL already visited stops the source with a loop note."""
-    srv.route("/n1", lambda q: json_answer({"items": [{"id": 1, "u": "a"}], "next": "/n2"}))
-    srv.route("/n2", lambda q: json_answer({"items": [{"id": 2, "u": "b"}], "next": "n1"}))
+    srv.route("/n1", json_answer({"items": [{"id": 1, "u": "a"}], "next": "/n2"}))
+    srv.route("/n2", json_answer({"items": [{"id": 2, "u": "b"}], "next": "n1"}))
     cands, notes = collect(simple_recipe(f"{srv.base}/n1", style="next_url", next_path="next"),
-                           RequestsFetcher())
+                           FakeFetcher())
     assert [c.source_key for c in cands] == ["1", "2"]
     assert [n.kind for n in notes] == ["loop"]
-    assert srv.log == ["/n1", "/n2"]
+    assert srv.targets() == ["/n1", "/n2"]
 
 
 def test_api_ignoring_the_page_parameter_is_detected_as_a_loop(srv: LoopbackServer) -> None:
     """A page-number API that returns the same items for every page stops after one repeat."""
-    srv.route("/same", lambda q: json_answer({"items": [{"id": 1, "u": "a"}, {"id": 2, "u": "b"}]}))
-    cands, notes = collect(simple_recipe(f"{srv.base}/same", style="page"), RequestsFetcher())
+    srv.route("/same", json_answer({"items": [{"id": 1, "u": "a"}, {"id": 2, "u": "b"}]}))
+    cands, notes = collect(simple_recipe(f"{srv.base}/same", style="page"), FakeFetcher())
     assert len(cands) == 2
     assert [n.kind for n in notes] == ["loop"]
-    assert len(srv.log) == 2
+    assert len(srv.targets()) == 2
 
 
 def test_max_pages_is_enforced_on_endless_pagination(srv: LoopbackServer) -> None:
     """An API that always has a new cursor is read for max_pages pages only, with a note."""
-    srv.route("/endless", lambda q: json_answer(
-        {"items": [{"id": q.get("c", "0"), "u": "x"}], "next": str(int(q.get("c", "0")) + 1)}))
+    srv.route("/endless", on_query(lambda q: json_answer(
+        {"items": [{"id": q.get("c", "0"), "u": "x"}], "next": str(int(q.get("c", "0")) + 1)})))
     recipe = simple_recipe(f"{srv.base}/endless", style="cursor", cursor_path="next",
                            cursor_param="c", max_pages=5)
-    cands, notes = collect(recipe, RequestsFetcher())
-    assert len(cands) == 5 and len(srv.log) == 5
+    cands, notes = collect(recipe, FakeFetcher())
+    assert len(cands) == 5 and len(srv.targets()) == 5
     assert [n.kind for n in notes] == ["max_pages"]
 
 
-def test_http_error_on_listing_gives_note(srv: LoopbackServer) -> None:
-    """A 404 listing answer is reported and the source stops."""
-    cands, notes = collect(simple_recipe(f"{srv.base}/nowhere"), RequestsFetcher())
-    assert cands == [] and notes[0].kind == "http_error" and "404" in notes[0].message
+def test_http_error_on_listing_raises_for_the_orchestrator(srv: LoopbackServer) -> None:
+    """A 404 listing answer reaches the adapter as FetchError http_404 (the fetcher raises on
+    non-2xx) and is raised on for the orchestrator to record; the source stops."""
+    with pytest.raises(FetchError) as err:
+        collect(simple_recipe(f"{srv.base}/nowhere"), FakeFetcher())
+    assert err.value.reason == "http_404" and err.value.status == 404
+    assert "404" in str(err.value)
+    assert srv.targets() == ["/nowhere"]
+
+
+def test_http_error_on_detail_through_the_real_fetcher_gives_one_note(
+        srv: LoopbackServer) -> None:
+    """Through collector.fetcher, detail answers of 404 give one fetch_failed note naming
+    http_404 and the items keep their listing values."""
+    srv.route("/robots.txt", (200, b"User-agent: *\nAllow: /\n", {"Content-Type": "text/plain"}))
+    srv.route("/list", json_answer({"items": [{"id": n, "u": f"/{n}.jpg"} for n in (1, 2)]}))
+    recipe = simple_recipe(f"{srv.base}/list")
+    recipe["detail"] = {"url": f"{srv.base}/item/{{id}}", "fields": {"licence": "lic"}}
+    fetcher = Fetcher(FetchSettings.from_recipe({
+        "contact": "tests@example.org", "budgets": {"min_interval": 0.0, "max_attempts": 1},
+        "network": {"allow_addresses": ["127.0.0.1"]}}), None)
+    try:
+        cands, notes = collect(recipe, fetcher)
+    finally:
+        fetcher.close()
+    assert [c.image_url for c in cands] == [f"{srv.base}/{n}.jpg" for n in (1, 2)]
+    assert [n.kind for n in notes] == ["fetch_failed"]
+    assert "http_404" in notes[0].message
+    assert srv.paths() == ["/robots.txt", "/list", "/item/1", "/item/2"]
 
 
 # --- Pure logic with the in-memory fetcher --------------------------------------------------

@@ -9,7 +9,7 @@ from pathlib import Path
 
 import numpy as np
 from PIL import Image
-from test_sources_helpers import collect
+from support.fetcher import collect
 from test_splitter import _item, add_noise, iou, make_bed, place
 
 from sources.scans import glob_regex
@@ -94,6 +94,7 @@ def test_padding_grows_crop_boxes(tmp_path: Path) -> None:
     bed.image.save(tmp_path / "bed.png")
     tight, _ = collect(scans_source(str(tmp_path), split={"padding": 0}), None, tmp_path)
     padded, _ = collect(scans_source(str(tmp_path), split={"padding": 10}), None, tmp_path)
+    assert len(tight) == len(padded) == 1 + 4  # the scan, then its four crops
     for a, b in zip(tight[1:], padded[1:], strict=True):
         assert a.crop_box is not None and b.crop_box is not None
         assert (b.crop_box[0], b.crop_box[1]) == (a.crop_box[0] - 10, a.crop_box[1] - 10)

@@ -8,31 +8,31 @@ must still be stored. Listing cases are sources of their own. Two helper sites e
 ``127.0.0.9``, an address the recipe does not allow: it counts requests so that a test can
 prove the guard kept every connection away from it. No request ever leaves loopback.
 
-Used by ``tests/test_hostile.py`` and ``bench/hostile.py`` (one table for both).
+Used by ``tests/test_hostile.py`` and ``bench/hostile.py`` (one table for both); running a
+gather over it and judging the ledger is ``demo_site.hostile_run``. Servers are
+``demo_site.loopback.LoopbackServer``.
 """
 
 from __future__ import annotations
 
 import io
 import json
-import os
 import random
 import select
 import socket
 import struct
-import subprocess
-import sys
-import threading
 import time
 import zlib
 from collections.abc import Callable
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from functools import cache
-from http.server import BaseHTTPRequestHandler, ThreadingHTTPServer
+from http.server import BaseHTTPRequestHandler
 from pathlib import Path
 from typing import Any
 
 from PIL import Image
+
+from demo_site.loopback import LoopbackServer, send
 
 FORBIDDEN_HOST = "127.0.0.9"  # loopback, but not in the recipe's allow_addresses
 H = BaseHTTPRequestHandler
@@ -123,19 +123,6 @@ def jpeg_xmp_bomb(seed: str) -> bytes:
 
 
 # --- response helpers ----------------------------------------------------------------------
-def send(h: H, status: int, body: bytes = b"", headers: dict[str, str] | None = None,
-         length: int | None = None) -> None:
-    """A response; ``length`` overrides the Content-Length header (it may lie)."""
-    h.send_response(status)
-    for k, v in (headers or {}).items():
-        h.send_header(k, v)
-    h.send_header("Content-Length", str(len(body) if length is None else length))
-    h.end_headers()
-    if body:
-        h.wfile.write(body)
-        h.wfile.flush()
-
-
 def hold_until_client_leaves(h: H, limit: float = 30.0) -> None:
     """Send nothing more; return when the client closes the connection (or after limit s)."""
     h.close_connection = True
@@ -504,59 +491,23 @@ class Ctx:
         return template.format(**self.sites, self=self.sites.get(self.name, ""))
 
 
-class _Server(ThreadingHTTPServer):
-    daemon_threads = True
-    allow_reuse_address = True
-
-    def handle_error(self, request: Any, client_address: Any) -> None:
-        pass  # clients hanging up on hostile answers is the point
+DEFAULT_ROBOTS = (200, b"User-agent: *\nAllow: /\n", {"Content-Type": "text/plain"})
 
 
-class Site:
-    """One HTTP server: routes by path prefix; counts requests."""
+def case_server(ctx: Ctx, host: str = "127.0.0.1",
+                handler: Callable[[H, Ctx], None] | None = None,
+                robots: Callable[[H, Ctx], None] | None = None,
+                routes: dict[str, Callable[[H, Ctx], None]] | None = None) -> LoopbackServer:
+    """One loopback server: robots.txt (allow all unless given), ``routes`` by path prefix,
+    ``handler`` for everything else; its ``hits`` log every request."""
+    def bind(route: Callable[[H, Ctx], None]) -> Callable[[H], None]:
+        return lambda h: route(h, ctx)
 
-    def __init__(self, ctx: Ctx, host: str = "127.0.0.1",
-                 handler: Callable[[H, Ctx], None] | None = None,
-                 robots: Callable[[H, Ctx], None] | None = None,
-                 routes: dict[str, Callable[[H, Ctx], None]] | None = None) -> None:
-        self.ctx, self.hits = ctx, []
-        site = self
-
-        class _H(BaseHTTPRequestHandler):
-            protocol_version = "HTTP/1.1"
-
-            def do_GET(self) -> None:
-                site.hits.append(self.path)
-                path = self.path.split("?", 1)[0]
-                if path == "/robots.txt":
-                    if robots is not None:
-                        robots(self, site.ctx)
-                    else:
-                        send(self, 200, b"User-agent: *\nAllow: /\n",
-                             {"Content-Type": "text/plain"})
-                    return
-                for prefix, route in (routes or {}).items():
-                    if path.startswith(prefix):
-                        route(self, site.ctx)
-                        return
-                if handler is not None:
-                    handler(self, site.ctx)
-                else:
-                    send(self, 404, b"not here")
-
-            def log_message(self, *args: object) -> None:
-                pass
-
-        self.server = _Server((host, 0), _H)
-        self.base = f"http://{host}:{self.server.server_address[1]}"
-        self.thread = threading.Thread(target=self.server.serve_forever, args=(0.05,),
-                                       daemon=True)
-        self.thread.start()
-
-    def close(self) -> None:
-        """Stop serving."""
-        self.server.shutdown()
-        self.server.server_close()
+    server = LoopbackServer(host)
+    server.route("/robots.txt", DEFAULT_ROBOTS if robots is None else bind(robots))
+    server.prefixes.update({prefix: bind(r) for prefix, r in (routes or {}).items()})
+    server.fallback = None if handler is None else bind(handler)
+    return server
 
 
 def _good(name: str) -> Callable[[H, Ctx], None]:
@@ -570,25 +521,25 @@ class HostileArchive:
                  drip_interval: float = 1.0) -> None:
         self.cases = list(CASES if cases is None else cases)
         self.sites_base: dict[str, str] = {"outside": str(outside or "/nonexistent")}
-        self.sites: dict[str, Site] = {}
+        self.sites: dict[str, LoopbackServer] = {}
 
         def ctx(name: str) -> Ctx:
             return Ctx(name, self.sites_base, drip_interval)
 
-        self.forbidden = self._add("forbidden", Site(ctx("forbidden"), FORBIDDEN_HOST,
+        self.forbidden = self._add("forbidden", case_server(ctx("forbidden"), FORBIDDEN_HOST,
                                                      serve(lambda _: noise_image("x"))))
-        self.fence = self._add("fence", Site(
+        self.fence = self._add("fence", case_server(
             ctx("fence"), handler=serve(lambda _: noise_image("fence")),
             robots=serve(b"User-agent: *\nDisallow: /private/\n", "text/plain")))
         for case in self.cases:
             routes = {f"/good-{p}": _good(f"{case.name}-{p}") for p in ("a", "b")}
             routes["/good"] = _good(f"{case.name}-good")
-            self._add(case.name, Site(ctx(case.name), handler=case.handler,
+            self._add(case.name, case_server(ctx(case.name), handler=case.handler,
                                       robots=case.robots, routes=routes))
-        self.lister = self._add("lister", Site(ctx("lister"), routes={
+        self.lister = self._add("lister", case_server(ctx("lister"), routes={
             "/api/items": self._listing, "/good.png": _good("normal")}))
 
-    def _add(self, name: str, site: Site) -> Site:
+    def _add(self, name: str, site: LoopbackServer) -> LoopbackServer:
         self.sites[name] = site
         self.sites_base[name] = site.base
         self.sites_base[f"{name}_netloc"] = site.base.split("//", 1)[1]
@@ -674,103 +625,3 @@ licence = ".licence"
 
     def __exit__(self, *exc: object) -> None:
         self.close()
-
-
-# --- running and judging -------------------------------------------------------------------
-@dataclass
-class RunStats:
-    """A gather subprocess: exit code, peak RSS (KiB), wall seconds, stderr."""
-
-    returncode: int
-    max_rss_kib: int
-    seconds: float
-    stderr: str
-    stdout: str = ""
-
-
-def run_gather(folder: Path, *extra: str, timeout: float = 120.0,
-               env: dict[str, str] | None = None, cwd: Path | None = None) -> RunStats:
-    """Run ``collector gather FOLDER`` in a child process, reaped with ``os.wait4`` for its
-    own peak RSS (``ru_maxrss``, KiB on Linux)."""
-    started = time.monotonic()
-    proc = subprocess.Popen([sys.executable, "-m", "collector", "gather", str(folder), *extra],
-                            stdout=subprocess.PIPE, stderr=subprocess.PIPE,
-                            env={**os.environ, **(env or {})}, cwd=cwd)
-    chunks: dict[str, bytes] = {}
-
-    def drain(name: str, stream: Any) -> None:
-        chunks[name] = stream.read()
-
-    readers = [threading.Thread(target=drain, args=(n, s), daemon=True)
-               for n, s in (("out", proc.stdout), ("err", proc.stderr))]
-    for r in readers:
-        r.start()
-    deadline = time.monotonic() + timeout
-    while True:
-        pid, wstatus, usage = os.wait4(proc.pid, os.WNOHANG)
-        if pid:
-            break
-        if time.monotonic() > deadline:
-            proc.kill()
-            os.wait4(proc.pid, 0)
-            raise TimeoutError(f"gather did not end within {timeout} s")
-        time.sleep(0.05)
-    proc.returncode = os.waitstatus_to_exitcode(wstatus)
-    for r in readers:
-        r.join()
-    return RunStats(proc.returncode, usage.ru_maxrss, time.monotonic() - started,
-                    chunks.get("err", b"").decode(errors="replace"),
-                    chunks.get("out", b"").decode(errors="replace"))
-
-
-@dataclass
-class Verdict:
-    """What the ledger says about one case, and whether that is the expected outcome."""
-
-    case: Case
-    outcome: str
-    reason: str
-    ok: bool
-    problems: list[str] = field(default_factory=list)
-
-
-def judge(ledger: Any, case: Case) -> Verdict:
-    """Read the ledger's record of one case and compare it with the table."""
-    problems: list[str] = []
-    if case.kind == "image":
-        rows = ledger.query(
-            "SELECT i.state, i.reason, i.detail, f.flags FROM items i JOIN sources s "
-            "ON s.id = i.source_id LEFT JOIN files f ON f.sha256 = i.file_sha256 "
-            "WHERE s.name = 'lister' AND i.source_key = ?", (case.name,))
-        if not rows:
-            return Verdict(case, "no ledger row", "", False, ["the item was never recorded"])
-        row = rows[0]
-        flags = json.loads(row["flags"]) if row["flags"] else []
-        outcome = row["state"]
-        reason = row["reason"] or (", ".join(flags) if flags else "")
-        if row["state"] != case.state:
-            problems.append(f"state {row['state']!r}, expected {case.state!r}")
-        if row["reason"] != case.reason:
-            problems.append(f"reason {row['reason']!r}, expected {case.reason!r}")
-        if case.state in ("failed", "rejected", "blocked", "deferred") and not row["detail"]:
-            problems.append("no detail text")
-        if case.flag and case.flag not in flags:
-            problems.append(f"flags {flags}, expected {case.flag!r}")
-        return Verdict(case, outcome, reason, not problems, problems)
-    notes = [r["kind"] for r in ledger.query(
-        "SELECT n.kind FROM notes n JOIN sources s ON s.id = n.source_id WHERE s.name = ?",
-        (case.name,))]
-    items = ledger.query(
-        "SELECT i.state FROM items i JOIN sources s ON s.id = i.source_id WHERE s.name = ?",
-        (case.name,))
-    states = sorted(r["state"] for r in items)
-    if case.reason is not None and case.reason not in notes:
-        problems.append(f"notes {notes}, expected {case.reason!r}")
-    if case.reason is None and notes:
-        problems.append(f"unexpected notes {notes}")
-    if any(s != "stored" for s in states):
-        problems.append(f"item states {states}, expected all stored")
-    if case.reason in (None, "loop") and not states:
-        problems.append("no item was listed")
-    outcome = f"note; {len(states)} item(s) stored" if notes else f"{len(states)} item(s) stored"
-    return Verdict(case, outcome, ", ".join(notes) or "-", not problems, problems)

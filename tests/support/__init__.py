@@ -1,0 +1,1 @@
+"""Test support: one loopback server (``demo_site.loopback``), one fake fetcher, ledger probes."""
