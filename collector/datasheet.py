@@ -34,7 +34,8 @@ from typing import Any
 from collector import __version__
 from collector.errors import CollectionError, CollectorError, LedgerError, RecipeProblem
 from collector.licences import licence_allowed, licence_conditions, licence_deed_url
-from collector.recipe import Recipe, did_you_mean
+from collector.recipe import Recipe
+from collector.schema import did_you_mean
 from collector.urls import host_key
 
 ACCEPTED_STATES = ("stored", "near_duplicate")
@@ -57,15 +58,6 @@ PROVENANCE_COLUMNS = (
 )
 ATTRIBUTION_COLUMNS = ("file_name", "title", "author", "source", "licence", "licence_url")
 
-# Source kinds (recipe) -> the RAI vocabulary's collection types (croissant-rai-spec.md,
-# dataCollectionType recommended terms). Scans are made by a person with a scanner.
-COLLECTION_TYPES = {"json_api": "Web API", "html": "Web Scraping",
-                    "scans": "Manual Human Curator"}
-MECHANISMS = {
-    "json_api": "a JSON web API, read page by page",
-    "html": "HTML listing pages (and item pages), read with CSS selectors",
-    "scans": "local scans of physical items, read from a folder",
-}
 
 
 class AnswersError(CollectorError):
@@ -443,8 +435,7 @@ def _facts(conn: sqlite3.Connection, recipe: Recipe, now: str) -> dict[str, Any]
     f["timeline"] = _timeline(conn, f["timeframe"])
     f["sources"] = [
         {"name": name, "kind": kind, "items": n_items or 0, "accepted": n_acc or 0,
-         "mechanism": MECHANISMS.get(kind, kind),
-         "collection_type": COLLECTION_TYPES.get(kind, "Others")}
+         **_kind_facts(kind)}
         for name, kind, n_items, n_acc in conn.execute(
             "SELECT s.name, s.kind, (SELECT count(*) FROM items i WHERE i.source_id = s.id), "
             "(SELECT count(*) FROM items i JOIN files f ON f.first_item_id = i.id "
@@ -471,6 +462,17 @@ def _facts(conn: sqlite3.Connection, recipe: Recipe, now: str) -> dict[str, Any]
         "max_image_bytes": recipe.network["max_image_bytes"],
     }
     return f
+
+
+def _kind_facts(kind: str) -> dict[str, str]:
+    """How a source kind obtains items (a phrase) and its Croissant RAI collection type, from
+    the kind itself; a kind that is no longer installed is named as it is, type "Others"."""
+    import sources
+
+    found = sources.find_kind(kind)
+    if found is None:
+        return {"mechanism": kind, "collection_type": "Others"}
+    return {"mechanism": found.mechanism, "collection_type": found.collection_type}
 
 
 def _timeframe(conn: sqlite3.Connection) -> dict[str, str | None]:

@@ -57,7 +57,6 @@ from collector.errors import (
     TooLarge,
     UnsafeURL,
 )
-from collector.recipe import expand_env
 from collector.robots import (
     MAX_ROBOTS_BYTES,
     MAX_ROBOTS_REDIRECTS,
@@ -68,6 +67,7 @@ from collector.robots import (
     policy_from_fetch,
     policy_from_stored,
 )
+from collector.schema import expand_env
 from collector.store import make_temp
 from collector.urls import (
     add_params,
@@ -307,6 +307,24 @@ class _Wait(wait_base):
         return self.rng.uniform(0.0, ceiling)
 
 
+
+def _filled(values: Mapping[str, Any], url: str, secrets: Iterable[str]) -> dict[str, Any]:
+    """values (query parameters or headers) with each "${NAME}" filled from the environment.
+
+    The one place collector expands ``${NAME}``: right before a request is sent, so expanded
+    secrets never sit in a recipe, a source table or the ledger. An unset variable stops the
+    request before anything is sent (gather names them all before it starts, see
+    collector.recipe.unset_env).
+    """
+    try:
+        return {k: expand_env(v, strict=True) if isinstance(v, str) else v
+                for k, v in values.items()}
+    except KeyError as exc:
+        name = exc.args[0]
+        raise FetchError(redact(url, secrets), "unset_variable", None,
+                         f"the recipe refers to ${{{name}}}, but the environment variable "
+                         f"{name} is not set; set it and run again") from None
+
 class Fetcher:
     """The polite fetcher. Thread-safe: one instance serves the whole worker pool."""
 
@@ -343,7 +361,7 @@ class Fetcher:
         """GET a page (JSON/HTML) politely; raises FetchError unless the final status is 2xx."""
         secrets = (*self.settings.secret_params, *secret_params)
         if params:
-            params = {k: expand_env(v) if isinstance(v, str) else v for k, v in params.items()}
+            params = _filled(params, url, secrets)
         full = add_params(url, params)
         result = self._fetch(full, purpose=purpose, item_id=item_id, headers=headers or {},
                              secret_params=secrets, max_bytes=self.settings.max_page_bytes)
@@ -393,6 +411,7 @@ class Fetcher:
                headers: Mapping[str, str], secret_params: Iterable[str], max_bytes: int,
                dest_dir: Path | None = None, robots: bool = False) -> _Result:
         secret_params = tuple(secret_params)
+        headers = _filled({**self.settings.headers, **headers}, url, secret_params)
         max_hops = MAX_ROBOTS_REDIRECTS if robots else self.settings.max_redirects
         current = url
         hops = 0
@@ -471,8 +490,7 @@ class Fetcher:
                  headers: Mapping[str, str], secrets: list[str], max_bytes: int,
                  dest_dir: Path | None, attempt: int, final: bool, truncate: bool) -> _Result:
         send_headers = {"User-Agent": self.settings.user_agent, "Accept-Encoding": "gzip"}
-        send_headers.update({k: expand_env(v) for k, v in self.settings.headers.items()})
-        send_headers.update({k: expand_env(v) for k, v in headers.items()})
+        send_headers.update(headers)  # recipe headers, then this request's (filled by _fetch)
         all_secrets = secrets + [v for k, v in send_headers.items()
                                  if k.lower() in {h.lower() for h in self.settings.secret_headers}]
         base = {**row, "attempt": attempt, "robots_verdict": verdict.verdict,

@@ -47,7 +47,8 @@ from collector.hashindex import HashIndex, NearMatch, to_signed
 from collector.images import ImageFacts, inspect_image
 from collector.ledger import Ledger
 from collector.licences import licence_allowed, normalise_licence, rights_conflict
-from collector.recipe import Recipe, expand_env, parse_clock, parse_duration, unset_env
+from collector.recipe import Recipe, parse_clock, parse_duration, unset_env
+from collector.schema import expand_env
 from collector.urls import host_key, redact, scrub
 
 # States after which an item is not requested again.

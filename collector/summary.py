@@ -12,6 +12,7 @@ from collections import Counter
 from dataclasses import dataclass, field
 from typing import Any
 
+import sources
 from collector.errors import CollectorError
 from collector.ledger import Ledger
 from collector.recipe import Recipe
@@ -190,7 +191,7 @@ def estimate(recipe: Recipe, ledger: Ledger) -> Estimate:
     listed = {r["name"] for r in ledger.query(
         "SELECT DISTINCT s.name FROM sources s JOIN items i ON i.source_id = s.id")}
     unknown = [s["name"] for s in recipe.sources
-               if s["kind"] != "scans" and s["name"] not in listed]
+               if sources.get_kind(s["kind"]).uses_network and s["name"] not in listed]
     interval: dict[str, float] = {}
     seconds = 0.0
     for host, n in per_host.items():

@@ -15,6 +15,7 @@ from urllib.parse import parse_qsl, urlencode, urlsplit
 import requests
 
 import sources
+from collector.schema import expand_env
 from sources import SourceNote
 
 # A route answers (status, headers, body) for a parsed query.
@@ -131,7 +132,10 @@ class RequestsFetcher:
         assert (urlsplit(url).hostname or "").startswith("127."), url
         self.calls.append(Call(url, purpose, dict(params) if params else None,
                                tuple(secret_params)))
-        r = self.session.get(url, params=params, headers=dict(headers or {}), timeout=10)
+        # Like collector.fetcher, fill "${NAME}" references just before sending.
+        params = {k: expand_env(v, strict=True) for k, v in (params or {}).items()} or None
+        headers = {k: expand_env(v, strict=True) for k, v in (headers or {}).items()}
+        r = self.session.get(url, params=params, headers=headers, timeout=10)
         links = {rel: v["url"] for rel, v in r.links.items()}
         return SimplePage(r.url, r.status_code, r.headers, r.content, links)
 
