@@ -219,4 +219,6 @@ def iter_candidates(
         detail = "; ".join(f"{p.key_path}: {p.message}" for p in problems)
         raise SourceError(name, None, f"invalid source table ({detail}); fix the recipe")
     kind = get_kind(str(source["kind"]))
-    yield from kind.list_candidates(source, fetcher, notes, Path(base_dir))
+    # A kind that says it needs no network is not handed the fetcher.
+    yield from kind.list_candidates(source, fetcher if kind.uses_network else None, notes,
+                                    Path(base_dir))
