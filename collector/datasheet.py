@@ -26,7 +26,7 @@ import sqlite3
 import tempfile
 import tomllib
 from collections.abc import Iterator
-from dataclasses import dataclass, field
+from dataclasses import asdict, dataclass, field
 from datetime import UTC, datetime
 from pathlib import Path
 from typing import Any
@@ -345,9 +345,9 @@ def collect_facts(ledger_path: Path, recipe: Recipe, *, now: str | None = None) 
 
 def _facts(conn: sqlite3.Connection, recipe: Recipe, now: str) -> dict[str, Any]:
     f: dict[str, Any] = {"generated_at": now, "tool_version": __version__}
-    f["collection"] = {"name": recipe.collection.get("name", ""),
-                       "description": recipe.collection.get("description", ""),
-                       "curator": recipe.collection.get("curator", ""),
+    f["collection"] = {"name": recipe.collection.name,
+                       "description": recipe.collection.description,
+                       "curator": recipe.collection.curator,
                        "contact": recipe.contact, "product_token": recipe.product_token}
     items: dict[str, Any] = {
         "total": _one(conn, "SELECT count(*) FROM items") or 0,
@@ -409,8 +409,8 @@ def _facts(conn: sqlite3.Connection, recipe: Recipe, now: str) -> dict[str, Any]
         "near_kept": acc["near_kept"],
         "near_dropped": _one(conn, "SELECT count(*) FROM items WHERE state = 'near_duplicate' "
                                    "AND file_sha256 IS NULL") or 0,
-        "policy": recipe.images["near_duplicates"],
-        "near_distance": recipe.images["near_distance"],
+        "policy": recipe.images.near_duplicates,
+        "near_distance": recipe.images.near_distance,
     }
     f["licences"] = [
         {"spdx_id": spdx, "files": n,
@@ -453,13 +453,13 @@ def _facts(conn: sqlite3.Connection, recipe: Recipe, now: str) -> dict[str, Any]
     }
     f["notes"] = _pairs(conn, "SELECT kind, count(*) FROM notes GROUP BY kind ORDER BY 2 DESC")
     f["policy"] = {
-        "budgets": {k: recipe.budgets[k] for k in ("min_interval", "requests_per_hour",
-                                                   "bytes_per_hour", "max_connections",
-                                                   "max_attempts", "max_retry_after")},
-        "licence_allow": list(recipe.licences["allow"]),
-        "allow_unknown": bool(recipe.licences["allow_unknown"]),
-        "images": dict(recipe.images),
-        "max_image_bytes": recipe.network["max_image_bytes"],
+        "budgets": {k: getattr(recipe.budgets, k) for k in (
+            "min_interval", "requests_per_hour", "bytes_per_hour", "max_connections",
+            "max_attempts", "max_retry_after")},
+        "licence_allow": list(recipe.licences.allow),
+        "allow_unknown": recipe.licences.allow_unknown,
+        "images": asdict(recipe.images),
+        "max_image_bytes": recipe.network.max_image_bytes,
     }
     return f
 
@@ -581,8 +581,8 @@ def iter_release_rows(conn: sqlite3.Connection, recipe: Recipe, counts: ReleaseC
         (sha, ext, mime, fmt, width, height, size, flags_json, stored_at, source, key,
          page_url, image_url, title, creator, licence_raw, spdx, licence_url, fetched_at) = r
         if spdx not in allowed_cache:
-            allowed_cache[spdx] = licence_allowed(spdx, recipe.licences["allow"],
-                                                  recipe.licences["allow_unknown"])[0]
+            allowed_cache[spdx] = licence_allowed(spdx, recipe.licences.allow,
+                                                  recipe.licences.allow_unknown)[0]
         if not allowed_cache[spdx]:
             counts.excluded_licence += 1
             continue

@@ -32,7 +32,7 @@ import re
 import socket
 import threading
 from collections.abc import Callable, Iterable, Mapping
-from dataclasses import dataclass, field
+from dataclasses import asdict, dataclass, field
 from datetime import UTC, datetime
 from email.utils import parsedate_to_datetime
 from pathlib import Path
@@ -182,9 +182,9 @@ class FetchSettings:
             network = dict(get("network") or {})
             contact, token = get("contact", ""), get("product_token") or "collector"
         else:
-            budgets = dict(recipe.budgets)
+            budgets = asdict(recipe.budgets)
             hosts = dict(recipe.host_budgets)
-            network = dict(recipe.network)
+            network = asdict(recipe.network)
             contact, token = recipe.contact, recipe.product_token or "collector"
         default, per_host = budgets_from_recipe({**budgets, "hosts": hosts})
         values: dict[str, Any] = {

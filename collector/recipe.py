@@ -13,7 +13,8 @@ import ipaddress
 import os
 import re
 import tomllib
-from dataclasses import dataclass, field
+from collections.abc import Mapping
+from dataclasses import MISSING, asdict, dataclass, field, fields, replace
 from datetime import time
 from pathlib import Path
 from typing import Any
@@ -21,6 +22,7 @@ from urllib.parse import urlsplit
 
 from collector.errors import RecipeError, RecipeProblem
 from collector.schema import (
+    Check,
     Key,
     Problems,
     at_least,
@@ -102,7 +104,7 @@ def _check_spdx_list(values: Any) -> str | None:
 def unset_env(recipe: Recipe) -> list[RecipeProblem]:
     """A problem for every ``${NAME}`` the recipe uses whose variable is not set."""
     places: list[tuple[str, Any]] = [
-        (f"network.headers.{k}", v) for k, v in recipe.network["headers"].items()]
+        (f"network.headers.{k}", v) for k, v in recipe.network.headers.items()]
     for i, src in enumerate(recipe.sources):
         for table in ("params", "headers"):
             places += [(f"sources[{i}].{table}.{k}", v)
@@ -136,53 +138,111 @@ def parse_duration(value: str) -> float:
     return float(total)
 
 
-BUDGET_KEYS: dict[str, Key] = {
-    "min_interval": Key("float", 3.0, check=at_least(0)),
-    "requests_per_hour": Key("int", 1000, check=at_least(0, strict=True)),
-    "bytes_per_hour": Key("int", 2_000_000_000, check=at_least(0, strict=True)),
-    "max_connections": Key("int", 1, check=at_least(1)),
-    "max_attempts": Key("int", 5, check=at_least(1)),
-    "max_retry_after": Key("float", 3600.0, check=at_least(0, strict=True)),
-    "backoff_base": Key("float", 1.0, check=at_least(0)),
-    "backoff_max": Key("float", 300.0, check=at_least(0)),
-}
+def _setting(default: Any, check: Check | None = None) -> Any:
+    """A scalar field of a recipe section: its default and an optional extra check (the key's
+    type is the field's annotation, see section_keys). Lists and tables use
+    ``field(default_factory=..., metadata={"check": ...})``."""
+    return field(default=default, metadata={"check": check})
 
-SECTIONS: dict[str, dict[str, Key]] = {
-    "collection": {
-        "name": Key("str", "My collection"),
-        "description": Key("str", ""),
-        "curator": Key("str", ""),
-    },
-    "budgets": BUDGET_KEYS,
-    "network": {
-        "connect_timeout": Key("float", 10.0, check=at_least(0, strict=True)),
-        "read_timeout": Key("float", 30.0, check=at_least(0, strict=True)),
-        "download_deadline": Key("float", 300.0, check=at_least(0, strict=True)),
-        "max_image_bytes": Key("int", 50_000_000, check=at_least(0, strict=True)),
-        "max_page_bytes": Key("int", 10_000_000, check=at_least(0, strict=True)),
-        "allow_addresses": Key("list[str]", [], check=_check_addresses),
-        "secret_params": Key("list[str]", []),
-        "secret_headers": Key("list[str]", ["Authorization", "Cookie"]),
-        "headers": Key("table[str]", {}),
-    },
-    "licences": {
-        "allow": Key("list[str]", DEFAULT_LICENCES, check=_check_spdx_list),
-        "allow_unknown": Key("bool", False),
-    },
-    "images": {
-        "min_side": Key("int", 0, check=at_least(0)),
-        "min_aspect": Key("float", 0.0, check=at_least(0)),
-        "max_aspect": Key("float", 0.0, check=at_least(0)),
-        "max_pixels": Key("int", 89_478_485, check=at_least(0, strict=True)),
-        "near_distance": Key("int", 8, check=at_least(0)),
-        "near_duplicates": Key("str", "keep", check=one_of("keep", "drop")),
-    },
-    "stop": {
-        "max_items": Key("int", 0, check=at_least(0)),
-        "until": Key("str", "", check=lambda v: _check_clock(v) if v else None),
-        "duration": Key("str", "", check=lambda v: _check_duration(v) if v else None),
-    },
+
+# Field annotation -> collector.schema type name.
+_FIELD_TYPES = {"str": "str", "int": "int", "float": "float", "bool": "bool",
+                "list[str]": "list[str]", "dict[str, str]": "table[str]"}
+
+
+def section_keys(section: type) -> dict[str, Key]:
+    """The recipe keys of a section dataclass: one Key per field, with its default."""
+    keys: dict[str, Key] = {}
+    for f in fields(section):
+        default = f.default if f.default is not MISSING else f.default_factory()  # type: ignore[misc]
+        keys[f.name] = Key(_FIELD_TYPES[str(f.type)], default, check=f.metadata.get("check"))
+    return keys
+
+
+@dataclass(frozen=True)
+class Budget:
+    """Limits for one host: the recipe's ``[budgets]`` keys with their defaults (also what a
+    ``[budgets.hosts."host"]`` table overlays)."""
+
+    min_interval: float = _setting(3.0, at_least(0))
+    requests_per_hour: int = _setting(1000, at_least(0, strict=True))
+    bytes_per_hour: int = _setting(2_000_000_000, at_least(0, strict=True))
+    max_connections: int = _setting(1, at_least(1))
+    max_attempts: int = _setting(5, at_least(1))
+    max_retry_after: float = _setting(3600.0, at_least(0, strict=True))
+    backoff_base: float = _setting(1.0, at_least(0))
+    backoff_max: float = _setting(300.0, at_least(0))
+
+    @classmethod
+    def from_table(cls, table: Mapping[str, Any], base: Budget | None = None) -> Budget:
+        """Overlay the known keys of a recipe table on ``base`` (defaults if None)."""
+        known = {f.name for f in fields(cls)}
+        values = {k: v for k, v in table.items() if k in known}
+        return replace(base or cls(), **values)
+
+
+@dataclass(frozen=True)
+class CollectionInfo:
+    """``[collection]``: what the collection is called and who curates it."""
+
+    name: str = _setting("My collection")
+    description: str = _setting("")
+    curator: str = _setting("")
+
+
+@dataclass(frozen=True)
+class Network:
+    """``[network]``: timeouts, size caps, the address allowlist, secrets, extra headers."""
+
+    connect_timeout: float = _setting(10.0, at_least(0, strict=True))
+    read_timeout: float = _setting(30.0, at_least(0, strict=True))
+    download_deadline: float = _setting(300.0, at_least(0, strict=True))
+    max_image_bytes: int = _setting(50_000_000, at_least(0, strict=True))
+    max_page_bytes: int = _setting(10_000_000, at_least(0, strict=True))
+    allow_addresses: list[str] = field(default_factory=list,
+                                       metadata={"check": _check_addresses})
+    secret_params: list[str] = field(default_factory=list)
+    secret_headers: list[str] = field(default_factory=lambda: ["Authorization", "Cookie"])
+    headers: dict[str, str] = field(default_factory=dict)
+
+
+@dataclass(frozen=True)
+class Licences:
+    """``[licences]``: the SPDX allowlist and whether unknown licences are kept."""
+
+    allow: list[str] = field(default_factory=lambda: list(DEFAULT_LICENCES),
+                             metadata={"check": _check_spdx_list})
+    allow_unknown: bool = _setting(False)
+
+
+@dataclass(frozen=True)
+class Images:
+    """``[images]``: the ingest limits and the near-duplicate policy."""
+
+    min_side: int = _setting(0, at_least(0))
+    min_aspect: float = _setting(0.0, at_least(0))
+    max_aspect: float = _setting(0.0, at_least(0))
+    max_pixels: int = _setting(89_478_485, at_least(0, strict=True))
+    near_distance: int = _setting(8, at_least(0))
+    near_duplicates: str = _setting("keep", one_of("keep", "drop"))
+
+
+@dataclass(frozen=True)
+class Stop:
+    """``[stop]``: when a gather stops on its own ("" and 0 mean never)."""
+
+    max_items: int = _setting(0, at_least(0))
+    until: str = _setting("", lambda v: _check_clock(v) if v else None)
+    duration: str = _setting("", lambda v: _check_duration(v) if v else None)
+
+
+SECTIONS: dict[str, type] = {
+    "collection": CollectionInfo, "budgets": Budget, "network": Network,
+    "licences": Licences, "images": Images, "stop": Stop,
 }
+SECTION_KEYS: dict[str, dict[str, Key]] = {
+    name: section_keys(cls) for name, cls in SECTIONS.items()}
+BUDGET_KEYS = SECTION_KEYS["budgets"]
 
 TOP_KEYS: dict[str, Key] = {
     "contact": Key("str", "", check=check_contact),
@@ -199,31 +259,29 @@ class Recipe:
     sha256: str
     contact: str
     product_token: str
-    collection: dict[str, Any]
-    budgets: dict[str, Any]
-    host_budgets: dict[str, dict[str, Any]]
-    network: dict[str, Any]
-    licences: dict[str, Any]
-    images: dict[str, Any]
-    stop: dict[str, Any]
+    collection: CollectionInfo
+    budgets: Budget
+    host_budgets: dict[str, dict[str, Any]]  # host -> only the keys its table overrides
+    network: Network
+    licences: Licences
+    images: Images
+    stop: Stop
     sources: list[dict[str, Any]] = field(default_factory=list)
 
-    def budget_for(self, host: str) -> dict[str, Any]:
+    def budget_for(self, host: str) -> Budget:
         """The budget in force for ``host`` (``host`` or ``host:port``): defaults + override."""
         bare = host.rsplit(":", 1)[0] if host.count(":") == 1 else host
-        merged = dict(self.budgets)
-        merged.update(self.host_budgets.get(bare, {}))
-        merged.update(self.host_budgets.get(host, {}))
-        return merged
+        merged = Budget.from_table(self.host_budgets.get(bare, {}), self.budgets)
+        return Budget.from_table(self.host_budgets.get(host, {}), merged)
 
     def as_dict(self) -> dict[str, Any]:
         """The settings a run would use, as plain data (for ``collector check``)."""
         return {
             "contact": self.contact, "product_token": self.product_token,
-            "collection": self.collection, "budgets": self.budgets,
-            "budgets.hosts": self.host_budgets, "network": self.network,
-            "licences": self.licences, "images": self.images, "stop": self.stop,
-            "sources": self.sources,
+            "collection": asdict(self.collection), "budgets": asdict(self.budgets),
+            "budgets.hosts": self.host_budgets, "network": asdict(self.network),
+            "licences": asdict(self.licences), "images": asdict(self.images),
+            "stop": asdict(self.stop), "sources": self.sources,
         }
 
 
@@ -285,7 +343,7 @@ def parse_recipe(text: str, path: Path) -> Recipe:
 
     sections: dict[str, dict[str, Any]] = {}
     host_budgets: dict[str, dict[str, Any]] = {}
-    for name, spec in SECTIONS.items():
+    for name, spec in SECTION_KEYS.items():
         table = data.get(name, {})
         if not isinstance(table, dict):
             problems.add(name, f"must be a table ([{name}]), got {describe(table)}")
@@ -295,9 +353,8 @@ def parse_recipe(text: str, path: Path) -> Recipe:
             host_budgets = _check_host_budgets(table.pop("hosts"), problems)
         sections[name] = check_table(table, spec, name, problems)
 
-    images = sections["images"]
-    if images["min_aspect"] and images["max_aspect"] and images["min_aspect"] > images[
-            "max_aspect"]:
+    low, high = sections["images"].get("min_aspect"), sections["images"].get("max_aspect")
+    if low and high and low > high:
         problems.add("images.max_aspect", "must be greater than images.min_aspect")
     source_list = _check_sources(data["sources"], problems) if "sources" in data else []
 
@@ -306,9 +363,10 @@ def parse_recipe(text: str, path: Path) -> Recipe:
     return Recipe(
         path=path, sha256=hashlib.sha256(text.encode()).hexdigest(),
         contact=str(top["contact"]).strip(), product_token=top["product_token"],
-        collection=sections["collection"], budgets=sections["budgets"],
-        host_budgets=host_budgets, network=sections["network"],
-        licences=sections["licences"], images=images, stop=sections["stop"],
+        collection=CollectionInfo(**sections["collection"]),
+        budgets=Budget(**sections["budgets"]), host_budgets=host_budgets,
+        network=Network(**sections["network"]), licences=Licences(**sections["licences"]),
+        images=Images(**sections["images"]), stop=Stop(**sections["stop"]),
         sources=source_list)
 
 
