@@ -183,14 +183,6 @@ def not_blank(value: Any) -> str | None:
     return None
 
 
-def scalar_values(value: Any) -> str | None:
-    """A table whose values are strings or numbers (query parameters, headers)."""
-    for k, v in value.items():
-        if isinstance(v, bool) or not isinstance(v, str | int | float):
-            return f"entry {k!r} must be a string or number, got {describe(v)}"
-    return None
-
-
 # --- checks that report at sub-paths (list entries, table entries) -------------------------------
 
 

@@ -253,3 +253,24 @@ def test_the_kind_name_check_catches_a_literal(tmp_path: Path) -> None:
                       'B = {"html": 1}\nC = kind == "json_api"\n', encoding="utf-8")
     assert _kind_literals(module, {"json_api", "html", "scans"}) == [
         "m.py:3: 'html'", "m.py:4: 'json_api'"]
+
+
+def test_sources_and_recipe_import_without_a_circle(tmp_path: Path) -> None:
+    """sources/ imports neither collector.recipe nor an HTTP library, and collector.recipe
+    does not import sources until a recipe with sources is checked."""
+    for path in sorted((REPO / "sources").glob("*.py")):
+        tree = ast.parse(path.read_text(encoding="utf-8"))
+        imported = {alias.name for node in ast.walk(tree) if isinstance(node, ast.Import)
+                    for alias in node.names}
+        imported |= {node.module or "" for node in ast.walk(tree)
+                     if isinstance(node, ast.ImportFrom)}
+        assert not imported & {"collector.recipe", "requests", "urllib.request", "http.client"}, (
+            path.name)
+    out = run_python("""
+        import json, sys
+        import collector.recipe
+        before = "sources" in sys.modules
+        import sources
+        print(json.dumps({"before": before, "kinds": sources.builtin_kind_names()}))
+    """, cwd=tmp_path)
+    assert out == {"before": False, "kinds": ["html", "json_api", "scans"]}
