@@ -5,9 +5,10 @@ Used by :mod:`collector.recipe` for the top-level sections and by every source k
 number, got a string ('ten')"; "unknown key (did you mean 'pagination'?); allowed here: ...").
 
 Also the one home of the ``${NAME}`` syntax: :func:`env_names` finds references (the recipe
-checks them before a run), :func:`expand_env` fills them in; only the fetcher calls it, right
-before a request is sent (see :mod:`collector.fetcher`), so expanded secrets never sit in a
-recipe, a source table or the ledger.
+checks them before a run), :func:`expand_env` fills them in. Values are filled only when a
+request is sent (``collector.fetcher._filled``), so expanded secrets never sit in a recipe, a
+source table or the ledger; the only other caller, ``collector.run.secret_values``, computes
+the same values solely to scrub them from messages.
 
 This module imports nothing from collector but the errors, so anything may import it.
 """
