@@ -15,12 +15,12 @@ import threading
 import time as _time
 from collections import deque
 from collections.abc import Mapping
-from dataclasses import asdict, dataclass, fields, replace
+from dataclasses import asdict, dataclass
 from datetime import UTC, datetime
 from datetime import time as dtime
 from typing import Any, Protocol
 
-from collector.recipe import BUDGET_KEYS
+from collector.recipe import Budget
 from collector.robots import Hints
 
 HOUR = 3600.0
@@ -83,27 +83,6 @@ class FakeClock:
                 self.sleeps.append(seconds)
             self._wall += seconds
             self._mono += seconds
-
-
-@dataclass(frozen=True)
-class Budget:
-    """Limits for one host: the recipe's ``[budgets]`` keys, with the recipe's defaults."""
-
-    min_interval: float = BUDGET_KEYS["min_interval"].default
-    requests_per_hour: int = BUDGET_KEYS["requests_per_hour"].default
-    bytes_per_hour: int = BUDGET_KEYS["bytes_per_hour"].default
-    max_connections: int = BUDGET_KEYS["max_connections"].default
-    max_attempts: int = BUDGET_KEYS["max_attempts"].default
-    max_retry_after: float = BUDGET_KEYS["max_retry_after"].default
-    backoff_base: float = BUDGET_KEYS["backoff_base"].default
-    backoff_max: float = BUDGET_KEYS["backoff_max"].default
-
-    @classmethod
-    def from_table(cls, table: Mapping[str, Any], base: Budget | None = None) -> Budget:
-        """Overlay the known keys of a recipe table on ``base`` (defaults if None)."""
-        known = {f.name for f in fields(cls)}
-        values = {k: v for k, v in table.items() if k in known}
-        return replace(base or cls(), **values)
 
 
 def budgets_from_recipe(table: Mapping[str, Any] | None) -> tuple[Budget, dict[str, Budget]]:

@@ -26,7 +26,7 @@ import sqlite3
 import tempfile
 import tomllib
 from collections.abc import Iterator
-from dataclasses import dataclass, field
+from dataclasses import asdict, dataclass, field
 from datetime import UTC, datetime
 from pathlib import Path
 from typing import Any
@@ -34,8 +34,9 @@ from typing import Any
 from collector import __version__
 from collector.errors import CollectionError, CollectorError, LedgerError, RecipeProblem
 from collector.licences import licence_allowed, licence_conditions, licence_deed_url
-from collector.recipe import Recipe, did_you_mean
+from collector.recipe import Recipe
 from collector.safe_text import csv_cell, csv_row
+from collector.schema import did_you_mean
 from collector.urls import host_key
 
 ACCEPTED_STATES = ("stored", "near_duplicate")
@@ -58,15 +59,6 @@ PROVENANCE_COLUMNS = (
 )
 ATTRIBUTION_COLUMNS = ("file_name", "title", "author", "source", "licence", "licence_url")
 
-# Source kinds (recipe) -> the RAI vocabulary's collection types (croissant-rai-spec.md,
-# dataCollectionType recommended terms). Scans are made by a person with a scanner.
-COLLECTION_TYPES = {"json_api": "Web API", "html": "Web Scraping",
-                    "scans": "Manual Human Curator"}
-MECHANISMS = {
-    "json_api": "a JSON web API, read page by page",
-    "html": "HTML listing pages (and item pages), read with CSS selectors",
-    "scans": "local scans of physical items, read from a folder",
-}
 
 
 class AnswersError(CollectorError):
@@ -354,9 +346,9 @@ def collect_facts(ledger_path: Path, recipe: Recipe, *, now: str | None = None) 
 
 def _facts(conn: sqlite3.Connection, recipe: Recipe, now: str) -> dict[str, Any]:
     f: dict[str, Any] = {"generated_at": now, "tool_version": __version__}
-    f["collection"] = {"name": recipe.collection.get("name", ""),
-                       "description": recipe.collection.get("description", ""),
-                       "curator": recipe.collection.get("curator", ""),
+    f["collection"] = {"name": recipe.collection.name,
+                       "description": recipe.collection.description,
+                       "curator": recipe.collection.curator,
                        "contact": recipe.contact, "product_token": recipe.product_token}
     items: dict[str, Any] = {
         "total": _one(conn, "SELECT count(*) FROM items") or 0,
@@ -418,8 +410,8 @@ def _facts(conn: sqlite3.Connection, recipe: Recipe, now: str) -> dict[str, Any]
         "near_kept": acc["near_kept"],
         "near_dropped": _one(conn, "SELECT count(*) FROM items WHERE state = 'near_duplicate' "
                                    "AND file_sha256 IS NULL") or 0,
-        "policy": recipe.images["near_duplicates"],
-        "near_distance": recipe.images["near_distance"],
+        "policy": recipe.images.near_duplicates,
+        "near_distance": recipe.images.near_distance,
     }
     f["licences"] = [
         {"spdx_id": spdx, "files": n,
@@ -444,8 +436,7 @@ def _facts(conn: sqlite3.Connection, recipe: Recipe, now: str) -> dict[str, Any]
     f["timeline"] = _timeline(conn, f["timeframe"])
     f["sources"] = [
         {"name": name, "kind": kind, "items": n_items or 0, "accepted": n_acc or 0,
-         "mechanism": MECHANISMS.get(kind, kind),
-         "collection_type": COLLECTION_TYPES.get(kind, "Others")}
+         **_kind_facts(kind)}
         for name, kind, n_items, n_acc in conn.execute(
             "SELECT s.name, s.kind, (SELECT count(*) FROM items i WHERE i.source_id = s.id), "
             "(SELECT count(*) FROM items i JOIN files f ON f.first_item_id = i.id "
@@ -463,15 +454,26 @@ def _facts(conn: sqlite3.Connection, recipe: Recipe, now: str) -> dict[str, Any]
     }
     f["notes"] = _pairs(conn, "SELECT kind, count(*) FROM notes GROUP BY kind ORDER BY 2 DESC")
     f["policy"] = {
-        "budgets": {k: recipe.budgets[k] for k in ("min_interval", "requests_per_hour",
-                                                   "bytes_per_hour", "max_connections",
-                                                   "max_attempts", "max_retry_after")},
-        "licence_allow": list(recipe.licences["allow"]),
-        "allow_unknown": bool(recipe.licences["allow_unknown"]),
-        "images": dict(recipe.images),
-        "max_image_bytes": recipe.network["max_image_bytes"],
+        "budgets": {k: getattr(recipe.budgets, k) for k in (
+            "min_interval", "requests_per_hour", "bytes_per_hour", "max_connections",
+            "max_attempts", "max_retry_after")},
+        "licence_allow": list(recipe.licences.allow),
+        "allow_unknown": recipe.licences.allow_unknown,
+        "images": asdict(recipe.images),
+        "max_image_bytes": recipe.network.max_image_bytes,
     }
     return f
+
+
+def _kind_facts(kind: str) -> dict[str, str]:
+    """How a source kind obtains items (a phrase) and its Croissant RAI collection type, from
+    the kind itself; a kind that is no longer installed is named as it is, type "Others"."""
+    import sources
+
+    found = sources.find_kind(kind)
+    if found is None:
+        return {"mechanism": kind, "collection_type": "Others"}
+    return {"mechanism": found.mechanism, "collection_type": found.collection_type}
 
 
 def _timeframe(conn: sqlite3.Connection) -> dict[str, str | None]:
@@ -580,8 +582,8 @@ def iter_release_rows(conn: sqlite3.Connection, recipe: Recipe, counts: ReleaseC
         (sha, ext, mime, fmt, width, height, size, flags_json, stored_at, source, key,
          page_url, image_url, title, creator, licence_raw, spdx, licence_url, fetched_at) = r
         if spdx not in allowed_cache:
-            allowed_cache[spdx] = licence_allowed(spdx, recipe.licences["allow"],
-                                                  recipe.licences["allow_unknown"])[0]
+            allowed_cache[spdx] = licence_allowed(spdx, recipe.licences.allow,
+                                                  recipe.licences.allow_unknown)[0]
         if not allowed_cache[spdx]:
             counts.excluded_licence += 1
             continue

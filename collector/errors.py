@@ -12,6 +12,7 @@ exception escaping to the CLI is a bug and keeps its traceback.
     ├── LedgerError                  the SQLite ledger could not be read or written
     ├── StoreError                   a file could not be stored (disk full: .errno == ENOSPC)
     ├── SourceError                  a source could not be read (bad JSON, empty selector)
+    ├── SourceKindError              a source kind is unknown, clashes, or its package is broken
     ├── ImageRejected                an image failed the ingest checks (.reason: ledger reason)
     ├── InternalError                a bug in collector stopped a run (.where, traceback logged)
     └── FetchError                   a request failed; .url is already redacted
@@ -83,6 +84,12 @@ class SourceError(CollectorError):
         self.source, self.url, self.reason = source, url, reason
         where = f" at {url}" if url else ""
         super().__init__(f"source {source!r}{where}: {reason}")
+
+
+class SourceKindError(CollectorError):
+    """A source kind cannot be used: unknown, defined twice, or its package fails to load."""
+
+    exit_code = 2
 
 
 class ImageRejected(CollectorError):

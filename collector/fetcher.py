@@ -32,7 +32,7 @@ import re
 import socket
 import threading
 from collections.abc import Callable, Iterable, Iterator, Mapping
-from dataclasses import dataclass, field
+from dataclasses import asdict, dataclass, field
 from datetime import UTC, datetime
 from email.utils import parsedate_to_datetime
 from pathlib import Path
@@ -58,7 +58,6 @@ from collector.errors import (
     UnsafeURL,
 )
 from collector.http_target import transport_target
-from collector.recipe import expand_env
 from collector.robots import (
     MAX_ROBOTS_BYTES,
     MAX_ROBOTS_REDIRECTS,
@@ -69,6 +68,7 @@ from collector.robots import (
     policy_from_fetch,
     policy_from_stored,
 )
+from collector.schema import expand_env
 from collector.store import make_temp
 from collector.urls import (
     MIN_SECRET_LEN,
@@ -185,9 +185,9 @@ class FetchSettings:
             network = dict(get("network") or {})
             contact, token = get("contact", ""), get("product_token") or "collector"
         else:
-            budgets = dict(recipe.budgets)
+            budgets = asdict(recipe.budgets)
             hosts = dict(recipe.host_budgets)
-            network = dict(recipe.network)
+            network = asdict(recipe.network)
             contact, token = recipe.contact, recipe.product_token or "collector"
         default, per_host = budgets_from_recipe({**budgets, "hosts": hosts})
         values: dict[str, Any] = {
@@ -319,6 +319,24 @@ class HopByHopSession(requests.Session):
         return iter(())
 
 
+def filled_from_env(values: Mapping[str, Any], url: str,
+                    secrets: Iterable[str]) -> dict[str, Any]:
+    """values (query parameters or headers) with each "${NAME}" filled from the environment.
+
+    The one place collector expands ``${NAME}``: right before a request is sent, so expanded
+    secrets never sit in a recipe, a source table or the ledger. An unset variable stops the
+    request before anything is sent (gather names them all before it starts, see
+    collector.recipe.unset_env).
+    """
+    try:
+        return {k: expand_env(v, strict=True) if isinstance(v, str) else v
+                for k, v in values.items()}
+    except KeyError as exc:
+        name = exc.args[0]
+        raise FetchError(redact(url, secrets), "unset_variable", None,
+                         f"the recipe refers to ${{{name}}}, but the environment variable "
+                         f"{name} is not set; set it and run again") from None
+
 class Fetcher:
     """The polite fetcher. Thread-safe: one instance serves the whole worker pool."""
 
@@ -355,7 +373,7 @@ class Fetcher:
         """GET a page (JSON/HTML) politely; raises FetchError unless the final status is 2xx."""
         secrets = (*self.settings.secret_params, *secret_params)
         if params:
-            params = {k: expand_env(v) if isinstance(v, str) else v for k, v in params.items()}
+            params = filled_from_env(params, url, secrets)
         full = add_params(url, params)
         result = self._fetch(full, purpose=purpose, item_id=item_id, headers=headers or {},
                              secret_params=secrets, max_bytes=self.settings.max_page_bytes)
@@ -405,6 +423,7 @@ class Fetcher:
                headers: Mapping[str, str], secret_params: Iterable[str], max_bytes: int,
                dest_dir: Path | None = None, robots: bool = False) -> _Result:
         secret_params = tuple(secret_params)
+        headers = filled_from_env({**self.settings.headers, **headers}, url, secret_params)
         max_hops = MAX_ROBOTS_REDIRECTS if robots else self.settings.max_redirects
         current = url
         hops = 0
@@ -488,11 +507,10 @@ class Fetcher:
                  verdict: Verdict, headers: Mapping[str, str], secrets: list[str], max_bytes: int,
                  dest_dir: Path | None, attempt: int, final: bool, truncate: bool) -> _Result:
         send_headers = {"User-Agent": self.settings.user_agent, "Accept-Encoding": "gzip"}
-        send_headers.update({k: expand_env(v) for k, v in self.settings.headers.items()})
-        send_headers.update({k: expand_env(v) for k, v in headers.items()})
+        send_headers.update(headers)  # recipe headers, then this request's (filled by _fetch)
         all_secrets = secrets + [part for k, v in send_headers.items()
                                  if is_secret_header(k, self.settings.secret_headers)
-                                 for part in header_secrets(v) if len(part) >= MIN_SECRET_LEN]
+                                 for part in header_secrets(str(v)) if len(part) >= MIN_SECRET_LEN]
         base = {**row, "attempt": attempt, "robots_verdict": verdict.verdict,
                 "robots_rule": verdict.rule}
         slot = self.budgets.acquire(hk)

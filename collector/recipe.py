@@ -8,28 +8,35 @@ The result is a :class:`Recipe` with every default filled in.
 
 from __future__ import annotations
 
-import difflib
 import hashlib
 import ipaddress
 import os
 import re
 import tomllib
-from collections.abc import Callable
-from dataclasses import dataclass, field
+from collections.abc import Mapping
+from dataclasses import MISSING, asdict, dataclass, field, fields, replace
 from datetime import time
 from pathlib import Path
 from typing import Any
 from urllib.parse import urlsplit
 
 from collector.errors import RecipeError, RecipeProblem
-
-Check = Callable[[Any], str | None]
+from collector.schema import (
+    Check,
+    Key,
+    Problems,
+    at_least,
+    check_table,
+    describe,
+    did_you_mean,
+    env_names,
+    one_of,
+)
 
 PRODUCT_TOKEN_RE = re.compile(r"^[A-Za-z_-]+$")  # RFC 9309 section 2.2.1
 EMAIL_RE = re.compile(r"^[^@\s<>]+@[^@\s<>]+\.[^@\s<>]+$")
 DURATION_RE = re.compile(r"^(?:(\d+)h)?\s*(?:(\d+)m)?\s*(?:(\d+)s)?$")
 SPDX_ID_RE = re.compile(r"^[A-Za-z0-9][A-Za-z0-9.+-]*$")
-ENV_REF_RE = re.compile(r"\$\{([A-Za-z_][A-Za-z0-9_]*)\}")  # "${NAME}" in params and headers
 
 # The default allowlist: public-domain dedications and marks, CC BY and CC BY-SA (unported
 # versions). SPDX License List ids; see ../shared reference standards section 7.
@@ -38,33 +45,6 @@ DEFAULT_LICENCES = [
     "CC-BY-1.0", "CC-BY-2.0", "CC-BY-2.5", "CC-BY-3.0", "CC-BY-4.0",
     "CC-BY-SA-1.0", "CC-BY-SA-2.0", "CC-BY-SA-2.5", "CC-BY-SA-3.0", "CC-BY-SA-4.0",
 ]
-
-
-@dataclass(frozen=True)
-class Key:
-    """What one recipe key accepts: a type name, a default and an optional extra check."""
-
-    kind: str  # "str" | "int" | "float" | "bool" | "list[str]" | "table[str]"
-    default: Any
-    check: Check | None = None
-
-
-def _at_least(minimum: float, *, strict: bool = False) -> Check:
-    def check(value: Any) -> str | None:
-        if strict and value <= minimum:
-            return f"must be greater than {minimum:g}, got {value!r}"
-        if not strict and value < minimum:
-            return f"must be {minimum:g} or more, got {value!r}"
-        return None
-    return check
-
-
-def _one_of(*choices: str) -> Check:
-    def check(value: Any) -> str | None:
-        if value not in choices:
-            return f"must be one of {', '.join(repr(c) for c in choices)}, got {value!r}"
-        return None
-    return check
 
 
 def check_contact(value: Any) -> str | None:
@@ -121,22 +101,10 @@ def _check_spdx_list(values: Any) -> str | None:
     return None
 
 
-def expand_env(text: str, *, strict: bool = False) -> str:
-    """Replace each ``${NAME}`` with the environment variable NAME, so recipes can be shared
-    without their keys. Unset names become "" unless ``strict`` (KeyError names the first)."""
-    def value(match: re.Match[str]) -> str:
-        name = match.group(1)
-        if strict and name not in os.environ:
-            raise KeyError(name)
-        return os.environ.get(name, "")
-
-    return ENV_REF_RE.sub(value, text)
-
-
 def unset_env(recipe: Recipe) -> list[RecipeProblem]:
     """A problem for every ``${NAME}`` the recipe uses whose variable is not set."""
     places: list[tuple[str, Any]] = [
-        (f"network.headers.{k}", v) for k, v in recipe.network["headers"].items()]
+        (f"network.headers.{k}", v) for k, v in recipe.network.headers.items()]
     for i, src in enumerate(recipe.sources):
         for table in ("params", "headers"):
             places += [(f"sources[{i}].{table}.{k}", v)
@@ -145,7 +113,7 @@ def unset_env(recipe: Recipe) -> list[RecipeProblem]:
                           f"uses ${{{name}}}, but the environment variable {name} is not set; "
                           "set it before gathering")
             for path, text in places if isinstance(text, str)
-            for name in ENV_REF_RE.findall(text) if name not in os.environ]
+            for name in env_names(text) if name not in os.environ]
 
 
 def parse_clock(value: str) -> time:
@@ -170,113 +138,117 @@ def parse_duration(value: str) -> float:
     return float(total)
 
 
-BUDGET_KEYS: dict[str, Key] = {
-    "min_interval": Key("float", 3.0, _at_least(0)),
-    "requests_per_hour": Key("int", 1000, _at_least(0, strict=True)),
-    "bytes_per_hour": Key("int", 2_000_000_000, _at_least(0, strict=True)),
-    "max_connections": Key("int", 1, _at_least(1)),
-    "max_attempts": Key("int", 5, _at_least(1)),
-    "max_retry_after": Key("float", 3600.0, _at_least(0, strict=True)),
-    "backoff_base": Key("float", 1.0, _at_least(0)),
-    "backoff_max": Key("float", 300.0, _at_least(0)),
-}
+def _setting(default: Any, check: Check | None = None) -> Any:
+    """A scalar field of a recipe section: its default and an optional extra check (the key's
+    type is the field's annotation, see section_keys). Lists and tables use
+    ``field(default_factory=..., metadata={"check": ...})``."""
+    return field(default=default, metadata={"check": check})
 
-SECTIONS: dict[str, dict[str, Key]] = {
-    "collection": {
-        "name": Key("str", "My collection"),
-        "description": Key("str", ""),
-        "curator": Key("str", ""),
-    },
-    "budgets": BUDGET_KEYS,
-    "network": {
-        "connect_timeout": Key("float", 10.0, _at_least(0, strict=True)),
-        "read_timeout": Key("float", 30.0, _at_least(0, strict=True)),
-        "download_deadline": Key("float", 300.0, _at_least(0, strict=True)),
-        "max_image_bytes": Key("int", 50_000_000, _at_least(0, strict=True)),
-        "max_page_bytes": Key("int", 10_000_000, _at_least(0, strict=True)),
-        "allow_addresses": Key("list[str]", [], _check_addresses),
-        "secret_params": Key("list[str]", []),
-        "secret_headers": Key("list[str]", ["Authorization", "Cookie"]),
-        "headers": Key("table[str]", {}),
-    },
-    "licences": {
-        "allow": Key("list[str]", DEFAULT_LICENCES, _check_spdx_list),
-        "allow_unknown": Key("bool", False),
-    },
-    "images": {
-        "min_side": Key("int", 0, _at_least(0)),
-        "min_aspect": Key("float", 0.0, _at_least(0)),
-        "max_aspect": Key("float", 0.0, _at_least(0)),
-        "max_pixels": Key("int", 89_478_485, _at_least(0, strict=True)),
-        "near_distance": Key("int", 8, _at_least(0)),
-        "near_duplicates": Key("str", "keep", _one_of("keep", "drop")),
-    },
-    "stop": {
-        "max_items": Key("int", 0, _at_least(0)),
-        "until": Key("str", "", lambda v: _check_clock(v) if v else None),
-        "duration": Key("str", "", lambda v: _check_duration(v) if v else None),
-    },
+
+# Field annotation -> collector.schema type name.
+_FIELD_TYPES = {"str": "str", "int": "int", "float": "float", "bool": "bool",
+                "list[str]": "list[str]", "dict[str, str]": "table[str]"}
+
+
+def section_keys(section: type) -> dict[str, Key]:
+    """The recipe keys of a section dataclass: one Key per field, with its default."""
+    keys: dict[str, Key] = {}
+    for f in fields(section):
+        default = f.default if f.default is not MISSING else f.default_factory()  # type: ignore[misc]
+        keys[f.name] = Key(_FIELD_TYPES[str(f.type)], default, check=f.metadata.get("check"))
+    return keys
+
+
+@dataclass(frozen=True)
+class Budget:
+    """Limits for one host: the recipe's ``[budgets]`` keys with their defaults (also what a
+    ``[budgets.hosts."host"]`` table overlays)."""
+
+    min_interval: float = _setting(3.0, at_least(0))
+    requests_per_hour: int = _setting(1000, at_least(0, strict=True))
+    bytes_per_hour: int = _setting(2_000_000_000, at_least(0, strict=True))
+    max_connections: int = _setting(1, at_least(1))
+    max_attempts: int = _setting(5, at_least(1))
+    max_retry_after: float = _setting(3600.0, at_least(0, strict=True))
+    backoff_base: float = _setting(1.0, at_least(0))
+    backoff_max: float = _setting(300.0, at_least(0))
+
+    @classmethod
+    def from_table(cls, table: Mapping[str, Any], base: Budget | None = None) -> Budget:
+        """Overlay the known keys of a recipe table on ``base`` (defaults if None)."""
+        known = {f.name for f in fields(cls)}
+        values = {k: v for k, v in table.items() if k in known}
+        return replace(base or cls(), **values)
+
+
+@dataclass(frozen=True)
+class CollectionInfo:
+    """``[collection]``: what the collection is called and who curates it."""
+
+    name: str = _setting("My collection")
+    description: str = _setting("")
+    curator: str = _setting("")
+
+
+@dataclass(frozen=True)
+class Network:
+    """``[network]``: timeouts, size caps, the address allowlist, secrets, extra headers."""
+
+    connect_timeout: float = _setting(10.0, at_least(0, strict=True))
+    read_timeout: float = _setting(30.0, at_least(0, strict=True))
+    download_deadline: float = _setting(300.0, at_least(0, strict=True))
+    max_image_bytes: int = _setting(50_000_000, at_least(0, strict=True))
+    max_page_bytes: int = _setting(10_000_000, at_least(0, strict=True))
+    allow_addresses: list[str] = field(default_factory=list,
+                                       metadata={"check": _check_addresses})
+    secret_params: list[str] = field(default_factory=list)
+    secret_headers: list[str] = field(default_factory=lambda: ["Authorization", "Cookie"])
+    headers: dict[str, str] = field(default_factory=dict)
+
+
+@dataclass(frozen=True)
+class Licences:
+    """``[licences]``: the SPDX allowlist and whether unknown licences are kept."""
+
+    allow: list[str] = field(default_factory=lambda: list(DEFAULT_LICENCES),
+                             metadata={"check": _check_spdx_list})
+    allow_unknown: bool = _setting(False)
+
+
+@dataclass(frozen=True)
+class Images:
+    """``[images]``: the ingest limits and the near-duplicate policy."""
+
+    min_side: int = _setting(0, at_least(0))
+    min_aspect: float = _setting(0.0, at_least(0))
+    max_aspect: float = _setting(0.0, at_least(0))
+    max_pixels: int = _setting(89_478_485, at_least(0, strict=True))
+    near_distance: int = _setting(8, at_least(0))
+    near_duplicates: str = _setting("keep", one_of("keep", "drop"))
+
+
+@dataclass(frozen=True)
+class Stop:
+    """``[stop]``: when a gather stops on its own ("" and 0 mean never)."""
+
+    max_items: int = _setting(0, at_least(0))
+    until: str = _setting("", lambda v: _check_clock(v) if v else None)
+    duration: str = _setting("", lambda v: _check_duration(v) if v else None)
+
+
+SECTIONS: dict[str, type] = {
+    "collection": CollectionInfo, "budgets": Budget, "network": Network,
+    "licences": Licences, "images": Images, "stop": Stop,
 }
+SECTION_KEYS: dict[str, dict[str, Key]] = {
+    name: section_keys(cls) for name, cls in SECTIONS.items()}
+BUDGET_KEYS = SECTION_KEYS["budgets"]
 
 TOP_KEYS: dict[str, Key] = {
-    "contact": Key("str", "", check_contact),
-    "product_token": Key("str", "collector", _check_token),
+    "contact": Key("str", "", check=check_contact),
+    "product_token": Key("str", "collector", check=_check_token),
 }
 ALL_TOP = [*TOP_KEYS, *SECTIONS, "sources"]
-
-
-def did_you_mean(word: str, choices: list[str]) -> str:
-    """A ' (did you mean "x"?)' suffix for an unknown key, or ''."""
-    close = difflib.get_close_matches(word, choices, n=1, cutoff=0.6)
-    return f" (did you mean {close[0]!r}?)" if close else ""
-
-
-def type_problem(kind: str, value: Any) -> str | None:
-    """Why ``value`` is not of the recipe type ``kind``, or None."""
-    ok = {
-        "str": isinstance(value, str),
-        "int": isinstance(value, int) and not isinstance(value, bool),
-        "float": isinstance(value, int | float) and not isinstance(value, bool),
-        "bool": isinstance(value, bool),
-        "list[str]": isinstance(value, list) and all(isinstance(v, str) for v in value),
-        "table[str]": isinstance(value, dict) and all(isinstance(v, str) for v in value.values()),
-    }[kind]
-    if ok:
-        return None
-    wanted = {"str": "a string", "int": "a whole number", "float": "a number",
-              "bool": "true or false", "list[str]": "a list of strings",
-              "table[str]": "a table of strings"}[kind]
-    return f"must be {wanted}, got {_describe(value)}"
-
-
-def _describe(value: Any) -> str:
-    names = {str: "a string", bool: "a boolean", int: "a whole number", float: "a number",
-             list: "a list", dict: "a table"}
-    return f"{names.get(type(value), type(value).__name__)} ({value!r})"[:120]
-
-
-def check_table(table: dict[str, Any], spec: dict[str, Key], prefix: str, file: str,
-                problems: list[RecipeProblem]) -> dict[str, Any]:
-    """Check one table against its spec; return it with defaults filled in."""
-    out: dict[str, Any] = {}
-    for key, value in table.items():
-        path = f"{prefix}.{key}" if prefix else key
-        if key not in spec:
-            problems.append(RecipeProblem(
-                file, path, f"unknown key{did_you_mean(key, list(spec))}; allowed here: "
-                f"{', '.join(spec)}"))
-            continue
-        why = type_problem(spec[key].kind, value)
-        if why is None and spec[key].check is not None:
-            why = spec[key].check(value)
-        if why:
-            problems.append(RecipeProblem(file, path, why))
-        else:
-            out[key] = value
-    for key, rule in spec.items():
-        if key not in out and key not in table:
-            out[key] = rule.default
-    return out
 
 
 @dataclass(frozen=True)
@@ -287,87 +259,75 @@ class Recipe:
     sha256: str
     contact: str
     product_token: str
-    collection: dict[str, Any]
-    budgets: dict[str, Any]
-    host_budgets: dict[str, dict[str, Any]]
-    network: dict[str, Any]
-    licences: dict[str, Any]
-    images: dict[str, Any]
-    stop: dict[str, Any]
+    collection: CollectionInfo
+    budgets: Budget
+    host_budgets: dict[str, dict[str, Any]]  # host -> only the keys its table overrides
+    network: Network
+    licences: Licences
+    images: Images
+    stop: Stop
     sources: list[dict[str, Any]] = field(default_factory=list)
 
-    def budget_for(self, host: str) -> dict[str, Any]:
+    def budget_for(self, host: str) -> Budget:
         """The budget in force for ``host`` (``host`` or ``host:port``): defaults + override."""
         bare = host.rsplit(":", 1)[0] if host.count(":") == 1 else host
-        merged = dict(self.budgets)
-        merged.update(self.host_budgets.get(bare, {}))
-        merged.update(self.host_budgets.get(host, {}))
-        return merged
+        merged = Budget.from_table(self.host_budgets.get(bare, {}), self.budgets)
+        return Budget.from_table(self.host_budgets.get(host, {}), merged)
 
     def as_dict(self) -> dict[str, Any]:
         """The settings a run would use, as plain data (for ``collector check``)."""
         return {
             "contact": self.contact, "product_token": self.product_token,
-            "collection": self.collection, "budgets": self.budgets,
-            "budgets.hosts": self.host_budgets, "network": self.network,
-            "licences": self.licences, "images": self.images, "stop": self.stop,
-            "sources": self.sources,
+            "collection": asdict(self.collection), "budgets": asdict(self.budgets),
+            "budgets.hosts": self.host_budgets, "network": asdict(self.network),
+            "licences": asdict(self.licences), "images": asdict(self.images),
+            "stop": asdict(self.stop), "sources": self.sources,
         }
 
 
-def _check_host_budgets(raw: Any, file: str, problems: list[RecipeProblem]) -> dict:
+def _check_host_budgets(raw: Any, problems: Problems) -> dict:
     hosts: dict[str, dict[str, Any]] = {}
     if not isinstance(raw, dict):
-        problems.append(RecipeProblem(file, "budgets.hosts",
-                                      f"must be a table of host tables, got {_describe(raw)}"))
+        problems.add("budgets.hosts", f"must be a table of host tables, got {describe(raw)}")
         return hosts
     for host, table in raw.items():
         path = f'budgets.hosts."{host}"'
         if not isinstance(table, dict):
-            problems.append(RecipeProblem(file, path, f"must be a table, got {_describe(table)}"))
+            problems.add(path, f"must be a table, got {describe(table)}")
             continue
-        checked = check_table(table, BUDGET_KEYS, path, file, problems)
+        checked = check_table(table, BUDGET_KEYS, path, problems)
         hosts[host] = {k: v for k, v in checked.items() if k in table}
     return hosts
 
 
-def _check_sources(raw: Any, file: str, problems: list[RecipeProblem]) -> list[dict]:
-    # Imported here: sources/ depends on collector.errors, not the other way round.
+def _check_sources(raw: Any, problems: Problems) -> list[dict]:
+    # Imported here, not at the top: the source kinds import collector.schema, and loading the
+    # registry (and any kinds from other packages) is only needed when a recipe has sources.
     import sources as adapters
 
     if not isinstance(raw, list) or not all(isinstance(t, dict) for t in raw):
-        problems.append(RecipeProblem(
-            file, "sources", "must be an array of tables written as [[sources]]"))
+        problems.add("sources", "must be an array of tables written as [[sources]]")
         return []
     seen: set[str] = set()
     for i, table in enumerate(raw):
         prefix = f"sources[{i}]"
         name = table.get("name")
         if not isinstance(name, str) or not name.strip():
-            problems.append(RecipeProblem(file, f"{prefix}.name",
-                                          "is required: a short unique name for this source"))
+            problems.add(f"{prefix}.name", "is required: a short unique name for this source")
         elif name in seen:
-            problems.append(RecipeProblem(file, f"{prefix}.name",
-                                          f"{name!r} is used by an earlier source; names must "
-                                          "be unique"))
+            problems.add(f"{prefix}.name",
+                         f"{name!r} is used by an earlier source; names must be unique")
         else:
             seen.add(name)
-        kind = table.get("kind")
-        if kind not in adapters.KINDS:
-            problems.append(RecipeProblem(
-                file, f"{prefix}.kind",
-                f"must be one of {', '.join(repr(k) for k in adapters.KINDS)}, got {kind!r}"
-                + (did_you_mean(str(kind), list(adapters.KINDS)) if kind else "")))
-            continue
-        for problem in adapters.validate_source(table, prefix):
-            problems.append(RecipeProblem(file, problem.key_path, problem.message))
+        problems.extend(p for p in adapters.validate_source(table, prefix)
+                        if p.key_path != f"{prefix}.name")
     return list(raw)
 
 
 def parse_recipe(text: str, path: Path) -> Recipe:
     """Validate recipe text; raises RecipeError listing every problem."""
     file = str(path)
-    problems: list[RecipeProblem] = []
+    problems = Problems(file)
     try:
         data = tomllib.loads(text)
     except tomllib.TOMLDecodeError as exc:
@@ -375,41 +335,38 @@ def parse_recipe(text: str, path: Path) -> Recipe:
 
     for key in data:
         if key not in ALL_TOP:
-            problems.append(RecipeProblem(file, key, f"unknown key{did_you_mean(key, ALL_TOP)}; "
-                                          f"allowed at the top: {', '.join(ALL_TOP)}"))
-    top = check_table({k: v for k, v in data.items() if k in TOP_KEYS}, TOP_KEYS, "", file,
-                      problems)
+            problems.add(key, f"unknown key{did_you_mean(key, ALL_TOP)}; "
+                         f"allowed at the top: {', '.join(ALL_TOP)}")
+    top = check_table({k: v for k, v in data.items() if k in TOP_KEYS}, TOP_KEYS, "", problems)
     if "contact" not in data:
-        problems.append(RecipeProblem(file, "contact", check_contact("") or ""))
+        problems.add("contact", check_contact("") or "")
 
     sections: dict[str, dict[str, Any]] = {}
     host_budgets: dict[str, dict[str, Any]] = {}
-    for name, spec in SECTIONS.items():
+    for name, spec in SECTION_KEYS.items():
         table = data.get(name, {})
         if not isinstance(table, dict):
-            problems.append(RecipeProblem(file, name, f"must be a table ([{name}]), got "
-                                          f"{_describe(table)}"))
+            problems.add(name, f"must be a table ([{name}]), got {describe(table)}")
             table = {}
         table = dict(table)
         if name == "budgets" and "hosts" in table:
-            host_budgets = _check_host_budgets(table.pop("hosts"), file, problems)
-        sections[name] = check_table(table, spec, name, file, problems)
+            host_budgets = _check_host_budgets(table.pop("hosts"), problems)
+        sections[name] = check_table(table, spec, name, problems)
 
-    images = sections["images"]
-    if images["min_aspect"] and images["max_aspect"] and images["min_aspect"] > images[
-            "max_aspect"]:
-        problems.append(RecipeProblem(file, "images.max_aspect",
-                                      "must be greater than images.min_aspect"))
-    source_list = _check_sources(data["sources"], file, problems) if "sources" in data else []
+    low, high = sections["images"].get("min_aspect"), sections["images"].get("max_aspect")
+    if low and high and low > high:
+        problems.add("images.max_aspect", "must be greater than images.min_aspect")
+    source_list = _check_sources(data["sources"], problems) if "sources" in data else []
 
     if problems:
-        raise RecipeError(problems)
+        raise RecipeError(problems.items)
     return Recipe(
         path=path, sha256=hashlib.sha256(text.encode()).hexdigest(),
         contact=str(top["contact"]).strip(), product_token=top["product_token"],
-        collection=sections["collection"], budgets=sections["budgets"],
-        host_budgets=host_budgets, network=sections["network"],
-        licences=sections["licences"], images=images, stop=sections["stop"],
+        collection=CollectionInfo(**sections["collection"]),
+        budgets=Budget(**sections["budgets"]), host_budgets=host_budgets,
+        network=Network(**sections["network"]), licences=Licences(**sections["licences"]),
+        images=Images(**sections["images"]), stop=Stop(**sections["stop"]),
         sources=source_list)
 
 

@@ -52,8 +52,9 @@ from collector.hashindex import HashIndex, NearMatch, to_signed
 from collector.images import ImageFacts, inspect_image
 from collector.ledger import Ledger, utc_now
 from collector.licences import licence_allowed, normalise_licence, rights_conflict
-from collector.recipe import Recipe, expand_env, parse_clock, parse_duration, unset_env
+from collector.recipe import Recipe, parse_clock, parse_duration, unset_env
 from collector.safe_text import shown_name
+from collector.schema import expand_env
 from collector.urls import (
     MIN_SECRET_LEN,
     header_secrets,
@@ -97,8 +98,8 @@ def stop_rules(recipe: Recipe, *, until: str | None = None, duration: str | None
     """Combine the recipe's [stop] table with command-line options (options win)."""
     now = now or datetime.now().astimezone()
     deadlines: list[float] = []
-    until = until if until is not None else recipe.stop["until"]
-    duration = duration if duration is not None else recipe.stop["duration"]
+    until = until if until is not None else recipe.stop.until
+    duration = duration if duration is not None else recipe.stop.duration
     try:
         if until:
             at = datetime.combine(now.date(), parse_clock(until), tzinfo=now.tzinfo)
@@ -111,7 +112,7 @@ def stop_rules(recipe: Recipe, *, until: str | None = None, duration: str | None
         raise RecipeError([RecipeProblem("command line", "--until/--for",
                                          f"cannot read {exc.args[0]!r}: use HH:MM and e.g. 8h")]
                           ) from exc
-    limit = max_items if max_items is not None else recipe.stop["max_items"]
+    limit = max_items if max_items is not None else recipe.stop.max_items
     return StopRules(min(deadlines) if deadlines else None, int(limit or 0))
 
 
@@ -190,7 +191,7 @@ class Gatherer:
         self._source_ids = [ledger.source_id(src["name"], src["kind"], src)
                             for src in recipe.sources]
         self._source_rank = {sid: rank for rank, sid in enumerate(self._source_ids)}
-        everywhere = tuple(recipe.network.get("secret_params") or ())
+        everywhere = tuple(recipe.network.secret_params)
         self._secret_params = {sid: (*(src.get("secret_params") or ()), *everywhere)
                                for src, sid in zip(recipe.sources, self._source_ids, strict=True)}
         self._secrets = secret_values(recipe)
@@ -349,8 +350,8 @@ class Gatherer:
         else:
             item_id = self.ledger.add_item(source_id, c.source_key, fields)
         self._item_source[item_id] = source_id
-        ok, reason = licence_allowed(licence.spdx_id, self.recipe.licences["allow"],
-                                     self.recipe.licences["allow_unknown"])
+        ok, reason = licence_allowed(licence.spdx_id, self.recipe.licences.allow,
+                                     self.recipe.licences.allow_unknown)
         if not ok:
             detail = (f"licence {c.licence_raw or c.licence_url or '(none)'!r} "
                       + (f"is {licence.spdx_id}, not in the allowlist" if licence.spdx_id
@@ -392,7 +393,7 @@ class Gatherer:
             if q is None:
                 q = self._queues[host] = queue.Queue()
                 self.hosts[host] = HostStats()
-                for n in range(int(self.recipe.budget_for(host)["max_connections"])):
+                for n in range(self.recipe.budget_for(host).max_connections):
                     t = threading.Thread(target=self._host_worker, args=(host, q), daemon=True,
                                          name=f"host-{host}-{n}")
                     self._workers.append(t)
@@ -507,10 +508,10 @@ class Gatherer:
             images = self.recipe.images
             try:
                 facts = inspect_image(path, content_type=content_type, url=url,
-                                      max_pixels=images["max_pixels"],
-                                      min_side=images["min_side"],
-                                      min_aspect=images["min_aspect"],
-                                      max_aspect=images["max_aspect"], full_decode=False)
+                                      max_pixels=images.max_pixels,
+                                      min_side=images.min_side,
+                                      min_aspect=images.min_aspect,
+                                      max_aspect=images.max_aspect, full_decode=False)
             except ImageRejected as exc:
                 self._finish(item_id, "rejected", exc.reason, exc.detail, **extra)
                 return
@@ -576,7 +577,7 @@ class Gatherer:
         """A stored original turns out to be a near copy of an earlier-listed item."""
         detail = (f"probably a {'mirrored' if match.mirrored else 'resized or re-encoded'} "
                   f"copy of item {new_id} (distance {match.distance})")
-        drop = self.recipe.images["near_duplicates"] == "drop"
+        drop = self.recipe.images.near_duplicates == "drop"
         with self.ledger.transaction():
             self.ledger.update_item(original_id, state="near_duplicate",
                                     reason="near_duplicate",
@@ -601,7 +602,7 @@ class Gatherer:
         if conflict:
             flags.append("licence_conflict")
         near = self.index.nearest(facts.phash, facts.phash_mirror,
-                                  int(self.recipe.images["near_distance"]))
+                                  self.recipe.images.near_distance)
         state, reason, detail = "stored", None, conflict
         demote: tuple[int, NearMatch] | None = None
         if near:
@@ -619,7 +620,7 @@ class Gatherer:
                 state, reason = "near_duplicate", "near_duplicate"
                 detail = (f"probably a {'mirrored' if best.mirrored else 'resized or re-encoded'}"
                           f" copy of item {original_id} (distance {best.distance})")
-                if self.recipe.images["near_duplicates"] == "drop":
+                if self.recipe.images.near_duplicates == "drop":
                     self._finish(item_id, state, reason,
                                  detail + "; not stored (recipe: drop)", **extra)
                     return
@@ -708,13 +709,13 @@ def secret_values(recipe: Recipe) -> list[str]:
     secret_params, and secret headers (also their last word, so "Bearer <token>" hides the
     token)."""
     found: list[str] = []
-    listed = tuple(recipe.network.get("secret_headers") or ())
-    everywhere = list(recipe.network.get("secret_params") or ())
+    listed = tuple(recipe.network.secret_headers)
+    everywhere = list(recipe.network.secret_params)
     for src in recipe.sources:
         params = src.get("params") or {}
         found += [expand_env(str(params[n]))
                   for n in [*(src.get("secret_params") or ()), *everywhere] if n in params]
-    for headers in [recipe.network.get("headers") or {},
+    for headers in [recipe.network.headers,
                     *(src.get("headers") or {} for src in recipe.sources)]:
         for name, value in headers.items():
             if is_secret_header(name, listed):

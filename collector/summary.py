@@ -12,6 +12,7 @@ from collections import Counter
 from dataclasses import dataclass, field
 from typing import Any
 
+import sources
 from collector.errors import CollectorError
 from collector.ledger import Ledger
 from collector.recipe import Recipe
@@ -190,17 +191,17 @@ def estimate(recipe: Recipe, ledger: Ledger) -> Estimate:
     listed = {r["name"] for r in ledger.query(
         "SELECT DISTINCT s.name FROM sources s JOIN items i ON i.source_id = s.id")}
     unknown = [s["name"] for s in recipe.sources
-               if s["kind"] != "scans" and s["name"] not in listed]
+               if sources.get_kind(s["kind"]).uses_network and s["name"] not in listed]
     interval: dict[str, float] = {}
     seconds = 0.0
     for host, n in per_host.items():
         budget = recipe.budget_for(host)
         row = ledger.get_host(host)
         effective = (row or {}).get("effective_budget") or {}
-        step = max(float(budget["min_interval"]), 3600.0 / budget["requests_per_hour"],
+        step = max(float(budget.min_interval), 3600.0 / budget.requests_per_hour,
                    float(effective.get("effective_interval", 0) or 0))
         interval[host] = step
-        seconds = max(seconds, n * step / max(1, budget["max_connections"]))
+        seconds = max(seconds, n * step / max(1, budget.max_connections))
     return Estimate(dict(per_host), interval, math.ceil(seconds), unknown)
 
 
@@ -209,9 +210,9 @@ def format_estimate(recipe: Recipe, est: Estimate) -> list[str]:
     lines = ["dry run: nothing is requested.", "sources:"]
     for source in recipe.sources:
         lines.append(f"  {source['name']} ({source['kind']})")
-    lines.append(f"budget defaults: one request every {recipe.budgets['min_interval']:g} s at "
-                 f"most, {recipe.budgets['requests_per_hour']} per hour, "
-                 f"{recipe.budgets['max_connections']} connection(s) per host; robots.txt "
+    lines.append(f"budget defaults: one request every {recipe.budgets.min_interval:g} s at "
+                 f"most, {recipe.budgets.requests_per_hour} per hour, "
+                 f"{recipe.budgets.max_connections} connection(s) per host; robots.txt "
                  "Crawl-delay can only slow this down")
     if est.per_host:
         lines.append("candidates waiting per host (from earlier listings):")
@@ -221,8 +222,8 @@ def format_estimate(recipe: Recipe, est: Estimate) -> list[str]:
         lines.append(f"estimated time for the images already listed: "
                      f"{human_seconds(est.seconds)} (hosts are served in parallel)")
     if est.unknown_sources:
-        per_hour = 3600 / max(recipe.budgets["min_interval"], 3600 /
-                              recipe.budgets["requests_per_hour"])
+        per_hour = 3600 / max(recipe.budgets.min_interval, 3600 /
+                              recipe.budgets.requests_per_hour)
         lines.append(f"not listed yet: {', '.join(est.unknown_sources)}. Their size is unknown "
                      f"until a run lists them; at these budgets one host gives at most "
                      f"{per_hour:.0f} images per hour (20,000 images at one request every 3 s "

@@ -342,9 +342,9 @@ class Tracer:
         threshold = DEFAULT_NEAR_DISTANCE
         try:
             recipe = collection.recipe()
-            threshold = int(recipe.images["near_distance"])
-            allow = list(recipe.licences["allow"])
-            allow_unknown = bool(recipe.licences["allow_unknown"])
+            threshold = recipe.images.near_distance
+            allow = list(recipe.licences.allow)
+            allow_unknown = recipe.licences.allow_unknown
         except CollectorError as exc:
             problem = str(exc)
         ledger = collection.ledger(readonly=True)

@@ -1,28 +1,34 @@
-"""Shared types for source adapters: Candidate, SourceNote, the PageFetcher protocol, and the
-small validation helpers every adapter kind uses."""
+"""The source-kind contract and the types every kind shares: SourceKind, Candidate, SourceNote,
+the Page/PageFetcher protocols, and small URL and text helpers.
+
+A kind validates its table with the one recipe schema (collector.schema); it never imports an
+HTTP library (it is handed the fetcher) and never downloads images.
+"""
 
 from __future__ import annotations
 
 import json
-from collections.abc import Callable, Iterable, Mapping
+from collections.abc import Callable, Iterable, Iterator, Mapping
 from dataclasses import dataclass, field
-from datetime import date, datetime
 from pathlib import Path
 from typing import Any, Protocol
 from urllib.parse import parse_qsl, urlencode, urljoin, urlsplit, urlunsplit
 
 from collector import urls
 from collector.errors import FetchError, RecipeProblem, SourceError
-from collector.recipe import did_you_mean, expand_env
+from collector.schema import Key, Problems
 
 __all__ = [
     "Candidate",
+    "CheckSource",
     "FetchError",
+    "ListCandidates",
     "NoteSink",
     "Page",
     "PageFetcher",
     "RecipeProblem",
     "SourceError",
+    "SourceKind",
     "SourceNote",
 ]
 
@@ -85,6 +91,42 @@ class PageFetcher(Protocol):
         headers: Mapping[str, str] | None = None,
         secret_params: Iterable[str] = (),
     ) -> Page: ...
+
+
+ListCandidates = Callable[[Mapping[str, Any], PageFetcher | None, NoteSink, Path],
+                          Iterator[Candidate]]
+CheckSource = Callable[[Mapping[str, Any], str, Problems], None]
+
+
+@dataclass(frozen=True)
+class SourceKind:
+    """One source kind: everything the rest of collector knows about it.
+
+    A kind module exports one of these as ``KIND``; built-in kinds are the modules of this
+    package that do, other packages register theirs under the entry-point group
+    ``collector.sources`` (see sources.registry).
+
+    - ``keys``: the table's keys besides ``name`` and ``kind`` (collector.schema.Key); unknown
+      keys, types, required keys and per-value checks are reported from these.
+    - ``check``: optional checks across keys, run after ``keys``; adds to the Problems it is
+      given (key paths start with the prefix it is given, e.g. "sources[1]").
+    - ``list_candidates(source, fetcher, notes, base_dir)``: yields the Candidates of one valid
+      table; problems of the source go to ``notes``; pages only through ``fetcher`` (None when
+      ``uses_network`` is false); relative paths start at ``base_dir`` (the collection folder).
+    - ``uses_network``: whether listing sends requests (a dry run can estimate only those).
+    - ``mechanism``: how items are obtained, as a phrase for the datasheet ("a JSON web API,
+      read page by page").
+    - ``collection_type``: the Croissant RAI ``rai:dataCollectionType`` term for it ("Web API",
+      "Web Scraping", "Manual Human Curator", ... or "Others").
+    """
+
+    name: str
+    keys: Mapping[str, Key]
+    list_candidates: ListCandidates
+    uses_network: bool
+    mechanism: str
+    collection_type: str
+    check: CheckSource | None = None
 
 
 class OnceNotes:
@@ -150,12 +192,6 @@ def merge_query(url: str, params: Mapping[str, str]) -> str:
     return urlunsplit((parts.scheme, parts.netloc, parts.path, urlencode(query), parts.fragment))
 
 
-def expand_env_values(values: Mapping[str, Any] | None) -> dict[str, str]:
-    """A params/headers table with "${NAME}" references filled from the environment;
-    KeyError names a missing one."""
-    return {str(k): expand_env(str(v), strict=True) for k, v in (values or {}).items()}
-
-
 def as_text(value: Any) -> str | None:
     """A mapped field value as display text: scalars as str, lists joined with "; "."""
     if value is None:
@@ -180,128 +216,3 @@ def capped_json(value: Any, limit: int = 16_384) -> Any:
         return value
     prefix = text.encode("utf-8")[:limit].decode("utf-8", "ignore")
     return {"truncated": True, "json_prefix": prefix}
-
-
-# ---------------------------------------------------------------------------------------------
-# Validation helpers
-
-
-@dataclass(frozen=True)
-class Key:
-    """Schema entry for one recipe key: accepted types, whether required, a short hint."""
-
-    types: tuple[type, ...]
-    required: bool = False
-    hint: str = ""
-
-
-STR = (str,)
-INT = (int,)
-NUM = (int, float)
-BOOL = (bool,)
-LIST = (list,)
-TABLE = (dict,)
-DATEISH = (str, date, datetime)
-
-_TYPE_NAMES = {
-    str: "a string",
-    int: "an integer",
-    float: "a number",
-    bool: "true or false",
-    list: "a list",
-    dict: "a table",
-    date: "a date",
-    datetime: "a date-time",
-}
-
-
-class Problems:
-    """Collects RecipeProblems for one source table."""
-
-    def __init__(self, file: str) -> None:
-        self.file = file
-        self.items: list[RecipeProblem] = []
-
-    def add(self, key_path: str, message: str) -> None:
-        """Record one problem at key_path."""
-        self.items.append(RecipeProblem(self.file, key_path, message))
-
-
-def _type_ok(value: Any, types: tuple[type, ...]) -> bool:
-    if isinstance(value, bool):
-        return bool in types
-    if isinstance(value, datetime):
-        return datetime in types
-    return isinstance(value, types)
-
-
-def check_keys(
-    table: Mapping[str, Any], schema: Mapping[str, Key], prefix: str, problems: Problems
-) -> None:
-    """Report unknown keys (with "did you mean"), wrong types and missing required keys."""
-    for key, value in table.items():
-        path = f"{prefix}.{key}"
-        spec = schema.get(key)
-        if spec is None:
-            # Same wording as the top-level recipe checks (collector.recipe).
-            problems.add(path, f"unknown key{did_you_mean(str(key), list(schema))}; allowed "
-                               f"here: {', '.join(schema)}")
-            continue
-        if not _type_ok(value, spec.types):
-            wanted = " or ".join(_TYPE_NAMES.get(t, t.__name__) for t in spec.types)
-            problems.add(path, f"must be {wanted}, got {type(value).__name__} {value!r:.60}")
-    for key, spec in schema.items():
-        if spec.required and key not in table:
-            hint = f" ({spec.hint})" if spec.hint else ""
-            problems.add(f"{prefix}.{key}", f"required key is missing{hint}")
-
-
-def check_http_url(value: Any, path: str, problems: Problems) -> None:
-    """An absolute http or https URL with a host."""
-    if not isinstance(value, str):
-        return
-    try:
-        parts = urlsplit(value)
-    except ValueError:
-        parts = urlsplit("")
-    if parts.scheme.lower() not in ("http", "https") or not parts.netloc:
-        problems.add(path, f'must be an absolute http:// or https:// URL, got "{value}"')
-
-
-def check_str_list(value: Any, path: str, problems: Problems, *, non_empty: bool = True) -> bool:
-    """A list of non-empty strings; returns whether it was one."""
-    if not isinstance(value, list):
-        return False
-    if non_empty and not value:
-        problems.add(path, "must not be empty")
-        return False
-    ok = True
-    for i, v in enumerate(value):
-        if not isinstance(v, str) or not v.strip():
-            problems.add(f"{path}[{i}]", f"must be a non-empty string, got {v!r:.60}")
-            ok = False
-    return ok
-
-
-def check_str_table(value: Any, path: str, problems: Problems) -> None:
-    """A table whose values are strings or numbers (query parameters, headers)."""
-    if not isinstance(value, dict):
-        return
-    for k, v in value.items():
-        if isinstance(v, bool) or not isinstance(v, str | int | float):
-            problems.add(f"{path}.{k}", f"must be a string or number, got {v!r:.60}")
-
-
-def check_positive_int(value: Any, path: str, problems: Problems, *, minimum: int = 1) -> None:
-    """An integer at least minimum."""
-    if isinstance(value, int) and not isinstance(value, bool) and value < minimum:
-        problems.add(path, f"must be at least {minimum}, got {value}")
-
-
-def date_text(value: Any) -> str | None:
-    """A recipe date (TOML date or string) as ISO 8601 text."""
-    if value is None:
-        return None
-    if isinstance(value, date | datetime):
-        return value.isoformat()
-    return str(value)

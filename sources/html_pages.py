@@ -15,53 +15,53 @@ from typing import Any
 import soupsieve
 from bs4 import BeautifulSoup, Tag
 
+from collector.schema import (
+    Key,
+    Problems,
+    at_least,
+    check_str_list,
+    check_table,
+    check_value,
+    http_url,
+)
 from sources.base import (
-    INT,
-    LIST,
-    STR,
-    TABLE,
     Candidate,
     FetchError,
-    Key,
     NoteSink,
     OnceNotes,
     PageFetcher,
-    Problems,
-    RecipeProblem,
-    check_http_url,
-    check_keys,
-    check_positive_int,
-    check_str_list,
+    SourceError,
+    SourceKind,
     resolve_url,
     strip_fragment,
 )
 
 DEFAULT_MAX_PAGES = 100
 
-SOURCE_KEYS: dict[str, Key] = {
-    "name": Key(STR, True),
-    "kind": Key(STR, True),
-    "start_urls": Key(LIST, True, 'listing pages to start from, e.g. ["https://example.org/gallery/"]'),
-    "max_pages": Key(INT),
-    "select": Key(TABLE, True, 'CSS selectors; at least item = "..." (one block per image)'),
-    "detail": Key(TABLE),
+KEYS: dict[str, Key] = {
+    "start_urls": Key("list", required=True,
+                      hint='listing pages to start from, e.g. ["https://example.org/gallery/"]'),
+    "max_pages": Key("int", check=at_least(1)),
+    "select": Key("table", required=True,
+                  hint='CSS selectors; at least item = "..." (one block per image)'),
+    "detail": Key("table"),
 }
 SELECT_KEYS: dict[str, Key] = {
-    "item": Key(STR, True, 'the CSS selector of one item block, e.g. "li.tile"'),
-    "link": Key(STR),
-    "image": Key(STR),
-    "title": Key(STR),
-    "creator": Key(STR),
-    "licence": Key(STR),
-    "date": Key(STR),
-    "next": Key(STR),
+    "item": Key("str", required=True, hint='the CSS selector of one item block, e.g. "li.tile"'),
+    "link": Key("str"),
+    "image": Key("str"),
+    "title": Key("str"),
+    "creator": Key("str"),
+    "licence": Key("str"),
+    "date": Key("str"),
+    "next": Key("str"),
 }
 DETAIL_KEYS: dict[str, Key] = {
-    "image": Key(STR),
-    "title": Key(STR),
-    "creator": Key(STR),
-    "licence": Key(STR),
-    "date": Key(STR),
+    "image": Key("str"),
+    "title": Key("str"),
+    "creator": Key("str"),
+    "licence": Key("str"),
+    "date": Key("str"),
 }
 TEXT_FIELDS = ("title", "creator", "licence", "date")
 
@@ -79,25 +79,21 @@ def _check_selector(value: Any, path: str, problems: Problems) -> None:
         problems.add(path, f'is not a valid CSS selector ("{value}"): {first}')
 
 
-def validate(table: dict[str, Any], prefix: str) -> list[RecipeProblem]:
-    """All problems of one html source table."""
-    problems = Problems("")
-    check_keys(table, SOURCE_KEYS, prefix, problems)
+def check(table: Mapping[str, Any], prefix: str, problems: Problems) -> None:
+    """The checks inside one html source table (KEYS are checked first)."""
     urls = table.get("start_urls")
     if isinstance(urls, str):
         problems.add(f"{prefix}.start_urls", f'must be a list of URLs, e.g. ["{urls}"]')
     elif check_str_list(urls, f"{prefix}.start_urls", problems):
         for i, url in enumerate(urls):
-            check_http_url(url, f"{prefix}.start_urls[{i}]", problems)
-    check_positive_int(table.get("max_pages"), f"{prefix}.max_pages", problems)
+            check_value(url, http_url, f"{prefix}.start_urls[{i}]", problems)
     for section, schema in (("select", SELECT_KEYS), ("detail", DETAIL_KEYS)):
         sub = table.get(section)
         if isinstance(sub, dict):
-            check_keys(sub, schema, f"{prefix}.{section}", problems)
+            check_table(sub, schema, f"{prefix}.{section}", problems)
             for key, value in sub.items():
                 if key in schema:
                     _check_selector(value, f"{prefix}.{section}.{key}", problems)
-    return problems.items
 
 
 # ---------------------------------------------------------------------------------------------
@@ -463,8 +459,22 @@ class _Walker:
             values["licence_url"] = url
 
 
-def iter_candidates(source: Mapping[str, Any], fetcher: PageFetcher, notes: NoteSink,
+def iter_candidates(source: Mapping[str, Any], fetcher: PageFetcher | None, notes: NoteSink,
                     base_dir: Path) -> Iterator[Candidate]:
     """Yield the Candidates of one validated html source table."""
     del base_dir  # not used by this kind
+    if fetcher is None:
+        raise SourceError(str(source.get("name", "")), None, "an html source needs a fetcher")
     yield from _Walker(source, fetcher, OnceNotes(notes, str(source.get("name", "")))).run()
+
+
+KIND = SourceKind(
+    name="html",
+    keys=KEYS,
+    check=check,
+    list_candidates=iter_candidates,
+    uses_network=True,
+    mechanism="HTML listing pages (and item pages), read with CSS selectors",
+    # croissant-rai-spec.md, dataCollectionType recommended terms
+    collection_type="Web Scraping",
+)

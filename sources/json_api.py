@@ -18,30 +18,28 @@ import jmespath
 from jmespath.exceptions import JMESPathError
 from jmespath.parser import ParsedResult
 
-from collector.recipe import did_you_mean
+from collector.schema import (
+    Key,
+    Problems,
+    at_least,
+    check_str_list,
+    check_str_table,
+    check_table,
+    check_value,
+    did_you_mean,
+    http_url,
+)
 from sources.base import (
-    BOOL,
-    INT,
-    LIST,
-    STR,
-    TABLE,
     Candidate,
     FetchError,
-    Key,
     NoteSink,
     OnceNotes,
     Page,
     PageFetcher,
-    Problems,
-    RecipeProblem,
+    SourceError,
+    SourceKind,
     as_text,
     capped_json,
-    check_http_url,
-    check_keys,
-    check_positive_int,
-    check_str_list,
-    check_str_table,
-    expand_env_values,
     merge_query,
     redact,
     resolve_url,
@@ -50,16 +48,16 @@ from sources.base import (
 STYLES = ("page", "offset", "cursor", "next_url", "link_header", "none")
 DEFAULT_MAX_PAGES = 1000
 
-SOURCE_KEYS: dict[str, Key] = {
-    "name": Key(STR, True),
-    "kind": Key(STR, True),
-    "url": Key(STR, True, 'the listing endpoint, e.g. "https://example.org/api/items"'),
-    "params": Key(TABLE),
-    "secret_params": Key(LIST),
-    "headers": Key(TABLE),
-    "pagination": Key(TABLE),
-    "fields": Key(TABLE, True, 'JMESPath expressions; at least items = "..." and id = "..."'),
-    "detail": Key(TABLE),
+KEYS: dict[str, Key] = {
+    "url": Key("str", required=True, check=http_url,
+               hint='the listing endpoint, e.g. "https://example.org/api/items"'),
+    "params": Key("table"),
+    "secret_params": Key("list"),
+    "headers": Key("table"),
+    "pagination": Key("table"),
+    "fields": Key("table", required=True,
+                  hint='JMESPath expressions; at least items = "..." and id = "..."'),
+    "detail": Key("table"),
 }
 
 # Which pagination keys each style uses; REQUIRED lists the ones without a default.
@@ -76,17 +74,17 @@ STYLE_REQUIRED: dict[str, tuple[str, ...]] = {
     "next_url": ("next_path",),
 }
 PAGINATION_KEYS: dict[str, Key] = {
-    "style": Key(STR, True, "one of " + ", ".join(STYLES)),
-    "param": Key(STR),
-    "start": Key(INT),
-    "offset_param": Key(STR),
-    "limit_param": Key(STR),
-    "limit": Key(INT),
-    "cursor_path": Key(STR),
-    "cursor_param": Key(STR),
-    "next_path": Key(STR),
-    "total_path": Key(STR),
-    "max_pages": Key(INT),
+    "style": Key("str", required=True, hint="one of " + ", ".join(STYLES)),
+    "param": Key("str"),
+    "start": Key("int"),
+    "offset_param": Key("str"),
+    "limit_param": Key("str"),
+    "limit": Key("int", check=at_least(1)),
+    "cursor_path": Key("str"),
+    "cursor_param": Key("str"),
+    "next_path": Key("str"),
+    "total_path": Key("str"),
+    "max_pages": Key("int", check=at_least(1)),
 }
 PAGINATION_PATHS = ("cursor_path", "next_path", "total_path")
 
@@ -94,21 +92,23 @@ PAGINATION_PATHS = ("cursor_path", "next_path", "total_path")
 ITEM_FIELDS = ("title", "creator", "licence", "licence_url", "page_url", "date", "image_url")
 CANDIDATE_FIELDS = ("candidate_url", "candidate_width", "candidate_height", "candidate_label")
 FIELD_KEYS: dict[str, Key] = {
-    "items": Key(STR, True, 'where the item list is, e.g. "results" ("@" if the body is a list)'),
-    "id": Key(STR, True, 'a stable identifier per item, e.g. "id"'),
-    **{name: Key(STR) for name in ITEM_FIELDS},
-    "image_candidates": Key(STR),
-    **{name: Key(STR) for name in CANDIDATE_FIELDS},
-    "pick": Key(STR),
+    "items": Key("str", required=True,
+                 hint='where the item list is, e.g. "results" ("@" if the body is a list)'),
+    "id": Key("str", required=True, hint='a stable identifier per item, e.g. "id"'),
+    **{name: Key("str") for name in ITEM_FIELDS},
+    "image_candidates": Key("str"),
+    **{name: Key("str") for name in CANDIDATE_FIELDS},
+    "pick": Key("str"),
 }
 DETAIL_FIELD_KEYS: dict[str, Key] = {
     k: v for k, v in FIELD_KEYS.items() if k not in ("items", "id")
 }
 DETAIL_KEYS: dict[str, Key] = {
-    "url": Key(STR, True, 'a template such as "https://example.org/api/items/{id}"'),
-    "fields": Key(TABLE, True, "JMESPath expressions into the detail answer"),
-    "when": Key(STR),
-    "include_params": Key(BOOL),
+    "url": Key("str", required=True,
+               hint='a template such as "https://example.org/api/items/{id}"'),
+    "fields": Key("table", required=True, hint="JMESPath expressions into the detail answer"),
+    "when": Key("str"),
+    "include_params": Key("bool"),
 }
 WHEN = ("missing", "always")
 
@@ -139,11 +139,8 @@ def _template_names(template: str) -> list[str]:
     return [name for _, name, _, _ in string.Formatter().parse(template) if name is not None]
 
 
-def validate(table: dict[str, Any], prefix: str) -> list[RecipeProblem]:
-    """All problems of one json_api source table."""
-    problems = Problems("")
-    check_keys(table, SOURCE_KEYS, prefix, problems)
-    check_http_url(table.get("url"), f"{prefix}.url", problems)
+def check(table: Mapping[str, Any], prefix: str, problems: Problems) -> None:
+    """The checks across keys of one json_api source table (KEYS are checked first)."""
     check_str_table(table.get("params"), f"{prefix}.params", problems)
     check_str_table(table.get("headers"), f"{prefix}.headers", problems)
     secrets = table.get("secret_params")
@@ -162,7 +159,7 @@ def validate(table: dict[str, Any], prefix: str) -> list[RecipeProblem]:
     detail = table.get("detail")
     detail_fields = detail.get("fields") if isinstance(detail, dict) else None
     if isinstance(fields, dict):
-        check_keys(fields, FIELD_KEYS, f"{prefix}.fields", problems)
+        check_table(fields, FIELD_KEYS, f"{prefix}.fields", problems)
         _validate_field_exprs(fields, f"{prefix}.fields", problems)
         has_image = any(k in fields for k in ("image_url", "image_candidates"))
         if isinstance(detail_fields, dict):
@@ -174,7 +171,7 @@ def validate(table: dict[str, Any], prefix: str) -> list[RecipeProblem]:
                          "here or in detail.fields")
     if isinstance(detail, dict):
         path = f"{prefix}.detail"
-        check_keys(detail, DETAIL_KEYS, path, problems)
+        check_table(detail, DETAIL_KEYS, path, problems)
         url = detail.get("url")
         if isinstance(url, str):
             try:
@@ -190,14 +187,13 @@ def validate(table: dict[str, Any], prefix: str) -> list[RecipeProblem]:
             filled = url
             for name in names:
                 filled = filled.replace("{" + name + "}", "x")
-            check_http_url(filled, f"{path}.url", problems)
+            check_value(filled, http_url, f"{path}.url", problems)
         if isinstance(detail_fields, dict):
-            check_keys(detail_fields, DETAIL_FIELD_KEYS, f"{path}.fields", problems)
+            check_table(detail_fields, DETAIL_FIELD_KEYS, f"{path}.fields", problems)
             _validate_field_exprs(detail_fields, f"{path}.fields", problems)
         when = detail.get("when")
         if isinstance(when, str) and when not in WHEN:
             problems.add(f"{path}.when", f'must be "missing" or "always", got "{when}"')
-    return problems.items
 
 
 def _validate_field_exprs(fields: Mapping[str, Any], path: str, problems: Problems) -> None:
@@ -212,10 +208,8 @@ def _validate_field_exprs(fields: Mapping[str, Any], path: str, problems: Proble
 
 
 def _validate_pagination(pag: Mapping[str, Any], path: str, problems: Problems) -> None:
-    check_keys(pag, PAGINATION_KEYS, path, problems)
+    check_table(pag, PAGINATION_KEYS, path, problems)
     style = pag.get("style")
-    check_positive_int(pag.get("max_pages"), f"{path}.max_pages", problems)
-    check_positive_int(pag.get("limit"), f"{path}.limit", problems)
     for key in PAGINATION_PATHS:
         _check_jmespath(pag.get(key), f"{path}.{key}", problems)
     if not isinstance(style, str):
@@ -296,10 +290,11 @@ class Config:
 
     @classmethod
     def from_table(cls, table: Mapping[str, Any]) -> Config:
-        """Compile a validated table; expands "${ENV}" references (KeyError names a missing one)."""
+        """Compile a validated table. "${NAME}" references in params and headers stay as they
+        are: the fetcher fills them in when it sends a request (collector.schema.expand_env)."""
         fields = dict(table["fields"])
         pag = dict(table.get("pagination") or {"style": "none"})
-        params = expand_env_values(table.get("params"))
+        params = _text_values(table.get("params"))
         secrets = tuple(table.get("secret_params") or ())
         detail = table.get("detail")
         listing = FieldMap.from_table({k: v for k, v in fields.items() if k not in ("items", "id")})
@@ -307,7 +302,7 @@ class Config:
             name=str(table["name"]),
             url=str(table["url"]),
             params=params,
-            headers=expand_env_values(table.get("headers")),
+            headers=_text_values(table.get("headers")),
             secret_params=secrets,
             style=pag.get("style", "none"),
             pag=pag,
@@ -329,6 +324,11 @@ class Config:
             else:
                 cfg.detail_params = {k: v for k, v in params.items() if k in secrets}
         return cfg
+
+
+def _text_values(values: Mapping[str, Any] | None) -> dict[str, str]:
+    """A params/headers table with its numbers written as text."""
+    return {str(k): str(v) for k, v in (values or {}).items()}
 
 
 # ---------------------------------------------------------------------------------------------
@@ -612,15 +612,23 @@ class _Walker:
         return merged
 
 
-def iter_candidates(source: Mapping[str, Any], fetcher: PageFetcher, notes: NoteSink,
+def iter_candidates(source: Mapping[str, Any], fetcher: PageFetcher | None, notes: NoteSink,
                     base_dir: Path) -> Iterator[Candidate]:
     """Yield the Candidates of one validated json_api source table."""
     del base_dir  # not used by this kind
+    if fetcher is None:
+        raise SourceError(str(source.get("name", "")), None, "a json_api source needs a fetcher")
     once = OnceNotes(notes, str(source.get("name", "")))
-    try:
-        cfg = Config.from_table(source)
-    except KeyError as exc:
-        once.add("config", None, f"environment variable {exc.args[0]} is not set but params or "
-                 "headers refer to it as ${...}; set it before running")
-        return
-    yield from _Walker(cfg, fetcher, once).run()
+    yield from _Walker(Config.from_table(source), fetcher, once).run()
+
+
+KIND = SourceKind(
+    name="json_api",
+    keys=KEYS,
+    check=check,
+    list_candidates=iter_candidates,
+    uses_network=True,
+    mechanism="a JSON web API, read page by page",
+    # croissant-rai-spec.md, dataCollectionType recommended terms
+    collection_type="Web API",
+)

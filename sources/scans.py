@@ -15,52 +15,41 @@ from typing import Any
 from PIL import Image, UnidentifiedImageError
 
 from collector.safe_text import shown_name
-from sources import splitter
-from sources.base import (
-    BOOL,
-    DATEISH,
-    INT,
-    LIST,
-    NUM,
-    STR,
-    TABLE,
-    Candidate,
+from collector.schema import (
     Key,
-    NoteSink,
-    OnceNotes,
-    PageFetcher,
     Problems,
-    RecipeProblem,
-    check_http_url,
-    check_keys,
-    check_positive_int,
+    at_least,
+    between,
     check_str_list,
+    check_table,
     date_text,
+    http_url,
+    not_blank,
 )
+from sources.base import Candidate, NoteSink, OnceNotes, PageFetcher, SourceKind
 
 DEFAULT_INCLUDE = ("**/*.png", "**/*.jpg", "**/*.jpeg", "**/*.tif", "**/*.tiff", "**/*.webp",
                    "**/*.bmp")
 
-SOURCE_KEYS: dict[str, Key] = {
-    "name": Key(STR, True),
-    "kind": Key(STR, True),
-    "path": Key(STR, True, 'the folder of scans, relative to the collection folder, e.g. "scans"'),
-    "include": Key(LIST),
-    "title": Key(STR),
-    "creator": Key(STR),
-    "licence": Key(STR),
-    "licence_url": Key(STR),
-    "device": Key(STR),
-    "date": Key(DATEISH),
-    "split": Key(TABLE),
-    "allow_outside_links": Key(BOOL),
+KEYS: dict[str, Key] = {
+    "path": Key("str", required=True, check=not_blank,
+                hint='the folder of scans, relative to the collection folder, e.g. "scans"'),
+    "include": Key("list"),
+    "title": Key("str"),
+    "creator": Key("str"),
+    "licence": Key("str"),
+    "licence_url": Key("str", check=http_url),
+    "device": Key("str"),
+    "date": Key("date"),
+    "split": Key("table"),
+    "allow_outside_links": Key("bool"),
 }
 SPLIT_KEYS: dict[str, Key] = {
-    "min_area": Key(INT),
-    "padding": Key(INT),
-    "deskew": Key(BOOL),
-    "threshold": Key(INT),
-    "min_solidity": Key(NUM),
+    "min_area": Key("int", check=at_least(1)),
+    "padding": Key("int", check=at_least(0)),
+    "deskew": Key("bool"),
+    "threshold": Key("int", check=between(0, 254)),
+    "min_solidity": Key("float", check=between(0, 1, open_low=True)),
 }
 
 # Baseline TIFF / Exif IFD0 tags a scanner writes (standards.md §6.1 for 271, 272, 306; TIFF 6.0
@@ -71,36 +60,20 @@ SCANNER_TAGS = {271: "Make", 272: "Model", 305: "Software", 306: "DateTime",
 _DATE = re.compile(r"^\d{4}(-\d{2}(-\d{2}([T ][0-9:.]+(Z|[+-]\d{2}:?\d{2})?)?)?)?$")
 
 
-def validate(table: dict[str, Any], prefix: str) -> list[RecipeProblem]:
-    """All problems of one scans source table."""
-    problems = Problems("")
-    check_keys(table, SOURCE_KEYS, prefix, problems)
-    path = table.get("path")
-    if isinstance(path, str) and not path.strip():
-        problems.add(f"{prefix}.path", "must not be empty")
+def check(table: Mapping[str, Any], prefix: str, problems: Problems) -> None:
+    """The checks inside one scans source table (KEYS are checked first)."""
     include = table.get("include")
     if check_str_list(include, f"{prefix}.include", problems):
         for i, pattern in enumerate(include):
             if pattern.startswith("/") or ".." in Path(pattern).parts:
                 problems.add(f"{prefix}.include[{i}]", f'"{pattern}" must be a pattern relative '
                              'to the folder, like "**/*.png"')
-    check_http_url(table.get("licence_url"), f"{prefix}.licence_url", problems)
     date = table.get("date")
     if isinstance(date, str) and not _DATE.match(date.strip()):
         problems.add(f"{prefix}.date", f'must be an ISO 8601 date like "2026-03-01", got "{date}"')
     split = table.get("split")
     if isinstance(split, dict):
-        sp = f"{prefix}.split"
-        check_keys(split, SPLIT_KEYS, sp, problems)
-        check_positive_int(split.get("min_area"), f"{sp}.min_area", problems)
-        check_positive_int(split.get("padding"), f"{sp}.padding", problems, minimum=0)
-        t = split.get("threshold")
-        if isinstance(t, int) and not isinstance(t, bool) and not 0 <= t <= 254:
-            problems.add(f"{sp}.threshold", f"must be a grey level 0-254, got {t}")
-        s = split.get("min_solidity")
-        if isinstance(s, int | float) and not isinstance(s, bool) and not 0 < s <= 1:
-            problems.add(f"{sp}.min_solidity", f"must be between 0 and 1, got {s}")
-    return problems.items
+        check_table(split, SPLIT_KEYS, f"{prefix}.split", problems)
 
 
 def glob_regex(pattern: str) -> re.Pattern[str]:
@@ -278,6 +251,8 @@ def _one_file(source: Mapping[str, Any], rel: str, path: Path,
             yield Candidate(source_key=rel, local_path=path, title=title, date=date,
                             metadata=metadata, **common)
             return
+        from sources import splitter  # the splitter (and scipy) only for scans that are split
+
         result = splitter.analyse_scan(
             im, min_area=int(split.get("min_area", splitter.DEFAULT_MIN_AREA)),
             threshold=split.get("threshold"),
@@ -311,3 +286,16 @@ def _one_file(source: Mapping[str, Any], rel: str, path: Path,
                           "deskewed": deskew and abs(item.angle) >= splitter.MIN_DESKEW_DEGREES,
                           "solidity": round(item.solidity, 3), "touching": item.touching},
                 **common)
+
+
+KIND = SourceKind(
+    name="scans",
+    keys=KEYS,
+    check=check,
+    list_candidates=iter_candidates,
+    uses_network=False,
+    mechanism="local scans of physical items, read from a folder",
+    # croissant-rai-spec.md, dataCollectionType recommended terms: scans are made by a person
+    # with a scanner.
+    collection_type="Manual Human Curator",
+)

@@ -4,6 +4,9 @@ Pure computation on numpy arrays and Pillow images (no file I/O): Otsu threshold
 connected components with scipy.ndimage, convex hull with scipy.spatial, a minimum-area
 rectangle by rotating calipers for deskewing. Big scans are analysed on a downscaled copy and the
 boxes mapped back, so memory stays bounded.
+
+scipy is imported by the functions that use it, so importing this module (the registry of
+source kinds imports every module of the package) stays cheap for recipes that never split.
 """
 
 from __future__ import annotations
@@ -14,8 +17,6 @@ from dataclasses import dataclass
 
 import numpy as np
 from PIL import Image
-from scipy import ndimage
-from scipy.spatial import ConvexHull, QhullError
 
 DEFAULT_MIN_AREA = 2000  # px in the full-size scan (common practice, no source)
 DEFAULT_MIN_SOLIDITY = 0.85  # below this a component is probably several touching items
@@ -77,6 +78,7 @@ def min_area_rect(points: np.ndarray) -> tuple[float, float, float, tuple[float,
     Returns (angle in degrees within (-45, 45], width along that angle, height, centre). The
     minimal rectangle has a side collinear with a hull edge (Freeman & Shapira 1975, from memory).
     """
+    from scipy.spatial import ConvexHull, QhullError
     try:
         hull = points[ConvexHull(points).vertices]
     except (QhullError, ValueError):
@@ -103,6 +105,7 @@ def min_area_rect(points: np.ndarray) -> tuple[float, float, float, tuple[float,
 
 def _pixel_corners(mask: np.ndarray) -> np.ndarray:
     """Corner points of the boundary pixels of a boolean mask, as (x, y) floats."""
+    from scipy import ndimage
     edge = mask & ~ndimage.binary_erosion(mask)
     ys, xs = np.nonzero(edge)
     pts = np.concatenate([
@@ -134,6 +137,8 @@ def find_items(gray: np.ndarray, *, chroma: np.ndarray | None = None, scale: int
     holes, label 8-connected components, keep the ones of at least min_area full-size pixels,
     and flag probable touching items.
     """
+    from scipy import ndimage
+    from scipy.spatial import ConvexHull, QhullError
     hist = np.bincount(gray.ravel(), minlength=256)[:256]
     t, contrast = otsu_threshold(hist)
     if threshold is not None:
@@ -189,6 +194,7 @@ def _raw_extent(raw: np.ndarray, labels: np.ndarray, index: int, sl: tuple[slice
     Opening shaves thin parts (leaf tips, stalks); the raw threshold mask within a few pixels of
     the cleaned component gives them back without picking up distant specks.
     """
+    from scipy import ndimage
     y0, x0 = max(0, sl[0].start - margin), max(0, sl[1].start - margin)
     y1, x1 = min(raw.shape[0], sl[0].stop + margin), min(raw.shape[1], sl[1].stop + margin)
     near = ndimage.binary_dilation(labels[y0:y1, x0:x1] == index, iterations=margin)

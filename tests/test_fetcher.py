@@ -461,6 +461,26 @@ def test_secrets_never_reach_the_ledger_file_or_errors(
     assert b"REDACTED" in blob
 
 
+def test_unset_environment_variable_stops_the_request_before_sending(
+        sites: list[LoopbackServer], ledger: Ledger, monkeypatch: pytest.MonkeyPatch) -> None:
+    """A ${NAME} in params or headers whose variable is unset is named and nothing is sent
+    (the fetcher is the one place that fills ${NAME}; moved here from the json_api tests)."""
+    site = sites[0]
+    site.route("/api", (200, b"[]", {"Content-Type": "application/json"}))
+    monkeypatch.delenv("FERN_TEST_KEY", raising=False)
+    fetcher = Fetcher(settings(), ledger)
+    with pytest.raises(FetchError, match="FERN_TEST_KEY") as err:
+        fetcher.get_page(site.url("/api"), params={"key": "${FERN_TEST_KEY}"},
+                         secret_params=["key"])
+    assert err.value.reason == "unset_variable"
+    with pytest.raises(FetchError, match="FERN_TEST_KEY"):
+        fetcher.get_page(site.url("/api"), headers={"Authorization": "Bearer ${FERN_TEST_KEY}"})
+    assert site.hits == []
+    monkeypatch.setenv("FERN_TEST_KEY", "s3cret-key")
+    fetcher.get_page(site.url("/api"), params={"key": "${FERN_TEST_KEY}"}, secret_params=["key"])
+    assert [t for t in site.targets() if t != "/robots.txt"] == ["/api?key=s3cret-key"]
+
+
 def test_page_exposes_json_text_and_link_header(sites: list[LoopbackServer]) -> None:
     """Page gives the decoded text, parsed JSON and RFC 8288 Link relations."""
     site = sites[0]

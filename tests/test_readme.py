@@ -8,6 +8,7 @@ from pathlib import Path
 
 import pytest
 
+import sources
 from collector.cli import app
 from collector.ledger import Ledger
 from collector.recipe import parse_recipe
@@ -30,9 +31,9 @@ def test_every_readme_recipe_validates(text: str) -> None:
 
 
 def test_readme_shows_one_recipe_per_source_kind() -> None:
-    """The guide has a JSON API, an HTML listing and a scans example."""
+    """The guide has an example recipe for every built-in source kind."""
     kinds = {s["kind"] for text in RECIPES for s in parse_recipe(text, Path("r")).sources}
-    assert kinds == {"json_api", "html", "scans"}
+    assert kinds == set(sources.builtin_kind_names())
 
 
 def test_command_reference_lists_every_command() -> None:

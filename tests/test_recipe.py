@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+from dataclasses import FrozenInstanceError, replace
 from pathlib import Path
 
 import pytest
@@ -29,9 +30,9 @@ def test_minimal_recipe_fills_every_default() -> None:
     recipe = parse_recipe(GOOD, Path("recipe.toml"))
     assert recipe.contact == "curator@example.org"
     assert recipe.product_token == "collector"
-    assert recipe.budgets["max_connections"] == 1
-    assert recipe.licences["allow"] == DEFAULT_LICENCES
-    assert recipe.images["max_pixels"] == 89_478_485  # Pillow's MAX_IMAGE_PIXELS default
+    assert recipe.budgets.max_connections == 1
+    assert recipe.licences.allow == DEFAULT_LICENCES
+    assert recipe.images.max_pixels == 89_478_485  # Pillow's MAX_IMAGE_PIXELS default
     assert recipe.sources == []
 
 
@@ -39,7 +40,7 @@ def test_template_written_by_init_is_valid_once_contact_is_set() -> None:
     """The commented template validates when a contact is given."""
     recipe = parse_recipe(recipe_template(contact="me@example.org", name='My "leaves"'),
                           Path("recipe.toml"))
-    assert recipe.collection["name"] == 'My "leaves"'
+    assert recipe.collection.name == 'My "leaves"'
 
 
 MALFORMED = [
@@ -85,7 +86,7 @@ MALFORMED = [
     ("source without name", GOOD + '[[sources]]\nkind = "html"\n',
      "recipe.toml: sources[0].name: is required"),
     ("source kind unknown", GOOD + '[[sources]]\nname = "a"\nkind = "jsonapi"\n',
-     "recipe.toml: sources[0].kind: must be one of 'json_api', 'html', 'scans', got 'jsonapi'"
+     "recipe.toml: sources[0].kind: must be one of 'html', 'json_api', 'scans', got 'jsonapi'"
      " (did you mean 'json_api'?)"),
     ("duplicate source names", GOOD + '[[sources]]\nname = "a"\nkind = "scans"\npath = "s"\n'
      '[[sources]]\nname = "a"\nkind = "scans"\npath = "s"\n',
@@ -123,10 +124,10 @@ def test_host_budget_override_merges_over_defaults() -> None:
                    'min_interval = 10.0\n'
                    '[budgets.hosts."a.example.org:8080"]\nmax_connections = 2\n')
     recipe = parse_recipe(text, Path("recipe.toml"))
-    assert recipe.budget_for("a.example.org")["min_interval"] == 10.0
-    assert recipe.budget_for("a.example.org:8080") | {} == {
-        **recipe.budgets, "min_interval": 10.0, "max_connections": 2}
-    assert recipe.budget_for("b.example.org")["min_interval"] == 3.0
+    assert recipe.budget_for("a.example.org").min_interval == 10.0
+    assert recipe.budget_for("a.example.org:8080") == replace(
+        recipe.budgets, min_interval=10.0, max_connections=2)
+    assert recipe.budget_for("b.example.org").min_interval == 3.0
 
 
 @pytest.mark.parametrize(("text", "expected"), [(t, e) for _, t, e in MALFORMED[:14]],
@@ -150,3 +151,15 @@ def test_recipe_that_is_not_utf8_is_a_recipe_error(tmp_path: Path) -> None:
     result = CliRunner().invoke(app, ["check", str(tmp_path / "c")])
     assert result.exit_code == 2
     assert "not UTF-8 text" in result.stderr
+
+
+def test_sections_are_frozen_typed_objects() -> None:
+    """Each recipe section is a frozen dataclass: values land on attributes, which cannot be
+    changed afterwards."""
+    text = GOOD + '[images]\nmin_side = 64\nnear_duplicates = "drop"\n[stop]\nmax_items = 5\n'
+    recipe = parse_recipe(text, Path("recipe.toml"))
+    assert (recipe.images.min_side, recipe.images.near_duplicates) == (64, "drop")
+    assert recipe.stop.max_items == 5 and recipe.stop.until == ""
+    assert recipe.as_dict()["images"]["min_side"] == 64
+    with pytest.raises(FrozenInstanceError):
+        recipe.images.min_side = 1  # type: ignore[misc]

@@ -87,18 +87,6 @@ def test_nested_items_with_cursor_pagination_are_all_found(
     assert all(c.secret_params == ("key",) for c in fetcher.calls)
 
 
-def test_missing_environment_secret_gives_a_config_note(
-        srv: LoopbackServer, monkeypatch: pytest.MonkeyPatch) -> None:
-    """A ${NAME} reference to an unset variable is reported and nothing is requested."""
-    monkeypatch.delenv("FERN_TEST_KEY", raising=False)
-    srv.route("/api/a/records", on_query(api_a))
-    cands, notes = collect(recipe_a(srv.base), FakeFetcher())
-    assert cands == []
-    assert [n.kind for n in notes] == ["config"]
-    assert "FERN_TEST_KEY" in notes[0].message
-    assert srv.targets() == []
-
-
 # --- API B: page numbers with a total, relative image URLs, detail requests ------------------
 
 B_ITEMS = [{"id": n, "name": f"Moss {n}", "img": f"../img/b{n}.jpg",

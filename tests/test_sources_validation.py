@@ -48,7 +48,7 @@ def problems(table: dict[str, Any], prefix: str = "sources[1]") -> dict[str, str
 
 def test_valid_tables_of_every_kind_have_no_problems() -> None:
     """Well-formed tables of the three kinds validate cleanly (TOML dates accepted)."""
-    assert sources.KINDS == ("json_api", "html", "scans")
+    assert sources.builtin_kind_names() == ["html", "json_api", "scans"]
     for table in (json_source(), html_source(), scans_source()):
         assert problems(table) == {}
 
@@ -95,7 +95,7 @@ def test_wrong_types_are_reported() -> None:
     """A number where a table is expected, and a string for max_pages, are type errors."""
     got = problems(json_source(params=5, pagination={"style": "page", "max_pages": "ten"}))
     assert got["sources[1].params"].startswith("must be a table")
-    assert got["sources[1].pagination.max_pages"].startswith("must be an integer")
+    assert got["sources[1].pagination.max_pages"].startswith("must be a whole number")
 
 
 def test_key_of_another_style_is_flagged() -> None:
@@ -141,7 +141,7 @@ def test_scans_split_keys_and_values_are_checked() -> None:
     got = problems(scans_source(date="March 2026",
                                 split={"padding": -2, "deskw": True, "min_solidity": 2.0}))
     assert "did you mean 'deskew'" in got["sources[1].split.deskw"]
-    assert "at least 0" in got["sources[1].split.padding"]
+    assert "must be 0 or more" in got["sources[1].split.padding"]
     assert "between 0 and 1" in got["sources[1].split.min_solidity"]
     assert "ISO 8601" in got["sources[1].date"]
 

@@ -4,7 +4,8 @@
 depend on and leaves out its politeness (robots.txt, budgets, retries, ledger rows):
 
 * params are added to the URL the way the real fetcher adds them (``collector.urls.add_params``,
-  ``${NAME}`` expanded); a URL that is not http/https raises ``UnsafeURL``;
+  ``${NAME}`` filled by the real fetcher's own function); a URL that is not http/https
+  raises ``UnsafeURL``;
 * redirects (301/302/303/307/308 with Location) are followed, at most ``max_redirects`` hops,
   then ``FetchError`` reason ``redirect_blocked``;
 * a final status outside 2xx raises ``FetchError`` with reason ``http_<status>`` and ``status``
@@ -31,8 +32,7 @@ from requests.utils import get_encoding_from_headers
 
 import sources
 from collector.errors import FetchError
-from collector.fetcher import REDIRECT_STATUSES, Page
-from collector.recipe import expand_env
+from collector.fetcher import REDIRECT_STATUSES, Page, filled_from_env
 from collector.urls import add_params, redact, split_checked
 from demo_site.loopback import Answer
 from sources import SourceNote
@@ -79,8 +79,9 @@ class FakeFetcher:
         """The page at url (params added), after redirects; FetchError unless 2xx."""
         secrets = tuple(secret_params)
         self.calls.append(Call(url, purpose, dict(params) if params else None, secrets))
-        if params:
-            params = {k: expand_env(v) if isinstance(v, str) else v for k, v in params.items()}
+        # ${NAME} filled (or refused as unset_variable) exactly as the real fetcher does.
+        params = filled_from_env(params or {}, url, secrets) or None
+        headers = filled_from_env(headers or {}, url, secrets)
         current = add_params(url, params)
         hops = 0
         while True:
