@@ -94,9 +94,16 @@ def check(
     Example: collector check my-leaves
     """
     from collector.collection import open_collection
+    from collector.errors import RecipeError
+    from collector.recipe import env_problems
 
     with user_errors():
         recipe = open_collection(folder).recipe()
+        # Variables set now are checked too (a header value must not end in CR); unset ones
+        # are named by gather, which needs them.
+        problems = env_problems(recipe, unset=False)
+        if problems:
+            raise RecipeError(problems)
     settings = recipe.as_dict()
     if as_json:
         typer.echo(json.dumps(settings, indent=2, default=str))

@@ -30,10 +30,16 @@ from collector.schema import (
     describe,
     did_you_mean,
     env_names,
+    expand_env,
+    header_value_problem,
     one_of,
 )
 
 PRODUCT_TOKEN_RE = re.compile(r"^[A-Za-z_-]+$")  # RFC 9309 section 2.2.1
+CONTROL_RE = re.compile(r"[\x00-\x1f\x7f]")
+# A recipe nests a few levels ([[sources]] -> [sources.pagination]); anything deeper is not a
+# recipe, and a very deep one would exhaust the parser's recursion (common practice, no source).
+MAX_DEPTH = 16
 EMAIL_RE = re.compile(r"^[^@\s<>]+@[^@\s<>]+\.[^@\s<>]+$")
 DURATION_RE = re.compile(r"^(?:(\d+)h)?\s*(?:(\d+)m)?\s*(?:(\d+)s)?$")
 SPDX_ID_RE = re.compile(r"^[A-Za-z0-9][A-Za-z0-9.+-]*$")
@@ -53,6 +59,9 @@ def check_contact(value: Any) -> str | None:
         return ("is required: an email address or a web page where a site operator can reach "
                 "you (it is sent in the User-Agent header)")
     text = str(value).strip()
+    if CONTROL_RE.search(text):
+        return ("must not contain control characters such as CR, LF or tab: it is sent in the "
+                "User-Agent header (RFC 9110 section 5.5)")
     if EMAIL_RE.match(text):
         return None
     parts = urlsplit(text)
@@ -61,8 +70,21 @@ def check_contact(value: Any) -> str | None:
     return f"must be an email address or an http(s) URL, got {text!r}"
 
 
+def valid_product_token(token: str) -> bool:
+    """True when ``token`` is a valid RFC 9309 section 2.2.1 product token."""
+    return bool(PRODUCT_TOKEN_RE.match(token))
+
+
+def _check_header_values(values: Any) -> str | None:
+    for name, value in values.items():
+        problem = header_value_problem(value) if isinstance(value, str) else None
+        if problem:
+            return f"{name}: {problem}"
+    return None
+
+
 def _check_token(value: Any) -> str | None:
-    if not PRODUCT_TOKEN_RE.match(value):
+    if not valid_product_token(value):
         return (f"must contain only letters, '_' and '-' (RFC 9309 section 2.2.1), "
                 f"got {value!r}")
     return None
@@ -101,19 +123,50 @@ def _check_spdx_list(values: Any) -> str | None:
     return None
 
 
-def unset_env(recipe: Recipe) -> list[RecipeProblem]:
-    """A problem for every ``${NAME}`` the recipe uses whose variable is not set."""
+def env_problems(recipe: Recipe, *, unset: bool = True) -> list[RecipeProblem]:
+    """A problem for every ``${NAME}`` the recipe uses whose variable is not set (unless
+    ``unset`` is false), and for every header whose value, once its variables are filled in,
+    holds CR, LF or NUL (a token read from a file with Windows line endings). The problem
+    never shows the value."""
     places: list[tuple[str, Any]] = [
         (f"network.headers.{k}", v) for k, v in recipe.network.headers.items()]
     for i, src in enumerate(recipe.sources):
         for table in ("params", "headers"):
             places += [(f"sources[{i}].{table}.{k}", v)
                        for k, v in (src.get(table) or {}).items()]
-    return [RecipeProblem(str(recipe.path), path,
-                          f"uses ${{{name}}}, but the environment variable {name} is not set; "
-                          "set it before gathering")
-            for path, text in places if isinstance(text, str)
-            for name in env_names(text) if name not in os.environ]
+    problems: list[RecipeProblem] = []
+    for path, text in places:
+        if not isinstance(text, str):
+            continue
+        names = env_names(text)
+        missing = [name for name in names if name not in os.environ]
+        if unset:
+            problems += [RecipeProblem(str(recipe.path), path,
+                                       f"uses ${{{name}}}, but the environment variable {name} "
+                                       "is not set; set it before gathering")
+                         for name in missing]
+        if names and not missing and ".headers." in path:
+            problem = header_value_problem(expand_env(text))
+            if problem:
+                problems.append(RecipeProblem(
+                    str(recipe.path), path,
+                    f"{problem} once ${{{names[0]}}} is filled in; remove the line ending "
+                    "from the environment variable (was it read from a file with Windows "
+                    "line endings?)"))
+    return problems
+
+
+def _depth(data: Any) -> int:
+    """How deeply tables and arrays nest in parsed TOML (iteratively: no recursion)."""
+    deepest, stack = 0, [(data, 0)]
+    while stack:
+        value, depth = stack.pop()
+        deepest = max(deepest, depth)
+        if isinstance(value, dict):
+            stack += [(v, depth + 1) for v in value.values()]
+        elif isinstance(value, list):
+            stack += [(v, depth + 1) for v in value]
+    return deepest
 
 
 def parse_clock(value: str) -> time:
@@ -203,7 +256,8 @@ class Network:
                                        metadata={"check": _check_addresses})
     secret_params: list[str] = field(default_factory=list)
     secret_headers: list[str] = field(default_factory=lambda: ["Authorization", "Cookie"])
-    headers: dict[str, str] = field(default_factory=dict)
+    headers: dict[str, str] = field(default_factory=dict,
+                                    metadata={"check": _check_header_values})
 
 
 @dataclass(frozen=True)
@@ -329,9 +383,16 @@ def parse_recipe(text: str, path: Path) -> Recipe:
     file = str(path)
     problems = Problems(file)
     try:
-        data = tomllib.loads(text)
+        # A UTF-8 byte order mark (editors on Windows write one) is not part of the TOML.
+        data = tomllib.loads(text.removeprefix("\ufeff"))
     except tomllib.TOMLDecodeError as exc:
         raise RecipeError([RecipeProblem(file, "", f"not valid TOML: {exc}")]) from exc
+    except RecursionError:
+        raise RecipeError([RecipeProblem(file, "", f"nested too deeply to be a recipe (a "
+                                         f"recipe nests at most {MAX_DEPTH} levels)")]) from None
+    if _depth(data) > MAX_DEPTH:
+        raise RecipeError([RecipeProblem(file, "", f"nested too deeply to be a recipe (a "
+                                         f"recipe nests at most {MAX_DEPTH} levels)")])
 
     for key in data:
         if key not in ALL_TOP:

@@ -10,7 +10,6 @@ protego departs from the RFC.
 from __future__ import annotations
 
 import hashlib
-import re
 from dataclasses import dataclass, field
 from datetime import time as dtime
 from typing import Any
@@ -27,15 +26,7 @@ MAX_ROBOTS_REDIRECTS = 5
 # in the same run (common practice, no source: a few minutes).
 UNREACHABLE_RETRY = 300.0
 
-# RFC 9309 §2.2.1: a product token MUST contain only a-z, A-Z, "_" and "-".
-_TOKEN = re.compile(r"^[A-Za-z_-]+$")
-
 RULES, ALLOW_ALL, DISALLOW_ALL = "rules", "allow_all", "disallow_all"
-
-
-def valid_product_token(token: str) -> bool:
-    """True when ``token`` is a valid RFC 9309 §2.2.1 product token."""
-    return bool(_TOKEN.match(token))
 
 
 @dataclass(frozen=True)

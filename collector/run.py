@@ -52,7 +52,7 @@ from collector.hashindex import HashIndex, NearMatch, to_signed
 from collector.images import ImageFacts, inspect_image
 from collector.ledger import Ledger, utc_now
 from collector.licences import licence_allowed, normalise_licence, rights_conflict
-from collector.recipe import Recipe, parse_clock, parse_duration, unset_env
+from collector.recipe import Recipe, env_problems, parse_clock, parse_duration
 from collector.safe_text import shown_name
 from collector.schema import expand_env
 from collector.urls import (
@@ -738,7 +738,7 @@ def prepared_run(collection: Collection) -> Iterator[tuple[Recipe, Ledger]]:
         raise RecipeError([RecipeProblem(str(recipe.path), "sources",
                                          "no [[sources]] yet: add at least one source to "
                                          "gather from")])
-    missing = unset_env(recipe)
+    missing = env_problems(recipe)
     if missing:
         raise RecipeError(missing)
     with collection.gather_lock(), collection.ledger() as ledger:

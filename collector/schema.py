@@ -214,6 +214,30 @@ def check_str_table(value: Any, path: str, problems: Problems) -> None:
             problems.add(f"{path}.{k}", f"must be a string or number, got {describe(v)}")
 
 
+# RFC 9110 section 5.5: field values containing CR, LF or NUL are invalid and dangerous (a
+# value with CR LF could end the header and start another).
+_FIELD_BREAKERS = {"\r": "a carriage return (CR)", "\n": "a line feed (LF)", "\0": "a NUL"}
+
+
+def header_value_problem(value: str) -> str | None:
+    """Why ``value`` cannot be sent as an HTTP header value, or None."""
+    found = [name for char, name in _FIELD_BREAKERS.items() if char in value]
+    if found:
+        return (f"holds {' and '.join(found)}, which a header value must not contain "
+                "(RFC 9110 section 5.5)")
+    return None
+
+
+def check_header_table(value: Any, path: str, problems: Problems) -> None:
+    """A table of HTTP headers: strings or numbers, none holding CR, LF or NUL."""
+    check_str_table(value, path, problems)
+    if isinstance(value, dict):
+        for k, v in value.items():
+            problem = header_value_problem(v) if isinstance(v, str) else None
+            if problem:
+                problems.add(f"{path}.{k}", problem)
+
+
 def check_value(value: Any, check: Check, path: str, problems: Problems) -> None:
     """Run one value check on a value that may be absent (None): for keys whose type is
     already checked by the table's spec."""

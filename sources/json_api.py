@@ -22,6 +22,7 @@ from collector.schema import (
     Key,
     Problems,
     at_least,
+    check_header_table,
     check_str_list,
     check_str_table,
     check_table,
@@ -142,7 +143,7 @@ def _template_names(template: str) -> list[str]:
 def check(table: Mapping[str, Any], prefix: str, problems: Problems) -> None:
     """The checks across keys of one json_api source table (KEYS are checked first)."""
     check_str_table(table.get("params"), f"{prefix}.params", problems)
-    check_str_table(table.get("headers"), f"{prefix}.headers", problems)
+    check_header_table(table.get("headers"), f"{prefix}.headers", problems)
     secrets = table.get("secret_params")
     if check_str_list(secrets, f"{prefix}.secret_params", problems, non_empty=False):
         params = table.get("params") if isinstance(table.get("params"), dict) else {}

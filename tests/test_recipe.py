@@ -163,3 +163,52 @@ def test_sections_are_frozen_typed_objects() -> None:
     assert recipe.as_dict()["images"]["min_side"] == 64
     with pytest.raises(FrozenInstanceError):
         recipe.images.min_side = 1  # type: ignore[misc]
+
+
+def test_a_utf8_byte_order_mark_is_accepted() -> None:
+    """A BOM written by a Windows editor (U+FEFF, Unicode §23.8) is not a TOML error."""
+    assert problems_of("\ufeff" + GOOD) == []
+
+
+def test_a_deeply_nested_recipe_is_a_clear_error() -> None:
+    """3,000 nested arrays end in one problem saying so, not a RecursionError."""
+    text = GOOD + "x = " + "[" * 3000 + "]" * 3000 + "\n"
+    found = problems_of(text)
+    assert len(found) == 1 and "nested too deeply" in found[0]
+    assert "nested too deeply" in problems_of(GOOD + "x = " + "[" * 40 + "]" * 40 + "\n")[0]
+
+
+@pytest.mark.parametrize("value", ["Bearer abc\\r\\nX-Evil: 1", "abc\\n", "a\\u0000b"])
+def test_header_values_with_cr_lf_or_nul_are_refused(value: str) -> None:
+    """CR, LF or NUL in a header value is refused with its key path (RFC 9110 §5.5), in
+    [network] headers and in a source's headers."""
+    net = problems_of(GOOD + f'[network]\nheaders = {{ Authorization = "{value}" }}\n')
+    assert len(net) == 1 and "network.headers" in net[0] and "RFC 9110" in net[0]
+    src = problems_of(GOOD + '[[sources]]\nname = "a"\nkind = "json_api"\n'
+                      'url = "https://api.example.org/x"\n'
+                      f'headers = {{ X-Api-Key = "{value}" }}\n'
+                      '[sources.fields]\nitems = "items"\nid = "id"\nimage_url = "img"\n')
+    assert any("sources[0].headers.X-Api-Key" in p and "RFC 9110" in p for p in src), src
+
+
+def test_contact_with_a_line_break_is_refused() -> None:
+    """The contact goes into the User-Agent: a CR/LF in it would split the header."""
+    found = problems_of('contact = "https://example.org/me\\r\\nX-Evil: 1"\n')
+    assert len(found) == 1 and "contact" in found[0] and "control characters" in found[0]
+
+
+def test_check_refuses_a_header_whose_variable_ends_in_cr(
+        tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    """A token read from a file with Windows line endings: `check` exits 2 naming the key
+    path, and never prints the token."""
+    col = init_collection(tmp_path / "c", contact="me@example.org")
+    col.recipe_path.write_text(col.recipe_path.read_text().replace(
+        "[network]\n", '[network]\nheaders = { Authorization = "Bearer ${CR_TOKEN}" }\n', 1))
+    monkeypatch.setenv("CR_TOKEN", "t0ken-secret-42\r")
+    result = CliRunner().invoke(app, ["check", str(col.root)])
+    assert result.exit_code == 2, result.output
+    assert "network.headers.Authorization" in result.output
+    assert "carriage return" in result.output
+    assert "t0ken-secret-42" not in result.output
+    monkeypatch.setenv("CR_TOKEN", "t0ken-secret-42")
+    assert CliRunner().invoke(app, ["check", str(col.root)]).exit_code == 0

@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import pytest
 
+from collector.recipe import valid_product_token
 from collector.robots import (
     ALLOW_ALL,
     DISALLOW_ALL,
@@ -14,7 +15,6 @@ from collector.robots import (
     decode_body,
     policy_from_fetch,
     policy_from_stored,
-    valid_product_token,
 )
 
 BASE = "https://example.com"
