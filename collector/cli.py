@@ -235,8 +235,8 @@ def datasheet(
 
     Example: collector datasheet my-leaves --answers answers.toml --with-images
     """
-    from collector.datasheet import answers_template as template
     from collector.datasheet import export_datasheet
+    from collector.datasheet_questions import answers_template as template
 
     if answers_template:
         typer.echo(template())

@@ -14,7 +14,7 @@ from collections.abc import Callable
 from dataclasses import dataclass, field
 from typing import Any
 
-from collector.datasheet import SECTIONS, Question
+from collector.datasheet_questions import SECTIONS, Question
 
 Block = tuple[Any, ...]  # ("p", text) | ("list", [text]) | ("table", headers, rows)
 

@@ -20,8 +20,10 @@ from support.datasheet_fixture import HOSTILE_TITLE, build_collection
 from typer.testing import CliRunner
 
 from collector import datasheet as ds
+from collector import datasheet_questions as dq
 from collector.cli import app
-from collector.datasheet import QUESTIONS, export_datasheet, parse_answers
+from collector.datasheet import export_datasheet
+from collector.datasheet_questions import QUESTIONS, parse_answers
 from collector.errors import CollectionError
 
 ACCEPTED = "('stored', 'near_duplicate')"
@@ -201,9 +203,9 @@ def test_unknown_answer_key_is_rejected_with_exit_2(coll: Path, tmp_path: Path) 
 
 def test_answers_template_lists_keys_that_parse_back() -> None:
     """Every key the template documents is accepted by the parser."""
-    text = ds.answers_template()
+    text = dq.answers_template()
     keys = re.findall(r"^# ([a-z_]+\.[a-z_]+) = ", text, re.M)
-    assert len(keys) == len(ds.ANSWER_KEYS)
+    assert len(keys) == len(dq.ANSWER_KEYS)
     assert parse_answers("\n".join(f'{k} = "2026-05-01"' for k in keys)).keys() == set(keys)
 
 
