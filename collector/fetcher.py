@@ -43,7 +43,8 @@ import requests
 import urllib3.exceptions
 from requests.structures import CaseInsensitiveDict
 from requests.utils import parse_header_links
-from tenacity import Retrying, retry_if_exception_type, stop_after_attempt
+from tenacity import Retrying, retry_if_exception_type, stop_after_attempt, stop_any
+from tenacity.stop import stop_base
 from tenacity.wait import wait_base
 
 from collector import __version__
@@ -294,6 +295,16 @@ class _Result:
     encoding: str | None
 
 
+class _StopAfterWaiting(stop_base):
+    """Stop retrying once the waits so far plus the next one would pass ``limit`` seconds."""
+
+    def __init__(self, limit: float) -> None:
+        self.limit = limit
+
+    def __call__(self, retry_state: Any) -> bool:
+        return bool(retry_state.idle_for + retry_state.upcoming_sleep > self.limit)
+
+
 class _Wait(wait_base):
     """Retry-After when the server gave one, else exponential back-off with full jitter."""
 
@@ -478,9 +489,6 @@ class Fetcher:
         secrets = secret_values(url, secret_params)
         counter = [0]
 
-        def stop_total(state: Any) -> bool:
-            return state.idle_for + state.upcoming_sleep > self.settings.max_total_delay
-
         def one() -> _Result:
             counter[0] += 1
             return self._attempt(url, send_url, shown, hk, row, verdict, headers, secrets,
@@ -488,7 +496,8 @@ class Fetcher:
                                  truncate=not retry)
 
         retrying = Retrying(
-            stop=stop_after_attempt(attempts) | stop_total,
+            stop=stop_any(stop_after_attempt(attempts),
+                          _StopAfterWaiting(self.settings.max_total_delay)),
             wait=_Wait(budget, self.rng),
             retry=retry_if_exception_type(_Retryable),
             sleep=self.clock.sleep,

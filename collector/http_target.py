@@ -22,6 +22,7 @@ import unicodedata
 from dataclasses import dataclass
 from urllib.parse import urlsplit
 
+import idna
 from requests.models import PreparedRequest
 from urllib3.util import parse_url
 
@@ -74,7 +75,8 @@ def _idna(host: str) -> str:
     """A host name in the ASCII form the HTTP library sends (IDNA, as requests encodes it)."""
     if host.isascii():
         return host.lower()
-    return PreparedRequest._get_idna_encoded_host(host).lower()
+    # What requests.models.PreparedRequest._get_idna_encoded_host does (IDNA 2008 + UTS 46).
+    return idna.encode(host, uts46=True).decode("ascii").lower()
 
 
 def transport_target(url: str, shown: str | None = None) -> Target:

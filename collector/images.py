@@ -18,10 +18,10 @@ import struct
 import warnings
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any
+from typing import Any, cast
 from urllib.parse import urlsplit
 
-from PIL import ExifTags, Image, IptcImagePlugin
+from PIL import ExifTags, Image, ImageFile, IptcImagePlugin
 
 from collector.errors import ImageRejected
 from collector.phash import HASH_ALGO, phash_prepared
@@ -258,7 +258,8 @@ _IPTC_FIELDS = {
 
 def _read_iptc(im: Image.Image, flags: list[str]) -> dict[str, Any]:
     try:
-        info = IptcImagePlugin.getiptcinfo(im)
+        # Only opened files carry IPTC; getiptcinfo reads the file's own segments.
+        info = IptcImagePlugin.getiptcinfo(cast(ImageFile.ImageFile, im))
     except Exception:
         flags.append("iptc_unreadable")
         return {}

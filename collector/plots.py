@@ -108,7 +108,8 @@ def render_plots(facts: dict[str, Any]) -> dict[str, str]:
         step = {"second": timedelta(seconds=1), "minute": timedelta(minutes=1),
                 "hour": timedelta(hours=1),
                 "day": timedelta(days=1)}[timeline["unit"]]
-        ax.set_xlim(min(when) - step, max(when) + step)
+        ax.set_xlim(float(mdates.date2num(min(when) - step)),
+                    float(mdates.date2num(max(when) + step)))
         locator = mdates.AutoDateLocator()
         ax.xaxis.set_major_locator(locator)
         ax.xaxis.set_major_formatter(mdates.ConciseDateFormatter(locator))

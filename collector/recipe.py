@@ -207,7 +207,12 @@ def section_keys(section: type) -> dict[str, Key]:
     """The recipe keys of a section dataclass: one Key per field, with its default."""
     keys: dict[str, Key] = {}
     for f in fields(section):
-        default = f.default if f.default is not MISSING else f.default_factory()  # type: ignore[misc]
+        if f.default is not MISSING:
+            default = f.default
+        elif callable(f.default_factory):
+            default = f.default_factory()
+        else:
+            default = None
         keys[f.name] = Key(_FIELD_TYPES[str(f.type)], default, check=f.metadata.get("check"))
     return keys
 

@@ -21,7 +21,7 @@ import re
 from collections.abc import Callable, Iterable, Mapping
 from dataclasses import dataclass
 from datetime import date, datetime
-from typing import Any
+from typing import Any, TypeGuard
 from urllib.parse import urlsplit
 
 from collector.errors import RecipeProblem
@@ -190,7 +190,8 @@ def not_blank(value: Any) -> str | None:
 # --- checks that report at sub-paths (list entries, table entries) -------------------------------
 
 
-def check_str_list(value: Any, path: str, problems: Problems, *, non_empty: bool = True) -> bool:
+def check_str_list(value: Any, path: str, problems: Problems, *,
+                   non_empty: bool = True) -> TypeGuard[list[str]]:
     """A list of non-empty strings, each bad entry named by index; returns whether it was one."""
     if not isinstance(value, list):
         return False

@@ -196,8 +196,8 @@ def estimate(recipe: Recipe, ledger: Ledger) -> Estimate:
     seconds = 0.0
     for host, n in per_host.items():
         budget = recipe.budget_for(host)
-        row = ledger.get_host(host)
-        effective = (row or {}).get("effective_budget") or {}
+        host_row = ledger.get_host(host)
+        effective = (host_row or {}).get("effective_budget") or {}
         step = max(float(budget.min_interval), 3600.0 / budget.requests_per_hour,
                    float(effective.get("effective_interval", 0) or 0))
         interval[host] = step

@@ -341,6 +341,7 @@ def build_api_linked(b: Builder) -> None:
         title, creator, date = b.person(key)
         lic = licence_cycle(n + 5)
         # this API states licences by URL only
+        assert lic.spdx is not None  # licence_cycle only yields SPDX licences
         lic = Licence(None, lic.url or _URL_FOR[lic.spdx], lic.spdx)
         host, path = 4, f"/media/finds/{key}.jpg"
         if n in (8, 13):

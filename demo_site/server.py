@@ -25,7 +25,7 @@ from email.utils import format_datetime, parsedate_to_datetime
 from http.server import BaseHTTPRequestHandler, ThreadingHTTPServer
 from pathlib import Path
 from types import TracebackType
-from typing import Any
+from typing import Any, cast
 from urllib.parse import parse_qs, urlsplit
 
 from demo_site.hosts import DEFAULT_RATE, HOSTS
@@ -415,7 +415,9 @@ class DemoServer:
             if delay:
                 time.sleep(delay)
             assert self.site is not None
-            reply = self.site.respond(host, method, req.path, req.headers)
+            # The request's headers (an email.message.Message) answer get() like a mapping.
+            reply = self.site.respond(host, method, req.path,
+                                      cast(Mapping[str, str], req.headers))
         # The record is logged before the reply is written, so a client that has read
         # the reply always finds its request in the log; "bytes" is the body length sent.
         sent = 0 if method == "HEAD" or reply.status == 304 else len(reply.body)

@@ -376,8 +376,8 @@ class _Walker:
             cand = self._finish(values, url)
             if cand is not None:
                 yield cand
-        for key, hit in matched.items():
-            if not hit:
+        for key, found in matched.items():
+            if not found:
                 self._selector_empty("select", key, url)
 
     def _one(self, item: Tag, key: str, matched: dict[str, Any]) -> Tag | None:

@@ -146,7 +146,8 @@ def check(table: Mapping[str, Any], prefix: str, problems: Problems) -> None:
     check_header_table(table.get("headers"), f"{prefix}.headers", problems)
     secrets = table.get("secret_params")
     if check_str_list(secrets, f"{prefix}.secret_params", problems, non_empty=False):
-        params = table.get("params") if isinstance(table.get("params"), dict) else {}
+        given = table.get("params")
+        params = given if isinstance(given, dict) else {}
         for i, name in enumerate(secrets):
             if name not in params:
                 problems.add(f"{prefix}.secret_params[{i}]",

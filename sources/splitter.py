@@ -260,7 +260,9 @@ def _to_grey(im: Image.Image) -> Image.Image:
 
 
 def _white(mode: str) -> int | tuple[int, ...]:
-    return {"L": 255, "RGB": (255, 255, 255), "RGBA": (255, 255, 255, 255)}[mode]
+    white: dict[str, int | tuple[int, ...]] = {"L": 255, "RGB": (255, 255, 255),
+                                                "RGBA": (255, 255, 255, 255)}
+    return white[mode]
 
 
 def crop_item(im: Image.Image, item: SplitItem, *, padding: int = 0, deskew: bool = False,
