@@ -133,15 +133,16 @@ def check_ledger(collection: Collection, ledger: Ledger, *, bind: bool = False) 
 
     - Its ``collection_id`` differs from the folder's ``collection.id``: another
       collection's ledger.
-    - ``files/`` holds stored files while the ledger has no files and no items: a
-      re-created (or foreign, empty) ledger; recovery would take every file for debris.
+    - ``files/`` holds stored files while the ledger has no files, no items and no store
+      intents: a re-created (or foreign, empty) ledger; recovery would take every file for
+      debris.
     - The ledger has files rows while ``files/`` holds none at all: the disk is not mounted
       or the folder was moved without its files; recovery would reset every item.
 
     Binding an id (``bind``, write access only): a ledger migrated from version 1 has no
     ``collection_id``, and an older folder has no ``collection.id``. The missing one is
-    written only when the store is empty or the ledger has a row for at least one stored
-    file, so a ledger is never adopted by a folder whose files it knows nothing about.
+    written only when the store is empty or the ledger has a row (or an intent) for at least
+    one stored file, so a ledger is never adopted by a folder whose files it knows nothing about.
     """
     ledger_id = ledger.collection_id()
     folder_id = collection.folder_id()
@@ -153,7 +154,8 @@ def check_ledger(collection: Collection, ledger: Ledger, *, bind: bool = False) 
     known = int(ledger.scalar("SELECT count(*) FROM files") or 0)
     items = int(ledger.scalar("SELECT count(*) FROM items") or 0)
     stored_any = store_has_files(collection)
-    if stored_any and known == 0 and items == 0:
+    intents = ledger.store_intents()
+    if stored_any and known == 0 and items == 0 and not intents:
         raise LedgerUnusable(
             f"{collection.store.root} holds stored files but the ledger {ledger.path} knows "
             "none of them and has no items: it was re-created or belongs elsewhere. "
@@ -167,7 +169,7 @@ def check_ledger(collection: Collection, ledger: Ledger, *, bind: bool = False) 
     if ledger_id and folder_id:
         return
     if stored_any:
-        hashes = ledger.known_sha256s()
+        hashes = ledger.known_sha256s() | intents
         if not any(sha in hashes for sha, _ in collection.store.iter_stored()):
             raise LedgerUnusable(
                 f"cannot tell whether {ledger.path} belongs to this folder: "
