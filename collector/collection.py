@@ -217,6 +217,9 @@ def init_collection(root: Path, *, contact: str = "", name: str | None = None,
         raise LedgerUnusable(f"{root} has no {LEDGER_NAME} but {collection.store.root} holds "
                              "stored files; a new empty ledger would not describe them. "
                              + ways_out(root))
+    if collection.ledger_path.exists():
+        with Ledger.open(collection.ledger_path, readonly=True) as ledger:
+            check_ledger(collection, ledger)  # an unusable ledger stops before any write
     folder_id = collection.folder_id() if root.is_dir() else None
     root.mkdir(parents=True, exist_ok=True)
     if not collection.recipe_path.exists():
