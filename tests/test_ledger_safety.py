@@ -84,6 +84,8 @@ def small(fresh_demo_server: DemoServer, tmp_path: Path) -> Collection:
     col = init_collection(tmp_path / "small", contact="x@example.org")
     col.recipe_path.write_text(small_recipe(fresh_demo_server.port))
     assert gather(col).outcome == "finished"
+    with col.ledger(readonly=True) as ledger:
+        assert ledger.store_intents() == set()  # every intent went with its files row
     return col
 
 
@@ -270,6 +272,49 @@ def test_rebuilt_collection_is_reattached_by_the_next_gather(small: Collection) 
         rows = ledger.query("SELECT first_item_id, flags FROM files")
     assert rows and all(r["first_item_id"] is not None and "recovered" not in r["flags"]
                         for r in rows)
+
+
+def test_rebuild_beside_a_usable_ledger_registers_only_the_unknown_files(
+        small: Collection) -> None:
+    """rebuild-ledger on a usable ledger keeps it (nothing set aside) and registers only the
+    stored file it did not know, as recovered."""
+    item_id, sha, _ = _undo_one_item(small, intent=False)
+    known = len(store_snapshot(small)) - 1
+    result = runner.invoke(app, ["rebuild-ledger", str(small.root)])
+    assert result.exit_code == 0, result.output
+    assert f"Registered 1 stored files as recovered, provenance unknown ({known} were " \
+        "already known)" in result.output
+    assert list(small.root.glob("ledger.sqlite.*")) == []
+    with small.ledger(readonly=True) as ledger:
+        row = ledger.file(sha)
+        assert row["first_item_id"] is None and "recovered" in row["flags"]
+        assert ledger.item(item_id)["state"] == "pending"
+        assert ledger.scalar("SELECT count(*) FROM files WHERE first_item_id IS NOT NULL") \
+            == known
+
+
+def test_restore_of_an_older_backup_keeps_newer_files_and_gather_reattaches_them(
+        small: Collection, tmp_path: Path) -> None:
+    """restore-ledger BACKUP from before a file was stored: the file is kept and reported,
+    and the next gather attaches it to its item again."""
+    older = tmp_path / "older.sqlite"
+    shutil.copy(list_backups(small)[0], older)
+    with Ledger.open(older) as ledger:
+        row = ledger.query("SELECT id, file_sha256 FROM items WHERE state = 'stored' "
+                           "AND image_url IS NOT NULL ORDER BY id DESC LIMIT 1")[0]
+        with ledger.transaction():
+            ledger.db.execute("DELETE FROM files WHERE sha256 = ?", [row["file_sha256"]])
+            ledger.update_item(row["id"], state="pending", reason=None, file_sha256=None)
+    files = store_snapshot(small)
+    result = runner.invoke(app, ["restore-ledger", str(small.root), str(older)])
+    assert result.exit_code == 0, result.output
+    assert "1 stored files are newer than the backup (kept)" in result.output
+    assert store_snapshot(small) == files
+    assert gather(small).outcome == "finished"
+    with small.ledger(readonly=True) as ledger:
+        assert ledger.item(row["id"])["state"] == "stored"
+        assert ledger.file(row["file_sha256"])["first_item_id"] == row["id"]
+    assert store_snapshot(small) == files
 
 
 def test_store_gone_stops_instead_of_resetting_every_item(small: Collection) -> None:
