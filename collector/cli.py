@@ -145,7 +145,13 @@ def gather(
     """
     from collector.collection import open_collection
     from collector.display import LiveProgress
-    from collector.run import Gatherer, build_fetcher, prepared_run, stop_rules
+    from collector.run import (
+        Gatherer,
+        build_fetcher,
+        prepared_run,
+        stop_rules,
+        unknown_files_message,
+    )
     from collector.summary import estimate, format_estimate, format_summary, summarise
 
     with user_errors():
@@ -156,7 +162,12 @@ def gather(
                 for line in format_estimate(recipe, estimate(recipe, ledger)):
                     typer.echo(one_line(line))
             return
-        with prepared_run(collection) as (recipe, ledger):
+        def on_recovery(recovery: Any) -> None:
+            if recovery.unknown_files:
+                typer.echo("Note: " + unknown_files_message(collection, recovery.unknown_files),
+                           err=True)
+
+        with prepared_run(collection, on_recovery=on_recovery) as (recipe, ledger):
             stop = stop_rules(recipe, until=until, duration=duration, max_items=max_items)
             progress = _progress_for(quiet=quiet, log_json=log_json)
             fetcher = build_fetcher(recipe, ledger)
@@ -176,6 +187,10 @@ def gather(
         typer.echo(one_line(f"Run #{result.run_id}: {result.outcome}"))
         for line in lines:
             typer.echo(one_line(line))
+        if result.backup is not None:
+            typer.echo(f"Ledger backup: {result.backup}")
+    if result.backup_error:
+        typer.echo(f"Warning: {result.backup_error}", err=True)
     if result.outcome == "interrupted":
         typer.echo(f"Interrupted. Resume with: collector gather {folder}", err=True)
     raise typer.Exit(result.exit_code)
@@ -304,6 +319,55 @@ def trace(
         for line in format_summary(results):
             typer.echo(one_line(line))
     raise typer.Exit(0 if all(r.kind != "none" for r in results) else 1)
+
+
+@app.command("rebuild-ledger")
+def rebuild_ledger(
+    folder: Path = typer.Argument(..., help="The collection folder."),
+) -> None:
+    """Register stored files the ledger cannot explain, as recovered (provenance unknown).
+
+    An unusable ledger (empty, no schema, another collection's) is renamed to
+    ledger.sqlite.unusable-<time>, never deleted, and a new one lists every stored file
+    (sha256 re-checked). A later gather attaches each file to the item that lists it again.
+    Example: collector rebuild-ledger my-leaves
+    """
+    from collector.ledger_repair import rebuild_ledger as rebuild
+
+    with user_errors():
+        result = rebuild(folder)
+    if result.set_aside is not None:
+        typer.echo(f"Set the unusable ledger aside as {result.set_aside}")
+    typer.echo(f"Registered {result.registered} stored files as recovered, provenance unknown"
+               + (f" ({result.already_known} were already known)" if result.already_known
+                  else ""))
+    for path in result.damaged:
+        typer.echo(f"Kept but not registered (bytes do not match the name): {path}", err=True)
+    typer.echo(f"Next: collector gather {folder}  (attaches files to the items that list "
+               "them again)")
+
+
+@app.command("restore-ledger")
+def restore_ledger(
+    folder: Path = typer.Argument(..., help="The collection folder."),
+    backup: Path = typer.Argument(None, help="A backup file (default: the newest in "
+                                              "FOLDER/ledger-backups/)."),
+) -> None:
+    """Put a ledger backup back in place; the current ledger is set aside, not deleted.
+
+    Stored files added after the backup are kept; a gather re-attaches them.
+    Example: collector restore-ledger my-leaves
+    """
+    from collector.ledger_repair import restore_ledger as restore
+
+    with user_errors():
+        result = restore(folder, backup)
+    if result.set_aside is not None:
+        typer.echo(f"Set the previous ledger aside as {result.set_aside}")
+    typer.echo(f"Restored {result.backup}: {result.items} items, {result.files} stored files")
+    if result.unknown_files:
+        typer.echo(f"{result.unknown_files} stored files are newer than the backup (kept); "
+                   f"collector gather {folder} attaches them when it lists their items again")
 
 
 @app.command()

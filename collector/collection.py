@@ -1,7 +1,13 @@
-"""A collection folder: ``recipe.toml``, ``ledger.sqlite`` and the ``files/`` store.
+"""A collection folder: ``recipe.toml``, ``ledger.sqlite``, the ``files/`` store and
+``collection.id`` (the folder's identity, the same uuid as the ledger's ``collection_id``).
 
 Nothing is ever written outside the folder. A running ``gather`` holds ``.gather.lock`` so that
 a second one refuses to start, while ``status`` and ``trace`` keep reading the ledger.
+
+Every command opens the folder through :func:`open_collection`, which refuses (exit 2, nothing
+touched) a ledger that cannot describe the store beside it: unusable (see ``Ledger.open``),
+another collection's, re-created empty beside stored files, or describing files while
+``files/`` holds none at all. The store never deletes what the ledger cannot explain.
 """
 
 from __future__ import annotations
@@ -10,13 +16,15 @@ import contextlib
 import fcntl
 import json
 import os
+import stat
+import uuid
 from collections.abc import Iterator
 from dataclasses import dataclass
 from importlib import resources
 from pathlib import Path
 
-from collector.errors import CollectionError
-from collector.ledger import Ledger
+from collector.errors import CollectionError, LedgerUnusable
+from collector.ledger import Ledger, ways_out
 from collector.recipe import Recipe, load_recipe
 from collector.store import Store
 
@@ -31,6 +39,7 @@ CACHE_NAME = "cache"
 HASH_INDEX_NAME = "phash-index"
 # Where an older collector kept the near-duplicate index: inside the store (files/).
 _OLD_DERIVED = (".phash-index", ".phash-index.lock")
+ID_NAME = "collection.id"
 
 
 def recipe_template(contact: str = "", name: str = "My collection") -> str:
@@ -57,6 +66,40 @@ class Collection:
     @property
     def store(self) -> Store:
         return Store(self.root / FILES_NAME)
+
+    @property
+    def id_path(self) -> Path:
+        return self.root / ID_NAME
+
+    def folder_id(self) -> str | None:
+        """The id in ``collection.id``, or None when the folder has none (older folders)."""
+        try:
+            info = os.lstat(self.id_path)
+        except FileNotFoundError:
+            return None
+        if not stat.S_ISREG(info.st_mode):
+            raise CollectionError(f"{self.id_path} is not a plain file (a link or a folder); "
+                                  "replace it with the file collector wrote, or remove it")
+        text = self.id_path.read_text("utf-8").strip()
+        try:
+            return str(uuid.UUID(text))
+        except ValueError as exc:
+            raise CollectionError(f"{self.id_path} does not hold a collection id ({text[:40]!r});"
+                                  " restore the file or remove it (the ledger's id is then "
+                                  "written again)") from exc
+
+    def write_folder_id(self, value: str) -> None:
+        """Create ``collection.id``; an existing file (or a planted link) is never replaced."""
+        try:
+            fd = os.open(self.id_path, os.O_WRONLY | os.O_CREAT | os.O_EXCL | os.O_NOFOLLOW,
+                         0o644)
+        except FileExistsError as exc:
+            raise CollectionError(f"{self.id_path} appeared while collector was writing it; "
+                                  "run the command again") from exc
+        with os.fdopen(fd, "w", encoding="utf-8") as fh:
+            fh.write(value + "\n")
+            fh.flush()
+            os.fsync(fh.fileno())
 
     def recipe(self) -> Recipe:
         """Load and validate the folder's recipe."""
@@ -136,15 +179,82 @@ class Collection:
             os.close(fd)
 
 
+def store_has_files(collection: Collection) -> bool:
+    """Whether ``files/`` holds at least one stored file (stops at the first)."""
+    return next(iter(collection.store.iter_stored()), None) is not None
+
+
+def check_ledger(collection: Collection, ledger: Ledger, *, bind: bool = False) -> None:
+    """Refuse a ledger that cannot describe the store beside it; nothing is changed.
+
+    - Its ``collection_id`` differs from the folder's ``collection.id``: another
+      collection's ledger.
+    - ``files/`` holds stored files while the ledger has no files, no items and no store
+      intents: a re-created (or foreign, empty) ledger; recovery would take every file for
+      debris.
+    - The ledger has files rows while ``files/`` holds none at all: the disk is not mounted
+      or the folder was moved without its files; recovery would reset every item.
+
+    Binding an id (``bind``, write access only): a ledger migrated from version 1 has no
+    ``collection_id``, and an older folder has no ``collection.id``. The missing one is
+    written only when the store is empty or the ledger has a row (or an intent) for at least
+    one stored file, so a ledger is never adopted by a folder whose files it knows nothing about.
+    """
+    ledger_id = ledger.collection_id()
+    folder_id = collection.folder_id()
+    root = collection.root
+    if ledger_id and folder_id and ledger_id != folder_id:
+        raise LedgerUnusable(
+            f"this ledger belongs to another collection: {ledger.path} has collection id "
+            f"{ledger_id}, the folder's {ID_NAME} says {folder_id}. " + ways_out(root))
+    known = int(ledger.scalar("SELECT count(*) FROM files") or 0)
+    items = int(ledger.scalar("SELECT count(*) FROM items") or 0)
+    stored_any = store_has_files(collection)
+    intents = ledger.store_intents()
+    if stored_any and known == 0 and items == 0 and not intents:
+        raise LedgerUnusable(
+            f"{collection.store.root} holds stored files but the ledger {ledger.path} knows "
+            "none of them and has no items: it was re-created or belongs elsewhere. "
+            + ways_out(root))
+    if known and not stored_any:
+        raise CollectionError(
+            f"the ledger {ledger.path} records {known} stored files but "
+            f"{collection.store.root} holds none at all: is the disk mounted, or was the "
+            "folder moved without files/? Nothing was changed; put the files back and run "
+            "again (or restore the folder from your copy).")
+    if ledger_id and folder_id:
+        return
+    if stored_any:
+        hashes = ledger.known_sha256s() | intents
+        if not any(sha in hashes for sha, _ in collection.store.iter_stored()):
+            raise LedgerUnusable(
+                f"cannot tell whether {ledger.path} belongs to this folder: "
+                + ("the folder has no " + ID_NAME if not folder_id else "the ledger has no id")
+                + " and the ledger knows none of the stored files. " + ways_out(root))
+    if bind:
+        value = ledger_id or folder_id or str(uuid.uuid4())
+        if not ledger_id:
+            ledger.set_fact("collection_id", value)
+        if not folder_id:
+            collection.write_folder_id(value)
+
+
 def open_collection(root: Path) -> Collection:
-    """The collection at ``root``, after checking that it is one."""
+    """The collection at ``root``, after checking that it is one and that its ledger can
+    describe its store (:func:`check_ledger`; LedgerUnusable/CollectionError, exit 2)."""
     if not root.is_dir():
         raise CollectionError(f"{root} does not exist; create a collection with "
                               f"'collector init {root}'")
     collection = Collection(root)
+    if collection.recipe_path.is_file() and not collection.ledger_path.exists() and (
+            store_has_files(collection)):
+        raise LedgerUnusable(f"{root} has no {LEDGER_NAME} but {collection.store.root} holds "
+                             "stored files. " + ways_out(root))
     if not collection.recipe_path.is_file() or not collection.ledger_path.is_file():
         raise CollectionError(f"{root} is not a collection folder (no {RECIPE_NAME} and "
                               f"{LEDGER_NAME}); create one with 'collector init {root}'")
+    with Ledger.open(collection.ledger_path, readonly=True) as ledger:
+        check_ledger(collection, ledger)
     with contextlib.suppress(OSError):  # a read-only folder keeps its old files, harmlessly
         collection.move_derived_out_of_store()
     return collection
@@ -160,13 +270,23 @@ def init_collection(root: Path, *, contact: str = "", name: str | None = None,
         raise CollectionError(
             f"{root} is not empty; nothing was changed. Choose an empty or new folder, or "
             "pass --existing-ok to add the missing collection files without touching others")
-    root.mkdir(parents=True, exist_ok=True)
     collection = Collection(root)
+    if root.is_dir() and not collection.ledger_path.exists() and store_has_files(collection):
+        raise LedgerUnusable(f"{root} has no {LEDGER_NAME} but {collection.store.root} holds "
+                             "stored files; a new empty ledger would not describe them. "
+                             + ways_out(root))
+    if collection.ledger_path.exists():
+        with Ledger.open(collection.ledger_path, readonly=True) as ledger:
+            check_ledger(collection, ledger)  # an unusable ledger stops before any write
+    folder_id = collection.folder_id() if root.is_dir() else None
+    root.mkdir(parents=True, exist_ok=True)
     if not collection.recipe_path.exists():
         collection.recipe_path.write_text(
             recipe_template(contact=contact, name=name or root.resolve().name), "utf-8")
     if not collection.ledger_path.exists():
-        Ledger.create(collection.ledger_path).close()
+        with Ledger.create(collection.ledger_path, collection_id=folder_id) as ledger:
+            if folder_id is None:
+                collection.write_folder_id(ledger.collection_id() or "")
     collection.store.ensure()
     return collection
 
@@ -178,23 +298,36 @@ class Recovery:
     temp_files_removed: int
     orphan_files_removed: int
     rows_reset: int
+    unknown_files: tuple[str, ...] = ()  # stored, no row, no intent: kept
 
 
 def recover(collection: Collection, ledger: Ledger) -> Recovery:
     """Bring the store and the ledger back into step after a crash.
 
-    A file enters the store before its ledger row is committed, so a crash can leave a temp
-    file (removed), or a stored file without a row (removed: its item is still pending and
-    will be fetched again). A row whose file is missing (deleted by hand) goes back to pending.
+    The ledger is checked first (:func:`check_ledger`, binding the collection id): nothing
+    is touched beside a ledger that cannot describe the store. A store intent is committed
+    before a file enters (or leaves) the store and dropped with its ``files`` row, so a crash
+    can leave a temp file (removed), or a stored file without a row that an intent names
+    (removed: its item is still pending and will be fetched again). A stored file without a
+    row and without an intent is unexplained: it is kept and returned in ``unknown_files``
+    ('collector rebuild-ledger' registers it). A row whose file is missing (deleted by hand)
+    goes back to pending.
     """
+    check_ledger(collection, ledger, bind=True)
     store = collection.store
     temp_removed = store.clean_incoming()
     known = ledger.known_sha256s()
+    intents = ledger.store_intents()
     orphans = 0
+    unknown: list[str] = []
     for sha, path in list(store.iter_stored()):
-        if sha not in known:
+        if sha in known:
+            continue
+        if sha in intents:
             path.unlink(missing_ok=True)
             orphans += 1
+        else:
+            unknown.append(sha)
     missing = [sha for sha in known if store.find(sha) is None]
     reset = 0
     with ledger.transaction():
@@ -203,4 +336,6 @@ def recover(collection: Collection, ledger: Ledger) -> Recovery:
                 "UPDATE items SET state = 'pending', reason = NULL, file_sha256 = NULL "
                 "WHERE file_sha256 = ?", [sha]).rowcount
             ledger.db.execute("DELETE FROM files WHERE sha256 = ?", [sha])
-    return Recovery(temp_removed, orphans, reset)
+        if intents:
+            ledger.db.execute("DELETE FROM store_intents")
+    return Recovery(temp_removed, orphans, reset, tuple(sorted(unknown)))

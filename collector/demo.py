@@ -45,6 +45,8 @@ def prepare_folder(folder: Path, *, fresh: bool) -> bool:
     if folder.is_dir() and any(folder.iterdir()) and not _is_collection(folder):
         raise CollectionError(f"{folder} is not empty and is not a collection; nothing was "
                               "changed. Choose a new folder for the demo")
+    if _is_collection(folder):
+        open_collection(folder)  # a ledger that cannot describe the store stops here
     if fresh and _is_collection(folder):
         shutil.rmtree(folder)
     return _is_collection(folder)

@@ -10,6 +10,7 @@ exception escaping to the CLI is a bug and keeps its traceback.
     ├── RecipeError                  recipe.toml has problems (exit 2); .problems lists them all
     ├── CollectionError              folder missing, not a collection, not empty, locked (exit 2)
     ├── LedgerError                  the SQLite ledger could not be read or written
+    │   └── LedgerUnusable           empty, missing, schema-less, foreign or store-less (exit 2)
     ├── StoreError                   a file could not be stored (disk full: .errno == ENOSPC)
     ├── SourceError                  a source could not be read (bad JSON, empty selector)
     ├── SourceKindError              a source kind is unknown, clashes, or its package is broken
@@ -67,6 +68,14 @@ class CollectionError(CollectorError):
 
 class LedgerError(CollectorError):
     """The SQLite ledger could not be read or written."""
+
+
+class LedgerUnusable(LedgerError):
+    """The ledger cannot be trusted to describe the store beside it (empty, no schema, not
+    SQLite, another collection's, or the store is gone). Nothing was changed; the message
+    names the ways out (restore a backup, rebuild from the store)."""
+
+    exit_code = 2
 
 
 class StoreError(CollectorError):

@@ -5,6 +5,11 @@ file and host policy is a row. It is opened in WAL mode so that ``collector stat
 ``collector trace`` can read while ``gather`` writes. Schema changes are numbered migrations;
 ``schema_version`` records which ones were applied.
 
+Only :meth:`Ledger.create` (``collector init``, ``collector rebuild-ledger``) writes a schema
+into a file. :meth:`Ledger.open` refuses a file without one (0 bytes, no ``schema_version``
+table, not SQLite) with :class:`~collector.errors.LedgerUnusable`: a lost ledger silently
+re-created beside a full store would make every stored file look like crash debris.
+
 All methods are thread-safe (one connection, one lock): the gather worker pool writes from
 several threads.
 """
@@ -14,6 +19,7 @@ from __future__ import annotations
 import json
 import sqlite3
 import threading
+import uuid
 from collections.abc import Callable, Iterator
 from contextlib import contextmanager, suppress
 from datetime import UTC, datetime
@@ -22,9 +28,9 @@ from typing import Any
 
 import sqlite_utils
 
-from collector.errors import LedgerError
+from collector.errors import LedgerError, LedgerUnusable
 
-SCHEMA_VERSION = 1
+SCHEMA_VERSION = 2
 
 JSON_COLUMNS = {"options", "config", "metadata", "crop_box", "exif", "rights", "flags",
                 "effective_budget"}
@@ -80,7 +86,30 @@ def _migration_1(db: sqlite_utils.Database) -> None:
     }, pk="id")
 
 
-MIGRATIONS: dict[int, Callable[[sqlite_utils.Database], None]] = {1: _migration_1}
+def _migration_2(db: sqlite_utils.Database) -> None:
+    """The ledger's identity and the store's write-ahead intents.
+
+    ``ledger_facts`` holds ``collection_id`` (a uuid4, also written to the folder's
+    ``collection.id``) so a ledger from another collection is recognised; a migrated ledger
+    gets it from ``collection.check_ledger``, which knows the folder. ``store_intents``
+    names a file while it is being placed in (or removed from) the store: crash recovery
+    removes a stored file without a ``files`` row only when an intent names it.
+    """
+    db["ledger_facts"].create({"name": str, "value": str}, pk="name")
+    db["store_intents"].create({"sha256": str, "item_id": int, "started_at": str},
+                               pk="sha256")
+
+
+MIGRATIONS: dict[int, Callable[[sqlite_utils.Database], None]] = {
+    1: _migration_1, 2: _migration_2}
+
+
+def ways_out(folder: Path) -> str:
+    """The two commands that mend an unusable ledger of the collection at ``folder``."""
+    return (f"Nothing was changed. Restore the newest ledger backup with 'collector "
+            f"restore-ledger {folder}', or register the stored files again (provenance "
+            f"unknown) with 'collector rebuild-ledger {folder}'; both set the current "
+            "ledger file aside instead of deleting it.")
 
 
 def _encode(row: dict[str, Any]) -> dict[str, Any]:
@@ -116,43 +145,74 @@ class Ledger:
         self.db = sqlite_utils.Database(conn)
         self._lock = threading.RLock()
         self._column_cache: dict[str, frozenset[str]] = {}
+        self._depth = 0  # transaction() nesting: only the outermost block commits
 
     # -- opening -----------------------------------------------------------------------------
     @classmethod
-    def create(cls, path: Path) -> Ledger:
-        """Create a new ledger file at ``path`` with the current schema."""
+    def create(cls, path: Path, *, collection_id: str | None = None) -> Ledger:
+        """Create a new ledger file at ``path`` with the current schema (the only way a
+        schema is written into a file); ``collection_id`` keeps a folder's identity."""
         if path.exists():
             raise LedgerError(f"{path} already exists; open it instead of creating it")
-        return cls._connect(path)
+        ledger = cls._connect(path, create=True)
+        ledger.set_fact("collection_id", collection_id or str(uuid.uuid4()))
+        return ledger
 
     @classmethod
     def open(cls, path: Path, *, readonly: bool = False) -> Ledger:
-        """Open an existing ledger, applying any pending migrations (unless read-only)."""
+        """Open an existing ledger, applying any pending migrations (unless read-only).
+
+        A file that is empty, is not SQLite or has no ``schema_version`` table is refused
+        with LedgerUnusable (exit 2): it is never given a fresh schema here.
+        """
         if not path.is_file():
             raise LedgerError(
                 f"no ledger at {path}; is this a collection folder? Create one with "
                 "'collector init DIR'")
+        if path.stat().st_size == 0:
+            raise LedgerUnusable(f"the ledger {path} is empty (0 bytes): the record of "
+                                 f"where the stored files came from is lost. "
+                                 + ways_out(path.parent))
         return cls._connect(path, readonly=readonly)
 
     @classmethod
-    def _connect(cls, path: Path, *, readonly: bool = False) -> Ledger:
+    def _connect(cls, path: Path, *, readonly: bool = False, create: bool = False) -> Ledger:
         try:
             if readonly:
                 conn = sqlite3.connect(f"file:{path}?mode=ro", uri=True,
                                        check_same_thread=False, timeout=30)
             else:
                 conn = sqlite3.connect(path, check_same_thread=False, timeout=30)
+            if not create:
+                # Before any PRAGMA that writes: a file without our schema stays untouched.
+                tables = {r[0] for r in conn.execute(
+                    "SELECT name FROM sqlite_master WHERE type = 'table'")}
+                if "schema_version" not in tables:
+                    conn.close()
+                    raise LedgerUnusable(
+                        f"the ledger {path} holds no collector schema (no schema_version "
+                        f"table{'; it is empty' if not tables else ''}): it is not this "
+                        "collection's ledger or it was re-created. " + ways_out(path.parent))
+            if not readonly:
                 conn.execute("PRAGMA journal_mode=WAL")
                 # NORMAL in WAL mode: every commit survives a killed process; after a power
                 # loss the last commits may be lost but the file stays consistent, and
-                # collection.recover() removes store files whose rows were lost.
+                # collection.recover() removes store files named by a store intent.
                 conn.execute("PRAGMA synchronous=NORMAL")
             conn.execute("PRAGMA foreign_keys=ON")
             ledger = cls(path, conn)
+            if not create and ledger.schema_version() == 0:
+                conn.close()
+                raise LedgerUnusable(f"the ledger {path} has an empty schema_version table: "
+                                     "no schema was ever completed in it. "
+                                     + ways_out(path.parent))
             if not readonly:
                 ledger.migrate()
             return ledger
         except sqlite3.DatabaseError as exc:
+            if "not a database" in str(exc) or "malformed" in str(exc):
+                raise LedgerUnusable(f"cannot open the ledger {path}: it is not a readable "
+                                     f"SQLite file ({exc}). " + ways_out(path.parent)) from exc
             raise LedgerError(f"cannot open the ledger {path}: {exc}") from exc
 
     def close(self) -> None:
@@ -201,9 +261,29 @@ class Ledger:
 
     @contextmanager
     def transaction(self) -> Iterator[None]:
-        """Group several writes into one atomic transaction."""
-        with self._lock, self._translate("transaction"), self._conn:
+        """Group several writes into one atomic transaction (nested blocks join the
+        outermost one: only it commits, or rolls everything back)."""
+        with self._lock, self._translate("transaction"), self._write():
             yield
+
+    @contextmanager
+    def _write(self) -> Iterator[None]:
+        # sqlite3's "with conn" commits at the end of every block, so a write helper called
+        # inside transaction() would commit half of it; only the outermost block commits.
+        with self._lock:
+            if self._depth:
+                self._depth += 1
+                try:
+                    yield
+                finally:
+                    self._depth -= 1
+                return
+            self._depth = 1
+            try:
+                with self._conn:
+                    yield
+            finally:
+                self._depth = 0
 
     # -- generic helpers ---------------------------------------------------------------------
     def query(self, sql: str, params: tuple[Any, ...] | dict[str, Any] = ()) -> list[dict]:
@@ -242,7 +322,7 @@ class Ledger:
         names = ", ".join(data)
         marks = ", ".join("?" for _ in data)
         verb = "INSERT OR IGNORE" if ignore else "INSERT"
-        with self._lock, self._translate(f"write to {table}"), self._conn:
+        with self._lock, self._translate(f"write to {table}"), self._write():
             cur = self._conn.execute(f"{verb} INTO {table} ({names}) VALUES ({marks})",
                                      list(data.values()))
             return int(cur.lastrowid or 0)
@@ -253,7 +333,7 @@ class Ledger:
             return
         sets = ", ".join(f"{name} = ?" for name in data)
         key = "sha256" if table == "files" else "host" if table == "hosts" else "id"
-        with self._lock, self._translate(f"update {table}"), self._conn:
+        with self._lock, self._translate(f"update {table}"), self._write():
             self._conn.execute(f"UPDATE {table} SET {sets} WHERE {key} = ?",
                                [*data.values(), pk])
 
@@ -318,6 +398,10 @@ class Ledger:
         """Record a stored file (ignored if the sha256 is already known)."""
         self._insert("files", {"stored_at": utc_now(), **row}, ignore=True)
 
+    def update_file(self, sha256: str, fields: dict[str, Any]) -> None:
+        """Change a stored file's columns (a recovered file attached to its item)."""
+        self._update("files", sha256, fields)
+
     def known_sha256s(self) -> set[str]:
         """Every sha256 the ledger has a files row for."""
         return {r["sha256"] for r in self.query("SELECT sha256 FROM files")}
@@ -334,9 +418,61 @@ class Ledger:
         names = ", ".join(data)
         marks = ", ".join("?" for _ in data)
         sets = ", ".join(f"{n} = excluded.{n}" for n in data if n != "host") or "host = host"
-        with self._lock, self._translate("write to hosts"), self._conn:
+        with self._lock, self._translate("write to hosts"), self._write():
             self._conn.execute(f"INSERT INTO hosts ({names}) VALUES ({marks}) "
                                f"ON CONFLICT(host) DO UPDATE SET {sets}", list(data.values()))
+
+    # -- identity and store intents ------------------------------------------------------------
+    def fact(self, name: str) -> str | None:
+        """A value of ``ledger_facts`` (None when unset or in a version 1 ledger)."""
+        if "ledger_facts" not in self._tables():
+            return None
+        return self.scalar("SELECT value FROM ledger_facts WHERE name = ?", (name,))
+
+    def set_fact(self, name: str, value: str) -> None:
+        """Set a value of ``ledger_facts``."""
+        with self._lock, self._translate("write to ledger_facts"), self._write():
+            self._conn.execute("INSERT INTO ledger_facts (name, value) VALUES (?, ?) "
+                               "ON CONFLICT(name) DO UPDATE SET value = excluded.value",
+                               (name, value))
+
+    def collection_id(self) -> str | None:
+        """The id of the collection this ledger belongs to (None: a version 1 ledger)."""
+        return self.fact("collection_id")
+
+    def add_store_intent(self, sha256: str, item_id: int | None) -> None:
+        """Record, committed, that ``sha256`` is about to enter or leave the store."""
+        with self._lock, self._translate("write to store_intents"), self._write():
+            self._conn.execute("INSERT OR REPLACE INTO store_intents (sha256, item_id, "
+                               "started_at) VALUES (?, ?, ?)", (sha256, item_id, utc_now()))
+
+    def drop_store_intent(self, sha256: str) -> None:
+        """The store change named by an intent is complete (or was undone)."""
+        with self._lock, self._translate("write to store_intents"), self._write():
+            self._conn.execute("DELETE FROM store_intents WHERE sha256 = ?", (sha256,))
+
+    def store_intents(self) -> set[str]:
+        """The sha256 of every store change that was started and not completed."""
+        if "store_intents" not in self._tables():
+            return set()
+        return {r["sha256"] for r in self.query("SELECT sha256 FROM store_intents")}
+
+    def _tables(self) -> set[str]:
+        return {r["name"] for r in self.query(
+            "SELECT name FROM sqlite_master WHERE type = 'table'")}
+
+    # -- backups -----------------------------------------------------------------------------
+    def backup_to(self, target: Path) -> None:
+        """Copy the whole ledger into ``target`` with SQLite's online backup API (a
+        consistent copy while others read; https://www.sqlite.org/backup.html)."""
+        with self._lock, self._translate(f"backup to {target}"):
+            dest = sqlite3.connect(target)
+            try:
+                self._conn.backup(dest)
+                # One self-contained file: no -wal beside a copy that may be moved around.
+                dest.execute("PRAGMA journal_mode=DELETE")
+            finally:
+                dest.close()
 
     # -- notes -------------------------------------------------------------------------------
     def add_note(self, kind: str, message: str, *, url: str | None = None,

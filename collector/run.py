@@ -33,7 +33,7 @@ from typing import Any, BinaryIO, Protocol
 
 import sources as adapters
 from collector import __version__
-from collector.collection import Collection, recover
+from collector.collection import Collection, Recovery, recover
 from collector.errors import (
     CollectorError,
     FetchError,
@@ -51,6 +51,7 @@ from collector.errors import (
 from collector.hashindex import HashIndex, NearMatch, to_signed
 from collector.images import ImageFacts, inspect_image
 from collector.ledger import Ledger, utc_now
+from collector.ledger_repair import RECOVERED_FLAG, backup_ledger
 from collector.licences import licence_allowed, normalise_licence, rights_conflict
 from collector.recipe import Recipe, env_problems, parse_clock, parse_duration
 from collector.safe_text import shown_name
@@ -134,6 +135,8 @@ class RunResult:
     outcome: str  # finished | stopped: <why> | interrupted | failed: <why>
     counts: Counter[str] = field(default_factory=Counter)
     terminated: bool = False  # interrupted by SIGTERM rather than Ctrl-C (SIGINT)
+    backup: Path | None = None  # the ledger backup written at the end of the run
+    backup_error: str | None = None  # why no backup could be written
 
     @property
     def exit_code(self) -> int:
@@ -253,8 +256,10 @@ class Gatherer:
         elif self.stop_event.is_set():
             outcome = self.stop_reason
         self.ledger.end_run(self.run_id, outcome)
+        backup, backup_error = self._backup()
         self.progress.event("run_ended", outcome=outcome)
-        return RunResult(self.run_id, outcome, self.counts, terminated=terminated)
+        return RunResult(self.run_id, outcome, self.counts, terminated=terminated,
+                         backup=backup, backup_error=backup_error)
 
     def _drain(self, threads: list[threading.Thread]) -> None:
         """After a stop: let every worker finish what it holds, then return."""
@@ -288,6 +293,18 @@ class Gatherer:
             if self.fatal is None:
                 self.fatal = error
         self.request_stop(f"failed: {error}")
+
+    def _backup(self) -> tuple[Path | None, str | None]:
+        """Copy the ledger into ledger-backups/ (whatever the outcome); a failure is a note,
+        not a failed run: the run's own records are already committed."""
+        try:
+            return backup_ledger(self.collection, self.ledger, self.run_id), None
+        except (CollectorError, OSError) as exc:
+            message = f"no ledger backup was written: {exc}"
+            with contextlib.suppress(CollectorError):
+                self.ledger.add_note("backup_failed", message, run_id=self.run_id)
+            self.progress.event("note", source="ledger", note="backup_failed", message=message)
+            return None, message
 
     @staticmethod
     def _wait(threads: list[threading.Thread], *, interruptible: bool = True) -> None:
@@ -502,7 +519,7 @@ class Gatherer:
                 **extra: Any) -> None:
         """Check a complete temp file and store it, or record why not. Always consumes it."""
         try:
-            if self.ledger.file(sha):
+            if _explained(self.ledger.file(sha)):
                 self._record_duplicate(item_id, sha, path, extra)
                 return
             images = self.recipe.images
@@ -516,10 +533,12 @@ class Gatherer:
                 self._finish(item_id, "rejected", exc.reason, exc.detail, **extra)
                 return
             with self._ingest_lock:
-                if self.ledger.file(sha):
+                row = self.ledger.file(sha)
+                if _explained(row):
                     self._record_duplicate(item_id, sha, path, extra)
                     return
-                self._store_new(item_id, spdx_id, path, sha, facts, extra)
+                self._store_new(item_id, spdx_id, path, sha, facts, extra,
+                                recovered=row is not None)
         finally:
             with contextlib.suppress(OSError):
                 path.unlink(missing_ok=True)
@@ -588,26 +607,36 @@ class Gatherer:
                 self.ledger.db.execute("UPDATE items SET file_sha256 = NULL "
                                        "WHERE file_sha256 = ?", [match.sha256])
                 self.ledger.db.execute("DELETE FROM files WHERE sha256 = ?", [match.sha256])
+                # Committed with the row's removal: a crash before the unlink below leaves
+                # a file that recovery may remove because an intent names it.
+                self.ledger.add_store_intent(match.sha256, None)
         if drop:
             self.index.remove(match.sha256)
             stored = self.store.find(match.sha256)
             if stored is not None:
                 stored.unlink(missing_ok=True)
+            self.ledger.drop_store_intent(match.sha256)
         self._recount("stored", "near_duplicate")
 
     def _store_new(self, item_id: int, spdx_id: str | None, path: Path, sha: str,
-                   facts: ImageFacts, extra: dict[str, Any]) -> None:
+                   facts: ImageFacts, extra: dict[str, Any], *, recovered: bool = False) -> None:
+        """Store a new file, or attach ``item_id`` to a file registered by rebuild-ledger
+        (``recovered``: the bytes are already in the store, the row has no item yet)."""
         flags = list(facts.flags)
         conflict = rights_conflict(spdx_id, facts.rights)
         if conflict:
             flags.append("licence_conflict")
-        near = self.index.nearest(facts.phash, facts.phash_mirror,
-                                  self.recipe.images.near_distance)
+        near = [m for m in self.index.nearest(facts.phash, facts.phash_mirror,
+                                              self.recipe.images.near_distance)
+                if m.sha256 != sha]
         state, reason, detail = "stored", None, conflict
         demote: tuple[int, NearMatch] | None = None
+        firsts = {m.sha256: (self.ledger.file(m.sha256) or {}).get("first_item_id")
+                  for m in near}
+        # A recovered file without an item yet is nobody's original: it makes no item a
+        # near duplicate until a gather attaches it to the item that lists it.
+        near = [m for m in near if firsts[m.sha256] is not None]
         if near:
-            firsts = {m.sha256: (self.ledger.file(m.sha256) or {}).get("first_item_id")
-                      for m in near}
             best = min(near, key=lambda m: (m.distance, self._rank(firsts[m.sha256] or 0)))
             original_id = firsts[best.sha256]
             original = self.ledger.item(original_id) if original_id else None
@@ -625,19 +654,34 @@ class Gatherer:
                                  detail + "; not stored (recipe: drop)", **extra)
                     return
         size = path.stat().st_size
-        self.store.adopt(path, sha, facts.ext, synced=True)
-        with self.ledger.transaction():
-            self.ledger.add_file({
-                "sha256": sha, "size": size, "ext": facts.ext, "format": facts.format,
-                "mime": facts.mime, "width": facts.width, "height": facts.height,
-                "mode": facts.mode, "bit_depth": facts.bit_depth, "alpha": facts.alpha,
-                "frames": facts.frames, "orientation": facts.orientation,
-                "phash": to_signed(facts.phash), "phash_mirror": to_signed(facts.phash_mirror),
-                "hash_algo": facts.hash_algo, "first_item_id": item_id, "exif": facts.exif,
-                "rights": facts.rights, "flags": flags,
-            })
-            self._finish(item_id, state, reason, detail, file_sha256=sha, **extra)
-        self.index.add(sha, facts.phash)
+        row = {
+            "size": size, "ext": facts.ext, "format": facts.format,
+            "mime": facts.mime, "width": facts.width, "height": facts.height,
+            "mode": facts.mode, "bit_depth": facts.bit_depth, "alpha": facts.alpha,
+            "frames": facts.frames, "orientation": facts.orientation,
+            "phash": to_signed(facts.phash), "phash_mirror": to_signed(facts.phash_mirror),
+            "hash_algo": facts.hash_algo, "first_item_id": item_id, "exif": facts.exif,
+            "rights": facts.rights, "flags": flags,
+        }
+        if recovered:
+            # The stored bytes are these bytes (same sha256): attach, do not store again.
+            with self.ledger.transaction():
+                self.ledger.update_file(sha, row)
+                self._finish(item_id, state, reason, detail, file_sha256=sha, **extra)
+        else:
+            # Write-ahead: the intent is committed before the file appears in the store and
+            # dropped in the transaction that adds its row, so recovery removes a stored
+            # file without a row only when an intent says it was being placed.
+            placing = self.store.find(sha) is None
+            if placing:
+                self.ledger.add_store_intent(sha, item_id)
+            self.store.adopt(path, sha, facts.ext, synced=True)
+            with self.ledger.transaction():
+                self.ledger.add_file({"sha256": sha, **row})
+                self._finish(item_id, state, reason, detail, file_sha256=sha, **extra)
+                if placing:
+                    self.ledger.drop_store_intent(sha)
+            self.index.add(sha, facts.phash)
         if demote is not None:
             self._demote(demote[0], item_id, demote[1])
         with self._lock:
@@ -697,6 +741,12 @@ def open_regular(path: Path) -> BinaryIO:
         raise
 
 
+def _explained(row: dict[str, Any] | None) -> bool:
+    """A files row that already belongs to an item (not one rebuild-ledger recovered)."""
+    return row is not None and not (row.get("first_item_id") is None
+                                    and RECOVERED_FLAG in (row.get("flags") or []))
+
+
 @dataclass(frozen=True)
 class _Note:
     kind: str
@@ -731,8 +781,12 @@ def build_fetcher(recipe: Recipe, ledger: Ledger) -> Any:
 
 
 @contextlib.contextmanager
-def prepared_run(collection: Collection) -> Iterator[tuple[Recipe, Ledger]]:
-    """Lock the folder, load the recipe, open the ledger and recover from any crash."""
+def prepared_run(collection: Collection, *,
+                 on_recovery: Callable[[Recovery], None] | None = None,
+                 ) -> Iterator[tuple[Recipe, Ledger]]:
+    """Lock the folder, load the recipe, open the ledger and recover from any crash.
+    Stored files the ledger cannot explain are kept, noted in the ledger and passed to
+    ``on_recovery`` with the rest of the :class:`Recovery`."""
     recipe = collection.recipe()
     if not recipe.sources:
         raise RecipeError([RecipeProblem(str(recipe.path), "sources",
@@ -742,12 +796,24 @@ def prepared_run(collection: Collection) -> Iterator[tuple[Recipe, Ledger]]:
     if missing:
         raise RecipeError(missing)
     with collection.gather_lock(), collection.ledger() as ledger:
-        recover(collection, ledger)
+        recovery = recover(collection, ledger)
+        if recovery.unknown_files:
+            ledger.add_note("unknown_files", unknown_files_message(collection,
+                                                                   recovery.unknown_files))
+        if on_recovery is not None:
+            on_recovery(recovery)
         # We hold the lock, so a run still marked "running" was killed (power loss, SIGKILL).
         with ledger.transaction():
             ledger.db.execute("UPDATE runs SET outcome = 'killed: did not end cleanly' "
                               "WHERE outcome = 'running'")
         yield recipe, ledger
+
+
+def unknown_files_message(collection: Collection, unknown: tuple[str, ...]) -> str:
+    """The one line that reports stored files without a ledger row (kept, never deleted)."""
+    return (f"{len(unknown)} stored files are unknown to the ledger (kept, not deleted); "
+            f"'collector rebuild-ledger {collection.root}' registers them, or a gather "
+            "attaches them when it lists their items again")
 
 
 def gather(collection: Collection, *, stop: StopRules | None = None,

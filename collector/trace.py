@@ -35,6 +35,7 @@ from collector.errors import CollectorError
 from collector.hashindex import HashFile, NearMatch
 from collector.images import sniff_format
 from collector.ledger import Ledger, decode_row
+from collector.ledger_repair import RECOVERED_FLAG
 from collector.licences import licence_allowed, licence_deed_url
 from collector.safe_text import csv_row, shown_name
 
@@ -311,6 +312,11 @@ def attribution_line(item: ItemRecord | None, *, modified: bool = False,
     return ", ".join(parts)
 
 
+def recovered_words(record: FileRecord) -> str:
+    """How a file registered by rebuild-ledger is described."""
+    return f"stored, provenance unknown (recovered on {(record.stored_at or '?')[:10]})"
+
+
 # --- the tracer --------------------------------------------------------------------------------
 class Tracer:
     """Traces files against one collection; open with :meth:`open`, use as a context manager.
@@ -433,6 +439,8 @@ class Tracer:
             result.allowed = self.allowed(origin.spdx_id if origin else None)
             result.attribution = attribution_line(origin, modified=result.kind == "near",
                                                   copyright_notice=best.copyright)
+            if origin is None and RECOVERED_FLAG in best.flags:
+                result.attribution = f"No attribution: {recovered_words(best)}."
         return result
 
     def trace_all(self, targets: Iterable[tuple[Path, bool]]) -> Iterator[TraceResult]:
@@ -611,6 +619,9 @@ def _file_lines(record: FileRecord) -> list[str]:
              f"{record.width}×{record.height}, {size}, stored {record.stored_at})"]
     if record.origin:
         lines += _item_lines(record.origin)
+    elif RECOVERED_FLAG in record.flags:
+        lines.append(f"  provenance:   {recovered_words(record)}; no source, item or licence "
+                     "is recorded")
     lines.append(f"  flags:        {', '.join(record.flags) if record.flags else 'none'}")
     for other in record.others:
         where = other.page_url or other.image_url or other.local_path or other.source_key

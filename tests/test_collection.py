@@ -80,8 +80,7 @@ def test_an_old_index_inside_the_store_is_removed_on_open(tmp_path: Path) -> Non
     col = init_collection(tmp_path / "c", contact="me@example.org")
     (col.store.root / ".phash-index").write_bytes(b"CLPHX001" + bytes(120))
     (col.store.root / ".phash-index.lock").write_bytes(b"")
-    kept = col.store.root / "ab" / "cd" / ("abcd" + "0" * 60 + ".png")
-    kept.parent.mkdir(parents=True)
+    kept = col.store.root / ".phash-index-notes.txt"  # not ours to remove: kept
     kept.write_bytes(b"content")
     open_collection(col.root)
     assert not (col.store.root / ".phash-index").exists()

@@ -90,10 +90,13 @@ CRASH_SCRIPT = textwrap.dedent("""
     os.write(fd, b" and the rest"); os.close(fd)
     import hashlib
     sha = hashlib.sha256(b"half of an image and the rest").hexdigest()
+    ledger.add_store_intent(sha, None)  # write-ahead, as collector.run does
     store.adopt(tmp, sha, "png")
     if point == "before-row":
         os.kill(os.getpid(), signal.SIGKILL)
-    ledger.add_file({"sha256": sha, "size": 29, "ext": "png"})
+    with ledger.transaction():
+        ledger.add_file({"sha256": sha, "size": 29, "ext": "png"})
+        ledger.drop_store_intent(sha)
     os.kill(os.getpid(), signal.SIGKILL)
 """)
 
@@ -119,13 +122,17 @@ def test_crash_during_store_write_leaves_no_partial_file_and_no_dangling_row(
 
 
 def test_recover_resets_items_whose_file_was_deleted(tmp_path: Path) -> None:
-    """An item pointing at a file removed by hand goes back to pending."""
+    """An item pointing at a file removed by hand goes back to pending (while the store
+    still holds other files: an empty store is refused, see test_ledger_safety)."""
     col = init_collection(tmp_path / "c", contact="me@example.org")
     with Ledger.open(col.ledger_path) as ledger:
         sha, path = col.store.put_bytes(b"abc", "png")
+        kept, _ = col.store.put_bytes(b"def", "png")
         source = ledger.source_id("s", "scans", {})
         item = ledger.add_item(source, "k", {"state": "stored", "file_sha256": sha})
+        ledger.add_item(source, "k2", {"state": "stored", "file_sha256": kept})
         ledger.add_file({"sha256": sha, "size": 3, "ext": "png"})
+        ledger.add_file({"sha256": kept, "size": 3, "ext": "png"})
         path.unlink()
         result = recover(col, ledger)
         assert result.rows_reset == 1
