@@ -24,10 +24,10 @@ import tempfile
 import time
 from pathlib import Path
 
-from collector.collection import Collection, init_collection, recover
-from collector.run import gather
-from demo_site import DemoServer, generate
-from demo_site.recipes import render
+from collector.demo_site import DemoServer, generate
+from collector.demo_site.recipes import render
+from collector.run.gather import gather
+from collector.storage.collection import Collection, init_collection, recover
 
 
 def stored_urls(col: Collection) -> set[str]:

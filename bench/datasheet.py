@@ -28,7 +28,7 @@ STATES = ["stored"] * 80 + ["duplicate"] * 6 + ["near_duplicate"] * 4 + ["failed
 
 def build(root: Path, n: int) -> None:
     """A collection whose ledger holds ``n`` items, their fetches and files (no image bytes)."""
-    from collector.collection import init_collection
+    from collector.storage.collection import init_collection
 
     init_collection(root, contact="bench@fernhollow.example", name="Synthetic leaves")
     rng = random.Random(8)
@@ -73,7 +73,7 @@ def build(root: Path, n: int) -> None:
 
 def one(n: int) -> None:
     """Measure one size in this process and print a JSON line."""
-    from collector.datasheet import export_datasheet
+    from collector.exports.datasheet import export_datasheet
 
     root = Path(tempfile.mkdtemp()) / "c"
     build(root, n)

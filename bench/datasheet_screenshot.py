@@ -47,9 +47,9 @@ def main() -> int:
         html = Path(sys.argv[1])
         png = Path(sys.argv[2]) if len(sys.argv) > 2 else html.with_suffix(".png")
     else:
-        from collector.datasheet import export_datasheet
         from collector.demo import run_demo
-        from demo_site import generate
+        from collector.demo_site import generate
+        from collector.exports.datasheet import export_datasheet
 
         tmp = Path(tempfile.mkdtemp())
         generate(tmp / "content")

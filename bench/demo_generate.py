@@ -11,7 +11,7 @@ import tempfile
 import time
 from pathlib import Path
 
-from demo_site import DemoServer, generate
+from collector.demo_site import DemoServer, generate
 
 
 def main(runs: int = 2) -> None:

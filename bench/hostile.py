@@ -12,9 +12,9 @@ import sys
 import tempfile
 from pathlib import Path
 
-from collector.collection import init_collection
-from demo_site.hostile import CASES, HostileArchive
-from demo_site.hostile_run import judge, run_gather
+from collector.demo_site.hostile import CASES, HostileArchive
+from collector.demo_site.hostile_run import judge, run_gather
+from collector.storage.collection import init_collection
 
 
 def one(cases: list, folder: Path) -> tuple[int, float, int, list]:

@@ -23,8 +23,8 @@ from pathlib import Path
 import numpy as np
 from PIL import Image
 
-from collector.collection import init_collection
-from collector.run import Gatherer, gather, prepared_run
+from collector.run.gather import Gatherer, gather, prepared_run
+from collector.storage.collection import init_collection
 
 
 def make_images(folder: Path, count: int) -> list[Path]:

@@ -16,8 +16,8 @@ from pathlib import Path
 import numpy as np
 from PIL import Image, ImageDraw, ImageFilter
 
-from collector.images import inspect_image
-from collector.phash import hash_image_file
+from collector.checks.images import inspect_image
+from collector.checks.phash import hash_image_file
 
 COUNT = 100
 SIZES = [(1000, 1000), (1224, 816), (816, 1224), (1152, 864)]

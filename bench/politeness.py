@@ -19,9 +19,9 @@ import multiprocessing as mp
 import threading
 import time
 
-from collector.fetcher import Fetcher, FetchSettings
-from demo_site.loopback import LoopbackServer
-from demo_site.requestlog import max_in_window  # the same window count the tests use
+from collector.demo_site.loopback import LoopbackServer
+from collector.demo_site.requestlog import max_in_window  # the same window count the tests use
+from collector.fetching.fetcher import Fetcher, FetchSettings
 
 INTERVAL = 0.1  # s between request starts per host -> budget 10 requests/s
 BUDGET = round(1 / INTERVAL)

@@ -73,7 +73,7 @@ def init(
 
     Example: collector init my-leaves --contact me@example.org
     """
-    from collector.collection import init_collection
+    from collector.storage.collection import init_collection
 
     with user_errors():
         collection = init_collection(folder, contact=contact, name=name, existing_ok=existing_ok)
@@ -93,9 +93,9 @@ def check(
 
     Example: collector check my-leaves
     """
-    from collector.collection import open_collection
+    from collector.config.recipe import env_problems
     from collector.errors import RecipeError
-    from collector.recipe import env_problems
+    from collector.storage.collection import open_collection
 
     with user_errors():
         recipe = open_collection(folder).recipe()
@@ -143,16 +143,16 @@ def gather(
     Rerunning resumes: stored items are never requested again. Ctrl-C finishes the files in
     flight and exits 130. Example: collector gather my-leaves --until 07:00
     """
-    from collector.collection import open_collection
     from collector.display import LiveProgress
-    from collector.run import (
+    from collector.exports.summary import estimate, format_estimate, format_summary, summarise
+    from collector.run.gather import (
         Gatherer,
         build_fetcher,
         prepared_run,
         stop_rules,
         unknown_files_message,
     )
-    from collector.summary import estimate, format_estimate, format_summary, summarise
+    from collector.storage.collection import open_collection
 
     with user_errors():
         collection = open_collection(folder)
@@ -215,8 +215,8 @@ def status(
 
     Example: collector status my-leaves
     """
-    from collector.collection import open_collection
-    from collector.summary import format_summary, summarise, summary_as_dict
+    from collector.exports.summary import format_summary, summarise, summary_as_dict
+    from collector.storage.collection import open_collection
 
     with user_errors():
         collection = open_collection(folder)
@@ -250,8 +250,8 @@ def datasheet(
 
     Example: collector datasheet my-leaves --answers answers.toml --with-images
     """
-    from collector.datasheet import export_datasheet
-    from collector.datasheet_questions import answers_template as template
+    from collector.exports.datasheet import export_datasheet
+    from collector.exports.datasheet_questions import answers_template as template
 
     if answers_template:
         typer.echo(template())
@@ -282,7 +282,7 @@ def trace(
     Exit 0 when every file traced (exact or near), 1 when some did not, 2 on usage errors.
     Example: collector trace leaf.jpg --in my-leaves;  collector trace to-publish/ --csv
     """
-    from collector.trace import (
+    from collector.exports.trace import (
         CAUTION,
         Tracer,
         collect_targets,
@@ -332,7 +332,7 @@ def rebuild_ledger(
     (sha256 re-checked). A later gather attaches each file to the item that lists it again.
     Example: collector rebuild-ledger my-leaves
     """
-    from collector.ledger_repair import rebuild_ledger as rebuild
+    from collector.storage.ledger_repair import rebuild_ledger as rebuild
 
     with user_errors():
         result = rebuild(folder)
@@ -358,7 +358,7 @@ def restore_ledger(
     Stored files added after the backup are kept; a gather re-attaches them.
     Example: collector restore-ledger my-leaves
     """
-    from collector.ledger_repair import restore_ledger as restore
+    from collector.storage.ledger_repair import restore_ledger as restore
 
     with user_errors():
         result = restore(folder, backup)
@@ -384,8 +384,8 @@ def demo(
     """
     from collector.demo import run_demo
     from collector.display import LiveProgress
-    from collector.summary import format_summary, summarise
-    from collector.trace import Tracer, format_record
+    from collector.exports.summary import format_summary, summarise
+    from collector.exports.trace import Tracer, format_record
 
     progress = _progress_for(quiet=quiet, log_json=False)
     with user_errors():

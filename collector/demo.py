@@ -13,9 +13,9 @@ from pathlib import Path
 
 from PIL import Image
 
-from collector.collection import Collection, init_collection, open_collection
 from collector.errors import CollectionError, CollectorError
-from collector.run import Progress, RunResult, gather
+from collector.run.gather import Progress, RunResult, gather
+from collector.storage.collection import Collection, init_collection, open_collection
 
 DEMO_PORT = 8642
 COPIES_DIR = "demo-copies"
@@ -77,8 +77,8 @@ def run_demo(folder: Path, *, fresh: bool = False, port: int = DEMO_PORT,
     """Serve the demo archive, gather it into ``folder``, make a resized copy of a stored
     photo to trace, and write the datasheet. The archive content is generated once into the
     user's cache folder unless ``content`` names a generated archive."""
-    import demo_site
-    from demo_site.recipes import render
+    from collector import demo_site
+    from collector.demo_site.recipes import render
 
     resumed = prepare_folder(folder, fresh=fresh)
     content = content or demo_site.ensure_content()
@@ -100,7 +100,7 @@ def run_demo(folder: Path, *, fresh: bool = False, port: int = DEMO_PORT,
     near = make_resized_copy(exact, folder / COPIES_DIR / "resized-copy.jpg") if exact else None
     sheet = None
     if datasheet:
-        from collector.datasheet import export_datasheet
+        from collector.exports.datasheet import export_datasheet
 
         sheet = export_datasheet(folder, out=folder / "datasheet", overwrite=True).out
     return DemoResult(collection, resumed, run, server.port, exact, near, sheet)

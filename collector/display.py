@@ -1,7 +1,7 @@
 """Showing a run as it goes: a live table on a terminal, plain lines in a log, or JSON lines.
 
 Only this module and ``cli.py`` import rich. The run reports events through
-:class:`collector.run.Progress`; the live view also polls the gatherer for per-host numbers.
+:class:`collector.run.gather.Progress`; the live view also polls the gatherer for per-host numbers.
 """
 
 from __future__ import annotations
@@ -19,8 +19,8 @@ from rich.live import Live
 from rich.table import Table
 from rich.text import Text
 
+from collector.exports.summary import human_seconds
 from collector.safe_text import one_line
-from collector.summary import human_seconds
 
 
 class PlainProgress:

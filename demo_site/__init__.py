@@ -25,15 +25,15 @@ This package never imports ``collector``: it stands in for a real server.
 
 from __future__ import annotations
 
-from demo_site.generate import (
+from collector.demo_site.generate import (
     content_version,
     ensure_content,
     generate,
     load_manifest,
     manifest_digest,
 )
-from demo_site.hosts import DEFAULT_RATE, HOSTS
-from demo_site.server import DEMO_OPTIONS, DemoServer, RequestRecord, start
+from collector.demo_site.hosts import DEFAULT_RATE, HOSTS
+from collector.demo_site.server import DEMO_OPTIONS, DemoServer, RequestRecord, start
 
 __all__ = [
     "DEFAULT_RATE",

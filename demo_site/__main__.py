@@ -1,4 +1,4 @@
-"""``python -m demo_site serve [--port N]`` and ``python -m demo_site generate DIR``."""
+"""``python -m collector.demo_site serve [--port N]`` and ``python -m collector.demo_site generate DIR``."""
 
 from __future__ import annotations
 
@@ -7,13 +7,13 @@ import sys
 import time
 from pathlib import Path
 
-from demo_site.generate import ensure_content, generate
-from demo_site.hosts import HOST_ROLES
-from demo_site.server import DEMO_OPTIONS, DemoServer
+from collector.demo_site.generate import ensure_content, generate
+from collector.demo_site.hosts import HOST_ROLES
+from collector.demo_site.server import DEMO_OPTIONS, DemoServer
 
 
 def main(argv: list[str] | None = None) -> int:
-    parser = argparse.ArgumentParser(prog="python -m demo_site",
+    parser = argparse.ArgumentParser(prog="python -m collector.demo_site",
                                      description="Fictional Fernhollow archive on loopback.")
     sub = parser.add_subparsers(dest="command", required=True)
     serve = sub.add_parser("serve", help="generate (once, cached) and serve the archive")

@@ -16,9 +16,9 @@ from typing import Any
 
 from PIL import Image
 
-from demo_site import art, metadata
-from demo_site.catalogue import ALLOWED, CREATORS, PLACES, SUBJECTS, Licence
-from demo_site.hosts import HOSTS
+from collector.demo_site import art, metadata
+from collector.demo_site.catalogue import ALLOWED, CREATORS, PLACES, SUBJECTS, Licence
+from collector.demo_site.hosts import HOSTS
 
 GENERATOR_VERSION = "1"
 SEED = 3  # chosen so unrelated pictures are >= 14 bits apart (imagehash.phash)

@@ -12,8 +12,8 @@ from typing import Any
 import numpy as np
 from PIL import Image, ImageOps
 
-from demo_site import art, metadata, pages
-from demo_site.builder import (
+from collector.demo_site import art, metadata, pages
+from collector.demo_site.builder import (
     GALLERY_PAGE,
     POLICY,
     V1_PER_PAGE,
@@ -29,7 +29,7 @@ from demo_site.builder import (
     sha256_hex,
     url,
 )
-from demo_site.catalogue import GALLERY_TEXT_LICENCES, Licence
+from collector.demo_site.catalogue import GALLERY_TEXT_LICENCES, Licence
 
 # fast octree quantisation: median cut takes ~0.5 s per picture here
 FAST = Image.Quantize.FASTOCTREE

@@ -18,8 +18,8 @@ from typing import Any
 
 import numpy as np
 
-from demo_site import pages
-from demo_site.builder import (
+from collector.demo_site import pages
+from collector.demo_site.builder import (
     GALLERY_PAGE,
     GENERATOR_VERSION,
     POLICY,
@@ -30,14 +30,14 @@ from demo_site.builder import (
     sha256_hex,
     url,
 )
-from demo_site.content import (
+from collector.demo_site.content import (
     build_api_linked,
     build_api_objects,
     build_api_pages,
     build_gallery,
     build_scans,
 )
-from demo_site.hosts import (
+from collector.demo_site.hosts import (
     CRAWL_DELAY,
     DEFAULT_RATE,
     HOST_ROLES,

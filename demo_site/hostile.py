@@ -32,7 +32,7 @@ from typing import Any
 
 from PIL import Image
 
-from demo_site.loopback import LoopbackServer, send
+from collector.demo_site.loopback import LoopbackServer, send
 
 FORBIDDEN_HOST = "127.0.0.9"  # loopback, but not in the recipe's allow_addresses
 H = BaseHTTPRequestHandler

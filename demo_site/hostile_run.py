@@ -18,7 +18,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
-from demo_site.hostile import Case
+from collector.demo_site.hostile import Case
 
 
 @dataclass

@@ -28,7 +28,7 @@ from types import TracebackType
 from typing import Any, cast
 from urllib.parse import parse_qs, urlsplit
 
-from demo_site.hosts import DEFAULT_RATE, HOSTS
+from collector.demo_site.hosts import DEFAULT_RATE, HOSTS
 
 TEXT = "text/plain; charset=utf-8"
 HTML = "text/html; charset=utf-8"
@@ -472,11 +472,11 @@ class DemoServer:
 def start(content_dir: Path | None = None, **options: Any) -> DemoServer:
     """Start a demo server on generated content (generated into the cache if None)."""
     if content_dir is None:
-        from demo_site.generate import ensure_content
+        from collector.demo_site.generate import ensure_content
 
         content_dir = ensure_content()
     elif not (Path(content_dir) / "manifest.json").exists():
-        from demo_site.generate import generate
+        from collector.demo_site.generate import generate
 
         generate(Path(content_dir))
     return DemoServer(Path(content_dir), **options).start()

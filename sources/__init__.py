@@ -36,9 +36,9 @@ from importlib.metadata import EntryPoint, entry_points
 from pathlib import Path
 from typing import Any, NoReturn
 
+from collector.config.schema import Key, Problems, check_table, did_you_mean
 from collector.errors import SourceKindError
-from collector.schema import Key, Problems, check_table, did_you_mean
-from sources.base import (
+from collector.sources.base import (
     Candidate,
     NoteSink,
     Page,
@@ -69,7 +69,7 @@ __all__ = [
 ENTRY_POINT_GROUP = "collector.sources"
 
 # Keys every source table has; each kind adds its own (SourceKind.keys). "name" being present
-# and unique is checked by collector.recipe, which sees all sources.
+# and unique is checked by collector.config.recipe, which sees all sources.
 COMMON_KEYS: dict[str, Key] = {
     "name": Key("str", hint="a short unique name for this source"),
     "kind": Key("str", required=True),
@@ -189,7 +189,7 @@ def find_kind(name: str) -> SourceKind | None:
 def validate_source(table: Mapping[str, Any], key_prefix: str) -> list[RecipeProblem]:
     """Every problem in one [[sources]] table, with key paths like "sources[1].fields.id".
 
-    "name" being present and unique is checked by collector.recipe (uniqueness needs all
+    "name" being present and unique is checked by collector.config.recipe (uniqueness needs all
     sources); "kind" is checked here.
     """
     problems = Problems("")

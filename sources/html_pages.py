@@ -15,7 +15,7 @@ from typing import Any
 import soupsieve
 from bs4 import BeautifulSoup, Tag
 
-from collector.schema import (
+from collector.config.schema import (
     Key,
     Problems,
     at_least,
@@ -24,7 +24,7 @@ from collector.schema import (
     check_value,
     http_url,
 )
-from sources.base import (
+from collector.sources.base import (
     Candidate,
     FetchError,
     NoteSink,

@@ -18,7 +18,7 @@ import jmespath
 from jmespath.exceptions import JMESPathError
 from jmespath.parser import ParsedResult
 
-from collector.schema import (
+from collector.config.schema import (
     Key,
     Problems,
     at_least,
@@ -30,7 +30,7 @@ from collector.schema import (
     did_you_mean,
     http_url,
 )
-from sources.base import (
+from collector.sources.base import (
     Candidate,
     FetchError,
     NoteSink,
@@ -293,7 +293,8 @@ class Config:
     @classmethod
     def from_table(cls, table: Mapping[str, Any]) -> Config:
         """Compile a validated table. "${NAME}" references in params and headers stay as they
-        are: the fetcher fills them in when it sends a request (collector.schema.expand_env)."""
+        are: the fetcher fills them in when it sends a request
+        (collector.config.schema.expand_env)."""
         fields = dict(table["fields"])
         pag = dict(table.get("pagination") or {"style": "none"})
         params = _text_values(table.get("params"))

@@ -14,8 +14,7 @@ from typing import Any
 
 from PIL import Image, UnidentifiedImageError
 
-from collector.safe_text import shown_name
-from collector.schema import (
+from collector.config.schema import (
     Key,
     Problems,
     at_least,
@@ -26,7 +25,8 @@ from collector.schema import (
     http_url,
     not_blank,
 )
-from sources.base import Candidate, NoteSink, OnceNotes, PageFetcher, SourceKind
+from collector.safe_text import shown_name
+from collector.sources.base import Candidate, NoteSink, OnceNotes, PageFetcher, SourceKind
 
 DEFAULT_INCLUDE = ("**/*.png", "**/*.jpg", "**/*.jpeg", "**/*.tif", "**/*.tiff", "**/*.webp",
                    "**/*.bmp")
@@ -251,7 +251,9 @@ def _one_file(source: Mapping[str, Any], rel: str, path: Path,
             yield Candidate(source_key=rel, local_path=path, title=title, date=date,
                             metadata=metadata, **common)
             return
-        from sources import splitter  # the splitter (and scipy) only for scans that are split
+        from collector.sources import (
+            splitter,  # the splitter (and scipy) only for scans that are split
+        )
 
         result = splitter.analyse_scan(
             im, min_area=int(split.get("min_area", splitter.DEFAULT_MIN_AREA)),

@@ -7,7 +7,7 @@ from pathlib import Path
 
 import pytest
 
-from demo_site import DemoServer, generate
+from collector.demo_site import DemoServer, generate
 
 
 @pytest.fixture(scope="session")

@@ -8,8 +8,8 @@ from datetime import time as dtime
 
 import pytest
 
-from collector.budgets import Budget, FakeClock, HostBudgets, budgets_from_recipe
-from collector.robots import Hints
+from collector.fetching.budgets import Budget, FakeClock, HostBudgets, budgets_from_recipe
+from collector.fetching.robots import Hints
 
 H = "127.0.0.2:8080"
 

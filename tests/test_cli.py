@@ -52,8 +52,9 @@ def test_check_on_missing_folder_explains(tmp_path: Path) -> None:
 
 def test_core_library_does_not_import_the_cli_toolkit() -> None:
     """Importing the core modules loads neither typer nor rich (library first, CLI thin)."""
-    code = ("import sys, collector.recipe, collector.ledger, collector.store, "
-            "collector.collection; print('typer' in sys.modules, 'rich' in sys.modules)")
+    code = ("import sys, collector.config.recipe, collector.storage.ledger, "
+            "collector.storage.store, collector.storage.collection; "
+            "print('typer' in sys.modules, 'rich' in sys.modules)")
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True,
                          check=True).stdout.split()
     assert out == ["False", "False"]

@@ -8,8 +8,8 @@ from pathlib import Path
 
 import pytest
 
-from collector.collection import init_collection, open_collection
 from collector.errors import CollectionError
+from collector.storage.collection import init_collection, open_collection
 
 
 def test_init_creates_recipe_ledger_and_store(tmp_path: Path) -> None:
@@ -49,7 +49,7 @@ def test_open_collection_explains_a_plain_folder(tmp_path: Path) -> None:
 HOLD = """
 import sys, time
 from pathlib import Path
-from collector.collection import Collection
+from collector.storage.collection import Collection
 with Collection(Path(sys.argv[1])).gather_lock():
     print("held", flush=True)
     time.sleep(30)
@@ -75,7 +75,7 @@ def test_second_gather_lock_is_refused_with_a_clear_message(tmp_path: Path) -> N
 def test_an_old_index_inside_the_store_is_removed_on_open(tmp_path: Path) -> None:
     """A collection from an older collector kept its near-duplicate index in files/; opening
     it removes that derived file (it is rebuilt in cache/ on demand), and nothing else."""
-    from collector.collection import open_collection
+    from collector.storage.collection import open_collection
 
     col = init_collection(tmp_path / "c", contact="me@example.org")
     (col.store.root / ".phash-index").write_bytes(b"CLPHX001" + bytes(120))
@@ -92,7 +92,7 @@ def test_a_symlinked_cache_folder_is_refused(tmp_path: Path) -> None:
     """cache/ pointing outside the folder is refused with a clear error; nothing is written
     through it."""
     from collector.errors import CollectionError
-    from collector.trace import Tracer
+    from collector.exports.trace import Tracer
 
     col = init_collection(tmp_path / "c", contact="me@example.org")
     outside = tmp_path / "outside"

@@ -20,10 +20,10 @@ from pathlib import Path
 import pytest
 from support.probes import files_count
 
-from collector.collection import Collection, init_collection
-from collector.run import gather
-from demo_site import DemoServer
-from demo_site.recipes import render
+from collector.demo_site import DemoServer
+from collector.demo_site.recipes import render
+from collector.run.gather import gather
+from collector.storage.collection import Collection, init_collection
 
 
 def outcome(col: Collection) -> set[tuple]:

@@ -11,8 +11,8 @@ from pathlib import Path
 import pytest
 from support.datasheet_fixture import build_collection
 
-from collector.croissant import precheck, spdx_url
-from collector.datasheet import ExportResult, export_datasheet
+from collector.exports.croissant import precheck, spdx_url
+from collector.exports.datasheet import ExportResult, export_datasheet
 
 mlc = pytest.importorskip("mlcroissant", reason="mlcroissant is a test dependency ([test])")
 

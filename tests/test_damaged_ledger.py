@@ -16,8 +16,8 @@ from PIL import Image
 from typer.testing import CliRunner
 
 from collector.cli import app
-from collector.collection import Collection, init_collection
-from collector.run import gather
+from collector.run.gather import gather
+from collector.storage.collection import Collection, init_collection
 
 
 @pytest.fixture

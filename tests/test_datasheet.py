@@ -19,12 +19,12 @@ import pytest
 from support.datasheet_fixture import HOSTILE_TITLE, build_collection
 from typer.testing import CliRunner
 
-from collector import datasheet as ds
-from collector import datasheet_questions as dq
 from collector.cli import app
-from collector.datasheet import export_datasheet
-from collector.datasheet_questions import QUESTIONS, parse_answers
 from collector.errors import CollectionError
+from collector.exports import datasheet as ds
+from collector.exports import datasheet_questions as dq
+from collector.exports.datasheet import export_datasheet
+from collector.exports.datasheet_questions import QUESTIONS, parse_answers
 
 ACCEPTED = "('stored', 'near_duplicate')"
 
@@ -224,7 +224,7 @@ def test_html_is_self_contained_escaped_and_has_four_plots(export: ds.ExportResu
 
 def test_hostile_title_is_escaped_in_html_and_markdown(coll: Path, tmp_path: Path) -> None:
     """A title with markup and a pipe is shown as text, never as markup or a table break."""
-    from collector.datasheet_render import render_html, render_markdown
+    from collector.exports.datasheet_render import render_html, render_markdown
 
     facts = export_datasheet(coll, out=tmp_path / "o").facts
     facts["collection"]["name"] = HOSTILE_TITLE
@@ -351,8 +351,9 @@ def test_foreign_file_in_images_is_kept_and_reported(coll: Path, tmp_path: Path)
 
 def test_importing_the_modules_does_not_import_matplotlib() -> None:
     """matplotlib is loaded only when plots are drawn."""
-    code = ("import sys, collector.datasheet, collector.croissant, collector.plots, "
-            "collector.datasheet_render; print('matplotlib' in sys.modules)")
+    code = ("import sys, collector.exports.datasheet, collector.exports.croissant, "
+            "collector.exports.plots, collector.exports.datasheet_render; "
+            "print('matplotlib' in sys.modules)")
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True,
                          check=True, env={**os.environ, "PYTHONPATH": os.getcwd()})
     assert out.stdout.strip() == "False"

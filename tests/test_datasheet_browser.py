@@ -15,7 +15,7 @@ from pathlib import Path
 import pytest
 from support.datasheet_fixture import build_collection
 
-from collector.datasheet import export_datasheet
+from collector.exports.datasheet import export_datasheet
 
 SCREENSHOT = Path(__file__).resolve().parents[1] / "bench" / "datasheet_screenshot.py"
 

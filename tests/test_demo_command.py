@@ -10,7 +10,7 @@ from typer.testing import CliRunner
 from collector.cli import app
 from collector.demo import prepare_folder, run_demo
 from collector.errors import CollectionError
-from collector.trace import Tracer
+from collector.exports.trace import Tracer
 
 
 @pytest.fixture(scope="module")

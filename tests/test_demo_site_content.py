@@ -13,7 +13,7 @@ import numpy as np
 import pytest
 from PIL import Image, ImageOps, IptcImagePlugin
 
-from demo_site import generate, load_manifest, manifest_digest
+from collector.demo_site import generate, load_manifest, manifest_digest
 
 # Item states and reasons: CONTRACT.md "Ledger" section (our own names).
 STATES = {"stored", "duplicate", "near_duplicate", "skipped", "blocked", "rejected", "failed"}

@@ -16,7 +16,7 @@ from urllib.parse import urljoin, urlsplit
 import pytest
 from bs4 import BeautifulSoup
 
-from demo_site import DemoServer, recipes
+from collector.demo_site import DemoServer, recipes
 
 
 def fetch(url: str, headers: dict[str, str] | None = None, method: str = "GET"

@@ -18,10 +18,10 @@ import pytest
 from typer.testing import CliRunner
 
 from collector.cli import app
-from collector.collection import Collection, init_collection, recover
-from collector.run import gather
-from demo_site import DemoServer
-from demo_site.recipes import render
+from collector.demo_site import DemoServer
+from collector.demo_site.recipes import render
+from collector.run.gather import gather
+from collector.storage.collection import Collection, init_collection, recover
 
 
 def small_recipe(port: int) -> str:

@@ -13,6 +13,7 @@ from pathlib import Path
 import pytest
 from support.server import LoopbackServer, send
 
+from collector.demo_site.requestlog import max_in_window
 from collector.errors import (
     DownloadTimeout,
     FetchError,
@@ -21,9 +22,8 @@ from collector.errors import (
     TooLarge,
     UnsafeURL,
 )
-from collector.fetcher import Fetcher, FetchSettings
-from collector.ledger import Ledger
-from demo_site.requestlog import max_in_window
+from collector.fetching.fetcher import Fetcher, FetchSettings
+from collector.storage.ledger import Ledger
 
 ALLOWED = ("127.0.0.1", "127.0.0.2", "127.0.0.3")  # never 127.0.0.9: the guard's target
 

@@ -8,12 +8,12 @@ from pathlib import Path
 import pytest
 import responses
 
-from collector import urls
-from collector.budgets import FakeClock
+from collector.config.recipe import parse_recipe
 from collector.errors import FetchError, HostParked
-from collector.fetcher import Fetcher, FetchSettings, parse_http_date, parse_retry_after
-from collector.ledger import Ledger
-from collector.recipe import parse_recipe
+from collector.fetching import urls
+from collector.fetching.budgets import FakeClock
+from collector.fetching.fetcher import Fetcher, FetchSettings, parse_http_date, parse_retry_after
+from collector.storage.ledger import Ledger
 
 # RFC 9110 §5.6.7 examples; all three forms are Unix 784111777 (standards.md §4).
 DATE_FORMS = [

@@ -15,9 +15,9 @@ from support.probes import files_count
 from typer.testing import CliRunner
 
 from collector.cli import app
-from collector.collection import init_collection, recover
-from demo_site import DemoServer
-from demo_site.recipes import render
+from collector.demo_site import DemoServer
+from collector.demo_site.recipes import render
+from collector.storage.collection import init_collection, recover
 
 runner = CliRunner()
 
@@ -98,7 +98,7 @@ def test_ctrl_c_finishes_in_flight_files_exits_130_and_says_how_to_resume(
     assert f"Interrupted. Resume with: collector gather {demo_folder}" in err
     assert "interrupted" in out
     assert list((demo_folder / "files" / ".incoming").iterdir()) == []
-    from collector.collection import open_collection
+    from collector.storage.collection import open_collection
 
     col = open_collection(demo_folder)
     with col.ledger() as ledger:
@@ -137,7 +137,7 @@ def test_an_image_the_server_says_is_gone_is_not_asked_for_after_three_runs(
         fresh_demo_server: DemoServer, tmp_path: Path) -> None:
     """A 404 is retried on the next runs, but after three runs that got 404 the item is left
     alone (RFC 9110 section 15.5.5: the server found nothing at that URL)."""
-    from collector.run import gather
+    from collector.run.gather import gather
 
     col = init_collection(tmp_path / "c", contact="x@example.org")
     col.recipe_path.write_text(ONE_SOURCE.format(port=fresh_demo_server.port))

@@ -16,10 +16,10 @@ from typing import Any
 import pytest
 
 from collector import __version__
-from collector.collection import Collection, init_collection
-from collector.run import gather
-from demo_site import DemoServer
-from demo_site.recipes import render
+from collector.demo_site import DemoServer
+from collector.demo_site.recipes import render
+from collector.run.gather import gather
+from collector.storage.collection import Collection, init_collection
 
 
 def ledger_items(col: Collection) -> dict[tuple[str, str], dict[str, Any]]:
@@ -192,7 +192,7 @@ def test_planted_variants_trace_to_their_original(demo_run, demo_server, demo_co
     (pHash distances within 8 bits, libraries.md section 2)."""
     from PIL import Image
 
-    from collector.trace import Tracer
+    from collector.exports.trace import Tracer
 
     col, _, _ = demo_run
     by_key = {(i["source"], i["key"]): i for i in demo_server.manifest["items"]}
@@ -219,7 +219,7 @@ def test_planted_variants_trace_to_their_original(demo_run, demo_server, demo_co
 def test_every_stored_file_traces_exactly_to_its_item(demo_run) -> None:
     """Each file in the store, traced by content, names the item that first brought it and
     every other item with the same bytes."""
-    from collector.trace import Tracer
+    from collector.exports.trace import Tracer
 
     col, _, _ = demo_run
     with col.ledger(readonly=True) as ledger:
@@ -246,7 +246,7 @@ def test_the_store_holds_only_files_named_by_their_sha256(demo_run) -> None:
     import hashlib
     import re
 
-    from collector.trace import Tracer
+    from collector.exports.trace import Tracer
 
     col, _, _ = demo_run
     with Tracer.open(col.root):

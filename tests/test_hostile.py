@@ -18,9 +18,9 @@ from pathlib import Path
 
 import pytest
 
-from collector.collection import Collection, init_collection
-from demo_site.hostile import CASES, FORBIDDEN_HOST, HostileArchive
-from demo_site.hostile_run import RunStats, judge, run_gather
+from collector.demo_site.hostile import CASES, FORBIDDEN_HOST, HostileArchive
+from collector.demo_site.hostile_run import RunStats, judge, run_gather
+from collector.storage.collection import Collection, init_collection
 
 MIB = 1024  # ru_maxrss is in KiB on Linux (getrusage(2))
 # A hostile run may use more memory than a plain one, but not by the size of what the servers

@@ -10,10 +10,10 @@ from pathlib import Path
 
 import pytest
 
-from collector.collection import init_collection
-from demo_site.hostile import Ctx, case_server, noise_image
-from demo_site.hostile_run import run_gather
-from demo_site.loopback import LoopbackServer, send
+from collector.demo_site.hostile import Ctx, case_server, noise_image
+from collector.demo_site.hostile_run import run_gather
+from collector.demo_site.loopback import LoopbackServer, send
+from collector.storage.collection import init_collection
 
 KEY = "k3y-Sup3rSecret-4711"
 TOKEN = "t0ken-AlsoSecret-0815"
@@ -120,8 +120,8 @@ def test_a_token_with_a_trailing_cr_is_redacted_in_every_form(
     library refuse the header; its error text (which shows the value escaped, "\\\\r")
     reaches the ledger without the token in any form: raw, stripped or escaped."""
     from collector.errors import FetchError
-    from collector.fetcher import Fetcher, FetchSettings
-    from collector.ledger import Ledger
+    from collector.fetching.fetcher import Fetcher, FetchSettings
+    from collector.storage.ledger import Ledger
 
     site = leaky_site()
     monkeypatch.setenv("CR_TOKEN", TOKEN + "\r")

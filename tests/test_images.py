@@ -12,9 +12,9 @@ import numpy as np
 import pytest
 from PIL import Image, ImageDraw
 
+from collector.checks.images import inspect_image, sniff_format
+from collector.checks.phash import hamming, hash_image_file
 from collector.errors import ImageRejected
-from collector.images import inspect_image, sniff_format
-from collector.phash import hamming, hash_image_file
 
 
 def scene(size: tuple[int, int] = (320, 240), seed: int = 0) -> Image.Image:

@@ -20,10 +20,10 @@ import pytest
 from typer.testing import CliRunner
 
 from collector.cli import app
-from collector.collection import Collection, init_collection
-from collector.run import Gatherer, RunResult
-from demo_site import DemoServer
-from demo_site.recipes import render
+from collector.demo_site import DemoServer
+from collector.demo_site.recipes import render
+from collector.run.gather import Gatherer, RunResult
+from collector.storage.collection import Collection, init_collection
 
 
 class Injected(RuntimeError):

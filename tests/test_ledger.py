@@ -9,7 +9,7 @@ from pathlib import Path
 import pytest
 
 from collector.errors import LedgerError
-from collector.ledger import SCHEMA_VERSION, Ledger
+from collector.storage.ledger import SCHEMA_VERSION, Ledger
 
 TABLES = {"schema_version", "runs", "sources", "items", "fetches", "files", "hosts", "notes"}
 

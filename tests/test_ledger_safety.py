@@ -19,18 +19,24 @@ import pytest
 from typer.testing import CliRunner
 
 from collector.cli import app
-from collector.collection import ID_NAME, Collection, init_collection, open_collection, recover
+from collector.demo_site import DemoServer
+from collector.demo_site.recipes import render
 from collector.errors import CollectionError, LedgerUnusable
-from collector.ledger import SCHEMA_VERSION, Ledger
-from collector.ledger_repair import (
+from collector.run.gather import gather
+from collector.storage.collection import (
+    ID_NAME,
+    Collection,
+    init_collection,
+    open_collection,
+    recover,
+)
+from collector.storage.ledger import SCHEMA_VERSION, Ledger
+from collector.storage.ledger_repair import (
     BACKUP_DIR,
     KEEP_BACKUPS,
     backup_ledger,
     list_backups,
 )
-from collector.run import gather
-from demo_site import DemoServer
-from demo_site.recipes import render
 
 runner = CliRunner()
 

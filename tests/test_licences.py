@@ -9,7 +9,7 @@ from __future__ import annotations
 import license_expression as le
 import pytest
 
-from collector.licences import (
+from collector.checks.licences import (
     DEFAULT_ALLOW,
     licence_allowed,
     licence_conditions,

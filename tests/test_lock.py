@@ -12,8 +12,8 @@ import sys
 import time
 from pathlib import Path
 
-from collector.collection import init_collection
-from demo_site.hostile import CASES, HostileArchive
+from collector.demo_site.hostile import CASES, HostileArchive
+from collector.storage.collection import init_collection
 
 SLOW = [c for c in CASES if c.name == "slow-drip"]
 

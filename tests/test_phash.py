@@ -11,7 +11,7 @@ import numpy as np
 import pytest
 from PIL import Image, ImageDraw, ImageFilter
 
-from collector.phash import (
+from collector.checks.phash import (
     HASH_ALGO,
     hamming,
     hash_image_file,

@@ -8,10 +8,10 @@ from pathlib import Path
 
 import pytest
 
-import sources
+from collector import sources
 from collector.cli import app
-from collector.ledger import Ledger
-from collector.recipe import parse_recipe
+from collector.config.recipe import parse_recipe
+from collector.storage.ledger import Ledger
 
 README = (Path(__file__).parent.parent / "README.md").read_text(encoding="utf-8")
 RECIPES = re.findall(r"```toml\n(.*?)```", README, flags=re.S)

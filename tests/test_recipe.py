@@ -9,9 +9,9 @@ import pytest
 from typer.testing import CliRunner
 
 from collector.cli import app
-from collector.collection import init_collection, recipe_template
+from collector.config.recipe import DEFAULT_LICENCES, parse_duration, parse_recipe
 from collector.errors import RecipeError
-from collector.recipe import DEFAULT_LICENCES, parse_duration, parse_recipe
+from collector.storage.collection import init_collection, recipe_template
 
 GOOD = 'contact = "curator@example.org"\n'
 

@@ -4,8 +4,8 @@ from __future__ import annotations
 
 import pytest
 
-from collector.recipe import valid_product_token
-from collector.robots import (
+from collector.config.recipe import valid_product_token
+from collector.fetching.robots import (
     ALLOW_ALL,
     DISALLOW_ALL,
     MAX_ROBOTS_BYTES,

@@ -18,11 +18,11 @@ from PIL import Image
 from typer.testing import CliRunner
 
 from collector.cli import app
-from collector.collection import Collection, init_collection
-from collector.datasheet import export_datasheet
 from collector.display import PlainProgress
-from collector.run import gather
+from collector.exports.datasheet import export_datasheet
+from collector.run.gather import gather
 from collector.safe_text import csv_cell, for_terminal, one_line
+from collector.storage.collection import Collection, init_collection
 
 FORMULAS = ['=HYPERLINK("http://127.0.0.59/x","click")', "+cmd|' /C calc'!A0", "@SUM(1+1)*cmd",
             "-2+3", "\t=1+1", "\r=1+1"]

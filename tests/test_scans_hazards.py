@@ -19,7 +19,7 @@ from pathlib import Path
 import pytest
 from PIL import Image
 
-from collector.collection import Collection, init_collection
+from collector.storage.collection import Collection, init_collection
 
 TIME_LIMIT = 120  # seconds; a run over this folder takes about two
 

@@ -15,10 +15,10 @@ import numpy as np
 import pytest
 from PIL import Image
 
-import sources
-from collector.collection import init_collection
+from collector import sources
 from collector.errors import SourceKindError
-from sources import SourceKind
+from collector.sources import SourceKind
+from collector.storage.collection import init_collection
 
 REPO = Path(__file__).resolve().parent.parent
 
@@ -26,8 +26,8 @@ TOY_MODULE = '''
 """A toy source kind living outside collector: the PNG files of one folder."""
 from pathlib import Path
 
-from collector.schema import Key
-from sources import Candidate, SourceKind
+from collector.config.schema import Key
+from collector.sources import Candidate, SourceKind
 
 
 def list_candidates(source, fetcher, notes, base_dir):
@@ -96,9 +96,9 @@ def test_a_kind_from_another_package_gathers_into_the_ledger(tmp_path: Path) -> 
     out = run_python(f"""
         import json
         from pathlib import Path
-        from collector.collection import open_collection
-        from collector.run import gather
-        import sources
+        from collector.storage.collection import open_collection
+        from collector.run.gather import gather
+        from collector import sources
 
         col = open_collection(Path({str(col.root)!r}))
         result = gather(col, fetcher_factory=lambda recipe, ledger: None)
@@ -125,7 +125,7 @@ def test_a_plugin_kind_with_a_built_in_name_is_refused_clearly(tmp_path: Path) -
         import json
         from pathlib import Path
         from collector.errors import RecipeError
-        from collector.recipe import parse_recipe
+        from collector.config.recipe import parse_recipe
         text = ('contact = "me@example.org"\\n'
                 '[[sources]]\\nname = "s"\\nkind = "scans"\\npath = "x"\\n')
         try:
@@ -148,7 +148,7 @@ def test_a_plugin_that_fails_to_import_is_named_only_when_used(tmp_path: Path) -
         import json
         from pathlib import Path
         from collector.errors import RecipeError
-        from collector.recipe import parse_recipe
+        from collector.config.recipe import parse_recipe
         head = 'contact = "me@example.org"\\n[[sources]]\\nname = "s"\\n'
         found = {}
         for kind in ("scans", "brokenkind"):
@@ -173,7 +173,7 @@ def test_a_plugin_object_must_be_a_source_kind_of_its_own_name(tmp_path: Path) -
                           "notakind = toy_kind:list_candidates\nothername = toy_kind:KIND")
     out = run_python("""
         import json
-        import sources
+        from collector import sources
         from collector.errors import SourceKindError
         found = {}
         for kind in ("notakind", "othername"):
@@ -193,9 +193,9 @@ def test_a_json_api_recipe_does_not_import_scipy(tmp_path: Path) -> None:
     out = run_python("""
         import json, sys
         from pathlib import Path
-        import collector.run, collector.datasheet, collector.summary
-        from collector.recipe import parse_recipe
-        import sources
+        import collector.run.gather, collector.exports.datasheet, collector.exports.summary
+        from collector.config.recipe import parse_recipe
+        from collector import sources
         recipe = parse_recipe('''contact = "me@example.org"
         [[sources]]
         name = "api"
@@ -256,21 +256,21 @@ def test_the_kind_name_check_catches_a_literal(tmp_path: Path) -> None:
 
 
 def test_sources_and_recipe_import_without_a_circle(tmp_path: Path) -> None:
-    """sources/ imports neither collector.recipe nor an HTTP library, and collector.recipe
-    does not import sources until a recipe with sources is checked."""
+    """sources/ imports neither collector.config.recipe nor an HTTP library, and
+    collector.config.recipe does not import sources until a recipe with sources is checked."""
     for path in sorted((REPO / "sources").glob("*.py")):
         tree = ast.parse(path.read_text(encoding="utf-8"))
         imported = {alias.name for node in ast.walk(tree) if isinstance(node, ast.Import)
                     for alias in node.names}
         imported |= {node.module or "" for node in ast.walk(tree)
                      if isinstance(node, ast.ImportFrom)}
-        assert not imported & {"collector.recipe", "requests", "urllib.request", "http.client"}, (
-            path.name)
+        forbidden = {"collector.config.recipe", "requests", "urllib.request", "http.client"}
+        assert not imported & forbidden, path.name
     out = run_python("""
         import json, sys
-        import collector.recipe
-        before = "sources" in sys.modules
-        import sources
+        import collector.config.recipe
+        before = "collector.sources" in sys.modules
+        from collector import sources
         print(json.dumps({"before": before, "kinds": sources.builtin_kind_names()}))
     """, cwd=tmp_path)
     assert out == {"before": False, "kinds": ["html", "json_api", "scans"]}

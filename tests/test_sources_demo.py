@@ -13,9 +13,9 @@ import pytest
 from support.fetcher import FakeFetcher, collect
 from test_splitter import iou
 
-from collector.fetcher import Fetcher, FetchSettings
-from demo_site import DemoServer, generate
-from demo_site.recipes import render
+from collector.demo_site import DemoServer, generate
+from collector.demo_site.recipes import render
+from collector.fetching.fetcher import Fetcher, FetchSettings
 
 
 @pytest.fixture(scope="module")
@@ -102,7 +102,7 @@ def test_scanner_beds_split_into_the_manifest_boxes(demo: tuple[DemoServer, Path
 @pytest.mark.parametrize("name", ["api-pages", "api-objects", "api-linked", "gallery"])
 def test_web_source_through_the_real_fetcher_lists_the_same_items(
         demo: tuple[DemoServer, Path], name: str) -> None:
-    """Through collector.fetcher (robots.txt, budgets, Link parsing) the adapters list the
+    """Through collector.fetching.fetcher (robots.txt, budgets, Link parsing) the adapters list the
     same item keys as the manifest."""
     server, folder = demo
     recipe = tomllib.loads(render("demo", server.port, folder / "scans"))

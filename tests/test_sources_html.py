@@ -11,7 +11,7 @@ from support.fetcher import FakeFetcher, collect
 from support.server import LoopbackServer, html_answer, on_query
 
 from collector.errors import FetchError
-from sources.html_pages import SrcCandidate, image_of, largest, page_base, parse_srcset
+from collector.sources.html_pages import SrcCandidate, image_of, largest, page_base, parse_srcset
 
 CC_BY = "https://creativecommons.org/licenses/by/4.0/"
 CC0 = "https://creativecommons.org/publicdomain/zero/1.0/"
@@ -138,7 +138,7 @@ def test_detail_pages_override_listing_values(gallery: LoopbackServer) -> None:
 
 def test_missing_detail_pages_give_one_fetch_failed_note(gallery: LoopbackServer) -> None:
     """Detail pages answering 404 reach the adapter as FetchError http_404 (as from
-    collector.fetcher): one fetch_failed note, and the items keep their listing values."""
+    collector.fetching.fetcher): one fetch_failed note, and the items keep their listing values."""
     table = recipe(gallery.base, detail={"image": "figure img.full"}, max_pages=1)
     cands, notes = collect(table, FakeFetcher())
     assert [c.image_url for c in cands] == [

@@ -11,8 +11,8 @@ from support.fetcher import FakeFetcher, collect
 from support.server import Answer, LoopbackServer, html_answer, json_answer, on_query
 
 from collector.errors import FetchError, RobotsDenied
-from collector.fetcher import Fetcher, FetchSettings
-from sources.json_api import FieldMap, link_target, map_fields, pick_candidate
+from collector.fetching.fetcher import Fetcher, FetchSettings
+from collector.sources.json_api import FieldMap, link_target, map_fields, pick_candidate
 
 
 @pytest.fixture
@@ -273,7 +273,7 @@ def test_http_error_on_listing_raises_for_the_orchestrator(srv: LoopbackServer) 
 
 def test_http_error_on_detail_through_the_real_fetcher_gives_one_note(
         srv: LoopbackServer) -> None:
-    """Through collector.fetcher, detail answers of 404 give one fetch_failed note naming
+    """Through collector.fetching.fetcher, detail answers of 404 give one fetch_failed note naming
     http_404 and the items keep their listing values."""
     srv.route("/robots.txt", (200, b"User-agent: *\nAllow: /\n", {"Content-Type": "text/plain"}))
     srv.route("/list", json_answer({"items": [{"id": n, "u": f"/{n}.jpg"} for n in (1, 2)]}))
@@ -394,7 +394,8 @@ def test_refused_listing_request_propagates_to_the_caller() -> None:
 
 
 def test_link_target_accepts_both_link_map_shapes() -> None:
-    """page.links may map rel to a URL or to {"url": ...} (requests/collector.fetcher style)."""
+    """page.links may map rel to a URL or to {"url": ...} (requests/collector.fetching.fetcher
+    style)."""
     assert link_target({"next": "/p2"}, "next") == "/p2"
     assert link_target({"next": {"url": "/p2", "rel": "next"}}, "next") == "/p2"
     assert link_target({"prev": "/p0"}, "next") is None and link_target(None, "next") is None

@@ -12,7 +12,7 @@ from PIL import Image
 from support.fetcher import collect
 from test_splitter import _item, add_noise, iou, make_bed, place
 
-from sources.scans import glob_regex
+from collector.sources.scans import glob_regex
 
 PNG_MAGIC = bytes.fromhex("89504E470D0A1A0A")  # PNG spec §5.2 (standards.md §9)
 

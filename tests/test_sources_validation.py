@@ -7,7 +7,7 @@ from typing import Any
 
 import pytest
 
-import sources
+from collector import sources
 from collector.errors import SourceError
 
 

@@ -9,7 +9,7 @@ import numpy as np
 import pytest
 from PIL import Image, ImageDraw, ImageFilter
 
-from sources import splitter
+from collector.sources import splitter
 
 Box = tuple[int, int, int, int]
 

@@ -13,10 +13,10 @@ from pathlib import Path
 
 import pytest
 
-from collector.collection import init_collection, recover
 from collector.errors import StoreError
-from collector.ledger import Ledger
-from collector.store import Store
+from collector.storage.collection import init_collection, recover
+from collector.storage.ledger import Ledger
+from collector.storage.store import Store
 
 # FIPS 180-4 example values (NIST): SHA-256("abc") and SHA-256("").
 ABC = "ba7816bf8f01cfea414140de5dae2223b00361a396177a9cb410ff61f20015ad"
@@ -80,7 +80,7 @@ def test_disk_full_is_a_clear_store_error_and_leaves_no_temp_file(
 CRASH_SCRIPT = textwrap.dedent("""
     import os, signal, sys
     from pathlib import Path
-    from collector.collection import Collection
+    from collector.storage.collection import Collection
     root = Path(sys.argv[1]); point = sys.argv[2]
     col = Collection(root); store = col.store; ledger = col.ledger()
     fd, tmp = store.new_temp()
@@ -90,7 +90,7 @@ CRASH_SCRIPT = textwrap.dedent("""
     os.write(fd, b" and the rest"); os.close(fd)
     import hashlib
     sha = hashlib.sha256(b"half of an image and the rest").hexdigest()
-    ledger.add_store_intent(sha, None)  # write-ahead, as collector.run does
+    ledger.add_store_intent(sha, None)  # write-ahead, as collector.run.gather does
     store.adopt(tmp, sha, "png")
     if point == "before-row":
         os.kill(os.getpid(), signal.SIGKILL)

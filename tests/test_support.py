@@ -1,5 +1,5 @@
 """The test support package behaves: the loopback server serves and logs, and the fake fetcher
-fails exactly the way collector.fetcher.Fetcher does."""
+fails exactly the way collector.fetching.fetcher.Fetcher does."""
 
 from __future__ import annotations
 
@@ -10,9 +10,9 @@ import pytest
 from support.fetcher import FakeFetcher
 from support.server import LoopbackServer, json_answer, on_query, send
 
+from collector.demo_site.requestlog import max_in_window
 from collector.errors import FetchError, UnsafeURL
-from collector.fetcher import Fetcher, FetchSettings
-from demo_site.requestlog import max_in_window
+from collector.fetching.fetcher import Fetcher, FetchSettings
 
 
 @pytest.fixture
@@ -24,7 +24,7 @@ def srv() -> Iterator[LoopbackServer]:
 
 
 def real_fetcher() -> Fetcher:
-    """collector.fetcher.Fetcher for 127.0.0.1 without waits or retries."""
+    """collector.fetching.fetcher.Fetcher for 127.0.0.1 without waits or retries."""
     return Fetcher(FetchSettings.from_recipe({
         "contact": "tests@example.org", "budgets": {"min_interval": 0.0, "max_attempts": 1},
         "network": {"allow_addresses": ["127.0.0.1"]}}), None)
@@ -77,7 +77,7 @@ def redirect_to(target: str) -> Callable[[Any], None]:
 @pytest.mark.parametrize("path", ["/gone", "/teapot", "/busy", "/loop?key=s3cret"])
 def test_fake_fetcher_fails_like_the_real_fetcher(srv: LoopbackServer, path: str) -> None:
     """For 404, 418, 503 and a redirect loop, the fake raises the same FetchError (reason,
-    status, redacted URL) as collector.fetcher.Fetcher against the same server."""
+    status, redacted URL) as collector.fetching.fetcher.Fetcher against the same server."""
     srv.route("/teapot", (418, b"short and stout"))
     srv.route("/busy", (503, b"later"))
     srv.route("/loop", redirect_to("/loop?key=s3cret"))

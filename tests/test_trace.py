@@ -1,8 +1,10 @@
 """collector trace: exact, near and no matches over a real collection (real SQLite, real images).
 
-The collection is built the way collector/run.py builds it: web items get a ``fetches`` row for
+The collection is built the way collector/run/gather.py builds it: web items get a ``fetches`` row
+for
 their image download (purpose 'image', status 200, as the fetcher records it) and are ingested
-with ``collector.images.inspect_image`` + the store + a ``files`` row; the scan and its crops go
+with ``collector.checks.images.inspect_image`` + the store + a ``files`` row; the scan and its
+crops go
 through the real ``Gatherer`` ingest path for local candidates.
 """
 
@@ -24,15 +26,15 @@ import pytest
 from PIL import Image, ImageDraw
 from typer.testing import CliRunner
 
+from collector.checks.hashindex import to_signed
+from collector.checks.images import inspect_image
+from collector.checks.licences import normalise_licence, rights_conflict
+from collector.checks.phash import hamming, hash_image_file
 from collector.cli import app
-from collector.collection import Collection, init_collection
-from collector.hashindex import to_signed
-from collector.images import inspect_image
-from collector.ledger import Ledger
-from collector.licences import normalise_licence, rights_conflict
-from collector.phash import hamming, hash_image_file
-from collector.run import Gatherer
-from collector.trace import Tracer, TraceResult, attribution_line, format_record, summarise
+from collector.exports.trace import Tracer, TraceResult, attribution_line, format_record, summarise
+from collector.run.gather import Gatherer
+from collector.storage.collection import Collection, init_collection
+from collector.storage.ledger import Ledger
 
 runner = CliRunner()
 CAUTION_START = "Licence facts are as declared by the sources"

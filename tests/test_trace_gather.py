@@ -8,9 +8,9 @@ from PIL import Image
 from typer.testing import CliRunner
 
 from collector.cli import app
-from collector.collection import init_collection
-from collector.run import gather
-from collector.trace import Tracer
+from collector.exports.trace import Tracer
+from collector.run.gather import gather
+from collector.storage.collection import init_collection
 from tests.test_trace import make_picture
 
 runner = CliRunner()

@@ -8,7 +8,7 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from collector.hashindex import (
+from collector.checks.hashindex import (
     HashFile,
     HashIndex,
     ledger_mark,
@@ -16,7 +16,7 @@ from collector.hashindex import (
     to_signed,
     to_unsigned,
 )
-from collector.ledger import Ledger
+from collector.storage.ledger import Ledger
 
 
 def _sha(n: int) -> str:

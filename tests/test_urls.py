@@ -11,7 +11,7 @@ import socket
 import pytest
 
 from collector.errors import UnsafeURL
-from collector.urls import (
+from collector.fetching.urls import (
     REDACTED,
     add_params,
     check_address,

@@ -1,5 +1,5 @@
 """A small invented collection for the datasheet tests: a real gather over generated scans plus
-one web source written into the ledger the way collector/run.py and the fetcher write it.
+one web source written into the ledger the way collector/run/gather.py and the fetcher write it.
 
 Everything is fictional ("Fernhollow Field Society"); images are generated with numpy/Pillow.
 """
@@ -13,11 +13,11 @@ from pathlib import Path
 import numpy as np
 from PIL import Image
 
-from collector.collection import init_collection, open_collection
-from collector.hashindex import to_signed
-from collector.images import inspect_image
-from collector.ledger import Ledger
-from collector.run import gather
+from collector.checks.hashindex import to_signed
+from collector.checks.images import inspect_image
+from collector.run.gather import gather
+from collector.storage.collection import init_collection, open_collection
+from collector.storage.ledger import Ledger
 
 WEB_HOST = "127.0.0.2:8080"
 HOSTILE_TITLE = "Bracken <script>alert(1)</script> | frond & stem"

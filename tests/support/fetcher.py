@@ -1,16 +1,18 @@
 """The one fake page fetcher for adapter tests.
 
-``FakeFetcher`` keeps the contract of ``collector.fetcher.Fetcher.get_page`` that adapters
+``FakeFetcher`` keeps the contract of ``collector.fetching.fetcher.Fetcher.get_page`` that adapters
 depend on and leaves out its politeness (robots.txt, budgets, retries, ledger rows):
 
-* params are added to the URL the way the real fetcher adds them (``collector.urls.add_params``,
+* params are added to the URL the way the real fetcher adds them
+(``collector.fetching.urls.add_params``,
   ``${NAME}`` filled by the real fetcher's own function); a URL that is not http/https
   raises ``UnsafeURL``;
 * redirects (301/302/303/307/308 with Location) are followed, at most ``max_redirects`` hops,
   then ``FetchError`` reason ``redirect_blocked``;
 * a final status outside 2xx raises ``FetchError`` with reason ``http_<status>`` and ``status``
   set, the URL redacted with the secret params: adapters never see an error page;
-* the answer is a real ``collector.fetcher.Page`` (case-insensitive headers, charset-aware text,
+* the answer is a real ``collector.fetching.fetcher.Page`` (case-insensitive headers, charset-aware
+text,
   ``json()``, RFC 8288 ``links``) whose ``url`` is the final URL.
 
 Answers come from memory (``FakeFetcher(pages)``, keyed by URL with the query sorted; unknown
@@ -30,12 +32,12 @@ import requests
 from requests.structures import CaseInsensitiveDict
 from requests.utils import get_encoding_from_headers
 
-import sources
+from collector import sources
+from collector.demo_site.loopback import Answer
 from collector.errors import FetchError
-from collector.fetcher import REDIRECT_STATUSES, Page, filled_from_env
-from collector.urls import add_params, redact, split_checked
-from demo_site.loopback import Answer
-from sources import SourceNote
+from collector.fetching.fetcher import REDIRECT_STATUSES, Page, filled_from_env
+from collector.fetching.urls import add_params, redact, split_checked
+from collector.sources import SourceNote
 
 
 @dataclass
@@ -49,7 +51,8 @@ class Call:
 
 
 class FakeFetcher:
-    """A PageFetcher that fails like ``collector.fetcher.Fetcher`` (see the module docstring)."""
+    """A PageFetcher that fails like ``collector.fetching.fetcher.Fetcher`` (see the module
+    docstring)."""
 
     def __init__(self, pages: Mapping[str, Answer] | None = None, *,
                  max_redirects: int = 10) -> None:

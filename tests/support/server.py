@@ -7,7 +7,7 @@ import json
 from collections.abc import Callable, Mapping
 from typing import Any
 
-from demo_site.loopback import Answer, Hit, LoopbackServer, Route, query_of, send
+from collector.demo_site.loopback import Answer, Hit, LoopbackServer, Route, query_of, send
 
 __all__ = ["Answer", "Hit", "LoopbackServer", "Route", "html_answer", "json_answer", "on_query",
            "query_of", "send"]

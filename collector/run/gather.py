@@ -31,9 +31,13 @@ from datetime import datetime, timedelta
 from pathlib import Path
 from typing import Any, BinaryIO, Protocol
 
-import sources as adapters
 from collector import __version__
-from collector.collection import Collection, Recovery, recover
+from collector import sources as adapters
+from collector.checks.hashindex import HashIndex, NearMatch, to_signed
+from collector.checks.images import ImageFacts, inspect_image
+from collector.checks.licences import licence_allowed, normalise_licence, rights_conflict
+from collector.config.recipe import Recipe, env_problems, parse_clock, parse_duration
+from collector.config.schema import expand_env
 from collector.errors import (
     CollectorError,
     FetchError,
@@ -48,15 +52,7 @@ from collector.errors import (
     TooLarge,
     UnsafeURL,
 )
-from collector.hashindex import HashIndex, NearMatch, to_signed
-from collector.images import ImageFacts, inspect_image
-from collector.ledger import Ledger, utc_now
-from collector.ledger_repair import RECOVERED_FLAG, backup_ledger
-from collector.licences import licence_allowed, normalise_licence, rights_conflict
-from collector.recipe import Recipe, env_problems, parse_clock, parse_duration
-from collector.safe_text import shown_name
-from collector.schema import expand_env
-from collector.urls import (
+from collector.fetching.urls import (
     MIN_SECRET_LEN,
     header_secrets,
     host_key,
@@ -64,6 +60,10 @@ from collector.urls import (
     redact,
     scrub,
 )
+from collector.safe_text import shown_name
+from collector.storage.collection import Collection, Recovery, recover
+from collector.storage.ledger import Ledger, utc_now
+from collector.storage.ledger_repair import RECOVERED_FLAG, backup_ledger
 
 # States after which an item is not requested again.
 FINAL_STATES = frozenset({"stored", "duplicate", "near_duplicate", "rejected"})
@@ -775,7 +775,7 @@ def secret_values(recipe: Recipe) -> list[str]:
 
 def build_fetcher(recipe: Recipe, ledger: Ledger) -> Any:
     """The one polite fetcher, configured from the recipe."""
-    from collector.fetcher import Fetcher, FetchSettings
+    from collector.fetching.fetcher import Fetcher, FetchSettings
 
     return Fetcher(FetchSettings.from_recipe(recipe), ledger)
 

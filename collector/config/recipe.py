@@ -20,8 +20,7 @@ from pathlib import Path
 from typing import Any
 from urllib.parse import urlsplit
 
-from collector.errors import RecipeError, RecipeProblem
-from collector.schema import (
+from collector.config.schema import (
     Check,
     Key,
     Problems,
@@ -34,6 +33,7 @@ from collector.schema import (
     header_value_problem,
     one_of,
 )
+from collector.errors import RecipeError, RecipeProblem
 
 PRODUCT_TOKEN_RE = re.compile(r"^[A-Za-z_-]+$")  # RFC 9309 section 2.2.1
 CONTROL_RE = re.compile(r"[\x00-\x1f\x7f]")
@@ -198,7 +198,7 @@ def _setting(default: Any, check: Check | None = None) -> Any:
     return field(default=default, metadata={"check": check})
 
 
-# Field annotation -> collector.schema type name.
+# Field annotation -> collector.config.schema type name.
 _FIELD_TYPES = {"str": "str", "int": "int", "float": "float", "bool": "bool",
                 "list[str]": "list[str]", "dict[str, str]": "table[str]"}
 
@@ -360,9 +360,10 @@ def _check_host_budgets(raw: Any, problems: Problems) -> dict:
 
 
 def _check_sources(raw: Any, problems: Problems) -> list[dict]:
-    # Imported here, not at the top: the source kinds import collector.schema, and loading the
+    # Imported here, not at the top: the source kinds import collector.config.schema, and loading
+    # the
     # registry (and any kinds from other packages) is only needed when a recipe has sources.
-    import sources as adapters
+    from collector import sources as adapters
 
     if not isinstance(raw, list) or not all(isinstance(t, dict) for t in raw):
         problems.add("sources", "must be an array of tables written as [[sources]]")

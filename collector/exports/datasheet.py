@@ -2,14 +2,16 @@
 
 ``collector datasheet DIR`` writes a folder with ``datasheet.md``/``datasheet.html`` (structured
 after "Datasheets for Datasets", Gebru et al.: seven sections of questions, asked here in our own
-words), ``croissant.json`` (MLCommons Croissant 1.0 + RAI 1.0, see :mod:`collector.croissant`),
+words), ``croissant.json`` (MLCommons Croissant 1.0 + RAI 1.0, see
+:mod:`collector.exports.croissant`),
 ``provenance.csv`` (one row per file) and ``attribution.csv`` (title, author, source, licence per
 file: the Creative Commons attribution practice). With ``with_images`` the accepted files are
 hard-linked (or copied) into ``images/`` so the folder describes itself.
 
 Every number is computed by :func:`_facts` with SQL over the ledger and returned as plain
-data; the renderers (:mod:`collector.datasheet_render`) only format those numbers. Questions only
-the curator can answer (:mod:`collector.datasheet_questions`) come from an answers file or
+data; the renderers (:mod:`collector.exports.datasheet_render`) only format those numbers.
+Questions only
+the curator can answer (:mod:`collector.exports.datasheet_questions`) come from an answers file or
 are shown as "Not answered by the curator"; nothing is made up. Rows are streamed from
 SQLite, so memory stays flat for large collections.
 """
@@ -31,16 +33,17 @@ from pathlib import Path
 from typing import Any
 
 from collector import __version__
-from collector.datasheet_questions import load_answers
+from collector.checks.licences import licence_allowed, licence_conditions, licence_deed_url
+from collector.config.recipe import Recipe
 from collector.errors import CollectionError, CollectorError, LedgerError
-from collector.licences import licence_allowed, licence_conditions, licence_deed_url
-from collector.recipe import Recipe
+from collector.exports.datasheet_questions import load_answers
+from collector.fetching.urls import host_key
 from collector.safe_text import csv_cell, csv_row
-from collector.urls import host_key
 
 ACCEPTED_STATES = ("stored", "near_duplicate")
-# Flags from collector.images that point at personal data (GPS position, camera serial number,
-# camera owner's name); "licence_conflict" comes from collector.run when embedded rights
+# Flags from collector.checks.images that point at personal data (GPS position, camera serial
+# number,
+# camera owner's name); "licence_conflict" comes from collector.run.gather when embedded rights
 # metadata contradicts the declared licence.
 PERSONAL_FLAGS = ("gps", "camera_serial", "owner_name")
 CONFLICT_FLAG = "licence_conflict"
@@ -228,7 +231,7 @@ def _facts(conn: sqlite3.Connection, recipe: Recipe, now: str) -> dict[str, Any]
 def _kind_facts(kind: str) -> dict[str, str]:
     """How a source kind obtains items (a phrase) and its Croissant RAI collection type, from
     the kind itself; a kind that is no longer installed is named as it is, type "Others"."""
-    import sources
+    from collector import sources
 
     found = sources.find_kind(kind)
     if found is None:
@@ -458,7 +461,7 @@ def write_release(conn: sqlite3.Connection, recipe: Recipe, out: Path, store_roo
                   with_images: bool, exclude_flagged: bool) -> tuple[ReleaseCounts, str]:
     """Stream provenance.csv and attribution.csv (and link images/); returns the counts and
     the sha256 of provenance.csv."""
-    from collector.store import Store
+    from collector.storage.store import Store
 
     counts = ReleaseCounts()
     store = Store(store_root)
@@ -508,9 +511,9 @@ def export_datasheet(root: Path, *, out: Path | None = None, answers_path: Path 
                      with_images: bool = False, exclude_flagged: bool = False,
                      overwrite: bool = False, now: str | None = None) -> ExportResult:
     """Write the datasheet folder for the collection at ``root``."""
-    from collector import croissant, plots
-    from collector.collection import open_collection
-    from collector.datasheet_render import render_html, render_markdown
+    from collector.exports import croissant, plots
+    from collector.exports.datasheet_render import render_html, render_markdown
+    from collector.storage.collection import open_collection
 
     collection = open_collection(root)
     recipe = collection.recipe()

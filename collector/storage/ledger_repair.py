@@ -28,15 +28,15 @@ from dataclasses import dataclass, field
 from datetime import UTC, datetime
 from pathlib import Path
 
-from collector.collection import (
+from collector.checks.hashindex import to_signed
+from collector.checks.images import inspect_image
+from collector.errors import CollectionError, CollectorError, LedgerError, LedgerUnusable
+from collector.storage.collection import (
     LEDGER_NAME,
     Collection,
     check_ledger,
 )
-from collector.errors import CollectionError, CollectorError, LedgerError, LedgerUnusable
-from collector.hashindex import to_signed
-from collector.images import inspect_image
-from collector.ledger import Ledger, utc_now
+from collector.storage.ledger import Ledger, utc_now
 
 BACKUP_DIR = "ledger-backups"
 # How many backups are kept: five runs back is enough to step past a bad night while the

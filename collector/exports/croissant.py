@@ -1,6 +1,6 @@
 """``croissant.json``: MLCommons Croissant 1.0 JSON-LD with the RAI 1.0 extension.
 
-Built with the standard library from the datasheet facts (:func:`collector.datasheet
+Built with the standard library from the datasheet facts (:func:`collector.exports.datasheet
 ._facts` plus the release counts); mlcroissant is used only by the tests.
 
 Choices, with the reason for each:

@@ -1,6 +1,7 @@
 """Rendering the datasheet (Markdown and self-contained HTML) from facts and answers.
 
-:func:`build_document` turns the facts of :mod:`collector.datasheet` into sections of questions,
+:func:`build_document` turns the facts of :mod:`collector.exports.datasheet` into sections of
+questions,
 each with blocks of ledger facts and the curator's answer (or the explicit mark "Not answered by
 the curator"). The two renderers only format that document, so Markdown and HTML say the same.
 All text from the ledger came from servers: it is escaped (``html.escape`` in HTML; table pipes
@@ -14,7 +15,7 @@ from collections.abc import Callable
 from dataclasses import dataclass, field
 from typing import Any
 
-from collector.datasheet_questions import SECTIONS, Question
+from collector.exports.datasheet_questions import SECTIONS, Question
 
 Block = tuple[Any, ...]  # ("p", text) | ("list", [text]) | ("table", headers, rows)
 
@@ -379,7 +380,7 @@ def _html_block(block: Block) -> str:
 
 def render_html(facts: dict[str, Any], answers: dict[str, str], plots: dict[str, str]) -> str:
     """datasheet.html: one self-contained page (inline CSS and SVG, no external requests)."""
-    from collector.plots import PLOT_TITLES
+    from collector.exports.plots import PLOT_TITLES
 
     title = _title(facts, answers)
     parts = ["<!DOCTYPE html>", '<html lang="en"><head><meta charset="utf-8">',

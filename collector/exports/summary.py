@@ -12,11 +12,11 @@ from collections import Counter
 from dataclasses import dataclass, field
 from typing import Any
 
-import sources
+from collector import sources
+from collector.config.recipe import Recipe
 from collector.errors import CollectorError
-from collector.ledger import Ledger
-from collector.recipe import Recipe
-from collector.urls import host_key
+from collector.fetching.urls import host_key
+from collector.storage.ledger import Ledger
 
 STORED_STATES = ("stored", "near_duplicate")
 

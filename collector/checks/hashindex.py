@@ -20,7 +20,7 @@ from pathlib import Path
 
 import numpy as np
 
-from collector.ledger import Ledger
+from collector.storage.ledger import Ledger
 
 _MASK = (1 << 64) - 1
 

@@ -6,9 +6,10 @@ A file is traced by its content, never its name:
    provenance record of the item that stored it (source, pages, licence, the successful image
    fetch with its robots.txt verdict, flags) plus every other item that brought the same bytes,
    and for a crop the scan it was cut from and the box.
-2. **Near**: otherwise its perceptual hash (the ingest pipeline, :func:`collector.phash.
+2. **Near**: otherwise its perceptual hash (the ingest pipeline, :func:`collector.checks.phash.
    hash_image_file`) is compared with every stored hash and mirror hash in the memory-mapped
-   hash file (:class:`collector.hashindex.HashFile`). The scan is brute force, so every stored
+   hash file (:class:`collector.checks.hashindex.HashFile`). The scan is brute force, so every
+   stored
    file within the threshold is found. A near match is worded as *probably* a copy, never as
    certain: pHash cannot prove two files show the same picture.
 3. **None**: said plainly.
@@ -30,14 +31,14 @@ from dataclasses import asdict, dataclass, field
 from pathlib import Path
 from typing import Any
 
-from collector.collection import Collection, open_collection
+from collector.checks.hashindex import HashFile, NearMatch
+from collector.checks.images import sniff_format
+from collector.checks.licences import licence_allowed, licence_deed_url
 from collector.errors import CollectorError
-from collector.hashindex import HashFile, NearMatch
-from collector.images import sniff_format
-from collector.ledger import Ledger, decode_row
-from collector.ledger_repair import RECOVERED_FLAG
-from collector.licences import licence_allowed, licence_deed_url
 from collector.safe_text import csv_row, shown_name
+from collector.storage.collection import Collection, open_collection
+from collector.storage.ledger import Ledger, decode_row
+from collector.storage.ledger_repair import RECOVERED_FLAG
 
 __all__ = [
     "CAUTION",
@@ -72,12 +73,12 @@ CAUTION = ("Licence facts are as declared by the sources and recorded in the led
            "this is not legal advice.")
 PERSONAL_CAUTION = ("Some files carry personal data (GPS position, camera serial, owner name); "
                     "images may also show faces or names. Check before publishing.")
-# Flags set by collector.images that point at a person (GPS, device serial, owner name).
+# Flags set by collector.checks.images that point at a person (GPS, device serial, owner name).
 PERSONAL_DATA_FLAGS = frozenset({"gps", "camera_serial", "owner_name"})
 IMAGE_EXTENSIONS = frozenset({".jpg", ".jpeg", ".jpe", ".png", ".gif", ".webp", ".tif",
                               ".tiff", ".bmp"})
 _CHUNK = 1 << 20
-# What Pillow raises on a file it cannot decode (the same set collector.images handles).
+# What Pillow raises on a file it cannot decode (the same set collector.checks.images handles).
 _DECODE_ERRORS = (OSError, SyntaxError, ValueError, EOFError, IndexError, TypeError,
                   struct.error)
 
@@ -419,7 +420,7 @@ class Tracer:
         else:
             from PIL import Image
 
-            from collector.phash import hash_image_file  # scipy loads only when needed
+            from collector.checks.phash import hash_image_file  # scipy loads only when needed
 
             try:
                 phash, mirror = hash_image_file(path)

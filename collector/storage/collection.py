@@ -23,10 +23,10 @@ from dataclasses import dataclass
 from importlib import resources
 from pathlib import Path
 
+from collector.config.recipe import Recipe, load_recipe
 from collector.errors import CollectionError, LedgerUnusable
-from collector.ledger import Ledger, ways_out
-from collector.recipe import Recipe, load_recipe
-from collector.store import Store
+from collector.storage.ledger import Ledger, ways_out
+from collector.storage.store import Store
 
 RECIPE_NAME = "recipe.toml"
 LEDGER_NAME = "ledger.sqlite"

@@ -5,7 +5,7 @@ For each URL, and again for each redirect hop (followed by hand, at most 10):
 1. the URL must be http/https and its host must resolve to addresses the recipe allows;
 2. robots.txt of that authority must allow it (fetched once per scheme+host+port, kept 24 h,
    persisted in the ledger's ``hosts`` table);
-3. the contacted host's budget must allow a request start (:mod:`collector.budgets`);
+3. the contacted host's budget must allow a request start (:mod:`collector.fetching.budgets`);
 4. the request is sent, retried with tenacity on connection errors, timeouts, 429 and 5xx
    (honouring Retry-After), and every attempt becomes a ``fetches`` row with a redacted URL.
 
@@ -48,7 +48,7 @@ from tenacity.stop import stop_base
 from tenacity.wait import wait_base
 
 from collector import __version__
-from collector.budgets import SYSTEM_CLOCK, Budget, Clock, HostBudgets, budgets_from_recipe
+from collector.config.schema import expand_env
 from collector.errors import (
     DownloadTimeout,
     FetchError,
@@ -58,8 +58,9 @@ from collector.errors import (
     TooLarge,
     UnsafeURL,
 )
-from collector.http_target import transport_target
-from collector.robots import (
+from collector.fetching.budgets import SYSTEM_CLOCK, Budget, Clock, HostBudgets, budgets_from_recipe
+from collector.fetching.http_target import transport_target
+from collector.fetching.robots import (
     MAX_ROBOTS_BYTES,
     MAX_ROBOTS_REDIRECTS,
     ROBOTS_TTL,
@@ -69,9 +70,7 @@ from collector.robots import (
     policy_from_fetch,
     policy_from_stored,
 )
-from collector.schema import expand_env
-from collector.store import make_temp
-from collector.urls import (
+from collector.fetching.urls import (
     MIN_SECRET_LEN,
     add_params,
     check_address,
@@ -84,6 +83,7 @@ from collector.urls import (
     scrub,
     secret_values,
 )
+from collector.storage.store import make_temp
 
 log = logging.getLogger(__name__)
 
@@ -174,7 +174,7 @@ class FetchSettings:
 
     @classmethod
     def from_recipe(cls, recipe: Any, **overrides: Any) -> FetchSettings:
-        """Build settings from a :class:`collector.recipe.Recipe` or a recipe dict.
+        """Build settings from a :class:`collector.config.recipe.Recipe` or a recipe dict.
 
         A dict may be the parsed TOML (``budgets.hosts`` nested) or ``Recipe.as_dict()``
         (``"budgets.hosts"`` as a top-level key). ``overrides`` set fields directly (tests).
@@ -337,7 +337,7 @@ def filled_from_env(values: Mapping[str, Any], url: str,
     The one place collector expands ``${NAME}``: right before a request is sent, so expanded
     secrets never sit in a recipe, a source table or the ledger. An unset variable stops the
     request before anything is sent (gather names them all before it starts, see
-    collector.recipe.env_problems).
+    collector.config.recipe.env_problems).
     """
     try:
         return {k: expand_env(v, strict=True) if isinstance(v, str) else v

@@ -20,8 +20,8 @@ from datetime import UTC, datetime
 from datetime import time as dtime
 from typing import Any, Protocol
 
-from collector.recipe import Budget
-from collector.robots import Hints
+from collector.config.recipe import Budget
+from collector.fetching.robots import Hints
 
 HOUR = 3600.0
 # After a 429/503 the host's interval is doubled, up to this factor (common practice, no source).

@@ -23,8 +23,8 @@ from urllib.parse import urlsplit
 
 from PIL import ExifTags, Image, ImageFile, IptcImagePlugin
 
+from collector.checks.phash import HASH_ALGO, phash_prepared
 from collector.errors import ImageRejected
-from collector.phash import HASH_ALGO, phash_prepared
 
 __all__ = ["FORMATS", "RIGHTS_KEYS", "ImageFacts", "inspect_image", "sniff_format"]
 

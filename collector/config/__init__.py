@@ -1,0 +1,1 @@
+"""The recipe: what to gather and how politely (reading, validating, the one key schema)."""

@@ -1,0 +1,1 @@
+"""The overnight run behind ``collector gather``."""

@@ -1,0 +1,1 @@
+"""The collection folder: the content-addressed store, the SQLite ledger, recovery and repair."""
