@@ -1,4 +1,5 @@
-"""``python -m collector.demo_site serve [--port N]`` and ``python -m collector.demo_site generate DIR``."""
+"""``python -m collector.demo_site serve [--port N]`` and
+``python -m collector.demo_site generate DIR``."""
 
 from __future__ import annotations
 
