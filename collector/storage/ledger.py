@@ -43,13 +43,13 @@ def utc_now() -> str:
 
 def _migration_1(db: sqlite_utils.Database) -> None:
     """Create the first version of every table."""
-    db["runs"].create({
+    db.table("runs").create({
         "id": int, "started_at": str, "ended_at": str, "recipe_sha256": str, "options": str,
         "outcome": str, "tool_version": str,
     }, pk="id")
-    db["sources"].create({"id": int, "name": str, "kind": str, "config": str}, pk="id")
-    db["sources"].create_index(["name"], unique=True)
-    db["items"].create({
+    db.table("sources").create({"id": int, "name": str, "kind": str, "config": str}, pk="id")
+    db.table("sources").create_index(["name"], unique=True)
+    db.table("items").create({
         "id": int, "source_id": int, "source_key": str, "image_url": str, "page_url": str,
         "title": str, "creator": str, "licence_raw": str, "licence_url": str, "spdx_id": str,
         "date": str, "metadata": str, "state": str, "reason": str, "detail": str,
@@ -57,30 +57,30 @@ def _migration_1(db: sqlite_utils.Database) -> None:
         "parent_sha256": str, "crop_box": str, "local_path": str, "run_id": int,
         "created_at": str, "updated_at": str,
     }, pk="id", foreign_keys=[("source_id", "sources", "id")])
-    db["items"].create_index(["source_id", "source_key"], unique=True)
-    db["items"].create_index(["image_url"])
-    db["items"].create_index(["state"])
-    db["items"].create_index(["file_sha256"])
-    db["fetches"].create({
+    db.table("items").create_index(["source_id", "source_key"], unique=True)
+    db.table("items").create_index(["image_url"])
+    db.table("items").create_index(["state"])
+    db.table("items").create_index(["file_sha256"])
+    db.table("fetches").create({
         "id": int, "run_id": int, "item_id": int, "purpose": str, "url": str, "host": str,
         "status": int, "bytes": int, "started_at": str, "ended_at": str, "waited_s": float,
         "attempt": int, "robots_verdict": str, "robots_rule": str, "error": str, "etag": str,
         "last_modified": str, "content_type": str, "from_cache": int,
     }, pk="id")
-    db["fetches"].create_index(["item_id"])
-    db["fetches"].create_index(["host"])
-    db["files"].create({
+    db.table("fetches").create_index(["item_id"])
+    db.table("fetches").create_index(["host"])
+    db.table("files").create({
         "sha256": str, "size": int, "ext": str, "format": str, "mime": str, "width": int,
         "height": int, "mode": str, "bit_depth": int, "alpha": int, "frames": int,
         "orientation": int, "phash": int, "phash_mirror": int, "hash_algo": str,
         "first_item_id": int, "stored_at": str, "exif": str, "rights": str, "flags": str,
     }, pk="sha256")
-    db["hosts"].create({
+    db.table("hosts").create({
         "host": str, "robots_url": str, "robots_fetched_at": str, "robots_status": int,
         "robots_sha256": str, "robots_body": str, "effective_budget": str,
         "parked_until": float, "failures": int,
     }, pk="host")
-    db["notes"].create({
+    db.table("notes").create({
         "id": int, "run_id": int, "source_id": int, "kind": str, "url": str, "message": str,
         "created_at": str,
     }, pk="id")
@@ -95,8 +95,8 @@ def _migration_2(db: sqlite_utils.Database) -> None:
     names a file while it is being placed in (or removed from) the store: crash recovery
     removes a stored file without a ``files`` row only when an intent names it.
     """
-    db["ledger_facts"].create({"name": str, "value": str}, pk="name")
-    db["store_intents"].create({"sha256": str, "item_id": int, "started_at": str},
+    db.table("ledger_facts").create({"name": str, "value": str}, pk="name")
+    db.table("store_intents").create({"sha256": str, "item_id": int, "started_at": str},
                                pk="sha256")
 
 
@@ -244,10 +244,10 @@ class Ledger:
             for version in range(current + 1, SCHEMA_VERSION + 1):
                 with self._conn:
                     if "schema_version" not in self.db.table_names():
-                        self.db["schema_version"].create(
+                        self.db.table("schema_version").create(
                             {"version": int, "applied_at": str}, pk="version")
                     MIGRATIONS[version](self.db)
-                    self.db["schema_version"].insert(
+                    self.db.table("schema_version").insert(
                         {"version": version, "applied_at": utc_now()})
             return SCHEMA_VERSION
 
@@ -356,9 +356,9 @@ class Ledger:
             row = rows[0] if rows else None
             encoded = _encode({"name": name, "kind": kind, "config": config})
             if row:
-                self.db["sources"].update(row[0], encoded)
+                self.db.table("sources").update(row[0], encoded)
                 return int(row[0])
-            return self.db["sources"].insert(encoded).last_pk
+            return int(self.db.table("sources").insert(encoded).last_pk or 0)
 
     # -- items -------------------------------------------------------------------------------
     def item(self, item_id: int) -> dict[str, Any] | None:
