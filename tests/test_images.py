@@ -433,6 +433,19 @@ def test_icc_and_dpi_are_reported(tmp_path):
     scene().save(path, icc_profile=profile, dpi=(300, 300))
     facts = inspect_image(path)
     assert facts.icc is True and facts.dpi == (300.0, 300.0)
+    # The profile's own description tag (ICC.1 'desc'), as LittleCMS names its sRGB profile.
+    assert facts.icc_profile == ImageCms.getProfileDescription(
+        ImageCms.ImageCmsProfile(ImageCms.createProfile("sRGB"))).strip()
+
+
+def test_a_broken_icc_profile_is_flagged_not_fatal(tmp_path):
+    """Garbage where the ICC profile should be: the image is still accepted, the profile is
+    named unreadable and flagged."""
+    path = tmp_path / "bad-icc.png"
+    scene().save(path, icc_profile=b"not an ICC profile at all" * 4)
+    facts = inspect_image(path)
+    assert facts.icc_profile == "(unreadable profile)"
+    assert "icc_unreadable" in facts.flags
 
 
 def test_hash_of_a_png_equals_imagehash_and_of_a_jpeg_equals_the_draft_pipeline(tmp_path):

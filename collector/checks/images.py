@@ -14,6 +14,7 @@ check, plus one header parse and a draft (1/8 scale) decode for the hash.
 
 from __future__ import annotations
 
+import io
 import struct
 import warnings
 from dataclasses import dataclass, field
@@ -76,6 +77,7 @@ class ImageFacts:
     orientation: int
     icc: bool
     dpi: tuple[float, float] | None
+    icc_profile: str | None  # the embedded ICC profile's description (ICC.1 'desc' tag)
     phash: int  # unsigned 64-bit
     phash_mirror: int
     hash_algo: str
@@ -174,6 +176,22 @@ def _bit_depth(im: Image.Image, fmt: str, head: bytes) -> int:
 
 def _has_alpha(im: Image.Image) -> bool:
     return "A" in im.mode or "a" in im.mode or "transparency" in im.info
+
+
+def _icc_profile_name(profile: bytes | None, flags: list[str]) -> str | None:
+    """The description of an embedded ICC profile (its 'desc' tag, ICC.1 section 9.2.41, read
+    by LittleCMS through Pillow's ImageCms), or None when there is no profile. A profile that
+    does not parse is flagged ``icc_unreadable`` and named as such."""
+    if not profile:
+        return None
+    try:
+        from PIL import ImageCms
+
+        name = ImageCms.getProfileDescription(ImageCms.ImageCmsProfile(io.BytesIO(profile)))
+    except Exception:  # a malformed profile from an archive: a fact, not a failure
+        flags.append("icc_unreadable")
+        return "(unreadable profile)"
+    return name.strip()[:200] or "(profile without a name)"
 
 
 def _dpi(im: Image.Image) -> tuple[float, float] | None:
@@ -459,6 +477,7 @@ def inspect_image(
         bit_depth = _bit_depth(im, fmt, head)
         alpha = _has_alpha(im)
         icc = bool(im.info.get("icc_profile"))
+        icc_profile = _icc_profile_name(im.info.get("icc_profile"), flags)
         dpi = _dpi(im)
         if fmt == "PNG":
             _verify_png(path, max_pixels)
@@ -493,6 +512,7 @@ def inspect_image(
         orientation=orientation,
         icc=icc,
         dpi=dpi,
+        icc_profile=icc_profile,
         phash=phash,
         phash_mirror=mirror,
         hash_algo=HASH_ALGO,

@@ -30,7 +30,7 @@ import sqlite_utils
 
 from collector.errors import LedgerError, LedgerUnusable
 
-SCHEMA_VERSION = 2
+SCHEMA_VERSION = 3
 
 JSON_COLUMNS = {"options", "config", "metadata", "crop_box", "exif", "rights", "flags",
                 "effective_budget"}
@@ -97,11 +97,20 @@ def _migration_2(db: sqlite_utils.Database) -> None:
     """
     db.table("ledger_facts").create({"name": str, "value": str}, pk="name")
     db.table("store_intents").create({"sha256": str, "item_id": int, "started_at": str},
-                               pk="sha256")
+                                     pk="sha256")
+
+
+def _migration_3(db: sqlite_utils.Database) -> None:
+    """Image facts that were computed but not kept: the embedded ICC profile's description
+    and the stored pixel density. Rows stored before stay NULL (unknown)."""
+    files = db.table("files")
+    files.add_column("icc_profile", str)
+    files.add_column("dpi_x", float)
+    files.add_column("dpi_y", float)
 
 
 MIGRATIONS: dict[int, Callable[[sqlite_utils.Database], None]] = {
-    1: _migration_1, 2: _migration_2}
+    1: _migration_1, 2: _migration_2, 3: _migration_3}
 
 
 def ways_out(folder: Path) -> str:
