@@ -104,9 +104,10 @@ def _migration_3(db: sqlite_utils.Database) -> None:
     """Image facts that were computed but not kept: the embedded ICC profile's description
     and the stored pixel density. Rows stored before stay NULL (unknown)."""
     files = db.table("files")
-    files.add_column("icc_profile", str)
-    files.add_column("dpi_x", float)
-    files.add_column("dpi_y", float)
+    present = files.columns_dict
+    for name, kind in (("icc_profile", str), ("dpi_x", float), ("dpi_y", float)):
+        if name not in present:  # a ledger mended by hand may have some already
+            files.add_column(name, kind)
 
 
 MIGRATIONS: dict[int, Callable[[sqlite_utils.Database], None]] = {
