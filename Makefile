@@ -1,6 +1,6 @@
 # Two commands do all set-up on a machine that has only python3:
 #   make demo   run the whole job against the embedded fictional archive
-#   make test   run every check (ruff + pytest)
+#   make test   run every check (ruff, the import layers, mypy, pytest)
 PYTHON ?= python3
 VENV   := .venv
 BIN    := $(VENV)/bin
@@ -19,6 +19,8 @@ demo: $(STAMP)
 
 test: $(STAMP)
 	$(BIN)/ruff check collector sources demo_site tests bench
+	$(BIN)/lint-imports
+	$(BIN)/mypy
 	$(BIN)/python -m pytest -q
 
 bench: $(STAMP)

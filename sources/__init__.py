@@ -36,8 +36,8 @@ from importlib.metadata import EntryPoint, entry_points
 from pathlib import Path
 from typing import Any, NoReturn
 
-from collector.config.schema import Key, Problems, check_table, did_you_mean
 from collector.errors import SourceKindError
+from collector.schema import Key, Problems, check_table, did_you_mean
 from collector.sources.base import (
     Candidate,
     NoteSink,

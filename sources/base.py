@@ -1,7 +1,7 @@
 """The source-kind contract and the types every kind shares: SourceKind, Candidate, SourceNote,
 the Page/PageFetcher protocols, and small URL and text helpers.
 
-A kind validates its table with the one recipe schema (collector.config.schema); it never imports an
+A kind validates its table with the one recipe schema (collector.schema); it never imports an
 HTTP library (it is handed the fetcher) and never downloads images.
 """
 
@@ -14,9 +14,9 @@ from pathlib import Path
 from typing import Any, Protocol
 from urllib.parse import parse_qsl, urlencode, urljoin, urlsplit, urlunsplit
 
-from collector.config.schema import Key, Problems
+from collector import urls
 from collector.errors import FetchError, RecipeProblem, SourceError
-from collector.fetching import urls
+from collector.schema import Key, Problems
 
 __all__ = [
     "Candidate",
@@ -106,7 +106,7 @@ class SourceKind:
     package that do, other packages register theirs under the entry-point group
     ``collector.sources`` (see sources.registry).
 
-    - ``keys``: the table's keys besides ``name`` and ``kind`` (collector.config.schema.Key);
+    - ``keys``: the table's keys besides ``name`` and ``kind`` (collector.schema.Key);
     unknown
       keys, types, required keys and per-value checks are reported from these.
     - ``check``: optional checks across keys, run after ``keys``; adds to the Problems it is

@@ -15,7 +15,7 @@ from typing import Any
 import soupsieve
 from bs4 import BeautifulSoup, Tag
 
-from collector.config.schema import (
+from collector.schema import (
     Key,
     Problems,
     at_least,

@@ -18,7 +18,7 @@ import jmespath
 from jmespath.exceptions import JMESPathError
 from jmespath.parser import ParsedResult
 
-from collector.config.schema import (
+from collector.schema import (
     Key,
     Problems,
     at_least,
@@ -294,7 +294,7 @@ class Config:
     def from_table(cls, table: Mapping[str, Any]) -> Config:
         """Compile a validated table. "${NAME}" references in params and headers stay as they
         are: the fetcher fills them in when it sends a request
-        (collector.config.schema.expand_env)."""
+        (collector.schema.expand_env)."""
         fields = dict(table["fields"])
         pag = dict(table.get("pagination") or {"style": "none"})
         params = _text_values(table.get("params"))

@@ -14,7 +14,8 @@ from typing import Any
 
 from PIL import Image, UnidentifiedImageError
 
-from collector.config.schema import (
+from collector.safe_text import shown_name
+from collector.schema import (
     Key,
     Problems,
     at_least,
@@ -25,7 +26,6 @@ from collector.config.schema import (
     http_url,
     not_blank,
 )
-from collector.safe_text import shown_name
 from collector.sources.base import Candidate, NoteSink, OnceNotes, PageFetcher, SourceKind
 
 DEFAULT_INCLUDE = ("**/*.png", "**/*.jpg", "**/*.jpeg", "**/*.tif", "**/*.tiff", "**/*.webp",

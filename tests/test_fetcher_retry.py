@@ -8,9 +8,9 @@ from pathlib import Path
 import pytest
 import responses
 
+from collector import urls
 from collector.config.recipe import parse_recipe
 from collector.errors import FetchError, HostParked
-from collector.fetching import urls
 from collector.fetching.budgets import FakeClock
 from collector.fetching.fetcher import Fetcher, FetchSettings, parse_http_date, parse_retry_after
 from collector.storage.ledger import Ledger

@@ -20,7 +20,7 @@ from collector import sources
 from collector.config.recipe import parse_recipe
 from collector.errors import CollectorError, RecipeError
 from collector.fetching.fetcher import Page, parse_retry_after
-from collector.fetching.urls import host_key, redact, split_checked
+from collector.urls import host_key, redact, split_checked
 
 FUZZ = settings(max_examples=150, deadline=None, derandomize=True,
                 suppress_health_check=[HealthCheck.too_slow])

@@ -15,7 +15,7 @@ from requests.adapters import HTTPAdapter
 
 from collector.errors import UnsafeURL
 from collector.fetching.http_target import transport_target
-from collector.fetching.urls import split_checked
+from collector.urls import split_checked
 
 ALLOWED = "127.0.0.51"
 UNLISTED = "127.0.0.59"

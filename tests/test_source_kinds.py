@@ -26,7 +26,7 @@ TOY_MODULE = '''
 """A toy source kind living outside collector: the PNG files of one folder."""
 from pathlib import Path
 
-from collector.config.schema import Key
+from collector.schema import Key
 from collector.sources import Candidate, SourceKind
 
 

@@ -8,7 +8,7 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from collector.checks.hashindex import (
+from collector.storage.hashindex import (
     HashFile,
     HashIndex,
     ledger_mark,

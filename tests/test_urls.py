@@ -11,7 +11,7 @@ import socket
 import pytest
 
 from collector.errors import UnsafeURL
-from collector.fetching.urls import (
+from collector.urls import (
     REDACTED,
     add_params,
     check_address,

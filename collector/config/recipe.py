@@ -20,7 +20,8 @@ from pathlib import Path
 from typing import Any
 from urllib.parse import urlsplit
 
-from collector.config.schema import (
+from collector.errors import RecipeError, RecipeProblem
+from collector.schema import (
     Check,
     Key,
     Problems,
@@ -33,7 +34,6 @@ from collector.config.schema import (
     header_value_problem,
     one_of,
 )
-from collector.errors import RecipeError, RecipeProblem
 
 PRODUCT_TOKEN_RE = re.compile(r"^[A-Za-z_-]+$")  # RFC 9309 section 2.2.1
 CONTROL_RE = re.compile(r"[\x00-\x1f\x7f]")
@@ -198,7 +198,7 @@ def _setting(default: Any, check: Check | None = None) -> Any:
     return field(default=default, metadata={"check": check})
 
 
-# Field annotation -> collector.config.schema type name.
+# Field annotation -> collector.schema type name.
 _FIELD_TYPES = {"str": "str", "int": "int", "float": "float", "bool": "bool",
                 "list[str]": "list[str]", "dict[str, str]": "table[str]"}
 
@@ -360,7 +360,7 @@ def _check_host_budgets(raw: Any, problems: Problems) -> dict:
 
 
 def _check_sources(raw: Any, problems: Problems) -> list[dict]:
-    # Imported here, not at the top: the source kinds import collector.config.schema, and loading
+    # Imported here, not at the top: the source kinds import collector.schema, and loading
     # the
     # registry (and any kinds from other packages) is only needed when a recipe has sources.
     from collector import sources as adapters

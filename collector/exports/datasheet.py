@@ -37,8 +37,8 @@ from collector.checks.licences import licence_allowed, licence_conditions, licen
 from collector.config.recipe import Recipe
 from collector.errors import CollectionError, CollectorError, LedgerError
 from collector.exports.datasheet_questions import load_answers
-from collector.fetching.urls import host_key
 from collector.safe_text import csv_cell, csv_row
+from collector.urls import host_key
 
 ACCEPTED_STATES = ("stored", "near_duplicate")
 # Flags from collector.checks.images that point at personal data (GPS position, camera serial

@@ -15,8 +15,8 @@ from datetime import datetime
 from pathlib import Path
 from typing import Any
 
-from collector.config.schema import did_you_mean
 from collector.errors import CollectorError, RecipeProblem
+from collector.schema import did_you_mean
 
 
 class AnswersError(CollectorError):

@@ -15,8 +15,8 @@ from typing import Any
 from collector import sources
 from collector.config.recipe import Recipe
 from collector.errors import CollectorError
-from collector.fetching.urls import host_key
 from collector.storage.ledger import Ledger
+from collector.urls import host_key
 
 STORED_STATES = ("stored", "near_duplicate")
 

@@ -8,7 +8,7 @@ A file is traced by its content, never its name:
    and for a crop the scan it was cut from and the box.
 2. **Near**: otherwise its perceptual hash (the ingest pipeline, :func:`collector.checks.phash.
    hash_image_file`) is compared with every stored hash and mirror hash in the memory-mapped
-   hash file (:class:`collector.checks.hashindex.HashFile`). The scan is brute force, so every
+   hash file (:class:`collector.storage.hashindex.HashFile`). The scan is brute force, so every
    stored
    file within the threshold is found. A near match is worded as *probably* a copy, never as
    certain: pHash cannot prove two files show the same picture.
@@ -31,12 +31,12 @@ from dataclasses import asdict, dataclass, field
 from pathlib import Path
 from typing import Any
 
-from collector.checks.hashindex import HashFile, NearMatch
 from collector.checks.images import sniff_format
 from collector.checks.licences import licence_allowed, licence_deed_url
 from collector.errors import CollectorError
 from collector.safe_text import csv_row, shown_name
 from collector.storage.collection import Collection, open_collection
+from collector.storage.hashindex import HashFile, NearMatch
 from collector.storage.ledger import Ledger, decode_row
 from collector.storage.ledger_repair import RECOVERED_FLAG
 

@@ -48,7 +48,6 @@ from tenacity.stop import stop_base
 from tenacity.wait import wait_base
 
 from collector import __version__
-from collector.config.schema import expand_env
 from collector.errors import (
     DownloadTimeout,
     FetchError,
@@ -70,7 +69,9 @@ from collector.fetching.robots import (
     policy_from_fetch,
     policy_from_stored,
 )
-from collector.fetching.urls import (
+from collector.schema import expand_env
+from collector.storage.store import make_temp
+from collector.urls import (
     MIN_SECRET_LEN,
     add_params,
     check_address,
@@ -83,7 +84,6 @@ from collector.fetching.urls import (
     scrub,
     secret_values,
 )
-from collector.storage.store import make_temp
 
 log = logging.getLogger(__name__)
 

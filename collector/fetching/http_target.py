@@ -27,7 +27,7 @@ from requests.models import PreparedRequest
 from urllib3.util import parse_url
 
 from collector.errors import UnsafeURL
-from collector.fetching.urls import ALLOWED_SCHEMES, DEFAULT_PORTS
+from collector.urls import ALLOWED_SCHEMES, DEFAULT_PORTS
 
 # C0 controls, DEL and C1 controls (Unicode general category Cc).
 _CONTROL = re.compile(r"[\x00-\x1f\x7f-\x9f]")

@@ -33,11 +33,9 @@ from typing import Any, BinaryIO, Protocol
 
 from collector import __version__
 from collector import sources as adapters
-from collector.checks.hashindex import HashIndex, NearMatch, to_signed
 from collector.checks.images import ImageFacts, inspect_image
 from collector.checks.licences import licence_allowed, normalise_licence, rights_conflict
 from collector.config.recipe import Recipe, env_problems, parse_clock, parse_duration
-from collector.config.schema import expand_env
 from collector.errors import (
     CollectorError,
     FetchError,
@@ -52,7 +50,13 @@ from collector.errors import (
     TooLarge,
     UnsafeURL,
 )
-from collector.fetching.urls import (
+from collector.safe_text import shown_name
+from collector.schema import expand_env
+from collector.storage.collection import Collection, Recovery, recover
+from collector.storage.hashindex import HashIndex, NearMatch, to_signed
+from collector.storage.ledger import Ledger, utc_now
+from collector.storage.ledger_repair import RECOVERED_FLAG, backup_ledger
+from collector.urls import (
     MIN_SECRET_LEN,
     header_secrets,
     host_key,
@@ -60,10 +64,6 @@ from collector.fetching.urls import (
     redact,
     scrub,
 )
-from collector.safe_text import shown_name
-from collector.storage.collection import Collection, Recovery, recover
-from collector.storage.ledger import Ledger, utc_now
-from collector.storage.ledger_repair import RECOVERED_FLAG, backup_ledger
 
 # States after which an item is not requested again.
 FINAL_STATES = frozenset({"stored", "duplicate", "near_duplicate", "rejected"})

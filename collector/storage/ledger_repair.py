@@ -28,7 +28,6 @@ from dataclasses import dataclass, field
 from datetime import UTC, datetime
 from pathlib import Path
 
-from collector.checks.hashindex import to_signed
 from collector.checks.images import inspect_image
 from collector.errors import CollectionError, CollectorError, LedgerError, LedgerUnusable
 from collector.storage.collection import (
@@ -36,6 +35,7 @@ from collector.storage.collection import (
     Collection,
     check_ledger,
 )
+from collector.storage.hashindex import to_signed
 from collector.storage.ledger import Ledger, utc_now
 
 BACKUP_DIR = "ledger-backups"

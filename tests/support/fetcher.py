@@ -4,7 +4,7 @@
 depend on and leaves out its politeness (robots.txt, budgets, retries, ledger rows):
 
 * params are added to the URL the way the real fetcher adds them
-(``collector.fetching.urls.add_params``,
+(``collector.urls.add_params``,
   ``${NAME}`` filled by the real fetcher's own function); a URL that is not http/https
   raises ``UnsafeURL``;
 * redirects (301/302/303/307/308 with Location) are followed, at most ``max_redirects`` hops,
@@ -36,8 +36,8 @@ from collector import sources
 from collector.demo_site.loopback import Answer
 from collector.errors import FetchError
 from collector.fetching.fetcher import REDIRECT_STATUSES, Page, filled_from_env
-from collector.fetching.urls import add_params, redact, split_checked
 from collector.sources import SourceNote
+from collector.urls import add_params, redact, split_checked
 
 
 @dataclass
