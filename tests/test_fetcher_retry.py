@@ -11,8 +11,9 @@ import responses
 from collector import urls
 from collector.config.recipe import parse_recipe
 from collector.errors import FetchError, HostParked
+from collector.fetching.answers import parse_http_date, parse_retry_after
 from collector.fetching.budgets import FakeClock
-from collector.fetching.fetcher import Fetcher, FetchSettings, parse_http_date, parse_retry_after
+from collector.fetching.fetcher import Fetcher, FetchSettings
 from collector.storage.ledger import Ledger
 
 # RFC 9110 §5.6.7 examples; all three forms are Unix 784111777 (standards.md §4).

@@ -19,7 +19,7 @@ from requests.structures import CaseInsensitiveDict
 from collector import sources
 from collector.config.recipe import parse_recipe
 from collector.errors import CollectorError, RecipeError
-from collector.fetching.fetcher import Page, parse_retry_after
+from collector.fetching.answers import Page, parse_retry_after
 from collector.urls import host_key, redact, split_checked
 
 FUZZ = settings(max_examples=150, deadline=None, derandomize=True,

@@ -5,7 +5,7 @@ from __future__ import annotations
 import pytest
 from requests.structures import CaseInsensitiveDict
 
-from collector.fetching.fetcher import MAX_RETRY_DELAY, Page, parse_retry_after
+from collector.fetching.answers import MAX_RETRY_DELAY, Page, parse_retry_after
 
 
 def test_a_retry_after_of_hundreds_of_digits_is_a_long_finite_delay_not_a_crash() -> None:

@@ -11,7 +11,7 @@ depend on and leaves out its politeness (robots.txt, budgets, retries, ledger ro
   then ``FetchError`` reason ``redirect_blocked``;
 * a final status outside 2xx raises ``FetchError`` with reason ``http_<status>`` and ``status``
   set, the URL redacted with the secret params: adapters never see an error page;
-* the answer is a real ``collector.fetching.fetcher.Page`` (case-insensitive headers, charset-aware
+* the answer is a real ``collector.fetching.answers.Page`` (case-insensitive headers, charset-aware
 text,
   ``json()``, RFC 8288 ``links``) whose ``url`` is the final URL.
 
@@ -35,7 +35,8 @@ from requests.utils import get_encoding_from_headers
 from collector import sources
 from collector.demo_site.loopback import Answer
 from collector.errors import FetchError
-from collector.fetching.fetcher import REDIRECT_STATUSES, Page, filled_from_env
+from collector.fetching.answers import REDIRECT_STATUSES, Page
+from collector.fetching.fetcher import filled_from_env
 from collector.sources import SourceNote
 from collector.urls import add_params, redact, split_checked
 
