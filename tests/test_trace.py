@@ -1,6 +1,6 @@
 """collector trace: exact, near and no matches over a real collection (real SQLite, real images).
 
-The collection is built the way collector/run/gather.py builds it: web items get a ``fetches`` row
+The collection is built the way collector/run/ingest.py builds it: web items get a ``fetches`` row
 for
 their image download (purpose 'image', status 200, as the fetcher records it) and are ingested
 with ``collector.checks.images.inspect_image`` + the store + a ``files`` row; the scan and its
