@@ -23,7 +23,8 @@ from pathlib import Path
 import numpy as np
 from PIL import Image
 
-from collector.run.gather import Gatherer, gather, prepared_run
+from collector.run.gather import gather, prepared_run
+from collector.run.scheduling import Gatherer
 from collector.storage.collection import init_collection
 
 
@@ -51,7 +52,7 @@ def bare_decode(paths: list[Path]) -> float:
 
 
 def ingest_step(root: Path, paths: list[Path]) -> float:
-    """Time Gatherer._ingest on files already in the incoming folder, as after a download."""
+    """Time Ingest.ingest_file on files already in the incoming folder, as after a download."""
     col = init_collection(root / "step", contact="bench@example.org")
     col.recipe_path.write_text(col.recipe_path.read_text() + SOURCE.format(folder=paths[0].parent))
     with prepared_run(col) as (recipe, ledger):
@@ -68,7 +69,7 @@ def ingest_step(root: Path, paths: list[Path]) -> float:
             jobs.append((item, tmp, sha))
         start = time.perf_counter()
         for item, tmp, sha in jobs:
-            gatherer._ingest(item, "CC0-1.0", tmp, sha, content_type="image/jpeg",
+            gatherer.ingest.ingest_file(item, "CC0-1.0", tmp, sha, content_type="image/jpeg",
                              url=f"http://h/{item}.jpg")
         elapsed = time.perf_counter() - start
         stored = ledger.scalar("SELECT count(*) FROM items WHERE state = 'stored'")

@@ -145,13 +145,8 @@ def gather(
     """
     from collector.display import LiveProgress
     from collector.exports.summary import estimate, format_estimate, format_summary, summarise
-    from collector.run.gather import (
-        Gatherer,
-        build_fetcher,
-        prepared_run,
-        stop_rules,
-        unknown_files_message,
-    )
+    from collector.run.gather import build_fetcher, prepared_run, unknown_files_message
+    from collector.run.scheduling import Gatherer, stop_rules
     from collector.storage.collection import open_collection
 
     with user_errors():

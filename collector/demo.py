@@ -14,7 +14,9 @@ from pathlib import Path
 from PIL import Image
 
 from collector.errors import CollectionError, CollectorError
-from collector.run.gather import Progress, RunResult, gather
+from collector.run.gather import gather
+from collector.run.record import Progress
+from collector.run.scheduling import RunResult
 from collector.storage.collection import Collection, init_collection, open_collection
 
 DEMO_PORT = 8642

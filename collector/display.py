@@ -1,7 +1,7 @@
 """Showing a run as it goes: a live table on a terminal, plain lines in a log, or JSON lines.
 
 Only this module and ``cli.py`` import rich. The run reports events through
-:class:`collector.run.gather.Progress`; the live view also polls the gatherer for per-host numbers.
+:class:`collector.run.record.Progress`; the live view also polls the gatherer for per-host numbers.
 """
 
 from __future__ import annotations

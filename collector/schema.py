@@ -8,7 +8,7 @@ Also the one home of the ``${NAME}`` syntax: :func:`env_names` finds references 
 checks them before a run), :func:`expand_env` fills them in. Values are filled only when a
 request is sent (``collector.fetching.fetcher._filled``), so expanded secrets never sit in a
 recipe, a
-source table or the ledger; the only other caller, ``collector.run.gather.secret_values``, computes
+source table or the ledger; the only other caller, ``collector.run.record.secret_values``, computes
 the same values solely to scrub them from messages.
 
 This module imports nothing from collector but the errors, so anything may import it.

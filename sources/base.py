@@ -66,14 +66,23 @@ NoteSink = Callable[[SourceNote], None]
 
 
 class Page(Protocol):
-    """What a fetched page looks like to an adapter (duck-typed; see collector.fetching.fetcher)."""
+    """What a fetched page looks like to an adapter (duck-typed; see collector.fetching.fetcher).
+    Read-only: an adapter never changes a page."""
 
-    url: str
-    status: int
-    headers: Mapping[str, str]
-    body: bytes
-    text: str
-    links: Mapping[str, Any]  # rel -> URL, or rel -> {"url": URL, ...} (collector.fetching.fetcher)
+    @property
+    def url(self) -> str: ...
+    @property
+    def status(self) -> int: ...
+    @property
+    def headers(self) -> Mapping[str, str]: ...
+    @property
+    def body(self) -> bytes: ...
+    @property
+    def text(self) -> str: ...
+    @property
+    def links(self) -> Mapping[str, Any]:
+        """rel -> URL, or rel -> {"url": URL, ...} (collector.fetching.fetcher)."""
+        ...
 
     def json(self) -> Any: ...
 

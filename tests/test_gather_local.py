@@ -16,7 +16,8 @@ from PIL import Image, ImageOps
 from typer.testing import CliRunner
 
 from collector.cli import app
-from collector.run.gather import StopRules, gather
+from collector.run.gather import gather
+from collector.run.scheduling import StopRules
 from collector.storage.collection import init_collection
 
 NO_FETCHER = {"fetcher_factory": lambda recipe, ledger: None}

@@ -22,7 +22,8 @@ from typer.testing import CliRunner
 from collector.cli import app
 from collector.demo_site import DemoServer
 from collector.demo_site.recipes import render
-from collector.run.gather import Gatherer, RunResult
+from collector.run.ingest import Ingest
+from collector.run.scheduling import Gatherer, RunResult
 from collector.storage.collection import Collection, init_collection
 
 
@@ -163,7 +164,7 @@ def test_a_bug_in_local_ingest_fails_the_item_and_the_run(tmp_path: Path,
     col.recipe_path.write_text(col.recipe_path.read_text() + (
         '\n[[sources]]\nname = "desk"\nkind = "scans"\npath = "in"\ninclude = ["*.png"]\n'
         'licence = "CC0-1.0"\n'))
-    monkeypatch.setattr(Gatherer, "_ingest_local", _method(FailOn(Gatherer._ingest_local, 2)))
+    monkeypatch.setattr(Ingest, "ingest_local", _method(FailOn(Ingest.ingest_local, 2)))
     result = CliRunner().invoke(app, ["gather", str(col.root), "--quiet"])
     assert_failed_by_bug(col, result, "the listing of source 'desk'")
 

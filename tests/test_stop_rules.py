@@ -9,7 +9,7 @@ import pytest
 
 from collector.config.recipe import parse_recipe
 from collector.errors import RecipeError
-from collector.run.gather import RunResult, stop_rules
+from collector.run.scheduling import RunResult, stop_rules
 
 RECIPE = parse_recipe('contact = "me@example.org"\n[stop]\nmax_items = 7\n', Path("r.toml"))
 TZ = timezone(timedelta(hours=1))

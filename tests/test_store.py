@@ -90,7 +90,7 @@ CRASH_SCRIPT = textwrap.dedent("""
     os.write(fd, b" and the rest"); os.close(fd)
     import hashlib
     sha = hashlib.sha256(b"half of an image and the rest").hexdigest()
-    ledger.add_store_intent(sha, None)  # write-ahead, as collector.run.gather does
+    ledger.add_store_intent(sha, None)  # write-ahead, as collector.run.ingest does
     store.adopt(tmp, sha, "png")
     if point == "before-row":
         os.kill(os.getpid(), signal.SIGKILL)

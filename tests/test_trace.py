@@ -1,6 +1,6 @@
 """collector trace: exact, near and no matches over a real collection (real SQLite, real images).
 
-The collection is built the way collector/run/gather.py builds it: web items get a ``fetches`` row
+The collection is built the way collector/run/ingest.py builds it: web items get a ``fetches`` row
 for
 their image download (purpose 'image', status 200, as the fetcher records it) and are ingested
 with ``collector.checks.images.inspect_image`` + the store + a ``files`` row; the scan and its
@@ -31,7 +31,7 @@ from collector.checks.licences import normalise_licence, rights_conflict
 from collector.checks.phash import hamming, hash_image_file
 from collector.cli import app
 from collector.exports.trace import Tracer, TraceResult, attribution_line, format_record, summarise
-from collector.run.gather import Gatherer
+from collector.run.scheduling import Gatherer
 from collector.storage.collection import Collection, init_collection
 from collector.storage.hashindex import to_signed
 from collector.storage.ledger import Ledger
@@ -106,7 +106,7 @@ def _ingest_web(gatherer: Gatherer, ledger: Ledger, source_id: int, key: str, da
     fd, tmp = gatherer.store.new_temp()
     with open(fd, "wb") as fh:
         fh.write(data)
-    gatherer._ingest(item_id, normalise_licence(licence, None).spdx_id, tmp,
+    gatherer.ingest.ingest_file(item_id, normalise_licence(licence, None).spdx_id, tmp,
                      hashlib.sha256(data).hexdigest(), content_type="image/jpeg",
                      url=image_url)
     return item_id

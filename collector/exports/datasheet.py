@@ -43,7 +43,7 @@ from collector.urls import host_key
 ACCEPTED_STATES = ("stored", "near_duplicate")
 # Flags from collector.checks.images that point at personal data (GPS position, camera serial
 # number,
-# camera owner's name); "licence_conflict" comes from collector.run.gather when embedded rights
+# camera owner's name); "licence_conflict" comes from collector.run.ingest when embedded rights
 # metadata contradicts the declared licence.
 PERSONAL_FLAGS = ("gps", "camera_serial", "owner_name")
 CONFLICT_FLAG = "licence_conflict"

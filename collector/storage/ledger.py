@@ -491,3 +491,47 @@ class Ledger:
         return self._insert("notes", {"kind": kind, "message": message, "url": url,
                                       "run_id": run_id, "source_id": source_id,
                                       "created_at": utc_now()})
+
+    # -- what the run asks and changes -------------------------------------------------------
+    # The questions and multi-row changes of collector.run (ingest and prepared_run); the run
+    # itself holds no SQL.
+    def stored_with_image_url(self, image_url: str | None,
+                              other_than: int) -> dict[str, Any] | None:
+        """Another item whose file came from ``image_url`` and is kept (stored or near
+        duplicate), as ``{"id", "file_sha256"}``, or None."""
+        rows = self.query(
+            "SELECT id, file_sha256 FROM items WHERE image_url = ? AND id != ? AND state IN "
+            "('stored', 'near_duplicate') AND file_sha256 IS NOT NULL LIMIT 1",
+            (image_url, other_than))
+        return rows[0] if rows else None
+
+    def gone_runs(self, item_id: int) -> int:
+        """In how many runs the server answered 404 or 410 to the item's image request."""
+        runs = self.scalar(
+            "SELECT count(DISTINCT run_id) FROM fetches WHERE item_id = ? AND purpose = 'image' "
+            "AND status IN (404, 410)", (item_id,))
+        return int(runs or 0)
+
+    def pass_file_to(self, sha256: str, old_id: int, new_id: int) -> None:
+        """``new_id`` becomes the item the file ``sha256`` belongs to, and the original of
+        every item that named ``old_id`` as its original (a take-over by listing order)."""
+        with self._lock, self._translate("update files and items"), self._write():
+            self._conn.execute("UPDATE files SET first_item_id = ? WHERE sha256 = ?",
+                               [new_id, sha256])
+            self._conn.execute("UPDATE items SET duplicate_of = ? WHERE duplicate_of = ?",
+                               [new_id, old_id])
+
+    def forget_file(self, sha256: str) -> None:
+        """Remove the files row of ``sha256`` and every item's link to it (a near copy the
+        recipe drops); the caller removes the stored file under a store intent."""
+        with self._lock, self._translate("update files and items"), self._write():
+            self._conn.execute("UPDATE items SET file_sha256 = NULL WHERE file_sha256 = ?",
+                               [sha256])
+            self._conn.execute("DELETE FROM files WHERE sha256 = ?", [sha256])
+
+    def mark_killed_runs(self) -> None:
+        """Runs still marked ``running`` end as ``killed: did not end cleanly`` (called with
+        the gather lock held: no run of this folder is going on)."""
+        with self._lock, self._translate("update runs"), self._write():
+            self._conn.execute("UPDATE runs SET outcome = 'killed: did not end cleanly' "
+                               "WHERE outcome = 'running'")

@@ -1,5 +1,5 @@
 """A small invented collection for the datasheet tests: a real gather over generated scans plus
-one web source written into the ledger the way collector/run/gather.py and the fetcher write it.
+one web source written into the ledger the way collector/run/ingest.py and the fetcher write it.
 
 Everything is fictional ("Fernhollow Field Society"); images are generated with numpy/Pillow.
 """

@@ -1,0 +1,386 @@
+"""What happens to one candidate: registered and its licence decided before any image byte is
+requested (:meth:`Ingest.admit`), then its bytes inspected, de-duplicated, stored and recorded
+(:meth:`Ingest.ingest_file`). Local scans and crops are copied into a temp file first
+(:meth:`Ingest.ingest_local`, regular files only).
+
+Which item is the original is decided by :mod:`collector.run.dedup`; this module looks up
+what it needs in the ledger and applies the answer. A new file is placed write-ahead: a store
+intent is committed before the file appears in the store and dropped in the transaction that
+adds its row, so crash recovery removes a stored file without a row only when an intent says
+it was being placed.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import errno
+import hashlib
+import os
+import stat
+import threading
+from collections.abc import Callable, Sequence
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any, BinaryIO
+
+from collector.checks.images import ImageFacts, inspect_image
+from collector.checks.licences import licence_allowed, normalise_licence, rights_conflict
+from collector.config.recipe import Recipe
+from collector.errors import ImageRejected, StoreError
+from collector.run import dedup
+from collector.run.dedup import Demote, Keep, NearCandidate, NearCopy, TakeOver
+from collector.run.record import RunRecord
+from collector.safe_text import shown_name
+from collector.storage.collection import Collection
+from collector.storage.hashindex import HashIndex, to_signed
+from collector.storage.ledger import Ledger
+from collector.storage.ledger_repair import RECOVERED_FLAG
+
+# States after which an item is not requested again.
+FINAL_STATES = frozenset({"stored", "duplicate", "near_duplicate", "rejected"})
+COPY_CHUNK = 1 << 20
+# "Not Found" / "Gone" (RFC 9110 sections 15.5.5, 15.5.11) in this many runs ends the retries.
+GONE_REASONS = frozenset({"http_404", "http_410"})
+GONE_RUNS = 3
+
+
+@dataclass
+class Job:
+    """One image to fetch for one item."""
+
+    item_id: int
+    url: str
+    spdx_id: str | None
+    secret_params: tuple[str, ...] = ()
+
+
+class NotARegularFile(OSError):
+    """A local file turned out to be a FIFO, socket, device or folder when it was opened."""
+
+
+def open_regular(path: Path) -> BinaryIO:
+    """Open a local file for reading only if it is a regular file: opened non-blocking (a
+    FIFO would otherwise block until a writer comes) and checked with fstat before any read."""
+    fd = os.open(path, os.O_RDONLY | os.O_NONBLOCK)
+    try:
+        mode = os.fstat(fd).st_mode
+        if not stat.S_ISREG(mode):
+            raise NotARegularFile(errno.EINVAL, "not a regular file (FIFO, socket, device or "
+                                                "folder); not read", str(path))
+        os.set_blocking(fd, True)
+        return os.fdopen(fd, "rb")
+    except BaseException:
+        os.close(fd)
+        raise
+
+
+def _explained(row: dict[str, Any] | None) -> bool:
+    """A files row that already belongs to an item (not one rebuild-ledger recovered)."""
+    return row is not None and not (row.get("first_item_id") is None
+                                    and RECOVERED_FLAG in (row.get("flags") or []))
+
+
+class Ingest:
+    """The item side of one run: admission, inspection, de-duplication, storing, recording.
+    Called from the listing threads and the host workers; thread-safe."""
+
+    def __init__(self, collection: Collection, recipe: Recipe, ledger: Ledger,
+                 record: RunRecord, source_ids: Sequence[int],
+                 on_stored: Callable[[], None] = lambda: None) -> None:
+        self.recipe, self.ledger, self.record = recipe, ledger, record
+        self.store = collection.store
+        self.index = HashIndex.from_ledger(ledger)
+        self._on_stored = on_stored
+        self._lock = threading.Lock()  # one de-duplication decision at a time
+        self._scan_sha: dict[tuple[int, str], str] = {}
+        self._item_source: dict[int, int] = {}
+        self._source_order = {sid: rank for rank, sid in enumerate(source_ids)}
+        everywhere = tuple(recipe.network.secret_params)
+        self._secret_params = {sid: (*(src.get("secret_params") or ()), *everywhere)
+                               for src, sid in zip(recipe.sources, source_ids, strict=True)}
+
+    # -- admission: before any byte is requested -----------------------------------------------
+    def admit(self, source_id: int, c: Any) -> Job | None:
+        """Record a candidate and decide what happens to it before anything is downloaded:
+        the image to fetch, or None when it was decided here (done, skipped, stored locally,
+        a duplicate by its image URL)."""
+        registered = self._register(source_id, c)
+        if registered is None:
+            return None
+        item_id, spdx_id, image_url = registered
+        ok, reason = licence_allowed(spdx_id, self.recipe.licences.allow,
+                                     self.recipe.licences.allow_unknown)
+        if not ok:
+            detail = (f"licence {c.licence_raw or c.licence_url or '(none)'!r} "
+                      + (f"is {spdx_id}, not in the allowlist" if spdx_id
+                         else "could not be recognised"))
+            self.record.finish(item_id, "skipped", reason, detail)
+            return None
+        if c.content is not None or c.local_path is not None:
+            self.ingest_local(source_id, item_id, c)
+            return None
+        if not c.image_url:
+            self.record.finish(item_id, "rejected", "no_image_url",
+                               "the source gave no image URL for this item")
+            return None
+        same = self.ledger.stored_with_image_url(image_url, item_id)
+        if same:
+            with self._lock:
+                verdict = dedup.exact_verdict(item_id, self.rank(item_id), same["id"],
+                                              self.rank(same["id"]))
+                if isinstance(verdict, TakeOver):
+                    self._take_over(verdict, same["file_sha256"], {})
+                else:
+                    self.record.finish(
+                        item_id, "duplicate", "exact_duplicate",
+                        "same image URL as an item already stored; not fetched again",
+                        file_sha256=same["file_sha256"], duplicate_of=same["id"])
+            return None
+        return Job(item_id, c.image_url, spdx_id, self._secret_params.get(source_id, ()))
+
+    def _register(self, source_id: int, c: Any) -> tuple[int, str | None, Any] | None:
+        """The candidate's item row, written with the secrets kept out: (item id, SPDX id,
+        image URL as recorded), or None when the item needs nothing more in this run."""
+        licence = normalise_licence(c.licence_raw, c.licence_url)
+        fields = {
+            "image_url": c.image_url, "page_url": c.page_url, "title": c.title,
+            "creator": c.creator, "licence_raw": c.licence_raw, "licence_url": c.licence_url,
+            "spdx_id": licence.spdx_id, "date": c.date, "metadata": c.metadata or None,
+            "crop_box": list(c.crop_box) if c.crop_box else None,
+            "local_path": shown_name(str(c.local_path)) if c.local_path else None,
+            "run_id": self.record.run_id,
+        }
+        # Servers echo API keys into the URLs and items they send back: keep them out of the
+        # ledger (the job still fetches the URL as given).
+        fields = self.record.scrubbed_fields(fields, self._secret_params.get(source_id, ()))
+        row = self.ledger.item_by_key(source_id, c.source_key)
+        if row and row["state"] in FINAL_STATES:
+            self.record.count("already_done")
+            if c.local_path and row.get("file_sha256"):
+                self._scan_sha[(source_id, c.source_key)] = row["file_sha256"]
+            return None
+        if row and self._gone_for_good(row):
+            self.record.count("given_up")
+            return None
+        if row:
+            item_id = row["id"]
+            self.ledger.update_item(item_id, **fields)
+        else:
+            item_id = self.ledger.add_item(source_id, c.source_key, fields)
+        self._item_source[item_id] = source_id
+        return item_id, licence.spdx_id, fields["image_url"]
+
+    def _gone_for_good(self, row: dict[str, Any]) -> bool:
+        """A failed item whose image the server said is gone (404/410) in GONE_RUNS runs is
+        not requested again: retrying a missing file every night only costs the archive."""
+        if row["state"] != "failed" or row["reason"] not in GONE_REASONS:
+            return False
+        return self.ledger.gone_runs(row["id"]) >= GONE_RUNS
+
+    def rank(self, item_id: int) -> dedup.Rank:
+        """The item's place in listing order (see :func:`collector.run.dedup.listing_rank`)."""
+        source_id = self._item_source.get(item_id)
+        if source_id is None:
+            source_id = (self.ledger.item(item_id) or {}).get("source_id")
+        return dedup.listing_rank(self._source_order, source_id, item_id)
+
+    # -- local files (scans and crops) ---------------------------------------------------------
+    def ingest_local(self, source_id: int, item_id: int, c: Any) -> None:
+        """Copy a scan (``c.local_path``, a regular file) or a crop (``c.content``) into a
+        temp file of the store, then ingest it; a file that cannot be read fails the item."""
+        fd, tmp = self.store.new_temp()
+        digest = hashlib.sha256()
+        try:
+            with os.fdopen(fd, "wb") as out:
+                if c.content is not None:
+                    out.write(c.content)
+                    digest.update(c.content)
+                else:
+                    with open_regular(c.local_path) as src:
+                        while chunk := src.read(COPY_CHUNK):
+                            out.write(chunk)
+                            digest.update(chunk)
+                out.flush()
+                os.fsync(out.fileno())
+        except OSError as exc:
+            tmp.unlink(missing_ok=True)
+            self._unreadable(item_id, c, exc)
+            return
+        sha = digest.hexdigest()
+        extra: dict[str, Any] = {}
+        if c.parent_key is not None:
+            extra["parent_sha256"] = self._scan_sha.get((source_id, c.parent_key))
+        else:
+            self._scan_sha[(source_id, c.source_key)] = sha
+        licence = normalise_licence(c.licence_raw, c.licence_url)
+        self.ingest_file(item_id, licence.spdx_id, tmp, sha,
+                         url=shown_name(str(c.local_path or "")), **extra)
+
+    def _unreadable(self, item_id: int, c: Any, exc: OSError) -> None:
+        """A local file that could not be copied fails its item; a full or broken store
+        (any other OSError) ends the run."""
+        shown = shown_name(str(c.local_path))
+        if isinstance(exc, FileNotFoundError):
+            self.record.finish(item_id, "failed", "file_missing", f"{shown}: {exc.strerror}")
+        elif isinstance(exc, NotARegularFile):
+            self.record.finish(item_id, "failed", "not_a_file", f"{shown}: {exc}")
+        elif exc.filename is not None and Path(exc.filename) == c.local_path:
+            self.record.finish(item_id, "failed", "unreadable_file", f"{shown}: {exc.strerror}")
+        else:
+            raise StoreError(f"cannot copy {shown} into the store: {exc}",
+                             errno=exc.errno) from exc
+
+    # -- ingest ------------------------------------------------------------------------------
+    def ingest_file(self, item_id: int, spdx_id: str | None, path: Path, sha: str, *,
+                    content_type: str | None = None, url: str | None = None,
+                    **extra: Any) -> None:
+        """Check a complete temp file and store it, or record why not. Always consumes it."""
+        try:
+            if _explained(self.ledger.file(sha)):
+                self._record_duplicate(item_id, sha, extra)
+                return
+            images = self.recipe.images
+            try:
+                facts = inspect_image(path, content_type=content_type, url=url,
+                                      max_pixels=images.max_pixels,
+                                      min_side=images.min_side,
+                                      min_aspect=images.min_aspect,
+                                      max_aspect=images.max_aspect, full_decode=False)
+            except ImageRejected as exc:
+                self.record.finish(item_id, "rejected", exc.reason, exc.detail, **extra)
+                return
+            with self._lock:
+                row = self.ledger.file(sha)
+                if _explained(row):
+                    self._record_duplicate(item_id, sha, extra)
+                    return
+                self._store_new(item_id, spdx_id, path, sha, facts, extra,
+                                recovered=row is not None)
+        finally:
+            with contextlib.suppress(OSError):
+                path.unlink(missing_ok=True)
+
+    def _record_duplicate(self, item_id: int, sha: str, extra: dict[str, Any]) -> None:
+        first = (self.ledger.file(sha) or {}).get("first_item_id")
+        verdict = dedup.exact_verdict(item_id, self.rank(item_id), first,
+                                      self.rank(first) if first is not None else None)
+        if isinstance(verdict, TakeOver):
+            self._take_over(verdict, sha, extra)
+            return
+        self.record.finish(item_id, "duplicate", "exact_duplicate",
+                           "the same bytes are already stored", file_sha256=sha,
+                           duplicate_of=verdict.original, **extra)
+
+    def _take_over(self, verdict: TakeOver, sha: str, extra: dict[str, Any]) -> None:
+        """Apply a :class:`~collector.run.dedup.TakeOver` of the file ``sha``."""
+        plan = dedup.take_over_plan(verdict.new_id, self.ledger.item(verdict.old_id) or {})
+        new = plan.new_item
+        with self.ledger.transaction():
+            self.record.finish(verdict.new_id, new["state"], new["reason"], new["detail"],
+                               file_sha256=sha, duplicate_of=new["duplicate_of"],
+                               near_distance=new["near_distance"],
+                               near_mirrored=new["near_mirrored"], **extra)
+            self.ledger.pass_file_to(sha, verdict.old_id, verdict.new_id)
+            self.ledger.update_item(verdict.old_id, **plan.old_item)
+        self.record.recount(plan.was, "duplicate")
+
+    def _near_verdict(self, item_id: int, sha: str, facts: ImageFacts,
+                      ) -> Keep | Demote | NearCopy:
+        """Look up the stored look-alikes of a new file and let dedup decide."""
+        near = [m for m in self.index.nearest(facts.phash, facts.phash_mirror,
+                                              self.recipe.images.near_distance)
+                if m.sha256 != sha]
+        candidates = []
+        for m in near:
+            first = (self.ledger.file(m.sha256) or {}).get("first_item_id")
+            # A recovered file without an item yet is nobody's original: it makes no item a
+            # near duplicate until a gather attaches it to the item that lists it.
+            if first is not None:
+                candidates.append(NearCandidate(m.sha256, m.distance, m.mirrored, first,
+                                                self.rank(first)))
+        best = dedup.closest(candidates)
+        original = self.ledger.item(best.original_id) if best is not None else None
+        return dedup.near_verdict(self.rank(item_id), best,
+                                  original["state"] if original else None,
+                                  drop=self.recipe.images.near_duplicates == "drop")
+
+    def _store_new(self, item_id: int, spdx_id: str | None, path: Path, sha: str,
+                   facts: ImageFacts, extra: dict[str, Any], *, recovered: bool = False) -> None:
+        """Store a new file, or attach ``item_id`` to a file registered by rebuild-ledger
+        (``recovered``: the bytes are already in the store, the row has no item yet)."""
+        flags = list(facts.flags)
+        conflict = rights_conflict(spdx_id, facts.rights)
+        if conflict:
+            flags.append("licence_conflict")
+        state, reason, detail = "stored", None, conflict
+        verdict = self._near_verdict(item_id, sha, facts)
+        if isinstance(verdict, NearCopy):
+            extra = {**extra, "duplicate_of": verdict.original_id,
+                     "near_distance": verdict.distance, "near_mirrored": verdict.mirrored}
+            state, reason, detail = "near_duplicate", "near_duplicate", verdict.detail
+            if not verdict.keep_file:
+                self.record.finish(item_id, state, reason, detail, **extra)
+                return
+        row = _file_row(path, facts, item_id, flags)
+        if recovered:
+            # The stored bytes are these bytes (same sha256): attach, do not store again.
+            with self.ledger.transaction():
+                self.ledger.update_file(sha, row)
+                self.record.finish(item_id, state, reason, detail, file_sha256=sha, **extra)
+        else:
+            self._place(path, sha, facts, row, item_id,
+                        lambda: self.record.finish(item_id, state, reason, detail,
+                                                   file_sha256=sha, **extra))
+        if isinstance(verdict, Demote):
+            self._demote(verdict, item_id)
+        self._on_stored()
+
+    def _place(self, path: Path, sha: str, facts: ImageFacts, row: dict[str, Any],
+               item_id: int, finish: Callable[[], None]) -> None:
+        """Move the temp file into the store and commit its row and the item's outcome.
+        Write-ahead: the intent is committed before the file appears in the store and
+        dropped in the transaction that adds its row, so recovery removes a stored file
+        without a row only when an intent says it was being placed."""
+        placing = self.store.find(sha) is None
+        if placing:
+            self.ledger.add_store_intent(sha, item_id)
+        self.store.adopt(path, sha, facts.ext, synced=True)
+        with self.ledger.transaction():
+            self.ledger.add_file({"sha256": sha, **row})
+            finish()
+            if placing:
+                self.ledger.drop_store_intent(sha)
+        self.index.add(sha, facts.phash)
+
+    def _demote(self, verdict: Demote, new_id: int) -> None:
+        """A stored original turns out to be a near copy of an earlier-listed item."""
+        drop = self.recipe.images.near_duplicates == "drop"
+        sha = verdict.match.sha256
+        with self.ledger.transaction():
+            self.ledger.update_item(verdict.original_id,
+                                    **dedup.demote_fields(new_id, verdict.match, drop=drop))
+            if drop:
+                self.ledger.forget_file(sha)
+                # Committed with the row's removal: a crash before the unlink below leaves
+                # a file that recovery may remove because an intent names it.
+                self.ledger.add_store_intent(sha, None)
+        if drop:
+            self.index.remove(sha)
+            stored = self.store.find(sha)
+            if stored is not None:
+                stored.unlink(missing_ok=True)
+            self.ledger.drop_store_intent(sha)
+        self.record.recount("stored", "near_duplicate")
+
+
+def _file_row(path: Path, facts: ImageFacts, item_id: int, flags: list[str]) -> dict[str, Any]:
+    """The files row of a new file (without its sha256)."""
+    return {
+        "size": path.stat().st_size, "ext": facts.ext, "format": facts.format,
+        "mime": facts.mime, "width": facts.width, "height": facts.height,
+        "mode": facts.mode, "bit_depth": facts.bit_depth, "alpha": facts.alpha,
+        "frames": facts.frames, "orientation": facts.orientation,
+        "phash": to_signed(facts.phash), "phash_mirror": to_signed(facts.phash_mirror),
+        "hash_algo": facts.hash_algo, "first_item_id": item_id, "exif": facts.exif,
+        "rights": facts.rights, "flags": flags,
+    }
