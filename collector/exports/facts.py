@@ -47,7 +47,7 @@ class LicenceFacts(TypedDict):
 
     spdx_id: str
     files: int
-    conditions: Any
+    conditions: list[str]
     deed_url: str | None
 
 
