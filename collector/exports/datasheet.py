@@ -8,8 +8,10 @@ words), ``croissant.json`` (MLCommons Croissant 1.0 + RAI 1.0, see
 file: the Creative Commons attribution practice). With ``with_images`` the accepted files are
 hard-linked (or copied) into ``images/`` so the folder describes itself.
 
-Every number is computed by :func:`_facts` with SQL over the ledger and returned as plain
-data; the renderers (:mod:`collector.exports.datasheet_render`) only format those numbers.
+Every number is gathered by :func:`_facts` from the ledger's read queries
+(:mod:`collector.storage.queries`, over a read-only :class:`~collector.storage.ledger.Ledger`)
+into typed plain data (:class:`collector.exports.facts.DatasheetFacts`); the renderers
+(:mod:`collector.exports.datasheet_render`) only format those numbers.
 Questions only
 the curator can answer (:mod:`collector.exports.datasheet_questions`) come from an answers file or
 are shown as "Not answered by the curator"; nothing is made up. Rows are streamed from
