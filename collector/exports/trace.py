@@ -460,10 +460,9 @@ class Tracer:
         r = queries.last_image_fetch(self.ledger, item_id)
         if r is None:
             return None
-        return FetchFacts(url=r["url"], status=r["status"],
-                          fetched_at=r["ended_at"] or r["started_at"], etag=r["etag"],
-                          last_modified=r["last_modified"], robots_verdict=r["robots_verdict"],
-                          robots_rule=r["robots_rule"], run_id=r["run_id"])
+        return FetchFacts(url=r.url, status=r.status, fetched_at=r.fetched_at, etag=r.etag,
+                          last_modified=r.last_modified, robots_verdict=r.robots_verdict,
+                          robots_rule=r.robots_rule, run_id=r.run_id)
 
     def _item(self, raw: dict[str, Any], *, with_scan: bool = True) -> ItemRecord:
         row = decode_row(raw) or {}

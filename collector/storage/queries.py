@@ -147,12 +147,26 @@ def source_names(ledger: Ledger) -> dict[int, tuple[str, str]]:
     return {r[0]: (r[1], r[2]) for r in ledger.rows("SELECT id, name, kind FROM sources")}
 
 
-def last_image_fetch(ledger: Ledger, item_id: int) -> dict[str, Any] | None:
+class ImageFetch(NamedTuple):
+    """The request that brought an item's image: what was asked, what robots.txt said."""
+
+    url: str | None
+    status: int | None
+    fetched_at: str | None  # when the answer ended (or started, if it never ended)
+    etag: str | None
+    last_modified: str | None
+    robots_verdict: str | None
+    robots_rule: str | None
+    run_id: int | None
+
+
+def last_image_fetch(ledger: Ledger, item_id: int) -> ImageFetch | None:
     """The newest successful (200) image request of an item, or None."""
-    rows = ledger.query(
-        "SELECT * FROM fetches WHERE item_id = ? AND purpose = 'image' AND status = 200 "
-        "ORDER BY id DESC LIMIT 1", (item_id,))
-    return rows[0] if rows else None
+    rows = ledger.rows(
+        "SELECT url, status, coalesce(nullif(ended_at, ''), started_at), etag, last_modified, "
+        "robots_verdict, robots_rule, run_id FROM fetches WHERE item_id = ? "
+        "AND purpose = 'image' AND status = 200 ORDER BY id DESC LIMIT 1", (item_id,))
+    return ImageFetch(*rows[0]) if rows else None
 
 
 # --- the near-duplicate hash index --------------------------------------------------------------
