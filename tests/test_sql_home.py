@@ -94,3 +94,19 @@ def test_sql_lives_only_in_the_ledger_and_the_queries_module() -> None:
              for path in python_files() if path.relative_to(ROOT).as_posix() not in SQL_HOMES
              for line, text in sql_strings(path)]
     assert not found, "SQL outside ledger.py/queries.py:\n" + "\n".join(found)
+
+
+def test_only_the_ledger_imports_sqlite() -> None:
+    """Only ledger.py imports sqlite3 or sqlite_utils: no other module can meet a raw
+    sqlite3.Error, so the ledger's one translation is the only one."""
+    drivers = {"sqlite3", "sqlite_utils"}
+    found = []
+    for path in python_files():
+        name = path.relative_to(ROOT).as_posix()
+        for node in ast.walk(ast.parse(path.read_text(encoding="utf-8"))):
+            modules = ([a.name for a in node.names] if isinstance(node, ast.Import)
+                       else [node.module or ""] if isinstance(node, ast.ImportFrom) else [])
+            if name != "collector/storage/ledger.py" and drivers & {
+                    m.split(".")[0] for m in modules}:
+                found.append(f"{name}:{node.lineno}")
+    assert not found, found
