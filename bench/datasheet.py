@@ -30,7 +30,8 @@ def build(root: Path, n: int) -> None:
     """A collection whose ledger holds ``n`` items, their fetches and files (no image bytes)."""
     from collector.storage.collection import init_collection
 
-    init_collection(root, contact="bench@fernhollow.example", name="Synthetic leaves")
+    collection = init_collection(root, contact="bench@fernhollow.example",
+                                 name="Synthetic leaves")
     rng = random.Random(8)
     conn = sqlite3.connect(root / "ledger.sqlite")
     conn.execute("INSERT INTO runs (started_at, ended_at, recipe_sha256, outcome, tool_version) "
@@ -69,6 +70,11 @@ def build(root: Path, n: int) -> None:
                      "first_item_id, stored_at, flags) VALUES (?,?,?,?,?,?,?,?,?,?,?)", files)
     conn.commit()
     conn.close()
+    # One placeholder in the store: a ledger of stored files beside an empty files/ folder
+    # is refused (an unmounted disk); no image bytes are needed to export metadata.
+    placeholder = collection.store.path_for(files[0][0], files[0][2])
+    placeholder.parent.mkdir(parents=True, exist_ok=True)
+    placeholder.write_bytes(b"")
 
 
 def one(n: int) -> None:

@@ -17,6 +17,7 @@ from collector.errors import CollectionError, CollectorError
 from collector.run.gather import gather
 from collector.run.record import Progress
 from collector.run.scheduling import RunResult
+from collector.storage import queries
 from collector.storage.collection import Collection, init_collection, open_collection
 
 DEMO_PORT = 8642
@@ -66,11 +67,8 @@ def make_resized_copy(source: Path, target: Path) -> Path:
 def pick_photo(collection: Collection) -> Path | None:
     """A stored JPEG photo from the web sources, to trace and to copy."""
     with collection.ledger(readonly=True) as ledger:
-        rows = ledger.query(
-            "SELECT f.sha256 FROM files f JOIN items i ON i.id = f.first_item_id "
-            "WHERE f.format = 'JPEG' AND i.state = 'stored' AND i.image_url IS NOT NULL "
-            "AND f.width >= 256 ORDER BY i.id LIMIT 1")
-    return collection.store.find(rows[0]["sha256"]) if rows else None
+        sha256 = queries.stored_jpeg_photo(ledger)
+    return collection.store.find(sha256) if sha256 else None
 
 
 def run_demo(folder: Path, *, fresh: bool = False, port: int = DEMO_PORT,

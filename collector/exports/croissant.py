@@ -30,7 +30,10 @@ from __future__ import annotations
 
 import re
 from datetime import datetime
-from typing import Any
+from typing import TYPE_CHECKING, Any
+
+if TYPE_CHECKING:
+    from collector.exports.facts import DatasheetFacts
 
 CROISSANT_1_0 = "http://mlcommons.org/croissant/1.0"
 RAI_1_0 = "http://mlcommons.org/croissant/RAI/1.0"
@@ -128,7 +131,7 @@ def _counts_text(pairs: dict[str, int]) -> str:
     return ", ".join(f"{k} {v}" for k, v in pairs.items()) or "none"
 
 
-def build_croissant(facts: dict[str, Any], answers: dict[str, str]) -> dict[str, Any]:
+def build_croissant(facts: DatasheetFacts, answers: dict[str, str]) -> dict[str, Any]:
     """The Croissant JSON-LD document for one export."""
     coll = facts["collection"]
     release = facts["release"]
@@ -195,7 +198,7 @@ def build_croissant(facts: dict[str, Any], answers: dict[str, str]) -> dict[str,
     return doc
 
 
-def _rai(facts: dict[str, Any], answers: dict[str, str]) -> dict[str, Any]:
+def _rai(facts: DatasheetFacts, answers: dict[str, str]) -> dict[str, Any]:
     """The RAI 1.0 data-collection properties, drafted from the ledger facts."""
     items, acc, req = facts["items"], facts["accepted"], facts["requests"]
     release, dup, flagged = facts["release"], facts["duplicates"], facts["flagged"]

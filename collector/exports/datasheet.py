@@ -8,8 +8,10 @@ words), ``croissant.json`` (MLCommons Croissant 1.0 + RAI 1.0, see
 file: the Creative Commons attribution practice). With ``with_images`` the accepted files are
 hard-linked (or copied) into ``images/`` so the folder describes itself.
 
-Every number is computed by :func:`_facts` with SQL over the ledger and returned as plain
-data; the renderers (:mod:`collector.exports.datasheet_render`) only format those numbers.
+Every number is gathered by :func:`_facts` from the ledger's read queries
+(:mod:`collector.storage.queries`, over a read-only :class:`~collector.storage.ledger.Ledger`)
+into typed plain data (:class:`collector.exports.facts.DatasheetFacts`); the renderers
+(:mod:`collector.exports.datasheet_render`) only format those numbers.
 Questions only
 the curator can answer (:mod:`collector.exports.datasheet_questions`) come from an answers file or
 are shown as "Not answered by the curator"; nothing is made up. Rows are streamed from
@@ -24,30 +26,31 @@ import hashlib
 import json
 import os
 import shutil
-import sqlite3
 import tempfile
 from collections.abc import Iterator
 from dataclasses import asdict, dataclass, field
 from datetime import UTC, datetime
 from pathlib import Path
-from typing import Any
+from typing import Any, TypedDict
 
 from collector import __version__
 from collector.checks.licences import licence_allowed, licence_conditions, licence_deed_url
 from collector.config.recipe import Recipe
-from collector.errors import CollectionError, CollectorError, LedgerError
+from collector.errors import CollectionError, LedgerError, LedgerUnusable
 from collector.exports.datasheet_questions import load_answers
+from collector.exports.facts import DatasheetFacts, ResolutionBins, Timeline
 from collector.safe_text import csv_cell, csv_row
-from collector.urls import host_key
+from collector.storage import queries
+from collector.storage.ledger import Ledger
+from collector.storage.queries import Timeframe
 
-ACCEPTED_STATES = ("stored", "near_duplicate")
 # Flags from collector.checks.images that point at personal data (GPS position, camera serial
 # number,
 # camera owner's name); "licence_conflict" comes from collector.run.ingest when embedded rights
 # metadata contradicts the declared licence.
+LOCAL_HOST = queries.LOCAL_HOST  # how files read from a local folder are counted by host
 PERSONAL_FLAGS = ("gps", "camera_serial", "owner_name")
 CONFLICT_FLAG = "licence_conflict"
-LOCAL_HOST = "(local files)"
 
 # The files this export writes; --overwrite replaces only these (and files under images/).
 OUR_FILES = ("datasheet.md", "datasheet.html", "croissant.json", "provenance.csv",
@@ -64,171 +67,59 @@ ATTRIBUTION_COLUMNS = ("file_name", "title", "author", "source", "licence", "lic
 
 
 # --- facts from the ledger -------------------------------------------------------------------
-def _host_of(url: str | None) -> str:
-    if not url:
-        return LOCAL_HOST
-    try:
-        return host_key(url)
-    except CollectorError:
-        return "?"
-
-
-def _connect(ledger_path: Path) -> sqlite3.Connection:
-    """A read-only connection of our own, with the host_of() SQL function."""
-    conn = sqlite3.connect(f"file:{ledger_path}?mode=ro", uri=True)
-    conn.create_function("host_of", 1, _host_of, deterministic=True)
-    return conn
-
-
-_ACCEPTED_FROM = (
-    "FROM files f JOIN items i ON i.id = f.first_item_id AND i.file_sha256 = f.sha256 "
-    "JOIN sources s ON s.id = i.source_id "
-    f"WHERE i.state IN ({', '.join(repr(s) for s in ACCEPTED_STATES)})"
-)
-
-
-def _pairs(conn: sqlite3.Connection, sql: str, params: tuple[Any, ...] = ()) -> dict[str, int]:
-    return {str(k): int(v) for k, v in conn.execute(sql, params)}
-
-
-def _one(conn: sqlite3.Connection, sql: str, params: tuple[Any, ...] = ()) -> Any:
-    row = conn.execute(sql, params).fetchone()
-    return None if row is None else row[0]
-
-
-def _median(conn: sqlite3.Connection, column: str) -> float | None:
-    """The median (mean of the two middle values for an even count), computed in SQL."""
-    n = _one(conn, f"SELECT count({column}) {_ACCEPTED_FROM}")
-    if not n:
-        return None
-    value = _one(conn, f"SELECT avg(v) FROM (SELECT {column} AS v {_ACCEPTED_FROM} "
-                       f"AND {column} IS NOT NULL ORDER BY v LIMIT ? OFFSET ?)",
-                 (2 - n % 2, (n - 1) // 2))
-    return float(value)
-
-
-def _facts(conn: sqlite3.Connection, recipe: Recipe, now: str) -> dict[str, Any]:
-    f: dict[str, Any] = {"generated_at": now, "tool_version": __version__}
-    f["collection"] = {"name": recipe.collection.name,
+def _facts(ledger: Ledger, recipe: Recipe, now: str) -> DatasheetFacts:
+    """Every number of the datasheet: ledger reads from :mod:`collector.storage.queries`,
+    the rest from the recipe."""
+    items = queries.item_facts(ledger)
+    acc = queries.accepted_facts(ledger)
+    frame = queries.timeframe(ledger)
+    return {
+        "generated_at": now, "tool_version": __version__,
+        "collection": {"name": recipe.collection.name,
                        "description": recipe.collection.description,
                        "curator": recipe.collection.curator,
-                       "contact": recipe.contact, "product_token": recipe.product_token}
-    items: dict[str, Any] = {
-        "total": _one(conn, "SELECT count(*) FROM items") or 0,
-        "by_state": _pairs(conn, "SELECT state, count(*) FROM items GROUP BY state "
-                                 "ORDER BY count(*) DESC, state"),
-        "by_reason": _pairs(conn, "SELECT state || '/' || reason, count(*) FROM items "
-                                  "WHERE reason IS NOT NULL GROUP BY state, reason "
-                                  "ORDER BY state, reason"),
+                       "contact": recipe.contact, "product_token": recipe.product_token},
+        "items": items, "accepted": acc, "missing": queries.missing_facts(ledger),
+        "flags": queries.flag_counts(ledger),
+        "flagged": queries.flagged_facts(ledger, PERSONAL_FLAGS, CONFLICT_FLAG),
+        "duplicates": {
+            "exact": items["by_state"].get("duplicate", 0), "near_kept": acc["near_kept"],
+            "near_dropped": queries.near_dropped(ledger),
+            "policy": recipe.images.near_duplicates,
+            "near_distance": recipe.images.near_distance,
+        },
+        "licences": [
+            {"spdx_id": spdx, "files": n,
+             "conditions": licence_conditions(None if spdx == "unknown" else spdx),
+             "deed_url": licence_deed_url(None if spdx == "unknown" else spdx)}
+            for spdx, n in acc["by_licence"].items()],
+        "timeframe": frame,
+        "requests": queries.request_facts(ledger),
+        "hosts": queries.host_facts(ledger),
+        "resolution_bins": _resolution_bins(ledger, acc["width"]["max"], acc["height"]["max"]),
+        "timeline": _timeline(ledger, frame),
+        "sources": [{"name": s.name, "kind": s.kind, "items": s.items, "accepted": s.accepted,
+                     **_kind_facts(s.kind)} for s in queries.source_counts(ledger)],
+        "runs": queries.run_facts(ledger),
+        "notes": queries.note_counts(ledger),
+        "policy": {
+            "budgets": {k: getattr(recipe.budgets, k) for k in (
+                "min_interval", "requests_per_hour", "bytes_per_hour", "max_connections",
+                "max_attempts", "max_retry_after")},
+            "licence_allow": list(recipe.licences.allow),
+            "allow_unknown": recipe.licences.allow_unknown,
+            "images": asdict(recipe.images),
+            "max_image_bytes": recipe.network.max_image_bytes,
+        },
     }
-    f["items"] = items
-    acc: dict[str, Any] = {
-        "files": _one(conn, f"SELECT count(*) {_ACCEPTED_FROM}") or 0,
-        "bytes": _one(conn, f"SELECT coalesce(sum(f.size), 0) {_ACCEPTED_FROM}") or 0,
-        "formats": _pairs(conn, f"SELECT f.format, count(*) {_ACCEPTED_FROM} "
-                                "GROUP BY f.format ORDER BY count(*) DESC, f.format"),
-        "modes": _pairs(conn, f"SELECT f.mode, count(*) {_ACCEPTED_FROM} "
-                              "GROUP BY f.mode ORDER BY count(*) DESC, f.mode"),
-        "by_licence": _pairs(conn, f"SELECT coalesce(i.spdx_id, 'unknown'), count(*) "
-                                   f"{_ACCEPTED_FROM} GROUP BY 1 ORDER BY 2 DESC, 1"),
-        "by_source": _pairs(conn, f"SELECT s.name, count(*) {_ACCEPTED_FROM} "
-                                  "GROUP BY s.name ORDER BY 2 DESC, 1"),
-        "by_host": _pairs(conn, f"SELECT host_of(i.image_url), count(*) {_ACCEPTED_FROM} "
-                                "GROUP BY 1 ORDER BY 2 DESC, 1"),
-        "stored": _one(conn, f"SELECT count(*) {_ACCEPTED_FROM} AND i.state = 'stored'") or 0,
-        "near_kept": _one(conn, f"SELECT count(*) {_ACCEPTED_FROM} "
-                                "AND i.state = 'near_duplicate'") or 0,
-        "crops": _one(conn, f"SELECT count(*) {_ACCEPTED_FROM} "
-                            "AND i.parent_sha256 IS NOT NULL") or 0,
-    }
-    for dim in ("width", "height"):
-        lo, hi = conn.execute(f"SELECT min(f.{dim}), max(f.{dim}) {_ACCEPTED_FROM}").fetchone()
-        acc[dim] = {"min": lo, "median": _median(conn, f"f.{dim}"), "max": hi}
-    f["accepted"] = acc
-    f["missing"] = {
-        "no_title": _one(conn, f"SELECT count(*) {_ACCEPTED_FROM} "
-                               "AND coalesce(trim(i.title), '') = ''") or 0,
-        "no_creator": _one(conn, f"SELECT count(*) {_ACCEPTED_FROM} "
-                                 "AND coalesce(trim(i.creator), '') = ''") or 0,
-        "no_licence": _one(conn, f"SELECT count(*) {_ACCEPTED_FROM} "
-                                 "AND i.spdx_id IS NULL") or 0,
-        "no_page_url": _one(conn, f"SELECT count(*) {_ACCEPTED_FROM} "
-                                  "AND coalesce(i.page_url, '') = ''") or 0,
-        "no_date": _one(conn, f"SELECT count(*) {_ACCEPTED_FROM} "
-                              "AND coalesce(i.date, '') = ''") or 0,
-    }
-    f["flags"] = _pairs(conn, "SELECT CASE WHEN instr(j.value, ':') > 0 THEN "
-                              "substr(j.value, 1, instr(j.value, ':') - 1) ELSE j.value END, "
-                              f"count(*) {_ACCEPTED_FROM.replace('FROM files f', 'FROM files f, json_each(f.flags) j', 1)} "  # noqa: E501
-                              "GROUP BY 1 ORDER BY 2 DESC, 1")
-    personal = ", ".join(repr(p) for p in PERSONAL_FLAGS)
-    f["flagged"] = {
-        "personal": _one(conn, f"SELECT count(*) {_ACCEPTED_FROM} AND EXISTS (SELECT 1 FROM "
-                               f"json_each(f.flags) WHERE value IN ({personal}))") or 0,
-        "conflict": _one(conn, f"SELECT count(*) {_ACCEPTED_FROM} AND EXISTS (SELECT 1 FROM "
-                               f"json_each(f.flags) WHERE value = '{CONFLICT_FLAG}')") or 0,
-    }
-    f["duplicates"] = {
-        "exact": items["by_state"].get("duplicate", 0),
-        "near_kept": acc["near_kept"],
-        "near_dropped": _one(conn, "SELECT count(*) FROM items WHERE state = 'near_duplicate' "
-                                   "AND file_sha256 IS NULL") or 0,
-        "policy": recipe.images.near_duplicates,
-        "near_distance": recipe.images.near_distance,
-    }
-    f["licences"] = [
-        {"spdx_id": spdx, "files": n,
-         "conditions": licence_conditions(None if spdx == "unknown" else spdx),
-         "deed_url": licence_deed_url(None if spdx == "unknown" else spdx)}
-        for spdx, n in acc["by_licence"].items()]
-    f["timeframe"] = _timeframe(conn)
-    f["requests"] = {
-        "total": _one(conn, "SELECT count(*) FROM fetches WHERE status IS NOT NULL") or 0,
-        "attempts": _one(conn, "SELECT count(*) FROM fetches") or 0,
-        "status_429": _one(conn, "SELECT count(*) FROM fetches WHERE status = 429") or 0,
-        "status_503": _one(conn, "SELECT count(*) FROM fetches WHERE status = 503") or 0,
-        "errors": _one(conn, "SELECT count(*) FROM fetches WHERE error IS NOT NULL") or 0,
-        "robots_disallowed": _one(conn, "SELECT count(*) FROM fetches "
-                                        "WHERE robots_verdict = 'disallowed'") or 0,
-        "bytes": _one(conn, "SELECT coalesce(sum(bytes), 0) FROM fetches") or 0,
-        "by_purpose": _pairs(conn, "SELECT coalesce(purpose, '?'), count(*) FROM fetches "
-                                   "GROUP BY 1 ORDER BY 2 DESC, 1"),
-    }
-    f["hosts"] = _hosts(conn)
-    f["resolution_bins"] = _resolution_bins(conn, acc["width"]["max"], acc["height"]["max"])
-    f["timeline"] = _timeline(conn, f["timeframe"])
-    f["sources"] = [
-        {"name": name, "kind": kind, "items": n_items or 0, "accepted": n_acc or 0,
-         **_kind_facts(kind)}
-        for name, kind, n_items, n_acc in conn.execute(
-            "SELECT s.name, s.kind, (SELECT count(*) FROM items i WHERE i.source_id = s.id), "
-            "(SELECT count(*) FROM items i JOIN files f ON f.first_item_id = i.id "
-            " AND f.sha256 = i.file_sha256 WHERE i.source_id = s.id AND i.state IN "
-            "('stored', 'near_duplicate')) FROM sources s ORDER BY s.name")]
-    runs = conn.execute("SELECT count(*), min(started_at), max(coalesce(ended_at, started_at)) "
-                        "FROM runs").fetchone()
-    f["runs"] = {
-        "count": runs[0] or 0, "first_started": runs[1], "last_ended": runs[2],
-        "tool_versions": [r[0] for r in conn.execute(
-            "SELECT DISTINCT tool_version FROM runs WHERE tool_version IS NOT NULL ORDER BY 1")],
-        "recipes": _one(conn, "SELECT count(DISTINCT recipe_sha256) FROM runs") or 0,
-        "outcomes": _pairs(conn, "SELECT outcome, count(*) FROM runs GROUP BY outcome "
-                                 "ORDER BY 2 DESC, 1"),
-    }
-    f["notes"] = _pairs(conn, "SELECT kind, count(*) FROM notes GROUP BY kind ORDER BY 2 DESC")
-    f["policy"] = {
-        "budgets": {k: getattr(recipe.budgets, k) for k in (
-            "min_interval", "requests_per_hour", "bytes_per_hour", "max_connections",
-            "max_attempts", "max_retry_after")},
-        "licence_allow": list(recipe.licences.allow),
-        "allow_unknown": recipe.licences.allow_unknown,
-        "images": asdict(recipe.images),
-        "max_image_bytes": recipe.network.max_image_bytes,
-    }
-    return f
 
 
-def _kind_facts(kind: str) -> dict[str, str]:
+class _KindFacts(TypedDict):
+    mechanism: str
+    collection_type: str
+
+
+def _kind_facts(kind: str) -> _KindFacts:
     """How a source kind obtains items (a phrase) and its Croissant RAI collection type, from
     the kind itself; a kind that is no longer installed is named as it is, type "Others"."""
     from collector import sources
@@ -239,30 +130,16 @@ def _kind_facts(kind: str) -> dict[str, str]:
     return {"mechanism": found.mechanism, "collection_type": found.collection_type}
 
 
-def _timeframe(conn: sqlite3.Connection) -> dict[str, str | None]:
-    """First and last moment of gathering: request starts and file-store times."""
-    row = conn.execute(
-        "SELECT min(t), max(t) FROM (SELECT started_at AS t FROM fetches "
-        "WHERE started_at IS NOT NULL UNION ALL SELECT stored_at FROM files "
-        "WHERE stored_at IS NOT NULL)").fetchone()
-    return {"start": row[0], "end": row[1]}
-
-
-def _resolution_bins(conn: sqlite3.Connection, max_w: int | None,
-                     max_h: int | None) -> dict[str, Any]:
+def _resolution_bins(ledger: Ledger, max_w: int | None, max_h: int | None) -> ResolutionBins:
     """Accepted files counted on a grid of width x height cells (about 30 per axis)."""
     top = max(max_w or 0, max_h or 0)
     step = 1
     while top / step > 30:
         step *= 2
-    cells = [[w, h, n] for w, h, n in conn.execute(
-        f"SELECT (f.width / ?) * ?, (f.height / ?) * ?, count(*) {_ACCEPTED_FROM} "
-        "AND f.width IS NOT NULL AND f.height IS NOT NULL GROUP BY 1, 2 ORDER BY 1, 2",
-        (step, step, step, step))]
-    return {"step": step, "cells": cells}
+    return {"step": step, "cells": queries.resolution_cells(ledger, step)}
 
 
-def _timeline(conn: sqlite3.Connection, frame: dict[str, str | None]) -> dict[str, Any]:
+def _timeline(ledger: Ledger, frame: Timeframe) -> Timeline:
     """Requests and stored files per second, minute, hour or day (by the time frame's length)."""
     unit, width = "day", 10
     if frame["start"] and frame["end"]:
@@ -277,34 +154,8 @@ def _timeline(conn: sqlite3.Connection, frame: dict[str, str | None]) -> dict[st
             unit, width = "minute", 16
         elif span is not None and span.total_seconds() <= 4 * 86400:
             unit, width = "hour", 13
-    return {
-        "unit": unit,
-        "requests": _pairs(conn, f"SELECT substr(started_at, 1, {width}), count(*) FROM "
-                                 "fetches WHERE started_at IS NOT NULL GROUP BY 1 ORDER BY 1"),
-        "stored": _pairs(conn, f"SELECT substr(f.stored_at, 1, {width}), count(*) "
-                               f"{_ACCEPTED_FROM} AND f.stored_at IS NOT NULL "
-                               "GROUP BY 1 ORDER BY 1"),
-    }
-
-
-def _hosts(conn: sqlite3.Connection) -> list[dict[str, Any]]:
-    out = []
-    for row in conn.execute(
-            "SELECT h.host, h.robots_url, h.robots_status, h.robots_fetched_at, "
-            "h.effective_budget, (SELECT count(*) FROM fetches x WHERE x.host = h.host AND "
-            "x.status IS NOT NULL), (SELECT count(*) FROM fetches x WHERE x.host = h.host AND "
-            "x.status = 429), (SELECT count(*) FROM fetches x WHERE x.host = h.host AND "
-            "x.status = 503), (SELECT count(*) FROM fetches x WHERE x.host = h.host AND "
-            "x.robots_verdict = 'disallowed') FROM hosts h ORDER BY h.host"):
-        try:
-            budget = json.loads(row[4]) if row[4] else {}
-        except ValueError:
-            budget = {}
-        out.append({"host": row[0], "robots_url": row[1], "robots_status": row[2],
-                    "robots_fetched_at": row[3], "effective_budget": budget,
-                    "requests": row[5], "status_429": row[6], "status_503": row[7],
-                    "robots_disallowed": row[8]})
-    return out
+    return {"unit": unit, "requests": queries.requests_per(ledger, width),
+            "stored": queries.stored_per(ledger, width)}
 
 
 # --- the release: CSVs and images ------------------------------------------------------------
@@ -328,20 +179,13 @@ def file_name_for(sha256: str, ext: str) -> str:
     return f"{sha256[:16]}.{ext}"
 
 
-def iter_release_rows(conn: sqlite3.Connection, recipe: Recipe, counts: ReleaseCounts, *,
+def iter_release_rows(ledger: Ledger, recipe: Recipe, counts: ReleaseCounts, *,
                       exclude_flagged: bool) -> Iterator[dict[str, Any]]:
     """Stream the accepted files that pass the licence policy (and the flag filter).
 
     Counts what is left out; the caller counts what it keeps."""
     allowed_cache: dict[str | None, bool] = {}
-    cur = conn.execute(
-        "SELECT f.sha256, f.ext, f.mime, f.format, f.width, f.height, f.size, f.flags, "
-        "f.stored_at, s.name, i.source_key, i.page_url, i.image_url, i.title, i.creator, "
-        "i.licence_raw, i.spdx_id, i.licence_url, "
-        "(SELECT max(x.started_at) FROM fetches x WHERE x.item_id = i.id AND "
-        " x.purpose = 'image' AND x.status BETWEEN 200 AND 299) "
-        f"{_ACCEPTED_FROM} ORDER BY f.sha256")
-    for r in cur:
+    for r in queries.release_rows(ledger):
         (sha, ext, mime, fmt, width, height, size, flags_json, stored_at, source, key,
          page_url, image_url, title, creator, licence_raw, spdx, licence_url, fetched_at) = r
         if spdx not in allowed_cache:
@@ -452,12 +296,12 @@ class ExportResult:
 
     out: Path
     counts: ReleaseCounts
-    facts: dict[str, Any]
+    facts: DatasheetFacts
     croissant_problems: list[str]
     files: list[Path]
 
 
-def write_release(conn: sqlite3.Connection, recipe: Recipe, out: Path, store_root: Path, *,
+def write_release(ledger: Ledger, recipe: Recipe, out: Path, store_root: Path, *,
                   with_images: bool, exclude_flagged: bool) -> tuple[ReleaseCounts, str]:
     """Stream provenance.csv and attribution.csv (and link images/); returns the counts and
     the sha256 of provenance.csv."""
@@ -477,7 +321,7 @@ def write_release(conn: sqlite3.Connection, recipe: Recipe, out: Path, store_roo
         attr = csv.writer(attr_fh)
         prov.writeheader()
         attr.writerow(ATTRIBUTION_COLUMNS)
-        for row in iter_release_rows(conn, recipe, counts, exclude_flagged=exclude_flagged):
+        for row in iter_release_rows(ledger, recipe, counts, exclude_flagged=exclude_flagged):
             if with_images:
                 src = store.path_for(row["sha256"], row["_ext"])
                 if not src.is_file():
@@ -521,20 +365,18 @@ def export_datasheet(root: Path, *, out: Path | None = None, answers_path: Path 
     out = out if out is not None else root / "datasheet"
     check_out_folder(root, out, overwrite=overwrite)
     out.mkdir(parents=True, exist_ok=True)
-    try:
-        conn = _connect(collection.ledger_path)
+    with collection.ledger(readonly=True) as ledger:
         try:
-            counts, prov_sha = write_release(conn, recipe, out, collection.store.root,
+            counts, prov_sha = write_release(ledger, recipe, out, collection.store.root,
                                              with_images=with_images,
                                              exclude_flagged=exclude_flagged)
-            facts = _facts(conn, recipe, now or datetime.now(UTC).isoformat(timespec="seconds")
-                           .replace("+00:00", "Z"))
-        finally:
-            conn.close()
-    except sqlite3.Error as exc:  # translated once, here: the CLI shows one Error paragraph
-        raise LedgerError(f"cannot read the ledger {collection.ledger_path}: {exc}. If the "
-                          "file is damaged, restore a backup of it (see README, "
-                          "Troubleshooting)") from exc
+            facts = _facts(ledger, recipe, now or datetime.now(UTC)
+                           .isoformat(timespec="seconds").replace("+00:00", "Z"))
+        except LedgerUnusable:
+            raise
+        except LedgerError as exc:  # the ledger translated the sqlite error; add the way out
+            raise LedgerError(f"{exc}. If the file is damaged, restore a backup of it (see "
+                              "README, Troubleshooting)") from exc
     facts["release"] = {
         "files": counts.files, "bytes": counts.bytes, "with_images": with_images,
         "exclude_flagged": exclude_flagged, "excluded_licence": counts.excluded_licence,

@@ -13,9 +13,12 @@ from __future__ import annotations
 import html
 from collections.abc import Callable
 from dataclasses import dataclass, field
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 from collector.exports.datasheet_questions import SECTIONS, Question
+
+if TYPE_CHECKING:
+    from collector.exports.facts import DatasheetFacts
 
 Block = tuple[Any, ...]  # ("p", text) | ("list", [text]) | ("table", headers, rows)
 
@@ -50,7 +53,7 @@ def _table(headers: list[str], pairs: dict[str, Any]) -> Block:
     return ("table", headers, [[k, v] for k, v in pairs.items()])
 
 
-def _dims(f: dict[str, Any]) -> Block:
+def _dims(f: DatasheetFacts) -> Block:
     acc = f["accepted"]
     rows = []
     for dim in ("width", "height"):
@@ -60,7 +63,7 @@ def _dims(f: dict[str, Any]) -> Block:
     return ("table", ["dimension (px)", "min", "median", "max"], rows)
 
 
-def _counts(f: dict[str, Any]) -> list[Block]:
+def _counts(f: DatasheetFacts) -> list[Block]:
     acc, rel = f["accepted"], f["release"]
     return [
         ("p", f"Candidate items recorded in the ledger: {f['items']['total']}. Accepted files "
@@ -75,7 +78,7 @@ def _counts(f: dict[str, Any]) -> list[Block]:
     ]
 
 
-def _missing(f: dict[str, Any]) -> list[Block]:
+def _missing(f: DatasheetFacts) -> list[Block]:
     m = f["missing"]
     lost = {k: v for k, v in f["items"]["by_reason"].items()
             if k.split("/")[0] in ("failed", "deferred", "blocked", "pending")}
@@ -89,13 +92,13 @@ def _missing(f: dict[str, Any]) -> list[Block]:
     return out
 
 
-def _sources(f: dict[str, Any]) -> Block:
+def _sources(f: DatasheetFacts) -> Block:
     return ("table", ["source", "kind", "how", "items listed", "accepted"],
             [[s["name"], s["kind"], s["mechanism"], s["items"], s["accepted"]]
              for s in f["sources"]])
 
 
-def _politeness(f: dict[str, Any]) -> list[Block]:
+def _politeness(f: DatasheetFacts) -> list[Block]:
     r, b = f["requests"], f["policy"]["budgets"]
     out: list[Block] = [
         ("p", f"User-Agent contact: {f['collection']['contact']}; robots.txt product token: "
@@ -125,7 +128,7 @@ def _politeness(f: dict[str, Any]) -> list[Block]:
     return out
 
 
-def _steps(f: dict[str, Any]) -> list[Block]:
+def _steps(f: DatasheetFacts) -> list[Block]:
     p, d, rel = f["policy"], f["duplicates"], f["release"]
     img = p["images"]
     return [("list", [
@@ -146,13 +149,14 @@ def _steps(f: dict[str, Any]) -> list[Block]:
     ]), _table(["state/reason", "items"], f["items"]["by_reason"])]
 
 
-def _licences(f: dict[str, Any]) -> list[Block]:
+def _licences(f: DatasheetFacts) -> list[Block]:
     conds = {x["spdx_id"]: x for x in f["licences"]}
     rows = []
     for spdx, n in f["release"]["by_licence"].items():
-        info = conds.get(spdx, {})
-        rows.append([spdx, n, ", ".join(info.get("conditions") or []) or "?",
-                     info.get("deed_url") or ""])
+        info = conds.get(spdx)
+        conditions = info["conditions"] if info else []
+        deed = info["deed_url"] if info else None
+        rows.append([spdx, n, ", ".join(conditions or []) or "?", deed or ""])
     return [("table", ["licence (SPDX)", "files in release", "conditions", "deed"], rows),
             ("p", "Each file keeps its own licence; attribution.csv lists title, author, "
                   "source and licence per file (Creative Commons attribution practice). "
@@ -160,7 +164,7 @@ def _licences(f: dict[str, Any]) -> list[Block]:
                   f"{f['flagged']['conflict']}.")]
 
 
-def _flags(f: dict[str, Any]) -> list[Block]:
+def _flags(f: DatasheetFacts) -> list[Block]:
     return [_table(["flag", "accepted files"], f["flags"]) if f["flags"]
             else ("p", "No metadata flags on accepted files."),
             ("p", f"Accepted files with possible personal data in their metadata: "
@@ -168,7 +172,7 @@ def _flags(f: dict[str, Any]) -> list[Block]:
                   "detected; a person must look.")]
 
 
-def _risks(f: dict[str, Any]) -> list[Block]:
+def _risks(f: DatasheetFacts) -> list[Block]:
     conds: dict[str, int] = {}
     for lic in f["licences"]:
         for c in lic["conditions"] or ["unknown"]:
@@ -183,7 +187,7 @@ def _risks(f: dict[str, Any]) -> list[Block]:
     return out
 
 
-FACTS: dict[str, Callable[[dict[str, Any]], list[Block]]] = {
+FACTS: dict[str, Callable[[DatasheetFacts], list[Block]]] = {
     "motivation.builders": lambda f: [("p", f"Curator named in the recipe: "
                                             f"{f['collection']['curator'] or '(none)'}; "
                                             f"contact: {f['collection']['contact']}.")],
@@ -260,7 +264,7 @@ FACTS: dict[str, Callable[[dict[str, Any]], list[Block]]] = {
 }
 
 
-def build_document(facts: dict[str, Any], answers: dict[str, str]) -> list[SectionView]:
+def build_document(facts: DatasheetFacts, answers: dict[str, str]) -> list[SectionView]:
     """The datasheet as sections of questions with facts and answers."""
     out = []
     for key, title, questions in SECTIONS:
@@ -272,7 +276,7 @@ def build_document(facts: dict[str, Any], answers: dict[str, str]) -> list[Secti
     return out
 
 
-def _title(facts: dict[str, Any], answers: dict[str, str]) -> str:
+def _title(facts: DatasheetFacts, answers: dict[str, str]) -> str:
     return answers.get("dataset.name") or facts["collection"]["name"] or "Collection"
 
 
@@ -294,7 +298,7 @@ def _md_block(block: Block) -> list[str]:
     return [*lines, ""]
 
 
-def render_markdown(facts: dict[str, Any], answers: dict[str, str]) -> str:
+def render_markdown(facts: DatasheetFacts, answers: dict[str, str]) -> str:
     """datasheet.md."""
     lines = [f"# Datasheet: {_md(_title(facts, answers))}", "",
              f"Generated {facts['generated_at']} by collector {facts['tool_version']} from the "
@@ -322,7 +326,7 @@ def render_markdown(facts: dict[str, Any], answers: dict[str, str]) -> str:
     return "\n".join(lines).rstrip() + "\n"
 
 
-def _croissant_notes(facts: dict[str, Any], answers: dict[str, str]) -> list[str]:
+def _croissant_notes(facts: DatasheetFacts, answers: dict[str, str]) -> list[str]:
     notes = ["croissant.json describes this folder (Croissant 1.0 with the RAI extension)."]
     if "dataset.date_published" not in answers:
         notes.append(f"Pre-filled, please confirm: datePublished is the export date "
@@ -330,7 +334,7 @@ def _croissant_notes(facts: dict[str, Any], answers: dict[str, str]) -> list[str
     return notes
 
 
-def _croissant_md(facts: dict[str, Any], answers: dict[str, str]) -> list[str]:
+def _croissant_md(facts: DatasheetFacts, answers: dict[str, str]) -> list[str]:
     problems = facts.get("croissant_problems") or []
     out = ["## Croissant metadata", "", *(f"{_md(n)}\n" for n in
                                           _croissant_notes(facts, answers))]
@@ -378,7 +382,7 @@ def _html_block(block: Block) -> str:
     return f"<table><thead><tr>{head}</tr></thead><tbody>{body}</tbody></table>"
 
 
-def render_html(facts: dict[str, Any], answers: dict[str, str], plots: dict[str, str]) -> str:
+def render_html(facts: DatasheetFacts, answers: dict[str, str], plots: dict[str, str]) -> str:
     """datasheet.html: one self-contained page (inline CSS and SVG, no external requests)."""
     from collector.exports.plots import PLOT_TITLES
 

@@ -9,7 +9,10 @@ requests.
 from __future__ import annotations
 
 import io
-from typing import Any
+from typing import TYPE_CHECKING, Any
+
+if TYPE_CHECKING:
+    from collector.exports.facts import DatasheetFacts
 
 PLOT_TITLES = {
     "licences": "Licences of the files in this release",
@@ -54,7 +57,7 @@ def _top(pairs: dict[str, int], n: int = 15) -> tuple[list[str], list[int]]:
     return [k for k, _ in items], [v for _, v in items]
 
 
-def render_plots(facts: dict[str, Any]) -> dict[str, str]:
+def render_plots(facts: DatasheetFacts) -> dict[str, str]:
     """Inline SVG for each plot name in PLOT_TITLES ('' where there is nothing to draw)."""
     from matplotlib.figure import Figure
 
@@ -93,10 +96,11 @@ def render_plots(facts: dict[str, Any]) -> dict[str, str]:
         fig = Figure(figsize=(6.4, 3.4))
         ax = fig.add_subplot()
         # Stems on a true time axis: quiet periods show as gaps, not as a compressed axis.
-        for series, colour, marker, label in (("requests", "#4c72b0", "o", "HTTP requests"),
-                                              ("stored", "#dd8452", "s", "files stored")):
-            pts = [(w, timeline[series][b]) for w, b in zip(when, buckets, strict=True)
-                   if timeline[series].get(b)]
+        for counts, colour, marker, label in (
+                (timeline["requests"], "#4c72b0", "o", "HTTP requests"),
+                (timeline["stored"], "#dd8452", "s", "files stored")):
+            pts = [(w, counts[b]) for w, b in zip(when, buckets, strict=True)
+                   if counts.get(b)]
             if not pts:
                 continue
             xs, ys = zip(*pts, strict=True)
@@ -105,11 +109,11 @@ def render_plots(facts: dict[str, Any]) -> dict[str, str]:
         ax.set_ylim(bottom=0)
         # Frame the data with one bucket either side; a single bucket would otherwise get
         # matplotlib's default span of years.
-        step = {"second": timedelta(seconds=1), "minute": timedelta(minutes=1),
+        span = {"second": timedelta(seconds=1), "minute": timedelta(minutes=1),
                 "hour": timedelta(hours=1),
                 "day": timedelta(days=1)}[timeline["unit"]]
-        ax.set_xlim(float(mdates.date2num(min(when) - step)),
-                    float(mdates.date2num(max(when) + step)))
+        ax.set_xlim(float(mdates.date2num(min(when) - span)),
+                    float(mdates.date2num(max(when) + span)))
         locator = mdates.AutoDateLocator()
         ax.xaxis.set_major_locator(locator)
         ax.xaxis.set_major_formatter(mdates.ConciseDateFormatter(locator))

@@ -15,6 +15,7 @@ from typing import Any
 from collector import sources
 from collector.config.recipe import Recipe
 from collector.errors import CollectorError
+from collector.storage import queries
 from collector.storage.ledger import Ledger
 from collector.urls import host_key
 
@@ -60,45 +61,21 @@ class Summary:
 
 def summarise(ledger: Ledger) -> Summary:
     """Summarise the whole collection from its ledger."""
-    s = Summary()
-    for row in ledger.query("SELECT state, reason, count(*) AS n FROM items "
-                            "GROUP BY state, reason"):
-        s.states[row["state"]] += row["n"]
-        if row["reason"]:
-            s.reasons[(row["state"], row["reason"])] += row["n"]
-    s.files = ledger.scalar("SELECT count(*) FROM files") or 0
-    s.file_bytes = ledger.scalar("SELECT coalesce(sum(size), 0) FROM files") or 0
-    s.requests = ledger.scalar("SELECT count(*) FROM fetches WHERE status IS NOT NULL") or 0
-    s.fetched_bytes = ledger.scalar("SELECT coalesce(sum(bytes), 0) FROM fetches") or 0
-    for row in ledger.query(
-            "SELECT host, sum(status IS NOT NULL) AS requests, sum(status = 429) AS too_many, "
-            "sum(status = 503) AS unavailable, coalesce(sum(waited_s), 0) AS waited, "
-            "sum(error IS NOT NULL) AS errors, coalesce(sum(bytes), 0) AS bytes "
-            "FROM fetches GROUP BY host ORDER BY host"):
-        s.hosts.append(HostPoliteness(row["host"] or "?", row["requests"] or 0,
-                                      row["too_many"] or 0, row["unavailable"] or 0,
-                                      float(row["waited"]), row["errors"] or 0, row["bytes"]))
-    placeholders = ", ".join("?" for _ in STORED_STATES)
-    for row in ledger.query(
-            f"SELECT coalesce(spdx_id, 'unknown') AS spdx, count(*) AS n FROM items "
-            f"WHERE state IN ({placeholders}) GROUP BY spdx ORDER BY n DESC", STORED_STATES):
-        s.licences[row["spdx"]] = row["n"]
-    for row in ledger.query("SELECT flags FROM files WHERE flags IS NOT NULL AND flags != '[]'"):
-        for flag in json.loads(row["flags"]):
+    t = queries.ledger_totals(ledger)
+    s = Summary(files=t.files, file_bytes=t.file_bytes, fetched_bytes=t.fetched_bytes,
+                requests=t.requests, runs=t.runs, last_run=t.last_run,
+                run_seconds=t.run_seconds, last_run_seconds=t.last_run_seconds)
+    for row in t.states:
+        s.states[row.state] += row.n
+        if row.reason:
+            s.reasons[(row.state, row.reason)] += row.n
+    s.hosts = [HostPoliteness(h.host or "?", h.requests, h.too_many, h.unavailable,
+                              h.waited_s, h.errors, h.bytes) for h in t.hosts]
+    s.licences.update(dict(t.licences))
+    for flags in t.flag_lists:
+        for flag in json.loads(flags):
             s.flags[flag.split(":", 1)[0]] += 1
-    for row in ledger.query("SELECT kind, count(*) AS n FROM notes GROUP BY kind"):
-        s.notes[row["kind"]] = row["n"]
-    s.runs = ledger.scalar("SELECT count(*) FROM runs") or 0
-    last = ledger.query("SELECT * FROM runs ORDER BY id DESC LIMIT 1")
-    s.last_run = last[0] if last else None
-    # julianday() differences are in days; a run still going counts up to now.
-    s.run_seconds = float(ledger.scalar(
-        "SELECT coalesce(sum((julianday(coalesce(ended_at, 'now')) - julianday(started_at)) "
-        "* 86400.0), 0) FROM runs") or 0.0)
-    if s.last_run:
-        s.last_run_seconds = float(ledger.scalar(
-            "SELECT (julianday(coalesce(ended_at, 'now')) - julianday(started_at)) * 86400.0 "
-            "FROM runs WHERE id = ?", (s.last_run["id"],)) or 0.0)
+    s.notes.update(dict(t.notes))
     return s
 
 
@@ -182,14 +159,12 @@ def estimate(recipe: Recipe, ledger: Ledger) -> Estimate:
     """Estimate a run from what earlier runs listed: per host, pending items times the
     effective interval; hosts run in parallel, so the slowest host decides."""
     per_host: Counter[str] = Counter()
-    for row in ledger.query("SELECT image_url FROM items WHERE state IN "
-                            "('pending', 'failed', 'deferred') AND image_url IS NOT NULL"):
+    for url in queries.pending_image_urls(ledger):
         try:
-            per_host[host_key(row["image_url"])] += 1
+            per_host[host_key(url)] += 1
         except CollectorError:  # a malformed URL is counted under an unknown host
             per_host["?"] += 1
-    listed = {r["name"] for r in ledger.query(
-        "SELECT DISTINCT s.name FROM sources s JOIN items i ON i.source_id = s.id")}
+    listed = queries.listed_source_names(ledger)
     unknown = [s["name"] for s in recipe.sources
                if sources.get_kind(s["kind"]).uses_network and s["name"] not in listed]
     interval: dict[str, float] = {}

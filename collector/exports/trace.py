@@ -35,6 +35,7 @@ from collector.checks.images import sniff_format
 from collector.checks.licences import licence_allowed, licence_deed_url
 from collector.errors import CollectorError
 from collector.safe_text import csv_row, shown_name
+from collector.storage import queries
 from collector.storage.collection import Collection, open_collection
 from collector.storage.hashindex import HashFile, NearMatch
 from collector.storage.ledger import Ledger, decode_row
@@ -381,8 +382,7 @@ class Tracer:
         row = self.ledger.file(sha256)
         if row is None:
             return None
-        items = [self._item(r) for r in self.ledger.query(
-            "SELECT * FROM items WHERE file_sha256 = ? ORDER BY id", (sha256,))]
+        items = [self._item(r) for r in queries.items_of_file(self.ledger, sha256)]
         origin = next((i for i in items if i.item_id == row.get("first_item_id")),
                       items[0] if items else None)
         rights = row.get("rights") or {}
@@ -452,22 +452,17 @@ class Tracer:
     # -- ledger rows -------------------------------------------------------------------------
     def _source(self, source_id: int | None) -> tuple[str | None, str | None]:
         if self._sources is None:
-            self._sources = {r["id"]: (r["name"], r["kind"])
-                             for r in self.ledger.query("SELECT id, name, kind FROM sources")}
+            self._sources = queries.source_names(self.ledger)
         return self._sources.get(source_id, (None, None)) if source_id is not None else (
             None, None)
 
     def _fetch(self, item_id: int) -> FetchFacts | None:
-        rows = self.ledger.query(
-            "SELECT * FROM fetches WHERE item_id = ? AND purpose = 'image' AND status = 200 "
-            "ORDER BY id DESC LIMIT 1", (item_id,))
-        if not rows:
+        r = queries.last_image_fetch(self.ledger, item_id)
+        if r is None:
             return None
-        r = rows[0]
-        return FetchFacts(url=r["url"], status=r["status"],
-                          fetched_at=r["ended_at"] or r["started_at"], etag=r["etag"],
-                          last_modified=r["last_modified"], robots_verdict=r["robots_verdict"],
-                          robots_rule=r["robots_rule"], run_id=r["run_id"])
+        return FetchFacts(url=r.url, status=r.status, fetched_at=r.fetched_at, etag=r.etag,
+                          last_modified=r.last_modified, robots_verdict=r.robots_verdict,
+                          robots_rule=r.robots_rule, run_id=r.run_id)
 
     def _item(self, raw: dict[str, Any], *, with_scan: bool = True) -> ItemRecord:
         row = decode_row(raw) or {}
@@ -485,9 +480,7 @@ class Tracer:
             near_of=row.get("duplicate_of") if row.get("state") == "near_duplicate" else None,
             near_distance=row.get("near_distance"))
         if with_scan and item.parent_sha256:
-            scans = self.ledger.query(
-                "SELECT * FROM items WHERE file_sha256 = ? ORDER BY id LIMIT 1",
-                (item.parent_sha256,))
+            scans = queries.items_of_file(self.ledger, item.parent_sha256, limit=1)
             if scans:
                 item.scan = self._item(scans[0], with_scan=False)
         return item

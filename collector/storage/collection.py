@@ -25,6 +25,7 @@ from pathlib import Path
 
 from collector.config.recipe import Recipe, load_recipe
 from collector.errors import CollectionError, LedgerUnusable
+from collector.storage import queries
 from collector.storage.ledger import Ledger, ways_out
 from collector.storage.store import Store
 
@@ -207,8 +208,7 @@ def check_ledger(collection: Collection, ledger: Ledger, *, bind: bool = False) 
         raise LedgerUnusable(
             f"this ledger belongs to another collection: {ledger.path} has collection id "
             f"{ledger_id}, the folder's {ID_NAME} says {folder_id}. " + ways_out(root))
-    known = int(ledger.scalar("SELECT count(*) FROM files") or 0)
-    items = int(ledger.scalar("SELECT count(*) FROM items") or 0)
+    known, items = queries.counts(ledger)
     stored_any = store_has_files(collection)
     intents = ledger.store_intents()
     if stored_any and known == 0 and items == 0 and not intents:
@@ -332,10 +332,7 @@ def recover(collection: Collection, ledger: Ledger) -> Recovery:
     reset = 0
     with ledger.transaction():
         for sha in missing:
-            reset += ledger.db.execute(
-                "UPDATE items SET state = 'pending', reason = NULL, file_sha256 = NULL "
-                "WHERE file_sha256 = ?", [sha]).rowcount
-            ledger.db.execute("DELETE FROM files WHERE sha256 = ?", [sha])
+            reset += ledger.forget_missing_file(sha)
         if intents:
-            ledger.db.execute("DELETE FROM store_intents")
+            ledger.drop_all_store_intents()
     return Recovery(temp_removed, orphans, reset, tuple(sorted(unknown)))

@@ -20,6 +20,7 @@ from pathlib import Path
 
 import numpy as np
 
+from collector.storage import queries
 from collector.storage.ledger import Ledger
 
 _MASK = (1 << 64) - 1
@@ -84,10 +85,8 @@ class HashIndex:
     def from_ledger(cls, ledger: Ledger) -> HashIndex:
         """Load every stored file's hash from the ledger."""
         index = cls()
-        rows = ledger.query("SELECT sha256, phash FROM files WHERE phash IS NOT NULL "
-                            "ORDER BY rowid")
-        for row in rows:
-            index.add(row["sha256"], to_unsigned(row["phash"]))
+        for sha256, phash in queries.stored_phashes(ledger):
+            index.add(sha256, to_unsigned(phash))
         return index
 
     def add(self, sha256: str, phash: int) -> None:
@@ -145,10 +144,7 @@ class LedgerMark:
 
 def ledger_mark(ledger: Ledger) -> LedgerMark:
     """Read the files table's mark (count, max rowid, sha256 at that rowid)."""
-    rows = int(ledger.scalar("SELECT count(*) FROM files") or 0)
-    max_rowid = int(ledger.scalar("SELECT max(rowid) FROM files") or 0)
-    last = ledger.scalar("SELECT sha256 FROM files WHERE rowid = ?", (max_rowid,))
-    return LedgerMark(rows, max_rowid, last)
+    return LedgerMark(*queries.files_mark(ledger))
 
 
 def _read_rows(ledger: Ledger, after_rowid: int) -> tuple[LedgerMark, np.ndarray, bytes, int]:
@@ -157,9 +153,7 @@ def _read_rows(ledger: Ledger, after_rowid: int) -> tuple[LedgerMark, np.ndarray
     Rows without a pHash are counted but not indexed. Read as plain tuples: building a dict
     per row made a 1M-row rebuild take about 5 s.
     """
-    cursor = ledger.db.execute("SELECT rowid, sha256, phash FROM files WHERE rowid > ? "
-                               "ORDER BY rowid", [after_rowid])
-    rows = cursor.fetchall()
+    rows = queries.files_after(ledger, after_rowid)
     with_hash = [row for row in rows if row[2] is not None]
     hashes = np.fromiter((row[2] for row in with_hash), dtype=np.int64,
                          count=len(with_hash)).view(np.uint64)
@@ -257,9 +251,8 @@ def _pack(header: _Header) -> bytes:
 def _update(ledger: Ledger, path: Path, header: _Header | None, mark: LedgerMark) -> _Header:
     """Append the ledger's new rows if the file is a prefix of the ledger, else rebuild."""
     if header is not None and header.mark.max_rowid <= mark.max_rowid:
-        prefix_intact = header.mark.last_sha is None or ledger.scalar(
-            "SELECT sha256 FROM files WHERE rowid = ?",
-            (header.mark.max_rowid,)) == header.mark.last_sha
+        prefix_intact = header.mark.last_sha is None or queries.sha256_at_rowid(
+            ledger, header.mark.max_rowid) == header.mark.last_sha
         if prefix_intact:
             new_mark, hashes, keys, added = _read_rows(ledger, header.mark.max_rowid)
             if (header.mark.rows + added == mark.rows and new_mark.max_rowid == mark.max_rowid

@@ -309,6 +309,69 @@ class Ledger:
             rows = self._conn.execute(sql, params).fetchall()  # all: leave no statement open
             return rows[0][0] if rows else None
 
+    # -- reads for collector.storage.queries ---------------------------------------------------
+    def rows(self, sql: str, params: tuple[Any, ...] | dict[str, Any] = ()
+             ) -> list[tuple[Any, ...]]:
+        """Run a read query and return plain tuples (cheaper than a dict per row)."""
+        with self._lock, self._translate("query"):
+            return self._conn.execute(sql, params).fetchall()
+
+    def stream(self, sql: str, params: tuple[Any, ...] | dict[str, Any] = (), *,
+               batch: int = 1000) -> Iterator[tuple[Any, ...]]:
+        """Run a read query and yield its rows a batch at a time (memory stays flat); an
+        error while reading is translated like every other."""
+        with self._translate("query"):
+            with self._lock:
+                cur = self._conn.execute(sql, params)
+            try:
+                while True:
+                    with self._lock:
+                        chunk = cur.fetchmany(batch)
+                    if not chunk:
+                        return
+                    yield from chunk
+            finally:
+                cur.close()
+
+    def sql_function(self, name: str, func: Callable[[Any], Any]) -> None:
+        """Make a deterministic one-argument Python function callable from SQL as ``name``."""
+        with self._lock, self._translate(f"register {name}()"):
+            self._conn.create_function(name, 1, func, deterministic=True)
+
+    # -- crash recovery and repair (collector.storage.collection, ledger_repair) ---------------
+    def forget_missing_file(self, sha256: str) -> int:
+        """A stored file is gone: its items go back to pending and its files row is removed.
+        Returns how many items were reset (call inside :meth:`transaction`)."""
+        with self._lock, self._translate("forget a missing file"), self._write():
+            reset = self._conn.execute(
+                "UPDATE items SET state = 'pending', reason = NULL, file_sha256 = NULL "
+                "WHERE file_sha256 = ?", (sha256,)).rowcount
+            self._conn.execute("DELETE FROM files WHERE sha256 = ?", (sha256,))
+            return int(reset)
+
+    def drop_all_store_intents(self) -> None:
+        """Every store change an intent names has been settled by crash recovery."""
+        with self._lock, self._translate("write to store_intents"), self._write():
+            self._conn.execute("DELETE FROM store_intents")
+
+    @staticmethod
+    def copy_file(source: Path, target: Path) -> None:
+        """Copy the ledger file ``source`` (opened read-only) into a new file ``target`` with
+        SQLite's online backup API. A source that is not a readable SQLite file raises
+        LedgerUnusable."""
+        try:
+            src = sqlite3.connect(f"file:{source}?mode=ro", uri=True)
+            try:
+                dest = sqlite3.connect(target)
+                try:
+                    src.backup(dest)
+                finally:
+                    dest.close()
+            finally:
+                src.close()
+        except sqlite3.DatabaseError as exc:
+            raise LedgerUnusable(f"{source} cannot be read as a ledger ({exc})") from exc
+
     def _columns(self, table: str) -> frozenset[str]:
         # Under the lock: the connection is shared by threads, and a PRAGMA read running
         # while another thread writes the same table fails with "database table is locked".

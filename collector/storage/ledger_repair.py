@@ -21,7 +21,6 @@ import contextlib
 import hashlib
 import os
 import re
-import sqlite3
 import stat
 import uuid
 from dataclasses import dataclass, field
@@ -30,6 +29,7 @@ from pathlib import Path
 
 from collector.checks.images import inspect_image
 from collector.errors import CollectionError, CollectorError, LedgerError, LedgerUnusable
+from collector.storage import queries
 from collector.storage.collection import (
     LEDGER_NAME,
     Collection,
@@ -180,23 +180,14 @@ def restore_ledger(root: Path, backup: Path | None = None) -> RestoreResult:
         temp = _fresh_temp(collection, f".{LEDGER_NAME}.restoring")
         try:
             try:
-                source = sqlite3.connect(f"file:{backup}?mode=ro", uri=True)
-                try:
-                    dest = sqlite3.connect(temp)
-                    try:
-                        source.backup(dest)
-                    finally:
-                        dest.close()
-                finally:
-                    source.close()
-            except sqlite3.DatabaseError as exc:
-                raise LedgerUnusable(f"the backup {backup} cannot be read ({exc}); nothing "
-                                     "was changed. Name another backup") from exc
+                Ledger.copy_file(backup, temp)
+            except LedgerUnusable as exc:
+                raise LedgerUnusable(f"the backup {backup} cannot be read ({exc.__cause__}); "
+                                     "nothing was changed. Name another backup") from exc
             try:
                 with Ledger.open(temp) as ledger:  # migrates a backup of an older version
                     check_ledger(collection, ledger)
-                    files = int(ledger.scalar("SELECT count(*) FROM files") or 0)
-                    items = int(ledger.scalar("SELECT count(*) FROM items") or 0)
+                    files, items = queries.counts(ledger)
             except LedgerUnusable as exc:
                 raise LedgerUnusable(f"the backup {backup} does not fit this collection; "
                                      f"nothing was changed. ({exc})") from exc

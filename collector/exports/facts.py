@@ -1,0 +1,121 @@
+"""The facts of a datasheet export: what :mod:`collector.exports.datasheet` computes and
+hands to the renderers (:mod:`~collector.exports.datasheet_render`,
+:mod:`~collector.exports.croissant`, :mod:`~collector.exports.plots`).
+
+The parts read from the ledger are the typed results of :mod:`collector.storage.queries`;
+the rest comes from the recipe and from writing the release.
+"""
+
+from __future__ import annotations
+
+from typing import Any, NotRequired, TypedDict
+
+from collector.storage.queries import (
+    AcceptedFacts,
+    FlaggedFacts,
+    HostFacts,
+    ItemFacts,
+    MissingFacts,
+    RequestFacts,
+    RunFacts,
+    Timeframe,
+)
+
+
+class CollectionFacts(TypedDict):
+    """The recipe's [collection] table and the contact the requests carried."""
+
+    name: str
+    description: str
+    curator: str
+    contact: str
+    product_token: str
+
+
+class DuplicateFacts(TypedDict):
+    """Exact and near duplicates, and the near-duplicate policy in force."""
+
+    exact: int
+    near_kept: int
+    near_dropped: int
+    policy: str
+    near_distance: int
+
+
+class LicenceFacts(TypedDict):
+    """One licence of the accepted files: its conditions and its deed."""
+
+    spdx_id: str
+    files: int
+    conditions: list[str]
+    deed_url: str | None
+
+
+class ResolutionBins(TypedDict):
+    """Accepted files on a grid of ``step`` x ``step`` pixel cells: [width, height, files]."""
+
+    step: int
+    cells: list[list[int]]
+
+
+class Timeline(TypedDict):
+    """Requests and stored files per ``unit`` (second, minute, hour or day)."""
+
+    unit: str
+    requests: dict[str, int]
+    stored: dict[str, int]
+
+
+class SourceFacts(TypedDict):
+    """One source: kind, items, accepted files, how it obtains items, its RAI type."""
+
+    name: str
+    kind: str
+    items: int
+    accepted: int
+    mechanism: str
+    collection_type: str
+
+
+class ReleaseFacts(TypedDict):
+    """What went into the release folder (and what was left out)."""
+
+    files: int
+    bytes: int
+    with_images: bool
+    exclude_flagged: bool
+    excluded_licence: int
+    excluded_flagged: int
+    missing_files: int
+    linked: int
+    copied: int
+    by_ext: dict[str, dict[str, Any]]
+    by_licence: dict[str, int]
+    provenance_sha256: str
+
+
+class DatasheetFacts(TypedDict):
+    """Everything the datasheet says, as plain data; ``release`` and ``croissant_problems``
+    are added once the release is written and the Croissant document checked."""
+
+    generated_at: str
+    tool_version: str
+    collection: CollectionFacts
+    items: ItemFacts
+    accepted: AcceptedFacts
+    missing: MissingFacts
+    flags: dict[str, int]
+    flagged: FlaggedFacts
+    duplicates: DuplicateFacts
+    licences: list[LicenceFacts]
+    timeframe: Timeframe
+    requests: RequestFacts
+    hosts: list[HostFacts]
+    resolution_bins: ResolutionBins
+    timeline: Timeline
+    sources: list[SourceFacts]
+    runs: RunFacts
+    notes: dict[str, int]
+    policy: dict[str, Any]
+    release: NotRequired[ReleaseFacts]
+    croissant_problems: NotRequired[list[str]]
