@@ -160,6 +160,8 @@ def open_own_file(path: Path, flags: int, mode: int = 0o644) -> int:
     except OSError as exc:
         if exc.errno == errno.ELOOP:
             raise link_refused(path) from exc
+        if exc.errno == errno.EISDIR:
+            raise _wrong_kind(path, "plain file") from exc
         if exc.errno == errno.EEXIST and flags & os.O_EXCL:
             refuse_link(path)
         raise
