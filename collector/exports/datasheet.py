@@ -39,7 +39,7 @@ from collector.errors import CollectionError, CollectorError, LedgerError
 from collector.exports.datasheet_questions import load_answers
 from collector.fetching.urls import host_key
 from collector.safe_text import csv_cell, csv_row
-from collector.storage.safe_paths import link_refused, new_temp_file, own_folder
+from collector.storage.safe_paths import link_refused, new_temp_file, own_folder, replace_file
 
 if TYPE_CHECKING:
     from collector.storage.store import Store
@@ -435,14 +435,7 @@ class HashingWriter:
 def _atomic_write_text(path: Path, text: str) -> None:
     """Write a whole file through a new temp file (O_EXCL, 0644) in the same folder and
     os.replace (which replaces a link at ``path``; it never writes through one)."""
-    fd, tmp = new_temp_file(path.parent, f".{path.name}.")
-    try:
-        with os.fdopen(fd, "w", encoding="utf-8", newline="") as fh:
-            fh.write(text)
-        os.replace(tmp, path)
-    except BaseException:
-        Path(tmp).unlink(missing_ok=True)
-        raise
+    replace_file(path, text)
 
 
 def check_out_folder(root: Path, out: Path, *, overwrite: bool) -> None:

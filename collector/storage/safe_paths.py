@@ -201,6 +201,19 @@ def write_new_file(path: Path, text: str) -> None:
         os.fsync(fh.fileno())
 
 
+def replace_file(path: Path, data: bytes | str) -> None:
+    """Write a whole file: a new temp file in the same folder (O_EXCL, 0644), then
+    ``os.replace``, which replaces a link at ``path`` instead of writing through it."""
+    fd, tmp = new_temp_file(path.parent, f".{path.name}.")
+    try:
+        with os.fdopen(fd, "wb") as fh:
+            fh.write(data.encode("utf-8") if isinstance(data, str) else data)
+        os.replace(tmp, path)
+    except BaseException:
+        tmp.unlink(missing_ok=True)
+        raise
+
+
 def remove_own_file(path: Path) -> None:
     """Remove ``path`` if it is there: a plain file, or a link (removed as a link, never
     followed); a folder there is refused."""
