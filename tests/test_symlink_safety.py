@@ -120,6 +120,7 @@ CASES = [
          why="a leftover temp name is removed as a link before the temp is created O_EXCL",
          expect="Restored"),
     Case("datasheet", "folder", ["datasheet", "{dir}"], "refused"),
+    Case("release", "folder", ["datasheet", "{dir}", "--out", "{dir}/release"], "refused"),
     Case("datasheet/datasheet.md", "file", ["datasheet", "{dir}", "--overwrite"], "done",
          why="written to a new temp file and renamed over the link (rename replaces it)"),
     Case("datasheet/provenance.csv", "file", ["datasheet", "{dir}", "--overwrite"], "done",
@@ -248,3 +249,17 @@ def test_a_folder_where_a_lock_file_belongs_is_refused_clearly(tmp_path: Path) -
     with pytest.raises(PathRefused, match="is not a plain file") as info, col.gather_lock():
         pass
     assert info.value.exit_code == 2
+
+
+def test_an_out_folder_outside_the_collection_may_be_a_link(template: Path,
+                                                           tmp_path: Path) -> None:
+    """--out outside the collection is the user's own choice: a link there is followed and
+    the datasheet is written where it points."""
+    col = Collection(tmp_path / "c")
+    shutil.copytree(template, col.root, symlinks=True)
+    (tmp_path / "elsewhere").mkdir()
+    (tmp_path / "release").symlink_to(tmp_path / "elsewhere", target_is_directory=True)
+    result = runner.invoke(app, ["datasheet", str(col.root), "--out",
+                                 str(tmp_path / "release")])
+    assert result.exit_code == 0, result.output
+    assert (tmp_path / "elsewhere" / "datasheet.md").is_file()
