@@ -7,6 +7,7 @@ resized copy) and writes the datasheet. Running it again resumes the same folder
 
 from __future__ import annotations
 
+import io
 import shutil
 from dataclasses import dataclass
 from pathlib import Path
@@ -19,6 +20,7 @@ from collector.run.record import Progress
 from collector.run.scheduling import RunResult
 from collector.storage import queries
 from collector.storage.collection import Collection, init_collection, open_collection
+from collector.storage.safe_paths import own_folder, replace_file
 
 DEMO_PORT = 8642
 COPIES_DIR = "demo-copies"
@@ -56,11 +58,14 @@ def prepare_folder(folder: Path, *, fresh: bool) -> bool:
 
 
 def make_resized_copy(source: Path, target: Path) -> Path:
-    """A half-size JPEG re-encode of ``source``: what a reviewer might hold months later."""
-    target.parent.mkdir(parents=True, exist_ok=True)
+    """A half-size JPEG re-encode of ``source``: what a reviewer might hold months later.
+    Written inside the demo folder, never through a link planted there."""
+    own_folder(target.parent.parent, target.parent, create=True)
     with Image.open(source) as im:
         small = im.convert("RGB").resize((max(1, im.width // 2), max(1, im.height // 2)))
-        small.save(target, "JPEG", quality=80)
+        buf = io.BytesIO()
+        small.save(buf, "JPEG", quality=80)
+    replace_file(target, buf.getvalue())
     return target
 
 
@@ -91,8 +96,7 @@ def run_demo(folder: Path, *, fresh: bool = False, port: int = DEMO_PORT,
         collection = (open_collection(folder) if resumed
                       else init_collection(folder, name="Fernhollow field records (demo)"))
         # Rewritten every time: the recipe names the port the archive is served on.
-        collection.recipe_path.write_text(render("demo", server.port, content / "scans"),
-                                          "utf-8")
+        replace_file(collection.recipe_path, render("demo", server.port, content / "scans"))
         run = gather(collection, progress=progress, options={"demo": True, "fresh": fresh})
     finally:
         server.stop()

@@ -12,6 +12,8 @@ exception escaping to the CLI is a bug and keeps its traceback.
     ├── LedgerError                  the SQLite ledger could not be read or written
     │   └── LedgerUnusable           empty, missing, schema-less, foreign or store-less (exit 2)
     ├── StoreError                   a file could not be stored (disk full: .errno == ENOSPC)
+    │   └── PathRefused              a link (or a stranger) where collector keeps its own file
+    │                                or folder; also a CollectionError (exit 2)
     ├── SourceError                  a source could not be read (bad JSON, empty selector)
     ├── SourceKindError              a source kind is unknown, clashes, or its package is broken
     ├── ImageRejected                an image failed the ingest checks (.reason: ledger reason)
@@ -84,6 +86,15 @@ class StoreError(CollectorError):
     def __init__(self, message: str, errno: int | None = None) -> None:
         super().__init__(message)
         self.errno = errno
+
+
+class PathRefused(CollectionError, StoreError):
+    """A symbolic link (or a folder where a file belongs, or the reverse) sits where collector
+    keeps its own file or folder inside a collection: nothing is written through it. Exit 2
+    like every CollectionError; also a StoreError, so a run that meets one stops."""
+
+    def __init__(self, message: str) -> None:
+        super().__init__(message)
 
 
 class SourceError(CollectorError):

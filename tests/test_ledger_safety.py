@@ -419,7 +419,7 @@ def test_a_symlinked_backup_folder_is_refused_and_the_run_warns(
     elsewhere = tmp_path / "elsewhere"
     elsewhere.mkdir()
     os.symlink(elsewhere, small.root / BACKUP_DIR)
-    with small.ledger() as ledger, pytest.raises(CollectionError, match="is a link"):
+    with small.ledger() as ledger, pytest.raises(CollectionError, match="is a symbolic link"):
         backup_ledger(small, ledger, 1)
     result = runner.invoke(app, ["gather", str(small.root), "--quiet"])
     assert result.exit_code == 0, result.output

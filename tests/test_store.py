@@ -66,7 +66,7 @@ def test_disk_full_is_a_clear_store_error_and_leaves_no_temp_file(
     """ENOSPC during the final move becomes StoreError(errno=ENOSPC) and cleans up."""
     store = Store(tmp_path / "files")
 
-    def full(*_: object) -> None:
+    def full(*_: object, **__: object) -> None:
         raise OSError(errno.ENOSPC, "No space left on device")
 
     monkeypatch.setattr(os, "replace", full)

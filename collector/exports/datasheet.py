@@ -26,12 +26,12 @@ import hashlib
 import json
 import os
 import shutil
-import tempfile
+import stat
 from collections.abc import Iterator
 from dataclasses import asdict, dataclass, field
 from datetime import UTC, datetime
 from pathlib import Path
-from typing import Any, TypedDict
+from typing import TYPE_CHECKING, Any, TypedDict
 
 from collector import __version__
 from collector.checks.licences import licence_allowed, licence_conditions, licence_deed_url
@@ -43,6 +43,10 @@ from collector.safe_text import csv_cell, csv_row
 from collector.storage import queries
 from collector.storage.ledger import Ledger
 from collector.storage.queries import Timeframe
+from collector.storage.safe_paths import link_refused, new_temp_file, own_folder, replace_file
+
+if TYPE_CHECKING:
+    from collector.storage.store import Store
 
 # Flags from collector.checks.images that point at personal data (GPS position, camera serial
 # number,
@@ -225,23 +229,35 @@ def _count_kept(counts: ReleaseCounts, row: dict[str, Any]) -> None:
 def link_or_copy(src: Path, dst: Path) -> str:
     """Hard-link ``src`` to ``dst``; copy where links are impossible. Returns 'linked'/'copied'.
 
-    An existing ``dst`` with the same size is kept (names are content hashes)."""
-    if dst.exists():
-        if dst.stat().st_size == src.stat().st_size:
+    An existing ``dst`` with the same size is kept (names are content hashes); a link there
+    is refused, and a copy goes through a new temp file, so nothing is written through a link."""
+    try:
+        info = os.lstat(dst)
+    except FileNotFoundError:
+        info = None
+    if info is not None:
+        if stat.S_ISLNK(info.st_mode):
+            raise link_refused(dst)
+        if info.st_size == src.stat().st_size:
             return "kept"
         raise CollectionError(f"{dst} exists with different content; remove it or choose an "
                               "empty output folder")
     try:
-        os.link(src, dst)
+        os.link(src, dst)  # src: a plain stored file (Store.existing)
         return "linked"
     except OSError as exc:
         # EXDEV: another filesystem; EPERM/ENOTSUP/EMLINK: links not allowed or too many.
         if exc.errno not in (errno.EXDEV, errno.EPERM, errno.ENOTSUP, errno.EMLINK,
                              errno.EACCES):
             raise
-    tmp = dst.with_name(f".{dst.name}.part")
-    shutil.copyfile(src, tmp)
-    os.replace(tmp, dst)
+    fd, tmp = new_temp_file(dst.parent, f".{dst.name}.", ".part")
+    try:
+        with open(src, "rb") as source, os.fdopen(fd, "wb") as copy:
+            shutil.copyfileobj(source, copy)
+        os.replace(tmp, dst)
+    except BaseException:
+        tmp.unlink(missing_ok=True)
+        raise
     return "copied"
 
 
@@ -261,21 +277,18 @@ class HashingWriter:
 
 
 def _atomic_write_text(path: Path, text: str) -> None:
-    """Write a whole file through a temp file in the same folder and os.replace."""
-    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", dir=path.parent)
-    try:
-        os.fchmod(fd, 0o644)  # mkstemp makes 0600; these files are meant to be shared
-        with os.fdopen(fd, "w", encoding="utf-8", newline="") as fh:
-            fh.write(text)
-        os.replace(tmp, path)
-    except BaseException:
-        Path(tmp).unlink(missing_ok=True)
-        raise
+    """Write a whole file through a new temp file (O_EXCL, 0644) in the same folder and
+    os.replace (which replaces a link at ``path``; it never writes through one)."""
+    replace_file(path, text)
 
 
 def check_out_folder(root: Path, out: Path, *, overwrite: bool) -> None:
     """Refuse an output folder that is a file, lies in the store, or holds files (unless
-    --overwrite, which replaces only this export's own files)."""
+    --overwrite, which replaces only this export's own files). Inside the collection folder
+    (the default DIR/datasheet) no part of it may be a symbolic link (refused); a folder
+    outside it is the user's own choice."""
+    if _inside(root, out):
+        own_folder(_absolute(root), _absolute(out))
     store = (root / "files").resolve()
     target = out.resolve()
     if target == store or store in target.parents:
@@ -288,6 +301,23 @@ def check_out_folder(root: Path, out: Path, *, overwrite: bool) -> None:
             f"{out} is not empty; nothing was written. Choose an empty or new folder, or pass "
             "--overwrite to replace this export's own files (nothing else is touched or "
             "deleted)")
+
+
+def _absolute(path: Path) -> Path:
+    return Path(os.path.abspath(path))
+
+
+def _inside(root: Path, out: Path) -> bool:
+    """Whether ``out``, as written (links not resolved), lies in the collection folder."""
+    return _absolute(out).is_relative_to(_absolute(root))
+
+
+def make_out_folder(root: Path, out: Path) -> None:
+    """Create the output folder; inside the collection never through a link."""
+    if _inside(root, out):
+        own_folder(_absolute(root), _absolute(out), create=True)
+    else:
+        out.mkdir(parents=True, exist_ok=True)
 
 
 @dataclass
@@ -307,15 +337,37 @@ def write_release(ledger: Ledger, recipe: Recipe, out: Path, store_root: Path, *
     the sha256 of provenance.csv."""
     from collector.storage.store import Store
 
-    counts = ReleaseCounts()
     store = Store(store_root)
     images = out / IMAGES_DIR
     if with_images:
-        images.mkdir(exist_ok=True)
-    prov_tmp = out / ".provenance.csv.part"
-    attr_tmp = out / ".attribution.csv.part"
-    with open(prov_tmp, "wb") as prov_fh, open(attr_tmp, "w", encoding="utf-8",
-                                                newline="") as attr_fh:
+        own_folder(out, images, create=True)  # images/ as a link: refused
+    prov_fd, prov_tmp = new_temp_file(out, ".provenance.csv.", ".part")
+    attr_fd, attr_tmp = new_temp_file(out, ".attribution.csv.", ".part")
+    try:
+        counts, digest = _write_rows(ledger, recipe, store, images, prov_fd, attr_fd,
+                                     with_images=with_images, exclude_flagged=exclude_flagged)
+        os.replace(prov_tmp, out / "provenance.csv")
+        os.replace(attr_tmp, out / "attribution.csv")
+    finally:
+        prov_tmp.unlink(missing_ok=True)
+        attr_tmp.unlink(missing_ok=True)
+    if with_images:
+        present = sum(1 for e in os.scandir(images) if not e.name.startswith("."))
+        if present != counts.files:
+            raise CollectionError(
+                f"{images} holds {present - counts.files} file(s) that are not part of this "
+                "release (left from an earlier export?); collector never deletes them. Remove "
+                "them, or export into an empty folder, then run again")
+    return counts, digest
+
+
+def _write_rows(ledger: Ledger, recipe: Recipe, store: Store, images: Path,
+                prov_fd: int, attr_fd: int, *, with_images: bool,
+                exclude_flagged: bool) -> tuple[ReleaseCounts, str]:
+    """Stream the rows into the two open temp files (and link images/)."""
+    counts = ReleaseCounts()
+    with os.fdopen(prov_fd, "wb") as prov_fh, os.fdopen(attr_fd, "w", encoding="utf-8",
+                                                         newline="") as attr_fh:
         sink = HashingWriter(prov_fh)
         prov = csv.DictWriter(sink, PROVENANCE_COLUMNS, extrasaction="ignore")
         attr = csv.writer(attr_fh)
@@ -323,8 +375,8 @@ def write_release(ledger: Ledger, recipe: Recipe, out: Path, store_root: Path, *
         attr.writerow(ATTRIBUTION_COLUMNS)
         for row in iter_release_rows(ledger, recipe, counts, exclude_flagged=exclude_flagged):
             if with_images:
-                src = store.path_for(row["sha256"], row["_ext"])
-                if not src.is_file():
+                src = store.existing(row["sha256"], row["_ext"])
+                if src is None:
                     counts.missing_files += 1
                     continue
                 how = link_or_copy(src, images / row["file_name"])
@@ -339,15 +391,6 @@ def write_release(ledger: Ledger, recipe: Recipe, out: Path, store_root: Path, *
                 row["file_name"], row["title"], row["creator"],
                 row["page_url"] or row["image_url"] or row["source"],
                 row["spdx_id"] or row["licence_raw"] or "unknown", row["licence_url"])])
-    os.replace(prov_tmp, out / "provenance.csv")
-    os.replace(attr_tmp, out / "attribution.csv")
-    if with_images:
-        present = sum(1 for e in os.scandir(images) if not e.name.startswith("."))
-        if present != counts.files:
-            raise CollectionError(
-                f"{images} holds {present - counts.files} file(s) that are not part of this "
-                "release (left from an earlier export?); collector never deletes them. Remove "
-                "them, or export into an empty folder, then run again")
     return counts, sink.digest.hexdigest()
 
 
@@ -364,7 +407,7 @@ def export_datasheet(root: Path, *, out: Path | None = None, answers_path: Path 
     answers = load_answers(answers_path)
     out = out if out is not None else root / "datasheet"
     check_out_folder(root, out, overwrite=overwrite)
-    out.mkdir(parents=True, exist_ok=True)
+    make_out_folder(root, out)
     with collection.ledger(readonly=True) as ledger:
         try:
             counts, prov_sha = write_release(ledger, recipe, out, collection.store.root,

@@ -1,8 +1,11 @@
 """A collection folder: ``recipe.toml``, ``ledger.sqlite``, the ``files/`` store and
 ``collection.id`` (the folder's identity, the same uuid as the ledger's ``collection_id``).
 
-Nothing is ever written outside the folder. A running ``gather`` holds ``.gather.lock`` so that
-a second one refuses to start, while ``status`` and ``trace`` keep reading the ledger.
+Nothing is ever written outside the folder: every file and folder of ours below it is opened
+without following symbolic links (:mod:`collector.storage.safe_paths`); a link planted where
+collector keeps its own file or folder is refused (PathRefused, exit 2). A running
+``gather`` holds ``.gather.lock`` so that a second one refuses to start, while ``status`` and
+``trace`` keep reading the ledger.
 
 Every command opens the folder through :func:`open_collection`, which refuses (exit 2, nothing
 touched) a ledger that cannot describe the store beside it: unusable (see ``Ledger.open``),
@@ -16,7 +19,6 @@ import contextlib
 import fcntl
 import json
 import os
-import stat
 import uuid
 from collections.abc import Iterator
 from dataclasses import dataclass
@@ -27,6 +29,14 @@ from collector.config.recipe import Recipe, load_recipe
 from collector.errors import CollectionError, LedgerUnusable
 from collector.storage import queries
 from collector.storage.ledger import Ledger, ways_out
+from collector.storage.safe_paths import (
+    open_own_file,
+    own_file_exists,
+    own_folder,
+    refuse_ledger_links,
+    refuse_link,
+    write_new_file,
+)
 from collector.storage.store import Store
 
 RECIPE_NAME = "recipe.toml"
@@ -74,14 +84,10 @@ class Collection:
 
     def folder_id(self) -> str | None:
         """The id in ``collection.id``, or None when the folder has none (older folders)."""
-        try:
-            info = os.lstat(self.id_path)
-        except FileNotFoundError:
+        if not own_file_exists(self.id_path):  # a link or a folder there is refused
             return None
-        if not stat.S_ISREG(info.st_mode):
-            raise CollectionError(f"{self.id_path} is not a plain file (a link or a folder); "
-                                  "replace it with the file collector wrote, or remove it")
-        text = self.id_path.read_text("utf-8").strip()
+        with os.fdopen(open_own_file(self.id_path, os.O_RDONLY), encoding="utf-8") as fh:
+            text = fh.read(200).strip()
         try:
             return str(uuid.UUID(text))
         except ValueError as exc:
@@ -91,16 +97,7 @@ class Collection:
 
     def write_folder_id(self, value: str) -> None:
         """Create ``collection.id``; an existing file (or a planted link) is never replaced."""
-        try:
-            fd = os.open(self.id_path, os.O_WRONLY | os.O_CREAT | os.O_EXCL | os.O_NOFOLLOW,
-                         0o644)
-        except FileExistsError as exc:
-            raise CollectionError(f"{self.id_path} appeared while collector was writing it; "
-                                  "run the command again") from exc
-        with os.fdopen(fd, "w", encoding="utf-8") as fh:
-            fh.write(value + "\n")
-            fh.flush()
-            os.fsync(fh.fileno())
+        write_new_file(self.id_path, value + "\n")
 
     def recipe(self) -> Recipe:
         """Load and validate the folder's recipe."""
@@ -121,10 +118,7 @@ class Collection:
     def ensure_cache_dir(self) -> Path:
         """Create the cache folder; a symlink in its place is refused (it could point
         outside the collection)."""
-        if self.cache_dir.is_symlink():
-            raise CollectionError(f"{self.cache_dir} is a symlink; collector writes only "
-                                  "inside the collection folder. Remove the link and run again")
-        self.cache_dir.mkdir(exist_ok=True)
+        own_folder(self.root, self.cache_dir, create=True)
         return self.cache_dir
 
     def move_derived_out_of_store(self) -> int:
@@ -132,7 +126,7 @@ class Collection:
         in the cache folder on demand); returns how many were removed. Links are removed as
         links, never followed."""
         store = self.root / FILES_NAME
-        if not store.is_dir():
+        if not own_folder(self.root, store):  # files/ as a link: refused, never searched
             return 0
         stale = [store / name for name in _OLD_DERIVED]
         stale += list(store.glob(".phash-index.tmp-*"))
@@ -150,9 +144,8 @@ class Collection:
     def append_error_log(self, text: str) -> None:
         """Append ``text`` to the folder's error log; a symlink planted there is refused
         (O_NOFOLLOW), so the log never writes outside the folder."""
-        flags = os.O_WRONLY | os.O_APPEND | os.O_CREAT | os.O_NOFOLLOW
         try:
-            fd = os.open(self.error_log_path, flags, 0o644)
+            fd = open_own_file(self.error_log_path, os.O_WRONLY | os.O_APPEND | os.O_CREAT)
         except OSError as exc:
             raise CollectionError(f"cannot write the error log {self.error_log_path}: {exc} "
                                   "(a symlink there is refused)") from exc
@@ -161,9 +154,10 @@ class Collection:
 
     @contextlib.contextmanager
     def gather_lock(self) -> Iterator[None]:
-        """Hold the folder's gather lock; a second holder gets a clear CollectionError."""
+        """Hold the folder's gather lock; a second holder gets a clear CollectionError.
+        The lock file is opened with O_NOFOLLOW: a planted link is refused, never truncated."""
         path = self.root / LOCK_NAME
-        fd = os.open(path, os.O_RDWR | os.O_CREAT, 0o644)
+        fd = open_own_file(path, os.O_RDWR | os.O_CREAT)
         try:
             try:
                 fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
@@ -246,6 +240,7 @@ def open_collection(root: Path) -> Collection:
         raise CollectionError(f"{root} does not exist; create a collection with "
                               f"'collector init {root}'")
     collection = Collection(root)
+    refuse_ledger_links(collection.ledger_path)  # SQLite would follow a link and write there
     if collection.recipe_path.is_file() and not collection.ledger_path.exists() and (
             store_has_files(collection)):
         raise LedgerUnusable(f"{root} has no {LEDGER_NAME} but {collection.store.root} holds "
@@ -271,6 +266,8 @@ def init_collection(root: Path, *, contact: str = "", name: str | None = None,
             f"{root} is not empty; nothing was changed. Choose an empty or new folder, or "
             "pass --existing-ok to add the missing collection files without touching others")
     collection = Collection(root)
+    if root.is_dir():
+        refuse_init_links(collection)
     if root.is_dir() and not collection.ledger_path.exists() and store_has_files(collection):
         raise LedgerUnusable(f"{root} has no {LEDGER_NAME} but {collection.store.root} holds "
                              "stored files; a new empty ledger would not describe them. "
@@ -281,14 +278,23 @@ def init_collection(root: Path, *, contact: str = "", name: str | None = None,
     folder_id = collection.folder_id() if root.is_dir() else None
     root.mkdir(parents=True, exist_ok=True)
     if not collection.recipe_path.exists():
-        collection.recipe_path.write_text(
-            recipe_template(contact=contact, name=name or root.resolve().name), "utf-8")
+        write_new_file(collection.recipe_path,
+                       recipe_template(contact=contact, name=name or root.resolve().name))
     if not collection.ledger_path.exists():
         with Ledger.create(collection.ledger_path, collection_id=folder_id) as ledger:
             if folder_id is None:
                 collection.write_folder_id(ledger.collection_id() or "")
     collection.store.ensure()
     return collection
+
+
+def refuse_init_links(collection: Collection) -> None:
+    """Before init writes anything: a link at any path it writes is refused (nothing is
+    written, inside or outside the folder)."""
+    refuse_link(collection.recipe_path)
+    own_file_exists(collection.id_path)
+    refuse_ledger_links(collection.ledger_path)
+    own_folder(collection.root, collection.store.incoming_dir)
 
 
 @dataclass(frozen=True)

@@ -22,6 +22,7 @@ import numpy as np
 
 from collector.storage import queries
 from collector.storage.ledger import Ledger
+from collector.storage.safe_paths import new_temp_file, open_own_file, refuse_link
 
 _MASK = (1 << 64) - 1
 
@@ -194,6 +195,7 @@ class HashFile:
         mark = ledger_mark(ledger)
         try:
             with _locked(path):
+                refuse_link(path)  # a planted link is refused, never read or written through
                 header = _read_header(path)
                 if header is None or not _same(header, mark):
                     header = _update(ledger, path, header, mark)
@@ -264,7 +266,7 @@ def _update(ledger: Ledger, path: Path, header: _Header | None, mark: LedgerMark
 def _append(path: Path, header: _Header, hashes: np.ndarray, keys: bytes,
             mark: LedgerMark) -> _Header:
     n, cap = header.entries, header.capacity
-    with path.open("r+b") as fh:
+    with os.fdopen(open_own_file(path, os.O_RDWR), "r+b") as fh:
         # Entries first, header last: a reader of the old header never sees the new rows.
         fh.seek(_HEADER_SIZE + 8 * n)
         fh.write(hashes.astype("<u8").tobytes())
@@ -282,9 +284,9 @@ def _rebuild(ledger: Ledger, path: Path) -> _Header:
     n = len(hashes)
     cap = max(1024, -(-(n + n // 2) // 1024) * 1024)  # room to append half as many again
     header = _Header(cap, n, mark)
-    tmp = path.with_name(f"{path.name}.tmp-{os.getpid()}")
+    fd, tmp = new_temp_file(path.parent, f"{path.name}.tmp-")  # O_EXCL: never through a link
     try:
-        with tmp.open("wb") as fh:
+        with os.fdopen(fd, "wb") as fh:
             fh.write(_pack(header))
             fh.write(hashes.astype("<u8").tobytes())
             fh.seek(_HEADER_SIZE + 8 * cap)
@@ -298,10 +300,11 @@ def _rebuild(ledger: Ledger, path: Path) -> _Header:
 
 @contextlib.contextmanager
 def _locked(path: Path) -> Iterator[None]:
-    """Hold an exclusive lock beside the hash file while it is checked and updated."""
+    """Hold an exclusive lock beside the hash file while it is checked and updated; the
+    folder and the lock file are never reached through a link (refused)."""
+    refuse_link(path.parent)
     path.parent.mkdir(parents=True, exist_ok=True)
-    fd = os.open(path.with_name(path.name + ".lock"),
-                 os.O_RDWR | os.O_CREAT | os.O_NOFOLLOW, 0o644)
+    fd = open_own_file(path.with_name(path.name + ".lock"), os.O_RDWR | os.O_CREAT)
     try:
         fcntl.flock(fd, fcntl.LOCK_EX)
         yield

@@ -29,6 +29,7 @@ from typing import Any
 import sqlite_utils
 
 from collector.errors import LedgerError, LedgerUnusable
+from collector.storage.safe_paths import refuse_ledger_links
 
 SCHEMA_VERSION = 3
 
@@ -187,6 +188,7 @@ class Ledger:
 
     @classmethod
     def _connect(cls, path: Path, *, readonly: bool = False, create: bool = False) -> Ledger:
+        refuse_ledger_links(path)  # SQLite follows links (also its -wal/-shm): refused
         try:
             if readonly:
                 conn = sqlite3.connect(f"file:{path}?mode=ro", uri=True,
@@ -538,6 +540,7 @@ class Ledger:
     def backup_to(self, target: Path) -> None:
         """Copy the whole ledger into ``target`` with SQLite's online backup API (a
         consistent copy while others read; https://www.sqlite.org/backup.html)."""
+        refuse_ledger_links(target)
         with self._lock, self._translate(f"backup to {target}"):
             dest = sqlite3.connect(target)
             try:

@@ -17,11 +17,9 @@ A ledger is never deleted here: it is renamed to ``ledger.sqlite.<why>-<UTC time
 
 from __future__ import annotations
 
-import contextlib
 import hashlib
 import os
 import re
-import stat
 import uuid
 from dataclasses import dataclass, field
 from datetime import UTC, datetime
@@ -37,6 +35,7 @@ from collector.storage.collection import (
 )
 from collector.storage.hashindex import to_signed
 from collector.storage.ledger import Ledger, utc_now
+from collector.storage.safe_paths import open_own_file, own_folder, remove_own_file
 
 BACKUP_DIR = "ledger-backups"
 # How many backups are kept: five runs back is enough to step past a bad night while the
@@ -67,17 +66,7 @@ def _collection_folder(root: Path) -> Collection:
 def backup_folder(collection: Collection, *, create: bool = False) -> Path:
     """``ledger-backups/`` of the collection; a link or a non-folder there is refused."""
     folder = collection.root / BACKUP_DIR
-    try:
-        info = os.lstat(folder)
-    except FileNotFoundError:
-        if not create:
-            return folder
-        os.mkdir(folder, 0o755)
-        info = os.lstat(folder)
-    if not stat.S_ISDIR(info.st_mode):
-        raise CollectionError(
-            f"{folder} is a link or not a folder; ledger backups are written only into a "
-            "plain folder inside the collection. Rename or remove it and run again")
+    own_folder(collection.root, folder, create=create)
     return folder
 
 
@@ -102,8 +91,7 @@ def backup_ledger(collection: Collection, ledger: Ledger, run_id: int) -> Path:
     name = f"ledger-{run_id}-{_stamp()}.sqlite"
     partial = folder / f".{name}.partial"
     try:
-        os.close(os.open(partial, os.O_WRONLY | os.O_CREAT | os.O_EXCL | os.O_NOFOLLOW,
-                         0o600))
+        os.close(open_own_file(partial, os.O_WRONLY | os.O_CREAT | os.O_EXCL, 0o600))
     except OSError as exc:
         raise LedgerError(f"cannot write a ledger backup in {folder}: {exc}") from exc
     try:
@@ -119,7 +107,8 @@ def backup_ledger(collection: Collection, ledger: Ledger, run_id: int) -> Path:
 
 # --- setting a ledger aside --------------------------------------------------------------------
 def set_aside(collection: Collection, why: str) -> Path | None:
-    """Rename the ledger (and its -wal/-shm) to ``ledger.sqlite.<why>-<UTC time>``."""
+    """Rename the ledger (and its -wal/-shm) to ``ledger.sqlite.<why>-<UTC time>``; a
+    rename moves a link itself, never what it points to."""
     path = collection.ledger_path
     if not os.path.lexists(path):
         return None
@@ -136,9 +125,8 @@ def _fresh_temp(collection: Collection, name: str) -> Path:
     """A new empty file of ours in the collection folder (an old leftover is replaced)."""
     temp = collection.root / name
     for suffix in ("", "-journal", "-wal", "-shm"):
-        with contextlib.suppress(FileNotFoundError):
-            os.unlink(temp.with_name(temp.name + suffix))
-    os.close(os.open(temp, os.O_WRONLY | os.O_CREAT | os.O_EXCL | os.O_NOFOLLOW, 0o644))
+        remove_own_file(temp.with_name(temp.name + suffix))  # a link goes as a link
+    os.close(open_own_file(temp, os.O_WRONLY | os.O_CREAT | os.O_EXCL))
     return temp
 
 

@@ -2,7 +2,9 @@
 
 A file enters the store only whole: it is written to a temp file under ``files/.incoming/``
 (same filesystem), fsynced, then moved into place with ``os.replace``. A stored file is never
-overwritten. Nothing is written outside the store's root.
+overwritten. Nothing is written outside the store's root: ``files/``, ``files/.incoming/``
+and the shard folders are never reached through a symbolic link (see
+:mod:`collector.storage.safe_paths`); a link there, or a stored file that is a link, is refused.
 """
 
 from __future__ import annotations
@@ -12,22 +14,29 @@ import errno
 import hashlib
 import os
 import re
-import tempfile
+import stat
 from collections.abc import Iterator
 from pathlib import Path
 
-from collector.errors import StoreError
+from collector.errors import PathRefused, StoreError
+from collector.storage.safe_paths import (
+    link_refused,
+    new_temp_file,
+    own_folder,
+    own_folder_fd,
+    refuse_link,
+)
 
 SHA256_RE = re.compile(r"^[0-9a-f]{64}$")
 EXT_RE = re.compile(r"^[a-z0-9]{1,5}$")
+_SHARD_RE = re.compile(r"^[0-9a-f]{2}$")
 
 
 def make_temp(folder: Path, prefix: str = "part-") -> tuple[int, Path]:
-    """A new temp file in ``folder`` that will be readable like any stored file once moved
-    into place (mkstemp creates 0600 files, which released hard links would inherit)."""
-    fd, name = tempfile.mkstemp(prefix=prefix, dir=folder)
-    os.fchmod(fd, 0o644)
-    return fd, Path(name)
+    """A new temp file in ``folder`` (not a link: refused) that will be readable like any
+    stored file once moved into place; created with O_EXCL, so never through a link."""
+    refuse_link(folder)
+    return new_temp_file(folder, prefix)
 
 
 def _store_error(exc: OSError, what: str) -> StoreError:
@@ -43,16 +52,15 @@ class Store:
     def __init__(self, root: Path) -> None:
         self.root = root
         self.incoming_dir = root / ".incoming"
-        self._made: set[Path] = set()  # folders known to exist: mkdir is slow on some disks
 
-    def _mkdir(self, folder: Path) -> None:
-        if folder not in self._made:
-            folder.mkdir(parents=True, exist_ok=True)
-            self._made.add(folder)
+    @property
+    def _base(self) -> Path:
+        """The collection folder: the store's own folders are checked from here down."""
+        return self.root.parent
 
     def ensure(self) -> None:
-        """Create the store folders if they are missing."""
-        self._mkdir(self.incoming_dir)
+        """Create the store folders if they are missing (a link in their place is refused)."""
+        own_folder(self._base, self.incoming_dir, create=True)
 
     def path_for(self, sha256: str, ext: str) -> Path:
         """Where a file with this digest and extension lives (whether or not it exists)."""
@@ -72,30 +80,42 @@ class Store:
 
     def adopt(self, tmp_path: Path, sha256: str, ext: str, *, synced: bool = False) -> Path:
         """Move a complete temp file into place (fsynced here unless the writer already did:
-        ``synced``). An existing file is kept as it is."""
+        ``synced``). An existing file is kept as it is. The shard folder is opened without
+        following links and the rename goes into that descriptor, so a link planted at
+        ``files/ab`` or ``files/ab/cd`` never receives the file."""
         target = self.path_for(sha256, ext)
         try:
-            if target.exists():
-                tmp_path.unlink(missing_ok=True)
-                return target
-            self._mkdir(target.parent)
-            if not synced:
-                with open(tmp_path, "rb+") as fh:
-                    os.fsync(fh.fileno())
-            os.replace(tmp_path, target)
+            with own_folder_fd(self._base, target.parent, create=True) as shard:
+                try:
+                    info = os.stat(target.name, dir_fd=shard, follow_symlinks=False)
+                except FileNotFoundError:
+                    info = None
+                if info is not None:
+                    if stat.S_ISLNK(info.st_mode):
+                        raise link_refused(target)
+                    tmp_path.unlink(missing_ok=True)
+                    return target
+                if not synced:
+                    with open(tmp_path, "rb+") as fh:
+                        os.fsync(fh.fileno())
+                os.replace(tmp_path, target.name, dst_dir_fd=shard)
             # The folder is not fsynced: after a power loss a rename may be lost, and
             # collection.recover() then resets the item whose file is missing.
         except OSError as exc:
             with contextlib.suppress(OSError):
                 tmp_path.unlink(missing_ok=True)
             raise _store_error(exc, f"storing {target.name}") from exc
+        except PathRefused:
+            with contextlib.suppress(OSError):
+                tmp_path.unlink(missing_ok=True)
+            raise
         return target
 
     def put_bytes(self, data: bytes, ext: str) -> tuple[str, Path]:
         """Store bytes (e.g. a crop); returns (sha256, path)."""
         sha = hashlib.sha256(data).hexdigest()
         target = self.path_for(sha, ext)
-        if target.exists():
+        if target.exists():  # a link there is refused by adopt, never written through
             return sha, target
         fd, tmp = self.new_temp()
         try:
@@ -108,29 +128,72 @@ class Store:
             raise _store_error(exc, f"writing {target.name}") from exc
         return sha, self.adopt(tmp, sha, ext, synced=True)
 
+    def existing(self, sha256: str, ext: str) -> Path | None:
+        """The stored file for this digest and extension if it is there, else None; reached
+        without following links (a link on the way or in its place is refused)."""
+        target = self.path_for(sha256, ext)
+        if not own_folder(self._base, target.parent):
+            return None
+        try:
+            info = os.lstat(target)
+        except FileNotFoundError:
+            return None
+        if stat.S_ISLNK(info.st_mode):
+            raise link_refused(target)
+        return target if stat.S_ISREG(info.st_mode) else None
+
     def clean_incoming(self) -> int:
-        """Remove temp files a crashed run left behind; returns how many were removed."""
+        """Remove temp files a crashed run left behind; returns how many were removed.
+        A link at ``files/`` or ``files/.incoming`` is refused, never followed; links inside
+        are removed as links."""
         removed = 0
-        if self.incoming_dir.is_dir():
-            for leftover in self.incoming_dir.iterdir():
+        if own_folder(self._base, self.incoming_dir):
+            for leftover in os.scandir(self.incoming_dir):
                 with contextlib.suppress(OSError):
-                    leftover.unlink()
+                    os.unlink(leftover.path)  # a folder fails (kept); a link goes as a link
                     removed += 1
         return removed
 
+    def _checked_dirs(self, folder: Path) -> Iterator[Path]:
+        """The shard folders (two hex digits) in ``folder``; a link is refused."""
+        with os.scandir(folder) as entries:
+            for entry in entries:
+                if not _SHARD_RE.match(entry.name):
+                    continue
+                if entry.is_symlink():
+                    raise link_refused(Path(entry.path))
+                if entry.is_dir(follow_symlinks=False):
+                    yield Path(entry.path)
+
     def iter_stored(self) -> Iterator[tuple[str, Path]]:
-        """Every stored file as (sha256, path)."""
-        if not self.root.is_dir():
+        """Every stored file as (sha256, path). A link in the store (``files/`` itself, a
+        shard folder or a stored file) is refused: collector never reads or deletes through
+        one."""
+        if not own_folder(self._base, self.root):
             return
-        for path in self.root.glob("[0-9a-f][0-9a-f]/[0-9a-f][0-9a-f]/*"):
-            sha = path.name.split(".", 1)[0]
-            if SHA256_RE.match(sha):
-                yield sha, path
+        for first in self._checked_dirs(self.root):
+            for second in self._checked_dirs(first):
+                with os.scandir(second) as entries:
+                    found = [(e.name, e.is_symlink()) for e in entries]
+                for name, is_link in found:
+                    sha = name.split(".", 1)[0]
+                    if SHA256_RE.match(sha):
+                        if is_link:
+                            raise link_refused(second / name)
+                        yield sha, second / name
 
     def find(self, sha256: str) -> Path | None:
-        """The stored path of a digest, whatever its extension, or None."""
+        """The stored path of a digest, whatever its extension, or None (a link on the way,
+        or a stored file that is a link, is refused)."""
+        if not SHA256_RE.match(sha256):
+            return None
         folder = self.root / sha256[:2] / sha256[2:4]
-        if folder.is_dir():
-            for path in folder.glob(f"{sha256}.*"):
-                return path
+        if not own_folder(self._base, folder):
+            return None
+        with os.scandir(folder) as entries:
+            for entry in entries:
+                if entry.name.startswith(f"{sha256}."):
+                    if entry.is_symlink():
+                        raise link_refused(Path(entry.path))
+                    return Path(entry.path)
         return None
