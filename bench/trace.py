@@ -32,10 +32,10 @@ from pathlib import Path
 import numpy as np
 from PIL import Image, ImageDraw
 
-from collector.checks.phash import HASH_ALGO, hash_image_file
+from collector.checks.phash import HASH_ALGO, hash_image_file, to_signed
 from collector.exports.trace import Tracer
 from collector.storage.collection import Collection, init_collection
-from collector.storage.hashindex import HashFile, ledger_mark, to_signed
+from collector.storage.hashindex import HashFile, ledger_mark
 
 REAL = 1000
 NOW = "2026-03-01T21:53:28.123Z"

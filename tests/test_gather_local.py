@@ -175,3 +175,38 @@ def test_gather_refuses_a_recipe_whose_environment_variable_is_unset(
             "FERN_ARCHIVE_KEY is not set") in result.stderr
     with col.ledger(readonly=True) as ledger:
         assert ledger.scalar("SELECT count(*) FROM runs") == 0
+
+
+def test_icc_profile_and_density_are_kept_in_the_ledger(tmp_path: Path) -> None:
+    """A scan with an embedded sRGB profile at 300 dpi: its files row names the profile (its
+    ICC.1 'desc' tag, read through Pillow's ImageCms) and the density; a plain PNG has NULLs.
+    rebuild-ledger records the same facts."""
+    from PIL import ImageCms
+
+    from collector.storage.ledger_repair import rebuild_ledger
+
+    col = init_collection(tmp_path / "c", contact="me@example.org")
+    (col.root / "in").mkdir()
+    profile = ImageCms.ImageCmsProfile(ImageCms.createProfile("sRGB"))
+    structured_image(1).save(col.root / "in" / "with.jpg", icc_profile=profile.tobytes(),
+                             dpi=(300, 300))
+    structured_image(2).save(col.root / "in" / "plain.png")
+    col.recipe_path.write_text(col.recipe_path.read_text() + (
+        '\n[[sources]]\nname = "desk"\nkind = "scans"\npath = "in"\nlicence = "CC0-1.0"\n'))
+    gather(col, **NO_FETCHER)
+    query = ("SELECT i.source_key, f.icc_profile, f.dpi_x, f.dpi_y FROM items i "
+             "JOIN files f ON f.sha256 = i.file_sha256 ORDER BY i.source_key")
+    expected = [("plain.png", None, None, None),
+                ("with.jpg", ImageCms.getProfileDescription(profile).strip(), 300.0, 300.0)]
+    with col.ledger(readonly=True) as ledger:
+        assert [tuple(r.values()) for r in ledger.query(query)] == expected
+        before = {r["sha256"]: (r["icc_profile"], r["dpi_x"]) for r in ledger.query(
+            "SELECT sha256, icc_profile, dpi_x FROM files")}
+    col.ledger_path.write_bytes(b"")
+    for leftover in col.root.glob("ledger.sqlite-*"):
+        leftover.unlink()
+    rebuild_ledger(col.root)
+    with col.ledger(readonly=True) as ledger:
+        after = {r["sha256"]: (r["icc_profile"], r["dpi_x"]) for r in ledger.query(
+            "SELECT sha256, icc_profile, dpi_x FROM files")}
+    assert after == before

@@ -28,12 +28,11 @@ from typer.testing import CliRunner
 
 from collector.checks.images import inspect_image
 from collector.checks.licences import normalise_licence, rights_conflict
-from collector.checks.phash import hamming, hash_image_file
+from collector.checks.phash import hamming, hash_image_file, to_signed
 from collector.cli import app
 from collector.exports.trace import Tracer, TraceResult, attribution_line, format_record, summarise
 from collector.run.scheduling import Gatherer
 from collector.storage.collection import Collection, init_collection
-from collector.storage.hashindex import to_signed
 from collector.storage.ledger import Ledger
 
 runner = CliRunner()

@@ -8,13 +8,12 @@ from pathlib import Path
 import numpy as np
 import pytest
 
+from collector.checks.phash import to_signed, to_unsigned
 from collector.storage.hashindex import (
     HashFile,
     HashIndex,
     ledger_mark,
     scan,
-    to_signed,
-    to_unsigned,
 )
 from collector.storage.ledger import Ledger
 

@@ -24,7 +24,7 @@ from urllib.parse import urlsplit
 
 from PIL import ExifTags, Image, ImageFile, IptcImagePlugin
 
-from collector.checks.phash import HASH_ALGO, phash_prepared
+from collector.checks.phash import HASH_ALGO, phash_prepared, to_signed
 from collector.errors import ImageRejected
 
 __all__ = ["FORMATS", "RIGHTS_KEYS", "ImageFacts", "inspect_image", "sniff_format"]
@@ -85,6 +85,19 @@ class ImageFacts:
     rights: dict[str, Any] = field(default_factory=dict)
     flags: list[str] = field(default_factory=list)
     type_mismatch: str | None = None
+
+    def file_columns(self) -> dict[str, Any]:
+        """The ledger's ``files`` columns these facts fill (hashes as signed 64-bit integers,
+        as SQLite stores them)."""
+        return {
+            "ext": self.ext, "format": self.format, "mime": self.mime, "width": self.width,
+            "height": self.height, "mode": self.mode, "bit_depth": self.bit_depth,
+            "alpha": self.alpha, "frames": self.frames, "orientation": self.orientation,
+            "phash": to_signed(self.phash), "phash_mirror": to_signed(self.phash_mirror),
+            "hash_algo": self.hash_algo, "exif": self.exif, "rights": self.rights,
+            "icc_profile": self.icc_profile,
+            "dpi_x": self.dpi[0] if self.dpi else None, "dpi_y": self.dpi[1] if self.dpi else None,
+        }
 
 
 # --- format detection (standards.md section 9) -------------------------------------------------

@@ -32,7 +32,7 @@ from collector.run.dedup import Demote, Keep, NearCandidate, NearCopy, TakeOver
 from collector.run.record import RunRecord
 from collector.safe_text import shown_name
 from collector.storage.collection import Collection
-from collector.storage.hashindex import HashIndex, to_signed
+from collector.storage.hashindex import HashIndex
 from collector.storage.ledger import Ledger
 from collector.storage.ledger_repair import RECOVERED_FLAG
 
@@ -375,12 +375,5 @@ class Ingest:
 
 def _file_row(path: Path, facts: ImageFacts, item_id: int, flags: list[str]) -> dict[str, Any]:
     """The files row of a new file (without its sha256)."""
-    return {
-        "size": path.stat().st_size, "ext": facts.ext, "format": facts.format,
-        "mime": facts.mime, "width": facts.width, "height": facts.height,
-        "mode": facts.mode, "bit_depth": facts.bit_depth, "alpha": facts.alpha,
-        "frames": facts.frames, "orientation": facts.orientation,
-        "phash": to_signed(facts.phash), "phash_mirror": to_signed(facts.phash_mirror),
-        "hash_algo": facts.hash_algo, "first_item_id": item_id, "exif": facts.exif,
-        "rights": facts.rights, "flags": flags,
-    }
+    return {"size": path.stat().st_size, **facts.file_columns(), "first_item_id": item_id,
+            "flags": flags}

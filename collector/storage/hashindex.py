@@ -20,21 +20,10 @@ from pathlib import Path
 
 import numpy as np
 
+from collector.checks.phash import to_unsigned
 from collector.storage import queries
 from collector.storage.ledger import Ledger
 from collector.storage.safe_paths import new_temp_file, open_own_file, refuse_link
-
-_MASK = (1 << 64) - 1
-
-
-def to_unsigned(value: int) -> int:
-    """A signed 64-bit ledger integer as the unsigned hash it stores."""
-    return value & _MASK
-
-
-def to_signed(value: int) -> int:
-    """An unsigned 64-bit hash as a signed integer SQLite can hold."""
-    return value - (1 << 64) if value >= 1 << 63 else value
 
 
 def scan(hashes: np.ndarray, phash: int, mirror: int | None,

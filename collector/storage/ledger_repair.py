@@ -33,7 +33,6 @@ from collector.storage.collection import (
     Collection,
     check_ledger,
 )
-from collector.storage.hashindex import to_signed
 from collector.storage.ledger import Ledger, utc_now
 from collector.storage.safe_paths import open_own_file, own_folder, remove_own_file
 
@@ -227,12 +226,8 @@ def _register(ledger: Ledger, sha: str, path: Path, result: RebuildResult) -> No
     except CollectorError:
         flags.append("unreadable")
     else:
-        row.update({
-            "format": facts.format, "mime": facts.mime, "width": facts.width,
-            "height": facts.height, "mode": facts.mode, "bit_depth": facts.bit_depth,
-            "alpha": facts.alpha, "frames": facts.frames, "orientation": facts.orientation,
-            "phash": to_signed(facts.phash), "phash_mirror": to_signed(facts.phash_mirror),
-            "hash_algo": facts.hash_algo, "exif": facts.exif, "rights": facts.rights})
+        row.update(facts.file_columns())
+        row["ext"] = path.suffix.lstrip(".")  # the name it is stored under, whatever it holds
         flags = [*facts.flags, RECOVERED_FLAG]
     row["flags"] = flags
     ledger.add_file(row)

@@ -14,9 +14,9 @@ import numpy as np
 from PIL import Image
 
 from collector.checks.images import inspect_image
+from collector.checks.phash import to_signed
 from collector.run.gather import gather
 from collector.storage.collection import init_collection, open_collection
-from collector.storage.hashindex import to_signed
 from collector.storage.ledger import Ledger
 
 WEB_HOST = "127.0.0.2:8080"
