@@ -32,7 +32,7 @@ from pathlib import Path
 import numpy as np
 from PIL import Image, ImageDraw
 
-from collector.checks.phash import HASH_ALGO, hash_image_file, to_signed
+from collector.checks.phash import HASH_ALGO, hash_image_file, to_signed64
 from collector.exports.trace import Tracer
 from collector.storage.collection import Collection, init_collection
 from collector.storage.hashindex import HashFile, ledger_mark
@@ -99,7 +99,7 @@ def build(root: Path, total: int, work: Path) -> list[tuple[str, Path, Image.Ima
 
         def rows():
             for i, (sha, size, ph, mirror) in enumerate(rows_real):
-                yield i + 1, sha, size, to_signed(ph), to_signed(mirror)
+                yield i + 1, sha, size, to_signed64(ph), to_signed64(mirror)
             for j in range(fake):
                 yield (REAL + j + 1, fake_shas[j], 50_000, int(fake_hashes[j, 0]),
                        int(fake_hashes[j, 1]))

@@ -28,7 +28,7 @@ from typer.testing import CliRunner
 
 from collector.checks.images import inspect_image
 from collector.checks.licences import normalise_licence, rights_conflict
-from collector.checks.phash import hamming, hash_image_file, to_signed
+from collector.checks.phash import hamming, hash_image_file, to_signed64
 from collector.cli import app
 from collector.exports.trace import Tracer, TraceResult, attribution_line, format_record, summarise
 from collector.run.scheduling import Gatherer
@@ -513,4 +513,4 @@ def test_stored_hashes_are_signed_in_the_ledger(built: Built) -> None:
     src = Collection(built.root).store.find(built.shas["FH-001"])
     with Ledger.open(Collection(built.root).ledger_path, readonly=True) as ledger:
         row = ledger.file(built.shas["FH-001"])
-    assert row is not None and row["phash"] == to_signed(inspect_image(src).phash)  # type: ignore[arg-type]
+    assert row is not None and row["phash"] == to_signed64(inspect_image(src).phash)  # type: ignore[arg-type]

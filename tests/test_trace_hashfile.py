@@ -8,7 +8,7 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from collector.checks.phash import to_signed, to_unsigned
+from collector.checks.phash import to_signed64, to_unsigned64
 from collector.storage.hashindex import (
     HashFile,
     HashIndex,
@@ -24,7 +24,7 @@ def _sha(n: int) -> str:
 
 def _add(ledger: Ledger, n: int, phash: int | None) -> None:
     ledger.add_file({"sha256": _sha(n), "size": 1, "ext": "png",
-                     "phash": None if phash is None else to_signed(phash),
+                     "phash": None if phash is None else to_signed64(phash),
                      "phash_mirror": None, "first_item_id": n})
 
 
@@ -41,7 +41,7 @@ def ledger(tmp_path: Path) -> Ledger:
 
 
 def _stored(ledger: Ledger) -> dict[str, int]:
-    return {r["sha256"]: to_unsigned(r["phash"]) for r in ledger.query(
+    return {r["sha256"]: to_unsigned64(r["phash"]) for r in ledger.query(
         "SELECT sha256, phash FROM files WHERE phash IS NOT NULL")}
 
 

@@ -24,7 +24,7 @@ from urllib.parse import urlsplit
 
 from PIL import ExifTags, Image, ImageFile, IptcImagePlugin
 
-from collector.checks.phash import HASH_ALGO, phash_prepared, to_signed
+from collector.checks.phash import HASH_ALGO, phash_prepared, to_signed64
 from collector.errors import ImageRejected
 
 __all__ = ["FORMATS", "RIGHTS_KEYS", "ImageFacts", "inspect_image", "sniff_format"]
@@ -93,7 +93,7 @@ class ImageFacts:
             "ext": self.ext, "format": self.format, "mime": self.mime, "width": self.width,
             "height": self.height, "mode": self.mode, "bit_depth": self.bit_depth,
             "alpha": self.alpha, "frames": self.frames, "orientation": self.orientation,
-            "phash": to_signed(self.phash), "phash_mirror": to_signed(self.phash_mirror),
+            "phash": to_signed64(self.phash), "phash_mirror": to_signed64(self.phash_mirror),
             "hash_algo": self.hash_algo, "exif": self.exif, "rights": self.rights,
             "icc_profile": self.icc_profile,
             "dpi_x": self.dpi[0] if self.dpi else None, "dpi_y": self.dpi[1] if self.dpi else None,

@@ -119,17 +119,3 @@ def to_signed64(u: int) -> int:
 def to_unsigned64(s: int) -> int:
     """Signed SQLite INTEGER -> the unsigned 64-bit hash."""
     return s & _MASK64
-
-
-# SQLite integers are signed 64-bit: the ledger keeps a hash's bits as that signed value.
-_MASK64 = (1 << 64) - 1
-
-
-def to_unsigned(value: int) -> int:
-    """A signed 64-bit ledger integer as the unsigned hash it stores."""
-    return value & _MASK64
-
-
-def to_signed(value: int) -> int:
-    """An unsigned 64-bit hash as a signed integer SQLite can hold."""
-    return value - (1 << 64) if value >= 1 << 63 else value

@@ -20,7 +20,7 @@ from pathlib import Path
 
 import numpy as np
 
-from collector.checks.phash import to_unsigned
+from collector.checks.phash import to_unsigned64
 from collector.storage import queries
 from collector.storage.ledger import Ledger
 from collector.storage.safe_paths import new_temp_file, open_own_file, refuse_link
@@ -76,7 +76,7 @@ class HashIndex:
         """Load every stored file's hash from the ledger."""
         index = cls()
         for sha256, phash in queries.stored_phashes(ledger):
-            index.add(sha256, to_unsigned(phash))
+            index.add(sha256, to_unsigned64(phash))
         return index
 
     def add(self, sha256: str, phash: int) -> None:

@@ -14,7 +14,6 @@ import numpy as np
 from PIL import Image
 
 from collector.checks.images import inspect_image
-from collector.checks.phash import to_signed
 from collector.run.gather import gather
 from collector.storage.collection import init_collection, open_collection
 from collector.storage.ledger import Ledger
@@ -141,14 +140,9 @@ def add_web_source(root: Path) -> None:
                                 ended_at=started, waited_s=3.0, attempt=1,
                                 robots_verdict="allowed", content_type="image/png")
             with ledger.transaction():
-                ledger.add_file({
-                    "sha256": sha, "size": len(data), "ext": facts.ext, "format": facts.format,
-                    "mime": facts.mime, "width": facts.width, "height": facts.height,
-                    "mode": facts.mode, "bit_depth": facts.bit_depth, "alpha": facts.alpha,
-                    "frames": facts.frames, "orientation": facts.orientation,
-                    "phash": to_signed(facts.phash), "phash_mirror": to_signed(facts.phash_mirror),
-                    "hash_algo": facts.hash_algo, "first_item_id": iid, "exif": facts.exif,
-                    "rights": facts.rights, "flags": flags})
+                # The row ingest writes (collector.run.ingest: size, facts, first item, flags).
+                ledger.add_file({"sha256": sha, "size": len(data), **facts.file_columns(),
+                                 "first_item_id": iid, "flags": flags})
                 ledger.update_item(iid, state="stored", reason=None, file_sha256=sha)
             assert hashlib.sha256(data).hexdigest() == sha
         for key, state, reason, spdx in (("w3", "failed", "http_404", "CC-BY-4.0"),
