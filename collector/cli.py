@@ -277,10 +277,9 @@ def trace(
     Exit 0 when every file traced (exact or near), 1 when some did not, 2 on usage errors.
     Example: collector trace leaf.jpg --in my-leaves;  collector trace to-publish/ --csv
     """
-    from collector.exports.trace import (
+    from collector.exports.trace import Tracer, collect_targets
+    from collector.exports.trace_format import (
         CAUTION,
-        Tracer,
-        collect_targets,
         format_record,
         format_summary,
         format_table,
@@ -380,7 +379,8 @@ def demo(
     from collector.demo import run_demo
     from collector.display import LiveProgress
     from collector.exports.summary import format_summary, summarise
-    from collector.exports.trace import Tracer, format_record
+    from collector.exports.trace import Tracer
+    from collector.exports.trace_format import format_record
 
     progress = _progress_for(quiet=quiet, log_json=False)
     with user_errors():
