@@ -7,9 +7,11 @@ For each URL, and again for each redirect hop (followed by hand, at most 10):
    persisted in the ledger's ``hosts`` table);
 3. the contacted host's budget must allow a request start (:mod:`collector.fetching.budgets`);
 4. the request is sent, retried with tenacity on connection errors, timeouts, 429 and 5xx
-   (honouring Retry-After), and every attempt becomes a ``fetches`` row with a redacted URL.
+   (honouring Retry-After; :mod:`collector.fetching.retry`), and every attempt becomes a
+   ``fetches`` row with a redacted URL.
 
-Bodies are streamed with a byte cap on decoded bytes and an overall deadline. Errors raised are
+Bodies are streamed with a byte cap on decoded bytes and an overall deadline
+(:mod:`collector.fetching.body`). Errors raised are
 :class:`collector.errors.FetchError` subclasses whose messages carry only redacted URLs.
 
 DNS rebinding: the address check resolves the name just before each request, but requests
