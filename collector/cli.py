@@ -11,15 +11,18 @@ from __future__ import annotations
 import json
 import sys
 from collections.abc import Callable, Iterator
-from contextlib import contextmanager
+from contextlib import contextmanager, nullcontext
 from pathlib import Path
-from typing import Any, TypeVar
+from typing import TYPE_CHECKING, Any, TypeVar
 
 import typer
 
 from collector import __version__
 from collector.errors import CollectorError
 from collector.safe_text import for_terminal, one_line
+
+if TYPE_CHECKING:
+    from collector.run.scheduling import RunResult
 
 F = TypeVar("F", bound=Callable[..., Any])
 
@@ -143,41 +146,57 @@ def gather(
     Rerunning resumes: stored items are never requested again. Ctrl-C finishes the files in
     flight and exits 130. Example: collector gather my-leaves --until 07:00
     """
-    from collector.display import LiveProgress
-    from collector.exports.summary import estimate, format_estimate, format_summary, summarise
-    from collector.run.gather import build_fetcher, prepared_run, unknown_files_message
-    from collector.run.scheduling import Gatherer, stop_rules
+    with user_errors():
+        if dry_run:
+            _gather_estimate(folder)
+            return
+        result, lines = _gather_run(folder, until=until, duration=duration,
+                                    max_items=max_items, quiet=quiet, log_json=log_json)
+    _gather_report(folder, result, lines, log_json=log_json)
+
+
+def _gather_estimate(folder: Path) -> None:
+    """gather --dry-run: the sources, budgets and an estimate; nothing is requested."""
+    from collector.exports.summary import estimate, format_estimate
     from collector.storage.collection import open_collection
 
-    with user_errors():
-        collection = open_collection(folder)
-        if dry_run:
-            recipe = collection.recipe()
-            with collection.ledger(readonly=True) as ledger:
-                for line in format_estimate(recipe, estimate(recipe, ledger)):
-                    typer.echo(one_line(line))
-            return
-        def on_recovery(recovery: Any) -> None:
-            if recovery.unknown_files:
-                typer.echo("Note: " + unknown_files_message(collection, recovery.unknown_files),
-                           err=True)
+    collection = open_collection(folder)
+    recipe = collection.recipe()
+    with collection.ledger(readonly=True) as ledger:
+        for line in format_estimate(recipe, estimate(recipe, ledger)):
+            typer.echo(one_line(line))
 
-        with prepared_run(collection, on_recovery=on_recovery) as (recipe, ledger):
-            stop = stop_rules(recipe, until=until, duration=duration, max_items=max_items)
-            progress = _progress_for(quiet=quiet, log_json=log_json)
-            fetcher = build_fetcher(recipe, ledger)
-            try:
-                gatherer = Gatherer(collection, recipe, ledger, fetcher, stop=stop,
-                                    progress=progress)
-                options = {"until": until, "for": duration, "max_items": max_items}
-                if isinstance(progress, LiveProgress):
-                    with progress:
-                        result = gatherer.run(options)
-                else:
-                    result = gatherer.run(options)
-            finally:
-                fetcher.close()
-            lines = format_summary(summarise(ledger))
+
+def _gather_run(folder: Path, *, until: str | None, duration: str | None,
+                max_items: int | None, quiet: bool,
+                log_json: bool) -> tuple[RunResult, list[str]]:
+    """One gather run with the progress view; its result and the summary lines."""
+    from collector.display import LiveProgress
+    from collector.exports.summary import format_summary, summarise
+    from collector.run.gather import prepared_run, run_prepared, unknown_files_message
+    from collector.run.scheduling import stop_rules
+    from collector.storage.collection import open_collection
+
+    collection = open_collection(folder)
+
+    def on_recovery(recovery: Any) -> None:
+        if recovery.unknown_files:
+            typer.echo("Note: " + unknown_files_message(collection, recovery.unknown_files),
+                       err=True)
+
+    with prepared_run(collection, on_recovery=on_recovery) as (recipe, ledger):
+        stop = stop_rules(recipe, until=until, duration=duration, max_items=max_items)
+        progress = _progress_for(quiet=quiet, log_json=log_json)
+        options = {"until": until, "for": duration, "max_items": max_items}
+        with progress if isinstance(progress, LiveProgress) else nullcontext():
+            result = run_prepared(collection, recipe, ledger, stop=stop, progress=progress,
+                                  options=options)
+        return result, format_summary(summarise(ledger))
+
+
+def _gather_report(folder: Path, result: RunResult, lines: list[str], *,
+                   log_json: bool) -> None:
+    """The end of a gather: outcome, summary, backup, and the exit code."""
     if not log_json:
         typer.echo(one_line(f"Run #{result.run_id}: {result.outcome}"))
         for line in lines:
@@ -277,10 +296,9 @@ def trace(
     Exit 0 when every file traced (exact or near), 1 when some did not, 2 on usage errors.
     Example: collector trace leaf.jpg --in my-leaves;  collector trace to-publish/ --csv
     """
-    from collector.exports.trace import (
+    from collector.exports.trace import Tracer, collect_targets
+    from collector.exports.trace_format import (
         CAUTION,
-        Tracer,
-        collect_targets,
         format_record,
         format_summary,
         format_table,
@@ -380,7 +398,8 @@ def demo(
     from collector.demo import run_demo
     from collector.display import LiveProgress
     from collector.exports.summary import format_summary, summarise
-    from collector.exports.trace import Tracer, format_record
+    from collector.exports.trace import Tracer
+    from collector.exports.trace_format import format_record
 
     progress = _progress_for(quiet=quiet, log_json=False)
     with user_errors():

@@ -30,7 +30,8 @@ from collector.checks.images import inspect_image
 from collector.checks.licences import normalise_licence, rights_conflict
 from collector.checks.phash import hamming, hash_image_file, to_signed64
 from collector.cli import app
-from collector.exports.trace import Tracer, TraceResult, attribution_line, format_record, summarise
+from collector.exports.trace import Tracer, TraceResult
+from collector.exports.trace_format import attribution_line, format_record, summarise
 from collector.run.scheduling import Gatherer
 from collector.storage.collection import Collection, init_collection
 from collector.storage.ledger import Ledger

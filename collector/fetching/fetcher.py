@@ -7,9 +7,11 @@ For each URL, and again for each redirect hop (followed by hand, at most 10):
    persisted in the ledger's ``hosts`` table);
 3. the contacted host's budget must allow a request start (:mod:`collector.fetching.budgets`);
 4. the request is sent, retried with tenacity on connection errors, timeouts, 429 and 5xx
-   (honouring Retry-After), and every attempt becomes a ``fetches`` row with a redacted URL.
+   (honouring Retry-After; :mod:`collector.fetching.retry`), and every attempt becomes a
+   ``fetches`` row with a redacted URL.
 
-Bodies are streamed with a byte cap on decoded bytes and an overall deadline. Errors raised are
+Bodies are streamed with a byte cap on decoded bytes and an overall deadline
+(:mod:`collector.fetching.body`). Errors raised are
 :class:`collector.errors.FetchError` subclasses whose messages carry only redacted URLs.
 
 DNS rebinding: the address check resolves the name just before each request, but requests
@@ -21,11 +23,7 @@ names with stable answers are fully covered.
 
 from __future__ import annotations
 
-import contextlib
-import errno
-import hashlib
 import logging
-import os
 import random
 import socket
 import threading
@@ -37,11 +35,7 @@ from typing import Any
 from urllib.parse import urljoin
 
 import requests
-import urllib3.exceptions
 from requests.structures import CaseInsensitiveDict
-from tenacity import Retrying, retry_if_exception_type, stop_after_attempt, stop_any
-from tenacity.stop import stop_base
-from tenacity.wait import wait_base
 
 from collector import __version__
 from collector.errors import (
@@ -49,7 +43,6 @@ from collector.errors import (
     FetchError,
     HostParked,
     RobotsDenied,
-    StoreError,
     TooLarge,
     UnsafeURL,
 )
@@ -61,8 +54,10 @@ from collector.fetching.answers import (
     Page,
     parse_retry_after,
 )
+from collector.fetching.body import Body, exc_size, read_body
 from collector.fetching.budgets import SYSTEM_CLOCK, Budget, Clock, HostBudgets, budgets_from_recipe
 from collector.fetching.http_target import transport_target
+from collector.fetching.retry import Retryable, retry_policy
 from collector.fetching.robots import (
     MAX_ROBOTS_BYTES,
     MAX_ROBOTS_REDIRECTS,
@@ -74,7 +69,6 @@ from collector.fetching.robots import (
     policy_from_stored,
 )
 from collector.schema import expand_env
-from collector.storage.store import make_temp
 from collector.urls import (
     MIN_SECRET_LEN,
     add_params,
@@ -90,8 +84,6 @@ from collector.urls import (
 )
 
 log = logging.getLogger(__name__)
-
-CHUNK = 65536
 
 PERSISTED_PARK_MAX = 86_400.0  # seconds a parking outlives the run that saw it
 
@@ -162,57 +154,13 @@ class FetchSettings:
         return cls(**values)
 
 
-class _Retryable(Exception):
-    """One attempt failed in a way worth retrying."""
-
-    def __init__(self, reason: str, status: int | None, detail: str,
-                 retry_after: float | None = None) -> None:
-        super().__init__(detail)
-        self.reason, self.status, self.detail = reason, status, detail
-        self.retry_after = retry_after
-
-
-@dataclass
-class _Body:
-    data: bytes | None = None
-    path: Path | None = None
-    sha256: str | None = None
-    size: int = 0
-
-
 @dataclass
 class _Result:
     url: str
     status: int
     headers: CaseInsensitiveDict
-    body: _Body
+    body: Body
     encoding: str | None
-
-
-class _StopAfterWaiting(stop_base):
-    """Stop retrying once the waits so far plus the next one would pass ``limit`` seconds."""
-
-    def __init__(self, limit: float) -> None:
-        self.limit = limit
-
-    def __call__(self, retry_state: Any) -> bool:
-        return bool(retry_state.idle_for + retry_state.upcoming_sleep > self.limit)
-
-
-class _Wait(wait_base):
-    """Retry-After when the server gave one, else exponential back-off with full jitter."""
-
-    def __init__(self, budget: Budget, rng: random.Random) -> None:
-        self.budget, self.rng = budget, rng
-
-    def __call__(self, retry_state: Any) -> float:
-        exc = retry_state.outcome.exception() if retry_state.outcome else None
-        if isinstance(exc, _Retryable) and exc.retry_after is not None:
-            return exc.retry_after  # RFC 9110 §10.2.3, honoured exactly
-        # Full jitter: uniform in [0, min(cap, base * 2^(n-1))] (common practice, no source).
-        ceiling = min(self.budget.backoff_max,
-                      self.budget.backoff_base * 2 ** (retry_state.attempt_number - 1))
-        return self.rng.uniform(0.0, ceiling)
 
 
 class HopByHopSession(requests.Session):
@@ -389,17 +337,11 @@ class Fetcher:
                                  max_bytes, dest_dir, counter[0], final=counter[0] >= attempts,
                                  truncate=not retry)
 
-        retrying = Retrying(
-            stop=stop_any(stop_after_attempt(attempts),
-                          _StopAfterWaiting(self.settings.max_total_delay)),
-            wait=_Wait(budget, self.rng),
-            retry=retry_if_exception_type(_Retryable),
-            sleep=self.clock.sleep,
-            reraise=True,
-        )
+        retrying = retry_policy(attempts, self.settings.max_total_delay, budget, self.rng,
+                                self.clock.sleep)
         try:
             return retrying(one)
-        except _Retryable as exc:
+        except Retryable as exc:
             # Retries are used up: one more failed request for the host's circuit breaker.
             self._failed(hk, shown)
             if not retry and exc.status is None:
@@ -429,7 +371,7 @@ class Fetcher:
                 reason = "timeout" if isinstance(exc, requests.Timeout) else "connection"
                 detail = scrub(f"{type(exc).__name__}: {exc}", all_secrets)
                 self._record(base, error=f"{reason}: {detail}", ended=True)
-                raise _Retryable(reason, None, detail) from None
+                raise Retryable(reason, None, detail) from None
             except (ValueError, UnicodeError) as exc:
                 # Not a network failure: the HTTP library could not handle this exchange (a
                 # header it cannot encode or parse). One item fails; retrying would not help.
@@ -470,15 +412,17 @@ class Fetcher:
                 raise HostParked(shown, hk, until,
                                  f"Retry-After {wait:g} s is over the {budget.max_retry_after:g}"
                                  " s cap (budgets.max_retry_after)")
-            raise _Retryable(f"http_{status}", status, error, wait)
-        body = _Body()
+            raise Retryable(f"http_{status}", status, error, wait)
+        body = Body()
         if status not in REDIRECT_STATUSES and status != 304:
             try:
-                body = self._read_body(resp, shown, max_bytes, dest_dir, slot, truncate)
+                body = read_body(resp, shown=shown, max_bytes=max_bytes, dest_dir=dest_dir,
+                                 slot=slot, truncate=truncate, clock=self.clock,
+                                 deadline_s=self.settings.download_deadline)
             except (TooLarge, DownloadTimeout) as exc:
                 self._record({**base, **meta}, error=str(exc), ended=True, size=exc_size(exc))
                 raise
-            except _Retryable as exc:
+            except Retryable as exc:
                 exc.detail = scrub(exc.detail, secrets)
                 self._record({**base, **meta}, error=exc.detail, ended=True)
                 raise
@@ -486,81 +430,6 @@ class Fetcher:
         self._succeeded(hk)
         return _Result(url, status, hdr, body, resp.encoding if "charset" in
                        (hdr.get("Content-Type") or "").lower() else None)
-
-    def _read_body(self, resp: requests.Response, shown: str, max_bytes: int,
-                   dest_dir: Path | None, slot: Any, truncate: bool) -> _Body:
-        """Stream the body with a decoded-byte cap and an overall deadline (libraries.md §6)."""
-        length = resp.headers.get("Content-Length")
-        if not truncate and length and length.isdigit() and int(length) > max_bytes:
-            raise TooLarge(shown, max_bytes, f"Content-Length {int(length):,} is over the "
-                                             f"{max_bytes:,}-byte cap")
-        deadline = self.clock.monotonic() + self.settings.download_deadline
-        digest = hashlib.sha256()
-        size = 0
-        chunks: list[bytes] = []
-        handle = None
-        path: Path | None = None
-        if dest_dir is not None:
-            try:
-                dest_dir.mkdir(parents=True, exist_ok=True)
-                fd, path = make_temp(dest_dir, prefix=".part-")
-            except OSError as exc:
-                raise _write_error(exc, dest_dir) from exc
-            handle = os.fdopen(fd, "wb")
-        try:
-            while True:
-                try:
-                    # read1 returns what has arrived, so the deadline check below runs even
-                    # against a server that drips one byte at a time (libraries.md §6).
-                    chunk = resp.raw.read1(CHUNK, decode_content=True)
-                except (urllib3.exceptions.ReadTimeoutError, TimeoutError) as exc:
-                    raise _Retryable("timeout", resp.status_code, f"read timeout: {exc}") from None
-                except (urllib3.exceptions.HTTPError, OSError) as exc:
-                    raise _Retryable("connection", resp.status_code,
-                                     f"{type(exc).__name__}: {exc}") from None
-                if not chunk:
-                    break
-                if size + len(chunk) > max_bytes:
-                    if truncate:  # robots.txt: parse the first MAX bytes (RFC 9309 §2.5)
-                        chunk = chunk[: max_bytes - size]
-                    else:
-                        err = TooLarge(shown, max_bytes, f"more than {max_bytes:,} bytes "
-                                                         "after decoding")
-                        err.size = size + len(chunk)  # type: ignore[attr-defined]
-                        raise err
-                size += len(chunk)
-                slot.add_bytes(len(chunk))
-                digest.update(chunk)
-                if handle is not None:
-                    try:
-                        handle.write(chunk)
-                    except OSError as exc:
-                        raise _write_error(exc, dest_dir) from exc
-                else:
-                    chunks.append(chunk)
-                if truncate and size >= max_bytes:
-                    break
-                if self.clock.monotonic() > deadline:
-                    err2 = DownloadTimeout(shown, self.settings.download_deadline)
-                    err2.size = size  # type: ignore[attr-defined]
-                    raise err2
-            if handle is not None:
-                try:
-                    handle.flush()
-                    os.fsync(handle.fileno())
-                    handle.close()
-                except OSError as exc:
-                    raise _write_error(exc, dest_dir) from exc
-                handle = None
-        except BaseException:
-            if handle is not None:
-                with contextlib.suppress(OSError):  # flushing on a full disk fails again
-                    handle.close()
-            if path is not None:
-                path.unlink(missing_ok=True)
-            raise
-        return _Body(data=None if path else b"".join(chunks), path=path,
-                     sha256=digest.hexdigest(), size=size)
 
     # -- robots.txt ----------------------------------------------------------------------------
     def _robots_policy(self, url: str) -> RobotsPolicy:
@@ -612,11 +481,11 @@ class Fetcher:
                                  secret_params=(), max_bytes=MAX_ROBOTS_BYTES, robots=True)
         except HostParked:
             raise
-        except (FetchError, _Retryable) as exc:
+        except (FetchError, Retryable) as exc:
             # A final 429 is "unavailable" (§2.3.1.3); 5xx, a network error or an unsafe
             # redirect is "unreachable" -> complete disallow (§2.3.1.4). classify_status decides.
             status = getattr(exc, "status", None)
-            return policy_from_fetch(status if isinstance(exc, _Retryable) or
+            return policy_from_fetch(status if isinstance(exc, Retryable) or
                                      exc.reason.startswith("http_") else None, b"", fetched_at)
         return policy_from_fetch(result.status, result.body.data or b"", fetched_at)
 
@@ -689,20 +558,6 @@ class Fetcher:
         # A 304 answers a conditional request: the copy we hold is current (RFC 9110 15.4.5).
         fields["from_cache"] = int(fields.get("status") == 304)
         self.ledger.record_fetch(**fields)
-
-
-def _write_error(exc: OSError, folder: Path | None) -> StoreError:
-    """A local write failure while saving a download: the run must stop, not the worker die."""
-    if exc.errno == errno.ENOSPC:
-        return StoreError(f"the disk is full while downloading into {folder}; free some space "
-                          "and run again (the collection resumes where it stopped)",
-                          errno=exc.errno)
-    return StoreError(f"cannot write a download into {folder}: {exc}", errno=exc.errno)
-
-
-def exc_size(exc: BaseException) -> int | None:
-    """Bytes read before a TooLarge/DownloadTimeout was raised, if known."""
-    return getattr(exc, "size", None)
 
 
 def _iso(epoch: float) -> str:

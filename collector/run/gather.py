@@ -1,5 +1,6 @@
 """The overnight run behind ``collector gather``: :func:`prepared_run` (lock, recipe, ledger,
-crash recovery) and :func:`gather` (one run with the real fetcher).
+crash recovery), :func:`run_prepared` (one run inside it) and :func:`gather` (both, with the
+real fetcher).
 
 The run itself is split by concern: :mod:`collector.run.scheduling` (listing threads, host
 queues and workers, stop rules, the run loop), :mod:`collector.run.ingest` (admission,
@@ -71,12 +72,22 @@ def gather(collection: Collection, *, stop: StopRules | None = None,
            ) -> RunResult:
     """Run the collection's recipe: list, decide, fetch, check, store, record."""
     with prepared_run(collection) as (recipe, ledger):
-        fetcher = fetcher_factory(recipe, ledger)
-        try:
-            gatherer = Gatherer(collection, recipe, ledger, fetcher, stop=stop or StopRules(),
-                                progress=progress)
-            return gatherer.run(options)
-        finally:
-            close = getattr(fetcher, "close", None)
-            if close:
-                close()
+        return run_prepared(collection, recipe, ledger, stop=stop, progress=progress,
+                            options=options, fetcher_factory=fetcher_factory)
+
+
+def run_prepared(collection: Collection, recipe: Recipe, ledger: Ledger, *,
+                 stop: StopRules | None = None, progress: Progress | None = None,
+                 options: dict[str, Any] | None = None,
+                 fetcher_factory: Callable[[Recipe, Ledger], ImageFetcher | None] = build_fetcher,
+                 ) -> RunResult:
+    """One run inside :func:`prepared_run`: the fetcher is built for it and closed after."""
+    fetcher = fetcher_factory(recipe, ledger)
+    try:
+        gatherer = Gatherer(collection, recipe, ledger, fetcher, stop=stop or StopRules(),
+                            progress=progress)
+        return gatherer.run(options)
+    finally:
+        close = getattr(fetcher, "close", None)
+        if close:
+            close()

@@ -1,0 +1,67 @@
+"""When an attempt is retried and how long the fetcher waits first.
+
+An attempt that failed in a way worth retrying raises :class:`Retryable` (a connection error,
+a timeout, 429 or a temporary 5xx). :func:`retry_policy` is the tenacity policy around the
+attempts of one request: at most ``attempts`` tries and at most ``max_total_delay`` seconds of
+waiting, each wait being the server's Retry-After or exponential back-off with full jitter.
+"""
+
+from __future__ import annotations
+
+import random
+from collections.abc import Callable
+from typing import Any
+
+from tenacity import Retrying, retry_if_exception_type, stop_after_attempt, stop_any
+from tenacity.stop import stop_base
+from tenacity.wait import wait_base
+
+from collector.fetching.budgets import Budget
+
+
+class Retryable(Exception):
+    """One attempt failed in a way worth retrying."""
+
+    def __init__(self, reason: str, status: int | None, detail: str,
+                 retry_after: float | None = None) -> None:
+        super().__init__(detail)
+        self.reason, self.status, self.detail = reason, status, detail
+        self.retry_after = retry_after
+
+
+class StopAfterWaiting(stop_base):
+    """Stop retrying once the waits so far plus the next one would pass ``limit`` seconds."""
+
+    def __init__(self, limit: float) -> None:
+        self.limit = limit
+
+    def __call__(self, retry_state: Any) -> bool:
+        return bool(retry_state.idle_for + retry_state.upcoming_sleep > self.limit)
+
+
+class BackoffWait(wait_base):
+    """Retry-After when the server gave one, else exponential back-off with full jitter."""
+
+    def __init__(self, budget: Budget, rng: random.Random) -> None:
+        self.budget, self.rng = budget, rng
+
+    def __call__(self, retry_state: Any) -> float:
+        exc = retry_state.outcome.exception() if retry_state.outcome else None
+        if isinstance(exc, Retryable) and exc.retry_after is not None:
+            return exc.retry_after  # RFC 9110 §10.2.3, honoured exactly
+        # Full jitter: uniform in [0, min(cap, base * 2^(n-1))] (common practice, no source).
+        ceiling = min(self.budget.backoff_max,
+                      self.budget.backoff_base * 2 ** (retry_state.attempt_number - 1))
+        return self.rng.uniform(0.0, ceiling)
+
+
+def retry_policy(attempts: int, max_total_delay: float, budget: Budget, rng: random.Random,
+                 sleep: Callable[[float], None]) -> Retrying:
+    """The tenacity policy for one request; the last Retryable is re-raised when it gives up."""
+    return Retrying(
+        stop=stop_any(stop_after_attempt(attempts), StopAfterWaiting(max_total_delay)),
+        wait=BackoffWait(budget, rng),
+        retry=retry_if_exception_type(Retryable),
+        sleep=sleep,
+        reraise=True,
+    )
