@@ -202,6 +202,17 @@ def odd_recipes(tmp: Path) -> tuple[bool, str]:
     return ok, f"BOM check exit {bom}; deep recipe exit {deep.exit_code}"
 
 
+def flat_images(tmp: Path) -> tuple[bool, str]:
+    """Finding 9: two flat images of different colours are not near duplicates."""
+    col = scans_collection(tmp, n=0)
+    Image.new("RGB", (320, 240), (200, 30, 30)).save(col.root / "in" / "red.png")
+    Image.new("RGB", (320, 240), (30, 30, 200)).save(col.root / "in" / "blue.png")
+    gather(col, fetcher_factory=lambda recipe, ledger: None)
+    with col.ledger(readonly=True) as ledger:
+        states = sorted(r["state"] for r in ledger.query("SELECT state FROM items"))
+    return states == ["stored", "stored"], f"item states {states}"
+
+
 SCENARIOS: list[tuple[str, Scenario]] = [
     ("zeroed ledger, then every command", zeroed_ledger),
     ("symlinks planted at lock, temp folder, datasheet", planted_links),
@@ -211,6 +222,7 @@ SCENARIOS: list[tuple[str, Scenario]] = [
     ("scans folder with FIFO, loop, non-UTF-8 name", hostile_scans),
     ("SIGTERM during a run", sigterm),
     ("recipe with a BOM; recipe nested 3,000 deep", odd_recipes),
+    ("two flat images of different colours", flat_images),
 ]
 
 

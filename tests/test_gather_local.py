@@ -210,3 +210,25 @@ def test_icc_profile_and_density_are_kept_in_the_ledger(tmp_path: Path) -> None:
         after = {r["sha256"]: (r["icc_profile"], r["dpi_x"]) for r in ledger.query(
             "SELECT sha256, icc_profile, dpi_x FROM files")}
     assert after == before
+
+
+def test_flat_images_of_different_colours_are_not_near_duplicates(tmp_path: Path) -> None:
+    """Two single-colour pictures share a perceptual hash (the DC bit alone) but are not
+    copies of each other: both are stored; and trace says a flat file is too plain to
+    compare instead of naming one of them."""
+    col = init_collection(tmp_path / "c", contact="me@example.org")
+    (col.root / "in").mkdir()
+    Image.new("RGB", (320, 240), (200, 30, 30)).save(col.root / "in" / "red.png")
+    Image.new("RGB", (320, 240), (30, 30, 200)).save(col.root / "in" / "blue.png")
+    col.recipe_path.write_text(col.recipe_path.read_text() + (
+        '\n[[sources]]\nname = "desk"\nkind = "scans"\npath = "in"\nlicence = "CC0-1.0"\n'))
+    gather(col, **NO_FETCHER)
+    with col.ledger(readonly=True) as ledger:
+        states = {r["source_key"]: r["state"] for r in ledger.query(
+            "SELECT source_key, state FROM items")}
+    assert states == {"red.png": "stored", "blue.png": "stored"}
+    white = tmp_path / "white.png"
+    Image.new("RGB", (320, 240), (255, 255, 255)).save(white)
+    out = CliRunner().invoke(app, ["trace", str(white), "--in", str(col.root)])
+    assert out.exit_code == 1
+    assert "too plain" in out.output and "probably" not in out.output

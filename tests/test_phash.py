@@ -191,3 +191,23 @@ def test_sqlite_cannot_hold_the_unsigned_top_half():
 def test_hash_algo_names_the_draft_pipeline():
     """The stored algorithm tag names the 64-bit DCT draft pipeline."""
     assert HASH_ALGO == "dct-phash-64/draft-v1"
+
+
+def test_flat_fills_and_plain_gradients_are_featureless() -> None:
+    """Every flat fill hashes to the DC bit alone (0x8000..., 0 for black) whatever its
+    colour, as imagehash.phash does too; such hashes, and a plain gradient's, are not compared
+    by look. Structured pictures set about half the bits (median threshold) and are compared."""
+    import imagehash
+
+    from collector.checks.phash import featureless, phash_from_image
+
+    for colour in [(0, 0, 0), (255, 255, 255), (200, 30, 30), (30, 200, 30), (12, 99, 240)]:
+        im = Image.new("RGB", (300, 200), colour)
+        phash, _ = phash_from_image(im)
+        assert phash == int(str(imagehash.phash(im)), 16)  # imagehash 4.3 agrees
+        assert featureless(phash), colour
+    ramp = Image.fromarray(np.tile(np.linspace(0, 255, 256).astype(np.uint8), (100, 1)))
+    assert featureless(phash_from_image(ramp)[0])
+    for seed in range(5):
+        im = Image.effect_mandelbrot((256, 192), (-2 + seed * 0.2, -1.2, 1, 1.2), 60)
+        assert not featureless(phash_from_image(im)[0]), seed

@@ -30,6 +30,7 @@ from PIL import Image
 
 __all__ = [
     "HASH_ALGO",
+    "featureless",
     "hamming",
     "hash_image_file",
     "phash_from_image",
@@ -103,6 +104,20 @@ def hash_image_file(path: Path | str) -> tuple[int, int]:
     with Image.open(path) as im:
         orientation = int(im.getexif().get(0x0112, 1) or 1)
         return phash_prepared(im, orientation)
+
+
+# The median threshold sets 31 or 32 of the 64 bits whenever the low-frequency coefficients
+# differ (a bit is set where a coefficient is above the median of the block). Fewer set bits
+# mean that most coefficients tie at the median: a flat fill (only the DC bit, 0x8000...) or a
+# plain gradient, whose hash says nothing about what the picture shows; every flat fill hashes
+# alike, whatever its colour. Our own rule (common practice, no source): below this many set
+# bits a hash is not compared by look.
+FEATURELESS_BELOW_BITS = 8
+
+
+def featureless(phash: int) -> bool:
+    """Whether a hash is too plain to compare by look (see FEATURELESS_BELOW_BITS)."""
+    return (phash & _MASK64).bit_count() < FEATURELESS_BELOW_BITS
 
 
 def hamming(a: int, b: int) -> int:

@@ -347,14 +347,18 @@ class Tracer:
         else:
             from PIL import Image
 
-            from collector.checks.phash import hash_image_file  # scipy loads only when needed
+            # scipy loads only when needed
+            from collector.checks.phash import featureless, hash_image_file
 
             try:
                 phash, mirror = hash_image_file(path)
             except (*_DECODE_ERRORS, Image.DecompressionBombError) as exc:
                 result.note = f"not a readable image ({type(exc).__name__}: {exc})"
                 phash = None
-            if phash is not None:
+            if phash is not None and featureless(phash):
+                result.note = ("its picture is too plain (a flat fill or a smooth gradient) to "
+                               "compare by look, and no stored file has these bytes")
+            elif phash is not None:
                 for match in self.lookup_near(phash, mirror)[:5]:
                     record = self.lookup_exact(match.sha256)
                     if record is not None:

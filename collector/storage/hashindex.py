@@ -20,7 +20,7 @@ from pathlib import Path
 
 import numpy as np
 
-from collector.checks.phash import to_unsigned64
+from collector.checks.phash import featureless, to_unsigned64
 from collector.storage import queries
 from collector.storage.ledger import Ledger
 from collector.storage.safe_paths import new_temp_file, open_own_file, refuse_link
@@ -32,8 +32,10 @@ def scan(hashes: np.ndarray, phash: int, mirror: int | None,
     as (row, distance, mirrored), closest first; each row once, a direct match winning a tie.
 
     Exact by construction: every row is compared, so nothing within the threshold is missed.
+    A featureless query (a flat fill or plain gradient, :func:`collector.checks.phash.
+    featureless`) matches nothing: two flat fills of different colours are not copies.
     """
-    if not len(hashes):
+    if not len(hashes) or featureless(phash):
         return []
     # One pass per query hash, keeping only the few rows under the threshold: no full-size
     # temporaries beyond the XOR and the counts (measured 1.6 ms for both passes over 1M).
