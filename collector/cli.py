@@ -107,7 +107,7 @@ def check(
         problems = env_problems(recipe, unset=False)
         if problems:
             raise RecipeError(problems)
-    settings = recipe.as_dict()
+    settings = recipe.shown_settings()  # secrets written into the recipe are hidden
     if as_json:
         typer.echo(json.dumps(settings, indent=2, default=str))
         return

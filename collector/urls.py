@@ -160,13 +160,6 @@ def quote_plus_safe(value: str) -> str:
     return urlencode({"": value})[1:]
 
 
-def redact_headers(headers: Mapping[str, str], secret_headers: Iterable[str]) -> dict[str, str]:
-    """Copy of ``headers`` with the values of secret headers (:func:`is_secret_header`)
-    replaced."""
-    listed = tuple(secret_headers)
-    return {k: (REDACTED if is_secret_header(k, listed) else v) for k, v in headers.items()}
-
-
 def parse_allow_list(entries: Iterable[str]) -> list[IPNetwork]:
     """Parse ``network.allow_addresses`` (addresses or CIDR blocks) into networks."""
     return [ipaddress.ip_network(e.strip(), strict=False) for e in entries]

@@ -212,3 +212,25 @@ def test_check_refuses_a_header_whose_variable_ends_in_cr(
     assert "t0ken-secret-42" not in result.output
     monkeypatch.setenv("CR_TOKEN", "t0ken-secret-42")
     assert CliRunner().invoke(app, ["check", str(col.root)]).exit_code == 0
+
+
+def test_check_hides_secrets_written_into_the_recipe() -> None:
+    """Secret header values (names compared case-insensitively, e.g. "authorization") and
+    secret params written as literals are shown as REDACTED by `check`; ${NAME} references and
+    ordinary values are shown as they are."""
+    from collector.urls import REDACTED
+
+    recipe = parse_recipe(GOOD + (
+        '[network]\nheaders = { authorization = "Bearer lit3ral-t0ken", Accept = "*/*" }\n'
+        '[[sources]]\nname = "a"\nkind = "json_api"\nurl = "https://api.example.org/x"\n'
+        'params = { api_key = "lit3ral-k3y", other = "${OTHER}", per_page = "10" }\n'
+        'secret_params = ["api_key", "other"]\n'
+        'headers = { X-Api-Key = "${MY_KEY}" }\n'
+        '[sources.fields]\nitems = "items"\nid = "id"\nimage_url = "img"\n'), Path("r.toml"))
+    shown = recipe.shown_settings()
+    assert shown["network"]["headers"] == {"authorization": REDACTED, "Accept": "*/*"}
+    assert shown["sources"][0]["params"] == {"api_key": REDACTED, "other": "${OTHER}",
+                                             "per_page": "10"}
+    assert shown["sources"][0]["headers"] == {"X-Api-Key": "${MY_KEY}"}
+    assert "lit3ral" not in str(shown)
+    assert recipe.network.headers["authorization"] == "Bearer lit3ral-t0ken"  # kept for use

@@ -19,7 +19,6 @@ from collector.urls import (
     origin,
     parse_allow_list,
     redact,
-    redact_headers,
     robots_url,
     scrub,
     secret_values,
@@ -67,12 +66,6 @@ def test_scrub_removes_raw_and_encoded_secret_forms() -> None:
     text = "failed: /?key=a%20b%2Fc and /?key=a+b%2Fc and 'a b/c'"
     assert "a b" not in scrub(text, secrets) and "a%20b" not in scrub(text, secrets)
     assert "a+b" not in scrub(text, secrets)
-
-
-def test_secret_headers_are_redacted_case_insensitively() -> None:
-    """Secret header values are replaced whatever their spelling."""
-    out = redact_headers({"authorization": "Bearer x", "Accept": "*/*"}, ["Authorization"])
-    assert out == {"authorization": REDACTED, "Accept": "*/*"}
 
 
 def test_add_params_keeps_existing_query() -> None:
@@ -142,3 +135,17 @@ def test_unresolvable_name_is_a_connection_failure() -> None:
     with pytest.raises(UnsafeURL) as err:
         check_address("nowhere.test", 80, [], resolver=_stub_resolver({}))
     assert err.value.reason == "connection"
+
+
+@pytest.mark.parametrize(("name", "secret"), [
+    ("Authorization", True), ("authorization", True), ("Proxy-Authorization", True),
+    ("X-Api-Key", True), ("X-Auth-Token", True), ("Cookie", True), ("X-Session-Id", True),
+    ("X-Client-Secret", True), ("Accept", False), ("User-Agent", False), ("Referer", False),
+    ("If-None-Match", False)])
+def test_secret_headers_are_known_by_name_or_listing(name: str, secret: bool) -> None:
+    """A header is secret when its name holds key, token, secret, auth, cookie, session or
+    password (common practice, no source), or when the recipe lists it."""
+    from collector.urls import is_secret_header
+
+    assert is_secret_header(name) is secret
+    assert is_secret_header(name, ["referer", "accept", "user-agent", "if-none-match"])

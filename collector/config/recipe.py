@@ -13,7 +13,7 @@ import ipaddress
 import os
 import re
 import tomllib
-from collections.abc import Mapping
+from collections.abc import Callable, Mapping
 from dataclasses import MISSING, asdict, dataclass, field, fields, replace
 from datetime import time
 from pathlib import Path
@@ -34,6 +34,7 @@ from collector.schema import (
     header_value_problem,
     one_of,
 )
+from collector.urls import REDACTED, is_secret_header
 
 PRODUCT_TOKEN_RE = re.compile(r"^[A-Za-z_-]+$")  # RFC 9309 section 2.2.1
 CONTROL_RE = re.compile(r"[\x00-\x1f\x7f]")
@@ -342,6 +343,36 @@ class Recipe:
             "licences": asdict(self.licences), "images": asdict(self.images),
             "stop": asdict(self.stop), "sources": self.sources,
         }
+
+    def shown_settings(self) -> dict[str, Any]:
+        """:meth:`as_dict` with the secrets written into the recipe itself hidden: the value
+        of a secret header (:func:`collector.urls.is_secret_header`) or secret parameter that
+        does not come from a ``${NAME}`` is shown as ``REDACTED``; a ``${NAME}`` reference is
+        shown as it is (it holds no secret)."""
+        settings = self.as_dict()
+        everywhere = list(self.network.secret_params)
+        network = dict(settings["network"])
+        network["headers"] = _hide(network["headers"], lambda name: is_secret_header(
+            name, self.network.secret_headers))
+        settings["network"] = network
+        sources = []
+        for source in self.sources:
+            secret_params = {*(source.get("secret_params") or ()), *everywhere}
+            shown = dict(source)
+            if isinstance(shown.get("params"), dict):
+                shown["params"] = _hide(shown["params"], secret_params.__contains__)
+            if isinstance(shown.get("headers"), dict):
+                shown["headers"] = _hide(shown["headers"], lambda name: is_secret_header(
+                    name, self.network.secret_headers))
+            sources.append(shown)
+        settings["sources"] = sources
+        return settings
+
+
+def _hide(values: Mapping[str, Any], secret: Callable[[str], bool]) -> dict[str, Any]:
+    """``values`` with each secret literal (no ``${NAME}`` in it) replaced by REDACTED."""
+    return {k: (REDACTED if secret(k) and not (isinstance(v, str) and env_names(v)) else v)
+            for k, v in values.items()}
 
 
 def _check_host_budgets(raw: Any, problems: Problems) -> dict:
