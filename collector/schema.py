@@ -1,15 +1,15 @@
 """The one recipe schema vocabulary: key specs, type checks, value checks and their wording.
 
-Used by :mod:`collector.config.recipe` for the top-level sections and by every source kind for its
-``[[sources]]`` table, so a problem reads the same wherever it is found ("must be a whole
+Used by :mod:`collector.config.recipe` for the top-level sections and by every source kind for
+its ``[[sources]]`` table, so a problem reads the same wherever it is found ("must be a whole
 number, got a string ('ten')"; "unknown key (did you mean 'pagination'?); allowed here: ...").
 
 Also the one home of the ``${NAME}`` syntax: :func:`env_names` finds references (the recipe
 checks them before a run), :func:`expand_env` fills them in. Values are filled only when a
-request is sent (``collector.fetching.fetcher._filled``), so expanded secrets never sit in a
-recipe, a
-source table or the ledger; the only other caller, ``collector.run.record.secret_values``, computes
-the same values solely to scrub them from messages.
+request is sent (``collector.fetching.fetcher.filled_from_env``), so expanded secrets never sit
+in a recipe, a source table or the ledger; the only other caller,
+``collector.run.record.secret_values``, computes the same values solely to scrub them from
+messages.
 
 This module imports nothing from collector but the errors, so anything may import it.
 """
