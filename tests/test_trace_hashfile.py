@@ -132,12 +132,17 @@ def test_scan_finds_every_hash_within_the_threshold() -> None:
 
 
 def test_in_memory_index_keeps_its_api() -> None:
-    """HashIndex.add/nearest (used by gather) still answer with NearMatch, closest first."""
+    """HashIndex.add/nearest (used by gather) still answer with NearMatch, closest first.
+    The hashes are XORed with a 32-bit pattern, as real pHashes set about half their bits
+    (a hash with few bits set is featureless and never compared); distances are unchanged."""
+    base = 0x5555_5555_5555_5555
     index = HashIndex()
-    index.add("a" * 64, 0b1111)
-    index.add("b" * 64, 0)
-    matches = index.nearest(0b1, None, 4)
+    index.add("a" * 64, base ^ 0b1111)
+    index.add("b" * 64, base)
+    matches = index.nearest(base ^ 0b1, None, 4)
     assert [(m.sha256, m.distance, m.mirrored) for m in matches] == [
         ("b" * 64, 1, False), ("a" * 64, 3, False)]
-    far = 0xFFFF << 48  # 16+ bits from both; its mirror hash 0b111 is 1 bit from "a"
-    assert [(m.sha256, m.mirrored) for m in index.nearest(far, 0b111, 1)] == [("a" * 64, True)]
+    far = base ^ (0xFFFF << 48)  # 16+ bits from both; its mirror hash is 1 bit from "a"
+    assert [(m.sha256, m.mirrored) for m in index.nearest(far, base ^ 0b111, 1)] == [
+        ("a" * 64, True)]
+    assert index.nearest(0b1, None, 64) == []  # featureless query: not compared at all
