@@ -274,7 +274,19 @@ def _is_datetime(value: Any) -> bool:
 def precheck(doc: dict[str, Any]) -> list[str]:
     """What the Croissant 1.0 spec requires but mlcroissant 1.1.1 does not enforce.
 
-    Returns one actionable message per problem (empty list: nothing missing)."""
+    Returns one actionable message per problem (empty list: nothing missing), in the order:
+    the dataset's own properties, the distribution, the record sets, the collection timeframe."""
+    problems = _precheck_dataset(doc)
+    ids = _precheck_distribution(doc, problems)
+    _precheck_records(doc, ids, problems)
+    frame = doc.get("rai:dataCollectionTimeframe")
+    if frame is not None and not (isinstance(frame, list) and all(map(_is_datetime, frame))):
+        problems.append("rai:dataCollectionTimeframe must be a list of ISO 8601 DateTimes")
+    return problems
+
+
+def _precheck_dataset(doc: dict[str, Any]) -> list[str]:
+    """Problems with the context, type, conformance and required dataset properties."""
     problems: list[str] = []
     ctx = doc.get("@context")
     if not isinstance(ctx, dict) or ctx.get("sc") != "https://schema.org/":
@@ -300,6 +312,12 @@ def precheck(doc: dict[str, Any]) -> list[str]:
                         "recognised licence")
     problems.extend(f"license {u!r} is not an SPDX licence URL" for u in licences
                     if not SPDX_URL_RE.match(u))
+    return problems
+
+
+def _precheck_distribution(doc: dict[str, Any], problems: list[str]) -> set[str]:
+    """Add the distribution's problems (duplicate ids, FileObjects without a checksum, FileSets
+    without includes/encodingFormat); return the @ids seen."""
     ids: set[str] = set()
     for node in doc.get("distribution") or []:
         nid = node.get("@id")
@@ -313,6 +331,12 @@ def precheck(doc: dict[str, Any]) -> list[str]:
             problems.append(f"FileSet {nid!r} needs includes and encodingFormat")
     if not doc.get("distribution"):
         problems.append("distribution is empty")
+    return ids
+
+
+def _precheck_records(doc: dict[str, Any], ids: set[str], problems: list[str]) -> None:
+    """Add the record sets' problems: duplicate ids (ids gains theirs), fields without a
+    dataType, references to no field, sources in no distribution node."""
     records = doc.get("recordSet") or []
     if not records:
         problems.append("recordSet is empty: nothing could be loaded")
@@ -335,7 +359,3 @@ def precheck(doc: dict[str, Any]) -> list[str]:
             if node.get("@id") not in ids:
                 problems.append(f"field {fld.get('@id')!r} reads from an unknown node "
                                 f"{node.get('@id')!r}")
-    frame = doc.get("rai:dataCollectionTimeframe")
-    if frame is not None and not (isinstance(frame, list) and all(map(_is_datetime, frame))):
-        problems.append("rai:dataCollectionTimeframe must be a list of ISO 8601 DateTimes")
-    return problems
