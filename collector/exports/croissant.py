@@ -169,33 +169,41 @@ def build_croissant(facts: DatasheetFacts, answers: dict[str, str]) -> dict[str,
     }]
     if release["with_images"]:
         for ext, info in sorted(release["by_ext"].items()):
-            if not info["files"]:
-                continue
-            fs_id, rs_id = f"files-{ext}", f"images-{ext}"
-            distribution.append({
-                "@type": "cr:FileSet", "@id": fs_id, "name": fs_id,
-                "description": f"the {info['files']} .{ext} images of this release",
-                "encodingFormat": info["mime"] or f"image/{ext}",
-                "includes": f"images/*.{ext}",
-            })
-            records.append({
-                "@type": "cr:RecordSet", "@id": rs_id, "name": rs_id,
-                "description": f".{ext} images; file_name joins them to provenance",
-                "field": [
-                    {"@type": "cr:Field", "@id": f"{rs_id}/file_name", "name": "file_name",
-                     "dataType": "sc:Text",
-                     "source": {"fileSet": {"@id": fs_id},
-                                "extract": {"fileProperty": "filename"}},
-                     "references": {"field": {"@id": "provenance/file_name"}}},
-                    {"@type": "cr:Field", "@id": f"{rs_id}/image", "name": "image",
-                     "dataType": "sc:ImageObject",
-                     "source": {"fileSet": {"@id": fs_id},
-                                "extract": {"fileProperty": "content"}}},
-                ],
-            })
+            if info["files"]:
+                file_set, record_set = _image_nodes(ext, info)
+                distribution.append(file_set)
+                records.append(record_set)
     doc["distribution"] = distribution
     doc["recordSet"] = records
     return doc
+
+
+def _image_nodes(ext: str, info: dict[str, Any]) -> tuple[dict[str, Any], dict[str, Any]]:
+    """The FileSet of a release's images with one extension, and its RecordSet (file name,
+    joined to provenance, and the image content)."""
+    fs_id, rs_id = f"files-{ext}", f"images-{ext}"
+    file_set = {
+        "@type": "cr:FileSet", "@id": fs_id, "name": fs_id,
+        "description": f"the {info['files']} .{ext} images of this release",
+        "encodingFormat": info["mime"] or f"image/{ext}",
+        "includes": f"images/*.{ext}",
+    }
+    record_set = {
+        "@type": "cr:RecordSet", "@id": rs_id, "name": rs_id,
+        "description": f".{ext} images; file_name joins them to provenance",
+        "field": [
+            {"@type": "cr:Field", "@id": f"{rs_id}/file_name", "name": "file_name",
+             "dataType": "sc:Text",
+             "source": {"fileSet": {"@id": fs_id},
+                        "extract": {"fileProperty": "filename"}},
+             "references": {"field": {"@id": "provenance/file_name"}}},
+            {"@type": "cr:Field", "@id": f"{rs_id}/image", "name": "image",
+             "dataType": "sc:ImageObject",
+             "source": {"fileSet": {"@id": fs_id},
+                        "extract": {"fileProperty": "content"}}},
+        ],
+    }
+    return file_set, record_set
 
 
 def _rai(facts: DatasheetFacts, answers: dict[str, str]) -> dict[str, Any]:
@@ -250,6 +258,13 @@ def _rai(facts: DatasheetFacts, answers: dict[str, str]) -> dict[str, Any]:
     if facts["timeframe"]["start"]:
         out["rai:dataCollectionTimeframe"] = [facts["timeframe"]["start"],
                                               facts["timeframe"]["end"]]
+    _add_answers(out, answers)
+    return out
+
+
+def _add_answers(out: dict[str, Any], answers: dict[str, str]) -> None:
+    """Add the datasheet answers that have a RAI property (uses, limits, sensitive data,
+    maintenance) to the drafted properties."""
     for key, prop in (("composition.sensitive", "rai:personalSensitiveInformation"),
                       ("composition.identification", "rai:personalSensitiveInformation")):
         if answers.get(key):
@@ -260,7 +275,6 @@ def _rai(facts: DatasheetFacts, answers: dict[str, str]) -> dict[str, Any]:
             out.setdefault(prop, []).append(answers[key])
     if answers.get("maintenance.updates"):
         out["rai:dataReleaseMaintenancePlan"] = answers["maintenance.updates"]
-    return out
 
 
 def _is_datetime(value: Any) -> bool:
