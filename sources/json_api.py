@@ -45,6 +45,14 @@ from collector.sources.base import (
     redact,
     resolve_url,
 )
+from collector.sources.json_fields import (
+    CANDIDATE_FIELDS,
+    ITEM_FIELDS,
+    FieldMap,
+    link_target,
+    map_fields,
+    number,
+)
 
 STYLES = ("page", "offset", "cursor", "next_url", "link_header", "none")
 DEFAULT_MAX_PAGES = 1000
@@ -89,9 +97,7 @@ PAGINATION_KEYS: dict[str, Key] = {
 }
 PAGINATION_PATHS = ("cursor_path", "next_path", "total_path")
 
-# Mapped item fields (JMESPath). candidate_* apply to each element of image_candidates.
-ITEM_FIELDS = ("title", "creator", "licence", "licence_url", "page_url", "date", "image_url")
-CANDIDATE_FIELDS = ("candidate_url", "candidate_width", "candidate_height", "candidate_label")
+# Mapped item fields (JMESPath; ITEM_FIELDS and CANDIDATE_FIELDS come from json_fields).
 FIELD_KEYS: dict[str, Key] = {
     "items": Key("str", required=True,
                  hint='where the item list is, e.g. "results" ("@" if the body is a list)'),
@@ -240,34 +246,6 @@ def _compile(expr: str | None) -> ParsedResult | None:
 
 
 @dataclass
-class FieldMap:
-    """Compiled JMESPath expressions for one mapping (listing or detail)."""
-
-    exprs: dict[str, ParsedResult]
-    pick: str = "largest"
-
-    @classmethod
-    def from_table(cls, table: Mapping[str, Any], fallback: FieldMap | None = None) -> FieldMap:
-        """Compile every expression once; candidate_* fall back to the listing's."""
-        exprs = {k: jmespath.compile(v) for k, v in table.items() if k != "pick" and v}
-        if fallback is not None:
-            for key in CANDIDATE_FIELDS:
-                if key not in exprs and key in fallback.exprs:
-                    exprs[key] = fallback.exprs[key]
-        pick = table.get("pick") or (fallback.pick if fallback else "largest")
-        return cls(exprs=exprs, pick=pick)
-
-    def get(self, name: str, data: Any) -> Any:
-        """The value of one field in data, or None when unmapped or absent."""
-        expr = self.exprs.get(name)
-        return expr.search(data) if expr is not None else None
-
-    def maps_image(self) -> bool:
-        """Whether this mapping can produce an image URL."""
-        return "image_url" in self.exprs or "image_candidates" in self.exprs
-
-
-@dataclass
 class Config:
     """One json_api source table, compiled."""
 
@@ -335,82 +313,7 @@ def _text_values(values: Mapping[str, Any] | None) -> dict[str, str]:
 
 
 # ---------------------------------------------------------------------------------------------
-# Field mapping (pure)
-
-
-def _number(value: Any) -> float | None:
-    if isinstance(value, bool):
-        return None
-    if isinstance(value, int | float):
-        return float(value)
-    if isinstance(value, str):
-        try:
-            return float(value.strip().rstrip("wpxWPX"))
-        except ValueError:
-            return None
-    return None
-
-
-def pick_candidate(cands: list[dict[str, Any]], pick: str) -> dict[str, Any] | None:
-    """Choose one image candidate: "label:<name>" if present, else the largest by area/width.
-
-    Candidates without a size rank below sized ones; ties keep the first listed.
-    """
-    usable = [c for c in cands if c.get("url")]
-    if not usable:
-        return None
-    if pick.startswith("label:"):
-        wanted = pick[len("label:"):].strip().lower()
-        for cand in usable:
-            if str(cand.get("label") or "").strip().lower() == wanted:
-                return cand
-
-    def size(c: dict[str, Any]) -> float:
-        w, h = c.get("width"), c.get("height")
-        if w is None:
-            return -1.0
-        return w * h if h is not None else w
-
-    best = usable[0]
-    for cand in usable[1:]:
-        if size(cand) > size(best):
-            best = cand
-    return best
-
-
-def map_fields(data: Any, fm: FieldMap, base_url: str) -> dict[str, Any]:
-    """Mapped values of one item (or detail answer): text fields, resolved URLs, picked image."""
-    out: dict[str, Any] = {}
-    for name in ("title", "creator", "licence", "date"):
-        out[name] = as_text(fm.get(name, data))
-    for name in ("licence_url", "page_url", "image_url"):
-        out[name] = resolve_url(base_url, as_text(fm.get(name, data)))
-    if out["image_url"] is None and "image_candidates" in fm.exprs:
-        raw = fm.get("image_candidates", data)
-        if isinstance(raw, dict | str):
-            raw = [raw]
-        cands: list[dict[str, Any]] = []
-        for entry in raw if isinstance(raw, list) else []:
-            url = entry if isinstance(entry, str) else as_text(fm.get("candidate_url", entry))
-            cands.append({
-                "url": resolve_url(base_url, url),
-                "width": _number(fm.get("candidate_width", entry)),
-                "height": _number(fm.get("candidate_height", entry)),
-                "label": as_text(fm.get("candidate_label", entry)),
-            })
-        chosen = pick_candidate(cands, fm.pick)
-        if chosen is not None:
-            out["image_url"] = chosen["url"]
-            out["image_choice"] = {k: v for k, v in chosen.items() if k != "url" and v is not None}
-    return out
-
-
-def link_target(links: Mapping[str, Any] | None, rel: str) -> str | None:
-    """The target of one relation in page.links, as {rel: url} or {rel: {"url": url, ...}}."""
-    value = (links or {}).get(rel)
-    if isinstance(value, Mapping):
-        value = value.get("url")
-    return value if isinstance(value, str) and value.strip() else None
+# Describing an answer in a note
 
 
 def _describe_answer(page: Page) -> str:
@@ -426,6 +329,25 @@ def _type_name(value: Any) -> str:
 
 # ---------------------------------------------------------------------------------------------
 # Walking the pages
+
+
+@dataclass
+class _Position:
+    """Where one walk over the listing is: the next request and what was already seen."""
+
+    url: str
+    params: dict[str, str]
+    page_no: int
+    offset: int
+    seen_requests: set[str] = field(default_factory=set)
+    seen_cursors: set[str] = field(default_factory=set)
+    total_items: int = 0
+
+    @classmethod
+    def start(cls, cfg: Config) -> _Position:
+        """The first request: the source's url and params, page or offset at its start."""
+        first = int(cfg.pag.get("start", 1 if cfg.style == "page" else 0))
+        return cls(url=cfg.url, params=dict(cfg.params), page_no=first, offset=first)
 
 
 class _Walker:
@@ -468,81 +390,99 @@ class _Walker:
 
     def run(self) -> Iterator[Candidate]:
         """Yield candidates page by page until a stop condition."""
-        cfg, pag = self.cfg, self.cfg.pag
-        url: str = cfg.url
-        params = dict(cfg.params)
-        page_no = int(pag.get("start", 1 if cfg.style == "page" else 0))
-        offset = page_no
-        seen_requests: set[str] = set()
-        seen_cursors: set[str] = set()
-        total_items = 0
+        cfg = self.cfg
+        pos = _Position.start(cfg)
         for _ in range(cfg.max_pages):
-            if cfg.style == "page":
-                params[pag.get("param", "page")] = str(page_no)
-            elif cfg.style == "offset":
-                params[pag.get("offset_param", "offset")] = str(offset)
-                if "limit" in pag:
-                    params[pag.get("limit_param", "limit")] = str(pag["limit"])
-            request = merge_query(url, params)
-            if request in seen_requests:
-                self.notes.add("loop", self._red(request),
-                               "pagination came back to a page already read; stopped here")
-                return
-            seen_requests.add(request)
-            got = self.fetch_json(url, params, "listing")
+            got = self._listing(pos)
             if got is None:
                 return
-            page, body = got
-            items = cfg.items.search(body)
-            if not isinstance(items, list):
-                self.notes.add("wrong_shape", self._red(page.url),
-                               f'fields.items ("{cfg.items.expression}") gave {_type_name(items)}, '
-                               "not a list; check fields.items against the answer")
-                return
-            if not items:
-                return
+            page, body, items = got
             before = len(self.seen_keys)
             yield from self._page_items(items, page.url)
-            if len(self.seen_keys) == before and total_items > 0:
-                self.notes.add("loop", self._red(page.url),
-                               "this page repeated items already read (the API may ignore the "
-                               "pagination parameter); stopped here")
+            if self._finished(pos, page, body, len(items), repeated=len(self.seen_keys) == before):
                 return
-            total_items += len(items)
-            if cfg.total is not None:
-                total = _number(cfg.total.search(body))
-                if total is not None and total_items >= total:
-                    return
-            # Next request.
-            if cfg.style == "page":
-                page_no += 1
-            elif cfg.style == "offset":
-                offset += len(items)
-            elif cfg.style == "cursor":
-                cursor = as_text(cfg.cursor.search(body)) if cfg.cursor else None
-                if cursor is None:
-                    return
-                if cursor in seen_cursors:
-                    self.notes.add("loop", self._red(page.url),
-                                   f'the cursor "{cursor:.40}" was already used; stopped here')
-                    return
-                seen_cursors.add(cursor)
-                params[pag["cursor_param"]] = cursor
-            elif cfg.style in ("next_url", "link_header"):
-                if cfg.style == "next_url":
-                    nxt = as_text(cfg.next.search(body)) if cfg.next else None
-                else:
-                    nxt = link_target(page.links, "next")
-                nxt = resolve_url(page.url, nxt)
-                if nxt is None:
-                    return
-                # The next URL carries its own paging query; add only the recipe's params it
-                # lacks (API keys are often left out of next links).
-                url, params = merge_query(nxt, cfg.params), {}
-            else:
+            if not self._advance(pos, page, body, len(items)):
                 return
         self.notes.add("max_pages", self._red(cfg.url),
                        f"stopped after max_pages = {cfg.max_pages} pages; there may be more")
+
+    def _listing(self, pos: _Position) -> tuple[Page, Any, list[Any]] | None:
+        """Request the listing page at pos and return its non-empty item list; None (after a
+        note when something is wrong) stops the source."""
+        cfg, pag, params = self.cfg, self.cfg.pag, pos.params
+        if cfg.style == "page":
+            params[pag.get("param", "page")] = str(pos.page_no)
+        elif cfg.style == "offset":
+            params[pag.get("offset_param", "offset")] = str(pos.offset)
+            if "limit" in pag:
+                params[pag.get("limit_param", "limit")] = str(pag["limit"])
+        request = merge_query(pos.url, params)
+        if request in pos.seen_requests:
+            self.notes.add("loop", self._red(request),
+                           "pagination came back to a page already read; stopped here")
+            return None
+        pos.seen_requests.add(request)
+        got = self.fetch_json(pos.url, params, "listing")
+        if got is None:
+            return None
+        page, body = got
+        items = cfg.items.search(body)
+        if not isinstance(items, list):
+            self.notes.add("wrong_shape", self._red(page.url),
+                           f'fields.items ("{cfg.items.expression}") gave {_type_name(items)}, '
+                           "not a list; check fields.items against the answer")
+            return None
+        if not items:
+            return None
+        return page, body, items
+
+    def _finished(self, pos: _Position, page: Page, body: Any, count: int, *,
+                  repeated: bool) -> bool:
+        """Whether the listing ends after this page: it only repeated items already read (a
+        loop, noted), or the items read reach the total the answer gives."""
+        if repeated and pos.total_items > 0:
+            self.notes.add("loop", self._red(page.url),
+                           "this page repeated items already read (the API may ignore the "
+                           "pagination parameter); stopped here")
+            return True
+        pos.total_items += count
+        if self.cfg.total is not None:
+            total = number(self.cfg.total.search(body))
+            if total is not None and pos.total_items >= total:
+                return True
+        return False
+
+    def _advance(self, pos: _Position, page: Page, body: Any, count: int) -> bool:
+        """Move pos to the next request by the pagination style; False when there is none."""
+        cfg = self.cfg
+        if cfg.style == "page":
+            pos.page_no += 1
+        elif cfg.style == "offset":
+            pos.offset += count
+        elif cfg.style == "cursor":
+            cursor = as_text(cfg.cursor.search(body)) if cfg.cursor else None
+            if cursor is None:
+                return False
+            if cursor in pos.seen_cursors:
+                self.notes.add("loop", self._red(page.url),
+                               f'the cursor "{cursor:.40}" was already used; stopped here')
+                return False
+            pos.seen_cursors.add(cursor)
+            pos.params[cfg.pag["cursor_param"]] = cursor
+        elif cfg.style in ("next_url", "link_header"):
+            if cfg.style == "next_url":
+                nxt = as_text(cfg.next.search(body)) if cfg.next else None
+            else:
+                nxt = link_target(page.links, "next")
+            nxt = resolve_url(page.url, nxt)
+            if nxt is None:
+                return False
+            # The next URL carries its own paging query; add only the recipe's params it
+            # lacks (API keys are often left out of next links).
+            pos.url, pos.params = merge_query(nxt, cfg.params), {}
+        else:
+            return False
+        return True
 
     def _page_items(self, items: list[Any], base_url: str) -> Iterator[Candidate]:
         cfg = self.cfg

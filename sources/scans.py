@@ -8,6 +8,7 @@ import os
 import re
 import stat
 from collections.abc import Callable, Iterator, Mapping
+from dataclasses import dataclass
 from datetime import UTC, datetime
 from pathlib import Path
 from typing import Any
@@ -210,21 +211,43 @@ def iter_candidates(source: Mapping[str, Any], fetcher: PageFetcher | None, note
                              once)
 
 
+@dataclass
+class _ScanFile:
+    """One file of the folder and what the recipe and the file system say about it."""
+
+    rel: str
+    path: Path
+    title: str | None
+    date: str | None
+    metadata: dict[str, Any]
+    common: dict[str, Any]  # creator and licence, the same for every candidate of the source
+
+    @classmethod
+    def of(cls, source: Mapping[str, Any], rel: str, path: Path) -> _ScanFile:
+        """The recipe's title, date, creator, licence and device; the file's mtime and size."""
+        st = path.stat()
+        metadata: dict[str, Any] = {
+            "file": {"mtime": datetime.fromtimestamp(st.st_mtime, UTC).isoformat()
+                     .replace("+00:00", "Z"), "size": st.st_size},
+        }
+        if source.get("device"):
+            metadata["device"] = source["device"]
+        common = {"creator": source.get("creator"), "licence_raw": source.get("licence"),
+                  "licence_url": source.get("licence_url")}
+        return cls(rel, path, source.get("title"), date_text(source.get("date")), metadata,
+                   common)
+
+    def whole(self, metadata: dict[str, Any] | None = None) -> Candidate:
+        """The candidate for the file itself (the scan, when it is split)."""
+        return Candidate(source_key=self.rel, local_path=self.path, title=self.title,
+                         date=self.date, metadata=self.metadata if metadata is None else metadata,
+                         **self.common)
+
+
 def _one_file(source: Mapping[str, Any], rel: str, path: Path,
               split: Mapping[str, Any] | None, notes: OnceNotes) -> Iterator[Candidate]:
-    stat = path.stat()
-    common: dict[str, Any] = {
-        "creator": source.get("creator"),
-        "licence_raw": source.get("licence"),
-        "licence_url": source.get("licence_url"),
-    }
-    metadata: dict[str, Any] = {
-        "file": {"mtime": datetime.fromtimestamp(stat.st_mtime, UTC).isoformat()
-                 .replace("+00:00", "Z"), "size": stat.st_size},
-    }
-    if source.get("device"):
-        metadata["device"] = source["device"]
-    title = source.get("title")
+    """The file as one candidate; with [split], also one candidate per item found on it."""
+    scan = _ScanFile.of(source, rel, path)
     try:
         im = Image.open(path)
     except (UnidentifiedImageError, OSError, Image.DecompressionBombError) as exc:
@@ -232,62 +255,64 @@ def _one_file(source: Mapping[str, Any], rel: str, path: Path,
         if split is not None:
             notes.add("unreadable_scan", rel, f"{rel} could not be opened as an image ({exc}); "
                       "not split")
-        yield Candidate(source_key=rel, local_path=path, title=title,
-                        date=date_text(source.get("date")), metadata=metadata, **common)
+        yield scan.whole()
         return
     with im:
         scanner = scanner_facts(im)
         if scanner:
-            metadata["scanner"] = scanner
-        date = date_text(source.get("date")) or _exif_date(scanner.get("DateTime"))
+            scan.metadata["scanner"] = scanner
+        scan.date = scan.date or _exif_date(scanner.get("DateTime"))
         if split is None:
-            yield Candidate(source_key=rel, local_path=path, title=title, date=date,
-                            metadata=metadata, **common)
+            yield scan.whole()
             return
         try:
             im.load()
         except (OSError, SyntaxError) as exc:
             notes.add("unreadable_scan", rel, f"{rel} could not be decoded ({exc}); not split")
-            yield Candidate(source_key=rel, local_path=path, title=title, date=date,
-                            metadata=metadata, **common)
+            yield scan.whole()
             return
-        from collector.sources import (
-            splitter,  # the splitter (and scipy) only for scans that are split
-        )
+        yield from _split(scan, im, split, notes)
 
-        result = splitter.analyse_scan(
-            im, min_area=int(split.get("min_area", splitter.DEFAULT_MIN_AREA)),
-            threshold=split.get("threshold"),
-            min_solidity=float(split.get("min_solidity", splitter.DEFAULT_MIN_SOLIDITY)))
-        scan_meta = {**metadata, "role": "scan", "items": len(result.items),
-                     "split": {"threshold": result.threshold, "contrast": round(result.contrast, 1),
-                               "scale": result.scale}}
-        yield Candidate(source_key=rel, local_path=path, title=title, date=date,
-                        metadata=scan_meta, **common)
-        if result.blank:
-            notes.add("blank_scan", rel, f"{rel}: no items found on the scanner bed (contrast "
-                      f"{result.contrast:.0f} grey levels); the scan is kept without crops")
-            return
-        icc = im.info.get("icc_profile")
-        padding = int(split.get("padding", 0))
-        deskew = bool(split.get("deskew", False))
-        for n, item in enumerate(result.items, start=1):
-            if item.touching:
-                x, y, w, h = item.box
-                notes.add("touching_items", rel,
-                          f"{rel}: the item at box (x={x}, y={y}, w={w}, h={h}) looks like "
-                          f"several items touching (solidity {item.solidity:.2f}, area "
-                          f"{item.area} px); it is kept as one crop (#crop{n}); lay the items "
-                          "apart and rescan, or crop by hand")
-            crop, box = splitter.crop_item(im, item, padding=padding, deskew=deskew)
-            yield Candidate(
-                source_key=f"{rel}#crop{n}", title=f"{title} ({n})" if title else None,
-                date=date, content=splitter.png_bytes(crop, icc), parent_key=rel, crop_box=box,
-                metadata={**metadata, "role": "crop", "index": n,
-                          "angle": round(item.angle, 2),
-                          "deskewed": deskew and abs(item.angle) >= splitter.MIN_DESKEW_DEGREES,
-                          "solidity": round(item.solidity, 3), "touching": item.touching},
-                **common)
+
+def _split(scan: _ScanFile, im: Image.Image, split: Mapping[str, Any],
+           notes: OnceNotes) -> Iterator[Candidate]:
+    """The scan (with the split's facts), then one cropped candidate per item on the bed."""
+    from collector.sources import (
+        splitter,  # the splitter (and scipy) only for scans that are split
+    )
+
+    rel = scan.rel
+    result = splitter.analyse_scan(
+        im, min_area=int(split.get("min_area", splitter.DEFAULT_MIN_AREA)),
+        threshold=split.get("threshold"),
+        min_solidity=float(split.get("min_solidity", splitter.DEFAULT_MIN_SOLIDITY)))
+    yield scan.whole({**scan.metadata, "role": "scan", "items": len(result.items),
+                      "split": {"threshold": result.threshold,
+                                "contrast": round(result.contrast, 1), "scale": result.scale}})
+    if result.blank:
+        notes.add("blank_scan", rel, f"{rel}: no items found on the scanner bed (contrast "
+                  f"{result.contrast:.0f} grey levels); the scan is kept without crops")
+        return
+    icc = im.info.get("icc_profile")
+    padding = int(split.get("padding", 0))
+    deskew = bool(split.get("deskew", False))
+    for n, item in enumerate(result.items, start=1):
+        if item.touching:
+            x, y, w, h = item.box
+            notes.add("touching_items", rel,
+                      f"{rel}: the item at box (x={x}, y={y}, w={w}, h={h}) looks like "
+                      f"several items touching (solidity {item.solidity:.2f}, area "
+                      f"{item.area} px); it is kept as one crop (#crop{n}); lay the items "
+                      "apart and rescan, or crop by hand")
+        crop, box = splitter.crop_item(im, item, padding=padding, deskew=deskew)
+        yield Candidate(
+            source_key=f"{rel}#crop{n}", title=f"{scan.title} ({n})" if scan.title else None,
+            date=scan.date, content=splitter.png_bytes(crop, icc), parent_key=rel, crop_box=box,
+            metadata={**scan.metadata, "role": "crop", "index": n,
+                      "angle": round(item.angle, 2),
+                      "deskewed": deskew and abs(item.angle) >= splitter.MIN_DESKEW_DEGREES,
+                      "solidity": round(item.solidity, 3), "touching": item.touching},
+            **scan.common)
 
 
 KIND = SourceKind(

@@ -138,13 +138,31 @@ def find_items(gray: np.ndarray, *, chroma: np.ndarray | None = None, scale: int
     and flag probable touching items.
     """
     from scipy import ndimage
-    from scipy.spatial import ConvexHull, QhullError
     hist = np.bincount(gray.ravel(), minlength=256)[:256]
     t, contrast = otsu_threshold(hist)
     if threshold is not None:
         t = int(threshold)
     elif contrast < min_contrast:
         return SplitResult([], t, contrast, scale, True)
+    raw, mask, reach = _item_mask(gray, chroma, t)
+    labels, count = ndimage.label(mask, structure=np.ones((3, 3), dtype=bool))
+    areas = np.bincount(labels.ravel(), minlength=count + 1)
+    full = full_size or (gray.shape[1] * scale, gray.shape[0] * scale)
+    found: list[SplitItem] = []
+    for index, sl in enumerate(ndimage.find_objects(labels), start=1):
+        if sl is None or areas[index] * scale * scale < min_area:
+            continue
+        found.append(_measure(labels, index, sl, int(areas[index]), raw, reach, scale, full,
+                              min_solidity))
+    found = _flag_area_outliers(found)
+    return SplitResult(reading_order(found), t, contrast, scale, not found)
+
+
+def _item_mask(gray: np.ndarray, chroma: np.ndarray | None,
+               t: int) -> tuple[np.ndarray, np.ndarray, int]:
+    """(raw, cleaned, reach): the thresholded mask as is, and after opening, closing with the
+    returned reach and hole filling."""
+    from scipy import ndimage
     mask = gray <= t
     if chroma is not None:
         mask |= chroma >= chroma_threshold(chroma, ~mask)
@@ -159,32 +177,32 @@ def find_items(gray: np.ndarray, *, chroma: np.ndarray | None = None, scale: int
     mask = ndimage.binary_closing(mask, structure=st, iterations=reach)[pad:-pad, pad:-pad]
     mask = ndimage.binary_fill_holes(mask)
     mask = ndimage.binary_opening(mask, structure=st, iterations=2)
-    labels, count = ndimage.label(mask, structure=st)
-    areas = np.bincount(labels.ravel(), minlength=count + 1)
-    full_w, full_h = full_size or (gray.shape[1] * scale, gray.shape[0] * scale)
-    found: list[SplitItem] = []
-    for index, sl in enumerate(ndimage.find_objects(labels), start=1):
-        if sl is None or areas[index] * scale * scale < min_area:
-            continue
-        sub = labels[sl] == index
-        y0, x0 = sl[0].start, sl[1].start
-        pts = _pixel_corners(sub)
-        try:
-            hull_area = float(ConvexHull(pts).volume)  # in 2-D, "volume" is the area
-        except (QhullError, ValueError):
-            hull_area = float(areas[index])
-        solidity = min(1.0, float(areas[index]) / hull_area) if hull_area > 0 else 1.0
-        angle, rw, rh, (cx, cy) = min_area_rect(pts)
-        bx0, by0, bx1, by1 = _raw_extent(raw, labels, index, sl, reach + 2)
-        box = (bx0 * scale, by0 * scale,
-               min(full_w, bx1 * scale) - bx0 * scale, min(full_h, by1 * scale) - by0 * scale)
-        found.append(SplitItem(
-            box=box, angle=angle, rect_size=(rw * scale, rh * scale),
-            rect_center=((cx + x0) * scale, (cy + y0) * scale),
-            area=int(areas[index]) * scale * scale, solidity=solidity,
-            touching=solidity < min_solidity))
-    found = _flag_area_outliers(found)
-    return SplitResult(reading_order(found), t, contrast, scale, not found)
+    return raw, mask, reach
+
+
+def _measure(labels: np.ndarray, index: int, sl: tuple[slice, slice], area: int,
+             raw: np.ndarray, reach: int, scale: int, full: tuple[int, int],
+             min_solidity: float) -> SplitItem:
+    """Box, solidity and minimum-area rectangle of one component of ``area`` pixels, in
+    full-size pixels; touching when the solidity is under min_solidity."""
+    from scipy.spatial import ConvexHull, QhullError
+    sub = labels[sl] == index
+    y0, x0 = sl[0].start, sl[1].start
+    pts = _pixel_corners(sub)
+    try:
+        hull_area = float(ConvexHull(pts).volume)  # in 2-D, "volume" is the area
+    except (QhullError, ValueError):
+        hull_area = float(area)
+    solidity = min(1.0, float(area) / hull_area) if hull_area > 0 else 1.0
+    angle, rw, rh, (cx, cy) = min_area_rect(pts)
+    bx0, by0, bx1, by1 = _raw_extent(raw, labels, index, sl, reach + 2)
+    full_w, full_h = full
+    box = (bx0 * scale, by0 * scale,
+           min(full_w, bx1 * scale) - bx0 * scale, min(full_h, by1 * scale) - by0 * scale)
+    return SplitItem(
+        box=box, angle=angle, rect_size=(rw * scale, rh * scale),
+        rect_center=((cx + x0) * scale, (cy + y0) * scale),
+        area=area * scale * scale, solidity=solidity, touching=solidity < min_solidity)
 
 
 def _raw_extent(raw: np.ndarray, labels: np.ndarray, index: int, sl: tuple[slice, slice],

@@ -12,7 +12,7 @@ from support.server import Answer, LoopbackServer, html_answer, json_answer, on_
 
 from collector.errors import FetchError, RobotsDenied
 from collector.fetching.fetcher import Fetcher, FetchSettings
-from collector.sources.json_api import FieldMap, link_target, map_fields, pick_candidate
+from collector.sources.json_fields import FieldMap, link_target, map_fields, pick_candidate
 
 
 @pytest.fixture

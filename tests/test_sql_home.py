@@ -96,9 +96,16 @@ def test_sql_lives_only_in_the_ledger_and_the_queries_module() -> None:
     assert not found, "SQL outside ledger.py/queries.py:\n" + "\n".join(found)
 
 
+# Which driver modules each module may import. migrations.py: the schema history, written
+# with sqlite-utils' table API and called only by Ledger.migrate inside its translation.
+DRIVER_HOMES = {"collector/storage/ledger.py": {"sqlite3", "sqlite_utils"},
+                "collector/storage/migrations.py": {"sqlite_utils"}}
+
+
 def test_only_the_ledger_imports_sqlite() -> None:
-    """Only ledger.py imports sqlite3 or sqlite_utils: no other module can meet a raw
-    sqlite3.Error, so the ledger's one translation is the only one."""
+    """Only ledger.py imports sqlite3 or sqlite_utils (and migrations.py, which Ledger.migrate
+    alone calls, sqlite_utils): no other module can meet a raw sqlite3.Error, so the ledger's
+    one translation is the only one."""
     drivers = {"sqlite3", "sqlite_utils"}
     found = []
     for path in python_files():
@@ -106,7 +113,21 @@ def test_only_the_ledger_imports_sqlite() -> None:
         for node in ast.walk(ast.parse(path.read_text(encoding="utf-8"))):
             modules = ([a.name for a in node.names] if isinstance(node, ast.Import)
                        else [node.module or ""] if isinstance(node, ast.ImportFrom) else [])
-            if name != "collector/storage/ledger.py" and drivers & {
-                    m.split(".")[0] for m in modules}:
+            imported = drivers & {m.split(".")[0] for m in modules}
+            if imported - DRIVER_HOMES.get(name, set()):
                 found.append(f"{name}:{node.lineno}")
     assert not found, found
+
+
+def test_only_the_ledger_calls_the_migrations() -> None:
+    """The migrations module is imported by ledger.py alone, so every migration runs inside
+    Ledger.migrate (one transaction, the one error translation)."""
+    users = []
+    for path in python_files():
+        for node in ast.walk(ast.parse(path.read_text(encoding="utf-8"))):
+            names = ([a.name for a in node.names] if isinstance(node, ast.Import)
+                     else [f"{node.module}.{a.name}" for a in node.names]
+                     + [node.module or ""] if isinstance(node, ast.ImportFrom) else [])
+            if any(n.startswith("collector.storage.migrations") for n in names):
+                users.append(path.relative_to(ROOT).as_posix())
+    assert users == ["collector/storage/ledger.py"]

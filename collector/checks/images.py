@@ -3,7 +3,8 @@
 ``inspect_image`` decides the format from magic bytes (standards.md section 9), decodes the
 image fully to catch truncation and corruption, applies size limits, reads dimensions, mode, bit
 depth, alpha, frames and EXIF orientation, collects embedded rights metadata (EXIF, IPTC-IIM,
-XMP; standards.md section 6) and personal-data flags, and computes the pHash pair.
+XMP; standards.md section 6, read by collector.checks.embedded_metadata) and personal-data flags,
+and computes the pHash pair.
 
 Images may hold personal data (GPS position, camera serial numbers, owner names, faces): the
 flags point at it; what to do with it is the user's decision.
@@ -19,11 +20,12 @@ import struct
 import warnings
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any, cast
+from typing import Any
 from urllib.parse import urlsplit
 
-from PIL import ExifTags, Image, ImageFile, IptcImagePlugin
+from PIL import ExifTags, Image
 
+from collector.checks.embedded_metadata import read_exif, read_iptc, read_xmp
 from collector.checks.phash import HASH_ALGO, phash_prepared, to_signed64
 from collector.errors import ImageRejected
 
@@ -152,29 +154,6 @@ def _type_mismatch(fmt: str, content_type: str | None, url: str | None) -> str |
 
 
 # --- small helpers -----------------------------------------------------------------------------
-# The longest IPTC text field, Caption/Abstract, is 2000 bytes (IIM 2:120); a longer embedded
-# text is kept in part so one file cannot bloat the ledger.
-MAX_TEXT = 2000
-
-
-def _text(value: Any) -> str | None:
-    """Decode EXIF/IPTC values: bytes as UTF-8, else latin-1; strip NULs and blanks."""
-    if value is None:
-        return None
-    if isinstance(value, list | tuple):
-        parts = [t for t in (_text(v) for v in value) if t]
-        return "; ".join(parts) or None
-    if isinstance(value, bytes):
-        try:
-            value = value.decode("utf-8")
-        except UnicodeDecodeError:
-            value = value.decode("latin-1")
-    text = str(value).replace("\x00", " ").strip()
-    if len(text) > MAX_TEXT:
-        text = text[:MAX_TEXT] + f"... [{len(text) - MAX_TEXT} more characters not kept]"
-    return text or None
-
-
 def _bit_depth(im: Image.Image, fmt: str, head: bytes) -> int:
     if fmt == "PNG" and len(head) > 24:
         return head[24]  # IHDR bit depth at file offset 24 (standards.md section 9)
@@ -215,155 +194,6 @@ def _dpi(im: Image.Image) -> tuple[float, float] | None:
         return (round(float(dpi[0]), 2), round(float(dpi[1]), 2))
     except (TypeError, ValueError, IndexError):
         return None
-
-
-# --- EXIF (standards.md section 6.1) ----------------------------------------------------------
-def _dms_to_decimal(dms: Any, ref: Any) -> float | None:
-    try:
-        d, m, s = (float(v) for v in dms)
-    except (TypeError, ValueError, ZeroDivisionError):
-        return None
-    value = d + m / 60 + s / 3600
-    if _text(ref) in ("S", "W"):
-        value = -value
-    return round(value, 6)
-
-
-def _read_exif(im: Image.Image, flags: list[str]) -> tuple[dict[str, Any], dict[str, Any]]:
-    """(summary, rights) from EXIF; adds personal-data flags."""
-    summary: dict[str, Any] = {}
-    rights: dict[str, Any] = {}
-    try:
-        exif = im.getexif()
-        exif_ifd = exif.get_ifd(ExifTags.IFD.Exif)
-        gps = exif.get_ifd(ExifTags.IFD.GPSInfo)
-    except Exception:  # malformed IFDs come in many shapes; record and carry on
-        flags.append("exif_unreadable")
-        return summary, rights
-    base = {
-        "make": exif.get(ExifTags.Base.Make),
-        "model": exif.get(ExifTags.Base.Model),
-        "datetime": exif.get(ExifTags.Base.DateTime),
-        "datetime_original": exif_ifd.get(ExifTags.Base.DateTimeOriginal),
-        "software": exif.get(ExifTags.Base.Software),
-    }
-    summary.update({k: t for k, v in base.items() if (t := _text(v))})
-    for key, tag in (
-        ("exif_artist", ExifTags.Base.Artist),  # 315
-        ("exif_copyright", ExifTags.Base.Copyright),  # 33432
-        ("exif_description", ExifTags.Base.ImageDescription),  # 270
-    ):
-        if text := _text(exif.get(tag)):
-            rights[key] = text
-    # Camera serial: BodySerialNumber 0xA431 (Exif IFD); DNG CameraSerialNumber 0xC62F (IFD0).
-    serial = _text(exif_ifd.get(0xA431)) or _text(exif.get(0xC62F))
-    if serial:
-        summary["camera_serial"] = serial
-        flags.append("camera_serial")
-    owner = _text(exif_ifd.get(0xA430))  # CameraOwnerName
-    if owner:
-        summary["owner_name"] = owner
-        flags.append("owner_name")
-    if gps:
-        lat = _dms_to_decimal(
-            gps.get(ExifTags.GPS.GPSLatitude), gps.get(ExifTags.GPS.GPSLatitudeRef)
-        )
-        lon = _dms_to_decimal(
-            gps.get(ExifTags.GPS.GPSLongitude), gps.get(ExifTags.GPS.GPSLongitudeRef)
-        )
-        if lat is not None or lon is not None:
-            summary["gps"] = {"lat": lat, "lon": lon}
-            flags.append("gps")
-    return summary, rights
-
-
-# --- IPTC-IIM (standards.md section 6.2) ------------------------------------------------------
-_IPTC_FIELDS = {
-    (2, 80): "iptc_byline",
-    (2, 116): "iptc_copyright",
-    (2, 110): "iptc_credit",
-    (2, 115): "iptc_source",
-    (2, 120): "iptc_caption",
-}
-
-
-def _read_iptc(im: Image.Image, flags: list[str]) -> dict[str, Any]:
-    try:
-        # Only opened files carry IPTC; getiptcinfo reads the file's own segments.
-        info = IptcImagePlugin.getiptcinfo(cast(ImageFile.ImageFile, im))
-    except Exception:
-        flags.append("iptc_unreadable")
-        return {}
-    if not info:
-        return {}
-    return {key: t for ds, key in _IPTC_FIELDS.items() if (t := _text(info.get(ds)))}
-
-
-# --- XMP (standards.md section 6.3) ------------------------------------------------------------
-_XMP_FIELDS = {
-    "{http://purl.org/dc/elements/1.1/}creator": "xmp_creator",
-    "{http://purl.org/dc/elements/1.1/}rights": "xmp_rights",
-    "{http://ns.adobe.com/xap/1.0/rights/}WebStatement": "xmp_web_statement",
-    "{http://ns.adobe.com/xap/1.0/rights/}UsageTerms": "xmp_usage_terms",
-    "{http://ns.adobe.com/xap/1.0/rights/}Marked": "xmp_marked",
-    "{http://creativecommons.org/ns#}license": "xmp_license",
-}
-_RDF = "{http://www.w3.org/1999/02/22-rdf-syntax-ns#}"
-
-
-def _xmp_value(node: Any) -> str | None:
-    """Flatten an XMP value: text, rdf:Seq/Bag/Alt of rdf:li, or an rdf:resource attribute."""
-    if node is None:
-        return None
-    if isinstance(node, str):
-        return node.strip() or None
-    if isinstance(node, list):
-        parts = [v for v in (_xmp_value(n) for n in node) if v]
-        return "; ".join(dict.fromkeys(parts)) or None
-    if isinstance(node, dict):
-        for key in (
-            f"{_RDF}Seq",
-            f"{_RDF}Bag",
-            f"{_RDF}Alt",
-            f"{_RDF}li",
-            "text",
-            f"{_RDF}resource",
-        ):
-            if key in node:
-                return _xmp_value(node[key])
-    return None
-
-
-def _descriptions(xmp: dict) -> list[dict]:
-    meta = xmp.get("{adobe:ns:meta/}xmpmeta", xmp)
-    rdf = meta.get(f"{_RDF}RDF", {}) if isinstance(meta, dict) else {}
-    desc = rdf.get(f"{_RDF}Description", []) if isinstance(rdf, dict) else []
-    return [d for d in (desc if isinstance(desc, list) else [desc]) if isinstance(d, dict)]
-
-
-def _read_xmp(im: Image.Image, flags: list[str]) -> dict[str, Any]:
-    raw = im.info.get("xmp") or im.info.get("XML:com.adobe.xmp")
-    if not raw and not hasattr(im, "tag_v2"):
-        return {}
-    try:
-        with warnings.catch_warnings():
-            warnings.simplefilter("error")  # "XMP data cannot be read without defusedxml"
-            xmp = im.getxmp(strip_namespaces=False)
-    except Exception:  # defusedxml EntitiesForbidden (entity bombs), ParseError, ...
-        flags.append("xmp_unreadable")
-        return {}
-    out: dict[str, Any] = {}
-    for desc in _descriptions(xmp):
-        for name, key in _XMP_FIELDS.items():
-            value = _xmp_value(desc.get(name))
-            if value and key not in out:
-                out[key] = value
-    if "xmp_marked" in out:  # Boolean "True"/"False" (standards.md 6.3)
-        marked = str(out["xmp_marked"]).strip().lower()
-        out["xmp_marked"] = True if marked == "true" else False if marked == "false" else None
-        if out["xmp_marked"] is None:
-            del out["xmp_marked"]
-    return out
 
 
 def _orientation(im: Image.Image) -> int:
@@ -428,6 +258,153 @@ def _decode_all(im: Image.Image, path: Path) -> None:
         raise ImageRejected("broken_image", f"{path.name}: decoding failed: {exc}") from exc
 
 
+@dataclass
+class _Geometry:
+    """Stored size, EXIF orientation and the size as displayed."""
+
+    width: int
+    height: int
+    orientation: int
+    display_width: int
+    display_height: int
+
+
+@dataclass
+class _Described:
+    """What the header and embedded metadata say, read before any pixel is decoded."""
+
+    exif: dict[str, Any]
+    rights: dict[str, Any]
+    mode: str
+    bit_depth: int
+    alpha: bool
+    icc: bool
+    icc_profile: str | None
+    dpi: tuple[float, float] | None
+
+
+def _identify(path: Path) -> tuple[bytes, str]:
+    """The first 64 bytes and the format their signature names; not_an_image otherwise."""
+    with path.open("rb") as fh:
+        head = fh.read(64)
+    fmt = sniff_format(head)
+    if fmt is None:
+        raise ImageRejected("not_an_image", f"{path.name}: {_describe_non_image(head)}")
+    return head, fmt
+
+
+def _mismatch_flag(mismatch: str | None, flags: list[str]) -> None:
+    """Flag ``type_mismatch:<kinds>`` for a declared type or URL suffix that disagrees."""
+    if mismatch:
+        kinds = "+".join(p.split("=", 1)[0] for p in mismatch.split(" but ", 1)[1].split(", "))
+        flags.append(f"type_mismatch:{kinds}")
+
+
+def _geometry(im: Image.Image, fmt: str, path: Path) -> _Geometry:
+    """Check Pillow agrees on the format; size and orientation as stored and as displayed."""
+    if im.format != fmt:
+        raise ImageRejected(
+            "broken_image", f"{path.name}: signature says {fmt} but Pillow read {im.format}"
+        )
+    width, height = im.size
+    orientation = _orientation(im)
+    if orientation not in range(1, 9):
+        orientation = 1  # reserved values (standards.md 6.1) are treated as "no rotation"
+    dw, dh = (height, width) if orientation in (5, 6, 7, 8) else (width, height)
+    return _Geometry(width, height, orientation, dw, dh)
+
+
+def _check_shape(
+    geo: _Geometry, path: Path, min_side: int, min_aspect: float, max_aspect: float
+) -> None:
+    """too_small / bad_aspect on the displayed size (0 turns a limit off)."""
+    dw, dh = geo.display_width, geo.display_height
+    shortest = min(dw, dh)
+    if min_side and shortest < min_side:
+        raise ImageRejected(
+            "too_small", f"{path.name}: shortest side {shortest}px is under min_side {min_side}"
+        )
+    aspect = dw / dh if dh else 0.0
+    if (min_aspect and aspect < min_aspect) or (max_aspect and aspect > max_aspect):
+        raise ImageRejected(
+            "bad_aspect",
+            f"{path.name}: width/height {aspect:.3f} is outside "
+            f"min_aspect {min_aspect or 'off'} .. max_aspect {max_aspect or 'off'}",
+        )
+
+
+def _describe(im: Image.Image, fmt: str, head: bytes, flags: list[str]) -> _Described:
+    """EXIF, IPTC and XMP (rights merged in that order), pixel layout, ICC profile and dpi."""
+    exif, rights = read_exif(im, flags)
+    rights.update(read_iptc(im, flags))
+    rights.update(read_xmp(im, flags))
+    return _Described(
+        exif=exif,
+        rights=rights,
+        mode=im.mode,
+        bit_depth=_bit_depth(im, fmt, head),
+        alpha=_has_alpha(im),
+        icc=bool(im.info.get("icc_profile")),
+        icc_profile=_icc_profile_name(im.info.get("icc_profile"), flags),
+        dpi=_dpi(im),
+    )
+
+
+def _check_pixels(
+    im: Image.Image, fmt: str, geo: _Geometry, path: Path, max_pixels: int, full_decode: bool
+) -> tuple[int, int] | None:
+    """PNG CRCs, the full decode (skipped for a JPEG when full_decode is False) and, for
+    formats other than JPEG, the hash of the pixels just decoded; None means "hash later"."""
+    if fmt == "PNG":
+        _verify_png(path, max_pixels)
+    if full_decode or fmt != "JPEG":
+        _decode_all(im, path)
+    if fmt != "JPEG":  # draft() only helps JPEG; elsewhere hash the pixels just decoded
+        return _hash(im, geo.orientation, path)
+    return None
+
+
+def _facts(
+    fmt: str,
+    geo: _Geometry,
+    described: _Described,
+    frames: int,
+    hashes: tuple[int, int],
+    flags: list[str],
+    mismatch: str | None,
+) -> ImageFacts:
+    """Assemble the ImageFacts; a non-default orientation is also kept in the EXIF summary."""
+    if geo.orientation != 1:
+        described.exif["orientation"] = geo.orientation
+    mime, ext, _ = FORMATS[fmt]
+    phash, mirror = hashes
+    return ImageFacts(
+        format=fmt,
+        mime=mime,
+        ext=ext,
+        width=geo.width,
+        height=geo.height,
+        display_width=geo.display_width,
+        display_height=geo.display_height,
+        mode=described.mode,
+        bit_depth=described.bit_depth,
+        alpha=described.alpha,
+        frames=frames,
+        animated=frames > 1,
+        orientation=geo.orientation,
+        icc=described.icc,
+        dpi=described.dpi,
+        icc_profile=described.icc_profile,
+        phash=phash,
+        phash_mirror=mirror,
+        hash_algo=HASH_ALGO,
+        exif=described.exif,
+        rights=described.rights,
+        flags=flags,
+        type_mismatch=mismatch,
+    )
+
+
 def inspect_image(
     path: Path,
     *,
@@ -441,6 +418,11 @@ def inspect_image(
 ) -> ImageFacts:
     """Check one image file and collect its facts; raise ImageRejected(reason, detail) if unfit.
 
+    The checks run in this order, and the first that fails decides the reason: signature
+    (not_an_image), open and pixel limit (decompression_bomb, broken_image), format agreement
+    (broken_image), shape (too_small, bad_aspect), then, after the metadata is read, PNG CRCs
+    and the decode (broken_image).
+
     full_decode=False lets a JPEG's draft decode for the hash (1/8 scale, every block still
     entropy-decoded) serve as the integrity check instead of a full-size decode; it caught the
     same truncations (missing EOI, cut at 50%/90%) in a probe and is ~3x cheaper. Other formats
@@ -450,87 +432,17 @@ def inspect_image(
     raised too (Pillow checks it inside Image.open).
     """
     path = Path(path)
-    with path.open("rb") as fh:
-        head = fh.read(64)
-    fmt = sniff_format(head)
-    if fmt is None:
-        raise ImageRejected("not_an_image", f"{path.name}: {_describe_non_image(head)}")
+    head, fmt = _identify(path)
     flags: list[str] = []
     mismatch = _type_mismatch(fmt, content_type, url)
-    if mismatch:
-        kinds = "+".join(p.split("=", 1)[0] for p in mismatch.split(" but ", 1)[1].split(", "))
-        flags.append(f"type_mismatch:{kinds}")
-
+    _mismatch_flag(mismatch, flags)
     with _open(path, max_pixels) as im:
-        if im.format != fmt:
-            raise ImageRejected(
-                "broken_image", f"{path.name}: signature says {fmt} but Pillow read {im.format}"
-            )
-        width, height = im.size
-        orientation = _orientation(im)
-        if orientation not in range(1, 9):
-            orientation = 1  # reserved values (standards.md 6.1) are treated as "no rotation"
-        dw, dh = (height, width) if orientation in (5, 6, 7, 8) else (width, height)
-        shortest = min(dw, dh)
-        if min_side and shortest < min_side:
-            raise ImageRejected(
-                "too_small", f"{path.name}: shortest side {shortest}px is under min_side {min_side}"
-            )
-        aspect = dw / dh if dh else 0.0
-        if (min_aspect and aspect < min_aspect) or (max_aspect and aspect > max_aspect):
-            raise ImageRejected(
-                "bad_aspect",
-                f"{path.name}: width/height {aspect:.3f} is outside "
-                f"min_aspect {min_aspect or 'off'} .. max_aspect {max_aspect or 'off'}",
-            )
-        exif, rights = _read_exif(im, flags)
-        rights.update(_read_iptc(im, flags))
-        rights.update(_read_xmp(im, flags))
-        facts_mode = im.mode
-        bit_depth = _bit_depth(im, fmt, head)
-        alpha = _has_alpha(im)
-        icc = bool(im.info.get("icc_profile"))
-        icc_profile = _icc_profile_name(im.info.get("icc_profile"), flags)
-        dpi = _dpi(im)
-        if fmt == "PNG":
-            _verify_png(path, max_pixels)
-        if full_decode or fmt != "JPEG":
-            _decode_all(im, path)
-        hashes = None
-        if fmt != "JPEG":  # draft() only helps JPEG; elsewhere hash the pixels just decoded
-            hashes = _hash(im, orientation, path)
+        geo = _geometry(im, fmt, path)
+        _check_shape(geo, path, min_side, min_aspect, max_aspect)
+        described = _describe(im, fmt, head, flags)
+        hashes = _check_pixels(im, fmt, geo, path, max_pixels, full_decode)
         frames = int(getattr(im, "n_frames", 1) or 1)
-
     if hashes is None:  # JPEG: a second, draft-mode decode at 1/8 scale (HASH_ALGO pipeline)
         with _open(path, max_pixels) as im:
-            hashes = _hash(im, orientation, path)
-    phash, mirror = hashes
-
-    if orientation != 1:
-        exif["orientation"] = orientation
-    mime, ext, _ = FORMATS[fmt]
-    return ImageFacts(
-        format=fmt,
-        mime=mime,
-        ext=ext,
-        width=width,
-        height=height,
-        display_width=dw,
-        display_height=dh,
-        mode=facts_mode,
-        bit_depth=bit_depth,
-        alpha=alpha,
-        frames=frames,
-        animated=frames > 1,
-        orientation=orientation,
-        icc=icc,
-        dpi=dpi,
-        icc_profile=icc_profile,
-        phash=phash,
-        phash_mirror=mirror,
-        hash_algo=HASH_ALGO,
-        exif=exif,
-        rights=rights,
-        flags=flags,
-        type_mismatch=mismatch,
-    )
+            hashes = _hash(im, geo.orientation, path)
+    return _facts(fmt, geo, described, frames, hashes, flags, mismatch)

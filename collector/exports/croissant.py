@@ -169,33 +169,41 @@ def build_croissant(facts: DatasheetFacts, answers: dict[str, str]) -> dict[str,
     }]
     if release["with_images"]:
         for ext, info in sorted(release["by_ext"].items()):
-            if not info["files"]:
-                continue
-            fs_id, rs_id = f"files-{ext}", f"images-{ext}"
-            distribution.append({
-                "@type": "cr:FileSet", "@id": fs_id, "name": fs_id,
-                "description": f"the {info['files']} .{ext} images of this release",
-                "encodingFormat": info["mime"] or f"image/{ext}",
-                "includes": f"images/*.{ext}",
-            })
-            records.append({
-                "@type": "cr:RecordSet", "@id": rs_id, "name": rs_id,
-                "description": f".{ext} images; file_name joins them to provenance",
-                "field": [
-                    {"@type": "cr:Field", "@id": f"{rs_id}/file_name", "name": "file_name",
-                     "dataType": "sc:Text",
-                     "source": {"fileSet": {"@id": fs_id},
-                                "extract": {"fileProperty": "filename"}},
-                     "references": {"field": {"@id": "provenance/file_name"}}},
-                    {"@type": "cr:Field", "@id": f"{rs_id}/image", "name": "image",
-                     "dataType": "sc:ImageObject",
-                     "source": {"fileSet": {"@id": fs_id},
-                                "extract": {"fileProperty": "content"}}},
-                ],
-            })
+            if info["files"]:
+                file_set, record_set = _image_nodes(ext, info)
+                distribution.append(file_set)
+                records.append(record_set)
     doc["distribution"] = distribution
     doc["recordSet"] = records
     return doc
+
+
+def _image_nodes(ext: str, info: dict[str, Any]) -> tuple[dict[str, Any], dict[str, Any]]:
+    """The FileSet of a release's images with one extension, and its RecordSet (file name,
+    joined to provenance, and the image content)."""
+    fs_id, rs_id = f"files-{ext}", f"images-{ext}"
+    file_set = {
+        "@type": "cr:FileSet", "@id": fs_id, "name": fs_id,
+        "description": f"the {info['files']} .{ext} images of this release",
+        "encodingFormat": info["mime"] or f"image/{ext}",
+        "includes": f"images/*.{ext}",
+    }
+    record_set = {
+        "@type": "cr:RecordSet", "@id": rs_id, "name": rs_id,
+        "description": f".{ext} images; file_name joins them to provenance",
+        "field": [
+            {"@type": "cr:Field", "@id": f"{rs_id}/file_name", "name": "file_name",
+             "dataType": "sc:Text",
+             "source": {"fileSet": {"@id": fs_id},
+                        "extract": {"fileProperty": "filename"}},
+             "references": {"field": {"@id": "provenance/file_name"}}},
+            {"@type": "cr:Field", "@id": f"{rs_id}/image", "name": "image",
+             "dataType": "sc:ImageObject",
+             "source": {"fileSet": {"@id": fs_id},
+                        "extract": {"fileProperty": "content"}}},
+        ],
+    }
+    return file_set, record_set
 
 
 def _rai(facts: DatasheetFacts, answers: dict[str, str]) -> dict[str, Any]:
@@ -250,6 +258,13 @@ def _rai(facts: DatasheetFacts, answers: dict[str, str]) -> dict[str, Any]:
     if facts["timeframe"]["start"]:
         out["rai:dataCollectionTimeframe"] = [facts["timeframe"]["start"],
                                               facts["timeframe"]["end"]]
+    _add_answers(out, answers)
+    return out
+
+
+def _add_answers(out: dict[str, Any], answers: dict[str, str]) -> None:
+    """Add the datasheet answers that have a RAI property (uses, limits, sensitive data,
+    maintenance) to the drafted properties."""
     for key, prop in (("composition.sensitive", "rai:personalSensitiveInformation"),
                       ("composition.identification", "rai:personalSensitiveInformation")):
         if answers.get(key):
@@ -260,7 +275,6 @@ def _rai(facts: DatasheetFacts, answers: dict[str, str]) -> dict[str, Any]:
             out.setdefault(prop, []).append(answers[key])
     if answers.get("maintenance.updates"):
         out["rai:dataReleaseMaintenancePlan"] = answers["maintenance.updates"]
-    return out
 
 
 def _is_datetime(value: Any) -> bool:
@@ -274,7 +288,19 @@ def _is_datetime(value: Any) -> bool:
 def precheck(doc: dict[str, Any]) -> list[str]:
     """What the Croissant 1.0 spec requires but mlcroissant 1.1.1 does not enforce.
 
-    Returns one actionable message per problem (empty list: nothing missing)."""
+    Returns one actionable message per problem (empty list: nothing missing), in the order:
+    the dataset's own properties, the distribution, the record sets, the collection timeframe."""
+    problems = _precheck_dataset(doc)
+    ids = _precheck_distribution(doc, problems)
+    _precheck_records(doc, ids, problems)
+    frame = doc.get("rai:dataCollectionTimeframe")
+    if frame is not None and not (isinstance(frame, list) and all(map(_is_datetime, frame))):
+        problems.append("rai:dataCollectionTimeframe must be a list of ISO 8601 DateTimes")
+    return problems
+
+
+def _precheck_dataset(doc: dict[str, Any]) -> list[str]:
+    """Problems with the context, type, conformance and required dataset properties."""
     problems: list[str] = []
     ctx = doc.get("@context")
     if not isinstance(ctx, dict) or ctx.get("sc") != "https://schema.org/":
@@ -300,6 +326,12 @@ def precheck(doc: dict[str, Any]) -> list[str]:
                         "recognised licence")
     problems.extend(f"license {u!r} is not an SPDX licence URL" for u in licences
                     if not SPDX_URL_RE.match(u))
+    return problems
+
+
+def _precheck_distribution(doc: dict[str, Any], problems: list[str]) -> set[str]:
+    """Add the distribution's problems (duplicate ids, FileObjects without a checksum, FileSets
+    without includes/encodingFormat); return the @ids seen."""
     ids: set[str] = set()
     for node in doc.get("distribution") or []:
         nid = node.get("@id")
@@ -313,6 +345,12 @@ def precheck(doc: dict[str, Any]) -> list[str]:
             problems.append(f"FileSet {nid!r} needs includes and encodingFormat")
     if not doc.get("distribution"):
         problems.append("distribution is empty")
+    return ids
+
+
+def _precheck_records(doc: dict[str, Any], ids: set[str], problems: list[str]) -> None:
+    """Add the record sets' problems: duplicate ids (ids gains theirs), fields without a
+    dataType, references to no field, sources in no distribution node."""
     records = doc.get("recordSet") or []
     if not records:
         problems.append("recordSet is empty: nothing could be loaded")
@@ -335,7 +373,3 @@ def precheck(doc: dict[str, Any]) -> list[str]:
             if node.get("@id") not in ids:
                 problems.append(f"field {fld.get('@id')!r} reads from an unknown node "
                                 f"{node.get('@id')!r}")
-    frame = doc.get("rai:dataCollectionTimeframe")
-    if frame is not None and not (isinstance(frame, list) and all(map(_is_datetime, frame))):
-        problems.append("rai:dataCollectionTimeframe must be a list of ISO 8601 DateTimes")
-    return problems

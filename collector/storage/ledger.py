@@ -2,8 +2,8 @@
 
 The ledger is the memory of a collection: every run, source, candidate item, HTTP request, stored
 file and host policy is a row. It is opened in WAL mode so that ``collector status`` and
-``collector trace`` can read while ``gather`` writes. Schema changes are numbered migrations;
-``schema_version`` records which ones were applied.
+``collector trace`` can read while ``gather`` writes. Schema changes are numbered migrations
+(collector.storage.migrations), applied here; ``schema_version`` records which ones were applied.
 
 Only :meth:`Ledger.create` (``collector init``, ``collector rebuild-ledger``) writes a schema
 into a file. :meth:`Ledger.open` refuses a file without one (0 bytes, no ``schema_version``
@@ -29,9 +29,10 @@ from typing import Any
 import sqlite_utils
 
 from collector.errors import LedgerError, LedgerUnusable
+from collector.storage.migrations import MIGRATIONS
 from collector.storage.safe_paths import refuse_ledger_links
 
-SCHEMA_VERSION = 3
+SCHEMA_VERSION = max(MIGRATIONS)  # the newest migration; a file records what it has
 
 JSON_COLUMNS = {"options", "config", "metadata", "crop_box", "exif", "rights", "flags",
                 "effective_budget"}
@@ -40,79 +41,6 @@ JSON_COLUMNS = {"options", "config", "metadata", "crop_box", "exif", "rights", "
 def utc_now() -> str:
     """The current time as an ISO 8601 UTC string with milliseconds (the ledger's time format)."""
     return datetime.now(UTC).isoformat(timespec="milliseconds").replace("+00:00", "Z")
-
-
-def _migration_1(db: sqlite_utils.Database) -> None:
-    """Create the first version of every table."""
-    db.table("runs").create({
-        "id": int, "started_at": str, "ended_at": str, "recipe_sha256": str, "options": str,
-        "outcome": str, "tool_version": str,
-    }, pk="id")
-    db.table("sources").create({"id": int, "name": str, "kind": str, "config": str}, pk="id")
-    db.table("sources").create_index(["name"], unique=True)
-    db.table("items").create({
-        "id": int, "source_id": int, "source_key": str, "image_url": str, "page_url": str,
-        "title": str, "creator": str, "licence_raw": str, "licence_url": str, "spdx_id": str,
-        "date": str, "metadata": str, "state": str, "reason": str, "detail": str,
-        "file_sha256": str, "duplicate_of": int, "near_distance": int, "near_mirrored": int,
-        "parent_sha256": str, "crop_box": str, "local_path": str, "run_id": int,
-        "created_at": str, "updated_at": str,
-    }, pk="id", foreign_keys=[("source_id", "sources", "id")])
-    db.table("items").create_index(["source_id", "source_key"], unique=True)
-    db.table("items").create_index(["image_url"])
-    db.table("items").create_index(["state"])
-    db.table("items").create_index(["file_sha256"])
-    db.table("fetches").create({
-        "id": int, "run_id": int, "item_id": int, "purpose": str, "url": str, "host": str,
-        "status": int, "bytes": int, "started_at": str, "ended_at": str, "waited_s": float,
-        "attempt": int, "robots_verdict": str, "robots_rule": str, "error": str, "etag": str,
-        "last_modified": str, "content_type": str, "from_cache": int,
-    }, pk="id")
-    db.table("fetches").create_index(["item_id"])
-    db.table("fetches").create_index(["host"])
-    db.table("files").create({
-        "sha256": str, "size": int, "ext": str, "format": str, "mime": str, "width": int,
-        "height": int, "mode": str, "bit_depth": int, "alpha": int, "frames": int,
-        "orientation": int, "phash": int, "phash_mirror": int, "hash_algo": str,
-        "first_item_id": int, "stored_at": str, "exif": str, "rights": str, "flags": str,
-    }, pk="sha256")
-    db.table("hosts").create({
-        "host": str, "robots_url": str, "robots_fetched_at": str, "robots_status": int,
-        "robots_sha256": str, "robots_body": str, "effective_budget": str,
-        "parked_until": float, "failures": int,
-    }, pk="host")
-    db.table("notes").create({
-        "id": int, "run_id": int, "source_id": int, "kind": str, "url": str, "message": str,
-        "created_at": str,
-    }, pk="id")
-
-
-def _migration_2(db: sqlite_utils.Database) -> None:
-    """The ledger's identity and the store's write-ahead intents.
-
-    ``ledger_facts`` holds ``collection_id`` (a uuid4, also written to the folder's
-    ``collection.id``) so a ledger from another collection is recognised; a migrated ledger
-    gets it from ``collection.check_ledger``, which knows the folder. ``store_intents``
-    names a file while it is being placed in (or removed from) the store: crash recovery
-    removes a stored file without a ``files`` row only when an intent names it.
-    """
-    db.table("ledger_facts").create({"name": str, "value": str}, pk="name")
-    db.table("store_intents").create({"sha256": str, "item_id": int, "started_at": str},
-                                     pk="sha256")
-
-
-def _migration_3(db: sqlite_utils.Database) -> None:
-    """Image facts that were computed but not kept: the embedded ICC profile's description
-    and the stored pixel density. Rows stored before stay NULL (unknown)."""
-    files = db.table("files")
-    present = files.columns_dict
-    for name, kind in (("icc_profile", str), ("dpi_x", float), ("dpi_y", float)):
-        if name not in present:  # a ledger mended by hand may have some already
-            files.add_column(name, kind)
-
-
-MIGRATIONS: dict[int, Callable[[sqlite_utils.Database], None]] = {
-    1: _migration_1, 2: _migration_2, 3: _migration_3}
 
 
 def ways_out(folder: Path) -> str:
