@@ -12,26 +12,17 @@ import os
 from pathlib import Path
 
 import pytest
-from PIL import Image
+from support.collections import scans_collection
 from typer.testing import CliRunner
 
 from collector.cli import app
-from collector.run.gather import gather
-from collector.storage.collection import Collection, init_collection
+from collector.storage.collection import Collection
 
 
 @pytest.fixture
 def damaged(tmp_path: Path) -> Collection:
     """A collection with two stored scans whose ledger is then overwritten with noise."""
-    col = init_collection(tmp_path / "c", contact="me@example.org")
-    (col.root / "in").mkdir()
-    for n in range(2):
-        Image.effect_mandelbrot((96, 64), (-2 + n, -1, 1, 1), 50).convert("RGB").save(
-            col.root / "in" / f"{n}.png")
-    col.recipe_path.write_text(col.recipe_path.read_text() + (
-        '\n[[sources]]\nname = "desk"\nkind = "scans"\npath = "in"\ninclude = ["*.png"]\n'
-        'licence = "CC0-1.0"\n'))
-    gather(col, fetcher_factory=lambda recipe, ledger: None)
+    col = scans_collection(tmp_path / "c", 2)
     for leftover in col.root.glob("ledger.sqlite-*"):
         leftover.unlink()
     col.ledger_path.write_bytes(os.urandom(8192))

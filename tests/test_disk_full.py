@@ -15,21 +15,13 @@ from pathlib import Path
 from typing import Any
 
 import pytest
+from support.collections import one_page_recipe
 from typer.testing import CliRunner
 
 from collector.cli import app
 from collector.demo_site import DemoServer
-from collector.demo_site.recipes import render
 from collector.run.gather import gather
 from collector.storage.collection import Collection, init_collection, recover
-
-
-def small_recipe(port: int) -> str:
-    """The smoke recipe over one listing page of 10 items, without an item limit."""
-    text = render("smoke", port)
-    return (text.replace("max_items = 10", "max_items = 0")
-            .replace("max_pages = 5", "max_pages = 1")
-            .replace('per_page = "20"', 'per_page = "10"'))
 
 
 def outcome(col: Collection) -> set[tuple]:
@@ -84,7 +76,7 @@ def reference(demo_server: DemoServer, tmp_path_factory: pytest.TempPathFactory)
     """The outcome of an uninterrupted run of the small recipe."""
     demo_server.reset()
     col = init_collection(tmp_path_factory.mktemp("disk-full") / "ref", contact="x@example.org")
-    col.recipe_path.write_text(small_recipe(demo_server.port))
+    col.recipe_path.write_text(one_page_recipe(demo_server.port))
     assert gather(col).outcome == "finished"
     demo_server.reset()
     result = outcome(col)
@@ -117,7 +109,7 @@ def test_disk_full_on_the_store_rename_stops_cleanly_and_resumes_to_the_same_res
     """os.replace fails with ENOSPC after 3 files: exit 1 with the disk-full message, a
     consistent ledger, then a resume equal to an uninterrupted run."""
     col = init_collection(tmp_path / "col", contact="x@example.org")
-    col.recipe_path.write_text(small_recipe(fresh_demo_server.port))
+    col.recipe_path.write_text(one_page_recipe(fresh_demo_server.port))
     monkeypatch.setattr(os, "replace", FullAfter(os.replace, 3))
     result = run_cli(col)
     monkeypatch.undo()
@@ -132,7 +124,7 @@ def test_disk_full_while_downloading_stops_cleanly_and_resumes_to_the_same_resul
     """Writes of downloaded bytes fail with ENOSPC after ~100 KB: exit 1 with the disk-full
     message, a consistent ledger, then a resume equal to an uninterrupted run."""
     col = init_collection(tmp_path / "col", contact="x@example.org")
-    col.recipe_path.write_text(small_recipe(fresh_demo_server.port))
+    col.recipe_path.write_text(one_page_recipe(fresh_demo_server.port))
     state = {"left": 100_000}
     real_fdopen = os.fdopen
 

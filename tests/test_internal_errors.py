@@ -17,11 +17,11 @@ from pathlib import Path
 from typing import Any
 
 import pytest
+from support.collections import one_page_recipe
 from typer.testing import CliRunner
 
 from collector.cli import app
 from collector.demo_site import DemoServer
-from collector.demo_site.recipes import render
 from collector.run.ingest import Ingest
 from collector.run.scheduling import Gatherer, RunResult
 from collector.storage.collection import Collection, init_collection
@@ -51,12 +51,6 @@ def _method(fail: FailOn) -> Callable[..., Any]:
     return method
 
 
-def small_recipe(port: int) -> str:
-    """The demo smoke recipe over one listing page of 10 items, no item limit."""
-    text = render("smoke", port)
-    return (text.replace("max_items = 10", "max_items = 0")
-            .replace("max_pages = 5", "max_pages = 1")
-            .replace('per_page = "20"', 'per_page = "10"'))
 
 
 def states(col: Collection) -> dict[str, str]:
@@ -81,7 +75,7 @@ def stored_files(col: Collection) -> dict[str, bytes]:
 def web_collection(tmp_path: Path, fresh_demo_server: DemoServer) -> Collection:
     """A collection over ten items of the demo archive."""
     col = init_collection(tmp_path / "c", contact="me@example.org")
-    col.recipe_path.write_text(small_recipe(fresh_demo_server.port))
+    col.recipe_path.write_text(one_page_recipe(fresh_demo_server.port))
     return col
 
 

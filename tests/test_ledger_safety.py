@@ -16,6 +16,7 @@ import sqlite3
 from pathlib import Path
 
 import pytest
+from support.collections import one_page_recipe
 from typer.testing import CliRunner
 
 from collector.cli import app
@@ -41,12 +42,6 @@ from collector.storage.ledger_repair import (
 runner = CliRunner()
 
 
-def small_recipe(port: int) -> str:
-    """The smoke recipe over one listing page of 10 items, without an item limit."""
-    text = render("smoke", port)
-    return (text.replace("max_items = 10", "max_items = 0")
-            .replace("max_pages = 5", "max_pages = 1")
-            .replace('per_page = "20"', 'per_page = "10"'))
 
 
 def store_snapshot(col: Collection) -> dict[str, str]:
@@ -88,7 +83,7 @@ def demo_copy(gathered_demo: Path, tmp_path: Path) -> Collection:
 def small(fresh_demo_server: DemoServer, tmp_path: Path) -> Collection:
     """A small collection (10 items of one API page) gathered from the demo archive."""
     col = init_collection(tmp_path / "small", contact="x@example.org")
-    col.recipe_path.write_text(small_recipe(fresh_demo_server.port))
+    col.recipe_path.write_text(one_page_recipe(fresh_demo_server.port))
     assert gather(col).outcome == "finished"
     with col.ledger(readonly=True) as ledger:
         assert ledger.store_intents() == set()  # every intent went with its files row

@@ -14,15 +14,14 @@ import sqlite3
 from pathlib import Path
 
 import pytest
-from PIL import Image
+from support.collections import scans_collection
 from typer.testing import CliRunner
 
 from collector.cli import app
 from collector.display import PlainProgress
 from collector.exports.datasheet import export_datasheet
-from collector.run.gather import gather
 from collector.safe_text import csv_cell, for_terminal, one_line
-from collector.storage.collection import Collection, init_collection
+from collector.storage.collection import Collection
 
 FORMULAS = ['=HYPERLINK("http://127.0.0.59/x","click")', "+cmd|' /C calc'!A0", "@SUM(1+1)*cmd",
             "-2+3", "\t=1+1", "\r=1+1"]
@@ -55,15 +54,7 @@ def test_control_and_bidi_characters_are_shown_as_escapes() -> None:
 def hostile_collection(tmp_path: Path) -> Collection:
     """Two stored scans whose titles and creators are then set to what a hostile archive
     could send (written into the ledger the way a source's fields are recorded)."""
-    col = init_collection(tmp_path / "c", contact="me@example.org")
-    (col.root / "in").mkdir()
-    for n in range(2):
-        Image.effect_mandelbrot((96, 64), (-2 + n, -1, 1, 1), 60).convert("RGB").save(
-            col.root / "in" / f"{n}.png")
-    col.recipe_path.write_text(col.recipe_path.read_text() + (
-        '\n[[sources]]\nname = "desk"\nkind = "scans"\npath = "in"\ninclude = ["*.png"]\n'
-        'licence = "CC0-1.0"\n'))
-    gather(col, fetcher_factory=lambda recipe, ledger: None)
+    col = scans_collection(tmp_path / "c", 2)
     with sqlite3.connect(col.ledger_path) as conn:
         ids = [r[0] for r in conn.execute("SELECT id FROM items ORDER BY id")]
         assert len(ids) == 2

@@ -134,13 +134,9 @@ class Store:
         target = self.path_for(sha256, ext)
         if not own_folder(self._base, target.parent):
             return None
-        try:
-            info = os.lstat(target)
-        except FileNotFoundError:
+        if not refuse_link(target):
             return None
-        if stat.S_ISLNK(info.st_mode):
-            raise link_refused(target)
-        return target if stat.S_ISREG(info.st_mode) else None
+        return target if target.is_file() else None  # not a link: refuse_link checked
 
     def clean_incoming(self) -> int:
         """Remove temp files a crashed run left behind; returns how many were removed.

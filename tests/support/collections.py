@@ -1,0 +1,45 @@
+"""Small real collections that many tests start from (real SQLite, real generated images).
+
+- :func:`one_page_recipe`: the demo archive's smoke recipe over one listing page of 10 items,
+  without an item limit (a quick web gather against ``fresh_demo_server``).
+- :func:`scans_collection`: a collection over a few generated scans, gathered once, no network.
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+from PIL import Image
+
+from collector.demo_site.recipes import render
+from collector.run.gather import gather
+from collector.storage.collection import Collection, init_collection
+
+SCANS_SOURCE = ('\n[[sources]]\nname = "desk"\nkind = "scans"\npath = "in"\n'
+                'include = ["*.png"]\nlicence = "CC0-1.0"\n')
+
+
+def one_page_recipe(port: int) -> str:
+    """The smoke recipe over one listing page of 10 items, without an item limit."""
+    text = render("smoke", port)
+    return (text.replace("max_items = 10", "max_items = 0")
+            .replace("max_pages = 5", "max_pages = 1")
+            .replace('per_page = "20"', 'per_page = "10"'))
+
+
+def scan_image(seed: int, size: tuple[int, int] = (96, 64)) -> Image.Image:
+    """A small structured picture (a Mandelbrot detail) that differs for every seed."""
+    return Image.effect_mandelbrot(size, (-2 + seed * 0.3, -1, 1, 1), 40 + seed).convert("RGB")
+
+
+def scans_collection(root: Path, count: int = 2, *, gathered: bool = True) -> Collection:
+    """A collection at ``root`` whose ``desk`` scans source reads ``count`` generated PNGs
+    from ``in/`` (CC0-1.0), gathered once without any network."""
+    col = init_collection(root, contact="me@example.org")
+    (col.root / "in").mkdir()
+    for n in range(count):
+        scan_image(n).save(col.root / "in" / f"{n}.png")
+    col.recipe_path.write_text(col.recipe_path.read_text() + SCANS_SOURCE)
+    if gathered:
+        gather(col, fetcher_factory=lambda recipe, ledger: None)
+    return col
