@@ -54,11 +54,12 @@ class RecipeError(CollectorError):
     """The recipe has one or more problems; all of them are listed at once."""
 
     exit_code = 2
+    what = "the recipe"  # a file of the same kind (the datasheet's answers) says its own name
 
     def __init__(self, problems: list[RecipeProblem]) -> None:
         self.problems = list(problems)
         count = len(self.problems)
-        head = f"the recipe has {count} problem{'s' if count != 1 else ''}:"
+        head = f"{self.what} has {count} problem{'s' if count != 1 else ''}:"
         super().__init__("\n".join([head, *(f"  - {p}" for p in self.problems)]))
 
 

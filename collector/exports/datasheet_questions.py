@@ -15,20 +15,14 @@ from datetime import datetime
 from pathlib import Path
 from typing import Any
 
-from collector.errors import CollectorError, RecipeProblem
+from collector.errors import RecipeError, RecipeProblem
 from collector.schema import did_you_mean
 
 
-class AnswersError(CollectorError):
-    """The answers file has one or more problems; all are listed at once (like the recipe)."""
+class AnswersError(RecipeError):
+    """The answers file has one or more problems; all are listed at once, as for the recipe."""
 
-    exit_code = 2
-
-    def __init__(self, problems: list[RecipeProblem]) -> None:
-        self.problems = list(problems)
-        count = len(self.problems)
-        head = f"the answers file has {count} problem{'s' if count != 1 else ''}:"
-        super().__init__("\n".join([head, *(f"  - {p}" for p in self.problems)]))
+    what = "the answers file"
 
 
 # --- the questions -------------------------------------------------------------------------------
