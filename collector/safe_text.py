@@ -55,5 +55,7 @@ def csv_cell(value: Any) -> Any:
 
 
 def csv_row(row: dict[str, Any]) -> dict[str, Any]:
-    """Every cell of a CSV row passed through :func:`csv_cell`."""
-    return {key: csv_cell(value) for key, value in row.items()}
+    """Every cell of a CSV row passed through :func:`csv_cell` (inlined: the datasheet writes
+    one row per file)."""
+    return {key: "'" + value if isinstance(value, str) and value.startswith(FORMULA_STARTS)
+            else value for key, value in row.items()}

@@ -11,6 +11,7 @@ translate ``sqlite3.Error`` into :class:`~collector.errors.LedgerError` in one p
 
 from __future__ import annotations
 
+import functools
 import json
 from collections.abc import Iterator
 from dataclasses import dataclass
@@ -212,10 +213,22 @@ _ACCEPTED_FROM = (
 
 
 def _host_of(url: str | None) -> str:
+    """The host key of a URL, for grouping by host in SQL. A host depends only on the scheme
+    and the authority, so host_key runs once per distinct ``scheme://authority`` (cached):
+    the datasheet calls this for every accepted file."""
     if not url:
         return LOCAL_HOST
+    scheme, sep, rest = url.partition("://")
+    if not sep:
+        return _host_of_origin(url)
+    authority = rest.split("/", 1)[0].split("?", 1)[0].split("#", 1)[0]
+    return _host_of_origin(f"{scheme}://{authority}/")
+
+
+@functools.lru_cache(maxsize=4096)
+def _host_of_origin(origin: str) -> str:
     try:
-        return host_key(url)
+        return host_key(origin)
     except CollectorError:
         return "?"
 
