@@ -61,6 +61,10 @@ def main(
                                  help="Print the version and exit."),
 ) -> None:
     """Collect images politely from open archives and record where every file came from."""
+    from collector.storage.safe_paths import platform_problem
+    if (problem := platform_problem()) is not None:
+        typer.echo(f"Error: {problem}", err=True)
+        raise typer.Exit(2)
 
 
 @app.command()

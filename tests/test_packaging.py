@@ -45,3 +45,16 @@ def test_the_wheel_holds_the_adapters_the_demo_and_the_data_files(wheel_names: l
                      "collector/demo_site/server.py", "collector/demo_site/recipes/demo.toml",
                      "collector/templates/recipe.toml", "collector/run/gather.py"):
         assert expected in names, expected
+
+
+def test_the_distribution_has_a_name_of_its_own(wheel_names: list[str]) -> None:
+    """The distribution is "polite-image-collector" (the name "collector" on the Python
+    package index belongs to an unrelated project; checked with `pip index versions`, see
+    DEVELOPERS.md); the import name and the command stay `collector`. Wheel file names use
+    the normalised name (PEP 427, PEP 503 normalisation)."""
+    dist_infos = {name.split("/", 1)[0] for name in wheel_names if ".dist-info/" in name}
+    assert len(dist_infos) == 1
+    (dist_info,) = dist_infos
+    assert dist_info.startswith("polite_image_collector-")
+    entry_points = [n for n in wheel_names if n.endswith("entry_points.txt")]
+    assert entry_points, "the wheel declares the collector command"

@@ -16,7 +16,6 @@ another collection's, re-created empty beside stored files, or describing files 
 from __future__ import annotations
 
 import contextlib
-import fcntl
 import json
 import os
 import uuid
@@ -24,10 +23,12 @@ from collections.abc import Iterator
 from dataclasses import dataclass
 from importlib import resources
 from pathlib import Path
+from typing import IO
 
 from collector.config.recipe import Recipe, load_recipe
 from collector.errors import CollectionError, LedgerUnusable
 from collector.storage import queries
+from collector.storage.file_locks import LockHeldElsewhere, lock_exclusive
 from collector.storage.ledger import Ledger, ways_out
 from collector.storage.safe_paths import (
     open_own_file,
@@ -155,23 +156,33 @@ class Collection:
     @contextlib.contextmanager
     def gather_lock(self) -> Iterator[None]:
         """Hold the folder's gather lock; a second holder gets a clear CollectionError.
-        The lock file is opened with O_NOFOLLOW: a planted link is refused, never truncated."""
+        The lock file is opened with O_NOFOLLOW: a planted link is refused, never truncated.
+        The lock itself is portalocker's (:mod:`collector.storage.file_locks`)."""
         path = self.root / LOCK_NAME
-        fd = open_own_file(path, os.O_RDWR | os.O_CREAT)
-        try:
+        with os.fdopen(open_own_file(path, os.O_RDWR | os.O_CREAT), "r+b", buffering=0) as fh:
             try:
-                fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
-            except BlockingIOError as exc:
-                holder = os.pread(fd, 64, 0).decode(errors="replace").strip() or "?"
+                lock_exclusive(fh, wait=False)
+            except LockHeldElsewhere as exc:
                 raise CollectionError(
-                    f"another gather is already running on {self.root} (process {holder}); "
-                    "wait for it to finish or stop it. 'collector status' works meanwhile."
+                    f"another gather is already running on {self.root} (process "
+                    f"{_lock_holder(fh)}); wait for it to finish or stop it. "
+                    "'collector status' works meanwhile."
                 ) from exc
-            os.ftruncate(fd, 0)
-            os.pwrite(fd, str(os.getpid()).encode(), 0)
+            fh.seek(0)
+            fh.truncate()
+            fh.write(str(os.getpid()).encode())
+            fh.flush()
             yield
-        finally:
-            os.close(fd)
+
+
+def _lock_holder(fh: IO[bytes]) -> str:
+    """The process number the lock holder wrote, or "?" (Windows refuses reading a locked
+    range from another handle)."""
+    try:
+        fh.seek(0)
+        return fh.read(64).decode(errors="replace").strip() or "?"
+    except OSError:
+        return "?"
 
 
 def store_has_files(collection: Collection) -> bool:

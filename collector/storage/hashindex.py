@@ -10,7 +10,6 @@ query (or of the query's mirror-image hash) is found.
 from __future__ import annotations
 
 import contextlib
-import fcntl
 import os
 import struct
 import threading
@@ -22,6 +21,7 @@ import numpy as np
 
 from collector.checks.phash import featureless, to_unsigned64
 from collector.storage import queries
+from collector.storage.file_locks import lock_exclusive
 from collector.storage.ledger import Ledger
 from collector.storage.safe_paths import new_temp_file, open_own_file, refuse_link
 
@@ -296,8 +296,6 @@ def _locked(path: Path) -> Iterator[None]:
     refuse_link(path.parent)
     path.parent.mkdir(parents=True, exist_ok=True)
     fd = open_own_file(path.with_name(path.name + ".lock"), os.O_RDWR | os.O_CREAT)
-    try:
-        fcntl.flock(fd, fcntl.LOCK_EX)
+    with os.fdopen(fd, "r+b", buffering=0) as fh:
+        lock_exclusive(fh, wait=True)
         yield
-    finally:
-        os.close(fd)

@@ -31,9 +31,25 @@ from pathlib import Path
 
 from collector.errors import PathRefused
 
-_DIR_FLAGS = os.O_RDONLY | os.O_DIRECTORY | os.O_CLOEXEC
+_DIR_FLAGS = os.O_RDONLY | getattr(os, "O_DIRECTORY", 0) | getattr(os, "O_CLOEXEC", 0)
 # SQLite keeps these beside a database and opens them following links.
 LEDGER_SIDECARS = ("-wal", "-shm", "-journal")
+
+
+def platform_problem() -> str | None:
+    """Why this platform cannot keep the promises above, or None.
+
+    The no-link guarantees rest on POSIX calls: ``O_NOFOLLOW``, ``O_DIRECTORY`` and opening
+    relative to a folder descriptor (``dir_fd``). Windows has none of them; rather than
+    write through a planted link there, collector refuses to start (README, "Platforms")."""
+    missing = [name for name in ("O_NOFOLLOW", "O_DIRECTORY") if not hasattr(os, name)]
+    if os.open not in os.supports_dir_fd:
+        missing.append("dir_fd")
+    if not missing:
+        return None
+    return (f"this platform lacks {', '.join(missing)}, which collector needs to write only "
+            "inside a collection folder and never through a link; run it under Linux, macOS "
+            "or the Windows Subsystem for Linux (README, \"Platforms\")")
 
 
 def link_refused(path: Path) -> PathRefused:
