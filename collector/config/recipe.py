@@ -390,7 +390,7 @@ def _check_host_budgets(raw: Any, problems: Problems) -> dict:
     return hosts
 
 
-def _check_sources(raw: Any, problems: Problems) -> list[dict]:
+def _check_sources(raw: Any, problems: Problems, *, by_kind: bool = True) -> list[dict]:
     # Imported here, not at the top: the source kinds import collector.schema, and loading
     # the
     # registry (and any kinds from other packages) is only needed when a recipe has sources.
@@ -410,13 +410,18 @@ def _check_sources(raw: Any, problems: Problems) -> list[dict]:
                          f"{name!r} is used by an earlier source; names must be unique")
         else:
             seen.add(name)
-        problems.extend(p for p in adapters.validate_source(table, prefix)
-                        if p.key_path != f"{prefix}.name")
+        if by_kind:
+            problems.extend(p for p in adapters.validate_source(table, prefix)
+                            if p.key_path != f"{prefix}.name")
     return list(raw)
 
 
-def parse_recipe(text: str, path: Path) -> Recipe:
-    """Validate recipe text; raises RecipeError listing every problem."""
+def parse_recipe(text: str, path: Path, *, check_source_kinds: bool = True) -> Recipe:
+    """Validate recipe text; raises RecipeError listing every problem.
+
+    ``check_source_kinds=False`` leaves each source's own keys unchecked (names still must be
+    unique): for commands that read only the recipe's rules, such as ``trace``, which then
+    need not load every source kind and compile its selectors."""
     file = str(path)
     problems = Problems(file)
     try:
@@ -454,7 +459,8 @@ def parse_recipe(text: str, path: Path) -> Recipe:
     low, high = sections["images"].get("min_aspect"), sections["images"].get("max_aspect")
     if low and high and low > high:
         problems.add("images.max_aspect", "must be greater than images.min_aspect")
-    source_list = _check_sources(data["sources"], problems) if "sources" in data else []
+    source_list = (_check_sources(data["sources"], problems, by_kind=check_source_kinds)
+                   if "sources" in data else [])
 
     if problems:
         raise RecipeError(problems.items)
@@ -468,8 +474,8 @@ def parse_recipe(text: str, path: Path) -> Recipe:
         sources=source_list)
 
 
-def load_recipe(path: Path) -> Recipe:
-    """Read and validate a recipe file."""
+def load_recipe(path: Path, *, check_source_kinds: bool = True) -> Recipe:
+    """Read and validate a recipe file (``check_source_kinds``: see :func:`parse_recipe`)."""
     try:
         text = path.read_text(encoding="utf-8")
     except FileNotFoundError as exc:
@@ -479,4 +485,4 @@ def load_recipe(path: Path) -> Recipe:
         raise RecipeError([RecipeProblem(str(path), "", f"not UTF-8 text: {exc}")]) from exc
     except OSError as exc:
         raise RecipeError([RecipeProblem(str(path), "", f"cannot be read: {exc}")]) from exc
-    return parse_recipe(text, path)
+    return parse_recipe(text, path, check_source_kinds=check_source_kinds)

@@ -276,7 +276,7 @@ class Tracer:
         problem: str | None = None
         threshold = DEFAULT_NEAR_DISTANCE
         try:
-            recipe = collection.recipe()
+            recipe = collection.recipe(check_source_kinds=False)  # only its rules are used
             threshold = recipe.images.near_distance
             allow = list(recipe.licences.allow)
             allow_unknown = recipe.licences.allow_unknown

@@ -100,9 +100,10 @@ class Collection:
         """Create ``collection.id``; an existing file (or a planted link) is never replaced."""
         write_new_file(self.id_path, value + "\n")
 
-    def recipe(self) -> Recipe:
-        """Load and validate the folder's recipe."""
-        return load_recipe(self.recipe_path)
+    def recipe(self, *, check_source_kinds: bool = True) -> Recipe:
+        """Load and validate the folder's recipe (``check_source_kinds``: see
+        :func:`collector.config.recipe.parse_recipe`)."""
+        return load_recipe(self.recipe_path, check_source_kinds=check_source_kinds)
 
     def ledger(self, *, readonly: bool = False) -> Ledger:
         """Open the folder's ledger."""
