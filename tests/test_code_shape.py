@@ -104,10 +104,12 @@ def test_functions_are_at_most_60_lines(path: Path) -> None:
                       + ", ".join(f"{name} ({n})" for name, n in sorted(long.items())))
 
 
-@pytest.mark.parametrize(("module", "name"), sorted(ALLOWED_LONG))
-def test_every_allowance_is_still_needed(module: str, name: str) -> None:
-    """Each ALLOWED_LONG entry names a function that exists and is still over 60 lines."""
-    lengths = function_lengths(ROOT / module)
-    assert name in lengths, f"{module} has no function {name}: drop it from ALLOWED_LONG"
-    assert lengths[name] > MAX_FUNCTION_LINES, (
-        f"{module} {name} is {lengths[name]} lines now: drop it from ALLOWED_LONG")
+def test_every_allowance_is_still_needed() -> None:
+    """Each ALLOWED_LONG entry names a function that exists and is still over 60 lines (one
+    test over all entries, so an empty allowlist runs rather than skips)."""
+    stale = []
+    for module, name in sorted(ALLOWED_LONG):
+        lengths = function_lengths(ROOT / module)
+        if lengths.get(name, 0) <= MAX_FUNCTION_LINES:
+            stale.append(f"{module} {name} ({lengths.get(name, 'gone')} lines)")
+    assert not stale, f"drop from ALLOWED_LONG: {', '.join(stale)}"
