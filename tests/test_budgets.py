@@ -178,3 +178,40 @@ def test_concurrent_threads_never_start_closer_than_interval() -> None:
     starts.sort()
     assert len(starts) == 40
     assert min(b - a for a, b in itertools.pairwise(starts)) >= 1.0 - 1e-9
+
+
+def test_the_next_start_counts_from_when_the_answer_began_to_arrive() -> None:
+    """A request that reached the server late (the client was busy, or the server slow to
+    answer) moves the next start: it is a full interval after the answer's headers arrived,
+    so no two arrivals at the server are closer than the interval (the server has received
+    request A by the time A's answer starts; common practice, no source)."""
+    clock = FakeClock()
+    budgets = make(clock, min_interval=0.1)
+    first = budgets.acquire(H)
+    clock.advance(0.04)  # 40 ms until the status line and headers of the answer are in
+    first.answered()
+    clock.advance(0.5)  # the body takes a while; answered() is not moved by the end
+    first.release()
+    assert budgets.next_allowed_at(H) == pytest.approx(first.started + 0.04 + 0.1)
+
+
+def test_an_attempt_without_an_answer_counts_from_its_end() -> None:
+    """A timeout or a reset gives no headers: the next start is an interval after it ended."""
+    clock = FakeClock()
+    budgets = make(clock, min_interval=0.1)
+    with budgets.acquire(H) as slot:
+        clock.advance(2.0)
+    assert budgets.next_allowed_at(H) == pytest.approx(slot.started + 2.0 + 0.1)
+
+
+def test_a_host_contacted_just_before_this_run_waits_the_rest_of_its_interval() -> None:
+    """A resumed run: the ledger says the host was last contacted 1 s ago, the interval is 3 s,
+    so the first request waits 2 s; a host last seen long ago starts at once."""
+    clock = FakeClock()
+    budgets = make(clock, min_interval=3.0)
+    budgets.contacted(H, seconds_ago=1.0)
+    budgets.contacted("127.0.0.3:80", seconds_ago=3600.0)
+    with budgets.acquire(H) as slot:
+        assert slot.waited == pytest.approx(2.0)
+    with budgets.acquire("127.0.0.3:80") as other:
+        assert other.waited == 0.0

@@ -1,5 +1,14 @@
 """Per-host budgets: interval between request starts, requests/hour, bytes/hour, connections.
 
+The interval is kept as the *server* sees it. A request reaches the server some time after the
+client starts it (more when the client is busy), so counting from the previous start lets two
+arrivals come closer than the interval. Each host's next start is therefore counted from the
+later of the previous start and the moment the previous answer began to arrive (its status line
+and headers, or the end of an attempt that got none): the server must have received the
+previous request by then, so no two arrivals are closer than the interval. A host first met in
+this run that the ledger says was contacted less than an interval ago (a resumed run) waits for
+the rest of that interval (:meth:`HostBudgets.contacted`).
+
 Every request start goes through :meth:`HostBudgets.acquire`, which blocks (through the injected
 clock) until the host may be contacted and holds one of the host's connection slots until the
 returned :class:`Slot` is released. :meth:`HostBudgets.next_allowed_at` lets a scheduler pick
@@ -102,6 +111,7 @@ class _HostState:
     budget: Budget
     semaphore: threading.BoundedSemaphore
     last_start: float | None = None
+    last_answer: float | None = None  # when the latest answer began to arrive (see module doc)
     starts: deque[float] | None = None
     byte_log: deque[tuple[float, int]] | None = None
     not_before: float = 0.0
@@ -117,6 +127,14 @@ class Slot:
         self.host, self.started, self.waited = host, started, waited
         self._owner = owner
         self._released = False
+        self._answered = False
+
+    def answered(self) -> None:
+        """The answer's status line and headers arrived: the server has the request, and
+        the host's next start is counted from now (idempotent)."""
+        if not self._answered:
+            self._answered = True
+            self._owner.record_answer(self.host)
 
     def add_bytes(self, count: int) -> None:
         """Count response bytes against the host's bytes/hour budget."""
@@ -125,6 +143,7 @@ class Slot:
     def release(self) -> None:
         """Give the connection slot back (idempotent)."""
         if not self._released:
+            self.answered()  # an attempt that got no answer counts from its end
             self._released = True
             self._owner._state(self.host).semaphore.release()
 
@@ -226,8 +245,10 @@ class HostBudgets:
 
     def _next_at(self, state: _HostState, now: float) -> float:
         at = state.not_before
-        if state.last_start is not None:
-            at = max(at, state.last_start + self._interval(state))
+        last = max((t for t in (state.last_start, state.last_answer) if t is not None),
+                   default=None)
+        if last is not None:
+            at = max(at, last + self._interval(state))
         starts = state.starts
         if starts is not None and len(starts) == starts.maxlen:
             # Sliding hour: the oldest of the last N starts must be an hour old.
@@ -286,6 +307,21 @@ class HostBudgets:
             raise
 
     # -- feedback ------------------------------------------------------------------------------
+    def record_answer(self, host: str) -> None:
+        """An answer from ``host`` began to arrive now (see :meth:`Slot.answered`)."""
+        with self._lock:
+            state = self._state_locked(host)
+            now = self.clock.monotonic()
+            state.last_answer = max(state.last_answer or now, now)
+
+    def contacted(self, host: str, seconds_ago: float) -> None:
+        """``host`` was last contacted ``seconds_ago`` (by an earlier run, from the ledger):
+        its first request in this run keeps a full interval after that contact."""
+        with self._lock:
+            state = self._state_locked(host)
+            at = self.clock.monotonic() - max(0.0, seconds_ago)
+            state.last_answer = max(state.last_answer or at, at)
+
     def record_bytes(self, host: str, count: int) -> None:
         """Count ``count`` response bytes against the host's bytes/hour budget."""
         if count <= 0:

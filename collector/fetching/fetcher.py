@@ -367,6 +367,7 @@ class Fetcher:
                 resp = self.session.get(
                     send_url, headers=send_headers, stream=True, allow_redirects=False,
                     timeout=(self.settings.connect_timeout, self.settings.read_timeout))
+                slot.answered()  # status line and headers are in: the next start counts from here
             except requests.RequestException as exc:
                 reason = "timeout" if isinstance(exc, requests.Timeout) else "connection"
                 detail = scrub(f"{type(exc).__name__}: {exc}", all_secrets)
@@ -491,13 +492,18 @@ class Fetcher:
 
     # -- failures, parking ---------------------------------------------------------------------
     def _first_contact(self, hk: str) -> None:
-        """Load a host's persisted parking (a resumed run keeps honouring it)."""
+        """Load a host's persisted parking (a resumed run keeps honouring it) and its last
+        contact (the first request keeps a full interval after it)."""
         with self._lock:
             if hk in self._seen_hosts:
                 return
             self._seen_hosts.add(hk)
         if self.ledger is None:
             return
+        last = self.ledger.last_contact(hk)
+        ended = _from_iso(last) if last else None
+        if ended is not None:  # a resumed run: a full interval after the last contact
+            self.budgets.contacted(hk, self.clock.time() - ended)
         row = self.ledger.get_host(hk)
         until = (row or {}).get("parked_until")
         if until and until > self.clock.time():

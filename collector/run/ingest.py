@@ -42,6 +42,12 @@ COPY_CHUNK = 1 << 20
 # "Not Found" / "Gone" (RFC 9110 sections 15.5.5, 15.5.11) in this many runs ends the retries.
 GONE_REASONS = frozenset({"http_404", "http_410"})
 GONE_RUNS = 3
+# Outcomes of an image request that the other items listing the same image URL in the run
+# take as they are (a kept file is shared as a duplicate instead; see Ingest.settle). A failed
+# request is not repeated for them: they fail with it and are retried by the next run, again
+# with one request for all of them.
+URL_OUTCOMES_TAKEN = frozenset({"duplicate", "near_duplicate", "rejected", "failed", "blocked",
+                                "deferred"})
 
 
 @dataclass
@@ -92,6 +98,12 @@ class Ingest:
         self.index = HashIndex.from_ledger(ledger)
         self._on_stored = on_stored
         self._lock = threading.Lock()  # one de-duplication decision at a time
+        # One request per image URL in a run: the URLs queued or in flight, each with the
+        # items that listed it meanwhile, and the URLs whose request ended without a kept
+        # file (their later items take that outcome). A kept file is found in the ledger.
+        self._url_lock = threading.Lock()
+        self._waiting: dict[str, list[int]] = {}
+        self._settled: dict[str, int] = {}
         self._scan_sha: dict[tuple[int, str], str] = {}
         self._item_source: dict[int, int] = {}
         self._source_order = {sid: rank for rank, sid in enumerate(source_ids)}
@@ -123,20 +135,65 @@ class Ingest:
             self.record.finish(item_id, "rejected", "no_image_url",
                                "the source gave no image URL for this item")
             return None
-        same = self.ledger.stored_with_image_url(image_url, item_id)
-        if same:
-            with self._lock:
-                verdict = dedup.exact_verdict(item_id, self.rank(item_id), same["id"],
-                                              self.rank(same["id"]))
-                if isinstance(verdict, TakeOver):
-                    self._take_over(verdict, same["file_sha256"], {})
-                else:
-                    self.record.finish(
-                        item_id, "duplicate", "exact_duplicate",
-                        "same image URL as an item already stored; not fetched again",
-                        file_sha256=same["file_sha256"], duplicate_of=same["id"])
-            return None
-        return Job(item_id, c.image_url, spdx_id, self._secret_params.get(source_id, ()))
+        with self._url_lock:
+            if c.image_url in self._waiting:  # queued or in flight for an earlier item
+                self._waiting[c.image_url].append(item_id)
+                return None
+            settled = self._settled.get(c.image_url)
+            same = (None if settled is not None
+                    else self.ledger.stored_with_image_url(image_url, item_id))
+            if settled is None and same is None:
+                self._waiting[c.image_url] = []
+        if settled is not None:
+            self._take_outcome(item_id, self.ledger.item(settled) or {})
+        elif same:
+            self._same_url_stored(item_id, same)
+        else:
+            return Job(item_id, c.image_url, spdx_id, self._secret_params.get(source_id, ()))
+        return None
+
+    def settle(self, job: Job) -> None:
+        """``job`` is over (or left for the next run): the items that listed the same image
+        URL while it was queued or in flight take its outcome, without a request of their
+        own. Called by the run for every job it was given."""
+        with self._url_lock:
+            waiting = self._waiting.pop(job.url, [])
+            owner = self.ledger.item(job.item_id) or {}
+            if owner.get("state") in URL_OUTCOMES_TAKEN:
+                self._settled[job.url] = job.item_id
+        for item_id in waiting:
+            self._take_outcome(item_id, owner)
+
+    def _take_outcome(self, item_id: int, owner: dict[str, Any]) -> None:
+        """Give ``item_id`` the outcome of ``owner``, the item that requested the same image
+        URL: the same file if it was kept, else the same state and reason. An owner left
+        pending (the run stopped first) leaves the item pending too."""
+        state = owner.get("state")
+        if state in ("stored", "near_duplicate") and owner.get("file_sha256"):
+            self._same_url_stored(item_id, {"id": owner["id"],
+                                            "file_sha256": owner["file_sha256"]})
+        elif state in URL_OUTCOMES_TAKEN:
+            self.record.finish(
+                item_id, state, owner.get("reason"),
+                f"same image URL as item {owner['id']}, not requested again: "
+                f"{owner.get('detail') or state}",
+                file_sha256=owner.get("file_sha256"), duplicate_of=owner.get("duplicate_of"),
+                near_distance=owner.get("near_distance"),
+                near_mirrored=owner.get("near_mirrored"))
+
+    def _same_url_stored(self, item_id: int, same: dict[str, Any]) -> None:
+        """The image URL's file is kept under item ``same["id"]``: ``item_id`` is its
+        duplicate, or takes it over when listed earlier (listing order decides)."""
+        with self._lock:
+            verdict = dedup.exact_verdict(item_id, self.rank(item_id), same["id"],
+                                          self.rank(same["id"]))
+            if isinstance(verdict, TakeOver):
+                self._take_over(verdict, same["file_sha256"], {})
+            else:
+                self.record.finish(
+                    item_id, "duplicate", "exact_duplicate",
+                    "same image URL as an item already stored; not fetched again",
+                    file_sha256=same["file_sha256"], duplicate_of=same["id"])
 
     def _register(self, source_id: int, c: Any) -> tuple[int, str | None, Any] | None:
         """The candidate's item row, written with the secrets kept out: (item id, SPDX id,

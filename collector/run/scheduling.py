@@ -351,6 +351,7 @@ class Gatherer:
             host = host_key(job.url)
         except CollectorError as exc:
             self.record.finish(job.item_id, "failed", "unsafe_url", str(exc))
+            self.ingest.settle(job)
             return
         with self._lock:
             q = self._queues.get(host)
@@ -379,22 +380,28 @@ class Gatherer:
                 q.put(None)  # let the host's other workers see the end too
                 return
             stats.queued -= 1
-            if self._should_stop():
-                continue  # left pending: the next run picks it up
-            if stats.parked:
-                self.record.finish(job.item_id, "deferred", "host_parked",
-                                   f"{host} was parked earlier in this run")
-                continue
             try:
-                self._fetch_and_ingest(job)
-            except HostParked as exc:
-                stats.parked = True
-                self.record.finish(job.item_id, "deferred", "host_parked", str(exc))
-            except (StoreError, LedgerError) as exc:
-                self._fail(exc)
-            except Exception as exc:  # a bug while handling this job: it fails, the run stops
-                self._internal_error(f"the worker for host {host}", exc, item_id=job.item_id)
-            stats.done += 1
+                self._serve_job(host, stats, job)
+            finally:
+                self.ingest.settle(job)  # items listing the same image URL take its outcome
+
+    def _serve_job(self, host: str, stats: HostStats, job: Job) -> None:
+        if self._should_stop():
+            return  # left pending: the next run picks it up
+        if stats.parked:
+            self.record.finish(job.item_id, "deferred", "host_parked",
+                               f"{host} was parked earlier in this run")
+            return
+        try:
+            self._fetch_and_ingest(job)
+        except HostParked as exc:
+            stats.parked = True
+            self.record.finish(job.item_id, "deferred", "host_parked", str(exc))
+        except (StoreError, LedgerError) as exc:
+            self._fail(exc)
+        except Exception as exc:  # a bug while handling this job: it fails, the run stops
+            self._internal_error(f"the worker for host {host}", exc, item_id=job.item_id)
+        stats.done += 1
 
     def _fetch_and_ingest(self, job: Job) -> None:
         if self.fetcher is None:

@@ -415,6 +415,11 @@ class Ledger:
         rows = self.query("SELECT * FROM hosts WHERE host = ?", (host,))
         return decode_row(rows[0]) if rows else None
 
+    def last_contact(self, host: str) -> str | None:
+        """When the latest request to ``host`` ended (ISO 8601 UTC), in any run, or None."""
+        value = self.scalar("SELECT max(ended_at) FROM fetches WHERE host = ?", (host,))
+        return str(value) if value else None
+
     def put_host(self, host: str, **fields: Any) -> None:
         """Insert or update a host's row."""
         data = self._checked("hosts", {"host": host, **fields})
