@@ -114,6 +114,7 @@ class _HostState:
     last_answer: float | None = None  # when the latest answer began to arrive (see module doc)
     starts: deque[float] | None = None
     byte_log: deque[tuple[float, int]] | None = None
+    byte_total: int = 0  # the sum of byte_log's counts, kept as entries come and go
     not_before: float = 0.0
     slowdown: float = 1.0
     hint_interval: float = 0.0
@@ -256,8 +257,8 @@ class HostBudgets:
         log = state.byte_log
         if log:
             while log and log[0][0] <= now - HOUR:
-                log.popleft()
-            total = sum(n for _, n in log)
+                state.byte_total -= log.popleft()[1]
+            total = state.byte_total  # a running sum: no walk over an hour of entries
             if total >= state.budget.bytes_per_hour:
                 for stamp, n in log:
                     total -= n
@@ -330,6 +331,7 @@ class HostBudgets:
             state = self._state_locked(host)
             assert state.byte_log is not None
             state.byte_log.append((self.clock.monotonic(), int(count)))
+            state.byte_total += int(count)
 
     def throttle(self, host: str, until: float | None = None, slow_down: bool = True) -> None:
         """The host said "too many requests" (429/503): push its next start out, slow it down.
