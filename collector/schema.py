@@ -170,6 +170,22 @@ def one_of(*choices: str) -> Check:
     return check
 
 
+def item_condition(value: Any) -> str | None:
+    """A condition on an item's fields: a JMESPath expression that compiles (evaluated by
+    :mod:`collector.checks.conditions`; "" means none)."""
+    import jmespath  # imported here: most recipes have no condition
+    from jmespath.exceptions import JMESPathError
+
+    if value == "":
+        return None
+    try:
+        jmespath.compile(value)
+    except JMESPathError as exc:
+        return (f"is not a JMESPath expression ({str(exc).splitlines()[0]}); e.g. "
+                "\"year_to < `1900`\" or \"contains(lower(title), 'fern')\"")
+    return None
+
+
 def http_url(value: Any) -> str | None:
     """An absolute http or https URL with a host."""
     try:

@@ -37,7 +37,7 @@ from pathlib import Path
 from typing import Any, NoReturn
 
 from collector.errors import SourceKindError
-from collector.schema import Key, Problems, check_table, did_you_mean
+from collector.schema import Key, Problems, check_table, did_you_mean, item_condition
 from collector.sources.base import (
     Candidate,
     NoteSink,
@@ -73,6 +73,8 @@ ENTRY_POINT_GROUP = "collector.sources"
 COMMON_KEYS: dict[str, Key] = {
     "name": Key("str", hint="a short unique name for this source"),
     "kind": Key("str", required=True),
+    # decided by the run before any image request (collector.checks.conditions)
+    "keep_if": Key("str", "", check=item_condition),
 }
 
 _lock = threading.RLock()

@@ -296,9 +296,23 @@ class Stop:
     duration: str = _setting("", lambda v: _check_duration(v) if v else None)
 
 
+def _condition_problem(value: Any) -> str | None:
+    from collector.checks.conditions import condition_problem  # loads jmespath only if used
+
+    return condition_problem(value)
+
+
+@dataclass(frozen=True)
+class Items:
+    """``[items]``: which listed items are wanted, decided before any image is requested
+    (a source's own ``keep_if`` must hold too; collector.checks.conditions)."""
+
+    keep_if: str = _setting("", lambda v: _condition_problem(v) if v else None)
+
+
 SECTIONS: dict[str, type] = {
     "collection": CollectionInfo, "budgets": Budget, "network": Network,
-    "licences": Licences, "images": Images, "stop": Stop,
+    "licences": Licences, "images": Images, "stop": Stop, "items": Items,
 }
 SECTION_KEYS: dict[str, dict[str, Key]] = {
     name: section_keys(cls) for name, cls in SECTIONS.items()}
@@ -327,6 +341,7 @@ class Recipe:
     images: Images
     stop: Stop
     sources: list[dict[str, Any]] = field(default_factory=list)
+    items: Items = field(default_factory=lambda: Items())
 
     def budget_for(self, host: str) -> Budget:
         """The budget in force for ``host`` (``host`` or ``host:port``): defaults + override."""
@@ -341,7 +356,7 @@ class Recipe:
             "collection": asdict(self.collection), "budgets": asdict(self.budgets),
             "budgets.hosts": self.host_budgets, "network": asdict(self.network),
             "licences": asdict(self.licences), "images": asdict(self.images),
-            "stop": asdict(self.stop), "sources": self.sources,
+            "stop": asdict(self.stop), "items": asdict(self.items), "sources": self.sources,
         }
 
     def shown_settings(self) -> dict[str, Any]:
@@ -411,8 +426,14 @@ def _check_sources(raw: Any, problems: Problems, *, by_kind: bool = True) -> lis
         else:
             seen.add(name)
         if by_kind:
-            problems.extend(p for p in adapters.validate_source(table, prefix)
-                            if p.key_path != f"{prefix}.name")
+            found = [p for p in adapters.validate_source(table, prefix)
+                     if p.key_path != f"{prefix}.name"]
+            problems.extend(found)
+            keep_if = table.get("keep_if")
+            if keep_if and not any(p.key_path == f"{prefix}.keep_if" for p in found):
+                problem = _condition_problem(keep_if)
+                if problem:
+                    problems.add(f"{prefix}.keep_if", problem)
     return list(raw)
 
 
@@ -471,7 +492,7 @@ def parse_recipe(text: str, path: Path, *, check_source_kinds: bool = True) -> R
         budgets=Budget(**sections["budgets"]), host_budgets=host_budgets,
         network=Network(**sections["network"]), licences=Licences(**sections["licences"]),
         images=Images(**sections["images"]), stop=Stop(**sections["stop"]),
-        sources=source_list)
+        sources=source_list, items=Items(**sections["items"]))
 
 
 def load_recipe(path: Path, *, check_source_kinds: bool = True) -> Recipe:

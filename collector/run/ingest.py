@@ -23,6 +23,7 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import Any, BinaryIO
 
+from collector.checks.conditions import compile_condition, item_view
 from collector.checks.images import ImageFacts, inspect_image
 from collector.checks.licences import licence_allowed, normalise_licence, rights_conflict
 from collector.config.recipe import Recipe
@@ -107,6 +108,15 @@ class Ingest:
         self._scan_sha: dict[tuple[int, str], str] = {}
         self._item_source: dict[int, int] = {}
         self._source_order = {sid: rank for rank, sid in enumerate(source_ids)}
+        recipe_wide = ([("[items]", compile_condition(recipe.items.keep_if))]
+                       if recipe.items.keep_if else [])
+        self._conditions = {
+            sid: [*recipe_wide, *([(f"source {src['name']!r}",
+                                    compile_condition(src["keep_if"]))]
+                                  if src.get("keep_if") else [])]
+            for src, sid in zip(recipe.sources, source_ids, strict=True)}
+        self._source_names = {sid: (src["name"], src.get("kind"))
+                              for src, sid in zip(recipe.sources, source_ids, strict=True)}
         everywhere = tuple(recipe.network.secret_params)
         self._secret_params = {sid: (*(src.get("secret_params") or ()), *everywhere)
                                for src, sid in zip(recipe.sources, source_ids, strict=True)}
@@ -127,6 +137,10 @@ class Ingest:
                       + (f"is {spdx_id}, not in the allowlist" if spdx_id
                          else "could not be recognised"))
             self.record.finish(item_id, "skipped", reason, detail)
+            return None
+        unmet = self._unmet_condition(source_id, c, spdx_id)
+        if unmet is not None:
+            self.record.finish(item_id, "skipped", "condition_not_met", unmet)
             return None
         if c.content is not None or c.local_path is not None:
             self.ingest_local(source_id, item_id, c)
@@ -194,6 +208,25 @@ class Ingest:
                     item_id, "duplicate", "exact_duplicate",
                     "same image URL as an item already stored; not fetched again",
                     file_sha256=same["file_sha256"], duplicate_of=same["id"])
+
+    def _unmet_condition(self, source_id: int, c: Any, spdx_id: str | None) -> str | None:
+        """Why the item is not wanted (the first keep_if that does not hold: the recipe's
+        [items], then its source's), or None."""
+        conditions = self._conditions.get(source_id, ())
+        if not conditions:
+            return None
+        name, _ = self._source_names[source_id]
+        view = item_view(source=name, title=c.title, creator=c.creator, date=c.date,
+                         licence=spdx_id, licence_text=c.licence_raw,
+                         licence_url=c.licence_url, page_url=c.page_url,
+                         image_url=c.image_url, metadata=c.metadata)
+        for where, condition in conditions:
+            if not condition.holds(view):
+                years = (f"; its date {c.date!r} was read as {view['year_from']}-"
+                         f"{view['year_to']}" if view["year_from"] is not None
+                         else f"; its date {c.date!r} could not be read" if c.date else "")
+                return f"{where} keep_if {condition.text!r} does not hold{years}"
+        return None
 
     def _register(self, source_id: int, c: Any) -> tuple[int, str | None, Any] | None:
         """The candidate's item row, written with the secrets kept out: (item id, SPDX id,
