@@ -18,6 +18,7 @@ from typing import TYPE_CHECKING, Any, TypeVar
 import typer
 
 from collector import __version__
+from collector.cli_help import PlainTyper
 from collector.errors import CollectorError
 from collector.safe_text import for_terminal, one_line
 
@@ -26,16 +27,16 @@ if TYPE_CHECKING:
 
 F = TypeVar("F", bound=Callable[..., Any])
 
-app = typer.Typer(
+app = PlainTyper(
     name="collector",
-    help=(
-        "Collect images politely from open archives and record where every file came from.\n\n"
-        "Example: collector init my-leaves --contact me@example.org && "
-        "collector check my-leaves"
-    ),
+    help="Collect images politely from open archives and record where every file came from.",
+    epilog="\b\nExample: collector init my-leaves --contact me@example.org\n"
+           "         collector check my-leaves",
     no_args_is_help=True,
     add_completion=False,
     pretty_exceptions_enable=False,
+    rich_markup_mode=None,  # click's plain help: no type tags, paragraphs re-flowed
+    context_settings={"help_option_names": ["-h", "--help"]},
 )
 
 
@@ -66,8 +67,10 @@ def main(
 @app.command()
 def init(
     folder: Path = typer.Argument(..., help="The collection folder to create."),
-    contact: str = typer.Option("", help="Your email or web page, for the User-Agent."),
-    name: str = typer.Option(None, help="The collection's name (default: the folder name)."),
+    contact: str = typer.Option("", metavar="ADDR",
+                                help="Your email or web page, for the User-Agent."),
+    name: str = typer.Option(None, metavar="TEXT",
+                             help="The collection's name (default: the folder name)."),
     existing_ok: bool = typer.Option(
         False, "--existing-ok",
         help="Add missing collection files to a non-empty folder; nothing is overwritten."),
@@ -131,9 +134,11 @@ def check(
 @app.command()
 def gather(
     folder: Path = typer.Argument(Path("."), help="The collection folder."),
-    until: str = typer.Option(None, "--until", help="Stop at this local time, e.g. 07:00."),
-    duration: str = typer.Option(None, "--for", help="Stop after this long, e.g. 8h or 90m."),
-    max_items: int = typer.Option(None, "--max-items", min=0,
+    until: str = typer.Option(None, "--until", metavar="HH:MM",
+                              help="Stop at this local time, e.g. 07:00."),
+    duration: str = typer.Option(None, "--for", metavar="DURATION",
+                                 help="Stop after this long, e.g. 8h or 90m."),
+    max_items: int = typer.Option(None, "--max-items", metavar="N",
                                   help="Stop after storing this many new items (files "
                                        "already in flight are finished)."),
     dry_run: bool = typer.Option(False, "--dry-run",
@@ -144,26 +149,40 @@ def gather(
     """Run the recipe: list sources, decide licences, fetch politely, check, store, record.
 
     Rerunning resumes: stored items are never requested again. Ctrl-C finishes the files in
-    flight and exits 130. Example: collector gather my-leaves --until 07:00
+    flight and exits 130. --until and --for are checked before anything starts, also with
+    --dry-run.
+
+    Example: collector gather my-leaves --until 07:00
     """
+    from collector.config.recipe import check_stop_options
+
     with user_errors():
+        check_stop_options(until, duration, max_items)  # before anything starts, dry or not
         if dry_run:
-            _gather_estimate(folder)
+            _gather_estimate(folder, until=until, duration=duration, max_items=max_items)
             return
         result, lines = _gather_run(folder, until=until, duration=duration,
                                     max_items=max_items, quiet=quiet, log_json=log_json)
     _gather_report(folder, result, lines, log_json=log_json)
 
 
-def _gather_estimate(folder: Path) -> None:
-    """gather --dry-run: the sources, budgets and an estimate; nothing is requested."""
+def _gather_estimate(folder: Path, *, until: str | None, duration: str | None,
+                     max_items: int | None) -> None:
+    """gather --dry-run: the sources, budgets, an estimate and when the run would stop;
+    nothing is requested."""
+    from datetime import datetime
+
     from collector.exports.summary import estimate, format_estimate
+    from collector.run.scheduling import stop_rules
     from collector.storage.collection import open_collection
 
     collection = open_collection(folder)
     recipe = collection.recipe()
+    now = datetime.now().astimezone()
+    stop = stop_rules(recipe, until=until, duration=duration, max_items=max_items, now=now)
     with collection.ledger(readonly=True) as ledger:
-        for line in format_estimate(recipe, estimate(recipe, ledger)):
+        for line in format_estimate(recipe, estimate(recipe, ledger), deadline=stop.deadline,
+                                    max_items=stop.max_items, now=now.timestamp()):
             typer.echo(one_line(line))
 
 
@@ -246,8 +265,9 @@ def status(
 @app.command()
 def datasheet(
     folder: Path = typer.Argument(Path("."), help="The collection folder."),
-    out: Path = typer.Option(None, "--out", help="Output folder (default: FOLDER/datasheet)."),
-    answers: Path = typer.Option(None, "--answers",
+    out: Path = typer.Option(None, "--out", metavar="DIR",
+                             help="Output folder (default: FOLDER/datasheet)."),
+    answers: Path = typer.Option(None, "--answers", metavar="FILE",
                                  help="TOML file with the curator's answers (question ids)."),
     with_images: bool = typer.Option(False, "--with-images",
                                      help="Link the released files into OUT/images/."),
@@ -284,8 +304,9 @@ def datasheet(
 
 @app.command()
 def trace(
-    paths: list[Path] = typer.Argument(..., help="Image files or folders of images to trace."),
-    folder: Path = typer.Option(Path("."), "--in", envvar="COLLECTOR_COLLECTION",
+    paths: list[Path] = typer.Argument(..., metavar="FILE",
+                                       help="Image files or folders of images to trace."),
+    folder: Path = typer.Option(Path("."), "--in", envvar="COLLECTOR_COLLECTION", metavar="DIR",
                                 help="The collection folder (default: $COLLECTOR_COLLECTION, "
                                      "else the current folder)."),
     as_csv: bool = typer.Option(False, "--csv", help="Print the table as CSV."),
@@ -294,7 +315,9 @@ def trace(
     """Say where files came from and under which licence, by content (not by name).
 
     Exit 0 when every file traced (exact or near), 1 when some did not, 2 on usage errors.
-    Example: collector trace leaf.jpg --in my-leaves;  collector trace to-publish/ --csv
+
+    Example: collector trace leaf.jpg --in my-leaves
+             collector trace to-publish/ --in my-leaves --csv > check.csv
     """
     from collector.exports.trace import Tracer, collect_targets
     from collector.exports.trace_format import (
@@ -343,6 +366,7 @@ def rebuild_ledger(
     An unusable ledger (empty, no schema, another collection's) is renamed to
     ledger.sqlite.unusable-<time>, never deleted, and a new one lists every stored file
     (sha256 re-checked). A later gather attaches each file to the item that lists it again.
+
     Example: collector rebuild-ledger my-leaves
     """
     from collector.storage.ledger_repair import rebuild_ledger as rebuild
@@ -363,12 +387,14 @@ def rebuild_ledger(
 @app.command("restore-ledger")
 def restore_ledger(
     folder: Path = typer.Argument(..., help="The collection folder."),
-    backup: Path = typer.Argument(None, help="A backup file (default: the newest in "
-                                              "FOLDER/ledger-backups/)."),
+    backup: Path = typer.Argument(None, metavar="BACKUP",
+                                  help="A backup file (default: the newest in "
+                                       "FOLDER/ledger-backups/)."),
 ) -> None:
     """Put a ledger backup back in place; the current ledger is set aside, not deleted.
 
     Stored files added after the backup are kept; a gather re-attaches them.
+
     Example: collector restore-ledger my-leaves
     """
     from collector.storage.ledger_repair import restore_ledger as restore
@@ -387,13 +413,16 @@ def restore_ledger(
 def demo(
     folder: Path = typer.Argument(Path("demo-collection"), help="Where to put the demo."),
     fresh: bool = typer.Option(False, "--fresh", help="Start over instead of resuming."),
-    port: int = typer.Option(8642, "--port", help="Port for the demo archive on loopback."),
+    port: int = typer.Option(8642, "--port", metavar="N",
+                             help="Port for the demo archive on loopback."),
     quiet: bool = typer.Option(False, "--quiet", help="Print only notes and the summary."),
 ) -> None:
     """Run the whole job on the embedded fictional archive: gather, trace, datasheet.
 
     The archive (the invented Fernhollow Field Society) is served on 127.0.0.1-127.0.0.4;
-    nothing leaves this machine. Example: collector demo --fresh
+    nothing leaves this machine.
+
+    Example: collector demo --fresh
     """
     from collector.demo import run_demo
     from collector.display import LiveProgress

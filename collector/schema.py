@@ -52,13 +52,16 @@ _TYPES: dict[str, tuple[Callable[[Any], bool], str]] = {
 @dataclass(frozen=True)
 class Key:
     """What one recipe key accepts: a type name (see ``TYPES``), a default, whether it is
-    required (``hint`` then says what to write), and an optional extra check."""
+    required (``hint`` then says what to write), an optional extra check, and the name the key
+    had before it was renamed (``formerly``): a recipe that still uses the old name gets an
+    error naming the new one, never a silent alias."""
 
     type: str
     default: Any = None
     required: bool = False
     hint: str = ""
     check: Check | None = None
+    formerly: str = ""
 
     def __post_init__(self) -> None:
         if self.type not in _TYPES:
@@ -112,9 +115,14 @@ def check_table(table: Mapping[str, Any], spec: Mapping[str, Key], prefix: str,
     """Check one table against its spec: unknown keys (with "did you mean"), types, extra
     checks, missing required keys. Returns the valid values with defaults filled in."""
     out: dict[str, Any] = {}
+    renamed = {rule.formerly: key for key, rule in spec.items() if rule.formerly}
     for key, value in table.items():
         path = f"{prefix}.{key}" if prefix else str(key)
         rule = spec.get(key)
+        if rule is None and key in renamed:
+            problems.add(path, f"is the old name of {renamed[key]}: rename the key to "
+                         f"{renamed[key]} (the value stays the same)")
+            continue
         if rule is None:
             problems.add(path, f"unknown key{did_you_mean(str(key), spec)}; allowed here: "
                          f"{', '.join(spec)}")
@@ -127,7 +135,7 @@ def check_table(table: Mapping[str, Any], spec: Mapping[str, Key], prefix: str,
         else:
             out[key] = value
     for key, rule in spec.items():
-        if key in table:
+        if key in table or (rule.formerly and rule.formerly in table):
             continue
         if rule.required:
             hint = f" ({rule.hint})" if rule.hint else ""

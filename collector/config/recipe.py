@@ -2,7 +2,7 @@
 
 Every command that reads a recipe calls :func:`load_recipe`, which reports *all* problems at
 once in a :class:`~collector.errors.RecipeError`: each names the file, the key path
-(``sources[1].pagination.cursor_path``) and what is expected; unknown keys get a "did you mean".
+(``sources[1].pagination.next_cursor``) and what is expected; unknown keys get a "did you mean".
 The result is a :class:`Recipe` with every default filled in.
 """
 
@@ -103,8 +103,29 @@ def _check_duration(value: Any) -> str | None:
     try:
         parse_duration(value)
     except ValueError:
-        return f"must be a duration like \"8h\", \"90m\" or \"1h30m\", got {value!r}"
+        unit = (f'; a number needs a unit: "{value}h" for hours, "{value}m" for minutes'
+                if str(value).strip().isdigit() else "")
+        return f"must be a duration like \"8h\", \"90m\" or \"1h30m\", got {value!r}{unit}"
     return None
+
+
+class StopOptionsError(RecipeError):
+    """--until, --for or --max-items cannot be read; all problems are listed at once."""
+
+    what = "the command line"
+
+
+def check_stop_options(until: str | None, duration: str | None, max_items: int | None) -> None:
+    """Refuse unreadable --until, --for and --max-items (all at once, worded like the recipe's
+    [stop] keys) before a run or a dry run starts: StopOptionsError, exit 2."""
+    found = [("--until", until, _check_clock), ("--for", duration, _check_duration)]
+    problems = [RecipeProblem(option, "", why) for option, value, check in found
+                if value is not None and (why := check(value))]
+    if max_items is not None and max_items < 0:
+        problems.append(RecipeProblem("--max-items", "",
+                                      f"must be 0 (no limit) or more, got {max_items}"))
+    if problems:
+        raise StopOptionsError(problems)
 
 
 def _check_addresses(values: Any) -> str | None:
@@ -176,6 +197,8 @@ def parse_clock(value: str) -> time:
     if not match:
         raise ValueError(value)
     hour, minute = int(match[1]), int(match[2])
+    if hour > 23 or minute > 59:  # time() would say "hour must be in 0..23": ours is clearer
+        raise ValueError(value)
     return time(hour, minute)
 
 

@@ -10,6 +10,7 @@ import json
 import math
 from collections import Counter
 from dataclasses import dataclass, field
+from datetime import datetime
 from typing import Any
 
 from collector import sources
@@ -153,6 +154,14 @@ class Estimate:
     interval: dict[str, float]
     seconds: float
     unknown_sources: list[str]
+    connections: dict[str, int] = field(default_factory=dict)
+
+    def fits_within(self, seconds: float) -> int:
+        """How many of the listed images the hosts can serve in ``seconds`` (each host in
+        parallel, at its interval over its connections)."""
+        return sum(min(n, int(max(0.0, seconds) * self.connections.get(host, 1)
+                              // self.interval[host]))
+                   for host, n in self.per_host.items())
 
 
 def estimate(recipe: Recipe, ledger: Ledger) -> Estimate:
@@ -168,6 +177,7 @@ def estimate(recipe: Recipe, ledger: Ledger) -> Estimate:
     unknown = [s["name"] for s in recipe.sources
                if sources.get_kind(s["kind"]).uses_network and s["name"] not in listed]
     interval: dict[str, float] = {}
+    connections: dict[str, int] = {}
     seconds = 0.0
     for host, n in per_host.items():
         budget = recipe.budget_for(host)
@@ -176,12 +186,20 @@ def estimate(recipe: Recipe, ledger: Ledger) -> Estimate:
         step = max(float(budget.min_interval), 3600.0 / budget.requests_per_hour,
                    float(effective.get("effective_interval", 0) or 0))
         interval[host] = step
-        seconds = max(seconds, n * step / max(1, budget.max_connections))
-    return Estimate(dict(per_host), interval, math.ceil(seconds), unknown)
+        connections[host] = max(1, budget.max_connections)
+        seconds = max(seconds, n * step / connections[host])
+    return Estimate(dict(per_host), interval, math.ceil(seconds), unknown, connections)
 
 
-def format_estimate(recipe: Recipe, est: Estimate) -> list[str]:
-    """The dry-run report as plain text lines."""
+def default_interval(recipe: Recipe) -> float:
+    """Seconds between two requests to one host at the recipe's default budget."""
+    return max(float(recipe.budgets.min_interval), 3600.0 / recipe.budgets.requests_per_hour)
+
+
+def format_estimate(recipe: Recipe, est: Estimate, *, deadline: float | None = None,
+                    max_items: int = 0, now: float = 0.0) -> list[str]:
+    """The dry-run report as plain text lines; ``deadline`` (epoch seconds) and ``max_items``
+    are the stop rules a run would have, ``now`` the time they are measured from."""
     lines = ["dry run: nothing is requested.", "sources:"]
     for source in recipe.sources:
         lines.append(f"  {source['name']} ({source['kind']})")
@@ -197,10 +215,32 @@ def format_estimate(recipe: Recipe, est: Estimate) -> list[str]:
         lines.append(f"estimated time for the images already listed: "
                      f"{human_seconds(est.seconds)} (hosts are served in parallel)")
     if est.unknown_sources:
-        per_hour = 3600 / max(recipe.budgets.min_interval, 3600 /
-                              recipe.budgets.requests_per_hour)
+        step = default_interval(recipe)
         lines.append(f"not listed yet: {', '.join(est.unknown_sources)}. Their size is unknown "
                      f"until a run lists them; at these budgets one host gives at most "
-                     f"{per_hour:.0f} images per hour (20,000 images at one request every 3 s "
-                     f"take about 17 h).")
+                     f"{3600 / step:,.0f} images per hour (20,000 images at one request every "
+                     f"{step:g} s take about {human_seconds(20_000 * step)}).")
+    return lines + stop_lines(est, deadline=deadline, max_items=max_items, now=now)
+
+
+def stop_lines(est: Estimate, *, deadline: float | None, max_items: int,
+               now: float) -> list[str]:
+    """When a run with these stop rules would stop, and how much of the estimate fits."""
+    if deadline is None and not max_items:
+        return ["stop: none set; the run goes on until everything listed is done "
+                "(--until 07:00, --for 8h or --max-items N set a stop)"]
+    lines = []
+    if deadline is not None:
+        left = max(0.0, deadline - now)
+        at = datetime.fromtimestamp(deadline).astimezone().strftime("%Y-%m-%d %H:%M")
+        line = f"stop: at {at} local time, in {human_seconds(left)}"
+        total = sum(est.per_host.values())
+        if total:
+            fit = est.fits_within(left)
+            line += (f"; all {total:,} images already listed fit before then" if fit >= total
+                     else f"; about {fit:,} of the {total:,} images already listed fit "
+                          "before then (the next run resumes with the rest)")
+        lines.append(line)
+    if max_items:
+        lines.append(f"stop: after {max_items:,} newly stored items")
     return lines

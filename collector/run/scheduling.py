@@ -30,15 +30,13 @@ from typing import Any, Protocol
 
 from collector import __version__
 from collector import sources as adapters
-from collector.config.recipe import Recipe, parse_clock, parse_duration
+from collector.config.recipe import Recipe, check_stop_options, parse_clock, parse_duration
 from collector.errors import (
     CollectorError,
     FetchError,
     HostParked,
     InternalError,
     LedgerError,
-    RecipeError,
-    RecipeProblem,
     RobotsDenied,
     StoreError,
     TooLarge,
@@ -84,23 +82,20 @@ class StopRules:
 
 def stop_rules(recipe: Recipe, *, until: str | None = None, duration: str | None = None,
                max_items: int | None = None, now: datetime | None = None) -> StopRules:
-    """Combine the recipe's [stop] table with command-line options (options win)."""
+    """Combine the recipe's [stop] table with command-line options (options win). Unreadable
+    options raise StopOptionsError (the recipe's own values were checked when it loaded)."""
+    check_stop_options(until, duration, max_items)
     now = now or datetime.now().astimezone()
     deadlines: list[float] = []
     until = until if until is not None else recipe.stop.until
     duration = duration if duration is not None else recipe.stop.duration
-    try:
-        if until:
-            at = datetime.combine(now.date(), parse_clock(until), tzinfo=now.tzinfo)
-            if at <= now:
-                at += timedelta(days=1)  # "--until 07:00" in the evening means tomorrow
-            deadlines.append(at.timestamp())
-        if duration:
-            deadlines.append(now.timestamp() + parse_duration(duration))
-    except ValueError as exc:
-        raise RecipeError([RecipeProblem("command line", "--until/--for",
-                                         f"cannot read {exc.args[0]!r}: use HH:MM and e.g. 8h")]
-                          ) from exc
+    if until:
+        at = datetime.combine(now.date(), parse_clock(until), tzinfo=now.tzinfo)
+        if at <= now:
+            at += timedelta(days=1)  # "--until 07:00" in the evening means tomorrow
+        deadlines.append(at.timestamp())
+    if duration:
+        deadlines.append(now.timestamp() + parse_duration(duration))
     limit = max_items if max_items is not None else recipe.stop.max_items
     return StopRules(min(deadlines) if deadlines else None, int(limit or 0))
 
