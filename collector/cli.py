@@ -99,35 +99,32 @@ def check(
 
     Example: collector check my-leaves
     """
-    from collector.config.recipe import env_problems
-    from collector.errors import RecipeError
+    from collector.config.recipe import check_recipe, source_prefix
+    from collector.schema import toml_key, toml_value
     from collector.storage.collection import open_collection
 
     with user_errors():
-        recipe = open_collection(folder).recipe()
-        # Variables set now are checked too (a header value must not end in CR); unset ones
-        # are named by gather, which needs them.
-        problems = env_problems(recipe, unset=False)
-        if problems:
-            raise RecipeError(problems)
+        # Every problem in one round, unset ${NAME} variables included (a run needs them).
+        recipe = check_recipe(open_collection(folder).recipe_path)
     settings = recipe.shown_settings()  # secrets written into the recipe are hidden
     if as_json:
         typer.echo(json.dumps(settings, indent=2, default=str))
         return
-    typer.echo(f"{recipe.path}: valid")
-    typer.echo(f"  User-Agent: collector/{__version__} (+{recipe.contact})")
-    typer.echo(f"  robots.txt product token: {recipe.product_token}")
+    say = typer.echo
+    say(f"{recipe.path}: valid")
+    say(f"  User-Agent: collector/{__version__} (+{recipe.contact})")
+    say(f"  robots.txt product token: {recipe.product_token}")
     for section in ("budgets", "network", "licences", "images", "stop"):
-        typer.echo(f"  [{section}]")
+        say(f"  [{section}]")
         for key, value in settings[section].items():
-            typer.echo(f"    {key} = {value!r}")
+            say(f"    {toml_key(key)} = {toml_value(value)}")
     for host, override in recipe.host_budgets.items():
-        typer.echo(f"  [budgets.hosts.{host!r}] " + ", ".join(
-            f"{k} = {v!r}" for k, v in override.items()))
+        say(f"  [budgets.hosts.{toml_key(host)}] " + ", ".join(
+            f"{toml_key(k)} = {toml_value(v)}" for k, v in override.items()))
     if not recipe.sources:
-        typer.echo("  sources: none yet; add [[sources]] tables before gathering")
-    for source in recipe.sources:
-        typer.echo(f"  source {source['name']!r} ({source['kind']})")
+        say("  sources: none yet; add [[sources]] tables before gathering")
+    for i, source in enumerate(recipe.sources):
+        say(f"  {source_prefix(i, source)}: kind = {toml_value(source['kind'])}")
 
 
 
@@ -306,7 +303,7 @@ def datasheet(
 def trace(
     paths: list[Path] = typer.Argument(..., metavar="FILE",
                                        help="Image files or folders of images to trace."),
-    folder: Path = typer.Option(Path("."), "--in", envvar="COLLECTOR_COLLECTION", metavar="DIR",
+    folder: Path = typer.Option(None, "--in", envvar="COLLECTOR_COLLECTION", metavar="DIR",
                                 help="The collection folder (default: $COLLECTOR_COLLECTION, "
                                      "else the current folder)."),
     as_csv: bool = typer.Option(False, "--csv", help="Print the table as CSV."),
@@ -331,7 +328,7 @@ def trace(
 
     with user_errors():
         targets = collect_targets(paths)
-        with Tracer.open(folder) as tracer:
+        with Tracer.open(_trace_collection(folder)) as tracer:
             results = list(tracer.trace_all(targets))
             recipe_problem = tracer.recipe_problem
     if as_json:
@@ -355,6 +352,21 @@ def trace(
         for line in format_summary(results):
             typer.echo(one_line(line))
     raise typer.Exit(0 if all(r.kind != "none" for r in results) else 1)
+
+
+def _trace_collection(folder: Path | None) -> Path:
+    """--in DIR (or $COLLECTOR_COLLECTION), else the current folder if it is a collection."""
+    from collector.errors import CollectionError
+    from collector.storage.collection import is_collection
+
+    if folder is not None:
+        return folder
+    if not is_collection(Path(".")):
+        raise CollectionError(
+            "the current folder is not a collection folder, so there is nothing to trace "
+            "against. Say which collection to look in: pass --in DIR (e.g. collector trace "
+            "photo.jpg --in my-leaves) or set COLLECTOR_COLLECTION=DIR")
+    return Path(".")
 
 
 @app.command("rebuild-ledger")

@@ -17,6 +17,7 @@ This module imports nothing from collector but the errors, so anything may impor
 from __future__ import annotations
 
 import difflib
+import json
 import os
 import re
 from collections.abc import Callable, Iterable, Mapping
@@ -265,6 +266,34 @@ def date_text(value: Any) -> str | None:
     if isinstance(value, date | datetime):
         return value.isoformat()
     return str(value)
+
+
+# --- values shown as TOML ------------------------------------------------------------------------
+
+_BARE_KEY = re.compile(r"[A-Za-z0-9_-]+")
+
+
+def toml_key(key: str) -> str:
+    """A key as TOML writes it: bare when it can be (TOML 1.0 "Keys"), else a quoted string."""
+    return key if _BARE_KEY.fullmatch(key) else json.dumps(key, ensure_ascii=False)
+
+
+def toml_value(value: Any) -> str:
+    """A setting as it would be written in the recipe: ``true``, ``"keep"``, ``3.0``,
+    ``["a", "b"]``, ``{ X-Token = "${TOKEN}" }``. JSON string escapes are valid TOML basic
+    string escapes (TOML 1.0 "String"), so ``json.dumps`` writes the strings."""
+    if isinstance(value, bool):
+        return "true" if value else "false"
+    if isinstance(value, int | float):
+        return repr(value)
+    if isinstance(value, list | tuple):
+        return "[" + ", ".join(toml_value(v) for v in value) + "]"
+    if isinstance(value, dict):
+        inner = ", ".join(f"{toml_key(str(k))} = {toml_value(v)}" for k, v in value.items())
+        return "{ " + inner + " }" if inner else "{}"
+    if isinstance(value, date | datetime):
+        return value.isoformat()
+    return json.dumps(str(value), ensure_ascii=False)
 
 
 # --- ${NAME} references -------------------------------------------------------------------------
