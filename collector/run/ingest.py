@@ -24,7 +24,12 @@ from pathlib import Path
 from typing import Any, BinaryIO
 
 from collector.checks.images import ImageFacts, inspect_image
-from collector.checks.licences import licence_allowed, normalise_licence, rights_conflict
+from collector.checks.licences import (
+    licence_allowed,
+    licence_detail,
+    normalise_licence,
+    rights_conflict,
+)
 from collector.config.recipe import Recipe
 from collector.errors import ImageRejected, StoreError
 from collector.run import dedup
@@ -111,9 +116,7 @@ class Ingest:
         ok, reason = licence_allowed(spdx_id, self.recipe.licences.allow,
                                      self.recipe.licences.allow_unknown)
         if not ok:
-            detail = (f"licence {c.licence_raw or c.licence_url or '(none)'!r} "
-                      + (f"is {spdx_id}, not in the allowlist" if spdx_id
-                         else "could not be recognised"))
+            detail = licence_detail(c.licence_raw, c.licence_url, spdx_id)
             self.record.finish(item_id, "skipped", reason, detail)
             return None
         if c.content is not None or c.local_path is not None:

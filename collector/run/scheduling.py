@@ -384,7 +384,7 @@ class Gatherer:
                 self._fetch_and_ingest(job)
             except HostParked as exc:
                 stats.parked = True
-                self.record.finish(job.item_id, "deferred", "host_parked", str(exc))
+                self.record.finish(job.item_id, "deferred", "host_parked", exc.item_detail())
             except (StoreError, LedgerError) as exc:
                 self._fail(exc)
             except Exception as exc:  # a bug while handling this job: it fails, the run stops
@@ -399,19 +399,21 @@ class Gatherer:
                                              item_id=job.item_id,
                                              secret_params=job.secret_params)
         except RobotsDenied as exc:
-            self.record.finish(job.item_id, "blocked", exc.reason, str(exc))
+            self.record.finish(job.item_id, "blocked", exc.reason, exc.item_detail())
             return
         except HostParked:
             raise
         except UnsafeURL as exc:
-            self.record.finish(job.item_id, "failed", exc.reason, str(exc))
+            self.record.finish(job.item_id, "failed", exc.reason, exc.item_detail())
             return
         except TooLarge as exc:
-            self.record.finish(job.item_id, "rejected", "too_large", str(exc))
+            self.record.finish(job.item_id, "rejected", "too_large",
+                               f"{exc.size_text or 'the body'}, above network.max_image_bytes"
+                               f" = {exc.limit:,}: {exc.url}")
             return
         except FetchError as exc:
             self.hosts[host_key(job.url)].errors += 1
-            self.record.finish(job.item_id, "failed", exc.reason, str(exc))
+            self.record.finish(job.item_id, "failed", exc.reason, exc.item_detail())
             return
         if download.path is None or download.sha256 is None:
             raise RuntimeError(f"the fetcher returned no file for {job.url}")
