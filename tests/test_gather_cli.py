@@ -97,7 +97,7 @@ def test_status_reports_politeness_per_host(demo_folder: Path) -> None:
     runner.invoke(app, ["gather", str(demo_folder), "--max-items", "3", "--quiet"])
     result = runner.invoke(app, ["status", str(demo_folder)])
     assert result.exit_code == 0
-    assert "politeness per host:" in result.output
+    assert "politeness per host (requests sent; failed:" in result.output
     assert "x 429" in result.output and "waited" in result.output
     assert "1 run taking" in result.output
     as_json = json.loads(runner.invoke(app, ["status", str(demo_folder), "--json"]).output)

@@ -32,8 +32,9 @@ class HostPoliteness:
     too_many: int  # 429 answers received
     unavailable: int  # 503 answers received
     waited_s: float
-    errors: int
+    errors: int  # requests sent that failed (an error status, no answer, a body refused)
     bytes: int
+    held_back: int = 0  # never sent: robots.txt, the address guard or a parked host refused
 
 
 @dataclass
@@ -54,6 +55,7 @@ class Summary:
     last_run: dict[str, Any] | None = None
     run_seconds: float = 0.0  # all runs together
     last_run_seconds: float | None = None
+    origins: list[queries.FileOrigin] = field(default_factory=list)
 
     @property
     def total_items(self) -> int:
@@ -65,13 +67,14 @@ def summarise(ledger: Ledger) -> Summary:
     t = queries.ledger_totals(ledger)
     s = Summary(files=t.files, file_bytes=t.file_bytes, fetched_bytes=t.fetched_bytes,
                 requests=t.requests, runs=t.runs, last_run=t.last_run,
-                run_seconds=t.run_seconds, last_run_seconds=t.last_run_seconds)
+                run_seconds=t.run_seconds, last_run_seconds=t.last_run_seconds,
+                origins=list(t.file_origins))
     for row in t.states:
         s.states[row.state] += row.n
         if row.reason:
             s.reasons[(row.state, row.reason)] += row.n
     s.hosts = [HostPoliteness(h.host or "?", h.requests, h.too_many, h.unavailable,
-                              h.waited_s, h.errors, h.bytes) for h in t.hosts]
+                              h.waited_s, h.errors, h.bytes, h.held_back) for h in t.hosts]
     s.licences.update(dict(t.licences))
     for flags in t.flag_lists:
         for flag in json.loads(flags):
@@ -87,6 +90,7 @@ def summary_as_dict(s: Summary) -> dict[str, Any]:
         "reasons": {f"{state}/{reason}": n for (state, reason), n in s.reasons.items()},
         "files": s.files, "file_bytes": s.file_bytes, "requests": s.requests,
         "fetched_bytes": s.fetched_bytes,
+        "file_origins": [o._asdict() for o in s.origins],
         "hosts": [vars(h) for h in s.hosts], "licences": dict(s.licences),
         "flags": dict(s.flags), "notes": dict(s.notes), "runs": s.runs,
         "run_seconds": round(s.run_seconds, 3), "last_run": s.last_run,
@@ -120,6 +124,7 @@ def format_summary(s: Summary) -> list[str]:
     lines = [f"{s.total_items} items, {s.files} files stored ({human_bytes(s.file_bytes)}), "
              f"{s.requests} requests ({human_bytes(s.fetched_bytes)} received), {runs} "
              f"taking {human_seconds(s.run_seconds)}"]
+    lines += files_lines(s)
     if s.last_run:
         lines.append(f"last run: #{s.last_run['id']} started {s.last_run['started_at']}, "
                      f"{human_seconds(s.last_run_seconds or 0)}, {s.last_run['outcome']}")
@@ -132,11 +137,13 @@ def format_summary(s: Summary) -> list[str]:
         lines.append("licences of stored items: " + ", ".join(
             f"{k} {v}" for k, v in s.licences.most_common()))
     if s.hosts:
-        lines.append("politeness per host:")
+        lines.append("politeness per host (requests sent; failed: sent but ended in an error; "
+                     "held back: not sent, refused first by robots.txt or a pause):")
         for h in s.hosts:
-            lines.append(f"  {h.host:<24} {h.requests:>5} requests, {h.too_many} x 429, "
-                         f"{h.unavailable} x 503, waited {human_seconds(h.waited_s)}, "
-                         f"{h.errors} errors")
+            lines.append(f"  {h.host:<24} {plural(h.requests, 'request'):>14}, "
+                         f"{h.too_many} x 429, {h.unavailable} x 503, waited "
+                         f"{human_seconds(h.waited_s)}, {h.errors} failed"
+                         + (f", {h.held_back} held back" if h.held_back else ""))
     if s.flags:
         lines.append("flags (review before publishing): " + ", ".join(
             f"{k} {v}" for k, v in s.flags.most_common()))
@@ -144,6 +151,36 @@ def format_summary(s: Summary) -> list[str]:
         lines.append("source notes: " + ", ".join(f"{k} {v}" for k, v in s.notes.items())
                      + "  (see the ledger's notes table)")
     return lines
+
+
+def plural(n: int, word: str) -> str:
+    """1 request, 2 requests."""
+    return f"{n:,} {word}" + ("" if n == 1 else "s")
+
+
+def files_lines(s: Summary) -> list[str]:
+    """Why the files stored differ from the items stored (near duplicates kept are files
+    too), and why bytes stored can exceed bytes received (scans and their crops are read from
+    a folder, not received)."""
+    if not s.files:
+        return []
+    files: Counter[str] = Counter()
+    size: Counter[str] = Counter()
+    for o in s.origins:
+        files[o.origin] += o.files
+        size[o.origin] += o.bytes
+    near = sum(o.files for o in s.origins if o.near_kept)
+    own = s.files - near - files["unknown"]
+    kinds = [f"{own:,} of stored items"] + (
+        [f"{near:,} near duplicates kept (near_duplicates = \"keep\")"] if near else []) + (
+        [f"{files['unknown']:,} recovered, provenance unknown"] if files["unknown"] else [])
+    where = [f"{files['downloaded']:,} downloaded ({human_bytes(size['downloaded'])})"]
+    local = files["local"] + files["crop"]
+    if local:
+        crops = f"; {files['crop']:,} of them crops cut from scans" if files["crop"] else ""
+        where.append(f"{local:,} read from local folders, so not received "
+                     f"({human_bytes(size['local'] + size['crop'])}{crops})")
+    return ["files: " + " + ".join(kinds) + "; " + ", ".join(where)]
 
 
 @dataclass
