@@ -274,9 +274,11 @@ def stop_lines(est: Estimate, *, deadline: float | None, max_items: int,
         total = sum(est.per_host.values())
         if total:
             fit = est.fits_within(left)
-            line += (f"; all {total:,} images already listed fit before then" if fit >= total
-                     else f"; about {fit:,} of the {total:,} images already listed fit "
-                          "before then (the next run resumes with the rest)")
+            everything = ("; the one image already listed fits before then" if total == 1
+                          else f"; all {total:,} images already listed fit before then")
+            line += everything if fit >= total else (
+                f"; about {fit:,} of the {total:,} images already listed fit before then "
+                "(the next run resumes with the rest)")
         lines.append(line)
     if max_items:
         lines.append(f"stop: after {max_items:,} newly stored items")
