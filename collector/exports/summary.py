@@ -242,13 +242,14 @@ def format_estimate(recipe: Recipe, est: Estimate, *, deadline: float | None = N
         lines.append(f"  {source['name']} ({source['kind']})")
     lines.append(f"budget defaults: one request every {recipe.budgets.min_interval:g} s at "
                  f"most, {recipe.budgets.requests_per_hour} per hour, "
-                 f"{recipe.budgets.max_connections} connection(s) per host; robots.txt "
+                 f"{plural(recipe.budgets.max_connections, 'connection')} per host; robots.txt "
                  "Crawl-delay can only slow this down")
     if est.per_host:
         lines.append("candidates waiting per host (from earlier listings):")
         for host, n in sorted(est.per_host.items()):
-            lines.append(f"  {host:<24} {n:>6} images, one every {est.interval[host]:g} s "
-                         f"-> {human_seconds(n * est.interval[host])}")
+            step = est.interval[host]
+            lines.append(f"  {host:<24} {plural(n, 'image'):>13}, one every {step:g} s "
+                         f"-> {human_seconds(n * step)}")
         lines.append(f"estimated time for the images already listed: "
                      f"{human_seconds(est.seconds)} (hosts are served in parallel)")
     if est.unknown_sources:
