@@ -18,6 +18,7 @@ from typing import TYPE_CHECKING, Any, TypeVar
 import typer
 
 from collector import __version__
+from collector.cli_help import PlainTyper
 from collector.errors import CollectorError
 from collector.safe_text import for_terminal, one_line
 
@@ -26,16 +27,16 @@ if TYPE_CHECKING:
 
 F = TypeVar("F", bound=Callable[..., Any])
 
-app = typer.Typer(
+app = PlainTyper(
     name="collector",
-    help=(
-        "Collect images politely from open archives and record where every file came from.\n\n"
-        "Example: collector init my-leaves --contact me@example.org && "
-        "collector check my-leaves"
-    ),
+    help="Collect images politely from open archives and record where every file came from.",
+    epilog="\b\nExample: collector init my-leaves --contact me@example.org\n"
+           "         collector check my-leaves",
     no_args_is_help=True,
     add_completion=False,
     pretty_exceptions_enable=False,
+    rich_markup_mode=None,  # click's plain help: no type tags, paragraphs re-flowed
+    context_settings={"help_option_names": ["-h", "--help"]},
 )
 
 
@@ -70,8 +71,10 @@ def main(
 @app.command()
 def init(
     folder: Path = typer.Argument(..., help="The collection folder to create."),
-    contact: str = typer.Option("", help="Your email or web page, for the User-Agent."),
-    name: str = typer.Option(None, help="The collection's name (default: the folder name)."),
+    contact: str = typer.Option("", metavar="ADDR",
+                                help="Your email or web page, for the User-Agent."),
+    name: str = typer.Option(None, metavar="TEXT",
+                             help="The collection's name (default: the folder name)."),
     existing_ok: bool = typer.Option(
         False, "--existing-ok",
         help="Add missing collection files to a non-empty folder; nothing is overwritten."),
@@ -100,44 +103,43 @@ def check(
 
     Example: collector check my-leaves
     """
-    from collector.config.recipe import env_problems
-    from collector.errors import RecipeError
+    from collector.config.recipe import check_recipe, source_prefix
+    from collector.schema import toml_key, toml_value
     from collector.storage.collection import open_collection
 
     with user_errors():
-        recipe = open_collection(folder).recipe()
-        # Variables set now are checked too (a header value must not end in CR); unset ones
-        # are named by gather, which needs them.
-        problems = env_problems(recipe, unset=False)
-        if problems:
-            raise RecipeError(problems)
+        # Every problem in one round, unset ${NAME} variables included (a run needs them).
+        recipe = check_recipe(open_collection(folder).recipe_path)
     settings = recipe.shown_settings()  # secrets written into the recipe are hidden
     if as_json:
         typer.echo(json.dumps(settings, indent=2, default=str))
         return
-    typer.echo(f"{recipe.path}: valid")
-    typer.echo(f"  User-Agent: collector/{__version__} (+{recipe.contact})")
-    typer.echo(f"  robots.txt product token: {recipe.product_token}")
+    say = typer.echo
+    say(f"{recipe.path}: valid")
+    say(f"  User-Agent: collector/{__version__} (+{recipe.contact})")
+    say(f"  robots.txt product token: {recipe.product_token}")
     for section in ("budgets", "network", "licences", "images", "stop"):
-        typer.echo(f"  [{section}]")
+        say(f"  [{section}]")
         for key, value in settings[section].items():
-            typer.echo(f"    {key} = {value!r}")
+            say(f"    {toml_key(key)} = {toml_value(value)}")
     for host, override in recipe.host_budgets.items():
-        typer.echo(f"  [budgets.hosts.{host!r}] " + ", ".join(
-            f"{k} = {v!r}" for k, v in override.items()))
+        say(f"  [budgets.hosts.{toml_key(host)}] " + ", ".join(
+            f"{toml_key(k)} = {toml_value(v)}" for k, v in override.items()))
     if not recipe.sources:
-        typer.echo("  sources: none yet; add [[sources]] tables before gathering")
-    for source in recipe.sources:
-        typer.echo(f"  source {source['name']!r} ({source['kind']})")
+        say("  sources: none yet; add [[sources]] tables before gathering")
+    for i, source in enumerate(recipe.sources):
+        say(f"  {source_prefix(i, source)}: kind = {toml_value(source['kind'])}")
 
 
 
 @app.command()
 def gather(
     folder: Path = typer.Argument(Path("."), help="The collection folder."),
-    until: str = typer.Option(None, "--until", help="Stop at this local time, e.g. 07:00."),
-    duration: str = typer.Option(None, "--for", help="Stop after this long, e.g. 8h or 90m."),
-    max_items: int = typer.Option(None, "--max-items", min=0,
+    until: str = typer.Option(None, "--until", metavar="HH:MM",
+                              help="Stop at this local time, e.g. 07:00."),
+    duration: str = typer.Option(None, "--for", metavar="DURATION",
+                                 help="Stop after this long, e.g. 8h or 90m."),
+    max_items: int = typer.Option(None, "--max-items", metavar="N",
                                   help="Stop after storing this many new items (files "
                                        "already in flight are finished)."),
     dry_run: bool = typer.Option(False, "--dry-run",
@@ -148,26 +150,40 @@ def gather(
     """Run the recipe: list sources, decide licences, fetch politely, check, store, record.
 
     Rerunning resumes: stored items are never requested again. Ctrl-C finishes the files in
-    flight and exits 130. Example: collector gather my-leaves --until 07:00
+    flight and exits 130. --until and --for are checked before anything starts, also with
+    --dry-run.
+
+    Example: collector gather my-leaves --until 07:00
     """
+    from collector.config.recipe import check_stop_options
+
     with user_errors():
+        check_stop_options(until, duration, max_items)  # before anything starts, dry or not
         if dry_run:
-            _gather_estimate(folder)
+            _gather_estimate(folder, until=until, duration=duration, max_items=max_items)
             return
         result, lines = _gather_run(folder, until=until, duration=duration,
                                     max_items=max_items, quiet=quiet, log_json=log_json)
     _gather_report(folder, result, lines, log_json=log_json)
 
 
-def _gather_estimate(folder: Path) -> None:
-    """gather --dry-run: the sources, budgets and an estimate; nothing is requested."""
+def _gather_estimate(folder: Path, *, until: str | None, duration: str | None,
+                     max_items: int | None) -> None:
+    """gather --dry-run: the sources, budgets, an estimate and when the run would stop;
+    nothing is requested."""
+    from datetime import datetime
+
     from collector.exports.summary import estimate, format_estimate
+    from collector.run.scheduling import stop_rules
     from collector.storage.collection import open_collection
 
     collection = open_collection(folder)
     recipe = collection.recipe()
+    now = datetime.now().astimezone()
+    stop = stop_rules(recipe, until=until, duration=duration, max_items=max_items, now=now)
     with collection.ledger(readonly=True) as ledger:
-        for line in format_estimate(recipe, estimate(recipe, ledger)):
+        for line in format_estimate(recipe, estimate(recipe, ledger), deadline=stop.deadline,
+                                    max_items=stop.max_items, now=now.timestamp()):
             typer.echo(one_line(line))
 
 
@@ -250,8 +266,9 @@ def status(
 @app.command()
 def datasheet(
     folder: Path = typer.Argument(Path("."), help="The collection folder."),
-    out: Path = typer.Option(None, "--out", help="Output folder (default: FOLDER/datasheet)."),
-    answers: Path = typer.Option(None, "--answers",
+    out: Path = typer.Option(None, "--out", metavar="DIR",
+                             help="Output folder (default: FOLDER/datasheet)."),
+    answers: Path = typer.Option(None, "--answers", metavar="FILE",
                                  help="TOML file with the curator's answers (question ids)."),
     with_images: bool = typer.Option(False, "--with-images",
                                      help="Link the released files into OUT/images/."),
@@ -288,8 +305,9 @@ def datasheet(
 
 @app.command()
 def trace(
-    paths: list[Path] = typer.Argument(..., help="Image files or folders of images to trace."),
-    folder: Path = typer.Option(Path("."), "--in", envvar="COLLECTOR_COLLECTION",
+    paths: list[Path] = typer.Argument(..., metavar="FILE",
+                                       help="Image files or folders of images to trace."),
+    folder: Path = typer.Option(None, "--in", envvar="COLLECTOR_COLLECTION", metavar="DIR",
                                 help="The collection folder (default: $COLLECTOR_COLLECTION, "
                                      "else the current folder)."),
     as_csv: bool = typer.Option(False, "--csv", help="Print the table as CSV."),
@@ -298,7 +316,9 @@ def trace(
     """Say where files came from and under which licence, by content (not by name).
 
     Exit 0 when every file traced (exact or near), 1 when some did not, 2 on usage errors.
-    Example: collector trace leaf.jpg --in my-leaves;  collector trace to-publish/ --csv
+
+    Example: collector trace leaf.jpg --in my-leaves
+             collector trace to-publish/ --in my-leaves --csv > check.csv
     """
     from collector.exports.trace import Tracer, collect_targets
     from collector.exports.trace_format import (
@@ -312,7 +332,7 @@ def trace(
 
     with user_errors():
         targets = collect_targets(paths)
-        with Tracer.open(folder) as tracer:
+        with Tracer.open(_trace_collection(folder)) as tracer:
             results = list(tracer.trace_all(targets))
             recipe_problem = tracer.recipe_problem
     if as_json:
@@ -338,6 +358,21 @@ def trace(
     raise typer.Exit(0 if all(r.kind != "none" for r in results) else 1)
 
 
+def _trace_collection(folder: Path | None) -> Path:
+    """--in DIR (or $COLLECTOR_COLLECTION), else the current folder if it is a collection."""
+    from collector.errors import CollectionError
+    from collector.storage.collection import is_collection
+
+    if folder is not None:
+        return folder
+    if not is_collection(Path(".")):
+        raise CollectionError(
+            "the current folder is not a collection folder, so there is nothing to trace "
+            "against. Say which collection to look in: pass --in DIR (e.g. collector trace "
+            "photo.jpg --in my-leaves) or set COLLECTOR_COLLECTION=DIR")
+    return Path(".")
+
+
 @app.command("rebuild-ledger")
 def rebuild_ledger(
     folder: Path = typer.Argument(..., help="The collection folder."),
@@ -347,6 +382,7 @@ def rebuild_ledger(
     An unusable ledger (empty, no schema, another collection's) is renamed to
     ledger.sqlite.unusable-<time>, never deleted, and a new one lists every stored file
     (sha256 re-checked). A later gather attaches each file to the item that lists it again.
+
     Example: collector rebuild-ledger my-leaves
     """
     from collector.storage.ledger_repair import rebuild_ledger as rebuild
@@ -367,12 +403,14 @@ def rebuild_ledger(
 @app.command("restore-ledger")
 def restore_ledger(
     folder: Path = typer.Argument(..., help="The collection folder."),
-    backup: Path = typer.Argument(None, help="A backup file (default: the newest in "
-                                              "FOLDER/ledger-backups/)."),
+    backup: Path = typer.Argument(None, metavar="BACKUP",
+                                  help="A backup file (default: the newest in "
+                                       "FOLDER/ledger-backups/)."),
 ) -> None:
     """Put a ledger backup back in place; the current ledger is set aside, not deleted.
 
     Stored files added after the backup are kept; a gather re-attaches them.
+
     Example: collector restore-ledger my-leaves
     """
     from collector.storage.ledger_repair import restore_ledger as restore
@@ -391,13 +429,16 @@ def restore_ledger(
 def demo(
     folder: Path = typer.Argument(Path("demo-collection"), help="Where to put the demo."),
     fresh: bool = typer.Option(False, "--fresh", help="Start over instead of resuming."),
-    port: int = typer.Option(8642, "--port", help="Port for the demo archive on loopback."),
+    port: int = typer.Option(8642, "--port", metavar="N",
+                             help="Port for the demo archive on loopback."),
     quiet: bool = typer.Option(False, "--quiet", help="Print only notes and the summary."),
 ) -> None:
     """Run the whole job on the embedded fictional archive: gather, trace, datasheet.
 
     The archive (the invented Fernhollow Field Society) is served on 127.0.0.1-127.0.0.4;
-    nothing leaves this machine. Example: collector demo --fresh
+    nothing leaves this machine.
+
+    Example: collector demo --fresh
     """
     from collector.demo import run_demo
     from collector.display import LiveProgress

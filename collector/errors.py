@@ -144,6 +144,13 @@ class FetchError(CollectorError):
             text += f": {detail}"
         super().__init__(text)
 
+    def item_detail(self) -> str:
+        """What the ledger's item detail says: what went wrong, then the URL; the reason
+        code stands beside it in its own column, so it is not repeated here."""
+        said = [f"HTTP {self.status}"] if self.status is not None else []
+        said += [self.detail] if self.detail else []
+        return f"{'; '.join(said) or self.reason.replace('_', ' ')}: {self.url}"
+
 
 class UnsafeURL(FetchError):
     """The URL is not http/https, or resolves to an address the recipe does not allow."""
@@ -155,6 +162,12 @@ class RobotsDenied(FetchError):
     def __init__(self, url: str, rule: str, reason: str = "robots_disallowed") -> None:
         self.rule = rule
         super().__init__(url, reason, detail=f"robots.txt rule {rule!r}")
+
+    def item_detail(self) -> str:
+        if self.rule == "unreachable":
+            return ("the host's robots.txt could not be read, so nothing is fetched there "
+                    f"until it can be (the next run asks again): {self.url}")
+        return f"robots.txt disallows it ({self.rule}): {self.url}"
 
 
 class HostParked(FetchError):
@@ -168,9 +181,10 @@ class HostParked(FetchError):
 class TooLarge(FetchError):
     """The body is larger than the configured cap (``limit`` bytes)."""
 
-    def __init__(self, url: str, limit: int, detail: str = "") -> None:
-        self.limit = limit
-        super().__init__(url, "too_large", detail=detail or f"over the {limit:,}-byte cap")
+    def __init__(self, url: str, limit: int, size: str = "") -> None:
+        self.limit, self.size_text = limit, size  # size: what was seen, e.g. "Content-Length 5"
+        super().__init__(url, "too_large", detail=(f"{size}, " if size else "")
+                         + f"over the {limit:,}-byte cap")
 
 
 class DownloadTimeout(FetchError):

@@ -17,6 +17,7 @@ This module imports nothing from collector but the errors, so anything may impor
 from __future__ import annotations
 
 import difflib
+import json
 import os
 import re
 from collections.abc import Callable, Iterable, Mapping
@@ -52,13 +53,16 @@ _TYPES: dict[str, tuple[Callable[[Any], bool], str]] = {
 @dataclass(frozen=True)
 class Key:
     """What one recipe key accepts: a type name (see ``TYPES``), a default, whether it is
-    required (``hint`` then says what to write), and an optional extra check."""
+    required (``hint`` then says what to write), an optional extra check, and the name the key
+    had before it was renamed (``formerly``): a recipe that still uses the old name gets an
+    error naming the new one, never a silent alias."""
 
     type: str
     default: Any = None
     required: bool = False
     hint: str = ""
     check: Check | None = None
+    formerly: str = ""
 
     def __post_init__(self) -> None:
         if self.type not in _TYPES:
@@ -112,9 +116,14 @@ def check_table(table: Mapping[str, Any], spec: Mapping[str, Key], prefix: str,
     """Check one table against its spec: unknown keys (with "did you mean"), types, extra
     checks, missing required keys. Returns the valid values with defaults filled in."""
     out: dict[str, Any] = {}
+    renamed = {rule.formerly: key for key, rule in spec.items() if rule.formerly}
     for key, value in table.items():
         path = f"{prefix}.{key}" if prefix else str(key)
         rule = spec.get(key)
+        if rule is None and key in renamed:
+            problems.add(path, f"is the old name of {renamed[key]}: rename the key to "
+                         f"{renamed[key]} (the value stays the same)")
+            continue
         if rule is None:
             problems.add(path, f"unknown key{did_you_mean(str(key), spec)}; allowed here: "
                          f"{', '.join(spec)}")
@@ -127,7 +136,7 @@ def check_table(table: Mapping[str, Any], spec: Mapping[str, Key], prefix: str,
         else:
             out[key] = value
     for key, rule in spec.items():
-        if key in table:
+        if key in table or (rule.formerly and rule.formerly in table):
             continue
         if rule.required:
             hint = f" ({rule.hint})" if rule.hint else ""
@@ -273,6 +282,34 @@ def date_text(value: Any) -> str | None:
     if isinstance(value, date | datetime):
         return value.isoformat()
     return str(value)
+
+
+# --- values shown as TOML ------------------------------------------------------------------------
+
+_BARE_KEY = re.compile(r"[A-Za-z0-9_-]+")
+
+
+def toml_key(key: str) -> str:
+    """A key as TOML writes it: bare when it can be (TOML 1.0 "Keys"), else a quoted string."""
+    return key if _BARE_KEY.fullmatch(key) else json.dumps(key, ensure_ascii=False)
+
+
+def toml_value(value: Any) -> str:
+    """A setting as it would be written in the recipe: ``true``, ``"keep"``, ``3.0``,
+    ``["a", "b"]``, ``{ X-Token = "${TOKEN}" }``. JSON string escapes are valid TOML basic
+    string escapes (TOML 1.0 "String"), so ``json.dumps`` writes the strings."""
+    if isinstance(value, bool):
+        return "true" if value else "false"
+    if isinstance(value, int | float):
+        return repr(value)
+    if isinstance(value, list | tuple):
+        return "[" + ", ".join(toml_value(v) for v in value) + "]"
+    if isinstance(value, dict):
+        inner = ", ".join(f"{toml_key(str(k))} = {toml_value(v)}" for k, v in value.items())
+        return "{ " + inner + " }" if inner else "{}"
+    if isinstance(value, date | datetime):
+        return value.isoformat()
+    return json.dumps(str(value), ensure_ascii=False)
 
 
 # --- ${NAME} references -------------------------------------------------------------------------

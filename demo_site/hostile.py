@@ -607,7 +607,7 @@ licence = "licence"
 [[sources]]
 name = "{case.name}"
 kind = "html"
-start_urls = ["{self.url(case)}"]
+listing_pages = ["{self.url(case)}"]
 [sources.select]
 item = "li.tile"
 image = "img"

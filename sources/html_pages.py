@@ -39,8 +39,8 @@ from collector.sources.base import (
 DEFAULT_MAX_PAGES = 100
 
 KEYS: dict[str, Key] = {
-    "start_urls": Key("list", required=True,
-                      hint='listing pages to start from, e.g. ["https://example.org/gallery/"]'),
+    "listing_pages": Key("list", required=True, formerly="start_urls",
+                         hint='listing pages to start from, e.g. ["https://example.org/gallery/"]'),
     "max_pages": Key("int", check=at_least(1)),
     "select": Key("table", required=True,
                   hint='CSS selectors; at least item = "..." (one block per image)'),
@@ -81,12 +81,12 @@ def _check_selector(value: Any, path: str, problems: Problems) -> None:
 
 def check(table: Mapping[str, Any], prefix: str, problems: Problems) -> None:
     """The checks inside one html source table (KEYS are checked first)."""
-    urls = table.get("start_urls")
+    urls = table.get("listing_pages")
     if isinstance(urls, str):
-        problems.add(f"{prefix}.start_urls", f'must be a list of URLs, e.g. ["{urls}"]')
-    elif check_str_list(urls, f"{prefix}.start_urls", problems):
+        problems.add(f"{prefix}.listing_pages", f'must be a list of URLs, e.g. ["{urls}"]')
+    elif check_str_list(urls, f"{prefix}.listing_pages", problems):
         for i, url in enumerate(urls):
-            check_value(url, http_url, f"{prefix}.start_urls[{i}]", problems)
+            check_value(url, http_url, f"{prefix}.listing_pages[{i}]", problems)
     for section, schema in (("select", SELECT_KEYS), ("detail", DETAIL_KEYS)):
         sub = table.get(section)
         if isinstance(sub, dict):
@@ -289,7 +289,7 @@ class _Walker:
         self.select: dict[str, str] = dict(source["select"])
         self.detail: dict[str, str] | None = (
             dict(source["detail"]) if isinstance(source.get("detail"), Mapping) else None)
-        self.start_urls: list[str] = list(source["start_urls"])
+        self.listing_pages: list[str] = list(source["listing_pages"])
         self.max_pages = int(source.get("max_pages", DEFAULT_MAX_PAGES))
         self.seen_keys: set[str] = set()
 
@@ -316,7 +316,7 @@ class _Walker:
         """Follow each start URL's next-page chain, yielding candidates."""
         seen_pages: set[str] = set()
         pages = 0
-        for start in self.start_urls:
+        for start in self.listing_pages:
             url: str | None = strip_fragment(start)
             if url in seen_pages:
                 continue  # reached already from an earlier start URL

@@ -72,30 +72,30 @@ KEYS: dict[str, Key] = {
 # Which pagination keys each style uses; REQUIRED lists the ones without a default.
 STYLE_KEYS: dict[str, tuple[str, ...]] = {
     "page": ("param", "start"),
-    "offset": ("offset_param", "limit_param", "limit", "start"),
-    "cursor": ("cursor_path", "cursor_param"),
+    "offset": ("send_offset_as", "send_limit_as", "limit", "start"),
+    "cursor": ("next_cursor", "send_cursor_as"),
     "next_url": ("next_path",),
     "link_header": (),
     "none": (),
 }
 STYLE_REQUIRED: dict[str, tuple[str, ...]] = {
-    "cursor": ("cursor_path", "cursor_param"),
+    "cursor": ("next_cursor", "send_cursor_as"),
     "next_url": ("next_path",),
 }
 PAGINATION_KEYS: dict[str, Key] = {
     "style": Key("str", required=True, hint="one of " + ", ".join(STYLES)),
     "param": Key("str"),
     "start": Key("int"),
-    "offset_param": Key("str"),
-    "limit_param": Key("str"),
+    "send_offset_as": Key("str", formerly="offset_param"),  # the query parameter names
+    "send_limit_as": Key("str", formerly="limit_param"),
     "limit": Key("int", check=at_least(1)),
-    "cursor_path": Key("str"),
-    "cursor_param": Key("str"),
+    "next_cursor": Key("str", formerly="cursor_path"),  # JMESPath to the next cursor
+    "send_cursor_as": Key("str", formerly="cursor_param"),
     "next_path": Key("str"),
-    "total_path": Key("str"),
+    "total_count": Key("str", formerly="total_path"),  # JMESPath to the number of items
     "max_pages": Key("int", check=at_least(1)),
 }
-PAGINATION_PATHS = ("cursor_path", "next_path", "total_path")
+PAGINATION_PATHS = ("next_cursor", "next_path", "total_count")
 
 # Mapped item fields (JMESPath; ITEM_FIELDS and CANDIDATE_FIELDS come from json_fields).
 FIELD_KEYS: dict[str, Key] = {
@@ -227,9 +227,9 @@ def _validate_pagination(pag: Mapping[str, Any], path: str, problems: Problems) 
         problems.add(f"{path}.style", f"must be one of {', '.join(STYLES)}, got \"{style}\"{hint}")
         return
     for key in STYLE_REQUIRED.get(style, ()):
-        if key not in pag:
+        if key not in pag and PAGINATION_KEYS[key].formerly not in pag:  # old name: reported
             problems.add(f"{path}.{key}", f'required when style = "{style}"')
-    general = ("style", "total_path", "max_pages")
+    general = ("style", "total_count", "max_pages")
     for key in pag:
         if key in PAGINATION_KEYS and key not in general and key not in STYLE_KEYS[style]:
             users = [s for s, keys in STYLE_KEYS.items() if key in keys]
@@ -291,9 +291,9 @@ class Config:
             listing=listing,
             items=jmespath.compile(fields["items"]),
             id=jmespath.compile(fields["id"]),
-            cursor=_compile(pag.get("cursor_path")),
+            cursor=_compile(pag.get("next_cursor")),
             next=_compile(pag.get("next_path")),
-            total=_compile(pag.get("total_path")),
+            total=_compile(pag.get("total_count")),
         )
         if isinstance(detail, Mapping):
             cfg.detail_url = str(detail["url"])
@@ -413,9 +413,9 @@ class _Walker:
         if cfg.style == "page":
             params[pag.get("param", "page")] = str(pos.page_no)
         elif cfg.style == "offset":
-            params[pag.get("offset_param", "offset")] = str(pos.offset)
+            params[pag.get("send_offset_as", "offset")] = str(pos.offset)
             if "limit" in pag:
-                params[pag.get("limit_param", "limit")] = str(pag["limit"])
+                params[pag.get("send_limit_as", "limit")] = str(pag["limit"])
         request = merge_query(pos.url, params)
         if request in pos.seen_requests:
             self.notes.add("loop", self._red(request),
@@ -468,7 +468,7 @@ class _Walker:
                                f'the cursor "{cursor:.40}" was already used; stopped here')
                 return False
             pos.seen_cursors.add(cursor)
-            pos.params[cfg.pag["cursor_param"]] = cursor
+            pos.params[cfg.pag["send_cursor_as"]] = cursor
         elif cfg.style in ("next_url", "link_header"):
             if cfg.style == "next_url":
                 nxt = as_text(cfg.next.search(body)) if cfg.next else None

@@ -290,7 +290,7 @@ def test_recipes_render_to_toml_with_port_scans_and_loopback_only(tmp_path: Path
         assert data["contact"].endswith("example.org")  # RFC 2606 reserved domain
         assert data["sources"], name
         for source in data["sources"]:
-            for url in [source.get("url"), *source.get("start_urls", [])]:
+            for url in [source.get("url"), *source.get("listing_pages", [])]:
                 if url:
                     parts = urlsplit(url)
                     assert parts.hostname in data["network"]["allow_addresses"]

@@ -42,7 +42,7 @@ KNOWN = {
     "stop": ["until", "duration", "max_items"],
 }
 SOURCE_KEYS = ["name", "kind", "url", "params", "secret_params", "pagination", "fields",
-               "start_urls", "select", "detail", "path", "include", "split", "max_pages"]
+               "listing_pages", "select", "detail", "path", "include", "split", "max_pages"]
 
 
 def toml_dump(doc: Mapping[str, Any]) -> str:
@@ -169,7 +169,7 @@ JSON_SOURCE = {
     "detail": {"url": "http://127.0.0.1:9/api/{id}", "fields": {"image_url": "image"}},
 }
 HTML_SOURCE = {
-    "name": "fuzz", "kind": "html", "start_urls": ["http://127.0.0.1:9/list"], "max_pages": 3,
+    "name": "fuzz", "kind": "html", "listing_pages": ["http://127.0.0.1:9/list"], "max_pages": 3,
     "select": {"item": "li, div.tile", "image": "img", "title": ".t", "licence": ".l",
                "next": "a[rel=next]"},
     "detail": {"image": "img.full", "title": "h1"},

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import json
+import re
 import signal
 import sqlite3
 import subprocess
@@ -38,8 +39,31 @@ def test_dry_run_requests_nothing_and_explains_the_estimate(
     assert "dry run: nothing is requested." in result.output
     assert "api-pages (json_api)" in result.output
     assert "not listed yet: api-pages, api-objects, api-linked, gallery" in result.output
-    assert "20,000 images at one request every 3 s take about 17 h" in result.output
+    # The example uses the recipe's own pace: the demo recipe's requests_per_hour = 20000
+    # allows one request every 3600 / 20000 = 0.18 s; 20,000 x 0.18 s = 3,600 s.
+    assert "20,000 images at one request every 0.18 s take about 60 min" in result.output
+    # The demo recipe's [stop] duration = "10m" is the stop the run would have.
+    assert re.search(r"^stop: at \d{4}-\d\d-\d\d \d\d:\d\d local time, in 10 min$",
+                     result.output, re.MULTILINE)
     assert fresh_demo_server.log == []
+
+
+@pytest.mark.parametrize("dry", [["--dry-run"], []])
+def test_unreadable_stop_options_are_refused_before_anything_starts(
+        demo_folder: Path, fresh_demo_server: DemoServer, dry: list[str]) -> None:
+    """--until 25:00, --for 8 and --max-items -1 are all named at once, exit 2, for a dry
+    run and a real one alike; no run is recorded and nothing is requested."""
+    result = runner.invoke(app, ["gather", str(demo_folder), "--until", "25:00", "--for", "8",
+                                 "--max-items", "-1", *dry])
+    assert result.exit_code == 2
+    assert result.stderr.startswith("Error: the command line has 3 problems:")
+    assert '--until: must be a local time like "07:00" (24-hour HH:MM), got \'25:00\'' \
+        in result.stderr
+    assert '"8h" for hours' in result.stderr
+    assert "--max-items: must be 0 (no limit) or more, got -1" in result.stderr
+    assert fresh_demo_server.log == []
+    with sqlite3.connect(demo_folder / "ledger.sqlite") as db:
+        assert db.execute("SELECT count(*) FROM runs").fetchone()[0] == 0
 
 
 def test_dry_run_after_a_partial_run_estimates_the_remaining_images(
@@ -73,7 +97,7 @@ def test_status_reports_politeness_per_host(demo_folder: Path) -> None:
     runner.invoke(app, ["gather", str(demo_folder), "--max-items", "3", "--quiet"])
     result = runner.invoke(app, ["status", str(demo_folder)])
     assert result.exit_code == 0
-    assert "politeness per host:" in result.output
+    assert "politeness per host (requests sent; failed:" in result.output
     assert "x 429" in result.output and "waited" in result.output
     assert "1 run taking" in result.output
     as_json = json.loads(runner.invoke(app, ["status", str(demo_folder), "--json"]).output)
@@ -122,7 +146,7 @@ params = {{ per_page = "20" }}
 style = "page"
 param = "page"
 start = 1
-total_path = "meta.total"
+total_count = "meta.total"
 max_pages = 2
 [sources.fields]
 items = "results"

@@ -18,6 +18,7 @@ import pytest
 from collector import __version__
 from collector.demo_site import DemoServer
 from collector.demo_site.recipes import render
+from collector.exports.summary import format_summary, summarise
 from collector.run.gather import gather
 from collector.storage.collection import Collection, init_collection
 
@@ -169,6 +170,28 @@ def test_no_image_was_requested_twice(demo_run) -> None:
     images = Counter(r.path for r in log if r.status == 200 and "/api/" not in r.path
                      and not r.path.endswith(("/", ".html", "robots.txt")))
     assert [p for p, n in images.items() if n > 1] == []
+
+
+def test_status_numbers_add_up_and_match_the_server_log(demo_run, demo_server) -> None:
+    """`collector status` counts per host exactly the requests the server logged (the server's
+    own record, not the client's); a host never shows more failures than requests; files add
+    up to stored items plus near duplicates kept, and to downloaded plus read locally."""
+    col, log, _ = demo_run
+    with col.ledger(readonly=True) as ledger:
+        s = summarise(ledger)
+    served = Counter(f"127.0.0.{r.host_index}:{demo_server.port}" for r in log)
+    assert {h.host: h.requests for h in s.hosts} == dict(served)
+    assert s.requests == len(log)
+    assert all(h.errors <= h.requests for h in s.hosts)
+    mirror = next(h for h in s.hosts if h.host.startswith("127.0.0.3:"))
+    assert (mirror.requests, mirror.errors) == (1, 1)  # its robots.txt, answered 503
+    assert mirror.held_back == sum(1 for i in demo_server.manifest["items"]
+                                   if i["reason"] == "robots_unreachable")
+    near = sum(o.files for o in s.origins if o.near_kept)
+    assert s.files == s.states["stored"] + near == sum(o.files for o in s.origins)
+    assert s.file_bytes == sum(o.bytes for o in s.origins)
+    text = "\n".join(format_summary(s))
+    assert f"{near} near duplicates kept" in text and "crops cut from scans" in text
 
 
 def test_rerun_requests_no_image_again(demo_run, demo_server) -> None:

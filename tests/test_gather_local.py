@@ -171,8 +171,8 @@ def test_gather_refuses_a_recipe_whose_environment_variable_is_unset(
         '[sources.fields]\nitems = "items"\nid = "id"\nimage_url = "image"\n'))
     result = CliRunner().invoke(app, ["gather", str(col.root)])
     assert result.exit_code == 2
-    assert ("sources[0].params.key: uses ${FERN_ARCHIVE_KEY}, but the environment variable "
-            "FERN_ARCHIVE_KEY is not set") in result.stderr
+    assert ('sources[1] ("api").params.key: uses ${FERN_ARCHIVE_KEY}, but the environment '
+            "variable FERN_ARCHIVE_KEY is not set") in result.stderr
     with col.ledger(readonly=True) as ledger:
         assert ledger.scalar("SELECT count(*) FROM runs") == 0
 

@@ -102,8 +102,8 @@ def test_items_left_out_by_a_condition_cause_no_image_request(
 
 
 @pytest.mark.parametrize(("source_if", "items_if", "where", "says"), [
-    ("year_to <", "", "sources[0].keep_if", "not a JMESPath expression"),
-    ("shout(title)", "", "sources[0].keep_if", "Unknown function"),
+    ("year_to <", "", 'sources[1] ("s").keep_if', "not a JMESPath expression"),
+    ("shout(title)", "", 'sources[1] ("s").keep_if', "Unknown function"),
     ("", "contains(title)", "items.keep_if", "cannot be evaluated"),
 ])
 def test_a_condition_that_cannot_work_is_named(source_if: str, items_if: str, where: str,

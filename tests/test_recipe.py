@@ -84,13 +84,13 @@ MALFORMED = [
     ("sources not an array", GOOD + '[sources]\nname = "x"\n',
      "recipe.toml: sources: must be an array of tables written as [[sources]]"),
     ("source without name", GOOD + '[[sources]]\nkind = "html"\n',
-     "recipe.toml: sources[0].name: is required"),
+     "recipe.toml: sources[1].name: is required"),
     ("source kind unknown", GOOD + '[[sources]]\nname = "a"\nkind = "jsonapi"\n',
-     "recipe.toml: sources[0].kind: must be one of 'html', 'json_api', 'scans', got 'jsonapi'"
-     " (did you mean 'json_api'?)"),
+     "recipe.toml: sources[1] (\"a\").kind: must be one of 'html', 'json_api', 'scans', got "
+     "'jsonapi' (did you mean 'json_api'?)"),
     ("duplicate source names", GOOD + '[[sources]]\nname = "a"\nkind = "scans"\npath = "s"\n'
      '[[sources]]\nname = "a"\nkind = "scans"\npath = "s"\n',
-     "recipe.toml: sources[1].name: 'a' is used by an earlier source"),
+     "recipe.toml: sources[2] (\"a\").name: 'a' is used by an earlier source"),
 ]
 
 
@@ -188,7 +188,7 @@ def test_header_values_with_cr_lf_or_nul_are_refused(value: str) -> None:
                       'url = "https://api.example.org/x"\n'
                       f'headers = {{ X-Api-Key = "{value}" }}\n'
                       '[sources.fields]\nitems = "items"\nid = "id"\nimage_url = "img"\n')
-    assert any("sources[0].headers.X-Api-Key" in p and "RFC 9110" in p for p in src), src
+    assert any('sources[1] ("a").headers.X-Api-Key' in p and "RFC 9110" in p for p in src), src
 
 
 def test_contact_with_a_line_break_is_refused() -> None:

@@ -135,7 +135,7 @@ def test_a_plugin_kind_with_a_built_in_name_is_refused_clearly(tmp_path: Path) -
             print(json.dumps({"error": str(exc)}))
     """, plugin, cwd=tmp_path)
     assert out["error"] is not None
-    assert "sources[0].kind: source kind 'scans' is built into collector" in out["error"]
+    assert 'sources[1] ("s").kind: source kind \'scans\' is built into collector' in out["error"]
     assert "package 'toy-kind' (entry point scans = toy_kind:KIND" in out["error"]
 
 
@@ -161,7 +161,7 @@ def test_a_plugin_that_fails_to_import_is_named_only_when_used(tmp_path: Path) -
     """, plugin, cwd=tmp_path)
     assert out["scans"] is None
     error = out["brokenkind"]
-    assert "sources[0].kind: source kind 'brokenkind' could not be loaded" in error
+    assert 'sources[1] ("s").kind: source kind \'brokenkind\' could not be loaded' in error
     assert "package 'toy-kind' (entry point brokenkind = no_such_module:KIND" in error
     assert "ModuleNotFoundError" in error and "Traceback" not in error
 

@@ -56,7 +56,7 @@ def gallery() -> Iterator[LoopbackServer]:
 def recipe(base: str, **extra: object) -> dict[str, object]:
     """The gallery recipe."""
     table: dict[str, object] = {
-        "name": "gallery", "kind": "html", "start_urls": [f"{base}/gallery/"],
+        "name": "gallery", "kind": "html", "listing_pages": [f"{base}/gallery/"],
         "select": {"item": "li.tile", "link": "a", "image": "img", "title": ".caption",
                    "creator": ".by", "next": "a[rel=next]"},
     }
@@ -105,7 +105,7 @@ def test_selector_matching_nothing_is_reported_once_per_run(gallery: LoopbackSer
 def test_page_without_expected_items_gives_note_and_stops() -> None:
     """An HTML page without any item blocks yields nothing and a selector_empty note."""
     fetcher = FakeFetcher({"http://127.0.0.1:9/g": html_answer("<html><body><p>Closed")})
-    cands, notes = collect({"name": "g", "kind": "html", "start_urls": ["http://127.0.0.1:9/g"],
+    cands, notes = collect({"name": "g", "kind": "html", "listing_pages": ["http://127.0.0.1:9/g"],
                             "select": {"item": "div.card"}}, fetcher)
     assert cands == []
     assert [n.kind for n in notes] == ["selector_empty"]
@@ -127,7 +127,7 @@ def test_detail_pages_override_listing_values(gallery: LoopbackServer) -> None:
                       html_answer(DETAIL.replace("{n}", str(n))))
     fetcher = FakeFetcher()
     table = recipe(gallery.base, detail={"image": "figure img.full", "title": "h1"},
-                   start_urls=[f"{gallery.base}/gallery/"], max_pages=1)
+                   listing_pages=[f"{gallery.base}/gallery/"], max_pages=1)
     cands, notes = collect(table, fetcher)
     assert [c.image_url for c in cands] == [f"{gallery.base}/f/{n}-4000.jpg" for n in (1, 2, 3)]
     assert cands[0].title == "Lady fern, frond"
@@ -151,7 +151,7 @@ def test_missing_detail_pages_give_one_fetch_failed_note(gallery: LoopbackServer
 def test_missing_listing_page_raises_for_the_orchestrator(gallery: LoopbackServer) -> None:
     """A 404 start page is raised on as FetchError http_404 for the orchestrator to record."""
     with pytest.raises(FetchError) as err:
-        collect(recipe(gallery.base, start_urls=[f"{gallery.base}/gone/"]), FakeFetcher())
+        collect(recipe(gallery.base, listing_pages=[f"{gallery.base}/gone/"]), FakeFetcher())
     assert err.value.reason == "http_404" and err.value.status == 404
 
 
@@ -187,7 +187,7 @@ def test_licence_selector_text_wins_over_rel_license_text(gallery: LoopbackServe
     gallery.route("/lic", html_answer(
         '<div class=t><img src=a.jpg><span class=lic>Attribution 4.0</span>'
         f'<a rel=license href="{CC_BY}">see licence</a></div>'))
-    table = {"name": "l", "kind": "html", "start_urls": [f"{gallery.base}/lic"],
+    table = {"name": "l", "kind": "html", "listing_pages": [f"{gallery.base}/lic"],
              "select": {"item": "div.t", "licence": ".lic"}}
     cands, notes = collect(table, FakeFetcher())
     assert notes == []

@@ -57,8 +57,8 @@ def recipe_a(base: str) -> dict[str, Any]:
     return {
         "name": "api-a", "kind": "json_api", "url": f"{base}/api/a/records",
         "params": {"key": "${FERN_TEST_KEY}"}, "secret_params": ["key"],
-        "pagination": {"style": "cursor", "cursor_path": "meta.next_cursor",
-                       "cursor_param": "after"},
+        "pagination": {"style": "cursor", "next_cursor": "meta.next_cursor",
+                       "send_cursor_as": "after"},
         "fields": {"items": "data.records", "id": "uid", "title": "caption.en",
                    "creator": "people[].name", "licence": "rights.licence",
                    "licence_url": "rights.url", "image_candidates": "media",
@@ -115,7 +115,7 @@ def test_page_numbers_stop_on_total_and_fetch_details_only_when_missing(
     recipe = {
         "name": "api-b", "kind": "json_api", "url": f"{srv.base}/api/b/list/items",
         "params": {"per_page": "4"},
-        "pagination": {"style": "page", "param": "page", "start": 1, "total_path": "total"},
+        "pagination": {"style": "page", "param": "page", "start": 1, "total_count": "total"},
         "fields": {"items": "results", "id": "id", "title": "name", "licence": "lic",
                    "image_url": "img"},
         "detail": {"url": f"{srv.base}/api/b/item/{{id}}",
@@ -222,8 +222,8 @@ def test_repeating_cursor_is_a_loop_and_stops(srv: LoopbackServer) -> None:
         n, nxt = {"": (0, "a"), "a": (1, "b"), "b": (2, "a")}[q.get("c", "")]
         return json_answer({"items": [{"id": n, "u": f"/{n}.jpg"}], "next": nxt})
     srv.route("/cur", on_query(api))
-    cands, notes = collect(simple_recipe(f"{srv.base}/cur", style="cursor", cursor_path="next",
-                                         cursor_param="c"), FakeFetcher())
+    cands, notes = collect(simple_recipe(f"{srv.base}/cur", style="cursor", next_cursor="next",
+                                         send_cursor_as="c"), FakeFetcher())
     assert [c.source_key for c in cands] == ["0", "1", "2"]
     assert [n.kind for n in notes] == ["loop"]
     assert '"a"' in notes[0].message
@@ -254,8 +254,8 @@ def test_max_pages_is_enforced_on_endless_pagination(srv: LoopbackServer) -> Non
     """An API that always has a new cursor is read for max_pages pages only, with a note."""
     srv.route("/endless", on_query(lambda q: json_answer(
         {"items": [{"id": q.get("c", "0"), "u": "x"}], "next": str(int(q.get("c", "0")) + 1)})))
-    recipe = simple_recipe(f"{srv.base}/endless", style="cursor", cursor_path="next",
-                           cursor_param="c", max_pages=5)
+    recipe = simple_recipe(f"{srv.base}/endless", style="cursor", next_cursor="next",
+                           send_cursor_as="c", max_pages=5)
     cands, notes = collect(recipe, FakeFetcher())
     assert len(cands) == 5 and len(srv.targets()) == 5
     assert [n.kind for n in notes] == ["max_pages"]
@@ -305,7 +305,7 @@ def test_offset_pagination_advances_by_items_received() -> None:
         f"{base}?offset=3&limit=2": json_answer({"items": []}),
     }
     fetcher = FakeFetcher(pages)
-    recipe = simple_recipe(base, style="offset", offset_param="offset", limit_param="limit",
+    recipe = simple_recipe(base, style="offset", send_offset_as="offset", send_limit_as="limit",
                            limit=2)
     cands, notes = collect(recipe, fetcher)
     assert [c.source_key for c in cands] == ["1", "2", "3"] and notes == []

@@ -16,7 +16,7 @@ def json_source(**over: Any) -> dict[str, Any]:
     table: dict[str, Any] = {
         "name": "api", "kind": "json_api", "url": "https://archive.example.org/api/items",
         "params": {"per_page": "20", "key": "${FERN_KEY}"}, "secret_params": ["key"],
-        "pagination": {"style": "page", "param": "page", "start": 1, "total_path": "meta.total"},
+        "pagination": {"style": "page", "param": "page", "start": 1, "total_count": "meta.total"},
         "fields": {"items": "results", "id": "id", "image_url": "image.full"},
     }
     table.update(over)
@@ -26,7 +26,7 @@ def json_source(**over: Any) -> dict[str, Any]:
 def html_source(**over: Any) -> dict[str, Any]:
     """A valid html table, with overrides."""
     table: dict[str, Any] = {
-        "name": "gallery", "kind": "html", "start_urls": ["https://archive.example.org/g/"],
+        "name": "gallery", "kind": "html", "listing_pages": ["https://archive.example.org/g/"],
         "select": {"item": "li.tile", "image": "img", "next": "a[rel=next]"},
     }
     table.update(over)
@@ -59,11 +59,44 @@ def test_unknown_key_suggests_the_close_one() -> None:
     assert "did you mean 'pagination'" in got["sources[1].paginaton"]
 
 
-def test_cursor_style_needs_cursor_path_and_param() -> None:
-    """style = "cursor" without cursor_path/cursor_param names both missing keys."""
+def test_cursor_style_needs_next_cursor_and_param() -> None:
+    """style = "cursor" without next_cursor/send_cursor_as names both missing keys."""
     got = problems(json_source(pagination={"style": "cursor"}))
-    assert set(got) == {"sources[1].pagination.cursor_path", "sources[1].pagination.cursor_param"}
-    assert 'style = "cursor"' in got["sources[1].pagination.cursor_path"]
+    assert set(got) == {"sources[1].pagination.next_cursor",
+                        "sources[1].pagination.send_cursor_as"}
+    assert 'style = "cursor"' in got["sources[1].pagination.next_cursor"]
+
+
+# Keys renamed to names of our own: an old name is an error naming the new one, never an alias.
+RENAMED = [
+    (html_source, "listing_pages", "start_urls", None, ["https://archive.example.org/g/"]),
+    (json_source, "next_cursor", "cursor_path", "cursor", "paging.next"),
+    (json_source, "send_cursor_as", "cursor_param", "cursor", "cursor"),
+    (json_source, "send_offset_as", "offset_param", "offset", "offset"),
+    (json_source, "send_limit_as", "limit_param", "offset", "limit"),
+    (json_source, "total_count", "total_path", "page", "meta.total"),
+]
+
+
+@pytest.mark.parametrize(("make", "new", "old", "style", "value"), RENAMED)
+def test_old_key_names_are_refused_with_the_new_name(make: Any, new: str, old: str,
+                                                     style: str | None, value: Any) -> None:
+    """A recipe still using an old key gets exactly one problem there, naming the new key."""
+    if style is None:  # a top-level key of the source table
+        table = make()
+        table[old] = table.pop(new)
+        where = f"sources[1].{old}"
+    else:
+        pagination = {"style": style, "next_cursor": "n", "send_cursor_as": "c"} \
+            if style == "cursor" else {"style": style}
+        pagination.pop(new, None)
+        pagination[old] = value
+        table = make(pagination=pagination)
+        where = f"sources[1].pagination.{old}"
+    got = problems(table)
+    assert list(got) == [where]  # no "required key is missing" for the new name as well
+    assert got[where] == f"is the old name of {new}: rename the key to {new} " \
+        "(the value stays the same)"
 
 
 def test_unknown_pagination_style_is_rejected_with_suggestion() -> None:
@@ -99,9 +132,9 @@ def test_wrong_types_are_reported() -> None:
 
 
 def test_key_of_another_style_is_flagged() -> None:
-    """cursor_param under style = "page" is pointed out as unused."""
-    got = problems(json_source(pagination={"style": "page", "cursor_param": "c"}))
-    assert "only with cursor" in got["sources[1].pagination.cursor_param"]
+    """send_cursor_as under style = "page" is pointed out as unused."""
+    got = problems(json_source(pagination={"style": "page", "send_cursor_as": "c"}))
+    assert "only with cursor" in got["sources[1].pagination.send_cursor_as"]
 
 
 def test_bad_pick_and_detail_template_placeholder() -> None:
@@ -128,12 +161,12 @@ def test_html_requires_item_selector_and_valid_css() -> None:
     assert "not a valid CSS selector" in got["sources[1].select.image"]
 
 
-def test_html_start_urls_must_be_a_list_of_http_urls() -> None:
-    """A bare string for start_urls and a non-http entry are both reported."""
-    assert "must be a list" in problems(html_source(start_urls="https://x.example/"))[
-        "sources[1].start_urls"]
-    got = problems(html_source(start_urls=["file:///etc/passwd"]))
-    assert "http" in got["sources[1].start_urls[0]"]
+def test_html_listing_pages_must_be_a_list_of_http_urls() -> None:
+    """A bare string for listing_pages and a non-http entry are both reported."""
+    assert "must be a list" in problems(html_source(listing_pages="https://x.example/"))[
+        "sources[1].listing_pages"]
+    got = problems(html_source(listing_pages=["file:///etc/passwd"]))
+    assert "http" in got["sources[1].listing_pages[0]"]
 
 
 def test_scans_split_keys_and_values_are_checked() -> None:

@@ -7,8 +7,9 @@ from pathlib import Path
 
 import pytest
 
-from collector.config.recipe import parse_recipe
+from collector.config.recipe import StopOptionsError, parse_recipe
 from collector.errors import RecipeError
+from collector.exports.summary import Estimate, format_estimate
 from collector.run.scheduling import RunResult, stop_rules
 
 RECIPE = parse_recipe('contact = "me@example.org"\n[stop]\nmax_items = 7\n', Path("r.toml"))
@@ -47,6 +48,38 @@ def test_unreadable_until_is_a_clear_error() -> None:
     """A bad --until value is reported as a usage problem (exit 2)."""
     with pytest.raises(RecipeError, match="HH:MM"):
         stop_rules(RECIPE, until="seven")
+
+
+@pytest.mark.parametrize(("until", "duration"), [("25:00", None), ("07:60", None),
+                                                 (None, "8"), (None, "0h")])
+def test_out_of_range_clock_and_unitless_duration_are_refused(until: str | None,
+                                                              duration: str | None) -> None:
+    """A clock has hours 0-23 and minutes 0-59 (24-hour local time as in ISO 8601, from
+    memory; "24:00" is not accepted) and a duration needs a unit: each is a StopOptionsError
+    naming the option, never a raw library message."""
+    with pytest.raises(StopOptionsError) as caught:
+        stop_rules(RECIPE, until=until, duration=duration)
+    text = str(caught.value)
+    assert text.startswith("the command line has 1 problem:")
+    assert ("--until" if until else "--for") in text
+    assert "must be in" not in text  # datetime.time's own wording stays out
+
+
+def test_dry_run_says_when_the_run_stops_and_what_fits() -> None:
+    """The estimate names the stop time and counts the listed images that fit before it:
+    each host in parallel, its interval times its connections."""
+    est = Estimate(per_host={"a.example": 100, "b.example": 10},
+                   interval={"a.example": 3.0, "b.example": 3.0}, seconds=300,
+                   unknown_sources=[], connections={"a.example": 1, "b.example": 1})
+    now = datetime(2026, 12, 1, 22, 0, tzinfo=TZ).timestamp()
+    lines = format_estimate(RECIPE, est, deadline=now + 60, now=now)
+    # 60 s at one request every 3 s: 20 from a.example (of 100), all 10 from b.example.
+    assert lines[-1].endswith("in 60 s; about 30 of the 110 images already listed fit before "
+                              "then (the next run resumes with the rest)")
+    assert "all 110 images" in format_estimate(RECIPE, est, deadline=now + 3600, now=now)[-1]
+    assert format_estimate(RECIPE, est, max_items=5, now=now)[-1] == \
+        "stop: after 5 newly stored items"
+    assert format_estimate(RECIPE, est, now=now)[-1].startswith("stop: none set")
 
 
 @pytest.mark.parametrize(("outcome", "code"), [

@@ -16,6 +16,7 @@ check, plus one header parse and a draft (1/8 scale) decode for the hash.
 from __future__ import annotations
 
 import io
+import re
 import struct
 import warnings
 from dataclasses import dataclass, field
@@ -207,7 +208,7 @@ def _hash(im: Image.Image, orientation: int, path: Path) -> tuple[int, int]:
     try:
         return phash_prepared(im, orientation)
     except _DECODE_ERRORS as exc:
-        raise ImageRejected("broken_image", f"{path.name}: decoding failed: {exc}") from exc
+        raise ImageRejected("broken_image", damage(exc)) from exc
 
 
 # --- the check ---------------------------------------------------------------------------------
@@ -223,18 +224,44 @@ def _open(path: Path, max_pixels: int) -> Image.Image:
             warnings.simplefilter("error", Image.DecompressionBombWarning)
             im = Image.open(path)
     except (Image.DecompressionBombError, Image.DecompressionBombWarning) as exc:
-        raise ImageRejected("decompression_bomb", f"{path.name}: {exc}") from exc
+        raise ImageRejected("decompression_bomb", _bomb_detail(exc, max_pixels)) from exc
     except _DECODE_ERRORS as exc:
-        raise ImageRejected("broken_image", f"{path.name}: Pillow cannot open it: {exc}") from exc
+        raise ImageRejected("broken_image", "its header cannot be read: " + damage(exc)) from exc
     w, h = im.size
     if w * h > max_pixels:
         im.close()
         raise ImageRejected(
             "decompression_bomb",
-            f"{path.name}: {w}x{h} = {w * h} pixels is over the limit of {max_pixels}; "
-            "raise [images] max_pixels if such images are expected",
+            f"{w:,} x {h:,} = {w * h:,} pixels, above max_pixels = {max_pixels:,} "
+            "(raise [images] max_pixels if such images are expected)",
         )
     return im
+
+
+# Pillow's bomb message names the pixel count (PIL.Image._decompression_bomb_check): "Image
+# size (900000000 pixels) exceeds limit of ... pixels, could be decompression bomb DOS attack."
+_BOMB_PIXELS = re.compile(r"\((\d+) pixels\)")
+
+
+def _bomb_detail(exc: Exception, max_pixels: int) -> str:
+    """A bomb refused by Pillow while opening, said with the recipe's own limit."""
+    found = _BOMB_PIXELS.search(str(exc))
+    pixels = int(found[1]) if found else None
+    if pixels is not None and pixels > max_pixels:
+        return f"{pixels:,} pixels, above max_pixels = {max_pixels:,}"
+    size = f"{pixels:,} pixels" if pixels is not None else "its pixel count"
+    return (f"{size}, more than the image library opens safely "
+            f"({Image.MAX_IMAGE_PIXELS or 0:,} pixels), whatever max_pixels = {max_pixels:,} says")
+
+
+def damage(exc: BaseException) -> str:
+    """What a decoder's complaint means, in words (the library's own text is not shown)."""
+    text = str(exc).lower()
+    if "truncated" in text or isinstance(exc, EOFError):
+        return "the file ends before the picture does (cut short in transfer?)"
+    if "crc" in text or "checksum" in text:
+        return "a block of the file fails its checksum (CRC): the bytes were damaged"
+    return "the picture data is damaged and cannot be decoded"
 
 
 def _verify_png(path: Path, max_pixels: int) -> None:
@@ -245,7 +272,8 @@ def _verify_png(path: Path, max_pixels: int) -> None:
     except ImageRejected:
         raise
     except _DECODE_ERRORS as exc:
-        raise ImageRejected("broken_image", f"{path.name}: PNG check failed: {exc}") from exc
+        raise ImageRejected("broken_image", "the PNG structure check fails: " + damage(exc)) \
+            from exc
 
 
 def _decode_all(im: Image.Image, path: Path) -> None:
@@ -255,7 +283,7 @@ def _decode_all(im: Image.Image, path: Path) -> None:
     try:
         im.load()
     except _DECODE_ERRORS as exc:
-        raise ImageRejected("broken_image", f"{path.name}: decoding failed: {exc}") from exc
+        raise ImageRejected("broken_image", damage(exc)) from exc
 
 
 @dataclass
@@ -289,7 +317,7 @@ def _identify(path: Path) -> tuple[bytes, str]:
         head = fh.read(64)
     fmt = sniff_format(head)
     if fmt is None:
-        raise ImageRejected("not_an_image", f"{path.name}: {_describe_non_image(head)}")
+        raise ImageRejected("not_an_image", _describe_non_image(head))
     return head, fmt
 
 
@@ -304,7 +332,7 @@ def _geometry(im: Image.Image, fmt: str, path: Path) -> _Geometry:
     """Check Pillow agrees on the format; size and orientation as stored and as displayed."""
     if im.format != fmt:
         raise ImageRejected(
-            "broken_image", f"{path.name}: signature says {fmt} but Pillow read {im.format}"
+            "broken_image", f"its signature says {fmt} but its contents read as {im.format}"
         )
     width, height = im.size
     orientation = _orientation(im)
@@ -322,14 +350,14 @@ def _check_shape(
     shortest = min(dw, dh)
     if min_side and shortest < min_side:
         raise ImageRejected(
-            "too_small", f"{path.name}: shortest side {shortest}px is under min_side {min_side}"
+            "too_small", f"shortest side {shortest:,} px, under min_side = {min_side:,}"
         )
     aspect = dw / dh if dh else 0.0
     if (min_aspect and aspect < min_aspect) or (max_aspect and aspect > max_aspect):
         raise ImageRejected(
             "bad_aspect",
-            f"{path.name}: width/height {aspect:.3f} is outside "
-            f"min_aspect {min_aspect or 'off'} .. max_aspect {max_aspect or 'off'}",
+            f"width / height = {aspect:.3f}, outside min_aspect = {min_aspect:g} .. "
+            f"max_aspect = {max_aspect:g} (0 is no limit)",
         )
 
 

@@ -286,6 +286,19 @@ def licence_allowed(
     return False, "licence_not_allowed"
 
 
+def licence_detail(raw: str | None, url: str | None, spdx_id: str | None) -> str:
+    """Why an item's licence kept it out, in words: "no licence given", "licence 'All rights
+    reserved' could not be recognised", "licence 'CC BY-NC 4.0' is CC-BY-NC-4.0, not in the
+    allowlist" (the allowlist is recipe.toml's [licences] allow)."""
+    given = raw or url
+    if not given:
+        return "no licence given (neither a licence text nor a licence URL)"
+    if spdx_id:
+        return f"licence {given!r} is {spdx_id}, not in the allowlist ([licences] allow)"
+    return (f"licence {given!r} could not be recognised; add its SPDX id to [licences] allow "
+            "or set allow_unknown = true if you accept it")
+
+
 # --- conditions and deed URLs ------------------------------------------------------------------
 _PD_IDS = {"CC0-1.0", "CC-PDM-1.0", "CC-PDDC"}
 _CC_ID = re.compile(

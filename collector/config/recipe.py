@@ -2,7 +2,7 @@
 
 Every command that reads a recipe calls :func:`load_recipe`, which reports *all* problems at
 once in a :class:`~collector.errors.RecipeError`: each names the file, the key path
-(``sources[1].pagination.cursor_path``) and what is expected; unknown keys get a "did you mean".
+(``sources[1].pagination.next_cursor``) and what is expected; unknown keys get a "did you mean".
 The result is a :class:`Recipe` with every default filled in.
 """
 
@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import hashlib
 import ipaddress
+import json
 import os
 import re
 import tomllib
@@ -103,8 +104,29 @@ def _check_duration(value: Any) -> str | None:
     try:
         parse_duration(value)
     except ValueError:
-        return f"must be a duration like \"8h\", \"90m\" or \"1h30m\", got {value!r}"
+        unit = (f'; a number needs a unit: "{value}h" for hours, "{value}m" for minutes'
+                if str(value).strip().isdigit() else "")
+        return f"must be a duration like \"8h\", \"90m\" or \"1h30m\", got {value!r}{unit}"
     return None
+
+
+class StopOptionsError(RecipeError):
+    """--until, --for or --max-items cannot be read; all problems are listed at once."""
+
+    what = "the command line"
+
+
+def check_stop_options(until: str | None, duration: str | None, max_items: int | None) -> None:
+    """Refuse unreadable --until, --for and --max-items (all at once, worded like the recipe's
+    [stop] keys) before a run or a dry run starts: StopOptionsError, exit 2."""
+    found = [("--until", until, _check_clock), ("--for", duration, _check_duration)]
+    problems = [RecipeProblem(option, "", why) for option, value, check in found
+                if value is not None and (why := check(value))]
+    if max_items is not None and max_items < 0:
+        problems.append(RecipeProblem("--max-items", "",
+                                      f"must be 0 (no limit) or more, got {max_items}"))
+    if problems:
+        raise StopOptionsError(problems)
 
 
 def _check_addresses(values: Any) -> str | None:
@@ -129,20 +151,43 @@ def env_problems(recipe: Recipe, *, unset: bool = True) -> list[RecipeProblem]:
     ``unset`` is false), and for every header whose value, once its variables are filled in,
     holds CR, LF or NUL (a token read from a file with Windows line endings). The problem
     never shows the value."""
-    places: list[tuple[str, Any]] = [
-        (f"network.headers.{k}", v) for k, v in recipe.network.headers.items()]
-    for i, src in enumerate(recipe.sources):
+    data = {"network": {"headers": recipe.network.headers}, "sources": recipe.sources}
+    return _env_problems(data, str(recipe.path), unset=unset)
+
+
+def source_prefix(index: int, table: Any) -> str:
+    """How a problem names the ``index``-th (from 0) [[sources]] table: by position from 1,
+    and by name when it has one: ``sources[2] ("gallery")``."""
+    name = table.get("name") if isinstance(table, dict) else None
+    named = f" ({json.dumps(name, ensure_ascii=False)})" if isinstance(name, str) and \
+        name.strip() else ""
+    return f"sources[{index + 1}]{named}"
+
+
+def _env_places(data: Mapping[str, Any]) -> list[tuple[str, Any]]:
+    """(key path, value) of every params/headers value in parsed recipe data, checked or not."""
+    network = data.get("network")
+    headers = network.get("headers") if isinstance(network, dict) else None
+    places = [(f"network.headers.{k}", v) for k, v in headers.items()] \
+        if isinstance(headers, dict) else []
+    raw_sources = data.get("sources")
+    for i, src in enumerate(raw_sources if isinstance(raw_sources, list) else []):
         for table in ("params", "headers"):
-            places += [(f"sources[{i}].{table}.{k}", v)
-                       for k, v in (src.get(table) or {}).items()]
+            values = src.get(table) if isinstance(src, dict) else None
+            if isinstance(values, dict):
+                places += [(f"{source_prefix(i, src)}.{table}.{k}", v) for k, v in values.items()]
+    return places
+
+
+def _env_problems(data: Mapping[str, Any], file: str, *, unset: bool) -> list[RecipeProblem]:
     problems: list[RecipeProblem] = []
-    for path, text in places:
+    for path, text in _env_places(data):
         if not isinstance(text, str):
             continue
         names = env_names(text)
         missing = [name for name in names if name not in os.environ]
         if unset:
-            problems += [RecipeProblem(str(recipe.path), path,
+            problems += [RecipeProblem(file, path,
                                        f"uses ${{{name}}}, but the environment variable {name} "
                                        "is not set; set it before gathering")
                          for name in missing]
@@ -150,7 +195,7 @@ def env_problems(recipe: Recipe, *, unset: bool = True) -> list[RecipeProblem]:
             problem = header_value_problem(expand_env(text))
             if problem:
                 problems.append(RecipeProblem(
-                    str(recipe.path), path,
+                    file, path,
                     f"{problem} once ${{{names[0]}}} is filled in; remove the line ending "
                     "from the environment variable (was it read from a file with Windows "
                     "line endings?)"))
@@ -176,6 +221,8 @@ def parse_clock(value: str) -> time:
     if not match:
         raise ValueError(value)
     hour, minute = int(match[1]), int(match[2])
+    if hour > 23 or minute > 59:  # time() would say "hour must be in 0..23": ours is clearer
+        raise ValueError(value)
     return time(hour, minute)
 
 
@@ -416,7 +463,7 @@ def _check_sources(raw: Any, problems: Problems, *, by_kind: bool = True) -> lis
         return []
     seen: set[str] = set()
     for i, table in enumerate(raw):
-        prefix = f"sources[{i}]"
+        prefix = source_prefix(i, table)
         name = table.get("name")
         if not isinstance(name, str) or not name.strip():
             problems.add(f"{prefix}.name", "is required: a short unique name for this source")
@@ -497,6 +544,31 @@ def parse_recipe(text: str, path: Path, *, check_source_kinds: bool = True) -> R
 
 def load_recipe(path: Path, *, check_source_kinds: bool = True) -> Recipe:
     """Read and validate a recipe file (``check_source_kinds``: see :func:`parse_recipe`)."""
+    return parse_recipe(_read_recipe(path), path, check_source_kinds=check_source_kinds)
+
+
+def check_recipe(path: Path) -> Recipe:
+    """Everything ``collector check`` reports, in one round: the recipe's own problems and
+    those of its ``${NAME}`` references (unset variables, header values that break once
+    filled in), which a run would meet only later. RecipeError lists them all."""
+    text = _read_recipe(path)
+    try:
+        recipe: Recipe | None = parse_recipe(text, path)
+        problems: list[RecipeProblem] = []
+    except RecipeError as exc:
+        recipe, problems = None, list(exc.problems)
+    try:
+        data = tomllib.loads(text.removeprefix("\ufeff"))
+    except (tomllib.TOMLDecodeError, RecursionError):
+        data = {}  # already reported by parse_recipe
+    if _depth(data) <= MAX_DEPTH:
+        problems += _env_problems(data, str(path), unset=True)
+    if problems or recipe is None:
+        raise RecipeError(problems)
+    return recipe
+
+
+def _read_recipe(path: Path) -> str:
     try:
         text = path.read_text(encoding="utf-8")
     except FileNotFoundError as exc:
@@ -506,4 +578,4 @@ def load_recipe(path: Path, *, check_source_kinds: bool = True) -> Recipe:
         raise RecipeError([RecipeProblem(str(path), "", f"not UTF-8 text: {exc}")]) from exc
     except OSError as exc:
         raise RecipeError([RecipeProblem(str(path), "", f"cannot be read: {exc}")]) from exc
-    return parse_recipe(text, path, check_source_kinds=check_source_kinds)
+    return text

@@ -10,6 +10,7 @@ import json
 import math
 from collections import Counter
 from dataclasses import dataclass, field
+from datetime import datetime
 from typing import Any
 
 from collector import sources
@@ -31,8 +32,9 @@ class HostPoliteness:
     too_many: int  # 429 answers received
     unavailable: int  # 503 answers received
     waited_s: float
-    errors: int
+    errors: int  # requests sent that failed (an error status, no answer, a body refused)
     bytes: int
+    held_back: int = 0  # never sent: robots.txt, the address guard or a parked host refused
 
 
 @dataclass
@@ -53,6 +55,7 @@ class Summary:
     last_run: dict[str, Any] | None = None
     run_seconds: float = 0.0  # all runs together
     last_run_seconds: float | None = None
+    origins: list[queries.FileOrigin] = field(default_factory=list)
 
     @property
     def total_items(self) -> int:
@@ -64,13 +67,14 @@ def summarise(ledger: Ledger) -> Summary:
     t = queries.ledger_totals(ledger)
     s = Summary(files=t.files, file_bytes=t.file_bytes, fetched_bytes=t.fetched_bytes,
                 requests=t.requests, runs=t.runs, last_run=t.last_run,
-                run_seconds=t.run_seconds, last_run_seconds=t.last_run_seconds)
+                run_seconds=t.run_seconds, last_run_seconds=t.last_run_seconds,
+                origins=list(t.file_origins))
     for row in t.states:
         s.states[row.state] += row.n
         if row.reason:
             s.reasons[(row.state, row.reason)] += row.n
     s.hosts = [HostPoliteness(h.host or "?", h.requests, h.too_many, h.unavailable,
-                              h.waited_s, h.errors, h.bytes) for h in t.hosts]
+                              h.waited_s, h.errors, h.bytes, h.held_back) for h in t.hosts]
     s.licences.update(dict(t.licences))
     for flags in t.flag_lists:
         for flag in json.loads(flags):
@@ -86,6 +90,7 @@ def summary_as_dict(s: Summary) -> dict[str, Any]:
         "reasons": {f"{state}/{reason}": n for (state, reason), n in s.reasons.items()},
         "files": s.files, "file_bytes": s.file_bytes, "requests": s.requests,
         "fetched_bytes": s.fetched_bytes,
+        "file_origins": [o._asdict() for o in s.origins],
         "hosts": [vars(h) for h in s.hosts], "licences": dict(s.licences),
         "flags": dict(s.flags), "notes": dict(s.notes), "runs": s.runs,
         "run_seconds": round(s.run_seconds, 3), "last_run": s.last_run,
@@ -119,6 +124,7 @@ def format_summary(s: Summary) -> list[str]:
     lines = [f"{s.total_items} items, {s.files} files stored ({human_bytes(s.file_bytes)}), "
              f"{s.requests} requests ({human_bytes(s.fetched_bytes)} received), {runs} "
              f"taking {human_seconds(s.run_seconds)}"]
+    lines += files_lines(s)
     if s.last_run:
         lines.append(f"last run: #{s.last_run['id']} started {s.last_run['started_at']}, "
                      f"{human_seconds(s.last_run_seconds or 0)}, {s.last_run['outcome']}")
@@ -131,11 +137,13 @@ def format_summary(s: Summary) -> list[str]:
         lines.append("licences of stored items: " + ", ".join(
             f"{k} {v}" for k, v in s.licences.most_common()))
     if s.hosts:
-        lines.append("politeness per host:")
+        lines.append("politeness per host (requests sent; failed: sent but ended in an error; "
+                     "held back: not sent, refused first by robots.txt or a pause):")
         for h in s.hosts:
-            lines.append(f"  {h.host:<24} {h.requests:>5} requests, {h.too_many} x 429, "
-                         f"{h.unavailable} x 503, waited {human_seconds(h.waited_s)}, "
-                         f"{h.errors} errors")
+            lines.append(f"  {h.host:<24} {plural(h.requests, 'request'):>14}, "
+                         f"{h.too_many} x 429, {h.unavailable} x 503, waited "
+                         f"{human_seconds(h.waited_s)}, {h.errors} failed"
+                         + (f", {h.held_back} held back" if h.held_back else ""))
     if s.flags:
         lines.append("flags (review before publishing): " + ", ".join(
             f"{k} {v}" for k, v in s.flags.most_common()))
@@ -143,6 +151,36 @@ def format_summary(s: Summary) -> list[str]:
         lines.append("source notes: " + ", ".join(f"{k} {v}" for k, v in s.notes.items())
                      + "  (see the ledger's notes table)")
     return lines
+
+
+def plural(n: int, word: str) -> str:
+    """1 request, 2 requests."""
+    return f"{n:,} {word}" + ("" if n == 1 else "s")
+
+
+def files_lines(s: Summary) -> list[str]:
+    """Why the files stored differ from the items stored (near duplicates kept are files
+    too), and why bytes stored can exceed bytes received (scans and their crops are read from
+    a folder, not received)."""
+    if not s.files:
+        return []
+    files: Counter[str] = Counter()
+    size: Counter[str] = Counter()
+    for o in s.origins:
+        files[o.origin] += o.files
+        size[o.origin] += o.bytes
+    near = sum(o.files for o in s.origins if o.near_kept)
+    own = s.files - near - files["unknown"]
+    kinds = [f"{own:,} of stored items"] + (
+        [f"{near:,} near duplicates kept (near_duplicates = \"keep\")"] if near else []) + (
+        [f"{files['unknown']:,} recovered, provenance unknown"] if files["unknown"] else [])
+    where = [f"{files['downloaded']:,} downloaded ({human_bytes(size['downloaded'])})"]
+    local = files["local"] + files["crop"]
+    if local:
+        crops = f"; {files['crop']:,} of them crops cut from scans" if files["crop"] else ""
+        where.append(f"{local:,} read from local folders, so not received "
+                     f"({human_bytes(size['local'] + size['crop'])}{crops})")
+    return ["files: " + " + ".join(kinds) + "; " + ", ".join(where)]
 
 
 @dataclass
@@ -153,6 +191,14 @@ class Estimate:
     interval: dict[str, float]
     seconds: float
     unknown_sources: list[str]
+    connections: dict[str, int] = field(default_factory=dict)
+
+    def fits_within(self, seconds: float) -> int:
+        """How many of the listed images the hosts can serve in ``seconds`` (each host in
+        parallel, at its interval over its connections)."""
+        return sum(min(n, int(max(0.0, seconds) * self.connections.get(host, 1)
+                              // self.interval[host]))
+                   for host, n in self.per_host.items())
 
 
 def estimate(recipe: Recipe, ledger: Ledger) -> Estimate:
@@ -168,6 +214,7 @@ def estimate(recipe: Recipe, ledger: Ledger) -> Estimate:
     unknown = [s["name"] for s in recipe.sources
                if sources.get_kind(s["kind"]).uses_network and s["name"] not in listed]
     interval: dict[str, float] = {}
+    connections: dict[str, int] = {}
     seconds = 0.0
     for host, n in per_host.items():
         budget = recipe.budget_for(host)
@@ -176,31 +223,64 @@ def estimate(recipe: Recipe, ledger: Ledger) -> Estimate:
         step = max(float(budget.min_interval), 3600.0 / budget.requests_per_hour,
                    float(effective.get("effective_interval", 0) or 0))
         interval[host] = step
-        seconds = max(seconds, n * step / max(1, budget.max_connections))
-    return Estimate(dict(per_host), interval, math.ceil(seconds), unknown)
+        connections[host] = max(1, budget.max_connections)
+        seconds = max(seconds, n * step / connections[host])
+    return Estimate(dict(per_host), interval, math.ceil(seconds), unknown, connections)
 
 
-def format_estimate(recipe: Recipe, est: Estimate) -> list[str]:
-    """The dry-run report as plain text lines."""
+def default_interval(recipe: Recipe) -> float:
+    """Seconds between two requests to one host at the recipe's default budget."""
+    return max(float(recipe.budgets.min_interval), 3600.0 / recipe.budgets.requests_per_hour)
+
+
+def format_estimate(recipe: Recipe, est: Estimate, *, deadline: float | None = None,
+                    max_items: int = 0, now: float = 0.0) -> list[str]:
+    """The dry-run report as plain text lines; ``deadline`` (epoch seconds) and ``max_items``
+    are the stop rules a run would have, ``now`` the time they are measured from."""
     lines = ["dry run: nothing is requested.", "sources:"]
     for source in recipe.sources:
         lines.append(f"  {source['name']} ({source['kind']})")
     lines.append(f"budget defaults: one request every {recipe.budgets.min_interval:g} s at "
                  f"most, {recipe.budgets.requests_per_hour} per hour, "
-                 f"{recipe.budgets.max_connections} connection(s) per host; robots.txt "
+                 f"{plural(recipe.budgets.max_connections, 'connection')} per host; robots.txt "
                  "Crawl-delay can only slow this down")
     if est.per_host:
         lines.append("candidates waiting per host (from earlier listings):")
         for host, n in sorted(est.per_host.items()):
-            lines.append(f"  {host:<24} {n:>6} images, one every {est.interval[host]:g} s "
-                         f"-> {human_seconds(n * est.interval[host])}")
+            step = est.interval[host]
+            lines.append(f"  {host:<24} {plural(n, 'image'):>13}, one every {step:g} s "
+                         f"-> {human_seconds(n * step)}")
         lines.append(f"estimated time for the images already listed: "
                      f"{human_seconds(est.seconds)} (hosts are served in parallel)")
     if est.unknown_sources:
-        per_hour = 3600 / max(recipe.budgets.min_interval, 3600 /
-                              recipe.budgets.requests_per_hour)
+        step = default_interval(recipe)
         lines.append(f"not listed yet: {', '.join(est.unknown_sources)}. Their size is unknown "
                      f"until a run lists them; at these budgets one host gives at most "
-                     f"{per_hour:.0f} images per hour (20,000 images at one request every 3 s "
-                     f"take about 17 h).")
+                     f"{3600 / step:,.0f} images per hour (20,000 images at one request every "
+                     f"{step:g} s take about {human_seconds(20_000 * step)}).")
+    return lines + stop_lines(est, deadline=deadline, max_items=max_items, now=now)
+
+
+def stop_lines(est: Estimate, *, deadline: float | None, max_items: int,
+               now: float) -> list[str]:
+    """When a run with these stop rules would stop, and how much of the estimate fits."""
+    if deadline is None and not max_items:
+        return ["stop: none set; the run goes on until everything listed is done "
+                "(--until 07:00, --for 8h or --max-items N set a stop)"]
+    lines = []
+    if deadline is not None:
+        left = max(0.0, deadline - now)
+        at = datetime.fromtimestamp(deadline).astimezone().strftime("%Y-%m-%d %H:%M")
+        line = f"stop: at {at} local time, in {human_seconds(left)}"
+        total = sum(est.per_host.values())
+        if total:
+            fit = est.fits_within(left)
+            everything = ("; the one image already listed fits before then" if total == 1
+                          else f"; all {total:,} images already listed fit before then")
+            line += everything if fit >= total else (
+                f"; about {fit:,} of the {total:,} images already listed fit before then "
+                "(the next run resumes with the rest)")
+        lines.append(line)
+    if max_items:
+        lines.append(f"stop: after {max_items:,} newly stored items")
     return lines

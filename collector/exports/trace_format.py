@@ -22,6 +22,7 @@ if TYPE_CHECKING:  # trace.py imports this module at run time for attribution_li
 
 __all__ = [
     "CAUTION",
+    "CSV_COLUMNS",
     "PERSONAL_CAUTION",
     "TABLE_COLUMNS",
     "TraceSummary",
@@ -30,6 +31,7 @@ __all__ = [
     "format_summary",
     "format_table",
     "licence_label",
+    "licence_words",
     "recovered_words",
     "summarise",
     "table_row",
@@ -94,6 +96,16 @@ def attribution_line(item: ItemRecord | None, *, modified: bool = False,
     return ", ".join(parts)
 
 
+def licence_words(item: ItemRecord) -> str:
+    """What the source gave (its text, else its licence URL) -> the SPDX id it normalises to,
+    and the deed to read: never an arrow with nothing before it."""
+    given = repr(item.licence_raw) if item.licence_raw else item.licence_url
+    spdx = item.spdx_id or "no SPDX id (unknown licence)"
+    deed = item.deed_url or item.licence_url
+    link = f" {deed}" if deed and deed != given else ""
+    return f"{given} -> {spdx}{link}" if given else f"none given -> {spdx}"
+
+
 def recovered_words(record: FileRecord) -> str:
     """How a file registered by rebuild-ledger is described."""
     return f"stored, provenance unknown (recovered on {(record.stored_at or '?')[:10]})"
@@ -112,7 +124,8 @@ class TraceSummary:
 
     def line(self) -> str:
         """The one-line summary."""
-        return (f"{self.files} files: {self.exact} exact, {self.near} near, {self.untraced} "
+        files = f"{self.files} file" + ("" if self.files == 1 else "s")
+        return (f"{files}: {self.exact} exact, {self.near} near, {self.untraced} "
                 f"without known provenance, {self.outside_allowlist} with licences outside "
                 f"the allowlist, {self.personal_data} with personal-data flags")
 
@@ -145,13 +158,28 @@ def table_row(result: TraceResult) -> dict[str, Any]:
     }
 
 
+# The CSV adds what a reuse check needs beside the table: who made it, under which licence
+# (as written and as an SPDX id), and the credit line to paste.
+CSV_COLUMNS = (*TABLE_COLUMNS, "title", "creator", "licence", "attribution")
+
+
+def csv_table_row(result: TraceResult) -> dict[str, Any]:
+    """One CSV row: the table row plus title, creator, licence and attribution."""
+    item = result.item
+    return {**table_row(result),
+            "title": (item.title or "") if item else "",
+            "creator": (item.creator or "") if item else "",
+            "licence": (item.licence_raw or item.licence_url or "") if item else "",
+            "attribution": result.attribution or ""}
+
+
 def to_csv(results: Iterable[TraceResult]) -> str:
     """The table as CSV text (RFC 4180 quoting by the csv module)."""
     out = io.StringIO()
-    writer = csv.DictWriter(out, fieldnames=TABLE_COLUMNS, lineterminator="\n")
+    writer = csv.DictWriter(out, fieldnames=CSV_COLUMNS, lineterminator="\n")
     writer.writeheader()
     for r in results:
-        writer.writerow(csv_row(table_row(r)))  # OWASP CSV Injection: cells neutralised
+        writer.writerow(csv_row(csv_table_row(r)))  # OWASP CSV Injection: cells neutralised
     return out.getvalue()
 
 
@@ -189,11 +217,7 @@ def _item_lines(item: ItemRecord, indent: str = "  ") -> list[str]:
                          ("local file", item.local_path), ("date", item.date)):
         if value:
             lines.append(f"{indent}{label + ':':<13} {value}")
-    licence = " ".join(p for p in (
-        repr(item.licence_raw) if item.licence_raw else None,
-        f"-> {item.spdx_id}" if item.spdx_id else "-> no SPDX id (unknown licence)",
-        item.deed_url or item.licence_url) if p)
-    lines.append(f"{indent}licence:      {licence}")
+    lines.append(f"{indent}licence:      {licence_words(item)}")
     if item.fetch:
         f = item.fetch
         extra = ", ".join(p for p in (

@@ -118,8 +118,7 @@ def read_body(resp: requests.Response, *, shown: str, max_bytes: int, dest_dir: 
     """
     length = resp.headers.get("Content-Length")
     if not truncate and length and length.isdigit() and int(length) > max_bytes:
-        raise TooLarge(shown, max_bytes, f"Content-Length {int(length):,} is over the "
-                                         f"{max_bytes:,}-byte cap")
+        raise TooLarge(shown, max_bytes, f"Content-Length {int(length):,} bytes")
     deadline = clock.monotonic() + deadline_s
     digest = hashlib.sha256()
     size = 0
@@ -164,7 +163,7 @@ def _capped(chunk: bytes, size: int, max_bytes: int, shown: str, truncate: bool)
         return chunk
     if truncate:  # robots.txt: parse the first MAX bytes (RFC 9309 §2.5)
         return chunk[: max_bytes - size]
-    err = TooLarge(shown, max_bytes, f"more than {max_bytes:,} bytes after decoding")
+    err = TooLarge(shown, max_bytes, f"at least {size + len(chunk):,} bytes once decoded")
     err.size = size + len(chunk)  # type: ignore[attr-defined]
     raise err
 

@@ -25,7 +25,12 @@ from typing import Any, BinaryIO
 
 from collector.checks.conditions import compile_condition, item_view
 from collector.checks.images import ImageFacts, inspect_image
-from collector.checks.licences import licence_allowed, normalise_licence, rights_conflict
+from collector.checks.licences import (
+    licence_allowed,
+    licence_detail,
+    normalise_licence,
+    rights_conflict,
+)
 from collector.config.recipe import Recipe
 from collector.errors import ImageRejected, StoreError
 from collector.run import dedup
@@ -133,9 +138,7 @@ class Ingest:
         ok, reason = licence_allowed(spdx_id, self.recipe.licences.allow,
                                      self.recipe.licences.allow_unknown)
         if not ok:
-            detail = (f"licence {c.licence_raw or c.licence_url or '(none)'!r} "
-                      + (f"is {spdx_id}, not in the allowlist" if spdx_id
-                         else "could not be recognised"))
+            detail = licence_detail(c.licence_raw, c.licence_url, spdx_id)
             self.record.finish(item_id, "skipped", reason, detail)
             return None
         unmet = self._unmet_condition(source_id, c, spdx_id)

@@ -30,15 +30,13 @@ from typing import Any, Protocol
 
 from collector import __version__
 from collector import sources as adapters
-from collector.config.recipe import Recipe, parse_clock, parse_duration
+from collector.config.recipe import Recipe, check_stop_options, parse_clock, parse_duration
 from collector.errors import (
     CollectorError,
     FetchError,
     HostParked,
     InternalError,
     LedgerError,
-    RecipeError,
-    RecipeProblem,
     RobotsDenied,
     StoreError,
     TooLarge,
@@ -84,23 +82,20 @@ class StopRules:
 
 def stop_rules(recipe: Recipe, *, until: str | None = None, duration: str | None = None,
                max_items: int | None = None, now: datetime | None = None) -> StopRules:
-    """Combine the recipe's [stop] table with command-line options (options win)."""
+    """Combine the recipe's [stop] table with command-line options (options win). Unreadable
+    options raise StopOptionsError (the recipe's own values were checked when it loaded)."""
+    check_stop_options(until, duration, max_items)
     now = now or datetime.now().astimezone()
     deadlines: list[float] = []
     until = until if until is not None else recipe.stop.until
     duration = duration if duration is not None else recipe.stop.duration
-    try:
-        if until:
-            at = datetime.combine(now.date(), parse_clock(until), tzinfo=now.tzinfo)
-            if at <= now:
-                at += timedelta(days=1)  # "--until 07:00" in the evening means tomorrow
-            deadlines.append(at.timestamp())
-        if duration:
-            deadlines.append(now.timestamp() + parse_duration(duration))
-    except ValueError as exc:
-        raise RecipeError([RecipeProblem("command line", "--until/--for",
-                                         f"cannot read {exc.args[0]!r}: use HH:MM and e.g. 8h")]
-                          ) from exc
+    if until:
+        at = datetime.combine(now.date(), parse_clock(until), tzinfo=now.tzinfo)
+        if at <= now:
+            at += timedelta(days=1)  # "--until 07:00" in the evening means tomorrow
+        deadlines.append(at.timestamp())
+    if duration:
+        deadlines.append(now.timestamp() + parse_duration(duration))
     limit = max_items if max_items is not None else recipe.stop.max_items
     return StopRules(min(deadlines) if deadlines else None, int(limit or 0))
 
@@ -396,7 +391,7 @@ class Gatherer:
             self._fetch_and_ingest(job)
         except HostParked as exc:
             stats.parked = True
-            self.record.finish(job.item_id, "deferred", "host_parked", str(exc))
+            self.record.finish(job.item_id, "deferred", "host_parked", exc.item_detail())
         except (StoreError, LedgerError) as exc:
             self._fail(exc)
         except Exception as exc:  # a bug while handling this job: it fails, the run stops
@@ -411,19 +406,21 @@ class Gatherer:
                                              item_id=job.item_id,
                                              secret_params=job.secret_params)
         except RobotsDenied as exc:
-            self.record.finish(job.item_id, "blocked", exc.reason, str(exc))
+            self.record.finish(job.item_id, "blocked", exc.reason, exc.item_detail())
             return
         except HostParked:
             raise
         except UnsafeURL as exc:
-            self.record.finish(job.item_id, "failed", exc.reason, str(exc))
+            self.record.finish(job.item_id, "failed", exc.reason, exc.item_detail())
             return
         except TooLarge as exc:
-            self.record.finish(job.item_id, "rejected", "too_large", str(exc))
+            self.record.finish(job.item_id, "rejected", "too_large",
+                               f"{exc.size_text or 'the body'}, above network.max_image_bytes"
+                               f" = {exc.limit:,}: {exc.url}")
             return
         except FetchError as exc:
             self.hosts[host_key(job.url)].errors += 1
-            self.record.finish(job.item_id, "failed", exc.reason, str(exc))
+            self.record.finish(job.item_id, "failed", exc.reason, exc.item_detail())
             return
         if download.path is None or download.sha256 is None:
             raise RuntimeError(f"the fetcher returned no file for {job.url}")

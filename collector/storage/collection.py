@@ -245,6 +245,11 @@ def check_ledger(collection: Collection, ledger: Ledger, *, bind: bool = False) 
             collection.write_folder_id(value)
 
 
+def is_collection(root: Path) -> bool:
+    """Whether ``root`` has the two files every collection folder has (nothing is opened)."""
+    return (root / RECIPE_NAME).is_file() and (root / LEDGER_NAME).is_file()
+
+
 def open_collection(root: Path) -> Collection:
     """The collection at ``root``, after checking that it is one and that its ledger can
     describe its store (:func:`check_ledger`; LedgerUnusable/CollectionError, exit 2)."""

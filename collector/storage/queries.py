@@ -36,7 +36,9 @@ class StateCount(NamedTuple):
 
 
 class HostTraffic(NamedTuple):
-    """Requests sent to one host and how it answered (from the fetches table)."""
+    """Requests sent to one host and how it answered (from the fetches table): ``errors``
+    counts requests sent that failed; ``held_back`` the ones never sent (attempt 0: robots.txt,
+    the address guard or a parked host refused them first)."""
 
     host: str | None
     requests: int
@@ -44,6 +46,17 @@ class HostTraffic(NamedTuple):
     unavailable: int
     waited_s: float
     errors: int
+    bytes: int
+    held_back: int = 0
+
+
+class FileOrigin(NamedTuple):
+    """Stored files by where their first item got them: "downloaded", "local" (read from a
+    folder), "crop" (cut from a stored scan) or "unknown" (recovered, no item yet)."""
+
+    origin: str
+    near_kept: bool  # the first item is a near duplicate kept (near_duplicates = "keep")
+    files: int
     bytes: int
 
 
@@ -64,6 +77,7 @@ class LedgerTotals:
     last_run: dict[str, Any] | None
     run_seconds: float
     last_run_seconds: float | None
+    file_origins: tuple[FileOrigin, ...] = ()
 
 
 def ledger_totals(ledger: Ledger) -> LedgerTotals:
@@ -71,10 +85,16 @@ def ledger_totals(ledger: Ledger) -> LedgerTotals:
     states = tuple(StateCount(r[0], r[1], int(r[2])) for r in ledger.rows(
         "SELECT state, reason, count(*) FROM items GROUP BY state, reason"))
     hosts = tuple(HostTraffic(r[0], r[1] or 0, r[2] or 0, r[3] or 0, float(r[4]), r[5] or 0,
-                              r[6]) for r in ledger.rows(
-        "SELECT host, sum(status IS NOT NULL), sum(status = 429), sum(status = 503), "
-        "coalesce(sum(waited_s), 0), sum(error IS NOT NULL), coalesce(sum(bytes), 0) "
-        "FROM fetches GROUP BY host ORDER BY host"))
+                              r[6], r[7] or 0) for r in ledger.rows(
+        "SELECT host, sum(sent), sum(status = 429), sum(status = 503), "
+        "coalesce(sum(waited_s), 0), sum(sent AND error IS NOT NULL), coalesce(sum(bytes), 0), "
+        "sum(NOT sent) FROM (SELECT *, coalesce(attempt, 1) != 0 AS sent FROM fetches) "
+        "GROUP BY host ORDER BY host"))
+    origins = tuple(FileOrigin(r[0], bool(r[1]), int(r[2]), int(r[3])) for r in ledger.rows(
+        "SELECT CASE WHEN i.id IS NULL THEN 'unknown' WHEN i.parent_sha256 IS NOT NULL "
+        "THEN 'crop' WHEN i.local_path IS NOT NULL THEN 'local' ELSE 'downloaded' END, "
+        "coalesce(i.state = 'near_duplicate', 0), count(*), coalesce(sum(f.size), 0) "
+        "FROM files f LEFT JOIN items i ON i.id = f.first_item_id GROUP BY 1, 2 ORDER BY 1, 2"))
     placeholders = ", ".join("?" for _ in ACCEPTED_STATES)
     licences = tuple((r[0], int(r[1])) for r in ledger.rows(
         f"SELECT coalesce(spdx_id, 'unknown') AS spdx, count(*) AS n FROM items "
@@ -90,7 +110,8 @@ def ledger_totals(ledger: Ledger) -> LedgerTotals:
         states=states,
         files=ledger.scalar("SELECT count(*) FROM files") or 0,
         file_bytes=ledger.scalar("SELECT coalesce(sum(size), 0) FROM files") or 0,
-        requests=ledger.scalar("SELECT count(*) FROM fetches WHERE status IS NOT NULL") or 0,
+        requests=ledger.scalar("SELECT count(*) FROM fetches WHERE coalesce(attempt, 1) != 0")
+        or 0,
         fetched_bytes=ledger.scalar("SELECT coalesce(sum(bytes), 0) FROM fetches") or 0,
         hosts=hosts, licences=licences,
         flag_lists=tuple(r[0] for r in ledger.rows(
@@ -103,7 +124,7 @@ def ledger_totals(ledger: Ledger) -> LedgerTotals:
         run_seconds=float(ledger.scalar(
             "SELECT coalesce(sum((julianday(coalesce(ended_at, 'now')) - julianday(started_at))"
             " * 86400.0), 0) FROM runs") or 0.0),
-        last_run_seconds=last_seconds)
+        last_run_seconds=last_seconds, file_origins=origins)
 
 
 def pending_image_urls(ledger: Ledger) -> Iterator[str]:
