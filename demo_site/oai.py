@@ -13,8 +13,9 @@ flow control). Its clock is a number of seconds the test or demo moves on by han
 from __future__ import annotations
 
 import threading
-from dataclasses import dataclass, field
+from dataclasses import asdict, dataclass, field
 from datetime import UTC, datetime, timedelta
+from typing import Any
 from xml.sax.saxutils import escape, quoteattr
 
 OAI_NS = "http://www.openarchives.org/OAI/2.0/"
@@ -41,6 +42,10 @@ class OaiRecord:
     date: str = "2025-02-14"
     deleted: bool = False
 
+    def to_json(self) -> dict[str, Any]:
+        """The record as the generator writes it into ``site.json``."""
+        return {**asdict(self), "datestamp": self.datestamp.isoformat()}
+
 
 @dataclass
 class Repository:
@@ -55,6 +60,28 @@ class Repository:
     unavailable_once: int = 0  # Retry-After seconds of one 503 on a resumption request
     requests: list[dict[str, str]] = field(default_factory=list)
     _lock: threading.Lock = field(default_factory=threading.Lock, repr=False)
+
+    # -- content and misbehaviours ----------------------------------------------------------
+    @classmethod
+    def from_json(cls, api: dict[str, Any], base_url: str, port: int) -> Repository:
+        """The repository the demo archive's generator described (``site.json``), its URLs'
+        ``{port}`` filled in."""
+        def fill(values: list[str]) -> tuple[str, ...]:
+            return tuple(v.replace("{port}", str(port)) for v in values)
+
+        records = [OaiRecord(
+            identifier=r["identifier"], datestamp=datetime.fromisoformat(r["datestamp"]),
+            sets=tuple(r["sets"]), title=r["title"], creator=r["creator"],
+            rights=tuple(r["rights"]), identifiers=fill(r["identifiers"]), date=r["date"],
+            deleted=r["deleted"]) for r in api["records"]]
+        return cls(base_url, records, page_size=api["page_size"],
+                   now=datetime.fromisoformat(api["now"]))
+
+    def arm(self, *, expire_token: bool, unavailable: int) -> None:
+        """Arm the one-off misbehaviours again (the demo server does on every reset)."""
+        with self._lock:
+            self.expire_token_once, self.unavailable_once = expire_token, unavailable
+            self.requests.clear()
 
     # -- changing the repository ---------------------------------------------------------
     def tick(self, seconds: int = 60) -> None:
