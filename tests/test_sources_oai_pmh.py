@@ -365,3 +365,47 @@ def test_an_unfinished_run_keeps_the_previous_harvest_point(oai, tmp_path: Path)
     gather(col)
     listing = [q for q in repo.requests if q.get("verb") == "ListRecords"]
     assert "from" not in listing[0]
+
+
+MODS_PAGE = """<OAI-PMH xmlns="http://www.openarchives.org/OAI/2.0/">
+<responseDate>2025-05-01T08:00:00Z</responseDate><request>{base}</request><ListRecords>
+<record><header><identifier>oai:x:1</identifier><datestamp>2025-04-01</datestamp></header>
+<metadata><mods xmlns="http://www.loc.gov/mods/v3" xmlns:xlink="http://www.w3.org/1999/xlink">
+<titleInfo><title>Speckled stone</title></titleInfo>
+<name><namePart>E. Thistledown</namePart></name>
+<location><url usage="primary">https://x.example.org/p/1</url>
+<url access="raw object">https://x.example.org/f/1.tif</url></location>
+<accessCondition xlink:href="https://creativecommons.org/licenses/by/4.0/">CC BY 4.0
+</accessCondition></mods></metadata></record>
+<resumptionToken completeListSize="1" cursor="0"></resumptionToken>
+</ListRecords></OAI-PMH>"""
+
+
+def test_another_metadata_format_maps_through_declared_namespaces() -> None:
+    """A MODS feed: the recipe declares prefixes and paths; the empty final token ends it."""
+    base = "http://127.0.0.1:9/oai"
+    identify = ('<OAI-PMH xmlns="http://www.openarchives.org/OAI/2.0/"><responseDate>'
+                "2025-05-01T08:00:00Z</responseDate><request/><Identify><granularity>"
+                "YYYY-MM-DD</granularity></Identify></OAI-PMH>")
+    xml = {"Content-Type": "text/xml"}
+    fetcher = FakeFetcher({
+        f"{base}?verb=Identify": (200, identify.encode(), xml),
+        f"{base}?verb=ListRecords&metadataPrefix=mods": (
+            200, MODS_PAGE.format(base=base).encode(), xml)})
+    src: dict[str, object] = {"name": "mods-feed", "kind": "oai_pmh", "url": base,
+                              "metadata_prefix": "mods"}
+    src["namespaces"] = {"mods": "http://www.loc.gov/mods/v3",
+                         "xlink": "http://www.w3.org/1999/xlink"}
+    src["fields"] = {"title": "mods:titleInfo/mods:title", "creator": "mods:name/mods:namePart",
+                     "licence": "mods:accessCondition",
+                     "licence_url": "mods:accessCondition/@xlink:href",
+                     "image_url": "mods:location/mods:url[@access='raw object']",
+                     "page_url": "mods:location/mods:url[@usage='primary']"}
+    cands, notes = collect(src, fetcher)
+    assert notes == []
+    # §3.5: "the response containing the incomplete list that completes the list includes an
+    # empty resumptionToken element": no further request
+    assert [(c.title, c.creator, c.licence_raw, c.licence_url, c.image_url, c.page_url)
+            for c in cands] == [("Speckled stone", "E. Thistledown", "CC BY 4.0",
+                                 "https://creativecommons.org/licenses/by/4.0/",
+                                 "https://x.example.org/f/1.tif", "https://x.example.org/p/1")]
