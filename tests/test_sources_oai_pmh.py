@@ -409,3 +409,17 @@ def test_another_metadata_format_maps_through_declared_namespaces() -> None:
             for c in cands] == [("Speckled stone", "E. Thistledown", "CC BY 4.0",
                                  "https://creativecommons.org/licenses/by/4.0/",
                                  "https://x.example.org/f/1.tif", "https://x.example.org/p/1")]
+
+
+def test_a_changed_source_table_harvests_everything_again(oai, tmp_path: Path) -> None:
+    """A remembered responseDate belongs to the table it was harvested with: another set
+    sends no from=, so none of that set's older records are missed."""
+    srv, repo = oai
+    col = init_collection(tmp_path / "c", contact="x@example.org")
+    col.recipe_path.write_text(RECIPE.format(url=srv.url("/oai")) + 'set = "herbarium"\n')
+    assert gather(col).counts["stored"] == 5
+    col.recipe_path.write_text(RECIPE.format(url=srv.url("/oai")) + 'set = "feathers"\n')
+    repo.requests.clear()
+    assert gather(col).counts["stored"] == 5
+    listing = [q for q in repo.requests if q.get("verb") == "ListRecords"]
+    assert "from" not in listing[0] and listing[0]["set"] == "feathers"

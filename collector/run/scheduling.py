@@ -16,6 +16,8 @@ the collection folder's error log; never ``finished``.
 from __future__ import annotations
 
 import contextlib
+import hashlib
+import json
 import queue
 import signal
 import threading
@@ -135,6 +137,12 @@ class RunResult:
         return 1 if self.outcome.startswith("failed") else 0
 
 
+def config_sha256(source: Mapping[str, Any]) -> str:
+    """SHA-256 of a source table's canonical JSON: what a remembered listing state belongs to."""
+    text = json.dumps(source, sort_keys=True, separators=(",", ":"), default=str)
+    return hashlib.sha256(text.encode("utf-8")).hexdigest()
+
+
 class Terminated(KeyboardInterrupt):
     """SIGTERM arrived: the run ends like a Ctrl-C (files in flight finished, run marked
     interrupted)."""
@@ -176,6 +184,8 @@ class Gatherer:
         self._reached: dict[int, str] = {}  # source id -> what its complete listing remembered
         self._source_ids = [ledger.source_id(src["name"], src["kind"], src)
                             for src in recipe.sources]
+        self._config_sha = {sid: config_sha256(src)
+                            for src, sid in zip(recipe.sources, self._source_ids, strict=True)}
         self.record = RunRecord(ledger, self.progress, secret_values(recipe))
         self.ingest = Ingest(collection, recipe, ledger, self.record, self._source_ids,
                              on_stored=self._stored_one)
@@ -324,7 +334,7 @@ class Gatherer:
                                  source_id=source_id)
             self.progress.event("note", source=source["name"], note=n.kind, message=n.message)
 
-        state = ListingState(self.ledger.listing_state(source_id))
+        state = ListingState(self.ledger.listing_state(source_id, self._config_sha[source_id]))
         try:
             for candidate in adapters.iter_candidates(source, self.fetcher, note,
                                                       self.collection.root, state):
@@ -360,7 +370,8 @@ class Gatherer:
                     "again, so the next run lists from the same point as this one",
                     run_id=self.run_id, source_id=source_id)
                 continue
-            self.ledger.set_listing_state(source_id, value, self.run_id)
+            self.ledger.set_listing_state(source_id, value, self._config_sha[source_id],
+                                          self.run_id)
 
     def _register(self, source_id: int, c: Any) -> None:
         """Admit a candidate (see :meth:`Ingest.admit`); an image to fetch goes to its host."""
