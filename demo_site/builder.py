@@ -23,7 +23,7 @@ from collector.demo_site.hosts import HOSTS
 GENERATOR_VERSION = "1"
 SEED = 3  # chosen so unrelated pictures are >= 14 bits apart (imagehash.phash)
 
-SOURCE_ORDER = ("api-pages", "api-objects", "api-linked", "gallery", "scanner")
+SOURCE_ORDER = ("api-pages", "api-objects", "api-linked", "gallery", "scanner", "oai-records")
 POLICY: dict[str, Any] = {
     "licence_allow": [
         "CC0-1.0", "CC-PDM-1.0",

@@ -45,6 +45,7 @@ from collector.demo_site.hosts import (
     LAST_MODIFIED,
     RETRY_AFTER_FORM,
 )
+from collector.demo_site.oai_content import build_oai, oai_manifest
 
 ROBOTS_API = """# Fernhollow Field Society: API and media host
 User-agent: *
@@ -92,6 +93,7 @@ def generate(out_dir: Path, *, seed: int = SEED) -> dict[str, Any]:
     build_api_linked(b)
     build_gallery(b)
     build_scans(b)
+    build_oai(b)
     hosts = _hosts_section(DEFAULT_RATE)
     b.put_page(4, "/policies/robots.txt", ROBOTS_ANNEX, "text/plain; charset=utf-8",
                role="robots")
@@ -117,6 +119,7 @@ def generate(out_dir: Path, *, seed: int = SEED) -> dict[str, Any]:
         "items": [it.to_json() for it in b.items],
         "resources": resources,
         "scans": b.scans,
+        "oai": oai_manifest(),
         "site_sha256": sha256_hex(site_bytes),
     }
     manifest["digest"] = manifest_digest(manifest)
@@ -140,6 +143,9 @@ def _sources_section(b: Builder) -> list[dict[str, Any]]:
          "page_size": GALLERY_PAGE, "total": sum(1 for i in b.items if i.source == "gallery")},
         {"name": "scanner", "kind": "scans", "path": "scans",
          "files": [s["file"] for s in b.scans]},
+        {"name": "oai-records", "kind": "oai_pmh", "host": b.apis["oai"]["host"],
+         "url": url(b.apis["oai"]["host"], b.apis["oai"]["path"]),
+         "page_size": b.apis["oai"]["page_size"], "total": len(b.apis["oai"]["records"])},
     ]
 
 
@@ -164,7 +170,7 @@ def content_version() -> str:
     h = hashlib.sha256(f"{GENERATOR_VERSION}:{SEED}:{PIL.__version__}:{np.__version__}"
                        .encode())
     for name in ("art", "builder", "catalogue", "content", "generate", "hosts", "metadata",
-                 "pages"):
+                 "pages", "oai", "oai_content"):
         h.update((Path(__file__).parent / f"{name}.py").read_bytes())
     return h.hexdigest()[:12]
 

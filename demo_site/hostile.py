@@ -332,6 +332,65 @@ def html_cycle(h: H, ctx: Ctx) -> None:
                            image=f"/good-{page}.png"), {"Content-Type": "text/html"})
 
 
+OAI_NS = "http://www.openarchives.org/OAI/2.0/"
+
+
+def _oai_envelope(inner: bytes, namespace: bool = True) -> bytes:
+    xmlns = f' xmlns="{OAI_NS}"'.encode() if namespace else b""
+    return (b'<?xml version="1.0" encoding="UTF-8"?>\n<OAI-PMH' + xmlns
+            + b"><responseDate>2025-03-01T09:00:00Z</responseDate><request>x</request>"
+            + inner + b"</OAI-PMH>")
+
+
+def _oai_identify() -> bytes:
+    return _oai_envelope(b"<Identify><repositoryName>trap</repositoryName><granularity>"
+                         b"YYYY-MM-DDThh:mm:ssZ</granularity><deletedRecord>no</deletedRecord>"
+                         b"</Identify>")
+
+
+def _oai_record(ctx: Ctx) -> bytes:
+    return (b"<record><header><identifier>oai:trap:" + ctx.name.encode() + b"</identifier>"
+            b"<datestamp>2025-03-01</datestamp></header><metadata><oai_dc:dc xmlns:oai_dc="
+            b'"http://www.openarchives.org/OAI/2.0/oai_dc/" xmlns:dc="http://purl.org/dc/'
+            b'elements/1.1/"><dc:title>t</dc:title><dc:rights>CC0-1.0</dc:rights>'
+            b"<dc:identifier>" + ctx.sites[ctx.name].encode() + b"/good-a.png</dc:identifier>"
+            b"</oai_dc:dc></metadata></record>")
+
+
+XML = {"Content-Type": "text/xml; charset=utf-8"}
+
+
+def oai_bomb(h: H, ctx: Ctx) -> None:
+    """Identify answers normally; ListRecords is a billion-laughs entity bomb."""
+    if "Identify" in h.path:
+        send(h, 200, _oai_identify(), XML)
+        return
+    body = (b'<?xml version="1.0"?>\n<!DOCTYPE OAI-PMH [\n' + _entities() + b"]>\n"
+            + _oai_envelope(b"<ListRecords>" + _oai_record(ctx).replace(
+                b"<dc:title>t</dc:title>", b"<dc:title>&l9;</dc:title>") + b"</ListRecords>"
+                )[len(b'<?xml version="1.0" encoding="UTF-8"?>\n'):])
+    send(h, 200, body, XML)
+
+
+def oai_endless_token(h: H, ctx: Ctx) -> None:
+    """Every ListRecords page hands out a fresh resumptionToken: the list never ends."""
+    if "Identify" in h.path:
+        send(h, 200, _oai_identify(), XML)
+        return
+    n = int(h.path.rsplit("resumptionToken=t", 1)[-1]) + 1 if "resumptionToken" in h.path else 1
+    body = _oai_envelope(b"<ListRecords>" + _oai_record(ctx)
+                         + b"<resumptionToken>t%d</resumptionToken></ListRecords>" % n)
+    send(h, 200, body, XML)
+
+
+def oai_no_namespace(h: H, ctx: Ctx) -> None:
+    """Every answer looks like OAI-PMH but has no namespace (§3.2 requires it)."""
+    inner = (b"<Identify><granularity>YYYY-MM-DD</granularity></Identify>"
+             if "Identify" in h.path else b"<ListRecords>" + _oai_record(ctx).replace(
+                 b"oai_dc:", b"").replace(b"dc:", b"") + b"</ListRecords>")
+    send(h, 200, _oai_envelope(inner, namespace=False), XML)
+
+
 # --- the table -----------------------------------------------------------------------------
 @dataclass(frozen=True)
 class Case:
@@ -339,8 +398,8 @@ class Case:
 
     kind "image": the lister lists one item (source_key = name) whose image URL is ``path`` on
     the case's own host; ``state``/``reason`` are that item's expected ledger outcome.
-    kind "json"/"html": a source of its own starting at ``path``; ``reason`` is the note kind
-    the source must leave (or None), and every item it lists must be stored.
+    kind "json"/"html"/"oai": a source of its own starting at ``path``; ``reason`` is the note
+    kind the source must leave (or None), and every item it lists must be stored.
     """
 
     name: str
@@ -473,6 +532,12 @@ CASES: list[Case] = [
          why="the page decodes to noise; the selector note says so"),
     Case("html-cycle", "HTML pagination that cycles", "html", "/list/a", html_cycle,
          reason="loop"),
+    Case("oai-xml-bomb", "OAI-PMH ListRecords with an entity-expansion bomb", "oai", "/oai",
+         oai_bomb, reason="not_oai_pmh", why="defusedxml refuses the DTD; nothing expanded"),
+    Case("oai-endless-token", "OAI-PMH resumptionToken that never ends", "oai", "/oai",
+         oai_endless_token, reason="max_pages", why="bounded by max_pages = 5"),
+    Case("oai-no-namespace", "OAI-PMH answers without the OAI namespace", "oai", "/oai",
+         oai_no_namespace, reason="not_oai_pmh", why="the root element is not OAI-PMH 2.0"),
 ]
 CASE_NAMES = [c.name for c in CASES]
 
@@ -601,6 +666,14 @@ items = "items"
 id = "id"
 image_url = "image"
 licence = "licence"
+""")
+            elif case.kind == "oai":
+                parts.append(f"""
+[[sources]]
+name = "{case.name}"
+kind = "oai_pmh"
+url = "{self.url(case)}"
+max_pages = 5
 """)
             elif case.kind == "html":
                 parts.append(f"""

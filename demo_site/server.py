@@ -29,6 +29,8 @@ from typing import Any, cast
 from urllib.parse import parse_qs, urlsplit
 
 from collector.demo_site.hosts import DEFAULT_RATE, HOSTS
+from collector.demo_site.oai import Repository
+from collector.demo_site.oai_content import OAI_MISBEHAVIOURS
 
 TEXT = "text/plain; charset=utf-8"
 HTML = "text/html; charset=utf-8"
@@ -133,6 +135,16 @@ class Site:
             int(h): r for h, r in self.site["routes"].items()}
         self.hosts: dict[int, Any] = {int(h): v for h, v in self.site["hosts"].items()}
         self.apis = self.site["apis"]
+        oai = self.apis.get("oai")
+        self.oai = None if oai is None else Repository.from_json(
+            oai, self.base(oai["host"]) + oai["path"], port)
+        self.arm()
+
+    def arm(self) -> None:
+        """Arm the OAI-PMH feed's one-off misbehaviours again (an expired token, a 503)."""
+        if self.oai is not None:
+            self.oai.arm(expire_token=bool(OAI_MISBEHAVIOURS["expire_token"]),
+                         unavailable=int(OAI_MISBEHAVIOURS["unavailable"]))
 
     def base(self, host: int) -> str:
         return f"http://{HOSTS[host]}:{self.port}"
@@ -201,6 +213,11 @@ class Site:
                     return Reply.json(404, {"error": "no such record"}, self.port)
                 return Reply.json(200, detail, self.port)
         return None
+
+    def _list_oai(self, api: dict[str, Any], query: dict[str, list[str]]) -> Reply:
+        assert self.oai is not None
+        status, body, headers = self.oai.respond({k: v[-1] for k, v in query.items()})
+        return Reply(status, body, list(headers.items()))
 
     def _list_v1(self, api: dict[str, Any], query: dict[str, list[str]]) -> Reply:
         page = _int_param(query, "page", 1, 1, 10_000)
@@ -404,6 +421,8 @@ class DemoServer:
             self._buckets = {h: TokenBucket(r, self.burst or max(1.0, r / 2))
                              for h, r in self.rates.items() if r > 0}
             self._maintenance_left = dict(self.maintenance)
+            if self.site is not None:
+                self.site.arm()
 
     # -- request handling --
     def _handle(self, req: _Handler, method: str) -> None:

@@ -11,7 +11,8 @@ from datetime import UTC, datetime
 from email.utils import parsedate_to_datetime
 from pathlib import Path
 from typing import Any
-from urllib.parse import urljoin, urlsplit
+from urllib.parse import quote, urljoin, urlsplit
+from xml.etree import ElementTree
 
 import pytest
 from bs4 import BeautifulSoup
@@ -232,8 +233,30 @@ def _crawl(server: DemoServer) -> tuple[dict[tuple[str, str], str], set[str]]:
             assert detail.select_one('a[rel="license"]') or detail.select_one(".licence")
         nxt = soup.select_one("a[rel=next]")
         url = urljoin(base, nxt["href"]) if nxt else None
+    _crawl_oai(server, listed)
     referenced.update(listed.values())
     return listed, referenced
+
+
+def _crawl_oai(server: DemoServer, listed: dict[tuple[str, str], str]) -> None:
+    """List the OAI-PMH feed (OAI-PMH 2.0 §4.6 ListRecords, §3.5 resumptionToken) with its
+    one-off misbehaviours disarmed; deleted records (§2.5.1) list no image."""
+    assert server.site is not None and server.site.oai is not None
+    server.site.oai.arm(expire_token=False, unavailable=0)
+    ns = {"o": "http://www.openarchives.org/OAI/2.0/", "dc": "http://purl.org/dc/elements/1.1/"}
+    query = "verb=ListRecords&metadataPrefix=oai_dc"
+    while query:
+        root = ElementTree.fromstring(fetch(server.url(4, f"/oai?{query}"))[2])
+        for record in root.iterfind("o:ListRecords/o:record", ns):
+            if record.find("o:header", ns).get("status") == "deleted":
+                continue
+            key = record.findtext("o:header/o:identifier", namespaces=ns)
+            image = [v.text for v in record.iterfind(".//dc:identifier", ns)
+                     if v.text.endswith(".png")]
+            listed[("oai-records", key)] = image[0]
+        token = root.findtext("o:ListRecords/o:resumptionToken", namespaces=ns)
+        query = f"verb=ListRecords&resumptionToken={quote(token)}" if token else ""
+    server.site.arm()
 
 
 def test_every_listed_item_has_exactly_one_expected_outcome(
@@ -297,6 +320,6 @@ def test_recipes_render_to_toml_with_port_scans_and_loopback_only(tmp_path: Path
                     assert parts.port == 43210
     demo = tomllib.loads(recipes.render("demo", 1, tmp_path / "scans"))
     assert [s["name"] for s in demo["sources"]] == ["api-pages", "api-objects", "api-linked",
-                                                     "gallery", "scanner"]
-    assert demo["sources"][-1]["path"] == (tmp_path / "scans").as_posix()
+                                                     "gallery", "scanner", "oai-records"]
+    assert demo["sources"][4]["path"] == (tmp_path / "scans").as_posix()
     assert demo["sources"][1]["detail"]["url"].endswith("/api/v2/objects/{id}")

@@ -9,6 +9,7 @@ timestamps, never from the client's own claims.
 from __future__ import annotations
 
 import itertools
+import json
 from collections import Counter
 from pathlib import Path
 from typing import Any
@@ -63,8 +64,9 @@ def test_every_manifest_item_ends_in_its_expected_state(demo_run, demo_server) -
     assert result.outcome == "finished"
     with col.ledger(readonly=True) as ledger:
         notes = ledger.query("SELECT kind, url, message FROM notes")
-    assert {n["kind"] for n in notes} == {"touching_items", "blank_scan"}, [
-        n["message"] for n in notes]
+    expected_notes = {"touching_items", "blank_scan",
+                      *demo_server.manifest["oai"]["expected_notes"]}
+    assert {n["kind"] for n in notes} == expected_notes, [n["message"] for n in notes]
     keyed = ledger_items(col)
     wrong = []
     for item in demo_server.manifest["items"]:
@@ -131,6 +133,28 @@ def test_conflicting_embedded_licence_and_gps_are_flagged(demo_run, demo_server)
             assert "gps" in flags[item["sha256"]], item["key"]
 
 
+def test_the_oai_feed_is_harvested_through_its_misbehaviours(demo_run, demo_server) -> None:
+    """The OAI-PMH feed: its 503 waited out, its expired token restarted the list, both sets
+    and no item for the deleted record; the harvest's responseDate is kept for next time."""
+    col, log, _ = demo_run
+    feed = demo_server.manifest["oai"]
+    oai = [r for r in log if r.host_index == 4 and r.path.startswith("/oai?")]
+    busy = next(i for i, r in enumerate(oai) if r.status == 503)
+    # OAI-PMH 2.0 §3.5.1 flow control: 503 with Retry-After (1 s here, RFC 9110 §10.2.3)
+    assert oai[busy + 1].path == oai[busy].path and oai[busy + 1].t - oai[busy].t >= 1.0
+    # §3.6 badResumptionToken: the list was asked for from its start a second time
+    assert sum("metadataPrefix=oai_dc" in r.path for r in oai) == 2
+    keyed = ledger_items(col)
+    assert ("oai-records", feed["deleted"][0]) not in keyed
+    sets = {s for (source, _), row in keyed.items() if source == "oai-records"
+            for s in json.loads(row["metadata"])["oai"]["sets"]}
+    assert sets == set(feed["sets"])
+    with col.ledger(readonly=True) as ledger:
+        kept = ledger.query("SELECT l.value FROM listing_states l JOIN sources s "
+                            "ON s.id = l.source_id WHERE s.name = 'oai-records'")
+    assert [r["value"] for r in kept] == [feed["response_date"]]
+
+
 def test_mirror_host_with_robots_503_got_only_its_robots_request(demo_run) -> None:
     """RFC 9309 section 2.3.1.4: robots.txt 5xx means complete disallow."""
     _, log, _ = demo_run
@@ -168,6 +192,7 @@ def test_no_image_was_requested_twice(demo_run) -> None:
     refetched)."""
     _, log, _ = demo_run
     images = Counter(r.path for r in log if r.status == 200 and "/api/" not in r.path
+                     and not r.path.startswith("/oai?")  # OAI-PMH listing requests
                      and not r.path.endswith(("/", ".html", "robots.txt")))
     assert [p for p, n in images.items() if n > 1] == []
 

@@ -42,8 +42,12 @@ from collector.storage.hashindex import HashIndex
 from collector.storage.ledger import Ledger
 from collector.storage.ledger_repair import RECOVERED_FLAG
 
+# The archive itself withdrew the record (e.g. an OAI-PMH deleted record): not the curator's
+# withdrawal; the item keeps its file and provenance.
+WITHDRAWN_BY_ARCHIVE = "withdrawn_by_archive"
 # States after which an item is not requested again.
-FINAL_STATES = frozenset({"stored", "duplicate", "near_duplicate", "rejected"})
+FINAL_STATES = frozenset({"stored", "duplicate", "near_duplicate", "rejected",
+                          WITHDRAWN_BY_ARCHIVE})
 COPY_CHUNK = 1 << 20
 # "Not Found" / "Gone" (RFC 9110 sections 15.5.5, 15.5.11) in this many runs ends the retries.
 GONE_REASONS = frozenset({"http_404", "http_410"})
@@ -131,6 +135,9 @@ class Ingest:
         """Record a candidate and decide what happens to it before anything is downloaded:
         the image to fetch, or None when it was decided here (done, skipped, stored locally,
         a duplicate by its image URL)."""
+        if getattr(c, "withdrawn", None):
+            self._withdrawn_by_archive(source_id, c)
+            return None
         registered = self._register(source_id, c)
         if registered is None:
             return None
@@ -262,6 +269,25 @@ class Ingest:
             item_id = self.ledger.add_item(source_id, c.source_key, fields)
         self._item_source[item_id] = source_id
         return item_id, licence.spdx_id, fields["image_url"]
+
+    def _withdrawn_by_archive(self, source_id: int, c: Any) -> None:
+        """The archive says it withdrew the record: an item we have is marked (state
+        ``withdrawn_by_archive``, reason ``deleted_in_archive``; its file and provenance
+        stay) with a ledger note; a record we never had is only counted."""
+        row = self.ledger.item_by_key(source_id, c.source_key)
+        if row is None:
+            self.record.count("withdrawn_unseen")
+            return
+        if row["state"] == WITHDRAWN_BY_ARCHIVE:
+            self.record.count("already_done")
+            return
+        was = f"{row['state']}" + (f" ({row['reason']})" if row.get("reason") else "")
+        self.record.finish(row["id"], WITHDRAWN_BY_ARCHIVE, "deleted_in_archive",
+                           f"{c.withdrawn}; was {was}")
+        self.ledger.add_note(WITHDRAWN_BY_ARCHIVE,
+                             f"item {row['id']} ({c.source_key}) was withdrawn by the archive: "
+                             f"{c.withdrawn}; it was {was}",
+                             run_id=self.record.run_id, source_id=source_id)
 
     def _gone_for_good(self, row: dict[str, Any]) -> bool:
         """A failed item whose image the server said is gone (404/410) in GONE_RUNS runs is

@@ -16,6 +16,8 @@ the collection folder's error log; never ``finished``.
 from __future__ import annotations
 
 import contextlib
+import hashlib
+import json
 import queue
 import signal
 import threading
@@ -44,7 +46,7 @@ from collector.errors import (
 )
 from collector.run.ingest import Ingest, Job
 from collector.run.record import NullProgress, Progress, RunRecord, secret_values
-from collector.sources.base import PageFetcher
+from collector.sources.base import ListingState, PageFetcher
 from collector.storage.collection import Collection
 from collector.storage.ledger import Ledger, utc_now
 from collector.storage.ledger_repair import backup_ledger
@@ -130,6 +132,12 @@ class RunResult:
         return 1 if self.outcome.startswith("failed") else 0
 
 
+def config_sha256(source: Mapping[str, Any]) -> str:
+    """SHA-256 of a source table's canonical JSON: what a remembered listing state belongs to."""
+    text = json.dumps(source, sort_keys=True, separators=(",", ":"), default=str)
+    return hashlib.sha256(text.encode("utf-8")).hexdigest()
+
+
 class Terminated(KeyboardInterrupt):
     """SIGTERM arrived: the run ends like a Ctrl-C (files in flight finished, run marked
     interrupted)."""
@@ -168,8 +176,11 @@ class Gatherer:
         self._workers: list[threading.Thread] = []
         self._lock = threading.RLock()
         self._stored_this_run = 0
+        self._reached: dict[int, str] = {}  # source id -> what its complete listing remembered
         self._source_ids = [ledger.source_id(src["name"], src["kind"], src)
                             for src in recipe.sources]
+        self._config_sha = {sid: config_sha256(src)
+                            for src, sid in zip(recipe.sources, self._source_ids, strict=True)}
         self.record = RunRecord(ledger, self.progress, secret_values(recipe))
         self.ingest = Ingest(collection, recipe, ledger, self.record, self._source_ids,
                              on_stored=self._stored_one)
@@ -238,6 +249,7 @@ class Gatherer:
             for q in list(self._queues.values()):
                 q.put(None)  # no more work: each worker ends after its queue drains
             self._wait(self._workers)
+            self._keep_listing_states()
         except KeyboardInterrupt as exc:
             terminated = isinstance(exc, Terminated)
             self.request_stop("interrupted")
@@ -317,12 +329,17 @@ class Gatherer:
                                  source_id=source_id)
             self.progress.event("note", source=source["name"], note=n.kind, message=n.message)
 
+        state = ListingState(self.ledger.listing_state(source_id, self._config_sha[source_id]))
         try:
             for candidate in adapters.iter_candidates(source, self.fetcher, note,
-                                                      self.collection.root):
+                                                      self.collection.root, state):
                 if self._should_stop():
                     break
                 self._register(source_id, candidate)
+            else:
+                if state.reached is not None:
+                    with self._lock:
+                        self._reached[source_id] = state.reached
         except HostParked as exc:
             note(_Note("host_parked", exc.url, str(exc)))
         except (StoreError, LedgerError) as exc:  # the disk or the ledger: nothing can go on
@@ -333,6 +350,23 @@ class Gatherer:
             note(_Note("source_error", None, str(exc)))
         except Exception as exc:  # a bug, not the archive's fault: the run fails loudly
             self._internal_error(f"the listing of source {source['name']!r}", exc)
+
+    def _keep_listing_states(self) -> None:
+        """After every worker is done: keep what each complete listing remembered (see
+        sources.base.ListingState), unless the run is stopping or items of the source are
+        left to try again, which a listing of changes only would not bring back."""
+        if self.stop_event.is_set() or self.fatal is not None:
+            return
+        for source_id, value in self._reached.items():
+            left = self.ledger.unsettled_items(source_id, self.run_id)
+            if left:
+                self.ledger.add_note(
+                    "listing_state_kept", f"{left} item(s) of this source are to be tried "
+                    "again, so the next run lists from the same point as this one",
+                    run_id=self.run_id, source_id=source_id)
+                continue
+            self.ledger.set_listing_state(source_id, value, self._config_sha[source_id],
+                                          self.run_id)
 
     def _register(self, source_id: int, c: Any) -> None:
         """Admit a candidate (see :meth:`Ingest.admit`); an image to fetch goes to its host."""

@@ -528,6 +528,32 @@ class Ledger:
                                [sha256])
             self._conn.execute("DELETE FROM files WHERE sha256 = ?", [sha256])
 
+    def listing_state(self, source_id: int, config_sha256: str) -> str | None:
+        """What the source's last complete listing remembered for the next run, or None
+        (also when the source's table has changed since: a new set, prefix or URL lists
+        everything again)."""
+        return self.scalar("SELECT value FROM listing_states WHERE source_id = ? AND "
+                           "config_sha256 = ?", (source_id, config_sha256))
+
+    def set_listing_state(self, source_id: int, value: str, config_sha256: str,
+                          run_id: int) -> None:
+        """Keep what this run's complete listing of the source remembered."""
+        with self._lock, self._translate("write to listing_states"), self._write():
+            self._conn.execute(
+                "INSERT INTO listing_states (source_id, value, config_sha256, run_id, saved_at) "
+                "VALUES (?, ?, ?, ?, ?) ON CONFLICT(source_id) DO UPDATE SET "
+                "value = excluded.value, config_sha256 = excluded.config_sha256, "
+                "run_id = excluded.run_id, saved_at = excluded.saved_at",
+                (source_id, value, config_sha256, run_id, utc_now()))
+
+    def unsettled_items(self, source_id: int, run_id: int) -> int:
+        """How many items of the source this run left to try again (pending, failed,
+        deferred): a listing that only reports changes would not list them again."""
+        count = self.scalar(
+            "SELECT count(*) FROM items WHERE source_id = ? AND run_id = ? AND state IN "
+            "('pending', 'failed', 'deferred')", (source_id, run_id))
+        return int(count or 0)
+
     def mark_killed_runs(self) -> None:
         """Runs still marked ``running`` end as ``killed: did not end cleanly`` (called with
         the gather lock held: no run of this folder is going on)."""

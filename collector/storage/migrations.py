@@ -84,5 +84,17 @@ def _migration_3(db: sqlite_utils.Database) -> None:
             files.add_column(name, kind)
 
 
+def _migration_4(db: sqlite_utils.Database) -> None:
+    """What a source's last complete listing handed on to the next run
+    (``sources.base.ListingState``, e.g. the OAI-PMH responseDate to harvest from), one row
+    per source, with the SHA-256 of the source table it was listed with; a source without a
+    row, or whose table changed since, lists everything."""
+    if "listing_states" in db.table_names():  # a ledger mended by hand may have it already
+        return
+    db.table("listing_states").create({
+        "source_id": int, "value": str, "config_sha256": str, "run_id": int, "saved_at": str,
+    }, pk="source_id", foreign_keys=[("source_id", "sources", "id")])
+
+
 MIGRATIONS: dict[int, Callable[[sqlite_utils.Database], None]] = {
-    1: _migration_1, 2: _migration_2, 3: _migration_3}
+    1: _migration_1, 2: _migration_2, 3: _migration_3, 4: _migration_4}
