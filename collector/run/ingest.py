@@ -25,6 +25,7 @@ from typing import Any, BinaryIO
 
 from collector.checks.images import ImageFacts, inspect_image
 from collector.checks.licences import licence_allowed, normalise_licence, rights_conflict
+from collector.checks.rights_statements import find_statement
 from collector.config.recipe import Recipe
 from collector.errors import ImageRejected, StoreError
 from collector.run import dedup
@@ -108,12 +109,15 @@ class Ingest:
         if registered is None:
             return None
         item_id, spdx_id, image_url = registered
+        statement = None if spdx_id else find_statement(c.licence_raw, c.licence_url)
         ok, reason = licence_allowed(spdx_id, self.recipe.licences.allow,
-                                     self.recipe.licences.allow_unknown)
+                                     self.recipe.licences.allow_unknown, statement)
         if not ok:
             detail = (f"licence {c.licence_raw or c.licence_url or '(none)'!r} "
                       + (f"is {spdx_id}, not in the allowlist" if spdx_id
-                         else "could not be recognised"))
+                         else f"is the rights statement {statement.code} ({statement.name}), "
+                         f"not in the allowlist (add \"rs:{statement.code}\" to allow it)"
+                         if statement else "could not be recognised"))
             self.record.finish(item_id, "skipped", reason, detail)
             return None
         if c.content is not None or c.local_path is not None:
@@ -146,6 +150,7 @@ class Ingest:
             "image_url": c.image_url, "page_url": c.page_url, "title": c.title,
             "creator": c.creator, "licence_raw": c.licence_raw, "licence_url": c.licence_url,
             "spdx_id": licence.spdx_id, "date": c.date, "metadata": c.metadata or None,
+            "rights_statement": None if licence.spdx_id else _statement_code(c),
             "crop_box": list(c.crop_box) if c.crop_box else None,
             "local_path": shown_name(str(c.local_path)) if c.local_path else None,
             "run_id": self.record.run_id,
@@ -377,3 +382,9 @@ def _file_row(path: Path, facts: ImageFacts, item_id: int, flags: list[str]) -> 
     """The files row of a new file (without its sha256)."""
     return {"size": path.stat().st_size, **facts.file_columns(), "first_item_id": item_id,
             "flags": flags}
+
+
+def _statement_code(c: Any) -> str | None:
+    """The RightsStatements.org statement id the candidate's rights name, or None."""
+    found = find_statement(c.licence_raw, c.licence_url)
+    return found.code if found else None

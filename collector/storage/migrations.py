@@ -84,5 +84,14 @@ def _migration_3(db: sqlite_utils.Database) -> None:
             files.add_column(name, kind)
 
 
+def _migration_4(db: sqlite_utils.Database) -> None:
+    """An item's RightsStatements.org statement, kept apart from its SPDX licence: the
+    statement's id (``NoC-US``, ``InC``...; collector.checks.rights_statements). Rows recorded
+    before stay NULL (not read)."""
+    items = db.table("items")
+    if "rights_statement" not in items.columns_dict:
+        items.add_column("rights_statement", str)
+
+
 MIGRATIONS: dict[int, Callable[[sqlite_utils.Database], None]] = {
-    1: _migration_1, 2: _migration_2, 3: _migration_3}
+    1: _migration_1, 2: _migration_2, 3: _migration_3, 4: _migration_4}
