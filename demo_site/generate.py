@@ -45,6 +45,7 @@ from collector.demo_site.hosts import (
     LAST_MODIFIED,
     RETRY_AFTER_FORM,
 )
+from collector.demo_site.iiif_archive import build_iiif
 
 ROBOTS_API = """# Fernhollow Field Society: API and media host
 User-agent: *
@@ -92,6 +93,7 @@ def generate(out_dir: Path, *, seed: int = SEED) -> dict[str, Any]:
     build_api_linked(b)
     build_gallery(b)
     build_scans(b)
+    iiif_source = build_iiif(b)
     hosts = _hosts_section(DEFAULT_RATE)
     b.put_page(4, "/policies/robots.txt", ROBOTS_ANNEX, "text/plain; charset=utf-8",
                role="robots")
@@ -113,7 +115,7 @@ def generate(out_dir: Path, *, seed: int = SEED) -> dict[str, Any]:
         "hosts": hosts,
         "policy": POLICY,
         "source_order": list(SOURCE_ORDER),
-        "sources": _sources_section(b),
+        "sources": [*_sources_section(b), iiif_source],
         "items": [it.to_json() for it in b.items],
         "resources": resources,
         "scans": b.scans,
@@ -164,7 +166,7 @@ def content_version() -> str:
     h = hashlib.sha256(f"{GENERATOR_VERSION}:{SEED}:{PIL.__version__}:{np.__version__}"
                        .encode())
     for name in ("art", "builder", "catalogue", "content", "generate", "hosts", "metadata",
-                 "pages"):
+                 "pages", "iiif_archive"):
         h.update((Path(__file__).parent / f"{name}.py").read_bytes())
     return h.hexdigest()[:12]
 
