@@ -32,6 +32,7 @@ from typing import Any
 
 from PIL import Image
 
+from collector.demo_site import hostile_iiif
 from collector.demo_site.loopback import LoopbackServer, send
 
 FORBIDDEN_HOST = "127.0.0.9"  # loopback, but not in the recipe's allow_addresses
@@ -339,7 +340,7 @@ class Case:
 
     kind "image": the lister lists one item (source_key = name) whose image URL is ``path`` on
     the case's own host; ``state``/``reason`` are that item's expected ledger outcome.
-    kind "json"/"html": a source of its own starting at ``path``; ``reason`` is the note kind
+    kind "json"/"html"/"iiif": a source of its own starting at ``path``; ``reason`` is the note kind
     the source must leave (or None), and every item it lists must be stored.
     """
 
@@ -473,6 +474,14 @@ CASES: list[Case] = [
          why="the page decodes to noise; the selector note says so"),
     Case("html-cycle", "HTML pagination that cycles", "html", "/list/a", html_cycle,
          reason="loop"),
+    Case("iiif-self-manifest", "IIIF manifest that lists itself (and is listed twice)", "iiif",
+         hostile_iiif.START, hostile_iiif.self_listing_manifest, reason="loop",
+         why="every document is read once; its one canvas is stored"),
+    Case("iiif-collection-cycle", "IIIF collection cycle (A -> B -> A)", "iiif",
+         hostile_iiif.START, hostile_iiif.collection_cycle, reason="loop"),
+    Case("iiif-billion-pixels", "IIIF info.json claiming 10^9 x 10^9 pixels", "iiif",
+         hostile_iiif.START, hostile_iiif.billion_pixels, reason=None,
+         why="only the target size is asked for (!2048,2048), never the full size"),
 ]
 CASE_NAMES = [c.name for c in CASES]
 
@@ -601,6 +610,13 @@ items = "items"
 id = "id"
 image_url = "image"
 licence = "licence"
+""")
+            elif case.kind == "iiif":
+                parts.append(f"""
+[[sources]]
+name = "{case.name}"
+kind = "iiif"
+url = "{self.url(case)}"
 """)
             elif case.kind == "html":
                 parts.append(f"""
