@@ -26,7 +26,8 @@ START = "/iiif/start.json"
 
 
 def _base(h: H) -> str:
-    return f"http://{h.server.server_address[0]}:{h.server.server_address[1]}"
+    address: Any = h.server.server_address  # an IPv4 (host, port) pair on loopback
+    return f"http://{address[0]}:{address[1]}"
 
 
 def _json(h: H, doc: Any) -> None:
