@@ -24,7 +24,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
-from collector.schema import Key, Problems, at_least, http_url
+from collector.schema import Key, Problems, at_least, http_url, one_of
 from collector.sources.base import (
     Candidate,
     FetchError,
@@ -65,6 +65,7 @@ KEYS: dict[str, Key] = {
     "first_canvas_only": Key("bool", False),
     "target_size": Key("int", DEFAULT_TARGET, check=at_least(0)),
     "upscale": Key("bool", False),
+    "level0_sizes": Key("str", "at_least", check=one_of("at_least", "at_most")),
     "creator_labels": Key("list[str]", ["Creator", "Author", "Artist", "Photographer"]),
     "date_labels": Key("list[str]", ["Date"]),
 }
@@ -82,6 +83,7 @@ class Config:
     first_canvas_only: bool
     target_size: int
     upscale: bool
+    level0_sizes: str
     creator_labels: tuple[str, ...]
     date_labels: tuple[str, ...]
 
@@ -95,6 +97,7 @@ class Config:
                    max_manifests=int(get("max_manifests")),
                    first_canvas_only=bool(get("first_canvas_only")),
                    target_size=int(get("target_size")), upscale=bool(get("upscale")),
+                   level0_sizes=str(get("level0_sizes")),
                    creator_labels=tuple(get("creator_labels")),
                    date_labels=tuple(get("date_labels")))
 
@@ -278,7 +281,8 @@ class _Walker:
         info = self.walk.infos[service_id]
         if isinstance(info, str):
             return f"image service {service_id}: {info}; its images are skipped"
-        return choose_size(info, self.cfg.target_size, upscale=self.cfg.upscale)
+        return choose_size(info, self.cfg.target_size, upscale=self.cfg.upscale,
+                           listed=self.cfg.level0_sizes)
 
 
 def _is_url(value: str | None) -> bool:

@@ -194,11 +194,17 @@ def _full_size_word(info: ServiceInfo) -> str:
     return "max" if info.version == "3.0" else "full"
 
 
-def choose_size(info: ServiceInfo, target: int, *, upscale: bool = False) -> SizeChoice | str:
+def choose_size(info: ServiceInfo, target: int, *, upscale: bool = False,
+                listed: str = "at_least") -> SizeChoice | str:
     """The request that asks for no more pixels than ``target`` (longest side; 0 = the largest
-    the service allows), or a sentence saying why no size can be asked for (tiles only)."""
+    the service allows), or a sentence saying why no size can be asked for (tiles only).
+
+    ``listed`` is the level-0 choice among listed sizes: "at_least" takes the smallest at or
+    above the target (the image is never smaller than asked), "at_most" the largest at or below
+    it (never more pixels than the target); either falls back to the other side when its own
+    side has no size."""
     if info.level == 0:
-        return _choose_listed(info, target)
+        return _choose_listed(info, target, listed)
     scale, deciders = _scale(info.width, info.height, info, target)
     if scale >= 1.0:
         if upscale and target and info.version == "3.0" and info.upscaling:
@@ -216,7 +222,7 @@ def choose_size(info: ServiceInfo, target: int, *, upscale: bool = False) -> Siz
                       why=f"level {info.level}: scaled to fit {' and '.join(deciders)}")
 
 
-def _choose_listed(info: ServiceInfo, target: int) -> SizeChoice | str:
+def _choose_listed(info: ServiceInfo, target: int, listed: str) -> SizeChoice | str:
     """Level 0: only the listed sizes and the full size can be asked for (3.0 §5, 2.1 §5)."""
     scale, deciders = _scale(info.width, info.height, info, target)
     if scale >= 1.0:
@@ -233,10 +239,15 @@ def _choose_listed(info: ServiceInfo, target: int) -> SizeChoice | str:
         return (f"level 0 service with {what} and a full size of {info.width}x{info.height} "
                 f"(more than {' and '.join(deciders)}); stitching tiles is not supported, so "
                 "the image is not requested")
-    at_least = [s for s in usable if max(s) >= max(want_w, want_h)]
-    w, h = at_least[0] if at_least else usable[-1]
-    why = ("level 0: the smallest listed size at or above the target" if at_least
-           else "level 0: the largest listed size (all are below the target)")
+    want = max(want_w, want_h)
+    above = [s for s in usable if max(s) >= want]
+    below = [s for s in usable if max(s) <= want]
+    if listed == "at_most" and below:
+        (w, h), why = below[-1], "level 0: the largest listed size at or below the target"
+    elif above:
+        (w, h), why = above[0], "level 0: the smallest listed size at or above the target"
+    else:
+        (w, h), why = usable[-1], "level 0: the largest listed size (all are below the target)"
     # 3.0 §5: listed sizes are asked for as w,h; 2.1 §5: as w, (its canonical form, §4.7).
     size = f"{w},{h}" if info.version == "3.0" else f"{w},"
     return SizeChoice(_url(info, size), size, w, h, why=why)

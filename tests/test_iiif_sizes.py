@@ -105,6 +105,12 @@ def test_level_0_picks_the_smallest_listed_size_at_or_above_the_target():
     assert exact.size == "768,1024"
     below = choose_size(parsed(info3(profile="level0", sizes=sizes[:2])), 1024)
     assert below.size == "750,1000" and "largest listed" in below.why
+    # listed = "at_most": never more pixels than the target, when a size allows it
+    at_most = choose_size(parsed(info3(profile="level0", sizes=sizes)), 1024, listed="at_most")
+    assert at_most.size == "750,1000" and "at or below" in at_most.why
+    only_big = choose_size(parsed(info3(profile="level0", sizes=sizes[2:])), 1024,
+                           listed="at_most")
+    assert only_big.size == "1500,2000"
 
 
 def test_level_0_with_only_tiles_says_why_nothing_is_asked_for():

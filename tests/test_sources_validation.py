@@ -180,9 +180,11 @@ def test_iiif_table_is_valid_and_each_check_names_its_key() -> None:
     assert problems(iiif_source()) == {}
     assert problems({"name": "m", "kind": "iiif", "url": "https://a.example.org/m.json"}) == {}
     got = problems(iiif_source(url="ftp://archive.example.org/m.json", target_size=-1,
-                               max_manifests=0, first_canvas_only="yes", max_depth=-2))
+                               max_manifests=0, first_canvas_only="yes", max_depth=-2,
+                               level0_sizes="nearest"))
     assert set(got) == {"sources[1].url", "sources[1].target_size", "sources[1].max_manifests",
-                        "sources[1].first_canvas_only", "sources[1].max_depth"}
+                        "sources[1].first_canvas_only", "sources[1].max_depth",
+                        "sources[1].level0_sizes"}
     assert "did you mean 'target_size'" in problems(iiif_source(target_sise=5))[
         "sources[1].target_sise"]
     assert "target_size above 0" in problems(iiif_source(target_size=0, upscale=True))[
