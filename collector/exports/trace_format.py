@@ -14,6 +14,7 @@ from collections.abc import Iterable
 from dataclasses import asdict, dataclass
 from typing import TYPE_CHECKING, Any
 
+from collector.checks.rights_statements import STATEMENTS
 from collector.safe_text import csv_row, shown_name
 from collector.storage.ledger_repair import RECOVERED_FLAG
 
@@ -84,6 +85,10 @@ def attribution_line(item: ItemRecord | None, *, modified: bool = False,
         deed = item.deed_url or item.licence_url
         verb = "marked with" if item.spdx_id in _PUBLIC_DOMAIN else "licensed under"
         parts.append(f"{verb} {label}" + (f" ({deed})" if deed else ""))
+    elif item.rights_statement in STATEMENTS:
+        st = STATEMENTS[item.rights_statement or ""]
+        parts.append(f"rights statement {st.name} ({st.page_url}): not a licence, read the "
+                     "statement before reusing this image")
     else:
         raw = f" (the source said {item.licence_raw!r})" if item.licence_raw else ""
         parts.append(f"licence unknown{raw}: find the licence before reusing this image")
@@ -189,10 +194,13 @@ def _item_lines(item: ItemRecord, indent: str = "  ") -> list[str]:
                          ("local file", item.local_path), ("date", item.date)):
         if value:
             lines.append(f"{indent}{label + ':':<13} {value}")
+    statement = STATEMENTS.get(item.rights_statement or "") if not item.spdx_id else None
     licence = " ".join(p for p in (
         repr(item.licence_raw) if item.licence_raw else None,
-        f"-> {item.spdx_id}" if item.spdx_id else "-> no SPDX id (unknown licence)",
-        item.deed_url or item.licence_url) if p)
+        f"-> {item.spdx_id}" if item.spdx_id else (
+            f"-> rights statement {statement.code} ({statement.name}; not a licence)"
+            if statement else "-> no SPDX id (unknown licence)"),
+        statement.page_url if statement else item.deed_url or item.licence_url) if p)
     lines.append(f"{indent}licence:      {licence}")
     if item.fetch:
         f = item.fetch
