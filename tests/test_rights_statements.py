@@ -132,3 +132,18 @@ def test_recipe_allowlist_accepts_statements_and_refuses_misspelt_ones():
         parse_recipe(good.replace("rs:NoC-US", "rs:NoC-USA"), Path("recipe.toml"))
     assert "licences.allow" in str(caught.value.problems[0])
     assert "not a RightsStatements.org statement" in str(caught.value.problems[0])
+
+
+def test_statements_are_counted_as_rs_keys_and_old_ledgers_still_read(tmp_path):
+    """The status counts name a statement as rs:<id>; a ledger without the column (schema 3,
+    opened read-only, so not migrated) still answers, counting it unknown."""
+    from collector.storage import queries
+    from collector.storage.ledger import Ledger
+
+    with Ledger.create(tmp_path / "l.sqlite") as ledger:
+        source = ledger.source_id("museum", "iiif", {})
+        ledger.add_item(source, "c1", {"state": "stored", "rights_statement": "NoC-US"})
+        ledger.add_item(source, "c2", {"state": "stored", "spdx_id": "CC0-1.0"})
+        assert dict(queries.ledger_totals(ledger).licences) == {"rs:NoC-US": 1, "CC0-1.0": 1}
+        ledger.rows("ALTER TABLE items DROP COLUMN rights_statement")
+        assert dict(queries.ledger_totals(ledger).licences) == {"unknown": 1, "CC0-1.0": 1}

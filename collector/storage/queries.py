@@ -77,7 +77,7 @@ def ledger_totals(ledger: Ledger) -> LedgerTotals:
         "FROM fetches GROUP BY host ORDER BY host"))
     placeholders = ", ".join("?" for _ in ACCEPTED_STATES)
     licences = tuple((r[0], int(r[1])) for r in ledger.rows(
-        f"SELECT {licence_key(ledger, '')} AS spdx, count(*) AS n FROM items "
+        f"SELECT {_licence_key(ledger, '')} AS spdx, count(*) AS n FROM items "
         f"WHERE state IN ({placeholders}) GROUP BY spdx ORDER BY n DESC", ACCEPTED_STATES))
     last = ledger.query("SELECT * FROM runs ORDER BY id DESC LIMIT 1")
     last_run = last[0] if last else None
@@ -389,7 +389,7 @@ def _statement_column(ledger: Ledger, prefix: str = "i.") -> str:
     return f"{prefix}rights_statement" if "rights_statement" in names else "NULL"
 
 
-def licence_key(ledger: Ledger, prefix: str = "i.") -> str:
+def _licence_key(ledger: Ledger, prefix: str = "i.") -> str:
     """SQL for how an item's licence is counted: its SPDX id, else ``rs:<id>`` of its
     RightsStatements.org statement, else 'unknown'."""
     return (f"coalesce({prefix}spdx_id, 'rs:' || {_statement_column(ledger, prefix)}, "
@@ -424,7 +424,7 @@ def accepted_facts(ledger: Ledger) -> AcceptedFacts:
         "files": ledger.scalar(f"SELECT count(*) {_ACCEPTED_FROM}") or 0,
         "bytes": ledger.scalar(f"SELECT coalesce(sum(f.size), 0) {_ACCEPTED_FROM}") or 0,
         "formats": by("f.format"), "modes": by("f.mode"),
-        "by_licence": by(licence_key(ledger)), "by_source": by("s.name"),
+        "by_licence": by(_licence_key(ledger)), "by_source": by("s.name"),
         "by_host": by("host_of(i.image_url)"),
         "stored": _count(ledger, "i.state = 'stored'"),
         "near_kept": _count(ledger, "i.state = 'near_duplicate'"),
