@@ -75,10 +75,11 @@ def render(n: int, size: tuple[int, int]) -> bytes:
     """Image ``n`` at ``size``: a smooth random picture plus grain, as JPEG (numpy for the
     grain: Pillow's effect_noise takes seconds at 48 megapixels)."""
     w, h = size
-    seed = Image.frombytes("RGB", (3, 4), bytes((n * 37 + i * 53) % 256 for i in range(36)))
+    rng = np.random.default_rng(n)
+    seed = Image.fromarray(rng.integers(0, 256, (8, 6, 3), dtype=np.uint8), "RGB")
     smooth = seed.resize((max(1, w // 8), max(1, h // 8)), Image.Resampling.BICUBIC)
     picture = np.asarray(smooth.resize(size, Image.Resampling.NEAREST))
-    grain = np.frombuffer(np.random.default_rng(n).bytes(w * h * 3), np.uint8).reshape(h, w, 3)
+    grain = np.frombuffer(rng.bytes(w * h * 3), np.uint8).reshape(h, w, 3)
     mixed = picture // 8 * 7 + (grain & 31)  # at most 223 + 31: no overflow
     out = io.BytesIO()
     Image.fromarray(mixed, "RGB").save(out, "JPEG", quality=85)
@@ -174,14 +175,15 @@ level0_sizes = "{listed}"
 
 
 def run(folder: Path, count: int, target: int, listed: str) -> tuple[Served, float, int]:
-    """One gather over a fresh site; what the server sent, seconds, items stored."""
+    """One gather over a fresh site; what the server sent, seconds, items with a stored file."""
     server, served = serve(count)
     try:
         col = init_collection(folder, contact="bench@example.org")
         col.recipe_path.write_text(recipe(server.url("/iiif/collection.json"), target, listed))
         stats = run_gather(col.root, "--quiet", timeout=1800, cwd=folder.parent)
         with col.ledger(readonly=True) as ledger:
-            stored = ledger.query("SELECT count(*) AS n FROM items WHERE state = 'stored'")[0]["n"]
+            stored = ledger.query("SELECT count(*) AS n FROM items "
+                                  "WHERE file_sha256 IS NOT NULL")[0]["n"]
     finally:
         server.close()
     return served, stats.seconds, stored
