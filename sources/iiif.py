@@ -201,9 +201,11 @@ class _Walker:
         lang = self.cfg.language
         pairs = metadata_pairs(doc, lang)
         v3 = document_version(doc) == "3.0"
-        required = doc.get("requiredStatement")
-        attribution = (lang_text(required.get("value"), lang) if isinstance(required, dict)
-                       else None) if v3 else lang_text(doc.get("attribution"), lang)
+        required = doc.get("requiredStatement") if v3 else None
+        if isinstance(required, dict):  # 3.0 §4.1: a label/value pair
+            attribution = lang_text(required.get("value"), lang)
+        else:  # 2.1: "attribution" is the text to show
+            attribution = None if v3 else lang_text(doc.get("attribution"), lang)
         rights = first_id(doc.get("rights") if v3 else doc.get("license"))
         page = first_id(doc.get("homepage") if v3 else doc.get("related"))
         facts = {
