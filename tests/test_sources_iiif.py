@@ -226,3 +226,15 @@ def test_image_without_a_service_is_used_as_given_and_unreadable_info_is_noted()
                            FakeFetcher(pages_for(doc)))  # no info.json answers: 404
     assert [c.image_url for c in cands] == [f"{BASE}/img/a-1/full/max/0/default.jpg"]
     assert {n.kind for n in notes} == {"fetch_failed", "iiif_size"}
+
+
+def test_rights_as_text_and_a_canvas_with_its_own_rights():
+    """A rights value that is no URI goes to licence_raw; a canvas's own rights win (3.0 §4.1
+    allows rights on a Canvas)."""
+    doc = manifest3("a", 2, rights="CC BY 4.0")
+    doc["items"][1]["rights"] = "http://rightsstatements.org/vocab/InC/1.0/"
+    cands, _ = collect(source(url=f"{BASE}/a/manifest.json"),
+                       FakeFetcher(pages_for(doc, infos=[info("a", 1), info("a", 2)])))
+    assert (cands[0].licence_raw, cands[0].licence_url) == ("CC BY 4.0", None)
+    assert (cands[1].licence_raw, cands[1].licence_url) == (
+        None, "http://rightsstatements.org/vocab/InC/1.0/")
