@@ -86,7 +86,7 @@ MALFORMED = [
     ("source without name", GOOD + '[[sources]]\nkind = "html"\n',
      "recipe.toml: sources[0].name: is required"),
     ("source kind unknown", GOOD + '[[sources]]\nname = "a"\nkind = "jsonapi"\n',
-     "recipe.toml: sources[0].kind: must be one of 'html', 'json_api', 'scans', got 'jsonapi'"
+     "recipe.toml: sources[0].kind: must be one of 'html', 'iiif', 'json_api', 'scans', got 'jsonapi'"
      " (did you mean 'json_api'?)"),
     ("duplicate source names", GOOD + '[[sources]]\nname = "a"\nkind = "scans"\npath = "s"\n'
      '[[sources]]\nname = "a"\nkind = "scans"\npath = "s"\n',
