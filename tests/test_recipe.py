@@ -86,8 +86,8 @@ MALFORMED = [
     ("source without name", GOOD + '[[sources]]\nkind = "html"\n',
      "recipe.toml: sources[0].name: is required"),
     ("source kind unknown", GOOD + '[[sources]]\nname = "a"\nkind = "jsonapi"\n',
-     "recipe.toml: sources[0].kind: must be one of 'html', 'iiif', 'json_api', 'scans', got 'jsonapi'"
-     " (did you mean 'json_api'?)"),
+     "recipe.toml: sources[0].kind: must be one of 'html', 'iiif', 'json_api', 'scans', "
+     "got 'jsonapi' (did you mean 'json_api'?)"),
     ("duplicate source names", GOOD + '[[sources]]\nname = "a"\nkind = "scans"\npath = "s"\n'
      '[[sources]]\nname = "a"\nkind = "scans"\npath = "s"\n',
      "recipe.toml: sources[1].name: 'a' is used by an earlier source"),
