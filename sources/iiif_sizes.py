@@ -71,7 +71,9 @@ def service_version(service: Mapping[str, Any]) -> str | None:
     profile = json_text(service.get("profile"))
     if kind == "ImageService3" or "image/3" in context:
         return "3.0"
-    if kind in ("ImageService2", "ImageService1") or "image/2" in context or "image/2" in profile:
+    if kind == "ImageService1" or "image/1" in context + profile:
+        return None  # Image API 1.x has another request syntax ("native"); not negotiated
+    if kind == "ImageService2" or "image/2" in context or "image/2" in profile:
         return "2.1"
     if "iiif.io/api/image" in profile + context:
         return "2.1"

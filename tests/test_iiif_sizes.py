@@ -49,6 +49,10 @@ def test_service_versions_from_type_context_and_profile():
     assert service_version({"@id": SVC2, "@context": "http://iiif.io/api/image/2/context.json",
                             "profile": "http://iiif.io/api/image/2/level1.json"}) == "2.1"
     assert service_version({"id": "https://x.example.org/auth", "type": "AuthService"}) is None
+    # Image API 1.1 (context image/1) has another size syntax: not negotiated, used as given.
+    assert service_version({"@id": SVC2, "@context": "http://iiif.io/api/image/1/context.json",
+                            "profile": "http://library.stanford.edu/iiif/image-api/1.1/"
+                                       "compliance.html#level1"}) is None
 
 
 def test_level_2_asks_for_a_confined_box_at_the_target():
