@@ -50,6 +50,9 @@ class Candidate:
     content: bytes | None = None
     parent_key: str | None = None
     crop_box: tuple[int, int, int, int] | None = None
+    # How the image URL's size was chosen, when the source negotiated it (IIIF: the image
+    # service, its full size, the size asked for and why); kept in items.size_request.
+    size_request: dict | None = None
 
 
 @dataclass

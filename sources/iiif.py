@@ -13,7 +13,7 @@ Sizes (sources.iiif_sizes): each image service's ``info.json`` is read through t
 per run (cached here by service id; a source kind has no ledger, so the cache lives as long as
 the listing) and the request is chosen from it: ``target_size`` (longest side), level-0
 ``sizes``, ``maxWidth``/``maxHeight``/``maxArea``, never upscaled. What was chosen and why is
-recorded in the item's metadata (``iiif_image``: service, full size, size asked, why); a
+recorded as the candidate's ``size_request`` (service, full size, size asked, why); a
 service with only tiles gives a note and its canvas is skipped.
 """
 
@@ -241,11 +241,12 @@ class _Walker:
         image_url = self._image_url(url, painted, facts)
         if image_url is None:
             return None
+        size_request = facts.pop("image", None)
         return Candidate(
             source_key=painted.canvas_id, image_url=image_url, page_url=fields["page_url"],
             title=title, creator=fields["creator"], licence_url=licence_url,
             licence_raw=licence_raw, date=fields["date"],
-            metadata={"iiif": capped_json(facts)})
+            metadata={"iiif": capped_json(facts)}, size_request=size_request)
 
     def _image_url(self, url: str, painted: Painted, facts: dict[str, Any]) -> str | None:
         """The image to request: negotiated through the image service, else the painted

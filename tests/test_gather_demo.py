@@ -278,7 +278,7 @@ def test_iiif_items_were_asked_at_the_negotiated_size_and_rights_statements_kept
     items = [i for i in demo_server.manifest["items"] if i["source"] == "iiif"]
     for item in items:
         row = keyed[("iiif", item["key"])]
-        facts = json.loads(row["metadata"])["iiif"]["image"]
+        facts = json.loads(row["size_request"])
         assert facts["size"] == item["iiif_size"] and facts["why"], item["key"]
         assert row["rights_statement"] == item.get("rights_statement"), item["key"]
     noc = next(i for i in items if i.get("rights_statement") == "NoC-US")
@@ -292,6 +292,7 @@ def test_iiif_items_were_asked_at_the_negotiated_size_and_rights_statements_kept
     assert "rights statement NoC-US" in text
     assert "http://rightsstatements.org/page/NoC-US/1.0/?language=en" in text
     assert "allowed:      yes" in text
+    assert "image size:   asked !512,384 (512x384) of 800x600" in text
     result = export_datasheet(col.root, out=col.root.parent / "sheet")
     assert result.counts.by_licence.get("rs:NoC-US") == 1
     sheet = (result.out / "datasheet.md").read_text(encoding="utf-8")

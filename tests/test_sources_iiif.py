@@ -108,9 +108,10 @@ def test_nested_collection_gives_one_item_per_canvas_with_fields():
     assert facts["required_statement"] == "Fernhollow Field Society"
     assert facts["summary"] == "A pressed fern." and facts["nav_date"].startswith("1911")
     assert facts["part_of"] == f"{BASE}/collection.json"
-    assert facts["image"] == {"service": f"{BASE}/img/a-1", "image_api": "3.0", "level": 2,
-                              "full_size": [6000, 8000], "size": "!768,1024",
-                              "asked_size": [768, 1024], "why": facts["image"]["why"]}
+    assert first.size_request == {
+        "service": f"{BASE}/img/a-1", "image_api": "3.0", "level": 2,
+        "full_size": [6000, 8000], "size": "!768,1024", "asked_size": [768, 1024],
+        "why": "level 2: scaled to fit target_size 1024"}
 
 
 def test_language_choice_with_fallback():

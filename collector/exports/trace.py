@@ -117,6 +117,7 @@ class ItemRecord:
     near_of: int | None = None  # the ledger's own near-duplicate note: the earlier item
     near_distance: int | None = None
     rights_statement: str | None = None  # RightsStatements.org id, when no SPDX licence
+    size_request: dict[str, Any] | None = None  # how the image size was negotiated
 
 
 @dataclass
@@ -412,6 +413,8 @@ class Tracer:
             spdx_id=row.get("spdx_id"), deed_url=licence_deed_url(row.get("spdx_id")),
             date=row.get("date"), run_id=row.get("run_id"), local_path=row.get("local_path"),
             rights_statement=row.get("rights_statement"),
+            size_request=row.get("size_request") if isinstance(row.get("size_request"), dict)
+            else None,
             fetch=self._fetch(row["id"]), parent_sha256=row.get("parent_sha256"),
             crop_box=list(box) if isinstance(box, list) else None,
             near_of=row.get("duplicate_of") if row.get("state") == "near_duplicate" else None,

@@ -182,6 +182,16 @@ def format_table(results: list[TraceResult]) -> list[str]:
     return lines
 
 
+def _size_words(req: dict[str, Any]) -> str:
+    """How the image's size was chosen: the size asked for, of which full size, and why."""
+    def dims(value: Any) -> str:
+        return "x".join(str(v) for v in value) if isinstance(value, list) else "?"
+    if "size" not in req:
+        return str(req.get("why", "?"))
+    return (f"asked {req['size']} ({dims(req.get('asked_size'))}) of "
+            f"{dims(req.get('full_size'))} from {req.get('service', '?')}: {req.get('why', '?')}")
+
+
 def _copy_words(mirrored: bool) -> str:
     return "a mirrored copy" if mirrored else "a resized/re-encoded copy"
 
@@ -202,6 +212,8 @@ def _item_lines(item: ItemRecord, indent: str = "  ") -> list[str]:
             if statement else "-> no SPDX id (unknown licence)"),
         statement.page_url if statement else item.deed_url or item.licence_url) if p)
     lines.append(f"{indent}licence:      {licence}")
+    if item.size_request:
+        lines.append(f"{indent}image size:   {_size_words(item.size_request)}")
     if item.fetch:
         f = item.fetch
         extra = ", ".join(p for p in (

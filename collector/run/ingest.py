@@ -151,6 +151,7 @@ class Ingest:
             "creator": c.creator, "licence_raw": c.licence_raw, "licence_url": c.licence_url,
             "spdx_id": licence.spdx_id, "date": c.date, "metadata": c.metadata or None,
             "rights_statement": None if licence.spdx_id else _statement_code(c),
+            "size_request": getattr(c, "size_request", None),
             "crop_box": list(c.crop_box) if c.crop_box else None,
             "local_path": shown_name(str(c.local_path)) if c.local_path else None,
             "run_id": self.record.run_id,

@@ -86,11 +86,14 @@ def _migration_3(db: sqlite_utils.Database) -> None:
 
 def _migration_4(db: sqlite_utils.Database) -> None:
     """An item's RightsStatements.org statement, kept apart from its SPDX licence: the
-    statement's id (``NoC-US``, ``InC``...; collector.checks.rights_statements). Rows recorded
-    before stay NULL (not read)."""
+    statement's id (``NoC-US``, ``InC``...; collector.checks.rights_statements); and how the
+    size of its image was chosen when the source negotiated it (``size_request``, JSON: the
+    IIIF image service, its full size, the size asked for and why). Rows recorded before stay
+    NULL (not read)."""
     items = db.table("items")
-    if "rights_statement" not in items.columns_dict:
-        items.add_column("rights_statement", str)
+    for name in ("rights_statement", "size_request"):
+        if name not in items.columns_dict:
+            items.add_column(name, str)
 
 
 MIGRATIONS: dict[int, Callable[[sqlite_utils.Database], None]] = {
