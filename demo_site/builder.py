@@ -23,12 +23,14 @@ from collector.demo_site.hosts import HOSTS
 GENERATOR_VERSION = "1"
 SEED = 3  # chosen so unrelated pictures are >= 14 bits apart (imagehash.phash)
 
-SOURCE_ORDER = ("api-pages", "api-objects", "api-linked", "gallery", "scanner", "oai-records")
+SOURCE_ORDER = ("api-pages", "api-objects", "api-linked", "gallery", "scanner", "oai-records",
+                "iiif")
 POLICY: dict[str, Any] = {
     "licence_allow": [
         "CC0-1.0", "CC-PDM-1.0",
         "CC-BY-1.0", "CC-BY-2.0", "CC-BY-2.5", "CC-BY-3.0", "CC-BY-4.0",
         "CC-BY-SA-1.0", "CC-BY-SA-2.0", "CC-BY-SA-2.5", "CC-BY-SA-3.0", "CC-BY-SA-4.0",
+        "rs:NoC-US",
     ],
     "allow_unknown": False,
     "min_side": 128,

@@ -45,6 +45,7 @@ from collector.demo_site.hosts import (
     LAST_MODIFIED,
     RETRY_AFTER_FORM,
 )
+from collector.demo_site.iiif_archive import build_iiif
 from collector.demo_site.oai_content import build_oai, oai_manifest
 
 ROBOTS_API = """# Fernhollow Field Society: API and media host
@@ -94,6 +95,7 @@ def generate(out_dir: Path, *, seed: int = SEED) -> dict[str, Any]:
     build_gallery(b)
     build_scans(b)
     build_oai(b)
+    iiif_source = build_iiif(b)
     hosts = _hosts_section(DEFAULT_RATE)
     b.put_page(4, "/policies/robots.txt", ROBOTS_ANNEX, "text/plain; charset=utf-8",
                role="robots")
@@ -115,7 +117,7 @@ def generate(out_dir: Path, *, seed: int = SEED) -> dict[str, Any]:
         "hosts": hosts,
         "policy": POLICY,
         "source_order": list(SOURCE_ORDER),
-        "sources": _sources_section(b),
+        "sources": [*_sources_section(b), iiif_source],
         "items": [it.to_json() for it in b.items],
         "resources": resources,
         "scans": b.scans,
@@ -170,7 +172,7 @@ def content_version() -> str:
     h = hashlib.sha256(f"{GENERATOR_VERSION}:{SEED}:{PIL.__version__}:{np.__version__}"
                        .encode())
     for name in ("art", "builder", "catalogue", "content", "generate", "hosts", "metadata",
-                 "pages", "oai", "oai_content"):
+                 "pages", "oai", "oai_content", "iiif_archive"):
         h.update((Path(__file__).parent / f"{name}.py").read_bytes())
     return h.hexdigest()[:12]
 

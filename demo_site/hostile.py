@@ -32,6 +32,7 @@ from typing import Any
 
 from PIL import Image
 
+from collector.demo_site import hostile_iiif
 from collector.demo_site.loopback import LoopbackServer, send
 
 FORBIDDEN_HOST = "127.0.0.9"  # loopback, but not in the recipe's allow_addresses
@@ -398,8 +399,8 @@ class Case:
 
     kind "image": the lister lists one item (source_key = name) whose image URL is ``path`` on
     the case's own host; ``state``/``reason`` are that item's expected ledger outcome.
-    kind "json"/"html"/"oai": a source of its own starting at ``path``; ``reason`` is the note
-    kind the source must leave (or None), and every item it lists must be stored.
+    kind "json"/"html"/"oai"/"iiif": a source of its own starting at ``path``; ``reason`` is
+    the note kind the source must leave (or None), and every item it lists must be stored.
     """
 
     name: str
@@ -538,6 +539,14 @@ CASES: list[Case] = [
          oai_endless_token, reason="max_pages", why="bounded by max_pages = 5"),
     Case("oai-no-namespace", "OAI-PMH answers without the OAI namespace", "oai", "/oai",
          oai_no_namespace, reason="not_oai_pmh", why="the root element is not OAI-PMH 2.0"),
+    Case("iiif-self-manifest", "IIIF manifest that lists itself (and is listed twice)", "iiif",
+         hostile_iiif.START, hostile_iiif.self_listing_manifest, reason="loop",
+         why="every document is read once; its one canvas is stored"),
+    Case("iiif-collection-cycle", "IIIF collection cycle (A -> B -> A)", "iiif",
+         hostile_iiif.START, hostile_iiif.collection_cycle, reason="loop"),
+    Case("iiif-billion-pixels", "IIIF info.json claiming 10^9 x 10^9 pixels", "iiif",
+         hostile_iiif.START, hostile_iiif.billion_pixels, reason=None,
+         why="only the target size is asked for (!2048,2048), never the full size"),
 ]
 CASE_NAMES = [c.name for c in CASES]
 
@@ -674,6 +683,13 @@ name = "{case.name}"
 kind = "oai_pmh"
 url = "{self.url(case)}"
 max_pages = 5
+""")
+            elif case.kind == "iiif":
+                parts.append(f"""
+[[sources]]
+name = "{case.name}"
+kind = "iiif"
+url = "{self.url(case)}"
 """)
             elif case.kind == "html":
                 parts.append(f"""

@@ -56,6 +56,9 @@ class Candidate:
     # status="deleted"): why, in the archive's words. Such a candidate has no image; the run
     # marks an item it already has as withdrawn by the archive instead of fetching anything.
     withdrawn: str | None = None
+    # How the image URL's size was chosen, when the source negotiated it (IIIF: the image
+    # service, its full size, the size asked for and why); kept in items.size_request.
+    size_request: dict | None = None
 
 
 @dataclass

@@ -264,8 +264,38 @@ def test_every_listed_item_has_exactly_one_expected_outcome(
     """Items found by crawling all endpoints match the manifest items one to one."""
     listed, _ = _crawl(fast_server)
     expected = {(i["source"], i["key"]): fast_server.fill(i["image_url"])
-                for i in manifest["items"]}
+                for i in manifest["items"] if i["source"] != "iiif"}
     assert listed == expected
+
+
+def _crawl_iiif(server: DemoServer, url: str) -> Iterator[tuple[str, dict[str, Any]]]:
+    """(canvas id, image service) of every canvas below a IIIF collection (Presentation 3.0 §3:
+    items of Collections and Manifests; 2.1: sequences -> canvases -> images -> resource)."""
+    doc = json.loads(fetch(url)[2])
+    for entry in doc.get("items", []):
+        if entry["type"] in ("Collection", "Manifest"):
+            yield from _crawl_iiif(server, entry["id"])
+        elif entry["type"] == "Canvas":
+            body = entry["items"][0]["items"][0]["body"]
+            yield entry["id"], body["service"][0]
+    for seq in doc.get("sequences", []):
+        for canvas in seq["canvases"]:
+            yield canvas["@id"], canvas["images"][0]["resource"]["service"]
+
+
+def test_iiif_canvases_match_the_manifest_and_serve_the_expected_size(
+        fast_server: DemoServer, manifest: dict[str, Any]) -> None:
+    """Every canvas of the IIIF collection is a manifest item; its info.json answers, and the
+    one size a correct client asks for (manifest "iiif_size") is served at that size."""
+    top = fast_server.url(4, "/iiif/collection.json")
+    found = dict(_crawl_iiif(fast_server, top))
+    items = {i["key"]: i for i in manifest["items"] if i["source"] == "iiif"}
+    assert set(found) == set(items)
+    for key, service in found.items():
+        service_id = service.get("id") or service["@id"]
+        assert fetch(f"{service_id}/info.json")[0] == 200
+        status, _, body = fetch(fast_server.fill(items[key]["image_url"]))
+        assert status == 200 and len(body) == items[key]["bytes"], key
 
 
 def test_every_referenced_image_url_exists_or_is_deliberately_broken(
@@ -320,6 +350,6 @@ def test_recipes_render_to_toml_with_port_scans_and_loopback_only(tmp_path: Path
                     assert parts.port == 43210
     demo = tomllib.loads(recipes.render("demo", 1, tmp_path / "scans"))
     assert [s["name"] for s in demo["sources"]] == ["api-pages", "api-objects", "api-linked",
-                                                     "gallery", "scanner", "oai-records"]
+                                                     "gallery", "scanner", "oai-records", "iiif"]
     assert demo["sources"][4]["path"] == (tmp_path / "scans").as_posix()
     assert demo["sources"][1]["detail"]["url"].endswith("/api/v2/objects/{id}")

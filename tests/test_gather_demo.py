@@ -309,3 +309,39 @@ def test_the_store_holds_only_files_named_by_their_sha256(demo_run) -> None:
         assert match, path
         assert hashlib.sha256(path.read_bytes()).hexdigest() == match[3]
     assert [p.name for p in col.store.root.iterdir() if p.name.startswith(".")] == [".incoming"]
+
+
+def test_iiif_items_were_asked_at_the_negotiated_size_and_rights_statements_kept(
+        demo_run, demo_server) -> None:
+    """IIIF canvases: the image request is the manifest's expected size (IIIF Image API 3.0
+    §4.2 / 2.1 §4.2), recorded with its reason; the NoC-US item is stored with its statement
+    (RightsStatements.org id, not an SPDX id) and InC is skipped; trace and the datasheet show
+    the statement with its link."""
+    from collector.exports.datasheet import export_datasheet
+    from collector.exports.trace import Tracer
+    from collector.exports.trace_format import format_record
+
+    col, log, _ = demo_run
+    keyed = ledger_items(col)
+    items = [i for i in demo_server.manifest["items"] if i["source"] == "iiif"]
+    for item in items:
+        row = keyed[("iiif", item["key"])]
+        facts = json.loads(row["size_request"])
+        assert facts["size"] == item["iiif_size"] and facts["why"], item["key"]
+        assert row["rights_statement"] == item.get("rights_statement"), item["key"]
+    noc = next(i for i in items if i.get("rights_statement") == "NoC-US")
+    row = keyed[("iiif", noc["key"])]
+    assert row["spdx_id"] is None and row["state"] == "stored"
+    image_paths = {r.path for r in log if r.path.startswith("/iiif/img/")}
+    assert not any("/full/max/" in p or "/full/full/" in p for p in image_paths)
+    with Tracer.open(col.root) as tracer:
+        text = "\n".join(format_record(tracer.trace_file(
+            col.store.existing(row["file_sha256"], "jpg"))))
+    assert "rights statement NoC-US" in text
+    assert "http://rightsstatements.org/page/NoC-US/1.0/?language=en" in text
+    assert "allowed:      yes" in text
+    assert "image size:   asked !512,384 (512x384) of 800x600" in text
+    result = export_datasheet(col.root, out=col.root.parent / "sheet")
+    assert result.counts.by_licence.get("rs:NoC-US") == 1
+    sheet = (result.out / "datasheet.md").read_text(encoding="utf-8")
+    assert "rs:NoC-US" in sheet and "rightsstatements.org/page/NoC-US/1.0/" in sheet

@@ -21,6 +21,7 @@ from pathlib import Path
 from typing import Any
 from urllib.parse import urlsplit
 
+from collector.checks.rights_statements import ALLOW_PREFIX, allow_entry_problem
 from collector.errors import RecipeError, RecipeProblem
 from collector.schema import (
     Check,
@@ -139,7 +140,12 @@ def _check_addresses(values: Any) -> str | None:
 
 
 def _check_spdx_list(values: Any) -> str | None:
-    bad = [v for v in values if not SPDX_ID_RE.match(v)]
+    for value in values:
+        if isinstance(value, str) and value.startswith(ALLOW_PREFIX):
+            problem = allow_entry_problem(value)
+            if problem:
+                return problem
+    bad = [v for v in values if not v.startswith(ALLOW_PREFIX) and not SPDX_ID_RE.match(v)]
     if bad:
         return (f"entries must be SPDX licence ids like \"CC-BY-4.0\" (see "
                 f"https://spdx.org/licenses/), got {bad[0]!r}")

@@ -143,7 +143,9 @@ def build_croissant(facts: DatasheetFacts, answers: dict[str, str]) -> dict[str,
         "name": answers.get("dataset.name") or coll.get("name") or "",
         "description": answers.get("dataset.description") or coll.get("description") or "",
         "datePublished": answers.get("dataset.date_published") or facts["generated_at"][:10],
-        "license": [spdx_url(k) for k in release["by_licence"] if k != "unknown"],
+        # RightsStatements.org keys ("rs:NoC-US") are no SPDX licences: not listed here.
+        "license": [spdx_url(k) for k in release["by_licence"]
+                    if k != "unknown" and not k.startswith("rs:")],
     }
     if answers.get("dataset.url"):
         doc["url"] = answers["dataset.url"]

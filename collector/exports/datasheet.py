@@ -35,10 +35,11 @@ from typing import TYPE_CHECKING, Any, TypedDict
 
 from collector import __version__
 from collector.checks.licences import licence_allowed, licence_conditions, licence_deed_url
+from collector.checks.rights_statements import ALLOW_PREFIX, STATEMENTS
 from collector.config.recipe import Recipe
 from collector.errors import CollectionError, LedgerError, LedgerUnusable
 from collector.exports.datasheet_questions import load_answers
-from collector.exports.facts import DatasheetFacts, ResolutionBins, Timeline
+from collector.exports.facts import DatasheetFacts, LicenceFacts, ResolutionBins, Timeline
 from collector.safe_text import csv_cell, csv_row
 from collector.storage import queries
 from collector.storage.ledger import Ledger
@@ -92,11 +93,7 @@ def _facts(ledger: Ledger, recipe: Recipe, now: str) -> DatasheetFacts:
             "policy": recipe.images.near_duplicates,
             "near_distance": recipe.images.near_distance,
         },
-        "licences": [
-            {"spdx_id": spdx, "files": n,
-             "conditions": licence_conditions(None if spdx == "unknown" else spdx),
-             "deed_url": licence_deed_url(None if spdx == "unknown" else spdx)}
-            for spdx, n in acc["by_licence"].items()],
+        "licences": [_licence_facts(spdx, n) for spdx, n in acc["by_licence"].items()],
         "timeframe": frame,
         "requests": queries.request_facts(ledger),
         "hosts": queries.host_facts(ledger),
@@ -178,6 +175,26 @@ class ReleaseCounts:
     by_licence: dict[str, int] = field(default_factory=dict)
 
 
+def _licence_facts(key: str, files: int) -> LicenceFacts:
+    """Conditions and link of one licence key: an SPDX id, 'unknown', or ``rs:<id>`` for a
+    RightsStatements.org statement (its English name and statement page)."""
+    statement = STATEMENTS.get(key.removeprefix(ALLOW_PREFIX)) if key.startswith(
+        ALLOW_PREFIX) else None
+    if statement is not None:
+        return {"spdx_id": key, "files": files,
+                "conditions": [f"rights statement: {statement.name} (not a licence)"],
+                "deed_url": statement.page_url}
+    spdx = None if key == "unknown" else key
+    return {"spdx_id": key, "files": files, "conditions": licence_conditions(spdx),
+            "deed_url": licence_deed_url(spdx)}
+
+
+def _statement_words(code: str | None) -> str | None:
+    """``rights statement: <English name>`` for a RightsStatements.org id, else None."""
+    statement = STATEMENTS.get(code or "")
+    return f"rights statement: {statement.name}" if statement else None
+
+
 def file_name_for(sha256: str, ext: str) -> str:
     """The stable release name of a file: 16 hex digits of its sha256 and its extension."""
     return f"{sha256[:16]}.{ext}"
@@ -191,11 +208,14 @@ def iter_release_rows(ledger: Ledger, recipe: Recipe, counts: ReleaseCounts, *,
     allowed_cache: dict[str | None, bool] = {}
     for r in queries.release_rows(ledger):
         (sha, ext, mime, fmt, width, height, size, flags_json, stored_at, source, key,
-         page_url, image_url, title, creator, licence_raw, spdx, licence_url, fetched_at) = r
-        if spdx not in allowed_cache:
-            allowed_cache[spdx] = licence_allowed(spdx, recipe.licences.allow,
-                                                  recipe.licences.allow_unknown)[0]
-        if not allowed_cache[spdx]:
+         page_url, image_url, title, creator, licence_raw, spdx, licence_url, fetched_at,
+         statement) = r
+        decided_by = spdx or (f"{ALLOW_PREFIX}{statement}" if statement else None)
+        if decided_by not in allowed_cache:
+            allowed_cache[decided_by] = licence_allowed(
+                spdx, recipe.licences.allow, recipe.licences.allow_unknown,
+                None if spdx else STATEMENTS.get(statement or ""))[0]
+        if not allowed_cache[decided_by]:
             counts.excluded_licence += 1
             continue
         try:
@@ -213,7 +233,7 @@ def iter_release_rows(ledger: Ledger, recipe: Recipe, counts: ReleaseCounts, *,
             "spdx_id": spdx or "", "licence_url": licence_url or licence_deed_url(spdx) or "",
             "fetched_at": fetched_at or stored_at or "", "width": width, "height": height,
             "format": fmt or "", "mime": mime or "", "size": size,
-            "flags": ";".join(flags), "_ext": ext,
+            "flags": ";".join(flags), "_ext": ext, "_statement": statement,
         }
 
 
@@ -222,7 +242,8 @@ def _count_kept(counts: ReleaseCounts, row: dict[str, Any]) -> None:
     counts.bytes += row["size"] or 0
     slot = counts.by_ext.setdefault(row["_ext"], {"mime": row["mime"], "files": 0})
     slot["files"] += 1
-    spdx = row["spdx_id"] or "unknown"
+    statement = row.get("_statement")
+    spdx = row["spdx_id"] or (f"{ALLOW_PREFIX}{statement}" if statement else "unknown")
     counts.by_licence[spdx] = counts.by_licence.get(spdx, 0) + 1
 
 
@@ -390,7 +411,8 @@ def _write_rows(ledger: Ledger, recipe: Recipe, store: Store, images: Path,
             attr.writerow([csv_cell(v) for v in (
                 row["file_name"], row["title"], row["creator"],
                 row["page_url"] or row["image_url"] or row["source"],
-                row["spdx_id"] or row["licence_raw"] or "unknown", row["licence_url"])])
+                row["spdx_id"] or _statement_words(row["_statement"]) or row["licence_raw"]
+                or "unknown", row["licence_url"])])
     return counts, sink.digest.hexdigest()
 
 

@@ -31,6 +31,7 @@ from typing import Any
 
 from collector.checks.images import sniff_format
 from collector.checks.licences import licence_allowed, licence_deed_url
+from collector.checks.rights_statements import STATEMENTS
 from collector.errors import CollectorError
 from collector.exports.trace_format import attribution_line, recovered_words
 from collector.storage import queries
@@ -115,6 +116,8 @@ class ItemRecord:
     scan: ItemRecord | None = None  # for a crop: the item of the scan it was cut from
     near_of: int | None = None  # the ledger's own near-duplicate note: the earlier item
     near_distance: int | None = None
+    rights_statement: str | None = None  # RightsStatements.org id, when no SPDX licence
+    size_request: dict[str, Any] | None = None  # how the image size was negotiated
 
 
 @dataclass
@@ -327,11 +330,13 @@ class Tracer:
         """Stored files within the threshold of the hash or the mirror hash, closest first."""
         return self.hashes.nearest(phash, mirror, self.near_distance)
 
-    def allowed(self, spdx_id: str | None) -> str:
-        """'yes' / 'no' against the recipe's allowlist; 'unknown' without a licence or recipe."""
-        if self.allow is None or not spdx_id:
+    def allowed(self, spdx_id: str | None, statement: str | None = None) -> str:
+        """'yes' / 'no' against the recipe's allowlist; 'unknown' without a licence or recipe.
+        A RightsStatements.org statement is decided by its ``rs:<id>`` entry."""
+        known = STATEMENTS.get(statement or "") if not spdx_id else None
+        if self.allow is None or not (spdx_id or known):
             return "unknown"
-        ok, reason = licence_allowed(spdx_id, self.allow, self.allow_unknown)
+        ok, reason = licence_allowed(spdx_id, self.allow, self.allow_unknown, known)
         if ok:
             return "yes"
         return "unknown" if reason == "licence_unknown" else "no"
@@ -368,7 +373,8 @@ class Tracer:
         best = result.best
         if best is not None:
             origin = best.origin
-            result.allowed = self.allowed(origin.spdx_id if origin else None)
+            result.allowed = self.allowed(origin.spdx_id if origin else None,
+                                          origin.rights_statement if origin else None)
             result.attribution = attribution_line(origin, modified=result.kind == "near",
                                                   copyright_notice=best.copyright)
             if origin is None and RECOVERED_FLAG in best.flags:
@@ -406,6 +412,9 @@ class Tracer:
             licence_raw=row.get("licence_raw"), licence_url=row.get("licence_url"),
             spdx_id=row.get("spdx_id"), deed_url=licence_deed_url(row.get("spdx_id")),
             date=row.get("date"), run_id=row.get("run_id"), local_path=row.get("local_path"),
+            rights_statement=row.get("rights_statement"),
+            size_request=row.get("size_request") if isinstance(row.get("size_request"), dict)
+            else None,
             fetch=self._fetch(row["id"]), parent_sha256=row.get("parent_sha256"),
             crop_box=list(box) if isinstance(box, list) else None,
             near_of=row.get("duplicate_of") if row.get("state") == "near_duplicate" else None,

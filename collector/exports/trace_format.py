@@ -14,6 +14,7 @@ from collections.abc import Iterable
 from dataclasses import asdict, dataclass
 from typing import TYPE_CHECKING, Any
 
+from collector.checks.rights_statements import STATEMENTS
 from collector.safe_text import csv_row, shown_name
 from collector.storage.ledger_repair import RECOVERED_FLAG
 
@@ -86,6 +87,10 @@ def attribution_line(item: ItemRecord | None, *, modified: bool = False,
         deed = item.deed_url or item.licence_url
         verb = "marked with" if item.spdx_id in _PUBLIC_DOMAIN else "licensed under"
         parts.append(f"{verb} {label}" + (f" ({deed})" if deed else ""))
+    elif item.rights_statement in STATEMENTS:
+        st = STATEMENTS[item.rights_statement or ""]
+        parts.append(f"rights statement {st.name} ({st.page_url}): not a licence, read the "
+                     "statement before reusing this image")
     else:
         raw = f" (the source said {item.licence_raw!r})" if item.licence_raw else ""
         parts.append(f"licence unknown{raw}: find the licence before reusing this image")
@@ -100,8 +105,10 @@ def licence_words(item: ItemRecord) -> str:
     """What the source gave (its text, else its licence URL) -> the SPDX id it normalises to,
     and the deed to read: never an arrow with nothing before it."""
     given = repr(item.licence_raw) if item.licence_raw else item.licence_url
-    spdx = item.spdx_id or "no SPDX id (unknown licence)"
-    deed = item.deed_url or item.licence_url
+    statement = STATEMENTS.get(item.rights_statement or "") if not item.spdx_id else None
+    spdx = item.spdx_id or (f"rights statement {statement.code} ({statement.name}; not a "
+                            "licence)" if statement else "no SPDX id (unknown licence)")
+    deed = statement.page_url if statement else item.deed_url or item.licence_url
     link = f" {deed}" if deed and deed != given else ""
     return f"{given} -> {spdx}{link}" if given else f"none given -> {spdx}"
 
@@ -205,6 +212,16 @@ def format_table(results: list[TraceResult]) -> list[str]:
     return lines
 
 
+def _size_words(req: dict[str, Any]) -> str:
+    """How the image's size was chosen: the size asked for, of which full size, and why."""
+    def dims(value: Any) -> str:
+        return "x".join(str(v) for v in value) if isinstance(value, list) else "?"
+    if "size" not in req:
+        return str(req.get("why", "?"))
+    return (f"asked {req['size']} ({dims(req.get('asked_size'))}) of "
+            f"{dims(req.get('full_size'))} from {req.get('service', '?')}: {req.get('why', '?')}")
+
+
 def _copy_words(mirrored: bool) -> str:
     return "a mirrored copy" if mirrored else "a resized/re-encoded copy"
 
@@ -218,6 +235,8 @@ def _item_lines(item: ItemRecord, indent: str = "  ") -> list[str]:
         if value:
             lines.append(f"{indent}{label + ':':<13} {value}")
     lines.append(f"{indent}licence:      {licence_words(item)}")
+    if item.size_request:
+        lines.append(f"{indent}image size:   {_size_words(item.size_request)}")
     if item.fetch:
         f = item.fetch
         extra = ", ".join(p for p in (

@@ -31,6 +31,7 @@ from collector.checks.licences import (
     normalise_licence,
     rights_conflict,
 )
+from collector.checks.rights_statements import find_statement
 from collector.config.recipe import Recipe
 from collector.errors import ImageRejected, StoreError
 from collector.run import dedup
@@ -142,10 +143,14 @@ class Ingest:
         if registered is None:
             return None
         item_id, spdx_id, image_url = registered
+        statement = None if spdx_id else find_statement(c.licence_raw, c.licence_url)
         ok, reason = licence_allowed(spdx_id, self.recipe.licences.allow,
-                                     self.recipe.licences.allow_unknown)
+                                     self.recipe.licences.allow_unknown, statement)
         if not ok:
-            detail = licence_detail(c.licence_raw, c.licence_url, spdx_id)
+            detail = (f"licence {c.licence_raw or c.licence_url!r} is the rights statement "
+                      f"{statement.code} ({statement.name}), not in the allowlist (add "
+                      f"\"rs:{statement.code}\" to allow it)" if statement and not spdx_id
+                      else licence_detail(c.licence_raw, c.licence_url, spdx_id))
             self.record.finish(item_id, "skipped", reason, detail)
             return None
         unmet = self._unmet_condition(source_id, c, spdx_id)
@@ -246,6 +251,8 @@ class Ingest:
             "image_url": c.image_url, "page_url": c.page_url, "title": c.title,
             "creator": c.creator, "licence_raw": c.licence_raw, "licence_url": c.licence_url,
             "spdx_id": licence.spdx_id, "date": c.date, "metadata": c.metadata or None,
+            "rights_statement": None if licence.spdx_id else _statement_code(c),
+            "size_request": getattr(c, "size_request", None),
             "crop_box": list(c.crop_box) if c.crop_box else None,
             "local_path": shown_name(str(c.local_path)) if c.local_path else None,
             "run_id": self.record.run_id,
@@ -496,3 +503,9 @@ def _file_row(path: Path, facts: ImageFacts, item_id: int, flags: list[str]) -> 
     """The files row of a new file (without its sha256)."""
     return {"size": path.stat().st_size, **facts.file_columns(), "first_item_id": item_id,
             "flags": flags}
+
+
+def _statement_code(c: Any) -> str | None:
+    """The RightsStatements.org statement id the candidate's rights name, or None."""
+    found = find_statement(c.licence_raw, c.licence_url)
+    return found.code if found else None

@@ -96,5 +96,17 @@ def _migration_4(db: sqlite_utils.Database) -> None:
     }, pk="source_id", foreign_keys=[("source_id", "sources", "id")])
 
 
+def _migration_5(db: sqlite_utils.Database) -> None:
+    """An item's RightsStatements.org statement, kept apart from its SPDX licence: the
+    statement's id (``NoC-US``, ``InC``...; collector.checks.rights_statements); and how the
+    size of its image was chosen when the source negotiated it (``size_request``, JSON: the
+    IIIF image service, its full size, the size asked for and why). Rows recorded before stay
+    NULL (not read)."""
+    items = db.table("items")
+    for name in ("rights_statement", "size_request"):
+        if name not in items.columns_dict:
+            items.add_column(name, str)
+
+
 MIGRATIONS: dict[int, Callable[[sqlite_utils.Database], None]] = {
-    1: _migration_1, 2: _migration_2, 3: _migration_3, 4: _migration_4}
+    1: _migration_1, 2: _migration_2, 3: _migration_3, 4: _migration_4, 5: _migration_5}

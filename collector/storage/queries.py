@@ -97,7 +97,7 @@ def ledger_totals(ledger: Ledger) -> LedgerTotals:
         "FROM files f LEFT JOIN items i ON i.id = f.first_item_id GROUP BY 1, 2 ORDER BY 1, 2"))
     placeholders = ", ".join("?" for _ in ACCEPTED_STATES)
     licences = tuple((r[0], int(r[1])) for r in ledger.rows(
-        f"SELECT coalesce(spdx_id, 'unknown') AS spdx, count(*) AS n FROM items "
+        f"SELECT {_licence_key(ledger, '')} AS spdx, count(*) AS n FROM items "
         f"WHERE state IN ({placeholders}) GROUP BY spdx ORDER BY n DESC", ACCEPTED_STATES))
     last = ledger.query("SELECT * FROM runs ORDER BY id DESC LIMIT 1")
     last_run = last[0] if last else None
@@ -400,6 +400,21 @@ class ReleaseRow(NamedTuple):
     spdx_id: str | None
     licence_url: str | None
     fetched_at: str | None  # the newest 2xx image request
+    rights_statement: str | None = None  # RightsStatements.org id when no SPDX licence
+
+
+def _statement_column(ledger: Ledger, prefix: str = "i.") -> str:
+    """The items' rights_statement column, or NULL in a ledger older than schema 4 (read-only
+    commands do not migrate)."""
+    names = {r[0] for r in ledger.rows("SELECT name FROM pragma_table_info('items')")}
+    return f"{prefix}rights_statement" if "rights_statement" in names else "NULL"
+
+
+def _licence_key(ledger: Ledger, prefix: str = "i.") -> str:
+    """SQL for how an item's licence is counted: its SPDX id, else ``rs:<id>`` of its
+    RightsStatements.org statement, else 'unknown'."""
+    return (f"coalesce({prefix}spdx_id, 'rs:' || {_statement_column(ledger, prefix)}, "
+            "'unknown')")
 
 
 def item_facts(ledger: Ledger) -> ItemFacts:
@@ -430,7 +445,7 @@ def accepted_facts(ledger: Ledger) -> AcceptedFacts:
         "files": ledger.scalar(f"SELECT count(*) {_ACCEPTED_FROM}") or 0,
         "bytes": ledger.scalar(f"SELECT coalesce(sum(f.size), 0) {_ACCEPTED_FROM}") or 0,
         "formats": by("f.format"), "modes": by("f.mode"),
-        "by_licence": by("coalesce(i.spdx_id, 'unknown')"), "by_source": by("s.name"),
+        "by_licence": by(_licence_key(ledger)), "by_source": by("s.name"),
         "by_host": by("host_of(i.image_url)"),
         "stored": _count(ledger, "i.state = 'stored'"),
         "near_kept": _count(ledger, "i.state = 'near_duplicate'"),
@@ -587,6 +602,7 @@ def release_rows(ledger: Ledger) -> Iterator[ReleaseRow]:
             "f.stored_at, s.name, i.source_key, i.page_url, i.image_url, i.title, i.creator, "
             "i.licence_raw, i.spdx_id, i.licence_url, "
             "(SELECT max(x.started_at) FROM fetches x WHERE x.item_id = i.id AND "
-            " x.purpose = 'image' AND x.status BETWEEN 200 AND 299) "
+            " x.purpose = 'image' AND x.status BETWEEN 200 AND 299), "
+            f"{_statement_column(ledger, 'i.')} "
             f"{_ACCEPTED_FROM} ORDER BY f.sha256"):
         yield ReleaseRow(*row)
