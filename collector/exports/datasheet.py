@@ -144,21 +144,21 @@ def _picture_dates(ledger: Ledger, dated: int) -> PictureDates:
 
 def _where(recipe: Recipe, name: str) -> list[str]:
     """Where a source's archive is, read from its recipe table without knowing its kind: the
-    http(s) URLs among its top-level values (secret parameters hidden), else its absolute
-    folder paths; [] for a source no longer in the recipe."""
+    http(s) URLs among its top-level values (secret parameters hidden), else the values that
+    read as folder paths (a slash, no space, no wildcard); [] for a source no longer in the
+    recipe."""
     from collector.urls import redact
 
-    shown = recipe.shown_settings()
     everywhere = list(recipe.network.secret_params)
-    for table in shown["sources"]:
+    for table in recipe.shown_settings()["sources"]:
         if table.get("name") != name:
             continue
-        values = [v for k, v in table.items() if k not in ("name", "kind")]
-        texts = [x for v in values for x in (v if isinstance(v, list) else [v])
-                 if isinstance(x, str)]
+        texts = [x for k, v in table.items() if k not in ("name", "kind")
+                 for x in (v if isinstance(v, list) else [v]) if isinstance(x, str)]
         secret = [*(table.get("secret_params") or ()), *everywhere]
         found = [redact(x, secret) for x in texts if x.startswith(("http://", "https://"))]
-        return found or [x for x in texts if x.startswith("/")]
+        return found or [x for x in texts
+                         if "/" in x and not any(c.isspace() or c in "*?[" for c in x)]
     return []
 
 

@@ -18,7 +18,8 @@ PLOT_TITLES = {
     "licences": "Licences of the files in this release",
     "sources": "Accepted files per source",
     "resolution": "Resolution of accepted files (width × height, px)",
-    "timeline": "Requests per host over time (politeness budgets are per host)",
+    "timeline": "Requests per host over time (politeness budgets are per host); each lane "
+                "is scaled to its own peak",
 }
 MAX_LANES = 8  # hosts drawn in their own lane; the rest share one
 
@@ -129,8 +130,9 @@ def _lanes(timeline: Timeline, host_sources: dict[str, list[str]]
 
 
 def _timeline_figure(timeline: Timeline, host_sources: dict[str, list[str]]) -> Any:
-    """Requests per host and stored files per time bucket: one lane each, stems on a shared
-    true date-time axis (UTC), so quiet periods show as gaps."""
+    """Requests per host and stored files per time bucket: one lane each on one shared true
+    date-time axis (UTC), so quiet periods show as gaps. Each lane is scaled to its own peak,
+    written at its right end (one Axes: several would cost seconds to draw)."""
     from datetime import datetime, timedelta
 
     from matplotlib import dates as mdates
@@ -140,27 +142,36 @@ def _timeline_figure(timeline: Timeline, host_sources: dict[str, list[str]]) -> 
     lanes = _lanes(timeline, host_sources)
     when = {b: datetime.strptime(b, UNIT_FORMAT[unit])
             for _, counts in lanes for b in counts}
-    fig = Figure(figsize=(6.4, 0.9 * len(lanes) + 0.9))
-    axes = fig.subplots(len(lanes), 1, sharex=True, squeeze=False)[:, 0]
-    for ax, (label, counts) in zip(axes, lanes, strict=True):
-        pts = sorted((when[b], n) for b, n in counts.items() if n)
-        colour = "#dd8452" if ax is axes[-1] else "#4c72b0"
-        if pts:
-            xs, ys = zip(*pts, strict=True)
-            ax.vlines(xs, 0, ys, colors=colour, alpha=0.6)
-            ax.plot(xs, ys, "o", ms=3, color=colour)
-        ax.set_ylim(bottom=0)
-        ax.set_ylabel(label, rotation=0, ha="right", va="center", fontsize=7)
-        ax.tick_params(axis="y", labelsize=7)
-        ax.spines[["top", "right"]].set_visible(False)
-    # Frame the data with one bucket either side; a single bucket would otherwise get
-    # matplotlib's default span of years.
+    fig = Figure(figsize=(6.4, 0.55 * len(lanes) + 1.0))
+    ax = fig.add_subplot()
     span = {"second": timedelta(seconds=1), "minute": timedelta(minutes=1),
             "hour": timedelta(hours=1), "day": timedelta(days=1)}[unit]
-    axes[-1].set_xlim(float(mdates.date2num(min(when.values()) - span)),
-                      float(mdates.date2num(max(when.values()) + span)))
+    right = max(when.values()) + span
+    for i, (_, counts) in enumerate(lanes):
+        base = len(lanes) - 1 - i
+        pts = sorted((when[b], n) for b, n in counts.items() if n)
+        if not pts:
+            continue
+        peak = max(n for _, n in pts)
+        colour = "#dd8452" if i == len(lanes) - 1 else "#4c72b0"
+        xs = [x for x, _ in pts]
+        ys = [base + 0.8 * n / peak for _, n in pts]
+        ax.vlines(xs, base, ys, colors=colour, alpha=0.6)
+        ax.plot(xs, ys, "o", ms=2.5, color=colour)
+        ax.annotate(f"peak {peak}", (float(mdates.date2num(right)), base + 0.4),
+                    xytext=(4, 0), textcoords="offset points", va="center", fontsize=7,
+                    annotation_clip=False)
+    ax.set_yticks([len(lanes) - 1 - i + 0.4 for i in range(len(lanes))],
+                  [label for label, _ in lanes], fontsize=7)
+    ax.set_ylim(-0.2, len(lanes))
+    # Frame the data with one bucket either side; a single bucket would otherwise get
+    # matplotlib's default span of years.
+    ax.set_xlim(float(mdates.date2num(min(when.values()) - span)),
+                float(mdates.date2num(right)))
     locator = mdates.AutoDateLocator()
-    axes[-1].xaxis.set_major_locator(locator)
-    axes[-1].xaxis.set_major_formatter(mdates.ConciseDateFormatter(locator))
-    axes[-1].set_xlabel(f"time (UTC); counts per {unit}", fontsize=8)
+    ax.xaxis.set_major_locator(locator)
+    ax.xaxis.set_major_formatter(mdates.ConciseDateFormatter(locator))
+    ax.set_xlabel(f"time (UTC), counts per {unit}", fontsize=8, loc="left")
+    ax.tick_params(axis="x", labelsize=8)
+    ax.spines[["top", "right"]].set_visible(False)
     return fig
