@@ -154,7 +154,7 @@ def _timeline_figure(timeline: Timeline, host_sources: dict[str, list[str]]) -> 
             continue
         peak = max(n for _, n in pts)
         colour = "#dd8452" if i == len(lanes) - 1 else "#4c72b0"
-        xs = [x for x, _ in pts]
+        xs = [float(mdates.date2num(x)) for x, _ in pts]
         ys = [base + 0.8 * n / peak for _, n in pts]
         ax.vlines(xs, base, ys, colors=colour, alpha=0.6)
         ax.plot(xs, ys, "o", ms=2.5, color=colour)
