@@ -200,3 +200,14 @@ def test_bytes_and_dates_in_words(export: ds.ExportResult) -> None:
     assert lo and (export.facts["picture_dates"]["earliest"], export.facts["picture_dates"]
                    ["latest"]) == (lo, hi)
     assert f"dates from {lo} to {hi}" in md
+
+
+def test_plot_labels_from_names_are_escaped_in_the_svg(export: ds.ExportResult) -> None:
+    """A source name with markup stays text inside the inline plots (matplotlib escapes it in
+    the SVG comments it writes): the page gets no script element from a plot."""
+    facts = copy.deepcopy(export.facts)
+    facts["accepted"]["by_source"] = {"a --> <script>alert(1)</script>": 3}
+    facts["host_sources"] = {WEB_HOST: ["<script>alert(2)</script>"]}
+    page = render_html(facts, {}, plots.render_plots(facts))
+    assert "<script" not in page
+    assert "&lt;script&gt;alert(1)" in page and "&lt;script&gt;alert(2)" in page
