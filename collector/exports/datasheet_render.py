@@ -398,7 +398,7 @@ def _view(block: Block, placed: dict[str, str], where: str) -> BlockView:
                          where=placed.get(tid, ""))
     if tid is not None:
         placed[tid] = where
-    caption = TABLES.get(tid, "") if tid else ""
+    caption = (TABLES.get(tid) or tid) if tid else ""
     if kind == "p":
         return BlockView("p", text=str(block[1]))
     if kind == "list":
