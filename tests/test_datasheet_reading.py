@@ -36,20 +36,18 @@ class _Anchors(HTMLParser):
         self.links: list[str] = []
         self.tables: list[str] = []
         self._table: list[str] | None = None
-        self._svg = 0  # inside an inline plot: matplotlib's own ids (glyphs, clip paths)
 
     def handle_starttag(self, tag: str, attrs: list[tuple[str, str | None]]) -> None:
         found = dict(attrs)
-        self._svg += tag == "svg"
-        if found.get("id") and not self._svg:
+        if found.get("id"):
             self.ids.append(str(found["id"]))
-        if tag == "a" and (found.get("href") or "").startswith("#"):
-            self.links.append(str(found["href"])[1:])
+        for name in ("href", "xlink:href"):  # page links and the plots' glyph references
+            if (found.get(name) or "").startswith("#"):
+                self.links.append(str(found[name])[1:])
         if tag == "table":
             self._table = []
 
     def handle_endtag(self, tag: str) -> None:
-        self._svg -= tag == "svg"
         if tag == "table" and self._table is not None:
             self.tables.append("|".join(self._table))
             self._table = None
@@ -66,12 +64,18 @@ def _parsed(page: str) -> _Anchors:
 
 
 def test_contents_links_resolve_and_ids_are_unique(export: ds.ExportResult) -> None:
-    """Every in-page link (contents, "see" links) points at an id; no id is used twice
-    (HTML Living Standard, section 3.2.6: an id is unique in its tree)."""
-    page = _parsed((export.out / "datasheet.html").read_text())
-    assert len(page.ids) == len(set(page.ids))
+    """Every in-page link (contents, "see" links, the plots' glyphs) points at an id; no id is
+    used twice, not even across the inline plots (HTML Living Standard, section 3.2.6: an id
+    is unique in its tree); the Markdown's links point at its anchors."""
+    html = (export.out / "datasheet.html").read_text()
+    page = _parsed(render_html(export.facts, {}, plots.render_plots(export.facts)))
+    assert page.ids == _parsed(html).ids  # the export's page is this one
+    assert html.count("<svg") == 4 and len(page.ids) == len(set(page.ids))
     assert page.links and set(page.links) <= set(page.ids)
-    toc = (export.out / "datasheet.html").read_text().split('aria-label="Contents"')[1]
+    md = (export.out / "datasheet.md").read_text()
+    anchors = set(re.findall(r'<a id="([^"]+)"></a>', md))
+    assert set(re.findall(r"\]\(#([^)]+)\)", md)) <= anchors and len(anchors) > 20
+    toc = html.split('aria-label="Contents"')[1]
     toc = toc.split("</nav>")[0]
     for section in ("motivation", "composition", "collection", "preprocessing", "uses",
                     "distribution", "maintenance", "croissant", "t-licences", "t-rules"):

@@ -9,6 +9,7 @@ requests.
 from __future__ import annotations
 
 import io
+import re
 from typing import TYPE_CHECKING, Any
 
 if TYPE_CHECKING:
@@ -32,7 +33,12 @@ def _svg(fig: Any, salt: str) -> str:
     with matplotlib.rc_context({"svg.hashsalt": salt, "svg.fonttype": "path"}):
         fig.savefig(buf, format="svg", bbox_inches="tight", metadata={"Date": None})
     text = buf.getvalue()
-    return text[text.index("<svg"):]
+    text = text[text.index("<svg"):]
+    # Glyph and clip-path ids repeat across plots (DejaVuSans-31 in each): prefix every id and
+    # every reference to one, so the ids of the page stay unique (HTML: an id is unique).
+    text = re.sub(r'\bid="([^"]+)"', rf'id="{salt}-\1"', text)
+    text = re.sub(r'(xlink:href|href)="#([^"]+)"', rf'\1="#{salt}-\2"', text)
+    return re.sub(r"url\(#([^)]+)\)", rf"url(#{salt}-\1)", text)
 
 
 def _barh(labels: list[str], values: list[int], colour: str, xlabel: str) -> Any:
