@@ -146,6 +146,11 @@ def test_timeline_has_one_lane_per_host_on_a_date_axis(export: ds.ExportResult) 
 
     facts = export.facts
     assert set(facts["timeline"]["by_host"]) == {WEB_HOST}
+    with sqlite3.connect(export.out.parent / "ledger.sqlite") as conn:
+        (n,) = conn.execute("SELECT count(*) FROM fetches WHERE host = ? AND started_at "
+                            "IS NOT NULL", (WEB_HOST,)).fetchone()
+    assert sum(facts["timeline"]["by_host"][WEB_HOST].values()) == n
+    assert facts["timeline"]["requests"] == facts["timeline"]["by_host"][WEB_HOST]
     fig = plots._timeline_figure(facts["timeline"], facts["host_sources"])
     (ax,) = fig.get_axes()
     lanes = [t.get_text() for t in ax.get_yticklabels()]

@@ -186,9 +186,13 @@ def _timeline(ledger: Ledger, frame: Timeframe) -> Timeline:
             unit, width = "minute", 16
         elif span is not None and span.total_seconds() <= 4 * 86400:
             unit, width = "hour", 13
-    return {"unit": unit, "requests": queries.requests_per(ledger, width),
-            "stored": queries.stored_per(ledger, width),
-            "by_host": queries.requests_per_host(ledger, width)}
+    by_host = queries.requests_per_host(ledger, width)
+    requests: dict[str, int] = {}
+    for counts in by_host.values():  # the totals from the per-host counts: one query less
+        for slot, n in counts.items():
+            requests[slot] = requests.get(slot, 0) + n
+    return {"unit": unit, "requests": dict(sorted(requests.items())),
+            "stored": queries.stored_per(ledger, width), "by_host": by_host}
 
 
 # --- the release: CSVs and images ------------------------------------------------------------

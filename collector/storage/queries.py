@@ -516,12 +516,6 @@ def resolution_cells(ledger: Ledger, step: int) -> list[list[int]]:
         (step, step, step, step))]
 
 
-def requests_per(ledger: Ledger, width: int) -> dict[str, int]:
-    """Requests per time slot: timestamps cut to their first ``width`` characters."""
-    return _pairs(ledger, "SELECT substr(started_at, 1, ?), count(*) FROM fetches "
-                          "WHERE started_at IS NOT NULL GROUP BY 1 ORDER BY 1", (width,))
-
-
 def stored_per(ledger: Ledger, width: int) -> dict[str, int]:
     """Accepted files per time slot of storing (timestamps cut to ``width`` characters)."""
     return _pairs(ledger, f"SELECT substr(f.stored_at, 1, ?), count(*) {_ACCEPTED_FROM} "
