@@ -43,7 +43,11 @@ def test_the_wheel_holds_the_adapters_the_demo_and_the_data_files(wheel_names: l
     names = set(wheel_names)
     for expected in ("collector/sources/json_api.py", "collector/sources/scans.py",
                      "collector/demo_site/server.py", "collector/demo_site/recipes/demo.toml",
-                     "collector/templates/recipe.toml", "collector/run/gather.py"):
+                     "collector/templates/recipe.toml", "collector/run/gather.py",
+                     "collector/templates/datasheet.html.j2",
+                     "collector/templates/datasheet.md.j2",
+                     "collector/templates/datasheet_block.md.j2",
+                     "collector/templates/datasheet.css"):
         assert expected in names, expected
 
 

@@ -39,7 +39,13 @@ from collector.checks.rights_statements import ALLOW_PREFIX, STATEMENTS
 from collector.config.recipe import Recipe
 from collector.errors import CollectionError, LedgerError, LedgerUnusable
 from collector.exports.datasheet_questions import load_answers
-from collector.exports.facts import DatasheetFacts, LicenceFacts, ResolutionBins, Timeline
+from collector.exports.facts import (
+    DatasheetFacts,
+    LicenceFacts,
+    PictureDates,
+    ResolutionBins,
+    Timeline,
+)
 from collector.safe_text import csv_cell, csv_row
 from collector.storage import queries
 from collector.storage.ledger import Ledger
@@ -78,13 +84,14 @@ def _facts(ledger: Ledger, recipe: Recipe, now: str) -> DatasheetFacts:
     items = queries.item_facts(ledger)
     acc = queries.accepted_facts(ledger)
     frame = queries.timeframe(ledger)
+    missing = queries.missing_facts(ledger)
     return {
         "generated_at": now, "tool_version": __version__,
         "collection": {"name": recipe.collection.name,
                        "description": recipe.collection.description,
                        "curator": recipe.collection.curator,
                        "contact": recipe.contact, "product_token": recipe.product_token},
-        "items": items, "accepted": acc, "missing": queries.missing_facts(ledger),
+        "items": items, "accepted": acc, "missing": missing,
         "flags": queries.flag_counts(ledger),
         "flagged": queries.flagged_facts(ledger, PERSONAL_FLAGS, CONFLICT_FLAG),
         "duplicates": {
@@ -95,12 +102,14 @@ def _facts(ledger: Ledger, recipe: Recipe, now: str) -> DatasheetFacts:
         },
         "licences": [_licence_facts(spdx, n) for spdx, n in acc["by_licence"].items()],
         "timeframe": frame,
+        "picture_dates": _picture_dates(ledger, acc["files"] - missing["no_date"]),
         "requests": queries.request_facts(ledger),
-        "hosts": queries.host_facts(ledger),
+        "hosts": queries.host_facts(ledger), "host_sources": queries.host_sources(ledger),
         "resolution_bins": _resolution_bins(ledger, acc["width"]["max"], acc["height"]["max"]),
         "timeline": _timeline(ledger, frame),
         "sources": [{"name": s.name, "kind": s.kind, "items": s.items, "accepted": s.accepted,
-                     **_kind_facts(s.kind)} for s in queries.source_counts(ledger)],
+                     **_kind_facts(s.kind), "where": _where(recipe, s.name)}
+                    for s in queries.source_counts(ledger)],
         "runs": queries.run_facts(ledger),
         "notes": queries.note_counts(ledger),
         "policy": {
@@ -131,6 +140,31 @@ def _kind_facts(kind: str) -> _KindFacts:
     return {"mechanism": found.mechanism, "collection_type": found.collection_type}
 
 
+def _picture_dates(ledger: Ledger, dated: int) -> PictureDates:
+    earliest, latest = queries.picture_dates(ledger)
+    return {"earliest": earliest, "latest": latest, "dated": dated}
+
+
+def _where(recipe: Recipe, name: str) -> list[str]:
+    """Where a source's archive is, read from its recipe table without knowing its kind: the
+    http(s) URLs among its top-level values (secret parameters hidden), else the values that
+    read as folder paths (a slash, no space, no wildcard); [] for a source no longer in the
+    recipe."""
+    from collector.urls import redact
+
+    everywhere = list(recipe.network.secret_params)
+    for table in recipe.shown_settings()["sources"]:
+        if table.get("name") != name:
+            continue
+        texts = [x for k, v in table.items() if k not in ("name", "kind")
+                 for x in (v if isinstance(v, list) else [v]) if isinstance(x, str)]
+        secret = [*(table.get("secret_params") or ()), *everywhere]
+        found = [redact(x, secret) for x in texts if x.startswith(("http://", "https://"))]
+        return found or [x for x in texts
+                         if "/" in x and not any(c.isspace() or c in "*?[" for c in x)]
+    return []
+
+
 def _resolution_bins(ledger: Ledger, max_w: int | None, max_h: int | None) -> ResolutionBins:
     """Accepted files counted on a grid of width x height cells (about 30 per axis)."""
     top = max(max_w or 0, max_h or 0)
@@ -155,8 +189,13 @@ def _timeline(ledger: Ledger, frame: Timeframe) -> Timeline:
             unit, width = "minute", 16
         elif span is not None and span.total_seconds() <= 4 * 86400:
             unit, width = "hour", 13
-    return {"unit": unit, "requests": queries.requests_per(ledger, width),
-            "stored": queries.stored_per(ledger, width)}
+    by_host = queries.requests_per_host(ledger, width)
+    requests: dict[str, int] = {}
+    for counts in by_host.values():  # the totals from the per-host counts: one query less
+        for slot, n in counts.items():
+            requests[slot] = requests.get(slot, 0) + n
+    return {"unit": unit, "requests": dict(sorted(requests.items())),
+            "stored": queries.stored_per(ledger, width), "by_host": by_host}
 
 
 # --- the release: CSVs and images ------------------------------------------------------------

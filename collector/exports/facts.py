@@ -51,6 +51,15 @@ class LicenceFacts(TypedDict):
     deed_url: str | None
 
 
+class PictureDates(TypedDict):
+    """Declared dates of accepted files: earliest and latest (of those that start with a
+    year), and how many accepted files carry any date."""
+
+    earliest: str | None
+    latest: str | None
+    dated: int
+
+
 class ResolutionBins(TypedDict):
     """Accepted files on a grid of ``step`` x ``step`` pixel cells: [width, height, files]."""
 
@@ -59,15 +68,18 @@ class ResolutionBins(TypedDict):
 
 
 class Timeline(TypedDict):
-    """Requests and stored files per ``unit`` (second, minute, hour or day)."""
+    """Requests and stored files per ``unit`` (second, minute, hour or day); ``by_host``:
+    requests per host and unit (politeness budgets are per host)."""
 
     unit: str
     requests: dict[str, int]
     stored: dict[str, int]
+    by_host: dict[str, dict[str, int]]
 
 
 class SourceFacts(TypedDict):
-    """One source: kind, items, accepted files, how it obtains items, its RAI type."""
+    """One source: kind, items, accepted files, how it obtains items, its RAI type, and
+    where its archive is (the URLs of its recipe table, secrets hidden, or its folder)."""
 
     name: str
     kind: str
@@ -75,6 +87,7 @@ class SourceFacts(TypedDict):
     accepted: int
     mechanism: str
     collection_type: str
+    where: list[str]
 
 
 class ReleaseFacts(TypedDict):
@@ -109,8 +122,10 @@ class DatasheetFacts(TypedDict):
     duplicates: DuplicateFacts
     licences: list[LicenceFacts]
     timeframe: Timeframe
+    picture_dates: PictureDates
     requests: RequestFacts
     hosts: list[HostFacts]
+    host_sources: dict[str, list[str]]
     resolution_bins: ResolutionBins
     timeline: Timeline
     sources: list[SourceFacts]

@@ -552,16 +552,38 @@ def resolution_cells(ledger: Ledger, step: int) -> list[list[int]]:
         (step, step, step, step))]
 
 
-def requests_per(ledger: Ledger, width: int) -> dict[str, int]:
-    """Requests per time slot: timestamps cut to their first ``width`` characters."""
-    return _pairs(ledger, "SELECT substr(started_at, 1, ?), count(*) FROM fetches "
-                          "WHERE started_at IS NOT NULL GROUP BY 1 ORDER BY 1", (width,))
-
-
 def stored_per(ledger: Ledger, width: int) -> dict[str, int]:
     """Accepted files per time slot of storing (timestamps cut to ``width`` characters)."""
     return _pairs(ledger, f"SELECT substr(f.stored_at, 1, ?), count(*) {_ACCEPTED_FROM} "
                           "AND f.stored_at IS NOT NULL GROUP BY 1 ORDER BY 1", (width,))
+
+
+def requests_per_host(ledger: Ledger, width: int) -> dict[str, dict[str, int]]:
+    """Requests per host and time slot (timestamps cut to ``width`` characters)."""
+    out: dict[str, dict[str, int]] = {}
+    for host, slot, n in ledger.rows(
+            "SELECT coalesce(host, '?'), substr(started_at, 1, ?), count(*) FROM fetches "
+            "WHERE started_at IS NOT NULL GROUP BY 1, 2 ORDER BY 1, 2", (width,)):
+        out.setdefault(str(host), {})[str(slot)] = int(n)
+    return out
+
+
+def host_sources(ledger: Ledger) -> dict[str, list[str]]:
+    """The sources whose items were requested from each host (by host, names sorted)."""
+    out: dict[str, list[str]] = {}
+    for host, name in ledger.rows(
+            "SELECT DISTINCT x.host, s.name FROM fetches x JOIN items i ON i.id = x.item_id "
+            "JOIN sources s ON s.id = i.source_id WHERE x.host IS NOT NULL ORDER BY 1, 2"):
+        out.setdefault(str(host), []).append(str(name))
+    return out
+
+
+def picture_dates(ledger: Ledger) -> tuple[str | None, str | None]:
+    """Earliest and latest declared date of the accepted files that start with a year
+    (ISO 8601 strings sort as dates)."""
+    lo, hi = ledger.rows(f"SELECT min(i.date), max(i.date) {_ACCEPTED_FROM} AND "
+                         "i.date GLOB '[0-9][0-9][0-9][0-9]*'")[0]
+    return lo, hi
 
 
 def source_counts(ledger: Ledger) -> list[SourceCounts]:
