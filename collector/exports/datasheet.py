@@ -33,7 +33,7 @@ from datetime import UTC, datetime
 from pathlib import Path
 from typing import TYPE_CHECKING, Any, TypedDict
 
-from collector import __version__
+from collector import DISTRIBUTION, __version__
 from collector.checks.licences import licence_allowed, licence_conditions, licence_deed_url
 from collector.checks.rights_statements import ALLOW_PREFIX, STATEMENTS
 from collector.config.recipe import Recipe
@@ -86,7 +86,7 @@ def _facts(ledger: Ledger, recipe: Recipe, now: str) -> DatasheetFacts:
     frame = queries.timeframe(ledger)
     missing = queries.missing_facts(ledger)
     return {
-        "generated_at": now, "tool_version": __version__,
+        "generated_at": now, "tool_version": __version__, "distribution": DISTRIBUTION,
         "collection": {"name": recipe.collection.name,
                        "description": recipe.collection.description,
                        "curator": recipe.collection.curator,

@@ -113,6 +113,7 @@ class DatasheetFacts(TypedDict):
 
     generated_at: str
     tool_version: str
+    distribution: str  # the name it is installed by (pip install ...)
     collection: CollectionFacts
     items: ItemFacts
     accepted: AcceptedFacts
