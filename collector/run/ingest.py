@@ -30,6 +30,7 @@ from collector.errors import ImageRejected, StoreError
 from collector.run import dedup
 from collector.run.dedup import Demote, Keep, NearCandidate, NearCopy, TakeOver
 from collector.run.record import RunRecord
+from collector.run.reservations import ReservationGate
 from collector.safe_text import shown_name
 from collector.storage.collection import Collection
 from collector.storage.hashindex import HashIndex
@@ -86,8 +87,10 @@ class Ingest:
 
     def __init__(self, collection: Collection, recipe: Recipe, ledger: Ledger,
                  record: RunRecord, source_ids: Sequence[int],
-                 on_stored: Callable[[], None] = lambda: None) -> None:
+                 on_stored: Callable[[], None] = lambda: None,
+                 gate: ReservationGate | None = None) -> None:
         self.recipe, self.ledger, self.record = recipe, ledger, record
+        self.gate = gate or ReservationGate(recipe, ledger, None, record, source_ids)
         self.store = collection.store
         self.index = HashIndex.from_ledger(ledger)
         self._on_stored = on_stored
@@ -122,6 +125,11 @@ class Ingest:
         if not c.image_url:
             self.record.finish(item_id, "rejected", "no_image_url",
                                "the source gave no image URL for this item")
+            return None
+        refusal = self.gate.admission(source_id, item_id, c.page_url)
+        if refusal is not None:  # reserved on the listing or detail page: nothing requested
+            self.record.finish(item_id, refusal.state, refusal.reason, refusal.detail,
+                               reservation_checks=self.gate.checks(item_id))
             return None
         same = self.ledger.stored_with_image_url(image_url, item_id)
         if same:
@@ -214,7 +222,8 @@ class Ingest:
             self._scan_sha[(source_id, c.source_key)] = sha
         licence = normalise_licence(c.licence_raw, c.licence_url)
         self.ingest_file(item_id, licence.spdx_id, tmp, sha,
-                         url=shown_name(str(c.local_path or "")), **extra)
+                         url=shown_name(str(c.local_path or "")),
+                         reservation_checks=self.gate.checks(item_id, local=True), **extra)
 
     def _unreadable(self, item_id: int, c: Any, exc: OSError) -> None:
         """A local file that could not be copied fails its item; a full or broken store
@@ -248,6 +257,11 @@ class Ingest:
                                       max_aspect=images.max_aspect, full_decode=False)
             except ImageRejected as exc:
                 self.record.finish(item_id, "rejected", exc.reason, exc.detail, **extra)
+                return
+            refusal = self.gate.in_file(item_id, url, facts.rights)
+            if refusal is not None:  # IPTC Data Mining in the file: the temp file goes
+                self.record.finish(item_id, refusal.state, refusal.reason, refusal.detail,
+                                   **extra)
                 return
             with self._lock:
                 row = self.ledger.file(sha)
