@@ -36,6 +36,7 @@ from collector.checks.reservations import (
     tdm_state,
     xmp_signals,
 )
+from collector.demo_site.tdm import xmp_packet
 from collector.fetching.tdmrep import NO_FILE, RULES, UNUSABLE, classify, tdmrep_url
 from collector.fetching.tdmrep import UNKNOWN as FILE_UNKNOWN
 from collector.run.reservations import verdict
@@ -206,17 +207,6 @@ def test_unknown_is_never_no_reservation() -> None:
     assert verdict([[unknown], [reserved]]) == (RESERVED, reserved)
 
 
-def xmp_packet(value: str) -> bytes:
-    """An XMP packet with plus:DataMining as an rdf:resource-free text value."""
-    return (b"<?xpacket begin='' id='W5M0MpCehiHzreSzNTczkc9d'?><x:xmpmeta xmlns:x='adobe:ns:"
-            b"meta/'><rdf:RDF xmlns:rdf='http://www.w3.org/1999/02/22-rdf-syntax-ns#'>"
-            b"<rdf:Description rdf:about='' xmlns:plus='http://ns.useplus.org/ldf/xmp/1.0/'>"
-            b"<plus:DataMining>" + value.encode() + b"</plus:DataMining><plus:OtherConstraints>"
-            b"<rdf:Alt><rdf:li xml:lang='x-default'>Ask the archive first</rdf:li></rdf:Alt>"
-            b"</plus:OtherConstraints></rdf:Description></rdf:RDF></x:xmpmeta>"
-            b"<?xpacket end='w'?>")
-
-
 @pytest.mark.parametrize(("term", "meaning"), [
     ("DMI-PROHIBITED-AIMLTRAINING", RESERVED),
     ("DMI-PROHIBITED-GENAIMLTRAINING", RESERVED),
@@ -231,8 +221,7 @@ def test_iptc_data_mining_read_from_a_real_jpeg(term: str, meaning: str) -> None
     http://ns.useplus.org/ldf/vocab/<term> in XMP plus:DataMining, read back from a JPEG
     Pillow wrote; Other Constraints comes along as text."""
     buf = io.BytesIO()
-    Image.new("RGB", (32, 32), "teal").save(buf, "JPEG", xmp=xmp_packet(
-        "http://ns.useplus.org/ldf/vocab/" + term))
+    Image.new("RGB", (32, 32), "teal").save(buf, "JPEG", xmp=xmp_packet(term))
     flags: list[str] = []
     rights = read_xmp(Image.open(io.BytesIO(buf.getvalue())), flags)
     found = xmp_signals("http://h/x.jpg", rights)

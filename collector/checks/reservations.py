@@ -50,6 +50,13 @@ DMI_PROHIBITED = frozenset({
     "DMI-PROHIBITED-SEELINKEDRIGHTSEXPR"})
 NOAI_DIRECTIVES = frozenset({"noai", "noimageai"})  # common practice, no standard
 
+# The items' reasons, one per mechanism (status and the datasheet count them).
+TDMREP_REASON, NOAI_REASON, XMP_REASON, UNKNOWN_REASON, ROBOTS_TOKEN_REASON = (
+    "tdmrep_reserved", "noai_directive", "xmp_data_mining", "tdmrep_unknown",
+    "robots_token_disallowed")
+RESERVATION_REASONS = (TDMREP_REASON, NOAI_REASON, XMP_REASON, UNKNOWN_REASON,
+                       ROBOTS_TOKEN_REASON)
+
 # Where a signal was seen (the ledger's ``place``) and the mechanism names trace shows.
 TDMREP_FILE, HEADER, META, XMP, C2PA, ROBOTS_TXT = (
     "tdmrep.json", "HTTP header", "HTML meta", "XMP", "C2PA", "robots.txt")

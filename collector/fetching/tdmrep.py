@@ -148,6 +148,8 @@ class TdmRepFiles:
         fetched = _epoch(row.get("tdmrep_fetched_at"))
         if row.get("tdmrep_url") != target or fetched is None:
             return None
+        if row.get("tdmrep_state") not in (RULES, NO_FILE, UNUSABLE):
+            return None  # unknown (or not ours): every new run asks again
         body = row.get("tdmrep_body")
         rules = None
         if row.get("tdmrep_state") == RULES:

@@ -260,6 +260,9 @@ class Ingest:
                 return
             refusal = self.gate.in_file(item_id, url, facts.rights)
             if refusal is not None:  # IPTC Data Mining in the file: the temp file goes
+                web = (url or "").lower().startswith(("http://", "https://"))
+                extra = {**extra, "reservation_checks": self.gate.checks(item_id,
+                                                                         local=not web)}
                 self.record.finish(item_id, refusal.state, refusal.reason, refusal.detail,
                                    **extra)
                 return

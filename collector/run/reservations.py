@@ -33,12 +33,18 @@ from dataclasses import dataclass
 from typing import Any
 
 from collector.checks.reservations import (
+    C2PA,
     HEADER,
+    NOAI_REASON,
     NOT_RESERVED,
     RESERVED,
     TDMREP_FILE,
+    TDMREP_REASON,
     UNKNOWN,
+    UNKNOWN_REASON,
     UNSET,
+    XMP,
+    XMP_REASON,
     Signal,
     file_signal,
     header_signals,
@@ -55,11 +61,6 @@ PAGE_CHECKS = ("tdmrep.json", "tdm-reservation header", "tdm-reservation meta",
                "X-Robots-Tag noai/noimageai", "robots meta noai/noimageai")
 FILE_CHECKS = ("XMP plus:DataMining", C2PA_NOT_READ)
 NOAI_NAMES = ("X-Robots-Tag", "robots")
-# The items' reasons, one per mechanism (the datasheet counts them).
-TDMREP_REASON, NOAI_REASON, XMP_REASON, UNKNOWN_REASON = (
-    "tdmrep_reserved", "noai_directive", "xmp_data_mining", "tdmrep_unknown")
-RESERVATION_REASONS = (TDMREP_REASON, NOAI_REASON, XMP_REASON, UNKNOWN_REASON,
-                       "robots_token_disallowed")
 
 
 @dataclass(frozen=True)
@@ -79,13 +80,15 @@ def _describe(signal: Signal) -> str:
 
 def verdict(resources: Sequence[Sequence[Signal]]) -> tuple[str, Signal | None]:
     """(RESERVED | UNKNOWN | NOT_RESERVED, the deciding signal) over an item's resources, each
-    given as its signals in TDMRep processing order. A noai/noimageai directive reserves on
-    its own (common practice); a reservation anywhere wins over an unknown anywhere."""
+    given as its signals in TDMRep processing order. A noai/noimageai directive (common
+    practice) and a prohibiting IPTC Data Mining value reserve on their own; a reservation
+    anywhere wins over an unknown anywhere."""
     unknown: Signal | None = None
     for signals in resources:
-        noai = [s for s in signals if s.name in NOAI_NAMES and s.meaning == RESERVED]
-        if noai:
-            return RESERVED, noai[0]
+        alone = [s for s in signals if s.meaning == RESERVED
+                 and (s.name in NOAI_NAMES or s.place in (XMP, C2PA))]
+        if alone:
+            return RESERVED, alone[0]
         state = tdm_state(signals)
         if state is not None and state.meaning == RESERVED:
             return RESERVED, state
@@ -132,6 +135,7 @@ class ReservationGate:
         self._listing: dict[int, tuple[str, list[Signal]]] = {}
         self._details: dict[str, list[Signal]] = {}
         self._item_source: dict[int, int] = {}
+        self._findings: dict[int, str] = {}
 
     # -- what the source's pages say ---------------------------------------------------------
     def watching(self, fetcher: Any, source_id: int) -> Any:
@@ -205,13 +209,14 @@ class ReservationGate:
         refusal: Refusal | None = None
         if found == RESERVED and deciding is not None and permission is None:
             reason = (NOAI_REASON if deciding.name in NOAI_NAMES else
-                      XMP_REASON if deciding.place == "XMP" else TDMREP_REASON)
+                      XMP_REASON if deciding.place == XMP else TDMREP_REASON)
             refusal = Refusal(state, reason, f"reserved against text-and-data mining: "
                               f"{_describe(deciding)}")
         elif found == UNKNOWN and deciding is not None and self.defer_unknown \
                 and permission is None:
             refusal = Refusal("deferred", UNKNOWN_REASON, f"{_describe(deciding)}; asked "
                               "again in the next run ([reservations] when_unknown)")
+        self._remember(item_id, found, deciding, refusal, permission)
         signals = list(record) if record is not None else [s for r in resources for s in r]
         for signal in signals:
             if signal.place == TDMREP_FILE and signal.name == "location" \
@@ -242,7 +247,27 @@ class ReservationGate:
             url=scrub(signal.url), name=signal.name, value=scrub(signal.shown_value),
             meaning=signal.meaning, decision=decision)
 
+    def _remember(self, item_id: int, found: str, deciding: Signal | None,
+                  refusal: Refusal | None, permission: str | None) -> None:
+        """Keep the first finding about an item that is not "nothing found" for checks()."""
+        if deciding is None or found == NOT_RESERVED:
+            return
+        if refusal is not None:
+            text = f"{refusal.reason} ({refusal.state})"
+        elif permission is not None:
+            text = (f"{'reserved' if found == RESERVED else 'unknown'} "
+                    f"({_describe(deciding)}), gathered under permission: {permission}")
+        else:
+            text = (f"unknown ({_describe(deciding)}), gathered as [reservations] "
+                    "when_unknown = \"gather\" says")
+        with self._lock:
+            self._findings.setdefault(item_id, text)
+
     def checks(self, item_id: int, *, local: bool = False) -> str:
-        """The mechanisms checked for an item, as trace shows them."""
-        return "; ".join(FILE_CHECKS) if local else self.page_checks
+        """What trace says about an item's reservations: what was found at fetch time (or
+        that nothing was) and the mechanisms checked."""
+        with self._lock:
+            finding = self._findings.pop(item_id, None)
+        checked = "; ".join(FILE_CHECKS) if local else self.page_checks
+        return f"{finding or 'no reservation found at fetch time'}; signals checked: {checked}"
 

@@ -569,3 +569,31 @@ def release_rows(ledger: Ledger) -> Iterator[ReleaseRow]:
             " x.purpose = 'image' AND x.status BETWEEN 200 AND 299) "
             f"{_ACCEPTED_FROM} ORDER BY f.sha256"):
         yield ReleaseRow(*row)
+
+
+class ReservationFacts(NamedTuple):
+    """Reservation signals seen and what they did (collector.run.reservations)."""
+
+    signals: tuple[tuple[str, str, str, int], ...]  # place, name, meaning, items with it
+    excluded: tuple[tuple[str, str, int], ...]  # state, reason, items
+    permissions: tuple[tuple[str, str], ...]  # source name, the permission's reference
+    files: tuple[tuple[str, int], ...]  # tdmrep.json state, hosts
+
+
+def reservation_facts(ledger: Ledger, reasons: tuple[str, ...]) -> ReservationFacts:
+    """Signals by where and meaning, items excluded per reason, permissions used, and the
+    tdmrep.json outcome per host; empty for a ledger without the reservation tables."""
+    if not ledger.scalar("SELECT count(*) FROM sqlite_master WHERE name = "
+                         "'reservation_signals'"):
+        return ReservationFacts((), (), (), ())
+    marks = ", ".join("?" for _ in reasons)
+    return ReservationFacts(
+        tuple(ledger.rows("SELECT place, name, meaning, count(DISTINCT item_id) FROM "
+                          "reservation_signals GROUP BY 1, 2, 3 ORDER BY 4 DESC, 1, 2, 3")),
+        tuple(ledger.rows(f"SELECT state, reason, count(*) FROM items WHERE reason IN "
+                          f"({marks}) GROUP BY 1, 2 ORDER BY 3 DESC, 2", reasons)),
+        tuple(ledger.rows("SELECT DISTINCT s.name, substr(r.decision, 28) FROM "
+                          "reservation_signals r JOIN sources s ON s.id = r.source_id WHERE "
+                          "r.decision LIKE 'gathered under permission: %' ORDER BY 1")),
+        tuple(ledger.rows("SELECT tdmrep_state, count(*) FROM hosts WHERE tdmrep_state IS NOT "
+                          "NULL GROUP BY 1 ORDER BY 1")))
