@@ -228,3 +228,28 @@ def test_iptc_data_mining_read_from_a_real_jpeg(term: str, meaning: str) -> None
     assert [(s.name, s.meaning) for s in found] == [
         ("plus:DataMining", meaning), ("plus:OtherConstraints", UNSET)]
     assert found[1].value == "Ask the archive first"
+
+
+RECIPE = ('contact = "me@example.org"\n[[sources]]\nname = "desk"\nkind = "scans"\n'
+          'path = "in"\n')
+
+
+def test_reservations_recipe_defaults_and_errors() -> None:
+    """Honouring is the default; a permission must name a source and carry a reference; a
+    robots token must be a product token (RFC 9309 §2.2.1)."""
+    from pathlib import Path
+
+    from collector.config.recipe import parse_recipe
+    from collector.errors import RecipeError
+
+    plain = parse_recipe(RECIPE, Path("r.toml")).reservations
+    assert (plain.when_unknown, plain.robots_tokens, plain.permission) == ("defer", [], {})
+    with pytest.raises(RecipeError) as caught:
+        parse_recipe(RECIPE + '[reservations]\nwhen_unknown = "ignore"\nrobots_tokens = '
+                     '["Bad Token"]\n[reservations.permission]\n"dsek" = "Agreement 7"\n'
+                     '"desk" = "  "\n', Path("r.toml"))
+    shown = {p.key_path: p.message for p in caught.value.problems}
+    assert "reservations.when_unknown" in shown
+    assert "product tokens" in shown["reservations.robots_tokens"]
+    assert "did you mean 'desk'" in shown['reservations.permission."dsek"']
+    assert "needs a reference" in shown["reservations.permission"]

@@ -489,7 +489,9 @@ def parse_recipe(text: str, path: Path) -> Recipe:
         problems.add("images.max_aspect", "must be greater than images.min_aspect")
     source_list = _check_sources(data["sources"], problems) if "sources" in data else []
     names = [s.get("name") for s in source_list]
-    for name in sections["reservations"].get("permission", {}):
+    raw_permission = (data.get("reservations") or {}).get("permission") \
+        if isinstance(data.get("reservations"), dict) else None
+    for name in raw_permission if isinstance(raw_permission, dict) else {}:
         if name not in names:
             problems.add(f'reservations.permission."{name}"',
                          f"names no source{did_you_mean(name, [str(n) for n in names])}; a "
