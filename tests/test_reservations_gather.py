@@ -291,3 +291,27 @@ def test_status_and_trace_show_the_reservations(gathered: Collection) -> None:
     assert ("reservations: no reservation found at fetch time; signals checked: tdmrep.json; "
             "tdm-reservation header; tdm-reservation meta") in lines
     assert "C2PA content credentials not read" in lines
+
+
+def test_the_datasheet_and_croissant_answer_from_the_ledger(archive: LoopbackServer,
+                                                            tmp_path: Path) -> None:
+    """The datasheet answers which mechanisms were checked and how many items each excluded,
+    names the permission, and carries the caution; Croissant's RAI preprocessing says it."""
+    from collector.exports.datasheet import export_datasheet
+
+    col = init_collection(tmp_path / "c", contact="tests@example.org")
+    col.recipe_path.write_text(recipe_for(archive, '[reservations.permission]\n'
+                                          '"lifted" = "Agreement FFS-9"\n'))
+    gather(col)
+    export_datasheet(col.root)
+    md = (col.root / "datasheet" / "datasheet.md").read_text()
+    answer = md[md.index("Which machine-readable reservations"):]
+    answer = answer[:answer.index("Anything else about how it was gathered")]
+    assert "tdmrep.json; tdm-reservation header" in answer
+    assert "skipped/tdmrep_reserved | 3" in answer and "rejected/noai_directive | 1" in answer
+    assert "Permission recorded for source lifted: Agreement FFS-9." in answer
+    assert "not legal advice" in answer
+    rai = json.loads((col.root / "datasheet" / "croissant.json").read_text())
+    steps = " ".join(rai["rai:dataPreprocessingProtocol"])
+    assert "reservations against text-and-data mining were honoured" in steps
+    assert "rejected/xmp_data_mining 1" in steps

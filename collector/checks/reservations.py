@@ -57,6 +57,12 @@ TDMREP_REASON, NOAI_REASON, XMP_REASON, UNKNOWN_REASON, ROBOTS_TOKEN_REASON = (
 RESERVATION_REASONS = (TDMREP_REASON, NOAI_REASON, XMP_REASON, UNKNOWN_REASON,
                        ROBOTS_TOKEN_REASON)
 
+# The mechanisms checked, as trace and the datasheet name them.
+C2PA_NOT_READ = "C2PA content credentials not read (c2pa-python not installed)"
+PAGE_CHECKS = ("tdmrep.json", "tdm-reservation header", "tdm-reservation meta",
+               "X-Robots-Tag noai/noimageai", "robots meta noai/noimageai")
+FILE_CHECKS = ("XMP plus:DataMining", C2PA_NOT_READ)
+
 # Where a signal was seen (the ledger's ``place``) and the mechanism names trace shows.
 TDMREP_FILE, HEADER, META, XMP, C2PA, ROBOTS_TXT = (
     "tdmrep.json", "HTTP header", "HTML meta", "XMP", "C2PA", "robots.txt")

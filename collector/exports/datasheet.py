@@ -38,6 +38,7 @@ from collector.checks.licences import licence_allowed, licence_conditions, licen
 from collector.config.recipe import Recipe
 from collector.errors import CollectionError, LedgerError, LedgerUnusable
 from collector.exports.datasheet_questions import load_answers
+from collector.exports.datasheet_reservations import reservation_summary
 from collector.exports.facts import DatasheetFacts, ResolutionBins, Timeline
 from collector.safe_text import csv_cell, csv_row
 from collector.storage import queries
@@ -106,6 +107,7 @@ def _facts(ledger: Ledger, recipe: Recipe, now: str) -> DatasheetFacts:
                      **_kind_facts(s.kind)} for s in queries.source_counts(ledger)],
         "runs": queries.run_facts(ledger),
         "notes": queries.note_counts(ledger),
+        "reservations": reservation_summary(ledger, recipe),
         "policy": {
             "budgets": {k: getattr(recipe.budgets, k) for k in (
                 "min_interval", "requests_per_hour", "bytes_per_hour", "max_connections",

@@ -16,6 +16,8 @@ from dataclasses import dataclass, field
 from typing import TYPE_CHECKING, Any
 
 from collector.exports.datasheet_questions import SECTIONS, Question
+from collector.exports.datasheet_reservations import CAUTION as RESERVATIONS_CAUTION
+from collector.exports.datasheet_reservations import reservation_blocks
 
 if TYPE_CHECKING:
     from collector.exports.facts import DatasheetFacts
@@ -29,6 +31,7 @@ CAUTION = [
     "before publication; faces and names inside pictures are not detected.",
     "robots.txt permission is not the same as permission under a site's terms of use; read "
     "each archive's terms.",
+    RESERVATIONS_CAUTION,
 ]
 KIND_LABEL = {"A": "From the ledger", "P": "Pre-filled from the ledger — curator, please confirm",
               "C": "Curator's question"}
@@ -229,6 +232,7 @@ FACTS: dict[str, Callable[[DatasheetFacts], list[Block]]] = {
                                                "they were not verified.")],
     "collection.mechanisms": lambda f: [_sources(f), *_politeness(f)],
     "collection.sampling": _steps,
+    "collection.reservations": reservation_blocks,
     "collection.timeframe": lambda f: [("p", f"First and last request or stored file: "
                                              f"{f['timeframe']['start']} to "
                                              f"{f['timeframe']['end']} (UTC), over "

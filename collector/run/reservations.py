@@ -34,9 +34,11 @@ from typing import Any
 
 from collector.checks.reservations import (
     C2PA,
+    FILE_CHECKS,
     HEADER,
     NOAI_REASON,
     NOT_RESERVED,
+    PAGE_CHECKS,
     RESERVED,
     TDMREP_FILE,
     TDMREP_REASON,
@@ -56,10 +58,6 @@ from collector.config.recipe import Recipe
 from collector.fetching.tdmrep import NO_FILE, RULES, TdmFile, TdmRepFiles
 from collector.fetching.tdmrep import UNKNOWN as FILE_UNKNOWN
 
-C2PA_NOT_READ = "C2PA content credentials not read (c2pa-python not installed)"
-PAGE_CHECKS = ("tdmrep.json", "tdm-reservation header", "tdm-reservation meta",
-               "X-Robots-Tag noai/noimageai", "robots meta noai/noimageai")
-FILE_CHECKS = ("XMP plus:DataMining", C2PA_NOT_READ)
 NOAI_NAMES = ("X-Robots-Tag", "robots")
 
 
@@ -207,37 +205,39 @@ class ReservationGate:
         found, deciding = verdict(resources)
         permission = self.permission.get(self._item_source.get(item_id, -1))
         refusal: Refusal | None = None
-        if found == RESERVED and deciding is not None and permission is None:
+        if found == RESERVED and deciding is not None:
             reason = (NOAI_REASON if deciding.name in NOAI_NAMES else
                       XMP_REASON if deciding.place == XMP else TDMREP_REASON)
             refusal = Refusal(state, reason, f"reserved against text-and-data mining: "
                               f"{_describe(deciding)}")
-        elif found == UNKNOWN and deciding is not None and self.defer_unknown \
-                and permission is None:
+        elif found == UNKNOWN and deciding is not None and self.defer_unknown:
             refusal = Refusal("deferred", UNKNOWN_REASON, f"{_describe(deciding)}; asked "
                               "again in the next run ([reservations] when_unknown)")
-        self._remember(item_id, found, deciding, refusal, permission)
+        overridden = permission if refusal is not None else None
+        if overridden is not None:
+            refusal = None  # the source's recorded permission lets the item through
+        self._remember(item_id, found, deciding, refusal, overridden)
         signals = list(record) if record is not None else [s for r in resources for s in r]
         for signal in signals:
             if signal.place == TDMREP_FILE and signal.name == "location" \
                     and signal.meaning == UNSET:
                 continue  # no rule matched: nothing was said about this URL
-
-            self._record(item_id, signal, deciding, refusal, permission)
+            self._record(item_id, signal, deciding, refusal, overridden)
         return refusal
 
     def _record(self, item_id: int, signal: Signal, deciding: Signal | None,
-                refusal: Refusal | None, permission: str | None) -> None:
-        if permission is not None and signal.meaning in (RESERVED, UNKNOWN):
-            decision = f"gathered under permission: {permission}"
+                refusal: Refusal | None, overridden: str | None) -> None:
+        if signal is deciding and overridden is not None:
+            decision = f"gathered under permission: {overridden}"
         elif signal is deciding and refusal is not None:
             decision = f"item {refusal.state} ({refusal.reason})"
-        elif signal.meaning == UNKNOWN:
+        elif signal is deciding and signal.meaning == UNKNOWN:
             decision = "unknown: gathered, [reservations] when_unknown = \"gather\""
         elif signal.meaning == RESERVED:
-            decision = "reserved"
+            decision = "reserved, superseded" if deciding is None or \
+                deciding.meaning != RESERVED else "reserved"
         elif signal.place == TDMREP_FILE and signal.name == "file":
-            decision = "treated as no file"
+            decision = "treated as no file" if signal.meaning == UNSET else "unknown"
         else:
             decision = "no reservation"
         scrub = self.record.scrubbed
