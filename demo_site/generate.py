@@ -45,6 +45,7 @@ from collector.demo_site.hosts import (
     LAST_MODIFIED,
     RETRY_AFTER_FORM,
 )
+from collector.demo_site.tdm import build_reading_room
 
 ROBOTS_API = """# Fernhollow Field Society: API and media host
 User-agent: *
@@ -92,6 +93,7 @@ def generate(out_dir: Path, *, seed: int = SEED) -> dict[str, Any]:
     build_api_linked(b)
     build_gallery(b)
     build_scans(b)
+    build_reading_room(b)
     hosts = _hosts_section(DEFAULT_RATE)
     b.put_page(4, "/policies/robots.txt", ROBOTS_ANNEX, "text/plain; charset=utf-8",
                role="robots")
@@ -140,6 +142,9 @@ def _sources_section(b: Builder) -> list[dict[str, Any]]:
          "page_size": GALLERY_PAGE, "total": sum(1 for i in b.items if i.source == "gallery")},
         {"name": "scanner", "kind": "scans", "path": "scans",
          "files": [s["file"] for s in b.scans]},
+        {"name": "reading-room", "kind": "html", "host": 2, "url": url(2, "/reading-room/"),
+         "total": sum(1 for i in b.items if i.source == "reading-room"),
+         "tdmrep": url(2, "/.well-known/tdmrep.json")},
     ]
 
 
@@ -164,7 +169,7 @@ def content_version() -> str:
     h = hashlib.sha256(f"{GENERATOR_VERSION}:{SEED}:{PIL.__version__}:{np.__version__}"
                        .encode())
     for name in ("art", "builder", "catalogue", "content", "generate", "hosts", "metadata",
-                 "pages"):
+                 "pages", "tdm"):
         h.update((Path(__file__).parent / f"{name}.py").read_bytes())
     return h.hexdigest()[:12]
 

@@ -37,7 +37,7 @@ from collector.checks.reservations import (
     xmp_signals,
 )
 from collector.demo_site.tdm import xmp_packet
-from collector.fetching.tdmrep import NO_FILE, RULES, UNUSABLE, classify, tdmrep_url
+from collector.fetching.tdmrep import NO_FILE, NOT_READ, RULES, UNUSABLE, classify, tdmrep_url
 from collector.fetching.tdmrep import UNKNOWN as FILE_UNKNOWN
 from collector.run.reservations import verdict
 
@@ -135,6 +135,8 @@ def test_too_many_rules_are_refused() -> None:
     (None, None, "timeout", FILE_UNKNOWN),
     (None, None, "too_large", UNUSABLE),
     (302, None, "redirect_blocked", UNUSABLE),
+    (None, None, "robots_unreachable", NOT_READ),
+    (None, None, "robots_disallowed", NOT_READ),
 ])
 def test_fetch_outcomes(status: int | None, body: bytes | None, reason: str,
                         state: str) -> None:

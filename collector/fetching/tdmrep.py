@@ -10,9 +10,10 @@ it in cache. What each outcome means here:
 - 5xx, 429, a timeout or a broken connection: UNKNOWN. The file is asked for again after
   ``retry`` seconds (5 minutes, as for an unreachable robots.txt) and in every later run; the
   run decides what happens to the items meanwhile (``[reservations] when_unknown``);
-- a body that is not a JSON array, over MAX_TDMREP_BYTES, with too many rules, a redirect
-  loop, or robots.txt forbidding the file: UNUSABLE, treated as no file (§3.1 as above), and
-  the ledger says so.
+- a body that is not a JSON array, over MAX_TDMREP_BYTES, with too many rules, or a redirect
+  loop: UNUSABLE, treated as no file (§3.1 as above), and the ledger says so;
+- robots.txt forbidding the file (or unreachable): NOT_READ, treated as no file and asked
+  again like UNKNOWN (every request to that origin is judged by robots.txt anyway).
 
 A known answer is kept for 24 hours (the robots.txt rule of RFC 9309 §2.4, common practice for
 this file, no source) in memory and in the ledger's ``hosts`` row, so a resumed run does not
@@ -40,6 +41,7 @@ TDMREP_PATH = "/.well-known/tdmrep.json"
 TDMREP_TTL = 24 * 3600.0
 UNKNOWN_RETRY = 300.0
 RULES, NO_FILE, UNKNOWN, UNUSABLE = "rules", "no file", "unknown", "unusable"
+NOT_READ = "not read"  # robots.txt kept us from it: no file for now, asked again later
 
 
 @dataclass(frozen=True)
@@ -57,7 +59,7 @@ class TdmFile:
     def is_fresh(self, now: float) -> bool:
         """Whether the answer may still be used at epoch ``now``."""
         age = now - self.fetched_at
-        return 0 <= age < (UNKNOWN_RETRY if self.state == UNKNOWN else TDMREP_TTL)
+        return 0 <= age < (UNKNOWN_RETRY if self.state in (UNKNOWN, NOT_READ) else TDMREP_TTL)
 
 
 def tdmrep_url(url: str) -> str:
@@ -92,8 +94,11 @@ def classify(status: int | None, body: bytes | None, reason: str, url: str,
     if reason == "too_large":
         return TdmFile(url, UNUSABLE, now, status,
                        f"over {MAX_TDMREP_BYTES:,} bytes; treated as no file")
-    if reason in ("redirect_blocked", "robots_disallowed", "robots_token_disallowed",
-                  "unsafe_url"):
+    if reason.startswith("robots_"):
+        # robots.txt forbids the file (or cannot be read): the origin's other requests are
+        # judged by robots.txt as well; no file for now, asked again later.
+        return TdmFile(url, NOT_READ, now, status, f"not read ({reason}); treated as no file")
+    if reason in ("redirect_blocked", "unsafe_url"):
         return TdmFile(url, UNUSABLE, now, status, f"not readable ({reason}); treated as no file")
     if status is not None and 400 <= status < 500 and status != 429:
         return TdmFile(url, NO_FILE, now, status, f"HTTP {status}: no file")
