@@ -260,3 +260,24 @@ def test_the_store_holds_only_files_named_by_their_sha256(demo_run) -> None:
         assert match, path
         assert hashlib.sha256(path.read_bytes()).hexdigest() == match[3]
     assert [p.name for p in col.store.root.iterdir() if p.name.startswith(".")] == [".incoming"]
+
+
+def test_items_skipped_for_a_reservation_caused_no_image_request(demo_run, demo_server) -> None:
+    """The reading room's reserved items (a tdmrep.json rule, a listing page answering
+    tdm-reservation: 1, a detail page's meta element; TDMRep §3.1-§3.3) were skipped before
+    their image was requested: the server's own log has no request for it. Items reserved in
+    the image answer or file were requested, then not kept."""
+    from urllib.parse import urlsplit
+
+    col, log, _ = demo_run
+    requested = {(r.host, r.path) for r in log}
+    room = [i for i in demo_server.manifest["items"] if i["source"] == "reading-room"]
+    skipped = [i for i in room if i["state"] == "skipped"]
+    assert {i["reason"] for i in skipped} == {"tdmrep_reserved"} and len(skipped) == 3
+    for item in room:
+        parts = urlsplit(demo_server.fill(item["image_url"]))
+        assert ((parts.hostname, parts.path) in requested) == (item["state"] != "skipped"), item
+    assert ("127.0.0.2", "/.well-known/tdmrep.json") in requested
+    rejected = {i["sha256"] for i in room
+                if i["state"] == "rejected"}
+    assert rejected and not rejected & set(dict(col.store.iter_stored()))
