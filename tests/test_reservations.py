@@ -169,6 +169,9 @@ def test_a_directive_for_another_agent_does_not_bind_us() -> None:
     (common practice, no source)."""
     assert header_signals("u", {"X-Robots-Tag": "otherbot: noai"}, ["collector"]) == []
     assert header_signals("u", {"X-Robots-Tag": "collector: noai"}, ["collector"])
+    assert header_signals("u", {"X-Robots-Tag": "otherbot: noindex, noai"}, ["collector"]) == []
+    assert header_signals("u", {"X-Robots-Tag": "max-image-preview: none, noimageai"},
+                          ["collector"])
 
 
 def test_meta_elements() -> None:

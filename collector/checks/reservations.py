@@ -49,6 +49,9 @@ DMI_PROHIBITED = frozenset({
     "DMI-PROHIBITED-SEECONSTRAINT", "DMI-PROHIBITED-SEEEMBEDDEDRIGHTSEXPR",
     "DMI-PROHIBITED-SEELINKEDRIGHTSEXPR"})
 NOAI_DIRECTIVES = frozenset({"noai", "noimageai"})  # common practice, no standard
+# Robots directives that carry a value after a colon, so "name: value" is not an agent prefix.
+VALUED_DIRECTIVES = frozenset({"unavailable_after", "max-snippet", "max-image-preview",
+                               "max-video-preview"})
 
 # The items' reasons, one per mechanism (status and the datasheet count them).
 TDMREP_REASON, NOAI_REASON, XMP_REASON, UNKNOWN_REASON, ROBOTS_TOKEN_REASON = (
@@ -127,14 +130,18 @@ class TdmRule:
     meaning: str
     raw: str
     policy: str | None = None
-    _regex: re.Pattern[str] | None = field(default=None, repr=False)
+    _pattern: str = field(default="", init=False, repr=False)
+    _regex: re.Pattern[str] | None = field(default=None, init=False, repr=False)
+
+    def __post_init__(self) -> None:
+        self._pattern = _decode_unreserved(self.location)
 
     def matches(self, target: str) -> bool:
         """Whether the path (and query) ``target`` is under this rule (robots.txt syntax)."""
-        pattern = _decode_unreserved(self.location)
+        pattern = self._pattern
         if "*" not in pattern and not pattern.endswith("$"):
             return target.startswith(pattern)
-        if self._regex is None:
+        if self._regex is None:  # compiled when first needed: most rules are plain prefixes
             anchored = pattern.endswith("$")
             body = pattern[:-1] if anchored else pattern
             self._regex = re.compile(".*".join(re.escape(p) for p in body.split("*"))
@@ -209,8 +216,9 @@ def _robots_directives(value: str, tokens: Iterable[str]) -> set[str]:
         word = part.strip().lower()
         if ":" in word:
             head, _, rest = word.partition(":")
-            if head.strip() not in NOAI_DIRECTIVES and " " not in head.strip():
-                agent, word = head.strip(), rest.strip()
+            head = head.strip()
+            if head not in NOAI_DIRECTIVES | VALUED_DIRECTIVES and " " not in head:
+                agent, word = head, rest.strip()
         if agent is None or agent in ours:
             found.add(word)
     return found
