@@ -12,8 +12,9 @@ Where each signal is read and what it does (every signal seen becomes a
 2. in the image response (:meth:`ReservationGate.after_download`): its header fields. A
    reservation -> the temp file is removed and the item ``rejected``;
 3. inside the file (:meth:`ReservationGate.in_file`): IPTC "Data Mining" in XMP. Likewise
-   ``rejected``. C2PA content credentials are not read (c2pa-python is not a dependency:
-   a 16 MB wheel with a 55 MB native library); every item's checks say so.
+   ``rejected``. C2PA content credentials are not read (c2pa-python 0.38.1 is not a
+   dependency: a 15-16 MB wheel with a 55 MB native library, Linux glibc 2.28+ and macOS
+   only); every item's checks say so.
 
 TDMRep precedence (final report §4) holds per resource: the file's rule, then the header, then
 the meta element, each later value superseding. One deliberate reading: an image the file
