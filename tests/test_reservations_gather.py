@@ -309,6 +309,8 @@ def test_the_datasheet_and_croissant_answer_from_the_ledger(archive: LoopbackSer
     answer = answer[:answer.index("Anything else about how it was gathered")]
     assert "tdmrep.json; tdm-reservation header" in answer
     assert "skipped/tdmrep_reserved | 3" in answer and "rejected/noai_directive | 1" in answer
+    assert "| HTML meta | tdm-reservation | reserved | 1 | 1 |" in answer  # what each excluded
+    assert "| XMP | plus:DataMining | reserved | 1 | 1 |" in answer
     assert "Permission recorded for source lifted: Agreement FFS-9." in answer
     assert "not legal advice" in answer
     rai = json.loads((col.root / "datasheet" / "croissant.json").read_text())

@@ -30,8 +30,8 @@ def reservation_summary(ledger: Ledger, recipe: Recipe) -> ReservationSummary:
         checked.insert(len(PAGE_CHECKS), f"robots.txt groups of {', '.join(tokens)}")
     return {
         "checked": checked,
-        "signals": [{"place": p, "name": n, "meaning": m, "items": c}
-                    for p, n, m, c in found.signals],
+        "signals": [{"place": p, "name": n, "meaning": m, "items": c, "excluded": x}
+                    for p, n, m, c, x in found.signals],
         "excluded": {f"{state}/{reason}": n for state, reason, n in found.excluded},
         "tdmrep_files": dict(found.files),
         "permissions": dict(recipe.reservations.permission),
@@ -57,8 +57,10 @@ def reservation_blocks(f: DatasheetFacts) -> list[Block]:
               + ": recipe [reservations] when_unknown)."),
     ]
     if r["signals"]:
-        out.append(("table", ["where", "field", "meaning", "items"],
-                    [[s["place"], s["name"], s["meaning"], s["items"]] for s in r["signals"]]))
+        out.append(("p", "Signals seen, and the items each one excluded (it decided):"))
+        out.append(("table", ["where", "field", "meaning", "items", "items excluded"],
+                    [[s["place"], s["name"], s["meaning"], s["items"], s["excluded"]]
+                     for s in r["signals"]]))
     if r["tdmrep_files"]:
         out.append(("table", ["tdmrep.json outcome", "hosts"],
                     [[k, v] for k, v in r["tdmrep_files"].items()]))

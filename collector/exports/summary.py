@@ -95,8 +95,8 @@ def summary_as_dict(s: Summary) -> dict[str, Any]:
         "run_seconds": round(s.run_seconds, 3), "last_run": s.last_run,
         "last_run_seconds": s.last_run_seconds,
         "reservations": {
-            "signals": [{"place": p, "name": n, "meaning": m, "items": c}
-                        for p, n, m, c in s.reservations.signals],
+            "signals": [{"place": p, "name": n, "meaning": m, "items": c, "excluded": x}
+                        for p, n, m, c, x in s.reservations.signals],
             "excluded": {f"{state}/{reason}": n for state, reason, n in s.reservations.excluded},
             "permissions": dict(s.reservations.permissions),
             "tdmrep_files": dict(s.reservations.files)},
@@ -160,8 +160,9 @@ def format_reservations(r: queries.ReservationFacts) -> list[str]:
     """What status says about reservations against text-and-data mining (none: nothing)."""
     lines: list[str] = []
     if r.signals:
-        lines.append("reservation signals seen (items): " + ", ".join(
-            f"{place} {name} {meaning} {n}" for place, name, meaning, n in r.signals))
+        lines.append("reservation signals seen (items, of which excluded): " + ", ".join(
+            f"{place} {name} {meaning} {n}" + (f" ({x})" if x else "")
+            for place, name, meaning, n, x in r.signals))
     if r.excluded:
         lines.append("items excluded by reservations: " + ", ".join(
             f"{reason} {n} {state}" for state, reason, n in r.excluded))

@@ -572,23 +572,24 @@ def release_rows(ledger: Ledger) -> Iterator[ReleaseRow]:
 
 
 class ReservationFacts(NamedTuple):
-    """Reservation signals seen and what they did (collector.run.reservations)."""
+    """Reservation signals (place, name, meaning, items, items it excluded), items excluded
+    (state, reason, n), permissions used (source, reference), tdmrep.json outcomes (hosts)."""
 
-    signals: tuple[tuple[str, str, str, int], ...]  # place, name, meaning, items with it
-    excluded: tuple[tuple[str, str, int], ...]  # state, reason, items
-    permissions: tuple[tuple[str, str], ...]  # source name, the permission's reference
-    files: tuple[tuple[str, int], ...]  # tdmrep.json state, hosts
+    signals: tuple[tuple[str, str, str, int, int], ...]
+    excluded: tuple[tuple[str, str, int], ...]
+    permissions: tuple[tuple[str, str], ...]
+    files: tuple[tuple[str, int], ...]
 
 
 def reservation_facts(ledger: Ledger, reasons: tuple[str, ...]) -> ReservationFacts:
-    """Signals by where and meaning, items excluded per reason, permissions used, and the
-    tdmrep.json outcome per host; empty for a ledger without the reservation tables."""
+    """What collector.run.reservations recorded; empty for a ledger without its tables."""
     if not ledger.scalar("SELECT count(*) FROM sqlite_master WHERE name = "
                          "'reservation_signals'"):
         return ReservationFacts((), (), (), ())
     marks = ", ".join("?" for _ in reasons)
     return ReservationFacts(
-        tuple(ledger.rows("SELECT place, name, meaning, count(DISTINCT item_id) FROM "
+        tuple(ledger.rows("SELECT place, name, meaning, count(DISTINCT item_id), count("
+                          "DISTINCT CASE WHEN decision LIKE 'item %' THEN item_id END) FROM "
                           "reservation_signals GROUP BY 1, 2, 3 ORDER BY 4 DESC, 1, 2, 3")),
         tuple(ledger.rows(f"SELECT state, reason, count(*) FROM items WHERE reason IN "
                           f"({marks}) GROUP BY 1, 2 ORDER BY 3 DESC, 2", reasons)),
