@@ -151,7 +151,7 @@ class ReservationGate:
         """Keep the header and meta signals of a fetched page for the items it lists."""
         signals = header_signals(page.url, page.headers, self.tokens)
         ctype = (page.headers.get("Content-Type") or "").lower()
-        if "html" in ctype:
+        if ctype.startswith(("text/html", "application/xhtml+xml")):
             signals += meta_signals(page.url, page.text, self.tokens)
         with self._lock:
             if purpose == "listing":

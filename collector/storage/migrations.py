@@ -92,8 +92,8 @@ def _migration_4(db: sqlite_utils.Database) -> None:
     db.table("reservation_signals").create({
         "id": int, "run_id": int, "item_id": int, "source_id": int, "place": str, "url": str,
         "name": str, "value": str, "meaning": str, "decision": str, "seen_at": str,
-    }, pk="id")
-    db.table("reservation_signals").create_index(["item_id"])
+    }, pk="id", if_not_exists=True)  # a ledger mended by hand may have it already
+    db.table("reservation_signals").create_index(["item_id"], if_not_exists=True)
     items, hosts = db.table("items"), db.table("hosts")
     if "reservation_checks" not in items.columns_dict:
         items.add_column("reservation_checks", str)
