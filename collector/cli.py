@@ -114,7 +114,7 @@ def check(
     typer.echo(f"{recipe.path}: valid")
     typer.echo(f"  User-Agent: collector/{__version__} (+{recipe.contact})")
     typer.echo(f"  robots.txt product token: {recipe.product_token}")
-    for section in ("budgets", "network", "licences", "images", "stop"):
+    for section in ("budgets", "network", "licences", "images", "stop", "reservations"):
         typer.echo(f"  [{section}]")
         for key, value in settings[section].items():
             typer.echo(f"    {key} = {value!r}")
