@@ -317,3 +317,36 @@ def test_the_datasheet_and_croissant_answer_from_the_ledger(archive: LoopbackSer
     steps = " ".join(rai["rai:dataPreprocessingProtocol"])
     assert "reservations against text-and-data mining were honoured" in steps
     assert "rejected/xmp_data_mining 1" in steps
+
+
+def test_local_files_are_checked_for_data_mining_and_permissions_apply(tmp_path: Path) -> None:
+    """A scan whose XMP prohibits AI training (IPTC 2023.1 Data Mining) is rejected and not
+    stored; with a permission recorded for its source it is stored, and trace's text and the
+    ledger name the permission."""
+    col = init_collection(tmp_path / "c", contact="tests@example.org")
+    (col.root / "in").mkdir()
+    (col.root / "in" / "kept.jpg").write_bytes(picture(2, "JPEG"))
+    (col.root / "in" / "reserved.jpg").write_bytes(picture(3, "JPEG", xmp=xmp_packet(
+        "DMI-PROHIBITED-GENAIMLTRAINING")))
+    source = ('\n[[sources]]\nname = "desk"\nkind = "scans"\npath = "in"\n'
+              'include = ["*.jpg"]\nlicence = "CC0-1.0"\n')
+    col.recipe_path.write_text(col.recipe_path.read_text() + source)
+    gather(col, fetcher_factory=lambda recipe, ledger: None)
+    assert outcomes(col) == {"kept.jpg": ("stored", None),
+                             "reserved.jpg": ("rejected", "xmp_data_mining")}
+    assert len(dict(col.store.iter_stored())) == 1
+    col.recipe_path.write_text(col.recipe_path.read_text()
+                               + '[reservations.permission]\n"desk" = "Scanned by us, 2026"\n')
+    with col.ledger() as ledger:  # rejected is final; ask again for this test's second half
+        ledger.update_item(ledger.query("SELECT id FROM items WHERE source_key = "
+                                        "'reserved.jpg'")[0]["id"], state="pending")
+    gather(col, fetcher_factory=lambda recipe, ledger: None)
+    assert outcomes(col)["reserved.jpg"] == ("stored", None)
+    with col.ledger(readonly=True) as ledger:
+        checks = ledger.query("SELECT reservation_checks FROM items WHERE source_key = "
+                              "'reserved.jpg'")[0]["reservation_checks"]
+        decisions = {r["decision"] for r in ledger.query(
+            "SELECT decision FROM reservation_signals WHERE name = 'plus:DataMining'")}
+    assert checks.startswith("reserved (plus:DataMining") and "gathered under permission: " \
+        "Scanned by us, 2026; signals checked: XMP plus:DataMining" in checks
+    assert "gathered under permission: Scanned by us, 2026" in decisions

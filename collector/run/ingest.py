@@ -176,6 +176,7 @@ class Ingest:
         else:
             item_id = self.ledger.add_item(source_id, c.source_key, fields)
         self._item_source[item_id] = source_id
+        self.gate.register(item_id, source_id)
         return item_id, licence.spdx_id, fields["image_url"]
 
     def _gone_for_good(self, row: dict[str, Any]) -> bool:
@@ -259,10 +260,9 @@ class Ingest:
                 self.record.finish(item_id, "rejected", exc.reason, exc.detail, **extra)
                 return
             refusal = self.gate.in_file(item_id, url, facts.rights)
+            web = (url or "").lower().startswith(("http://", "https://"))
+            extra = {**extra, "reservation_checks": self.gate.checks(item_id, local=not web)}
             if refusal is not None:  # IPTC Data Mining in the file: the temp file goes
-                web = (url or "").lower().startswith(("http://", "https://"))
-                extra = {**extra, "reservation_checks": self.gate.checks(item_id,
-                                                                         local=not web)}
                 self.record.finish(item_id, refusal.state, refusal.reason, refusal.detail,
                                    **extra)
                 return

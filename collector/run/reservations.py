@@ -170,10 +170,14 @@ class ReservationGate:
         return [Signal(TDMREP_FILE, found.url, "file", found.detail, meaning)]
 
     # -- decisions -----------------------------------------------------------------------------
+    def register(self, item_id: int, source_id: int) -> None:
+        """Remember an item's source (its permission, its signal rows), local items too."""
+        self._item_source[item_id] = source_id
+
     def admission(self, source_id: int, item_id: int, page_url: str | None) -> Refusal | None:
         """Before the image request: the listing and detail pages' signals (skipped or
         deferred), or None to go on."""
-        self._item_source[item_id] = source_id
+        self.register(item_id, source_id)
         resources: list[list[Signal]] = []
         with self._lock:
             listing = self._listing.get(source_id)
@@ -268,7 +272,7 @@ class ReservationGate:
         """What trace says about an item's reservations: what was found at fetch time (or
         that nothing was) and the mechanisms checked."""
         with self._lock:
-            finding = self._findings.pop(item_id, None)
+            finding = self._findings.get(item_id)
         checked = "; ".join(FILE_CHECKS) if local else self.page_checks
         return f"{finding or 'no reservation found at fetch time'}; signals checked: {checked}"
 
