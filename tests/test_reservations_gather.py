@@ -350,3 +350,13 @@ def test_local_files_are_checked_for_data_mining_and_permissions_apply(tmp_path:
     assert checks.startswith("reserved (plus:DataMining") and "gathered under permission: " \
         "Scanned by us, 2026; signals checked: XMP plus:DataMining" in checks
     assert "gathered under permission: Scanned by us, 2026" in decisions
+
+
+def test_tdmrep_json_is_kept_for_a_day_across_runs(gathered: Collection,
+                                                   archive: LoopbackServer) -> None:
+    """A second run within 24 hours reads the origin's tdmrep.json from the ledger, like
+    robots.txt (RFC 9309 §2.4's day, common practice for this file), and decides the same."""
+    before = outcomes(gathered)
+    gather(gathered)
+    assert archive.paths().count("/.well-known/tdmrep.json") == 1
+    assert outcomes(gathered) == before
