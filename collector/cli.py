@@ -118,7 +118,7 @@ def check(
     say(f"{recipe.path}: valid")
     say(f"  User-Agent: collector/{__version__} (+{recipe.contact})")
     say(f"  robots.txt product token: {recipe.product_token}")
-    for section in ("budgets", "network", "licences", "images", "stop"):
+    for section in ("budgets", "network", "licences", "images", "stop", "items", "reservations"):
         say(f"  [{section}]")
         for key, value in settings[section].items():
             say(f"    {toml_key(key)} = {toml_value(value)}")

@@ -47,6 +47,7 @@ from collector.demo_site.hosts import (
 )
 from collector.demo_site.iiif_archive import build_iiif
 from collector.demo_site.oai_content import build_oai, oai_manifest
+from collector.demo_site.tdm import build_reading_room
 
 ROBOTS_API = """# Fernhollow Field Society: API and media host
 User-agent: *
@@ -96,6 +97,7 @@ def generate(out_dir: Path, *, seed: int = SEED) -> dict[str, Any]:
     build_scans(b)
     build_oai(b)
     iiif_source = build_iiif(b)
+    build_reading_room(b)
     hosts = _hosts_section(DEFAULT_RATE)
     b.put_page(4, "/policies/robots.txt", ROBOTS_ANNEX, "text/plain; charset=utf-8",
                role="robots")
@@ -148,6 +150,9 @@ def _sources_section(b: Builder) -> list[dict[str, Any]]:
         {"name": "oai-records", "kind": "oai_pmh", "host": b.apis["oai"]["host"],
          "url": url(b.apis["oai"]["host"], b.apis["oai"]["path"]),
          "page_size": b.apis["oai"]["page_size"], "total": len(b.apis["oai"]["records"])},
+        {"name": "reading-room", "kind": "html", "host": 2, "url": url(2, "/reading-room/"),
+         "total": sum(1 for i in b.items if i.source == "reading-room"),
+         "tdmrep": url(2, "/.well-known/tdmrep.json")},
     ]
 
 
@@ -172,7 +177,7 @@ def content_version() -> str:
     h = hashlib.sha256(f"{GENERATOR_VERSION}:{SEED}:{PIL.__version__}:{np.__version__}"
                        .encode())
     for name in ("art", "builder", "catalogue", "content", "generate", "hosts", "metadata",
-                 "pages", "oai", "oai_content", "iiif_archive"):
+                 "pages", "oai", "oai_content", "iiif_archive", "tdm"):
         h.update((Path(__file__).parent / f"{name}.py").read_bytes())
     return h.hexdigest()[:12]
 

@@ -266,6 +266,31 @@ def binary_robots(h: H, ctx: Ctx) -> None:
          {"Content-Type": "application/octet-stream"})
 
 
+# --- tdmrep.json (W3C TDM Reservation Protocol, see demo_site.tdm) -------------------------
+def _tdmrep(body: bytes, ctype: str = "application/json") -> Callable[[H, Ctx], None]:
+    def handle(h: H, ctx: Ctx) -> None:
+        send(h, 200, body, {"Content-Type": ctype})
+    return handle
+
+
+RESERVE_ALL = b'{"location": "/", "tdm-reservation": 1}'
+# 5 MB: a rule reserving everything, then padding rules; over the 512 KiB collector reads.
+tdmrep_5mb = _tdmrep(b"[" + RESERVE_ALL + b"," + b",".join(
+    [b'{"location": "/padding/of/a/very/long/file/", "tdm-reservation": 0}'] * 74_000) + b"]")
+tdmrep_invalid = _tdmrep(b'[{"location": "/", "tdm-reservation": 1},, oops')
+tdmrep_100k = _tdmrep(b"[" + b",".join([RESERVE_ALL] * 100_000) + b"]")
+
+
+def tdmrep_redirect_loop(h: H, ctx: Ctx) -> None:
+    """tdmrep.json redirects to itself forever."""
+    send(h, 302, headers={"Location": "/.well-known/tdmrep.json"})
+
+
+def tdmrep_down(h: H, ctx: Ctx) -> None:
+    """tdmrep.json answers 503 every time."""
+    send(h, 503, b"down", {"Content-Type": "text/plain"})
+
+
 # --- listings ------------------------------------------------------------------------------
 def deep_json(h: H, ctx: Ctx) -> None:
     """A JSON listing nested 100,000 arrays deep."""
@@ -413,6 +438,8 @@ class Case:
     flag: str | None = None  # a flag the stored file must carry
     robots: Callable[[H, Ctx], None] | None = None
     why: str = ""  # why this outcome is the right one (accepted cases)
+    tdmrep: Callable[[H, Ctx], None] | None = None  # /.well-known/tdmrep.json (else 404)
+    signal: str | None = None  # text the ledger's reservation_signals must hold for the item
 
 
 IMG = "/img/picture.png"
@@ -506,6 +533,22 @@ CASES: list[Case] = [
     Case("robots-redirect-loop", "robots.txt redirect loop", "image", IMG, serve(noise_image),
          "stored", None, robots=robots_redirect_loop,
          why="more than five redirects: unavailable, MAY access anything (RFC 9309 §2.3.1.2)"),
+    Case("tdmrep-5mb", "tdmrep.json of 5 MB reserving everything", "image", IMG,
+         serve(noise_image), "stored", None, tdmrep=tdmrep_5mb, signal="over 524,288 bytes",
+         why="over the 512 KiB read: no usable file, so no rules (TDMRep §3.1); recorded"),
+    Case("tdmrep-invalid", "tdmrep.json that is not valid JSON", "image", IMG,
+         serve(noise_image), "stored", None, tdmrep=tdmrep_invalid, signal="not valid JSON",
+         why="no usable file, so no rules (TDMRep §3.1); recorded in the ledger"),
+    Case("tdmrep-100k-rules", "tdmrep.json with 100,000 rules", "image", IMG,
+         serve(noise_image), "stored", None, tdmrep=tdmrep_100k, signal="treated as no file",
+         why="4 MB, over the 512 KiB read: no usable file (TDMRep §3.1); recorded"),
+    Case("tdmrep-redirect-loop", "tdmrep.json redirect loop", "image", IMG,
+         serve(noise_image), "stored", None, tdmrep=tdmrep_redirect_loop,
+         signal="redirect_blocked",
+         why="no representation is reached: the protocol is not implemented (TDMRep §3.1)"),
+    Case("tdmrep-503", "tdmrep.json answers 503 every time", "image", IMG,
+         serve(noise_image), "deferred", "tdmrep_unknown", tdmrep=tdmrep_down,
+         signal="http_503"),
     Case("name-dotdot", "Content-Disposition filename ../../..", "image", IMG,
          serve(noise_image, Content_Disposition=CD + '"../../../../escaped-dotdot.png"'),
          "stored", None, why="files are named by sha256; the server's name is ignored"),
@@ -566,12 +609,14 @@ class Ctx:
 
 
 DEFAULT_ROBOTS = (200, b"User-agent: *\nAllow: /\n", {"Content-Type": "text/plain"})
+NO_TDMREP = (404, b"no tdmrep.json here", {"Content-Type": "text/plain"})
 
 
 def case_server(ctx: Ctx, host: str = "127.0.0.1",
                 handler: Callable[[H, Ctx], None] | None = None,
                 robots: Callable[[H, Ctx], None] | None = None,
-                routes: dict[str, Callable[[H, Ctx], None]] | None = None) -> LoopbackServer:
+                routes: dict[str, Callable[[H, Ctx], None]] | None = None,
+                tdmrep: Callable[[H, Ctx], None] | None = None) -> LoopbackServer:
     """One loopback server: robots.txt (allow all unless given), ``routes`` by path prefix,
     ``handler`` for everything else; its ``hits`` log every request."""
     def bind(route: Callable[[H, Ctx], None]) -> Callable[[H], None]:
@@ -579,6 +624,7 @@ def case_server(ctx: Ctx, host: str = "127.0.0.1",
 
     server = LoopbackServer(host)
     server.route("/robots.txt", DEFAULT_ROBOTS if robots is None else bind(robots))
+    server.route("/.well-known/tdmrep.json", NO_TDMREP if tdmrep is None else bind(tdmrep))
     server.prefixes.update({prefix: bind(r) for prefix, r in (routes or {}).items()})
     server.fallback = None if handler is None else bind(handler)
     return server
@@ -609,7 +655,7 @@ class HostileArchive:
             routes = {f"/good-{p}": _good(f"{case.name}-{p}") for p in ("a", "b")}
             routes["/good"] = _good(f"{case.name}-good")
             self._add(case.name, case_server(ctx(case.name), handler=case.handler,
-                                      robots=case.robots, routes=routes))
+                                      robots=case.robots, routes=routes, tdmrep=case.tdmrep))
         self.lister = self._add("lister", case_server(ctx("lister"), routes={
             "/api/items": self._listing, "/good.png": _good("normal")}))
 

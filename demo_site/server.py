@@ -198,7 +198,8 @@ class Site:
                   ("Cache-Control", "max-age=3600")]
         if _not_modified(headers, etag, last_modified):
             return Reply(304, b"", common)
-        return Reply(200, body, [("Content-Type", route["content_type"]), *common])
+        extra = [(str(k), str(v)) for k, v in route.get("headers", [])]
+        return Reply(200, body, [("Content-Type", route["content_type"]), *common, *extra])
 
     def _api(self, host: int, path: str, query: dict[str, list[str]]) -> Reply | None:
         for name, api in self.apis.items():

@@ -234,6 +234,14 @@ def _crawl(server: DemoServer) -> tuple[dict[tuple[str, str], str], set[str]]:
         nxt = soup.select_one("a[rel=next]")
         url = urljoin(base, nxt["href"]) if nxt else None
     _crawl_oai(server, listed)
+    for start in ("/reading-room/", "/reading-room/closed/"):  # reservations (demo_site.tdm)
+        listing = server.url(2, start)
+        for card in BeautifulSoup(fetch(listing)[2], "html.parser").select("li.card a.record"):
+            detail_url = urljoin(listing, card["href"])
+            detail = BeautifulSoup(fetch(detail_url)[2], "html.parser")
+            key = detail_url.rsplit("/", 1)[1].removesuffix(".html")
+            listed[("reading-room", key)] = urljoin(detail_url,
+                                                    detail.select_one("figure img.full")["src"])
     referenced.update(listed.values())
     return listed, referenced
 
@@ -350,6 +358,7 @@ def test_recipes_render_to_toml_with_port_scans_and_loopback_only(tmp_path: Path
                     assert parts.port == 43210
     demo = tomllib.loads(recipes.render("demo", 1, tmp_path / "scans"))
     assert [s["name"] for s in demo["sources"]] == ["api-pages", "api-objects", "api-linked",
-                                                     "gallery", "scanner", "oai-records", "iiif"]
+                                                     "gallery", "scanner", "oai-records", "iiif",
+                                                     "reading-room"]
     assert demo["sources"][4]["path"] == (tmp_path / "scans").as_posix()
     assert demo["sources"][1]["detail"]["url"].endswith("/api/v2/objects/{id}")

@@ -210,8 +210,10 @@ def test_status_numbers_add_up_and_match_the_server_log(demo_run, demo_server) -
     assert all(h.errors <= h.requests for h in s.hosts)
     mirror = next(h for h in s.hosts if h.host.startswith("127.0.0.3:"))
     assert (mirror.requests, mirror.errors) == (1, 1)  # its robots.txt, answered 503
+    # every image robots.txt kept us from, and its tdmrep.json (asked through the same
+    # polite fetcher, so held back by the same robots.txt)
     assert mirror.held_back == sum(1 for i in demo_server.manifest["items"]
-                                   if i["reason"] == "robots_unreachable")
+                                   if i["reason"] == "robots_unreachable") + 1
     near = sum(o.files for o in s.origins if o.near_kept)
     assert s.files == s.states["stored"] + near == sum(o.files for o in s.origins)
     assert s.file_bytes == sum(o.bytes for o in s.origins)
@@ -345,3 +347,24 @@ def test_iiif_items_were_asked_at_the_negotiated_size_and_rights_statements_kept
     assert result.counts.by_licence.get("rs:NoC-US") == 1
     sheet = (result.out / "datasheet.md").read_text(encoding="utf-8")
     assert "rs:NoC-US" in sheet and "rightsstatements.org/page/NoC-US/1.0/" in sheet
+
+
+def test_items_skipped_for_a_reservation_caused_no_image_request(demo_run, demo_server) -> None:
+    """The reading room's reserved items (a tdmrep.json rule, a listing page answering
+    tdm-reservation: 1, a detail page's meta element; TDMRep §3.1-§3.3) were skipped before
+    their image was requested: the server's own log has no request for it. Items reserved in
+    the image answer or file were requested, then not kept."""
+    from urllib.parse import urlsplit
+
+    col, log, _ = demo_run
+    requested = {(r.host, r.path) for r in log}
+    room = [i for i in demo_server.manifest["items"] if i["source"] == "reading-room"]
+    skipped = [i for i in room if i["state"] == "skipped"]
+    assert {i["reason"] for i in skipped} == {"tdmrep_reserved"} and len(skipped) == 3
+    for item in room:
+        parts = urlsplit(demo_server.fill(item["image_url"]))
+        assert ((parts.hostname, parts.path) in requested) == (item["state"] != "skipped"), item
+    assert ("127.0.0.2", "/.well-known/tdmrep.json") in requested
+    rejected = {i["sha256"] for i in room
+                if i["state"] == "rejected"}
+    assert rejected and not rejected & set(dict(col.store.iter_stored()))

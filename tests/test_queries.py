@@ -25,6 +25,7 @@ from collector.storage.ledger import Ledger
 SAMPLE_ARGS: dict[str, Any] = {
     "sha256": "ab" * 32, "item_id": 1, "rowid": 1, "step": 8, "width": 10,
     "personal": ("gps", "camera_serial"), "conflict": "licence_conflict", "limit": 1,
+    "reasons": ("tdmrep_reserved", "noai_directive"),
 }
 
 PUBLIC_QUERIES = sorted(
@@ -38,6 +39,9 @@ LEDGER_CALLS: dict[str, Callable[[Ledger], Any]] = {
     "sql_function": lambda ledger: ledger.sql_function("twice", lambda v: 2 * v),
     "forget_missing_file": lambda ledger: ledger.forget_missing_file("ab" * 32),
     "drop_all_store_intents": lambda ledger: ledger.drop_all_store_intents(),
+    "record_signal": lambda ledger: ledger.record_signal(
+        place="XMP", url="file", name="plus:DataMining", value="x", meaning="unset",
+        decision="no reservation"),
 }
 
 

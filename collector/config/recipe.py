@@ -349,6 +349,37 @@ class Stop:
     duration: str = _setting("", lambda v: _check_duration(v) if v else None)
 
 
+def _check_tokens(values: Any) -> str | None:
+    bad = [v for v in values if not valid_product_token(v)]
+    if bad:
+        return (f"entries must be robots.txt product tokens: letters, '_' and '-' (RFC 9309 "
+                f"section 2.2.1), got {bad[0]!r}")
+    return None
+
+
+def _check_permissions(values: Any) -> str | None:
+    for name, reference in values.items():
+        if not str(reference).strip():
+            return (f"{name}: the permission needs a reference a reader can check (e.g. "
+                    "\"licence agreement FFS-2026-04 of 3 May 2026\"), not an empty text")
+    return None
+
+
+@dataclass(frozen=True)
+class Reservations:
+    """``[reservations]``: machine-readable reservations against text-and-data mining and AI
+    training are honoured by default (collector.run.reservations). ``permission`` names a
+    source and the written permission that lets us gather it anyway (kept in the ledger and
+    the datasheet); ``robots_tokens`` are further robots.txt product tokens whose groups bind
+    the run; ``when_unknown`` says what happens to an item while a tdmrep.json cannot be read
+    ("defer": asked again next run; "gather": gathered, the ledger says it was unknown)."""
+
+    when_unknown: str = _setting("defer", one_of("defer", "gather"))
+    robots_tokens: list[str] = field(default_factory=list, metadata={"check": _check_tokens})
+    permission: dict[str, str] = field(default_factory=dict,
+                                       metadata={"check": _check_permissions})
+
+
 def _condition_problem(value: Any) -> str | None:
     from collector.checks.conditions import condition_problem  # loads jmespath only if used
 
@@ -366,6 +397,7 @@ class Items:
 SECTIONS: dict[str, type] = {
     "collection": CollectionInfo, "budgets": Budget, "network": Network,
     "licences": Licences, "images": Images, "stop": Stop, "items": Items,
+    "reservations": Reservations,
 }
 SECTION_KEYS: dict[str, dict[str, Key]] = {
     name: section_keys(cls) for name, cls in SECTIONS.items()}
@@ -395,6 +427,7 @@ class Recipe:
     stop: Stop
     sources: list[dict[str, Any]] = field(default_factory=list)
     items: Items = field(default_factory=lambda: Items())
+    reservations: Reservations = field(default_factory=Reservations)
 
     def budget_for(self, host: str) -> Budget:
         """The budget in force for ``host`` (``host`` or ``host:port``): defaults + override."""
@@ -410,6 +443,7 @@ class Recipe:
             "budgets.hosts": self.host_budgets, "network": asdict(self.network),
             "licences": asdict(self.licences), "images": asdict(self.images),
             "stop": asdict(self.stop), "items": asdict(self.items), "sources": self.sources,
+            "reservations": asdict(self.reservations),
         }
 
     def shown_settings(self) -> dict[str, Any]:
@@ -535,6 +569,14 @@ def parse_recipe(text: str, path: Path, *, check_source_kinds: bool = True) -> R
         problems.add("images.max_aspect", "must be greater than images.min_aspect")
     source_list = (_check_sources(data["sources"], problems, by_kind=check_source_kinds)
                    if "sources" in data else [])
+    names = [s.get("name") for s in source_list]
+    raw_permission = (data.get("reservations") or {}).get("permission") \
+        if isinstance(data.get("reservations"), dict) else None
+    for name in raw_permission if isinstance(raw_permission, dict) else {}:
+        if name not in names:
+            problems.add(f'reservations.permission."{name}"',
+                         f"names no source{did_you_mean(name, [str(n) for n in names])}; a "
+                         "permission is given per source, by its name")
 
     if problems:
         raise RecipeError(problems.items)
@@ -545,7 +587,8 @@ def parse_recipe(text: str, path: Path, *, check_source_kinds: bool = True) -> R
         budgets=Budget(**sections["budgets"]), host_budgets=host_budgets,
         network=Network(**sections["network"]), licences=Licences(**sections["licences"]),
         images=Images(**sections["images"]), stop=Stop(**sections["stop"]),
-        sources=source_list, items=Items(**sections["items"]))
+        sources=source_list, items=Items(**sections["items"]),
+        reservations=Reservations(**sections["reservations"]))
 
 
 def load_recipe(path: Path, *, check_source_kinds: bool = True) -> Recipe:

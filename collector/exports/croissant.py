@@ -32,6 +32,8 @@ import re
 from datetime import datetime
 from typing import TYPE_CHECKING, Any
 
+from collector.exports.datasheet_reservations import rai_reservations
+
 if TYPE_CHECKING:
     from collector.exports.facts import DatasheetFacts
 
@@ -245,6 +247,7 @@ def _rai(facts: DatasheetFacts, answers: dict[str, str]) -> dict[str, Any]:
             f"{dup['policy']}).",
             f"This release left out {release['excluded_licence']} files by licence policy "
             f"and {release['excluded_flagged']} flagged files.",
+            rai_reservations(facts),
         ],
         "rai:dataManipulationProtocol": (
             "No pixels or metadata were changed: files are stored as received. Crops cut "

@@ -39,6 +39,7 @@ from collector.checks.rights_statements import ALLOW_PREFIX, STATEMENTS
 from collector.config.recipe import Recipe
 from collector.errors import CollectionError, LedgerError, LedgerUnusable
 from collector.exports.datasheet_questions import load_answers
+from collector.exports.datasheet_reservations import reservation_summary
 from collector.exports.facts import (
     DatasheetFacts,
     LicenceFacts,
@@ -112,6 +113,7 @@ def _facts(ledger: Ledger, recipe: Recipe, now: str) -> DatasheetFacts:
                     for s in queries.source_counts(ledger)],
         "runs": queries.run_facts(ledger),
         "notes": queries.note_counts(ledger),
+        "reservations": reservation_summary(ledger, recipe),
         "policy": {
             "budgets": {k: getattr(recipe.budgets, k) for k in (
                 "min_interval", "requests_per_hour", "bytes_per_hour", "max_connections",

@@ -110,6 +110,9 @@ SECTIONS: tuple[tuple[str, str, tuple[Question, ...]], ...] = (
         Question("collection.impact_analysis", "C",
                  "Was the effect on the people concerned assessed (e.g. a data-protection "
                  "impact assessment)?"),
+        Question("collection.reservations", "A",
+                 "Which machine-readable reservations against text-and-data mining and AI "
+                 "training were checked, and how many items did each one exclude?"),
         Question("collection.other", "C", "Anything else about how it was gathered?"),
     )),
     ("preprocessing", "Preprocessing, cleaning, labelling", (

@@ -22,6 +22,8 @@ from dataclasses import dataclass, field
 from typing import TYPE_CHECKING, Any
 
 from collector.exports.datasheet_questions import SECTIONS, Question
+from collector.exports.datasheet_reservations import CAUTION as RESERVATIONS_CAUTION
+from collector.exports.datasheet_reservations import reservation_blocks
 
 if TYPE_CHECKING:
     import jinja2
@@ -320,6 +322,7 @@ FACTS: dict[str, Callable[[DatasheetFacts], list[Block]]] = {
                                                "they were not verified.")],
     "collection.mechanisms": lambda f: [_sources(f), *_politeness(f)],
     "collection.sampling": _steps,
+    "collection.reservations": reservation_blocks,
     "collection.timeframe": _timeframe,
     "collection.third_party": lambda f: [("p", "From third-party web sites and local scans, "
                                                "not from the people shown; each source and "
@@ -441,6 +444,7 @@ def cautions(facts: DatasheetFacts) -> list[str]:
     if facts["requests"]["total"]:
         out.append("robots.txt permission is not the same as permission under a site's terms "
                    "of use; read each archive's terms.")
+        out.append(RESERVATIONS_CAUTION)
     return out
 
 

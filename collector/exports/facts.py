@@ -107,6 +107,19 @@ class ReleaseFacts(TypedDict):
     provenance_sha256: str
 
 
+class ReservationSummary(TypedDict):
+    """Reservations against text-and-data mining: the mechanisms checked, the signals seen
+    (place, name, meaning, items), the items each reason excluded, the permissions."""
+
+    checked: list[str]
+    signals: list[dict[str, Any]]
+    excluded: dict[str, int]  # "state/reason" -> items
+    tdmrep_files: dict[str, int]  # tdmrep.json outcome -> hosts
+    permissions: dict[str, str]  # source -> the permission's reference (recipe)
+    permissions_used: dict[str, str]  # source -> reference, where a signal was overridden
+    when_unknown: str
+
+
 class DatasheetFacts(TypedDict):
     """Everything the datasheet says, as plain data; ``release`` and ``croissant_problems``
     are added once the release is written and the Croissant document checked."""
@@ -133,5 +146,6 @@ class DatasheetFacts(TypedDict):
     runs: RunFacts
     notes: dict[str, int]
     policy: dict[str, Any]
+    reservations: NotRequired[ReservationSummary]
     release: NotRequired[ReleaseFacts]
     croissant_problems: NotRequired[list[str]]

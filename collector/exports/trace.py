@@ -118,6 +118,7 @@ class ItemRecord:
     near_distance: int | None = None
     rights_statement: str | None = None  # RightsStatements.org id, when no SPDX licence
     size_request: dict[str, Any] | None = None  # how the image size was negotiated
+    reservation_checks: str | None = None  # the mechanisms checked (collector.run.reservations)
 
 
 @dataclass
@@ -418,7 +419,8 @@ class Tracer:
             fetch=self._fetch(row["id"]), parent_sha256=row.get("parent_sha256"),
             crop_box=list(box) if isinstance(box, list) else None,
             near_of=row.get("duplicate_of") if row.get("state") == "near_duplicate" else None,
-            near_distance=row.get("near_distance"))
+            near_distance=row.get("near_distance"),
+            reservation_checks=row.get("reservation_checks"))
         if with_scan and item.parent_sha256:
             scans = queries.items_of_file(self.ledger, item.parent_sha256, limit=1)
             if scans:

@@ -247,6 +247,11 @@ def _item_lines(item: ItemRecord, indent: str = "  ") -> list[str]:
             robots += f" ({f.robots_rule})"
         lines.append(f"{indent}fetched at:   {f.fetched_at} HTTP {f.status}"
                      + (f", {extra}" if extra else "") + f"; robots.txt: {robots}")
+    if item.reservation_checks:
+        lines.append(f"{indent}reservations: {item.reservation_checks}")
+    elif item.fetch or item.local_path:
+        lines.append(f"{indent}reservations: not checked (gathered before collector read "
+                     "reservations against text-and-data mining)")
     if item.run_id is not None:
         lines.append(f"{indent}run:          #{item.run_id}")
     if item.parent_sha256:

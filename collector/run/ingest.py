@@ -37,6 +37,7 @@ from collector.errors import ImageRejected, StoreError
 from collector.run import dedup
 from collector.run.dedup import Demote, Keep, NearCandidate, NearCopy, TakeOver
 from collector.run.record import RunRecord
+from collector.run.reservations import ReservationGate
 from collector.safe_text import shown_name
 from collector.storage.collection import Collection
 from collector.storage.hashindex import HashIndex
@@ -103,8 +104,10 @@ class Ingest:
 
     def __init__(self, collection: Collection, recipe: Recipe, ledger: Ledger,
                  record: RunRecord, source_ids: Sequence[int],
-                 on_stored: Callable[[], None] = lambda: None) -> None:
+                 on_stored: Callable[[], None] = lambda: None,
+                 gate: ReservationGate | None = None) -> None:
         self.recipe, self.ledger, self.record = recipe, ledger, record
+        self.gate = gate or ReservationGate(recipe, ledger, None, record, source_ids)
         self.store = collection.store
         self.index = HashIndex.from_ledger(ledger)
         self._on_stored = on_stored
@@ -163,6 +166,11 @@ class Ingest:
         if not c.image_url:
             self.record.finish(item_id, "rejected", "no_image_url",
                                "the source gave no image URL for this item")
+            return None
+        refusal = self.gate.admission(source_id, item_id, c.page_url)
+        if refusal is not None:  # reserved on the listing or detail page: nothing requested
+            self.record.finish(item_id, refusal.state, refusal.reason, refusal.detail,
+                               reservation_checks=self.gate.checks(item_id))
             return None
         with self._url_lock:
             if c.image_url in self._waiting:  # queued or in flight for an earlier item
@@ -275,6 +283,7 @@ class Ingest:
         else:
             item_id = self.ledger.add_item(source_id, c.source_key, fields)
         self._item_source[item_id] = source_id
+        self.gate.register(item_id, source_id)
         return item_id, licence.spdx_id, fields["image_url"]
 
     def _withdrawn_by_archive(self, source_id: int, c: Any) -> None:
@@ -340,7 +349,8 @@ class Ingest:
             self._scan_sha[(source_id, c.source_key)] = sha
         licence = normalise_licence(c.licence_raw, c.licence_url)
         self.ingest_file(item_id, licence.spdx_id, tmp, sha,
-                         url=shown_name(str(c.local_path or "")), **extra)
+                         url=shown_name(str(c.local_path or "")),
+                         reservation_checks=self.gate.checks(item_id, local=True), **extra)
 
     def _unreadable(self, item_id: int, c: Any, exc: OSError) -> None:
         """A local file that could not be copied fails its item; a full or broken store
@@ -374,6 +384,13 @@ class Ingest:
                                       max_aspect=images.max_aspect, full_decode=False)
             except ImageRejected as exc:
                 self.record.finish(item_id, "rejected", exc.reason, exc.detail, **extra)
+                return
+            refusal = self.gate.in_file(item_id, url, facts.rights)
+            web = (url or "").lower().startswith(("http://", "https://"))
+            extra = {**extra, "reservation_checks": self.gate.checks(item_id, local=not web)}
+            if refusal is not None:  # IPTC Data Mining in the file: the temp file goes
+                self.record.finish(item_id, refusal.state, refusal.reason, refusal.detail,
+                                   **extra)
                 return
             with self._lock:
                 row = self.ledger.file(sha)

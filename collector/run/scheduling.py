@@ -46,6 +46,7 @@ from collector.errors import (
 )
 from collector.run.ingest import Ingest, Job
 from collector.run.record import NullProgress, Progress, RunRecord, secret_values
+from collector.run.reservations import ReservationGate
 from collector.sources.base import ListingState, PageFetcher
 from collector.storage.collection import Collection
 from collector.storage.ledger import Ledger, utc_now
@@ -182,8 +183,9 @@ class Gatherer:
         self._config_sha = {sid: config_sha256(src)
                             for src, sid in zip(recipe.sources, self._source_ids, strict=True)}
         self.record = RunRecord(ledger, self.progress, secret_values(recipe))
+        self.gate = ReservationGate(recipe, ledger, fetcher, self.record, self._source_ids)
         self.ingest = Ingest(collection, recipe, ledger, self.record, self._source_ids,
-                             on_stored=self._stored_one)
+                             on_stored=self._stored_one, gate=self.gate)
 
     @property
     def run_id(self) -> int:
@@ -331,7 +333,8 @@ class Gatherer:
 
         state = ListingState(self.ledger.listing_state(source_id, self._config_sha[source_id]))
         try:
-            for candidate in adapters.iter_candidates(source, self.fetcher, note,
+            pages = self.gate.watching(self.fetcher, source_id)  # reservation signals
+            for candidate in adapters.iter_candidates(source, pages, note,
                                                       self.collection.root, state):
                 if self._should_stop():
                     break
@@ -435,6 +438,11 @@ class Gatherer:
     def _fetch_and_ingest(self, job: Job) -> None:
         if self.fetcher is None:
             raise RuntimeError("this run has no fetcher, yet an image needs one")
+        refusal = self.gate.before_image(job.item_id, job.url)  # before any image byte
+        if refusal is not None:
+            self.record.finish(job.item_id, refusal.state, refusal.reason, refusal.detail,
+                               reservation_checks=self.gate.checks(job.item_id))
+            return
         try:
             download = self.fetcher.download(job.url, self.store.incoming_dir,
                                              item_id=job.item_id,
@@ -458,5 +466,13 @@ class Gatherer:
             return
         if download.path is None or download.sha256 is None:
             raise RuntimeError(f"the fetcher returned no file for {job.url}")
+        refusal = self.gate.after_download(job.item_id, download.final_url,
+                                           getattr(download, "headers", {}))
+        if refusal is not None:  # reserved in the image's own header fields: not kept
+            download.path.unlink(missing_ok=True)
+            self.record.finish(job.item_id, refusal.state, refusal.reason, refusal.detail,
+                               reservation_checks=self.gate.checks(job.item_id))
+            return
         self.ingest.ingest_file(job.item_id, job.spdx_id, download.path, download.sha256,
-                                content_type=download.content_type, url=download.final_url)
+                                content_type=download.content_type, url=download.final_url,
+                                reservation_checks=self.gate.checks(job.item_id))

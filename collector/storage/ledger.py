@@ -491,6 +491,10 @@ class Ledger:
                                       "run_id": run_id, "source_id": source_id,
                                       "created_at": utc_now()})
 
+    def record_signal(self, **fields: Any) -> int:
+        """Record one reservation signal seen (collector.run.reservations)."""
+        return self._insert("reservation_signals", {"seen_at": utc_now(), **fields})
+
     # -- what the run asks and changes -------------------------------------------------------
     # The questions and multi-row changes of collector.run (ingest and prepared_run); the run
     # itself holds no SQL.

@@ -108,5 +108,26 @@ def _migration_5(db: sqlite_utils.Database) -> None:
             items.add_column(name, str)
 
 
+def _migration_6(db: sqlite_utils.Database) -> None:
+    """Reservations against text-and-data mining: every signal seen (``reservation_signals``:
+    where, the field, its raw value, what we decided, when), the mechanisms checked for each
+    item (``items.reservation_checks``, a JSON list) and each origin's tdmrep.json, cached
+    like robots.txt (``hosts.tdmrep_*``)."""
+    db.table("reservation_signals").create({
+        "id": int, "run_id": int, "item_id": int, "source_id": int, "place": str, "url": str,
+        "name": str, "value": str, "meaning": str, "decision": str, "seen_at": str,
+    }, pk="id", if_not_exists=True)  # a ledger mended by hand may have it already
+    db.table("reservation_signals").create_index(["item_id"], if_not_exists=True)
+    items, hosts = db.table("items"), db.table("hosts")
+    if "reservation_checks" not in items.columns_dict:
+        items.add_column("reservation_checks", str)
+    present = hosts.columns_dict
+    for name, kind in (("tdmrep_url", str), ("tdmrep_fetched_at", str), ("tdmrep_state", str),
+                       ("tdmrep_status", int), ("tdmrep_detail", str), ("tdmrep_body", str)):
+        if name not in present:
+            hosts.add_column(name, kind)
+
+
 MIGRATIONS: dict[int, Callable[[sqlite_utils.Database], None]] = {
-    1: _migration_1, 2: _migration_2, 3: _migration_3, 4: _migration_4, 5: _migration_5}
+    1: _migration_1, 2: _migration_2, 3: _migration_3, 4: _migration_4, 5: _migration_5,
+    6: _migration_6}

@@ -628,3 +628,32 @@ def release_rows(ledger: Ledger) -> Iterator[ReleaseRow]:
             f"{_statement_column(ledger, 'i.')} "
             f"{_ACCEPTED_FROM} ORDER BY f.sha256"):
         yield ReleaseRow(*row)
+
+
+class ReservationFacts(NamedTuple):
+    """Reservation signals (place, name, meaning, items, items it excluded), items excluded
+    (state, reason, n), permissions used (source, reference), tdmrep.json outcomes (hosts)."""
+
+    signals: tuple[tuple[str, str, str, int, int], ...]
+    excluded: tuple[tuple[str, str, int], ...]
+    permissions: tuple[tuple[str, str], ...]
+    files: tuple[tuple[str, int], ...]
+
+
+def reservation_facts(ledger: Ledger, reasons: tuple[str, ...]) -> ReservationFacts:
+    """What collector.run.reservations recorded; empty for a ledger without its tables."""
+    if not ledger.scalar("SELECT count(*) FROM sqlite_master WHERE name = "
+                         "'reservation_signals'"):
+        return ReservationFacts((), (), (), ())
+    marks = ", ".join("?" for _ in reasons)
+    return ReservationFacts(
+        tuple(ledger.rows("SELECT place, name, meaning, count(DISTINCT item_id), count("
+                          "DISTINCT CASE WHEN decision LIKE 'item %' THEN item_id END) FROM "
+                          "reservation_signals GROUP BY 1, 2, 3 ORDER BY 4 DESC, 1, 2, 3")),
+        tuple(ledger.rows(f"SELECT state, reason, count(*) FROM items WHERE reason IN "
+                          f"({marks}) GROUP BY 1, 2 ORDER BY 3 DESC, 2", reasons)),
+        tuple(ledger.rows("SELECT DISTINCT s.name, substr(r.decision, 28) FROM "
+                          "reservation_signals r JOIN sources s ON s.id = r.source_id WHERE "
+                          "r.decision LIKE 'gathered under permission: %' ORDER BY 1")),
+        tuple(ledger.rows("SELECT tdmrep_state, count(*) FROM hosts WHERE tdmrep_state IS NOT "
+                          "NULL GROUP BY 1 ORDER BY 1")))
