@@ -229,6 +229,7 @@ def status(
 
     Example: collector status my-leaves
     """
+    from collector.exports.recipe_history import last_change_line
     from collector.exports.summary import format_summary, summarise, summary_as_dict
     from collector.storage.collection import open_collection
 
@@ -236,11 +237,14 @@ def status(
         collection = open_collection(folder)
         with collection.ledger(readonly=True) as ledger:
             summary = summarise(ledger)
+            recipe_line = last_change_line(ledger)
     if as_json:
         typer.echo(json.dumps(summary_as_dict(summary), indent=2, default=str))
         return
     for line in format_summary(summary):
         typer.echo(one_line(line))
+    if recipe_line:
+        typer.echo(one_line(recipe_line))
 
 
 @app.command()
@@ -437,3 +441,125 @@ def demo(
     say("Next: collector status " + str(folder) + "  |  collector trace FILE --in " + str(folder)
         + "  |  collector demo (resumes)  |  collector demo --fresh")
     raise typer.Exit(result.run.exit_code)
+
+
+@app.command()
+def withdraw(
+    folder: Path = typer.Argument(..., help="The collection folder."),
+    what: str = typer.Argument(..., help="An image file, a sha256 prefix (8+ hex digits), "
+                                         "item:ID or key:SOURCE:KEY."),
+    reason: str = typer.Option(..., "--reason", help="creator-request, licence-error, "
+                                                     "personal-data or other."),
+    asked_by: str = typer.Option(None, "--asked-by", help="Who asked for it."),
+    asked_on: str = typer.Option(None, "--asked-on", help="When they asked (YYYY-MM-DD)."),
+    note: str = typer.Option(None, "--note", help="A free-text note kept with it."),
+    delete_bytes: bool = typer.Option(False, "--delete-bytes",
+                                      help="Also delete the stored file (the record stays)."),
+) -> None:
+    """Take a file or item out of every release from now on; gather never fetches it again.
+
+    Example: collector withdraw my-leaves item:42 --reason creator-request --asked-by "R. Moss"
+    """
+    from collector.storage.collection import open_collection
+    from collector.storage.withdrawals import describe
+    from collector.storage.withdrawals import withdraw as take_out
+
+    with user_errors():
+        collection = open_collection(folder)
+        with collection.gather_lock(), collection.ledger() as ledger:
+            done = take_out(collection, ledger, what, reason=reason, asked_by=asked_by,
+                            asked_on=asked_on, note=note, delete_bytes=delete_bytes)
+    typer.echo(one_line(f"Withdrawal #{done.id} of {done.target}: {describe(done)}"))
+    typer.echo(f"Undo with: collector undo-withdrawal {folder} {done.id}")
+
+
+@app.command("undo-withdrawal")
+def undo_withdrawal(
+    folder: Path = typer.Argument(..., help="The collection folder."),
+    number: int = typer.Argument(..., help="The withdrawal's number (collector withdrawals)."),
+    by: str = typer.Option(None, "--by", help="Who decided to undo it."),
+    note: str = typer.Option(None, "--note", help="Why it is undone."),
+) -> None:
+    """Put a withdrawn file or item back (recorded too); deleted bytes are fetched again.
+
+    Example: collector undo-withdrawal my-leaves 3 --note "asked by mistake"
+    """
+    from collector.storage.collection import open_collection
+    from collector.storage.withdrawals import describe, undo
+
+    with user_errors():
+        collection = open_collection(folder)
+        with collection.gather_lock(), collection.ledger() as ledger:
+            done = undo(ledger, number, undone_by=by, note=note)
+    typer.echo(one_line(f"Withdrawal #{done.id} of {done.target}: {describe(done)}"))
+    if done.bytes_deleted:
+        typer.echo(f"Its bytes were deleted; collector gather {folder} fetches them again")
+
+
+@app.command()
+def withdrawals(
+    folder: Path = typer.Argument(Path("."), help="The collection folder."),
+) -> None:
+    """List every withdrawal, undone ones too.
+
+    Example: collector withdrawals my-leaves
+    """
+    from collector.storage.collection import open_collection
+    from collector.storage.upkeep_queries import withdrawals as listed
+    from collector.storage.withdrawals import describe
+
+    with user_errors():
+        collection = open_collection(folder)
+        with collection.ledger(readonly=True) as ledger:
+            rows = listed(ledger)
+    for w in rows:
+        typer.echo(one_line(f"#{w.id}  {w.target}  "
+                            + (f"sha256 {w.sha256[:12]}  " if w.sha256 else "")
+                            + describe(w)))
+    if not rows:
+        typer.echo("No withdrawals.")
+
+
+@app.command()
+def notes(
+    folder: Path = typer.Argument(Path("."), help="The collection folder."),
+    kind: list[str] = typer.Option([], "--kind", help="Only notes of this kind (repeatable)."),
+    source: list[str] = typer.Option([], "--source", help="Only this source (repeatable)."),
+) -> None:
+    """List what the sources reported while listing (blank scans, touching items, ...).
+
+    Example: collector notes my-leaves --kind blank_scan --source scans
+    """
+    from collector.exports.notes import list_notes, note_lines
+    from collector.storage.collection import open_collection
+
+    with user_errors():
+        collection = open_collection(folder)
+        with collection.ledger(readonly=True) as ledger:
+            rows = list_notes(ledger, kinds=tuple(kind), sources=tuple(source))
+    for line in note_lines(rows):
+        typer.echo(one_line(line))
+    typer.echo(f"{len(rows)} note(s)")
+
+
+@app.command("recipe-diff")
+def recipe_diff(
+    folder: Path = typer.Argument(..., help="The collection folder."),
+    first: int = typer.Argument(..., help="A run number."),
+    second: int = typer.Argument(..., help="A later (or earlier) run number."),
+) -> None:
+    """Show how the recipe of one run differs from the recipe of another.
+
+    Example: collector recipe-diff my-leaves 1 4
+    """
+    from collector.exports.recipe_history import recipe_diff as diff
+    from collector.storage.collection import open_collection
+
+    with user_errors():
+        collection = open_collection(folder)
+        with collection.ledger(readonly=True) as ledger:
+            lines = diff(ledger, first, second)
+    for line in lines:
+        typer.echo(for_terminal(line))
+    if not lines:
+        typer.echo(f"Runs #{first} and #{second} used the same recipe.")

@@ -228,6 +228,10 @@ class Gatherer:
 
     def _run(self, options: dict[str, Any] | None) -> RunResult:
         self.run_id = self.ledger.start_run(self.recipe.sha256, options or {}, __version__)
+        if self.recipe.text:  # recipe history: the text once per sha256, secrets hidden
+            self.ledger.add_row("recipes", {"sha256": self.recipe.sha256,
+                                            "text": self.recipe.kept_text(),
+                                            "first_used_at": utc_now()})
         if self.fetcher is not None and hasattr(self.fetcher, "run_id"):
             self.fetcher.run_id = self.run_id  # its fetches rows name the run
         self.progress.event("run_started", run_id=self.run_id)

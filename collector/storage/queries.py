@@ -120,8 +120,11 @@ def listed_source_names(ledger: Ledger) -> set[str]:
 
 
 def counts(ledger: Ledger) -> tuple[int, int]:
-    """(files rows, items rows): how much the ledger knows."""
-    return (int(ledger.scalar("SELECT count(*) FROM files") or 0),
+    """(files rows whose bytes belong in the store, items rows): how much the ledger knows
+    (a file withdrawn with its bytes deleted on purpose is not expected in the store)."""
+    kept = ("SELECT count(*) FROM files WHERE removed_at IS NULL"
+            if "removed_at" in ledger.columns("files") else "SELECT count(*) FROM files")
+    return (int(ledger.scalar(kept) or 0),
             int(ledger.scalar("SELECT count(*) FROM items") or 0))
 
 
