@@ -263,6 +263,16 @@ def datasheet(
     answers_template: bool = typer.Option(
         False, "--answers-template",
         help="Print a commented answers file listing every question id, and exit."),
+    only: list[str] = typer.Option(
+        [], "--only", help="Release only files meeting NAME=VALUE (repeatable; NAME: source, "
+                           "licence, creator, state, date=FROM..TO, stored=FROM..TO)."),
+    sha256_file: Path = typer.Option(None, "--sha256-file",
+                                     help="Release only the files listed (one sha256 a line)."),
+    keep_whole_scans: bool = typer.Option(
+        False, "--keep-whole-scans", help="Also release whole scanner beds whose crops are "
+                                          "released."),
+    keep_blank_scans: bool = typer.Option(False, "--keep-blank-scans",
+                                          help="Also release blank scans."),
 ) -> None:
     """Write a datasheet (md + html), croissant.json, provenance.csv and attribution.csv.
 
@@ -270,18 +280,22 @@ def datasheet(
     """
     from collector.exports.datasheet import export_datasheet
     from collector.exports.datasheet_questions import answers_template as template
+    from collector.exports.release import EXCLUSION_REASONS, parse_selection
 
     if answers_template:
         typer.echo(template())
         return
     with user_errors():
+        selection = parse_selection(only, sha256_file, keep_whole_scans=keep_whole_scans,
+                                    keep_blank_scans=keep_blank_scans)
         result = export_datasheet(folder, out=out, answers_path=answers,
                                   with_images=with_images, exclude_flagged=exclude_flagged,
-                                  overwrite=overwrite)
+                                  overwrite=overwrite, selection=selection)
     c = result.counts
     typer.echo(f"Wrote {result.out}: {c.files} files described"
                + (f" ({c.linked} linked, {c.copied} copied into images/)" if with_images else "")
-               + f"; left out {c.excluded_licence} by licence, {c.excluded_flagged} flagged")
+               + f"; left out {c.excluded_licence} by licence, {c.excluded_flagged} flagged"
+               + "".join(f", {n} {EXCLUSION_REASONS.get(k, k)}" for k, n in c.excluded.items()))
     for problem in result.croissant_problems:
         typer.echo(one_line(f"croissant.json: {problem}"), err=True)
 

@@ -208,7 +208,7 @@ def files_after(ledger: Ledger, rowid: int) -> list[tuple[Any, ...]]:
 
 
 # --- the datasheet ----------------------------------------------------------------------------
-_ACCEPTED_FROM = (
+ACCEPTED_FROM = _ACCEPTED_FROM = (
     "FROM files f JOIN items i ON i.id = f.first_item_id AND i.file_sha256 = f.sha256 "
     "JOIN sources s ON s.id = i.source_id "
     f"WHERE i.state IN ({_STATES_IN})"
