@@ -577,3 +577,30 @@ def recipe_diff(
         typer.echo(for_terminal(line))
     if not lines:
         typer.echo(f"Runs #{first} and #{second} used the same recipe.")
+
+
+@app.command()
+def recheck(
+    folder: Path = typer.Argument(Path("."), help="The collection folder."),
+    until: str = typer.Option(None, "--until", help="Stop at this local time, e.g. 07:00."),
+    duration: str = typer.Option(None, "--for", help="Stop after this long, e.g. 2h."),
+    show_all: bool = typer.Option(False, "--all", help="List unchanged items too."),
+) -> None:
+    """Look again, politely, at what was gathered: licences, fields and image bytes.
+
+    Unchanged images cost a 304 (conditional requests with the stored ETag/Last-Modified);
+    nothing stored is overwritten. Rerunning resumes an unfinished re-check.
+    Example: collector recheck my-leaves --for 2h
+    """
+    from collector.run.recheck import recheck as look_again
+    from collector.run.recheck import report_lines
+    from collector.run.scheduling import stop_rules
+    from collector.storage.collection import open_collection
+
+    with user_errors():
+        collection = open_collection(folder)
+        stop = stop_rules(collection.recipe(), until=until, duration=duration, max_items=0)
+        result = look_again(collection, stop=stop, options={"until": until, "for": duration})
+    for line in report_lines(result, show_all=show_all):
+        typer.echo(one_line(line))
+    raise typer.Exit(130 if result.outcome == "interrupted" else 0)

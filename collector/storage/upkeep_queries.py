@@ -233,6 +233,15 @@ def observed_items(ledger: Ledger, run_id: int) -> set[int]:
                                       (run_id,))}
 
 
+def newest_versions(ledger: Ledger) -> dict[int, str]:
+    """For each item a re-check found new bytes for, the sha256 of the newest version kept."""
+    if not ledger.has_table("observations"):
+        return {}
+    return {r[0]: r[1] for r in ledger.rows(
+        "SELECT item_id, new_sha256 FROM observations WHERE new_sha256 IS NOT NULL "
+        "ORDER BY id")}
+
+
 class Observation(NamedTuple):
     """One re-check finding for an item."""
 
