@@ -73,6 +73,8 @@ ENTRY_POINT_GROUP = "collector.sources"
 COMMON_KEYS: dict[str, Key] = {
     "name": Key("str", hint="a short unique name for this source"),
     "kind": Key("str", required=True),
+    "former_names": Key("list[str]", hint="names this source had before (a rename keeps the "
+                                          "source's history in the ledger)"),
 }
 
 _lock = threading.RLock()

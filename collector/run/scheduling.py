@@ -173,7 +173,8 @@ class Gatherer:
         self._workers: list[threading.Thread] = []
         self._lock = threading.RLock()
         self._stored_this_run = 0
-        self._source_ids = [ledger.source_id(src["name"], src["kind"], src)
+        self._source_ids = [ledger.source_id(src["name"], src["kind"], src,
+                                             tuple(src.get("former_names") or ()))
                             for src in recipe.sources]
         self.record = RunRecord(ledger, self.progress, secret_values(recipe))
         self.ingest = Ingest(collection, recipe, ledger, self.record, self._source_ids,

@@ -361,10 +361,17 @@ class Ledger:
         self._update("runs", run_id, {"ended_at": utc_now(), "outcome": outcome})
 
     # -- sources -----------------------------------------------------------------------------
-    def source_id(self, name: str, kind: str, config: dict[str, Any]) -> int:
-        """The id of the named source, created or updated with its current config."""
+    def source_id(self, name: str, kind: str, config: dict[str, Any],
+                  former_names: tuple[str, ...] = ()) -> int:
+        """The id of the named source, created or updated with its current config. A source
+        renamed in the recipe (``former_names``) keeps its row, so its items stay its own."""
         with self._lock, self._translate("write to sources"), self._conn:
             rows = self.db.execute("SELECT id FROM sources WHERE name = ?", [name]).fetchall()
+            for former in former_names:
+                if rows:
+                    break
+                rows = self.db.execute("SELECT id FROM sources WHERE name = ?",
+                                       [former]).fetchall()
             row = rows[0] if rows else None
             encoded = _encode({"name": name, "kind": kind, "config": config})
             if row:
