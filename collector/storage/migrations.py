@@ -93,22 +93,28 @@ def _migration_4(db: sqlite_utils.Database) -> None:
     of every recipe a run used, by its sha256 (``runs.recipe_sha256``). ``observations``: what
     a re-check saw for an item, one row per look, never overwritten.
     """
-    db.table("withdrawals").create({
-        "id": int, "item_id": int, "sha256": str, "target": str, "reason": str, "note": str,
-        "asked_by": str, "asked_on": str, "recorded_at": str, "bytes_deleted": int,
-        "undone_at": str, "undone_by": str, "undo_note": str,
-    }, pk="id")
-    db.table("withdrawals").create_index(["item_id"])
-    db.table("withdrawals").create_index(["sha256"])
+    # A ledger mended by hand may have some of these already: each is added only if absent.
+    tables = set(db.table_names())
+    if "withdrawals" not in tables:
+        db.table("withdrawals").create({
+            "id": int, "item_id": int, "sha256": str, "target": str, "reason": str,
+            "note": str, "asked_by": str, "asked_on": str, "recorded_at": str,
+            "bytes_deleted": int, "undone_at": str, "undone_by": str, "undo_note": str,
+        }, pk="id")
+        db.table("withdrawals").create_index(["item_id"])
+        db.table("withdrawals").create_index(["sha256"])
     if "removed_at" not in db.table("files").columns_dict:
         db.table("files").add_column("removed_at", str)
-    db.table("recipes").create({"sha256": str, "text": str, "first_used_at": str},
-                               pk="sha256")
-    db.table("observations").create({
-        "id": int, "run_id": int, "item_id": int, "observed_at": str, "finding": str,
-        "status": int, "old_value": str, "new_value": str, "new_sha256": str, "detail": str,
-    }, pk="id")
-    db.table("observations").create_index(["item_id"])
+    if "recipes" not in tables:
+        db.table("recipes").create({"sha256": str, "text": str, "first_used_at": str},
+                                   pk="sha256")
+    if "observations" not in tables:
+        db.table("observations").create({
+            "id": int, "run_id": int, "item_id": int, "observed_at": str, "finding": str,
+            "status": int, "old_value": str, "new_value": str, "new_sha256": str,
+            "detail": str,
+        }, pk="id")
+        db.table("observations").create_index(["item_id"])
 
 
 MIGRATIONS: dict[int, Callable[[sqlite_utils.Database], None]] = {
