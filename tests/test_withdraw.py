@@ -78,6 +78,9 @@ def test_withdrawn_item_leaves_releases_and_trace_says_so(tmp_path: Path,
     with Tracer.open(col.root) as tracer:
         record = "\n".join(format_record(tracer.trace_file(stored)))
     assert f"withdrawn on {done.recorded_at[:10]}: request by the creator" in record
+    table = runner.invoke(app, ["trace", str(stored.parent), "--in", str(col.root), "--csv"])
+    row = next(line for line in table.output.splitlines() if item.file_sha256 in line)
+    assert "withdrawn" in row  # the folder table's flags name it too
     fresh_demo_server.clear_log()
     assert gather(col).outcome == "finished"
     assert _image_requests(fresh_demo_server, KEY) == 0  # the server's own log

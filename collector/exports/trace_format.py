@@ -140,7 +140,8 @@ def table_row(result: TraceResult) -> dict[str, Any]:
         "distance": "" if result.distance is None else result.distance,
         "source": (item.source or "") if item else "",
         "spdx_id": (item.spdx_id or "") if item else "",
-        "allowed": result.allowed, "flags": " ".join(result.flags),
+        "allowed": result.allowed,
+        "flags": " ".join([*result.flags, *(["withdrawn"] if best and best.withdrawn else [])]),
         "matched_sha256": best.sha256 if best else "",
     }
 
