@@ -6,10 +6,14 @@ and the findings with their dates; recipe history shows the difference."""
 from __future__ import annotations
 
 import hashlib
+import io
 from pathlib import Path
+from typing import Any
 
 import pytest
+from PIL import Image
 from support.collections import one_page_recipe
+from support.server import LoopbackServer, json_answer
 from typer.testing import CliRunner
 
 from collector.cli import app
@@ -162,3 +166,42 @@ def test_the_recheck_command_prints_the_report(changed) -> None:
     assert result.exit_code == 0, result.output
     assert "Re-check run #" in result.output and "Findings: " in result.output
     assert "unchanged" in result.output  # --all lists unchanged items too
+
+
+def _png() -> bytes:
+    """A real 200x150 PNG (a Mandelbrot detail)."""
+    buf = io.BytesIO()
+    Image.effect_mandelbrot((200, 150), (-2, -1, 1, 1), 50).convert("RGB").save(buf, "PNG")
+    return buf.getvalue()
+
+
+def test_an_image_that_now_redirects_is_reported_moved_once(tmp_path: Path) -> None:
+    """An image URL that starts to redirect (301, RFC 9110 §15.4.2) is reported moved, old ->
+    new; the next re-check, which lands at the same place again, reports it unchanged."""
+    data = _png()
+    etag = '"v1"'
+    with LoopbackServer("127.0.0.1") as srv:
+        srv.route("/api", json_answer({"results": [
+            {"id": "a", "img": f"{srv.base}/img/a.png", "lic": "CC0-1.0"}]}))
+
+        def image(h: Any) -> Any:
+            if h.headers.get("If-None-Match") == etag:
+                return 304, b"", {"ETag": etag}
+            return 200, data, {"Content-Type": "image/png", "ETag": etag}
+
+        srv.route("/img/a.png", image)
+        col = init_collection(tmp_path / "c", contact="me@example.org")
+        col.recipe_path.write_text(
+            'contact = "me@example.org"\n[network]\nallow_addresses = ["127.0.0.1"]\n'
+            '[budgets]\nmin_interval = 0.05\n'
+            f'[[sources]]\nname = "web"\nkind = "json_api"\nurl = "{srv.base}/api"\n'
+            '[sources.fields]\nitems = "results"\nid = "id"\nimage_url = "img"\n'
+            'licence = "lic"\n')
+        assert gather(col).outcome == "finished"
+        srv.route("/img/a.png", (301, b"", {"Location": f"{srv.base}/img/b.png"}))
+        srv.route("/img/b.png", image)
+        first = recheck(col)
+        second = recheck(col)
+    assert [(f.finding, f.old_value, f.new_value, f.status) for f in first.findings] == [
+        ("moved", f"{srv.base}/img/a.png", f"{srv.base}/img/b.png", 304)]
+    assert [f.finding for f in second.findings] == ["unchanged"]

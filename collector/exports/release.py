@@ -192,7 +192,10 @@ def _exclusion(row: dict[str, Any], sel: Selection, withdrawn: set[str]) -> str 
 
 
 def metadata_of(text: str | None) -> dict[str, Any]:
-    """An item's metadata column as a dict (empty when absent or not JSON)."""
+    """An item's metadata column as a dict (empty when absent or not JSON). Only a role
+    (scan or crop) is asked of it, so text without one is not parsed (large releases)."""
+    if not text or '"role"' not in text:
+        return {}
     try:
         value = json.loads(text) if text else {}
     except ValueError:

@@ -34,6 +34,7 @@ from collector.run.scheduling import StopRules
 from collector.storage import upkeep_queries as uq
 from collector.storage.collection import Collection
 from collector.storage.ledger import Ledger, utc_now
+from collector.urls import redact
 
 GONE_STATUSES = (404, 410)  # RFC 9110 §15.5.5 Not Found, §15.5.11 Gone
 
@@ -221,9 +222,13 @@ class _Checker:
                 return [self._finding(t, "gone", status=exc.status)]
             return [self._finding(t, "failed", status=exc.status, detail=exc.reason)]
         out = []
-        if got.final_url != got.url:
-            out.append(self._finding(t, "moved", status=got.status, old=t.image_url,
-                                     new=got.final_url))
+        final = redact(got.final_url, getattr(getattr(self.fetcher, "settings", None),
+                                              "secret_params", ()) or ())
+        # Moved: the answer now comes from elsewhere than last time (an image URL that always
+        # redirected to the same place has not moved).
+        if final != (t.last_url or redact(t.image_url)):
+            out.append(self._finding(t, "moved", status=got.status,
+                                     old=t.last_url or t.image_url, new=final))
         if got.not_modified or got.path is None:
             return out if out else [self._finding(t, "unchanged", status=304)]
         if got.sha256 in (t.file_sha256, self.versions.get(t.item_id)):

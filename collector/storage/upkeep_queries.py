@@ -209,6 +209,7 @@ class RecheckTarget(NamedTuple):
     file_sha256: str | None
     etag: str | None
     last_modified: str | None
+    last_url: str | None  # where the last successful image answer came from (redacted)
 
 
 def recheck_targets(ledger: Ledger, *, after_item: int = 0) -> list[RecheckTarget]:
@@ -219,7 +220,9 @@ def recheck_targets(ledger: Ledger, *, after_item: int = 0) -> list[RecheckTarge
         "(SELECT x.etag FROM fetches x WHERE x.item_id = i.id AND x.purpose = 'image' AND "
         " x.status = 200 ORDER BY x.id DESC LIMIT 1), "
         "(SELECT x.last_modified FROM fetches x WHERE x.item_id = i.id AND x.purpose = 'image' "
-        " AND x.status = 200 ORDER BY x.id DESC LIMIT 1) "
+        " AND x.status = 200 ORDER BY x.id DESC LIMIT 1), "
+        "(SELECT x.url FROM fetches x WHERE x.item_id = i.id AND x.purpose = 'image' "
+        " AND x.status IN (200, 304) ORDER BY x.id DESC LIMIT 1) "
         "FROM items i JOIN sources s ON s.id = i.source_id "
         "WHERE i.state IN ('stored', 'near_duplicate') AND i.image_url IS NOT NULL "
         "AND i.id > ? ORDER BY i.id", (after_item,))]
