@@ -229,6 +229,7 @@ def status(
 
     Example: collector status my-leaves
     """
+    from collector.exports.changelog import withdrawal_line
     from collector.exports.recipe_history import last_change_line
     from collector.exports.summary import format_summary, summarise, summary_as_dict
     from collector.storage.collection import open_collection
@@ -238,13 +239,15 @@ def status(
         with collection.ledger(readonly=True) as ledger:
             summary = summarise(ledger)
             recipe_line = last_change_line(ledger)
+            withdrawn_line = withdrawal_line(ledger)
     if as_json:
         typer.echo(json.dumps(summary_as_dict(summary), indent=2, default=str))
         return
     for line in format_summary(summary):
         typer.echo(one_line(line))
-    if recipe_line:
-        typer.echo(one_line(recipe_line))
+    for extra in (recipe_line, withdrawn_line):
+        if extra:
+            typer.echo(one_line(extra))
 
 
 @app.command()

@@ -104,7 +104,9 @@ def test_withdrawal_with_deleted_bytes_is_fetched_again_after_undo(
     assert result.exit_code == 0, result.output
     assert col.store.find(sha) is None
     open_collection(col.root)  # check_ledger accepts a file deleted on purpose
-    assert runner.invoke(app, ["status", str(col.root)]).exit_code == 0
+    status = runner.invoke(app, ["status", str(col.root)])
+    assert status.exit_code == 0 and "Withdrawn: 1" in status.output
+    assert "1 with their bytes deleted" in status.output
     fresh_demo_server.clear_log()
     assert gather(col).outcome == "finished"
     assert _image_requests(fresh_demo_server, KEY) == 0

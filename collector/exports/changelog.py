@@ -66,3 +66,14 @@ def ledger_state(ledger: Ledger) -> LedgerState:
     """Which ledger state a release is made from: the newest run and its last time."""
     run_id, when = uq.ledger_state(ledger)
     return {"run_id": run_id, "time": when}
+
+
+def withdrawal_line(ledger: Ledger) -> str | None:
+    """The status line about withdrawals in force (None when there are none)."""
+    active = uq.withdrawals(ledger, active_only=True)
+    if not active:
+        return None
+    deleted = sum(1 for w in active if w.bytes_deleted)
+    return (f"Withdrawn: {len(active)} (left out of every release"
+            + (f"; {deleted} with their bytes deleted" if deleted else "")
+            + "); 'collector withdrawals' lists them")
