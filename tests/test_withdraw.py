@@ -190,3 +190,15 @@ def test_the_migration_keeps_a_ledger_of_the_previous_schema(
         ledger.add_row("withdrawals", {"item_id": item, "target": "item:1", "reason": "other",
                                        "recorded_at": "2026-12-01T00:00:00.000Z"})
         assert uq.withdrawn_sha256s(ledger) == {"ab" * 32}
+
+
+def test_an_image_file_names_what_to_withdraw_by_its_bytes(tmp_path: Path) -> None:
+    """A copy of a stored picture, wherever it lies, names the stored file by its SHA-256
+    (FIPS 180-4), not by its name."""
+    col = scans_collection(tmp_path / "c", count=2)
+    copy = tmp_path / "renamed-copy.bin"
+    copy.write_bytes((col.root / "in" / "1.png").read_bytes())
+    with col.ledger() as ledger:
+        done = withdraw(col, ledger, str(copy), reason="licence-error")
+        assert done.sha256 == hashlib.sha256(copy.read_bytes()).hexdigest()
+        assert done.item_id is None and uq.withdrawn_sha256s(ledger) == {done.sha256}
