@@ -196,12 +196,10 @@ def _policy_rows(ledger: Ledger, recipe: Recipe, counts: ReleaseCounts, *,
                  exclude_flagged: bool) -> Iterator[dict[str, Any]]:
     """The accepted files that pass the licence policy (and the flag filter)."""
     allowed_cache: dict[str | None, bool] = {}
-    for r, extra in zip(queries.release_rows(ledger), upkeep_queries.release_extras(ledger),
-                        strict=True):
+    for r in queries.release_rows(ledger):
         (sha, ext, mime, fmt, width, height, size, flags_json, stored_at, source, key,
-         page_url, image_url, title, creator, licence_raw, spdx, licence_url, fetched_at) = r
-        if extra.sha256 != sha:
-            raise LedgerError("the ledger changed while the release was read; run it again")
+         page_url, image_url, title, creator, licence_raw, spdx, licence_url, fetched_at,
+         state, item_date, metadata, parent_sha256) = r
         if spdx not in allowed_cache:
             allowed_cache[spdx] = licence_allowed(spdx, recipe.licences.allow,
                                                   recipe.licences.allow_unknown)[0]
@@ -224,9 +222,9 @@ def _policy_rows(ledger: Ledger, recipe: Recipe, counts: ReleaseCounts, *,
             "spdx_id": spdx or "", "licence_url": licence_url or licence_deed_url(spdx) or "",
             "fetched_at": fetched_at or stored_at or "", "width": width, "height": height,
             "format": fmt or "", "mime": mime or "", "size": size,
-            "flags": ";".join(flags), "_ext": ext, "_state": extra.state,
-            "_date": extra.date, "_metadata": release.metadata_of(extra.metadata),
-            "_parent_sha256": extra.parent_sha256, "_stored_at": stored_at,
+            "flags": ";".join(flags), "_ext": ext, "_state": state, "_date": item_date,
+            "_metadata": release.metadata_of(metadata), "_parent_sha256": parent_sha256,
+            "_stored_at": stored_at,
         }
 
 

@@ -208,7 +208,7 @@ def files_after(ledger: Ledger, rowid: int) -> list[tuple[Any, ...]]:
 
 
 # --- the datasheet ----------------------------------------------------------------------------
-ACCEPTED_FROM = _ACCEPTED_FROM = (
+_ACCEPTED_FROM = (
     "FROM files f JOIN items i ON i.id = f.first_item_id AND i.file_sha256 = f.sha256 "
     "JOIN sources s ON s.id = i.source_id "
     f"WHERE i.state IN ({_STATES_IN})"
@@ -382,6 +382,10 @@ class ReleaseRow(NamedTuple):
     spdx_id: str | None
     licence_url: str | None
     fetched_at: str | None  # the newest 2xx image request
+    state: str = "stored"  # what a partial release selects on (collector.exports.release)
+    date: str | None = None
+    metadata: str | None = None  # JSON text as stored
+    parent_sha256: str | None = None
 
 
 def item_facts(ledger: Ledger) -> ItemFacts:
@@ -569,6 +573,7 @@ def release_rows(ledger: Ledger) -> Iterator[ReleaseRow]:
             "f.stored_at, s.name, i.source_key, i.page_url, i.image_url, i.title, i.creator, "
             "i.licence_raw, i.spdx_id, i.licence_url, "
             "(SELECT max(x.started_at) FROM fetches x WHERE x.item_id = i.id AND "
-            " x.purpose = 'image' AND x.status BETWEEN 200 AND 299) "
+            " x.purpose = 'image' AND x.status BETWEEN 200 AND 299), "
+            "i.state, i.date, i.metadata, i.parent_sha256 "
             f"{_ACCEPTED_FROM} ORDER BY f.sha256"):
         yield ReleaseRow(*row)

@@ -10,10 +10,8 @@ answers "nothing recorded" instead of failing.
 
 from __future__ import annotations
 
-from collections.abc import Iterator
 from typing import Any, NamedTuple
 
-from collector.storage import queries
 from collector.storage.ledger import Ledger
 
 
@@ -305,22 +303,3 @@ def ledger_state(ledger: Ledger) -> tuple[int | None, str | None]:
                        "ORDER BY id DESC LIMIT 1")
     return (rows[0][0], rows[0][1]) if rows else (None, None)
 
-
-# --- partial releases ---------------------------------------------------------------------------
-class ReleaseExtra(NamedTuple):
-    """What a selection asks of a released file beyond :class:`queries.ReleaseRow`."""
-
-    sha256: str
-    state: str
-    date: str | None
-    metadata: str | None
-    parent_sha256: str | None
-
-
-def release_extras(ledger: Ledger) -> Iterator[ReleaseExtra]:
-    """Stream the selection facts of every accepted file, in the order (and from the same
-    rows) of :func:`collector.storage.queries.release_rows`."""
-    for row in ledger.stream(
-            "SELECT f.sha256, i.state, i.date, i.metadata, i.parent_sha256 "
-            f"{queries.ACCEPTED_FROM} ORDER BY f.sha256"):
-        yield ReleaseExtra(*row)
