@@ -32,6 +32,12 @@ LICENCE_OF, REMOVED, REPLACED, WITHDRAWN = "FH-S-0001", ("FH-S-0003", "FH-S-0004
     "FH-S-0005"
 
 
+class _Switch:
+    """Stop rules a test can trip while a re-check runs (StopRules is frozen)."""
+
+    deadline: float | None = None
+
+
 def _store_snapshot(col: Collection) -> dict[str, tuple[str, int]]:
     """Every stored file: its path -> (sha256 of its bytes, mtime in ns)."""
     return {str(p): (hashlib.sha256(p.read_bytes()).hexdigest(), p.stat().st_mtime_ns)
@@ -151,11 +157,25 @@ def test_a_second_recheck_adds_rows_and_the_stopped_one_resumes(changed) -> None
     col, first, _, _, _ = changed
     stopped = recheck(col, stop=StopRules(deadline=0.0))
     assert stopped.outcome.startswith("stopped") and stopped.findings == []
+    seen: list[int] = []
+
+    def stop_after_three(finding: Any) -> None:
+        seen.append(finding.item_id)
+        if len(set(seen)) == 3:
+            stop.deadline = 0.0  # the next item is not started
+
+    stop = _Switch()
+    part = recheck(col, stop=stop, on_finding=stop_after_three)  # type: ignore[arg-type]
+    assert part.outcome.startswith("stopped") and part.resumed_from == stopped.run_id
     resumed: RecheckResult = recheck(col)
-    assert resumed.resumed_from == stopped.run_id and resumed.outcome == "finished"
+    assert resumed.resumed_from == part.run_id and resumed.outcome == "finished"
     with col.ledger(readonly=True) as ledger:
         assert len(uq.observations(ledger, run_id=first.run_id)) == 9
-        assert len(uq.observations(ledger, run_id=resumed.run_id)) == 9
+        done_before = {o.item_id for o in uq.observations(ledger, run_id=part.run_id)}
+        done_now = {o.item_id for o in uq.observations(ledger, run_id=resumed.run_id)}
+    assert len(done_before) == 3 and not done_before & done_now  # nothing looked at twice
+    assert len(done_before | done_now) == 9  # every kept item not withdrawn
+    assert {f.item_id for f in resumed.findings} == done_before | done_now
 
 
 def test_the_recheck_command_prints_the_report(changed) -> None:

@@ -85,7 +85,8 @@ def recheck(collection: Collection, *, stop: StopRules | None = None,
     """Re-check the collection (see the module docstring)."""
     stop = stop or StopRules()
     with prepared_run(collection) as (recipe, ledger):
-        resumed = uq.unfinished_recheck(ledger)
+        earlier = uq.unfinished_rechecks(ledger)
+        resumed = earlier[-1] if earlier else None
         run_id = ledger.start_run(recipe.sha256, {**(options or {}), "recheck": True,
                                                   "resumed_from": resumed}, __version__)
         if recipe.text:
@@ -94,19 +95,22 @@ def recheck(collection: Collection, *, stop: StopRules | None = None,
         fetcher = fetcher_factory(recipe, ledger)
         if fetcher is not None and hasattr(fetcher, "run_id"):
             fetcher.run_id = run_id
-        outcome = "failed: interrupted"
+        outcome = "failed: internal error in the re-check"
         try:
             checker = _Checker(collection, recipe, ledger, fetcher, run_id, stop, on_finding)
-            outcome = checker.run(resumed)
+            outcome = checker.run(earlier)
         except KeyboardInterrupt:
             outcome = "interrupted"
+            raise
+        except CollectorError as exc:
+            outcome = f"failed: {exc}"
             raise
         finally:
             ledger.end_run(run_id, outcome)
             if fetcher is not None and hasattr(fetcher, "close"):
                 fetcher.close()
-        findings = [_finding_of(o, checker.names) for rid in (resumed, run_id)
-                    if rid is not None for o in uq.observations(ledger, run_id=rid)]
+        findings = [_finding_of(o, checker.names) for rid in (*earlier, run_id)
+                    for o in uq.observations(ledger, run_id=rid)]
     return RecheckResult(run_id, outcome, findings, resumed)
 
 
@@ -135,8 +139,8 @@ class _Checker:
     def _stopped(self) -> bool:
         return self.stop.deadline is not None and time.time() >= self.stop.deadline
 
-    def run(self, resumed: int | None) -> str:
-        done = uq.observed_items(self.ledger, resumed) if resumed is not None else set()
+    def run(self, earlier: list[int]) -> str:
+        done = {i for rid in earlier for i in uq.observed_items(self.ledger, rid)}
         listed = self._listings()
         if listed is None:
             return "stopped: the time limit was reached"

@@ -268,12 +268,14 @@ def observations(ledger: Ledger, *, run_id: int | None = None) -> list[Observati
         f"new_sha256, detail FROM observations {where} ORDER BY id", args)]
 
 
-def unfinished_recheck(ledger: Ledger) -> int | None:
-    """The newest re-check run that did not finish (a new re-check resumes it), or None."""
-    value = ledger.scalar(
-        "SELECT id FROM runs WHERE options LIKE '%\"recheck\": true%' AND outcome NOT IN "
-        "('finished') ORDER BY id DESC LIMIT 1")
-    return int(value) if value is not None else None
+def unfinished_rechecks(ledger: Ledger) -> list[int]:
+    """The re-check runs since the last one that finished, oldest first: a new re-check
+    resumes them (their observations count as done)."""
+    recheck = "options LIKE '%\"recheck\": true%'"
+    return [r[0] for r in ledger.rows(
+        f"SELECT id FROM runs WHERE {recheck} AND outcome != 'finished' AND id > coalesce("
+        f"(SELECT max(id) FROM runs WHERE {recheck} AND outcome = 'finished'), 0) "
+        "ORDER BY id")]
 
 
 # --- the change log ---------------------------------------------------------------------------
