@@ -477,16 +477,15 @@ def withdraw(
 
     Example: collector withdraw my-leaves item:42 --reason creator-request --asked-by "R. Moss"
     """
+    from collector.storage import withdrawals as w
     from collector.storage.collection import open_collection
-    from collector.storage.withdrawals import describe
-    from collector.storage.withdrawals import withdraw as take_out
 
     with user_errors():
         collection = open_collection(folder)
         with collection.gather_lock(), collection.ledger() as ledger:
-            done = take_out(collection, ledger, what, reason=reason, asked_by=asked_by,
-                            asked_on=asked_on, note=note, delete_bytes=delete_bytes)
-    typer.echo(one_line(f"Withdrawal #{done.id} of {done.target}: {describe(done)}"))
+            done = w.withdraw(collection, ledger, what, reason=reason, asked_by=asked_by,
+                              asked_on=asked_on, note=note, delete_bytes=delete_bytes)
+    typer.echo(one_line(f"Withdrawal #{done.id} of {done.target}: {w.describe(done)}"))
     typer.echo(f"Undo with: collector undo-withdrawal {folder} {done.id}")
 
 
@@ -522,19 +521,14 @@ def withdrawals(
     Example: collector withdrawals my-leaves
     """
     from collector.storage.collection import open_collection
-    from collector.storage.upkeep_queries import withdrawals as listed
-    from collector.storage.withdrawals import describe
+    from collector.storage.withdrawals import listing
 
     with user_errors():
         collection = open_collection(folder)
         with collection.ledger(readonly=True) as ledger:
-            rows = listed(ledger)
-    for w in rows:
-        typer.echo(one_line(f"#{w.id}  {w.target}  "
-                            + (f"sha256 {w.sha256[:12]}  " if w.sha256 else "")
-                            + describe(w)))
-    if not rows:
-        typer.echo("No withdrawals.")
+            lines = listing(ledger)
+    for line in lines or ["No withdrawals."]:
+        typer.echo(one_line(line))
 
 
 @app.command()
@@ -576,10 +570,8 @@ def recipe_diff(
         collection = open_collection(folder)
         with collection.ledger(readonly=True) as ledger:
             lines = diff(ledger, first, second)
-    for line in lines:
+    for line in lines or [f"Runs #{first} and #{second} used the same recipe."]:
         typer.echo(for_terminal(line))
-    if not lines:
-        typer.echo(f"Runs #{first} and #{second} used the same recipe.")
 
 
 @app.command()
@@ -595,15 +587,14 @@ def recheck(
     nothing stored is overwritten. Rerunning resumes an unfinished re-check.
     Example: collector recheck my-leaves --for 2h
     """
-    from collector.run.recheck import recheck as look_again
-    from collector.run.recheck import report_lines
+    from collector.run import recheck as rc
     from collector.run.scheduling import stop_rules
     from collector.storage.collection import open_collection
 
     with user_errors():
         collection = open_collection(folder)
         stop = stop_rules(collection.recipe(), until=until, duration=duration, max_items=0)
-        result = look_again(collection, stop=stop, options={"until": until, "for": duration})
-    for line in report_lines(result, show_all=show_all):
+        result = rc.recheck(collection, stop=stop, options={"until": until, "for": duration})
+    for line in rc.report_lines(result, show_all=show_all):
         typer.echo(one_line(line))
     raise typer.Exit(130 if result.outcome == "interrupted" else 0)

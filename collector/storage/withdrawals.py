@@ -186,3 +186,9 @@ def describe(w: uq.Withdrawal) -> str:
     if w.undone_at:
         words += f"; undone on {w.undone_at[:10]}"
     return words
+
+
+def listing(ledger: Ledger) -> list[str]:
+    """One line per withdrawal, undone ones too, oldest first."""
+    return [f"#{w.id}  {w.target}  " + (f"sha256 {w.sha256[:12]}  " if w.sha256 else "")
+            + describe(w) for w in uq.withdrawals(ledger)]
