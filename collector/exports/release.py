@@ -22,6 +22,7 @@ are valid on Linux, macOS and Windows alike; provenance.csv maps each name to it
 
 from __future__ import annotations
 
+import functools
 import json
 import re
 import unicodedata
@@ -54,17 +55,22 @@ SHORT_HASH = 12
 def _part(text: str | None, fallback: str) -> str:
     """One part of a file name: ASCII letters, digits, '_' and '-' only (accents dropped by
     Unicode NFKD decomposition), runs of anything else as one '_', at most NAME_PART_MAX."""
-    plain = unicodedata.normalize("NFKD", text or "").encode("ascii", "ignore").decode()
+    plain = text or ""
+    if not plain.isascii():  # most keys are ASCII already: no decomposition needed
+        plain = unicodedata.normalize("NFKD", plain).encode("ascii", "ignore").decode()
     cleaned = _UNSAFE.sub("_", plain).strip("_-")[:NAME_PART_MAX].strip("_-")
     return cleaned or fallback
 
 
+_few_part = functools.lru_cache(maxsize=256)(_part)  # sources and extensions repeat
+
+
 def readable_name(source: str | None, key: str | None, sha256: str, ext: str) -> str:
     """``<source>-<source key>-<short hash>.<ext>``, safe on every common file system."""
-    stem = f"{_part(source, 'source')}-{_part(key, 'item')}-{sha256[:SHORT_HASH]}"
+    stem = f"{_few_part(source, 'source')}-{_part(key, 'item')}-{sha256[:SHORT_HASH]}"
     if stem.split(".", 1)[0].upper() in WINDOWS_RESERVED:  # unreachable by shape; kept as a rule
         stem = "_" + stem
-    extension = _part(ext, "bin").lower()
+    extension = _few_part(ext, "bin").lower()
     return f"{stem}.{extension}"
 
 
@@ -135,6 +141,8 @@ def _in_range(value: str | None, span: str) -> bool:
 def _matches(sel: Selection, row: dict[str, Any]) -> bool:
     """Whether a release row meets every condition of the selection."""
     c = sel.conditions
+    if not c:
+        return sel.sha256s is None or row["sha256"] in sel.sha256s
     checks = (
         ("source", lambda vs: row["source"] in vs),
         ("licence", lambda vs: (row["spdx_id"] or "unknown") in vs),
@@ -150,9 +158,10 @@ def _matches(sel: Selection, row: dict[str, Any]) -> bool:
 
 def is_blank_scan(row: dict[str, Any]) -> bool:
     """A scanner bed where the splitter found no item, or a file flagged blank."""
-    meta = row["_metadata"] if isinstance(row["_metadata"], dict) else {}
-    return BLANK_FLAG in row["flags"].split(";") or (
-        meta.get("role") == "scan" and meta.get("items") == 0)
+    meta = row["_metadata"]
+    if BLANK_FLAG in row["flags"] and BLANK_FLAG in row["flags"].split(";"):
+        return True
+    return bool(meta) and meta.get("role") == "scan" and meta.get("items") == 0
 
 
 def select(rows: Iterator[dict[str, Any]], sel: Selection, withdrawn: set[str],
@@ -167,8 +176,8 @@ def select(rows: Iterator[dict[str, Any]], sel: Selection, withdrawn: set[str],
         if reason is not None:
             excluded[reason] = excluded.get(reason, 0) + 1
             continue
-        meta = row["_metadata"] if isinstance(row["_metadata"], dict) else {}
-        if meta.get("role") == "scan" and not sel.keep_whole_scans:
+        meta = row["_metadata"]
+        if meta and meta.get("role") == "scan" and not sel.keep_whole_scans:
             scans.append(row)
             continue
         if row["_parent_sha256"]:
