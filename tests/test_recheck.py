@@ -135,6 +135,8 @@ def test_the_change_log_lists_runs_recipe_change_withdrawal_and_findings(changed
     page = (tmp_path / "ds" / "datasheet.md").read_text()
     assert "recipe changed" in page and "re-check finding" in page
     assert f"Made from the ledger as of run #{result.run_id}" in page
+    html = (tmp_path / "ds" / "datasheet.html").read_text()
+    assert "re-check finding" in html and "withdrawal" in html
 
 
 def test_recipe_history_names_the_change(changed) -> None:
