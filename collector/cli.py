@@ -249,6 +249,8 @@ def status(
 
     Example: collector status my-leaves
     """
+    from collector.exports.changelog import withdrawal_line
+    from collector.exports.recipe_history import last_change_line
     from collector.exports.summary import format_summary, summarise, summary_as_dict
     from collector.storage.collection import open_collection
 
@@ -256,11 +258,16 @@ def status(
         collection = open_collection(folder)
         with collection.ledger(readonly=True) as ledger:
             summary = summarise(ledger)
+            recipe_line = last_change_line(ledger)
+            withdrawn_line = withdrawal_line(ledger)
     if as_json:
         typer.echo(json.dumps(summary_as_dict(summary), indent=2, default=str))
         return
     for line in format_summary(summary):
         typer.echo(one_line(line))
+    for extra in (recipe_line, withdrawn_line):
+        if extra:
+            typer.echo(one_line(extra))
 
 
 @app.command()
@@ -280,6 +287,16 @@ def datasheet(
     answers_template: bool = typer.Option(
         False, "--answers-template",
         help="Print a commented answers file listing every question id, and exit."),
+    only: list[str] = typer.Option(
+        [], "--only", help="Release only files meeting NAME=VALUE (repeatable; NAME: source, "
+                           "licence, creator, state, date=FROM..TO, stored=FROM..TO)."),
+    sha256_file: Path = typer.Option(None, "--sha256-file",
+                                     help="Release only the files listed (one sha256 a line)."),
+    keep_whole_scans: bool = typer.Option(
+        False, "--keep-whole-scans", help="Also release whole scanner beds whose crops are "
+                                          "released."),
+    keep_blank_scans: bool = typer.Option(False, "--keep-blank-scans",
+                                          help="Also release blank scans."),
 ) -> None:
     """Write a datasheet (md + html), croissant.json, provenance.csv and attribution.csv.
 
@@ -287,18 +304,22 @@ def datasheet(
     """
     from collector.exports.datasheet import export_datasheet
     from collector.exports.datasheet_questions import answers_template as template
+    from collector.exports.release import EXCLUSION_REASONS, parse_selection
 
     if answers_template:
         typer.echo(template())
         return
     with user_errors():
+        selection = parse_selection(only, sha256_file, keep_whole_scans=keep_whole_scans,
+                                    keep_blank_scans=keep_blank_scans)
         result = export_datasheet(folder, out=out, answers_path=answers,
                                   with_images=with_images, exclude_flagged=exclude_flagged,
-                                  overwrite=overwrite)
+                                  overwrite=overwrite, selection=selection)
     c = result.counts
     typer.echo(f"Wrote {result.out}: {c.files} files described"
                + (f" ({c.linked} linked, {c.copied} copied into images/)" if with_images else "")
-               + f"; left out {c.excluded_licence} by licence, {c.excluded_flagged} flagged")
+               + f"; left out {c.excluded_licence} by licence, {c.excluded_flagged} flagged"
+               + "".join(f", {n} {EXCLUSION_REASONS.get(k, k)}" for k, n in c.excluded.items()))
     for problem in result.croissant_problems:
         typer.echo(one_line(f"croissant.json: {problem}"), err=True)
 
@@ -482,3 +503,146 @@ def demo(
     say("Next: collector status " + str(folder) + "  |  collector trace FILE --in " + str(folder)
         + "  |  collector demo (resumes)  |  collector demo --fresh")
     raise typer.Exit(result.run.exit_code)
+
+
+@app.command()
+def withdraw(
+    folder: Path = typer.Argument(..., help="The collection folder."),
+    what: str = typer.Argument(..., help="An image file, a sha256 prefix (8+ hex digits), "
+                                         "item:ID or key:SOURCE:KEY."),
+    reason: str = typer.Option(..., "--reason", help="creator-request, licence-error, "
+                                                     "personal-data or other."),
+    asked_by: str = typer.Option(None, "--asked-by", help="Who asked for it."),
+    asked_on: str = typer.Option(None, "--asked-on", help="When they asked (YYYY-MM-DD)."),
+    note: str = typer.Option(None, "--note", help="A free-text note kept with it."),
+    delete_bytes: bool = typer.Option(False, "--delete-bytes",
+                                      help="Also delete the stored file (the record stays)."),
+) -> None:
+    """Take a file or item out of every release from now on; gather never fetches it again.
+
+    Example: collector withdraw my-leaves item:42 --reason creator-request --asked-by "R. Moss"
+    """
+    from collector.storage import withdrawals as w
+    from collector.storage.collection import open_collection
+
+    with user_errors():
+        collection = open_collection(folder)
+        with collection.gather_lock(), collection.ledger() as ledger:
+            done = w.withdraw(collection, ledger, what, reason=reason, asked_by=asked_by,
+                              asked_on=asked_on, note=note, delete_bytes=delete_bytes)
+    typer.echo(one_line(f"Withdrawal #{done.id} of {done.target}: {w.describe(done)}"))
+    typer.echo(f"Undo with: collector undo-withdrawal {folder} {done.id}")
+
+
+@app.command("undo-withdrawal")
+def undo_withdrawal(
+    folder: Path = typer.Argument(..., help="The collection folder."),
+    number: int = typer.Argument(..., help="The withdrawal's number (collector withdrawals)."),
+    by: str = typer.Option(None, "--by", help="Who decided to undo it."),
+    note: str = typer.Option(None, "--note", help="Why it is undone."),
+) -> None:
+    """Put a withdrawn file or item back (recorded too); deleted bytes are fetched again.
+
+    Example: collector undo-withdrawal my-leaves 3 --note "asked by mistake"
+    """
+    from collector.storage.collection import open_collection
+    from collector.storage.withdrawals import describe, undo
+
+    with user_errors():
+        collection = open_collection(folder)
+        with collection.gather_lock(), collection.ledger() as ledger:
+            done = undo(ledger, number, undone_by=by, note=note)
+    typer.echo(one_line(f"Withdrawal #{done.id} of {done.target}: {describe(done)}"))
+    if done.bytes_deleted:
+        typer.echo(f"Its bytes were deleted; collector gather {folder} fetches them again")
+
+
+@app.command()
+def withdrawals(
+    folder: Path = typer.Argument(Path("."), help="The collection folder."),
+) -> None:
+    """List every withdrawal, undone ones too.
+
+    Example: collector withdrawals my-leaves
+    """
+    from collector.storage.collection import open_collection
+    from collector.storage.withdrawals import listing
+
+    with user_errors():
+        collection = open_collection(folder)
+        with collection.ledger(readonly=True) as ledger:
+            lines = listing(ledger)
+    for line in lines or ["No withdrawals."]:
+        typer.echo(one_line(line))
+
+
+@app.command()
+def notes(
+    folder: Path = typer.Argument(Path("."), help="The collection folder."),
+    kind: list[str] = typer.Option([], "--kind", help="Only notes of this kind (repeatable)."),
+    source: list[str] = typer.Option([], "--source", help="Only this source (repeatable)."),
+) -> None:
+    """List what the sources reported while listing (blank scans, touching items, ...).
+
+    Example: collector notes my-leaves --kind blank_scan --source scans
+    """
+    from collector.exports.notes import list_notes, note_lines
+    from collector.storage.collection import open_collection
+
+    with user_errors():
+        collection = open_collection(folder)
+        with collection.ledger(readonly=True) as ledger:
+            rows = list_notes(ledger, kinds=tuple(kind), sources=tuple(source))
+    for line in note_lines(rows):
+        typer.echo(one_line(line))
+    typer.echo(f"{len(rows)} note(s)")
+
+
+@app.command("recipe-diff")
+def recipe_diff(
+    folder: Path = typer.Argument(..., help="The collection folder."),
+    first: int = typer.Argument(..., help="A run number."),
+    second: int = typer.Argument(..., help="A later (or earlier) run number."),
+) -> None:
+    """Show how the recipe of one run differs from the recipe of another.
+
+    Example: collector recipe-diff my-leaves 1 4
+    """
+    from collector.exports.recipe_history import recipe_diff as diff
+    from collector.storage.collection import open_collection
+
+    with user_errors():
+        collection = open_collection(folder)
+        with collection.ledger(readonly=True) as ledger:
+            lines = diff(ledger, first, second)
+    for line in lines or [f"Runs #{first} and #{second} used the same recipe."]:
+        typer.echo(for_terminal(line))
+
+
+@app.command()
+def recheck(
+    folder: Path = typer.Argument(Path("."), help="The collection folder."),
+    until: str = typer.Option(None, "--until", metavar="HH:MM",
+                              help="Stop at this local time, e.g. 07:00."),
+    duration: str = typer.Option(None, "--for", metavar="DURATION",
+                                 help="Stop after this long, e.g. 2h."),
+    show_all: bool = typer.Option(False, "--all", help="List unchanged items too."),
+) -> None:
+    """Look again, politely, at what was gathered: licences, fields and image bytes.
+
+    Unchanged images cost a 304 (conditional requests with the stored ETag/Last-Modified);
+    nothing stored is overwritten. Rerunning resumes an unfinished re-check.
+
+    Example: collector recheck my-leaves --for 2h
+    """
+    from collector.run import recheck as rc
+    from collector.run.scheduling import stop_rules
+    from collector.storage.collection import open_collection
+
+    with user_errors():
+        collection = open_collection(folder)
+        stop = stop_rules(collection.recipe(), until=until, duration=duration, max_items=0)
+        result = rc.recheck(collection, stop=stop, options={"until": until, "for": duration})
+    for line in rc.report_lines(result, show_all=show_all):
+        typer.echo(one_line(line))
+    raise typer.Exit(130 if result.outcome == "interrupted" else 0)

@@ -55,6 +55,8 @@ class RequestRecord:
     bytes: int
     user_agent: str | None
     host_header: str | None
+    if_none_match: str | None = None  # the conditional request's validators (RFC 9110 §13.1)
+    if_modified_since: str | None = None
 
     def to_json(self) -> dict[str, Any]:
         return asdict(self)
@@ -392,6 +394,20 @@ class DemoServer:
                  tb: TracebackType | None) -> None:
         self.stop()
 
+    # -- the archive months later (re-check tests) --
+    def change_archive(self, **changes: Any) -> Any:
+        """Change some objects in memory (:func:`collector.demo_site.changes.change_archive`);
+        ``restore_archive`` undoes it."""
+        from collector.demo_site.changes import change_archive
+
+        assert self.site is not None, "start the server first"
+        return change_archive(self.site, **changes)
+
+    def restore_archive(self) -> None:
+        """Serve the archive as generated again."""
+        if self.site is not None:
+            self.site = Site(self.content_dir, self.port)
+
     # -- addresses --
     def base_url(self, host_index: int) -> str:
         """``http://127.0.0.N:PORT`` for host 1-4."""
@@ -445,7 +461,9 @@ class DemoServer:
                             host=HOSTS[host], host_index=host, method=method, path=req.path,
                             status=reply.status, bytes=sent,
                             user_agent=req.headers.get("User-Agent"),
-                            host_header=req.headers.get("Host"))
+                            host_header=req.headers.get("Host"),
+                            if_none_match=req.headers.get("If-None-Match"),
+                            if_modified_since=req.headers.get("If-Modified-Since"))
         with self._lock:
             self._log.append(rec)
             if self._log_file:

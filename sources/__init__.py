@@ -77,6 +77,8 @@ COMMON_KEYS: dict[str, Key] = {
     "kind": Key("str", required=True),
     # decided by the run before any image request (collector.checks.conditions)
     "keep_if": Key("str", "", check=item_condition),
+    "former_names": Key("list[str]", hint="names this source had before (a rename keeps the "
+                                          "source's history in the ledger)"),
 }
 
 _lock = threading.RLock()

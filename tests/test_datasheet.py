@@ -26,6 +26,7 @@ from collector.exports import datasheet_questions as dq
 from collector.exports.datasheet import export_datasheet
 from collector.exports.datasheet_questions import QUESTIONS, parse_answers
 from collector.exports.datasheet_render import FACTS
+from collector.exports.release import readable_name
 
 FACT_IDS = set(FACTS)
 
@@ -270,7 +271,8 @@ def test_provenance_and_attribution_rows_describe_each_file(coll: Path,
     with open(export.out / "provenance.csv", newline="") as fh:
         prov = list(csv.DictReader(fh))
     assert {r["sha256"] for r in prov} == {r[0] for r in accepted_rows(coll)}
-    assert all(r["file_name"] == f"{r['sha256'][:16]}.{r['file_name'].rsplit('.', 1)[1]}"
+    assert all(r["file_name"] == readable_name(r["source"], r["source_key"], r["sha256"],
+                                               r["file_name"].rsplit(".", 1)[1])
                for r in prov)
     web = next(r for r in prov if r["title"] == HOSTILE_TITLE)
     assert web["image_url"].startswith("http://127.0.0.2:8080/img/")
@@ -308,7 +310,7 @@ def test_copies_when_a_hard_link_is_impossible(coll: Path, tmp_path: Path,
     assert len(copies) == 10
     for path in copies:
         assert path.stat().st_nlink == 1
-        assert hashlib.sha256(path.read_bytes()).hexdigest().startswith(path.stem)
+        assert hashlib.sha256(path.read_bytes()).hexdigest().startswith(path.stem[-12:])
 
 
 def test_exclude_flagged_leaves_out_personal_data_and_conflicts(coll: Path,

@@ -14,7 +14,8 @@ from pathlib import Path
 import pytest
 
 ROOT = Path(__file__).resolve().parent.parent
-SQL_HOMES = {"collector/storage/ledger.py", "collector/storage/queries.py"}
+SQL_HOMES = {"collector/storage/ledger.py", "collector/storage/queries.py",
+             "collector/storage/upkeep_queries.py"}
 
 # Upper-case SQL, as this project writes it: a statement anywhere in a string, or a string
 # that starts with a clause (a fragment joined into a statement elsewhere).

@@ -428,6 +428,7 @@ class Recipe:
     sources: list[dict[str, Any]] = field(default_factory=list)
     items: Items = field(default_factory=lambda: Items())
     reservations: Reservations = field(default_factory=Reservations)
+    text: str = field(default="", repr=False, compare=False)  # as read, for the ledger
 
     def budget_for(self, host: str) -> Budget:
         """The budget in force for ``host`` (``host`` or ``host:port``): defaults + override."""
@@ -469,6 +470,24 @@ class Recipe:
             sources.append(shown)
         settings["sources"] = sources
         return settings
+
+    def kept_text(self) -> str:
+        """The recipe text as the ledger keeps it (recipe history): every secret literal
+        that :meth:`shown_settings` hides is replaced by ``REDACTED`` in the text too."""
+        text = self.text
+        for secret in sorted(_hidden_values(self.as_dict(), self.shown_settings()),
+                             key=len, reverse=True):
+            text = text.replace(secret, REDACTED)
+        return text
+
+
+def _hidden_values(plain: Any, shown: Any) -> set[str]:
+    """The string values of ``plain`` that ``shown`` replaces by REDACTED."""
+    if isinstance(plain, dict) and isinstance(shown, dict):
+        return {v for k in plain for v in _hidden_values(plain[k], shown.get(k))}
+    if isinstance(plain, list) and isinstance(shown, list):
+        return {v for a, b in zip(plain, shown, strict=False) for v in _hidden_values(a, b)}
+    return {plain} if isinstance(plain, str) and plain and shown == REDACTED else set()
 
 
 def _hide(values: Mapping[str, Any], secret: Callable[[str], bool]) -> dict[str, Any]:
@@ -588,7 +607,7 @@ def parse_recipe(text: str, path: Path, *, check_source_kinds: bool = True) -> R
         network=Network(**sections["network"]), licences=Licences(**sections["licences"]),
         images=Images(**sections["images"]), stop=Stop(**sections["stop"]),
         sources=source_list, items=Items(**sections["items"]),
-        reservations=Reservations(**sections["reservations"]))
+        reservations=Reservations(**sections["reservations"]), text=text)
 
 
 def load_recipe(path: Path, *, check_source_kinds: bool = True) -> Recipe:

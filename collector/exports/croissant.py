@@ -86,7 +86,7 @@ CONTEXT: dict[str, Any] = {
 PROVENANCE_FILE = "provenance.csv"
 # provenance.csv columns -> (Croissant dataType, description). Order = the CSV's columns.
 PROVENANCE_FIELDS: dict[str, tuple[str, str]] = {
-    "file_name": ("sc:Text", "stable file name in images/ (first 16 hex digits of sha256)"),
+    "file_name": ("sc:Text", "file name in images/: source, source key, 12 hex digits of sha256"),
     "sha256": ("sc:Text", "SHA-256 of the file bytes (FIPS 180-4), hex"),
     "source": ("sc:Text", "name of the recipe source the item came from"),
     "source_key": ("sc:Text", "the source's own id for the item"),

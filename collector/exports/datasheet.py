@@ -38,6 +38,7 @@ from collector.checks.licences import licence_allowed, licence_conditions, licen
 from collector.checks.rights_statements import ALLOW_PREFIX, STATEMENTS
 from collector.config.recipe import Recipe
 from collector.errors import CollectionError, LedgerError, LedgerUnusable
+from collector.exports import changelog, release
 from collector.exports.datasheet_questions import load_answers
 from collector.exports.datasheet_reservations import reservation_summary
 from collector.exports.facts import (
@@ -48,7 +49,7 @@ from collector.exports.facts import (
     Timeline,
 )
 from collector.safe_text import csv_cell, csv_row
-from collector.storage import queries
+from collector.storage import queries, upkeep_queries
 from collector.storage.ledger import Ledger
 from collector.storage.queries import Timeframe
 from collector.storage.safe_paths import link_refused, new_temp_file, own_folder, replace_file
@@ -214,6 +215,7 @@ class ReleaseCounts:
     copied: int = 0
     by_ext: dict[str, dict[str, Any]] = field(default_factory=dict)  # ext -> {mime, files}
     by_licence: dict[str, int] = field(default_factory=dict)
+    excluded: dict[str, int] = field(default_factory=dict)  # release.EXCLUSION_REASONS -> n
 
 
 def _licence_facts(key: str, files: int) -> LicenceFacts:
@@ -236,21 +238,27 @@ def _statement_words(code: str | None) -> str | None:
     return f"rights statement: {statement.name}" if statement else None
 
 
-def file_name_for(sha256: str, ext: str) -> str:
-    """The stable release name of a file: 16 hex digits of its sha256 and its extension."""
-    return f"{sha256[:16]}.{ext}"
-
 
 def iter_release_rows(ledger: Ledger, recipe: Recipe, counts: ReleaseCounts, *,
-                      exclude_flagged: bool) -> Iterator[dict[str, Any]]:
-    """Stream the accepted files that pass the licence policy (and the flag filter).
+                      exclude_flagged: bool, selection: release.Selection | None = None
+                      ) -> Iterator[dict[str, Any]]:
+    """Stream the files the release holds: accepted, passing the licence policy (and the
+    flag filter), then the selection and its defaults (:func:`collector.exports.release.select`).
 
     Counts what is left out; the caller counts what it keeps."""
+    withdrawn = upkeep_queries.withdrawn_sha256s(ledger)
+    rows = _policy_rows(ledger, recipe, counts, exclude_flagged=exclude_flagged)
+    return release.select(rows, selection or release.Selection(), withdrawn, counts.excluded)
+
+
+def _policy_rows(ledger: Ledger, recipe: Recipe, counts: ReleaseCounts, *,
+                 exclude_flagged: bool) -> Iterator[dict[str, Any]]:
+    """The accepted files that pass the licence policy (and the flag filter)."""
     allowed_cache: dict[str | None, bool] = {}
     for r in queries.release_rows(ledger):
         (sha, ext, mime, fmt, width, height, size, flags_json, stored_at, source, key,
          page_url, image_url, title, creator, licence_raw, spdx, licence_url, fetched_at,
-         statement) = r
+         statement, state, item_date, metadata, parent_sha256) = r
         decided_by = spdx or (f"{ALLOW_PREFIX}{statement}" if statement else None)
         if decided_by not in allowed_cache:
             allowed_cache[decided_by] = licence_allowed(
@@ -268,13 +276,17 @@ def iter_release_rows(ledger: Ledger, recipe: Recipe, counts: ReleaseCounts, *,
             counts.excluded_flagged += 1
             continue
         yield {
-            "file_name": file_name_for(sha, ext), "sha256": sha, "source": source,
+            "file_name": release.readable_name(source, key, sha, ext), "sha256": sha,
+            "source": source,
             "source_key": key, "page_url": page_url or "", "image_url": image_url or "",
             "title": title or "", "creator": creator or "", "licence_raw": licence_raw or "",
             "spdx_id": spdx or "", "licence_url": licence_url or licence_deed_url(spdx) or "",
             "fetched_at": fetched_at or stored_at or "", "width": width, "height": height,
             "format": fmt or "", "mime": mime or "", "size": size,
             "flags": ";".join(flags), "_ext": ext, "_statement": statement,
+            "_state": state, "_date": item_date,
+            "_metadata": release.metadata_of(metadata), "_parent_sha256": parent_sha256,
+            "_stored_at": stored_at,
         }
 
 
@@ -394,7 +406,8 @@ class ExportResult:
 
 
 def write_release(ledger: Ledger, recipe: Recipe, out: Path, store_root: Path, *,
-                  with_images: bool, exclude_flagged: bool) -> tuple[ReleaseCounts, str]:
+                  with_images: bool, exclude_flagged: bool,
+                  selection: release.Selection | None = None) -> tuple[ReleaseCounts, str]:
     """Stream provenance.csv and attribution.csv (and link images/); returns the counts and
     the sha256 of provenance.csv."""
     from collector.storage.store import Store
@@ -407,7 +420,8 @@ def write_release(ledger: Ledger, recipe: Recipe, out: Path, store_root: Path, *
     attr_fd, attr_tmp = new_temp_file(out, ".attribution.csv.", ".part")
     try:
         counts, digest = _write_rows(ledger, recipe, store, images, prov_fd, attr_fd,
-                                     with_images=with_images, exclude_flagged=exclude_flagged)
+                                     with_images=with_images, exclude_flagged=exclude_flagged,
+                                     selection=selection)
         os.replace(prov_tmp, out / "provenance.csv")
         os.replace(attr_tmp, out / "attribution.csv")
     finally:
@@ -425,7 +439,8 @@ def write_release(ledger: Ledger, recipe: Recipe, out: Path, store_root: Path, *
 
 def _write_rows(ledger: Ledger, recipe: Recipe, store: Store, images: Path,
                 prov_fd: int, attr_fd: int, *, with_images: bool,
-                exclude_flagged: bool) -> tuple[ReleaseCounts, str]:
+                exclude_flagged: bool, selection: release.Selection | None = None
+                ) -> tuple[ReleaseCounts, str]:
     """Stream the rows into the two open temp files (and link images/)."""
     counts = ReleaseCounts()
     with os.fdopen(prov_fd, "wb") as prov_fh, os.fdopen(attr_fd, "w", encoding="utf-8",
@@ -435,7 +450,8 @@ def _write_rows(ledger: Ledger, recipe: Recipe, store: Store, images: Path,
         attr = csv.writer(attr_fh)
         prov.writeheader()
         attr.writerow(ATTRIBUTION_COLUMNS)
-        for row in iter_release_rows(ledger, recipe, counts, exclude_flagged=exclude_flagged):
+        for row in iter_release_rows(ledger, recipe, counts, exclude_flagged=exclude_flagged,
+                                     selection=selection):
             if with_images:
                 src = store.existing(row["sha256"], row["_ext"])
                 if src is None:
@@ -459,6 +475,7 @@ def _write_rows(ledger: Ledger, recipe: Recipe, store: Store, images: Path,
 
 def export_datasheet(root: Path, *, out: Path | None = None, answers_path: Path | None = None,
                      with_images: bool = False, exclude_flagged: bool = False,
+                     selection: release.Selection | None = None,
                      overwrite: bool = False, now: str | None = None) -> ExportResult:
     """Write the datasheet folder for the collection at ``root``."""
     from collector.exports import croissant, plots
@@ -475,9 +492,14 @@ def export_datasheet(root: Path, *, out: Path | None = None, answers_path: Path 
         try:
             counts, prov_sha = write_release(ledger, recipe, out, collection.store.root,
                                              with_images=with_images,
-                                             exclude_flagged=exclude_flagged)
+                                             exclude_flagged=exclude_flagged,
+                                             selection=selection)
             facts = _facts(ledger, recipe, now or datetime.now(UTC)
                            .isoformat(timespec="seconds").replace("+00:00", "Z"))
+            facts["changelog"] = changelog.change_log(ledger)
+            facts["selection"] = {
+                "conditions": (selection or release.Selection()).describe(),
+                "excluded": dict(counts.excluded), "ledger_state": changelog.ledger_state(ledger)}
         except LedgerUnusable:
             raise
         except LedgerError as exc:  # the ledger translated the sqlite error; add the way out

@@ -24,6 +24,7 @@ from typing import TYPE_CHECKING, Any
 from collector.exports.datasheet_questions import SECTIONS, Question
 from collector.exports.datasheet_reservations import CAUTION as RESERVATIONS_CAUTION
 from collector.exports.datasheet_reservations import reservation_blocks
+from collector.exports.release import EXCLUSION_REASONS
 
 if TYPE_CHECKING:
     import jinja2
@@ -350,7 +351,24 @@ FACTS: dict[str, Callable[[DatasheetFacts], list[Block]]] = {
                                             "a change log can be drawn from it.")],
     "maintenance.updates": lambda f: [_table(["run outcome", "runs"], f["runs"]["outcomes"],
                                              "t-runs")],
+    "maintenance.changelog": lambda f: [("table", ["date (UTC)", "event", "details"], [
+        [e["date"], e["event"], e["detail"]] for e in f.get("changelog", [])])],
+    "maintenance.release": lambda f: _release_state(f),
 }
+
+
+def _release_state(f: DatasheetFacts) -> list[Block]:
+    """The ledger state a release was made from, its selection and what it left out."""
+    sel = f.get("selection")
+    if sel is None:
+        return []
+    state = sel["ledger_state"]
+    words = (f"Made from the ledger as of run #{state['run_id']} ({state['time']})"
+             if state["run_id"] is not None else "Made from a ledger without runs")
+    chosen = "; ".join(sel["conditions"]) or "everything accepted"
+    left = {EXCLUSION_REASONS.get(k, k): n for k, n in sel["excluded"].items()}
+    return [("p", f"{words}. Selection: {chosen}."),
+            _table(["left out of this release", "files"], left)]
 
 
 # --- the document the templates fill ---------------------------------------------------------

@@ -120,6 +120,29 @@ class ReservationSummary(TypedDict):
     when_unknown: str
 
 
+class ChangeEvent(TypedDict):
+    """One dated line of the change log (:mod:`collector.exports.changelog`)."""
+
+    date: str
+    event: str
+    detail: str
+
+
+class LedgerState(TypedDict):
+    """The ledger state a release was made from: the newest run and its last time."""
+
+    run_id: int | None
+    time: str | None
+
+
+class SelectionFacts(TypedDict):
+    """What a partial release selected and what it left out, by reason."""
+
+    conditions: list[str]
+    excluded: dict[str, int]
+    ledger_state: LedgerState
+
+
 class DatasheetFacts(TypedDict):
     """Everything the datasheet says, as plain data; ``release`` and ``croissant_problems``
     are added once the release is written and the Croissant document checked."""
@@ -148,4 +171,6 @@ class DatasheetFacts(TypedDict):
     policy: dict[str, Any]
     reservations: NotRequired[ReservationSummary]
     release: NotRequired[ReleaseFacts]
+    changelog: NotRequired[list[ChangeEvent]]
+    selection: NotRequired[SelectionFacts]
     croissant_problems: NotRequired[list[str]]

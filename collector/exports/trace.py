@@ -34,11 +34,12 @@ from collector.checks.licences import licence_allowed, licence_deed_url
 from collector.checks.rights_statements import STATEMENTS
 from collector.errors import CollectorError
 from collector.exports.trace_format import attribution_line, recovered_words
-from collector.storage import queries
+from collector.storage import queries, upkeep_queries
 from collector.storage.collection import Collection, open_collection
 from collector.storage.hashindex import HashFile, NearMatch
 from collector.storage.ledger import Ledger, decode_row
 from collector.storage.ledger_repair import RECOVERED_FLAG
+from collector.storage.withdrawals import describe as describe_withdrawal
 
 __all__ = [
     "DEFAULT_NEAR_DISTANCE",
@@ -136,6 +137,7 @@ class FileRecord:
     copyright: str | None
     origin: ItemRecord | None
     others: list[ItemRecord] = field(default_factory=list)
+    withdrawn: str | None = None  # "withdrawn on <date>: <reason>" while a withdrawal holds
 
 
 @dataclass
@@ -325,7 +327,11 @@ class Tracer:
             width=row.get("width"), height=row.get("height"), stored_at=row.get("stored_at"),
             stored_path=str(stored) if stored else None, flags=list(row.get("flags") or []),
             copyright=notice, origin=origin,
-            others=[i for i in items if i is not origin])
+            others=[i for i in items if i is not origin], withdrawn=self._withdrawn(sha256))
+
+    def _withdrawn(self, sha256: str) -> str | None:
+        found = upkeep_queries.active_withdrawal_of_file(self.ledger, sha256)
+        return describe_withdrawal(found) if found is not None else None
 
     def lookup_near(self, phash: int, mirror: int | None) -> list[NearMatch]:
         """Stored files within the threshold of the hash or the mirror hash, closest first."""

@@ -160,7 +160,8 @@ def table_row(result: TraceResult) -> dict[str, Any]:
         "distance": "" if result.distance is None else result.distance,
         "source": (item.source or "") if item else "",
         "spdx_id": (item.spdx_id or "") if item else "",
-        "allowed": result.allowed, "flags": " ".join(result.flags),
+        "allowed": result.allowed,
+        "flags": " ".join([*result.flags, *(["withdrawn"] if best and best.withdrawn else [])]),
         "matched_sha256": best.sha256 if best else "",
     }
 
@@ -277,6 +278,8 @@ def _file_lines(record: FileRecord) -> list[str]:
         lines.append(f"  provenance:   {recovered_words(record)}; no source, item or licence "
                      "is recorded")
     lines.append(f"  flags:        {', '.join(record.flags) if record.flags else 'none'}")
+    if record.withdrawn:
+        lines.append(f"  withdrawn:    {record.withdrawn}; left out of every release")
     for other in record.others:
         where = other.page_url or other.image_url or other.local_path or other.source_key
         lines.append(f"  also from:    item #{other.item_id} ({other.source or '?'}, "

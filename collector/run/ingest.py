@@ -39,6 +39,7 @@ from collector.run.dedup import Demote, Keep, NearCandidate, NearCopy, TakeOver
 from collector.run.record import RunRecord
 from collector.run.reservations import ReservationGate
 from collector.safe_text import shown_name
+from collector.storage import upkeep_queries
 from collector.storage.collection import Collection
 from collector.storage.hashindex import HashIndex
 from collector.storage.ledger import Ledger
@@ -276,6 +277,9 @@ class Ingest:
             return None
         if row and self._gone_for_good(row):
             self.record.count("given_up")
+            return None
+        if row and upkeep_queries.item_is_withdrawn(self.ledger, row["id"]):
+            self.record.count("withdrawn")  # taken out on request: never fetched again
             return None
         if row:
             item_id = row["id"]

@@ -178,7 +178,8 @@ class Gatherer:
         self._lock = threading.RLock()
         self._stored_this_run = 0
         self._reached: dict[int, str] = {}  # source id -> what its complete listing remembered
-        self._source_ids = [ledger.source_id(src["name"], src["kind"], src)
+        self._source_ids = [ledger.source_id(src["name"], src["kind"], src,
+                                             tuple(src.get("former_names") or ()))
                             for src in recipe.sources]
         self._config_sha = {sid: config_sha256(src)
                             for src, sid in zip(recipe.sources, self._source_ids, strict=True)}
@@ -236,6 +237,10 @@ class Gatherer:
 
     def _run(self, options: dict[str, Any] | None) -> RunResult:
         self.run_id = self.ledger.start_run(self.recipe.sha256, options or {}, __version__)
+        if self.recipe.text:  # recipe history: the text once per sha256, secrets hidden
+            self.ledger.add_row("recipes", {"sha256": self.recipe.sha256,
+                                            "text": self.recipe.kept_text(),
+                                            "first_used_at": utc_now()})
         if self.fetcher is not None and hasattr(self.fetcher, "run_id"):
             self.fetcher.run_id = self.run_id  # its fetches rows name the run
         self.progress.event("run_started", run_id=self.run_id)

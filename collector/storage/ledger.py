@@ -302,6 +302,15 @@ class Ledger:
         except sqlite3.DatabaseError as exc:
             raise LedgerUnusable(f"{source} cannot be read as a ledger ({exc})") from exc
 
+    def columns(self, table: str) -> frozenset[str]:
+        """The column names of ``table`` (a read of an older schema asks before it reads)."""
+        return self._columns(table)
+
+    def has_table(self, table: str) -> bool:
+        """Whether the ledger has ``table`` (tables of newer migrations are absent from a
+        ledger opened read-only before the migration ran)."""
+        return table in self._tables()
+
     def _columns(self, table: str) -> frozenset[str]:
         # Under the lock: the connection is shared by threads, and a PRAGMA read running
         # while another thread writes the same table fails with "database table is locked".
@@ -352,10 +361,17 @@ class Ledger:
         self._update("runs", run_id, {"ended_at": utc_now(), "outcome": outcome})
 
     # -- sources -----------------------------------------------------------------------------
-    def source_id(self, name: str, kind: str, config: dict[str, Any]) -> int:
-        """The id of the named source, created or updated with its current config."""
+    def source_id(self, name: str, kind: str, config: dict[str, Any],
+                  former_names: tuple[str, ...] = ()) -> int:
+        """The id of the named source, created or updated with its current config. A source
+        renamed in the recipe (``former_names``) keeps its row, so its items stay its own."""
         with self._lock, self._translate("write to sources"), self._conn:
             rows = self.db.execute("SELECT id FROM sources WHERE name = ?", [name]).fetchall()
+            for former in former_names:
+                if rows:
+                    break
+                rows = self.db.execute("SELECT id FROM sources WHERE name = ?",
+                                       [former]).fetchall()
             row = rows[0] if rows else None
             encoded = _encode({"name": name, "kind": kind, "config": config})
             if row:
@@ -406,8 +422,29 @@ class Ledger:
         self._update("files", sha256, fields)
 
     def known_sha256s(self) -> set[str]:
-        """Every sha256 the ledger has a files row for."""
-        return {r["sha256"] for r in self.query("SELECT sha256 FROM files")}
+        """Every sha256 the ledger has a files row for whose bytes should be in the store
+        (a file withdrawn with its bytes deleted on purpose is not expected there)."""
+        if "removed_at" not in self._columns("files"):  # before migration 4 (read-only)
+            return {r["sha256"] for r in self.query("SELECT sha256 FROM files")}
+        return {r["sha256"] for r in self.query(
+            "SELECT sha256 FROM files WHERE removed_at IS NULL")}
+
+    # -- upkeep: withdrawals, recipe texts, re-check observations (schema 4) -----------------
+    def add_row(self, table: str, row: dict[str, Any]) -> int:
+        """Append one row to ``withdrawals``, ``observations`` or ``recipes`` (a recipe
+        text already known by its sha256 is kept as it is); returns its id."""
+        if table not in ("withdrawals", "observations", "recipes"):
+            raise LedgerError(f"add_row does not write to {table}")
+        return self._insert(table, row, ignore=table == "recipes")
+
+    def undo_withdrawal(self, withdrawal_id: int, fields: dict[str, Any]) -> None:
+        """Record that a withdrawal was undone (``undone_at``, ``undone_by``, ``undo_note``)."""
+        self._update("withdrawals", withdrawal_id, fields)
+
+    def mark_file_removed(self, sha256: str, when: str | None) -> None:
+        """The stored bytes of ``sha256`` were deleted on purpose (``when``), or, with None,
+        the row no longer claims that (call inside :meth:`transaction`)."""
+        self._update("files", sha256, {"removed_at": when})
 
     # -- hosts -------------------------------------------------------------------------------
     def get_host(self, host: str) -> dict[str, Any] | None:

@@ -128,6 +128,41 @@ def _migration_6(db: sqlite_utils.Database) -> None:
             hosts.add_column(name, kind)
 
 
+
+def _migration_7(db: sqlite_utils.Database) -> None:
+    """Keeping a published collection honest over time.
+
+    ``withdrawals``: a file or item taken out of every release, with the reason, who asked and
+    when; undoing one fills ``undone_at`` (the row stays). ``files.removed_at``: the bytes were
+    deleted from the store on purpose (the row and its facts stay). ``recipes``: the full text
+    of every recipe a run used, by its sha256 (``runs.recipe_sha256``). ``observations``: what
+    a re-check saw for an item, one row per look, never overwritten.
+    """
+    # A ledger mended by hand may have some of these already: each is added only if absent.
+    tables = set(db.table_names())
+    if "withdrawals" not in tables:
+        db.table("withdrawals").create({
+            "id": int, "item_id": int, "sha256": str, "target": str, "reason": str,
+            "note": str, "asked_by": str, "asked_on": str, "recorded_at": str,
+            "bytes_deleted": int, "undone_at": str, "undone_by": str, "undo_note": str,
+        }, pk="id")
+        db.table("withdrawals").create_index(["item_id"])
+        db.table("withdrawals").create_index(["sha256"])
+    if "removed_at" not in db.table("files").columns_dict:
+        db.table("files").add_column("removed_at", str)
+    if "recipes" not in tables:
+        db.table("recipes").create({"sha256": str, "text": str, "first_used_at": str},
+                                   pk="sha256")
+    if "observations" not in tables:
+        db.table("observations").create({
+            "id": int, "run_id": int, "item_id": int, "observed_at": str, "finding": str,
+            "status": int, "old_value": str, "new_value": str, "new_sha256": str,
+            "detail": str,
+        }, pk="id")
+        db.table("observations").create_index(["item_id"])
+
+
+
 MIGRATIONS: dict[int, Callable[[sqlite_utils.Database], None]] = {
     1: _migration_1, 2: _migration_2, 3: _migration_3, 4: _migration_4, 5: _migration_5,
-    6: _migration_6}
+    6: _migration_6, 7: _migration_7}

@@ -141,8 +141,11 @@ def listed_source_names(ledger: Ledger) -> set[str]:
 
 
 def counts(ledger: Ledger) -> tuple[int, int]:
-    """(files rows, items rows): how much the ledger knows."""
-    return (int(ledger.scalar("SELECT count(*) FROM files") or 0),
+    """(files rows whose bytes belong in the store, items rows): how much the ledger knows
+    (a file withdrawn with its bytes deleted on purpose is not expected in the store)."""
+    kept = ("SELECT count(*) FROM files WHERE removed_at IS NULL"
+            if "removed_at" in ledger.columns("files") else "SELECT count(*) FROM files")
+    return (int(ledger.scalar(kept) or 0),
             int(ledger.scalar("SELECT count(*) FROM items") or 0))
 
 
@@ -401,6 +404,10 @@ class ReleaseRow(NamedTuple):
     licence_url: str | None
     fetched_at: str | None  # the newest 2xx image request
     rights_statement: str | None = None  # RightsStatements.org id when no SPDX licence
+    state: str = "stored"  # what a partial release selects on (collector.exports.release)
+    date: str | None = None
+    metadata: str | None = None  # JSON text as stored
+    parent_sha256: str | None = None
 
 
 def _statement_column(ledger: Ledger, prefix: str = "i.") -> str:
@@ -625,7 +632,8 @@ def release_rows(ledger: Ledger) -> Iterator[ReleaseRow]:
             "i.licence_raw, i.spdx_id, i.licence_url, "
             "(SELECT max(x.started_at) FROM fetches x WHERE x.item_id = i.id AND "
             " x.purpose = 'image' AND x.status BETWEEN 200 AND 299), "
-            f"{_statement_column(ledger, 'i.')} "
+            f"{_statement_column(ledger, 'i.')}, "
+            "i.state, i.date, i.metadata, i.parent_sha256 "
             f"{_ACCEPTED_FROM} ORDER BY f.sha256"):
         yield ReleaseRow(*row)
 
