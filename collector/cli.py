@@ -10,16 +10,16 @@ from __future__ import annotations
 
 import json
 import sys
-from collections.abc import Callable, Iterator
-from contextlib import contextmanager, nullcontext
+from collections.abc import Callable
+from contextlib import nullcontext
 from pathlib import Path
 from typing import TYPE_CHECKING, Any, TypeVar
 
 import typer
 
 from collector import __version__
-from collector.cli_help import PlainTyper
-from collector.errors import CollectorError
+from collector.cli_help import PlainTyper, user_errors
+from collector.cli_upkeep import register_upkeep
 from collector.safe_text import for_terminal, one_line
 
 if TYPE_CHECKING:
@@ -38,16 +38,6 @@ app = PlainTyper(
     rich_markup_mode=None,  # click's plain help: no type tags, paragraphs re-flowed
     context_settings={"help_option_names": ["-h", "--help"]},
 )
-
-
-@contextmanager
-def user_errors() -> Iterator[None]:
-    """Turn CollectorError into 'Error: ...' on stderr and the error's exit code."""
-    try:
-        yield
-    except CollectorError as exc:
-        typer.echo(for_terminal(f"Error: {exc}"), err=True)
-        raise typer.Exit(exc.exit_code) from None
 
 
 def _version(value: bool) -> None:
@@ -505,144 +495,5 @@ def demo(
     raise typer.Exit(result.run.exit_code)
 
 
-@app.command()
-def withdraw(
-    folder: Path = typer.Argument(..., help="The collection folder."),
-    what: str = typer.Argument(..., help="An image file, a sha256 prefix (8+ hex digits), "
-                                         "item:ID or key:SOURCE:KEY."),
-    reason: str = typer.Option(..., "--reason", help="creator-request, licence-error, "
-                                                     "personal-data or other."),
-    asked_by: str = typer.Option(None, "--asked-by", help="Who asked for it."),
-    asked_on: str = typer.Option(None, "--asked-on", help="When they asked (YYYY-MM-DD)."),
-    note: str = typer.Option(None, "--note", help="A free-text note kept with it."),
-    delete_bytes: bool = typer.Option(False, "--delete-bytes",
-                                      help="Also delete the stored file (the record stays)."),
-) -> None:
-    """Take a file or item out of every release from now on; gather never fetches it again.
-
-    Example: collector withdraw my-leaves item:42 --reason creator-request --asked-by "R. Moss"
-    """
-    from collector.storage import withdrawals as w
-    from collector.storage.collection import open_collection
-
-    with user_errors():
-        collection = open_collection(folder)
-        with collection.gather_lock(), collection.ledger() as ledger:
-            done = w.withdraw(collection, ledger, what, reason=reason, asked_by=asked_by,
-                              asked_on=asked_on, note=note, delete_bytes=delete_bytes)
-    typer.echo(one_line(f"Withdrawal #{done.id} of {done.target}: {w.describe(done)}"))
-    typer.echo(f"Undo with: collector undo-withdrawal {folder} {done.id}")
-
-
-@app.command("undo-withdrawal")
-def undo_withdrawal(
-    folder: Path = typer.Argument(..., help="The collection folder."),
-    number: int = typer.Argument(..., help="The withdrawal's number (collector withdrawals)."),
-    by: str = typer.Option(None, "--by", help="Who decided to undo it."),
-    note: str = typer.Option(None, "--note", help="Why it is undone."),
-) -> None:
-    """Put a withdrawn file or item back (recorded too); deleted bytes are fetched again.
-
-    Example: collector undo-withdrawal my-leaves 3 --note "asked by mistake"
-    """
-    from collector.storage.collection import open_collection
-    from collector.storage.withdrawals import describe, undo
-
-    with user_errors():
-        collection = open_collection(folder)
-        with collection.gather_lock(), collection.ledger() as ledger:
-            done = undo(ledger, number, undone_by=by, note=note)
-    typer.echo(one_line(f"Withdrawal #{done.id} of {done.target}: {describe(done)}"))
-    if done.bytes_deleted:
-        typer.echo(f"Its bytes were deleted; collector gather {folder} fetches them again")
-
-
-@app.command()
-def withdrawals(
-    folder: Path = typer.Argument(Path("."), help="The collection folder."),
-) -> None:
-    """List every withdrawal, undone ones too.
-
-    Example: collector withdrawals my-leaves
-    """
-    from collector.storage.collection import open_collection
-    from collector.storage.withdrawals import listing
-
-    with user_errors():
-        collection = open_collection(folder)
-        with collection.ledger(readonly=True) as ledger:
-            lines = listing(ledger)
-    for line in lines or ["No withdrawals."]:
-        typer.echo(one_line(line))
-
-
-@app.command()
-def notes(
-    folder: Path = typer.Argument(Path("."), help="The collection folder."),
-    kind: list[str] = typer.Option([], "--kind", help="Only notes of this kind (repeatable)."),
-    source: list[str] = typer.Option([], "--source", help="Only this source (repeatable)."),
-) -> None:
-    """List what the sources reported while listing (blank scans, touching items, ...).
-
-    Example: collector notes my-leaves --kind blank_scan --source scans
-    """
-    from collector.exports.notes import list_notes, note_lines
-    from collector.storage.collection import open_collection
-
-    with user_errors():
-        collection = open_collection(folder)
-        with collection.ledger(readonly=True) as ledger:
-            rows = list_notes(ledger, kinds=tuple(kind), sources=tuple(source))
-    for line in note_lines(rows):
-        typer.echo(one_line(line))
-    typer.echo(f"{len(rows)} note(s)")
-
-
-@app.command("recipe-diff")
-def recipe_diff(
-    folder: Path = typer.Argument(..., help="The collection folder."),
-    first: int = typer.Argument(..., help="A run number."),
-    second: int = typer.Argument(..., help="A later (or earlier) run number."),
-) -> None:
-    """Show how the recipe of one run differs from the recipe of another.
-
-    Example: collector recipe-diff my-leaves 1 4
-    """
-    from collector.exports.recipe_history import recipe_diff as diff
-    from collector.storage.collection import open_collection
-
-    with user_errors():
-        collection = open_collection(folder)
-        with collection.ledger(readonly=True) as ledger:
-            lines = diff(ledger, first, second)
-    for line in lines or [f"Runs #{first} and #{second} used the same recipe."]:
-        typer.echo(for_terminal(line))
-
-
-@app.command()
-def recheck(
-    folder: Path = typer.Argument(Path("."), help="The collection folder."),
-    until: str = typer.Option(None, "--until", metavar="HH:MM",
-                              help="Stop at this local time, e.g. 07:00."),
-    duration: str = typer.Option(None, "--for", metavar="DURATION",
-                                 help="Stop after this long, e.g. 2h."),
-    show_all: bool = typer.Option(False, "--all", help="List unchanged items too."),
-) -> None:
-    """Look again, politely, at what was gathered: licences, fields and image bytes.
-
-    Unchanged images cost a 304 (conditional requests with the stored ETag/Last-Modified);
-    nothing stored is overwritten. Rerunning resumes an unfinished re-check.
-
-    Example: collector recheck my-leaves --for 2h
-    """
-    from collector.run import recheck as rc
-    from collector.run.scheduling import stop_rules
-    from collector.storage.collection import open_collection
-
-    with user_errors():
-        collection = open_collection(folder)
-        stop = stop_rules(collection.recipe(), until=until, duration=duration, max_items=0)
-        result = rc.recheck(collection, stop=stop, options={"until": until, "for": duration})
-    for line in rc.report_lines(result, show_all=show_all):
-        typer.echo(one_line(line))
-    raise typer.Exit(130 if result.outcome == "interrupted" else 0)
+# The upkeep commands (withdraw, re-check, recipe history, notes) live in cli_upkeep.
+register_upkeep(app)

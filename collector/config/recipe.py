@@ -16,12 +16,19 @@ import re
 import tomllib
 from collections.abc import Callable, Mapping
 from dataclasses import MISSING, asdict, dataclass, field, fields, replace
-from datetime import time
 from pathlib import Path
 from typing import Any
 from urllib.parse import urlsplit
 
 from collector.checks.rights_statements import ALLOW_PREFIX, allow_entry_problem
+from collector.config.stop_times import (  # noqa: F401 (re-exported: the recipe's names)
+    StopOptionsError,
+    check_clock,
+    check_duration,
+    check_stop_options,
+    parse_clock,
+    parse_duration,
+)
 from collector.errors import RecipeError, RecipeProblem
 from collector.schema import (
     Check,
@@ -44,7 +51,6 @@ CONTROL_RE = re.compile(r"[\x00-\x1f\x7f]")
 # recipe, and a very deep one would exhaust the parser's recursion (common practice, no source).
 MAX_DEPTH = 16
 EMAIL_RE = re.compile(r"^[^@\s<>]+@[^@\s<>]+\.[^@\s<>]+$")
-DURATION_RE = re.compile(r"^(?:(\d+)h)?\s*(?:(\d+)m)?\s*(?:(\d+)s)?$")
 SPDX_ID_RE = re.compile(r"^[A-Za-z0-9][A-Za-z0-9.+-]*$")
 
 # The default allowlist: public-domain dedications and marks, CC BY and CC BY-SA (unported
@@ -91,43 +97,6 @@ def _check_token(value: Any) -> str | None:
         return (f"must contain only letters, '_' and '-' (RFC 9309 section 2.2.1), "
                 f"got {value!r}")
     return None
-
-
-def _check_clock(value: Any) -> str | None:
-    try:
-        parse_clock(value)
-    except ValueError:
-        return f"must be a local time like \"07:00\" (24-hour HH:MM), got {value!r}"
-    return None
-
-
-def _check_duration(value: Any) -> str | None:
-    try:
-        parse_duration(value)
-    except ValueError:
-        unit = (f'; a number needs a unit: "{value}h" for hours, "{value}m" for minutes'
-                if str(value).strip().isdigit() else "")
-        return f"must be a duration like \"8h\", \"90m\" or \"1h30m\", got {value!r}{unit}"
-    return None
-
-
-class StopOptionsError(RecipeError):
-    """--until, --for or --max-items cannot be read; all problems are listed at once."""
-
-    what = "the command line"
-
-
-def check_stop_options(until: str | None, duration: str | None, max_items: int | None) -> None:
-    """Refuse unreadable --until, --for and --max-items (all at once, worded like the recipe's
-    [stop] keys) before a run or a dry run starts: StopOptionsError, exit 2."""
-    found = [("--until", until, _check_clock), ("--for", duration, _check_duration)]
-    problems = [RecipeProblem(option, "", why) for option, value, check in found
-                if value is not None and (why := check(value))]
-    if max_items is not None and max_items < 0:
-        problems.append(RecipeProblem("--max-items", "",
-                                      f"must be 0 (no limit) or more, got {max_items}"))
-    if problems:
-        raise StopOptionsError(problems)
 
 
 def _check_addresses(values: Any) -> str | None:
@@ -219,30 +188,6 @@ def _depth(data: Any) -> int:
         elif isinstance(value, list):
             stack += [(v, depth + 1) for v in value]
     return deepest
-
-
-def parse_clock(value: str) -> time:
-    """Parse a 24-hour local time "HH:MM"."""
-    match = re.fullmatch(r"(\d{1,2}):(\d{2})", str(value).strip())
-    if not match:
-        raise ValueError(value)
-    hour, minute = int(match[1]), int(match[2])
-    if hour > 23 or minute > 59:  # time() would say "hour must be in 0..23": ours is clearer
-        raise ValueError(value)
-    return time(hour, minute)
-
-
-def parse_duration(value: str) -> float:
-    """Parse "8h", "90m", "1h30m", "45s" into seconds."""
-    text = str(value).strip().lower()
-    match = DURATION_RE.fullmatch(text)
-    if not text or not match or not any(match.groups()):
-        raise ValueError(value)
-    hours, minutes, seconds = (int(g) if g else 0 for g in match.groups())
-    total = hours * 3600 + minutes * 60 + seconds
-    if total <= 0:
-        raise ValueError(value)
-    return float(total)
 
 
 def _setting(default: Any, check: Check | None = None) -> Any:
@@ -345,8 +290,8 @@ class Stop:
     """``[stop]``: when a gather stops on its own ("" and 0 mean never)."""
 
     max_items: int = _setting(0, at_least(0))
-    until: str = _setting("", lambda v: _check_clock(v) if v else None)
-    duration: str = _setting("", lambda v: _check_duration(v) if v else None)
+    until: str = _setting("", lambda v: check_clock(v) if v else None)
+    duration: str = _setting("", lambda v: check_duration(v) if v else None)
 
 
 def _check_tokens(values: Any) -> str | None:
@@ -543,6 +488,19 @@ def _check_sources(raw: Any, problems: Problems, *, by_kind: bool = True) -> lis
     return list(raw)
 
 
+def _check_permission_names(data: Mapping[str, Any], source_list: list[dict],
+                            problems: Problems) -> None:
+    """Each ``[reservations.permission]`` entry names a source of the recipe."""
+    names = [s.get("name") for s in source_list]
+    raw_permission = (data.get("reservations") or {}).get("permission") \
+        if isinstance(data.get("reservations"), dict) else None
+    for name in raw_permission if isinstance(raw_permission, dict) else {}:
+        if name not in names:
+            problems.add(f'reservations.permission."{name}"',
+                         f"names no source{did_you_mean(name, [str(n) for n in names])}; a "
+                         "permission is given per source, by its name")
+
+
 def parse_recipe(text: str, path: Path, *, check_source_kinds: bool = True) -> Recipe:
     """Validate recipe text; raises RecipeError listing every problem.
 
@@ -588,15 +546,7 @@ def parse_recipe(text: str, path: Path, *, check_source_kinds: bool = True) -> R
         problems.add("images.max_aspect", "must be greater than images.min_aspect")
     source_list = (_check_sources(data["sources"], problems, by_kind=check_source_kinds)
                    if "sources" in data else [])
-    names = [s.get("name") for s in source_list]
-    raw_permission = (data.get("reservations") or {}).get("permission") \
-        if isinstance(data.get("reservations"), dict) else None
-    for name in raw_permission if isinstance(raw_permission, dict) else {}:
-        if name not in names:
-            problems.add(f'reservations.permission."{name}"',
-                         f"names no source{did_you_mean(name, [str(n) for n in names])}; a "
-                         "permission is given per source, by its name")
-
+    _check_permission_names(data, source_list, problems)
     if problems:
         raise RecipeError(problems.items)
     return Recipe(

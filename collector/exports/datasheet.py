@@ -49,9 +49,9 @@ from collector.exports.facts import (
     Timeline,
 )
 from collector.safe_text import csv_cell, csv_row
-from collector.storage import queries, upkeep_queries
+from collector.storage import datasheet_queries, upkeep_queries
+from collector.storage.datasheet_queries import Timeframe
 from collector.storage.ledger import Ledger
-from collector.storage.queries import Timeframe
 from collector.storage.safe_paths import link_refused, new_temp_file, own_folder, replace_file
 
 if TYPE_CHECKING:
@@ -61,7 +61,7 @@ if TYPE_CHECKING:
 # number,
 # camera owner's name); "licence_conflict" comes from collector.run.ingest when embedded rights
 # metadata contradicts the declared licence.
-LOCAL_HOST = queries.LOCAL_HOST  # how files read from a local folder are counted by host
+LOCAL_HOST = datasheet_queries.LOCAL_HOST  # how files read from a local folder are counted by host
 PERSONAL_FLAGS = ("gps", "camera_serial", "owner_name")
 CONFLICT_FLAG = "licence_conflict"
 
@@ -83,10 +83,10 @@ ATTRIBUTION_COLUMNS = ("file_name", "title", "author", "source", "licence", "lic
 def _facts(ledger: Ledger, recipe: Recipe, now: str) -> DatasheetFacts:
     """Every number of the datasheet: ledger reads from :mod:`collector.storage.queries`,
     the rest from the recipe."""
-    items = queries.item_facts(ledger)
-    acc = queries.accepted_facts(ledger)
-    frame = queries.timeframe(ledger)
-    missing = queries.missing_facts(ledger)
+    items = datasheet_queries.item_facts(ledger)
+    acc = datasheet_queries.accepted_facts(ledger)
+    frame = datasheet_queries.timeframe(ledger)
+    missing = datasheet_queries.missing_facts(ledger)
     return {
         "generated_at": now, "tool_version": __version__, "distribution": DISTRIBUTION,
         "collection": {"name": recipe.collection.name,
@@ -94,26 +94,27 @@ def _facts(ledger: Ledger, recipe: Recipe, now: str) -> DatasheetFacts:
                        "curator": recipe.collection.curator,
                        "contact": recipe.contact, "product_token": recipe.product_token},
         "items": items, "accepted": acc, "missing": missing,
-        "flags": queries.flag_counts(ledger),
-        "flagged": queries.flagged_facts(ledger, PERSONAL_FLAGS, CONFLICT_FLAG),
+        "flags": datasheet_queries.flag_counts(ledger),
+        "flagged": datasheet_queries.flagged_facts(ledger, PERSONAL_FLAGS, CONFLICT_FLAG),
         "duplicates": {
             "exact": items["by_state"].get("duplicate", 0), "near_kept": acc["near_kept"],
-            "near_dropped": queries.near_dropped(ledger),
+            "near_dropped": datasheet_queries.near_dropped(ledger),
             "policy": recipe.images.near_duplicates,
             "near_distance": recipe.images.near_distance,
         },
         "licences": [_licence_facts(spdx, n) for spdx, n in acc["by_licence"].items()],
         "timeframe": frame,
         "picture_dates": _picture_dates(ledger, acc["files"] - missing["no_date"]),
-        "requests": queries.request_facts(ledger),
-        "hosts": queries.host_facts(ledger), "host_sources": queries.host_sources(ledger),
+        "requests": datasheet_queries.request_facts(ledger),
+        "hosts": datasheet_queries.host_facts(ledger),
+        "host_sources": datasheet_queries.host_sources(ledger),
         "resolution_bins": _resolution_bins(ledger, acc["width"]["max"], acc["height"]["max"]),
         "timeline": _timeline(ledger, frame),
         "sources": [{"name": s.name, "kind": s.kind, "items": s.items, "accepted": s.accepted,
                      **_kind_facts(s.kind), "where": _where(recipe, s.name)}
-                    for s in queries.source_counts(ledger)],
-        "runs": queries.run_facts(ledger),
-        "notes": queries.note_counts(ledger),
+                    for s in datasheet_queries.source_counts(ledger)],
+        "runs": datasheet_queries.run_facts(ledger),
+        "notes": datasheet_queries.note_counts(ledger),
         "reservations": reservation_summary(ledger, recipe),
         "policy": {
             "budgets": {k: getattr(recipe.budgets, k) for k in (
@@ -144,7 +145,7 @@ def _kind_facts(kind: str) -> _KindFacts:
 
 
 def _picture_dates(ledger: Ledger, dated: int) -> PictureDates:
-    earliest, latest = queries.picture_dates(ledger)
+    earliest, latest = datasheet_queries.picture_dates(ledger)
     return {"earliest": earliest, "latest": latest, "dated": dated}
 
 
@@ -174,7 +175,7 @@ def _resolution_bins(ledger: Ledger, max_w: int | None, max_h: int | None) -> Re
     step = 1
     while top / step > 30:
         step *= 2
-    return {"step": step, "cells": queries.resolution_cells(ledger, step)}
+    return {"step": step, "cells": datasheet_queries.resolution_cells(ledger, step)}
 
 
 def _timeline(ledger: Ledger, frame: Timeframe) -> Timeline:
@@ -192,13 +193,13 @@ def _timeline(ledger: Ledger, frame: Timeframe) -> Timeline:
             unit, width = "minute", 16
         elif span is not None and span.total_seconds() <= 4 * 86400:
             unit, width = "hour", 13
-    by_host = queries.requests_per_host(ledger, width)
+    by_host = datasheet_queries.requests_per_host(ledger, width)
     requests: dict[str, int] = {}
     for counts in by_host.values():  # the totals from the per-host counts: one query less
         for slot, n in counts.items():
             requests[slot] = requests.get(slot, 0) + n
     return {"unit": unit, "requests": dict(sorted(requests.items())),
-            "stored": queries.stored_per(ledger, width), "by_host": by_host}
+            "stored": datasheet_queries.stored_per(ledger, width), "by_host": by_host}
 
 
 # --- the release: CSVs and images ------------------------------------------------------------
@@ -255,7 +256,7 @@ def _policy_rows(ledger: Ledger, recipe: Recipe, counts: ReleaseCounts, *,
                  exclude_flagged: bool) -> Iterator[dict[str, Any]]:
     """The accepted files that pass the licence policy (and the flag filter)."""
     allowed_cache: dict[str | None, bool] = {}
-    for r in queries.release_rows(ledger):
+    for r in datasheet_queries.release_rows(ledger):
         (sha, ext, mime, fmt, width, height, size, flags_json, stored_at, source, key,
          page_url, image_url, title, creator, licence_raw, spdx, licence_url, fetched_at,
          statement, state, item_date, metadata, parent_sha256) = r

@@ -12,7 +12,7 @@ from typing import Any
 from collector.checks.reservations import FILE_CHECKS, PAGE_CHECKS, RESERVATION_REASONS
 from collector.config.recipe import Recipe
 from collector.exports.facts import DatasheetFacts, ReservationSummary
-from collector.storage import queries
+from collector.storage import datasheet_queries
 from collector.storage.ledger import Ledger
 
 Block = tuple[Any, ...]
@@ -23,7 +23,7 @@ CAUTION = ("Honouring reservations against text-and-data mining is a good-faith 
 
 def reservation_summary(ledger: Ledger, recipe: Recipe) -> ReservationSummary:
     """The reservation facts of a collection."""
-    found = queries.reservation_facts(ledger, RESERVATION_REASONS)
+    found = datasheet_queries.reservation_facts(ledger, RESERVATION_REASONS)
     tokens = list(recipe.reservations.robots_tokens)
     checked = [*PAGE_CHECKS, *FILE_CHECKS]
     if tokens:

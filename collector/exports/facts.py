@@ -10,7 +10,7 @@ from __future__ import annotations
 
 from typing import Any, NotRequired, TypedDict
 
-from collector.storage.queries import (
+from collector.storage.datasheet_queries import (
     AcceptedFacts,
     FlaggedFacts,
     HostFacts,

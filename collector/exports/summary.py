@@ -17,7 +17,7 @@ from collector import sources
 from collector.checks.reservations import RESERVATION_REASONS
 from collector.config.recipe import Recipe
 from collector.errors import CollectorError
-from collector.storage import queries
+from collector.storage import datasheet_queries, queries
 from collector.storage.ledger import Ledger
 from collector.urls import host_key
 
@@ -57,8 +57,8 @@ class Summary:
     run_seconds: float = 0.0  # all runs together
     last_run_seconds: float | None = None
     origins: list[queries.FileOrigin] = field(default_factory=list)
-    reservations: queries.ReservationFacts = field(
-        default_factory=lambda: queries.ReservationFacts((), (), (), ()))
+    reservations: datasheet_queries.ReservationFacts = field(
+        default_factory=lambda: datasheet_queries.ReservationFacts((), (), (), ()))
 
     @property
     def total_items(self) -> int:
@@ -83,7 +83,7 @@ def summarise(ledger: Ledger) -> Summary:
         for flag in json.loads(flags):
             s.flags[flag.split(":", 1)[0]] += 1
     s.notes.update(dict(t.notes))
-    s.reservations = queries.reservation_facts(ledger, RESERVATION_REASONS)
+    s.reservations = datasheet_queries.reservation_facts(ledger, RESERVATION_REASONS)
     return s
 
 
@@ -194,7 +194,7 @@ def files_lines(s: Summary) -> list[str]:
     return ["files: " + " + ".join(kinds) + "; " + ", ".join(where)]
 
 
-def format_reservations(r: queries.ReservationFacts) -> list[str]:
+def format_reservations(r: datasheet_queries.ReservationFacts) -> list[str]:
     """What status says about reservations against text-and-data mining (none: nothing)."""
     lines: list[str] = []
     if r.signals:

@@ -307,8 +307,7 @@ class Ledger:
         return self._columns(table)
 
     def has_table(self, table: str) -> bool:
-        """Whether the ledger has ``table`` (tables of newer migrations are absent from a
-        ledger opened read-only before the migration ran)."""
+        """Whether the ledger has ``table`` (absent before its migration ran)."""
         return table in self._tables()
 
     def _columns(self, table: str) -> frozenset[str]:
@@ -429,10 +428,9 @@ class Ledger:
         return {r["sha256"] for r in self.query(
             "SELECT sha256 FROM files WHERE removed_at IS NULL")}
 
-    # -- upkeep: withdrawals, recipe texts, re-check observations (schema 4) -----------------
+    # -- upkeep: withdrawals, recipe texts, re-check observations (schema 7) -----------------
     def add_row(self, table: str, row: dict[str, Any]) -> int:
-        """Append one row to ``withdrawals``, ``observations`` or ``recipes`` (a recipe
-        text already known by its sha256 is kept as it is); returns its id."""
+        """Append a row to withdrawals, observations or recipes (a known recipe is kept)."""
         if table not in ("withdrawals", "observations", "recipes"):
             raise LedgerError(f"add_row does not write to {table}")
         return self._insert(table, row, ignore=table == "recipes")
@@ -454,8 +452,7 @@ class Ledger:
 
     def last_contact(self, host: str) -> str | None:
         """When the latest request to ``host`` ended (ISO 8601 UTC), in any run, or None."""
-        value = self.scalar("SELECT max(ended_at) FROM fetches WHERE host = ?", (host,))
-        return str(value) if value else None
+        return self.scalar("SELECT max(ended_at) FROM fetches WHERE host = ?", (host,)) or None
 
     def put_host(self, host: str, **fields: Any) -> None:
         """Insert or update a host's row."""
