@@ -289,7 +289,7 @@ class Ingest:
         """Look up the stored look-alikes of a new file and let dedup decide."""
         near = [m for m in self.index.nearest(facts.phash, facts.phash_mirror,
                                               self.recipe.images.near_distance)
-                if m.sha256 != sha]
+                if m.sha256 != sha and "blank" not in facts.flags]  # blank: no shape to match
         candidates = []
         for m in near:
             first = (self.ledger.file(m.sha256) or {}).get("first_item_id")

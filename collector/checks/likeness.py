@@ -1,0 +1,216 @@
+"""The second look: is a pHash candidate really the same picture, turned, or cropped?
+
+The 64-bit pHash (:mod:`collector.checks.phash`) finds candidates fast, but 64 bits of
+"brighter or darker than the median" can agree by chance. Before anything is reported as
+*probably* a copy, the two pictures themselves are compared by a check of another kind: the
+Pearson correlation of small greyscale thumbnails (32x32, LANCZOS), after turning the stored
+picture the way the pHash said the copy was turned. Correlation looks at every grey level,
+not at 64 signs, so the two checks fail on different pairs (bench/trace_quality.py measures
+both together).
+
+Crops: a copy that keeps each side >= 80 % of the original moves the low frequencies too much
+for pHash (median distance 12 bits at 90 %, 22 at 80 %, measured with bench/trace_quality.py's
+pictures), so for crops the pHash only preselects the closest few stored pictures within a
+loose radius, and the second look searches the crop box: for box widths of 78..98 % of the
+stored picture (the height follows from the two aspect ratios), at every position of a
+32-pixel grid, the best correlation of the box with the query decides.
+
+Thresholds are our own, set on bench/trace_quality.py (common practice, no source); the bench
+prints the scores of true and false pairs so they can be re-checked.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable, Iterable
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+from PIL import Image
+
+from collector.checks.phash import ORIENTATION_TRANSPOSE, dct_block, featureless, turned_hashes
+from collector.checks.pixels import hash_ready, is_blank
+
+__all__ = [
+    "CONFIRM_MIN",
+    "CROP_CONFIRM_MIN",
+    "Confirmed",
+    "Look",
+    "confirm",
+    "look_at",
+    "look_at_file",
+    "second_look",
+]
+
+_SIDE = 32  # the compared thumbnail, as the pHash grid
+_KEEP = 128  # the stored picture's thumbnail the crop box is searched in
+# Correlation a turned/resized/re-encoded copy must reach (bench/trace_quality.py: true pairs
+# 0.97 and up, the closest unrelated pairs that passed the pHash stage stay below 0.8).
+CONFIRM_MIN = 0.90
+# The crop search tries many boxes, so chance agreement is likelier: a higher bar.
+CROP_CONFIRM_MIN = 0.93
+_CROP_WIDTHS = (0.78, 0.82, 0.86, 0.90, 0.94, 0.98)
+_T = Image.Transpose
+# How each turn of phash.TURNS is made from the original (Pillow transposes).
+_MAKE: dict[str, tuple[Image.Transpose, ...]] = {
+    "same": (),
+    "mirror": (_T.FLIP_LEFT_RIGHT,),
+    "rotate180": (_T.ROTATE_180,),
+    "rotate180+mirror": (_T.ROTATE_180, _T.FLIP_LEFT_RIGHT),
+    "rotate90": (_T.ROTATE_90,),
+    "rotate270": (_T.ROTATE_270,),
+    "rotate90+mirror": (_T.ROTATE_90, _T.FLIP_LEFT_RIGHT),
+    "rotate270+mirror": (_T.ROTATE_270, _T.FLIP_LEFT_RIGHT),
+}
+
+
+@dataclass(frozen=True)
+class Look:
+    """What the second look needs of one picture: its hashes for the 8 turns, whether it is
+    blank, its size as displayed and a 128x128 float thumbnail (aspect not kept)."""
+
+    turns: dict[str, int]
+    blank: bool
+    size: tuple[int, int]
+    thumb: Image.Image  # mode F, 0..255
+
+    @property
+    def phash(self) -> int:
+        """The pHash of the picture as it is."""
+        return self.turns["same"]
+
+    @property
+    def comparable(self) -> bool:
+        """False for a blank or featureless picture: it is never a copy of anything."""
+        return not self.blank and not featureless(self.phash)
+
+
+def look_at(im: Image.Image) -> Look:
+    """The Look of an upright picture (any mode)."""
+    grey = hash_ready(im)
+    thumb = grey.convert("F").resize((_KEEP, _KEEP), Image.Resampling.LANCZOS)
+    return Look(turned_hashes(dct_block(grey)), is_blank(grey), grey.size, thumb)
+
+
+def look_at_file(path: Path | str) -> Look:
+    """The Look of an image file: first frame, EXIF orientation applied, JPEG draft decode."""
+    with Image.open(path) as im:
+        orientation = int(im.getexif().get(0x0112, 1) or 1)
+        if im.format == "JPEG":
+            im.draft("L", (_KEEP * 2, _KEEP * 2))
+        grey = hash_ready(im)
+        method = ORIENTATION_TRANSPOSE.get(orientation)
+        return look_at(grey.transpose(method) if method is not None else grey)
+
+
+def _small(im: Image.Image, box: tuple[float, float, float, float] | None = None) -> np.ndarray:
+    return np.asarray(im.resize((_SIDE, _SIDE), Image.Resampling.LANCZOS, box=box),
+                      dtype=np.float64)
+
+
+def _correlation(a: np.ndarray, b: np.ndarray) -> float:
+    a = a - a.mean()
+    b = b - b.mean()
+    denominator = float(np.sqrt((a * a).sum() * (b * b).sum()))
+    return float((a * b).sum() / denominator) if denominator > 1e-9 else 0.0
+
+
+def turned(stored: Look, turn: str) -> Image.Image:
+    """The stored thumbnail turned the way the copy was."""
+    im = stored.thumb
+    for step in _MAKE[turn]:
+        im = im.transpose(step)
+    return im
+
+
+def same_picture(query: Look, stored: Look, turn: str) -> float:
+    """Correlation of the query with the stored picture turned by ``turn``."""
+    return _correlation(_small(query.thumb), _small(turned(stored, turn)))
+
+
+def crop_score(query: Look, stored: Look) -> tuple[float, tuple[float, float, float, float]]:
+    """The best correlation of the query with a box of the stored picture, and the box
+    (fractions of the stored picture: left, top, right, bottom).
+
+    For each box width the stored thumbnail is resized so that the box becomes 32x32, then
+    every 32x32 window is compared at once (numpy sliding windows)."""
+    target = _small(query.thumb)
+    target = (target - target.mean()).ravel()
+    t_norm = float(np.sqrt((target * target).sum()))
+    qw, qh = query.size
+    sw, sh = stored.size
+    best, best_box = -1.0, (0.0, 0.0, 1.0, 1.0)
+    if t_norm < 1e-9 or not (qw and qh and sw and sh):
+        return best, best_box
+    for fw in _CROP_WIDTHS:
+        fh = fw * (sw / sh) / (qw / qh)
+        if not 0.7 <= fh <= 1.0:
+            continue
+        w, h = round(_SIDE / fw), round(_SIDE / fh)
+        big = np.asarray(stored.thumb.resize((w, h), Image.Resampling.LANCZOS), np.float64)
+        windows = np.lib.stride_tricks.sliding_window_view(big, (_SIDE, _SIDE))
+        flat = windows.reshape(*windows.shape[:2], -1)
+        flat = flat - flat.mean(axis=2, keepdims=True)
+        norms = np.sqrt((flat * flat).sum(axis=2)) * t_norm
+        scores = np.where(norms > 1e-9, flat @ target / np.maximum(norms, 1e-9), 0.0)
+        y, x = np.unravel_index(int(np.argmax(scores)), scores.shape)
+        if scores[y, x] > best:
+            best = float(scores[y, x])
+            best_box = (x / w, y / h, (x + _SIDE) / w, (y + _SIDE) / h)
+    return best, best_box
+
+
+def second_look(query: Look, stored: Look, kind: str) -> float:
+    """The correlation score for a candidate of this kind (a turn, or "crop")."""
+    if kind == "crop":
+        return crop_score(query, stored)[0]
+    return same_picture(query, stored, kind)
+
+
+def _decide(query: Look, stored: Look, kind: str) -> tuple[str, float]:
+    """(kind, score) when the second look agrees, ("", score) when it does not. An upright
+    candidate that does not line up whole may still be a crop: the crop search decides, and
+    a box clearly smaller than the picture makes it a crop."""
+    if kind == "crop":
+        score = crop_score(query, stored)[0]
+        return ("crop" if score >= CROP_CONFIRM_MIN else ""), score
+    score = same_picture(query, stored, kind)
+    if kind == "same":
+        cropped, box = crop_score(query, stored)
+        smaller = box[2] - box[0] < 0.97 or box[3] - box[1] < 0.97
+        if smaller and cropped >= CROP_CONFIRM_MIN and cropped > score + 0.01:
+            return "crop", cropped
+    return (kind if score >= CONFIRM_MIN else ""), score
+
+
+@dataclass(frozen=True)
+class Confirmed:
+    """A candidate the second look agreed with."""
+
+    key: str
+    distance: int  # pHash bits between the query (turned back) and the stored picture
+    kind: str  # "same" | a turn of phash.TURNS | "crop"
+    score: float  # the thumbnail correlation
+
+
+def confirm(query: Look, candidates: Iterable[tuple[str, int, str]],
+            load: Callable[[str], Look | None], *, limit: int = 5) -> list[Confirmed]:
+    """Keep the candidates (key, distance, turn or "crop") the second look agrees with,
+    best first; ``load`` gives a stored picture's Look (None: unreadable, skipped)."""
+    if not query.comparable:
+        return []
+    found: list[Confirmed] = []
+    seen: set[str] = set()
+    for key, distance, kind in candidates:
+        if key in seen:
+            continue
+        stored = load(key)
+        if stored is None or not stored.comparable:
+            continue
+        kind, score = _decide(query, stored, kind)
+        if kind:
+            seen.add(key)
+            found.append(Confirmed(key, distance, kind, round(score, 3)))
+            if len(found) >= limit:
+                break
+    return found
