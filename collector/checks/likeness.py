@@ -21,6 +21,7 @@ prints the scores of true and false pairs so they can be re-checked.
 
 from __future__ import annotations
 
+import struct
 from collections.abc import Callable, Iterable
 from dataclasses import dataclass
 from pathlib import Path
@@ -34,6 +35,7 @@ from collector.checks.pixels import hash_ready, is_blank
 __all__ = [
     "CONFIRM_MIN",
     "CROP_CONFIRM_MIN",
+    "IMAGE_ERRORS",
     "Confirmed",
     "Look",
     "confirm",
@@ -42,6 +44,9 @@ __all__ = [
     "second_look",
 ]
 
+# What Pillow raises on a file it cannot decode (as collector.checks.images handles them).
+IMAGE_ERRORS = (OSError, SyntaxError, ValueError, EOFError, IndexError, TypeError,
+                struct.error, Image.DecompressionBombError)
 _SIDE = 32  # the compared thumbnail, as the pHash grid
 _KEEP = 128  # the stored picture's thumbnail the crop box is searched in
 # Correlation a turned/resized/re-encoded copy must reach (bench/trace_quality.py: true pairs
