@@ -298,6 +298,30 @@ def test_a_mirrored_copy_traces_as_near_and_says_mirrored(built: Built, tmp_path
     assert f"probably a mirrored copy of {built.shas['FH-005'][:12]}" in result.output
 
 
+def test_rotated_and_cropped_copies_say_so(built: Built, tmp_path: Path) -> None:
+    """A copy turned 90 degrees, one turned 180 degrees and mirrored, and one cropped to 85 %
+    of each side trace to their original with the words of issue 14 ("probably a rotated
+    copy of", "probably a cropped copy of"); the second look's score is shown."""
+    picture = built.pictures["FH-005"]
+    w, h = picture.size
+    copies = {
+        "turned.jpg": (picture.transpose(Image.Transpose.ROTATE_90),
+                       "probably a rotated copy of", " (turned 90 degrees counter-clockwise"),
+        "flipped.jpg": (picture.transpose(Image.Transpose.ROTATE_180).transpose(
+            Image.Transpose.FLIP_LEFT_RIGHT), "probably a rotated and mirrored copy of",
+            " (turned 180 degrees counter-clockwise, then mirrored)"),
+        "cropped.jpg": (picture.crop((int(w * 0.1), int(h * 0.05), int(w * 0.95),
+                                      int(h * 0.9))), "probably a cropped copy of", ""),
+    }
+    for name, (im, words, turn) in copies.items():
+        im.save(tmp_path / name, quality=85)
+        result = runner.invoke(app, ["trace", str(tmp_path / name), "--in", str(built.root)])
+        assert result.exit_code == 0, (name, result.output)
+        first = result.output.splitlines()[0]
+        assert f"{words} {built.shas['FH-005'][:12]}{turn}" in first, first
+        assert "thumbnails agree at" in first and "not certain" in first
+
+
 def test_an_unrelated_image_gives_no_match_and_exit_1(built: Built, tmp_path: Path) -> None:
     """A picture the collection never stored is reported plainly as untraced, exit 1."""
     path = tmp_path / "stranger.png"
