@@ -4,7 +4,10 @@ The 64-bit pHash (:mod:`collector.checks.phash`) finds candidates fast, but 64 b
 "brighter or darker than the median" can agree by chance. Before anything is reported as
 *probably* a copy, the two pictures themselves are compared by a check of another kind: the
 Pearson correlation of small greyscale thumbnails (32x32, LANCZOS), after turning the stored
-picture the way the pHash said the copy was turned. Correlation looks at every grey level,
+picture the way the pHash said the copy was turned; and the correlation of their fine detail
+(first differences along both axes), which two different pictures on similar smooth
+backgrounds cannot fake (a gradient dominates a plain correlation: 4 of 100 unrelated
+pictures of bench/trace.py passed 0.93 on it alone). Correlation looks at every grey level,
 not at 64 signs, so the two checks fail on different pairs (bench/trace_quality.py measures
 both together).
 
@@ -13,7 +16,8 @@ for pHash (median distance 12 bits at 90 %, 22 at 80 %, measured with bench/trac
 pictures), so for crops the pHash only preselects the closest few stored pictures within a
 loose radius, and the second look searches the crop box: for box widths of 78..98 % of the
 stored picture (the height follows from the two aspect ratios), at every position of a
-32-pixel grid, the best correlation of the box with the query decides.
+32-pixel grid, the best correlation of the box with the query is taken, and its detail must
+agree too.
 
 Thresholds are our own, set on bench/trace_quality.py (common practice, no source); the bench
 prints the scores of true and false pairs so they can be re-checked.
@@ -35,10 +39,13 @@ from collector.checks.pixels import hash_ready, is_blank
 __all__ = [
     "CONFIRM_MIN",
     "CROP_CONFIRM_MIN",
+    "CROP_DETAIL_MIN",
+    "DETAIL_MIN",
     "IMAGE_ERRORS",
     "Confirmed",
     "Look",
     "confirm",
+    "detail_agreement",
     "look_at",
     "look_at_file",
     "second_look",
@@ -54,6 +61,12 @@ _KEEP = 128  # the stored picture's thumbnail the crop box is searched in
 CONFIRM_MIN = 0.90
 # The crop search tries many boxes, so chance agreement is likelier: a higher bar.
 CROP_CONFIRM_MIN = 0.93
+# Correlation alone is fooled by two different pictures on similar smooth backgrounds (a
+# gradient dominates the sum): the fine detail (first differences of the thumbnail, along
+# both axes) must agree too. bench/trace_quality.py: true copies 0.98 and up, true crops 0.69
+# and up; the unrelated pairs that passed correlation 0.15..0.45.
+DETAIL_MIN = 0.90
+CROP_DETAIL_MIN = 0.60
 _CROP_WIDTHS = (0.78, 0.82, 0.86, 0.90, 0.94, 0.98)
 _T = Image.Transpose
 # How each turn of phash.TURNS is made from the original (Pillow transposes).
@@ -172,20 +185,45 @@ def second_look(query: Look, stored: Look, kind: str) -> float:
     return same_picture(query, stored, kind)
 
 
+def _detail(a: np.ndarray) -> np.ndarray:
+    return np.concatenate([np.diff(a, axis=0).ravel(), np.diff(a, axis=1).ravel()])
+
+
+def detail_agreement(query: Look, stored: Look, kind: str,
+                     box: tuple[float, float, float, float] | None = None) -> float:
+    """Correlation of the fine detail (first differences) of the query and of the stored
+    picture, turned by ``kind`` or cut to ``box`` (fractions) for a crop."""
+    if box is not None:
+        k = _KEEP
+        other = _small(stored.thumb, (box[0] * k, box[1] * k, box[2] * k, box[3] * k))
+    else:
+        other = _small(turned(stored, kind))
+    return _correlation(_detail(_small(query.thumb)), _detail(other))
+
+
+def _crop_agrees(query: Look, stored: Look) -> tuple[bool, float, bool]:
+    """(agrees, score, box clearly smaller than the picture) of the crop search."""
+    score, box = crop_score(query, stored)
+    smaller = box[2] - box[0] < 0.97 or box[3] - box[1] < 0.97
+    ok = (score >= CROP_CONFIRM_MIN
+          and detail_agreement(query, stored, "crop", box) >= CROP_DETAIL_MIN)
+    return ok, score, smaller
+
+
 def _decide(query: Look, stored: Look, kind: str) -> tuple[str, float]:
-    """(kind, score) when the second look agrees, ("", score) when it does not. An upright
-    candidate that does not line up whole may still be a crop: the crop search decides, and
-    a box clearly smaller than the picture makes it a crop."""
+    """(kind, score) when the second look agrees, ("", score) when it does not: the
+    thumbnails must correlate and so must their fine detail. An upright candidate that
+    lines up better with a box clearly smaller than the picture is a crop."""
     if kind == "crop":
-        score = crop_score(query, stored)[0]
-        return ("crop" if score >= CROP_CONFIRM_MIN else ""), score
+        ok, score, _ = _crop_agrees(query, stored)
+        return ("crop" if ok else ""), score
     score = same_picture(query, stored, kind)
     if kind == "same":
-        cropped, box = crop_score(query, stored)
-        smaller = box[2] - box[0] < 0.97 or box[3] - box[1] < 0.97
-        if smaller and cropped >= CROP_CONFIRM_MIN and cropped > score + 0.01:
+        ok, cropped, smaller = _crop_agrees(query, stored)
+        if ok and smaller and cropped > score + 0.01:
             return "crop", cropped
-    return (kind if score >= CONFIRM_MIN else ""), score
+    ok = score >= CONFIRM_MIN and detail_agreement(query, stored, kind) >= DETAIL_MIN
+    return (kind if ok else ""), score
 
 
 @dataclass(frozen=True)
