@@ -14,7 +14,8 @@ then collector.checks.likeness.confirm) about:
 It prints recall per copy kind (the right original found, confirmed, and the kind the second
 look named) and the false matches (an unrelated picture confirmed as a copy of anything),
 with the lowest second-look score of a found copy so the thresholds can be re-checked.
-Targets (issue 14): recall >= 99 % for resize, re-encode, mirror and rotations, >= 90 % for crops to 90 %, >= 80 % for crops to 80 %; 0 false matches.
+Targets (issue 14): recall >= 99 % for resize, re-encode, mirror and rotations, >= 90 % for
+crops to 90 %, >= 80 % for crops to 80 %; 0 false matches.
 
 Run: .venv/bin/python bench/trace_quality.py [--originals 500] [--unrelated 10000]
 """
