@@ -3,8 +3,8 @@
 Generates originals of varied content (smooth noise fields in colour, shapes on gradients,
 textures, 16-bit greyscale scans, pictures on a transparent background), stores their pHash
 the way ingest does (collector.checks.phash.hash_image_file) in an in-memory HashIndex, and
-asks the same two-stage search `collector trace` uses (collector.storage.hashindex.scan_turns,
-then collector.checks.likeness.confirm) about:
+asks the same two-stage search `collector trace` uses (collector.checks.likeness.find_copies
+over collector.storage.hashindex.scan_turns) about:
 
 - copies of each original: resize to 50 % and 25 %, JPEG quality 40, WebP, PNG re-encode,
   mirror, rotate 90/180/270, rotate 90 + mirror, crop to 90 % and 80 % per side (at a random
@@ -41,7 +41,7 @@ from collector.checks.likeness import (
     CROP_DETAIL_MIN,
     DETAIL_MIN,
     Look,
-    confirm,
+    find_copies,
     look_at,
     look_at_file,
 )
@@ -215,9 +215,16 @@ def search(index: HashIndex, looks: dict[str, Look], query: Look,
     pHash stage offered."""
     if not query.comparable:
         return [], 0
-    candidates = index.candidates(query.turns, NEAR)
-    found = confirm(query, candidates, looks.get)
-    return [(c.key, c.kind, c.score) for c in found], len(candidates)
+    offered = 0
+
+    def candidates(turns: dict[str, int], crops: bool) -> list[tuple[str, int, str]]:
+        nonlocal offered
+        found = index.candidates(turns, NEAR, crops)
+        offered += len(found)
+        return found
+
+    found = find_copies(query, candidates, looks.get)
+    return [(c.key, c.kind, c.score) for c in found], offered
 
 
 def measure_copies(index: HashIndex, looks: dict[str, Look], pictures: list[Image.Image],

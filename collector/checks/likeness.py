@@ -46,6 +46,7 @@ __all__ = [
     "Look",
     "confirm",
     "detail_agreement",
+    "find_copies",
     "look_at",
     "look_at_file",
     "second_look",
@@ -257,3 +258,21 @@ def confirm(query: Look, candidates: Iterable[tuple[str, int, str]],
             if len(found) >= limit:
                 break
     return found
+
+
+Candidates = Callable[[dict[str, int], bool], list[tuple[str, int, str]]]
+
+
+def find_copies(query: Look, candidates: Candidates, load: Callable[[str], Look | None],
+                *, limit: int = 5) -> list[Confirmed]:
+    """Confirmed copies of the query among stored pictures, best first, in two rounds:
+    upright and mirrored first (2 scans of the hashes; most copies end here), then, only
+    when none is confirmed, the six rotations and the crop candidates (8 scans).
+    ``candidates(turns, crops)`` is the index's ``candidates`` with its radius bound."""
+    if not query.comparable:
+        return []
+    upright = {turn: query.turns[turn] for turn in ("same", "mirror")}
+    found = confirm(query, candidates(upright, False), load, limit=limit)
+    if found:
+        return found
+    return confirm(query, candidates(query.turns, True), load, limit=limit)

@@ -33,7 +33,7 @@ from typing import Any
 
 from collector.checks.images import sniff_format
 from collector.checks.licences import licence_allowed, licence_deed_url
-from collector.checks.likeness import Look, confirm, look_at_file
+from collector.checks.likeness import Look, find_copies, look_at_file
 from collector.errors import CollectorError
 from collector.exports.trace_format import attribution_line, recovered_words
 from collector.storage import queries
@@ -418,8 +418,10 @@ class Tracer:
             result.note = ("its picture is blank or too plain (a flat fill or a smooth "
                            "gradient) to compare by look, and no stored file has these bytes")
             return
-        candidates = self.hashes.candidates(look.turns, self.near_distance)
-        for found in confirm(look, candidates, self._stored_look):
+        def candidates(turns: dict[str, int], crops: bool) -> list[tuple[str, int, str]]:
+            return self.hashes.candidates(turns, self.near_distance, crops)
+
+        for found in find_copies(look, candidates, self._stored_look):
             record = self.lookup_exact(found.key)
             if record is not None:
                 result.near.append(NearCandidate(found.distance, "mirror" in found.kind,

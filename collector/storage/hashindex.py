@@ -64,9 +64,10 @@ def scan_turns(hashes: np.ndarray, turns: dict[str, int], max_distance: int,
                crop_distance: int = CROP_DISTANCE,
                crop_keep: int = CROP_KEEP) -> list[tuple[int, int, str]]:
     """Candidates for the second look, as (row, distance, kind): every row within
-    ``max_distance`` of one of the query's 8 turned hashes (kind: the turn, closest turn
-    first), then the ``crop_keep`` closest rows within ``crop_distance`` of the upright hash
-    (kind "crop") that are not candidates already. Closest first within each group.
+    ``max_distance`` of one of the query's turned hashes (``turns``: some or all of the 8 of
+    collector.checks.phash.TURNS; kind: the turn, closest first), then the ``crop_keep``
+    closest rows within ``crop_distance`` of the upright hash (kind "crop") that are not
+    candidates already.
 
     One XOR and popcount pass per turn over every stored hash (about 0.5 ms per pass at
     1,000,000 hashes, bench/trace.py)."""
@@ -86,7 +87,7 @@ def scan_turns(hashes: np.ndarray, turns: dict[str, int], max_distance: int,
             loose = np.flatnonzero((distances > max_distance) & (distances <= crop_distance))
     near = sorted(((row, d, turn) for row, (d, turn) in best.items()),
                   key=lambda f: (f[1], f[2] != "same", f[0]))
-    if upright is None or not len(loose):
+    if upright is None or not len(loose) or crop_keep <= 0:
         return near
     if len(loose) > crop_keep:  # the closest few, without sorting every loose row
         loose = loose[np.argpartition(upright[loose], crop_keep)[:crop_keep]]
@@ -149,12 +150,14 @@ class HashIndex:
                        if (key := keys[row]) is not None]  # None: removed
         return sorted(matches, key=lambda m: (m.distance, m.mirrored, m.sha256))
 
-    def candidates(self, turns: dict[str, int], max_distance: int) -> list[tuple[str, int, str]]:
+    def candidates(self, turns: dict[str, int], max_distance: int,
+                   crops: bool = True) -> list[tuple[str, int, str]]:
         """(sha256, distance, kind) for the second look (see :func:`scan_turns`)."""
         with self._lock:
             hashes = self._hashes[: self._count]
             keys = self._keys
-            found = scan_turns(hashes, turns, max_distance)
+            found = scan_turns(hashes, turns, max_distance,
+                               crop_keep=CROP_KEEP if crops else 0)
             return [(key, d, kind) for row, d, kind in found if (key := keys[row]) is not None]
 
 
@@ -225,10 +228,12 @@ class HashFile:
         return [NearMatch(self.keys[row].tobytes().hex(), distance, mirrored)
                 for row, distance, mirrored in found]
 
-    def candidates(self, turns: dict[str, int], max_distance: int) -> list[tuple[str, int, str]]:
+    def candidates(self, turns: dict[str, int], max_distance: int,
+                   crops: bool = True) -> list[tuple[str, int, str]]:
         """(sha256, distance, kind) for the second look (see :func:`scan_turns`)."""
-        return [(self.keys[row].tobytes().hex(), d, kind)
-                for row, d, kind in scan_turns(self.hashes, turns, max_distance)]
+        found = scan_turns(self.hashes, turns, max_distance,
+                           crop_keep=CROP_KEEP if crops else 0)
+        return [(self.keys[row].tobytes().hex(), d, kind) for row, d, kind in found]
 
     # -- opening -----------------------------------------------------------------------------
     @classmethod
