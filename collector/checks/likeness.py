@@ -69,6 +69,9 @@ CROP_CONFIRM_MIN = 0.93
 DETAIL_MIN = 0.90
 CROP_DETAIL_MIN = 0.60
 _CROP_WIDTHS = (0.78, 0.82, 0.86, 0.90, 0.94, 0.98)
+# An upright copy whose whole thumbnail correlates at least this well is not searched for a
+# crop box (a crop to 90 % scores 0.85..0.97 whole; our own value, common practice).
+_WHOLE = 0.985
 _T = Image.Transpose
 # How each turn of phash.TURNS is made from the original (Pillow transposes).
 _MAKE: dict[str, tuple[Image.Transpose, ...]] = {
@@ -219,7 +222,7 @@ def _decide(query: Look, stored: Look, kind: str) -> tuple[str, float]:
         ok, score, _ = _crop_agrees(query, stored)
         return ("crop" if ok else ""), score
     score = same_picture(query, stored, kind)
-    if kind == "same":
+    if kind == "same" and score < _WHOLE:  # lines up whole: no need to search a crop box
         ok, cropped, smaller = _crop_agrees(query, stored)
         if ok and smaller and cropped > score + 0.01:
             return "crop", cropped

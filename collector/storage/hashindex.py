@@ -82,7 +82,7 @@ def scan_turns(hashes: np.ndarray, turns: dict[str, int], max_distance: int,
             d = int(distances[row])
             if row not in best or d < best[row][0]:
                 best[row] = (d, turn)
-        if turn == "same":
+        if turn == "same" and crop_keep > 0:
             upright = distances
             loose = np.flatnonzero((distances > max_distance) & (distances <= crop_distance))
     near = sorted(((row, d, turn) for row, (d, turn) in best.items()),
