@@ -6,12 +6,17 @@ A file is traced by its content, never its name:
    provenance record of the item that stored it (source, pages, licence, the successful image
    fetch with its robots.txt verdict, flags) plus every other item that brought the same bytes,
    and for a crop the scan it was cut from and the box.
-2. **Near**: otherwise its perceptual hash (the ingest pipeline, :func:`collector.checks.phash.
-   hash_image_file`) is compared with every stored hash and mirror hash in the memory-mapped
-   hash file (:class:`collector.storage.hashindex.HashFile`). The scan is brute force, so every
-   stored file within the threshold is found. A near match is worded as *probably* a copy, never as
-   certain: pHash cannot prove two files show the same picture.
-3. **None**: said plainly.
+2. **Near**: otherwise its perceptual hash, for each of the 8 ways to turn or flip a picture
+   (:func:`collector.checks.likeness.look_at_file`), is compared with every stored hash in the
+   memory-mapped hash file (:class:`collector.storage.hashindex.HashFile`): upright and
+   mirrored first, the rotations and loose crop candidates only when nothing is confirmed.
+   The scan is brute force, so every stored file within the threshold is found; each
+   candidate must then pass the second look (:func:`collector.checks.likeness.confirm`:
+   thumbnail and detail correlation, or the crop-box search). A near match is worded as
+   *probably* a copy (resized/re-encoded, mirrored, rotated, cropped), never as certain.
+3. **None**: said plainly; a blank picture is never compared by look.
+4. **unreadable** (with why) and **not_a_file** (FIFO, socket, broken link, link loop, link
+   to a folder): every path given or found in a folder gets a state, none is left out.
 
 The ledger is opened read-only, so tracing works while a gather runs. Licence facts are as
 declared by the sources; this module says what the ledger recorded, not what the law allows.
