@@ -271,7 +271,7 @@ def find_copies(query: Look, candidates: Candidates, load: Callable[[str], Look 
                 *, limit: int = 5) -> list[Confirmed]:
     """Confirmed copies of the query among stored pictures, best first, in two rounds:
     upright and mirrored first (2 scans of the hashes; most copies end here), then, only
-    when none is confirmed, the six rotations and the crop candidates (8 scans).
+    when none is confirmed, the six rotations and the crop candidates (7 scans).
     ``candidates(turns, crops)`` is the index's ``candidates`` with its radius bound."""
     if not query.comparable:
         return []
@@ -279,4 +279,8 @@ def find_copies(query: Look, candidates: Candidates, load: Callable[[str], Look 
     found = confirm(query, candidates(upright, False), load, limit=limit)
     if found:
         return found
-    return confirm(query, candidates(query.turns, True), load, limit=limit)
+    # Round two: "same" is scanned again only for its loose crop radius; the mirror turn and
+    # the upright candidates were turned down in round one already.
+    turned = {turn: h for turn, h in query.turns.items() if turn != "mirror"}
+    later = [c for c in candidates(turned, True) if c[2] != "same"]
+    return confirm(query, later, load, limit=limit)
