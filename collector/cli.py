@@ -366,7 +366,7 @@ def trace(
                 typer.echo(one_line(line))
         for line in format_summary(results):
             typer.echo(one_line(line))
-    raise typer.Exit(0 if all(r.kind != "none" for r in results) else 1)
+    raise typer.Exit(0 if all(r.kind in ("exact", "near") for r in results) else 1)
 
 
 def _trace_collection(folder: Path | None) -> Path:

@@ -131,6 +131,41 @@ def test_conflicting_embedded_licence_and_gps_are_flagged(demo_run, demo_server)
             assert "licence_conflict" in flags[item["sha256"]], item["key"]
         if "gps" in item["flags"]:
             assert "gps" in flags[item["sha256"]], item["key"]
+        if item["state"] == "stored":  # a flat page is blank; nothing else is (issue 14)
+            assert ("blank" in flags[item["sha256"]]) == ("blank" in item["flags"]), item["key"]
+
+
+def test_new_pixel_formats_trace_right(demo_run, demo_server, demo_content,
+                                       tmp_path: Path) -> None:
+    """The 16-bit TIFF's 8-bit version (value / 257, Pillow handbook modes) traces as a near
+    copy of it; the CMYK JPEG's and the animated GIF's RGB versions trace to them; another
+    flat white page is no match (a blank page is never a copy of anything)."""
+    import numpy as np
+    from PIL import Image
+
+    from collector.exports.trace import Tracer
+
+    col, _, _ = demo_run
+    by_key = {i["key"]: i for i in demo_server.manifest["items"]}
+
+    def served(key: str) -> Path:
+        item = by_key[key]
+        return demo_content / "site" / str(item["image_host"]) / item["image_path"].lstrip("/")
+
+    with Image.open(served("find-3021")) as im:
+        eight = Image.fromarray((np.asarray(im) / 257).round().astype(np.uint8))
+    eight.save(tmp_path / "tiff-as-8-bit.png")
+    for key in ("FH-S-0009", "FH-S-0007"):  # the CMYK JPEG, the animated GIF
+        with Image.open(served(key)) as im:
+            im.convert("RGB").save(tmp_path / f"{key}.jpg", quality=85)
+    Image.new("L", (320, 240), 255).save(tmp_path / "white.jpg")
+    with Tracer.open(col.root) as tracer:
+        for name, key in (("tiff-as-8-bit.png", "find-3021"), ("FH-S-0009.jpg", "FH-S-0009"),
+                          ("FH-S-0007.jpg", "FH-S-0007")):
+            result = tracer.trace_file(tmp_path / name)
+            assert result.kind == "near", name
+            assert result.near[0].file.sha256 == by_key[key]["sha256"], name
+        assert tracer.trace_file(tmp_path / "white.jpg").kind == "none"
 
 
 def test_the_oai_feed_is_harvested_through_its_misbehaviours(demo_run, demo_server) -> None:

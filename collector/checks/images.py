@@ -27,7 +27,7 @@ from urllib.parse import urlsplit
 from PIL import ExifTags, Image
 
 from collector.checks.embedded_metadata import read_exif, read_iptc, read_xmp
-from collector.checks.phash import HASH_ALGO, phash_prepared, to_signed64
+from collector.checks.phash import HASH_ALGO, phash_and_blank, to_signed64
 from collector.errors import ImageRejected
 
 __all__ = ["FORMATS", "RIGHTS_KEYS", "ImageFacts", "inspect_image", "sniff_format"]
@@ -204,9 +204,10 @@ def _orientation(im: Image.Image) -> int:
         return 1
 
 
-def _hash(im: Image.Image, orientation: int, path: Path) -> tuple[int, int]:
+def _hash(im: Image.Image, orientation: int, path: Path) -> tuple[int, int, bool]:
+    """(pHash, mirror, blank): collector.checks.phash.phash_and_blank."""
     try:
-        return phash_prepared(im, orientation)
+        return phash_and_blank(im, orientation)
     except _DECODE_ERRORS as exc:
         raise ImageRejected("broken_image", damage(exc)) from exc
 
@@ -380,7 +381,7 @@ def _describe(im: Image.Image, fmt: str, head: bytes, flags: list[str]) -> _Desc
 
 def _check_pixels(
     im: Image.Image, fmt: str, geo: _Geometry, path: Path, max_pixels: int, full_decode: bool
-) -> tuple[int, int] | None:
+) -> tuple[int, int, bool] | None:
     """PNG CRCs, the full decode (skipped for a JPEG when full_decode is False) and, for
     formats other than JPEG, the hash of the pixels just decoded; None means "hash later"."""
     if fmt == "PNG":
@@ -397,7 +398,7 @@ def _facts(
     geo: _Geometry,
     described: _Described,
     frames: int,
-    hashes: tuple[int, int],
+    hashes: tuple[int, int, bool],
     flags: list[str],
     mismatch: str | None,
 ) -> ImageFacts:
@@ -405,7 +406,9 @@ def _facts(
     if geo.orientation != 1:
         described.exif["orientation"] = geo.orientation
     mime, ext, _ = FORMATS[fmt]
-    phash, mirror = hashes
+    phash, mirror, blank = hashes
+    if blank:  # a flat picture (collector.checks.pixels.is_blank): never compared by look
+        flags.append("blank")
     return ImageFacts(
         format=fmt,
         mime=mime,

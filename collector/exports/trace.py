@@ -6,12 +6,17 @@ A file is traced by its content, never its name:
    provenance record of the item that stored it (source, pages, licence, the successful image
    fetch with its robots.txt verdict, flags) plus every other item that brought the same bytes,
    and for a crop the scan it was cut from and the box.
-2. **Near**: otherwise its perceptual hash (the ingest pipeline, :func:`collector.checks.phash.
-   hash_image_file`) is compared with every stored hash and mirror hash in the memory-mapped
-   hash file (:class:`collector.storage.hashindex.HashFile`). The scan is brute force, so every
-   stored file within the threshold is found. A near match is worded as *probably* a copy, never as
-   certain: pHash cannot prove two files show the same picture.
-3. **None**: said plainly.
+2. **Near**: otherwise its perceptual hash, for each of the 8 ways to turn or flip a picture
+   (:func:`collector.checks.likeness.look_at_file`), is compared with every stored hash in the
+   memory-mapped hash file (:class:`collector.storage.hashindex.HashFile`): upright and
+   mirrored first, the rotations and loose crop candidates only when nothing is confirmed.
+   The scan is brute force, so every stored file within the threshold is found; each
+   candidate must then pass the second look (:func:`collector.checks.likeness.confirm`:
+   thumbnail and detail correlation, or the crop-box search). A near match is worded as
+   *probably* a copy (resized/re-encoded, mirrored, rotated, cropped), never as certain.
+3. **None**: said plainly; a blank picture is never compared by look.
+4. **unreadable** (with why) and **not_a_file** (FIFO, socket, broken link, link loop, link
+   to a folder): every path given or found in a folder gets a state, none is left out.
 
 The ledger is opened read-only, so tracing works while a gather runs. Licence facts are as
 declared by the sources; this module says what the ledger recorded, not what the law allows.
@@ -21,8 +26,10 @@ How the results are shown (records, tables, CSV, JSON, attribution lines) is
 
 from __future__ import annotations
 
+import errno
 import hashlib
 import os
+import stat
 import struct
 from collections.abc import Iterable, Iterator
 from dataclasses import dataclass, field
@@ -31,6 +38,7 @@ from typing import Any
 
 from collector.checks.images import sniff_format
 from collector.checks.licences import licence_allowed, licence_deed_url
+from collector.checks.likeness import Look, find_copies, look_at_file
 from collector.checks.rights_statements import STATEMENTS
 from collector.errors import CollectorError
 from collector.exports.trace_format import attribution_line, recovered_words
@@ -54,6 +62,7 @@ __all__ = [
     "Tracer",
     "collect_targets",
     "iter_image_files",
+    "not_a_file",
     "sha256_file",
 ]
 
@@ -142,11 +151,15 @@ class FileRecord:
 
 @dataclass
 class NearCandidate:
-    """A stored file whose perceptual hash is close to the query's."""
+    """A stored file whose perceptual hash is close to the query's, confirmed by the second
+    look (collector.checks.likeness): ``how`` is "same" (resized/re-encoded), a turn of
+    collector.checks.phash.TURNS ("mirror", "rotate90", "rotate90+mirror", ...) or "crop"."""
 
     distance: int
     mirrored: bool
     file: FileRecord
+    how: str = "same"
+    score: float | None = None  # the second look's thumbnail correlation
 
 
 @dataclass
@@ -155,12 +168,12 @@ class TraceResult:
 
     path: str
     sha256: str | None
-    kind: str  # exact | near | none
+    kind: str  # exact | near | none | unreadable | not_a_file
     file: FileRecord | None = None
     near: list[NearCandidate] = field(default_factory=list)
     allowed: str = "unknown"  # yes | no | unknown (against the recipe's allowlist)
     attribution: str | None = None
-    note: str | None = None  # e.g. why no perceptual hash could be computed
+    note: str | None = None  # why no perceptual hash, why unreadable, what it is instead
     threshold: int = DEFAULT_NEAR_DISTANCE
     listed: bool = False  # found by walking a folder (shown in the table)
 
@@ -208,28 +221,35 @@ def sha256_file(path: Path) -> str:
 
 def _looks_like_image(path: Path) -> bool:
     # is_file() reads the file type without opening: a FIFO would block the open.
-    if path.suffix.lower() not in IMAGE_EXTENSIONS or not path.is_file():
+    if not path.is_file():
         return False
+    if path.suffix.lower() in IMAGE_EXTENSIONS:
+        return True  # traced even when its bytes are broken: it shows up as unreadable
     try:
         with path.open("rb") as fh:
             return sniff_format(fh.read(16)) is not None
     except OSError:
-        return False
+        return True  # cannot be read: listed, and trace says why
 
 
 def iter_image_files(folder: Path) -> Iterator[Path]:
-    """Every image below ``folder`` (recursive, sorted): an image extension and image magic
-    bytes (standards.md section 9) are both required; hidden folders are skipped."""
+    """Every entry below ``folder`` trace reports on (recursive, sorted, hidden folders
+    skipped): files with an image extension or image magic bytes (standards.md section 9),
+    and every entry that is not a regular file (FIFO, socket, device, broken link, link loop,
+    link to a folder), so that none is silently left out. Links to folders are not followed,
+    so a link loop cannot make the walk endless."""
     for dirpath, dirnames, filenames in os.walk(folder):
-        dirnames[:] = sorted(d for d in dirnames if not d.startswith("."))
-        for name in sorted(filenames):
+        linked = sorted(d for d in dirnames if (Path(dirpath) / d).is_symlink())
+        dirnames[:] = sorted(d for d in dirnames if not d.startswith(".") and d not in linked)
+        for name in sorted([*filenames, *linked]):
             path = Path(dirpath) / name
-            if _looks_like_image(path):
+            if _looks_like_image(path) or not path.is_file():
                 yield path
 
 
 def collect_targets(paths: Iterable[Path]) -> list[tuple[Path, bool]]:
-    """Expand the command's arguments into (file, came_from_a_folder) pairs.
+    """Expand the command's arguments into (path, came_from_a_folder) pairs. A path that is
+    not a regular file (FIFO, socket, broken link) is kept: trace reports it as not_a_file.
 
     Raises TraceInputError for a missing path or a folder without images.
     """
@@ -242,14 +262,36 @@ def collect_targets(paths: Iterable[Path]) -> list[tuple[Path, bool]]:
                                       f"{', '.join(sorted(IMAGE_EXTENSIONS))} with image "
                                       "signatures); give an image file or a folder of images")
             targets.extend((p, True) for p in found)
-        elif path.is_file():
+        elif path.exists() or path.is_symlink():
             targets.append((path, False))
-        elif path.exists():
-            raise TraceInputError(f"{path} is not a regular file (a FIFO, socket or device); "
-                                  "give an image file or a folder")
         else:
             raise TraceInputError(f"{path} does not exist; give an image file or a folder")
     return targets
+
+
+def not_a_file(path: Path) -> str | None:
+    """Why ``path`` is not a regular file to trace (None when it is one)."""
+    try:
+        st = path.lstat()
+    except OSError as exc:
+        return f"cannot be read ({exc.strerror})"
+    if stat.S_ISLNK(st.st_mode):
+        try:
+            target = path.stat()
+        except OSError as exc:
+            loop = exc.errno == errno.ELOOP
+            return "a symbolic link loop" if loop else "a broken symbolic link"
+        if stat.S_ISDIR(target.st_mode):
+            return "a symbolic link to a folder (not followed)"
+        st = target
+    if stat.S_ISREG(st.st_mode):
+        return None
+    for test, words in ((stat.S_ISFIFO, "a FIFO (named pipe)"), (stat.S_ISSOCK, "a socket"),
+                        (stat.S_ISDIR, "a folder"), (stat.S_ISCHR, "a device"),
+                        (stat.S_ISBLK, "a device")):
+        if test(st.st_mode):
+            return words
+    return "not a regular file"
 
 
 # --- the tracer --------------------------------------------------------------------------------
@@ -272,6 +314,7 @@ class Tracer:
         self.allow_unknown = allow_unknown
         self.recipe_problem = recipe_problem
         self._sources: dict[int, tuple[str, str]] | None = None
+        self._looks: dict[str, Look | None] = {}
 
     @classmethod
     def open(cls, root: Path, *, near_distance: int | None = None) -> Tracer:
@@ -349,34 +392,24 @@ class Tracer:
         return "unknown" if reason == "licence_unknown" else "no"
 
     def trace_file(self, path: Path, *, listed: bool = False) -> TraceResult:
-        """Trace one file: exact by sha256, else near by perceptual hash, else none."""
-        sha = sha256_file(path)
+        """Trace one path: exact by sha256, else near by perceptual hash confirmed by a
+        second look, else none; ``not_a_file`` and ``unreadable`` say why instead."""
+        why_not = not_a_file(path)
+        if why_not is not None:
+            return TraceResult(str(path), None, "not_a_file", threshold=self.near_distance,
+                               listed=listed, note=why_not)
+        try:
+            sha = sha256_file(path)
+        except OSError as exc:
+            return TraceResult(str(path), None, "unreadable", threshold=self.near_distance,
+                               listed=listed, note=f"cannot be read ({exc.strerror or exc})")
         result = TraceResult(str(path), sha, "none", threshold=self.near_distance,
                              listed=listed)
         exact = self.lookup_exact(sha)
         if exact is not None:
             result.kind, result.file = "exact", exact
         else:
-            from PIL import Image
-
-            # scipy loads only when needed
-            from collector.checks.phash import featureless, hash_image_file
-
-            try:
-                phash, mirror = hash_image_file(path)
-            except (*_DECODE_ERRORS, Image.DecompressionBombError) as exc:
-                result.note = f"not a readable image ({type(exc).__name__}: {exc})"
-                phash = None
-            if phash is not None and featureless(phash):
-                result.note = ("its picture is too plain (a flat fill or a smooth gradient) to "
-                               "compare by look, and no stored file has these bytes")
-            elif phash is not None:
-                for match in self.lookup_near(phash, mirror)[:5]:
-                    record = self.lookup_exact(match.sha256)
-                    if record is not None:
-                        result.near.append(NearCandidate(match.distance, match.mirrored, record))
-                if result.near:
-                    result.kind = "near"
+            self._trace_near(path, result)
         best = result.best
         if best is not None:
             origin = best.origin
@@ -387,6 +420,44 @@ class Tracer:
             if origin is None and RECOVERED_FLAG in best.flags:
                 result.attribution = f"No attribution: {recovered_words(best)}."
         return result
+
+    def _trace_near(self, path: Path, result: TraceResult) -> None:
+        """Candidates by pHash (8 turns, loose for crops), kept only if the second look
+        (collector.checks.likeness) agrees."""
+        from PIL import Image
+
+        try:
+            look = look_at_file(path)
+        except (*_DECODE_ERRORS, Image.DecompressionBombError) as exc:
+            result.kind = "unreadable"
+            result.note = f"not a readable image ({type(exc).__name__}: {exc})"
+            return
+        if not look.comparable:
+            result.note = ("its picture is blank or too plain (a flat fill or a smooth "
+                           "gradient) to compare by look, and no stored file has these bytes")
+            return
+        def candidates(turns: dict[str, int], crops: bool) -> list[tuple[str, int, str]]:
+            return self.hashes.candidates(turns, self.near_distance, crops)
+
+        for found in find_copies(look, candidates, self._stored_look):
+            record = self.lookup_exact(found.key)
+            if record is not None:
+                result.near.append(NearCandidate(found.distance, "mirror" in found.kind,
+                                                 record, found.kind, found.score))
+        if result.near:
+            result.kind = "near"
+
+    def _stored_look(self, sha256: str) -> Look | None:
+        """The second-look picture of a stored file (None: missing or unreadable)."""
+        from PIL import Image
+
+        if sha256 not in self._looks:
+            stored = self.collection.store.find(sha256)
+            try:
+                self._looks[sha256] = look_at_file(stored) if stored else None
+            except (*_DECODE_ERRORS, Image.DecompressionBombError):  # damaged: not confirmed
+                self._looks[sha256] = None
+        return self._looks[sha256]
 
     def trace_all(self, targets: Iterable[tuple[Path, bool]]) -> Iterator[TraceResult]:
         """Trace each (path, listed) pair in turn."""

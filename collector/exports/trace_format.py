@@ -125,15 +125,21 @@ class TraceSummary:
     files: int
     exact: int
     near: int
-    untraced: int
+    untraced: int  # none + unreadable + not_a_file
     outside_allowlist: int
     personal_data: int
+    unreadable: int = 0
+    not_a_file: int = 0
 
     def line(self) -> str:
         """The one-line summary."""
+        why = ", ".join(p for p in (
+            f"{self.unreadable} unreadable" if self.unreadable else "",
+            f"{self.not_a_file} not a file" if self.not_a_file else "") if p)
         files = f"{self.files} file" + ("" if self.files == 1 else "s")
         return (f"{files}: {self.exact} exact, {self.near} near, {self.untraced} "
-                f"without known provenance, {self.outside_allowlist} with licences outside "
+                f"without known provenance{f' ({why})' if why else ''}, "
+                f"{self.outside_allowlist} with licences outside "
                 f"the allowlist, {self.personal_data} with personal-data flags")
 
 
@@ -142,13 +148,25 @@ def summarise(results: Iterable[TraceResult]) -> TraceSummary:
     rs = list(results)
     return TraceSummary(
         files=len(rs), exact=sum(r.kind == "exact" for r in rs),
-        near=sum(r.kind == "near" for r in rs), untraced=sum(r.kind == "none" for r in rs),
+        near=sum(r.kind == "near" for r in rs),
+        untraced=sum(r.kind not in ("exact", "near") for r in rs),
         outside_allowlist=sum(r.allowed == "no" for r in rs),
-        personal_data=sum(r.personal_data for r in rs))
+        personal_data=sum(r.personal_data for r in rs),
+        unreadable=sum(r.kind == "unreadable" for r in rs),
+        not_a_file=sum(r.kind == "not_a_file" for r in rs))
 
 
 TABLE_COLUMNS = ("file", "match", "distance", "source", "spdx_id", "allowed", "flags",
-                 "matched_sha256")
+                 "matched_sha256", "copy_kind", "note")
+_SHOWN_COLUMNS = ("file", "match", "distance", "source", "spdx_id", "allowed", "flags",
+                  "copy_kind", "note")
+# How a near match was made, as the second look found it (collector.checks.likeness).
+COPY_KINDS = {
+    "same": "resized/re-encoded", "mirror": "mirrored", "crop": "cropped",
+    "rotate90": "rotated", "rotate180": "rotated", "rotate270": "rotated",
+    "rotate90+mirror": "rotated and mirrored", "rotate180+mirror": "rotated and mirrored",
+    "rotate270+mirror": "rotated and mirrored",
+}
 
 
 def table_row(result: TraceResult) -> dict[str, Any]:
@@ -163,6 +181,8 @@ def table_row(result: TraceResult) -> dict[str, Any]:
         "allowed": result.allowed,
         "flags": " ".join([*result.flags, *(["withdrawn"] if best and best.withdrawn else [])]),
         "matched_sha256": best.sha256 if best else "",
+        "copy_kind": COPY_KINDS.get(result.near[0].how, "") if result.kind == "near" else "",
+        "note": result.note or "",
     }
 
 
@@ -204,7 +224,7 @@ def to_json(results: list[TraceResult]) -> str:
 def format_table(results: list[TraceResult]) -> list[str]:
     """The folder table as aligned plain-text lines."""
     rows = [table_row(r) for r in results]
-    cols = TABLE_COLUMNS[:-1]
+    cols = _SHOWN_COLUMNS
     cells = [[str(row[c]) if row[c] != "" else "-" for c in cols] for row in rows]
     widths = [max([len(c)] + [len(line[i]) for line in cells]) for i, c in enumerate(cols)]
     lines = ["  ".join(c.ljust(w) for c, w in zip(cols, widths, strict=True)).rstrip()]
@@ -223,8 +243,18 @@ def _size_words(req: dict[str, Any]) -> str:
             f"{dims(req.get('full_size'))} from {req.get('service', '?')}: {req.get('why', '?')}")
 
 
-def _copy_words(mirrored: bool) -> str:
-    return "a mirrored copy" if mirrored else "a resized/re-encoded copy"
+
+def _copy_words(how: str) -> str:
+    return f"a {COPY_KINDS.get(how, 'resized/re-encoded')} copy"
+
+
+def _turn_words(how: str) -> str:
+    """Which turn the second look found, in words ("turned 90 degrees counter-clockwise")."""
+    if how.startswith("rotate"):
+        degrees = how[6:].split("+", 1)[0]
+        return (f" (turned {degrees} degrees counter-clockwise"
+                + (", then mirrored)" if how.endswith("+mirror") else ")"))
+    return ""
 
 
 def _item_lines(item: ItemRecord, indent: str = "  ") -> list[str]:
@@ -295,13 +325,18 @@ def format_record(result: TraceResult) -> list[str]:
         lines += _file_lines(result.file)
     elif result.kind == "near":
         best = result.near[0]
-        lines = [f"{shown}: probably {_copy_words(best.mirrored)} of "
-                 f"{best.file.sha256[:12]} (pHash distance {best.distance} of 64 bits, "
-                 f"threshold {result.threshold}); not the same bytes, so not certain"]
+        score = f", thumbnails agree at {best.score:.2f}" if best.score is not None else ""
+        lines = [f"{shown}: probably {_copy_words(best.how)} of "
+                 f"{best.file.sha256[:12]}{_turn_words(best.how)} (pHash distance "
+                 f"{best.distance} of 64 bits, threshold {result.threshold}{score}); not the "
+                 "same bytes, so not certain"]
         lines += _file_lines(best.file)
         for other in result.near[1:]:
             lines.append(f"  also close:   {other.file.sha256[:12]} distance {other.distance}"
-                         + (" (mirrored)" if other.mirrored else ""))
+                         f" ({COPY_KINDS.get(other.how, other.how)})")
+    elif result.kind in ("unreadable", "not_a_file"):
+        what = "unreadable" if result.kind == "unreadable" else "not a file"
+        return [f"{shown}: {what}: {result.note}. Not traced."]
     else:
         why = f" ({result.note})" if result.note else (
             f": no stored file has these bytes, and none is within {result.threshold} bits "

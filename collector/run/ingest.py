@@ -31,6 +31,7 @@ from collector.checks.licences import (
     normalise_licence,
     rights_conflict,
 )
+from collector.checks.likeness import IMAGE_ERRORS, Look, confirm, look_at_file
 from collector.checks.rights_statements import find_statement
 from collector.config.recipe import Recipe
 from collector.errors import ImageRejected, StoreError
@@ -41,7 +42,7 @@ from collector.run.reservations import ReservationGate
 from collector.safe_text import shown_name
 from collector.storage import upkeep_queries
 from collector.storage.collection import Collection
-from collector.storage.hashindex import HashIndex
+from collector.storage.hashindex import HashIndex, NearMatch
 from collector.storage.ledger import Ledger
 from collector.storage.ledger_repair import RECOVERED_FLAG
 
@@ -431,12 +432,15 @@ class Ingest:
             self.ledger.update_item(verdict.old_id, **plan.old_item)
         self.record.recount(plan.was, "duplicate")
 
-    def _near_verdict(self, item_id: int, sha: str, facts: ImageFacts,
+    def _near_verdict(self, item_id: int, sha: str, facts: ImageFacts, path: Path,
                       ) -> Keep | Demote | NearCopy:
-        """Look up the stored look-alikes of a new file and let dedup decide."""
+        """Look up the stored look-alikes of a new file, keep those the second look
+        confirms (collector.checks.likeness) and let dedup decide."""
         near = [m for m in self.index.nearest(facts.phash, facts.phash_mirror,
                                               self.recipe.images.near_distance)
-                if m.sha256 != sha]
+                if m.sha256 != sha and "blank" not in facts.flags]  # blank: no shape to match
+        if near:
+            near = self._confirmed(near, path)
         candidates = []
         for m in near:
             first = (self.ledger.file(m.sha256) or {}).get("first_item_id")
@@ -451,6 +455,27 @@ class Ingest:
                                   original["state"] if original else None,
                                   drop=self.recipe.images.near_duplicates == "drop")
 
+    def _confirmed(self, near: list[NearMatch], path: Path) -> list[NearMatch]:
+        """The pHash look-alikes the second look agrees with (a stored file that cannot be
+        read is not confirmed: the new file is kept, nothing is lost)."""
+        try:
+            look = look_at_file(path)
+        except IMAGE_ERRORS:
+            return []
+
+        def stored_look(key: str) -> Look | None:
+            found = self.store.find(key)
+            try:
+                return look_at_file(found) if found else None
+            except IMAGE_ERRORS:
+                return None
+
+        kinds = {m.sha256: ("mirror" if m.mirrored else "same") for m in near}
+        agreed = {c.key for c in confirm(
+            look, [(m.sha256, m.distance, kinds[m.sha256]) for m in near], stored_look,
+            limit=len(near))}
+        return [m for m in near if m.sha256 in agreed]
+
     def _store_new(self, item_id: int, spdx_id: str | None, path: Path, sha: str,
                    facts: ImageFacts, extra: dict[str, Any], *, recovered: bool = False) -> None:
         """Store a new file, or attach ``item_id`` to a file registered by rebuild-ledger
@@ -460,7 +485,7 @@ class Ingest:
         if conflict:
             flags.append("licence_conflict")
         state, reason, detail = "stored", None, conflict
-        verdict = self._near_verdict(item_id, sha, facts)
+        verdict = self._near_verdict(item_id, sha, facts, path)
         if isinstance(verdict, NearCopy):
             extra = {**extra, "duplicate_of": verdict.original_id,
                      "near_distance": verdict.distance, "near_mirrored": verdict.mirrored}
