@@ -1,4 +1,4 @@
-"""Cost of the colour and tone facts (collector.checks.pixel_facts) against a bare decode.
+"""Cost of the colour and tone facts (collector.checks.colour_facts) against a bare decode.
 
 Generates ~1 MP JPEGs (varied content: gradients, shapes, noise), then per file times (best of
 several rounds, one core):
@@ -9,7 +9,7 @@ several rounds, one core):
 
 and prints the totals and the ratio facts / bare decode. Target: facts alone <= 0.25x a bare
 decode (they run on the draft-size image, never on a second full decode).
-Run: .venv/bin/python bench/pixel_facts.py [--files N]
+Run: .venv/bin/python bench/colour_facts.py [--files N]
 """
 
 from __future__ import annotations
@@ -21,7 +21,7 @@ import time
 import numpy as np
 from PIL import Image, ImageDraw
 
-from collector.checks.pixel_facts import pixel_facts
+from collector.checks.colour_facts import pixel_facts
 
 
 def picture(seed: int) -> bytes:

@@ -1,4 +1,4 @@
-"""Colour and tone facts (collector.checks.pixel_facts) against published values.
+"""Colour and tone facts (collector.checks.colour_facts) against published values.
 
 - CIELAB: IEC 61966-2-1:1999 (sRGB) and CIE 15:2004 (CIELAB, D65). Worked values as published
   with these formulas (e.g. Lindbloom's colour calculator; from memory): white -> 100/0/0,
@@ -15,7 +15,7 @@ import numpy as np
 import pytest
 from PIL import Image
 
-from collector.checks.pixel_facts import pixel_facts, srgb_to_lab
+from collector.checks.colour_facts import pixel_facts, srgb_to_lab
 
 PUBLISHED = [
     ((255, 255, 255), (100.0, 0.0, 0.0)),
