@@ -15,7 +15,7 @@ import numpy as np
 import pytest
 from PIL import Image
 
-from collector.checks.colour_facts import pixel_facts, srgb_to_lab
+from collector.checks.colour_facts import colour_facts, srgb_to_lab
 
 PUBLISHED = [
     ((255, 255, 255), (100.0, 0.0, 0.0)),
@@ -41,7 +41,7 @@ def three_colours() -> Image.Image:
 
 
 def test_kmeans_finds_three_flat_colours_and_their_shares() -> None:
-    facts = pixel_facts(three_colours(), colours=3)
+    facts = colour_facts(three_colours(), colours=3)
     found = {c.hex: c.share for c in facts.colours}
     assert found.keys() == {"#c81e1e", "#1ea028", "#1428c8"}
     assert found["#c81e1e"] == pytest.approx(0.50, abs=0.01)
@@ -54,7 +54,7 @@ def test_kmeans_finds_three_flat_colours_and_their_shares() -> None:
 
 def test_a_grey_picture_is_greyscale_with_no_colourfulness() -> None:
     ramp = np.tile(np.linspace(0, 255, 128, dtype=np.uint8), (96, 1))
-    facts = pixel_facts(Image.fromarray(ramp).convert("RGB"))
+    facts = colour_facts(Image.fromarray(ramp).convert("RGB"))
     assert facts.greyscale
     assert facts.colourfulness == pytest.approx(0.0, abs=1e-9)
     assert all(abs(c.lab[1]) < 0.5 and abs(c.lab[2]) < 0.5 for c in facts.colours)
@@ -63,8 +63,8 @@ def test_a_grey_picture_is_greyscale_with_no_colourfulness() -> None:
 def test_a_mostly_empty_scan_has_a_large_background_and_little_sharpness() -> None:
     page = np.full((120, 160), 245, np.uint8)
     page[50:60, 70:90] = 30  # a small mark on a blank page
-    empty = pixel_facts(Image.fromarray(page))
-    busy = pixel_facts(Image.fromarray(
+    empty = colour_facts(Image.fromarray(page))
+    busy = colour_facts(Image.fromarray(
         np.random.default_rng(1).integers(0, 256, (120, 160), dtype=np.uint8)))
     assert empty.background_share > 0.9
     assert busy.background_share < 0.1
@@ -73,7 +73,7 @@ def test_a_mostly_empty_scan_has_a_large_background_and_little_sharpness() -> No
 
 
 def test_facts_are_plain_data_for_the_ledger() -> None:
-    data = pixel_facts(three_colours(), colours=3).as_json()
+    data = colour_facts(three_colours(), colours=3).as_json()
     assert set(data) == {"colours", "greyscale", "brightness", "contrast", "colourfulness",
                          "sharpness", "background_share"}
     assert all(set(c) == {"lab", "share", "hex", "hue"} for c in data["colours"])

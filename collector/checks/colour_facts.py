@@ -36,7 +36,7 @@ from typing import Any
 import numpy as np
 from PIL import Image
 
-__all__ = ["DominantColour", "PixelFacts", "pixel_facts", "srgb_to_lab"]
+__all__ = ["DominantColour", "ColourFacts", "colour_facts", "srgb_to_lab"]
 
 MAX_SAMPLES = 1024  # pixels sampled for k-means (a distribution, not every pixel)
 WORK_SIDE = 96  # the facts are computed on a picture this small (longest side, px)
@@ -69,7 +69,7 @@ class DominantColour:
 
 
 @dataclass(frozen=True)
-class PixelFacts:
+class ColourFacts:
     """The colour and tone facts of one picture (see the module's sources)."""
 
     colours: tuple[DominantColour, ...]
@@ -172,7 +172,7 @@ def _background_share(lightness: np.ndarray) -> float:
     return float(sizes.max() / lightness.size)
 
 
-def pixel_facts(image: Image.Image, *, colours: int = 5) -> PixelFacts:
+def colour_facts(image: Image.Image, *, colours: int = 5) -> ColourFacts:
     """The facts of a small picture (any mode; converted to sRGB, transparency ignored),
     reduced first to at most ``WORK_SIDE`` pixels on its longest side."""
     image = image.convert("RGB")
@@ -183,7 +183,7 @@ def pixel_facts(image: Image.Image, *, colours: int = 5) -> PixelFacts:
     lab = srgb_to_lab(rgb)
     chroma = np.hypot(lab[..., 1], lab[..., 2])
     grey = np.asarray(image.convert("L"))
-    return PixelFacts(
+    return ColourFacts(
         colours=_dominant(lab, colours),
         greyscale=bool(np.percentile(chroma, 95) < GREY_CHROMA),
         brightness=float(lab[..., 0].mean()), contrast=float(lab[..., 0].std()),
