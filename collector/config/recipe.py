@@ -285,6 +285,20 @@ class Images:
     max_pixels: int = _setting(89_478_485, at_least(0, strict=True))
     near_distance: int = _setting(8, at_least(0))
     near_duplicates: str = _setting("keep", one_of("keep", "drop"))
+    # Images with transparent pixels, and images that look enlarged from a native shortest
+    # side under min_side: keep, keep and flag, or reject (collector.checks.pixel_facts).
+    transparent: str = _setting("keep", one_of("keep", "flag", "reject"))
+    enlarged: str = _setting("keep", one_of("keep", "flag", "reject"))
+    # The release export flattens images with transparent pixels onto this colour ("#rrggbb";
+    # "" = leave them as stored). The flattened PNG is a derived file; the store is unchanged.
+    release_background: str = _setting("", lambda v: _check_colour(v) if v else None)
+
+
+def _check_colour(value: Any) -> str | None:
+    """A background colour is written "#rrggbb" (CSS Color Level 4, hex notation)."""
+    if isinstance(value, str) and re.fullmatch(r"#[0-9A-Fa-f]{6}", value):
+        return None
+    return f'must be a colour written "#rrggbb", e.g. "#ffffff" for white, got {value!r}'
 
 
 @dataclass(frozen=True)
