@@ -59,8 +59,9 @@ POLICY = {"enlarged": "keep"}
 def ingest_step(root: Path, paths: list[Path]) -> float:
     """Time Ingest.ingest_file on files already in the incoming folder, as after a download."""
     col = init_collection(root / "step", contact="bench@example.org")
-    col.recipe_path.write_text(col.recipe_path.read_text() + SOURCE.format(folder=paths[0].parent)
-                               + f'[images]\nenlarged = "{POLICY["enlarged"]}"\n')
+    recipe = col.recipe_path.read_text().replace(
+        'enlarged = "keep"', f'enlarged = "{POLICY["enlarged"]}"')
+    col.recipe_path.write_text(recipe + SOURCE.format(folder=paths[0].parent))
     with prepared_run(col) as (recipe, ledger):
         gatherer = Gatherer(col, recipe, ledger, None)
         source_id = ledger.source_id("bench", "scans", {})

@@ -166,3 +166,67 @@ def test_gather_records_share_and_native_size_in_the_ledger(tmp_path: Path) -> N
     assert rows["big.png"]["transparent_share"] == 0.0
     assert rows["big.png"]["native_width"] == pytest.approx(160, rel=0.3)
     assert rows["half.png"]["native_width"] == 160  # not enlarged: its own size
+
+
+def test_release_flattens_transparent_images_onto_the_recipe_colour(tmp_path: Path) -> None:
+    """With [images] release_background = "#ffeedd" the release holds a flattened PNG of the
+    transparent image (clear pixels become that colour; alpha compositing as Pillow's
+    alpha_composite), provenance.csv names the stored original in derived_from, the stored
+    bytes are unchanged, and an opaque image is released as stored."""
+    import csv
+    import hashlib
+
+    from collector.exports.datasheet import export_datasheet
+
+    col = init_collection(tmp_path / "c", contact="me@example.org")
+    folder = col.root / "in"
+    folder.mkdir()
+    clear = detailed(12, (90, 60)).convert("RGBA")
+    clear.paste((0, 0, 0, 0), (0, 0, 45, 60))
+    clear.save(folder / "clear.png")
+    detailed(13, (90, 60)).save(folder / "opaque.png")
+    original_sha = hashlib.sha256((folder / "clear.png").read_bytes()).hexdigest()
+    recipe = col.recipe_path.read_text().replace('release_background = ""',
+                                                 'release_background = "#ffeedd"')
+    col.recipe_path.write_text(recipe + (
+        '\n[[sources]]\nname = "desk"\nkind = "scans"\npath = "in"\nlicence = "CC0-1.0"\n'))
+    gather(col, fetcher_factory=lambda recipe, ledger: None)
+    export = export_datasheet(col.root, with_images=True)
+    with open(export.out / "provenance.csv", newline="") as fh:
+        rows = {r["source_key"]: r for r in csv.DictReader(fh)}
+    flat = rows["clear.png"]
+    assert flat["file_name"] == f"{original_sha[:16]}-flat.png"
+    assert flat["derived_from"] == original_sha and "flattened:#ffeedd" in flat["flags"]
+    data = (export.out / "images" / flat["file_name"]).read_bytes()
+    assert flat["sha256"] == hashlib.sha256(data).hexdigest()
+    with Image.open(export.out / "images" / flat["file_name"]) as im:
+        assert im.mode == "RGB" and im.getpixel((10, 10)) == (255, 238, 221)
+        assert im.getpixel((80, 10)) == clear.getpixel((80, 10))[:3]
+    stored = next(col.root.glob(f"files/*/*/{original_sha}.png"))
+    assert hashlib.sha256(stored.read_bytes()).hexdigest() == original_sha
+    assert rows["opaque.png"]["derived_from"] == ""
+    assert rows["opaque.png"]["file_name"].endswith(".png")
+    assert not rows["opaque.png"]["file_name"].endswith("-flat.png")
+
+
+@pytest.mark.parametrize(("text", "message"), [
+    ('transparent = "drop"', "images.transparent: must be one of 'keep', 'flag', 'reject'"),
+    ('enlarged = "yes"', "images.enlarged: must be one of 'keep', 'flag', 'reject'"),
+    ('release_background = "white"', 'images.release_background: must be a colour written'),
+])
+def test_recipe_policy_keys_name_what_is_expected(tmp_path: Path, text: str,
+                                                  message: str) -> None:
+    """Bad values of the new [images] keys are reported with their key path; the defaults
+    keep everything and flatten nothing."""
+    from collector.config.recipe import load_recipe
+    from collector.errors import RecipeError
+
+    good = 'contact = "me@example.org"\n'
+    (tmp_path / "ok.toml").write_text(good)
+    images = load_recipe(tmp_path / "ok.toml").images
+    assert (images.transparent, images.enlarged, images.release_background) == (
+        "keep", "keep", "")
+    (tmp_path / "bad.toml").write_text(good + f"[images]\n{text}\n")
+    with pytest.raises(RecipeError) as err:
+        load_recipe(tmp_path / "bad.toml")
+    assert message in str(err.value)
