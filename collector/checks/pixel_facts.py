@@ -103,15 +103,25 @@ def _spectrum(lines: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     return np.fft.rfftfreq(lines.shape[1]), np.maximum(power - floor, 0.0)
 
 
+def _band_means(freqs: np.ndarray, power: np.ndarray, low: np.ndarray,
+                high: np.ndarray) -> np.ndarray:
+    """Mean power over the bins with low < f <= high, for each pair (NaN for an empty band)."""
+    total = np.concatenate([[0.0], np.cumsum(power, dtype=np.float64)])
+    start = np.searchsorted(freqs, low, side="right")
+    stop = np.searchsorted(freqs, high, side="right")
+    count = stop - start
+    with np.errstate(invalid="ignore", divide="ignore"):
+        return np.where(count > 0, (total[stop] - total[start]) / np.maximum(count, 1), np.nan)
+
+
 def tail_ratios(freqs: np.ndarray, power: np.ndarray) -> np.ndarray:
-    """For each edge of _BANDS: mean power just above it over mean power just below it."""
-    out = np.ones(_BANDS.size)
-    for i, edge in enumerate(_BANDS):
-        upper = power[(freqs > edge) & (freqs <= min(0.5, edge * _UPPER))]
-        lower = power[(freqs > edge * _LOWER[0]) & (freqs <= edge * _LOWER[1])]
-        if upper.size and lower.size and float(lower.mean()) > 0:
-            out[i] = float(upper.mean()) / float(lower.mean())
-    return out
+    """For each edge of _BANDS: mean power just above it over mean power just below it (1.0
+    where a band is empty or the lower one holds nothing above the rounding floor)."""
+    upper = _band_means(freqs, power, _BANDS, np.minimum(0.5, _BANDS * _UPPER))
+    lower = _band_means(freqs, power, _BANDS * _LOWER[0], _BANDS * _LOWER[1])
+    with np.errstate(invalid="ignore", divide="ignore"):
+        ratios = upper / lower
+    return np.where(np.isfinite(ratios) & (lower > 0), ratios, 1.0)
 
 
 def native_fraction(ratios: np.ndarray) -> float:
