@@ -93,7 +93,10 @@ def _place(bed: Image.Image, item: Image.Image, x: int, y: int, angle: float,
         shade = Image.new("RGB", rotated.size, (0, 0, 0))
         bed.paste(Image.composite(shade, region, blur), (x + off, y + off))
     bed.paste(rotated.convert("RGB"), (x, y), alpha)
-    left, top, right, bottom = alpha.point(lambda a: 255 if a > 127 else 0).getbbox()
+    bbox = alpha.point(lambda a: 255 if a > 127 else 0).getbbox()
+    if bbox is None:
+        raise ValueError("an item without opaque pixels")
+    left, top, right, bottom = bbox
     return (x + left, y + top, right - left, bottom - top)
 
 
