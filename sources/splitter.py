@@ -175,7 +175,7 @@ def detect_bed(arr: np.ndarray) -> BedGuess:
 
 
 def _rgb(values: np.ndarray) -> tuple[int, int, int]:
-    r, g, b = (int(round(float(v))) for v in values[:3])
+    r, g, b = (round(float(v)) for v in values[:3])
     return r, g, b
 
 
