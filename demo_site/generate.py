@@ -45,6 +45,7 @@ from collector.demo_site.hosts import (
     LAST_MODIFIED,
     RETRY_AFTER_FORM,
 )
+from collector.demo_site.pixel_cases import build_pixel_cases
 
 ROBOTS_API = """# Fernhollow Field Society: API and media host
 User-agent: *
@@ -92,6 +93,7 @@ def generate(out_dir: Path, *, seed: int = SEED) -> dict[str, Any]:
     build_api_linked(b)
     build_gallery(b)
     build_scans(b)
+    build_pixel_cases(b)
     hosts = _hosts_section(DEFAULT_RATE)
     b.put_page(4, "/policies/robots.txt", ROBOTS_ANNEX, "text/plain; charset=utf-8",
                role="robots")

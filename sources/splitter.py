@@ -22,7 +22,7 @@ import math
 from dataclasses import dataclass
 
 import numpy as np
-from PIL import Image
+from PIL import Image, ImageFilter
 
 DEFAULT_MIN_AREA = 2000  # px in the full-size scan (common practice, no source)
 DEFAULT_MIN_SOLIDITY = 0.85  # below this a component is probably several touching items
@@ -194,18 +194,23 @@ def stated_bed(text: str, guess: BedGuess) -> BedGuess:
     return BedGuess(colour, dark, True, guess.sides)
 
 
-def colour_difference(rgb: np.ndarray, bed: tuple[int, int, int]) -> np.ndarray:
-    """How far each pixel's colour is from the bed's, brightness left aside: the RGB image is
-    smoothed (a SMOOTH px box, so sensor noise shrinks about SMOOTH times), the bed colour is
-    scaled to each pixel's brightness (uneven lighting and neutral shadows keep the bed's
+def colour_difference(smooth: np.ndarray, bed: tuple[int, int, int]) -> np.ndarray:
+    """How far each pixel's colour is from the bed's, brightness left aside, on an RGB image
+    already smoothed (``smoothed``: sensor noise shrinks about SMOOTH times): the bed colour
+    is scaled to each pixel's brightness (uneven lighting and neutral shadows keep the bed's
     colour) and the neutral (grey) part of the difference is removed."""
-    from scipy import ndimage
-    smooth = ndimage.uniform_filter(rgb.astype(np.float32), size=(SMOOTH, SMOOTH, 1))
+    rgb = smooth.astype(np.float32)
     bed_arr = np.asarray(bed, dtype=np.float32)
-    gain = np.clip(smooth @ LUMA / max(1.0, float(bed_arr @ LUMA)), 0.05, 20.0)
-    diff = smooth - gain[..., None] * bed_arr
+    gain = np.clip(rgb @ LUMA / max(1.0, float(bed_arr @ LUMA)), 0.05, 20.0)
+    diff = rgb - gain[..., None] * bed_arr
     diff -= diff.mean(axis=2, keepdims=True)
     return np.sqrt((diff * diff).sum(axis=2))
+
+
+def smoothed(im: Image.Image) -> np.ndarray:
+    """The RGB image after a SMOOTH x SMOOTH box blur (Pillow's, which releases the GIL while
+    it works, so a split does not hold up the run's other threads)."""
+    return np.asarray(im.filter(ImageFilter.BoxBlur(SMOOTH // 2)), dtype=np.uint8)
 
 
 def find_items(gray: np.ndarray, *, chroma: np.ndarray | None = None, scale: int = 1,
@@ -356,7 +361,7 @@ def analyse_scan(im: Image.Image, *, min_area: int = DEFAULT_MIN_AREA,
     gray = np.asarray(_to_grey(small), dtype=np.uint8)
     rgb = None
     if small.mode in ("RGB", "RGBA", "P", "CMYK", "YCbCr", "LAB", "HSV"):
-        rgb = np.asarray(_to_rgb(small), dtype=np.uint8)
+        rgb = smoothed(_to_rgb(small))
     bed = detect_bed(rgb if rgb is not None else gray)
     if background:
         bed = stated_bed(background, bed)
