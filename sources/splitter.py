@@ -198,13 +198,20 @@ def colour_difference(smooth: np.ndarray, bed: tuple[int, int, int]) -> np.ndarr
     """How far each pixel's colour is from the bed's, brightness left aside, on an RGB image
     already smoothed (``smoothed``: sensor noise shrinks about SMOOTH times): the bed colour
     is scaled to each pixel's brightness (uneven lighting and neutral shadows keep the bed's
-    colour) and the neutral (grey) part of the difference is removed."""
-    rgb = smooth.astype(np.float32)
-    bed_arr = np.asarray(bed, dtype=np.float32)
-    gain = np.clip(rgb @ LUMA / max(1.0, float(bed_arr @ LUMA)), 0.05, 20.0)
-    diff = rgb - gain[..., None] * bed_arr
-    diff -= diff.mean(axis=2, keepdims=True)
-    return np.sqrt((diff * diff).sum(axis=2))
+    colour) and the neutral (grey) part of the difference is removed. Element-wise numpy
+    only, which runs without holding the GIL."""
+    r, g, b = (smooth[..., i].astype(np.float32) for i in range(3))
+    bed_r, bed_g, bed_b = (float(c) for c in bed)
+    luma = r * LUMA[0] + g * LUMA[1] + b * LUMA[2]
+    gain = np.clip(luma / max(1.0, bed_r * 0.299 + bed_g * 0.587 + bed_b * 0.114), 0.05, 20.0)
+    r -= gain * bed_r
+    g -= gain * bed_g
+    b -= gain * bed_b
+    grey = (r + g + b) / 3.0
+    r -= grey
+    g -= grey
+    b -= grey
+    return np.sqrt(r * r + g * g + b * b)
 
 
 def smoothed(im: Image.Image) -> np.ndarray:
