@@ -15,8 +15,8 @@ import statistics
 import sys
 import time
 
+from collector.demo_site.scan_beds import BED_KINDS, iou, make_bed
 from collector.sources import splitter
-from demo_site.scan_beds import BED_KINDS, iou, make_bed
 
 
 def match(found: list[tuple[int, int, int, int]],

@@ -10,8 +10,8 @@ import numpy as np
 import pytest
 from PIL import Image
 
+from collector.demo_site.scan_beds import BED_KINDS, iou, make_bed
 from collector.sources import splitter
-from demo_site.scan_beds import BED_KINDS, iou, make_bed
 
 # Small beds (A4 at 100 dpi) keep the tests quick; bench/scan_beds.py runs 300 dpi beds.
 DPI = 100
