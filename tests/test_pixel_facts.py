@@ -230,3 +230,25 @@ def test_recipe_policy_keys_name_what_is_expected(tmp_path: Path, text: str,
     with pytest.raises(RecipeError) as err:
         load_recipe(tmp_path / "bad.toml")
     assert message in str(err.value)
+
+
+def test_every_pillow_mode_is_measured_without_error() -> None:
+    """Pillow's modes (Pillow docs, "Concepts > Modes": 1, L, LA, La, P, PA, RGB, RGBA, RGBa,
+    CMYK, YCbCr, LAB, HSV, I, I;16, I;16B, F): the estimate and the share never fail; the
+    premultiplied modes (RGBa, La) read their lowercase "a" band."""
+    base = detailed(14, (120, 100))
+    rgba = base.convert("RGBA")
+    alpha = np.full((100, 120), 255, dtype=np.uint8)
+    alpha[:25] = 0
+    rgba.putalpha(Image.fromarray(alpha))
+    grey16 = np.asarray(base.convert("L"), dtype=np.uint16) * 257
+    images = [base.convert(m) for m in ("1", "L", "P", "RGB", "CMYK", "YCbCr", "HSV", "I", "F")]
+    images += [Image.fromarray(grey16), Image.fromarray(grey16).convert("I;16B"),
+               Image.merge("LAB", [base.convert("L")] * 3), rgba.convert("P").convert("PA")]
+    for im in images:
+        est = estimate_enlargement(im)
+        assert est is not None and (est.native_width, est.native_height) == (120, 100), im.mode
+        assert transparent_share(im) == 0.0 or im.mode == "PA", im.mode
+    for mode in ("RGBA", "RGBa", "LA", "La"):
+        im = rgba.convert(mode) if mode != "La" else rgba.convert("LA").convert("La")
+        assert transparent_share(im) == pytest.approx(0.25), mode

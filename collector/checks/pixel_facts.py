@@ -61,24 +61,33 @@ def transparent_share(im: Image.Image) -> float:
     image without an alpha band or a transparency entry (Pillow docs, see module)."""
     if im.mode not in _ALPHA_MODES and "transparency" not in im.info:
         return 0.0
-    if im.mode in ("RGBA", "LA", "RGBa", "La"):
-        alpha = im.getchannel("A")
-    else:  # P / PA / L / RGB with a transparency entry: Pillow resolves it in convert()
-        alpha = im.convert("RGBA").getchannel("A")
+    if im.mode in ("RGBA", "LA", "RGBa", "La", "PA"):
+        alpha = im.getchannel(im.getbands()[-1])  # "A", or "a" for premultiplied modes
+    else:  # P / L / RGB with a transparency entry: Pillow resolves it in convert()
+        try:
+            alpha = im.convert("RGBA").getchannel("A")
+        except ValueError:  # a mode Pillow cannot convert: nothing to measure
+            return 0.0
     hist = alpha.histogram()
     total = sum(hist)
     return round((total - hist[255]) / total, 6) if total else 0.0
 
 
-def _luma(im: Image.Image) -> np.ndarray:
+def _luma(im: Image.Image) -> np.ndarray | None:
     """The image as luma (uint8, or float32 for 16-bit and float modes scaled by their own
-    range to 0..255, so the rounding floor below stays the same)."""
+    range to 0..255, so the rounding floor below stays the same); None for a mode Pillow
+    cannot turn into greyscale."""
     if im.mode in ("I;16", "I;16B", "I;16L", "I", "F"):
         arr = np.asarray(im, dtype=np.float32)
         span = float(arr.max() - arr.min())
         return (arr - float(arr.min())) * (255.0 / span) if span > 0 else arr * 0
-    if im.mode != "L":
-        im = im.convert("L")
+    try:
+        if im.mode == "LAB":
+            im = im.getchannel("L")  # lightness; Pillow has no LAB -> L conversion
+        elif im.mode != "L":
+            im = im.convert("L")
+    except ValueError:
+        return None
     return np.asarray(im)
 
 
@@ -138,11 +147,13 @@ def native_fraction(ratios: np.ndarray) -> float:
 
 def estimate_enlargement(im: Image.Image) -> Enlargement | None:
     """Estimated native size of the image as given (first frame, orientation as stored), or
-    None when a side is under 64 px (too short for a spectrum)."""
+    None when a side is under 64 px (too short for a spectrum) or the mode has no greyscale."""
     width, height = im.size
     if min(width, height) < _MIN_LINE:
         return None
     arr = _luma(im)
+    if arr is None:
+        return None
     rows, cols = tail_ratios(*_spectrum(_lines(arr))), tail_ratios(*_spectrum(_lines(arr.T)))
     both = native_fraction((rows + cols) / 2)  # one verdict, steadier than either axis alone
     if both >= 1.0:
