@@ -104,6 +104,7 @@ def _api_pages_item(b: Builder, i: int, item: Item) -> None:
         im.putalpha(mask)
         item.image_path = f"/media/specimens/{key}.png"
         b.serve_image(item, png(im), "image/png")
+        item.flags = ["transparent"]  # the demo recipe flags transparent images
     elif i == 3:  # palette PNG
         im = b.picture(key, 600, 400).quantize(64, method=FAST)
         item.image_path = f"/media/specimens/{key}.png"

@@ -47,6 +47,7 @@ from collector.demo_site.hosts import (
 )
 from collector.demo_site.iiif_archive import build_iiif
 from collector.demo_site.oai_content import build_oai, oai_manifest
+from collector.demo_site.pixel_cases import build_pixel_cases
 from collector.demo_site.tdm import build_reading_room
 
 ROBOTS_API = """# Fernhollow Field Society: API and media host
@@ -98,6 +99,7 @@ def generate(out_dir: Path, *, seed: int = SEED) -> dict[str, Any]:
     build_oai(b)
     iiif_source = build_iiif(b)
     build_reading_room(b)
+    build_pixel_cases(b)
     hosts = _hosts_section(DEFAULT_RATE)
     b.put_page(4, "/policies/robots.txt", ROBOTS_ANNEX, "text/plain; charset=utf-8",
                role="robots")

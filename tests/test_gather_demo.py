@@ -403,3 +403,25 @@ def test_items_skipped_for_a_reservation_caused_no_image_request(demo_run, demo_
     rejected = {i["sha256"] for i in room
                 if i["state"] == "rejected"}
     assert rejected and not rejected & set(dict(col.store.iter_stored()))
+
+
+def test_transparent_and_enlarged_images_carry_exactly_their_flags(demo_run, demo_server) -> None:
+    """The demo recipe flags transparent and enlarged images: the items the manifest marks
+    (palette PNG with a transparent entry, RGBA cut-outs, a 6x enlargement) carry the flag on
+    their stored file and no other stored file does (transparency as Pillow reads it, Pillow
+    docs "Image file formats > PNG"; enlargement: common practice, no source)."""
+    col, _, _ = demo_run
+    keyed = ledger_items(col)
+    with col.ledger(readonly=True) as ledger:
+        flags = {row["sha256"]: row["flags"] for row in ledger.query(
+            "SELECT sha256, flags FROM files")}
+    marked = 0
+    for item in demo_server.manifest["items"]:
+        if item["state"] != "stored":
+            continue
+        row = find(keyed, demo_server, item["source"], item["key"], item.get("page_url"))
+        for flag in ("transparent", "enlarged"):
+            assert (flag in flags[row["file_sha256"]]) == (flag in item["flags"]), (
+                item["key"], flag)
+            marked += flag in item["flags"]
+    assert marked >= 4

@@ -36,7 +36,7 @@ from typing import Any
 import numpy as np
 from PIL import Image
 
-__all__ = ["DominantColour", "ColourFacts", "colour_facts", "srgb_to_lab"]
+__all__ = ["ColourFacts", "DominantColour", "colour_facts", "srgb_to_lab"]
 
 MAX_SAMPLES = 1024  # pixels sampled for k-means (a distribution, not every pixel)
 WORK_SIDE = 96  # the facts are computed on a picture this small (longest side, px)

@@ -10,8 +10,6 @@ from __future__ import annotations
 
 import hashlib
 import ipaddress
-import json
-import os
 import re
 import tomllib
 from collections.abc import Callable, Mapping
@@ -21,6 +19,11 @@ from typing import Any
 from urllib.parse import urlsplit
 
 from collector.checks.rights_statements import ALLOW_PREFIX, allow_entry_problem
+from collector.config.recipe_env import (  # noqa: F401 (env_problems: the recipe's name)
+    env_problems,
+    env_problems_in,
+    source_prefix,
+)
 from collector.config.stop_times import (  # noqa: F401 (re-exported: the recipe's names)
     StopOptionsError,
     check_clock,
@@ -39,7 +42,6 @@ from collector.schema import (
     describe,
     did_you_mean,
     env_names,
-    expand_env,
     header_value_problem,
     one_of,
 )
@@ -119,62 +121,6 @@ def _check_spdx_list(values: Any) -> str | None:
         return (f"entries must be SPDX licence ids like \"CC-BY-4.0\" (see "
                 f"https://spdx.org/licenses/), got {bad[0]!r}")
     return None
-
-
-def env_problems(recipe: Recipe, *, unset: bool = True) -> list[RecipeProblem]:
-    """A problem for every ``${NAME}`` the recipe uses whose variable is not set (unless
-    ``unset`` is false), and for every header whose value, once its variables are filled in,
-    holds CR, LF or NUL (a token read from a file with Windows line endings). The problem
-    never shows the value."""
-    data = {"network": {"headers": recipe.network.headers}, "sources": recipe.sources}
-    return _env_problems(data, str(recipe.path), unset=unset)
-
-
-def source_prefix(index: int, table: Any) -> str:
-    """How a problem names the ``index``-th (from 0) [[sources]] table: by position from 1,
-    and by name when it has one: ``sources[2] ("gallery")``."""
-    name = table.get("name") if isinstance(table, dict) else None
-    named = f" ({json.dumps(name, ensure_ascii=False)})" if isinstance(name, str) and \
-        name.strip() else ""
-    return f"sources[{index + 1}]{named}"
-
-
-def _env_places(data: Mapping[str, Any]) -> list[tuple[str, Any]]:
-    """(key path, value) of every params/headers value in parsed recipe data, checked or not."""
-    network = data.get("network")
-    headers = network.get("headers") if isinstance(network, dict) else None
-    places = [(f"network.headers.{k}", v) for k, v in headers.items()] \
-        if isinstance(headers, dict) else []
-    raw_sources = data.get("sources")
-    for i, src in enumerate(raw_sources if isinstance(raw_sources, list) else []):
-        for table in ("params", "headers"):
-            values = src.get(table) if isinstance(src, dict) else None
-            if isinstance(values, dict):
-                places += [(f"{source_prefix(i, src)}.{table}.{k}", v) for k, v in values.items()]
-    return places
-
-
-def _env_problems(data: Mapping[str, Any], file: str, *, unset: bool) -> list[RecipeProblem]:
-    problems: list[RecipeProblem] = []
-    for path, text in _env_places(data):
-        if not isinstance(text, str):
-            continue
-        names = env_names(text)
-        missing = [name for name in names if name not in os.environ]
-        if unset:
-            problems += [RecipeProblem(file, path,
-                                       f"uses ${{{name}}}, but the environment variable {name} "
-                                       "is not set; set it before gathering")
-                         for name in missing]
-        if names and not missing and ".headers." in path:
-            problem = header_value_problem(expand_env(text))
-            if problem:
-                problems.append(RecipeProblem(
-                    file, path,
-                    f"{problem} once ${{{names[0]}}} is filled in; remove the line ending "
-                    "from the environment variable (was it read from a file with Windows "
-                    "line endings?)"))
-    return problems
 
 
 def _depth(data: Any) -> int:
@@ -283,6 +229,20 @@ class Images:
     max_pixels: int = _setting(89_478_485, at_least(0, strict=True))
     near_distance: int = _setting(8, at_least(0))
     near_duplicates: str = _setting("keep", one_of("keep", "drop"))
+    # Images with transparent pixels, and images that look enlarged from a native shortest
+    # side under min_side: keep, keep and flag, or reject (collector.checks.pixel_facts).
+    transparent: str = _setting("keep", one_of("keep", "flag", "reject"))
+    enlarged: str = _setting("keep", one_of("keep", "flag", "reject"))
+    # The release export flattens images with transparent pixels onto this colour ("#rrggbb";
+    # "" = leave them as stored). The flattened PNG is a derived file; the store is unchanged.
+    release_background: str = _setting("", lambda v: _check_colour(v) if v else None)
+
+
+def _check_colour(value: Any) -> str | None:
+    """A background colour is written "#rrggbb" (CSS Color Level 4, hex notation)."""
+    if isinstance(value, str) and re.fullmatch(r"#[0-9A-Fa-f]{6}", value):
+        return None
+    return f'must be a colour written "#rrggbb", e.g. "#ffffff" for white, got {value!r}'
 
 
 @dataclass(frozen=True)
@@ -580,7 +540,7 @@ def check_recipe(path: Path) -> Recipe:
     except (tomllib.TOMLDecodeError, RecursionError):
         data = {}  # already reported by parse_recipe
     if _depth(data) <= MAX_DEPTH:
-        problems += _env_problems(data, str(path), unset=True)
+        problems += env_problems_in(data, str(path), unset=True)
     if problems or recipe is None:
         raise RecipeError(problems)
     return recipe

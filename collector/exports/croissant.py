@@ -105,6 +105,9 @@ PROVENANCE_FIELDS: dict[str, tuple[str, str]] = {
     "size": ("sc:Integer", "file size in bytes"),
     "flags": ("sc:Text", "review flags separated by ';' (gps, camera_serial, owner_name, "
                          "licence_conflict, ...)"),
+    "derived_from": ("sc:Text", "SHA-256 of the stored original when the released file is "
+                                "derived from it (flattened onto a background colour), else "
+                                "empty"),
 }
 # Per-row licence and creator also mean schema.org's license/creator (Croissant 1.1's
 # equivalentProperty; mlcroissant 1.1.1 accepts it under 1.0).

@@ -73,7 +73,7 @@ IMAGES_DIR = "images"
 PROVENANCE_COLUMNS = (
     "file_name", "sha256", "source", "source_key", "page_url", "image_url", "title", "creator",
     "licence_raw", "spdx_id", "licence_url", "fetched_at", "width", "height", "format", "mime",
-    "size", "flags",
+    "size", "flags", "derived_from",
 )
 ATTRIBUTION_COLUMNS = ("file_name", "title", "author", "source", "licence", "licence_url")
 
@@ -284,7 +284,7 @@ def _policy_rows(ledger: Ledger, recipe: Recipe, counts: ReleaseCounts, *,
             "spdx_id": spdx or "", "licence_url": licence_url or licence_deed_url(spdx) or "",
             "fetched_at": fetched_at or stored_at or "", "width": width, "height": height,
             "format": fmt or "", "mime": mime or "", "size": size,
-            "flags": ";".join(flags), "_ext": ext, "_statement": statement,
+            "flags": ";".join(flags), "derived_from": "", "_ext": ext, "_statement": statement,
             "_state": state, "_date": item_date,
             "_metadata": release.metadata_of(metadata), "_parent_sha256": parent_sha256,
             "_stored_at": stored_at,
@@ -458,7 +458,8 @@ def _write_rows(ledger: Ledger, recipe: Recipe, store: Store, images: Path,
                 if src is None:
                     counts.missing_files += 1
                     continue
-                how = link_or_copy(src, images / row["file_name"])
+                flat = _flattened(src, images, row, recipe.images.release_background)
+                how = "derived" if flat else link_or_copy(src, images / row["file_name"])
                 if how == "linked":
                     counts.linked += 1
                 elif how == "copied":
@@ -472,6 +473,23 @@ def _write_rows(ledger: Ledger, recipe: Recipe, store: Store, images: Path,
                 row["spdx_id"] or _statement_words(row["_statement"]) or row["licence_raw"]
                 or "unknown", row["licence_url"])])
     return counts, sink.digest.hexdigest()
+
+
+def _flattened(src: Path, images: Path, row: dict[str, Any], colour: str) -> bool:
+    """With [images] release_background set, a transparent image is released as a PNG
+    flattened onto that colour (collector.exports.flatten); the row then describes the derived
+    file and names the stored original in ``derived_from``."""
+    if not colour:
+        return False
+    from collector.exports.flatten import flatten_release_copy
+
+    flat = flatten_release_copy(src, images, row["file_name"].rsplit(".", 1)[0], colour)
+    if flat is None:
+        return False
+    row.update(file_name=flat.file_name, derived_from=row["sha256"], sha256=flat.sha256,
+               size=flat.size, format="PNG", mime="image/png", _ext="png",
+               flags=";".join(filter(None, [row["flags"], f"flattened:{colour}"])))
+    return True
 
 
 def export_datasheet(root: Path, *, out: Path | None = None, answers_path: Path | None = None,

@@ -386,7 +386,9 @@ class Ingest:
                                       max_pixels=images.max_pixels,
                                       min_side=images.min_side,
                                       min_aspect=images.min_aspect,
-                                      max_aspect=images.max_aspect, full_decode=False)
+                                      max_aspect=images.max_aspect, full_decode=False,
+                                      transparent=images.transparent,
+                                      enlarged=images.enlarged)
             except ImageRejected as exc:
                 self.record.finish(item_id, "rejected", exc.reason, exc.detail, **extra)
                 return

@@ -155,6 +155,16 @@ class _Note:
     message: str
 
 
+def _import_before_threads() -> None:
+    """Import the scipy submodules the run's threads use (the pHash's DCT, the scan
+    splitter's ndimage and spatial) here, before any thread starts: first imports of two scipy
+    submodules from two threads at once can fail inside scipy ("partially initialized module",
+    its submodules import each other), which ended demo gathers as internal errors."""
+    import scipy.fft
+    import scipy.ndimage
+    import scipy.spatial  # noqa: F401
+
+
 class Gatherer:
     """One run of a recipe over a collection. Create, then call :meth:`run`."""
 
@@ -236,6 +246,7 @@ class Gatherer:
                 signal.signal(signal.SIGTERM, previous)
 
     def _run(self, options: dict[str, Any] | None) -> RunResult:
+        _import_before_threads()
         self.run_id = self.ledger.start_run(self.recipe.sha256, options or {}, __version__)
         if self.recipe.text:  # recipe history: the text once per sha256, secrets hidden
             self.ledger.add_row("recipes", {"sha256": self.recipe.sha256,

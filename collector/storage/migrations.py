@@ -128,7 +128,6 @@ def _migration_6(db: sqlite_utils.Database) -> None:
             hosts.add_column(name, kind)
 
 
-
 def _migration_7(db: sqlite_utils.Database) -> None:
     """Keeping a published collection honest over time.
 
@@ -162,7 +161,18 @@ def _migration_7(db: sqlite_utils.Database) -> None:
         db.table("observations").create_index(["item_id"])
 
 
+def _migration_8(db: sqlite_utils.Database) -> None:
+    """Pixel facts for training data: the share of pixels that are not fully opaque, and the
+    estimated native size of an image that looks enlarged (its own size otherwise). Rows stored
+    before stay NULL (not measured)."""
+    files = db.table("files")
+    present = files.columns_dict
+    for name, kind in (("transparent_share", float), ("native_width", int),
+                       ("native_height", int)):
+        if name not in present:
+            files.add_column(name, kind)
+
 
 MIGRATIONS: dict[int, Callable[[sqlite_utils.Database], None]] = {
     1: _migration_1, 2: _migration_2, 3: _migration_3, 4: _migration_4, 5: _migration_5,
-    6: _migration_6, 7: _migration_7}
+    6: _migration_6, 7: _migration_7, 8: _migration_8}
