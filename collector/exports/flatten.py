@@ -4,8 +4,9 @@ Pixels that are not fully opaque train as whatever a loader fills them with (oft
 release export can instead composite such an image onto the colour the recipe names
 (``[images] release_background``) and write the result as a new PNG, a derived file named
 ``<release name of the original>-flat.png``; provenance.csv names the stored original it
-came from. The store keeps the original bytes unchanged. Transparency as Pillow reads it (Pillow documentation,
-"Concepts > Modes" and "Image file formats > PNG > transparency"); only the first frame is used.
+came from. The store keeps the original bytes unchanged. Transparency as Pillow reads it
+(Pillow documentation, "Concepts > Modes" and "Image file formats > PNG > transparency");
+only the first frame is used.
 """
 
 from __future__ import annotations
