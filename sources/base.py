@@ -108,6 +108,7 @@ class PageFetcher(Protocol):
         params: Mapping[str, str] | None = None,
         headers: Mapping[str, str] | None = None,
         secret_params: Iterable[str] = (),
+        keep_for: float = 0.0,
     ) -> Page: ...
 
 

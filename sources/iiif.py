@@ -10,9 +10,10 @@ licence URL; a RightsStatements.org URI is recognised by the run), ``requiredSta
 ``attribution``, ``homepage`` / 2.1 ``related`` (the page URL), ``navDate``, ``partOf``.
 
 Sizes (sources.iiif_sizes): each image service's ``info.json`` is read through the fetcher once
-per run (cached here by service id; a source kind has no ledger, so the cache lives as long as
-the listing) and the request is chosen from it: ``target_size`` (longest side), level-0
-``sizes``, ``maxWidth``/``maxHeight``/``maxArea``, never upscaled. What was chosen and why is
+per run (cached here by service id) and kept in the ledger for a week by the fetcher
+(``get_page(keep_for=...)``), so later runs do not ask again; the request is chosen from it:
+``target_size`` (longest side), level-0 ``sizes``, ``maxWidth``/``maxHeight``/``maxArea``,
+never upscaled. What was chosen and why is
 recorded as the candidate's ``size_request`` (service, full size, size asked, why); a
 service with only tiles gives a note and its canvas is skipped.
 """
@@ -102,6 +103,11 @@ class Config:
                    date_labels=tuple(get("date_labels")))
 
 
+# info.json describes a service's sizes, which change rarely: kept 7 days (common practice,
+# no source; the Image API sets no caching rule of its own).
+INFO_KEEP_S = 7 * 24 * 3600.0
+
+
 @dataclass
 class _Walk:
     """State of one listing: documents read, manifests counted, info.json answers cached."""
@@ -119,9 +125,11 @@ class _Walker:
 
     def fetch_json(self, url: str, purpose: str) -> Any | None:
         """GET url and decode JSON; a failure becomes a note (the start URL's failure ends the
-        source through the raised FetchError)."""
+        source through the raised FetchError). An image service's info.json is kept in the
+        ledger for INFO_KEEP_S and not asked again meanwhile, in this run or later ones."""
         try:
-            page = self.fetcher.get_page(url, purpose=purpose)
+            page = self.fetcher.get_page(url, purpose=purpose,
+                                         keep_for=INFO_KEEP_S if purpose == "info" else 0.0)
         except FetchError as exc:
             if url == self.cfg.url:
                 raise

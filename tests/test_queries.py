@@ -25,7 +25,7 @@ from collector.storage.ledger import Ledger
 SAMPLE_ARGS: dict[str, Any] = {
     "sha256": "ab" * 32, "item_id": 1, "rowid": 1, "step": 8, "width": 10,
     "personal": ("gps", "camera_serial"), "conflict": "licence_conflict", "limit": 1,
-    "reasons": ("tdmrep_reserved", "noai_directive"),
+    "reasons": ("tdmrep_reserved", "noai_directive"), "url": "http://127.0.0.9/info.json",
 }
 
 # The read modules: status/trace/hash index, and the datasheet and release.
@@ -112,7 +112,7 @@ def test_the_queries_module_has_public_queries() -> None:
 def test_every_query_runs_on_a_healthy_ledger(ledger: Ledger, name: str) -> None:
     """Each query runs with its sample arguments and returns a result."""
     assert call_query(name, ledger) is not None or name in {
-        "queries.last_image_fetch", "queries.stored_jpeg_photo"}
+        "queries.last_image_fetch", "queries.stored_jpeg_photo", "queries.kept_page"}
 
 
 @pytest.mark.parametrize("name", PUBLIC_QUERIES)

@@ -57,6 +57,7 @@ from collector.fetching.answers import (
 from collector.fetching.body import Body, exc_size, read_body
 from collector.fetching.budgets import SYSTEM_CLOCK, Budget, Clock, HostBudgets, budgets_from_recipe
 from collector.fetching.http_target import transport_target
+from collector.fetching.kept_pages import keep_answer, kept_answer
 from collector.fetching.retry import Retryable, retry_policy
 from collector.fetching.robots import (
     MAX_ROBOTS_BYTES,
@@ -225,21 +226,30 @@ class Fetcher:
     def get_page(self, url: str, *, purpose: str = "listing", item_id: int | None = None,
                  params: Mapping[str, Any] | None = None,
                  headers: Mapping[str, str] | None = None,
-                 secret_params: Iterable[str] = (), max_bytes: int | None = None) -> Page:
+                 secret_params: Iterable[str] = (), max_bytes: int | None = None,
+                 keep_for: float = 0.0) -> Page:
         """GET a page (JSON/HTML) politely; raises FetchError unless the final status is 2xx.
-        ``max_bytes`` caps the body below ``max_page_bytes`` (small files such as tdmrep.json)."""
+        ``max_bytes`` caps the body below ``max_page_bytes`` (small files such as tdmrep.json).
+        ``keep_for`` (seconds): a 2xx answer is kept in the ledger and given again, with no
+        request, until it is that old (a IIIF service's info.json across runs)."""
         secrets = (*self.settings.secret_params, *secret_params)
         if params:
             params = filled_from_env(params, url, secrets)
         full = add_params(url, params)
+        kept = kept_answer(self.ledger, full, keep_for, self.clock.time())
+        if kept is not None:
+            return kept
         result = self._fetch(full, purpose=purpose, item_id=item_id, headers=headers or {},
                              secret_params=secrets,
                              max_bytes=min(max_bytes or self.settings.max_page_bytes,
                                            self.settings.max_page_bytes))
         if not 200 <= result.status < 300:
             raise FetchError(redact(result.url, secrets), f"http_{result.status}", result.status)
-        return Page(result.url, result.status, result.headers, result.body.data or b"",
+        page = Page(result.url, result.status, result.headers, result.body.data or b"",
                     result.encoding)
+        if keep_for > 0 and not secrets:  # a page asked with a secret is never kept
+            keep_answer(self.ledger, full, page, self.clock.time())
+        return page
 
     def download(self, url: str, dest_dir: Path, *, item_id: int | None = None,
                  etag: str | None = None, last_modified: str | None = None,

@@ -10,8 +10,7 @@ into a file. :meth:`Ledger.open` refuses a file without one (0 bytes, no ``schem
 table, not SQLite) with :class:`~collector.errors.LedgerUnusable`: a lost ledger silently
 re-created beside a full store would make every stored file look like crash debris.
 
-All methods are thread-safe (one connection, one lock): the gather worker pool writes from
-several threads.
+All methods are thread-safe (one connection, one lock): the gather's threads share it.
 """
 
 from __future__ import annotations
@@ -100,10 +99,8 @@ class Ledger:
     @classmethod
     def open(cls, path: Path, *, readonly: bool = False) -> Ledger:
         """Open an existing ledger, applying any pending migrations (unless read-only).
-
         A file that is empty, is not SQLite or has no ``schema_version`` table is refused
-        with LedgerUnusable (exit 2): it is never given a fresh schema here.
-        """
+        with LedgerUnusable (exit 2): it is never given a fresh schema here."""
         if not path.is_file():
             raise LedgerError(
                 f"no ledger at {path}; is this a collection folder? Create one with "
@@ -303,7 +300,7 @@ class Ledger:
             raise LedgerUnusable(f"{source} cannot be read as a ledger ({exc})") from exc
 
     def columns(self, table: str) -> frozenset[str]:
-        """The column names of ``table`` (a read of an older schema asks before it reads)."""
+        """The column names of ``table`` (a read of an older schema asks first)."""
         return self._columns(table)
 
     def has_table(self, table: str) -> bool:
@@ -328,11 +325,11 @@ class Ledger:
 
     # Hot paths use plain SQL: sqlite-utils inspects the table on every call, which cost
     # ~25 statements per stored file in the ingest benchmark.
-    def _insert(self, table: str, row: dict[str, Any], *, ignore: bool = False) -> int:
+    def _insert(self, table: str, row: dict[str, Any], *, ignore: bool = False,
+                replace: bool = False) -> int:
         data = self._checked(table, row)
-        names = ", ".join(data)
-        marks = ", ".join("?" for _ in data)
-        verb = "INSERT OR IGNORE" if ignore else "INSERT"
+        names, marks = ", ".join(data), ", ".join("?" for _ in data)
+        verb = "INSERT OR IGNORE" if ignore else "INSERT OR REPLACE" if replace else "INSERT"
         with self._lock, self._translate(f"write to {table}"), self._write():
             cur = self._conn.execute(f"{verb} INTO {table} ({names}) VALUES ({marks})",
                                      list(data.values()))
@@ -430,10 +427,12 @@ class Ledger:
 
     # -- upkeep: withdrawals, recipe texts, re-check observations (schema 7) -----------------
     def add_row(self, table: str, row: dict[str, Any]) -> int:
-        """Append a row to withdrawals, observations or recipes (a known recipe is kept)."""
-        if table not in ("withdrawals", "observations", "recipes"):
+        """Append a row to withdrawals, observations or recipes (a known recipe is kept), or
+        keep a page for re-use (kept_pages: a page kept before under the URL is replaced)."""
+        if table not in ("withdrawals", "observations", "recipes", "kept_pages"):
             raise LedgerError(f"add_row does not write to {table}")
-        return self._insert(table, row, ignore=table == "recipes")
+        return self._insert(table, row, ignore=table == "recipes",
+                            replace=table == "kept_pages")
 
     def undo_withdrawal(self, withdrawal_id: int, fields: dict[str, Any]) -> None:
         """Record that a withdrawal was undone (``undone_at``, ``undone_by``, ``undo_note``)."""

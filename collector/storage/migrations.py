@@ -173,6 +173,15 @@ def _migration_8(db: sqlite_utils.Database) -> None:
             files.add_column(name, kind)
 
 
+def _migration_9(db: sqlite_utils.Database) -> None:
+    """Pages a source asked to keep for re-use across runs (``kept_pages``: a IIIF image
+    service's info.json), with when they were fetched; re-asked once older than the source
+    says (``Fetcher.get_page(keep_for=...)``)."""
+    db.table("kept_pages").create({
+        "url": str, "fetched_at": str, "status": int, "content_type": str, "body": bytes,
+    }, pk="url", if_not_exists=True)
+
+
 MIGRATIONS: dict[int, Callable[[sqlite_utils.Database], None]] = {
     1: _migration_1, 2: _migration_2, 3: _migration_3, 4: _migration_4, 5: _migration_5,
-    6: _migration_6, 7: _migration_7, 8: _migration_8}
+    6: _migration_6, 7: _migration_7, 8: _migration_8, 9: _migration_9}

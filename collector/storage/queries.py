@@ -153,6 +153,16 @@ def stored_jpeg_photo(ledger: Ledger) -> str | None:
         "AND f.width >= 256 ORDER BY i.id LIMIT 1")
 
 
+def kept_page(ledger: Ledger, url: str) -> dict[str, Any] | None:
+    """The page kept for re-use under ``url`` (fetched_at, status, content_type, body), or
+    None (also for a ledger from before ``kept_pages``)."""
+    if not ledger.has_table("kept_pages"):
+        return None
+    rows = ledger.query("SELECT fetched_at, status, content_type, body FROM kept_pages "
+                        "WHERE url = ?", (url,))
+    return rows[0] if rows else None
+
+
 # --- trace ------------------------------------------------------------------------------------
 def items_of_file(ledger: Ledger, sha256: str, *, limit: int | None = None
                   ) -> list[dict[str, Any]]:
