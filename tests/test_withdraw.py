@@ -19,6 +19,7 @@ from collector.exports.datasheet import export_datasheet
 from collector.exports.trace import Tracer
 from collector.exports.trace_format import format_record
 from collector.run.gather import gather
+from collector.storage import datasheet_queries
 from collector.storage import ledger as ledger_module
 from collector.storage import upkeep_queries as uq
 from collector.storage.collection import Collection, init_collection, open_collection
@@ -68,8 +69,11 @@ def test_withdrawn_item_leaves_releases_and_trace_says_so(tmp_path: Path,
     before, _ = _released(col, tmp_path / "r0")
     assert item.file_sha256 in before
     with col.ledger() as ledger:
+        accepted = datasheet_queries.accepted_facts(ledger)["files"]
         done = withdraw(col, ledger, f"key:api-pages:{KEY}", reason="creator-request",
                         asked_by="R. Quillfeather", asked_on="2026-11-30")
+        # every export leaves it out: the datasheet's own numbers too
+        assert datasheet_queries.accepted_facts(ledger)["files"] == accepted - 1
     prov, names = _released(col, tmp_path / "r1")
     assert prov == before - {item.file_sha256}
     assert not any(item.file_sha256[:12] in name for name in names)
@@ -87,6 +91,7 @@ def test_withdrawn_item_leaves_releases_and_trace_says_so(tmp_path: Path,
     with col.ledger() as ledger:
         undo(ledger, done.id, undone_by="curator", note="asked by mistake")
         assert uq.withdrawal(ledger, done.id).undone_at is not None  # recorded, not deleted
+        assert datasheet_queries.accepted_facts(ledger)["files"] == accepted
     again, _ = _released(col, tmp_path / "r2")
     assert again == before
 
@@ -172,14 +177,16 @@ def test_the_migration_keeps_a_ledger_of_the_previous_schema(
     """A ledger written by the previous schema (its rows in place) is migrated on open: the
     upkeep tables appear, nothing is lost, and a withdrawal can be recorded."""
     newest = max(MIGRATIONS)
+    upkeep = next(n for n, migration in MIGRATIONS.items()  # the one adding the upkeep tables
+                  if "withdrawals" in (migration.__doc__ or ""))
     path = tmp_path / "ledger.sqlite"
-    monkeypatch.setattr(ledger_module, "SCHEMA_VERSION", newest - 1)
+    monkeypatch.setattr(ledger_module, "SCHEMA_VERSION", upkeep - 1)
     with Ledger.create(path) as old:
         source = old.source_id("desk", "scans", {})
         item = old.add_item(source, "a.png", {"state": "stored", "file_sha256": "ab" * 32})
         old.add_file({"sha256": "ab" * 32, "size": 3, "ext": "png", "first_item_id": item})
         old.start_run("cd" * 32, {}, "old")
-        assert old.schema_version() == newest - 1 and not old.has_table("withdrawals")
+        assert old.schema_version() == upkeep - 1 and not old.has_table("withdrawals")
     monkeypatch.setattr(ledger_module, "SCHEMA_VERSION", newest)
     with Ledger.open(path) as ledger:
         assert ledger.schema_version() == newest

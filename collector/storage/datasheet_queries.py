@@ -25,6 +25,18 @@ _ACCEPTED_FROM = (
     "JOIN sources s ON s.id = i.source_id "
     f"WHERE i.state IN ({_STATES_IN})"
 )
+# A file a withdrawal (not undone) names, by itself or by an item that brought it.
+_NOT_WITHDRAWN = (
+    " AND NOT EXISTS (SELECT 1 FROM withdrawals w WHERE w.undone_at IS NULL AND "
+    "(w.sha256 = f.sha256 OR w.item_id IN (SELECT x.id FROM items x "
+    "WHERE x.file_sha256 = f.sha256)))")
+
+
+def _accepted_from(ledger: Ledger) -> str:
+    """The accepted files the datasheet counts: withdrawn ones are left out of every number
+    (a ledger from before withdrawals has none). The release's own rows (``release_rows``)
+    keep them, so the release can count what it left out."""
+    return _ACCEPTED_FROM + (_NOT_WITHDRAWN if ledger.has_table("withdrawals") else "")
 
 
 def _host_of(url: str | None) -> str:
@@ -54,15 +66,15 @@ def _pairs(ledger: Ledger, sql: str, params: tuple[Any, ...] = ()) -> dict[str, 
 
 def _count(ledger: Ledger, where: str) -> int:
     """Accepted files that also match ``where`` (an SQL condition)."""
-    return int(ledger.scalar(f"SELECT count(*) {_ACCEPTED_FROM} AND {where}") or 0)
+    return int(ledger.scalar(f"SELECT count(*) {_accepted_from(ledger)} AND {where}") or 0)
 
 
 def _median(ledger: Ledger, column: str) -> float | None:
     """The median (mean of the two middle values for an even count), computed in SQL."""
-    n = ledger.scalar(f"SELECT count({column}) {_ACCEPTED_FROM}")
+    n = ledger.scalar(f"SELECT count({column}) {_accepted_from(ledger)}")
     if not n:
         return None
-    value = ledger.scalar(f"SELECT avg(v) FROM (SELECT {column} AS v {_ACCEPTED_FROM} "
+    value = ledger.scalar(f"SELECT avg(v) FROM (SELECT {column} AS v {_accepted_from(ledger)} "
                           f"AND {column} IS NOT NULL ORDER BY v LIMIT ? OFFSET ?)",
                           (2 - n % 2, (n - 1) // 2))
     return float(value)
@@ -218,16 +230,17 @@ def accepted_facts(ledger: Ledger) -> AcceptedFacts:
     ledger.sql_function("host_of", _host_of)
 
     def span(dim: str) -> Span:
-        lo, hi = ledger.rows(f"SELECT min(f.{dim}), max(f.{dim}) {_ACCEPTED_FROM}")[0]
+        lo, hi = ledger.rows(f"SELECT min(f.{dim}), max(f.{dim}) {_accepted_from(ledger)}")[0]
         return {"min": lo, "median": _median(ledger, f"f.{dim}"), "max": hi}
 
     def by(column: str) -> dict[str, int]:
-        return _pairs(ledger, f"SELECT {column}, count(*) {_ACCEPTED_FROM} "
+        return _pairs(ledger, f"SELECT {column}, count(*) {_accepted_from(ledger)} "
                               "GROUP BY 1 ORDER BY 2 DESC, 1")
 
     return {
-        "files": ledger.scalar(f"SELECT count(*) {_ACCEPTED_FROM}") or 0,
-        "bytes": ledger.scalar(f"SELECT coalesce(sum(f.size), 0) {_ACCEPTED_FROM}") or 0,
+        "files": ledger.scalar(f"SELECT count(*) {_accepted_from(ledger)}") or 0,
+        "bytes": ledger.scalar(
+            f"SELECT coalesce(sum(f.size), 0) {_accepted_from(ledger)}") or 0,
         "formats": by("f.format"), "modes": by("f.mode"),
         "by_licence": by(_licence_key(ledger)), "by_source": by("s.name"),
         "by_host": by("host_of(i.image_url)"),
@@ -251,8 +264,8 @@ def missing_facts(ledger: Ledger) -> MissingFacts:
 
 def flag_counts(ledger: Ledger) -> dict[str, int]:
     """Accepted files per flag name (the part before a ':'), most first."""
-    flagged_from = _ACCEPTED_FROM.replace("FROM files f", "FROM files f, json_each(f.flags) j",
-                                          1)
+    flagged_from = _accepted_from(ledger).replace(
+        "FROM files f", "FROM files f, json_each(f.flags) j", 1)
     return _pairs(ledger, "SELECT CASE WHEN instr(j.value, ':') > 0 THEN "
                           "substr(j.value, 1, instr(j.value, ':') - 1) ELSE j.value END, "
                           f"count(*) {flagged_from} GROUP BY 1 ORDER BY 2 DESC, 1")
@@ -263,10 +276,12 @@ def flagged_facts(ledger: Ledger, personal: tuple[str, ...], conflict: str) -> F
     marks = ", ".join("?" for _ in personal)
     return {
         "personal": int(ledger.scalar(
-            f"SELECT count(*) {_ACCEPTED_FROM} AND EXISTS (SELECT 1 FROM json_each(f.flags) "
+            f"SELECT count(*) {_accepted_from(ledger)} "
+            "AND EXISTS (SELECT 1 FROM json_each(f.flags) "
             f"WHERE value IN ({marks}))", personal) or 0),
         "conflict": int(ledger.scalar(
-            f"SELECT count(*) {_ACCEPTED_FROM} AND EXISTS (SELECT 1 FROM json_each(f.flags) "
+            f"SELECT count(*) {_accepted_from(ledger)} "
+            "AND EXISTS (SELECT 1 FROM json_each(f.flags) "
             "WHERE value = ?)", (conflict,)) or 0),
     }
 
@@ -331,14 +346,15 @@ def host_facts(ledger: Ledger) -> list[HostFacts]:
 def resolution_cells(ledger: Ledger, step: int) -> list[list[int]]:
     """Accepted files counted on a grid of ``step`` x ``step`` pixel cells: [w, h, n]."""
     return [[w, h, n] for w, h, n in ledger.rows(
-        f"SELECT (f.width / ?) * ?, (f.height / ?) * ?, count(*) {_ACCEPTED_FROM} "
+        f"SELECT (f.width / ?) * ?, (f.height / ?) * ?, count(*) {_accepted_from(ledger)} "
         "AND f.width IS NOT NULL AND f.height IS NOT NULL GROUP BY 1, 2 ORDER BY 1, 2",
         (step, step, step, step))]
 
 
 def stored_per(ledger: Ledger, width: int) -> dict[str, int]:
     """Accepted files per time slot of storing (timestamps cut to ``width`` characters)."""
-    return _pairs(ledger, f"SELECT substr(f.stored_at, 1, ?), count(*) {_ACCEPTED_FROM} "
+    return _pairs(ledger, "SELECT substr(f.stored_at, 1, ?), count(*) "
+                          f"{_accepted_from(ledger)} "
                           "AND f.stored_at IS NOT NULL GROUP BY 1 ORDER BY 1", (width,))
 
 
@@ -365,7 +381,7 @@ def host_sources(ledger: Ledger) -> dict[str, list[str]]:
 def picture_dates(ledger: Ledger) -> tuple[str | None, str | None]:
     """Earliest and latest declared date of the accepted files that start with a year
     (ISO 8601 strings sort as dates)."""
-    lo, hi = ledger.rows(f"SELECT min(i.date), max(i.date) {_ACCEPTED_FROM} AND "
+    lo, hi = ledger.rows(f"SELECT min(i.date), max(i.date) {_accepted_from(ledger)} AND "
                          "i.date GLOB '[0-9][0-9][0-9][0-9]*'")[0]
     return lo, hi
 
