@@ -30,6 +30,7 @@ from collector.checks.licences import normalise_licence
 from collector.config.recipe import Recipe
 from collector.errors import CollectorError, FetchError, ImageRejected
 from collector.run.gather import build_fetcher, prepared_run
+from collector.run.reservations import ReservationGate
 from collector.run.scheduling import StopRules
 from collector.storage import upkeep_queries as uq
 from collector.storage.collection import Collection
@@ -135,6 +136,13 @@ class _Checker:
                         and not uq.item_is_withdrawn(ledger, t.item_id)]
         self.names = {t.item_id: (t.source, t.source_key) for t in self.targets}
         self.versions = uq.newest_versions(ledger)  # bytes an earlier re-check already kept
+        # Reservations against text-and-data mining are honoured as in a gather: a reserved
+        # image is not asked for again, and the finding says so (collector.run.reservations).
+        self.source_ids = {src["name"]: ledger.source_id(src["name"], src["kind"], src,
+                                                         tuple(src.get("former_names") or ()))
+                           for src in recipe.sources}
+        self.gate = ReservationGate(recipe, ledger, fetcher, _Record(run_id),
+                                    list(self.source_ids.values()))
 
     def _stopped(self) -> bool:
         return self.stop.deadline is not None and time.time() >= self.stop.deadline
@@ -173,7 +181,8 @@ class _Checker:
         def note(n: Any) -> None:
             self.ledger.add_note(n.kind, n.message, url=n.url, run_id=self.run_id)
 
-        yield from sources.iter_candidates(source, self.fetcher, note, self.collection.root)
+        pages = self.gate.watching(self.fetcher, self.source_ids[source["name"]])
+        yield from sources.iter_candidates(source, pages, note, self.collection.root)
 
     # -- one item --------------------------------------------------------------------------
     def _check(self, t: uq.RecheckTarget, now: Listed | None) -> None:
@@ -216,6 +225,10 @@ class _Checker:
         """The conditional request for the item's image and what its answer means."""
         if self.fetcher is None or not t.image_url:
             return []
+        refusal = self._reserved_before(t)
+        if refusal is not None:  # deferred: tdmrep.json could not be read, asked again later
+            kind = "failed" if refusal.state == "deferred" else "reserved"
+            return [self._finding(t, kind, detail=refusal.detail)]
         store = self.collection.store
         store.ensure()
         try:
@@ -225,6 +238,11 @@ class _Checker:
             if exc.status in GONE_STATUSES:
                 return [self._finding(t, "gone", status=exc.status)]
             return [self._finding(t, "failed", status=exc.status, detail=exc.reason)]
+        refusal = self.gate.after_download(t.item_id, got.final_url, got.headers)
+        if refusal is not None:  # reserved in the image's own answer: its bytes are not kept
+            if got.path is not None:
+                got.path.unlink(missing_ok=True)
+            return [self._finding(t, "reserved", status=got.status, detail=refusal.detail)]
         out = []
         final = redact(got.final_url, getattr(getattr(self.fetcher, "settings", None),
                                               "secret_params", ()) or ())
@@ -239,6 +257,17 @@ class _Checker:
             got.path.unlink(missing_ok=True)
             return out if out else [self._finding(t, "unchanged", status=got.status)]
         return [*out, self._new_version(t, got)]
+
+    def _reserved_before(self, t: uq.RecheckTarget) -> Any:
+        """A reservation on the item's listing or detail page, or tdmrep.json's rule for its
+        image (skipped: the image is not requested), or None."""
+        source_id = self.source_ids.get(t.source)
+        if source_id is None or not t.image_url:
+            return None
+        page_url = (self.ledger.item(t.item_id) or {}).get("page_url")
+        refusal = self.gate.admission(source_id, t.item_id, page_url)
+        return refusal if refusal is not None else self.gate.before_image(t.item_id,
+                                                                          t.image_url)
 
     def _new_version(self, t: uq.RecheckTarget, got: Any) -> Finding:
         """New bytes at the same URL: checked and stored as a new file; the old one stays."""
@@ -270,7 +299,20 @@ FINDING_LABELS = {
     "unchanged": "unchanged", "changed_bytes": "changed bytes (new version kept)",
     "licence_changed": "licence changed", "fields_changed": "fields changed",
     "gone": "gone", "moved": "moved", "failed": "could not check",
+    "reserved": "reserved against text-and-data mining (not asked for again)",
 }
+
+
+@dataclass(frozen=True)
+class _Record:
+    """What the reservation gate needs of a run's record: its id and the secrets to hide
+    (the fetcher already keeps the recipe's secret parameters out of every URL)."""
+
+    run_id: int
+
+    @staticmethod
+    def scrubbed(text: str) -> str:
+        return text
 
 
 def report_lines(result: RecheckResult, *, show_all: bool = False) -> list[str]:
