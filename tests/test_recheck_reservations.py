@@ -6,15 +6,13 @@ new bytes are not kept."""
 
 from __future__ import annotations
 
-import io
 import json
 import sqlite3
 from collections.abc import Iterator
 from pathlib import Path
 
-import numpy as np
 import pytest
-from PIL import Image
+from support.collections import grid_picture
 from support.server import LoopbackServer, json_answer
 
 from collector.run.gather import gather
@@ -23,10 +21,7 @@ from collector.storage.collection import init_collection
 
 
 def picture(seed: int) -> bytes:
-    grid = np.random.default_rng(seed).integers(0, 256, (6, 8), dtype=np.uint8)
-    out = io.BytesIO()
-    Image.fromarray(grid).resize((160, 120), Image.Resampling.NEAREST).save(out, "PNG")
-    return out.getvalue()
+    return grid_picture(seed, "PNG")
 
 
 @pytest.fixture
