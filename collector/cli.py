@@ -93,7 +93,8 @@ def check(
 
     Example: collector check my-leaves
     """
-    from collector.config.recipe import check_recipe, source_prefix
+    from collector.config.recipe import check_recipe
+    from collector.config.recipe_env import source_prefix
     from collector.schema import toml_key, toml_value
     from collector.storage.collection import open_collection
 
@@ -145,7 +146,7 @@ def gather(
 
     Example: collector gather my-leaves --until 07:00
     """
-    from collector.config.recipe import check_stop_options
+    from collector.config.stop_times import check_stop_options
 
     with user_errors():
         check_stop_options(until, duration, max_items)  # before anything starts, dry or not

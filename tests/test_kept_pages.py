@@ -36,8 +36,9 @@ def test_a_kept_page_is_not_asked_again_until_it_is_old(tmp_path: Path) -> None:
         kept = kept_answer(ledger, url, 3600.0, now=time.time())
         assert kept is not None and kept.headers["content-type"].startswith("application/json")
         assert kept_answer(ledger, url, 3600.0, now=time.time() + 7200) is None
+        time.sleep(0.02)  # the kept answer is now older than the 10 ms asked for below
         fetcher = Fetcher(settings(), ledger)
-        fetcher.get_page(url, purpose="info", keep_for=0.001)  # older than that: asked again
+        fetcher.get_page(url, purpose="info", keep_for=0.01)  # older than that: asked again
         fetcher.close()
         assert srv.targets().count("/svc/1/info.json") == 2
 

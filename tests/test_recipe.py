@@ -9,7 +9,8 @@ import pytest
 from typer.testing import CliRunner
 
 from collector.cli import app
-from collector.config.recipe import DEFAULT_LICENCES, parse_duration, parse_recipe
+from collector.config.recipe import DEFAULT_LICENCES, parse_recipe
+from collector.config.stop_times import parse_duration
 from collector.errors import RecipeError
 from collector.storage.collection import init_collection, recipe_template
 

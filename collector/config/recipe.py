@@ -19,19 +19,8 @@ from typing import Any
 from urllib.parse import urlsplit
 
 from collector.checks.rights_statements import ALLOW_PREFIX, allow_entry_problem
-from collector.config.recipe_env import (  # noqa: F401 (env_problems: the recipe's name)
-    env_problems,
-    env_problems_in,
-    source_prefix,
-)
-from collector.config.stop_times import (  # noqa: F401 (re-exported: the recipe's names)
-    StopOptionsError,
-    check_clock,
-    check_duration,
-    check_stop_options,
-    parse_clock,
-    parse_duration,
-)
+from collector.config.recipe_env import env_problems_in, source_prefix
+from collector.config.stop_times import check_clock, check_duration
 from collector.errors import RecipeError, RecipeProblem
 from collector.schema import (
     Check,

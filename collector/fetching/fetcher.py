@@ -183,7 +183,7 @@ def filled_from_env(values: Mapping[str, Any], url: str,
     The one place collector expands ``${NAME}``: right before a request is sent, so expanded
     secrets never sit in a recipe, a source table or the ledger. An unset variable stops the
     request before anything is sent (gather names them all before it starts, see
-    collector.config.recipe.env_problems).
+    collector.config.recipe_env.env_problems).
     """
     try:
         return {k: expand_env(v, strict=True) if isinstance(v, str) else v

@@ -17,7 +17,9 @@ __all__ = ["keep_answer", "kept_answer"]
 
 
 def _iso(epoch: float) -> str:
-    return datetime.fromtimestamp(epoch, UTC).isoformat(timespec="milliseconds")
+    """The ledger's time format (ISO 8601 UTC with milliseconds and "Z")."""
+    return (datetime.fromtimestamp(epoch, UTC).isoformat(timespec="milliseconds")
+            .replace("+00:00", "Z"))
 
 
 def kept_answer(ledger: Any, url: str, keep_for: float, now: float) -> Page | None:
@@ -29,7 +31,8 @@ def kept_answer(ledger: Any, url: str, keep_for: float, now: float) -> Page | No
     if kept is None:
         return None
     try:
-        fetched = datetime.fromisoformat(str(kept["fetched_at"])).timestamp()
+        fetched = datetime.fromisoformat(str(kept["fetched_at"]).replace("Z", "+00:00")
+                                         ).timestamp()
     except ValueError:
         return None
     if now - fetched >= keep_for:

@@ -130,7 +130,7 @@ class Ingest:
                                     compile_condition(src["keep_if"]))]
                                   if src.get("keep_if") else [])]
             for src, sid in zip(recipe.sources, source_ids, strict=True)}
-        self._source_names = {sid: (src["name"], src.get("kind"))
+        self._source_names = {sid: src["name"]
                               for src, sid in zip(recipe.sources, source_ids, strict=True)}
         everywhere = tuple(recipe.network.secret_params)
         self._secret_params = {sid: (*(src.get("secret_params") or ()), *everywhere)
@@ -240,7 +240,7 @@ class Ingest:
         conditions = self._conditions.get(source_id, ())
         if not conditions:
             return None
-        name, _ = self._source_names[source_id]
+        name = self._source_names[source_id]
         view = item_view(source=name, title=c.title, creator=c.creator, date=c.date,
                          licence=spdx_id, licence_text=c.licence_raw,
                          licence_url=c.licence_url, page_url=c.page_url,

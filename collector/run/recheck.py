@@ -30,6 +30,7 @@ from collector.checks.licences import normalise_licence
 from collector.config.recipe import Recipe
 from collector.errors import CollectorError, FetchError, ImageRejected
 from collector.run.gather import build_fetcher, prepared_run
+from collector.run.record import NullProgress, RunRecord, secret_values
 from collector.run.reservations import ReservationGate
 from collector.run.scheduling import StopRules
 from collector.storage import upkeep_queries as uq
@@ -141,7 +142,9 @@ class _Checker:
         self.source_ids = {src["name"]: ledger.source_id(src["name"], src["kind"], src,
                                                          tuple(src.get("former_names") or ()))
                            for src in recipe.sources}
-        self.gate = ReservationGate(recipe, ledger, fetcher, _Record(run_id),
+        record = RunRecord(ledger, NullProgress(), secret_values(recipe))  # secrets hidden
+        record.run_id = run_id
+        self.gate = ReservationGate(recipe, ledger, fetcher, record,
                                     list(self.source_ids.values()))
 
     def _stopped(self) -> bool:
@@ -301,18 +304,6 @@ FINDING_LABELS = {
     "gone": "gone", "moved": "moved", "failed": "could not check",
     "reserved": "reserved against text-and-data mining (not asked for again)",
 }
-
-
-@dataclass(frozen=True)
-class _Record:
-    """What the reservation gate needs of a run's record: its id and the secrets to hide
-    (the fetcher already keeps the recipe's secret parameters out of every URL)."""
-
-    run_id: int
-
-    @staticmethod
-    def scrubbed(text: str) -> str:
-        return text
 
 
 def report_lines(result: RecheckResult, *, show_all: bool = False) -> list[str]:

@@ -32,7 +32,8 @@ from typing import Any, Protocol
 
 from collector import __version__
 from collector import sources as adapters
-from collector.config.recipe import Recipe, check_stop_options, parse_clock, parse_duration
+from collector.config.recipe import Recipe
+from collector.config.stop_times import check_stop_options, parse_clock, parse_duration
 from collector.errors import (
     CollectorError,
     FetchError,
