@@ -11,6 +11,9 @@
 
 from __future__ import annotations
 
+import json
+from pathlib import Path
+
 import numpy as np
 import pytest
 from PIL import Image
@@ -77,3 +80,55 @@ def test_facts_are_plain_data_for_the_ledger() -> None:
     assert set(data) == {"colours", "greyscale", "brightness", "contrast", "colourfulness",
                          "sharpness", "background_share"}
     assert all(set(c) == {"lab", "share", "hex", "hue"} for c in data["colours"])
+
+
+def test_every_pillow_mode_gets_colour_facts_by_the_hash_rules() -> None:
+    """Pillow's modes (Pillow docs, "Concepts > Modes"): colour_ready makes each a small RGB
+    picture; a 16-bit grey picture is scaled by its full range (not clipped to white), a
+    transparent one is shown on white, so a half-transparent red square is half white."""
+    from collector.checks.pixels import colour_ready
+
+    base = three_colours()
+    grey16 = np.asarray(base.convert("L"), dtype=np.uint16) * 257
+    images = [base.convert(m) for m in ("1", "L", "P", "RGB", "CMYK", "YCbCr", "HSV", "I", "F")]
+    images += [Image.fromarray(grey16), Image.merge("LAB", [base.convert("L")] * 3)]
+    for im in images:
+        small = colour_ready(im, 96)
+        assert small.mode == "RGB" and max(small.size) >= 96, im.mode
+        assert colour_facts(small).colours, im.mode
+    sixteen = colour_facts(colour_ready(Image.fromarray(grey16), 96))
+    eight = colour_facts(colour_ready(base.convert("L"), 96))
+    assert sixteen.brightness == pytest.approx(eight.brightness, abs=1.0)  # not clipped
+    red = Image.new("RGBA", (100, 100), (255, 0, 0, 255))
+    red.paste((255, 0, 0, 0), (0, 0, 50, 100))
+    shares = {c.hex: c.share for c in colour_facts(colour_ready(red, 96)).colours}
+    assert shares == {"#ffffff": pytest.approx(0.5), "#ff0000": pytest.approx(0.5)}
+
+
+def test_gather_stores_colour_facts_for_jpeg_and_png(tmp_path: Path) -> None:
+    """Ingest fills the files' colour columns (schema 10) from the JPEG's 1/8-scale colour
+    draft and the PNG's decoded pixels; [images] dominant_colours = 0 computes none."""
+    from collector.run.gather import gather
+    from collector.storage.collection import init_collection
+
+    col = init_collection(tmp_path / "c", contact="me@example.org")
+    folder = col.root / "in"
+    folder.mkdir()
+    big = three_colours().resize((900, 600), Image.Resampling.NEAREST)
+    big.save(folder / "flags.jpg", quality=95)
+    big.convert("L").save(folder / "grey.png")
+    recipe = col.recipe_path.read_text().replace("dominant_colours = 5", "dominant_colours = 3")
+    col.recipe_path.write_text(recipe + (
+        '\n[[sources]]\nname = "desk"\nkind = "scans"\npath = "in"\nlicence = "CC0-1.0"\n'))
+    gather(col, fetcher_factory=lambda recipe, ledger: None)
+    query = ("SELECT i.source_key, f.greyscale, f.colourfulness, f.colours, f.set_aside "
+             "FROM items i JOIN files f ON f.sha256 = i.file_sha256")
+    with col.ledger(readonly=True) as ledger:
+        rows = {r["source_key"]: r for r in ledger.query(query)}
+    flags, grey = rows["flags.jpg"], rows["grey.png"]
+    assert flags["greyscale"] == 0 and grey["greyscale"] == 1
+    assert grey["colourfulness"] == pytest.approx(0.0, abs=0.5)
+    colours = json.loads(flags["colours"])
+    assert len(colours) == 3 and sum(c["share"] for c in colours) == pytest.approx(1.0)
+    assert [round(c["share"], 1) for c in colours] == [0.5, 0.3, 0.2]
+    assert flags["set_aside"] is None

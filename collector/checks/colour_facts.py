@@ -80,6 +80,13 @@ class ColourFacts:
     sharpness: float  # variance of the Laplacian of the grey image (0-255 scale)
     background_share: float  # largest flat connected region, 0-1
 
+    def columns(self) -> dict[str, Any]:
+        """The ledger ``files`` columns these facts fill (schema 10)."""
+        data = self.as_json()
+        return {"greyscale": int(self.greyscale), "colours": data["colours"],
+                **{key: data[key] for key in ("brightness", "contrast", "colourfulness",
+                                              "sharpness", "background_share")}}
+
     def as_json(self) -> dict[str, Any]:
         """Plain data for the ledger (rounded: these are estimates)."""
         out = asdict(self)

@@ -26,6 +26,7 @@ from urllib.parse import urlsplit
 
 from PIL import ExifTags, Image
 
+from collector.checks.colour_facts import WORK_SIDE, ColourFacts, colour_facts
 from collector.checks.embedded_metadata import read_exif, read_iptc, read_xmp
 from collector.checks.phash import HASH_ALGO, phash_and_blank, to_signed64
 from collector.checks.pixel_facts import (
@@ -34,6 +35,7 @@ from collector.checks.pixel_facts import (
     transparent_share,
     verdicts,
 )
+from collector.checks.pixels import colour_ready
 from collector.errors import ImageRejected
 
 __all__ = ["FORMATS", "RIGHTS_KEYS", "ImageFacts", "inspect_image", "sniff_format"]
@@ -95,6 +97,7 @@ class ImageFacts:
     flags: list[str] = field(default_factory=list)
     type_mismatch: str | None = None
     pixel: PixelFacts = field(default_factory=lambda: PixelFacts(None, None))
+    colour: ColourFacts | None = None  # None: not computed (inspect_image colours=0)
 
     def file_columns(self) -> dict[str, Any]:
         """The ledger's ``files`` columns these facts fill (hashes as signed 64-bit integers,
@@ -108,6 +111,7 @@ class ImageFacts:
             "icc_profile": self.icc_profile,
             "dpi_x": self.dpi[0] if self.dpi else None, "dpi_y": self.dpi[1] if self.dpi else None,
             **self.pixel.columns(),
+            **(self.colour.columns() if self.colour else {}),
         }
 
 
@@ -482,6 +486,7 @@ def inspect_image(
     full_decode: bool = True,
     transparent: str = "keep",
     enlarged: str = "keep",
+    colours: int = 5,
 ) -> ImageFacts:
     """Check one image file and collect its facts; raise ImageRejected(reason, detail) if unfit.
 
@@ -503,6 +508,7 @@ def inspect_image(
     after the decode (reasons ``transparent``, ``enlarged``). The native size is estimated on
     every fully decoded image; a JPEG on the draft path is decoded again (luma only) for it
     only when ``enlarged`` is not "keep".
+    colours: dominant colours in the colour facts (collector.checks.colour_facts); 0: none.
     """
     path = Path(path)
     head, fmt = _identify(path)
@@ -518,11 +524,33 @@ def inspect_image(
         decoded = full_decode or fmt != "JPEG"
         pixel = _measure_pixels(im, path, decoded=decoded, alpha=described.alpha,
                                 native=enlarged != "keep", max_pixels=max_pixels)
+        colour = _colour(im, colours, path) if decoded and colours else None
     _apply_policies(pixel, path, flags, transparent=transparent, enlarged=enlarged,
                     min_side=min_side)
-    if hashes is None:  # JPEG: a second, draft-mode decode at 1/8 scale (HASH_ALGO pipeline)
-        with _open(path, max_pixels) as im:
-            hashes = _hash(im, geo.orientation, path)
+    if hashes is None:  # JPEG: draft-mode decodes at 1/8 scale
+        hashes, colour = _from_drafts(path, max_pixels, geo.orientation, colours)
     facts = _facts(fmt, geo, described, frames, hashes, flags, mismatch)
     facts.pixel = pixel
+    facts.colour = colour
     return facts
+
+
+def _from_drafts(path: Path, max_pixels: int, orientation: int,
+                 colours: int) -> tuple[tuple[int, int, bool], ColourFacts | None]:
+    """A JPEG's hashes from a luma draft (HASH_ALGO pipeline) and its colour facts from a
+    colour draft (none when ``colours`` is 0)."""
+    with _open(path, max_pixels) as im:
+        hashes = _hash(im, orientation, path)
+    if not colours:
+        return hashes, None
+    with _open(path, max_pixels) as im:
+        im.draft("RGB", (WORK_SIDE, WORK_SIDE))
+        return hashes, _colour(im, colours, path)
+
+
+def _colour(im: Image.Image, colours: int, path: Path) -> ColourFacts:
+    """The colour facts of the first frame (collector.checks.colour_facts)."""
+    try:
+        return colour_facts(colour_ready(im, WORK_SIDE), colours=colours)
+    except _DECODE_ERRORS as exc:
+        raise ImageRejected("broken_image", damage(exc)) from exc

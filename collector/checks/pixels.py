@@ -27,7 +27,7 @@ from __future__ import annotations
 import numpy as np
 from PIL import Image
 
-__all__ = ["BLANK_SPREAD", "has_transparency", "hash_ready", "is_blank"]
+__all__ = ["BLANK_SPREAD", "colour_ready", "has_transparency", "hash_ready", "is_blank"]
 
 _EIGHT_BIT = frozenset({"1", "L", "P", "RGB", "RGBX", "CMYK", "YCbCr", "HSV"})
 _WHITE = 255
@@ -79,6 +79,30 @@ def hash_ready(im: Image.Image) -> Image.Image:
     if mode.startswith("I;16") or mode in ("I", "F"):
         return _scaled_float(im)
     return im.convert("RGB").convert("L")  # any other mode Pillow can turn into RGB
+
+
+_REDUCIBLE = frozenset({"L", "LA", "RGB", "RGBA", "RGBX", "CMYK"})
+
+
+def colour_ready(im: Image.Image, side: int) -> Image.Image:
+    """A small sRGB picture (mode ``RGB``, longest side about ``side`` px or a little more)
+    for colour facts, made by the same rules as :func:`hash_ready`: transparency shown on
+    white, 16-bit/``I``/``F`` scaled by their full range (grey), ``LAB`` by its lightness (grey:
+    Pillow has no LAB-to-RGB conversion without a colour profile). Reduced by a whole factor
+    first (``Image.reduce``, a box filter) where the mode allows, so a large picture is
+    never converted at full size."""
+    factor = max(1, max(im.size) // side)
+    if im.mode in _REDUCIBLE and factor > 1:
+        im = im.reduce(factor)
+    if has_transparency(im):
+        rgba = im.convert("RGBA")
+        page = Image.new("RGBA", rgba.size, (_WHITE, _WHITE, _WHITE, 255))
+        return Image.alpha_composite(page, rgba).convert("RGB")
+    if im.mode in _EIGHT_BIT:
+        return im.convert("RGB")
+    if im.mode == "LAB" or im.mode.startswith("I;16") or im.mode in ("I", "F"):
+        return hash_ready(im).convert("L").convert("RGB")
+    return im.convert("RGB")
 
 
 def is_blank(grey: Image.Image) -> bool:

@@ -27,6 +27,7 @@ from collector.schema import (
     Key,
     Problems,
     at_least,
+    between,
     check_table,
     describe,
     did_you_mean,
@@ -225,6 +226,9 @@ class Images:
     # The release export flattens images with transparent pixels onto this colour ("#rrggbb";
     # "" = leave them as stored). The flattened PNG is a derived file; the store is unchanged.
     release_background: str = _setting("", lambda v: _check_colour(v) if v else None)
+    # How many dominant colours (k-means clusters in CIELAB) the colour facts of each stored
+    # file name (collector.checks.colour_facts); 0 computes no colour facts.
+    dominant_colours: int = _setting(5, between(0, 16))
 
 
 def _check_colour(value: Any) -> str | None:

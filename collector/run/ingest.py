@@ -388,7 +388,8 @@ class Ingest:
                                       min_aspect=images.min_aspect,
                                       max_aspect=images.max_aspect, full_decode=False,
                                       transparent=images.transparent,
-                                      enlarged=images.enlarged)
+                                      enlarged=images.enlarged,
+                                      colours=images.dominant_colours)
             except ImageRejected as exc:
                 self.record.finish(item_id, "rejected", exc.reason, exc.detail, **extra)
                 return

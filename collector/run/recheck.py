@@ -278,7 +278,8 @@ class _Checker:
         try:
             facts = inspect_image(path, content_type=got.content_type, url=got.final_url,
                                   max_pixels=self.recipe.images.max_pixels, min_side=1,
-                                  full_decode=False)
+                                  full_decode=False,
+                                  colours=self.recipe.images.dominant_colours)
         except ImageRejected as exc:
             path.unlink(missing_ok=True)
             return self._finding(t, "changed_bytes", status=got.status, old=t.file_sha256,

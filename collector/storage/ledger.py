@@ -34,7 +34,7 @@ from collector.storage.safe_paths import refuse_ledger_links
 SCHEMA_VERSION = max(MIGRATIONS)  # the newest migration; a file records what it has
 
 JSON_COLUMNS = {"options", "config", "metadata", "crop_box", "exif", "rights", "flags",
-                "effective_budget", "size_request"}
+                "effective_budget", "size_request", "colours"}
 
 
 def utc_now() -> str:

@@ -182,6 +182,23 @@ def _migration_9(db: sqlite_utils.Database) -> None:
     }, pk="url", if_not_exists=True)
 
 
+def _migration_10(db: sqlite_utils.Database) -> None:
+    """Colour and tone facts of every stored file for curation (collector.checks.colour_facts,
+    computed at ingest on the small picture made for hashing): ``colours`` is a JSON list of
+    the dominant colours (``lab``, ``share``, ``hex``, ``hue``), largest share first; and the
+    file's set-aside state: ``set_aside`` names the pixel rule a kept file fails (NULL: not
+    set aside), ``set_aside_detail`` says why in the recipe's words. Rows stored before stay
+    NULL (not measured)."""
+    files = db.table("files")
+    present = files.columns_dict
+    for name, kind in (("greyscale", int), ("brightness", float), ("contrast", float),
+                       ("colourfulness", float), ("sharpness", float),
+                       ("background_share", float), ("colours", str), ("set_aside", str),
+                       ("set_aside_detail", str)):
+        if name not in present:
+            files.add_column(name, kind)
+
+
 MIGRATIONS: dict[int, Callable[[sqlite_utils.Database], None]] = {
     1: _migration_1, 2: _migration_2, 3: _migration_3, 4: _migration_4, 5: _migration_5,
-    6: _migration_6, 7: _migration_7, 8: _migration_8, 9: _migration_9}
+    6: _migration_6, 7: _migration_7, 8: _migration_8, 9: _migration_9, 10: _migration_10}
