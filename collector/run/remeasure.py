@@ -1,0 +1,387 @@
+"""Bringing the measured facts of stored files up to date, offline: ``collector remeasure``.
+
+A collection gathered by an older collector holds files whose facts are stale or missing: a
+perceptual hash made by an older pipeline (``files.hash_algo`` differs from
+:data:`collector.checks.phash.HASH_ALGO`; the first pipeline clipped 16-bit pictures to a
+blank page), no transparency share or native size (stored before schema 8), no colour and
+tone facts (stored before schema 10). :func:`remeasure` re-reads the stored bytes from the
+collection's store (it never builds a fetcher: nothing is requested) and measures them with
+:func:`collector.checks.images.inspect_image`, the function ingest uses, with the recipe's
+settings, so every fact equals what a fresh gather of the same file records.
+
+What is measured is a list, :data:`MEASUREMENTS`: each entry names which files need it (a
+query over a range of files rows, in :mod:`collector.storage.upkeep_queries`), computes new
+values from a :class:`Reading` of one stored file, and writes them. Adding a measured fact is
+one more entry.
+
+Safe to interrupt: files are walked in rowid order, a batch at a time, and each batch's new
+facts are one transaction, so a crash or Ctrl-C leaves every file with either its old or its
+new facts; the next run finds what is still due. ``everything`` (``--all``) remembers the last
+finished batch in the ledger (``ledger_facts``), so it resumes too. Hashes rewritten in place
+raise the hash generation (:func:`collector.storage.hashindex.note_hashes_rewritten`) in the
+same transaction, so trace's hash file is rebuilt from the ledger when next opened.
+
+Verdicts are not changed: a file whose hash moved by more than ``near_distance`` bits may have
+been judged (or have made another item) a near duplicate on the old hash; such files are
+listed, with the near-duplicate items they took part in, for the curator.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable
+from dataclasses import dataclass, field
+from functools import cached_property
+from pathlib import Path
+from typing import Any
+
+from collector.checks.images import ImageFacts, inspect_image
+from collector.checks.phash import HASH_ALGO, hamming, to_signed64
+from collector.config.recipe import Recipe
+from collector.errors import CollectorError, ImageRejected
+from collector.storage import hashindex, queries
+from collector.storage import upkeep_queries as uq
+from collector.storage.collection import Collection
+from collector.storage.ledger import Ledger
+
+__all__ = ["MEASUREMENTS", "Measurement", "Reading", "RemeasureResult", "remeasure",
+           "report_lines"]
+
+BATCH = 200  # files per transaction (and per progress line)
+# ledger_facts: the last rowid a remeasure --all finished (empty once it completed).
+ALL_DONE_UPTO = "remeasure_all_upto"
+
+
+@dataclass(frozen=True)
+class Settings:
+    """The recipe's image settings a measurement uses (as ingest passes them)."""
+
+    max_pixels: int
+    colours: int  # [images] dominant_colours; 0: no colour facts
+    enlarged: str  # "keep": a JPEG's native size is not estimated, as at ingest
+    near_distance: int
+
+    @classmethod
+    def from_recipe(cls, recipe: Recipe) -> Settings:
+        images = recipe.images
+        return cls(images.max_pixels, images.dominant_colours, images.enlarged,
+                   images.near_distance)
+
+
+class Reading:
+    """One stored file being remeasured: its ledger row as it was, its path in the store,
+    and (read once, on first use) its facts as ingest computes them."""
+
+    def __init__(self, sha256: str, path: Path, row: dict[str, Any], settings: Settings):
+        self.sha256, self.path, self.row, self.settings = sha256, path, row, settings
+
+    @cached_property
+    def facts(self) -> ImageFacts:
+        """inspect_image with the recipe's settings; shape limits and policies off (a stored
+        file is measured, never judged again), "flag" for ``enlarged`` so a JPEG's native
+        size is estimated exactly when ingest estimates it."""
+        s = self.settings
+        return inspect_image(self.path, max_pixels=s.max_pixels, full_decode=False,
+                             transparent="keep",
+                             enlarged="keep" if s.enlarged == "keep" else "flag",
+                             colours=s.colours)
+
+
+def _hash_columns(reading: Reading) -> dict[str, Any]:
+    """The pHash pair, its pipeline and the ``blank`` flag (other flags kept as they are)."""
+    facts = reading.facts
+    flags = [f for f in (reading.row.get("flags") or []) if f != "blank"]
+    if "blank" in facts.flags:
+        flags.append("blank")
+    return {"phash": to_signed64(facts.phash), "phash_mirror": to_signed64(facts.phash_mirror),
+            "hash_algo": facts.hash_algo, "flags": flags}
+
+
+def _pixel_columns(reading: Reading) -> dict[str, Any]:
+    """Transparency share and native size (collector.checks.pixel_facts)."""
+    return reading.facts.pixel.columns()
+
+
+def _colour_columns(reading: Reading) -> dict[str, Any]:
+    """Colour and tone facts (collector.checks.colour_facts); none when colours = 0."""
+    colour = reading.facts.colour
+    return colour.columns() if colour is not None else {}
+
+
+def _write_file_columns(ledger: Ledger, sha256: str, values: dict[str, Any]) -> None:
+    ledger.update_file(sha256, values)
+
+
+@dataclass(frozen=True)
+class Measurement:
+    """One measured fact: which files need it, how it is computed and written.
+
+    ``due(ledger, after_rowid, last_rowid, settings)``: the sha256 of the files in that rowid
+    range whose fact is missing or stale (a query of collector.storage.upkeep_queries);
+    ``compute(reading)``: the new values; ``write(ledger, sha256, values)``: store them (the
+    files row by default; a fact with a table of its own writes there). ``bookkeeping``:
+    values that say how a fact was made, not what it is (not counted as a change)."""
+
+    name: str
+    due: Callable[[Ledger, int, int, Settings], set[str]]
+    compute: Callable[[Reading], dict[str, Any]]
+    write: Callable[[Ledger, str, dict[str, Any]], None] = _write_file_columns
+    bookkeeping: tuple[str, ...] = ()
+    wanted: Callable[[Settings], bool] = lambda settings: True
+
+
+MEASUREMENTS: tuple[Measurement, ...] = (
+    Measurement("perceptual hashes",
+                lambda led, a, b, s: uq.hashes_due(led, a, b, HASH_ALGO), _hash_columns,
+                bookkeeping=("hash_algo",)),
+    Measurement("transparency and native size",
+                lambda led, a, b, s: uq.pixel_facts_due(led, a, b), _pixel_columns),
+    Measurement("colour and tone facts",
+                lambda led, a, b, s: uq.colour_facts_due(led, a, b), _colour_columns,
+                wanted=lambda settings: settings.colours > 0),
+)
+HASHES = MEASUREMENTS[0].name
+
+
+@dataclass
+class FactCount:
+    """Per measurement: files due, files measured, files whose values changed."""
+
+    due: int = 0
+    measured: int = 0
+    changed: int = 0
+
+
+@dataclass(frozen=True)
+class MovedHash:
+    """A file whose pHash moved by more than near_distance bits, and the near-duplicate
+    items it took part in (judged on the old hash)."""
+
+    sha256: str
+    distance: int
+    item_id: int | None
+    title: str | None
+    near_items: tuple[int, ...]
+    path: str  # in the store, for collector trace
+
+
+@dataclass(frozen=True)
+class Problem:
+    """A stored file that could not be measured: ``missing`` or ``unreadable``, and why."""
+
+    sha256: str
+    kind: str
+    detail: str
+
+
+@dataclass
+class RemeasureResult:
+    """What a remeasure did (or, with ``dry_run``, would do)."""
+
+    dry_run: bool
+    everything: bool
+    files: int  # files rows in the ledger
+    looked: int = 0  # files rows walked by this run
+    due: int = 0  # files with at least one fact due
+    measured: int = 0  # files measured (at least one fact)
+    removed: int = 0  # withdrawn files whose bytes were deleted: skipped
+    counts: dict[str, FactCount] = field(default_factory=dict)
+    skipped: list[str] = field(default_factory=list)  # measurements the recipe turns off
+    moved: list[MovedHash] = field(default_factory=list)
+    problems: list[Problem] = field(default_factory=list)
+    near_distance: int = 0
+    resumed_after: int = 0  # --all: the rowid an interrupted run had reached
+    outcome: str = "finished"  # or "interrupted"
+
+
+Progress = Callable[[RemeasureResult], None]
+
+
+def remeasure(collection: Collection, *, everything: bool = False, dry_run: bool = False,
+              progress: Progress | None = None,
+              measurements: tuple[Measurement, ...] = MEASUREMENTS,
+              batch: int = BATCH) -> RemeasureResult:
+    """Measure again the stored files whose facts are missing or stale (every stored file
+    with ``everything``), under the gather lock; ``dry_run`` only counts what is due.
+    Ctrl-C ends it with outcome "interrupted" (what was committed stays; run again)."""
+    settings = Settings.from_recipe(collection.recipe(check_source_kinds=False))
+    active = tuple(m for m in measurements if m.wanted(settings))
+    with collection.gather_lock(), collection.ledger() as ledger:
+        result = RemeasureResult(dry_run, everything, queries.files_mark(ledger).rows,
+                                 counts={m.name: FactCount() for m in active},
+                                 skipped=[m.name for m in measurements if m not in active],
+                                 near_distance=settings.near_distance)
+        if everything:
+            result.resumed_after = int(ledger.fact(ALL_DONE_UPTO) or 0)
+        walk = _Walk(collection, ledger, settings, active, result)
+        try:
+            walk.run(result.resumed_after, batch, progress)
+        except KeyboardInterrupt:
+            result.outcome = "interrupted"
+        else:
+            if everything and not dry_run:
+                ledger.set_fact(ALL_DONE_UPTO, "")
+        if walk.rewrote_hashes:  # the first trace need not wait for the rebuild
+            hashindex.HashFile.open(ledger, collection.hash_index_path)
+    return result
+
+
+class _Walk:
+    """One pass over the files table, a batch of rows at a time."""
+
+    def __init__(self, collection: Collection, ledger: Ledger, settings: Settings,
+                 active: tuple[Measurement, ...], result: RemeasureResult) -> None:
+        self.collection, self.ledger, self.settings = collection, ledger, settings
+        self.active, self.result = active, result
+        self.rewrote_hashes = False
+
+    def run(self, after: int, batch: int, progress: Progress | None) -> None:
+        """Walk the files rows after rowid ``after`` to the end."""
+        result = self.result
+        while page := uq.files_page(self.ledger, after, batch):
+            last = page[-1].rowid
+            due = self._due(after, last)
+            result.looked += len(page)
+            result.removed += sum(slot.removed for slot in page)
+            for m in self.active:
+                result.counts[m.name].due += len(due[m.name])
+            result.due += len(set().union(*due.values()))
+            if not result.dry_run:
+                self._measure(page, due, last)
+            after = last
+            if progress is not None:
+                progress(result)
+
+    def _due(self, after: int, last: int) -> dict[str, set[str]]:
+        """Per measurement, the files of the rowid range it must measure."""
+        if self.result.everything:
+            every = uq.kept_files_between(self.ledger, after, last)
+            return {m.name: every for m in self.active}
+        return {m.name: m.due(self.ledger, after, last, self.settings) for m in self.active}
+
+    def _measure(self, page: list[uq.FileSlot], due: dict[str, set[str]], last: int) -> None:
+        """Measure the due files of one page, then write the batch in one transaction."""
+        writes: list[tuple[Measurement, str, dict[str, Any]]] = []
+        rewrote = False
+        for slot in page:
+            wanted = [m for m in self.active if slot.sha256 in due[m.name]]
+            reading = self._reading(slot.sha256) if wanted else None
+            if reading is None:
+                continue
+            try:
+                values = [(m, m.compute(reading)) for m in wanted]
+            except (ImageRejected, OSError) as exc:
+                self.result.problems.append(Problem(slot.sha256, "unreadable", _why(exc)))
+                continue
+            self.result.measured += 1
+            for m, new in values:
+                self.result.counts[m.name].measured += 1
+                if _changed(reading.row, new, m.bookkeeping):
+                    self.result.counts[m.name].changed += 1
+                    rewrote = rewrote or _hash_rewritten(reading.row, new)
+                self._note_move(reading, new)
+                writes.append((m, slot.sha256, new))
+        with self.ledger.transaction():
+            for m, sha, new in writes:
+                if new:
+                    m.write(self.ledger, sha, new)
+            if rewrote:
+                hashindex.note_hashes_rewritten(self.ledger)
+            if self.result.everything:
+                self.ledger.set_fact(ALL_DONE_UPTO, str(last))
+        self.rewrote_hashes = self.rewrote_hashes or rewrote
+
+    def _reading(self, sha256: str) -> Reading | None:
+        """The stored file and its row, or None (recorded as a problem) when it is not in
+        the store or cannot be reached."""
+        try:
+            path = self.collection.store.find(sha256)
+        except (OSError, CollectorError) as exc:
+            self.result.problems.append(Problem(sha256, "unreadable", str(exc)))
+            return None
+        if path is None:
+            self.result.problems.append(Problem(
+                sha256, "missing", "the store holds no file with these bytes"))
+            return None
+        return Reading(sha256, path, self.ledger.file(sha256) or {}, self.settings)
+
+    def _note_move(self, reading: Reading, new: dict[str, Any]) -> None:
+        """List a file whose pHash moved by more than near_distance bits."""
+        distance = _hash_moved(reading.row, new)
+        if distance is None or distance <= self.settings.near_distance:
+            return
+        first = queries.items_of_file(self.ledger, reading.sha256, limit=1)
+        self.result.moved.append(MovedHash(
+            reading.sha256, distance, first[0]["id"] if first else None,
+            first[0]["title"] if first else None,
+            tuple(uq.near_verdicts_about(self.ledger, reading.sha256)), str(reading.path)))
+
+
+def _changed(row: dict[str, Any], new: dict[str, Any], bookkeeping: tuple[str, ...]) -> bool:
+    """Whether a measured value differs from the row's (a value the row lacks differs)."""
+    return any(row.get(key) != value for key, value in new.items() if key not in bookkeeping)
+
+
+def _hash_rewritten(row: dict[str, Any], new: dict[str, Any]) -> bool:
+    """Whether new values change the pHash pair the hash file was built from."""
+    return "phash" in new and (row.get("phash"), row.get("phash_mirror")) != (
+        new["phash"], new.get("phash_mirror"))
+
+
+def _hash_moved(row: dict[str, Any], new: dict[str, Any]) -> int | None:
+    """Bits between the row's pHash and the new one (None: not a hash, or none before)."""
+    if "phash" not in new or row.get("phash") is None:
+        return None
+    return hamming(int(row["phash"]), int(new["phash"]))
+
+
+def _why(exc: BaseException) -> str:
+    """What kept a stored file from being measured, in words."""
+    if isinstance(exc, ImageRejected):
+        return f"{exc.reason}: {exc.detail}"
+    if isinstance(exc, OSError):
+        return exc.strerror or str(exc)
+    return str(exc)
+
+
+def report_lines(result: RemeasureResult, folder: Path | str = "DIR") -> list[str]:
+    """What a remeasure did (or would do), as the command prints it."""
+    verb = "would measure" if result.dry_run else "measured"
+    scope = "every stored file (--all)" if result.everything else "files with stale facts"
+    lines = [f"Looked at {result.looked:,} of {result.files:,} files ({scope}); "
+             f"{verb} {result.due if result.dry_run else result.measured:,}."]
+    if result.resumed_after:
+        lines.append(f"Resumed an interrupted --all run after files row {result.resumed_after}.")
+    for name, count in result.counts.items():
+        done = "" if result.dry_run else f", {count.measured:,} measured, {count.changed:,} changed"
+        lines.append(f"  {name}: {count.due:,} due{done}")
+    lines += [f"  {name}: not measured ([images] dominant_colours = 0)"
+              for name in result.skipped]
+    if result.removed:
+        lines.append(f"{result.removed:,} withdrawn files whose bytes were deleted: skipped.")
+    lines += _moved_lines(result, folder)
+    for problem in result.problems:
+        lines.append(f"{problem.kind}: {problem.sha256[:16]}: {problem.detail}")
+    if result.problems:
+        lines.append(f"{len(result.problems):,} stored files could not be measured (their "
+                     "facts are unchanged; run again once they are back).")
+    if result.outcome == "interrupted":
+        lines.append("Interrupted: the facts measured so far are kept; run the same command "
+                     "again to finish.")
+    return lines
+
+
+def _moved_lines(result: RemeasureResult, folder: Path | str) -> list[str]:
+    """The files whose hash moved beyond near_distance, with what to do about them."""
+    if not result.moved:
+        return []
+    lines = [f"{len(result.moved):,} files' perceptual hashes moved by more than "
+             f"near_distance = {result.near_distance} bits. Near-duplicate verdicts made with "
+             "the old hash were NOT changed; check each with 'collector trace FILE --in "
+             f"{folder}' (see README, 'Measuring stored files again'):"]
+    for moved in result.moved:
+        title = f' "{moved.title}"' if moved.title else ""
+        near = (", near-duplicate items " + ", ".join(f"#{i}" for i in moved.near_items)
+                if moved.near_items else ", no near-duplicate verdicts")
+        item = f"item #{moved.item_id}" if moved.item_id is not None else "no item"
+        lines.append(f"  {moved.path} ({item}{title}): moved {moved.distance} bits{near}")
+    return lines
