@@ -174,7 +174,7 @@ def remeasure(
     with user_errors():
         result = rm.remeasure(open_collection(folder), everything=everything, dry_run=dry_run,
                               progress=progress)
-    for line in rm.report_lines(result, folder):
+    for line in rm.report_lines(result):
         typer.echo(one_line(line))
     raise typer.Exit(130 if result.outcome == "interrupted" else 1 if result.problems else 0)
 

@@ -152,16 +152,27 @@ class FactCount:
 
 
 @dataclass(frozen=True)
+class NearCheck:
+    """A near-duplicate verdict judged on an old hash, and the distance between the two
+    files' current hashes (None: a file was not kept, or is not measured yet)."""
+
+    item_id: int
+    original_id: int | None
+    distance: int | None
+
+
+@dataclass
 class MovedHash:
     """A file whose pHash moved by more than near_distance bits, and the near-duplicate
-    items it took part in (judged on the old hash)."""
+    verdicts it took part in (judged on the old hash; filled in after the walk)."""
 
     sha256: str
     distance: int
     item_id: int | None
     title: str | None
-    near_items: tuple[int, ...]
-    path: str  # in the store, for collector trace
+    path: str  # in the store
+    verdicts: tuple[uq.NearVerdict, ...] = ()
+    near: tuple[NearCheck, ...] = ()
 
 
 @dataclass(frozen=True)
@@ -220,6 +231,8 @@ def remeasure(collection: Collection, *, everything: bool = False, dry_run: bool
         else:
             if everything and not dry_run:
                 ledger.set_fact(ALL_DONE_UPTO, "")
+        for moved in result.moved:  # every batch is written: partners have current hashes
+            moved.near = tuple(_near_check(ledger, v) for v in moved.verdicts)
         if walk.rewrote_hashes:  # the first trace need not wait for the rebuild
             hashindex.HashFile.open(ledger, collection.hash_index_path)
     return result
@@ -312,13 +325,27 @@ class _Walk:
         first = queries.items_of_file(self.ledger, reading.sha256, limit=1)
         self.result.moved.append(MovedHash(
             reading.sha256, distance, first[0]["id"] if first else None,
-            first[0]["title"] if first else None,
-            tuple(uq.near_verdicts_about(self.ledger, reading.sha256)), str(reading.path)))
+            first[0]["title"] if first else None, str(reading.path),
+            tuple(uq.near_verdicts_about(self.ledger, reading.sha256))))
 
 
 def _changed(row: dict[str, Any], new: dict[str, Any], bookkeeping: tuple[str, ...]) -> bool:
     """Whether a measured value differs from the row's (a value the row lacks differs)."""
     return any(row.get(key) != value for key, value in new.items() if key not in bookkeeping)
+
+
+def _near_check(ledger: Ledger, verdict: uq.NearVerdict) -> NearCheck:
+    """How far apart the current hashes of a near duplicate and its original are (the
+    closer of direct and mirror-image, as ingest compares them)."""
+    rows = [ledger.file(sha) if sha else None
+            for sha in (verdict.sha256, verdict.original_sha256)]
+    copy, original = rows
+    distance = None
+    if copy and original and all(r.get("hash_algo") == HASH_ALGO and r.get("phash") is not None
+                                 for r in rows if r):
+        distance = min(hamming(copy["phash"], original["phash"]),
+                       hamming(copy["phash_mirror"] or 0, original["phash"]))
+    return NearCheck(verdict.item_id, verdict.original_id, distance)
 
 
 def _hash_rewritten(row: dict[str, Any], new: dict[str, Any]) -> bool:
@@ -343,7 +370,7 @@ def _why(exc: BaseException) -> str:
     return str(exc)
 
 
-def report_lines(result: RemeasureResult, folder: Path | str = "DIR") -> list[str]:
+def report_lines(result: RemeasureResult) -> list[str]:
     """What a remeasure did (or would do), as the command prints it."""
     verb = "would measure" if result.dry_run else "measured"
     scope = "every stored file (--all)" if result.everything else "files with stale facts"
@@ -358,7 +385,7 @@ def report_lines(result: RemeasureResult, folder: Path | str = "DIR") -> list[st
               for name in result.skipped]
     if result.removed:
         lines.append(f"{result.removed:,} withdrawn files whose bytes were deleted: skipped.")
-    lines += _moved_lines(result, folder)
+    lines += _moved_lines(result)
     for problem in result.problems:
         lines.append(f"{problem.kind}: {problem.sha256[:16]}: {problem.detail}")
     if result.problems:
@@ -370,18 +397,29 @@ def report_lines(result: RemeasureResult, folder: Path | str = "DIR") -> list[st
     return lines
 
 
-def _moved_lines(result: RemeasureResult, folder: Path | str) -> list[str]:
+def _moved_lines(result: RemeasureResult) -> list[str]:
     """The files whose hash moved beyond near_distance, with what to do about them."""
     if not result.moved:
         return []
     lines = [f"{len(result.moved):,} files' perceptual hashes moved by more than "
              f"near_distance = {result.near_distance} bits. Near-duplicate verdicts made with "
-             "the old hash were NOT changed; check each with 'collector trace FILE --in "
-             f"{folder}' (see README, 'Measuring stored files again'):"]
+             "the old hash were NOT changed; each is shown with how far apart the two files' "
+             "hashes are now (see README, 'Measuring stored files again'):"]
     for moved in result.moved:
         title = f' "{moved.title}"' if moved.title else ""
-        near = (", near-duplicate items " + ", ".join(f"#{i}" for i in moved.near_items)
-                if moved.near_items else ", no near-duplicate verdicts")
         item = f"item #{moved.item_id}" if moved.item_id is not None else "no item"
-        lines.append(f"  {moved.path} ({item}{title}): moved {moved.distance} bits{near}")
+        none = "" if moved.near else ", no near-duplicate verdicts"
+        lines.append(f"  {moved.path} ({item}{title}): moved {moved.distance} bits{none}")
+        lines += [f"    {_check_words(check, result.near_distance)}" for check in moved.near]
     return lines
+
+
+def _check_words(check: NearCheck, near_distance: int) -> str:
+    """One near-duplicate verdict and what the current hashes say about it."""
+    judged = f"item #{check.item_id} was judged a near duplicate of item #{check.original_id}"
+    if check.distance is None:
+        return f"{judged}: not compared now (a file was not kept or is not measured yet)"
+    if check.distance <= near_distance:
+        return f"{judged}: {check.distance} bits apart now, still within near_distance"
+    return (f"{judged}: {check.distance} bits apart now, beyond near_distance: probably not "
+            "a copy")

@@ -356,10 +356,21 @@ def colour_facts_due(ledger: Ledger, after_rowid: int, last_rowid: int) -> set[s
     return _kept_between(ledger, after_rowid, last_rowid, "greyscale IS NULL")
 
 
-def near_verdicts_about(ledger: Ledger, sha256: str) -> list[int]:
+class NearVerdict(NamedTuple):
+    """An item judged a near duplicate: its file (None when dropped) and the item and file it
+    was judged a copy of."""
+
+    item_id: int
+    sha256: str | None
+    original_id: int | None
+    original_sha256: str | None
+
+
+def near_verdicts_about(ledger: Ledger, sha256: str) -> list[NearVerdict]:
     """The items judged near duplicates where this file took part: the file's own items in
     state near_duplicate, and the near duplicates of an item that brought it."""
-    return [r[0] for r in ledger.rows(
-        "SELECT id FROM items WHERE state = 'near_duplicate' AND (file_sha256 = ? OR "
-        "duplicate_of IN (SELECT id FROM items WHERE file_sha256 = ?)) ORDER BY id",
-        (sha256, sha256))]
+    return [NearVerdict(*r) for r in ledger.rows(
+        "SELECT i.id, i.file_sha256, i.duplicate_of, o.file_sha256 FROM items i "
+        "LEFT JOIN items o ON o.id = i.duplicate_of WHERE i.state = 'near_duplicate' AND "
+        "(i.file_sha256 = ? OR i.duplicate_of IN (SELECT id FROM items WHERE file_sha256 = ?)) "
+        "ORDER BY i.id", (sha256, sha256))]
