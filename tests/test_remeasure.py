@@ -32,7 +32,13 @@ from collector.checks.phash import (
 from collector.cli import app
 from collector.errors import CollectionError
 from collector.run.gather import gather
-from collector.run.remeasure import ALL_DONE_UPTO, RemeasureResult, remeasure, report_lines
+from collector.run.remeasure import (
+    ALL_DONE_UPTO,
+    Measurement,
+    RemeasureResult,
+    remeasure,
+    report_lines,
+)
 from collector.storage import hashindex
 from collector.storage.collection import Collection, init_collection
 from collector.storage.withdrawals import withdraw
@@ -369,3 +375,37 @@ def test_hash_file_is_rebuilt_after_hashes_rewritten_in_place(gathered) -> None:
             hashindex.note_hashes_rewritten(ledger)
         fresh = hashindex.HashFile.open(ledger, path)
         assert [m.sha256 for m in fresh.nearest(0x0123456789ABCDEF, None, 0)] == [sha]
+
+
+def test_a_damaged_stored_file_is_reported_and_the_rest_measured(gathered) -> None:
+    """A stored file cut short (its bytes damaged on disk) is reported unreadable with the
+    image check's reason; every other file is measured."""
+    root, fresh = gathered
+    col = make_old(root)
+    stored = col.store.find(fresh["photo.jpg"]["sha256"])
+    assert stored is not None
+    stored.write_bytes(stored.read_bytes()[:400])
+    result = remeasure(col)
+    assert [(p.kind, p.detail.split(":")[0]) for p in result.problems] == [
+        ("unreadable", "broken_image")]
+    assert result.measured == 7
+
+
+def test_a_new_fact_is_one_measurement(gathered) -> None:
+    """A measurement given as one entry (which files are due, compute, the default write to
+    the files row) is run like the built-in ones: here the stored size, zeroed first."""
+    col = make_old(gathered[0])
+    with col.ledger() as ledger:
+        ledger.db.execute("UPDATE files SET size = 0")
+        ledger.db.conn.commit()
+
+    def due(ledger: Any, after: int, last: int, settings: Any) -> set[str]:
+        return {r[0] for r in ledger.rows("SELECT sha256 FROM files WHERE rowid > ? AND "
+                                          "rowid <= ? AND size = 0", (after, last))}
+
+    size = Measurement("stored size", due, lambda r: {"size": r.path.stat().st_size})
+    result = remeasure(col, measurements=(size,))
+    assert result.counts["stored size"].changed == 8
+    with col.ledger(readonly=True) as ledger:
+        for sha, stored_size in ledger.rows("SELECT sha256, size FROM files"):
+            assert stored_size == col.store.find(sha).stat().st_size  # type: ignore[union-attr]

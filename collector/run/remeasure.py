@@ -89,8 +89,10 @@ class Reading:
 def _hash_columns(reading: Reading) -> dict[str, Any]:
     """The pHash pair, its pipeline and the ``blank`` flag (other flags kept as they are)."""
     facts = reading.facts
-    flags = [f for f in (reading.row.get("flags") or []) if f != "blank"]
-    if "blank" in facts.flags:
+    flags = list(reading.row.get("flags") or [])
+    if "blank" not in facts.flags:
+        flags = [f for f in flags if f != "blank"]
+    elif "blank" not in flags:
         flags.append("blank")
     return {"phash": to_signed64(facts.phash), "phash_mirror": to_signed64(facts.phash_mirror),
             "hash_algo": facts.hash_algo, "flags": flags}
