@@ -34,6 +34,7 @@ from collector.errors import CollectionError
 from collector.run.gather import gather
 from collector.run.remeasure import (
     ALL_DONE_UPTO,
+    MEASUREMENTS,
     Measurement,
     RemeasureResult,
     remeasure,
@@ -409,3 +410,27 @@ def test_a_new_fact_is_one_measurement(gathered) -> None:
     with col.ledger(readonly=True) as ledger:
         for sha, stored_size in ledger.rows("SELECT sha256, size FROM files"):
             assert stored_size == col.store.find(sha).stat().st_size  # type: ignore[union-attr]
+
+
+def test_ctrl_c_inside_a_batch_loses_only_that_batch(gathered) -> None:
+    """Ctrl-C while the second batch is being measured: the first batch is written and
+    counted, nothing of the second is (its transaction never began)."""
+    col = make_old(gathered[0])
+    calls = []
+
+    def compute(reading: Any) -> dict[str, Any]:
+        calls.append(reading.sha256)
+        if len(calls) == 5:  # the second file of the second batch of 3
+            raise KeyboardInterrupt
+        return {}
+
+    def every(ledger: Any, after: int, last: int, settings: Any) -> set[str]:
+        return {r[0] for r in ledger.rows("SELECT sha256 FROM files WHERE rowid > ? AND "
+                                          "rowid <= ?", (after, last))}
+
+    interrupting = Measurement("interrupting", every, compute)
+    result = remeasure(col, measurements=(*MEASUREMENTS, interrupting), batch=3)
+    assert result.outcome == "interrupted" and result.measured == 3
+    assert result.counts["perceptual hashes"].measured == 3
+    algos = sorted(f["hash_algo"] for f in facts_by_key(col).values())
+    assert algos == sorted([HASH_ALGO] * 3 + [OLD_ALGO] * 5)

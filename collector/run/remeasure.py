@@ -274,9 +274,9 @@ class _Walk:
         return {m.name: m.due(self.ledger, after, last, self.settings) for m in self.active}
 
     def _measure(self, page: list[uq.FileSlot], due: dict[str, set[str]], last: int) -> None:
-        """Measure the due files of one page, then write the batch in one transaction."""
-        writes: list[tuple[Measurement, str, dict[str, Any]]] = []
-        rewrote = False
+        """Measure the due files of one page, then write the batch in one transaction; the
+        result counts the batch only once it is committed (Ctrl-C before: nothing of it)."""
+        batch = _Batch()
         for slot in page:
             wanted = [m for m in self.active if slot.sha256 in due[m.name]]
             reading = self._reading(slot.sha256) if wanted else None
@@ -287,23 +287,17 @@ class _Walk:
             except (ImageRejected, OSError) as exc:
                 self.result.problems.append(Problem(slot.sha256, "unreadable", _why(exc)))
                 continue
-            self.result.measured += 1
-            for m, new in values:
-                self.result.counts[m.name].measured += 1
-                if _changed(reading.row, new, m.bookkeeping):
-                    self.result.counts[m.name].changed += 1
-                    rewrote = rewrote or _hash_rewritten(reading.row, new)
-                self._note_move(reading, new)
-                writes.append((m, slot.sha256, new))
+            batch.add(reading, values, self._moved(reading, values))
         with self.ledger.transaction():
-            for m, sha, new in writes:
+            for m, sha, new in batch.writes:
                 if new:
                     m.write(self.ledger, sha, new)
-            if rewrote:
+            if batch.rewrote_hashes:
                 hashindex.note_hashes_rewritten(self.ledger)
             if self.result.everything:
                 self.ledger.set_fact(ALL_DONE_UPTO, str(last))
-        self.rewrote_hashes = self.rewrote_hashes or rewrote
+        batch.count_into(self.result)
+        self.rewrote_hashes = self.rewrote_hashes or batch.rewrote_hashes
 
     def _reading(self, sha256: str) -> Reading | None:
         """The stored file and its row, or None (recorded as a problem) when it is not in
@@ -319,16 +313,49 @@ class _Walk:
             return None
         return Reading(sha256, path, self.ledger.file(sha256) or {}, self.settings)
 
-    def _note_move(self, reading: Reading, new: dict[str, Any]) -> None:
-        """List a file whose pHash moved by more than near_distance bits."""
-        distance = _hash_moved(reading.row, new)
-        if distance is None or distance <= self.settings.near_distance:
-            return
+    def _moved(self, reading: Reading,
+               values: list[tuple[Measurement, dict[str, Any]]]) -> MovedHash | None:
+        """The file, if its pHash moved by more than near_distance bits."""
+        distances = [d for _, new in values if (d := _hash_moved(reading.row, new)) is not None]
+        if not distances or distances[0] <= self.settings.near_distance:
+            return None
         first = queries.items_of_file(self.ledger, reading.sha256, limit=1)
-        self.result.moved.append(MovedHash(
-            reading.sha256, distance, first[0]["id"] if first else None,
-            first[0]["title"] if first else None, str(reading.path),
-            tuple(uq.near_verdicts_about(self.ledger, reading.sha256))))
+        return MovedHash(reading.sha256, distances[0], first[0]["id"] if first else None,
+                         first[0]["title"] if first else None, str(reading.path),
+                         tuple(uq.near_verdicts_about(self.ledger, reading.sha256)))
+
+
+@dataclass
+class _Batch:
+    """What one batch measured, counted into the result once it is committed."""
+
+    writes: list[tuple[Measurement, str, dict[str, Any]]] = field(default_factory=list)
+    counts: dict[str, FactCount] = field(default_factory=dict)
+    measured: int = 0
+    moved: list[MovedHash] = field(default_factory=list)
+    rewrote_hashes: bool = False
+
+    def add(self, reading: Reading, values: list[tuple[Measurement, dict[str, Any]]],
+            moved: MovedHash | None) -> None:
+        """One file's new values."""
+        self.measured += 1
+        for m, new in values:
+            count = self.counts.setdefault(m.name, FactCount())
+            count.measured += 1
+            if _changed(reading.row, new, m.bookkeeping):
+                count.changed += 1
+                self.rewrote_hashes = self.rewrote_hashes or _hash_rewritten(reading.row, new)
+            self.writes.append((m, reading.sha256, new))
+        if moved is not None:
+            self.moved.append(moved)
+
+    def count_into(self, result: RemeasureResult) -> None:
+        """Add this (committed) batch to the result."""
+        result.measured += self.measured
+        result.moved += self.moved
+        for name, count in self.counts.items():
+            result.counts[name].measured += count.measured
+            result.counts[name].changed += count.changed
 
 
 def _changed(row: dict[str, Any], new: dict[str, Any], bookkeeping: tuple[str, ...]) -> bool:
