@@ -37,6 +37,7 @@ from collector.run.remeasure import (
     MEASUREMENTS,
     Measurement,
     RemeasureResult,
+    note_text,
     remeasure,
     report_lines,
 )
@@ -195,6 +196,10 @@ def test_remeasured_facts_equal_a_fresh_gather(remeasured) -> None:
     assert now["photo.jpg"]["native_width"] is not None  # the JPEG path with enlarged = flag
     assert now["greyphoto.jpg"]["greyscale"] == 1 and now["photo.jpg"]["greyscale"] == 0
     assert result.outcome == "finished" and result.measured == 6
+    with col.ledger(readonly=True) as ledger:
+        notes = ledger.rows("SELECT message FROM notes WHERE kind = 'remeasured'")
+    assert [n[0] for n in notes] == [note_text(result)]
+    assert notes[0][0].startswith("6 of 8 stored files measured again offline")
 
 
 def test_withdrawn_and_lost_files_are_skipped_and_reported(remeasured) -> None:

@@ -43,8 +43,8 @@ from collector.storage import upkeep_queries as uq
 from collector.storage.collection import Collection
 from collector.storage.ledger import Ledger
 
-__all__ = ["MEASUREMENTS", "Measurement", "Reading", "RemeasureResult", "remeasure",
-           "report_lines"]
+__all__ = ["MEASUREMENTS", "Measurement", "Reading", "RemeasureResult", "note_text",
+           "remeasure", "report_lines"]
 
 BATCH = 200  # files per transaction (and per progress line)
 # ledger_facts: the last rowid a remeasure --all finished (empty once it completed).
@@ -235,6 +235,8 @@ def remeasure(collection: Collection, *, everything: bool = False, dry_run: bool
                 ledger.set_fact(ALL_DONE_UPTO, "")
         for moved in result.moved:  # every batch is written: partners have current hashes
             moved.near = tuple(_near_check(ledger, v) for v in moved.verdicts)
+        if not dry_run and (result.measured or result.problems):
+            ledger.add_note("remeasured", note_text(result))
         if walk.rewrote_hashes:  # the first trace need not wait for the rebuild
             hashindex.HashFile.open(ledger, collection.hash_index_path)
     return result
@@ -397,6 +399,22 @@ def _why(exc: BaseException) -> str:
     if isinstance(exc, OSError):
         return exc.strerror or str(exc)
     return str(exc)
+
+
+def note_text(result: RemeasureResult) -> str:
+    """The one line the ledger's notes keep about a remeasure (kind ``remeasured``)."""
+    facts = "; ".join(f"{name}: {count.changed:,} changed"
+                      for name, count in result.counts.items())
+    parts = [f"{result.measured:,} of {result.files:,} stored files measured again offline "
+             f"({facts})"]
+    if result.moved:
+        parts.append(f"{len(result.moved):,} perceptual hashes moved by more than "
+                     f"near_distance = {result.near_distance} bits")
+    if result.problems:
+        parts.append(f"{len(result.problems):,} files could not be measured")
+    if result.outcome != "finished":
+        parts.append(result.outcome)
+    return "; ".join(parts)
 
 
 def report_lines(result: RemeasureResult) -> list[str]:
