@@ -337,13 +337,14 @@ def test_it_refuses_to_run_during_a_gather(gathered) -> None:
 
 def test_the_command_reports_and_exits_1_for_a_missing_file(gathered) -> None:
     """collector remeasure prints what changed per fact and names the missing file (exit 1);
-    --dry-run first says what would be measured."""
+    --dry-run first says what would be measured and names the missing file too."""
     root, fresh = gathered
     col = make_old(root)
     col.store.find(fresh["lost.png"]["sha256"]).unlink()  # type: ignore[union-attr]
     dry = runner.invoke(app, ["remeasure", str(col.root), "--dry-run"])
-    assert dry.exit_code == 0, dry.output
+    assert dry.exit_code == 1, dry.output
     assert "would measure 8" in dry.output and "perceptual hashes: 8 due" in dry.output
+    assert f"missing: {fresh['lost.png']['sha256'][:16]}" in dry.output
     out = runner.invoke(app, ["remeasure", str(col.root)])
     assert out.exit_code == 1, out.output
     assert "measured 7" in out.output

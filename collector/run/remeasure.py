@@ -261,8 +261,13 @@ class _Walk:
             result.removed += sum(slot.removed for slot in page)
             for m in self.active:
                 result.counts[m.name].due += len(due[m.name])
-            result.due += len(set().union(*due.values()))
-            if not result.dry_run:
+            files_due = set().union(*due.values())
+            result.due += len(files_due)
+            if result.dry_run:  # nothing is read, but a file missing from the store is named
+                for slot in page:
+                    if slot.sha256 in files_due:
+                        self._stored_path(slot.sha256)
+            else:
                 self._measure(page, due, last)
             after = last
             if progress is not None:
@@ -302,8 +307,15 @@ class _Walk:
         self.rewrote_hashes = self.rewrote_hashes or batch.rewrote_hashes
 
     def _reading(self, sha256: str) -> Reading | None:
-        """The stored file and its row, or None (recorded as a problem) when it is not in
-        the store or cannot be reached."""
+        """The stored file and its row, or None when it is not in the store or cannot be
+        reached (recorded as a problem)."""
+        path = self._stored_path(sha256)
+        if path is None:
+            return None
+        return Reading(sha256, path, self.ledger.file(sha256) or {}, self.settings)
+
+    def _stored_path(self, sha256: str) -> Path | None:
+        """Where the store keeps a file, or None (recorded as a problem)."""
         try:
             path = self.collection.store.find(sha256)
         except (OSError, CollectorError) as exc:
@@ -312,8 +324,7 @@ class _Walk:
         if path is None:
             self.result.problems.append(Problem(
                 sha256, "missing", "the store holds no file with these bytes"))
-            return None
-        return Reading(sha256, path, self.ledger.file(sha256) or {}, self.settings)
+        return path
 
     def _moved(self, reading: Reading,
                values: list[tuple[Measurement, dict[str, Any]]]) -> MovedHash | None:
