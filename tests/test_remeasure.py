@@ -328,11 +328,21 @@ def test_an_interrupted_all_run_resumes_where_it_stopped(gathered) -> None:
     assert rest.resumed_after > 0 and rest.measured == 3 and rest.looked == 3
 
 
-def test_it_refuses_to_run_during_a_gather(gathered) -> None:
-    """The collection's gather lock is held: a remeasure refuses with the lock's message."""
-    col = Collection(gathered[0])
+def test_it_refuses_to_run_during_a_gather_and_holds_the_lock(gathered) -> None:
+    """The collection's gather lock is held: a remeasure refuses with the lock's message;
+    while a remeasure runs, it holds the lock a gather needs."""
+    col = make_old(gathered[0])
     with col.gather_lock(), pytest.raises(CollectionError, match="already running"):
         remeasure(col, dry_run=True)
+    refused = []
+
+    def try_to_gather(result: RemeasureResult) -> None:
+        with pytest.raises(CollectionError, match="already running"), col.gather_lock():
+            pass
+        refused.append(result.looked)
+
+    remeasure(col, progress=try_to_gather, batch=4)
+    assert refused == [4, 8]
 
 
 def test_the_command_reports_and_exits_1_for_a_missing_file(gathered) -> None:
