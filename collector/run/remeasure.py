@@ -121,7 +121,8 @@ class Measurement:
     range whose fact is missing or stale (a query of collector.storage.upkeep_queries);
     ``compute(reading)``: the new values; ``write(ledger, sha256, values)``: store them (the
     files row by default; a fact with a table of its own writes there). ``bookkeeping``:
-    values that say how a fact was made, not what it is (not counted as a change)."""
+    values that say how a fact was made, not what it is (not counted as a change).
+    ``wanted(settings)``: False when the recipe turns the fact off (it is then skipped)."""
 
     name: str
     due: Callable[[Ledger, int, int, Settings], set[str]]
