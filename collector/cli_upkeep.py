@@ -1,6 +1,7 @@
 """The upkeep commands of the command line: withdraw (and undo), the withdrawals, source notes,
-recipe history and the re-check. Thin, like every command: each parses its options and calls
-one library function (collector.storage.withdrawals, collector.run.recheck, ...)."""
+recipe history, the re-check and measuring stored files again. Thin, like every command: each
+parses its options and calls one library function (collector.storage.withdrawals,
+collector.run.recheck, ...)."""
 
 from __future__ import annotations
 
@@ -149,6 +150,35 @@ def recheck(
     raise typer.Exit(130 if result.outcome == "interrupted" else 0)
 
 
+def remeasure(
+    folder: Path = typer.Argument(Path("."), help="The collection folder."),
+    everything: bool = typer.Option(False, "--all",
+                                    help="Measure every stored file, not only stale ones."),
+    dry_run: bool = typer.Option(False, "--dry-run", help="Only count what is due."),
+) -> None:
+    """Measure the stored files again, offline: hashes, transparency, size, colour facts.
+
+    Brings the facts of files gathered by an older collector up to date from the files in the
+    store; never requests anything. Safe to interrupt: rerun to continue.
+
+    Example: collector remeasure my-leaves --dry-run
+    """
+    from collector.run import remeasure as rm
+    from collector.storage.collection import open_collection
+
+    def progress(result: rm.RemeasureResult) -> None:  # a line per batch on big collections
+        if result.files > rm.BATCH:
+            typer.echo(f"{result.looked:,} of {result.files:,} files looked at, "
+                       f"{result.measured:,} measured", err=True)
+
+    with user_errors():
+        result = rm.remeasure(open_collection(folder), everything=everything, dry_run=dry_run,
+                              progress=progress)
+    for line in rm.report_lines(result):
+        typer.echo(one_line(line))
+    raise typer.Exit(130 if result.outcome == "interrupted" else 1 if result.problems else 0)
+
+
 def register_upkeep(app: typer.Typer) -> None:
     """Add the upkeep commands to the command line."""
     app.command()(withdraw)
@@ -157,3 +187,4 @@ def register_upkeep(app: typer.Typer) -> None:
     app.command()(notes)
     app.command("recipe-diff")(recipe_diff)
     app.command()(recheck)
+    app.command()(remeasure)

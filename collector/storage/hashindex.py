@@ -164,16 +164,22 @@ class HashIndex:
 # --- the persistent hash file ---------------------------------------------------------------
 # One file in the collection's cache folder (Collection.hash_index_path), memory-mapped by
 # readers (little-endian):
-#   header (128 bytes): magic, capacity, entries, ledger_rows, max_rowid, last_sha (32 raw bytes)
+#   header (128 bytes): magic, capacity, entries, ledger_rows, max_rowid, last_sha (32 raw
+#                       bytes), generation (the ledger's HASH_GENERATION fact; 0 when unset)
 #   hashes:  capacity x uint64 at offset 128            (the pHash of each entry)
 #   keys:    capacity x 32 bytes after the hashes        (the raw sha256 of each entry)
 # ``ledger_rows``/``max_rowid``/``last_sha`` describe the files table the entries were read
 # from, so a reader can tell in three indexed queries whether the file is in step with the
 # ledger. New ledger rows are appended in place while there is capacity; anything else (rows
-# deleted by crash recovery, a replaced ledger, a full file) rebuilds the file and swaps it in
-# with os.replace, so a reader always maps either the old or the new file, never a mixture.
+# deleted by crash recovery, a replaced ledger, a full file, hashes rewritten in place by
+# ``collector remeasure``, which raises the generation in the same transaction) rebuilds the
+# file and swaps it in with os.replace, so a reader always maps either the old or the new
+# file, never a mixture. A file written before the generation existed reads it as 0 (the
+# header's padding is zero), the value of a ledger whose hashes were never rewritten.
 _MAGIC = b"CLPHX001"
-_HEADER = struct.Struct("<8sQQQq32s")
+_HEADER = struct.Struct("<8sQQQq32sq")
+# The ledger_facts row that counts rewrites of stored hashes (see note_hashes_rewritten).
+HASH_GENERATION = "hash_generation"
 _HEADER_SIZE = 128
 _KEY_SIZE = 32
 
@@ -185,11 +191,26 @@ class LedgerMark:
     rows: int
     max_rowid: int
     last_sha: str | None
+    generation: int = 0  # how often stored hashes were rewritten in place
+
+
+def hash_generation(ledger: Ledger) -> int:
+    """How often stored hashes were rewritten in place (0: never, or an older ledger)."""
+    value = ledger.fact(HASH_GENERATION)
+    return int(value) if value and value.isdigit() else 0
+
+
+def note_hashes_rewritten(ledger: Ledger) -> None:
+    """Record that stored hashes were changed in place (call inside the transaction that
+    changes them): every hash file made before is then stale and rebuilt when next opened."""
+    ledger.set_fact(HASH_GENERATION, str(hash_generation(ledger) + 1))
 
 
 def ledger_mark(ledger: Ledger) -> LedgerMark:
-    """Read the files table's mark (count, max rowid, sha256 at that rowid)."""
-    return LedgerMark(*queries.files_mark(ledger))
+    """Read the files table's mark (count, max rowid, sha256 at that rowid, generation);
+    the generation is read first, so a rewrite committed meanwhile leaves the mark stale."""
+    generation = hash_generation(ledger)
+    return LedgerMark(*queries.files_mark(ledger), generation)
 
 
 def _read_rows(ledger: Ledger, after_rowid: int) -> tuple[LedgerMark, np.ndarray, bytes, int]:
@@ -198,6 +219,7 @@ def _read_rows(ledger: Ledger, after_rowid: int) -> tuple[LedgerMark, np.ndarray
     Rows without a pHash are counted but not indexed. Read as plain tuples: building a dict
     per row made a 1M-row rebuild take about 5 s.
     """
+    generation = hash_generation(ledger)  # before the rows: see ledger_mark
     rows = queries.files_after(ledger, after_rowid)
     with_hash = [row for row in rows if row[2] is not None]
     hashes = np.fromiter((row[2] for row in with_hash), dtype=np.int64,
@@ -205,7 +227,7 @@ def _read_rows(ledger: Ledger, after_rowid: int) -> tuple[LedgerMark, np.ndarray
     keys = bytes.fromhex("".join(row[1] for row in with_hash))
     last = rows[-1] if rows else None
     mark = LedgerMark(len(rows), int(last[0]) if last else after_rowid,
-                      last[1] if last else None)
+                      last[1] if last else None, generation)
     return mark, hashes, keys, len(rows)
 
 
@@ -287,23 +309,24 @@ def _read_header(path: Path) -> _Header | None:
         return None
     if len(raw) < _HEADER.size:
         return None
-    magic, cap, n, rows, max_rowid, last = _HEADER.unpack(raw)
+    magic, cap, n, rows, max_rowid, last, generation = _HEADER.unpack(raw)
     if magic != _MAGIC or n > cap or path.stat().st_size < _HEADER_SIZE + cap * (8 + _KEY_SIZE):
         return None
     last_sha = last.hex() if any(last) else None
-    return _Header(cap, n, LedgerMark(rows, max_rowid, last_sha))
+    return _Header(cap, n, LedgerMark(rows, max_rowid, last_sha, generation))
 
 
 def _pack(header: _Header) -> bytes:
     last = bytes.fromhex(header.mark.last_sha) if header.mark.last_sha else bytes(_KEY_SIZE)
     raw = _HEADER.pack(_MAGIC, header.capacity, header.entries, header.mark.rows,
-                       header.mark.max_rowid, last)
+                       header.mark.max_rowid, last, header.mark.generation)
     return raw.ljust(_HEADER_SIZE, b"\0")
 
 
 def _update(ledger: Ledger, path: Path, header: _Header | None, mark: LedgerMark) -> _Header:
     """Append the ledger's new rows if the file is a prefix of the ledger, else rebuild."""
-    if header is not None and header.mark.max_rowid <= mark.max_rowid:
+    if (header is not None and header.mark.max_rowid <= mark.max_rowid
+            and header.mark.generation == mark.generation):
         prefix_intact = header.mark.last_sha is None or queries.sha256_at_rowid(
             ledger, header.mark.max_rowid) == header.mark.last_sha
         if prefix_intact:

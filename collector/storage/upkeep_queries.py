@@ -305,3 +305,72 @@ def ledger_state(ledger: Ledger) -> tuple[int | None, str | None]:
                        "ORDER BY id DESC LIMIT 1")
     return (rows[0][0], rows[0][1]) if rows else (None, None)
 
+
+
+# --- remeasuring stored files (collector.run.remeasure) ---------------------------------------
+class FileSlot(NamedTuple):
+    """A files row as ``remeasure`` walks the table: its rowid, sha256 and whether its bytes
+    were deleted on purpose (``removed_at``)."""
+
+    rowid: int
+    sha256: str
+    removed: bool
+
+
+def files_page(ledger: Ledger, after_rowid: int, limit: int) -> list[FileSlot]:
+    """Up to ``limit`` files rows after ``after_rowid``, in rowid order."""
+    return [FileSlot(int(r[0]), r[1], bool(r[2])) for r in ledger.rows(
+        "SELECT rowid, sha256, removed_at IS NOT NULL FROM files WHERE rowid > ? "
+        "ORDER BY rowid LIMIT ?", (after_rowid, limit))]
+
+
+def _kept_between(ledger: Ledger, after_rowid: int, last_rowid: int, condition: str,
+                  args: tuple[Any, ...] = ()) -> set[str]:
+    """The sha256 of the files rows in (after_rowid, last_rowid] whose bytes are kept and
+    that meet ``condition`` (SQL written in this module only)."""
+    return {r[0] for r in ledger.rows(
+        "SELECT sha256 FROM files WHERE rowid > ? AND rowid <= ? AND removed_at IS NULL "
+        f"AND {condition}", (after_rowid, last_rowid, *args))}
+
+
+def kept_files_between(ledger: Ledger, after_rowid: int, last_rowid: int) -> set[str]:
+    """Every file in the rowid range whose bytes are kept (``remeasure --all``)."""
+    return _kept_between(ledger, after_rowid, last_rowid, "1")
+
+
+def hashes_due(ledger: Ledger, after_rowid: int, last_rowid: int,
+               hash_algo: str) -> set[str]:
+    """Files in the rowid range hashed by another pipeline than ``hash_algo`` (or never)."""
+    return _kept_between(ledger, after_rowid, last_rowid, "hash_algo IS NOT ?", (hash_algo,))
+
+
+def pixel_facts_due(ledger: Ledger, after_rowid: int, last_rowid: int) -> set[str]:
+    """Files in the rowid range stored before the transparency share and native size were
+    measured (schema 8): ``transparent_share`` is NULL (every file stored since has one)."""
+    return _kept_between(ledger, after_rowid, last_rowid, "transparent_share IS NULL")
+
+
+def colour_facts_due(ledger: Ledger, after_rowid: int, last_rowid: int) -> set[str]:
+    """Files in the rowid range without colour and tone facts (schema 10): ``greyscale``
+    is NULL."""
+    return _kept_between(ledger, after_rowid, last_rowid, "greyscale IS NULL")
+
+
+class NearVerdict(NamedTuple):
+    """An item judged a near duplicate: its file (None when dropped) and the item and file it
+    was judged a copy of."""
+
+    item_id: int
+    sha256: str | None
+    original_id: int | None
+    original_sha256: str | None
+
+
+def near_verdicts_about(ledger: Ledger, sha256: str) -> list[NearVerdict]:
+    """The items judged near duplicates where this file took part: the file's own items in
+    state near_duplicate, and the near duplicates of an item that brought it."""
+    return [NearVerdict(*r) for r in ledger.rows(
+        "SELECT i.id, i.file_sha256, i.duplicate_of, o.file_sha256 FROM items i "
+        "LEFT JOIN items o ON o.id = i.duplicate_of WHERE i.state = 'near_duplicate' AND "
+        "(i.file_sha256 = ? OR i.duplicate_of IN (SELECT id FROM items WHERE file_sha256 = ?)) "
+        "ORDER BY i.id", (sha256, sha256))]
