@@ -1,9 +1,11 @@
-"""The review sheet (``collector review``) of the demo collection: every stored file once per
-view, set-aside files apart with their reason, withdrawn files and their thumbnails gone,
-hostile titles escaped, thumbnails made once, and the page opened in headless Chromium.
+"""The review sheet (``collector review``) of the demo collection, all its pages read
+together: every stored file once per view, set-aside files apart with their reason, withdrawn
+files and their thumbnails gone, hostile titles escaped, thumbnails made once, and the first
+page opened in headless Chromium.
 
-The page is read back with the standard library's HTML parser (``html.parser``, which follows
-the HTML tokenisation of the WHATWG HTML Living Standard closely enough for our own markup).
+The pages are read back with the standard library's HTML parser (``html.parser``, which
+follows the HTML tokenisation of the WHATWG HTML Living Standard closely enough for our own
+markup).
 """
 
 from __future__ import annotations
@@ -49,7 +51,7 @@ needs_chromium = pytest.mark.skipif(
 class Sheet(HTMLParser):
     """What the review page holds: figures per view, every attribute, the text of reasons."""
 
-    def __init__(self, text: str) -> None:
+    def __init__(self, texts: list[str]) -> None:
         super().__init__()
         self.view = ""
         self.figures: dict[str, list[dict[str, Any]]] = {}
@@ -58,7 +60,8 @@ class Sheet(HTMLParser):
         self.tags: list[str] = []
         self._figure: dict[str, Any] | None = None
         self._in_reason = False
-        self.feed(text)
+        for text in texts:
+            self.feed(text)
 
     def handle_starttag(self, tag: str, attrs: list[tuple[str, str | None]]) -> None:
         a = {k: v or "" for k, v in attrs}
@@ -119,9 +122,9 @@ def reviewed(demo_server: DemoServer, demo_content: Path,
     second = runner.invoke(app, ["review", str(col.root)])
     assert second.exit_code == 0, second.output
     sheet = col.root / "review" / "review.html"
-    text = sheet.read_text(encoding="utf-8")
+    texts = [p.read_text(encoding="utf-8") for p in sorted(sheet.parent.glob("*.html"))]
     return {"col": col, "first": first.output, "second": second.output, "sheet": sheet,
-            "text": text, "parsed": Sheet(text), "gone": gone[0],
+            "text": "".join(texts), "parsed": Sheet(texts), "gone": gone[0],
             "aside": {sha for sha, _ in aside}}
 
 
@@ -186,6 +189,17 @@ def test_thumbnails_are_lazy_sized_and_local(reviewed: dict[str, Any]) -> None:
             assert max(im.size) <= 160
     links = [v for _, k, v in parsed.attrs if k in ("src", "href")]
     assert not [v for v in links if re.match(r"^(https?:)?//", v)]
+
+
+def test_every_link_between_pages_resolves(reviewed: dict[str, Any]) -> None:
+    """Each link to a page of the sheet names a file the review wrote; each view's contents
+    page lists its groups."""
+    folder = reviewed["sheet"].parent
+    pages = {v for _, k, v in reviewed["parsed"].attrs if k == "href" and v.endswith(".html")}
+    assert {"review-source.html", "review-colour.html", "review-near.html",
+            "review-aside.html"} <= pages
+    assert all((folder / page).is_file() for page in pages)
+    assert {p.name for p in folder.glob("*.html")} == pages | {"review.html"}
 
 
 def test_near_duplicate_clusters_hold_each_item_with_its_original(

@@ -1,18 +1,19 @@
-"""The review sheet: one self-contained HTML page to look at what was gathered.
+"""The review sheet: self-contained HTML pages to look at what was gathered.
 
-``collector review DIR`` writes ``DIR/review/review.html`` and ``DIR/review/thumbs/`` (see
-:mod:`collector.exports.thumbnails`). The page shows every stored file that is not withdrawn
+``collector review DIR`` writes ``DIR/review/``: ``review.html`` (the first page by source,
+where a reader starts), one file per further page (``review-<view>-<n>.html``), one contents
+file per view listing its groups (``review-<view>.html``), and ``thumbs/`` (see
+:mod:`collector.exports.thumbnails`). The pages show every stored file that is not withdrawn
 and not set aside, grouped three ways (by source, by main colour, by near-duplicate cluster:
 :mod:`collector.exports.review_groups`), and the set-aside files apart, each with the rule it
 fails and why. Withdrawn files are left out (counted only) and their thumbnails deleted.
 
-The page loads nothing from elsewhere: inline CSS, no script, thumbnails from the folder beside
-it. To open smoothly with thousands of files, thumbnails are lazy (``loading="lazy"``) with
-their size in the ``img`` element (no layout shifts), and each view is cut into pages of
-``per_page`` thumbnails; only the page shown is laid out (the others are ``display: none``, so
-their lazy pictures are not fetched). Pages are switched by plain links to their ids (CSS
-``:target``), so browser history and bookmarks work. Every value is escaped by Jinja2's
-autoescape; colours reach a style attribute only as checked ``#rrggbb`` text.
+The pages load nothing from elsewhere: inline CSS, no script, thumbnails from the folder
+beside them. To open smoothly with thousands of files each page holds ``per_page`` thumbnails
+at most and is a file of its own (plain links between them), so a browser parses, lays out and
+fetches one page's thumbnails only; thumbnails are lazy (``loading="lazy"``) with their size
+in the ``img`` element (no layout shifts). Every value is escaped by Jinja2's autoescape;
+colours reach a style attribute only as checked ``#rrggbb`` text.
 """
 
 from __future__ import annotations
@@ -34,7 +35,7 @@ from collector.exports.thumbnails import (
     Wanted,
     ensure_thumbnails,
 )
-from collector.storage.safe_paths import own_folder, replace_file
+from collector.storage.safe_paths import own_folder, remove_own_file, replace_file
 
 if TYPE_CHECKING:
     import jinja2
@@ -42,9 +43,8 @@ if TYPE_CHECKING:
     from collector.storage.review_queries import NearLink, ReviewFile
     from collector.storage.store import Store
 
-SHEET = "review.html"
+SHEET = rg.SHEET
 PER_PAGE = 150  # thumbnails per page: a few screens (common practice, no source)
-OUR_NAMES = frozenset({SHEET, THUMBS_DIR})
 CAUTION = ("Thumbnails show the pictures as stored and may show personal data (faces, names, "
            "handwriting, addresses): keep this sheet and its thumbs folder private, as you "
            "would the collection.")
@@ -78,13 +78,17 @@ def check_review_folder(root: Path, out: Path) -> None:
                               "another output folder (e.g. the default DIR/review)")
     if out.exists() and not out.is_dir():
         raise CollectionError(f"{out} exists and is not a folder; choose another --out")
-    others = sorted(p.name for p in out.iterdir() if p.name not in OUR_NAMES) if out.is_dir() \
-        else []
+    others = sorted(p.name for p in out.iterdir() if not _ours(p.name)) if out.is_dir() else []
     if others:
         raise CollectionError(
             f"{out} holds files a review did not write ({', '.join(others[:3])}"
             f"{', ...' if len(others) > 3 else ''}); nothing was written. Choose a new or "
             "empty folder, or the folder a previous review wrote")
+
+
+def _ours(name: str) -> bool:
+    """Whether a name in the output folder is one a review writes."""
+    return name in (SHEET, THUMBS_DIR) or bool(rg.PAGE_FILES.match(name))
 
 
 def _entry(row: ReviewFile, thumb: Thumb, href: str | None) -> rg.Entry:
@@ -130,10 +134,27 @@ def _environment() -> jinja2.Environment:
         undefined=jinja2.StrictUndefined, trim_blocks=True, lstrip_blocks=True)
 
 
-def render_sheet(views: list[rg.View], context: dict[str, Any]) -> str:
-    """review.html."""
-    return _environment().get_template("review.html.j2").render(
-        views=views, caution=CAUTION, **context)
+def render_pages(views: list[rg.View], context: dict[str, Any]) -> dict[str, str]:
+    """Every file of the sheet by name: each view's contents and pages."""
+    env = _environment()
+    contents, page = env.get_template("review_contents.html.j2"), env.get_template(
+        "review_page.html.j2")
+    common = {"views": views, "caution": CAUTION, **context}
+    files = {}
+    for view in views:
+        files[view.contents] = contents.render(view=view, **common)
+        for p in view.pages:
+            files[p.file] = page.render(view=view, page=p, **common)
+    return files
+
+
+def _write_pages(out: Path, pages: dict[str, str]) -> None:
+    """Write the pages; remove the page files of an earlier review not written now."""
+    for name, text in pages.items():
+        replace_file(out / name, text)
+    for entry in os.scandir(out):
+        if rg.PAGE_FILES.match(entry.name) and entry.name not in pages:
+            remove_own_file(out / entry.name)
 
 
 def _wanted(rows: list[ReviewFile], store: Store) -> list[Wanted]:
@@ -178,7 +199,6 @@ def write_review(root: Path, *, out: Path | None = None, per_page: int = PER_PAG
     stamp = now or datetime.now(UTC).isoformat(timespec="seconds").replace("+00:00", "Z")
     context = {"name": name, "generated_at": stamp, "version": __version__,
                "files": len(rows), "withdrawn": len(rows) - len(kept), "side": side}
-    sheet = out / SHEET
-    replace_file(sheet, render_sheet(views, context))
-    return ReviewResult(out, sheet, len(rows), views[0].count, views[3].count,
+    _write_pages(out, render_pages(views, context))
+    return ReviewResult(out, out / SHEET, len(rows), views[0].count, views[3].count,
                         len(rows) - len(kept), counts, sum(len(v.pages) for v in views))

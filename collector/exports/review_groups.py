@@ -22,7 +22,8 @@ bin can be named in words.
 
 Bins are listed around the hue wheel, then the neutrals, then ``not measured``. A view is one
 list of groups; pages hold ``per_page`` thumbnails, and a group that does not fit on one page
-continues on the next (its heading repeated, marked continued).
+continues on the next (its heading repeated, marked continued). Each page is a file of its own
+(:func:`page_file`), so a browser lays out and fetches the thumbnails of one page only.
 """
 
 from __future__ import annotations
@@ -44,6 +45,10 @@ BLACK_BELOW, WHITE_FROM = 25.0, 75.0  # L* of neutral colours (quarters of the s
 NOT_MEASURED = "not measured"
 UNKNOWN_SOURCE = "(no item: registered by rebuild-ledger)"
 _HEX = re.compile(r"^#[0-9a-fA-F]{6}$")
+SHEET = "review.html"  # the page a reader opens: the first page by source
+FIRST_VIEW = "source"
+# Every page file a review writes (a later review removes the ones it no longer writes).
+PAGE_FILES = re.compile(r"^review-[a-z]+(-[0-9]+)?\.html$")
 
 
 @dataclass(frozen=True)
@@ -94,9 +99,9 @@ class Section:
 
 @dataclass(frozen=True)
 class Page:
-    """One page of a view; ``anchor`` is the element id links point at."""
+    """One page of a view, written as its own HTML file (``file``)."""
 
-    anchor: str
+    file: str
     number: int
     sections: list[Section]
 
@@ -115,6 +120,10 @@ class View:
     @property
     def count(self) -> int:
         return sum(len(g.entries) for g in self.groups)
+
+    @property
+    def contents(self) -> str:
+        return contents_file(self.key)
 
 
 def parse_colours(text: str | None) -> list[dict[str, object]]:
@@ -255,5 +264,16 @@ def paginate(view: View, per_page: int) -> View:
             start += len(chunk)
             if start >= len(group.entries):
                 break
-    view.pages = [Page(f"{view.key}-p{n}", n, sections) for n, sections in enumerate(pages, 1)]
+    view.pages = [Page(page_file(view.key, n), n, sections)
+                  for n, sections in enumerate(pages, 1)]
     return view
+
+
+def page_file(view: str, number: int) -> str:
+    """The file of a view's page: the sheet itself for the first page by source."""
+    return SHEET if (view, number) == (FIRST_VIEW, 1) else f"review-{view}-{number}.html"
+
+
+def contents_file(view: str) -> str:
+    """The file listing a view's groups."""
+    return f"review-{view}.html"
