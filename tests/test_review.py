@@ -54,6 +54,7 @@ class Sheet(HTMLParser):
     def __init__(self, texts: list[str]) -> None:
         super().__init__()
         self.view = ""
+        self.group = ""
         self.figures: dict[str, list[dict[str, Any]]] = {}
         self.attrs: list[tuple[str, str, str]] = []  # (tag, name, value)
         self.imgs: list[dict[str, str]] = []
@@ -69,8 +70,11 @@ class Sheet(HTMLParser):
         self.attrs += [(tag, k, v) for k, v in a.items()]
         if tag == "section" and a.get("class") == "page":
             self.view = a["data-view"]
+        elif tag == "h3":
+            self.group = a["data-group"]
         elif tag == "figure":
-            self._figure = {"sha256": a["data-sha256"], "hover": a["title"], "reason": ""}
+            self._figure = {"sha256": a["data-sha256"], "hover": a["title"], "reason": "",
+                            "group": self.group}
             self.figures.setdefault(self.view, []).append(self._figure)
         elif tag == "img":
             self.imgs.append(a)
@@ -116,6 +120,7 @@ def reviewed(demo_server: DemoServer, demo_content: Path,
                        "'95 % of the pixels have chroma under 6' WHERE sha256 = ?", (sha,))
         db.execute("UPDATE items SET title = ? WHERE id = ?", (HOSTILE_SCRIPT, stored[3][1]))
         db.execute("UPDATE items SET title = ? WHERE id = ?", (HOSTILE_ATTRIBUTE, stored[4][1]))
+        db.execute("UPDATE files SET colours = NULL WHERE sha256 = ?", (stored[5][0],))
     withdrawn = runner.invoke(app, ["withdraw", str(col.root), f"item:{gone[1]}", "--reason",
                                     "personal-data", "--delete-bytes"])
     assert withdrawn.exit_code == 0, withdrawn.output
@@ -125,7 +130,7 @@ def reviewed(demo_server: DemoServer, demo_content: Path,
     texts = [p.read_text(encoding="utf-8") for p in sorted(sheet.parent.glob("*.html"))]
     return {"col": col, "first": first.output, "second": second.output, "sheet": sheet,
             "text": "".join(texts), "parsed": Sheet(texts), "gone": gone[0],
-            "aside": {sha for sha, _ in aside}}
+            "aside": {sha for sha, _ in aside}, "unmeasured": stored[5][0]}
 
 
 def test_every_file_appears_once_by_source_and_by_colour(reviewed: dict[str, Any]) -> None:
@@ -140,6 +145,16 @@ def test_every_file_appears_once_by_source_and_by_colour(reviewed: dict[str, Any
         assert len(shown) == len(set(shown)), view
         assert set(shown) == expected, view
     assert all(reviewed["gone"] not in parsed.shas(v) for v in parsed.figures)
+
+
+def test_files_without_colour_facts_are_not_measured(reviewed: dict[str, Any]) -> None:
+    """A file stored before colour facts (colours NULL) is in the 'not measured' bin, the
+    last one; every other file is in a colour bin."""
+    by_colour = reviewed["parsed"].figures["colour"]
+    unmeasured = [f["sha256"] for f in by_colour if f["group"] == "c100"]
+    assert unmeasured == [reviewed["unmeasured"]]
+    assert by_colour[-1]["group"] == "c100"
+    assert "not measured" in reviewed["text"]
 
 
 def test_set_aside_files_are_apart_with_their_reason(reviewed: dict[str, Any]) -> None:
