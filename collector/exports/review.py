@@ -66,8 +66,8 @@ class ReviewResult:
 
 def check_review_folder(root: Path, out: Path) -> None:
     """Refuse an output folder that is a file, lies in the store, or holds anything but a
-    previous review's own files (``review.html``, ``thumbs/``). Inside the collection folder
-    no part of it may be a symbolic link."""
+    previous review's own files (``review.html``, the ``review-*.html`` pages, ``thumbs/``).
+    Inside the collection folder no part of it may be a symbolic link."""
     absolute_root, absolute_out = Path(os.path.abspath(root)), Path(os.path.abspath(out))
     if absolute_out.is_relative_to(absolute_root):
         own_folder(absolute_root, absolute_out)
