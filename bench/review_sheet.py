@@ -128,11 +128,17 @@ def timings(html: Path) -> dict[str, float]:
 
 
 def main() -> int:
-    from collector.exports.review import write_review
-
     n = int(sys.argv[1]) if len(sys.argv) > 1 else 3000
     png = Path(sys.argv[2]) if len(sys.argv) > 2 else Path("review-sheet-screenshot.png")
-    root = Path(tempfile.mkdtemp()) / "c"
+    with tempfile.TemporaryDirectory() as tmp:
+        measure(Path(tmp) / "c", n, png.resolve())
+    return 0
+
+
+def measure(root: Path, n: int, png: Path) -> None:
+    """Build the collection at ``root``, write its sheet twice, open it; print the table."""
+    from collector.exports.review import write_review
+
     t0 = time.perf_counter()
     build(root, n)
     built = time.perf_counter() - t0
@@ -165,9 +171,9 @@ def main() -> int:
             ("first-paint", "first paint"), ("first-contentful-paint", "first contentful paint"),
             ("dcl", "DOMContentLoaded end"), ("load", "load end")) if key in got]
         if "images" in got:
-            # Headless Chromium fetched every thumbnail, loading="lazy" and display: none
-            # notwithstanding (a plain 55,000 px page of lazy images did the same): the load
-            # time above is the worst case of fetching all of them.
+            # Headless Chromium fetched every thumbnail of the page, loading="lazy"
+            # notwithstanding (a plain 55,000 px page of lazy images did the same here): the
+            # load time above is the worst case, all of the page's thumbnails fetched.
             rows.append(("img elements in the DOM",
                          f"{got['images']} ({got['images_complete']} fetched by the headless "
                          "browser)"))
@@ -175,7 +181,6 @@ def main() -> int:
             print("  " + line)
     for name, value in rows:
         print(f"{name:<30} {value}")
-    return 0
 
 
 if __name__ == "__main__":
