@@ -496,5 +496,30 @@ def demo(
     raise typer.Exit(result.run.exit_code)
 
 
+@app.command()
+def review(
+    folder: Path = typer.Argument(Path("."), help="The collection folder."),
+    out: Path = typer.Option(None, "--out", metavar="DIR",
+                             help="Output folder (default: FOLDER/review)."),
+    per_page: int = typer.Option(150, "--per-page", metavar="N",
+                                 help="Thumbnails per page."),
+) -> None:
+    """Write a review sheet: review.html with the stored files as thumbnails, by source, by
+    main colour and by near-duplicate cluster, set-aside files apart (thumbnails in thumbs/,
+    made once and reused).
+
+    Example: collector review my-leaves
+    """
+    from collector.exports.review import write_review
+
+    with user_errors():
+        result = write_review(folder, out=out, per_page=per_page)
+    t = result.thumbs
+    typer.echo(f"Wrote {result.sheet}: {result.shown} files shown, {result.set_aside} set "
+               f"aside, {result.withdrawn} withdrawn left out; thumbnails {t.made} made, "
+               f"{t.reused} reused, {t.removed} removed"
+               + (f", {t.failed} could not be made" if t.failed else ""))
+
+
 # The upkeep commands (withdraw, re-check, recipe history, notes) live in cli_upkeep.
 register_upkeep(app)
