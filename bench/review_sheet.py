@@ -2,7 +2,7 @@
 it (thumbnails made, then reused), page weight, and how it opens in headless Chromium.
 
 Usage: python bench/review_sheet.py [FILES] [SCREENSHOT_PNG]   (default 3000 files,
-review-sheet-screenshot.png)
+bench/out/review-sheet-screenshot.png)
 
 The collection (5 sources, JPEGs of 480x360 from a few random colour fields around a hue, their
 colour facts computed by collector.checks.colour_facts, every 20th a near duplicate of the one
@@ -129,7 +129,8 @@ def timings(html: Path) -> dict[str, float]:
 
 def main() -> int:
     n = int(sys.argv[1]) if len(sys.argv) > 1 else 3000
-    png = Path(sys.argv[2]) if len(sys.argv) > 2 else Path("review-sheet-screenshot.png")
+    png = Path(sys.argv[2]) if len(sys.argv) > 2 else Path("bench/out/review-sheet-screenshot.png")
+    png.parent.mkdir(parents=True, exist_ok=True)
     with tempfile.TemporaryDirectory() as tmp:
         measure(Path(tmp) / "c", n, png.resolve())
     return 0
