@@ -15,6 +15,7 @@ from PIL import Image, ImageOps
 from collector.demo_site import art, metadata, pages
 from collector.demo_site.builder import (
     GALLERY_PAGE,
+    GREYSCALE_RULE,
     POLICY,
     V1_PER_PAGE,
     V2_PAGE,
@@ -114,6 +115,7 @@ def _api_pages_item(b: Builder, i: int, item: Item) -> None:
         im = Image.fromarray(grey * 257)  # uint16 array -> mode "I;16"
         item.image_path = f"/media/specimens/{key}.png"
         b.serve_image(item, png(im), "image/png")
+        item.set_aside = GREYSCALE_RULE  # a greyscale picture: the demo's pixel rule
     elif i == 5:
         item.image_path = f"/media/specimens/{key}.webp"
         b.serve_image(item, metadata.encode(b.picture(key), "WEBP", quality=80), "image/webp")
@@ -398,6 +400,7 @@ def _format_find(b: Builder, n: int) -> dict[str, Any]:
     item = b.add(Item("api-linked", key, title, creator, date, lic, 4, path))
     b.serve_image(item, data, "image/tiff" if n == 21 else "image/png")
     item.note = note
+    item.set_aside = GREYSCALE_RULE  # both are greyscale: the demo's pixel rule
     if n == 22:
         item.flags = ["blank"]
     return {"ref": key, "label": title, "recorded_by": creator, "recorded_on": date,
@@ -511,6 +514,7 @@ def build_scans(b: Builder) -> None:
             "items": [{"index": k, "kind": p.kind, "box": list(p.box), "angle": p.angle,
                        "state": "stored"} for k, p in enumerate(placed)],
             "touching_pairs": [[0, 1]] if touching else [],
+            "set_aside": GREYSCALE_RULE if n == 0 else None,  # a blank bed is greyscale
             "note": ("items 0 and 1 touch: a splitter that merges them finds one region "
                      "fewer") if touching else ("no items: a blank scan" if n == 0 else ""),
         })

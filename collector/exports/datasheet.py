@@ -249,7 +249,8 @@ def iter_release_rows(ledger: Ledger, recipe: Recipe, counts: ReleaseCounts, *,
     Counts what is left out; the caller counts what it keeps."""
     withdrawn = upkeep_queries.withdrawn_sha256s(ledger)
     rows = _policy_rows(ledger, recipe, counts, exclude_flagged=exclude_flagged)
-    return release.select(rows, selection or release.Selection(), withdrawn, counts.excluded)
+    return release.select(rows, selection or release.Selection(), withdrawn, counts.excluded,
+                          upkeep_queries.set_aside_sha256s(ledger))
 
 
 def _policy_rows(ledger: Ledger, recipe: Recipe, counts: ReleaseCounts, *,
