@@ -131,8 +131,9 @@ def report_lines(report: RulesReport) -> list[str]:
         lines.append("  set aside afterwards: " + ", ".join(
             f"{rule} {n}" for rule, n in sorted(report.aside_after.items())))
     if report.no_facts:
-        lines.append(f"  {report.no_facts:,} files have no colour facts (stored before they "
-                     "were kept, or gathered with dominant_colours = 0): no rule judged them")
+        lines.append(f"  {report.no_facts:,} file{' has' if report.no_facts == 1 else 's have'} "
+                     "no colour facts (stored before they were kept, or gathered with "
+                     "dominant_colours = 0): no rule judged them, their state is unchanged")
     if report.undecided:
         lines.append("  lacking a fact some rules need, not judged by them: " + ", ".join(
             f"{rule} {n}" for rule, n in sorted(report.undecided.items())))
