@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import itertools
 import json
+import shutil
 from collections import Counter
 from pathlib import Path
 from typing import Any
@@ -21,7 +22,9 @@ from collector.demo_site import DemoServer
 from collector.demo_site.recipes import render
 from collector.exports.summary import format_summary, summarise
 from collector.run.gather import gather
-from collector.storage.collection import Collection, init_collection
+from collector.run.set_aside import apply_rules
+from collector.storage import upkeep_queries
+from collector.storage.collection import Collection, init_collection, open_collection
 
 
 def ledger_items(col: Collection) -> dict[tuple[str, str], dict[str, Any]]:
@@ -425,3 +428,66 @@ def test_transparent_and_enlarged_images_carry_exactly_their_flags(demo_run, dem
                 item["key"], flag)
             marked += flag in item["flags"]
     assert marked >= 4
+
+
+def expected_set_aside(manifest: dict[str, Any]) -> dict[str, str]:
+    """sha256 -> the pixel rule the manifest says sets the stored file aside (items and
+    scanner beds)."""
+    return {**{i["sha256"]: i["set_aside"] for i in manifest["items"] if i.get("set_aside")},
+            **{s["sha256"]: s["set_aside"] for s in manifest["scans"] if s.get("set_aside")}}
+
+
+def set_aside_now(col: Collection) -> dict[str, str]:
+    with col.ledger(readonly=True) as ledger:
+        return {f.sha256: f.set_aside for f in upkeep_queries.files_to_judge(ledger)
+                if f.set_aside}
+
+
+def test_the_demo_pixel_rule_sets_aside_exactly_the_greyscale_pictures(demo_run,
+                                                                        demo_server) -> None:
+    """The demo recipe's [[pixel_rules]] (greyscale = false) sets aside exactly the files the
+    manifest marks (the 16-bit greyscale PNG and TIFF, a flat white page, the blank scanner
+    bed: a grey picture has no chroma, CIE 15:2004), and they stay in the store."""
+    col, _, _ = demo_run
+    expected = expected_set_aside(demo_server.manifest)
+    assert len(expected) == 4 and set(expected.values()) == {"no-greyscale"}
+    assert set_aside_now(col) == expected
+    assert all(col.store.find(sha) is not None for sha in expected)
+
+
+def test_apply_rules_after_a_rule_change_moves_exactly_the_expected_items_offline(
+        demo_run, demo_server, tmp_path: Path) -> None:
+    """The rule narrowed to one source brings back exactly the manifest's set-aside files of
+    the other sources; dropped, it brings back the rest; restored, it sets all aside again.
+    Each change is a rule_changes row, and the server's log shows no request meanwhile."""
+    col, _, _ = demo_run
+    copy = open_collection(shutil.copytree(col.root, tmp_path / "copy", symlinks=True))
+    expected = expected_set_aside(demo_server.manifest)
+    by_source = {sha: src for sha, src in ledger_sources(copy).items() if sha in expected}
+    original = copy.recipe_path.read_text()
+    rule = '[[pixel_rules]]\nname = "no-greyscale"\ngreyscale = false\n'
+    assert rule in original
+    demo_server.reset()
+    copy.recipe_path.write_text(original.replace(rule, rule + 'sources = ["api-linked"]\n'))
+    narrowed = apply_rules(copy)
+    assert {m.sha256 for m in narrowed.moves} == {
+        sha for sha, src in by_source.items() if src != "api-linked"}
+    assert {m.kind for m in narrowed.moves} == {"brought back"}
+    copy.recipe_path.write_text(original.replace(rule, ""))
+    dropped = apply_rules(copy)
+    assert {m.sha256 for m in dropped.moves} == {
+        sha for sha, src in by_source.items() if src == "api-linked"}
+    assert set_aside_now(copy) == {}
+    copy.recipe_path.write_text(original)
+    restored = apply_rules(copy)
+    assert {m.sha256: m.after for m in restored.moves} == expected
+    with copy.ledger(readonly=True) as ledger:
+        changes = upkeep_queries.rule_changes(ledger)
+    assert sorted(c.sha256 for c in changes) == sorted([*expected, *expected])
+    assert demo_server.log == []  # not a single request while the rules were applied
+
+
+def ledger_sources(col: Collection) -> dict[str, str | None]:
+    """sha256 -> the source of the item that first brought the file."""
+    with col.ledger(readonly=True) as ledger:
+        return {f.sha256: f.source for f in upkeep_queries.files_to_judge(ledger)}
