@@ -23,6 +23,7 @@ from support.server import LoopbackServer, json_answer
 from typer.testing import CliRunner
 
 from collector.cli import app
+from collector.exports.changelog import change_log
 from collector.exports.datasheet import export_datasheet
 from collector.exports.summary import format_summary, summarise
 from collector.exports.trace import Tracer
@@ -171,6 +172,11 @@ def test_apply_rules_moves_exactly_what_the_changed_rules_say_without_a_request(
     assert sorted((c.rule_before or "", c.rule_after) for c in changes[1:]) == [
         ("colour", None), ("greens", None)]
     assert "min_hue_share = 0.3" in (changes[0].detail or "")
+    with gathered.ledger(readonly=True) as ledger:
+        logged = [e["detail"] for e in change_log(ledger)
+                  if e["event"] == "pixel rules applied again"]
+    assert [d.split(": ", 1)[1] for d in logged] == ["1 file(s) set aside",
+                                                     "2 file(s) brought back"]
     assert archive.targets() == [] and offline == []
 
 
