@@ -145,6 +145,10 @@ def test_a_file_failing_a_rule_is_stored_but_set_aside(gathered: Collection,
     assert grey.sha256 not in released and len(released) == 3
     assert export.counts.excluded == {"set_aside": 1}
     assert export.facts["accepted"]["files"] == 3
+    sheet = (tmp_path / "release" / "datasheet.md").read_text()
+    assert ("Pixel rule 'colour' (greyscale = false): 1 file(s) set aside (kept in the store, "
+            "left out of this release and of the accepted files counted here).") in sheet
+    assert "| set aside by the recipe's pixel rules | 1 |" in sheet
 
 
 def test_apply_rules_moves_exactly_what_the_changed_rules_say_without_a_request(

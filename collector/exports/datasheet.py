@@ -49,7 +49,7 @@ from collector.exports.facts import (
     Timeline,
 )
 from collector.safe_text import csv_cell, csv_row
-from collector.storage import datasheet_queries, upkeep_queries
+from collector.storage import datasheet_queries, queries, upkeep_queries
 from collector.storage.datasheet_queries import Timeframe
 from collector.storage.ledger import Ledger
 from collector.storage.safe_paths import link_refused, new_temp_file, own_folder, replace_file
@@ -124,6 +124,8 @@ def _facts(ledger: Ledger, recipe: Recipe, now: str) -> DatasheetFacts:
             "allow_unknown": recipe.licences.allow_unknown,
             "images": asdict(recipe.images),
             "max_image_bytes": recipe.network.max_image_bytes,
+            "pixel_rules": [dict(rule) for rule in recipe.pixel_rules],
+            "set_aside": dict(queries.set_aside_counts(ledger)),
         },
     }
 
