@@ -25,7 +25,7 @@ from typer.testing import CliRunner
 from collector.cli import app
 from collector.exports.changelog import change_log
 from collector.exports.datasheet import export_datasheet
-from collector.exports.summary import format_summary, summarise
+from collector.exports.summary import format_summary, summarise, summary_as_dict
 from collector.exports.trace import Tracer
 from collector.exports.trace_format import format_record
 from collector.run import gather as gather_module
@@ -130,7 +130,9 @@ def test_a_file_failing_a_rule_is_stored_but_set_aside(gathered: Collection,
     assert aside(gathered) == {"grey": "colour", "green": None, "red": None, "half": None}
     with gathered.ledger(readonly=True) as ledger:
         grey = next(f for f in upkeep_queries.files_to_judge(ledger) if f.source_key == "grey")
-        lines = format_summary(summarise(ledger))
+        summary = summarise(ledger)
+    lines = format_summary(summary)
+    assert summary_as_dict(summary)["set_aside"] == {"colour": 1}
     assert gathered.store.find(grey.sha256) is not None
     assert grey.set_aside_detail == ('pixel rule "colour": greyscale = false, but the picture '
                                      'is greyscale')
@@ -203,5 +205,8 @@ def test_the_command_prints_the_moves_and_files_without_facts_are_not_judged(
     assert "1 would be set aside, 0 brought back" in result.output
     assert "set aside: plates:red" in result.output
     assert "1 file has no colour facts" in result.output
+    checked = CliRunner().invoke(app, ["check", str(gathered.root)])
+    assert 'pixel_rules[2]: name = "greens", hues = [70, 170], min_hue_share = 0.3' in (
+        checked.output)
     assert aside(gathered)["red"] is None and offline == []
     assert archive.targets() == []

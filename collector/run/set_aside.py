@@ -94,20 +94,26 @@ def apply_rules(collection: Collection, *, dry_run: bool = False) -> RulesReport
             return plan(ledger, recipe)
     with collection.gather_lock(), collection.ledger() as ledger:
         report = plan(ledger, recipe)
-        report.dry_run = False
-        when = utc_now()
-        with ledger.transaction():
-            if report.moves:
-                ledger.add_row("recipes", {"sha256": recipe.sha256, "text": recipe.kept_text(),
-                                           "first_used_at": when})
-            for move in report.moves:
-                ledger.update_file(move.sha256, {"set_aside": move.after,
-                                                 "set_aside_detail": move.detail})
-                ledger.add_row("rule_changes", {
-                    "changed_at": when, "sha256": move.sha256, "rule_before": move.before,
-                    "rule_after": move.after, "detail": move.detail,
-                    "recipe_sha256": recipe.sha256})
+        record(ledger, recipe, report)
     return report
+
+
+def record(ledger: Ledger, recipe: Recipe, report: RulesReport) -> None:
+    """Make the planned moves and their ``rule_changes`` rows in one transaction (the
+    recipe's text is kept in ``recipes`` beside them)."""
+    report.dry_run = False
+    when = utc_now()
+    with ledger.transaction():
+        if report.moves:
+            ledger.add_row("recipes", {"sha256": recipe.sha256, "text": recipe.kept_text(),
+                                       "first_used_at": when})
+        for move in report.moves:
+            ledger.update_file(move.sha256, {"set_aside": move.after,
+                                             "set_aside_detail": move.detail})
+            ledger.add_row("rule_changes", {
+                "changed_at": when, "sha256": move.sha256, "rule_before": move.before,
+                "rule_after": move.after, "detail": move.detail,
+                "recipe_sha256": recipe.sha256})
 
 
 def _who(move: Move) -> str:
