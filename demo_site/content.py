@@ -376,6 +376,7 @@ def build_api_linked(b: Builder) -> None:
                         "rights_url": item.licence.url,
                         "file": {"url": item.image_url, "bytes": item.facts["bytes"]}})
     records += [_format_find(b, n) for n in (21, 22)]
+    records += [_old_find(b, n, date) for n, date in OLD_FINDS]
     b.apis["v3"] = {"host": 4, "path": "/api/v3/finds", "records": records,
                     "page_size": V3_PAGE}
 
@@ -484,6 +485,26 @@ def build_gallery(b: Builder) -> None:
                                   base_href=url(2, "/gallery/"))
         b.put_page(2, path, text, "text/html; charset=utf-8")
     b.put_page(2, "/static/site.css", pages.STYLE, "text/css; charset=utf-8", role="asset")
+
+
+# The demo recipe's keep_if on api-linked keeps finds made from 1900 on (and undated ones):
+# these two old finds are skipped before their images are requested.
+OLD_FINDS = ((23, "c. 1850"), (24, "1890s"))
+
+
+def _old_find(b: Builder, n: int, date: str) -> dict[str, Any]:
+    key = f"find-{3000 + n}"
+    title, creator, _ = b.person(key)
+    lic = Licence(None, _URL_FOR["CC-BY-4.0"], "CC-BY-4.0")
+    item = b.add(Item("api-linked", key, title, creator, date, lic, 4,
+                      f"/media/finds/{key}.jpg"))
+    b.serve_image(item, jpeg(b.picture(key, 600, 450)), "image/jpeg")
+    item.state, item.reason = "skipped", "condition_not_met"
+    item.note = (f"dated {date!r}: the recipe's keep_if on api-linked leaves it out before "
+                 "its image is requested")
+    return {"ref": key, "label": title, "recorded_by": creator, "recorded_on": date,
+            "rights_text": item.licence.text, "rights_url": item.licence.url,
+            "file": {"url": item.image_url, "bytes": item.facts["bytes"]}}
 
 
 # --------------------------------------------------------------------------------------

@@ -387,6 +387,25 @@ def test_iiif_items_were_asked_at_the_negotiated_size_and_rights_statements_kept
     assert "rs:NoC-US" in sheet and "rightsstatements.org/page/NoC-US/1.0/" in sheet
 
 
+def test_the_demo_condition_skips_old_finds_before_their_image_is_requested(
+        demo_run, demo_server) -> None:
+    """The demo recipe's keep_if on api-linked (finds from 1900 on, or undated) skips the two
+    finds dated "c. 1850" and "1890s" (read as 1845-1855 and 1890-1899) with the condition in
+    the detail, and the server's log has no request for their images."""
+    from urllib.parse import urlsplit
+
+    col, log, _ = demo_run
+    requested = {(r.host, r.path) for r in log}
+    old = [i for i in demo_server.manifest["items"] if i["reason"] == "condition_not_met"]
+    assert sorted(i["date"] for i in old) == ["1890s", "c. 1850"]
+    keyed = ledger_items(col)
+    for item in old:
+        row = find(keyed, demo_server, item["source"], item["key"], item.get("page_url"))
+        assert "keep_if" in row["detail"] and "could not be read" not in row["detail"]
+        parts = urlsplit(demo_server.fill(item["image_url"]))
+        assert (parts.hostname, parts.path) not in requested, item["key"]
+
+
 def test_items_skipped_for_a_reservation_caused_no_image_request(demo_run, demo_server) -> None:
     """The reading room's reserved items (a tdmrep.json rule, a listing page answering
     tdm-reservation: 1, a detail page's meta element; TDMRep §3.1-§3.3) were skipped before
