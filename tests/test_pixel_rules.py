@@ -73,8 +73,8 @@ def test_share_of_a_hue_range_decides_a_rule() -> None:
     assert greens.verdict("s", half).rule is None
     red = greens.verdict("s", facts_of(flat((255, 0, 0))))
     assert red.rule == "greens"
-    assert red.detail == ('pixel rule "greens": min_hue_share = 0.3 in hues = [70, 170], but '
-                          '0.00 of the picture is in those hues')
+    assert red.detail == ('min_hue_share = 0.3 in hues = [70, 170], but 0.00 of the picture '
+                          'is in those hues')
     reds = PixelRules([{"name": "few-reds", "hues": [330, 30], "max_hue_share": 0.6}])
     assert reds.verdict("s", facts_of(flat((255, 0, 0)))).rule == "few-reds"
     assert reds.verdict("s", half).rule is None
@@ -96,11 +96,11 @@ def test_greyscale_and_colourfulness_rules() -> None:
     assert grey["greyscale"] == 1 and grey["colourfulness"] == 0.0
     rules = PixelRules([{"name": "colour", "greyscale": False}])
     assert rules.verdict("s", grey) == (
-        "colour", 'pixel rule "colour": greyscale = false, but the picture is greyscale', ())
+        "colour", "greyscale = false, but the picture is greyscale", ())
     assert rules.verdict("s", colour).rule is None
     vivid = PixelRules([{"name": "vivid", "min_colourfulness": 15}])
     assert vivid.verdict("s", grey).detail == (
-        'pixel rule "vivid": min_colourfulness = 15, but the colourfulness is 0')
+        "min_colourfulness = 15, but the colourfulness is 0")
     assert vivid.verdict("s", colour).rule is None
     mono = PixelRules([{"name": "mono", "greyscale": True}])
     assert mono.verdict("s", colour).rule == "mono" and mono.verdict("s", grey).rule is None

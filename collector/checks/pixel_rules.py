@@ -172,8 +172,9 @@ def hue_share(colours: Sequence[Mapping[str, Any]], hues: Sequence[float]) -> fl
 
 
 class Verdict(NamedTuple):
-    """What the rules say of one file: the first rule it fails (None: none) and why, and the
-    rules that could not be decided for lack of facts."""
+    """What the rules say of one file: the first rule it fails (None: none) and why, in the
+    recipe's words (``greyscale = false, but the picture is greyscale``), and the rules that
+    could not be decided for lack of facts."""
 
     rule: str | None
     detail: str | None
@@ -262,8 +263,7 @@ class PixelRules:
                 continue
             why, decided = rule.failure(facts)
             if why is not None:
-                return Verdict(rule.name, f'pixel rule "{rule.name}": {why}',
-                               tuple(undecided))
+                return Verdict(rule.name, why, tuple(undecided))
             if not decided:
                 undecided.append(rule.name)
         return Verdict(None, None, tuple(undecided))

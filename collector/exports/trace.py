@@ -372,7 +372,7 @@ class Tracer:
             stored_path=str(stored) if stored else None, flags=list(row.get("flags") or []),
             copyright=notice, origin=origin,
             others=[i for i in items if i is not origin], withdrawn=self._withdrawn(sha256),
-            set_aside=(row.get("set_aside_detail") or row["set_aside"])
+            set_aside=f'pixel rule "{row["set_aside"]}": {row.get("set_aside_detail") or "?"}'
             if row.get("set_aside") else None)
 
     def _withdrawn(self, sha256: str) -> str | None:

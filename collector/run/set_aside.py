@@ -144,7 +144,8 @@ def report_lines(report: RulesReport) -> list[str]:
         lines.append("  lacking a fact some rules need, not judged by them: " + ", ".join(
             f"{rule} {n}" for rule, n in sorted(report.undecided.items())))
     for move in report.moves[:MOVES_SHOWN]:
-        why = move.detail or f"no rule sets it aside now (was: {move.before})"
+        why = (f'pixel rule "{move.after}": {move.detail}' if move.after
+               else f'no rule sets it aside now (was: pixel rule "{move.before}")')
         lines.append(f"  {move.kind}: {_who(move)}: {why}")
     if len(report.moves) > MOVES_SHOWN:
         lines.append(f"  ... and {len(report.moves) - MOVES_SHOWN:,} more"
