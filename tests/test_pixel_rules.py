@@ -189,6 +189,9 @@ max_background_share = 0.7
     ('name = "a"\ngreyscale = "no"', "pixel_rules[1].greyscale", "must be true or false"),
     ('name = "a"\ngreyscale = false\nsources = ["gardn"]', "pixel_rules[1].sources[0]",
      "did you mean 'garden'"),
+    ('name = "a"\ngreyscale = false\nsources = []', "pixel_rules[1].sources",
+     "at least one source"),
+    ('name = "a"\nhues = "greens"\nmin_hue_share = 0.3', "pixel_rules[1].hues", "a list"),
 ])
 def test_rule_problems_name_their_key(table: str, where: str, says: str) -> None:
     """Each mistake is reported at its key path with what to write instead."""

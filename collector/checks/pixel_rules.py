@@ -104,13 +104,13 @@ def _rule_problems(table: dict[str, Any], path: str, sources: Sequence[str],
     """The checks across the keys of one rule (each key's own check is RULE_KEYS')."""
     if not any(k in table for k in REQUIREMENTS):
         problems.add(path, "has no requirement; give at least one of " + ", ".join(REQUIREMENTS))
-    if "hues" in table:
+    if isinstance(table.get("hues"), list):  # another type: check_table said so
         problem = _hues_problem(table["hues"])
         if problem:
             problems.add(f"{path}.hues", problem)
-        if "min_hue_share" not in table and "max_hue_share" not in table:
-            problems.add(f"{path}.hues", "needs min_hue_share or max_hue_share: how much of "
-                         "the picture must (or may) be in these hues, e.g. min_hue_share = 0.3")
+    if "hues" in table and "min_hue_share" not in table and "max_hue_share" not in table:
+        problems.add(f"{path}.hues", "needs min_hue_share or max_hue_share: how much of "
+                     "the picture must (or may) be in these hues, e.g. min_hue_share = 0.3")
     for key in ("min_hue_share", "max_hue_share"):
         if key in table and "hues" not in table:
             problems.add(f"{path}.{key}", "needs hues = [from, to]: the hue range (degrees) "
@@ -119,10 +119,14 @@ def _rule_problems(table: dict[str, Any], path: str, sources: Sequence[str],
         if (isinstance(table.get(low), int | float) and isinstance(table.get(high), int | float)
                 and table[low] > table[high]):
             problems.add(f"{path}.{high}", f"must not be smaller than {low} ({table[low]!r})")
+    if table.get("sources") == []:
+        problems.add(f"{path}.sources", "must name at least one source (leave the key out for "
+                     "a rule on every source)")
+    known = f"the recipe's sources: {', '.join(sources)}" if sources else "the recipe has none"
     for i, name in enumerate(table.get("sources") or []):
         if isinstance(name, str) and name not in sources:
-            problems.add(f"{path}.sources[{i}]", f"names no source of the recipe "
-                         f"{name!r}{did_you_mean(name, sources)}; sources: {', '.join(sources)}")
+            problems.add(f"{path}.sources[{i}]", f"{name!r} names no source"
+                         f"{did_you_mean(name, sources)}; {known}")
 
 
 def check_pixel_rules(raw: Any, sources: Sequence[str], problems: Problems
