@@ -120,6 +120,9 @@ def check(
         say("  sources: none yet; add [[sources]] tables before gathering")
     for i, source in enumerate(recipe.sources):
         say(f"  {source_prefix(i, source)}: kind = {toml_value(source['kind'])}")
+    for i, rule in enumerate(recipe.pixel_rules, start=1):
+        say(f"  pixel_rules[{i}]: " + ", ".join(
+            f"{toml_key(k)} = {toml_value(v)}" for k, v in rule.items()))
 
 
 

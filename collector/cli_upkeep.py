@@ -1,7 +1,7 @@
 """The upkeep commands of the command line: withdraw (and undo), the withdrawals, source notes,
-recipe history, the re-check and measuring stored files again. Thin, like every command: each
-parses its options and calls one library function (collector.storage.withdrawals,
-collector.run.recheck, ...)."""
+recipe history, the re-check, measuring stored files again and applying the pixel rules again.
+Thin, like every command: each parses its options and calls one library function
+(collector.storage.withdrawals, collector.run.recheck, ...)."""
 
 from __future__ import annotations
 
@@ -179,6 +179,28 @@ def remeasure(
     raise typer.Exit(130 if result.outcome == "interrupted" else 1 if result.problems else 0)
 
 
+def apply_rules(
+    folder: Path = typer.Argument(Path("."), help="The collection folder."),
+    dry_run: bool = typer.Option(False, "--dry-run",
+                                 help="Show what would move; change nothing."),
+) -> None:
+    """Apply the recipe's pixel rules again to every stored file, offline.
+
+    Files that now fail a rule are set aside (kept, left out of releases), files that pass
+    again are brought back; each change is recorded. Nothing is requested or decoded: the
+    rules judge the colour facts the ledger keeps.
+
+    Example: collector apply-rules my-leaves --dry-run
+    """
+    from collector.run import set_aside
+    from collector.storage.collection import open_collection
+
+    with user_errors():
+        report = set_aside.apply_rules(open_collection(folder), dry_run=dry_run)
+    for line in set_aside.report_lines(report):
+        typer.echo(one_line(line))
+
+
 def register_upkeep(app: typer.Typer) -> None:
     """Add the upkeep commands to the command line."""
     app.command()(withdraw)
@@ -188,3 +210,4 @@ def register_upkeep(app: typer.Typer) -> None:
     app.command("recipe-diff")(recipe_diff)
     app.command()(recheck)
     app.command()(remeasure)
+    app.command("apply-rules")(apply_rules)

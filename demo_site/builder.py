@@ -38,7 +38,11 @@ POLICY: dict[str, Any] = {
     "max_pixels": 89_478_485,
     "near_distance": 8,
     "near_duplicates": "keep",
+    # The demo recipe's [[pixel_rules]]: greyscale pictures are set aside (kept in the store,
+    # left out of releases); items whose file is greyscale say so in "set_aside".
+    "pixel_rules": [{"name": "no-greyscale", "greyscale": False}],
 }
+GREYSCALE_RULE = "no-greyscale"
 
 V1_PER_PAGE = 20
 V2_PAGE = 10
@@ -71,6 +75,7 @@ class Item:
     page_url: str | None = None
     note: str = ""
     facts: dict[str, Any] = field(default_factory=dict)
+    set_aside: str | None = None  # the pixel rule that sets the stored file aside
 
     @property
     def image_url(self) -> str:

@@ -15,6 +15,7 @@ from PIL import Image, ImageOps
 from collector.demo_site import art, metadata, pages
 from collector.demo_site.builder import (
     GALLERY_PAGE,
+    GREYSCALE_RULE,
     POLICY,
     V1_PER_PAGE,
     V2_PAGE,
@@ -114,6 +115,7 @@ def _api_pages_item(b: Builder, i: int, item: Item) -> None:
         im = Image.fromarray(grey * 257)  # uint16 array -> mode "I;16"
         item.image_path = f"/media/specimens/{key}.png"
         b.serve_image(item, png(im), "image/png")
+        item.set_aside = GREYSCALE_RULE  # a greyscale picture: the demo's pixel rule
     elif i == 5:
         item.image_path = f"/media/specimens/{key}.webp"
         b.serve_image(item, metadata.encode(b.picture(key), "WEBP", quality=80), "image/webp")
@@ -374,6 +376,7 @@ def build_api_linked(b: Builder) -> None:
                         "rights_url": item.licence.url,
                         "file": {"url": item.image_url, "bytes": item.facts["bytes"]}})
     records += [_format_find(b, n) for n in (21, 22)]
+    records += [_old_find(b, n, date) for n, date in OLD_FINDS]
     b.apis["v3"] = {"host": 4, "path": "/api/v3/finds", "records": records,
                     "page_size": V3_PAGE}
 
@@ -398,6 +401,7 @@ def _format_find(b: Builder, n: int) -> dict[str, Any]:
     item = b.add(Item("api-linked", key, title, creator, date, lic, 4, path))
     b.serve_image(item, data, "image/tiff" if n == 21 else "image/png")
     item.note = note
+    item.set_aside = GREYSCALE_RULE  # both are greyscale: the demo's pixel rule
     if n == 22:
         item.flags = ["blank"]
     return {"ref": key, "label": title, "recorded_by": creator, "recorded_on": date,
@@ -483,6 +487,26 @@ def build_gallery(b: Builder) -> None:
     b.put_page(2, "/static/site.css", pages.STYLE, "text/css; charset=utf-8", role="asset")
 
 
+# The demo recipe's keep_if on api-linked keeps finds made from 1900 on (and undated ones):
+# these two old finds are skipped before their images are requested.
+OLD_FINDS = ((23, "c. 1850"), (24, "1890s"))
+
+
+def _old_find(b: Builder, n: int, date: str) -> dict[str, Any]:
+    key = f"find-{3000 + n}"
+    title, creator, _ = b.person(key)
+    lic = Licence(None, _URL_FOR["CC-BY-4.0"], "CC-BY-4.0")
+    item = b.add(Item("api-linked", key, title, creator, date, lic, 4,
+                      f"/media/finds/{key}.jpg"))
+    b.serve_image(item, jpeg(b.picture(key, 600, 450)), "image/jpeg")
+    item.state, item.reason = "skipped", "condition_not_met"
+    item.note = (f"dated {date!r}: the recipe's keep_if on api-linked leaves it out before "
+                 "its image is requested")
+    return {"ref": key, "label": title, "recorded_by": creator, "recorded_on": date,
+            "rights_text": item.licence.text, "rights_url": item.licence.url,
+            "file": {"url": item.image_url, "bytes": item.facts["bytes"]}}
+
+
 # --------------------------------------------------------------------------------------
 # Source 5: scanner (local files)
 # --------------------------------------------------------------------------------------
@@ -511,6 +535,7 @@ def build_scans(b: Builder) -> None:
             "items": [{"index": k, "kind": p.kind, "box": list(p.box), "angle": p.angle,
                        "state": "stored"} for k, p in enumerate(placed)],
             "touching_pairs": [[0, 1]] if touching else [],
+            "set_aside": GREYSCALE_RULE if n == 0 else None,  # a blank bed is greyscale
             "note": ("items 0 and 1 touch: a splitter that merges them finds one region "
                      "fewer") if touching else ("no items: a blank scan" if n == 0 else ""),
         })

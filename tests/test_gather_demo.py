@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import itertools
 import json
+import shutil
 from collections import Counter
 from pathlib import Path
 from typing import Any
@@ -21,7 +22,9 @@ from collector.demo_site import DemoServer
 from collector.demo_site.recipes import render
 from collector.exports.summary import format_summary, summarise
 from collector.run.gather import gather
-from collector.storage.collection import Collection, init_collection
+from collector.run.set_aside import apply_rules
+from collector.storage import upkeep_queries
+from collector.storage.collection import Collection, init_collection, open_collection
 
 
 def ledger_items(col: Collection) -> dict[tuple[str, str], dict[str, Any]]:
@@ -384,6 +387,25 @@ def test_iiif_items_were_asked_at_the_negotiated_size_and_rights_statements_kept
     assert "rs:NoC-US" in sheet and "rightsstatements.org/page/NoC-US/1.0/" in sheet
 
 
+def test_the_demo_condition_skips_old_finds_before_their_image_is_requested(
+        demo_run, demo_server) -> None:
+    """The demo recipe's keep_if on api-linked (finds from 1900 on, or undated) skips the two
+    finds dated "c. 1850" and "1890s" (read as 1845-1855 and 1890-1899) with the condition in
+    the detail, and the server's log has no request for their images."""
+    from urllib.parse import urlsplit
+
+    col, log, _ = demo_run
+    requested = {(r.host, r.path) for r in log}
+    old = [i for i in demo_server.manifest["items"] if i["reason"] == "condition_not_met"]
+    assert sorted(i["date"] for i in old) == ["1890s", "c. 1850"]
+    keyed = ledger_items(col)
+    for item in old:
+        row = find(keyed, demo_server, item["source"], item["key"], item.get("page_url"))
+        assert "keep_if" in row["detail"] and "could not be read" not in row["detail"]
+        parts = urlsplit(demo_server.fill(item["image_url"]))
+        assert (parts.hostname, parts.path) not in requested, item["key"]
+
+
 def test_items_skipped_for_a_reservation_caused_no_image_request(demo_run, demo_server) -> None:
     """The reading room's reserved items (a tdmrep.json rule, a listing page answering
     tdm-reservation: 1, a detail page's meta element; TDMRep §3.1-§3.3) were skipped before
@@ -425,3 +447,66 @@ def test_transparent_and_enlarged_images_carry_exactly_their_flags(demo_run, dem
                 item["key"], flag)
             marked += flag in item["flags"]
     assert marked >= 4
+
+
+def expected_set_aside(manifest: dict[str, Any]) -> dict[str, str]:
+    """sha256 -> the pixel rule the manifest says sets the stored file aside (items and
+    scanner beds)."""
+    return {**{i["sha256"]: i["set_aside"] for i in manifest["items"] if i.get("set_aside")},
+            **{s["sha256"]: s["set_aside"] for s in manifest["scans"] if s.get("set_aside")}}
+
+
+def set_aside_now(col: Collection) -> dict[str, str]:
+    with col.ledger(readonly=True) as ledger:
+        return {f.sha256: f.set_aside for f in upkeep_queries.files_to_judge(ledger)
+                if f.set_aside}
+
+
+def test_the_demo_pixel_rule_sets_aside_exactly_the_greyscale_pictures(demo_run,
+                                                                        demo_server) -> None:
+    """The demo recipe's [[pixel_rules]] (greyscale = false) sets aside exactly the files the
+    manifest marks (the 16-bit greyscale PNG and TIFF, a flat white page, the blank scanner
+    bed: a grey picture has no chroma, CIE 15:2004), and they stay in the store."""
+    col, _, _ = demo_run
+    expected = expected_set_aside(demo_server.manifest)
+    assert len(expected) == 4 and set(expected.values()) == {"no-greyscale"}
+    assert set_aside_now(col) == expected
+    assert all(col.store.find(sha) is not None for sha in expected)
+
+
+def test_apply_rules_after_a_rule_change_moves_exactly_the_expected_items_offline(
+        demo_run, demo_server, tmp_path: Path) -> None:
+    """The rule narrowed to one source brings back exactly the manifest's set-aside files of
+    the other sources; dropped, it brings back the rest; restored, it sets all aside again.
+    Each change is a rule_changes row, and the server's log shows no request meanwhile."""
+    col, _, _ = demo_run
+    copy = open_collection(shutil.copytree(col.root, tmp_path / "copy", symlinks=True))
+    expected = expected_set_aside(demo_server.manifest)
+    by_source = {sha: src for sha, src in ledger_sources(copy).items() if sha in expected}
+    original = copy.recipe_path.read_text()
+    rule = '[[pixel_rules]]\nname = "no-greyscale"\ngreyscale = false\n'
+    assert rule in original
+    demo_server.reset()
+    copy.recipe_path.write_text(original.replace(rule, rule + 'sources = ["api-linked"]\n'))
+    narrowed = apply_rules(copy)
+    assert {m.sha256 for m in narrowed.moves} == {
+        sha for sha, src in by_source.items() if src != "api-linked"}
+    assert {m.kind for m in narrowed.moves} == {"brought back"}
+    copy.recipe_path.write_text(original.replace(rule, ""))
+    dropped = apply_rules(copy)
+    assert {m.sha256 for m in dropped.moves} == {
+        sha for sha, src in by_source.items() if src == "api-linked"}
+    assert set_aside_now(copy) == {}
+    copy.recipe_path.write_text(original)
+    restored = apply_rules(copy)
+    assert {m.sha256: m.after for m in restored.moves} == expected
+    with copy.ledger(readonly=True) as ledger:
+        changes = upkeep_queries.rule_changes(ledger)
+    assert sorted(c.sha256 for c in changes) == sorted([*expected, *expected])
+    assert demo_server.log == []  # not a single request while the rules were applied
+
+
+def ledger_sources(col: Collection) -> dict[str, str | None]:
+    """sha256 -> the source of the item that first brought the file."""
+    with col.ledger(readonly=True) as ledger:
+        return {f.sha256: f.source for f in upkeep_queries.files_to_judge(ledger)}

@@ -305,7 +305,7 @@ TOP_KEYS: dict[str, Key] = {
     "contact": Key("str", "", check=check_contact),
     "product_token": Key("str", "collector", check=_check_token),
 }
-ALL_TOP = [*TOP_KEYS, *SECTIONS, "sources"]
+ALL_TOP = [*TOP_KEYS, *SECTIONS, "sources", "pixel_rules"]
 
 
 @dataclass(frozen=True)
@@ -326,6 +326,7 @@ class Recipe:
     sources: list[dict[str, Any]] = field(default_factory=list)
     items: Items = field(default_factory=lambda: Items())
     reservations: Reservations = field(default_factory=Reservations)
+    pixel_rules: tuple[dict[str, Any], ...] = ()  # [[pixel_rules]] (collector.checks.pixel_rules)
     text: str = field(default="", repr=False, compare=False)  # as read, for the ledger
 
     def budget_for(self, host: str) -> Budget:
@@ -343,6 +344,7 @@ class Recipe:
             "licences": asdict(self.licences), "images": asdict(self.images),
             "stop": asdict(self.stop), "items": asdict(self.items), "sources": self.sources,
             "reservations": asdict(self.reservations),
+            **({"pixel_rules": list(self.pixel_rules)} if self.pixel_rules else {}),
         }
 
     def shown_settings(self) -> dict[str, Any]:
@@ -454,6 +456,22 @@ def _check_permission_names(data: Mapping[str, Any], source_list: list[dict],
                          "permission is given per source, by its name")
 
 
+def _check_pixel_rules(data: Mapping[str, Any], images: Mapping[str, Any],
+                       source_list: list[dict], problems: Problems) -> tuple[dict, ...]:
+    """``[[pixel_rules]]`` (collector.checks.pixel_rules), which need the colour facts."""
+    if "pixel_rules" not in data:
+        return ()
+    from collector.checks.pixel_rules import check_pixel_rules
+
+    names = [str(s.get("name")) for s in source_list]
+    rules = check_pixel_rules(data["pixel_rules"], names, problems)
+    if rules and images.get("dominant_colours") == 0:
+        problems.add("images.dominant_colours", "must be 1 or more while the recipe has "
+                     "[[pixel_rules]]: with 0 no colour facts are computed, so no rule could "
+                     "judge a new file")
+    return rules
+
+
 def parse_recipe(text: str, path: Path, *, check_source_kinds: bool = True) -> Recipe:
     """Validate recipe text; raises RecipeError listing every problem.
 
@@ -500,6 +518,7 @@ def parse_recipe(text: str, path: Path, *, check_source_kinds: bool = True) -> R
     source_list = (_check_sources(data["sources"], problems, by_kind=check_source_kinds)
                    if "sources" in data else [])
     _check_permission_names(data, source_list, problems)
+    pixel_rules = _check_pixel_rules(data, sections["images"], source_list, problems)
     if problems:
         raise RecipeError(problems.items)
     return Recipe(
@@ -510,7 +529,8 @@ def parse_recipe(text: str, path: Path, *, check_source_kinds: bool = True) -> R
         network=Network(**sections["network"]), licences=Licences(**sections["licences"]),
         images=Images(**sections["images"]), stop=Stop(**sections["stop"]),
         sources=source_list, items=Items(**sections["items"]),
-        reservations=Reservations(**sections["reservations"]), text=text)
+        reservations=Reservations(**sections["reservations"]), pixel_rules=pixel_rules,
+        text=text)
 
 
 def load_recipe(path: Path, *, check_source_kinds: bool = True) -> Recipe:

@@ -1,5 +1,6 @@
 """The change log of a collection, drawn from the ledger: runs, recipe changes, withdrawals
-(and their undoing) and re-check findings, each with its date, oldest first.
+(and their undoing), re-check findings and pixel rules applied again (``apply-rules``), each
+with its date, oldest first.
 
 The datasheet shows it (question ``maintenance.changelog``); every event is a row the ledger
 already keeps, so the log is never written by hand and cannot drift from the record.
@@ -8,6 +9,7 @@ already keeps, so the log is never written by hand and cannot drift from the rec
 from __future__ import annotations
 
 import json
+from collections import Counter
 
 from collector.exports.facts import ChangeEvent, LedgerState
 from collector.exports.recipe_history import recipe_changes
@@ -58,8 +60,22 @@ def change_log(ledger: Ledger) -> list[ChangeEvent]:
             events.append({"date": o.observed_at, "event": "re-check finding",
                            "detail": f"item #{o.item_id}: "
                                      f"{FINDING_WORDS.get(o.finding, o.finding)}{was}"})
+    events += _rule_events(ledger)
     events.sort(key=lambda e: e["date"] or "")
     return events
+
+
+def _rule_events(ledger: Ledger) -> list[ChangeEvent]:
+    """One event per ``apply-rules`` that changed something (its rows share a time)."""
+    applied: dict[tuple[str, str | None], Counter[str]] = {}
+    for c in uq.rule_changes(ledger):
+        kind = ("set aside" if c.rule_before is None else
+                "brought back" if c.rule_after is None else "given a new reason")
+        applied.setdefault((c.changed_at, c.recipe_sha256), Counter())[kind] += 1
+    return [{"date": when, "event": "pixel rules applied again",
+             "detail": f"recipe {(sha or '?')[:12]}: " + ", ".join(
+                 f"{n} file(s) {kind}" for kind, n in sorted(moved.items()))}
+            for (when, sha), moved in applied.items()]
 
 
 def ledger_state(ledger: Ledger) -> LedgerState:

@@ -49,7 +49,7 @@ from collector.exports.facts import (
     Timeline,
 )
 from collector.safe_text import csv_cell, csv_row
-from collector.storage import datasheet_queries, upkeep_queries
+from collector.storage import datasheet_queries, queries, upkeep_queries
 from collector.storage.datasheet_queries import Timeframe
 from collector.storage.ledger import Ledger
 from collector.storage.safe_paths import link_refused, new_temp_file, own_folder, replace_file
@@ -124,6 +124,8 @@ def _facts(ledger: Ledger, recipe: Recipe, now: str) -> DatasheetFacts:
             "allow_unknown": recipe.licences.allow_unknown,
             "images": asdict(recipe.images),
             "max_image_bytes": recipe.network.max_image_bytes,
+            "pixel_rules": [dict(rule) for rule in recipe.pixel_rules],
+            "set_aside": dict(queries.set_aside_counts(ledger)),
         },
     }
 
@@ -249,7 +251,8 @@ def iter_release_rows(ledger: Ledger, recipe: Recipe, counts: ReleaseCounts, *,
     Counts what is left out; the caller counts what it keeps."""
     withdrawn = upkeep_queries.withdrawn_sha256s(ledger)
     rows = _policy_rows(ledger, recipe, counts, exclude_flagged=exclude_flagged)
-    return release.select(rows, selection or release.Selection(), withdrawn, counts.excluded)
+    return release.select(rows, selection or release.Selection(), withdrawn, counts.excluded,
+                          upkeep_queries.set_aside_sha256s(ledger))
 
 
 def _policy_rows(ledger: Ledger, recipe: Recipe, counts: ReleaseCounts, *,

@@ -25,6 +25,7 @@ from collector.exports.datasheet_questions import SECTIONS, Question
 from collector.exports.datasheet_reservations import CAUTION as RESERVATIONS_CAUTION
 from collector.exports.datasheet_reservations import reservation_blocks
 from collector.exports.release import EXCLUSION_REASONS
+from collector.schema import toml_value
 
 if TYPE_CHECKING:
     import jinja2
@@ -193,7 +194,22 @@ def _rules(f: DatasheetFacts) -> Block:
         + (" (--exclude-flagged)" if rel["exclude_flagged"] else "")
         + (f", {rel['missing_files']} missing from the store" if rel["missing_files"] else "")
         + ".",
+        *_pixel_rule_lines(p),
     ], "t-rules")
+
+
+def _pixel_rule_lines(p: dict[str, Any]) -> list[str]:
+    """The recipe's pixel rules and the files each sets aside (left out of every number)."""
+    counts = dict(p.get("set_aside") or {})
+    lines = []
+    for rule in p.get("pixel_rules") or []:
+        said = "; ".join(f"{k} = {toml_value(v)}" for k, v in rule.items() if k != "name")
+        lines.append(f"Pixel rule {rule['name']!r} ({said}): {counts.pop(rule['name'], 0)} "
+                     "file(s) set aside (kept in the store, left out of this release and of "
+                     "the accepted files counted here).")
+    lines += [f"Set aside by {name!r}, a pixel rule no longer in the recipe: {n} file(s) "
+              "('collector apply-rules' judges them again)." for name, n in counts.items()]
+    return lines
 
 
 def _steps(f: DatasheetFacts) -> list[Block]:

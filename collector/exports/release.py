@@ -10,7 +10,8 @@ A selection is a list of conditions, all of which a file must meet (``--only``, 
     stored=FROM..TO              the day the file was stored (ISO 8601, either end may be empty)
 
 and optionally a file of SHA-256s (``--sha256-file``: one hex digest per line, ``#`` starts
-a comment). By default a release also leaves out: withdrawn files (always), whole scanner beds
+a comment). By default a release also leaves out: withdrawn files and files a pixel rule set
+aside (always), whole scanner beds
 whose crops are released (the crops stand for them), and blank scans (a scanner bed where no
 item was found, or a file flagged ``blank``). Every file left out is counted under its reason
 (:data:`EXCLUSION_REASONS`) for the datasheet.
@@ -36,6 +37,7 @@ from collector.errors import CollectionError
 FIELDS = ("source", "licence", "creator", "state", "date", "stored")
 EXCLUSION_REASONS = {
     "withdrawn": "withdrawn",
+    "set_aside": "set aside by the recipe's pixel rules",
     "whole_scan": "whole scanner beds whose crops are released",
     "blank_scan": "blank scans",
     "not_selected": "not in the selection",
@@ -165,14 +167,17 @@ def is_blank_scan(row: dict[str, Any]) -> bool:
 
 
 def select(rows: Iterator[dict[str, Any]], sel: Selection, withdrawn: set[str],
-           excluded: dict[str, int]) -> Iterator[dict[str, Any]]:
-    """The rows a release holds, with ``excluded`` counting the others by reason. Whole
+           excluded: dict[str, int], set_aside: set[str] | frozenset[str] = frozenset()
+           ) -> Iterator[dict[str, Any]]:
+    """The rows a release holds, with ``excluded`` counting the others by reason (a file
+    in ``set_aside`` is one a pixel rule set aside). Whole
     scans are held back until every crop is seen (scans are few), then released only when
     none of their crops was."""
     scans: list[dict[str, Any]] = []
     crop_parents: set[str] = set()
     for row in rows:
-        reason = _exclusion(row, sel, withdrawn)
+        reason = "set_aside" if row["sha256"] in set_aside and row["sha256"] not in withdrawn \
+            else _exclusion(row, sel, withdrawn)
         if reason is not None:
             excluded[reason] = excluded.get(reason, 0) + 1
             continue

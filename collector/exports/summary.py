@@ -57,6 +57,7 @@ class Summary:
     run_seconds: float = 0.0  # all runs together
     last_run_seconds: float | None = None
     origins: list[queries.FileOrigin] = field(default_factory=list)
+    set_aside: Counter[str] = field(default_factory=Counter)  # pixel rule -> files it sets aside
     reservations: datasheet_queries.ReservationFacts = field(
         default_factory=lambda: datasheet_queries.ReservationFacts((), (), (), ()))
 
@@ -83,6 +84,7 @@ def summarise(ledger: Ledger) -> Summary:
         for flag in json.loads(flags):
             s.flags[flag.split(":", 1)[0]] += 1
     s.notes.update(dict(t.notes))
+    s.set_aside.update(dict(queries.set_aside_counts(ledger)))
     s.reservations = datasheet_queries.reservation_facts(ledger, RESERVATION_REASONS)
     return s
 
@@ -97,6 +99,7 @@ def summary_as_dict(s: Summary) -> dict[str, Any]:
         "file_origins": [o._asdict() for o in s.origins],
         "hosts": [vars(h) for h in s.hosts], "licences": dict(s.licences),
         "flags": dict(s.flags), "notes": dict(s.notes), "runs": s.runs,
+        "set_aside": dict(s.set_aside),
         "run_seconds": round(s.run_seconds, 3), "last_run": s.last_run,
         "last_run_seconds": s.last_run_seconds,
         "reservations": {
@@ -135,6 +138,11 @@ def format_summary(s: Summary) -> list[str]:
              f"{s.requests} requests ({human_bytes(s.fetched_bytes)} received), {runs} "
              f"taking {human_seconds(s.run_seconds)}"]
     lines += files_lines(s)
+    if s.set_aside:
+        lines.append(f"set aside by pixel rules: {sum(s.set_aside.values()):,} of the "
+                     f"{s.files:,} files (" + ", ".join(
+                         f"{k} {v}" for k, v in s.set_aside.most_common())
+                     + "); kept in the store, left out of releases")
     if s.last_run:
         lines.append(f"last run: #{s.last_run['id']} started {s.last_run['started_at']}, "
                      f"{human_seconds(s.last_run_seconds or 0)}, {s.last_run['outcome']}")

@@ -147,6 +147,7 @@ class FileRecord:
     origin: ItemRecord | None
     others: list[ItemRecord] = field(default_factory=list)
     withdrawn: str | None = None  # "withdrawn on <date>: <reason>" while a withdrawal holds
+    set_aside: str | None = None  # why a pixel rule sets the file aside (files.set_aside_detail)
 
 
 @dataclass
@@ -370,7 +371,9 @@ class Tracer:
             width=row.get("width"), height=row.get("height"), stored_at=row.get("stored_at"),
             stored_path=str(stored) if stored else None, flags=list(row.get("flags") or []),
             copyright=notice, origin=origin,
-            others=[i for i in items if i is not origin], withdrawn=self._withdrawn(sha256))
+            others=[i for i in items if i is not origin], withdrawn=self._withdrawn(sha256),
+            set_aside=f'pixel rule "{row["set_aside"]}": {row.get("set_aside_detail") or "?"}'
+            if row.get("set_aside") else None)
 
     def _withdrawn(self, sha256: str) -> str | None:
         found = upkeep_queries.active_withdrawal_of_file(self.ledger, sha256)

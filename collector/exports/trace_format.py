@@ -179,7 +179,8 @@ def table_row(result: TraceResult) -> dict[str, Any]:
         "source": (item.source or "") if item else "",
         "spdx_id": (item.spdx_id or "") if item else "",
         "allowed": result.allowed,
-        "flags": " ".join([*result.flags, *(["withdrawn"] if best and best.withdrawn else [])]),
+        "flags": " ".join([*result.flags, *(["withdrawn"] if best and best.withdrawn else []),
+                           *(["set_aside"] if best and best.set_aside else [])]),
         "matched_sha256": best.sha256 if best else "",
         "copy_kind": COPY_KINDS.get(result.near[0].how, "") if result.kind == "near" else "",
         "note": result.note or "",
@@ -310,6 +311,9 @@ def _file_lines(record: FileRecord) -> list[str]:
     lines.append(f"  flags:        {', '.join(record.flags) if record.flags else 'none'}")
     if record.withdrawn:
         lines.append(f"  withdrawn:    {record.withdrawn}; left out of every release")
+    if record.set_aside:
+        lines.append(f"  set aside:    {record.set_aside}; kept in the store, left out of "
+                     "releases")
     for other in record.others:
         where = other.page_url or other.image_url or other.local_path or other.source_key
         lines.append(f"  also from:    item #{other.item_id} ({other.source or '?'}, "

@@ -32,6 +32,7 @@ from collector.checks.licences import (
     rights_conflict,
 )
 from collector.checks.likeness import IMAGE_ERRORS, Look, confirm, look_at_file
+from collector.checks.pixel_rules import PixelRules
 from collector.checks.rights_statements import find_statement
 from collector.config.recipe import Recipe
 from collector.errors import ImageRejected, StoreError
@@ -132,6 +133,7 @@ class Ingest:
             for src, sid in zip(recipe.sources, source_ids, strict=True)}
         self._source_names = {sid: src["name"]
                               for src, sid in zip(recipe.sources, source_ids, strict=True)}
+        self._pixel_rules = PixelRules(recipe.pixel_rules)  # a file failing one is set aside
         everywhere = tuple(recipe.network.secret_params)
         self._secret_params = {sid: (*(src.get("secret_params") or ()), *everywhere)
                                for src, sid in zip(recipe.sources, source_ids, strict=True)}
@@ -497,6 +499,9 @@ class Ingest:
                 self.record.finish(item_id, state, reason, detail, **extra)
                 return
         row = _file_row(path, facts, item_id, flags)
+        if self._pixel_rules:
+            source = self._source_names.get(self._item_source.get(item_id, -1))
+            row.update(self._pixel_rules.verdict(source, row).columns())
         if recovered:
             # The stored bytes are these bytes (same sha256): attach, do not store again.
             with self.ledger.transaction():

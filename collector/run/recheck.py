@@ -27,6 +27,7 @@ from typing import Any
 from collector import __version__, sources
 from collector.checks.images import inspect_image
 from collector.checks.licences import normalise_licence
+from collector.checks.pixel_rules import PixelRules
 from collector.config.recipe import Recipe
 from collector.errors import CollectorError, FetchError, ImageRejected
 from collector.run.gather import build_fetcher, prepared_run
@@ -289,10 +290,13 @@ class _Checker:
         if placing:  # write-ahead like ingest: the intent before the file enters the store
             self.ledger.add_store_intent(sha, t.item_id)
         self.collection.store.adopt(path, sha, facts.ext, synced=False)
+        row = {"sha256": sha, "size": got.size, **facts.file_columns(),
+               "first_item_id": t.item_id, "flags": [*facts.flags, "new_version"]}
+        rules = PixelRules(self.recipe.pixel_rules)  # judged like a file a gather stores
+        if rules:
+            row.update(rules.verdict(t.source, row).columns())
         with self.ledger.transaction():
-            self.ledger.add_file({"sha256": sha, "size": got.size, **facts.file_columns(),
-                                  "first_item_id": t.item_id,
-                                  "flags": [*facts.flags, "new_version"]})
+            self.ledger.add_file(row)
             if placing:
                 self.ledger.drop_store_intent(sha)
         return self._finding(t, "changed_bytes", status=got.status, old=t.file_sha256,

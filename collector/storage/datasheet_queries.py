@@ -33,10 +33,12 @@ _NOT_WITHDRAWN = (
 
 
 def _accepted_from(ledger: Ledger) -> str:
-    """The accepted files the datasheet counts: withdrawn ones are left out of every number
-    (a ledger from before withdrawals has none). The release's own rows (``release_rows``)
-    keep them, so the release can count what it left out."""
-    return _ACCEPTED_FROM + (_NOT_WITHDRAWN if ledger.has_table("withdrawals") else "")
+    """The accepted files the datasheet counts: withdrawn ones and those a pixel rule set
+    aside are left out of every number (a ledger from before withdrawals or the set-aside
+    column has none). The release's own rows (``release_rows``) keep them, so the release
+    can count what it left out."""
+    return (_ACCEPTED_FROM + (_NOT_WITHDRAWN if ledger.has_table("withdrawals") else "")
+            + (" AND f.set_aside IS NULL" if "set_aside" in ledger.columns("files") else ""))
 
 
 def _host_of(url: str | None) -> str:

@@ -427,9 +427,9 @@ class Ledger:
 
     # -- upkeep: withdrawals, recipe texts, re-check observations (schema 7) -----------------
     def add_row(self, table: str, row: dict[str, Any]) -> int:
-        """Append a row to withdrawals, observations or recipes (a known recipe is kept), or
-        keep a page for re-use (kept_pages: a page kept before under the URL is replaced)."""
-        if table not in ("withdrawals", "observations", "recipes", "kept_pages"):
+        """Append a row to withdrawals, observations, rule_changes or recipes (a known recipe
+        is kept), or keep a page (kept_pages: a page kept before under the URL is replaced)."""
+        if table not in ("withdrawals", "observations", "recipes", "kept_pages", "rule_changes"):
             raise LedgerError(f"add_row does not write to {table}")
         return self._insert(table, row, ignore=table == "recipes",
                             replace=table == "kept_pages")

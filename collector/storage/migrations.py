@@ -199,6 +199,18 @@ def _migration_10(db: sqlite_utils.Database) -> None:
             files.add_column(name, kind)
 
 
+def _migration_11(db: sqlite_utils.Database) -> None:
+    """What ``collector apply-rules`` changed (``rule_changes``): one row per file whose
+    set-aside state it changed (``rule_before`` -> ``rule_after``, NULL: not set aside), with
+    the new reason, when, and the SHA-256 of the recipe whose pixel rules it applied."""
+    db.table("rule_changes").create({
+        "id": int, "changed_at": str, "sha256": str, "rule_before": str, "rule_after": str,
+        "detail": str, "recipe_sha256": str,
+    }, pk="id", if_not_exists=True)
+    db.table("rule_changes").create_index(["sha256"], if_not_exists=True)
+
+
 MIGRATIONS: dict[int, Callable[[sqlite_utils.Database], None]] = {
     1: _migration_1, 2: _migration_2, 3: _migration_3, 4: _migration_4, 5: _migration_5,
-    6: _migration_6, 7: _migration_7, 8: _migration_8, 9: _migration_9, 10: _migration_10}
+    6: _migration_6, 7: _migration_7, 8: _migration_8, 9: _migration_9, 10: _migration_10,
+    11: _migration_11}

@@ -123,6 +123,15 @@ def ledger_totals(ledger: Ledger) -> LedgerTotals:
         last_run_seconds=last_seconds, file_origins=origins)
 
 
+def set_aside_counts(ledger: Ledger) -> tuple[tuple[str, int], ...]:
+    """Files set aside by a pixel rule, per rule, most first (none before schema 10)."""
+    if "set_aside" not in ledger.columns("files"):
+        return ()
+    return tuple((r[0], int(r[1])) for r in ledger.rows(
+        "SELECT set_aside, count(*) FROM files WHERE set_aside IS NOT NULL "
+        "GROUP BY set_aside ORDER BY 2 DESC, 1"))
+
+
 def pending_image_urls(ledger: Ledger) -> Iterator[str]:
     """The image URL of every item a next run would fetch (pending, failed, deferred)."""
     for row in ledger.stream("SELECT image_url FROM items WHERE state IN "

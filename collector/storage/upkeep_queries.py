@@ -374,3 +374,63 @@ def near_verdicts_about(ledger: Ledger, sha256: str) -> list[NearVerdict]:
         "LEFT JOIN items o ON o.id = i.duplicate_of WHERE i.state = 'near_duplicate' AND "
         "(i.file_sha256 = ? OR i.duplicate_of IN (SELECT id FROM items WHERE file_sha256 = ?)) "
         "ORDER BY i.id", (sha256, sha256))]
+
+
+# --- pixel rules: the set-aside state of files (schema 10) and its changes (rule_changes) ----
+_FACT_COLUMNS = ("greyscale", "brightness", "contrast", "colourfulness", "sharpness",
+                 "background_share", "colours")
+
+
+class FileToJudge(NamedTuple):
+    """One file with what the pixel rules read: its first item's source and key (None for a
+    file no item explains yet), its colour and tone facts (a ``files`` row's columns, None
+    when not measured) and its set-aside state now."""
+
+    sha256: str
+    source: str | None
+    source_key: str | None
+    facts: dict[str, Any]
+    set_aside: str | None
+    set_aside_detail: str | None
+
+
+def files_to_judge(ledger: Ledger) -> list[FileToJudge]:
+    """Every stored file, by sha256, with its facts and set-aside state (a ledger from before
+    the facts were kept answers None for them)."""
+    present = ledger.columns("files")
+    facts = ", ".join(f"f.{c}" if c in present else "NULL" for c in _FACT_COLUMNS)
+    aside = ", ".join(f"f.{c}" if c in present else "NULL"
+                      for c in ("set_aside", "set_aside_detail"))
+    return [FileToJudge(r[0], r[1], r[2], dict(zip(_FACT_COLUMNS, r[3:10], strict=True)),
+                        r[10], r[11]) for r in ledger.rows(
+        f"SELECT f.sha256, s.name, i.source_key, {facts}, {aside} FROM files f "
+        "LEFT JOIN items i ON i.id = f.first_item_id LEFT JOIN sources s ON s.id = i.source_id "
+        "ORDER BY f.sha256")]
+
+
+def set_aside_sha256s(ledger: Ledger) -> set[str]:
+    """The sha256 of every file a pixel rule sets aside (left out of releases)."""
+    if "set_aside" not in ledger.columns("files"):
+        return set()
+    return {r[0] for r in ledger.rows("SELECT sha256 FROM files WHERE set_aside IS NOT NULL")}
+
+
+class RuleChange(NamedTuple):
+    """One change ``collector apply-rules`` made to a file's set-aside state."""
+
+    id: int
+    changed_at: str
+    sha256: str
+    rule_before: str | None
+    rule_after: str | None
+    detail: str | None
+    recipe_sha256: str | None
+
+
+def rule_changes(ledger: Ledger) -> list[RuleChange]:
+    """Every change apply-rules recorded, oldest first (none before its table existed)."""
+    if not ledger.has_table("rule_changes"):
+        return []
+    return [RuleChange(*r) for r in ledger.rows(
+        "SELECT id, changed_at, sha256, rule_before, rule_after, detail, recipe_sha256 "
+        "FROM rule_changes ORDER BY id")]
