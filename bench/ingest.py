@@ -1,4 +1,4 @@
-"""Ingest cost against a bare Pillow decode (issue target: ingest <= 1.5x a bare full decode).
+"""Ingest cost against a bare Pillow decode (issue 17 target: ingest <= 1.0x a bare full decode).
 
 Generates N structured ~1 MP JPEGs (quality 90), then measures on the same files:
   bare      Image.open(p).load()  (a full RGB decode, the floor any checker pays)
@@ -11,6 +11,11 @@ Generates N structured ~1 MP JPEGs (quality 90), then measures on the same files
 Prints a table of images/s and the ingest/bare ratio. Run: .venv/bin/python bench/ingest.py [N]
 [POLICY]; POLICY sets [images] enlarged (default "keep"; "flag" decodes each JPEG's luma at full
 size once more for the native-size estimate).
+
+The modules ingest loads on first use (scipy's DCT for the hash, about 0.2-0.5 s) are imported
+once per run, before its threads start (collector.run.scheduling); here one file is inspected
+before the clock starts, so that N files do not each carry 1/N of a one-off cost. That first
+file's time is printed on its own line.
 """
 
 from __future__ import annotations
@@ -25,6 +30,7 @@ from pathlib import Path
 import numpy as np
 from PIL import Image
 
+from collector.checks.images import inspect_image
 from collector.run.gather import gather, prepared_run
 from collector.run.scheduling import Gatherer
 from collector.storage.collection import init_collection
@@ -54,6 +60,7 @@ def bare_decode(paths: list[Path]) -> float:
 
 
 POLICY = {"enlarged": "keep"}
+TARGET = 1.0  # issue 17: the whole ingest step <= 1.0x a bare decode
 
 
 def ingest_step(root: Path, paths: list[Path]) -> float:
@@ -106,6 +113,9 @@ def main() -> None:
         (root / "src").mkdir()
         paths = make_images(root / "src", count)
         bare_decode(paths)  # warm the page cache
+        start = time.perf_counter()
+        inspect_image(paths[0], full_decode=False, enlarged=POLICY["enlarged"])
+        first = time.perf_counter() - start  # the one-off imports, not timed below
         bare = min(bare_decode(paths) for _ in range(2))
         step = ingest_step(root, paths)
         full = ingest(root, paths)
@@ -113,10 +123,11 @@ def main() -> None:
     print(f"{'bare':<10} {count:>7} {bare:>8.2f} {count / bare:>9.1f}")
     print(f"{'ingest':<10} {count:>7} {step:>8.2f} {count / step:>9.1f}")
     print(f"{'local':<10} {count:>7} {full:>8.2f} {count / full:>9.1f}")
+    print(f"first file, with the one-off imports: {first * 1000:.0f} ms (not in the rows above)")
     ratio = step / bare
-    verdict = 'ok' if ratio <= 1.5 else 'MISSED'
+    verdict = 'ok' if ratio <= TARGET else 'MISSED'
     print(f'[images] enlarged = "{POLICY["enlarged"]}"')
-    print(f"ratio ingest/bare = {ratio:.2f}x (target <= 1.5x): {verdict}")
+    print(f"ratio ingest/bare = {ratio:.2f}x (target <= {TARGET}x): {verdict}")
 
 
 if __name__ == "__main__":

@@ -9,8 +9,11 @@ and computes the pHash pair.
 Images may hold personal data (GPS position, camera serial numbers, owner names, faces): the
 flags point at it; what to do with it is the user's decision.
 
-Cost per JPEG (1 MP, one core, see bench/ingest_parts.py): one full decode for the integrity
-check, plus one header parse and a draft (1/8 scale) decode for the hash.
+Cost per JPEG (1 MP, one core, see bench/ingest_parts.py and bench/ingest.py): with
+``full_decode`` (the default) one full decode for the integrity check, plus one header parse
+and a draft (1/8 scale) decode that serves the hash and the colour facts; on the ingest path
+(``full_decode=False``) the draft alone, plus a full-size luma decode when the recipe's
+``enlarged`` policy needs the native-size estimate.
 """
 
 from __future__ import annotations
@@ -28,7 +31,7 @@ from PIL import ExifTags, Image
 
 from collector.checks.colour_facts import WORK_SIDE, ColourFacts, colour_facts
 from collector.checks.embedded_metadata import read_exif, read_iptc, read_xmp
-from collector.checks.phash import HASH_ALGO, phash_and_blank, to_signed64
+from collector.checks.phash import HASH_ALGO, hash_draft, phash_and_blank, to_signed64
 from collector.checks.pixel_facts import (
     PixelFacts,
     estimate_enlargement,
@@ -537,15 +540,44 @@ def inspect_image(
 
 def _from_drafts(path: Path, max_pixels: int, orientation: int,
                  colours: int) -> tuple[tuple[int, int, bool], ColourFacts | None]:
-    """A JPEG's hashes from a luma draft (HASH_ALGO pipeline) and its colour facts from a
-    colour draft (none when ``colours`` is 0)."""
+    """A JPEG's hashes and colour facts from ONE draft decode: the HASH_ALGO draft asked for
+    as YCbCr (collector.checks.phash.hash_draft), whose Y band is the hash's luma bit for bit
+    and whose colour the facts use (none when ``colours`` is 0). A second draft is decoded
+    only where that one cannot serve: a draft smaller than the colour facts' picture
+    (``WORK_SIDE``), a file whose components are RGB (a luma draft), or one whose YCbCr
+    libjpeg refuses (RGB-coded without saying so)."""
+    with _open(path, max_pixels) as im:
+        full_size, coded_as = im.size, im.mode
+        hash_draft(im, colour=bool(colours))
+        try:
+            im.load()
+        except _DECODE_ERRORS as exc:
+            if im.mode != "YCbCr":
+                raise ImageRejected("broken_image", damage(exc)) from exc
+            return _from_two_drafts(path, max_pixels, orientation, colours)
+        hashes = _hash(im, orientation, path)
+        if not colours:
+            return hashes, None
+        luma_only = im.mode == "L" and coded_as != "L"  # RGB-coded: see hash_draft
+        if not luma_only and (max(im.size) >= WORK_SIDE or im.size == full_size):
+            return hashes, _colour(im, colours, path)
+    return hashes, _colour_draft(path, max_pixels, colours)
+
+
+def _from_two_drafts(path: Path, max_pixels: int, orientation: int,
+                     colours: int) -> tuple[tuple[int, int, bool], ColourFacts | None]:
+    """A JPEG's hashes from a luma draft and its colour facts from a colour draft."""
     with _open(path, max_pixels) as im:
         hashes = _hash(im, orientation, path)
-    if not colours:
-        return hashes, None
+    return hashes, (_colour_draft(path, max_pixels, colours) if colours else None)
+
+
+def _colour_draft(path: Path, max_pixels: int, colours: int) -> ColourFacts:
+    """The colour facts of a JPEG from its own colour draft (1/2..1/8 scale, sides at least
+    ``WORK_SIDE``)."""
     with _open(path, max_pixels) as im:
         im.draft("RGB", (WORK_SIDE, WORK_SIDE))
-        return hashes, _colour(im, colours, path)
+        return _colour(im, colours, path)
 
 
 def _colour(im: Image.Image, colours: int, path: Path) -> ColourFacts:
