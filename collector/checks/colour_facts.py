@@ -44,7 +44,7 @@ from PIL import Image
 __all__ = ["ColourFacts", "DominantColour", "colour_facts", "srgb_to_lab"]
 
 MAX_SAMPLES = 512  # pixels sampled for k-means (a distribution, not every pixel)
-KMEANS_ROUNDS = 8  # Lloyd rounds at most (common practice, no source)
+KMEANS_ROUNDS = 6  # Lloyd rounds at most (common practice, no source)
 # A round that moves no centre by this much (CIELAB units: half a just-noticeable difference
 # of about 1 unit, common practice, no source) ends the k-means.
 KMEANS_SETTLED = 0.5
@@ -231,9 +231,8 @@ def _background_share(lightness: np.ndarray) -> float:
 def colour_facts(image: Image.Image, *, colours: int = 5) -> ColourFacts:
     """The facts of a small picture (any mode; converted to sRGB, transparency ignored),
     reduced first to at most ``WORK_SIDE`` pixels on its longest side."""
-    image = image.convert("RGB")
+    image = image.convert("RGB")  # a copy of its own, even from RGB (Pillow's convert)
     if max(image.size) > WORK_SIDE:
-        image = image.copy()
         image.thumbnail((WORK_SIDE, WORK_SIDE), Image.Resampling.BOX)
     rgb = np.asarray(image)
     lab = srgb_to_lab(rgb)

@@ -528,39 +528,41 @@ def inspect_image(
         pixel = _measure_pixels(im, path, decoded=decoded, alpha=described.alpha,
                                 native=enlarged != "keep", max_pixels=max_pixels)
         colour = _colour(im, colours, path) if decoded and colours else None
+        if not decoded:  # a JPEG on the draft path: this opened file's one draft decode
+            hashes, colour = _from_drafts(im, path, max_pixels, geo.orientation, colours)
     _apply_policies(pixel, path, flags, transparent=transparent, enlarged=enlarged,
                     min_side=min_side)
-    if hashes is None:  # JPEG: draft-mode decodes at 1/8 scale
-        hashes, colour = _from_drafts(path, max_pixels, geo.orientation, colours)
+    if hashes is None:  # a JPEG decoded in full above: opened again for its draft
+        with _open(path, max_pixels) as im:
+            hashes, colour = _from_drafts(im, path, max_pixels, geo.orientation, colours)
     facts = _facts(fmt, geo, described, frames, hashes, flags, mismatch)
     facts.pixel = pixel
     facts.colour = colour
     return facts
 
 
-def _from_drafts(path: Path, max_pixels: int, orientation: int,
+def _from_drafts(im: Image.Image, path: Path, max_pixels: int, orientation: int,
                  colours: int) -> tuple[tuple[int, int, bool], ColourFacts | None]:
     """A JPEG's hashes and colour facts from ONE draft decode: the HASH_ALGO draft asked for
     as YCbCr (collector.checks.phash.hash_draft), whose Y band is the hash's luma bit for bit
     and whose colour the facts use (none when ``colours`` is 0). A second draft is decoded
     only where that one cannot serve: a draft smaller than the colour facts' picture
     (``WORK_SIDE``), a file whose components are RGB (a luma draft), or one whose YCbCr
-    libjpeg refuses (RGB-coded without saying so)."""
-    with _open(path, max_pixels) as im:
-        full_size, coded_as = im.size, im.mode
-        hash_draft(im, colour=bool(colours))
-        try:
-            im.load()
-        except _DECODE_ERRORS as exc:
-            if im.mode != "YCbCr":
-                raise ImageRejected("broken_image", damage(exc)) from exc
-            return _from_two_drafts(path, max_pixels, orientation, colours)
-        hashes = _hash(im, orientation, path)
-        if not colours:
-            return hashes, None
-        luma_only = im.mode == "L" and coded_as != "L"  # RGB-coded: see hash_draft
-        if not luma_only and (max(im.size) >= WORK_SIDE or im.size == full_size):
-            return hashes, _colour(im, colours, path)
+    libjpeg refuses (RGB-coded without saying so). ``im`` is the file opened, not loaded."""
+    full_size, coded_as = im.size, im.mode
+    hash_draft(im, colour=bool(colours))
+    try:
+        im.load()
+    except _DECODE_ERRORS as exc:
+        if im.mode != "YCbCr":
+            raise ImageRejected("broken_image", damage(exc)) from exc
+        return _from_two_drafts(path, max_pixels, orientation, colours)
+    hashes = _hash(im, orientation, path)
+    if not colours:
+        return hashes, None
+    luma_only = im.mode == "L" and coded_as != "L"  # RGB-coded: see hash_draft
+    if not luma_only and (max(im.size) >= WORK_SIDE or im.size == full_size):
+        return hashes, _colour(im, colours, path)
     return hashes, _colour_draft(path, max_pixels, colours)
 
 
