@@ -51,12 +51,13 @@ def make_images(folder: Path, count: int) -> list[Path]:
     return paths
 
 
-def bare_decode(paths: list[Path]) -> float:
-    start = time.perf_counter()
+def bare_decode(paths: list[Path]) -> tuple[float, float]:
+    """(wall, CPU) seconds of a full decode of every file."""
+    start, cpu = time.perf_counter(), time.process_time()
     for p in paths:
         with Image.open(p) as im:
             im.load()
-    return time.perf_counter() - start
+    return time.perf_counter() - start, time.process_time() - cpu
 
 
 POLICY = {"enlarged": "keep"}
@@ -64,7 +65,7 @@ TARGET = 1.0  # issue 17: the whole ingest step <= 1.0x a bare decode
 ROUNDS = 3
 
 
-def ingest_step(root: Path, paths: list[Path], name: str = "step") -> float:
+def ingest_step(root: Path, paths: list[Path], name: str = "step") -> tuple[float, float]:
     """Time Ingest.ingest_file on files already in the incoming folder, as after a download."""
     col = init_collection(root / name, contact="bench@example.org")
     recipe = col.recipe_path.read_text().replace(
@@ -82,11 +83,11 @@ def ingest_step(root: Path, paths: list[Path], name: str = "step") -> float:
             sha = hashlib.sha256(p.read_bytes()).hexdigest()
             item = ledger.add_item(source_id, p.name, {"image_url": f"http://h/{p.name}"})
             jobs.append((item, tmp, sha))
-        start = time.perf_counter()
+        start, cpu = time.perf_counter(), time.process_time()
         for item, tmp, sha in jobs:
             gatherer.ingest.ingest_file(item, "CC0-1.0", tmp, sha, content_type="image/jpeg",
                              url=f"http://h/{item}.jpg")
-        elapsed = time.perf_counter() - start
+        elapsed = time.perf_counter() - start, time.process_time() - cpu
         stored = ledger.scalar("SELECT count(*) FROM items WHERE state = 'stored'")
     assert stored == len(paths), stored
     return elapsed
@@ -117,22 +118,24 @@ def main() -> None:
         start = time.perf_counter()
         inspect_image(paths[0], full_decode=False, enlarged=POLICY["enlarged"])
         first = time.perf_counter() - start  # the one-off imports, not timed below
-        bare = step = float("inf")
-        for n in range(ROUNDS):  # interleaved, each into a fresh collection: the best of each
-            bare = min(bare, bare_decode(paths))
-            step = min(step, ingest_step(root, paths, f"step{n}"))
+        bare, step = [float("inf")] * 2, [float("inf")] * 2  # best (wall, CPU) of each
+        for n in range(ROUNDS):  # interleaved, each into a fresh collection
+            bare = [min(b, t) for b, t in zip(bare, bare_decode(paths), strict=True)]
+            step = [min(b, t) for b, t in zip(step, ingest_step(root, paths, f"step{n}"),
+                                              strict=True)]
         full = ingest(root, paths)
-    print(f"best of {ROUNDS} interleaved rounds (wall time, one process)")
-    print(f"{'step':<10} {'images':>7} {'seconds':>8} {'images/s':>9}")
-    print(f"{'bare':<10} {count:>7} {bare:>8.2f} {count / bare:>9.1f}")
-    print(f"{'ingest':<10} {count:>7} {step:>8.2f} {count / step:>9.1f}")
+    print(f"best of {ROUNDS} interleaved rounds, one process; CPU time is this process's "
+          "(on a busy machine the steadier figure)")
+    print(f"{'step':<10} {'images':>7} {'seconds':>8} {'images/s':>9} {'CPU s':>7}")
+    print(f"{'bare':<10} {count:>7} {bare[0]:>8.2f} {count / bare[0]:>9.1f} {bare[1]:>7.2f}")
+    print(f"{'ingest':<10} {count:>7} {step[0]:>8.2f} {count / step[0]:>9.1f} {step[1]:>7.2f}")
     print(f"{'local':<10} {count:>7} {full:>8.2f} {count / full:>9.1f}")
     print(f"first file, with the one-off imports: {first * 1000:.0f} ms (not in the rows above)")
-    ratio = step / bare
+    ratio, cpu_ratio = step[0] / bare[0], step[1] / bare[1]
     verdict = 'ok' if ratio <= TARGET else 'MISSED'
     print(f'[images] enlarged = "{POLICY["enlarged"]}"')
-    print(f"ratio ingest/bare = {ratio:.2f}x (target <= {TARGET}x): {verdict}")
-
+    print(f"ratio ingest/bare = {ratio:.2f}x wall, {cpu_ratio:.2f}x CPU "
+          f"(target <= {TARGET}x): {verdict}")
 
 if __name__ == "__main__":
     main()

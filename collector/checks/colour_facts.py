@@ -35,7 +35,7 @@ a distribution. Sources of each formula:
 from __future__ import annotations
 
 import colorsys
-from dataclasses import asdict, dataclass
+from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
@@ -77,6 +77,9 @@ class DominantColour:
     hue: float  # degrees, 0-360 (HSV hue of the sRGB colour)
 
 
+_MEASURES = ("brightness", "contrast", "colourfulness", "sharpness", "background_share")
+
+
 @dataclass(frozen=True)
 class ColourFacts:
     """The colour and tone facts of one picture (see the module's sources)."""
@@ -93,17 +96,15 @@ class ColourFacts:
         """The ledger ``files`` columns these facts fill (schema 10)."""
         data = self.as_json()
         return {"greyscale": int(self.greyscale), "colours": data["colours"],
-                **{key: data[key] for key in ("brightness", "contrast", "colourfulness",
-                                              "sharpness", "background_share")}}
+                **{key: data[key] for key in _MEASURES}}
 
     def as_json(self) -> dict[str, Any]:
         """Plain data for the ledger (rounded: these are estimates)."""
-        out = asdict(self)
-        out["colours"] = [{"lab": [round(v, 2) for v in c.lab], "share": round(c.share, 4),
-                           "hex": c.hex, "hue": round(c.hue, 1)} for c in self.colours]
-        for key in ("brightness", "contrast", "colourfulness", "sharpness", "background_share"):
-            out[key] = round(float(out[key]), 4)
-        return out
+        # Built field by field: dataclasses.asdict deep-copies every value (0.1 ms a file).
+        return {"colours": [{"lab": [round(v, 2) for v in c.lab], "share": round(c.share, 4),
+                             "hex": c.hex, "hue": round(c.hue, 1)} for c in self.colours],
+                "greyscale": self.greyscale,
+                **{key: round(float(getattr(self, key)), 4) for key in _MEASURES}}
 
 
 def _linear(c: np.ndarray) -> np.ndarray:
