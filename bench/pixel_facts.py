@@ -61,6 +61,13 @@ def draft(data: bytes) -> Image.Image:
     return im
 
 
+def bare(data: bytes) -> None:
+    """A full decode, the picture let go at once (a list of 40 decoded pictures would time
+    the allocation of 120 MB as well)."""
+    with Image.open(io.BytesIO(data)) as im:
+        im.load()
+
+
 def native_size(data: bytes) -> None:
     """The full-size luma decode and the native-size estimate."""
     im = Image.open(io.BytesIO(data))
@@ -76,8 +83,8 @@ def main() -> None:
     files = [picture(n) for n in range(args.files)]
     drafts = [draft(data) for data in files]
     steps: dict[str, Callable[[], object]] = {
-        "bare decode": lambda: [Image.open(io.BytesIO(d)).load() for d in files],
-        "draft": lambda: [draft(d) for d in files],
+        "bare decode": lambda: [bare(d) for d in files],
+        "draft": lambda: [draft(d).close() for d in files],
         "hash on draft": lambda: [phash_and_blank(im) for im in drafts],
         "facts on draft": lambda: [colour_facts(colour_ready(im, WORK_SIDE)) for im in drafts],
         "native size": lambda: [native_size(d) for d in files],
@@ -90,12 +97,12 @@ def main() -> None:
             start = time.process_time()
             func()
             best[label] = min(best[label], time.process_time() - start)
-    n, bare = len(files), best["bare decode"]
+    n, base = len(files), best["bare decode"]
     print(f"{n} JPEGs of 1280x800 (1.0 MP), CPU time, best of {args.rounds} interleaved rounds")
     print(f"{'step':<16} {'ms/file':>8} {'x bare decode':>14}")
     for label, seconds in best.items():
-        print(f"{label:<16} {1000 * seconds / n:>8.2f} {seconds / bare:>14.2f}")
-    ratio = best["facts on draft"] / bare
+        print(f"{label:<16} {1000 * seconds / n:>8.2f} {seconds / base:>14.2f}")
+    ratio = best["facts on draft"] / base
     print(f"target: facts on draft <= {TARGET}x a bare decode: {ratio:.2f}x -> "
           f"{'met' if ratio <= TARGET else 'NOT met'}")
 

@@ -498,10 +498,9 @@ def inspect_image(
     (broken_image), shape (too_small, bad_aspect), then, after the metadata is read, PNG CRCs
     and the decode (broken_image).
 
-    full_decode=False lets a JPEG's draft decode for the hash (1/8 scale, every block still
-    entropy-decoded) serve as the integrity check instead of a full-size decode; it caught the
-    same truncations (missing EOI, cut at 50%/90%) in a probe and is ~3x cheaper. Other formats
-    are always decoded in full.
+    full_decode=False: a JPEG's one draft decode (hash and colour facts, 1/8 scale, every block
+    entropy-decoded) is the integrity check; it caught the same truncations as a full decode
+    (missing EOI, cut at 50%/90%) in a probe. Other formats are always decoded in full.
 
     max_pixels above Pillow's global Image.MAX_IMAGE_PIXELS has no effect unless that global is
     raised too (Pillow checks it inside Image.open).
@@ -533,8 +532,7 @@ def inspect_image(
     _apply_policies(pixel, path, flags, transparent=transparent, enlarged=enlarged,
                     min_side=min_side)
     if hashes is None:  # a JPEG decoded in full above: opened again for its draft
-        with _open(path, max_pixels) as im:
-            hashes, colour = _from_drafts(im, path, max_pixels, geo.orientation, colours)
+        hashes, colour = _reopened(path, max_pixels, geo.orientation, colours)
     facts = _facts(fmt, geo, described, frames, hashes, flags, mismatch)
     facts.pixel = pixel
     facts.colour = colour
@@ -564,6 +562,13 @@ def _from_drafts(im: Image.Image, path: Path, max_pixels: int, orientation: int,
     if not luma_only and (max(im.size) >= WORK_SIDE or im.size == full_size):
         return hashes, _colour(im, colours, path)
     return hashes, _colour_draft(path, max_pixels, colours)
+
+
+def _reopened(path: Path, max_pixels: int, orientation: int,
+              colours: int) -> tuple[tuple[int, int, bool], ColourFacts | None]:
+    """:func:`_from_drafts` of the file opened afresh (the first open was decoded in full)."""
+    with _open(path, max_pixels) as im:
+        return _from_drafts(im, path, max_pixels, orientation, colours)
 
 
 def _from_two_drafts(path: Path, max_pixels: int, orientation: int,
