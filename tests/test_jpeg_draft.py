@@ -48,13 +48,16 @@ def _without_adobe_marker(data: bytes) -> bytes:
 
 def write_variant(kind: str, folder: Path) -> Path:
     """One JPEG of a kind ingest meets: chroma subsampling 4:2:0 / 4:2:2 / 4:4:4 (Pillow's
-    ``subsampling`` 2 / 1 / 0), greyscale, CMYK (Adobe, inverted), RGB-coded with and without
-    the Adobe marker that says so (``keep_rgb``), a draft smaller than the colour facts'
-    picture, and an EXIF orientation (standards.md section 6.1)."""
+    ``subsampling`` 2 / 1 / 0), progressive (ITU-T T.81 Annex G), greyscale, CMYK (Adobe,
+    inverted), RGB-coded with and without the Adobe marker that says so (``keep_rgb``), a
+    draft smaller than the colour facts' picture, and an EXIF orientation (standards.md
+    section 6.1)."""
     path = folder / f"{kind}.jpg"
     base = picture((1224, 816), seed=len(kind))
     if kind in ("420", "422", "444"):
         base.save(path, quality=90, subsampling={"420": 2, "422": 1, "444": 0}[kind])
+    elif kind == "progressive":
+        base.save(path, quality=90, progressive=True)
     elif kind == "grey":
         base.convert("L").save(path, quality=90)
     elif kind == "cmyk":
@@ -73,8 +76,8 @@ def write_variant(kind: str, folder: Path) -> Path:
     return path
 
 
-KINDS = ("420", "422", "444", "grey", "cmyk", "rgb_adobe", "rgb_unmarked", "small_draft",
-         "turned")
+KINDS = ("420", "422", "444", "progressive", "grey", "cmyk", "rgb_adobe", "rgb_unmarked",
+         "small_draft", "turned")
 
 
 def colour_draft_facts(path: Path):  # type: ignore[no-untyped-def]
