@@ -526,12 +526,12 @@ def inspect_image(
         decoded = full_decode or fmt != "JPEG"
         pixel = _measure_pixels(im, path, decoded=decoded, alpha=described.alpha,
                                 native=enlarged != "keep", max_pixels=max_pixels)
-        colour = _colour(im, colours, path) if decoded and colours else None
+        colour = _colour(im, colours, path) if hashes is not None and colours else None
         if not decoded:  # a JPEG on the draft path: this opened file's one draft decode
             hashes, colour = _from_drafts(im, path, max_pixels, geo.orientation, colours)
     _apply_policies(pixel, path, flags, transparent=transparent, enlarged=enlarged,
                     min_side=min_side)
-    if hashes is None:  # a JPEG decoded in full above: opened again for its draft
+    if hashes is None:  # a JPEG decoded in full: hash and colour from its draft, reopened
         hashes, colour = _reopened(path, max_pixels, geo.orientation, colours)
     facts = _facts(fmt, geo, described, frames, hashes, flags, mismatch)
     facts.pixel = pixel
