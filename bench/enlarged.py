@@ -6,14 +6,21 @@ holds detail up to its Nyquist limit. Each original is then downscaled by 1.5, 2
 re-enlarged to the same size (bilinear, bicubic or Lanczos in turn). Every image is checked as
 PNG and as JPEG quality 90. Prints, per factor, recall (enlarged images found) and the median
 estimated factor, then precision over all and the false-positive rate on untouched images, and
-the time per image. Run: .venv/bin/python bench/enlarged.py [N]
+the time per image. Run: .venv/bin/python bench/enlarged.py [N] [--draft D]
+
+--draft D (2, 4 or 8) judges the JPEG versions on libjpeg's 1/D-scale luma draft instead of a
+full-size decode (the PNG rows are unchanged): the draft keeps only frequencies up to 1/(2D)
+cycles per original pixel (the DCT scaling drops the higher coefficients), so a cut-off is
+seen only for factors above D. On the draft the native size in original pixels is the
+estimate's native size in draft pixels (a cut at c cycles per original pixel is at D x c per
+draft pixel), so a drop found at all means a factor above D, and that is the verdict.
 """
 
 from __future__ import annotations
 
+import argparse
 import io
 import statistics
-import sys
 import time
 
 import numpy as np
@@ -96,8 +103,28 @@ def as_jpeg(im: Image.Image) -> Image.Image:
     return Image.open(buf)
 
 
+def judge(version: Image.Image, draft: int) -> tuple[bool, float]:
+    """(looks enlarged, estimated factor) on the image, or on its 1/draft luma draft."""
+    if draft == 1 or version.format != "JPEG":
+        est = estimate_enlargement(version)
+        assert est is not None
+        return est.enlarged, version.width / max(1, est.native_width)
+    version.draft("L", (version.width // draft, version.height // draft))
+    scale = version.size  # the draft's size; load() keeps it
+    version.load()
+    est = estimate_enlargement(version)
+    assert est is not None
+    found = est.native_width < scale[0] or est.native_height < scale[1]
+    factor = draft * scale[0] / max(1, est.native_width) if found else 1.0
+    return found, factor
+
+
 def main() -> None:
-    count = int(sys.argv[1]) if len(sys.argv) > 1 else 80
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    parser.add_argument("count", nargs="?", type=int, default=80)
+    parser.add_argument("--draft", type=int, choices=(1, 2, 4, 8), default=1)
+    args = parser.parse_args()
+    count = args.count
     rng = np.random.default_rng(14)
     found: dict[tuple[str, float], list[bool]] = {}
     ratios: dict[tuple[str, float], list[float]] = {}
@@ -109,14 +136,13 @@ def main() -> None:
         for factor, im in cases:
             for label, version in (("png", im), ("jpeg90", as_jpeg(im))):
                 start = time.perf_counter()
-                est = estimate_enlargement(version)
+                enlarged, estimated = judge(version, args.draft)
                 seconds += time.perf_counter() - start
                 checks += 1
-                assert est is not None
-                found.setdefault((label, factor), []).append(est.enlarged)
-                ratios.setdefault((label, factor), []).append(
-                    version.width / max(1, est.native_width))
-    print(f"{count} originals, {SIZE[0]}x{SIZE[1]}; each enlarged by {FACTORS}")
+                found.setdefault((label, factor), []).append(enlarged)
+                ratios.setdefault((label, factor), []).append(estimated)
+    print(f"{count} originals, {SIZE[0]}x{SIZE[1]}; each enlarged by {FACTORS}"
+          + (f"; JPEG judged on the 1/{args.draft} draft" if args.draft > 1 else ""))
     print(f"{'format':<8} {'factor':>6} {'images':>7} {'flagged':>8} {'rate':>7} "
           f"{'median est.':>12}")
     for (label, factor), hits in sorted(found.items()):

@@ -1,4 +1,4 @@
-"""Ingest cost against a bare Pillow decode (issue target: ingest <= 1.5x a bare full decode).
+"""Ingest cost against a bare Pillow decode (issue 17 target: ingest <= 1.0x a bare full decode).
 
 Generates N structured ~1 MP JPEGs (quality 90), then measures on the same files:
   bare      Image.open(p).load()  (a full RGB decode, the floor any checker pays)
@@ -11,6 +11,11 @@ Generates N structured ~1 MP JPEGs (quality 90), then measures on the same files
 Prints a table of images/s and the ingest/bare ratio. Run: .venv/bin/python bench/ingest.py [N]
 [POLICY]; POLICY sets [images] enlarged (default "keep"; "flag" decodes each JPEG's luma at full
 size once more for the native-size estimate).
+
+The modules ingest loads on first use (scipy's DCT for the hash, about 0.2-0.5 s) are imported
+once per run, before its threads start (collector.run.scheduling); here one file is inspected
+before the clock starts, so that N files do not each carry 1/N of a one-off cost. That first
+file's time is printed on its own line.
 """
 
 from __future__ import annotations
@@ -25,6 +30,7 @@ from pathlib import Path
 import numpy as np
 from PIL import Image
 
+from collector.checks.images import inspect_image
 from collector.run.gather import gather, prepared_run
 from collector.run.scheduling import Gatherer
 from collector.storage.collection import init_collection
@@ -45,20 +51,23 @@ def make_images(folder: Path, count: int) -> list[Path]:
     return paths
 
 
-def bare_decode(paths: list[Path]) -> float:
-    start = time.perf_counter()
+def bare_decode(paths: list[Path]) -> tuple[float, float]:
+    """(wall, CPU) seconds of a full decode of every file."""
+    start, cpu = time.perf_counter(), time.process_time()
     for p in paths:
         with Image.open(p) as im:
             im.load()
-    return time.perf_counter() - start
+    return time.perf_counter() - start, time.process_time() - cpu
 
 
 POLICY = {"enlarged": "keep"}
+TARGET = 1.0  # issue 17: the whole ingest step <= 1.0x a bare decode
+ROUNDS = 3
 
 
-def ingest_step(root: Path, paths: list[Path]) -> float:
+def ingest_step(root: Path, paths: list[Path], name: str = "step") -> tuple[float, float]:
     """Time Ingest.ingest_file on files already in the incoming folder, as after a download."""
-    col = init_collection(root / "step", contact="bench@example.org")
+    col = init_collection(root / name, contact="bench@example.org")
     recipe = col.recipe_path.read_text().replace(
         'enlarged = "keep"', f'enlarged = "{POLICY["enlarged"]}"')
     col.recipe_path.write_text(recipe + SOURCE.format(folder=paths[0].parent))
@@ -74,11 +83,11 @@ def ingest_step(root: Path, paths: list[Path]) -> float:
             sha = hashlib.sha256(p.read_bytes()).hexdigest()
             item = ledger.add_item(source_id, p.name, {"image_url": f"http://h/{p.name}"})
             jobs.append((item, tmp, sha))
-        start = time.perf_counter()
+        start, cpu = time.perf_counter(), time.process_time()
         for item, tmp, sha in jobs:
             gatherer.ingest.ingest_file(item, "CC0-1.0", tmp, sha, content_type="image/jpeg",
                              url=f"http://h/{item}.jpg")
-        elapsed = time.perf_counter() - start
+        elapsed = time.perf_counter() - start, time.process_time() - cpu
         stored = ledger.scalar("SELECT count(*) FROM items WHERE state = 'stored'")
     assert stored == len(paths), stored
     return elapsed
@@ -106,18 +115,27 @@ def main() -> None:
         (root / "src").mkdir()
         paths = make_images(root / "src", count)
         bare_decode(paths)  # warm the page cache
-        bare = min(bare_decode(paths) for _ in range(2))
-        step = ingest_step(root, paths)
+        start = time.perf_counter()
+        inspect_image(paths[0], full_decode=False, enlarged=POLICY["enlarged"])
+        first = time.perf_counter() - start  # the one-off imports, not timed below
+        bare, step = [float("inf")] * 2, [float("inf")] * 2  # best (wall, CPU) of each
+        for n in range(ROUNDS):  # interleaved, each into a fresh collection
+            bare = [min(b, t) for b, t in zip(bare, bare_decode(paths), strict=True)]
+            step = [min(b, t) for b, t in zip(step, ingest_step(root, paths, f"step{n}"),
+                                              strict=True)]
         full = ingest(root, paths)
-    print(f"{'step':<10} {'images':>7} {'seconds':>8} {'images/s':>9}")
-    print(f"{'bare':<10} {count:>7} {bare:>8.2f} {count / bare:>9.1f}")
-    print(f"{'ingest':<10} {count:>7} {step:>8.2f} {count / step:>9.1f}")
+    print(f"best of {ROUNDS} interleaved rounds, one process; CPU time is this process's "
+          "(on a busy machine the steadier figure)")
+    print(f"{'step':<10} {'images':>7} {'seconds':>8} {'images/s':>9} {'CPU s':>7}")
+    print(f"{'bare':<10} {count:>7} {bare[0]:>8.2f} {count / bare[0]:>9.1f} {bare[1]:>7.2f}")
+    print(f"{'ingest':<10} {count:>7} {step[0]:>8.2f} {count / step[0]:>9.1f} {step[1]:>7.2f}")
     print(f"{'local':<10} {count:>7} {full:>8.2f} {count / full:>9.1f}")
-    ratio = step / bare
-    verdict = 'ok' if ratio <= 1.5 else 'MISSED'
+    print(f"first file, with the one-off imports: {first * 1000:.0f} ms (not in the rows above)")
+    ratio, cpu_ratio = step[0] / bare[0], step[1] / bare[1]
+    verdict = 'ok' if ratio <= TARGET else 'MISSED'
     print(f'[images] enlarged = "{POLICY["enlarged"]}"')
-    print(f"ratio ingest/bare = {ratio:.2f}x (target <= 1.5x): {verdict}")
-
+    print(f"ratio ingest/bare = {ratio:.2f}x wall, {cpu_ratio:.2f}x CPU "
+          f"(target <= {TARGET}x): {verdict}")
 
 if __name__ == "__main__":
     main()

@@ -9,8 +9,11 @@ and computes the pHash pair.
 Images may hold personal data (GPS position, camera serial numbers, owner names, faces): the
 flags point at it; what to do with it is the user's decision.
 
-Cost per JPEG (1 MP, one core, see bench/ingest_parts.py): one full decode for the integrity
-check, plus one header parse and a draft (1/8 scale) decode for the hash.
+Cost per JPEG (1 MP, one core, see bench/ingest_parts.py and bench/ingest.py): with
+``full_decode`` (the default) one full decode for the integrity check, plus one header parse
+and a draft (1/8 scale) decode that serves the hash and the colour facts; on the ingest path
+(``full_decode=False``) the draft alone, plus a full-size luma decode when the recipe's
+``enlarged`` policy needs the native-size estimate.
 """
 
 from __future__ import annotations
@@ -28,7 +31,7 @@ from PIL import ExifTags, Image
 
 from collector.checks.colour_facts import WORK_SIDE, ColourFacts, colour_facts
 from collector.checks.embedded_metadata import read_exif, read_iptc, read_xmp
-from collector.checks.phash import HASH_ALGO, phash_and_blank, to_signed64
+from collector.checks.phash import HASH_ALGO, hash_draft, phash_and_blank, to_signed64
 from collector.checks.pixel_facts import (
     PixelFacts,
     estimate_enlargement,
@@ -495,10 +498,9 @@ def inspect_image(
     (broken_image), shape (too_small, bad_aspect), then, after the metadata is read, PNG CRCs
     and the decode (broken_image).
 
-    full_decode=False lets a JPEG's draft decode for the hash (1/8 scale, every block still
-    entropy-decoded) serve as the integrity check instead of a full-size decode; it caught the
-    same truncations (missing EOI, cut at 50%/90%) in a probe and is ~3x cheaper. Other formats
-    are always decoded in full.
+    full_decode=False: a JPEG's one draft decode (hash and colour facts, 1/8 scale, every block
+    entropy-decoded) is the integrity check; it caught the same truncations as a full decode
+    (missing EOI, cut at 50%/90%) in a probe. Other formats are always decoded in full.
 
     max_pixels above Pillow's global Image.MAX_IMAGE_PIXELS has no effect unless that global is
     raised too (Pillow checks it inside Image.open).
@@ -524,28 +526,65 @@ def inspect_image(
         decoded = full_decode or fmt != "JPEG"
         pixel = _measure_pixels(im, path, decoded=decoded, alpha=described.alpha,
                                 native=enlarged != "keep", max_pixels=max_pixels)
-        colour = _colour(im, colours, path) if decoded and colours else None
+        colour = _colour(im, colours, path) if hashes is not None and colours else None
+        if not decoded:  # a JPEG on the draft path: this opened file's one draft decode
+            hashes, colour = _from_drafts(im, path, max_pixels, geo.orientation, colours)
     _apply_policies(pixel, path, flags, transparent=transparent, enlarged=enlarged,
                     min_side=min_side)
-    if hashes is None:  # JPEG: draft-mode decodes at 1/8 scale
-        hashes, colour = _from_drafts(path, max_pixels, geo.orientation, colours)
+    if hashes is None:  # a JPEG decoded in full: hash and colour from its draft, reopened
+        hashes, colour = _reopened(path, max_pixels, geo.orientation, colours)
     facts = _facts(fmt, geo, described, frames, hashes, flags, mismatch)
     facts.pixel = pixel
     facts.colour = colour
     return facts
 
 
-def _from_drafts(path: Path, max_pixels: int, orientation: int,
+def _from_drafts(im: Image.Image, path: Path, max_pixels: int, orientation: int,
                  colours: int) -> tuple[tuple[int, int, bool], ColourFacts | None]:
-    """A JPEG's hashes from a luma draft (HASH_ALGO pipeline) and its colour facts from a
-    colour draft (none when ``colours`` is 0)."""
-    with _open(path, max_pixels) as im:
-        hashes = _hash(im, orientation, path)
+    """A JPEG's hashes and colour facts from ONE draft decode: the HASH_ALGO draft asked for
+    as YCbCr (collector.checks.phash.hash_draft), whose Y band is the hash's luma bit for bit
+    and whose colour the facts use (none when ``colours`` is 0). A second draft is decoded
+    only where that one cannot serve: a draft smaller than the colour facts' picture
+    (``WORK_SIDE``), a file whose components are RGB (a luma draft), or one whose YCbCr
+    libjpeg refuses (RGB-coded without saying so). ``im`` is the file opened, not loaded."""
+    full_size, coded_as = im.size, im.mode
+    hash_draft(im, colour=bool(colours))
+    try:
+        im.load()
+    except _DECODE_ERRORS as exc:
+        if im.mode != "YCbCr":
+            raise ImageRejected("broken_image", damage(exc)) from exc
+        return _from_two_drafts(path, max_pixels, orientation, colours)
+    hashes = _hash(im, orientation, path)
     if not colours:
         return hashes, None
+    luma_only = im.mode == "L" and coded_as != "L"  # RGB-coded: see hash_draft
+    if not luma_only and (max(im.size) >= WORK_SIDE or im.size == full_size):
+        return hashes, _colour(im, colours, path)
+    return hashes, _colour_draft(path, max_pixels, colours)
+
+
+def _reopened(path: Path, max_pixels: int, orientation: int,
+              colours: int) -> tuple[tuple[int, int, bool], ColourFacts | None]:
+    """:func:`_from_drafts` of the file opened afresh (the first open was decoded in full)."""
+    with _open(path, max_pixels) as im:
+        return _from_drafts(im, path, max_pixels, orientation, colours)
+
+
+def _from_two_drafts(path: Path, max_pixels: int, orientation: int,
+                     colours: int) -> tuple[tuple[int, int, bool], ColourFacts | None]:
+    """A JPEG's hashes from a luma draft and its colour facts from a colour draft."""
+    with _open(path, max_pixels) as im:
+        hashes = _hash(im, orientation, path)
+    return hashes, (_colour_draft(path, max_pixels, colours) if colours else None)
+
+
+def _colour_draft(path: Path, max_pixels: int, colours: int) -> ColourFacts:
+    """The colour facts of a JPEG from its own colour draft (1/2..1/8 scale, sides at least
+    ``WORK_SIDE``)."""
     with _open(path, max_pixels) as im:
         im.draft("RGB", (WORK_SIDE, WORK_SIDE))
-        return hashes, _colour(im, colours, path)
+        return _colour(im, colours, path)
 
 
 def _colour(im: Image.Image, colours: int, path: Path) -> ColourFacts:

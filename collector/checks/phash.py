@@ -15,7 +15,11 @@ mirrored image comes from the same coefficients with odd columns negated (librar
 
 Pipeline (recorded as ``HASH_ALGO`` with every stored hash, because draft and full decodes differ
 by up to 2 bits, libraries.md section 2):
-1. JPEG only: ``draft('L', (64, 64))`` so libjpeg decodes luma at 1/2..1/8 scale.
+1. JPEG only: ``draft('L', (64, 64))`` so libjpeg decodes luma at 1/2..1/8 scale. Ingest asks
+   for the same draft as ``YCbCr`` (:func:`hash_draft` with ``colour``): libjpeg decodes the Y
+   band the same way whatever the output colour space and Pillow's YCbCr-to-L conversion
+   copies Y, so the luma is bit for bit the same (tests/test_images.py) and one decode serves
+   the hash and the colour facts; the pipeline, and ``HASH_ALGO``, are unchanged.
 2. Greyscale, then the EXIF orientation is applied (standards.md section 6.1 table), so a
    rotated file and an upright copy of the same picture hash alike.
 3. 32x32 LANCZOS, DCT, 8x8 block, median threshold.
@@ -36,6 +40,7 @@ __all__ = [
     "dct_block",
     "featureless",
     "hamming",
+    "hash_draft",
     "hash_image_file",
     "phash_and_blank",
     "phash_from_image",
@@ -143,21 +148,32 @@ def prepare_for_hash(im: Image.Image, orientation: int = 1) -> Image.Image:
     return grey.transpose(method) if method is not None else grey
 
 
+def hash_draft(im: Image.Image, *, colour: bool = False) -> None:
+    """Ask libjpeg for the HASH_ALGO draft of a JPEG not loaded yet (nothing for other
+    formats): luma at 1/2..1/8 scale, each side at least 64 px. ``colour`` keeps the chroma
+    (mode ``YCbCr``, no colour conversion; its Y band is that luma, see the module) unless
+    the file says its components are RGB (Adobe APP14 transform 0, Pillow's
+    ``info["adobe_transform"]``): libjpeg hands those over as RGB or grey, never as YCbCr."""
+    if im.format != "JPEG":
+        return
+    rgb_coded = im.info.get("adobe_transform") == 0
+    im.draft("YCbCr" if colour and not rgb_coded else "L", _DRAFT_SIZE)
+
+
 def phash_prepared(im: Image.Image, orientation: int = 1) -> tuple[int, int]:
     """(pHash, mirror) of an opened image following the HASH_ALGO pipeline.
 
     For JPEG the caller must not have loaded the image yet, so that draft() can take effect.
     """
-    if im.format == "JPEG":
-        im.draft("L", _DRAFT_SIZE)
+    hash_draft(im)
     return phash_from_image(prepare_for_hash(im, orientation))
 
 
 def phash_and_blank(im: Image.Image, orientation: int = 1) -> tuple[int, int, bool]:
     """(pHash, mirror, blank) of an opened image following the HASH_ALGO pipeline; ``blank``
-    as :func:`collector.checks.pixels.is_blank` (a flat picture, never compared by look)."""
-    if im.format == "JPEG":
-        im.draft("L", _DRAFT_SIZE)
+    as :func:`collector.checks.pixels.is_blank` (a flat picture, never compared by look).
+    A JPEG already drafted by :func:`hash_draft` (and loaded) is taken as it is."""
+    hash_draft(im)
     grey = prepare_for_hash(im, orientation)
     phash, mirror = phash_from_image(grey)
     return phash, mirror, is_blank(grey)

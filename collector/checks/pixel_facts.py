@@ -21,6 +21,7 @@ Pure functions on Pillow images and numpy arrays; no file I/O.
 
 from __future__ import annotations
 
+import functools
 from dataclasses import dataclass
 
 import numpy as np
@@ -100,16 +101,26 @@ def _lines(arr: np.ndarray) -> np.ndarray:
     return arr[pick, start:start + _MAX_LINE].astype(np.float32)
 
 
-def _spectrum(lines: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """(frequencies in cycles/pixel, mean power above the 8-bit rounding floor) of the lines,
-    each detrended and windowed (Hann)."""
-    lines = lines - lines.mean(axis=1, keepdims=True)
-    window = np.hanning(lines.shape[1]).astype(np.float32)
-    power = (np.abs(np.fft.rfft(lines * window, axis=1)) ** 2).mean(axis=0)
+@functools.lru_cache(maxsize=8)
+def _window(length: int) -> tuple[np.ndarray, float, np.ndarray]:
+    """(Hann window as float32, the 8-bit rounding floor's power per bin, the bins'
+    frequencies) for lines of ``length`` samples; computed once per length."""
+    window = np.hanning(length)
     # Rounding to whole grey levels adds white noise of variance 1/12 (uniform error), whose
     # expected power per bin is that variance times the window's energy.
-    floor = _FLOOR_VARIANCE * float((window.astype(np.float64) ** 2).sum())
-    return np.fft.rfftfreq(lines.shape[1]), np.maximum(power - floor, 0.0)
+    floor = _FLOOR_VARIANCE * float((window ** 2).sum())
+    return window.astype(np.float32), floor, np.fft.rfftfreq(length)
+
+
+def _spectrum(lines: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """(frequencies in cycles/pixel, mean power above the 8-bit rounding floor) of the lines,
+    each detrended and windowed (Hann); float32 throughout (numpy >= 2 transforms float32 as
+    such), as the spectrum is only compared band against band."""
+    window, floor, freqs = _window(lines.shape[1])
+    lines = lines - lines.mean(axis=1, keepdims=True)
+    spectrum = np.fft.rfft(lines * window, axis=1)
+    power = (spectrum.real ** 2 + spectrum.imag ** 2).mean(axis=0)
+    return freqs, np.maximum(power - floor, 0.0)
 
 
 def _band_means(freqs: np.ndarray, power: np.ndarray, low: np.ndarray,
