@@ -27,7 +27,14 @@ from urllib.parse import urlsplit
 from PIL import ExifTags, Image
 
 from collector.checks.embedded_metadata import read_exif, read_iptc, read_xmp
-from collector.checks.phash import HASH_ALGO, phash_and_blank, to_signed64
+from collector.checks.phash import (
+    HASH_ALGO,
+    WINDOW_ALGO,
+    HashFacts,
+    hash_facts,
+    pack_windows,
+    to_signed64,
+)
 from collector.checks.pixel_facts import (
     PixelFacts,
     estimate_enlargement,
@@ -95,6 +102,9 @@ class ImageFacts:
     flags: list[str] = field(default_factory=list)
     type_mismatch: str | None = None
     pixel: PixelFacts = field(default_factory=lambda: PixelFacts(None, None))
+    # the pHash for each turn and of the crop windows (collector.checks.phash.hash_facts)
+    turns: dict[str, int] = field(default_factory=dict)
+    window_hashes: list[int] = field(default_factory=list)
 
     def file_columns(self) -> dict[str, Any]:
         """The ledger's ``files`` columns these facts fill (hashes as signed 64-bit integers,
@@ -108,6 +118,8 @@ class ImageFacts:
             "icc_profile": self.icc_profile,
             "dpi_x": self.dpi[0] if self.dpi else None, "dpi_y": self.dpi[1] if self.dpi else None,
             **self.pixel.columns(),
+            "window_hashes": pack_windows(self.window_hashes) if self.window_hashes else None,
+            "window_algo": WINDOW_ALGO if self.window_hashes else None,
         }
 
 
@@ -212,10 +224,10 @@ def _orientation(im: Image.Image) -> int:
         return 1
 
 
-def _hash(im: Image.Image, orientation: int, path: Path) -> tuple[int, int, bool]:
-    """(pHash, mirror, blank): collector.checks.phash.phash_and_blank."""
+def _hash(im: Image.Image, orientation: int, path: Path) -> HashFacts:
+    """pHash, mirror, blank, turns and windows: collector.checks.phash.hash_facts."""
     try:
-        return phash_and_blank(im, orientation)
+        return hash_facts(im, orientation)
     except _DECODE_ERRORS as exc:
         raise ImageRejected("broken_image", damage(exc)) from exc
 
@@ -389,7 +401,7 @@ def _describe(im: Image.Image, fmt: str, head: bytes, flags: list[str]) -> _Desc
 
 def _check_pixels(
     im: Image.Image, fmt: str, geo: _Geometry, path: Path, max_pixels: int, full_decode: bool
-) -> tuple[int, int, bool] | None:
+) -> HashFacts | None:
     """PNG CRCs, the full decode (skipped for a JPEG when full_decode is False) and, for
     formats other than JPEG, the hash of the pixels just decoded; None means "hash later"."""
     if fmt == "PNG":
@@ -406,7 +418,7 @@ def _facts(
     geo: _Geometry,
     described: _Described,
     frames: int,
-    hashes: tuple[int, int, bool],
+    hashes: HashFacts,
     flags: list[str],
     mismatch: str | None,
 ) -> ImageFacts:
@@ -414,7 +426,7 @@ def _facts(
     if geo.orientation != 1:
         described.exif["orientation"] = geo.orientation
     mime, ext, _ = FORMATS[fmt]
-    phash, mirror, blank = hashes
+    phash, mirror, blank = hashes.phash, hashes.mirror, hashes.blank
     if blank:  # a flat picture (collector.checks.pixels.is_blank): never compared by look
         flags.append("blank")
     return ImageFacts(
@@ -441,6 +453,8 @@ def _facts(
         rights=described.rights,
         flags=flags,
         type_mismatch=mismatch,
+        turns=hashes.turns,
+        window_hashes=hashes.windows,
     )
 
 

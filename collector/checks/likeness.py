@@ -42,6 +42,7 @@ __all__ = [
     "CROP_DETAIL_MIN",
     "DETAIL_MIN",
     "IMAGE_ERRORS",
+    "KIND_WORDS",
     "Confirmed",
     "Look",
     "confirm",
@@ -84,6 +85,15 @@ _MAKE: dict[str, tuple[Image.Transpose, ...]] = {
     "rotate270": (_T.ROTATE_270,),
     "rotate90+mirror": (_T.ROTATE_90, _T.FLIP_LEFT_RIGHT),
     "rotate270+mirror": (_T.ROTATE_270, _T.FLIP_LEFT_RIGHT),
+}
+
+# How a confirmed copy was made, in words ("probably a <words> copy of ..."): the kinds of
+# Confirmed.kind (a turn of phash.TURNS, or "crop").
+KIND_WORDS = {
+    "same": "resized/re-encoded", "mirror": "mirrored", "crop": "cropped",
+    "rotate90": "rotated", "rotate180": "rotated", "rotate270": "rotated",
+    "rotate90+mirror": "rotated and mirrored", "rotate180+mirror": "rotated and mirrored",
+    "rotate270+mirror": "rotated and mirrored",
 }
 
 
