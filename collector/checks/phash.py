@@ -190,16 +190,19 @@ WINDOW_ALGO = "dct-phash-64/windows-80-4x4-v1"
 
 def windows_of(grey: Image.Image) -> list[int]:
     """The pHash of each of :data:`WINDOWS` (fractions of the picture: left, top, right,
-    bottom) of a :func:`prepare_for_hash` picture, as the whole picture's pHash is made
-    (32x32 LANCZOS of the window, DCT, 8x8 block, median)."""
+    bottom; rounded to whole pixels) of a :func:`prepare_for_hash` picture, as the whole
+    picture's pHash is made (32x32 LANCZOS of the window, DCT, 8x8 block, median): for an
+    8-bit picture, imagehash's phash of ``im.crop(box)``."""
     import scipy.fft
 
     w, h = grey.size
     if not (w and h):
         return [0] * len(WINDOWS)
-    grids = np.stack([np.asarray(grey.resize(
-        (_IMG_SIZE, _IMG_SIZE), Image.Resampling.LANCZOS,
-        box=(x0 * w, y0 * h, x1 * w, y1 * h)), dtype=np.float64)
+    # crop, then resize: what a cropped file holds (resize(box=...) would also read the
+    # pixels just outside the box, and differ from imagehash by a bit pair now and then)
+    grids = np.stack([np.asarray(grey.crop(
+        (round(x0 * w), round(y0 * h), round(x1 * w), round(y1 * h))).resize(
+        (_IMG_SIZE, _IMG_SIZE), Image.Resampling.LANCZOS), dtype=np.float64)
         for x0, y0, x1, y1 in WINDOWS])
     dct = scipy.fft.dct(scipy.fft.dct(grids, axis=1), axis=2)[:, :_HASH_SIZE, :_HASH_SIZE]
     return [_hash_block(block) for block in dct]
