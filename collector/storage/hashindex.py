@@ -196,9 +196,15 @@ class HashIndex:
     @classmethod
     def from_ledger(cls, ledger: Ledger) -> HashIndex:
         """Load every stored file's hash from the ledger."""
-        index = cls()
-        for sha256, phash, windows in queries.stored_phashes(ledger, WINDOW_ALGO):
-            index.add(sha256, to_unsigned64(phash), window_rows([windows])[0])
+        rows = queries.stored_phashes(ledger, WINDOW_ALGO)
+        index, n = cls(), len(rows)
+        if n > len(index._hashes):
+            index._hashes = np.zeros(n, dtype=np.uint64)
+            index._windows = np.zeros((n, N_WINDOWS), dtype=np.uint64)
+        index._hashes[:n] = np.fromiter((to_unsigned64(r[1]) for r in rows), np.uint64, n)
+        index._windows[:n] = window_rows([r[2] for r in rows])
+        index._keys = [r[0] for r in rows]
+        index._count = n
         return index
 
     def add(self, sha256: str, phash: int, windows: np.ndarray | list[int] | None = None,
