@@ -15,10 +15,10 @@ Crops: a copy that keeps each side >= 80 % of the original moves the low frequen
 for pHash (median distance 12 bits at 90 %, 22 at 80 %, measured with bench/trace_quality.py's
 pictures), so crop candidates come from the stored pictures' window hashes (the pHash of 16
 windows of 80 % of each side, collector.checks.phash.WINDOWS) and from the closest few stored
-pictures within a loose radius, and the second look searches the crop box: for box widths of 78..98 % of the
-stored picture (the height follows from the two aspect ratios), at every position of a
-32-pixel grid, the best correlation of the box with the query is taken, and its detail must
-agree too.
+pictures within a loose radius, and the second look searches the crop box: for box widths
+of 78..98 % of the stored picture (the height follows from the two aspect ratios), at every
+position of a 32-pixel grid, the best correlation of the box with the query is taken, and its
+detail must agree too.
 
 Thresholds are our own, set on bench/trace_quality.py (common practice, no source); the bench
 prints the scores of true and false pairs so they can be re-checked.
