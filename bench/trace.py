@@ -2,10 +2,13 @@
 
 Builds a synthetic ledger in a temp dir (raw executemany in one transaction, indexes rebuilt
 afterwards, libraries.md section 3): 1,000 real generated JPEGs plus 999,000 rows with random
-sha256s and hashes, each with an item and an image fetch. Then prints a table:
+sha256s and hashes (and 16 random crop-window hashes each), each with an item and an image
+fetch. Then prints a table:
 
   exact lookup (sha256 primary key + items + fetch rows)   target <= 5 ms
   near lookup (scan of 1M hashes for 8 turns, second look, records)  target <= 10 ms
+  crop lookup (a crop to 80 %: every turn, the 16M window hashes, the crop search)  -
+  lookup of an unrelated picture (everything scanned, nothing confirmed)  -
   whole `collector trace one.jpg --in DIR` (subprocess)    target <= 1.5 s
   folder trace of 1,000 files (subprocess)                 target <= 10 s
 
@@ -33,10 +36,10 @@ import numpy as np
 from PIL import Image, ImageDraw
 
 from collector.checks.likeness import find_copies, look_at_file
-from collector.checks.phash import HASH_ALGO, hash_image_file, to_signed64
+from collector.checks.phash import HASH_ALGO, WINDOW_ALGO, hash_facts, pack_windows, to_signed64
 from collector.exports.trace import Tracer
 from collector.storage.collection import Collection, init_collection
-from collector.storage.hashindex import HashFile, ledger_mark
+from collector.storage.hashindex import HashFile, ledger_mark, scan_windows
 
 REAL = 1000
 NOW = "2026-03-01T21:53:28.123Z"
@@ -74,12 +77,15 @@ def build(root: Path, total: int, work: Path) -> list[tuple[str, Path, Image.Ima
         path = store.path_for(sha, "jpg")  # written directly: no per-file fsync in a bench
         path.parent.mkdir(parents=True, exist_ok=True)
         path.write_bytes(data)
-        ph, mirror = hash_image_file(path)
+        with Image.open(path) as stored:
+            facts = hash_facts(stored)
         real.append((sha, path, im))
-        rows_real.append((sha, len(data), ph, mirror))
+        rows_real.append((sha, len(data), facts.phash, facts.mirror,
+                          pack_windows(facts.windows)))
     rng = np.random.default_rng(1)
     fake = total - REAL
     fake_hashes = rng.integers(0, 2**63, size=(fake, 2), dtype=np.int64)
+    fake_windows = rng.integers(0, 2**63, size=(fake, 16), dtype=np.int64).astype("<u8")
     fake_shas = [os.urandom(32).hex() for _ in range(fake)]
 
     conn = sqlite3.connect(collection.ledger_path)
@@ -99,11 +105,11 @@ def build(root: Path, total: int, work: Path) -> list[tuple[str, Path, Image.Ima
                      (NOW,))
 
         def rows():
-            for i, (sha, size, ph, mirror) in enumerate(rows_real):
-                yield i + 1, sha, size, to_signed64(ph), to_signed64(mirror)
+            for i, (sha, size, ph, mirror, windows) in enumerate(rows_real):
+                yield i + 1, sha, size, to_signed64(ph), to_signed64(mirror), windows
             for j in range(fake):
                 yield (REAL + j + 1, fake_shas[j], 50_000, int(fake_hashes[j, 0]),
-                       int(fake_hashes[j, 1]))
+                       int(fake_hashes[j, 1]), fake_windows[j].tobytes())
 
         all_rows = list(rows())
         conn.executemany(
@@ -122,9 +128,10 @@ def build(root: Path, total: int, work: Path) -> list[tuple[str, Path, Image.Ima
              for i, _sha, size, *_ in all_rows))
         conn.executemany(
             "INSERT INTO files (sha256, size, ext, format, width, height, phash, "
-            "phash_mirror, hash_algo, first_item_id, stored_at, flags) VALUES "
-            "(?, ?, 'jpg', 'JPEG', 256, 192, ?, ?, ?, ?, ?, '[]')",
-            ((sha, size, ph, mirror, HASH_ALGO, i, NOW) for i, sha, size, ph, mirror in all_rows))
+            "phash_mirror, hash_algo, first_item_id, stored_at, flags, window_hashes, "
+            "window_algo) VALUES (?, ?, 'jpg', 'JPEG', 256, 192, ?, ?, ?, ?, ?, '[]', ?, ?)",
+            ((sha, size, ph, mirror, HASH_ALGO, i, NOW, windows, WINDOW_ALGO)
+             for i, sha, size, ph, mirror, windows in all_rows))
         for sql in indexes:
             conn.execute(sql)
     conn.close()
@@ -136,6 +143,52 @@ def stats_ms(samples: list[float]) -> tuple[float, float]:
     ordered = sorted(samples)
     return (statistics.median(ordered) * 1000,
             ordered[min(len(ordered) - 1, int(0.95 * len(ordered)))] * 1000)
+
+
+def timed_lookup(tracer: Tracer, query: Path) -> tuple[float, list[str], list[str]]:
+    """(seconds, keys, kinds) of the near lookup of one query file as trace runs it."""
+    look = look_at_file(query)  # not timed: decoding and hashing the query file
+    t0 = time.perf_counter()
+    confirmed = find_copies(look, lambda turns, crops: tracer.hashes.candidates(
+        turns, tracer.near_distance, crops), tracer._stored_look)
+    for c in confirmed:
+        tracer.lookup_exact(c.key)
+    return (time.perf_counter() - t0, [c.key for c in confirmed],
+            [c.kind for c in confirmed])
+
+
+def crop_lookups(tracer: Tracer, picks: list[tuple[str, Path, Image.Image]], work: Path,
+                 ) -> list[tuple[str, str, str]]:
+    """Rows for crops to 80 % (found through the window hashes) and unrelated pictures (every
+    scan runs, nothing is confirmed): the slow paths of a near lookup."""
+    rng = random.Random(5)
+    crops, found, others, false = [], 0, [], 0
+    q = work / "q.png"
+    for n, (sha, _, im) in enumerate(picks):
+        w, h = im.size
+        x, y = rng.randint(0, w - round(0.8 * w)), rng.randint(0, h - round(0.8 * h))
+        im.crop((x, y, x + round(0.8 * w), y + round(0.8 * h))).save(q)
+        seconds, keys, kinds = timed_lookup(tracer, q)
+        crops.append(seconds)
+        found += bool(keys) and keys[0] == sha and kinds[0] == "crop"
+        picture(50_000 + n).save(q)
+        seconds, keys, _ = timed_lookup(tracer, q)
+        others.append(seconds)
+        false += bool(keys)
+    rows = []
+    for name, samples in (("crop lookup (crop to 80 %), median / p95", crops),
+                          ("unrelated picture lookup (nothing found), median / p95", others)):
+        med, p95 = stats_ms(samples)
+        rows.append((name, f"{med:.1f} / {p95:.1f} ms", "-"))
+    rows.append(("crops found as crops of the right original / unrelated confirmed",
+                 f"{found} / {len(picks)}, {false}", "-, 0"))
+    hashes = tracer.hashes
+    t0 = time.perf_counter()
+    for _ in range(10):
+        scan_windows(hashes.windows, int(hashes.hashes[0]))
+    rows.append((f"window scan alone ({hashes.windows.size:,} hashes)",
+                 f"{(time.perf_counter() - t0) * 100:.1f} ms", "-"))
+    return rows
 
 
 def main() -> int:
@@ -209,6 +262,7 @@ def main() -> int:
                           f"{med:.2f} / {p95:.2f} ms", "<= 10 ms"))
             table.append(("near lookup found the right original", f"{found} / {len(picks)}",
                           "-"))
+            table.extend(crop_lookups(tracer, picks[:50], work))
 
         one = work / "one.jpg"
         shutil.copyfile(real[0][1], one)

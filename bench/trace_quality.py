@@ -2,7 +2,8 @@
 
 Generates originals of varied content (smooth noise fields in colour, shapes on gradients,
 textures, 16-bit greyscale scans, pictures on a transparent background), stores their pHash
-the way ingest does (collector.checks.phash.hash_image_file) in an in-memory HashIndex, and
+and crop-window hashes the way ingest does (collector.checks.phash.hash_facts) in an in-memory
+HashIndex, and
 asks the same two-stage search `collector trace` uses (collector.checks.likeness.find_copies
 over collector.storage.hashindex.scan_turns) about:
 
@@ -45,9 +46,15 @@ from collector.checks.likeness import (
     look_at,
     look_at_file,
 )
-from collector.checks.phash import hash_image_file
+from collector.checks.phash import WINDOWS, hash_facts
 from collector.checks.pixels import hash_ready
-from collector.storage.hashindex import CROP_DISTANCE, CROP_KEEP, HashIndex
+from collector.storage.hashindex import (
+    CROP_DISTANCE,
+    CROP_KEEP,
+    WINDOW_DISTANCE,
+    WINDOW_KEEP,
+    HashIndex,
+)
 
 NEAR = 8  # DEFAULT_NEAR_DISTANCE of collector.exports.trace
 SIZES = [(320, 240), (240, 320), (300, 300), (400, 260), (260, 380)]
@@ -196,14 +203,18 @@ def unrelated(n: int) -> Image.Image:
     return original(1_000_000 + n)
 
 
-def build(count: int, work: Path) -> tuple[HashIndex, dict[str, Look], list[Image.Image]]:
-    """Store the originals: files, ingest pHash in the index, Looks for the second look."""
+def build(count: int, work: Path, windows: bool = True,
+          ) -> tuple[HashIndex, dict[str, Look], list[Image.Image]]:
+    """Store the originals: files, ingest pHash (and window hashes, unless ``windows`` is
+    false: files stored before there were any) in the index, Looks for the second look."""
     index, looks, pictures = HashIndex(), {}, []
     for seed in range(count):
         im = original(seed)
         path = work / f"{seed}.png"
         im.save(path)
-        index.add(str(seed), hash_image_file(path)[0])
+        with Image.open(path) as stored:
+            hashes = hash_facts(stored, int(stored.getexif().get(0x0112, 1) or 1))
+        index.add(str(seed), hashes.phash, hashes.windows if windows else None)
         looks[str(seed)] = look_at_file(path)
         pictures.append(im)
     return index, looks, pictures
@@ -264,10 +275,12 @@ def main() -> int:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--originals", type=int, default=500)
     parser.add_argument("--unrelated", type=int, default=10_000)
+    parser.add_argument("--no-windows", action="store_true",
+                        help="store no window hashes (as for files stored before them)")
     args = parser.parse_args()
     t0 = time.perf_counter()
     with tempfile.TemporaryDirectory(prefix="bench-quality-") as tmp:
-        index, looks, pictures = build(args.originals, Path(tmp))
+        index, looks, pictures = build(args.originals, Path(tmp), not args.no_windows)
         recall, lowest, kinds = measure_copies(index, looks, pictures)
         false, offered = measure_unrelated(index, looks, args.unrelated)
     targets = {"crop 90 %": 90.0, "crop 80 %": 80.0}
@@ -285,6 +298,9 @@ def main() -> int:
           f">= {CROP_CONFIRM_MIN} and >= {CROP_DETAIL_MIN}); pHash radius {NEAR}, crop "
           f"candidates: the {CROP_KEEP} closest within {CROP_DISTANCE} bits; "
           f"{time.perf_counter() - t0:.0f} s")
+    print(f"window hashes: {'none stored' if args.no_windows else len(WINDOWS)} a file; "
+          f"crop candidates by window: the {WINDOW_KEEP} closest within {WINDOW_DISTANCE} "
+          "bits")
     return 0
 
 

@@ -31,7 +31,15 @@ from PIL import ExifTags, Image
 
 from collector.checks.colour_facts import WORK_SIDE, ColourFacts, colour_facts
 from collector.checks.embedded_metadata import read_exif, read_iptc, read_xmp
-from collector.checks.phash import HASH_ALGO, hash_draft, phash_and_blank, to_signed64
+from collector.checks.phash import (
+    HASH_ALGO,
+    WINDOW_ALGO,
+    HashFacts,
+    hash_draft,
+    hash_facts,
+    pack_windows,
+    to_signed64,
+)
 from collector.checks.pixel_facts import (
     PixelFacts,
     estimate_enlargement,
@@ -101,6 +109,9 @@ class ImageFacts:
     type_mismatch: str | None = None
     pixel: PixelFacts = field(default_factory=lambda: PixelFacts(None, None))
     colour: ColourFacts | None = None  # None: not computed (inspect_image colours=0)
+    # the pHash for each turn and of the crop windows (collector.checks.phash.hash_facts)
+    turns: dict[str, int] = field(default_factory=dict)
+    window_hashes: list[int] = field(default_factory=list)
 
     def file_columns(self) -> dict[str, Any]:
         """The ledger's ``files`` columns these facts fill (hashes as signed 64-bit integers,
@@ -115,6 +126,8 @@ class ImageFacts:
             "dpi_x": self.dpi[0] if self.dpi else None, "dpi_y": self.dpi[1] if self.dpi else None,
             **self.pixel.columns(),
             **(self.colour.columns() if self.colour else {}),
+            "window_hashes": pack_windows(self.window_hashes) if self.window_hashes else None,
+            "window_algo": WINDOW_ALGO,  # measured (a blank picture has no windows)
         }
 
 
@@ -219,10 +232,10 @@ def _orientation(im: Image.Image) -> int:
         return 1
 
 
-def _hash(im: Image.Image, orientation: int, path: Path) -> tuple[int, int, bool]:
-    """(pHash, mirror, blank): collector.checks.phash.phash_and_blank."""
+def _hash(im: Image.Image, orientation: int, path: Path) -> HashFacts:
+    """pHash, mirror, blank, turns and windows: collector.checks.phash.hash_facts."""
     try:
-        return phash_and_blank(im, orientation)
+        return hash_facts(im, orientation)
     except _DECODE_ERRORS as exc:
         raise ImageRejected("broken_image", damage(exc)) from exc
 
@@ -396,7 +409,7 @@ def _describe(im: Image.Image, fmt: str, head: bytes, flags: list[str]) -> _Desc
 
 def _check_pixels(
     im: Image.Image, fmt: str, geo: _Geometry, path: Path, max_pixels: int, full_decode: bool
-) -> tuple[int, int, bool] | None:
+) -> HashFacts | None:
     """PNG CRCs, the full decode (skipped for a JPEG when full_decode is False) and, for
     formats other than JPEG, the hash of the pixels just decoded; None means "hash later"."""
     if fmt == "PNG":
@@ -413,7 +426,7 @@ def _facts(
     geo: _Geometry,
     described: _Described,
     frames: int,
-    hashes: tuple[int, int, bool],
+    hashes: HashFacts,
     flags: list[str],
     mismatch: str | None,
 ) -> ImageFacts:
@@ -421,7 +434,7 @@ def _facts(
     if geo.orientation != 1:
         described.exif["orientation"] = geo.orientation
     mime, ext, _ = FORMATS[fmt]
-    phash, mirror, blank = hashes
+    phash, mirror, blank = hashes.phash, hashes.mirror, hashes.blank
     if blank:  # a flat picture (collector.checks.pixels.is_blank): never compared by look
         flags.append("blank")
     return ImageFacts(
@@ -448,6 +461,8 @@ def _facts(
         rights=described.rights,
         flags=flags,
         type_mismatch=mismatch,
+        turns=hashes.turns,
+        window_hashes=hashes.windows,
     )
 
 
@@ -540,7 +555,7 @@ def inspect_image(
 
 
 def _from_drafts(im: Image.Image, path: Path, max_pixels: int, orientation: int,
-                 colours: int) -> tuple[tuple[int, int, bool], ColourFacts | None]:
+                 colours: int) -> tuple[HashFacts, ColourFacts | None]:
     """A JPEG's hashes and colour facts from ONE draft decode: the HASH_ALGO draft asked for
     as YCbCr (collector.checks.phash.hash_draft), whose Y band is the hash's luma bit for bit
     and whose colour the facts use (none when ``colours`` is 0). A second draft is decoded
@@ -565,14 +580,14 @@ def _from_drafts(im: Image.Image, path: Path, max_pixels: int, orientation: int,
 
 
 def _reopened(path: Path, max_pixels: int, orientation: int,
-              colours: int) -> tuple[tuple[int, int, bool], ColourFacts | None]:
+              colours: int) -> tuple[HashFacts, ColourFacts | None]:
     """:func:`_from_drafts` of the file opened afresh (the first open was decoded in full)."""
     with _open(path, max_pixels) as im:
         return _from_drafts(im, path, max_pixels, orientation, colours)
 
 
 def _from_two_drafts(path: Path, max_pixels: int, orientation: int,
-                     colours: int) -> tuple[tuple[int, int, bool], ColourFacts | None]:
+                     colours: int) -> tuple[HashFacts, ColourFacts | None]:
     """A JPEG's hashes from a luma draft and its colour facts from a colour draft."""
     with _open(path, max_pixels) as im:
         hashes = _hash(im, orientation, path)

@@ -13,11 +13,12 @@ both together).
 
 Crops: a copy that keeps each side >= 80 % of the original moves the low frequencies too much
 for pHash (median distance 12 bits at 90 %, 22 at 80 %, measured with bench/trace_quality.py's
-pictures), so for crops the pHash only preselects the closest few stored pictures within a
-loose radius, and the second look searches the crop box: for box widths of 78..98 % of the
-stored picture (the height follows from the two aspect ratios), at every position of a
-32-pixel grid, the best correlation of the box with the query is taken, and its detail must
-agree too.
+pictures), so crop candidates come from the stored pictures' window hashes (the pHash of 16
+windows of 80 % of each side, collector.checks.phash.WINDOWS) and from the closest few stored
+pictures within a loose radius, and the second look searches the crop box: for box widths
+of 78..98 % of the stored picture (the height follows from the two aspect ratios), at every
+position of a 32-pixel grid, the best correlation of the box with the query is taken, and its
+detail must agree too.
 
 Thresholds are our own, set on bench/trace_quality.py (common practice, no source); the bench
 prints the scores of true and false pairs so they can be re-checked.
@@ -42,6 +43,7 @@ __all__ = [
     "CROP_DETAIL_MIN",
     "DETAIL_MIN",
     "IMAGE_ERRORS",
+    "KIND_WORDS",
     "Confirmed",
     "Look",
     "confirm",
@@ -84,6 +86,15 @@ _MAKE: dict[str, tuple[Image.Transpose, ...]] = {
     "rotate270": (_T.ROTATE_270,),
     "rotate90+mirror": (_T.ROTATE_90, _T.FLIP_LEFT_RIGHT),
     "rotate270+mirror": (_T.ROTATE_270, _T.FLIP_LEFT_RIGHT),
+}
+
+# How a confirmed copy was made, in words ("probably a <words> copy of ..."): the kinds of
+# Confirmed.kind (a turn of phash.TURNS, or "crop").
+KIND_WORDS = {
+    "same": "resized/re-encoded", "mirror": "mirrored", "crop": "cropped",
+    "rotate90": "rotated", "rotate180": "rotated", "rotate270": "rotated",
+    "rotate90+mirror": "rotated and mirrored", "rotate180+mirror": "rotated and mirrored",
+    "rotate270+mirror": "rotated and mirrored",
 }
 
 

@@ -27,7 +27,9 @@ by up to 2 bits, libraries.md section 2):
 
 from __future__ import annotations
 
+import functools
 from pathlib import Path
+from typing import NamedTuple
 
 import numpy as np
 from PIL import Image
@@ -37,11 +39,16 @@ from collector.checks.pixels import hash_ready, is_blank
 __all__ = [
     "HASH_ALGO",
     "TURNS",
+    "WINDOWS",
+    "WINDOW_ALGO",
+    "HashFacts",
     "dct_block",
     "featureless",
     "hamming",
     "hash_draft",
+    "hash_facts",
     "hash_image_file",
+    "pack_windows",
     "phash_and_blank",
     "phash_from_image",
     "phash_prepared",
@@ -49,6 +56,9 @@ __all__ = [
     "to_signed64",
     "to_unsigned64",
     "turned_hashes",
+    "unpack_windows",
+    "window_hashes",
+    "windows_of",
 ]
 
 # v2: 16-bit, float and transparent pictures hashed through pixels.hash_ready (scaled, on
@@ -177,6 +187,133 @@ def phash_and_blank(im: Image.Image, orientation: int = 1) -> tuple[int, int, bo
     grey = prepare_for_hash(im, orientation)
     phash, mirror = phash_from_image(grey)
     return phash, mirror, is_blank(grey)
+
+
+# --- window hashes: finding crops ----------------------------------------------------------
+# A copy cropped to 80 % of each side moves the low frequencies too far for the whole
+# picture's pHash (median 22 bits away on bench/trace_quality.py's pictures). So every stored
+# picture also gets the pHash of 16 windows of 80 % of each side, on a 4x4 grid of offsets
+# (0, 1/15, 2/15 and 3/15 of the side): a crop to 80 % at any place is at most 1/30 of a side
+# from one of them, and its own pHash lies within 12 bits of that window's in 97 % of
+# bench/trace_quality.py's crops (median 8; a 3x3 grid gave 65 %: the pHash moves fast with
+# the offset). Our own layout (common practice, no source). The layout is recorded as
+# WINDOW_ALGO beside the hashes; hashes of another layout are not compared.
+_WINDOW_SIDE = 0.8
+_WINDOW_STEPS = (0.0, 1 / 15, 2 / 15, 3 / 15)
+WINDOWS: tuple[tuple[float, float, float, float], ...] = tuple(
+    (x, y, x + _WINDOW_SIDE, y + _WINDOW_SIDE) for y in _WINDOW_STEPS for x in _WINDOW_STEPS)
+WINDOW_ALGO = "dct-phash-64/windows-80-4x4-v1"
+
+
+# Pictures larger than this (shorter side, pixels) are first reduced by a whole factor (box
+# averages, Pillow Image.reduce) before the windows are cut: a JPEG's hash decode is already
+# about this small, and a full-size PNG would otherwise cost 16 full-size resamplings. Our own
+# value (common practice, no source).
+_WINDOW_BASE = 256
+# The first 8 rows of the DCT-II matrix over 32 samples (scipy.fft.dct type 2 without its
+# factor 2, which a median threshold ignores).
+_DCT8 = np.cos(np.pi * np.arange(_HASH_SIZE)[:, None]
+               * (2 * np.arange(_IMG_SIZE)[None, :] + 1) / (2 * _IMG_SIZE))
+
+
+_STEPS = np.asarray(_WINDOW_STEPS)
+
+
+@functools.lru_cache(maxsize=64)
+def _window_matrices(size: int) -> np.ndarray:
+    """(4, 8, size): for each of the 4 window positions along a side of ``size`` pixels, the
+    first 8 DCT rows of the window resampled to 32 samples as Pillow's LANCZOS resize of the
+    crop does it (Pillow's Resample.c: the a=3 Lanczos window, widened by the scale when
+    shrinking, each output's weights summing to 1, no pixel outside the crop). Only the ~23
+    pixels around each output's centre have a weight, so only those are evaluated."""
+    starts = np.round(_STEPS * size)
+    stops = np.round((_STEPS + _WINDOW_SIDE) * size)
+    scale = ((stops - starts) / _IMG_SIZE)[:, None, None]
+    widen = np.maximum(scale, 1.0)
+    centres = starts[:, None, None] + (np.arange(_IMG_SIZE)[None, :, None] + 0.5) * scale
+    reach = int(np.ceil(3 * float(widen.max()))) + 1
+    index = np.floor(centres).astype(np.intp) + np.arange(-reach, reach + 1)
+    x = (index + 0.5 - centres) / widen
+    inside = ((index >= starts[:, None, None]) & (index < stops[:, None, None])
+              & (np.abs(x) < 3))
+    weights = np.where(inside, np.sinc(x) * np.sinc(x / 3), 0.0)
+    weights /= weights.sum(axis=2, keepdims=True)
+    # each weight at its pixel; a margin of ``reach`` on both sides takes the (zero) weights
+    # that fall off the picture, so no two weights share a place
+    dense = np.zeros((len(_STEPS), _IMG_SIZE, size + 2 * reach))
+    np.put_along_axis(dense, index + reach, weights, axis=2)
+    out = _DCT8 @ dense[:, :, reach:reach + size]
+    out.flags.writeable = False
+    return out
+
+
+def windows_of(grey: Image.Image) -> list[int]:
+    """The pHash of each of :data:`WINDOWS` (fractions of the picture: left, top, right,
+    bottom; rounded to whole pixels) of a :func:`prepare_for_hash` picture, made as the whole
+    picture's pHash is (the window resampled to 32x32 LANCZOS, DCT, 8x8 block, median), within
+    a bit or two of imagehash's phash of ``im.crop(box)``.
+
+    Resampling and the DCT are both linear, so each window's 8x8 block is ``A_y @ G @ A_x.T``
+    with ``A = DCT8 @ lanczos_weights``: 4 row and 4 column matrices serve all 16 windows, at
+    a fraction of the cost of 16 Pillow crops and resizes (no rounding to 8 bits between the
+    passes, hence the odd bit pair that differs)."""
+    if min(grey.size) > _WINDOW_BASE:
+        grey = grey.reduce(min(grey.size) // _WINDOW_BASE)
+    w, h = grey.size
+    if min(w, h) < 2:
+        return [0] * len(WINDOWS)
+    pixels = np.asarray(grey, dtype=np.float64)
+    rows, cols = _window_matrices(h), _window_matrices(w)
+    # (4 tops, 8, w) then (4 tops, 4 lefts, 8, 8): window (left i, top j) is blocks[j, i]
+    blocks = (rows @ pixels)[:, None] @ cols.transpose(0, 2, 1)[None]
+    flat = blocks.reshape(len(WINDOWS), _HASH_SIZE * _HASH_SIZE)
+    bits = flat > np.median(flat, axis=1, keepdims=True)
+    return [int.from_bytes(row.tobytes(), "big") for row in np.packbits(bits, axis=1)]
+
+
+def window_hashes(im: Image.Image, orientation: int = 1) -> list[int]:
+    """The window hashes (:data:`WINDOWS`, layout :data:`WINDOW_ALGO`) of an opened image
+    that is not loaded yet, through the same pipeline as its pHash (JPEG draft, greyscale,
+    EXIF ``orientation`` applied): what ingest stores, for a file stored before there were
+    window hashes. Store them with :func:`pack_windows` beside ``WINDOW_ALGO``."""
+    if im.format == "JPEG":
+        im.draft("L", _DRAFT_SIZE)
+    return windows_of(prepare_for_hash(im, orientation))
+
+
+def pack_windows(hashes: list[int]) -> bytes:
+    """Window hashes as the ledger keeps them: unsigned 64-bit little-endian, in order."""
+    return np.asarray([h & _MASK64 for h in hashes], dtype="<u8").tobytes()
+
+
+def unpack_windows(raw: bytes | None) -> list[int]:
+    """The window hashes of :func:`pack_windows` (none for NULL or a damaged value)."""
+    if not raw or len(raw) != 8 * len(WINDOWS):
+        return []
+    return [int(h) for h in np.frombuffer(raw, dtype="<u8")]
+
+
+class HashFacts(NamedTuple):
+    """The hashes ingest records of one picture."""
+
+    phash: int
+    mirror: int
+    blank: bool
+    turns: dict[str, int]  # the pHash the original would have for each of TURNS
+    windows: list[int]  # WINDOWS; empty for a blank picture
+
+
+def hash_facts(im: Image.Image, orientation: int = 1) -> HashFacts:
+    """pHash, mirror, blank, the 8 turned hashes and the window hashes of an opened image
+    (HASH_ALGO pipeline; for JPEG not loaded yet, so that draft() takes effect): one decode,
+    the windows cut from the same small greyscale picture."""
+    hash_draft(im)  # a JPEG already drafted (and loaded) by the caller is taken as it is
+    grey = prepare_for_hash(im, orientation)
+    block = dct_block(grey)
+    turns = turned_hashes(block)
+    blank = is_blank(grey)
+    return HashFacts(turns["same"], turns["mirror"], blank, turns,
+                     [] if blank else windows_of(grey))
 
 
 def hash_image_file(path: Path | str) -> tuple[int, int]:

@@ -14,6 +14,7 @@ from collections.abc import Iterable
 from dataclasses import asdict, dataclass
 from typing import TYPE_CHECKING, Any
 
+from collector.checks.likeness import KIND_WORDS
 from collector.checks.rights_statements import STATEMENTS
 from collector.safe_text import csv_row, shown_name
 from collector.storage.ledger_repair import RECOVERED_FLAG
@@ -161,12 +162,7 @@ TABLE_COLUMNS = ("file", "match", "distance", "source", "spdx_id", "allowed", "f
 _SHOWN_COLUMNS = ("file", "match", "distance", "source", "spdx_id", "allowed", "flags",
                   "copy_kind", "note")
 # How a near match was made, as the second look found it (collector.checks.likeness).
-COPY_KINDS = {
-    "same": "resized/re-encoded", "mirror": "mirrored", "crop": "cropped",
-    "rotate90": "rotated", "rotate180": "rotated", "rotate270": "rotated",
-    "rotate90+mirror": "rotated and mirrored", "rotate180+mirror": "rotated and mirrored",
-    "rotate270+mirror": "rotated and mirrored",
-}
+COPY_KINDS = KIND_WORDS
 
 
 def table_row(result: TraceResult) -> dict[str, Any]:

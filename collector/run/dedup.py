@@ -13,6 +13,8 @@ from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 from typing import Any
 
+from collector.checks.likeness import KIND_WORDS
+
 Rank = tuple[int, int]  # (position of the item's source in the recipe, item id): lower wins
 
 
@@ -83,6 +85,8 @@ class NearCandidate:
     mirrored: bool
     original_id: int
     rank: Rank
+    how: str = ""  # the kind of copy the second look found (likeness.KIND_WORDS; "": by
+    # ``mirrored``)
 
 
 def closest(candidates: Sequence[NearCandidate]) -> NearCandidate | None:
@@ -93,10 +97,17 @@ def closest(candidates: Sequence[NearCandidate]) -> NearCandidate | None:
     return min(candidates, key=lambda c: (c.distance, c.rank))
 
 
-def near_detail(mirrored: bool, original_id: int, distance: int) -> str:
-    """The detail line of a near duplicate."""
-    return (f"probably a {'mirrored' if mirrored else 'resized or re-encoded'} "
-            f"copy of item {original_id} (distance {distance})")
+def near_detail(mirrored: bool, original_id: int, distance: int, how: str = "",
+                reverse: bool = False) -> str:
+    """The detail line of a near duplicate; ``how`` is the kind of copy the second look found
+    (collector.checks.likeness.KIND_WORDS; empty: from ``mirrored``). ``reverse``: the item
+    is the picture item ``original_id`` is a copy of (a crop is not symmetric)."""
+    how = how or ("mirror" if mirrored else "same")
+    if reverse and how == "crop":
+        return (f"probably the picture item {original_id} was cropped from "
+                f"(distance {distance})")
+    words = KIND_WORDS.get(how, "resized/re-encoded").replace("/", " or ")
+    return f"probably a {words} copy of item {original_id} (distance {distance})"
 
 
 @dataclass(frozen=True)
@@ -123,6 +134,7 @@ class NearCopy:
     mirrored: bool
     detail: str
     keep_file: bool
+    how: str = ""
 
 
 def near_verdict(item_rank: Rank, best: NearCandidate | None, original_state: str | None,
@@ -133,15 +145,16 @@ def near_verdict(item_rank: Rank, best: NearCandidate | None, original_state: st
         return Keep()
     if original_state == "stored" and item_rank < best.rank:
         return Demote(best.original_id, best)
-    detail = near_detail(best.mirrored, best.original_id, best.distance)
+    detail = near_detail(best.mirrored, best.original_id, best.distance, best.how)
     if drop:
         detail += "; not stored (recipe: drop)"
-    return NearCopy(best.original_id, best.distance, best.mirrored, detail, keep_file=not drop)
+    return NearCopy(best.original_id, best.distance, best.mirrored, detail,
+                    keep_file=not drop, how=best.how)
 
 
 def demote_fields(new_id: int, match: NearCandidate, *, drop: bool) -> dict[str, Any]:
     """The item fields of an original that turned out to be a near copy of ``new_id``."""
-    detail = near_detail(match.mirrored, new_id, match.distance)
+    detail = near_detail(match.mirrored, new_id, match.distance, match.how, reverse=True)
     return {"state": "near_duplicate", "reason": "near_duplicate",
             "detail": detail + ("; not kept (recipe: drop)" if drop else ""),
             "duplicate_of": new_id, "near_distance": match.distance,

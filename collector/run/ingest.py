@@ -31,7 +31,7 @@ from collector.checks.licences import (
     normalise_licence,
     rights_conflict,
 )
-from collector.checks.likeness import IMAGE_ERRORS, Look, confirm, look_at_file
+from collector.checks.likeness import IMAGE_ERRORS, Confirmed, Look, confirm, look_at_file
 from collector.checks.pixel_rules import PixelRules
 from collector.checks.rights_statements import find_statement
 from collector.config.recipe import Recipe
@@ -43,7 +43,7 @@ from collector.run.reservations import ReservationGate
 from collector.safe_text import shown_name
 from collector.storage import upkeep_queries
 from collector.storage.collection import Collection
-from collector.storage.hashindex import HashIndex, NearMatch
+from collector.storage.hashindex import HashIndex
 from collector.storage.ledger import Ledger
 from collector.storage.ledger_repair import RECOVERED_FLAG
 
@@ -441,28 +441,32 @@ class Ingest:
                       ) -> Keep | Demote | NearCopy:
         """Look up the stored look-alikes of a new file, keep those the second look
         confirms (collector.checks.likeness) and let dedup decide."""
-        near = [m for m in self.index.nearest(facts.phash, facts.phash_mirror,
-                                              self.recipe.images.near_distance)
-                if m.sha256 != sha and "blank" not in facts.flags]  # blank: no shape to match
-        if near:
-            near = self._confirmed(near, path)
+        near = [] if "blank" in facts.flags else self._confirmed(sha, facts, path)
         candidates = []
         for m in near:
-            first = (self.ledger.file(m.sha256) or {}).get("first_item_id")
+            first = (self.ledger.file(m.key) or {}).get("first_item_id")
             # A recovered file without an item yet is nobody's original: it makes no item a
             # near duplicate until a gather attaches it to the item that lists it.
             if first is not None:
-                candidates.append(NearCandidate(m.sha256, m.distance, m.mirrored, first,
-                                                self.rank(first)))
+                candidates.append(NearCandidate(m.key, m.distance, "mirror" in m.kind, first,
+                                                self.rank(first), m.kind))
         best = dedup.closest(candidates)
         original = self.ledger.item(best.original_id) if best is not None else None
         return dedup.near_verdict(self.rank(item_id), best,
                                   original["state"] if original else None,
                                   drop=self.recipe.images.near_duplicates == "drop")
 
-    def _confirmed(self, near: list[NearMatch], path: Path) -> list[NearMatch]:
-        """The pHash look-alikes the second look agrees with (a stored file that cannot be
-        read is not confirmed: the new file is kept, nothing is lost)."""
+    def _confirmed(self, sha: str, facts: ImageFacts, path: Path) -> list[Confirmed]:
+        """The stored look-alikes the second look agrees with, as trace finds them: the pHash
+        for each of the 8 turns (resized, mirrored, rotated copies) and the stored files'
+        window hashes (crops; not the loose-radius crop candidates trace adds, each of which
+        would decode a stored file for every new one). A stored file that cannot be read is
+        not confirmed: the new file is kept, nothing is lost."""
+        turns = facts.turns or {"same": facts.phash, "mirror": facts.phash_mirror}
+        near = [c for c in self.index.candidates(turns, self.recipe.images.near_distance,
+                                                 crops=True, loose=False) if c[0] != sha]
+        if not near:
+            return []
         try:
             look = look_at_file(path)
         except IMAGE_ERRORS:
@@ -475,11 +479,7 @@ class Ingest:
             except IMAGE_ERRORS:
                 return None
 
-        kinds = {m.sha256: ("mirror" if m.mirrored else "same") for m in near}
-        agreed = {c.key for c in confirm(
-            look, [(m.sha256, m.distance, kinds[m.sha256]) for m in near], stored_look,
-            limit=len(near))}
-        return [m for m in near if m.sha256 in agreed]
+        return confirm(look, near, stored_look, limit=len(near))
 
     def _store_new(self, item_id: int, spdx_id: str | None, path: Path, sha: str,
                    facts: ImageFacts, extra: dict[str, Any], *, recovered: bool = False) -> None:
@@ -530,7 +530,7 @@ class Ingest:
             finish()
             if placing:
                 self.ledger.drop_store_intent(sha)
-        self.index.add(sha, facts.phash)
+        self.index.add(sha, facts.phash, facts.window_hashes or None)
 
     def _demote(self, verdict: Demote, new_id: int) -> None:
         """A stored original turns out to be a near copy of an earlier-listed item."""

@@ -4,7 +4,8 @@ A collection gathered by an older collector holds files whose facts are stale or
 perceptual hash made by an older pipeline (``files.hash_algo`` differs from
 :data:`collector.checks.phash.HASH_ALGO`; the first pipeline clipped 16-bit pictures to a
 blank page), no transparency share or native size (stored before schema 8), no colour and
-tone facts (stored before schema 10). :func:`remeasure` re-reads the stored bytes from the
+tone facts (stored before schema 10), no crop window hashes (stored before schema 12).
+:func:`remeasure` re-reads the stored bytes from the
 collection's store (it never builds a fetcher: nothing is requested) and measures them with
 :func:`collector.checks.images.inspect_image`, the function ingest uses, with the recipe's
 settings, so every fact equals what a fresh gather of the same file records.
@@ -35,7 +36,7 @@ from pathlib import Path
 from typing import Any
 
 from collector.checks.images import ImageFacts, inspect_image
-from collector.checks.phash import HASH_ALGO, hamming, to_signed64
+from collector.checks.phash import HASH_ALGO, WINDOW_ALGO, hamming, pack_windows, to_signed64
 from collector.config.recipe import Recipe
 from collector.errors import CollectorError, ImageRejected
 from collector.storage import hashindex, queries
@@ -109,6 +110,14 @@ def _colour_columns(reading: Reading) -> dict[str, Any]:
     return colour.columns() if colour is not None else {}
 
 
+def _window_columns(reading: Reading) -> dict[str, Any]:
+    """The crop windows' hashes (collector.checks.phash.window_hashes; none for a blank
+    picture, whose layout is still recorded so that it is not due again)."""
+    windows = reading.facts.window_hashes
+    return {"window_hashes": pack_windows(windows) if windows else None,
+            "window_algo": WINDOW_ALGO}
+
+
 def _write_file_columns(ledger: Ledger, sha256: str, values: dict[str, Any]) -> None:
     ledger.update_file(sha256, values)
 
@@ -141,6 +150,9 @@ MEASUREMENTS: tuple[Measurement, ...] = (
     Measurement("colour and tone facts",
                 lambda led, a, b, s: uq.colour_facts_due(led, a, b), _colour_columns,
                 wanted=lambda settings: settings.colours > 0),
+    Measurement("crop window hashes",
+                lambda led, a, b, s: uq.windows_due(led, a, b, WINDOW_ALGO), _window_columns,
+                bookkeeping=("window_algo",)),
 )
 HASHES = MEASUREMENTS[0].name
 
@@ -392,7 +404,10 @@ def _near_check(ledger: Ledger, verdict: uq.NearVerdict) -> NearCheck:
 
 
 def _hash_rewritten(row: dict[str, Any], new: dict[str, Any]) -> bool:
-    """Whether new values change the pHash pair the hash file was built from."""
+    """Whether new values change the pHash pair or the window hashes the hash file was
+    built from."""
+    if "window_hashes" in new:
+        return row.get("window_hashes") != new["window_hashes"]
     return "phash" in new and (row.get("phash"), row.get("phash_mirror")) != (
         new["phash"], new.get("phash_mirror"))
 

@@ -210,7 +210,19 @@ def _migration_11(db: sqlite_utils.Database) -> None:
     db.table("rule_changes").create_index(["sha256"], if_not_exists=True)
 
 
+def _migration_12(db: sqlite_utils.Database) -> None:
+    """Crop windows: the pHash of 16 windows of each stored picture
+    (``files.window_hashes``, 16 unsigned 64-bit little-endian values) and their layout
+    (``files.window_algo``, collector.checks.phash.WINDOW_ALGO). Rows stored before stay NULL:
+    such files are not found as crops until their window hashes are filled in."""
+    files = db.table("files")
+    present = files.columns_dict
+    for name, kind in (("window_hashes", bytes), ("window_algo", str)):
+        if name not in present:
+            files.add_column(name, kind)
+
+
 MIGRATIONS: dict[int, Callable[[sqlite_utils.Database], None]] = {
     1: _migration_1, 2: _migration_2, 3: _migration_3, 4: _migration_4, 5: _migration_5,
     6: _migration_6, 7: _migration_7, 8: _migration_8, 9: _migration_9, 10: _migration_10,
-    11: _migration_11}
+    11: _migration_11, 12: _migration_12}

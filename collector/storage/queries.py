@@ -218,10 +218,22 @@ class FilesMark(NamedTuple):
     last_sha: str | None
 
 
-def stored_phashes(ledger: Ledger) -> list[tuple[str, int]]:
-    """(sha256, signed pHash) of every file with a pHash, in rowid order."""
-    return [(r[0], int(r[1])) for r in ledger.rows(
-        "SELECT sha256, phash FROM files WHERE phash IS NOT NULL ORDER BY rowid")]
+def stored_phashes(ledger: Ledger, window_algo: str = "") -> list[tuple[str, int, bytes | None]]:
+    """(sha256, signed pHash, window hashes) of every file with a pHash, in rowid order; the
+    window hashes only where they were made with ``window_algo`` (None otherwise)."""
+    windows, params = _windows_column(ledger, window_algo)
+    return [(r[0], int(r[1]), r[2]) for r in ledger.rows(
+        f"SELECT sha256, phash, {windows} FROM files WHERE phash IS NOT NULL ORDER BY rowid",
+        params)]
+
+
+def _windows_column(ledger: Ledger, window_algo: str) -> tuple[str, tuple[str, ...]]:
+    """The files' window hashes made with ``window_algo`` (NULL for others), or NULL in a
+    ledger from before they were recorded (read-only commands do not migrate)."""
+    names = {r[0] for r in ledger.rows("SELECT name FROM pragma_table_info('files')")}
+    if "window_hashes" not in names or not window_algo:
+        return "NULL", ()
+    return "CASE WHEN window_algo = ? THEN window_hashes END", (window_algo,)
 
 
 def files_mark(ledger: Ledger) -> FilesMark:
@@ -236,11 +248,13 @@ def sha256_at_rowid(ledger: Ledger, rowid: int) -> str | None:
     return ledger.scalar("SELECT sha256 FROM files WHERE rowid = ?", (rowid,))
 
 
-def files_after(ledger: Ledger, rowid: int) -> list[tuple[Any, ...]]:
-    """(rowid, sha256, pHash or None) of every files row after ``rowid``, in order; plain
-    tuples, since a dict per row made a 1M-row rebuild take about 5 s."""
-    return ledger.rows("SELECT rowid, sha256, phash FROM files WHERE rowid > ? "
-                       "ORDER BY rowid", (rowid,))
+def files_after(ledger: Ledger, rowid: int, window_algo: str = "") -> list[tuple[Any, ...]]:
+    """(rowid, sha256, pHash or None, window hashes or None) of every files row after
+    ``rowid``, in order (window hashes only where made with ``window_algo``); plain tuples,
+    since a dict per row made a 1M-row rebuild take about 5 s."""
+    windows, params = _windows_column(ledger, window_algo)
+    return ledger.rows(f"SELECT rowid, sha256, phash, {windows} FROM files WHERE rowid > ? "
+                       "ORDER BY rowid", (*params, rowid))
 
 
 # --- how a licence is counted (status and the datasheet) -----------------------------------

@@ -356,6 +356,14 @@ def colour_facts_due(ledger: Ledger, after_rowid: int, last_rowid: int) -> set[s
     return _kept_between(ledger, after_rowid, last_rowid, "greyscale IS NULL")
 
 
+def windows_due(ledger: Ledger, after_rowid: int, last_rowid: int,
+                window_algo: str) -> set[str]:
+    """Files in the rowid range whose crop window hashes were made another way or never
+    (schema 12): ``window_algo`` is not ``window_algo``."""
+    return _kept_between(ledger, after_rowid, last_rowid, "window_algo IS NOT ?",
+                         (window_algo,))
+
+
 class NearVerdict(NamedTuple):
     """An item judged a near duplicate: its file (None when dropped) and the item and file it
     was judged a copy of."""
