@@ -12,7 +12,8 @@ import numpy as np
 import pytest
 from PIL import Image, ImageDraw
 
-from collector.checks.images import inspect_image, sniff_format
+from collector.checks.formats import sniff_format
+from collector.checks.images import inspect_image
 from collector.checks.phash import hamming, hash_image_file
 from collector.errors import ImageRejected
 

@@ -49,8 +49,8 @@ runner = CliRunner()
 OLD_ALGO = "dct-phash-64/draft-v1"  # the first pipeline's name (collector.checks.phash, v2 note)
 FACTS = ("phash", "phash_mirror", "hash_algo", "flags", "transparent_share", "native_width",
          "native_height", "greyscale", "brightness", "contrast", "colourfulness", "sharpness",
-         "background_share", "colours")
-NULLED = FACTS[4:]  # the columns of schemas 8 and 10: NULL in a ledger from before them
+         "background_share", "colours", "window_hashes", "window_algo")
+NULLED = FACTS[4:]  # the columns of schemas 8, 10 and 12: NULL in a ledger from before them
 SOURCE = ('\n[[sources]]\nname = "desk"\nkind = "scans"\npath = "in"\n'
           'include = ["*.png", "*.tif", "*.jpg"]\nlicence = "CC0-1.0"\n')
 
@@ -195,6 +195,7 @@ def test_remeasured_facts_equal_a_fresh_gather(remeasured) -> None:
     assert now["palette.png"]["transparent_share"] > 0
     assert now["photo.jpg"]["native_width"] is not None  # the JPEG path with enlarged = flag
     assert now["greyphoto.jpg"]["greyscale"] == 1 and now["photo.jpg"]["greyscale"] == 0
+    assert now["photo.jpg"]["window_hashes"] is not None  # crops findable again
     assert result.outcome == "finished" and result.measured == 6
     with col.ledger(readonly=True) as ledger:
         notes = ledger.rows("SELECT message FROM notes WHERE kind = 'remeasured'")
@@ -214,7 +215,7 @@ def test_withdrawn_and_lost_files_are_skipped_and_reported(remeasured) -> None:
     assert now["gone.png"]["hash_algo"] == OLD_ALGO
     counts = {name: (c.due, c.measured) for name, c in result.counts.items()}
     assert counts == {"perceptual hashes": (7, 6), "transparency and native size": (7, 6),
-                      "colour and tone facts": (7, 6)}
+                      "colour and tone facts": (7, 6), "crop window hashes": (7, 6)}
 
 
 def test_moved_hashes_are_listed_with_their_near_verdicts(remeasured) -> None:

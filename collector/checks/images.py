@@ -25,12 +25,12 @@ import warnings
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
-from urllib.parse import urlsplit
 
 from PIL import ExifTags, Image
 
 from collector.checks.colour_facts import WORK_SIDE, ColourFacts, colour_facts
 from collector.checks.embedded_metadata import read_exif, read_iptc, read_xmp
+from collector.checks.formats import FORMATS, describe_non_image, sniff_format, type_mismatch
 from collector.checks.phash import (
     HASH_ALGO,
     WINDOW_ALGO,
@@ -49,28 +49,7 @@ from collector.checks.pixel_facts import (
 from collector.checks.pixels import colour_ready
 from collector.errors import ImageRejected
 
-__all__ = ["FORMATS", "RIGHTS_KEYS", "ImageFacts", "inspect_image", "sniff_format"]
-
-# format -> (mime, canonical extension, other extensions)
-FORMATS: dict[str, tuple[str, str, tuple[str, ...]]] = {
-    "PNG": ("image/png", "png", ()),
-    "JPEG": ("image/jpeg", "jpg", ("jpeg", "jpe", "jfif")),
-    "GIF": ("image/gif", "gif", ()),
-    "WEBP": ("image/webp", "webp", ()),
-    "TIFF": ("image/tiff", "tif", ("tiff",)),
-    "BMP": ("image/bmp", "bmp", ("dib",)),
-}
-_MIME_ALIASES = {
-    "image/jpg": "image/jpeg",
-    "image/pjpeg": "image/jpeg",
-    "image/x-png": "image/png",
-    "image/x-ms-bmp": "image/bmp",
-    "image/x-bmp": "image/bmp",
-    "image/tif": "image/tiff",
-    "image/x-tiff": "image/tiff",
-}
-# Content types that say nothing about the format, so no mismatch is recorded.
-_GENERIC_TYPES = {"application/octet-stream", "binary/octet-stream", "application/unknown"}
+__all__ = ["RIGHTS_KEYS", "ImageFacts", "inspect_image"]
 
 RIGHTS_KEYS = (
     "exif_artist", "exif_copyright", "exif_description",
@@ -129,57 +108,6 @@ class ImageFacts:
             "window_hashes": pack_windows(self.window_hashes) if self.window_hashes else None,
             "window_algo": WINDOW_ALGO,  # measured (a blank picture has no windows)
         }
-
-
-# --- format detection (standards.md section 9) -------------------------------------------------
-def sniff_format(head: bytes) -> str | None:
-    """Image format named by the first bytes of a file, or None."""
-    if head.startswith(b"\x89PNG\r\n\x1a\n"):
-        return "PNG"
-    if head.startswith(b"\xff\xd8\xff"):
-        return "JPEG"
-    if head[:6] in (b"GIF87a", b"GIF89a"):
-        return "GIF"
-    if head[:4] == b"RIFF" and head[8:12] == b"WEBP":
-        return "WEBP"
-    if head[:4] in (b"II*\x00", b"MM\x00*"):  # TIFF 6.0 section 2; not "MM*\0"
-        return "TIFF"
-    if head[:2] == b"BM":
-        return "BMP"
-    return None
-
-
-def _describe_non_image(head: bytes) -> str:
-    text = head.lstrip(b"\xef\xbb\xbf \t\r\n").lower()
-    if text.startswith((b"<!doctype html", b"<html", b"<head", b"<body")):
-        return "the bytes are an HTML page"
-    if text.startswith((b"<?xml", b"<svg")):
-        return "the bytes are XML/SVG, not a raster image"
-    if text.startswith((b"{", b"[")):
-        return "the bytes look like JSON"
-    if not head:
-        return "the file is empty"
-    if all(32 <= b < 127 or b in (9, 10, 13) for b in head[:64]):
-        return "the bytes are plain text"
-    return f"unknown file signature {head[:8].hex(' ')}"
-
-
-def _type_mismatch(fmt: str, content_type: str | None, url: str | None) -> str | None:
-    mime, ext, other_exts = FORMATS[fmt]
-    problems = []
-    if content_type:
-        declared = content_type.split(";", 1)[0].strip().lower()
-        declared = _MIME_ALIASES.get(declared, declared)
-        if declared and declared not in _GENERIC_TYPES and declared != mime:
-            problems.append(f"content_type={declared}")
-    if url:
-        suffix = Path(urlsplit(url).path).suffix.lower().lstrip(".")
-        known = {e for _, e0, es in FORMATS.values() for e in (e0, *es)}
-        if suffix in known and suffix not in (ext, *other_exts):
-            problems.append(f"url_ext=.{suffix}")
-    if not problems:
-        return None
-    return f"bytes are {mime} but " + ", ".join(problems)
 
 
 # --- small helpers -----------------------------------------------------------------------------
@@ -346,7 +274,7 @@ def _identify(path: Path) -> tuple[bytes, str]:
         head = fh.read(64)
     fmt = sniff_format(head)
     if fmt is None:
-        raise ImageRejected("not_an_image", _describe_non_image(head))
+        raise ImageRejected("not_an_image", describe_non_image(head))
     return head, fmt
 
 
@@ -530,7 +458,7 @@ def inspect_image(
     path = Path(path)
     head, fmt = _identify(path)
     flags: list[str] = []
-    mismatch = _type_mismatch(fmt, content_type, url)
+    mismatch = type_mismatch(fmt, content_type, url)
     _mismatch_flag(mismatch, flags)
     with _open(path, max_pixels) as im:
         geo = _geometry(im, fmt, path)

@@ -36,7 +36,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
-from collector.checks.images import sniff_format
+from collector.checks.formats import sniff_format
 from collector.checks.licences import licence_allowed, licence_deed_url
 from collector.checks.likeness import Look, find_copies, look_at_file
 from collector.checks.rights_statements import STATEMENTS
