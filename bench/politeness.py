@@ -23,6 +23,7 @@ minutes.
 
 from __future__ import annotations
 
+import http.client
 import itertools
 import multiprocessing as mp
 import os
@@ -32,6 +33,9 @@ import time
 from multiprocessing.connection import Connection
 from pathlib import Path
 from typing import Any
+from urllib.parse import urlsplit
+
+import requests
 
 from collector.demo_site.loopback import LoopbackServer
 from collector.demo_site.requestlog import max_in_window  # the same window count the tests use
@@ -120,6 +124,52 @@ def _client(urls: list[str], per_host: int, interval: float, conn: Connection) -
     conn.send({"cpu": cpu, "wall": wall, "ledger_cpu": sum(spent), "growth": growth})
 
 
+def _library_alone(kind: str, url: str, count: int, interval: float, conn: Connection) -> None:
+    """Child process: ``count`` GETs of one host at the same pace with the HTTP library alone
+    (no robots.txt, budget, guard or ledger): the floor under the fetcher's CPU per request."""
+    parts = urlsplit(url)
+    session = requests.Session()
+    plain = http.client.HTTPConnection(parts.hostname or "", parts.port)
+
+    def get(path: str) -> None:
+        if kind == "requests":
+            session.get(url + path, timeout=10).close()
+        else:
+            plain.request("GET", path)
+            plain.getresponse().read()
+
+    get("/warm")  # the connection, as the fetcher's robots.txt request opens it
+    cpu = 0.0
+    for i in range(count):
+        time.sleep(interval)
+        t0 = time.process_time()
+        get(f"/item/{i}")
+        cpu += time.process_time() - t0
+    session.close()
+    plain.close()
+    conn.send(cpu)
+
+
+def library_floor(count: int, interval: float) -> dict[str, float]:
+    """CPU s per 1000 requests of requests.Session.get and http.client at one host's pace."""
+    parent, child = mp.Pipe()
+    servers = mp.Process(target=_serve, args=(["127.0.0.10"], child), daemon=True)
+    servers.start()
+    url = f"http://127.0.0.10:{parent.recv()[0]}"
+    out = {}
+    for kind in ("requests", "http.client"):
+        mine, theirs = mp.Pipe()
+        client = mp.Process(target=_library_alone, args=(kind, url, count, interval, theirs),
+                            daemon=True)
+        client.start()
+        out[kind] = 1000 * mine.recv() / count
+        client.join(10)
+    parent.send("stop")
+    parent.recv()
+    servers.join(5)
+    return out
+
+
 def run(hosts: int, per_host: int, interval: float) -> dict[str, Any]:
     budget = round(1 / interval)
     addresses = [f"127.0.0.{10 + i}" for i in range(hosts)]
@@ -181,6 +231,11 @@ def main() -> None:
               f"{r['worst']:>5}/{r['budget']:<4} {r['violations']:>10} {r['aggregate']:>9.1f} "
               f"{r['wall']:>6.1f} {r['cpu_per_1000']:>10.2f} {r['ledger_per_1000']:>6.2f} "
               f"{_memory(r)} {1000 * r['min_gap']:>10.1f} {r['strict']:>12}")
+    hosts, per_host, interval = PLAN[0]
+    floor = library_floor(per_host, interval)
+    print(f"the HTTP library alone at {hosts} host, the same pace, no robots.txt, budget or "
+          f"ledger: requests.Session.get {floor['requests']:.2f}, http.client "
+          f"{floor['http.client']:.2f} CPU s/1000")
 
 
 if __name__ == "__main__":
