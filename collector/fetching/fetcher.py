@@ -58,7 +58,7 @@ from collector.fetching.body import Body, exc_size, read_body
 from collector.fetching.budgets import SYSTEM_CLOCK, Budget, Clock, HostBudgets, budgets_from_recipe
 from collector.fetching.http_target import prepared_get, transport_target
 from collector.fetching.kept_pages import keep_answer, kept_answer
-from collector.fetching.retry import Retryable, retry_policy
+from collector.fetching.retry import Retryable, RetryPolicies
 from collector.fetching.robots import (
     MAX_ROBOTS_BYTES,
     MAX_ROBOTS_REDIRECTS,
@@ -208,6 +208,7 @@ class Fetcher:
         self.clock = clock
         self.run_id = run_id
         self.rng = rng or random.Random()
+        self._policies = RetryPolicies(settings.max_total_delay, self.rng, clock.sleep)
         self.budgets = HostBudgets(settings.budget, settings.host_budgets, clock=clock)
         self._allowed = parse_allow_list(settings.allow_addresses)
         self._own_session = session is None
@@ -356,8 +357,7 @@ class Fetcher:
                                  max_bytes, dest_dir, counter[0], final=counter[0] >= attempts,
                                  truncate=not retry)
 
-        retrying = retry_policy(attempts, self.settings.max_total_delay, budget, self.rng,
-                                self.clock.sleep)
+        retrying = self._policies.get(attempts, budget)
         try:
             return retrying(one)
         except Retryable as exc:
