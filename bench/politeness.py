@@ -1,29 +1,46 @@
 """Politeness bench: does the fetcher keep every host's budget, and how close does it get?
 
-For 1, 10 and 50 loopback hosts (one ThreadingHTTPServer per 127.0.0.x address, run in a child
-process so the client's CPU time is measured alone) the fetcher downloads a bounded number of
-small pages per host, one worker thread per host. The servers log server-side monotonic
-timestamps (CLOCK_MONOTONIC is system-wide on Linux, so they compare with the parent's).
+For 1, 10, 50 and 200 loopback hosts (one ThreadingHTTPServer per 127.0.0.x address) the
+fetcher downloads a bounded number of small pages per host, one worker thread per host, as a
+run's per-host workers do. The servers run in one child process and the client in another, so
+the client's CPU time and memory are its own: ``time.process_time`` of the client process (all
+its threads, user and system time) and its resident memory (``/proc/self/statm``, sampled every
+0.5 s; "-" where there is no /proc). The client writes a ``fetches`` row per request into a real
+ledger (a SQLite file in a temporary folder), as every run does; the CPU spent in those writes
+is shown on its own too. The servers log server-side monotonic timestamps (CLOCK_MONOTONIC is
+system-wide on Linux, so they compare across processes).
 
 Printed per row: the per-host budget, achieved per-host rate as % of budget, the worst 1 s
 window seen by any host against the budget, violations (hosts whose worst window, shortened by
 a 50 ms jitter tolerance, exceeds the budget), aggregate rate, client CPU seconds per 1000
-requests (time.process_time), the smallest gap between two arrivals at one host, and strict
-violations: hosts with a sliding 1.0 s window (no tolerance) over the budget or two arrivals
-closer than 0.98 x the interval. Targets: zero violations of either kind, >= 95 % of budget,
-aggregate rate growing with hosts. Whole run stays well under 2 minutes.
+requests and the part of it spent writing the ledger, the client's memory growth over the row
+and per host, the smallest gap between two arrivals at one host, and strict violations: hosts
+with a sliding 1.0 s window (no tolerance) over the budget or two arrivals closer than 0.98 x
+the interval. Targets: zero violations of either kind, >= 95 % of budget, CPU <= 1.0 s per
+1000 requests, memory per host flat in the number of hosts. Whole run stays well under 2
+minutes.
 """
 
 from __future__ import annotations
 
+import http.client
 import itertools
 import multiprocessing as mp
+import os
+import tempfile
 import threading
 import time
+from multiprocessing.connection import Connection
+from pathlib import Path
+from typing import Any
+from urllib.parse import urlsplit
+
+import requests
 
 from collector.demo_site.loopback import LoopbackServer
 from collector.demo_site.requestlog import max_in_window  # the same window count the tests use
 from collector.fetching.fetcher import Fetcher, FetchSettings
+from collector.storage.ledger import Ledger
 
 INTERVAL = 0.1  # s between request starts per host -> budget 10 requests/s
 TOLERANCE = 0.05  # s of arrival jitter allowed: half an interval, less than one request
@@ -31,9 +48,10 @@ TOLERANCE = 0.05  # s of arrival jitter allowed: half an interval, less than one
 # 2-core machine that also runs the 200 servers; they get 1 req/s each (still 200 req/s).
 PLAN = [(1, 60, INTERVAL), (10, 40, INTERVAL), (50, 20, INTERVAL), (200, 8, 1.0)]
 MIN_GAP_SHARE = 0.98  # strict: no two arrivals at one host closer than 0.98 x the interval
+PAGE = os.sysconf("SC_PAGE_SIZE") if hasattr(os, "sysconf") else 4096
 
 
-def _serve(addresses: list[str], conn: mp.connection.Connection) -> None:
+def _serve(addresses: list[str], conn: Connection) -> None:
     """Child process: one server per address; on request, send back the logs and stop."""
     servers = []
     for addr in addresses:
@@ -48,36 +66,126 @@ def _serve(addresses: list[str], conn: mp.connection.Connection) -> None:
     conn.send({a: [h.mono for h in s.hits] for a, s in zip(addresses, servers, strict=True)})
 
 
-def run(hosts: int, per_host: int, interval: float) -> dict[str, float]:
-    budget = round(1 / interval)
-    addresses = [f"127.0.0.{10 + i}" for i in range(hosts)]
-    parent, child = mp.Pipe()
-    proc = mp.Process(target=_serve, args=(addresses, child), daemon=True)
-    proc.start()
-    ports = parent.recv()
+def _rss() -> int | None:
+    """The resident memory of this process in bytes, or None without /proc."""
+    try:
+        with open("/proc/self/statm") as f:
+            return int(f.read().split()[1]) * PAGE
+    except OSError:
+        return None
+
+
+def _timed_writes(ledger: Ledger, spent: list[float]) -> None:
+    """Count the CPU time of this thread spent in each ``fetches`` write (thread_time)."""
+    write = ledger.record_fetch
+
+    def timed(**fields: Any) -> int:
+        t0 = time.thread_time()
+        try:
+            return write(**fields)
+        finally:
+            spent.append(time.thread_time() - t0)
+
+    ledger.record_fetch = timed  # type: ignore[method-assign]
+
+
+def _client(urls: list[str], per_host: int, interval: float, conn: Connection) -> None:
+    """Child process: the fetcher, one thread per host, a fresh ledger; sends back figures."""
     settings = FetchSettings.from_recipe({
         "contact": "bench@example.org",
         "budgets": {"min_interval": interval, "requests_per_hour": 1_000_000},
         "network": {"allow_addresses": ["127.0.0.0/8"]},
     })
-    fetcher = Fetcher(settings, None)
+    with tempfile.TemporaryDirectory() as folder:
+        ledger = Ledger.create(Path(folder) / "ledger.sqlite")
+        spent: list[float] = []
+        _timed_writes(ledger, spent)
+        fetcher = Fetcher(settings, ledger)
+
+        def worker(base: str) -> None:
+            for i in range(per_host):
+                fetcher.get_page(f"{base}/item/{i}")
+
+        rss0 = _rss()
+        peak = rss0
+        cpu0, wall0 = time.process_time(), time.monotonic()
+        threads = [threading.Thread(target=worker, args=(u,)) for u in urls]
+        for t in threads:
+            t.start()
+        for t in threads:
+            while t.is_alive():
+                t.join(0.5)
+                now = _rss()
+                peak = max(peak, now) if peak is not None and now is not None else None
+        cpu, wall = time.process_time() - cpu0, time.monotonic() - wall0
+        fetcher.close()
+        ledger.close()
+    growth = None if peak is None or rss0 is None else peak - rss0
+    conn.send({"cpu": cpu, "wall": wall, "ledger_cpu": sum(spent), "growth": growth})
+
+
+def _library_alone(kind: str, url: str, count: int, interval: float, conn: Connection) -> None:
+    """Child process: ``count`` GETs of one host at the same pace with the HTTP library alone
+    (no robots.txt, budget, guard or ledger): the floor under the fetcher's CPU per request."""
+    parts = urlsplit(url)
+    session = requests.Session()
+    plain = http.client.HTTPConnection(parts.hostname or "", parts.port)
+
+    def get(path: str) -> None:
+        if kind == "requests":
+            session.get(url + path, timeout=10).close()
+        else:
+            plain.request("GET", path)
+            plain.getresponse().read()
+
+    get("/warm")  # the connection, as the fetcher's robots.txt request opens it
+    cpu = 0.0
+    for i in range(count):
+        time.sleep(interval)
+        t0 = time.process_time()
+        get(f"/item/{i}")
+        cpu += time.process_time() - t0
+    session.close()
+    plain.close()
+    conn.send(cpu)
+
+
+def library_floor(count: int, interval: float) -> dict[str, float]:
+    """CPU s per 1000 requests of requests.Session.get and http.client at one host's pace."""
+    parent, child = mp.Pipe()
+    servers = mp.Process(target=_serve, args=(["127.0.0.10"], child), daemon=True)
+    servers.start()
+    url = f"http://127.0.0.10:{parent.recv()[0]}"
+    out = {}
+    for kind in ("requests", "http.client"):
+        mine, theirs = mp.Pipe()
+        client = mp.Process(target=_library_alone, args=(kind, url, count, interval, theirs),
+                            daemon=True)
+        client.start()
+        out[kind] = 1000 * mine.recv() / count
+        client.join(10)
+    parent.send("stop")
+    parent.recv()
+    servers.join(5)
+    return out
+
+
+def run(hosts: int, per_host: int, interval: float) -> dict[str, Any]:
+    budget = round(1 / interval)
+    addresses = [f"127.0.0.{10 + i}" for i in range(hosts)]
+    parent, child = mp.Pipe()
+    servers = mp.Process(target=_serve, args=(addresses, child), daemon=True)
+    servers.start()
+    ports = parent.recv()
     urls = [f"http://{a}:{p}" for a, p in zip(addresses, ports, strict=True)]
-
-    def worker(base: str) -> None:
-        for i in range(per_host):
-            fetcher.get_page(f"{base}/item/{i}")
-
-    cpu0, wall0 = time.process_time(), time.monotonic()
-    threads = [threading.Thread(target=worker, args=(u,)) for u in urls]
-    for t in threads:
-        t.start()
-    for t in threads:
-        t.join()
-    cpu, wall = time.process_time() - cpu0, time.monotonic() - wall0
-    fetcher.close()
+    mine, theirs = mp.Pipe()
+    client = mp.Process(target=_client, args=(urls, per_host, interval, theirs), daemon=True)
+    client.start()
+    figures = mine.recv()
+    client.join(10)
     parent.send("stop")
     logs = parent.recv()
-    proc.join(5)
+    servers.join(5)
     rates, worst, violations, strict, total = [], 0, 0, 0, 0
     gaps: list[float] = []
     for stamps in logs.values():
@@ -91,25 +199,43 @@ def run(hosts: int, per_host: int, interval: float) -> dict[str, float]:
         if (max_in_window(stamps, 1.0) > budget
                 or gaps[-1] < MIN_GAP_SHARE * interval):
             strict += 1
+    growth = figures["growth"]
     return {"hosts": hosts, "budget": budget, "requests": total,
             "achieved": 100 * min(rates) / budget,
             "mean": 100 * sum(rates) / len(rates) / budget, "worst": worst,
-            "violations": violations, "strict": strict, "aggregate": total / wall, "wall": wall,
-            "cpu_per_1000": 1000 * cpu / total, "min_gap": min(gaps)}
+            "violations": violations, "strict": strict, "aggregate": total / figures["wall"],
+            "wall": figures["wall"], "cpu_per_1000": 1000 * figures["cpu"] / total,
+            "ledger_per_1000": 1000 * figures["ledger_cpu"] / total,
+            "growth_mib": None if growth is None else growth / 2**20,
+            "kib_per_host": None if growth is None else growth / 1024 / hosts,
+            "min_gap": min(gaps)}
+
+
+def _memory(r: dict[str, Any]) -> str:
+    if r["growth_mib"] is None:
+        return f"{'-':>8} {'-':>8}"
+    return f"{r['growth_mib']:>8.1f} {r['kib_per_host']:>8.0f}"
 
 
 def main() -> None:
     print(f"jitter tolerance of the old count {TOLERANCE * 1000:.0f} ms; strict: sliding 1.0 s "
-          f"windows, arrivals >= {MIN_GAP_SHARE} x the interval apart")
+          f"windows, arrivals >= {MIN_GAP_SHARE} x the interval apart; client CPU and memory "
+          "measured in its own process")
     print(f"{'hosts':>5} {'requests':>8} {'achieved min/mean %':>20} {'worst 1 s':>10} "
           f"{'violations':>10} {'agg req/s':>9} {'wall s':>6} {'CPU s/1000':>10} "
-          f"{'min gap ms':>10} {'strict viol.':>12}")
+          f"{'ledger':>6} {'RSS +MiB':>8} {'KiB/host':>8} {'min gap ms':>10} "
+          f"{'strict viol.':>12}")
     for hosts, per_host, interval in PLAN:
         r = run(hosts, per_host, interval)
         print(f"{r['hosts']:>5} {r['requests']:>8} {r['achieved']:>9.1f} / {r['mean']:<8.1f} "
               f"{r['worst']:>5}/{r['budget']:<4} {r['violations']:>10} {r['aggregate']:>9.1f} "
-              f"{r['wall']:>6.1f} {r['cpu_per_1000']:>10.2f} {1000 * r['min_gap']:>10.1f} "
-              f"{r['strict']:>12}")
+              f"{r['wall']:>6.1f} {r['cpu_per_1000']:>10.2f} {r['ledger_per_1000']:>6.2f} "
+              f"{_memory(r)} {1000 * r['min_gap']:>10.1f} {r['strict']:>12}")
+    hosts, per_host, interval = PLAN[0]
+    floor = library_floor(per_host, interval)
+    print(f"the HTTP library alone at {hosts} host, the same pace, no robots.txt, budget or "
+          f"ledger: requests.Session.get {floor['requests']:.2f}, http.client "
+          f"{floor['http.client']:.2f} CPU s/1000")
 
 
 if __name__ == "__main__":

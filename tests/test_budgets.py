@@ -64,6 +64,29 @@ def test_bytes_per_hour_holds_the_next_start() -> None:
     assert budgets.next_allowed_at(H) <= t0 + 3600.0
 
 
+def test_bytes_counted_in_one_second_share_one_entry_and_never_leave_early() -> None:
+    """Chunks counted within a second share one entry of the bytes/hour log (10,000 chunks
+    over 100 s leave at most ~100 entries), and the hour runs from an entry's last bytes: the
+    next start is never earlier than counting byte by byte would allow (common practice, no
+    source: a sliding-hour byte budget)."""
+    clock = FakeClock()
+    budgets = make(clock, min_interval=0.0, bytes_per_hour=10_000_000)
+    for _ in range(10_000):
+        budgets.record_bytes(H, 100)
+        clock.advance(0.01)
+    log = budgets._state(H).byte_log
+    assert log is not None and len(log) <= 101
+    assert sum(n for _, _, n in log) == 1_000_000
+    tight = make(clock, min_interval=0.0, bytes_per_hour=1000)
+    tight.record_bytes(H, 600)
+    clock.advance(0.5)
+    tight.record_bytes(H, 400)
+    last = clock.monotonic()
+    assert tight.next_allowed_at(H) == pytest.approx(last + 3600.0)
+    clock.advance(3600.0)
+    assert tight.wait_time(H) == 0.0
+
+
 def test_crawl_delay_stricter_than_recipe_is_honoured() -> None:
     """Crawl-delay above the recipe interval wins (not RFC 9309; standards.md §2)."""
     clock = FakeClock()

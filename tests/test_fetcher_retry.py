@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import random
+import threading
 from pathlib import Path
 
 import pytest
@@ -12,8 +13,9 @@ from collector import urls
 from collector.config.recipe import parse_recipe
 from collector.errors import FetchError, HostParked
 from collector.fetching.answers import parse_http_date, parse_retry_after
-from collector.fetching.budgets import FakeClock
+from collector.fetching.budgets import Budget, FakeClock
 from collector.fetching.fetcher import Fetcher, FetchSettings
+from collector.fetching.retry import Retryable, RetryPolicies
 from collector.storage.ledger import Ledger
 
 # RFC 9110 §5.6.7 examples; all three forms are Unix 784111777 (standards.md §4).
@@ -180,3 +182,33 @@ secret_params = ["key"]
     assert (s.product_token, s.budget.min_interval, s.max_image_bytes) == ("fernbot", 2.0, 1000)
     assert s.host_budgets["127.0.0.2:8080"].min_interval == 0.5
     assert s.allow_addresses == ("127.0.0.2",) and s.secret_params == ("key",)
+
+
+def test_a_shared_retry_policy_counts_each_threads_attempts_apart() -> None:
+    """One policy serves every thread of the fetcher: two threads retrying at the same time
+    (both waiting between attempts together) each get exactly their own three attempts and
+    their own answer (tenacity keeps a call's state per thread)."""
+    both_waiting = threading.Barrier(2, timeout=10)
+    policies = RetryPolicies(900.0, random.Random(7), lambda s: both_waiting.wait())
+    budget = Budget(max_attempts=3, backoff_base=0.0)
+    policy = policies.get(3, budget)
+    assert policies.get(3, budget) is policy
+    calls: dict[str, int] = {"a": 0, "b": 0}
+    answers: dict[str, object] = {}
+
+    def work(name: str) -> None:
+        def attempt() -> str:
+            calls[name] += 1
+            if calls[name] < 3:
+                raise Retryable("connection", None, "refused")
+            return name
+
+        answers[name] = policy(attempt)
+
+    threads = [threading.Thread(target=work, args=(n,)) for n in calls]
+    for t in threads:
+        t.start()
+    for t in threads:
+        t.join(20)
+    assert calls == {"a": 3, "b": 3}
+    assert answers == {"a": "a", "b": "b"}

@@ -14,7 +14,7 @@ from hypothesis import strategies as st
 from requests.adapters import HTTPAdapter
 
 from collector.errors import UnsafeURL
-from collector.fetching.http_target import transport_target
+from collector.fetching.http_target import prepared_get, transport_target
 from collector.urls import split_checked
 
 ALLOWED = "127.0.0.51"
@@ -95,3 +95,26 @@ def test_an_approved_host_is_the_host_the_library_connects_to(authority: str) ->
     assert ledger_port == target.port
     assert ledger_host.encode("idna").decode().lower() == target.host or \
         ledger_host == target.host
+
+
+@pytest.mark.parametrize("url", [
+    f"http://{ALLOWED}:8651/x?q=1&r=%C3%A9",
+    f"http://user:pass@{ALLOWED}:8651/x",               # credentials in the URL: Basic auth
+    f"http://{ALLOWED}/caf\u00e9 bar",                  # the library quotes the path
+])
+def test_prepared_get_is_what_the_session_would_send(url: str) -> None:
+    """The fetcher's GET (prepared_get around the checked URL) is the request requests'
+    own Session.prepare_request makes of the same URL and headers: URL, every header (the
+    session's defaults under ours, its cookie for the host, Basic auth from the URL's
+    credentials, RFC 7617), body and hooks (the reference is requests itself)."""
+    session = requests.Session()
+    session.trust_env = False
+    session.cookies.set("visit", "1", domain=ALLOWED, path="/")
+    headers = {"User-Agent": "collector/test", "Accept-Encoding": "gzip", "X-Extra": "yes"}
+    expected = session.prepare_request(requests.Request("GET", url, headers=headers))
+    got = prepared_get(session, transport_target(url).url, headers)
+    assert (got.method, got.url, got.body) == (expected.method, expected.url, expected.body)
+    assert dict(got.headers) == dict(expected.headers)
+    if "@" not in url:  # (cookielib matches a host read with the credentials: no cookie)
+        assert got.headers["Cookie"] == "visit=1"
+    assert got.hooks == expected.hooks

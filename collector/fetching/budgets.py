@@ -35,6 +35,9 @@ from collector.fetching.robots import Hints
 HOUR = 3600.0
 # After a 429/503 the host's interval is doubled, up to this factor (common practice, no source).
 MAX_SLOWDOWN = 8.0
+# Bytes counted within this many seconds share one entry of the bytes/hour log (see
+# HostBudgets.record_bytes): an hour of a busy host is at most 3,600 entries, not one per chunk.
+BYTE_BUCKET = 1.0
 
 
 class Clock(Protocol):
@@ -113,7 +116,7 @@ class _HostState:
     last_start: float | None = None
     last_answer: float | None = None  # when the latest answer began to arrive (see module doc)
     starts: deque[float] | None = None
-    byte_log: deque[tuple[float, int]] | None = None
+    byte_log: deque[tuple[float, float, int]] | None = None  # (first, last stamp, bytes)
     byte_total: int = 0  # the sum of byte_log's counts, kept as entries come and go
     not_before: float = 0.0
     slowdown: float = 1.0
@@ -256,14 +259,15 @@ class HostBudgets:
             at = max(at, starts[0] + HOUR)
         log = state.byte_log
         if log:
-            while log and log[0][0] <= now - HOUR:
-                state.byte_total -= log.popleft()[1]
+            # An entry leaves the hour by its last stamp: its bytes never leave early.
+            while log and log[0][1] <= now - HOUR:
+                state.byte_total -= log.popleft()[2]
             total = state.byte_total  # a running sum: no walk over an hour of entries
             if total >= state.budget.bytes_per_hour:
-                for stamp, n in log:
+                for _, last, n in log:
                     total -= n
                     if total < state.budget.bytes_per_hour:
-                        at = max(at, stamp + HOUR)
+                        at = max(at, last + HOUR)
                         break
         if state.visit_window is not None:
             at = max(at, now)
@@ -324,13 +328,24 @@ class HostBudgets:
             state.last_answer = max(state.last_answer or at, at)
 
     def record_bytes(self, host: str, count: int) -> None:
-        """Count ``count`` response bytes against the host's bytes/hour budget."""
+        """Count ``count`` response bytes against the host's bytes/hour budget.
+
+        Bytes counted less than BYTE_BUCKET s after an entry began join it and move its last
+        stamp to now, so the log holds at most one entry a second (memory flat in the number
+        of chunks read) and the hour is counted from the last bytes of each entry: at most
+        BYTE_BUCKET s later than byte by byte, never earlier."""
         if count <= 0:
             return
         with self._lock:
             state = self._state_locked(host)
-            assert state.byte_log is not None
-            state.byte_log.append((self.clock.monotonic(), int(count)))
+            log = state.byte_log
+            assert log is not None
+            now = self.clock.monotonic()
+            if log and now - log[-1][0] < BYTE_BUCKET:
+                first, _, held = log[-1]
+                log[-1] = (first, now, held + int(count))
+            else:
+                log.append((now, now, int(count)))
             state.byte_total += int(count)
 
     def throttle(self, host: str, until: float | None = None, slow_down: bool = True) -> None:
