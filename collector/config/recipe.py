@@ -292,10 +292,18 @@ class Items:
     keep_if: str = _setting("", lambda v: _condition_problem(v) if v else None)
 
 
+@dataclass(frozen=True)
+class Datasheet:
+    """``[datasheet]``: when the datasheet's diversity panel warns (collector.exports.diversity):
+    near copies making up more than this share of the release."""
+
+    near_duplicate_warning: float = _setting(0.1, between(0, 1))
+
+
 SECTIONS: dict[str, type] = {
     "collection": CollectionInfo, "budgets": Budget, "network": Network,
     "licences": Licences, "images": Images, "stop": Stop, "items": Items,
-    "reservations": Reservations,
+    "reservations": Reservations, "datasheet": Datasheet,
 }
 SECTION_KEYS: dict[str, dict[str, Key]] = {
     name: section_keys(cls) for name, cls in SECTIONS.items()}
@@ -326,6 +334,7 @@ class Recipe:
     sources: list[dict[str, Any]] = field(default_factory=list)
     items: Items = field(default_factory=lambda: Items())
     reservations: Reservations = field(default_factory=Reservations)
+    datasheet: Datasheet = field(default_factory=Datasheet)
     text: str = field(default="", repr=False, compare=False)  # as read, for the ledger
 
     def budget_for(self, host: str) -> Budget:
@@ -342,7 +351,7 @@ class Recipe:
             "budgets.hosts": self.host_budgets, "network": asdict(self.network),
             "licences": asdict(self.licences), "images": asdict(self.images),
             "stop": asdict(self.stop), "items": asdict(self.items), "sources": self.sources,
-            "reservations": asdict(self.reservations),
+            "reservations": asdict(self.reservations), "datasheet": asdict(self.datasheet),
         }
 
     def shown_settings(self) -> dict[str, Any]:
@@ -510,7 +519,8 @@ def parse_recipe(text: str, path: Path, *, check_source_kinds: bool = True) -> R
         network=Network(**sections["network"]), licences=Licences(**sections["licences"]),
         images=Images(**sections["images"]), stop=Stop(**sections["stop"]),
         sources=source_list, items=Items(**sections["items"]),
-        reservations=Reservations(**sections["reservations"]), text=text)
+        reservations=Reservations(**sections["reservations"]),
+        datasheet=Datasheet(**sections["datasheet"]), text=text)
 
 
 def load_recipe(path: Path, *, check_source_kinds: bool = True) -> Recipe:

@@ -66,7 +66,8 @@ def _top(pairs: dict[str, int], n: int = 15) -> tuple[list[str], list[int]]:
 
 
 def render_plots(facts: DatasheetFacts) -> dict[str, str]:
-    """Inline SVG for each plot name in PLOT_TITLES ('' where there is nothing to draw)."""
+    """Inline SVG for each plot name in PLOT_TITLES and in the diversity panel's
+    PANEL_TITLES ('' where there is nothing to draw)."""
     out: dict[str, str] = dict.fromkeys(PLOT_TITLES, "")
     licences = facts["release"]["by_licence"]
     if licences:
@@ -79,6 +80,10 @@ def render_plots(facts: DatasheetFacts) -> dict[str, str]:
     timeline = facts["timeline"]
     if set(timeline["requests"]) | set(timeline["stored"]):
         out["timeline"] = _svg(_timeline_figure(timeline, facts["host_sources"]), "timeline")
+    if "diversity" in facts:  # the diversity panel's own plots, drawn beside its tables
+        from collector.exports.diversity_plots import render_panel_plots
+
+        out.update(render_panel_plots(facts["diversity"]))
     return out
 
 
