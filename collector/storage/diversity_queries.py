@@ -68,17 +68,23 @@ def _bucket(expr: str, edges: tuple[float, ...]) -> tuple[str, tuple[float, ...]
 
 def _file_counts(ledger: Ledger, pixel_edges: tuple[float, ...],
                  aspect_edges: tuple[float, ...]) -> dict[str, dict[str, int]]:
-    """Files per source, creator, licence, date text, megapixel and aspect bin, and in all
-    (key ""), in one pass over the release (a MATERIALIZED CTE read by each grouping)."""
+    """Files per source, creator, licence, date text, megapixel and aspect bin, in all
+    (``all``), and greyscale and with colour facts (``colour``), in one pass over the release
+    (a MATERIALIZED CTE read by each grouping)."""
+    measured = "colours" in ledger.columns("files")
     pixels, p_params = _bucket("w * h", tuple(e * 1e6 for e in pixel_edges))
     aspect, a_params = _bucket("(1.0 * w) / h", aspect_edges)
     sized = "WHERE w > 0 AND h > 0"
     out: dict[str, dict[str, int]] = {}
     for kind, key, n in ledger.rows(
-            "WITH r(src, cr, lic, dt, w, h) AS MATERIALIZED (SELECT s.name, "
+            "WITH r(src, cr, lic, dt, w, h, g, m) AS MATERIALIZED (SELECT s.name, "
             f"coalesce(trim(i.creator), ''), {_licence_key(ledger)}, "
-            f"coalesce(trim(i.date), ''), f.width, f.height {_release_from(ledger)}) "
+            "coalesce(trim(i.date), ''), f.width, f.height, "
+            f"{'f.greyscale, f.colours IS NOT NULL' if measured else 'NULL, 0'} "
+            f"{_release_from(ledger)}) "
             "SELECT 'all', '', count(*) FROM r "
+            "UNION ALL SELECT 'colour', 'greyscale', coalesce(sum(g = 1), 0) FROM r "
+            "UNION ALL SELECT 'colour', 'measured', coalesce(sum(m), 0) FROM r "
             "UNION ALL SELECT 'source', src, count(*) FROM r GROUP BY 2 "
             "UNION ALL SELECT 'creator', cr, count(*) FROM r GROUP BY 2 "
             "UNION ALL SELECT 'licence', lic, count(*) FROM r GROUP BY 2 "
@@ -99,16 +105,17 @@ def _ordered(counts: dict[str, int]) -> dict[str, int]:
 
 
 def _colour_counts(ledger: Ledger, grey_chroma: float, lightness_edges: tuple[float, ...],
-                   chroma_edges: tuple[float, ...], max_files: int) -> ColourCounts:
+                   chroma_edges: tuple[float, ...], max_files: int, files: dict[str, int]
+                   ) -> ColourCounts:
     """Hues of the coloured clusters of non-greyscale files, the grey clusters' weight, the
     (lightness, chroma) grid of every cluster. SQLite reads JSON at about 1 us a value, so
     beyond ``max_files`` measured files only every ``step``-th one (by rowid, spread over
-    the whole collection) is read: a distribution, not a count."""
-    if "colours" not in ledger.columns("files"):
-        return ColourCounts([], 0.0, [], 0, 0, 0)
+    the whole collection) is read: a distribution, not a count. ``files``: the greyscale
+    and measured files :func:`_file_counts` counted."""
+    greyscale, measured = files.get("greyscale", 0), files.get("measured", 0)
+    if not measured:
+        return ColourCounts([], 0.0, [], greyscale, measured, 0)
     where = _release_from(ledger)
-    greyscale, measured = (int(v or 0) for v in ledger.rows(
-        f"SELECT sum(f.greyscale = 1), count(f.colours) {where}")[0])
     step = max(1, -(-measured // max(1, max_files)))
     each = where.replace(
         "FROM files f", "FROM files f, json_each(CASE WHEN json_valid(f.colours) "
@@ -170,7 +177,7 @@ def panel_counts(ledger: Ledger, *, grey_chroma: float, lightness_edges: tuple[f
         by_licence=_ordered(counts.get("licence", {})),
         by_date=_ordered(counts.get("date", {})),
         colours=_colour_counts(ledger, grey_chroma, lightness_edges, chroma_edges,
-                               max_colour_files),
+                               max_colour_files, counts["colour"]),
         pixels=_histogram(counts.get("pixels", {}), len(pixel_edges) + 1),
         aspect=_histogram(counts.get("aspect", {}), len(aspect_edges) + 1),
         near=_near_clusters(ledger))
