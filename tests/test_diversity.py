@@ -178,6 +178,8 @@ def test_warnings_follow_the_recipe_threshold_and_set_aside_files(coll: Path,
     assert "Warning: One source, scanner-by, holds 6 of the 10 files" in md
     assert "Warning: One creator, Fernhollow Field Society, holds 6 of the 10 files" in md
     assert "Warning: Near duplicates" not in md
+    caution = md.split("> **Caution**")[1].split("\n\n")[0]  # also in the caution box
+    assert "> - One source, scanner-by, holds 6 of the 10 files" in caution
     recipe = coll / "recipe.toml"
     text = recipe.read_text()
     try:

@@ -469,6 +469,9 @@ def cautions(facts: DatasheetFacts) -> list[str]:
         out.append("robots.txt permission is not the same as permission under a site's terms "
                    "of use; read each archive's terms.")
         out.append(RESERVATIONS_CAUTION)
+    if "diversity" in facts:  # lopsided releases: the panel's warnings, also up here
+        out += [f"{w} See the diversity panel (composition.diversity)."
+                for w in facts["diversity"]["warnings"]]
     return out
 
 
