@@ -216,3 +216,36 @@ def test_colours_of_large_releases_are_read_from_an_even_sample(
     assert sum(d["lightness"]) == pytest.approx(10, abs=0.01)
     assert sum(d["chroma"]) == pytest.approx(10, abs=0.01)
     assert np.isfinite(d["hues"]).all() and sum(d["hues"]) > 0
+
+
+def test_near_copies_group_under_the_original_their_chain_leads_to(tmp_path: Path) -> None:
+    """A near copy of an item that was itself later demoted to a near copy (ingest's
+    take-over: its duplicate_of set) belongs to the first item's group: originals A and E,
+    B -> A, C -> A (demoted), D -> C, F -> E gives 2 groups, the largest A+B+C+D = 4 files,
+    4 near copies (the grouping rule of collector.run.dedup; no outside source)."""
+    from collector.storage import diversity_queries
+
+    with Ledger.create(tmp_path / "ledger.sqlite") as ledger:
+        source = ledger.source_id("desk", "scans", {})
+        ids: dict[str, int] = {}
+        for n, (key, state, up) in enumerate([("A", "stored", None), ("B", "near_duplicate", "A"),
+                                              ("C", "near_duplicate", "A"),
+                                              ("D", "near_duplicate", "C"),
+                                              ("E", "stored", None),
+                                              ("F", "near_duplicate", "E")]):
+            ids[key] = item = ledger.add_item(source, key, {})
+            sha = f"{n:064x}"
+            ledger.add_file({"sha256": sha, "size": 1, "ext": "png", "width": 4, "height": 2,
+                             "first_item_id": item})
+            ledger.update_item(item, state=state, file_sha256=sha,
+                               duplicate_of=ids[up] if up else None)
+        assert diversity_queries._near_clusters(ledger) == (2, 4, 4)
+        d = dv.panel_from_ledger(ledger, 0.5)
+    assert d["near"] == {"clusters": 2, "largest": 4, "files": 4} and d["files"] == 6
+    assert d["warnings"] == [
+        "One source, desk, holds 6 of the 6 files of this release (100 %), more than half: a "
+        "model trained on it will lean towards this source.",
+        "Near duplicates make up 4 of the 6 files of this release (67 %), more than the "
+        "recipe's [datasheet] near_duplicate_warning of 50 %: repeated pictures weigh more in "
+        "training than single ones."]
+    assert d["measured_files"] == 0 and sum(d["hues"]) == 0  # no colour facts: nothing drawn

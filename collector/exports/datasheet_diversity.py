@@ -100,6 +100,8 @@ def _colour_words(d: DiversityFacts) -> str:
 def panel_blocks(f: DatasheetFacts) -> list[Block]:
     """The panel: warnings first, then each measure with its table (and plot in HTML)."""
     d = f["diversity"]
+    if not d["files"]:
+        return [("p", "This release holds no files yet: the panel has nothing to show.")]
     near = d["near"]
     warn: list[Block] = [("p", f"Warning: {w}") for w in d["warnings"]] or [
         ("p", "No warning: no creator or source holds more than half of the release, and near "
