@@ -17,8 +17,10 @@ ROOT = Path(__file__).resolve().parent.parent
 # Reads are split by what they serve (status and trace; the datasheet and release; upkeep), so
 # each module stays small; every one runs its SQL through the ledger's read helpers.
 SQL_HOMES = {"collector/storage/ledger.py", "collector/storage/queries.py",
-             "collector/storage/datasheet_queries.py", "collector/storage/upkeep_queries.py",
-             "collector/storage/diversity_queries.py"}
+             "collector/storage/datasheet_queries.py", "collector/storage/upkeep_queries.py"}
+
+# The datasheet's diversity panel reads through its own module (collector.exports.diversity).
+SQL_HOMES.add("collector/storage/diversity_queries.py")
 
 # Upper-case SQL, as this project writes it: a statement anywhere in a string, or a string
 # that starts with a clause (a fragment joined into a statement elsewhere).

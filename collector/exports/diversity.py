@@ -51,7 +51,7 @@ __all__ = [
 HUE_WIDTH = 30  # degrees per bin; the bin edges (15, 45, ...) are whole degrees
 HUE_BINS = 360 // HUE_WIDTH
 # The twelve hues of the RGB colour wheel at 30-degree steps (common practice, no source).
-HUE_NAMES = ("red", "orange", "yellow", "chartreuse", "green", "spring green", "cyan",
+HUE_NAMES = ("red", "orange", "yellow", "yellow-green", "green", "spring green", "cyan",
              "azure", "blue", "violet", "magenta", "rose")
 MAX_SPAN_YEARS = 20  # a wider date range is not given a decade (our rule, see above)
 WIDE_RANGE = f"range wider than {MAX_SPAN_YEARS} years"
