@@ -1,9 +1,11 @@
 """Datasheet export speed and memory on synthetic ledgers (10,000 and 100,000 items).
 
 Target: 100,000 items export in <= 10 s with flat memory (rows are streamed from SQLite; all
-aggregation is SQL). Each size runs in a fresh subprocess so peak RSS belongs to that size:
-the ledger is written first (not timed), then the export is timed, then repeated under
-tracemalloc for the Python heap peak. Prints a table.
+aggregation is SQL). The files carry colour facts (five dominant colours each, a tenth of them
+greyscale) and the items archive-style dates and near-duplicate links, so the datasheet's
+diversity panel is measured with real work to do. Each size runs in a fresh subprocess so peak
+RSS belongs to that size: the ledger is written first (not timed), then the export is timed,
+then repeated under tracemalloc for the Python heap peak. Prints a table.
 """
 
 from __future__ import annotations
