@@ -47,8 +47,10 @@ def _shares_figure(d: DiversityFacts) -> Any:
     from matplotlib.figure import Figure
 
     fig = Figure(figsize=(7.2, 5.6))
-    # Room between the panels for the long y labels (a layout engine costs a second draw).
-    axes = fig.subplots(2, 2, gridspec_kw={"wspace": 0.9, "hspace": 0.35})
+    # Fixed room for the y labels (28 characters at most): a layout engine or a tight box
+    # would cost another draw.
+    fig.subplots_adjust(left=0.22, right=0.98, top=0.95, bottom=0.06)
+    axes = fig.subplots(2, 2, gridspec_kw={"wspace": 0.95, "hspace": 0.35})
     for ax, rows, title, colour in zip(
             axes.flat, (d["by_source"], d["by_creator"], d["by_licence"], d["by_decade"]),
             ("source (% of files)", "creator (% of files)", "licence (% of files)",
@@ -68,6 +70,7 @@ def _hue_figure(d: DiversityFacts) -> Any:
     from matplotlib.figure import Figure
 
     fig = Figure(figsize=(4.6, 4.6))
+    fig.subplots_adjust(left=0.1, right=0.9, top=0.86, bottom=0.06)
     ax = fig.add_subplot(projection="polar")
     width = math.radians(dv.HUE_WIDTH)
     angles = [math.radians(i * dv.HUE_WIDTH) for i in range(dv.HUE_BINS)]
@@ -85,6 +88,7 @@ def _bars_figure(left: tuple[str, list[str], list[float], str],
     from matplotlib.figure import Figure
 
     fig = Figure(figsize=(7.2, 3.0))
+    fig.subplots_adjust(left=0.07, right=0.99, top=0.9, bottom=0.3)
     for ax, (title, labels, values, colour) in zip(
             fig.subplots(1, 2, gridspec_kw={"wspace": 0.25}), (left, right), strict=True):
         pos = list(range(len(values)))
@@ -101,18 +105,18 @@ def render_panel_plots(d: DiversityFacts) -> dict[str, str]:
     out = dict.fromkeys(PANEL_TITLES, "")
     if not d["files"]:
         return out
-    out["div-shares"] = _svg(_shares_figure(d), "div-shares")
+    out["div-shares"] = _svg(_shares_figure(d), "div-shares", tight=False)
     if sum(d["hues"]):
-        out["div-hues"] = _svg(_hue_figure(d), "div-hues")
+        out["div-hues"] = _svg(_hue_figure(d), "div-hues", tight=False)
     if sum(d["lightness"]):
         out["div-tones"] = _svg(_bars_figure(
             ("lightness L* (pictures' worth)", dv.bin_labels(dv.LIGHTNESS_EDGES),
              d["lightness"], "#777777"),
             ("chroma C*ab (pictures' worth)", dv.bin_labels(dv.CHROMA_EDGES), d["chroma"],
-             "#dd8452")), "div-tones")
+             "#dd8452")), "div-tones", tight=False)
     out["div-sizes"] = _svg(_bars_figure(
         ("size (files)", dv.bin_labels(dv.PIXEL_EDGES, " MP"), [float(n) for n in d["pixels"]],
          "#4c72b0"),
         ("aspect, width / height (files)", dv.bin_labels(dv.ASPECT_EDGES),
-         [float(n) for n in d["aspect"]], "#55a868")), "div-sizes")
+         [float(n) for n in d["aspect"]], "#55a868")), "div-sizes", tight=False)
     return out

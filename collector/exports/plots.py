@@ -25,13 +25,16 @@ PLOT_TITLES = {
 MAX_LANES = 8  # hosts drawn in their own lane; the rest share one
 
 
-def _svg(fig: Any, salt: str) -> str:
+def _svg(fig: Any, salt: str, *, tight: bool = True) -> str:
+    """The figure as inline SVG; ``tight=False`` keeps the figure's own margins (one draw
+    less: the tight box is found by drawing first)."""
     import matplotlib
 
     buf = io.StringIO()
     # A per-plot salt keeps the SVG element ids of several inline plots distinct in one page.
     with matplotlib.rc_context({"svg.hashsalt": salt, "svg.fonttype": "path"}):
-        fig.savefig(buf, format="svg", bbox_inches="tight", metadata={"Date": None})
+        fig.savefig(buf, format="svg", bbox_inches="tight" if tight else None,
+                    metadata={"Date": None})
     text = buf.getvalue()
     text = text[text.index("<svg"):]
     # Glyph and clip-path ids repeat across plots (DejaVuSans-31 in each): prefix every id and
