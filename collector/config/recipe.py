@@ -334,8 +334,8 @@ class Recipe:
     sources: list[dict[str, Any]] = field(default_factory=list)
     items: Items = field(default_factory=lambda: Items())
     reservations: Reservations = field(default_factory=Reservations)
-    datasheet: Datasheet = field(default_factory=Datasheet)
     text: str = field(default="", repr=False, compare=False)  # as read, for the ledger
+    datasheet: Datasheet = field(default_factory=Datasheet)
 
     def budget_for(self, host: str) -> Budget:
         """The budget in force for ``host`` (``host`` or ``host:port``): defaults + override."""
@@ -350,8 +350,9 @@ class Recipe:
             "collection": asdict(self.collection), "budgets": asdict(self.budgets),
             "budgets.hosts": self.host_budgets, "network": asdict(self.network),
             "licences": asdict(self.licences), "images": asdict(self.images),
+            "datasheet": asdict(self.datasheet),
             "stop": asdict(self.stop), "items": asdict(self.items), "sources": self.sources,
-            "reservations": asdict(self.reservations), "datasheet": asdict(self.datasheet),
+            "reservations": asdict(self.reservations),
         }
 
     def shown_settings(self) -> dict[str, Any]:
@@ -517,10 +518,10 @@ def parse_recipe(text: str, path: Path, *, check_source_kinds: bool = True) -> R
         collection=CollectionInfo(**sections["collection"]),
         budgets=Budget(**sections["budgets"]), host_budgets=host_budgets,
         network=Network(**sections["network"]), licences=Licences(**sections["licences"]),
+        datasheet=Datasheet(**sections["datasheet"]),
         images=Images(**sections["images"]), stop=Stop(**sections["stop"]),
         sources=source_list, items=Items(**sections["items"]),
-        reservations=Reservations(**sections["reservations"]),
-        datasheet=Datasheet(**sections["datasheet"]), text=text)
+        reservations=Reservations(**sections["reservations"]), text=text)
 
 
 def load_recipe(path: Path, *, check_source_kinds: bool = True) -> Recipe:
