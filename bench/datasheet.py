@@ -1,9 +1,11 @@
 """Datasheet export speed and memory on synthetic ledgers (10,000 and 100,000 items).
 
 Target: 100,000 items export in <= 10 s with flat memory (rows are streamed from SQLite; all
-aggregation is SQL). Each size runs in a fresh subprocess so peak RSS belongs to that size:
-the ledger is written first (not timed), then the export is timed, then repeated under
-tracemalloc for the Python heap peak. Prints a table.
+aggregation is SQL). The files carry colour facts (five dominant colours each, a tenth of them
+greyscale) and the items archive-style dates and near-duplicate links, so the datasheet's
+diversity panel is measured with real work to do. Each size runs in a fresh subprocess so peak
+RSS belongs to that size: the ledger is written first (not timed), then the export is timed,
+then repeated under tracemalloc for the Python heap peak. Prints a table.
 """
 
 from __future__ import annotations
@@ -24,6 +26,20 @@ HOSTS = [f"img{n}.fernhollow.example:443" for n in range(12)]
 LICENCES = ["CC-BY-4.0", "CC0-1.0", "CC-BY-SA-4.0", "CC-BY-NC-4.0", None]
 STATES = ["stored"] * 80 + ["duplicate"] * 6 + ["near_duplicate"] * 4 + ["failed"] * 4 + \
          ["skipped"] * 4 + ["rejected"] * 2
+
+
+# Item dates as archives write them (collector.checks.dates), filled with a year.
+DATES = ["{}", "c. {}", "{}-03-14", "{}s", "", "19th century", "{}?"]
+
+
+def colours(rng: random.Random) -> str:
+    """Five dominant colours as ingest writes them (files.colours, schema 10)."""
+    shares = sorted((rng.random() for _ in range(5)), reverse=True)
+    total = sum(shares)
+    return json.dumps([{"lab": [round(rng.uniform(0, 100), 2), round(rng.uniform(-80, 80), 2),
+                                round(rng.uniform(-80, 80), 2)],
+                        "share": round(x / total, 4), "hex": "#808080",
+                        "hue": round(rng.uniform(0, 360), 1)} for x in shares])
 
 
 def build(root: Path, n: int) -> None:
@@ -53,21 +69,26 @@ def build(root: Path, n: int) -> None:
         has_file = state in ("stored", "near_duplicate", "duplicate")
         items.append((i, 1, f"k{i}", f"https://{host}/img/{i}.jpg", f"https://{host}/item/{i}",
                       f"Leaf {i}", f"Member {i % 97}", spdx or "see page", spdx, state,
-                      None if state in ("stored",) else state, sha if has_file else None, 1, t, t))
+                      None if state in ("stored",) else state, sha if has_file else None, 1, t, t,
+                      DATES[i % len(DATES)].format(1800 + i % 200),
+                      max(1, i - 1 - i % 7) if state == "near_duplicate" else None))
         fetches.append((1, i, "image", f"https://{host}/img/{i}.jpg", host,
                         429 if i % 500 == 0 else 200, 50_000, t, t, 3.0, 1, "allowed"))
         if state in ("stored", "near_duplicate"):
             flags = '["gps"]' if i % 250 == 0 else "[]"
             files.append((sha, 50_000, "jpg", "JPEG", "image/jpeg", 400 + i % 1600,
-                          300 + (i * 7) % 1200, "RGB", i, t, flags))
+                          300 + (i * 7) % 1200, "RGB", i, t, flags, int(i % 10 == 0),
+                          colours(rng)))
     conn.executemany("INSERT INTO items (id, source_id, source_key, image_url, page_url, title, "
                      "creator, licence_raw, spdx_id, state, reason, file_sha256, run_id, "
-                     "created_at, updated_at) VALUES (?,?,?,?,?,?,?,?,?,?,?,?,?,?,?)", items)
+                     "created_at, updated_at, date, duplicate_of) "
+                     "VALUES (?,?,?,?,?,?,?,?,?,?,?,?,?,?,?,?,?)", items)
     conn.executemany("INSERT INTO fetches (run_id, item_id, purpose, url, host, status, bytes, "
                      "started_at, ended_at, waited_s, attempt, robots_verdict) "
                      "VALUES (?,?,?,?,?,?,?,?,?,?,?,?)", fetches)
     conn.executemany("INSERT INTO files (sha256, size, ext, format, mime, width, height, mode, "
-                     "first_item_id, stored_at, flags) VALUES (?,?,?,?,?,?,?,?,?,?,?)", files)
+                     "first_item_id, stored_at, flags, greyscale, colours) "
+                 "VALUES (?,?,?,?,?,?,?,?,?,?,?,?,?)", files)
     conn.commit()
     conn.close()
     # One placeholder in the store: a ledger of stored files beside an empty files/ folder

@@ -26,6 +26,7 @@ from collector.exports import datasheet_questions as dq
 from collector.exports.datasheet import export_datasheet
 from collector.exports.datasheet_questions import QUESTIONS, parse_answers
 from collector.exports.datasheet_render import FACTS
+from collector.exports.diversity_plots import PANEL_TITLES
 from collector.exports.release import readable_name
 
 FACT_IDS = set(FACTS)
@@ -230,14 +231,15 @@ def test_answers_template_lists_keys_that_parse_back() -> None:
     assert parse_answers("\n".join(f'{k} = "2026-05-01"' for k in keys)).keys() == set(keys)
 
 
-def test_html_is_self_contained_escaped_and_has_four_plots(export: ds.ExportResult) -> None:
-    """The HTML escapes server text, loads nothing from outside, has 4 SVG plots and print CSS."""
+def test_html_is_self_contained_escaped_and_has_its_plots(export: ds.ExportResult) -> None:
+    """The HTML escapes server text, loads nothing from outside, has 4 SVG plots at a glance and
+    the diversity panel's, and print CSS."""
     page = (export.out / "datasheet.html").read_text()
     assert "<script" not in page.lower()
     assert "alert(1)</script>" not in page
     assert not re.search(r"""(src|href)\s*=\s*["']?(https?:)?//""", page)
     assert "@import" not in page and "<link" not in page
-    assert page.count("<svg") == 4
+    assert page.count("<svg") == 4 + len(PANEL_TITLES)  # At a glance + the diversity panel
     assert "@media print" in page
     for caution in ("not legal advice", "personal data", "terms of use"):
         assert caution in page

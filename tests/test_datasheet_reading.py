@@ -18,6 +18,7 @@ from collector.exports import datasheet as ds
 from collector.exports import plots
 from collector.exports.datasheet import export_datasheet
 from collector.exports.datasheet_render import TABLES, in_words, render_html, render_markdown
+from collector.exports.diversity_plots import PANEL_TITLES
 
 
 @pytest.fixture(scope="module")
@@ -70,7 +71,7 @@ def test_contents_links_resolve_and_ids_are_unique(export: ds.ExportResult) -> N
     html = (export.out / "datasheet.html").read_text()
     page = _parsed(render_html(export.facts, {}, plots.render_plots(export.facts)))
     assert page.ids == _parsed(html).ids  # the export's page is this one
-    assert html.count("<svg") == 4 and len(page.ids) == len(set(page.ids))
+    assert html.count("<svg") == 4 + len(PANEL_TITLES) and len(page.ids) == len(set(page.ids))
     assert page.links and set(page.links) <= set(page.ids)
     md = (export.out / "datasheet.md").read_text()
     anchors = set(re.findall(r'<a id="([^"]+)"></a>', md))

@@ -5,6 +5,7 @@ from __future__ import annotations
 from pathlib import Path
 
 import pytest
+from support.browser import assert_opens_without_console_errors, needs_chromium
 from typer.testing import CliRunner
 
 from collector.cli import app
@@ -59,3 +60,27 @@ def test_demo_help_has_an_example() -> None:
     """`collector demo --help` explains the demo and shows an example."""
     result = CliRunner().invoke(app, ["demo", "--help"])
     assert result.exit_code == 0 and "Example: collector demo --fresh" in result.output
+
+
+def test_demo_datasheet_has_the_diversity_panel(demo_result) -> None:
+    """The demo's datasheet shows the diversity panel: in the HTML with its plots (the hue
+    wheel among them) and tables, in the Markdown as tables, with the effective numbers
+    named after their source (Hill 1973)."""
+    html = (demo_result.datasheet_dir / "datasheet.html").read_text(encoding="utf-8")
+    md = (demo_result.datasheet_dir / "datasheet.md").read_text(encoding="utf-8")
+    for plot in ("div-shares", "div-hues", "div-tones", "div-sizes"):
+        assert f'<figure class="panel" id="plot-{plot}">' in html, plot
+    for table in ("t-div-sources", "t-div-creators", "t-div-licences", "t-div-decades",
+                  "t-div-effective", "t-div-hues", "t-div-tones", "t-div-sizes", "t-div-near"):
+        assert f'<table id="{table}">' in html and f'<a id="{table}"></a>' in md, table
+    for page in (html, md):
+        assert "composition.diversity" in page and "Hill numbers (M. O. Hill" in page
+    assert "<svg" not in md and "| 0° red (345–15°) |" in md
+
+
+@needs_chromium
+def test_demo_datasheet_opens_in_headless_chromium(demo_result, tmp_path: Path) -> None:
+    """The demo's datasheet, diversity panel included, renders in headless Chromium with no
+    console error."""
+    assert_opens_without_console_errors(demo_result.datasheet_dir / "datasheet.html",
+                                        tmp_path / "demo.png")

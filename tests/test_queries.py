@@ -18,7 +18,7 @@ from typing import Any
 import pytest
 
 from collector.errors import LedgerError, LedgerUnusable
-from collector.storage import datasheet_queries, queries
+from collector.storage import datasheet_queries, diversity_queries, queries
 from collector.storage.ledger import Ledger
 
 # A sample value for every parameter name a query takes (besides the ledger).
@@ -26,11 +26,14 @@ SAMPLE_ARGS: dict[str, Any] = {
     "sha256": "ab" * 32, "item_id": 1, "rowid": 1, "step": 8, "width": 10,
     "personal": ("gps", "camera_serial"), "conflict": "licence_conflict", "limit": 1,
     "reasons": ("tdmrep_reserved", "noai_directive"), "url": "http://127.0.0.9/info.json",
+    # the diversity panel's bins (collector.exports.diversity)
+    "grey_chroma": 6.0, "lightness_edges": (50,), "chroma_edges": (6, 30),
+    "pixel_edges": (0.1, 1), "aspect_edges": (1,), "max_colour_files": 10,
 }
 
-# The read modules: status/trace/hash index, and the datasheet and release.
+# The read modules: status/trace/hash index, the datasheet and release, its diversity panel.
 QUERY_MODULES = {module.__name__.rsplit(".", 1)[1]: module
-                 for module in (queries, datasheet_queries)}
+                 for module in (queries, datasheet_queries, diversity_queries)}
 PUBLIC_QUERIES = sorted(
     f"{short}.{name}" for short, module in QUERY_MODULES.items()
     for name, fn in inspect.getmembers(module, inspect.isfunction)

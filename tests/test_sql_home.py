@@ -20,6 +20,9 @@ SQL_HOMES = {"collector/storage/ledger.py", "collector/storage/queries.py",
              "collector/storage/datasheet_queries.py", "collector/storage/upkeep_queries.py",
              "collector/storage/review_queries.py"}
 
+# The datasheet's diversity panel reads through its own module (collector.exports.diversity).
+SQL_HOMES.add("collector/storage/diversity_queries.py")
+
 # Upper-case SQL, as this project writes it: a statement anywhere in a string, or a string
 # that starts with a clause (a fragment joined into a statement elsewhere).
 _STATEMENT = re.compile(

@@ -292,10 +292,18 @@ class Items:
     keep_if: str = _setting("", lambda v: _condition_problem(v) if v else None)
 
 
+@dataclass(frozen=True)
+class Datasheet:
+    """``[datasheet]``: when the datasheet's diversity panel warns (collector.exports.diversity):
+    near copies making up more than this share of the release."""
+
+    near_duplicate_warning: float = _setting(0.1, between(0, 1))
+
+
 SECTIONS: dict[str, type] = {
     "collection": CollectionInfo, "budgets": Budget, "network": Network,
     "licences": Licences, "images": Images, "stop": Stop, "items": Items,
-    "reservations": Reservations,
+    "reservations": Reservations, "datasheet": Datasheet,
 }
 SECTION_KEYS: dict[str, dict[str, Key]] = {
     name: section_keys(cls) for name, cls in SECTIONS.items()}
@@ -328,6 +336,7 @@ class Recipe:
     reservations: Reservations = field(default_factory=Reservations)
     pixel_rules: tuple[dict[str, Any], ...] = ()  # [[pixel_rules]] (collector.checks.pixel_rules)
     text: str = field(default="", repr=False, compare=False)  # as read, for the ledger
+    datasheet: Datasheet = field(default_factory=Datasheet)
 
     def budget_for(self, host: str) -> Budget:
         """The budget in force for ``host`` (``host`` or ``host:port``): defaults + override."""
@@ -342,6 +351,7 @@ class Recipe:
             "collection": asdict(self.collection), "budgets": asdict(self.budgets),
             "budgets.hosts": self.host_budgets, "network": asdict(self.network),
             "licences": asdict(self.licences), "images": asdict(self.images),
+            "datasheet": asdict(self.datasheet),
             "stop": asdict(self.stop), "items": asdict(self.items), "sources": self.sources,
             "reservations": asdict(self.reservations),
             **({"pixel_rules": list(self.pixel_rules)} if self.pixel_rules else {}),
@@ -527,6 +537,7 @@ def parse_recipe(text: str, path: Path, *, check_source_kinds: bool = True) -> R
         collection=CollectionInfo(**sections["collection"]),
         budgets=Budget(**sections["budgets"]), host_budgets=host_budgets,
         network=Network(**sections["network"]), licences=Licences(**sections["licences"]),
+        datasheet=Datasheet(**sections["datasheet"]),
         images=Images(**sections["images"]), stop=Stop(**sections["stop"]),
         sources=source_list, items=Items(**sections["items"]),
         reservations=Reservations(**sections["reservations"]), pixel_rules=pixel_rules,

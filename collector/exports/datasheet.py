@@ -41,6 +41,7 @@ from collector.errors import CollectionError, LedgerError, LedgerUnusable
 from collector.exports import changelog, release
 from collector.exports.datasheet_questions import load_answers
 from collector.exports.datasheet_reservations import reservation_summary
+from collector.exports.diversity import panel_from_ledger
 from collector.exports.facts import (
     DatasheetFacts,
     LicenceFacts,
@@ -116,6 +117,7 @@ def _facts(ledger: Ledger, recipe: Recipe, now: str) -> DatasheetFacts:
         "runs": datasheet_queries.run_facts(ledger),
         "notes": datasheet_queries.note_counts(ledger),
         "reservations": reservation_summary(ledger, recipe),
+        "diversity": panel_from_ledger(ledger, recipe.datasheet.near_duplicate_warning),
         "policy": {
             "budgets": {k: getattr(recipe.budgets, k) for k in (
                 "min_interval", "requests_per_hour", "bytes_per_hour", "max_connections",

@@ -55,6 +55,10 @@ SECTIONS: tuple[tuple[str, str, tuple[Question, ...]], ...] = (
         Question("composition.sample", "P",
                  "Is this everything the sources offered, or a selection? How was it "
                  "narrowed, and is it representative of anything larger?"),
+        Question("composition.diversity", "P",
+                 "How evenly is the release spread over sources, creators, licences, "
+                 "decades, colours and sizes; does one of them dominate, and how many near "
+                 "copies does it hold?"),
         Question("composition.contents", "A", "What does each item consist of?"),
         Question("composition.labels", "P", "Does an item carry a label or target?"),
         Question("composition.missing", "A",

@@ -21,6 +21,8 @@ from collections.abc import Callable
 from dataclasses import dataclass, field
 from typing import TYPE_CHECKING, Any
 
+from collector.exports.datasheet_diversity import TABLES as DIVERSITY_TABLES
+from collector.exports.datasheet_diversity import panel_blocks
 from collector.exports.datasheet_questions import SECTIONS, Question
 from collector.exports.datasheet_reservations import CAUTION as RESERVATIONS_CAUTION
 from collector.exports.datasheet_reservations import reservation_blocks
@@ -45,6 +47,7 @@ TABLES = {
     "t-licences": "Licences of the files in this release",
     "t-personal": "Possible personal data in metadata", "t-other-flags": "Other flags",
     "t-conditions": "Licence conditions of accepted files", "t-runs": "Runs by outcome",
+    **DIVERSITY_TABLES,
 }
 KIND_LABEL = {"A": "From the ledger", "P": "Pre-filled from the ledger — curator, please confirm",
               "C": "Curator's question"}
@@ -312,6 +315,7 @@ FACTS: dict[str, Callable[[DatasheetFacts], list[Block]]] = {
               f"{f['accepted']['files']} were accepted; {f['release']['files']} are in this "
               "release. Whether this represents anything larger is for the curator to judge. "
               "The rules that narrowed them:"), ("see", "t-rules")],
+    "composition.diversity": panel_blocks,
     "composition.contents": lambda f: [("p", "The image bytes exactly as received, plus the "
                                              "provenance columns of provenance.csv.")],
     "composition.labels": lambda f: [("p", "collector assigns no labels. Titles as declared "
@@ -438,6 +442,8 @@ def _view(block: Block, placed: dict[str, str], where: str) -> BlockView:
     caption = (TABLES.get(tid) or tid) if tid else ""
     if kind == "p":
         return BlockView("p", text=str(block[1]))
+    if kind == "plot":  # drawn in the HTML only (the tables beside it say the same)
+        return BlockView("plot", id=str(block[1]))
     if kind == "list":
         return BlockView("list", items=list(block[1]), id=tid, caption=caption)
     return BlockView("table", headers=list(block[1]), rows=[list(r) for r in block[2]],
@@ -479,6 +485,9 @@ def cautions(facts: DatasheetFacts) -> list[str]:
         out.append("robots.txt permission is not the same as permission under a site's terms "
                    "of use; read each archive's terms.")
         out.append(RESERVATIONS_CAUTION)
+    if "diversity" in facts:  # lopsided releases: the panel's warnings, also up here
+        out += [f"{w} See the diversity panel (composition.diversity)."
+                for w in facts["diversity"]["warnings"]]
     return out
 
 
@@ -495,6 +504,7 @@ def _context(facts: DatasheetFacts, answers: dict[str, str],
     """Everything a template reads."""
     from markupsafe import Markup
 
+    from collector.exports.diversity_plots import PANEL_TITLES
     from collector.exports.plots import PLOT_TITLES
 
     sections = build_document(facts, answers)
@@ -504,7 +514,9 @@ def _context(facts: DatasheetFacts, answers: dict[str, str],
         "sections": sections, "not_answered": NOT_ANSWERED,
         # Our own matplotlib SVG, drawn from aggregated numbers (text as paths): trusted markup.
         "plots": [(name, PLOT_TITLES[name], Markup(svg))
-                  for name, svg in (plots or {}).items() if svg],
+                  for name, svg in (plots or {}).items() if svg and name in PLOT_TITLES],
+        "panel_plots": {name: (PANEL_TITLES[name], Markup(svg))
+                        for name, svg in (plots or {}).items() if svg and name in PANEL_TITLES},
         "tables": [(b.id, b.caption) for s in sections for v in s.questions
                    for b in v.blocks if b.kind in ("table", "list") and b.id],
         "croissant_notes": _croissant_notes(facts, answers),

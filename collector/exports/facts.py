@@ -10,6 +10,7 @@ from __future__ import annotations
 
 from typing import Any, NotRequired, TypedDict
 
+from collector.exports.diversity import DiversityFacts
 from collector.storage.datasheet_queries import (
     AcceptedFacts,
     FlaggedFacts,
@@ -169,6 +170,7 @@ class DatasheetFacts(TypedDict):
     runs: RunFacts
     notes: dict[str, int]
     policy: dict[str, Any]
+    diversity: DiversityFacts  # the diversity panel (collector.exports.diversity)
     reservations: NotRequired[ReservationSummary]
     release: NotRequired[ReleaseFacts]
     changelog: NotRequired[list[ChangeEvent]]

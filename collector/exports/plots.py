@@ -25,13 +25,16 @@ PLOT_TITLES = {
 MAX_LANES = 8  # hosts drawn in their own lane; the rest share one
 
 
-def _svg(fig: Any, salt: str) -> str:
+def _svg(fig: Any, salt: str, *, tight: bool = True) -> str:
+    """The figure as inline SVG; ``tight=False`` keeps the figure's own margins (one draw
+    less: the tight box is found by drawing first)."""
     import matplotlib
 
     buf = io.StringIO()
     # A per-plot salt keeps the SVG element ids of several inline plots distinct in one page.
     with matplotlib.rc_context({"svg.hashsalt": salt, "svg.fonttype": "path"}):
-        fig.savefig(buf, format="svg", bbox_inches="tight", metadata={"Date": None})
+        fig.savefig(buf, format="svg", bbox_inches="tight" if tight else None,
+                    metadata={"Date": None})
     text = buf.getvalue()
     text = text[text.index("<svg"):]
     # Glyph and clip-path ids repeat across plots (DejaVuSans-31 in each): prefix every id and
@@ -66,7 +69,8 @@ def _top(pairs: dict[str, int], n: int = 15) -> tuple[list[str], list[int]]:
 
 
 def render_plots(facts: DatasheetFacts) -> dict[str, str]:
-    """Inline SVG for each plot name in PLOT_TITLES ('' where there is nothing to draw)."""
+    """Inline SVG for each plot name in PLOT_TITLES and in the diversity panel's
+    PANEL_TITLES ('' where there is nothing to draw)."""
     out: dict[str, str] = dict.fromkeys(PLOT_TITLES, "")
     licences = facts["release"]["by_licence"]
     if licences:
@@ -79,6 +83,10 @@ def render_plots(facts: DatasheetFacts) -> dict[str, str]:
     timeline = facts["timeline"]
     if set(timeline["requests"]) | set(timeline["stored"]):
         out["timeline"] = _svg(_timeline_figure(timeline, facts["host_sources"]), "timeline")
+    if "diversity" in facts:  # the diversity panel's own plots, drawn beside its tables
+        from collector.exports.diversity_plots import render_panel_plots
+
+        out.update(render_panel_plots(facts["diversity"]))
     return out
 
 
