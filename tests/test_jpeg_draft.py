@@ -67,7 +67,7 @@ def write_variant(kind: str, folder: Path) -> Path:
     elif kind == "rgb_unmarked":
         base.save(path, quality=90, keep_rgb=True)
         path.write_bytes(_without_adobe_marker(path.read_bytes()))
-    elif kind == "small_draft":  # 520 // 64 = 8: a 1/8 draft of 65 px, under WORK_SIDE
+    elif kind == "small_draft":  # 520 // 64 = 8: a 1/8 draft of 65 px, about WORK_SIDE
         base.resize((520, 520)).save(path, quality=90)
     elif kind == "turned":
         exif = Image.Exif()
