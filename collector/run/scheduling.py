@@ -72,6 +72,18 @@ class ImageFetcher(PageFetcher, Protocol):
     def close(self) -> None: ...
 
 
+class HostDispatch(Protocol):
+    """Where image jobs go instead of the local per-host workers: a cluster
+    (collector.run.cluster.ClusterDispatch). ``attach`` is called by the Gatherer it serves;
+    ``put`` hands over a job of a host; ``finish`` waits until every job put is settled."""
+
+    def attach(self, gatherer: Gatherer) -> None: ...
+
+    def put(self, host: str, job: Job) -> None: ...
+
+    def finish(self) -> None: ...
+
+
 @dataclass(frozen=True)
 class StopRules:
     """When a run stops on its own: an epoch deadline and/or a number of newly stored items."""
@@ -151,7 +163,8 @@ class Gatherer:
 
     def __init__(self, collection: Collection, recipe: Recipe, ledger: Ledger,
                  fetcher: ImageFetcher | None, *, stop: StopRules = StopRules(),
-                 progress: Progress | None = None) -> None:
+                 progress: Progress | None = None, dispatch: HostDispatch | None = None,
+                 ) -> None:
         self.collection, self.recipe, self.ledger, self.fetcher = (
             collection, recipe, ledger, fetcher)
         self.store = collection.store
@@ -173,6 +186,9 @@ class Gatherer:
         self.record = RunRecord(ledger, self.progress, secret_values(recipe))
         self.ingest = Ingest(collection, recipe, ledger, self.record, self._source_ids,
                              on_stored=self._stored_one)
+        self.dispatch = dispatch
+        if dispatch is not None:
+            dispatch.attach(self)
 
     @property
     def run_id(self) -> int:
@@ -235,6 +251,8 @@ class Gatherer:
             for t in threads:
                 t.start()
             self._wait(threads)
+            if self.dispatch is not None:
+                self.dispatch.finish()
             for q in list(self._queues.values()):
                 q.put(None)  # no more work: each worker ends after its queue drains
             self._wait(self._workers)
@@ -262,6 +280,8 @@ class Gatherer:
         while True:  # a signal arriving now must not leave threads behind
             try:
                 self._wait(self._workers + threads, interruptible=False)
+                if self.dispatch is not None:
+                    self.dispatch.finish()
                 return
             except KeyboardInterrupt:
                 continue
@@ -347,6 +367,11 @@ class Gatherer:
         except CollectorError as exc:
             self.record.finish(job.item_id, "failed", "unsafe_url", str(exc))
             self.ingest.settle(job)
+            return
+        if self.dispatch is not None:  # a cluster serves the hosts
+            with self._lock:
+                self.hosts.setdefault(host, HostStats()).queued += 1
+            self.dispatch.put(host, job)
             return
         with self._lock:
             q = self._queues.get(host)

@@ -1,0 +1,529 @@
+"""A run on a Dask cluster: the ``gather`` process stays the coordinator and the only writer of
+the ledger; workers fetch images in short per-host tasks (:mod:`collector.run.cluster_task`).
+
+What the coordinator does is the local run (:class:`collector.run.scheduling.Gatherer`):
+listing threads, admission (:meth:`collector.run.ingest.Ingest.admit`), stop rules; only the
+per-host worker threads are replaced by :class:`ClusterDispatch`. The lessons of
+``scale.md`` (measured) shape it:
+
+- the unit of distribution is the host, and at most one task per host is in flight across the
+  cluster, so a host's budget lives in one fetcher at a time and needs no shared limiter;
+- a task is a batch of at most 50 of the host's images, about 10 s at its interval;
+- every task waits one full interval before its first request (a rerun cannot tell);
+- workers return ``fetches`` rows, host facts and file facts; the coordinator writes them,
+  then checks, de-duplicates and stores the files as a local run does (``Ingest.ingest_file``);
+- a worker that dies mid-batch: Dask runs the task again elsewhere; after repeated deaths
+  (``KilledWorker``) the host is degraded: its items are deferred and the run goes on;
+- resuming is a plain local resume from the ledger, never from the engine's state.
+
+A host the coordinator also lists pages from is shared through :meth:`ClusterDispatch.gated`:
+a listing request waits until no task of that host is in flight (and keeps a full interval
+after the task's last contact), and no task starts while a listing request is under way.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import hashlib
+import os
+import queue
+import threading
+import time
+from collections import deque
+from collections.abc import Callable, Iterator
+from dataclasses import dataclass, field
+from functools import partial
+from pathlib import Path
+from typing import Any
+
+from collector import __version__
+from collector.errors import ClusterError, CollectorError, LedgerError, StoreError
+from collector.fetching.fetcher import FetchSettings
+from collector.run.cluster_task import (
+    BatchResult,
+    BatchSpec,
+    HostCarry,
+    JobResult,
+    batch_size,
+    fetch_batch,
+    worker_facts,
+)
+from collector.run.ingest import Job
+from collector.urls import host_key
+
+INSTALL_HINT = ("install the cluster extra first: pip install 'polite-image-collector[cluster]'"
+                " (it adds Dask distributed; every machine of the cluster needs the same "
+                "versions)")
+LOCAL_THREADS = 32  # threads per local worker process: tasks mostly wait for their host
+WORKERS_TIMEOUT = 60.0  # s to wait for the first worker of an existing scheduler
+HANDLER_THREADS = 3  # coordinator threads that write results and ingest files
+
+
+def require_distributed() -> None:
+    """Raise ClusterError (exit 2) with the install command when Dask is not installed."""
+    try:
+        import distributed  # noqa: F401
+    except ImportError:
+        raise ClusterError(f"--cluster and --local-workers need Dask distributed: "
+                           f"{INSTALL_HINT}") from None
+
+
+def cluster_options(address: str | None, local_workers: int | None,
+                    tls: tuple[Any, ...]) -> dict[str, Any] | None:
+    """The keyword arguments of :func:`connect` for gather's options, checked before anything
+    starts (ClusterError, exit 2); None: the run stays on this machine."""
+    given_tls = [str(p) for p in tls if p is not None]
+    if address is None and local_workers is None:
+        if given_tls:
+            raise ClusterError("--tls-ca-file, --tls-cert and --tls-key go with --cluster "
+                               "ADDRESS")
+        return None
+    if address is not None and local_workers is not None:
+        raise ClusterError("give --cluster ADDRESS or --local-workers N, not both")
+    require_distributed()
+    if local_workers is not None:
+        if given_tls:
+            raise ClusterError("--tls-* options go with --cluster ADDRESS; a local cluster "
+                               "does not leave this machine")
+        return {"local_workers": int(local_workers)}
+    if given_tls and len(given_tls) != 3:
+        raise ClusterError("TLS needs all three: --tls-ca-file, --tls-cert and --tls-key")
+    for path in given_tls:
+        if not Path(path).is_file():
+            raise ClusterError(f"{path}: no such file (a --tls-* option)")
+    return {"address": address, "tls": tuple(given_tls) if given_tls else None}
+
+
+@contextlib.contextmanager
+def connect(address: str | None = None, *, local_workers: int = 0, processes: bool = True,
+            threads: int = LOCAL_THREADS, tls: tuple[str, str, str] | None = None,
+            ) -> Iterator[Any]:
+    """A Dask client: on the scheduler at ``address``, or on a local cluster of
+    ``local_workers`` workers (processes unless ``processes`` is False). ``tls`` is
+    (CA file, certificate, key) for a scheduler that requires TLS."""
+    require_distributed()
+    from distributed import Client, LocalCluster
+    from distributed.security import Security
+
+    if local_workers:
+        with LocalCluster(n_workers=local_workers, threads_per_worker=threads,
+                          processes=processes, dashboard_address=None) as cluster, \
+                Client(cluster) as client:
+            check_workers(client, address=None)
+            yield client
+        return
+    security = (Security(tls_ca_file=tls[0], tls_client_cert=tls[1], tls_client_key=tls[2],
+                         require_encryption=True) if tls else None)
+    try:
+        client = Client(address, timeout=10, security=security)
+    except (OSError, TimeoutError, ValueError) as exc:
+        raise ClusterError(f"could not reach the Dask scheduler at {address}: {exc}; start "
+                           f"it with 'dask scheduler' (see README, 'When one machine is not "
+                           f"enough')") from None
+    with client:
+        check_workers(client, address=address)
+        yield client
+
+
+def check_workers(client: Any, *, address: str | None) -> None:
+    """Every worker must run the same collector and Dask versions as the coordinator."""
+    import distributed
+
+    try:
+        client.wait_for_workers(1, timeout=WORKERS_TIMEOUT)
+    except TimeoutError:
+        raise ClusterError(f"no Dask worker joined {address} within {WORKERS_TIMEOUT:g} s; "
+                           f"start one with 'dask worker {address} --nthreads 16'") from None
+    mine = {"collector": __version__, "distributed": str(distributed.__version__)}
+    for worker, facts in client.run(worker_facts).items():
+        if facts != mine:
+            raise ClusterError(f"worker {worker} runs {facts}, this machine {mine}: install the "
+                               "same versions on every machine of the cluster")
+
+
+@dataclass(frozen=True)
+class _Work:
+    """A job on its way: the URL to ask next (a redirect to another host moves it to that
+    host's lane) and the redirect hops so far."""
+
+    job: Job
+    url: str
+    hops: int = 0
+
+
+_Ready = tuple[tuple[_Work, ...], list[tuple[_Work, tuple[str, str] | None]]]
+
+
+@dataclass
+class _Lane:
+    """One host's place in the cluster run."""
+
+    pending: deque[_Work] = field(default_factory=deque)
+    in_flight: tuple[_Work, ...] = ()
+    listing: int = 0  # listing requests of the coordinator under way
+    wanting: int = 0  # listing requests waiting for the host's task to end
+    last_end: float | None = None  # epoch s the host's latest task ended
+    carry: HostCarry = field(default_factory=HostCarry)
+    degraded: str | None = None  # why the host gets no more tasks in this run
+    batches: int = 0
+
+
+class ClusterDispatch:
+    """Serves a run's image jobs on a Dask cluster (see the module doc). Create it with a
+    connected client, pass it to the Gatherer (which calls :meth:`attach`), and wrap the
+    coordinator's own fetcher with :meth:`gated`."""
+
+    def __init__(self, client: Any, settings: FetchSettings, *, force_bytes: bool = False,
+                 on_batch: Callable[[BatchResult], None] | None = None) -> None:
+        self.client, self.settings, self.force_bytes = client, settings, force_bytes
+        self.on_batch = on_batch  # a bench hook: every batch result as it arrives
+        self._cond = threading.Condition()
+        self._lanes: dict[str, _Lane] = {}
+        self._open = 0  # jobs put and not yet settled
+        self._done: queue.Queue[tuple[str, tuple[_Work, ...], Any] | None] = queue.Queue()
+        self._handlers: list[threading.Thread] = []
+        self._token: Path | None = None
+        self.g: Any = None
+
+    # -- set-up --------------------------------------------------------------------------------
+    def attach(self, gatherer: Any) -> None:
+        """Called by the Gatherer it serves."""
+        self.g = gatherer
+
+    def gated(self, fetcher: Any) -> GatedFetcher:
+        """The coordinator's fetcher, taking turns with the tasks of the host it asks."""
+        return GatedFetcher(fetcher, self)
+
+    def _start(self) -> None:
+        """On the first job: the token file that tells a worker the folder is shared, and
+        the threads that handle results."""
+        fd, self._token = self.g.store.new_temp()
+        os.close(fd)
+        for n in range(HANDLER_THREADS):
+            t = threading.Thread(target=self._handle_loop, daemon=True, name=f"cluster-{n}")
+            t.start()
+            self._handlers.append(t)
+
+    # -- jobs in -------------------------------------------------------------------------------
+    def put(self, host: str, job: Job) -> None:
+        """A job for ``host`` (called by the Gatherer instead of its host queue)."""
+        with self._cond:
+            if not self._handlers:
+                self._start()
+            self._open += 1
+        self._put(host, _Work(job, job.url))
+
+    def _put(self, host: str, work: _Work) -> None:
+        with self._cond:
+            lane = self._lanes.setdefault(host, _Lane())
+            lane.pending.append(work)
+            ready = self._take(host, lane)
+        self._launch(host, ready)
+
+    def finish(self) -> None:
+        """No more jobs come: wait until every job put is settled (after a stop, pending
+        jobs are left for the next run and the tasks in flight are finished)."""
+        with self._cond:
+            hosts = list(self._lanes)
+        for host in hosts:
+            self._poke(host)
+        with self._cond:
+            while self._open > 0:
+                self._cond.wait(0.2)
+                if self.g._should_stop():
+                    self._cond.release()
+                    try:
+                        for host in list(self._lanes):
+                            self._poke(host)
+                    finally:
+                        self._cond.acquire()
+        for _ in self._handlers:
+            self._done.put(None)
+        for t in self._handlers:
+            t.join()
+        self._handlers.clear()
+        if self._token is not None:
+            self._token.unlink(missing_ok=True)
+            self._token = None
+
+    def _poke(self, host: str) -> None:
+        with self._cond:
+            ready = self._take(host, self._lanes[host])
+        self._launch(host, ready)
+
+    def _take(self, host: str, lane: _Lane) -> _Ready:
+        """Under the lock: the next batch for ``host`` (empty when one is in flight, the
+        coordinator is listing from it or waits to, or nothing waits), and jobs to settle at
+        once with (reason, detail) of their deferral, or None (left for the next run)."""
+        if lane.in_flight or lane.listing or lane.wanting or not lane.pending:
+            return (), []
+        stats = self.g.hosts.get(host)
+        jobs = list(lane.pending)
+        if self.g._should_stop():
+            lane.pending.clear()
+            return (), [(w, None) for w in jobs]
+        if lane.degraded or (stats is not None and stats.parked):
+            why = (("host_degraded", lane.degraded) if lane.degraded else
+                   ("host_parked", f"{host} was parked earlier in this run"))
+            lane.pending.clear()
+            return (), [(w, why) for w in jobs]
+        budget = self.settings.host_budgets.get(host, self.settings.budget)
+        size = min(batch_size(float(budget.min_interval)), len(lane.pending))
+        lane.in_flight = tuple(lane.pending.popleft() for _ in range(size))
+        return lane.in_flight, []
+
+    def _launch(self, host: str, ready: _Ready) -> None:
+        """Submit a batch; settle jobs that get no task (stop: left pending; a parked or
+        degraded host: deferred)."""
+        batch, settle = ready
+        for w, why in settle:
+            if why is not None:
+                self._guarded(host, w, partial(self.g.record.finish, w.job.item_id,
+                                               "deferred", why[0], why[1]))
+            self._settled(w)
+        if batch:
+            try:
+                self._submit(host, batch)
+            except Exception as exc:  # the engine refused the task: a bug, the run fails
+                self.g._internal_error(f"the cluster submission for host {host}", exc)
+                self._release(host, batch, None)
+
+    def _submit(self, host: str, batch: tuple[_Work, ...]) -> None:
+        ledger = self.g.ledger
+        with self._cond:
+            lane = self._lanes[host]
+            lane.batches += 1
+            carry, number = lane.carry, lane.batches
+        assert self._token is not None
+        spec = BatchSpec(host, tuple((w.job.item_id, w.url, w.job.secret_params)
+                                     for w in batch),
+                         self.settings, self.g.run_id, ledger.get_host(host),
+                         ledger.last_contact(host), str(self._token.parent), self._token.name,
+                         carry, self.g.stop.deadline, self.force_bytes)
+        future = self.client.submit(fetch_batch, spec, pure=False,
+                                    key=f"collector-{self.g.run_id}-{host}-{number}")
+        future.add_done_callback(lambda f: self._done.put((host, batch, f)))
+
+    # -- results -------------------------------------------------------------------------------
+    def _handle_loop(self) -> None:
+        while (entry := self._done.get()) is not None:
+            host, batch, future = entry
+            try:
+                self._handle(host, batch, future)
+            except Exception as exc:  # a bug while handling a result: the run fails loudly
+                self.g._internal_error(f"the cluster results of host {host}", exc)
+                self._release(host, batch, None)
+
+    def _handle(self, host: str, batch: tuple[_Work, ...], future: Any) -> None:
+        from distributed import KilledWorker
+
+        try:
+            result: BatchResult = future.result()
+        except KilledWorker as exc:
+            self._degrade(host, batch, exc)
+            return
+        except Exception as exc:  # the task raised: a bug, or a worker that cannot run it
+            self.g._internal_error(f"the cluster task for host {host}", exc)
+            self._release(host, batch, None)
+            return
+        if self.on_batch is not None:
+            self.on_batch(result)
+        ledger = self.g.ledger
+        for row in result.fetches:
+            ledger.record_fetch(**row)
+        for hk, fields in result.host_updates:
+            ledger.put_host(hk, **fields)
+        works = {w.job.item_id: w for w in batch}
+        parked = any(r.kind == "parked" for r in result.results)
+        again = [works[r.item_id] for r in result.results if r.kind == "skipped"
+                 and not parked and not self.g._should_stop()]
+        self._release(host, (), result.carry, again)
+        for r in result.results:
+            w = works[r.item_id]
+            if w in again:
+                continue
+            if r.kind == "moved" and self._moved(host, w, r):
+                continue
+            self._guarded(host, w, partial(self._outcome, host, w.job, r))
+            self._settled(w)
+
+    def _moved(self, host: str, w: _Work, r: JobResult) -> bool:
+        """A redirect to another host: the job goes to that host's lane (True), unless it
+        has used up the redirects or the new URL is not one to ask (False: it fails)."""
+        assert r.final_url is not None
+        if w.hops >= self.settings.max_redirects:
+            r.kind, r.state, r.reason = "finish", "failed", "redirect_blocked"
+            r.detail = f"more than {self.settings.max_redirects} redirects: {w.job.url}"
+            return False
+        try:
+            target = host_key(r.final_url)
+        except CollectorError as exc:
+            r.kind, r.state, r.reason, r.detail = "finish", "failed", "unsafe_url", str(exc)
+            return False
+        with self.g._lock:
+            self.g.hosts.setdefault(target, type(self.g.hosts[host])())
+        self._put(target, _Work(w.job, r.final_url, w.hops + 1))
+        return True
+
+    def _release(self, host: str, settle: tuple[_Work, ...], carry: HostCarry | None,
+                 again: list[_Work] | None = None) -> None:
+        """The host's task is over: the next batch may go (``again``: jobs the task did not
+        reach go first)."""
+        with self._cond:
+            lane = self._lanes[host]
+            lane.in_flight = ()
+            lane.last_end = time.time()
+            if carry is not None:
+                lane.carry = carry
+            lane.pending.extendleft(reversed(again or []))
+            ready = self._take(host, lane)
+            self._cond.notify_all()
+        for w in settle:
+            self._settled(w)
+        self._launch(host, ready)
+
+    def _degrade(self, host: str, batch: tuple[_Work, ...], exc: BaseException) -> None:
+        """KilledWorker: the workers running this host's task died too often. The host gets
+        no more tasks in this run; its items are deferred (the next run tries again)."""
+        why = (f"the cluster lost the worker fetching from {host} repeatedly (Dask "
+               f"KilledWorker); its images are tried again by the next run")
+        with self._cond:
+            self._lanes[host].degraded = why
+        self.g.progress.event("note", source="cluster", note="host_degraded", message=why)
+        with contextlib.suppress(CollectorError):
+            self.g.ledger.add_note("host_degraded", f"{why} ({exc})", run_id=self.g.run_id)
+        for w in batch:
+            self._guarded(host, w, partial(self.g.record.finish, w.job.item_id, "deferred",
+                                           "host_degraded", why))
+        self._release(host, batch, None)
+
+    def _outcome(self, host: str, job: Job, r: JobResult) -> None:
+        """Record one job's outcome as the local run does; a file goes through ingest."""
+        stats = self.g.hosts[host]
+        if r.kind == "finish":
+            if r.state == "failed":
+                stats.errors += 1
+            self.g.record.finish(job.item_id, r.state, r.reason, r.detail)
+        elif r.kind == "parked":
+            stats.parked = True
+            self.g.record.finish(job.item_id, "deferred", "host_parked", r.detail)
+        elif r.kind == "skipped":
+            if stats.parked:
+                self.g.record.finish(job.item_id, "deferred", "host_parked",
+                                     f"{host} was parked earlier in this run")
+        elif r.kind == "store":
+            raise StoreError(r.detail)
+        elif r.kind == "file":
+            assert r.sha256 is not None
+            path = Path(r.path) if r.path is not None else self._write(r)
+            self.g.ingest.ingest_file(job.item_id, job.spdx_id, path, r.sha256,
+                                      content_type=r.content_type, url=r.final_url)
+        stats.done += 1
+
+    def _write(self, r: JobResult) -> Path:
+        """A file returned as bytes, written into the store's incoming folder (fsynced)."""
+        data = r.data or b""
+        if hashlib.sha256(data).hexdigest() != r.sha256:
+            raise StoreError(f"the bytes of {r.final_url} changed on their way from the worker")
+        fd, tmp = self.g.store.new_temp()
+        try:
+            with os.fdopen(fd, "wb") as out:
+                out.write(data)
+                out.flush()
+                os.fsync(out.fileno())
+        except OSError as exc:
+            tmp.unlink(missing_ok=True)
+            raise StoreError(f"cannot write a temp file of the store: {exc}",
+                             errno=exc.errno) from exc
+        return tmp
+
+    def _guarded(self, host: str, w: _Work, step: Callable[[], None]) -> None:
+        """Run one job's step as the local worker does (Gatherer._serve_job)."""
+        try:
+            step()
+        except (StoreError, LedgerError) as exc:
+            self.g._fail(exc)
+        except Exception as exc:
+            self.g._internal_error(f"the cluster results of host {host}", exc,
+                                   item_id=w.job.item_id)
+
+    def _settled(self, w: _Work) -> None:
+        try:
+            self.g.ingest.settle(w.job)
+        finally:
+            with self._cond:
+                self._open -= 1
+                self._cond.notify_all()
+            stats = self.g.hosts.get(host_key(w.job.url))
+            if stats is not None:
+                stats.queued = max(0, stats.queued - 1)
+
+    # -- the coordinator's own requests ---------------------------------------------------------
+    @contextlib.contextmanager
+    def listing(self, host: str) -> Iterator[float | None]:
+        """Hold ``host`` for a request of the coordinator: wait until no task of the host is
+        in flight, keep new tasks back meanwhile; yields when its latest task ended."""
+        with self._cond:
+            lane = self._lanes.setdefault(host, _Lane())
+            lane.wanting += 1
+            try:
+                while lane.in_flight:
+                    self._cond.wait(0.2)
+            finally:
+                lane.wanting -= 1
+            lane.listing += 1
+            last_end = lane.last_end
+        try:
+            yield last_end
+        finally:
+            with self._cond:
+                lane.listing -= 1
+                ready = self._take(host, lane) if self.g is not None else ((), [])
+            self._launch(host, ready)
+
+
+class GatedFetcher:
+    """The coordinator's fetcher for listing pages, taking turns with the cluster's tasks
+    (see :meth:`ClusterDispatch.listing`)."""
+
+    def __init__(self, inner: Any, dispatch: ClusterDispatch) -> None:
+        self.inner, self.dispatch = inner, dispatch
+
+    @property
+    def run_id(self) -> int | None:
+        return getattr(self.inner, "run_id", None)
+
+    @run_id.setter
+    def run_id(self, value: int | None) -> None:
+        self.inner.run_id = value
+
+    def get_page(self, url: str, **kwargs: Any) -> Any:
+        try:
+            host = host_key(url)
+        except CollectorError:
+            return self.inner.get_page(url, **kwargs)  # it raises the proper error
+        with self.dispatch.listing(host) as last_end:
+            budgets = getattr(self.inner, "budgets", None)
+            if last_end is not None and budgets is not None:
+                budgets.contacted(host, time.time() - last_end)
+            return self.inner.get_page(url, **kwargs)
+
+    def download(self, url: str, dest_dir: Path, **kwargs: Any) -> Any:
+        return self.inner.download(url, dest_dir, **kwargs)
+
+    def close(self) -> None:
+        self.inner.close()
+
+
+def run_on_cluster(collection: Any, recipe: Any, ledger: Any, client: Any, *,
+                   force_bytes: bool = False,
+                   on_batch: Callable[[BatchResult], None] | None = None,
+                   **kwargs: Any) -> Any:
+    """One run inside :func:`collector.run.gather.prepared_run` with its images fetched on
+    the cluster behind ``client``; ``kwargs`` go to :func:`collector.run.gather.run_prepared`
+    (stop, progress, options, fetcher_factory)."""
+    from collector.run.gather import run_prepared
+
+    dispatch = ClusterDispatch(client, FetchSettings.from_recipe(recipe),
+                               force_bytes=force_bytes, on_batch=on_batch)
+    return run_prepared(collection, recipe, ledger, dispatch=dispatch, **kwargs)
