@@ -183,6 +183,9 @@ class ClusterDispatch:
         self._done: queue.Queue[tuple[str, tuple[_Work, ...], Any] | None] = queue.Queue()
         self._handlers: list[threading.Thread] = []
         self._token: Path | None = None
+        # The futures in flight with their batches, kept until handled: a future nobody
+        # holds lets Dask forget its task.
+        self._futures: dict[str, tuple[Any, tuple[_Work, ...]]] = {}
         self.g: Any = None
 
     # -- set-up --------------------------------------------------------------------------------
@@ -246,6 +249,12 @@ class ClusterDispatch:
             self._token.unlink(missing_ok=True)
             self._token = None
 
+    def in_flight(self, keys: Any) -> int:
+        """How many images the tasks with these keys hold (a bench counts what a killed
+        worker had in flight)."""
+        with self._cond:
+            return sum(len(self._futures[k][1]) for k in keys if k in self._futures)
+
     def _poke(self, host: str) -> None:
         with self._cond:
             ready = self._take(host, self._lanes[host])
@@ -300,8 +309,10 @@ class ClusterDispatch:
                          self.settings, self.g.run_id, ledger.get_host(host),
                          ledger.last_contact(host), str(self._token.parent), self._token.name,
                          carry, self.g.stop.deadline, self.force_bytes)
-        future = self.client.submit(fetch_batch, spec, pure=False,
-                                    key=f"collector-{self.g.run_id}-{host}-{number}")
+        key = f"collector-{self.g.run_id}-{host}-{number}"
+        future = self.client.submit(fetch_batch, spec, pure=False, key=key)
+        with self._cond:
+            self._futures[key] = (future, batch)
         future.add_done_callback(lambda f: self._done.put((host, batch, f)))
 
     # -- results -------------------------------------------------------------------------------
@@ -317,6 +328,8 @@ class ClusterDispatch:
     def _handle(self, host: str, batch: tuple[_Work, ...], future: Any) -> None:
         from distributed import KilledWorker
 
+        with self._cond:
+            self._futures.pop(future.key, None)
         try:
             result: BatchResult = future.result()
         except KilledWorker as exc:
