@@ -150,7 +150,7 @@ def gather(
                                 help="Fetch images on this Dask scheduler, e.g. "
                                      "tcp://10.0.0.5:8786 (needs the cluster extra: pip "
                                      "install 'polite-image-collector[cluster]')."),
-    local_workers: int = typer.Option(None, "--local-workers", metavar="N", min=1,
+    local_workers: int = typer.Option(None, "--local-workers", metavar="N",
                                       help="Fetch images on a local Dask cluster of N worker "
                                            "processes (needs the cluster extra)."),
     tls_ca_file: Path = typer.Option(None, "--tls-ca-file", metavar="PATH",

@@ -81,6 +81,8 @@ def cluster_options(address: str | None, local_workers: int | None,
     if address is not None and local_workers is not None:
         raise ClusterError("give --cluster ADDRESS or --local-workers N, not both")
     require_distributed()
+    if local_workers is not None and local_workers < 1:
+        raise ClusterError(f"--local-workers {local_workers}: give at least 1 worker")
     if local_workers is not None:
         if given_tls:
             raise ClusterError("--tls-* options go with --cluster ADDRESS; a local cluster "
