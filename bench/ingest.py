@@ -9,6 +9,8 @@ Generates N structured ~1 MP JPEGs (quality 90), then measures on the same files
   local     the whole `gather` over a local folder source, which also copies each file into the
             store with fsync (first files also create their ab/cd folders)
 Prints a table of images/s and the ingest/bare ratio. Run: .venv/bin/python bench/ingest.py [N]
+[POLICY]; POLICY sets [images] enlarged (default "keep"; "flag" decodes each JPEG's luma at full
+size once more for the native-size estimate).
 """
 
 from __future__ import annotations
@@ -51,10 +53,15 @@ def bare_decode(paths: list[Path]) -> float:
     return time.perf_counter() - start
 
 
+POLICY = {"enlarged": "keep"}
+
+
 def ingest_step(root: Path, paths: list[Path]) -> float:
     """Time Ingest.ingest_file on files already in the incoming folder, as after a download."""
     col = init_collection(root / "step", contact="bench@example.org")
-    col.recipe_path.write_text(col.recipe_path.read_text() + SOURCE.format(folder=paths[0].parent))
+    recipe = col.recipe_path.read_text().replace(
+        'enlarged = "keep"', f'enlarged = "{POLICY["enlarged"]}"')
+    col.recipe_path.write_text(recipe + SOURCE.format(folder=paths[0].parent))
     with prepared_run(col) as (recipe, ledger):
         gatherer = Gatherer(col, recipe, ledger, None)
         source_id = ledger.source_id("bench", "scans", {})
@@ -93,6 +100,7 @@ def ingest(root: Path, paths: list[Path]) -> float:
 
 def main() -> None:
     count = int(sys.argv[1]) if len(sys.argv) > 1 else 150
+    POLICY["enlarged"] = sys.argv[2] if len(sys.argv) > 2 else "keep"
     with tempfile.TemporaryDirectory() as tmp:
         root = Path(tmp)
         (root / "src").mkdir()
@@ -107,6 +115,7 @@ def main() -> None:
     print(f"{'local':<10} {count:>7} {full:>8.2f} {count / full:>9.1f}")
     ratio = step / bare
     verdict = 'ok' if ratio <= 1.5 else 'MISSED'
+    print(f'[images] enlarged = "{POLICY["enlarged"]}"')
     print(f"ratio ingest/bare = {ratio:.2f}x (target <= 1.5x): {verdict}")
 
 

@@ -5,7 +5,7 @@ afterwards, libraries.md section 3): 1,000 real generated JPEGs plus 999,000 row
 sha256s and hashes, each with an item and an image fetch. Then prints a table:
 
   exact lookup (sha256 primary key + items + fetch rows)   target <= 5 ms
-  near lookup (brute-force scan of 1M hashes + records)    target <= 5 ms
+  near lookup (scan of 1M hashes for 8 turns, second look, records)  target <= 10 ms
   whole `collector trace one.jpg --in DIR` (subprocess)    target <= 1.5 s
   folder trace of 1,000 files (subprocess)                 target <= 10 s
 
@@ -32,6 +32,7 @@ from pathlib import Path
 import numpy as np
 from PIL import Image, ImageDraw
 
+from collector.checks.likeness import find_copies, look_at_file
 from collector.checks.phash import HASH_ALGO, hash_image_file, to_signed64
 from collector.exports.trace import Tracer
 from collector.storage.collection import Collection, init_collection
@@ -184,21 +185,28 @@ def main() -> int:
                 assert record is not None and record.origin is not None
             med, p95 = stats_ms(exact)
             table.append(("exact lookup, median / p95", f"{med:.2f} / {p95:.2f} ms", "<= 5 ms"))
-            near, found = [], 0
+            near, scans, found = [], [], 0
             for sha, _, im in picks:
                 buf = io.BytesIO()
                 im.resize((128, 96)).save(buf, "JPEG", quality=80)
                 q = work / "q.jpg"
                 q.write_bytes(buf.getvalue())
-                ph, mirror = hash_image_file(q)  # not timed: hashing the query file
+                look = look_at_file(q)  # not timed: decoding and hashing the query file
                 t0 = time.perf_counter()
-                matches = tracer.lookup_near(ph, mirror)
-                records = [tracer.lookup_exact(m.sha256) for m in matches[:5]]
+                tracer.hashes.candidates(look.turns, tracer.near_distance)
+                scans.append(time.perf_counter() - t0)
+                t0 = time.perf_counter()
+                confirmed = find_copies(look, lambda turns, crops: tracer.hashes.candidates(
+                    turns, tracer.near_distance, crops), tracer._stored_look)
+                records = [tracer.lookup_exact(c.key) for c in confirmed]
                 near.append(time.perf_counter() - t0)
-                found += bool(records) and records[0] is not None and matches[0].sha256 == sha
+                found += bool(records) and records[0] is not None and confirmed[0].key == sha
+            med, p95 = stats_ms(scans)
+            table.append(("scan for all 8 turns + crop candidates, median / p95",
+                          f"{med:.2f} / {p95:.2f} ms", "-"))
             med, p95 = stats_ms(near)
-            table.append(("near lookup (scan + records), median / p95",
-                          f"{med:.2f} / {p95:.2f} ms", "<= 5 ms"))
+            table.append(("near lookup (upright+mirror scan, second look, records), median/p95",
+                          f"{med:.2f} / {p95:.2f} ms", "<= 10 ms"))
             table.append(("near lookup found the right original", f"{found} / {len(picks)}",
                           "-"))
 

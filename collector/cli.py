@@ -10,16 +10,16 @@ from __future__ import annotations
 
 import json
 import sys
-from collections.abc import Callable, Iterator
-from contextlib import contextmanager, nullcontext
+from collections.abc import Callable
+from contextlib import nullcontext
 from pathlib import Path
 from typing import TYPE_CHECKING, Any, TypeVar
 
 import typer
 
 from collector import __version__
-from collector.cli_help import PlainTyper
-from collector.errors import CollectorError
+from collector.cli_help import PlainTyper, user_errors
+from collector.cli_upkeep import register_upkeep
 from collector.safe_text import for_terminal, one_line
 
 if TYPE_CHECKING:
@@ -38,16 +38,6 @@ app = PlainTyper(
     rich_markup_mode=None,  # click's plain help: no type tags, paragraphs re-flowed
     context_settings={"help_option_names": ["-h", "--help"]},
 )
-
-
-@contextmanager
-def user_errors() -> Iterator[None]:
-    """Turn CollectorError into 'Error: ...' on stderr and the error's exit code."""
-    try:
-        yield
-    except CollectorError as exc:
-        typer.echo(for_terminal(f"Error: {exc}"), err=True)
-        raise typer.Exit(exc.exit_code) from None
 
 
 def _version(value: bool) -> None:
@@ -103,7 +93,8 @@ def check(
 
     Example: collector check my-leaves
     """
-    from collector.config.recipe import check_recipe, source_prefix
+    from collector.config.recipe import check_recipe
+    from collector.config.recipe_env import source_prefix
     from collector.schema import toml_key, toml_value
     from collector.storage.collection import open_collection
 
@@ -118,7 +109,7 @@ def check(
     say(f"{recipe.path}: valid")
     say(f"  User-Agent: collector/{__version__} (+{recipe.contact})")
     say(f"  robots.txt product token: {recipe.product_token}")
-    for section in ("budgets", "network", "licences", "images", "stop"):
+    for section in ("budgets", "network", "licences", "images", "stop", "items", "reservations"):
         say(f"  [{section}]")
         for key, value in settings[section].items():
             say(f"    {toml_key(key)} = {toml_value(value)}")
@@ -169,7 +160,7 @@ def gather(
 
     Example: collector gather my-leaves --until 07:00
     """
-    from collector.config.recipe import check_stop_options
+    from collector.config.stop_times import check_stop_options
 
     with user_errors():
         check_stop_options(until, duration, max_items)  # before anything starts, dry or not
@@ -290,6 +281,8 @@ def status(
 
     Example: collector status my-leaves
     """
+    from collector.exports.changelog import withdrawal_line
+    from collector.exports.recipe_history import last_change_line
     from collector.exports.summary import format_summary, summarise, summary_as_dict
     from collector.storage.collection import open_collection
 
@@ -297,11 +290,16 @@ def status(
         collection = open_collection(folder)
         with collection.ledger(readonly=True) as ledger:
             summary = summarise(ledger)
+            recipe_line = last_change_line(ledger)
+            withdrawn_line = withdrawal_line(ledger)
     if as_json:
         typer.echo(json.dumps(summary_as_dict(summary), indent=2, default=str))
         return
     for line in format_summary(summary):
         typer.echo(one_line(line))
+    for extra in (recipe_line, withdrawn_line):
+        if extra:
+            typer.echo(one_line(extra))
 
 
 @app.command()
@@ -321,6 +319,16 @@ def datasheet(
     answers_template: bool = typer.Option(
         False, "--answers-template",
         help="Print a commented answers file listing every question id, and exit."),
+    only: list[str] = typer.Option(
+        [], "--only", help="Release only files meeting NAME=VALUE (repeatable; NAME: source, "
+                           "licence, creator, state, date=FROM..TO, stored=FROM..TO)."),
+    sha256_file: Path = typer.Option(None, "--sha256-file",
+                                     help="Release only the files listed (one sha256 a line)."),
+    keep_whole_scans: bool = typer.Option(
+        False, "--keep-whole-scans", help="Also release whole scanner beds whose crops are "
+                                          "released."),
+    keep_blank_scans: bool = typer.Option(False, "--keep-blank-scans",
+                                          help="Also release blank scans."),
 ) -> None:
     """Write a datasheet (md + html), croissant.json, provenance.csv and attribution.csv.
 
@@ -328,18 +336,22 @@ def datasheet(
     """
     from collector.exports.datasheet import export_datasheet
     from collector.exports.datasheet_questions import answers_template as template
+    from collector.exports.release import EXCLUSION_REASONS, parse_selection
 
     if answers_template:
         typer.echo(template())
         return
     with user_errors():
+        selection = parse_selection(only, sha256_file, keep_whole_scans=keep_whole_scans,
+                                    keep_blank_scans=keep_blank_scans)
         result = export_datasheet(folder, out=out, answers_path=answers,
                                   with_images=with_images, exclude_flagged=exclude_flagged,
-                                  overwrite=overwrite)
+                                  overwrite=overwrite, selection=selection)
     c = result.counts
     typer.echo(f"Wrote {result.out}: {c.files} files described"
                + (f" ({c.linked} linked, {c.copied} copied into images/)" if with_images else "")
-               + f"; left out {c.excluded_licence} by licence, {c.excluded_flagged} flagged")
+               + f"; left out {c.excluded_licence} by licence, {c.excluded_flagged} flagged"
+               + "".join(f", {n} {EXCLUSION_REASONS.get(k, k)}" for k, n in c.excluded.items()))
     for problem in result.croissant_problems:
         typer.echo(one_line(f"croissant.json: {problem}"), err=True)
 
@@ -396,7 +408,7 @@ def trace(
                 typer.echo(one_line(line))
         for line in format_summary(results):
             typer.echo(one_line(line))
-    raise typer.Exit(0 if all(r.kind != "none" for r in results) else 1)
+    raise typer.Exit(0 if all(r.kind in ("exact", "near") for r in results) else 1)
 
 
 def _trace_collection(folder: Path | None) -> Path:
@@ -523,3 +535,7 @@ def demo(
     say("Next: collector status " + str(folder) + "  |  collector trace FILE --in " + str(folder)
         + "  |  collector demo (resumes)  |  collector demo --fresh")
     raise typer.Exit(result.run.exit_code)
+
+
+# The upkeep commands (withdraw, re-check, recipe history, notes) live in cli_upkeep.
+register_upkeep(app)

@@ -10,11 +10,15 @@ very end of the screen.
 
 from __future__ import annotations
 
-from collections.abc import Callable
+from collections.abc import Callable, Iterator
+from contextlib import contextmanager
 from typing import Any, TypeVar
 
 import typer
 from typer.core import TyperCommand
+
+from collector.errors import CollectorError
+from collector.safe_text import for_terminal
 
 F = TypeVar("F", bound=Callable[..., Any])
 
@@ -86,3 +90,13 @@ class PlainTyper(typer.Typer):
     def command(self, name: str | None = None, *, cls: Any = None,
                 **kwargs: Any) -> Callable[[F], F]:
         return super().command(name, cls=cls or PlainCommand, **kwargs)
+
+
+@contextmanager
+def user_errors() -> Iterator[None]:
+    """Turn CollectorError into 'Error: ...' on stderr and the error's exit code."""
+    try:
+        yield
+    except CollectorError as exc:
+        typer.echo(for_terminal(f"Error: {exc}"), err=True)
+        raise typer.Exit(exc.exit_code) from None

@@ -67,7 +67,7 @@ class JsonProgress:
 
 
 class LiveProgress:
-    """A rich live table: per host done/queued, errors, next request; overall counts."""
+    """A rich live table: per host done/queued, failed requests, next request; overall counts."""
 
     def __init__(self, console: Console | None = None) -> None:
         self.console = console or Console()
@@ -104,7 +104,7 @@ class LiveProgress:
         """The current table: one row per host, notes as the caption."""
         elapsed = time.monotonic() - self.started
         table = Table(expand=False)
-        for col in ("host", "done", "queued", "errors", "rate / budget", "next request"):
+        for col in ("host", "done", "queued", "failed", "rate / budget", "next request"):
             table.add_column(col)
         eta = 0.0
         g = self.gatherer

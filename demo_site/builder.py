@@ -23,12 +23,14 @@ from collector.demo_site.hosts import HOSTS
 GENERATOR_VERSION = "1"
 SEED = 3  # chosen so unrelated pictures are >= 14 bits apart (imagehash.phash)
 
-SOURCE_ORDER = ("api-pages", "api-objects", "api-linked", "gallery", "scanner")
+SOURCE_ORDER = ("api-pages", "api-objects", "api-linked", "gallery", "scanner", "oai-records",
+                "iiif", "reading-room")
 POLICY: dict[str, Any] = {
     "licence_allow": [
         "CC0-1.0", "CC-PDM-1.0",
         "CC-BY-1.0", "CC-BY-2.0", "CC-BY-2.5", "CC-BY-3.0", "CC-BY-4.0",
         "CC-BY-SA-1.0", "CC-BY-SA-2.0", "CC-BY-SA-2.5", "CC-BY-SA-3.0", "CC-BY-SA-4.0",
+        "rs:NoC-US",
     ],
     "allow_unknown": False,
     "min_side": 128,
@@ -137,7 +139,8 @@ class Builder:
     # -- routes --
     def put_file(self, host: int, path: str, data: bytes, content_type: str,
                  role: str = "image", deliberate: str | None = None,
-                 template: bool = False) -> dict[str, Any]:
+                 template: bool = False,
+                 headers: dict[str, str] | None = None) -> dict[str, Any]:
         rel = path + "index.html" if path.endswith("/") else path
         target = self.out / "site" / str(host) / rel.lstrip("/")
         target.parent.mkdir(parents=True, exist_ok=True)
@@ -145,6 +148,8 @@ class Builder:
         res = {"kind": "file", "file": f"site/{host}{rel}", "status": 200,
                "content_type": content_type, "sha256": sha256_hex(data), "size": len(data),
                "role": role, "deliberate": deliberate, "template": template}
+        if headers:  # further response header fields (the reading room's reservations)
+            res["headers"] = sorted(headers.items())
         self.routes[host][path] = res
         return res
 
@@ -168,9 +173,10 @@ class Builder:
         return item
 
     def serve_image(self, item: Item, data: bytes, content_type: str,
-                    deliberate: str | None = None, facts: dict[str, Any] | None = None) -> None:
+                    deliberate: str | None = None, facts: dict[str, Any] | None = None,
+                    headers: dict[str, str] | None = None) -> None:
         self.put_file(item.image_host, item.image_path, data, content_type,
-                      deliberate=deliberate)
+                      deliberate=deliberate, headers=headers)
         self.bytes_of[item.key] = data
         item.deliberate = deliberate
         item.facts = {"sha256": sha256_hex(data), "bytes": len(data),

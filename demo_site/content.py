@@ -104,6 +104,7 @@ def _api_pages_item(b: Builder, i: int, item: Item) -> None:
         im.putalpha(mask)
         item.image_path = f"/media/specimens/{key}.png"
         b.serve_image(item, png(im), "image/png")
+        item.flags = ["transparent"]  # the demo recipe flags transparent images
     elif i == 3:  # palette PNG
         im = b.picture(key, 600, 400).quantize(64, method=FAST)
         item.image_path = f"/media/specimens/{key}.png"
@@ -128,13 +129,14 @@ def _api_pages_item(b: Builder, i: int, item: Item) -> None:
         data = metadata.encode(frames[0], "GIF", save_all=True, append_images=frames[1:],
                                duration=200, loop=0)
         b.serve_image(item, data, "image/gif")
+        item.note = "animated GIF, 4 frames: the first frame is hashed, the count recorded"
     elif i == 8:
         item.image_path = f"/media/specimens/{key}.tif"
         b.serve_image(item, metadata.encode(b.picture(key), "TIFF", compression="tiff_lzw"),
                       "image/tiff")
     elif i == 9:
         b.serve_image(item, jpeg(b.picture(key).convert("CMYK")), "image/jpeg")
-        item.note = "CMYK JPEG"
+        item.note = "CMYK JPEG (Adobe, inverted): hashed like its RGB picture"
     elif i in (10, 11):
         upright = b.picture(key, 480, 640, "leaf")
         # Exif Orientation (standards.md §6.1): 6 = display needs ROTATE_270, so store the
@@ -371,8 +373,36 @@ def build_api_linked(b: Builder) -> None:
                         "recorded_on": date, "rights_text": item.licence.text,
                         "rights_url": item.licence.url,
                         "file": {"url": item.image_url, "bytes": item.facts["bytes"]}})
+    records += [_format_find(b, n) for n in (21, 22)]
     b.apis["v3"] = {"host": 4, "path": "/api/v3/finds", "records": records,
                     "page_size": V3_PAGE}
+
+
+def _format_find(b: Builder, n: int) -> dict[str, Any]:
+    """Finds in pixel formats that trace must get right (issue 14): n=21 a 16-bit greyscale
+    TIFF whose values all lie above 255 (a clipping greyscale conversion would see a blank
+    page), n=22 a flat white PNG (a blank page: stored, flagged ``blank``, never a near copy).
+    """
+    key = f"find-{3000 + n}"
+    title, creator, date = b.person(key)
+    lic = Licence(None, _URL_FOR["CC-BY-4.0"], "CC-BY-4.0")  # this API gives licence URLs
+    if n == 21:
+        path = f"/media/finds/{key}.tif"
+        grey = np.asarray(b.picture(key, 560, 420, "lichen").convert("L"), dtype=np.uint32)
+        data = metadata.encode(Image.fromarray((grey * 240 + 3000).astype(np.uint16)), "TIFF")
+        note = "16-bit greyscale TIFF (values 3000..64200): hashed by its full 16-bit range"
+    else:
+        path = f"/media/finds/{key}.png"
+        data = png(Image.new("RGB", (400, 300), (255, 255, 255)))
+        note = "a flat white page: flagged blank, never reported as a near copy"
+    item = b.add(Item("api-linked", key, title, creator, date, lic, 4, path))
+    b.serve_image(item, data, "image/tiff" if n == 21 else "image/png")
+    item.note = note
+    if n == 22:
+        item.flags = ["blank"]
+    return {"ref": key, "label": title, "recorded_by": creator, "recorded_on": date,
+            "rights_text": item.licence.text, "rights_url": item.licence.url,
+            "file": {"url": item.image_url, "bytes": item.facts["bytes"]}}
 
 
 _URL_FOR = {

@@ -45,6 +45,10 @@ from collector.demo_site.hosts import (
     LAST_MODIFIED,
     RETRY_AFTER_FORM,
 )
+from collector.demo_site.iiif_archive import build_iiif
+from collector.demo_site.oai_content import build_oai, oai_manifest
+from collector.demo_site.pixel_cases import build_pixel_cases
+from collector.demo_site.tdm import build_reading_room
 
 ROBOTS_API = """# Fernhollow Field Society: API and media host
 User-agent: *
@@ -92,6 +96,10 @@ def generate(out_dir: Path, *, seed: int = SEED) -> dict[str, Any]:
     build_api_linked(b)
     build_gallery(b)
     build_scans(b)
+    build_oai(b)
+    iiif_source = build_iiif(b)
+    build_reading_room(b)
+    build_pixel_cases(b)
     hosts = _hosts_section(DEFAULT_RATE)
     b.put_page(4, "/policies/robots.txt", ROBOTS_ANNEX, "text/plain; charset=utf-8",
                role="robots")
@@ -113,10 +121,11 @@ def generate(out_dir: Path, *, seed: int = SEED) -> dict[str, Any]:
         "hosts": hosts,
         "policy": POLICY,
         "source_order": list(SOURCE_ORDER),
-        "sources": _sources_section(b),
+        "sources": [*_sources_section(b), iiif_source],
         "items": [it.to_json() for it in b.items],
         "resources": resources,
         "scans": b.scans,
+        "oai": oai_manifest(),
         "site_sha256": sha256_hex(site_bytes),
     }
     manifest["digest"] = manifest_digest(manifest)
@@ -140,6 +149,12 @@ def _sources_section(b: Builder) -> list[dict[str, Any]]:
          "page_size": GALLERY_PAGE, "total": sum(1 for i in b.items if i.source == "gallery")},
         {"name": "scanner", "kind": "scans", "path": "scans",
          "files": [s["file"] for s in b.scans]},
+        {"name": "oai-records", "kind": "oai_pmh", "host": b.apis["oai"]["host"],
+         "url": url(b.apis["oai"]["host"], b.apis["oai"]["path"]),
+         "page_size": b.apis["oai"]["page_size"], "total": len(b.apis["oai"]["records"])},
+        {"name": "reading-room", "kind": "html", "host": 2, "url": url(2, "/reading-room/"),
+         "total": sum(1 for i in b.items if i.source == "reading-room"),
+         "tdmrep": url(2, "/.well-known/tdmrep.json")},
     ]
 
 
@@ -164,7 +179,7 @@ def content_version() -> str:
     h = hashlib.sha256(f"{GENERATOR_VERSION}:{SEED}:{PIL.__version__}:{np.__version__}"
                        .encode())
     for name in ("art", "builder", "catalogue", "content", "generate", "hosts", "metadata",
-                 "pages"):
+                 "pages", "oai", "oai_content", "iiif_archive", "tdm"):
         h.update((Path(__file__).parent / f"{name}.py").read_bytes())
     return h.hexdigest()[:12]
 

@@ -32,6 +32,7 @@ from typing import Any
 
 from PIL import Image
 
+from collector.demo_site import hostile_iiif
 from collector.demo_site.loopback import LoopbackServer, send
 
 FORBIDDEN_HOST = "127.0.0.9"  # loopback, but not in the recipe's allow_addresses
@@ -265,6 +266,31 @@ def binary_robots(h: H, ctx: Ctx) -> None:
          {"Content-Type": "application/octet-stream"})
 
 
+# --- tdmrep.json (W3C TDM Reservation Protocol, see demo_site.tdm) -------------------------
+def _tdmrep(body: bytes, ctype: str = "application/json") -> Callable[[H, Ctx], None]:
+    def handle(h: H, ctx: Ctx) -> None:
+        send(h, 200, body, {"Content-Type": ctype})
+    return handle
+
+
+RESERVE_ALL = b'{"location": "/", "tdm-reservation": 1}'
+# 5 MB: a rule reserving everything, then padding rules; over the 512 KiB collector reads.
+tdmrep_5mb = _tdmrep(b"[" + RESERVE_ALL + b"," + b",".join(
+    [b'{"location": "/padding/of/a/very/long/file/", "tdm-reservation": 0}'] * 74_000) + b"]")
+tdmrep_invalid = _tdmrep(b'[{"location": "/", "tdm-reservation": 1},, oops')
+tdmrep_100k = _tdmrep(b"[" + b",".join([RESERVE_ALL] * 100_000) + b"]")
+
+
+def tdmrep_redirect_loop(h: H, ctx: Ctx) -> None:
+    """tdmrep.json redirects to itself forever."""
+    send(h, 302, headers={"Location": "/.well-known/tdmrep.json"})
+
+
+def tdmrep_down(h: H, ctx: Ctx) -> None:
+    """tdmrep.json answers 503 every time."""
+    send(h, 503, b"down", {"Content-Type": "text/plain"})
+
+
 # --- listings ------------------------------------------------------------------------------
 def deep_json(h: H, ctx: Ctx) -> None:
     """A JSON listing nested 100,000 arrays deep."""
@@ -332,6 +358,65 @@ def html_cycle(h: H, ctx: Ctx) -> None:
                            image=f"/good-{page}.png"), {"Content-Type": "text/html"})
 
 
+OAI_NS = "http://www.openarchives.org/OAI/2.0/"
+
+
+def _oai_envelope(inner: bytes, namespace: bool = True) -> bytes:
+    xmlns = f' xmlns="{OAI_NS}"'.encode() if namespace else b""
+    return (b'<?xml version="1.0" encoding="UTF-8"?>\n<OAI-PMH' + xmlns
+            + b"><responseDate>2025-03-01T09:00:00Z</responseDate><request>x</request>"
+            + inner + b"</OAI-PMH>")
+
+
+def _oai_identify() -> bytes:
+    return _oai_envelope(b"<Identify><repositoryName>trap</repositoryName><granularity>"
+                         b"YYYY-MM-DDThh:mm:ssZ</granularity><deletedRecord>no</deletedRecord>"
+                         b"</Identify>")
+
+
+def _oai_record(ctx: Ctx) -> bytes:
+    return (b"<record><header><identifier>oai:trap:" + ctx.name.encode() + b"</identifier>"
+            b"<datestamp>2025-03-01</datestamp></header><metadata><oai_dc:dc xmlns:oai_dc="
+            b'"http://www.openarchives.org/OAI/2.0/oai_dc/" xmlns:dc="http://purl.org/dc/'
+            b'elements/1.1/"><dc:title>t</dc:title><dc:rights>CC0-1.0</dc:rights>'
+            b"<dc:identifier>" + ctx.sites[ctx.name].encode() + b"/good-a.png</dc:identifier>"
+            b"</oai_dc:dc></metadata></record>")
+
+
+XML = {"Content-Type": "text/xml; charset=utf-8"}
+
+
+def oai_bomb(h: H, ctx: Ctx) -> None:
+    """Identify answers normally; ListRecords is a billion-laughs entity bomb."""
+    if "Identify" in h.path:
+        send(h, 200, _oai_identify(), XML)
+        return
+    body = (b'<?xml version="1.0"?>\n<!DOCTYPE OAI-PMH [\n' + _entities() + b"]>\n"
+            + _oai_envelope(b"<ListRecords>" + _oai_record(ctx).replace(
+                b"<dc:title>t</dc:title>", b"<dc:title>&l9;</dc:title>") + b"</ListRecords>"
+                )[len(b'<?xml version="1.0" encoding="UTF-8"?>\n'):])
+    send(h, 200, body, XML)
+
+
+def oai_endless_token(h: H, ctx: Ctx) -> None:
+    """Every ListRecords page hands out a fresh resumptionToken: the list never ends."""
+    if "Identify" in h.path:
+        send(h, 200, _oai_identify(), XML)
+        return
+    n = int(h.path.rsplit("resumptionToken=t", 1)[-1]) + 1 if "resumptionToken" in h.path else 1
+    body = _oai_envelope(b"<ListRecords>" + _oai_record(ctx)
+                         + b"<resumptionToken>t%d</resumptionToken></ListRecords>" % n)
+    send(h, 200, body, XML)
+
+
+def oai_no_namespace(h: H, ctx: Ctx) -> None:
+    """Every answer looks like OAI-PMH but has no namespace (§3.2 requires it)."""
+    inner = (b"<Identify><granularity>YYYY-MM-DD</granularity></Identify>"
+             if "Identify" in h.path else b"<ListRecords>" + _oai_record(ctx).replace(
+                 b"oai_dc:", b"").replace(b"dc:", b"") + b"</ListRecords>")
+    send(h, 200, _oai_envelope(inner, namespace=False), XML)
+
+
 # --- the table -----------------------------------------------------------------------------
 @dataclass(frozen=True)
 class Case:
@@ -339,8 +424,8 @@ class Case:
 
     kind "image": the lister lists one item (source_key = name) whose image URL is ``path`` on
     the case's own host; ``state``/``reason`` are that item's expected ledger outcome.
-    kind "json"/"html": a source of its own starting at ``path``; ``reason`` is the note kind
-    the source must leave (or None), and every item it lists must be stored.
+    kind "json"/"html"/"oai"/"iiif": a source of its own starting at ``path``; ``reason`` is
+    the note kind the source must leave (or None), and every item it lists must be stored.
     """
 
     name: str
@@ -353,6 +438,8 @@ class Case:
     flag: str | None = None  # a flag the stored file must carry
     robots: Callable[[H, Ctx], None] | None = None
     why: str = ""  # why this outcome is the right one (accepted cases)
+    tdmrep: Callable[[H, Ctx], None] | None = None  # /.well-known/tdmrep.json (else 404)
+    signal: str | None = None  # text the ledger's reservation_signals must hold for the item
 
 
 IMG = "/img/picture.png"
@@ -446,6 +533,22 @@ CASES: list[Case] = [
     Case("robots-redirect-loop", "robots.txt redirect loop", "image", IMG, serve(noise_image),
          "stored", None, robots=robots_redirect_loop,
          why="more than five redirects: unavailable, MAY access anything (RFC 9309 §2.3.1.2)"),
+    Case("tdmrep-5mb", "tdmrep.json of 5 MB reserving everything", "image", IMG,
+         serve(noise_image), "stored", None, tdmrep=tdmrep_5mb, signal="over 524,288 bytes",
+         why="over the 512 KiB read: no usable file, so no rules (TDMRep §3.1); recorded"),
+    Case("tdmrep-invalid", "tdmrep.json that is not valid JSON", "image", IMG,
+         serve(noise_image), "stored", None, tdmrep=tdmrep_invalid, signal="not valid JSON",
+         why="no usable file, so no rules (TDMRep §3.1); recorded in the ledger"),
+    Case("tdmrep-100k-rules", "tdmrep.json with 100,000 rules", "image", IMG,
+         serve(noise_image), "stored", None, tdmrep=tdmrep_100k, signal="treated as no file",
+         why="4 MB, over the 512 KiB read: no usable file (TDMRep §3.1); recorded"),
+    Case("tdmrep-redirect-loop", "tdmrep.json redirect loop", "image", IMG,
+         serve(noise_image), "stored", None, tdmrep=tdmrep_redirect_loop,
+         signal="redirect_blocked",
+         why="no representation is reached: the protocol is not implemented (TDMRep §3.1)"),
+    Case("tdmrep-503", "tdmrep.json answers 503 every time", "image", IMG,
+         serve(noise_image), "deferred", "tdmrep_unknown", tdmrep=tdmrep_down,
+         signal="http_503"),
     Case("name-dotdot", "Content-Disposition filename ../../..", "image", IMG,
          serve(noise_image, Content_Disposition=CD + '"../../../../escaped-dotdot.png"'),
          "stored", None, why="files are named by sha256; the server's name is ignored"),
@@ -473,6 +576,20 @@ CASES: list[Case] = [
          why="the page decodes to noise; the selector note says so"),
     Case("html-cycle", "HTML pagination that cycles", "html", "/list/a", html_cycle,
          reason="loop"),
+    Case("oai-xml-bomb", "OAI-PMH ListRecords with an entity-expansion bomb", "oai", "/oai",
+         oai_bomb, reason="not_oai_pmh", why="defusedxml refuses the DTD; nothing expanded"),
+    Case("oai-endless-token", "OAI-PMH resumptionToken that never ends", "oai", "/oai",
+         oai_endless_token, reason="max_pages", why="bounded by max_pages = 5"),
+    Case("oai-no-namespace", "OAI-PMH answers without the OAI namespace", "oai", "/oai",
+         oai_no_namespace, reason="not_oai_pmh", why="the root element is not OAI-PMH 2.0"),
+    Case("iiif-self-manifest", "IIIF manifest that lists itself (and is listed twice)", "iiif",
+         hostile_iiif.START, hostile_iiif.self_listing_manifest, reason="loop",
+         why="every document is read once; its one canvas is stored"),
+    Case("iiif-collection-cycle", "IIIF collection cycle (A -> B -> A)", "iiif",
+         hostile_iiif.START, hostile_iiif.collection_cycle, reason="loop"),
+    Case("iiif-billion-pixels", "IIIF info.json claiming 10^9 x 10^9 pixels", "iiif",
+         hostile_iiif.START, hostile_iiif.billion_pixels, reason=None,
+         why="only the target size is asked for (!2048,2048), never the full size"),
 ]
 CASE_NAMES = [c.name for c in CASES]
 
@@ -492,12 +609,14 @@ class Ctx:
 
 
 DEFAULT_ROBOTS = (200, b"User-agent: *\nAllow: /\n", {"Content-Type": "text/plain"})
+NO_TDMREP = (404, b"no tdmrep.json here", {"Content-Type": "text/plain"})
 
 
 def case_server(ctx: Ctx, host: str = "127.0.0.1",
                 handler: Callable[[H, Ctx], None] | None = None,
                 robots: Callable[[H, Ctx], None] | None = None,
-                routes: dict[str, Callable[[H, Ctx], None]] | None = None) -> LoopbackServer:
+                routes: dict[str, Callable[[H, Ctx], None]] | None = None,
+                tdmrep: Callable[[H, Ctx], None] | None = None) -> LoopbackServer:
     """One loopback server: robots.txt (allow all unless given), ``routes`` by path prefix,
     ``handler`` for everything else; its ``hits`` log every request."""
     def bind(route: Callable[[H, Ctx], None]) -> Callable[[H], None]:
@@ -505,6 +624,7 @@ def case_server(ctx: Ctx, host: str = "127.0.0.1",
 
     server = LoopbackServer(host)
     server.route("/robots.txt", DEFAULT_ROBOTS if robots is None else bind(robots))
+    server.route("/.well-known/tdmrep.json", NO_TDMREP if tdmrep is None else bind(tdmrep))
     server.prefixes.update({prefix: bind(r) for prefix, r in (routes or {}).items()})
     server.fallback = None if handler is None else bind(handler)
     return server
@@ -535,7 +655,7 @@ class HostileArchive:
             routes = {f"/good-{p}": _good(f"{case.name}-{p}") for p in ("a", "b")}
             routes["/good"] = _good(f"{case.name}-good")
             self._add(case.name, case_server(ctx(case.name), handler=case.handler,
-                                      robots=case.robots, routes=routes))
+                                      robots=case.robots, routes=routes, tdmrep=case.tdmrep))
         self.lister = self._add("lister", case_server(ctx("lister"), routes={
             "/api/items": self._listing, "/good.png": _good("normal")}))
 
@@ -601,6 +721,21 @@ items = "items"
 id = "id"
 image_url = "image"
 licence = "licence"
+""")
+            elif case.kind == "oai":
+                parts.append(f"""
+[[sources]]
+name = "{case.name}"
+kind = "oai_pmh"
+url = "{self.url(case)}"
+max_pages = 5
+""")
+            elif case.kind == "iiif":
+                parts.append(f"""
+[[sources]]
+name = "{case.name}"
+kind = "iiif"
+url = "{self.url(case)}"
 """)
             elif case.kind == "html":
                 parts.append(f"""

@@ -100,6 +100,12 @@ def judge(ledger: Any, case: Case) -> Verdict:
             problems.append("no detail text")
         if case.flag and case.flag not in flags:
             problems.append(f"flags {flags}, expected {case.flag!r}")
+        if case.signal:
+            seen = [r["value"] for r in ledger.query(
+                "SELECT r.value FROM reservation_signals r JOIN items i ON i.id = r.item_id "
+                "WHERE i.source_key = ?", (case.name,))]
+            if not any(case.signal in v for v in seen):
+                problems.append(f"reservation signals {seen}, expected {case.signal!r}")
         return Verdict(case, outcome, reason, not problems, problems)
     notes = [r["kind"] for r in ledger.query(
         "SELECT n.kind FROM notes n JOIN sources s ON s.id = n.source_id WHERE s.name = ?",

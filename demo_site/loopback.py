@@ -81,6 +81,9 @@ class LoopbackServer:
 
         class _H(BaseHTTPRequestHandler):
             protocol_version = "HTTP/1.1"
+            # Headers and body go out in separate writes: without TCP_NODELAY the body waits for
+            # the client's delayed ACK (about 40 ms on Linux) on every answer.
+            disable_nagle_algorithm = True
 
             def do_GET(self) -> None:
                 with server._lock:

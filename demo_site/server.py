@@ -29,6 +29,8 @@ from typing import Any, cast
 from urllib.parse import parse_qs, urlsplit
 
 from collector.demo_site.hosts import DEFAULT_RATE, HOSTS
+from collector.demo_site.oai import Repository
+from collector.demo_site.oai_content import OAI_MISBEHAVIOURS
 
 TEXT = "text/plain; charset=utf-8"
 HTML = "text/html; charset=utf-8"
@@ -53,6 +55,8 @@ class RequestRecord:
     bytes: int
     user_agent: str | None
     host_header: str | None
+    if_none_match: str | None = None  # the conditional request's validators (RFC 9110 §13.1)
+    if_modified_since: str | None = None
 
     def to_json(self) -> dict[str, Any]:
         return asdict(self)
@@ -133,6 +137,16 @@ class Site:
             int(h): r for h, r in self.site["routes"].items()}
         self.hosts: dict[int, Any] = {int(h): v for h, v in self.site["hosts"].items()}
         self.apis = self.site["apis"]
+        oai = self.apis.get("oai")
+        self.oai = None if oai is None else Repository.from_json(
+            oai, self.base(oai["host"]) + oai["path"], port)
+        self.arm()
+
+    def arm(self) -> None:
+        """Arm the OAI-PMH feed's one-off misbehaviours again (an expired token, a 503)."""
+        if self.oai is not None:
+            self.oai.arm(expire_token=bool(OAI_MISBEHAVIOURS["expire_token"]),
+                         unavailable=int(OAI_MISBEHAVIOURS["unavailable"]))
 
     def base(self, host: int) -> str:
         return f"http://{HOSTS[host]}:{self.port}"
@@ -186,7 +200,8 @@ class Site:
                   ("Cache-Control", "max-age=3600")]
         if _not_modified(headers, etag, last_modified):
             return Reply(304, b"", common)
-        return Reply(200, body, [("Content-Type", route["content_type"]), *common])
+        extra = [(str(k), str(v)) for k, v in route.get("headers", [])]
+        return Reply(200, body, [("Content-Type", route["content_type"]), *common, *extra])
 
     def _api(self, host: int, path: str, query: dict[str, list[str]]) -> Reply | None:
         for name, api in self.apis.items():
@@ -201,6 +216,11 @@ class Site:
                     return Reply.json(404, {"error": "no such record"}, self.port)
                 return Reply.json(200, detail, self.port)
         return None
+
+    def _list_oai(self, api: dict[str, Any], query: dict[str, list[str]]) -> Reply:
+        assert self.oai is not None
+        status, body, headers = self.oai.respond({k: v[-1] for k, v in query.items()})
+        return Reply(status, body, list(headers.items()))
 
     def _list_v1(self, api: dict[str, Any], query: dict[str, list[str]]) -> Reply:
         page = _int_param(query, "page", 1, 1, 10_000)
@@ -272,6 +292,9 @@ class _HostServer(ThreadingHTTPServer):
 
 class _Handler(BaseHTTPRequestHandler):
     protocol_version = "HTTP/1.1"
+    # Headers and body go out in separate writes: without TCP_NODELAY the body waits for
+    # the client's delayed ACK (about 40 ms on Linux) on every answer.
+    disable_nagle_algorithm = True
     server_version = "FernhollowArchive/1"
     timeout = 5  # idle keep-alive connections end after this many seconds
     server: _HostServer
@@ -374,6 +397,20 @@ class DemoServer:
                  tb: TracebackType | None) -> None:
         self.stop()
 
+    # -- the archive months later (re-check tests) --
+    def change_archive(self, **changes: Any) -> Any:
+        """Change some objects in memory (:func:`collector.demo_site.changes.change_archive`);
+        ``restore_archive`` undoes it."""
+        from collector.demo_site.changes import change_archive
+
+        assert self.site is not None, "start the server first"
+        return change_archive(self.site, **changes)
+
+    def restore_archive(self) -> None:
+        """Serve the archive as generated again."""
+        if self.site is not None:
+            self.site = Site(self.content_dir, self.port)
+
     # -- addresses --
     def base_url(self, host_index: int) -> str:
         """``http://127.0.0.N:PORT`` for host 1-4."""
@@ -404,6 +441,8 @@ class DemoServer:
             self._buckets = {h: TokenBucket(r, self.burst or max(1.0, r / 2))
                              for h, r in self.rates.items() if r > 0}
             self._maintenance_left = dict(self.maintenance)
+            if self.site is not None:
+                self.site.arm()
 
     # -- request handling --
     def _handle(self, req: _Handler, method: str) -> None:
@@ -425,7 +464,9 @@ class DemoServer:
                             host=HOSTS[host], host_index=host, method=method, path=req.path,
                             status=reply.status, bytes=sent,
                             user_agent=req.headers.get("User-Agent"),
-                            host_header=req.headers.get("Host"))
+                            host_header=req.headers.get("Host"),
+                            if_none_match=req.headers.get("If-None-Match"),
+                            if_modified_since=req.headers.get("If-Modified-Since"))
         with self._lock:
             self._log.append(rec)
             if self._log_file:

@@ -20,8 +20,8 @@ Public API::
     get_kind(name)                            -> SourceKind (SourceKindError if not usable)
     find_kind(name)                           -> SourceKind | None (for describing old ledgers)
     validate_source(table, key_prefix)        -> list[RecipeProblem]
-    iter_candidates(source, fetcher, notes, base_dir) -> Iterator[Candidate]
-    Candidate, SourceKind, SourceNote, PageFetcher, Page
+    iter_candidates(source, fetcher, notes, base_dir, state=None) -> Iterator[Candidate]
+    Candidate, ListingState, SourceKind, SourceNote, PageFetcher, Page
 
 Nothing outside this package names a kind: the rest of collector asks the kind object.
 """
@@ -40,6 +40,7 @@ from collector.errors import SourceKindError
 from collector.schema import Key, Problems, check_table, did_you_mean, item_condition
 from collector.sources.base import (
     Candidate,
+    ListingState,
     NoteSink,
     Page,
     PageFetcher,
@@ -52,6 +53,7 @@ from collector.sources.base import (
 __all__ = [
     "ENTRY_POINT_GROUP",
     "Candidate",
+    "ListingState",
     "NoteSink",
     "Page",
     "PageFetcher",
@@ -75,6 +77,8 @@ COMMON_KEYS: dict[str, Key] = {
     "kind": Key("str", required=True),
     # decided by the run before any image request (collector.checks.conditions)
     "keep_if": Key("str", "", check=item_condition),
+    "former_names": Key("list[str]", hint="names this source had before (a rename keeps the "
+                                          "source's history in the ledger)"),
 }
 
 _lock = threading.RLock()
@@ -208,9 +212,13 @@ def validate_source(table: Mapping[str, Any], key_prefix: str) -> list[RecipePro
 
 
 def iter_candidates(
-    source: Mapping[str, Any], fetcher: PageFetcher | None, notes: NoteSink, base_dir: Path
+    source: Mapping[str, Any], fetcher: PageFetcher | None, notes: NoteSink, base_dir: Path,
+    state: ListingState | None = None,
 ) -> Iterator[Candidate]:
     """Yield the Candidates of one source; source-level problems go to notes, not exceptions.
+
+    With ``state`` (the run passes the source's remembered :class:`ListingState`), a kind
+    that has ``list_changes`` lists only what changed since its previous complete listing.
 
     Raises SourceError only when the table itself is invalid (validate_source should have caught
     that when the recipe was loaded).
@@ -222,5 +230,8 @@ def iter_candidates(
         raise SourceError(name, None, f"invalid source table ({detail}); fix the recipe")
     kind = get_kind(str(source["kind"]))
     # A kind that says it needs no network is not handed the fetcher.
-    yield from kind.list_candidates(source, fetcher if kind.uses_network else None, notes,
-                                    Path(base_dir))
+    pages = fetcher if kind.uses_network else None
+    if state is not None and kind.list_changes is not None:
+        yield from kind.list_changes(source, pages, notes, Path(base_dir), state)
+    else:
+        yield from kind.list_candidates(source, pages, notes, Path(base_dir))

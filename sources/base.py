@@ -23,6 +23,8 @@ __all__ = [
     "CheckSource",
     "FetchError",
     "ListCandidates",
+    "ListChanges",
+    "ListingState",
     "NoteSink",
     "Page",
     "PageFetcher",
@@ -50,6 +52,13 @@ class Candidate:
     content: bytes | None = None
     parent_key: str | None = None
     crop_box: tuple[int, int, int, int] | None = None
+    # Set when the archive itself says the record was withdrawn (e.g. an OAI-PMH record with
+    # status="deleted"): why, in the archive's words. Such a candidate has no image; the run
+    # marks an item it already has as withdrawn by the archive instead of fetching anything.
+    withdrawn: str | None = None
+    # How the image URL's size was chosen, when the source negotiated it (IIIF: the image
+    # service, its full size, the size asked for and why); kept in items.size_request.
+    size_request: dict | None = None
 
 
 @dataclass
@@ -99,11 +108,34 @@ class PageFetcher(Protocol):
         params: Mapping[str, str] | None = None,
         headers: Mapping[str, str] | None = None,
         secret_params: Iterable[str] = (),
+        keep_for: float = 0.0,
     ) -> Page: ...
+
+
+class ListingState:
+    """What one listing of a source hands on to the next run of the same source.
+
+    ``previous`` is the value the last *complete* listing remembered (None the first time);
+    a kind calls :meth:`remember` once its listing has reached the end cleanly (e.g. the
+    OAI-PMH ``responseDate`` of a harvest, to ask only ``from`` it next time). The run keeps
+    ``reached`` only when the run finished, the listing was not cut short, and every item
+    listed in this run was settled; otherwise the next run starts from ``previous`` again.
+    The value is opaque text to everyone but the kind.
+    """
+
+    def __init__(self, previous: str | None = None) -> None:
+        self.previous = previous
+        self.reached: str | None = None
+
+    def remember(self, value: str) -> None:
+        """The listing reached its end cleanly; ``value`` is where the next one may start."""
+        self.reached = value
 
 
 ListCandidates = Callable[[Mapping[str, Any], PageFetcher | None, NoteSink, Path],
                           Iterator[Candidate]]
+ListChanges = Callable[[Mapping[str, Any], PageFetcher | None, NoteSink, Path, ListingState],
+                       Iterator[Candidate]]
 CheckSource = Callable[[Mapping[str, Any], str, Problems], None]
 
 
@@ -128,6 +160,9 @@ class SourceKind:
       read page by page").
     - ``collection_type``: the Croissant RAI ``rai:dataCollectionType`` term for it ("Web API",
       "Web Scraping", "Manual Human Curator", ... or "Others").
+    - ``list_changes(source, fetcher, notes, base_dir, state)``: optional; a kind that can
+      list only what changed since its previous complete listing (incremental harvesting)
+      gets the source's :class:`ListingState` here instead of ``list_candidates``.
     """
 
     name: str
@@ -137,6 +172,7 @@ class SourceKind:
     mechanism: str
     collection_type: str
     check: CheckSource | None = None
+    list_changes: ListChanges | None = None
 
 
 class OnceNotes:

@@ -45,13 +45,25 @@ KEYS: dict[str, Key] = {
     "split": Key("table"),
     "allow_outside_links": Key("bool"),
 }
+
+
+def _check_background(value: Any) -> str | None:
+    """The bed as the curator states it: "light", "dark" or a colour "#rrggbb"."""
+    if value in ("light", "dark") or re.fullmatch(r"#[0-9A-Fa-f]{6}", str(value)):
+        return None
+    return f'must be "light", "dark" or a colour written "#rrggbb", got {value!r}'
+
+
 SPLIT_KEYS: dict[str, Key] = {
     "min_area": Key("int", check=at_least(1)),
     "padding": Key("int", check=at_least(0)),
     "deskew": Key("bool"),
     "threshold": Key("int", check=between(0, 254)),
     "min_solidity": Key("float", check=between(0, 1, open_low=True)),
+    "background": Key("str", check=_check_background),
 }
+
+
 
 # Baseline TIFF / Exif IFD0 tags a scanner writes (standards.md §6.1 for 271, 272, 306; TIFF 6.0
 # for 282, 283, 296, 305 — from memory).
@@ -285,10 +297,16 @@ def _split(scan: _ScanFile, im: Image.Image, split: Mapping[str, Any],
     result = splitter.analyse_scan(
         im, min_area=int(split.get("min_area", splitter.DEFAULT_MIN_AREA)),
         threshold=split.get("threshold"),
-        min_solidity=float(split.get("min_solidity", splitter.DEFAULT_MIN_SOLIDITY)))
+        min_solidity=float(split.get("min_solidity", splitter.DEFAULT_MIN_SOLIDITY)),
+        background=split.get("background"))
     yield scan.whole({**scan.metadata, "role": "scan", "items": len(result.items),
                       "split": {"threshold": result.threshold,
-                                "contrast": round(result.contrast, 1), "scale": result.scale}})
+                                "contrast": round(result.contrast, 1), "scale": result.scale,
+                                "background": result.background}})
+    if not result.sure:
+        notes.add("unsure_background", rel, f"{rel}: the edges of the scan disagree about the "
+                  f"bed's colour; split as a {result.background} bed. If that is wrong, state "
+                  'it: [sources.split] background = "light", "dark" or "#rrggbb"')
     if result.blank:
         notes.add("blank_scan", rel, f"{rel}: no items found on the scanner bed (contrast "
                   f"{result.contrast:.0f} grey levels); the scan is kept without crops")

@@ -81,7 +81,7 @@ def test_check_prints_the_settings_as_toml(tmp_path: Path,
             assert value == settings[section][key], line
             seen += 1
     assert seen == sum(len(settings[s]) for s in ("budgets", "network", "licences", "images",
-                                                  "stop"))
+                                                  "stop", "items", "reservations"))
     assert "    allow_unknown = false" in text and '    near_duplicates = "keep"' in text
     assert '    headers = { X-Note = "a \\"b\\"" }' in text
     assert '  sources[1] ("api"): kind = "json_api"' in text

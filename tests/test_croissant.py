@@ -91,14 +91,14 @@ def test_image_records_load_and_join_to_provenance(coll: Path, export: ExportRes
     pixel size the ledger recorded, and each file name joins to a provenance row."""
     ds = mlc.Dataset(jsonld=export.out / "croissant.json")
     ledger = accepted(coll)
-    by_name = {sha[:16]: sha for sha in ledger}
+    by_name = {sha[:12]: sha for sha in ledger}  # readable names end in 12 hex digits
     seen = []
     image_sets = [rs.uuid for rs in ds.metadata.record_sets if rs.uuid.startswith("images-")]
     assert sorted(image_sets) == ["images-jpg", "images-png"]
     for rs in image_sets:
         for r in ds.records(rs):
             name = r[f"{rs}/file_name"].decode()
-            sha = by_name[name.split(".")[0]]
+            sha = by_name[name.split(".")[0][-12:]]
             assert r[f"{rs}/image"].size == ledger[sha]
             data = (export.out / "images" / name).read_bytes()
             assert hashlib.sha256(data).hexdigest() == sha  # FIPS 180-4

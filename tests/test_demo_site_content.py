@@ -21,7 +21,9 @@ REASONS = {
     None, "licence_not_allowed", "licence_unknown", "robots_disallowed", "robots_unreachable",
     "exact_duplicate", "near_duplicate", "not_an_image", "broken_image", "too_small",
     "bad_aspect", "decompression_bomb", "too_large", "http_404", "timeout", "connection",
-    "unsafe_url", "redirect_blocked", "host_parked",
+    "unsafe_url", "redirect_blocked", "host_parked", "rights_statement_not_allowed",
+    # reservations against text-and-data mining (collector.checks.reservations)
+    "tdmrep_reserved", "noai_directive", "xmp_data_mining",
 }
 
 
@@ -88,12 +90,19 @@ def test_expected_licence_outcome_follows_the_policy_allowlist(manifest: dict[st
     allow = set(manifest["policy"]["licence_allow"])
     for item in manifest["items"]:
         spdx = item["expected_spdx"]
-        if spdx is None:
+        statement = item.get("rights_statement")
+        if spdx is None and statement is not None:  # decided by its rs:<id> entry alone
+            if f"rs:{statement}" not in allow:
+                assert (item["state"], item["reason"]) == (
+                    "skipped", "rights_statement_not_allowed"), item
+            else:
+                assert item["state"] != "skipped", item
+        elif spdx is None:
             assert (item["state"], item["reason"]) == ("skipped", "licence_unknown"), item
         elif spdx not in allow:
             assert (item["state"], item["reason"]) == ("skipped", "licence_not_allowed")
-        else:
-            assert item["state"] != "skipped", item
+        else:  # an allowed licence is skipped only for a reservation (README, "Reservations")
+            assert item["state"] != "skipped" or item["reason"] == "tdmrep_reserved", item
     # licence written many ways (standards.md §7 URL forms)
     urls = {i["licence_url"] for i in manifest["items"] if i["licence_url"]}
     assert any(u.endswith("/deed.en") for u in urls)
@@ -184,6 +193,8 @@ def test_deliberately_broken_files_fail_the_way_the_manifest_says(
 
 
 def _hashes(im: Image.Image) -> tuple[imagehash.ImageHash, imagehash.ImageHash]:
+    if im.mode.startswith("I;16"):  # 0..65535 (Pillow handbook, modes) scaled, not clipped
+        im = Image.fromarray((np.asarray(im) / 257).round().astype(np.uint8))
     rgb = im.convert("RGB")
     return imagehash.phash(rgb), imagehash.phash(ImageOps.mirror(rgb))
 
@@ -195,8 +206,8 @@ def test_near_duplicates_are_close_and_unrelated_pictures_are_far(
     threshold = manifest["policy"]["near_distance"]
     hashes = {}
     for item in manifest["items"]:
-        if item["deliberate"] or item["sha256"] is None:
-            continue
+        if item["deliberate"] or item["sha256"] is None or "blank" in item["flags"]:
+            continue  # a blank page has no shape to hash (issue 14)
         with Image.open(_file_of(demo_content, item)) as im:
             hashes[(item["source"], item["key"])] = _hashes(im)
     for scan in manifest["scans"]:
@@ -262,3 +273,15 @@ def test_manifest_is_json_with_relative_paths_only(demo_content: Path) -> None:
     assert str(demo_content) not in text
     data = json.loads(text)
     assert data["format"] == "fernhollow-demo-manifest/1"
+
+
+def test_iiif_collection_states_its_expected_sizes_and_rights(manifest: dict[str, Any]) -> None:
+    """The IIIF part lists every canvas with the size a correct client asks for (IIIF Image
+    API 3.0 §4.2/§5, 2.1 §4.2/§5) and the RightsStatements.org statements it uses."""
+    items = [i for i in manifest["items"] if i["source"] == "iiif"]
+    sizes = {i["iiif_size"] for i in items}
+    assert {"!400,300", "600,450", "512,", "!512,384"} == sizes
+    assert all(i["image_url"].endswith(f"/full/{i['iiif_size']}/0/default.jpg") for i in items)
+    assert {i.get("rights_statement") for i in items} >= {"NoC-US", "InC"}
+    source = next(s for s in manifest["sources"] if s["name"] == "iiif")
+    assert source["total"] == len(items) == 6

@@ -11,7 +11,8 @@ from datetime import UTC, datetime
 from email.utils import parsedate_to_datetime
 from pathlib import Path
 from typing import Any
-from urllib.parse import urljoin, urlsplit
+from urllib.parse import quote, urljoin, urlsplit
+from xml.etree import ElementTree
 
 import pytest
 from bs4 import BeautifulSoup
@@ -232,8 +233,38 @@ def _crawl(server: DemoServer) -> tuple[dict[tuple[str, str], str], set[str]]:
             assert detail.select_one('a[rel="license"]') or detail.select_one(".licence")
         nxt = soup.select_one("a[rel=next]")
         url = urljoin(base, nxt["href"]) if nxt else None
+    _crawl_oai(server, listed)
+    for start in ("/reading-room/", "/reading-room/closed/"):  # reservations (demo_site.tdm)
+        listing = server.url(2, start)
+        for card in BeautifulSoup(fetch(listing)[2], "html.parser").select("li.card a.record"):
+            detail_url = urljoin(listing, card["href"])
+            detail = BeautifulSoup(fetch(detail_url)[2], "html.parser")
+            key = detail_url.rsplit("/", 1)[1].removesuffix(".html")
+            listed[("reading-room", key)] = urljoin(detail_url,
+                                                    detail.select_one("figure img.full")["src"])
     referenced.update(listed.values())
     return listed, referenced
+
+
+def _crawl_oai(server: DemoServer, listed: dict[tuple[str, str], str]) -> None:
+    """List the OAI-PMH feed (OAI-PMH 2.0 §4.6 ListRecords, §3.5 resumptionToken) with its
+    one-off misbehaviours disarmed; deleted records (§2.5.1) list no image."""
+    assert server.site is not None and server.site.oai is not None
+    server.site.oai.arm(expire_token=False, unavailable=0)
+    ns = {"o": "http://www.openarchives.org/OAI/2.0/", "dc": "http://purl.org/dc/elements/1.1/"}
+    query = "verb=ListRecords&metadataPrefix=oai_dc"
+    while query:
+        root = ElementTree.fromstring(fetch(server.url(4, f"/oai?{query}"))[2])
+        for record in root.iterfind("o:ListRecords/o:record", ns):
+            if record.find("o:header", ns).get("status") == "deleted":
+                continue
+            key = record.findtext("o:header/o:identifier", namespaces=ns)
+            image = [v.text for v in record.iterfind(".//dc:identifier", ns)
+                     if v.text.endswith(".png")]
+            listed[("oai-records", key)] = image[0]
+        token = root.findtext("o:ListRecords/o:resumptionToken", namespaces=ns)
+        query = f"verb=ListRecords&resumptionToken={quote(token)}" if token else ""
+    server.site.arm()
 
 
 def test_every_listed_item_has_exactly_one_expected_outcome(
@@ -241,8 +272,38 @@ def test_every_listed_item_has_exactly_one_expected_outcome(
     """Items found by crawling all endpoints match the manifest items one to one."""
     listed, _ = _crawl(fast_server)
     expected = {(i["source"], i["key"]): fast_server.fill(i["image_url"])
-                for i in manifest["items"]}
+                for i in manifest["items"] if i["source"] != "iiif"}
     assert listed == expected
+
+
+def _crawl_iiif(server: DemoServer, url: str) -> Iterator[tuple[str, dict[str, Any]]]:
+    """(canvas id, image service) of every canvas below a IIIF collection (Presentation 3.0 §3:
+    items of Collections and Manifests; 2.1: sequences -> canvases -> images -> resource)."""
+    doc = json.loads(fetch(url)[2])
+    for entry in doc.get("items", []):
+        if entry["type"] in ("Collection", "Manifest"):
+            yield from _crawl_iiif(server, entry["id"])
+        elif entry["type"] == "Canvas":
+            body = entry["items"][0]["items"][0]["body"]
+            yield entry["id"], body["service"][0]
+    for seq in doc.get("sequences", []):
+        for canvas in seq["canvases"]:
+            yield canvas["@id"], canvas["images"][0]["resource"]["service"]
+
+
+def test_iiif_canvases_match_the_manifest_and_serve_the_expected_size(
+        fast_server: DemoServer, manifest: dict[str, Any]) -> None:
+    """Every canvas of the IIIF collection is a manifest item; its info.json answers, and the
+    one size a correct client asks for (manifest "iiif_size") is served at that size."""
+    top = fast_server.url(4, "/iiif/collection.json")
+    found = dict(_crawl_iiif(fast_server, top))
+    items = {i["key"]: i for i in manifest["items"] if i["source"] == "iiif"}
+    assert set(found) == set(items)
+    for key, service in found.items():
+        service_id = service.get("id") or service["@id"]
+        assert fetch(f"{service_id}/info.json")[0] == 200
+        status, _, body = fetch(fast_server.fill(items[key]["image_url"]))
+        assert status == 200 and len(body) == items[key]["bytes"], key
 
 
 def test_every_referenced_image_url_exists_or_is_deliberately_broken(
@@ -297,6 +358,7 @@ def test_recipes_render_to_toml_with_port_scans_and_loopback_only(tmp_path: Path
                     assert parts.port == 43210
     demo = tomllib.loads(recipes.render("demo", 1, tmp_path / "scans"))
     assert [s["name"] for s in demo["sources"]] == ["api-pages", "api-objects", "api-linked",
-                                                     "gallery", "scanner"]
-    assert demo["sources"][-1]["path"] == (tmp_path / "scans").as_posix()
+                                                     "gallery", "scanner", "oai-records", "iiif",
+                                                     "reading-room"]
+    assert demo["sources"][4]["path"] == (tmp_path / "scans").as_posix()
     assert demo["sources"][1]["detail"]["url"].endswith("/api/v2/objects/{id}")

@@ -145,7 +145,7 @@ class OnePage:
     def get_page(self, url: str, *, purpose: str = "listing", item_id: int | None = None,
                  params: Mapping[str, str] | None = None,
                  headers: Mapping[str, str] | None = None,
-                 secret_params: Iterable[str] = ()) -> Page:
+                 secret_params: Iterable[str] = (), keep_for: float = 0.0) -> Page:
         self.calls += 1
         return Page(url + f"?n={self.calls}", 200,
                     CaseInsensitiveDict({"Content-Type": self.ctype}), self.body, None)

@@ -9,6 +9,7 @@ timestamps, never from the client's own claims.
 from __future__ import annotations
 
 import itertools
+import json
 from collections import Counter
 from pathlib import Path
 from typing import Any
@@ -63,8 +64,9 @@ def test_every_manifest_item_ends_in_its_expected_state(demo_run, demo_server) -
     assert result.outcome == "finished"
     with col.ledger(readonly=True) as ledger:
         notes = ledger.query("SELECT kind, url, message FROM notes")
-    assert {n["kind"] for n in notes} == {"touching_items", "blank_scan"}, [
-        n["message"] for n in notes]
+    expected_notes = {"touching_items", "blank_scan",
+                      *demo_server.manifest["oai"]["expected_notes"]}
+    assert {n["kind"] for n in notes} == expected_notes, [n["message"] for n in notes]
     keyed = ledger_items(col)
     wrong = []
     for item in demo_server.manifest["items"]:
@@ -129,6 +131,63 @@ def test_conflicting_embedded_licence_and_gps_are_flagged(demo_run, demo_server)
             assert "licence_conflict" in flags[item["sha256"]], item["key"]
         if "gps" in item["flags"]:
             assert "gps" in flags[item["sha256"]], item["key"]
+        if item["state"] == "stored":  # a flat page is blank; nothing else is (issue 14)
+            assert ("blank" in flags[item["sha256"]]) == ("blank" in item["flags"]), item["key"]
+
+
+def test_new_pixel_formats_trace_right(demo_run, demo_server, demo_content,
+                                       tmp_path: Path) -> None:
+    """The 16-bit TIFF's 8-bit version (value / 257, Pillow handbook modes) traces as a near
+    copy of it; the CMYK JPEG's and the animated GIF's RGB versions trace to them; another
+    flat white page is no match (a blank page is never a copy of anything)."""
+    import numpy as np
+    from PIL import Image
+
+    from collector.exports.trace import Tracer
+
+    col, _, _ = demo_run
+    by_key = {i["key"]: i for i in demo_server.manifest["items"]}
+
+    def served(key: str) -> Path:
+        item = by_key[key]
+        return demo_content / "site" / str(item["image_host"]) / item["image_path"].lstrip("/")
+
+    with Image.open(served("find-3021")) as im:
+        eight = Image.fromarray((np.asarray(im) / 257).round().astype(np.uint8))
+    eight.save(tmp_path / "tiff-as-8-bit.png")
+    for key in ("FH-S-0009", "FH-S-0007"):  # the CMYK JPEG, the animated GIF
+        with Image.open(served(key)) as im:
+            im.convert("RGB").save(tmp_path / f"{key}.jpg", quality=85)
+    Image.new("L", (320, 240), 255).save(tmp_path / "white.jpg")
+    with Tracer.open(col.root) as tracer:
+        for name, key in (("tiff-as-8-bit.png", "find-3021"), ("FH-S-0009.jpg", "FH-S-0009"),
+                          ("FH-S-0007.jpg", "FH-S-0007")):
+            result = tracer.trace_file(tmp_path / name)
+            assert result.kind == "near", name
+            assert result.near[0].file.sha256 == by_key[key]["sha256"], name
+        assert tracer.trace_file(tmp_path / "white.jpg").kind == "none"
+
+
+def test_the_oai_feed_is_harvested_through_its_misbehaviours(demo_run, demo_server) -> None:
+    """The OAI-PMH feed: its 503 waited out, its expired token restarted the list, both sets
+    and no item for the deleted record; the harvest's responseDate is kept for next time."""
+    col, log, _ = demo_run
+    feed = demo_server.manifest["oai"]
+    oai = [r for r in log if r.host_index == 4 and r.path.startswith("/oai?")]
+    busy = next(i for i, r in enumerate(oai) if r.status == 503)
+    # OAI-PMH 2.0 §3.5.1 flow control: 503 with Retry-After (1 s here, RFC 9110 §10.2.3)
+    assert oai[busy + 1].path == oai[busy].path and oai[busy + 1].t - oai[busy].t >= 1.0
+    # §3.6 badResumptionToken: the list was asked for from its start a second time
+    assert sum("metadataPrefix=oai_dc" in r.path for r in oai) == 2
+    keyed = ledger_items(col)
+    assert ("oai-records", feed["deleted"][0]) not in keyed
+    sets = {s for (source, _), row in keyed.items() if source == "oai-records"
+            for s in json.loads(row["metadata"])["oai"]["sets"]}
+    assert sets == set(feed["sets"])
+    with col.ledger(readonly=True) as ledger:
+        kept = ledger.query("SELECT l.value FROM listing_states l JOIN sources s "
+                            "ON s.id = l.source_id WHERE s.name = 'oai-records'")
+    assert [r["value"] for r in kept] == [feed["response_date"]]
 
 
 def test_mirror_host_with_robots_503_got_only_its_robots_request(demo_run) -> None:
@@ -168,6 +227,7 @@ def test_no_image_was_requested_twice(demo_run) -> None:
     refetched)."""
     _, log, _ = demo_run
     images = Counter(r.path for r in log if r.status == 200 and "/api/" not in r.path
+                     and not r.path.startswith("/oai?")  # OAI-PMH listing requests
                      and not r.path.endswith(("/", ".html", "robots.txt")))
     assert [p for p, n in images.items() if n > 1] == []
 
@@ -185,8 +245,10 @@ def test_status_numbers_add_up_and_match_the_server_log(demo_run, demo_server) -
     assert all(h.errors <= h.requests for h in s.hosts)
     mirror = next(h for h in s.hosts if h.host.startswith("127.0.0.3:"))
     assert (mirror.requests, mirror.errors) == (1, 1)  # its robots.txt, answered 503
+    # every image robots.txt kept us from, and its tdmrep.json (asked through the same
+    # polite fetcher, so held back by the same robots.txt)
     assert mirror.held_back == sum(1 for i in demo_server.manifest["items"]
-                                   if i["reason"] == "robots_unreachable")
+                                   if i["reason"] == "robots_unreachable") + 1
     near = sum(o.files for o in s.origins if o.near_kept)
     assert s.files == s.states["stored"] + near == sum(o.files for o in s.origins)
     assert s.file_bytes == sum(o.bytes for o in s.origins)
@@ -284,3 +346,82 @@ def test_the_store_holds_only_files_named_by_their_sha256(demo_run) -> None:
         assert match, path
         assert hashlib.sha256(path.read_bytes()).hexdigest() == match[3]
     assert [p.name for p in col.store.root.iterdir() if p.name.startswith(".")] == [".incoming"]
+
+
+def test_iiif_items_were_asked_at_the_negotiated_size_and_rights_statements_kept(
+        demo_run, demo_server) -> None:
+    """IIIF canvases: the image request is the manifest's expected size (IIIF Image API 3.0
+    §4.2 / 2.1 §4.2), recorded with its reason; the NoC-US item is stored with its statement
+    (RightsStatements.org id, not an SPDX id) and InC is skipped; trace and the datasheet show
+    the statement with its link."""
+    from collector.exports.datasheet import export_datasheet
+    from collector.exports.trace import Tracer
+    from collector.exports.trace_format import format_record
+
+    col, log, _ = demo_run
+    keyed = ledger_items(col)
+    items = [i for i in demo_server.manifest["items"] if i["source"] == "iiif"]
+    for item in items:
+        row = keyed[("iiif", item["key"])]
+        facts = json.loads(row["size_request"])
+        assert facts["size"] == item["iiif_size"] and facts["why"], item["key"]
+        assert row["rights_statement"] == item.get("rights_statement"), item["key"]
+    noc = next(i for i in items if i.get("rights_statement") == "NoC-US")
+    row = keyed[("iiif", noc["key"])]
+    assert row["spdx_id"] is None and row["state"] == "stored"
+    image_paths = {r.path for r in log if r.path.startswith("/iiif/img/")}
+    assert not any("/full/max/" in p or "/full/full/" in p for p in image_paths)
+    with Tracer.open(col.root) as tracer:
+        text = "\n".join(format_record(tracer.trace_file(
+            col.store.existing(row["file_sha256"], "jpg"))))
+    assert "rights statement NoC-US" in text
+    assert "http://rightsstatements.org/page/NoC-US/1.0/?language=en" in text
+    assert "allowed:      yes" in text
+    assert "image size:   asked !512,384 (512x384) of 800x600" in text
+    result = export_datasheet(col.root, out=col.root.parent / "sheet")
+    assert result.counts.by_licence.get("rs:NoC-US") == 1
+    sheet = (result.out / "datasheet.md").read_text(encoding="utf-8")
+    assert "rs:NoC-US" in sheet and "rightsstatements.org/page/NoC-US/1.0/" in sheet
+
+
+def test_items_skipped_for_a_reservation_caused_no_image_request(demo_run, demo_server) -> None:
+    """The reading room's reserved items (a tdmrep.json rule, a listing page answering
+    tdm-reservation: 1, a detail page's meta element; TDMRep §3.1-§3.3) were skipped before
+    their image was requested: the server's own log has no request for it. Items reserved in
+    the image answer or file were requested, then not kept."""
+    from urllib.parse import urlsplit
+
+    col, log, _ = demo_run
+    requested = {(r.host, r.path) for r in log}
+    room = [i for i in demo_server.manifest["items"] if i["source"] == "reading-room"]
+    skipped = [i for i in room if i["state"] == "skipped"]
+    assert {i["reason"] for i in skipped} == {"tdmrep_reserved"} and len(skipped) == 3
+    for item in room:
+        parts = urlsplit(demo_server.fill(item["image_url"]))
+        assert ((parts.hostname, parts.path) in requested) == (item["state"] != "skipped"), item
+    assert ("127.0.0.2", "/.well-known/tdmrep.json") in requested
+    rejected = {i["sha256"] for i in room
+                if i["state"] == "rejected"}
+    assert rejected and not rejected & set(dict(col.store.iter_stored()))
+
+
+def test_transparent_and_enlarged_images_carry_exactly_their_flags(demo_run, demo_server) -> None:
+    """The demo recipe flags transparent and enlarged images: the items the manifest marks
+    (palette PNG with a transparent entry, RGBA cut-outs, a 6x enlargement) carry the flag on
+    their stored file and no other stored file does (transparency as Pillow reads it, Pillow
+    docs "Image file formats > PNG"; enlargement: common practice, no source)."""
+    col, _, _ = demo_run
+    keyed = ledger_items(col)
+    with col.ledger(readonly=True) as ledger:
+        flags = {row["sha256"]: row["flags"] for row in ledger.query(
+            "SELECT sha256, flags FROM files")}
+    marked = 0
+    for item in demo_server.manifest["items"]:
+        if item["state"] != "stored":
+            continue
+        row = find(keyed, demo_server, item["source"], item["key"], item.get("page_url"))
+        for flag in ("transparent", "enlarged"):
+            assert (flag in flags[row["file_sha256"]]) == (flag in item["flags"]), (
+                item["key"], flag)
+            marked += flag in item["flags"]
+    assert marked >= 4

@@ -170,3 +170,17 @@ def test_the_ledger_stays_small_despite_huge_metadata(hostile_run: HostileRun) -
     wal = hostile_run.col.ledger_path.with_name("ledger.sqlite-wal")
     size += wal.stat().st_size if wal.exists() else 0
     assert size < 8_000_000, size
+
+
+def test_a_billion_pixel_info_json_is_asked_only_for_the_target_size(
+        hostile_run: HostileRun) -> None:
+    """The service claiming 10^9 x 10^9 pixels got one image request, at the recipe's default
+    target (2048, "!w,h" at level 2: IIIF Image API 3.0 §4.2), never "max"; the cyclic IIIF
+    sites had each document requested once."""
+    from collector.demo_site.hostile_iiif import requested_sizes
+
+    vast = hostile_run.archive.sites["iiif-billion-pixels"].paths()
+    assert requested_sizes(vast) == ["!2048,2048"]
+    for name in ("iiif-collection-cycle", "iiif-self-manifest"):
+        paths = [p for p in hostile_run.archive.sites[name].paths() if p.startswith("/iiif/")]
+        assert len(paths) == len(set(paths)), (name, paths)

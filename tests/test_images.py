@@ -457,5 +457,5 @@ def test_hash_of_a_png_equals_imagehash_and_of_a_jpeg_equals_the_draft_pipeline(
         assert inspect_image(png).phash == int(str(imagehash.phash(im)), 16)
     facts = inspect_image(jpg)
     assert (facts.phash, facts.phash_mirror) == hash_image_file(jpg)
-    assert facts.hash_algo == "dct-phash-64/draft-v1"
+    assert facts.hash_algo == "dct-phash-64/draft-v2"
     assert hamming(facts.phash, inspect_image(png).phash) <= 2

@@ -6,13 +6,11 @@ condition that cannot work before anything is sent."""
 
 from __future__ import annotations
 
-import io
 from collections.abc import Iterator
 from pathlib import Path
 
-import numpy as np
 import pytest
-from PIL import Image
+from support.collections import grid_picture
 from support.server import LoopbackServer, json_answer
 
 from collector.config.recipe import parse_recipe
@@ -31,10 +29,7 @@ RECORDS = [  # (id, date, licence)
 
 
 def picture(seed: int) -> bytes:
-    grid = np.random.default_rng(seed).integers(0, 256, (6, 8), dtype=np.uint8)
-    out = io.BytesIO()
-    Image.fromarray(grid).resize((160, 120), Image.Resampling.NEAREST).save(out, "PNG")
-    return out.getvalue()
+    return grid_picture(seed, "PNG")
 
 
 @pytest.fixture

@@ -52,8 +52,9 @@ CASES = [
     # Ports without an SPDX id must not fall back to the unported id (standards.md 7).
     (None, "https://creativecommons.org/licenses/by/3.0/fr/legalcode", None),
     ("Creative Commons Attribution 3.0 Spain", None, None),
-    # Unversioned inputs stay unknown on purpose (libraries.md 4).
-    ("CC0", None, None),
+    # Unversioned inputs stay unknown on purpose (libraries.md 4), except CC0, whose only
+    # version is 1.0 (SPDX License List 3.28.0: CC0-1.0 is its one id; issue 15).
+    ("CC0", None, "CC0-1.0"),
     ("cc-by-sa", None, None),
     ("public domain", None, None),
     ("All rights reserved", None, None),

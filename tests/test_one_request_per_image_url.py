@@ -8,7 +8,6 @@ the next run with one request again). Judged from the server's request log."""
 
 from __future__ import annotations
 
-import io
 import os
 import signal
 import subprocess
@@ -18,9 +17,8 @@ from collections import Counter
 from collections.abc import Iterator
 from pathlib import Path
 
-import numpy as np
 import pytest
-from PIL import Image
+from support.collections import grid_picture
 from support.server import Answer, LoopbackServer, json_answer
 
 from collector.run.gather import gather
@@ -31,14 +29,8 @@ COUNT = 12
 MISSING = "/img/missing.jpg"
 
 
-def picture(n: int) -> bytes:
-    """A distinct 160x120 JPEG for each n: a seeded random 8x6 grid of grey levels, enlarged
-    (unrelated pictures, far apart in perceptual hash)."""
-    grid = np.random.default_rng(n).integers(0, 256, (6, 8), dtype=np.uint8)
-    img = Image.fromarray(grid).resize((160, 120), Image.Resampling.NEAREST).convert("RGB")
-    out = io.BytesIO()
-    img.save(out, "JPEG", quality=85)
-    return out.getvalue()
+def picture(seed: int) -> bytes:
+    return grid_picture(seed, "JPEG")
 
 
 PICTURES = {f"/img/{n}.jpg": picture(n) for n in range(COUNT)}

@@ -18,18 +18,23 @@ from typing import Any
 import pytest
 
 from collector.errors import LedgerError, LedgerUnusable
-from collector.storage import queries
+from collector.storage import datasheet_queries, queries
 from collector.storage.ledger import Ledger
 
 # A sample value for every parameter name a query takes (besides the ledger).
 SAMPLE_ARGS: dict[str, Any] = {
     "sha256": "ab" * 32, "item_id": 1, "rowid": 1, "step": 8, "width": 10,
     "personal": ("gps", "camera_serial"), "conflict": "licence_conflict", "limit": 1,
+    "reasons": ("tdmrep_reserved", "noai_directive"), "url": "http://127.0.0.9/info.json",
 }
 
+# The read modules: status/trace/hash index, and the datasheet and release.
+QUERY_MODULES = {module.__name__.rsplit(".", 1)[1]: module
+                 for module in (queries, datasheet_queries)}
 PUBLIC_QUERIES = sorted(
-    (name for name, fn in inspect.getmembers(queries, inspect.isfunction)
-     if fn.__module__ == queries.__name__ and not name.startswith("_")))
+    f"{short}.{name}" for short, module in QUERY_MODULES.items()
+    for name, fn in inspect.getmembers(module, inspect.isfunction)
+    if fn.__module__ == module.__name__ and not name.startswith("_"))
 
 # The Ledger methods of this redesign that run SQL for other modules.
 LEDGER_CALLS: dict[str, Callable[[Ledger], Any]] = {
@@ -38,6 +43,9 @@ LEDGER_CALLS: dict[str, Callable[[Ledger], Any]] = {
     "sql_function": lambda ledger: ledger.sql_function("twice", lambda v: 2 * v),
     "forget_missing_file": lambda ledger: ledger.forget_missing_file("ab" * 32),
     "drop_all_store_intents": lambda ledger: ledger.drop_all_store_intents(),
+    "record_signal": lambda ledger: ledger.record_signal(
+        place="XMP", url="file", name="plus:DataMining", value="x", meaning="unset",
+        decision="no reservation"),
 }
 
 
@@ -61,7 +69,8 @@ class BrokenConnection:
 
 def call_query(name: str, ledger: Ledger) -> Any:
     """Call the query ``name`` with sample arguments; an iterator is read to its end."""
-    fn = getattr(queries, name)
+    short, _, function = name.partition(".")
+    fn = getattr(QUERY_MODULES[short], function)
     params = list(inspect.signature(fn).parameters.values())[1:]
     missing = [p.name for p in params if p.name not in SAMPLE_ARGS
                and p.default is inspect.Parameter.empty]
@@ -94,15 +103,16 @@ def broken(ledger: Ledger) -> Iterator[Ledger]:
 
 def test_the_queries_module_has_public_queries() -> None:
     """The introspection finds the queries (status, trace, hash index and datasheet)."""
-    assert {"ledger_totals", "items_of_file", "files_mark", "release_rows",
-            "accepted_facts"} <= set(PUBLIC_QUERIES)
+    assert {"queries.ledger_totals", "queries.items_of_file", "queries.files_mark",
+            "datasheet_queries.release_rows", "datasheet_queries.accepted_facts"
+            } <= set(PUBLIC_QUERIES)
 
 
 @pytest.mark.parametrize("name", PUBLIC_QUERIES)
 def test_every_query_runs_on_a_healthy_ledger(ledger: Ledger, name: str) -> None:
     """Each query runs with its sample arguments and returns a result."""
     assert call_query(name, ledger) is not None or name in {
-        "last_image_fetch", "stored_jpeg_photo"}
+        "queries.last_image_fetch", "queries.stored_jpeg_photo", "queries.kept_page"}
 
 
 @pytest.mark.parametrize("name", PUBLIC_QUERIES)
@@ -128,10 +138,10 @@ def test_typed_results_carry_named_fields(ledger: Ledger) -> None:
     totals = queries.ledger_totals(ledger)
     assert totals.files == 1 and totals.states[0].state == "stored"
     assert queries.files_mark(ledger) == queries.FilesMark(1, 1, "ab" * 32)
-    (row,) = queries.release_rows(ledger)
+    (row,) = datasheet_queries.release_rows(ledger)
     assert (row.sha256, row.source, row.width, row.image_url) == (
         "ab" * 32, "desk", 4, "http://127.0.0.59/a.png")
-    assert queries.accepted_facts(ledger)["by_host"] == {"127.0.0.59:80": 1}
+    assert datasheet_queries.accepted_facts(ledger)["by_host"] == {"127.0.0.59:80": 1}
 
 
 def test_stream_reads_in_batches(ledger: Ledger) -> None:

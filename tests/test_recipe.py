@@ -9,7 +9,8 @@ import pytest
 from typer.testing import CliRunner
 
 from collector.cli import app
-from collector.config.recipe import DEFAULT_LICENCES, parse_duration, parse_recipe
+from collector.config.recipe import DEFAULT_LICENCES, parse_recipe
+from collector.config.stop_times import parse_duration
 from collector.errors import RecipeError
 from collector.storage.collection import init_collection, recipe_template
 
@@ -86,8 +87,8 @@ MALFORMED = [
     ("source without name", GOOD + '[[sources]]\nkind = "html"\n',
      "recipe.toml: sources[1].name: is required"),
     ("source kind unknown", GOOD + '[[sources]]\nname = "a"\nkind = "jsonapi"\n',
-     "recipe.toml: sources[1] (\"a\").kind: must be one of 'html', 'json_api', 'scans', got "
-     "'jsonapi' (did you mean 'json_api'?)"),
+     "recipe.toml: sources[1] (\"a\").kind: must be one of 'html', 'iiif', 'json_api', "
+     "'oai_pmh', 'scans', got 'jsonapi' (did you mean 'json_api'?)"),
     ("duplicate source names", GOOD + '[[sources]]\nname = "a"\nkind = "scans"\npath = "s"\n'
      '[[sources]]\nname = "a"\nkind = "scans"\npath = "s"\n',
      "recipe.toml: sources[2] (\"a\").name: 'a' is used by an earlier source"),

@@ -273,4 +273,4 @@ def test_sources_and_recipe_import_without_a_circle(tmp_path: Path) -> None:
         from collector import sources
         print(json.dumps({"before": before, "kinds": sources.builtin_kind_names()}))
     """, cwd=tmp_path)
-    assert out == {"before": False, "kinds": ["html", "json_api", "scans"]}
+    assert out == {"before": False, "kinds": ["html", "iiif", "json_api", "oai_pmh", "scans"]}

@@ -41,6 +41,16 @@ def scans_source(**over: Any) -> dict[str, Any]:
     return table
 
 
+def oai_source(**over: Any) -> dict[str, Any]:
+    """A valid oai_pmh table, with overrides."""
+    table: dict[str, Any] = {"name": "feed", "kind": "oai_pmh",
+                             "url": "https://archive.example.org/oai", "set": "herbarium",
+                             "namespaces": {"mods": "http://www.loc.gov/mods/v3"},
+                             "fields": {"title": "mods:titleInfo/mods:title"}}
+    table.update(over)
+    return table
+
+
 def problems(table: dict[str, Any], prefix: str = "sources[1]") -> dict[str, str]:
     """key_path -> message for every problem found."""
     return {p.key_path: p.message for p in sources.validate_source(table, prefix)}
@@ -48,8 +58,8 @@ def problems(table: dict[str, Any], prefix: str = "sources[1]") -> dict[str, str
 
 def test_valid_tables_of_every_kind_have_no_problems() -> None:
     """Well-formed tables of the three kinds validate cleanly (TOML dates accepted)."""
-    assert sources.builtin_kind_names() == ["html", "json_api", "scans"]
-    for table in (json_source(), html_source(), scans_source()):
+    assert sources.builtin_kind_names() == ["html", "iiif", "json_api", "oai_pmh", "scans"]
+    for table in (json_source(), html_source(), scans_source(), oai_source(), iiif_source()):
         assert problems(table) == {}
 
 
@@ -197,3 +207,39 @@ def test_iter_candidates_refuses_an_invalid_table() -> None:
     with pytest.raises(SourceError, match=r"fields\.id"):
         list(sources.iter_candidates(json_source(fields={"items": "r", "image_url": "u"}),
                                      None, print, "."))  # type: ignore[arg-type]
+
+
+def test_oai_pmh_keys_and_paths_are_checked() -> None:
+    """A non-http url, an undeclared prefix, a bad pattern and a misspelt key, each named."""
+    got = problems(oai_source(url="ftp://x.org/oai", image_pattern="(",
+                              fields={"title": "marc:datafield"}, incremantal=True))
+    assert "http" in got["sources[1].url"]
+    assert "marc" in got["sources[1].fields.title"]
+    assert "regular expression" in got["sources[1].image_pattern"]
+    assert "did you mean 'incremental'" in got["sources[1].incremantal"]
+
+
+def iiif_source(**over: Any) -> dict[str, Any]:
+    """A valid iiif table, with overrides."""
+    table: dict[str, Any] = {"name": "museum", "kind": "iiif",
+                             "url": "https://archive.example.org/iiif/collection.json",
+                             "target_size": 1024, "max_depth": 2, "language": "de"}
+    table.update(over)
+    return table
+
+
+def test_iiif_table_is_valid_and_each_check_names_its_key() -> None:
+    """A good iiif table has no problems; bad values name their own key."""
+    assert problems(iiif_source()) == {}
+    assert problems({"name": "m", "kind": "iiif", "url": "https://a.example.org/m.json"}) == {}
+    got = problems(iiif_source(url="ftp://archive.example.org/m.json", target_size=-1,
+                               max_manifests=0, first_canvas_only="yes", max_depth=-2,
+                               level0_sizes="nearest"))
+    assert set(got) == {"sources[1].url", "sources[1].target_size", "sources[1].max_manifests",
+                        "sources[1].first_canvas_only", "sources[1].max_depth",
+                        "sources[1].level0_sizes"}
+    assert "did you mean 'target_size'" in problems(iiif_source(target_sise=5))[
+        "sources[1].target_sise"]
+    assert "target_size above 0" in problems(iiif_source(target_size=0, upscale=True))[
+        "sources[1].upscale"]
+    assert "sources[1].url" in problems({"name": "m", "kind": "iiif"})

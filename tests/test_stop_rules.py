@@ -7,7 +7,8 @@ from pathlib import Path
 
 import pytest
 
-from collector.config.recipe import StopOptionsError, parse_recipe
+from collector.config.recipe import parse_recipe
+from collector.config.stop_times import StopOptionsError
 from collector.errors import RecipeError
 from collector.exports.summary import Estimate, format_estimate
 from collector.run.scheduling import RunResult, stop_rules

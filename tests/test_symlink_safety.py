@@ -30,8 +30,9 @@ from typer.testing import CliRunner
 
 from collector.cli import app
 from collector.errors import CollectorError, PathRefused
-from collector.exports.datasheet import file_name_for
+from collector.exports.release import readable_name
 from collector.run.gather import gather
+from collector.storage import queries
 from collector.storage.collection import Collection, init_collection
 from collector.storage.store import make_temp
 
@@ -141,7 +142,15 @@ def _names(col: Collection) -> dict[str, str]:
     sha, path = min(col.store.iter_stored())
     return {"ab": sha[:2], "ab_cd": f"{sha[:2]}/{sha[2:4]}",
             "stored": f"{sha[:2]}/{sha[2:4]}/{path.name}", "new_ab": NEW_SHA[:2],
-            "release_name": file_name_for(sha, path.suffix.lstrip("."))}
+            "release_name": _release_name(col, sha, path.suffix.lstrip("."))}
+
+
+def _release_name(col: Collection, sha: str, ext: str) -> str:
+    """The readable name a release gives the stored file ``sha``."""
+    with col.ledger(readonly=True) as ledger:
+        item = queries.items_of_file(ledger, sha, limit=1)[0]
+        source = queries.source_names(ledger)[item["source_id"]][0]
+    return readable_name(source, item["source_key"], sha, ext)
 
 
 def _decoy(base: Path, ledger: Path) -> Path:

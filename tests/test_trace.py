@@ -298,6 +298,30 @@ def test_a_mirrored_copy_traces_as_near_and_says_mirrored(built: Built, tmp_path
     assert f"probably a mirrored copy of {built.shas['FH-005'][:12]}" in result.output
 
 
+def test_rotated_and_cropped_copies_say_so(built: Built, tmp_path: Path) -> None:
+    """A copy turned 90 degrees, one turned 180 degrees and mirrored, and one cropped to 85 %
+    of each side trace to their original with the words of issue 14 ("probably a rotated
+    copy of", "probably a cropped copy of"); the second look's score is shown."""
+    picture = built.pictures["FH-005"]
+    w, h = picture.size
+    copies = {
+        "turned.jpg": (picture.transpose(Image.Transpose.ROTATE_90),
+                       "probably a rotated copy of", " (turned 90 degrees counter-clockwise"),
+        "flipped.jpg": (picture.transpose(Image.Transpose.ROTATE_180).transpose(
+            Image.Transpose.FLIP_LEFT_RIGHT), "probably a rotated and mirrored copy of",
+            " (turned 180 degrees counter-clockwise, then mirrored)"),
+        "cropped.jpg": (picture.crop((int(w * 0.1), int(h * 0.05), int(w * 0.95),
+                                      int(h * 0.9))), "probably a cropped copy of", ""),
+    }
+    for name, (im, words, turn) in copies.items():
+        im.save(tmp_path / name, quality=85)
+        result = runner.invoke(app, ["trace", str(tmp_path / name), "--in", str(built.root)])
+        assert result.exit_code == 0, (name, result.output)
+        first = result.output.splitlines()[0]
+        assert f"{words} {built.shas['FH-005'][:12]}{turn}" in first, first
+        assert "thumbnails agree at" in first and "not certain" in first
+
+
 def test_an_unrelated_image_gives_no_match_and_exit_1(built: Built, tmp_path: Path) -> None:
     """A picture the collection never stored is reported plainly as untraced, exit 1."""
     path = tmp_path / "stranger.png"
@@ -358,21 +382,25 @@ def mixed_folder(built: Built, tmp_path: Path) -> Path:
 
 
 def test_folder_trace_prints_a_table_and_the_summary(built: Built, mixed_folder: Path) -> None:
-    """A folder argument gives one table row per image and the summary counts."""
+    """A folder argument gives one table row per image file (a broken one included, as
+    unreadable) and the summary counts."""
     result = runner.invoke(app, ["trace", str(mixed_folder), "--in", str(built.root)])
-    assert result.exit_code == 1  # d.png is untraced
+    assert result.exit_code == 1  # d.png is untraced, notes.jpg unreadable
     lines = result.output.splitlines()
     assert lines[0].split() == ["file", "match", "distance", "source", "spdx_id", "allowed",
-                                "flags"]
-    rows = {Path(line.split()[0]).name: line.split() for line in lines[1:5]}
-    assert set(rows) == {"a.jpg", "b.jpg", "c.jpg", "d.png"}
+                                "flags", "copy_kind", "note"]
+    rows = {Path(line.split()[0]).name: line.split() for line in lines[1:6]}
+    assert set(rows) == {"a.jpg", "b.jpg", "c.jpg", "d.png", "notes.jpg"}
+    assert rows["notes.jpg"][1] == "unreadable" and "not a readable image" in lines[
+        [Path(x.split()[0]).name for x in lines[1:6]].index("notes.jpg") + 1]
     assert rows["a.jpg"][1:7] == ["exact", "0", "society-api", "CC-BY-SA-4.0", "yes",
                                   "camera_serial"]
     assert rows["b.jpg"][1:6] == ["exact", "0", "society-api", "CC-BY-NC-4.0", "no"]
     assert rows["c.jpg"][1] == "near" and rows["c.jpg"][4] == "CC-BY-4.0"
-    assert rows["d.png"][1:] == ["none", "-", "-", "-", "unknown", "-"]
-    assert ("4 files: 2 exact, 1 near, 1 without known provenance, 1 with licences outside "
-            "the allowlist, 1 with personal-data flags") in result.output
+    assert rows["c.jpg"][7] == "resized/re-encoded"
+    assert rows["d.png"][1:] == ["none", "-", "-", "-", "unknown", "-", "-", "-"]
+    assert ("5 files: 2 exact, 1 near, 2 without known provenance (1 unreadable), 1 with "
+            "licences outside the allowlist, 1 with personal-data flags") in result.output
     assert CAUTION_START in result.output
 
 
@@ -382,7 +410,9 @@ def test_folder_trace_as_csv_has_one_row_per_image(built: Built, mixed_folder: P
     assert result.exit_code == 1
     rows = list(csv.DictReader(io.StringIO(result.stdout)))
     by_name = {Path(r["file"]).name: r for r in rows}
-    assert sorted(by_name) == ["a.jpg", "b.jpg", "c.jpg", "d.png"]
+    assert sorted(by_name) == ["a.jpg", "b.jpg", "c.jpg", "d.png", "notes.jpg"]
+    assert by_name["notes.jpg"]["match"] == "unreadable" and by_name["notes.jpg"]["note"]
+    assert by_name["c.jpg"]["copy_kind"] == "resized/re-encoded"
     assert by_name["a.jpg"]["matched_sha256"] == built.shas["FH-002"]
     assert by_name["c.jpg"]["matched_sha256"] == built.shas["FH-001"]
     assert by_name["d.png"]["match"] == "none" and by_name["d.png"]["matched_sha256"] == ""
@@ -392,12 +422,67 @@ def test_folder_trace_as_json_has_records_and_summary(built: Built, mixed_folder
     """--json gives each file's full record, the summary counts and the caution."""
     result = runner.invoke(app, ["trace", str(mixed_folder), "--in", str(built.root), "--json"])
     data = json.loads(result.stdout)
-    assert data["summary"] == {"files": 4, "exact": 2, "near": 1, "untraced": 1,
-                               "outside_allowlist": 1, "personal_data": 1}
+    assert data["summary"] == {"files": 5, "exact": 2, "near": 1, "untraced": 2,
+                               "outside_allowlist": 1, "personal_data": 1, "unreadable": 1,
+                               "not_a_file": 0}
     near = next(r for r in data["results"] if r["kind"] == "near")
     assert near["near"][0]["file"]["origin"]["source_key"] == "FH-001"
     assert near["distance"] == near["near"][0]["distance"] <= 8
     assert data["caution"].startswith(CAUTION_START)
+
+
+def test_folder_trace_lists_every_path_with_a_state(built: Built, tmp_path: Path) -> None:
+    """Every entry of a folder is in the human table, the CSV and the JSON with a state: a
+    FIFO, a socket, a broken link, a link loop and a link back to the folder are not_a_file
+    (and do not hang the walk), a damaged image is unreadable with its reason; exit 1."""
+    import os
+    import socket
+
+    folder = tmp_path / "mixed"
+    folder.mkdir()
+    store = Collection(built.root).store
+    shutil.copyfile(store.find(built.shas["FH-002"]), folder / "a.jpg")  # type: ignore[arg-type]
+    (folder / "cut.jpg").write_bytes(jpeg_bytes(make_picture(5))[:300])  # truncated
+    os.mkfifo(folder / "pipe.jpg")
+    sock = socket.socket(socket.AF_UNIX)
+    sock.bind(str(folder / "sock"))
+    (folder / "gone.png").symlink_to(folder / "missing.png")
+    (folder / "loop.jpg").symlink_to(folder / "loop.jpg")
+    (folder / "back").symlink_to(folder)  # a folder link loop: never followed
+    try:
+        expected = {"a.jpg": "exact", "cut.jpg": "unreadable", "pipe.jpg": "not_a_file",
+                    "sock": "not_a_file", "gone.png": "not_a_file", "loop.jpg": "not_a_file",
+                    "back": "not_a_file"}
+        out = runner.invoke(app, ["trace", str(folder), "--in", str(built.root), "--csv"])
+        assert out.exit_code == 1
+        rows = {Path(r["file"]).name: r for r in csv.DictReader(io.StringIO(out.stdout))}
+        assert {name: r["match"] for name, r in rows.items()} == expected
+        assert rows["loop.jpg"]["note"] == "a symbolic link loop"
+        assert rows["gone.png"]["note"] == "a broken symbolic link"
+        assert rows["pipe.jpg"]["note"] == "a FIFO (named pipe)"
+        assert rows["cut.jpg"]["note"].startswith("not a readable image")
+        data = json.loads(runner.invoke(
+            app, ["trace", str(folder), "--in", str(built.root), "--json"]).stdout)
+        assert sorted(Path(r["path"]).name for r in data["results"]) == sorted(expected)
+        assert data["summary"]["not_a_file"] == 5 and data["summary"]["unreadable"] == 1
+        human = runner.invoke(app, ["trace", str(folder), "--in", str(built.root)])
+        assert human.exit_code == 1
+        for name in expected:
+            assert any(Path(line.split()[0]).name == name
+                       for line in human.output.splitlines()[1:8]), name
+    finally:
+        sock.close()
+
+
+def test_a_fifo_given_by_name_is_not_a_file_and_exit_1(built: Built, tmp_path: Path) -> None:
+    """A FIFO named on the command line is reported as not_a_file (never opened), exit 1."""
+    import os
+
+    fifo = tmp_path / "pipe.jpg"
+    os.mkfifo(fifo)
+    result = runner.invoke(app, ["trace", str(fifo), "--in", str(built.root)])
+    assert result.exit_code == 1
+    assert f"{fifo}: not a file: a FIFO (named pipe). Not traced." in result.output
 
 
 # --- exit codes and messages -----------------------------------------------------------------

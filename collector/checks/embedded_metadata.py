@@ -128,6 +128,10 @@ _XMP_FIELDS = {
     "{http://ns.adobe.com/xap/1.0/rights/}UsageTerms": "xmp_usage_terms",
     "{http://ns.adobe.com/xap/1.0/rights/}Marked": "xmp_marked",
     "{http://creativecommons.org/ns#}license": "xmp_license",
+    # IPTC Photo Metadata 2023.1 "Data Mining" and "Other Constraints" (PLUS namespace);
+    # judged by collector.checks.reservations.xmp_signals.
+    "{http://ns.useplus.org/ldf/xmp/1.0/}DataMining": "xmp_data_mining",
+    "{http://ns.useplus.org/ldf/xmp/1.0/}OtherConstraints": "xmp_other_constraints",
 }
 _RDF = "{http://www.w3.org/1999/02/22-rdf-syntax-ns#}"
 

@@ -27,7 +27,13 @@ from urllib.parse import urlsplit
 from PIL import ExifTags, Image
 
 from collector.checks.embedded_metadata import read_exif, read_iptc, read_xmp
-from collector.checks.phash import HASH_ALGO, phash_prepared, to_signed64
+from collector.checks.phash import HASH_ALGO, phash_and_blank, to_signed64
+from collector.checks.pixel_facts import (
+    PixelFacts,
+    estimate_enlargement,
+    transparent_share,
+    verdicts,
+)
 from collector.errors import ImageRejected
 
 __all__ = ["FORMATS", "RIGHTS_KEYS", "ImageFacts", "inspect_image", "sniff_format"]
@@ -88,6 +94,7 @@ class ImageFacts:
     rights: dict[str, Any] = field(default_factory=dict)
     flags: list[str] = field(default_factory=list)
     type_mismatch: str | None = None
+    pixel: PixelFacts = field(default_factory=lambda: PixelFacts(None, None))
 
     def file_columns(self) -> dict[str, Any]:
         """The ledger's ``files`` columns these facts fill (hashes as signed 64-bit integers,
@@ -100,6 +107,7 @@ class ImageFacts:
             "hash_algo": self.hash_algo, "exif": self.exif, "rights": self.rights,
             "icc_profile": self.icc_profile,
             "dpi_x": self.dpi[0] if self.dpi else None, "dpi_y": self.dpi[1] if self.dpi else None,
+            **self.pixel.columns(),
         }
 
 
@@ -204,9 +212,10 @@ def _orientation(im: Image.Image) -> int:
         return 1
 
 
-def _hash(im: Image.Image, orientation: int, path: Path) -> tuple[int, int]:
+def _hash(im: Image.Image, orientation: int, path: Path) -> tuple[int, int, bool]:
+    """(pHash, mirror, blank): collector.checks.phash.phash_and_blank."""
     try:
-        return phash_prepared(im, orientation)
+        return phash_and_blank(im, orientation)
     except _DECODE_ERRORS as exc:
         raise ImageRejected("broken_image", damage(exc)) from exc
 
@@ -380,7 +389,7 @@ def _describe(im: Image.Image, fmt: str, head: bytes, flags: list[str]) -> _Desc
 
 def _check_pixels(
     im: Image.Image, fmt: str, geo: _Geometry, path: Path, max_pixels: int, full_decode: bool
-) -> tuple[int, int] | None:
+) -> tuple[int, int, bool] | None:
     """PNG CRCs, the full decode (skipped for a JPEG when full_decode is False) and, for
     formats other than JPEG, the hash of the pixels just decoded; None means "hash later"."""
     if fmt == "PNG":
@@ -397,7 +406,7 @@ def _facts(
     geo: _Geometry,
     described: _Described,
     frames: int,
-    hashes: tuple[int, int],
+    hashes: tuple[int, int, bool],
     flags: list[str],
     mismatch: str | None,
 ) -> ImageFacts:
@@ -405,7 +414,9 @@ def _facts(
     if geo.orientation != 1:
         described.exif["orientation"] = geo.orientation
     mime, ext, _ = FORMATS[fmt]
-    phash, mirror = hashes
+    phash, mirror, blank = hashes
+    if blank:  # a flat picture (collector.checks.pixels.is_blank): never compared by look
+        flags.append("blank")
     return ImageFacts(
         format=fmt,
         mime=mime,
@@ -433,6 +444,32 @@ def _facts(
     )
 
 
+def _measure_pixels(im: Image.Image, path: Path, *, decoded: bool, alpha: bool,
+                    native: bool, max_pixels: int) -> PixelFacts:
+    """Transparency share and native-size estimate (collector.checks.pixel_facts) of the
+    first frame. A JPEG not decoded at full size (the draft path) has no alpha (Pillow docs,
+    JPEG modes L, RGB, CMYK) and is decoded as full-size luma only when ``native`` asks."""
+    share = transparent_share(im) if decoded and alpha else 0.0
+    if decoded:
+        return PixelFacts(share, estimate_enlargement(im))
+    if not native:
+        return PixelFacts(share, None)
+    with _open(path, max_pixels) as luma:
+        luma.draft("L", luma.size)  # libjpeg decodes luma only, no colour conversion
+        _decode_all(luma, path)
+        return PixelFacts(share, estimate_enlargement(luma))
+
+
+def _apply_policies(pixel: PixelFacts, path: Path, flags: list[str], *, transparent: str,
+                    enlarged: str, min_side: int) -> None:
+    """The recipe's transparency and enlargement policies: flag, or raise ImageRejected."""
+    for policy, reason, detail in verdicts(pixel, transparent=transparent, enlarged=enlarged,
+                                           min_side=min_side):
+        if policy == "reject":
+            raise ImageRejected(reason, detail)  # no temp-file name: the recipe's own words
+        flags.append(reason)
+
+
 def inspect_image(
     path: Path,
     *,
@@ -443,6 +480,8 @@ def inspect_image(
     min_aspect: float = 0.0,
     max_aspect: float = 0.0,
     full_decode: bool = True,
+    transparent: str = "keep",
+    enlarged: str = "keep",
 ) -> ImageFacts:
     """Check one image file and collect its facts; raise ImageRejected(reason, detail) if unfit.
 
@@ -458,6 +497,12 @@ def inspect_image(
 
     max_pixels above Pillow's global Image.MAX_IMAGE_PIXELS has no effect unless that global is
     raised too (Pillow checks it inside Image.open).
+
+    transparent / enlarged: the recipe's policies ("keep", "flag", "reject") for images with
+    transparent pixels and images that look enlarged (collector.checks.pixel_facts); they run
+    after the decode (reasons ``transparent``, ``enlarged``). The native size is estimated on
+    every fully decoded image; a JPEG on the draft path is decoded again (luma only) for it
+    only when ``enlarged`` is not "keep".
     """
     path = Path(path)
     head, fmt = _identify(path)
@@ -470,7 +515,14 @@ def inspect_image(
         described = _describe(im, fmt, head, flags)
         hashes = _check_pixels(im, fmt, geo, path, max_pixels, full_decode)
         frames = int(getattr(im, "n_frames", 1) or 1)
+        decoded = full_decode or fmt != "JPEG"
+        pixel = _measure_pixels(im, path, decoded=decoded, alpha=described.alpha,
+                                native=enlarged != "keep", max_pixels=max_pixels)
+    _apply_policies(pixel, path, flags, transparent=transparent, enlarged=enlarged,
+                    min_side=min_side)
     if hashes is None:  # JPEG: a second, draft-mode decode at 1/8 scale (HASH_ALGO pipeline)
         with _open(path, max_pixels) as im:
             hashes = _hash(im, geo.orientation, path)
-    return _facts(fmt, geo, described, frames, hashes, flags, mismatch)
+    facts = _facts(fmt, geo, described, frames, hashes, flags, mismatch)
+    facts.pixel = pixel
+    return facts

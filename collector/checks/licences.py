@@ -7,10 +7,15 @@ names and no URLs (libraries.md section 4), so this module adds a small, documen
 Creative Commons URLs and names, and only ever returns an id the index knows.
 
 Decisions:
-* Unversioned inputs ("CC0", "CC BY-SA", "public domain") map to None on purpose: the version
-  decides the terms, and a guessed version is worse than an honest "unknown". CC0 has only ever
-  had version 1.0, but a bare "CC0" is still left unknown so that every mapping rests on text
-  the source actually gave (libraries.md section 4, "unversioned inputs -> None, on purpose").
+* Unversioned inputs ("CC BY-SA", "public domain") map to None on purpose: the version decides
+  the terms, and a guessed version is worse than an honest "unknown" (libraries.md section 4).
+  CC0 is the exception: it has only ever had version 1.0 (SPDX License List: CC0-1.0 is its
+  only id), so a bare "CC0" is not ambiguous and maps to CC0-1.0 (issue 15).
+* A licence named inside a sentence ("Licensed under CC BY 2.0", "Namensnennung 4.0
+  International (CC BY 4.0)") is read when the sentence names exactly one licence; two different
+  ones leave it unknown (method "in-text").
+* RightsStatements.org statements are not licences: collector.checks.rights_statements reads
+  them, and ``licence_allowed`` decides them by the ``rs:<id>`` entries of the allowlist.
 * Jurisdiction ports map to their own SPDX id (e.g. CC-BY-SA-3.0-DE) when the list has one; an
   unlisted port is never mapped to the unported id (standards.md section 7) and gives None.
 * When both a text and a URL are given and they disagree, the text's reading wins and the
@@ -24,6 +29,8 @@ from dataclasses import dataclass
 from functools import cache, lru_cache
 
 import license_expression as le
+
+from collector.checks.rights_statements import ALLOW_PREFIX, RightsStatement, statement_allowed
 
 __all__ = [
     "DEFAULT_ALLOW",
@@ -44,7 +51,7 @@ class LicenceInfo:
     spdx_id: str | None
     raw: str | None
     url: str | None
-    method: str | None  # "spdx-id" | "cc-url" | "cc-name" | "expression" | "alias" | None
+    method: str | None  # "spdx-id" | "cc-url" | "cc-name" | "expression" | "alias" | "in-text"
     conflict: str | None = None  # text and URL name different licences
     note: str | None = None  # why nothing was mapped (unlisted port, unversioned, ...)
 
@@ -74,7 +81,7 @@ def _known(spdx_id: str) -> str | None:
 # --- Creative Commons URLs (standards.md section 7, "URL forms") -------------------------------
 _CC_CODES = "by|by-sa|by-nd|by-nc|by-nc-sa|by-nc-nd|by-nd-nc|sa"
 _CC_URL = re.compile(
-    r"^(?:https?://)?(?:www\.)?creativecommons\.org(?::\d+)?/"
+    r"^(?:(?:https?:)?//)?(?:www\.)?creativecommons\.org(?::\d+)?/"
     r"(?:licenses/(?P<code>" + _CC_CODES + r")/(?P<ver>\d\.\d)"
     r"(?:/(?!legalcode|deed)(?P<port>[a-z][a-z-]{1,15}))?"
     r"|publicdomain/(?P<pd>zero|mark)/1\.0"
@@ -83,7 +90,8 @@ _CC_URL = re.compile(
     re.IGNORECASE,
 )
 # Unanchored form, to find licence URLs inside free text (rights metadata).
-_CC_URL_IN_TEXT = re.compile(r"(?:https?://)?(?:www\.)?creativecommons\.org/[^\s\"'<>),;]+", re.I)
+_CC_URL_IN_TEXT = re.compile(
+    r"(?:(?:https?:)?//)?(?:www\.)?creativecommons\.org/[^\s\"'<>),;]+", re.I)
 
 
 def _cc_id(code: str, ver: str, port: str | None) -> str:
@@ -123,17 +131,20 @@ _ELEMENT_NAMES = {
     "attribution": "BY", "noncommercial": "NC", "sharealike": "SA",
     "noderivatives": "ND", "noderivs": "ND",
 }  # fmt: skip
-_LONG_NAME = re.compile(
-    r"creative\s+commons\s+(?P<els>attribution(?:[\s-]*(?:non-?commercial|share[\s-]?alike"
-    r"|no[\s-]?derivatives|no[\s-]?derivs))*)[\s-]+(?P<ver>\d\.\d)(?P<rest>[\w\s&:-]*)",
-    re.I,
-)
+_LONG_ELEMENTS = (
+    r"(?P<els>attribution(?:[\s-]*(?:non[\s-]?commercial|share[\s-]?alike"
+    r"|no[\s-]?derivatives|no[\s-]?derivs))*)[\s-]+(?P<ver>\d\.\d)(?P<rest>[\w\s&:-]*)")
+_LONG_NAME = re.compile(r"creative\s+commons\s+" + _LONG_ELEMENTS, re.I)
+# CC's deeds title a licence without the words "Creative Commons" ("Attribution-NonCommercial-
+# ShareAlike 4.0 International"): read only as a whole string, where nothing else can be meant.
+_TITLE_NAME = re.compile(_LONG_ELEMENTS, re.I)
 _SHORT_NAME = re.compile(
     r"\bcc[\s-]+(?P<els>by(?:[\s-]+(?:nc|sa|nd)\b)*)[\s-]+(?P<ver>\d\.\d)"
     r"(?P<rest>(?:[\s-]+[a-z]{2,13})?)",
     re.I,
 )
-_CC0_NAME = re.compile(r"\bcc[\s-]?(?:0|zero)\b(?P<ver>[\s-]+v?1\.0)?", re.I)
+_CC0_NAME = re.compile(
+    r"\b(?:cc[\s-]?(?:0|zero)|creative\s+commons\s+zero)\b(?P<ver>[\s-]+v?1\.0)?", re.I)
 _PDM_NAME = re.compile(r"\bpublic[\s-]+domain[\s-]+mark\b(?P<ver>[\s-]+v?1\.0)?", re.I)
 _RESERVED = re.compile(r"\ball\s+rights\s+reserved\b", re.I)
 
@@ -161,7 +172,7 @@ def _port_suffix(rest: str) -> tuple[bool, str | None]:
 def _name_match(m: re.Match[str], long: bool, loose: bool = False) -> tuple[str | None, str | None]:
     if long:
         parts = re.findall(
-            r"attribution|non-?commercial|share[\s-]?alike|no[\s-]?derivatives|no[\s-]?derivs",
+            r"attribution|non[\s-]?commercial|share[\s-]?alike|no[\s-]?derivatives|no[\s-]?derivs",
             m["els"],
             re.I,
         )
@@ -182,13 +193,12 @@ def _name_match(m: re.Match[str], long: bool, loose: bool = False) -> tuple[str 
 def _from_name(text: str) -> tuple[str | None, str | None]:
     """(SPDX id, note) for a whole-string CC licence name."""
     t = text.strip()
-    for rx, long in ((_LONG_NAME, True), (_SHORT_NAME, False)):
+    for rx, long in ((_LONG_NAME, True), (_TITLE_NAME, True), (_SHORT_NAME, False)):
         m = rx.fullmatch(t)
         if m:
             return _name_match(m, long)
-    m = _CC0_NAME.fullmatch(re.sub(r"\s+universal$", "", t, flags=re.I))
-    if m:
-        return ("CC0-1.0", None) if m["ver"] else (None, "CC0 without a version")
+    if _CC0_NAME.fullmatch(re.sub(r"\s+universal$", "", t, flags=re.I)):
+        return "CC0-1.0", None  # CC0 has one version only (SPDX License List: CC0-1.0)
     m = _PDM_NAME.fullmatch(re.sub(r"\s+universal$", "", t, flags=re.I))
     if m:
         return ("CC-PDM-1.0", None) if m["ver"] else (None, "Public Domain Mark without a version")
@@ -215,9 +225,19 @@ def _from_text(text: str) -> tuple[str | None, str | None, str | None]:
     try:
         result = _licensing().validate(t)
     except Exception:
-        return None, None, None
+        return _from_sentence(t)
     if not result.errors and result.normalized_expression:
         return str(result.normalized_expression), "expression", None
+    return _from_sentence(t)
+
+
+def _from_sentence(text: str) -> tuple[str | None, str | None, str | None]:
+    """(SPDX id, method, note) for a licence named inside a sentence: exactly one licence."""
+    found = _ids_in_text(text)
+    if len(found) == 1:
+        return found.pop(), "in-text", None
+    if found:
+        return None, None, f"the text names several licences ({', '.join(sorted(found))})"
     return None, None, None
 
 
@@ -266,9 +286,18 @@ def _evaluate(node: object, allowed: set[str]) -> bool:
 
 
 def licence_allowed(
-    spdx_id: str | None, allow: list[str] | tuple[str, ...], allow_unknown: bool
+    spdx_id: str | None, allow: list[str] | tuple[str, ...], allow_unknown: bool,
+    statement: RightsStatement | None = None,
 ) -> tuple[bool, str | None]:
-    """Decide whether a licence passes the allow-list: (ok, ledger reason or None)."""
+    """Decide whether a licence passes the allow-list: (ok, ledger reason or None).
+
+    An item with no SPDX licence but a RightsStatements.org statement is decided by the
+    statement alone: allowed only when the allowlist names it (``rs:NoC-US``); ``allow_unknown``
+    does not let a statement through, because the statement is known and says what it says.
+    """
+    if not spdx_id and statement is not None:
+        ok = statement_allowed(statement, allow)
+        return (True, None) if ok else (False, "rights_statement_not_allowed")
     if not spdx_id:
         return (True, None) if allow_unknown else (False, "licence_unknown")
     try:
@@ -277,7 +306,7 @@ def licence_allowed(
         expr = None
     if expr is None:
         return (True, None) if allow_unknown else (False, "licence_unknown")
-    allowed = {(_known(a) or a).lower() for a in allow}
+    allowed = {(_known(a) or a).lower() for a in allow if not a.startswith(ALLOW_PREFIX)}
     if _evaluate(expr, allowed):
         return True, None
     if _licensing().unknown_license_keys(expr):
@@ -361,6 +390,12 @@ def licences_in_text(text: str) -> set[str]:
     whole, _, _ = _from_text(text) if text.strip() else (None, None, None)
     if whole and " " not in whole:
         found.add(whole)
+    return found | _ids_in_text(text)
+
+
+def _ids_in_text(text: str) -> set[str]:
+    """SPDX ids of the CC licence URLs and names inside free text (whole strings aside)."""
+    found: set[str] = set()
     for m in _CC_URL_IN_TEXT.finditer(text):
         spdx, _ = _from_url(m.group(0))
         if spdx:
@@ -370,9 +405,8 @@ def licences_in_text(text: str) -> set[str]:
             spdx, _ = _name_match(m, long, loose=True)
             if spdx:
                 found.add(spdx)
-    for m in _CC0_NAME.finditer(text):
-        if m["ver"]:
-            found.add("CC0-1.0")
+    if _CC0_NAME.search(text):
+        found.add("CC0-1.0")  # one version only (SPDX License List)
     for m in _PDM_NAME.finditer(text):
         if m["ver"]:
             found.add("CC-PDM-1.0")

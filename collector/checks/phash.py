@@ -28,19 +28,27 @@ from pathlib import Path
 import numpy as np
 from PIL import Image
 
+from collector.checks.pixels import hash_ready, is_blank
+
 __all__ = [
     "HASH_ALGO",
+    "TURNS",
+    "dct_block",
     "featureless",
     "hamming",
     "hash_image_file",
+    "phash_and_blank",
     "phash_from_image",
     "phash_prepared",
     "prepare_for_hash",
     "to_signed64",
     "to_unsigned64",
+    "turned_hashes",
 ]
 
-HASH_ALGO = "dct-phash-64/draft-v1"
+# v2: 16-bit, float and transparent pictures hashed through pixels.hash_ready (scaled, on
+# white) instead of a clipping convert("L"); 8-bit pictures without transparency hash as in v1.
+HASH_ALGO = "dct-phash-64/draft-v2"
 
 _HASH_SIZE = 8
 _IMG_SIZE = _HASH_SIZE * 4  # highfreq_factor 4, as imagehash
@@ -70,21 +78,67 @@ def _hash_block(block: np.ndarray) -> int:
     return _bits_to_int(block > np.median(block))
 
 
-def phash_from_image(im: Image.Image) -> tuple[int, int]:
-    """(pHash, mirror pHash) of an image as given: no draft, no orientation applied."""
+def dct_block(im: Image.Image) -> np.ndarray:
+    """The 8x8 low-frequency DCT block of an image (any mode, through ``hash_ready``)."""
     import scipy.fft  # imported lazily: the first import costs 0.1-0.25 s
 
-    grey = im.convert("L").resize((_IMG_SIZE, _IMG_SIZE), Image.Resampling.LANCZOS)
+    grey = hash_ready(im).resize((_IMG_SIZE, _IMG_SIZE), Image.Resampling.LANCZOS)
     pixels = np.asarray(grey)
     dct = scipy.fft.dct(scipy.fft.dct(pixels, axis=0), axis=1)
-    block = dct[:_HASH_SIZE, :_HASH_SIZE]
+    return np.asarray(dct[:_HASH_SIZE, :_HASH_SIZE])
+
+
+def phash_from_image(im: Image.Image) -> tuple[int, int]:
+    """(pHash, mirror pHash) of an image as given: no draft, no orientation applied.
+
+    8-bit modes without transparency are greyscaled with ``convert("L")`` as imagehash does;
+    16-bit, float and transparent images through :func:`collector.checks.pixels.hash_ready`.
+    """
+    block = dct_block(im)
     mirrored = np.where(_ODD_COLUMNS, -block, block)
     return _hash_block(block), _hash_block(mirrored)
 
 
+# The eight ways to turn or flip a picture (the dihedral group of the square), as the DCT
+# block sees them: a left-right flip negates odd columns, a top-bottom flip odd rows, and a
+# transpose (a flip about the diagonal) transposes the block. For a 32x32 grid these are exact
+# identities of the DCT-II, so the hash of a turned copy comes from the query's own block.
+# Name -> (transpose first?, negate odd rows?, negate odd columns?), where the name says what
+# was done to the ORIGINAL to make the copy (Pillow's ``Transpose.ROTATE_90`` turns
+# counter-clockwise; "+mirror": then flipped left-right). tests/test_phash.py checks each.
+TURNS: dict[str, tuple[bool, bool, bool]] = {
+    "same": (False, False, False),
+    "mirror": (False, False, True),
+    "rotate180": (False, True, True),
+    "rotate180+mirror": (False, True, False),
+    "rotate90": (True, True, False),
+    "rotate270": (True, False, True),
+    "rotate90+mirror": (True, True, True),
+    "rotate270+mirror": (True, False, False),
+}
+
+
+def turned_hashes(block: np.ndarray) -> dict[str, int]:
+    """The hash the original would have if it were turned back from each of the 8 turns.
+
+    A query that is a copy turned by ``name`` has, after undoing ``name``, the original's
+    hash; undoing is applying the inverse turn to the query's block."""
+    out: dict[str, int] = {}
+    for name, (transpose, odd_rows, odd_cols) in TURNS.items():
+        b = block
+        if odd_rows:
+            b = np.where(_ODD_COLUMNS.T, -b, b)
+        if odd_cols:
+            b = np.where(_ODD_COLUMNS, -b, b)
+        if transpose:
+            b = b.T
+        out[name] = _hash_block(b)
+    return out
+
+
 def prepare_for_hash(im: Image.Image, orientation: int = 1) -> Image.Image:
     """Greyscale, upright image ready for ``phash_from_image`` (call draft() before, for JPEG)."""
-    grey = im.convert("L")
+    grey = hash_ready(im)
     method = ORIENTATION_TRANSPOSE.get(orientation)
     return grey.transpose(method) if method is not None else grey
 
@@ -97,6 +151,16 @@ def phash_prepared(im: Image.Image, orientation: int = 1) -> tuple[int, int]:
     if im.format == "JPEG":
         im.draft("L", _DRAFT_SIZE)
     return phash_from_image(prepare_for_hash(im, orientation))
+
+
+def phash_and_blank(im: Image.Image, orientation: int = 1) -> tuple[int, int, bool]:
+    """(pHash, mirror, blank) of an opened image following the HASH_ALGO pipeline; ``blank``
+    as :func:`collector.checks.pixels.is_blank` (a flat picture, never compared by look)."""
+    if im.format == "JPEG":
+        im.draft("L", _DRAFT_SIZE)
+    grey = prepare_for_hash(im, orientation)
+    phash, mirror = phash_from_image(grey)
+    return phash, mirror, is_blank(grey)
 
 
 def hash_image_file(path: Path | str) -> tuple[int, int]:

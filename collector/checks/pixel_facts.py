@@ -1,191 +1,209 @@
-"""Colour and tone facts of one picture, for curation: computed once, on a small image.
+"""Two pixel facts for training data: how much of an image is see-through, and whether it was
+enlarged from a smaller original (and from about what size).
 
-Every fact is computed from the small (draft-size) picture the hash is made from, never from a
-second full decode, and sampled down to at most ``MAX_SAMPLES`` pixels where a fact only needs
-a distribution. Sources of each formula:
+Transparency (Pillow documentation, "Concepts > Modes" and "Image file formats > PNG >
+transparency"): an image has an alpha band in the modes RGBA, LA, PA, RGBa and La; a P, L or RGB
+image may instead carry ``info["transparency"]`` (a palette index, per-entry alpha bytes, or one
+colour value), which ``convert("RGBA")`` turns into an alpha band. The share recorded is the
+fraction of pixels of the first frame whose alpha is below 255 (not fully opaque).
 
-- sRGB to CIELAB: IEC 61966-2-1:1999 (the sRGB transfer function and its RGB-to-XYZ matrix,
-  D65 white) and CIE 15:2004 (CIELAB from XYZ, with the reference white D65 X=0.95047,
-  Y=1.0, Z=1.08883). Worked values: sRGB white -> L*=100, a*=b*=0; sRGB red (255, 0, 0) ->
-  L*=53.24, a*=80.09, b*=67.20 (the values published with these formulas, from memory).
-- Dominant colours: k-means (scipy.cluster.vq.kmeans2, k-means++ start, a fixed seed) on a
-  sample of the CIELAB values; every pixel is then given to its nearest centre
-  (scipy.cluster.vq.vq) for the shares; each cluster with its sRGB colour and HSV hue in
-  degrees (Python's colorsys).
-- Chroma C*ab = sqrt(a*^2 + b*^2) (CIE 15:2004); a picture is ``greyscale`` when 95 % of its
-  pixels have C*ab below ``GREY_CHROMA`` (common practice, no source).
-- Brightness: mean L*; contrast: the standard deviation of L* (RMS contrast on L*).
-- Colourfulness: Hasler and Süsstrunk, "Measuring colourfulness in natural images", Proc.
-  SPIE 5007, 2003: rg = R - G, yb = (R + G)/2 - B, M = sqrt(sd_rg^2 + sd_yb^2) + 0.3 *
-  sqrt(mean_rg^2 + mean_yb^2) on 0-255 values; their scale: 0 not colourful, ~15 slightly,
-  ~33 moderately, ~45 averagely, ~59 quite, ~82 highly, ~109 extremely colourful.
-- Sharpness: the variance of the Laplacian of the grey image (common practice, no source),
-  on the picture reduced to ``WORK_SIDE`` px: it tells a blurred or empty picture from a
-  detailed one, not fine focus.
-- Background share: the share of the picture covered by its largest connected region of
-  near-flat pixels (L* gradient below ``FLAT_GRADIENT``; common practice, no source) - a
-  "mostly empty" scan scores near 1.
+Enlargement: an image enlarged by a factor k holds (almost) no energy above 1/(2k) cycles per
+pixel, the Nyquist frequency of its original; interpolation (bilinear, bicubic, Lanczos) only
+leaves an attenuated tail there (sampling theorem; common practice, no source for the
+thresholds). The estimate is made per axis from the power spectrum of evenly spaced rows and
+columns: the native size along an axis is the size times twice the highest frequency band
+whose power stands above the tail. A sharp original keeps energy up to 0.5 cycles/pixel (edges,
+texture, sensor noise); a soft original (out of focus, heavily denoised) also reads as
+enlarged, which for training data is the same problem: little detail for its size.
+
+Pure functions on Pillow images and numpy arrays; no file I/O.
 """
 
 from __future__ import annotations
 
-import colorsys
-from dataclasses import asdict, dataclass
-from typing import Any
+from dataclasses import dataclass
 
 import numpy as np
 from PIL import Image
 
-__all__ = ["DominantColour", "PixelFacts", "pixel_facts", "srgb_to_lab"]
+__all__ = ["Enlargement", "estimate_enlargement", "transparent_share"]
 
-MAX_SAMPLES = 1024  # pixels sampled for k-means (a distribution, not every pixel)
-WORK_SIDE = 96  # the facts are computed on a picture this small (longest side, px)
-GREY_CHROMA = 6.0  # C*ab below this counts as grey (common practice, no source)
-FLAT_GRADIENT = 2.0  # L* units per pixel below this counts as flat (common practice, no source)
-_WHITE = np.array([0.95047, 1.0, 1.08883])  # D65 tristimulus values, CIE 15:2004
-
-
-def _rgb_to_xyz_matrix() -> np.ndarray:
-    """The sRGB-to-XYZ matrix derived from the sRGB primaries' chromaticities (IEC
-    61966-2-1:1999: R 0.64/0.33, G 0.30/0.60, B 0.15/0.06) scaled so that RGB white maps to
-    the D65 white above; its rounded form is the matrix printed in the standard."""
-    xy = np.array([[0.64, 0.33], [0.30, 0.60], [0.15, 0.06]])
-    primaries = np.column_stack([xy[:, 0] / xy[:, 1], np.ones(3),
-                                 (1 - xy[:, 0] - xy[:, 1]) / xy[:, 1]]).T
-    return primaries * np.linalg.solve(primaries, _WHITE)
-
-
-_RGB_TO_XYZ = _rgb_to_xyz_matrix()
+_ALPHA_MODES = ("RGBA", "LA", "PA", "RGBa", "La")
+# At most this many rows and columns are analysed, each at most _MAX_LINE samples long (its
+# centre): enough for a stable mean spectrum, and about 1 ms on a 1 MP image.
+_MAX_LINES = 48
+_MAX_LINE = 1024
+_MIN_LINE = 64  # shorter images are not judged (too few frequency bins)
+# Frequency bands (cycles per pixel) tested as the original's Nyquist limit, highest first.
+_BANDS = np.linspace(0.46, 0.08, 39)
+_UPPER = 1.25  # the band above an edge: edge .. 1.25 x edge
+_LOWER = (0.64, 0.8)  # the band below it, as multiples of the edge
+_FLOOR_VARIANCE = 1.0 / 12.0
+# The tail above an enlarged image's cut-off is this much weaker than the band just below it
+# (power ratio); measured on bench/enlarged.py's images (common practice, no source).
+_TAIL_RATIO = 0.12
+# Enlarged means the estimated native side is under this share of the real one (a factor of
+# 1.25 or more); smaller apparent factors are within the estimate's noise.
+ENLARGED_BELOW = 0.8
 
 
 @dataclass(frozen=True)
-class DominantColour:
-    """One k-means cluster: its CIELAB centre, share of pixels, sRGB hex and HSV hue."""
+class Enlargement:
+    """The estimated native size of an image and whether it looks enlarged."""
 
-    lab: tuple[float, float, float]
-    share: float
-    hex: str
-    hue: float  # degrees, 0-360 (HSV hue of the sRGB colour)
+    native_width: int
+    native_height: int
+    enlarged: bool
+
+
+def transparent_share(im: Image.Image) -> float:
+    """Share (0..1) of the pixels of the current frame that are not fully opaque; 0.0 for an
+    image without an alpha band or a transparency entry (Pillow docs, see module)."""
+    if im.mode not in _ALPHA_MODES and "transparency" not in im.info:
+        return 0.0
+    if im.mode in ("RGBA", "LA", "RGBa", "La", "PA"):
+        alpha = im.getchannel(im.getbands()[-1])  # "A", or "a" for premultiplied modes
+    else:  # P / L / RGB with a transparency entry: Pillow resolves it in convert()
+        try:
+            alpha = im.convert("RGBA").getchannel("A")
+        except ValueError:  # a mode Pillow cannot convert: nothing to measure
+            return 0.0
+    hist = alpha.histogram()
+    total = sum(hist)
+    return round((total - hist[255]) / total, 6) if total else 0.0
+
+
+def _luma(im: Image.Image) -> np.ndarray | None:
+    """The image as luma (uint8, or float32 for 16-bit and float modes scaled by their own
+    range to 0..255, so the rounding floor below stays the same); None for a mode Pillow
+    cannot turn into greyscale."""
+    if im.mode in ("I;16", "I;16B", "I;16L", "I", "F"):
+        arr = np.asarray(im, dtype=np.float32)
+        span = float(arr.max() - arr.min())
+        return (arr - float(arr.min())) * (255.0 / span) if span > 0 else arr * 0
+    try:
+        if im.mode == "LAB":
+            im = im.getchannel("L")  # lightness; Pillow has no LAB -> L conversion
+        elif im.mode != "L":
+            im = im.convert("L")
+    except ValueError:
+        return None
+    return np.asarray(im)
+
+
+def _lines(arr: np.ndarray) -> np.ndarray:
+    """Up to _MAX_LINES evenly spaced rows of ``arr`` (as float32), each cut to its central
+    _MAX_LINE samples."""
+    pick = np.linspace(0, arr.shape[0] - 1, min(_MAX_LINES, arr.shape[0])).astype(int)
+    width = arr.shape[1]
+    start = max(0, (width - _MAX_LINE) // 2)
+    return arr[pick, start:start + _MAX_LINE].astype(np.float32)
+
+
+def _spectrum(lines: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """(frequencies in cycles/pixel, mean power above the 8-bit rounding floor) of the lines,
+    each detrended and windowed (Hann)."""
+    lines = lines - lines.mean(axis=1, keepdims=True)
+    window = np.hanning(lines.shape[1]).astype(np.float32)
+    power = (np.abs(np.fft.rfft(lines * window, axis=1)) ** 2).mean(axis=0)
+    # Rounding to whole grey levels adds white noise of variance 1/12 (uniform error), whose
+    # expected power per bin is that variance times the window's energy.
+    floor = _FLOOR_VARIANCE * float((window.astype(np.float64) ** 2).sum())
+    return np.fft.rfftfreq(lines.shape[1]), np.maximum(power - floor, 0.0)
+
+
+def _band_means(freqs: np.ndarray, power: np.ndarray, low: np.ndarray,
+                high: np.ndarray) -> np.ndarray:
+    """Mean power over the bins with low < f <= high, for each pair (NaN for an empty band)."""
+    total = np.concatenate([[0.0], np.cumsum(power, dtype=np.float64)])
+    start = np.searchsorted(freqs, low, side="right")
+    stop = np.searchsorted(freqs, high, side="right")
+    count = stop - start
+    with np.errstate(invalid="ignore", divide="ignore"):
+        return np.where(count > 0, (total[stop] - total[start]) / np.maximum(count, 1), np.nan)
+
+
+def tail_ratios(freqs: np.ndarray, power: np.ndarray) -> np.ndarray:
+    """For each edge of _BANDS: mean power just above it over mean power just below it (1.0
+    where a band is empty or the lower one holds nothing above the rounding floor)."""
+    upper = _band_means(freqs, power, _BANDS, np.minimum(0.5, _BANDS * _UPPER))
+    lower = _band_means(freqs, power, _BANDS * _LOWER[0], _BANDS * _LOWER[1])
+    with np.errstate(invalid="ignore", divide="ignore"):
+        ratios = upper / lower
+    return np.where(np.isfinite(ratios) & (lower > 0), ratios, 1.0)
+
+
+def native_fraction(ratios: np.ndarray) -> float:
+    """Estimated native size as a fraction of the real one (1.0 = not enlarged): twice the
+    lowest band edge where the spectrum drops into a weak tail (a ratio under _TAIL_RATIO); a
+    natural spectrum falls smoothly (about 1/f^2) and has no such drop. Above an enlarged
+    image's cut-off every band is tail, so the lowest drop is the cut-off itself."""
+    drops = np.nonzero(ratios < _TAIL_RATIO)[0]
+    if drops.size == 0:
+        return 1.0
+    # The lowest drop lies about one band width (x _UPPER) under the cut-off (bench/enlarged.py).
+    return min(1.0, 2.0 * _UPPER * float(_BANDS[int(drops.max())]))
+
+
+def estimate_enlargement(im: Image.Image) -> Enlargement | None:
+    """Estimated native size of the image as given (first frame, orientation as stored), or
+    None when a side is under 64 px (too short for a spectrum) or the mode has no greyscale."""
+    width, height = im.size
+    if min(width, height) < _MIN_LINE:
+        return None
+    arr = _luma(im)
+    if arr is None:
+        return None
+    rows, cols = tail_ratios(*_spectrum(_lines(arr))), tail_ratios(*_spectrum(_lines(arr.T)))
+    both = native_fraction((rows + cols) / 2)  # one verdict, steadier than either axis alone
+    if both >= 1.0:
+        return Enlargement(width, height, False)
+    fx, fy = native_fraction(rows), native_fraction(cols)
+    fx, fy = (fx if fx < 1.0 else both), (fy if fy < 1.0 else both)
+    native_w, native_h = round(width * fx), round(height * fy)
+    enlarged = both < ENLARGED_BELOW
+    return Enlargement(native_w, native_h, enlarged)
+
+
+POLICIES = ("keep", "flag", "reject")
 
 
 @dataclass(frozen=True)
 class PixelFacts:
-    """The colour and tone facts of one picture (see the module's sources)."""
+    """The transparency share and the native-size estimate of one image (None: not measured)."""
 
-    colours: tuple[DominantColour, ...]
-    greyscale: bool
-    brightness: float  # mean L*, 0-100
-    contrast: float  # standard deviation of L*
-    colourfulness: float  # Hasler and Süsstrunk's M
-    sharpness: float  # variance of the Laplacian of the grey image (0-255 scale)
-    background_share: float  # largest flat connected region, 0-1
+    transparent_share: float | None
+    enlargement: Enlargement | None
 
-    def as_json(self) -> dict[str, Any]:
-        """Plain data for the ledger (rounded: these are estimates)."""
-        out = asdict(self)
-        out["colours"] = [{"lab": [round(v, 2) for v in c.lab], "share": round(c.share, 4),
-                           "hex": c.hex, "hue": round(c.hue, 1)} for c in self.colours]
-        for key in ("brightness", "contrast", "colourfulness", "sharpness", "background_share"):
-            out[key] = round(float(out[key]), 4)
-        return out
+    def columns(self) -> dict[str, float | int | None]:
+        """The ledger ``files`` columns these facts fill."""
+        est = self.enlargement
+        return {"transparent_share": self.transparent_share,
+                "native_width": est.native_width if est else None,
+                "native_height": est.native_height if est else None}
 
 
-def _linear(c: np.ndarray) -> np.ndarray:
-    """The sRGB transfer function undone (IEC 61966-2-1:1999), values 0-1."""
-    return np.where(c <= 0.04045, c / 12.92, ((c + 0.055) / 1.055) ** 2.4)
+def verdicts(facts: PixelFacts, *, transparent: str, enlarged: str,
+             min_side: int) -> list[tuple[str, str, str]]:
+    """What the recipe's policies say about the facts: (policy, reason, detail) for each that
+    applies; policy "flag" keeps the image with the reason as a flag, "reject" refuses it.
 
-
-_LINEAR_8BIT = _linear(np.arange(256) / 255.0)  # exact for 8-bit input, looked up
-
-
-def srgb_to_lab(rgb: np.ndarray) -> np.ndarray:
-    """CIELAB (D65) of sRGB values in 0-255, shape (..., 3) -> (..., 3)."""
-    values = np.asarray(rgb)
-    linear = (_LINEAR_8BIT[values] if values.dtype == np.uint8
-              else _linear(values.astype(np.float64) / 255.0))
-    xyz = linear @ _RGB_TO_XYZ.T / _WHITE
-    eps, kappa = 216 / 24389, 24389 / 27  # CIE 15:2004 exact ratios
-    f = np.where(xyz > eps, np.cbrt(xyz), (kappa * xyz + 16) / 116)
-    return np.stack([116 * f[..., 1] - 16, 500 * (f[..., 0] - f[..., 1]),
-                     200 * (f[..., 1] - f[..., 2])], axis=-1)
-
-
-def _lab_to_hex(lab: np.ndarray) -> str:
-    """The sRGB colour of one CIELAB value (inverse of srgb_to_lab, clipped to the gamut)."""
-    fy = (lab[0] + 16) / 116
-    f = np.array([fy + lab[1] / 500, fy, fy - lab[2] / 200])
-    eps, kappa = 216 / 24389, 24389 / 27
-    xyz = np.where(f ** 3 > eps, f ** 3, (116 * f - 16) / kappa) * _WHITE
-    linear = np.linalg.solve(_RGB_TO_XYZ, xyz).clip(0, 1)
-    c = np.where(linear <= 0.0031308, 12.92 * linear, 1.055 * linear ** (1 / 2.4) - 0.055)
-    r, g, b = (round(float(v) * 255) for v in c.clip(0, 1))
-    return f"#{r:02x}{g:02x}{b:02x}"
-
-
-def _dominant(lab: np.ndarray, k: int) -> tuple[DominantColour, ...]:
-    from scipy.cluster.vq import kmeans2, vq  # imported when facts are computed (ingest)
-
-    every = lab.reshape(-1, 3)
-    pixels = every
-    if len(pixels) > MAX_SAMPLES:
-        pick = np.random.default_rng(0).choice(len(pixels), MAX_SAMPLES, replace=False)
-        pixels = pixels[pick]
-    q = np.round(pixels).astype(np.int64) + 256  # whole CIELAB units, all positive
-    distinct = np.unique((q[:, 0] << 20) | (q[:, 1] << 10) | q[:, 2]).size
-    k = max(1, min(k, distinct))  # never more clusters than distinct colours
-    centres, _ = kmeans2(pixels, k, minit="++", seed=0)
-    labels, _ = vq(every, centres)  # shares over every pixel, not just the sample
-    counts = np.bincount(labels, minlength=k)
+    Transparency applies when some pixel is not fully opaque; enlargement when the image looks
+    enlarged and its estimated native shortest side is under ``min_side`` (any enlarged image
+    when ``min_side`` is 0)."""
     out = []
-    for i in np.argsort(-counts):
-        if counts[i] == 0:
-            continue
-        hex_colour = _lab_to_hex(centres[i])
-        rgb = [int(hex_colour[j:j + 2], 16) / 255 for j in (1, 3, 5)]
-        hue = colorsys.rgb_to_hsv(*rgb)[0] * 360
-        out.append(DominantColour(tuple(float(v) for v in centres[i]),  # type: ignore[arg-type]
-                                  float(counts[i] / counts.sum()), hex_colour, hue))
-    return tuple(out)
-
-
-def _colourfulness(rgb: np.ndarray) -> float:
-    r, g, b = (rgb[..., i].astype(np.float64) for i in range(3))
-    rg, yb = r - g, 0.5 * (r + g) - b
-    return float(np.hypot(rg.std(), yb.std()) + 0.3 * np.hypot(rg.mean(), yb.mean()))
-
-
-def _sharpness(grey: np.ndarray) -> float:
-    from scipy import ndimage
-
-    return float(ndimage.laplace(grey.astype(np.float64)).var())
-
-
-def _background_share(lightness: np.ndarray) -> float:
-    from scipy import ndimage
-
-    gy, gx = np.gradient(lightness)
-    flat = np.hypot(gx, gy) < FLAT_GRADIENT
-    labels, count = ndimage.label(flat)
-    if count == 0:
-        return 0.0
-    sizes = np.bincount(labels.ravel())[1:]
-    return float(sizes.max() / lightness.size)
-
-
-def pixel_facts(image: Image.Image, *, colours: int = 5) -> PixelFacts:
-    """The facts of a small picture (any mode; converted to sRGB, transparency ignored),
-    reduced first to at most ``WORK_SIDE`` pixels on its longest side."""
-    image = image.convert("RGB")
-    if max(image.size) > WORK_SIDE:
-        image = image.copy()
-        image.thumbnail((WORK_SIDE, WORK_SIDE), Image.Resampling.BOX)
-    rgb = np.asarray(image)
-    lab = srgb_to_lab(rgb)
-    chroma = np.hypot(lab[..., 1], lab[..., 2])
-    grey = np.asarray(image.convert("L"))
-    return PixelFacts(
-        colours=_dominant(lab, colours),
-        greyscale=bool(np.percentile(chroma, 95) < GREY_CHROMA),
-        brightness=float(lab[..., 0].mean()), contrast=float(lab[..., 0].std()),
-        colourfulness=_colourfulness(rgb), sharpness=_sharpness(grey),
-        background_share=_background_share(lab[..., 0]))
+    share = facts.transparent_share or 0.0
+    if transparent != "keep" and share > 0:
+        out.append((transparent, "transparent",
+                    f"{share:.1%} of the pixels are transparent ([images] transparent = "
+                    f'"{transparent}")'))
+    est = facts.enlargement
+    if enlarged != "keep" and est is not None and est.enlarged:
+        native = min(est.native_width, est.native_height)
+        if not min_side or native < min_side:
+            limit = f"under min_side {min_side}" if min_side else "enlarged"
+            out.append((enlarged, "enlarged",
+                        f"looks enlarged from about {est.native_width}x{est.native_height} "
+                        f"(native shortest side {native}px, {limit}; [images] enlarged = "
+                        f'"{enlarged}")'))
+    return out

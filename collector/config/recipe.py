@@ -10,17 +10,17 @@ from __future__ import annotations
 
 import hashlib
 import ipaddress
-import json
-import os
 import re
 import tomllib
 from collections.abc import Callable, Mapping
 from dataclasses import MISSING, asdict, dataclass, field, fields, replace
-from datetime import time
 from pathlib import Path
 from typing import Any
 from urllib.parse import urlsplit
 
+from collector.checks.rights_statements import ALLOW_PREFIX, allow_entry_problem
+from collector.config.recipe_env import env_problems_in, source_prefix
+from collector.config.stop_times import check_clock, check_duration
 from collector.errors import RecipeError, RecipeProblem
 from collector.schema import (
     Check,
@@ -31,7 +31,6 @@ from collector.schema import (
     describe,
     did_you_mean,
     env_names,
-    expand_env,
     header_value_problem,
     one_of,
 )
@@ -43,7 +42,6 @@ CONTROL_RE = re.compile(r"[\x00-\x1f\x7f]")
 # recipe, and a very deep one would exhaust the parser's recursion (common practice, no source).
 MAX_DEPTH = 16
 EMAIL_RE = re.compile(r"^[^@\s<>]+@[^@\s<>]+\.[^@\s<>]+$")
-DURATION_RE = re.compile(r"^(?:(\d+)h)?\s*(?:(\d+)m)?\s*(?:(\d+)s)?$")
 SPDX_ID_RE = re.compile(r"^[A-Za-z0-9][A-Za-z0-9.+-]*$")
 
 # The default allowlist: public-domain dedications and marks, CC BY and CC BY-SA (unported
@@ -92,43 +90,6 @@ def _check_token(value: Any) -> str | None:
     return None
 
 
-def _check_clock(value: Any) -> str | None:
-    try:
-        parse_clock(value)
-    except ValueError:
-        return f"must be a local time like \"07:00\" (24-hour HH:MM), got {value!r}"
-    return None
-
-
-def _check_duration(value: Any) -> str | None:
-    try:
-        parse_duration(value)
-    except ValueError:
-        unit = (f'; a number needs a unit: "{value}h" for hours, "{value}m" for minutes'
-                if str(value).strip().isdigit() else "")
-        return f"must be a duration like \"8h\", \"90m\" or \"1h30m\", got {value!r}{unit}"
-    return None
-
-
-class StopOptionsError(RecipeError):
-    """--until, --for or --max-items cannot be read; all problems are listed at once."""
-
-    what = "the command line"
-
-
-def check_stop_options(until: str | None, duration: str | None, max_items: int | None) -> None:
-    """Refuse unreadable --until, --for and --max-items (all at once, worded like the recipe's
-    [stop] keys) before a run or a dry run starts: StopOptionsError, exit 2."""
-    found = [("--until", until, _check_clock), ("--for", duration, _check_duration)]
-    problems = [RecipeProblem(option, "", why) for option, value, check in found
-                if value is not None and (why := check(value))]
-    if max_items is not None and max_items < 0:
-        problems.append(RecipeProblem("--max-items", "",
-                                      f"must be 0 (no limit) or more, got {max_items}"))
-    if problems:
-        raise StopOptionsError(problems)
-
-
 def _check_addresses(values: Any) -> str | None:
     for value in values:
         try:
@@ -139,67 +100,16 @@ def _check_addresses(values: Any) -> str | None:
 
 
 def _check_spdx_list(values: Any) -> str | None:
-    bad = [v for v in values if not SPDX_ID_RE.match(v)]
+    for value in values:
+        if isinstance(value, str) and value.startswith(ALLOW_PREFIX):
+            problem = allow_entry_problem(value)
+            if problem:
+                return problem
+    bad = [v for v in values if not v.startswith(ALLOW_PREFIX) and not SPDX_ID_RE.match(v)]
     if bad:
         return (f"entries must be SPDX licence ids like \"CC-BY-4.0\" (see "
                 f"https://spdx.org/licenses/), got {bad[0]!r}")
     return None
-
-
-def env_problems(recipe: Recipe, *, unset: bool = True) -> list[RecipeProblem]:
-    """A problem for every ``${NAME}`` the recipe uses whose variable is not set (unless
-    ``unset`` is false), and for every header whose value, once its variables are filled in,
-    holds CR, LF or NUL (a token read from a file with Windows line endings). The problem
-    never shows the value."""
-    data = {"network": {"headers": recipe.network.headers}, "sources": recipe.sources}
-    return _env_problems(data, str(recipe.path), unset=unset)
-
-
-def source_prefix(index: int, table: Any) -> str:
-    """How a problem names the ``index``-th (from 0) [[sources]] table: by position from 1,
-    and by name when it has one: ``sources[2] ("gallery")``."""
-    name = table.get("name") if isinstance(table, dict) else None
-    named = f" ({json.dumps(name, ensure_ascii=False)})" if isinstance(name, str) and \
-        name.strip() else ""
-    return f"sources[{index + 1}]{named}"
-
-
-def _env_places(data: Mapping[str, Any]) -> list[tuple[str, Any]]:
-    """(key path, value) of every params/headers value in parsed recipe data, checked or not."""
-    network = data.get("network")
-    headers = network.get("headers") if isinstance(network, dict) else None
-    places = [(f"network.headers.{k}", v) for k, v in headers.items()] \
-        if isinstance(headers, dict) else []
-    raw_sources = data.get("sources")
-    for i, src in enumerate(raw_sources if isinstance(raw_sources, list) else []):
-        for table in ("params", "headers"):
-            values = src.get(table) if isinstance(src, dict) else None
-            if isinstance(values, dict):
-                places += [(f"{source_prefix(i, src)}.{table}.{k}", v) for k, v in values.items()]
-    return places
-
-
-def _env_problems(data: Mapping[str, Any], file: str, *, unset: bool) -> list[RecipeProblem]:
-    problems: list[RecipeProblem] = []
-    for path, text in _env_places(data):
-        if not isinstance(text, str):
-            continue
-        names = env_names(text)
-        missing = [name for name in names if name not in os.environ]
-        if unset:
-            problems += [RecipeProblem(file, path,
-                                       f"uses ${{{name}}}, but the environment variable {name} "
-                                       "is not set; set it before gathering")
-                         for name in missing]
-        if names and not missing and ".headers." in path:
-            problem = header_value_problem(expand_env(text))
-            if problem:
-                problems.append(RecipeProblem(
-                    file, path,
-                    f"{problem} once ${{{names[0]}}} is filled in; remove the line ending "
-                    "from the environment variable (was it read from a file with Windows "
-                    "line endings?)"))
-    return problems
 
 
 def _depth(data: Any) -> int:
@@ -213,30 +123,6 @@ def _depth(data: Any) -> int:
         elif isinstance(value, list):
             stack += [(v, depth + 1) for v in value]
     return deepest
-
-
-def parse_clock(value: str) -> time:
-    """Parse a 24-hour local time "HH:MM"."""
-    match = re.fullmatch(r"(\d{1,2}):(\d{2})", str(value).strip())
-    if not match:
-        raise ValueError(value)
-    hour, minute = int(match[1]), int(match[2])
-    if hour > 23 or minute > 59:  # time() would say "hour must be in 0..23": ours is clearer
-        raise ValueError(value)
-    return time(hour, minute)
-
-
-def parse_duration(value: str) -> float:
-    """Parse "8h", "90m", "1h30m", "45s" into seconds."""
-    text = str(value).strip().lower()
-    match = DURATION_RE.fullmatch(text)
-    if not text or not match or not any(match.groups()):
-        raise ValueError(value)
-    hours, minutes, seconds = (int(g) if g else 0 for g in match.groups())
-    total = hours * 3600 + minutes * 60 + seconds
-    if total <= 0:
-        raise ValueError(value)
-    return float(total)
 
 
 def _setting(default: Any, check: Check | None = None) -> Any:
@@ -332,6 +218,20 @@ class Images:
     max_pixels: int = _setting(89_478_485, at_least(0, strict=True))
     near_distance: int = _setting(8, at_least(0))
     near_duplicates: str = _setting("keep", one_of("keep", "drop"))
+    # Images with transparent pixels, and images that look enlarged from a native shortest
+    # side under min_side: keep, keep and flag, or reject (collector.checks.pixel_facts).
+    transparent: str = _setting("keep", one_of("keep", "flag", "reject"))
+    enlarged: str = _setting("keep", one_of("keep", "flag", "reject"))
+    # The release export flattens images with transparent pixels onto this colour ("#rrggbb";
+    # "" = leave them as stored). The flattened PNG is a derived file; the store is unchanged.
+    release_background: str = _setting("", lambda v: _check_colour(v) if v else None)
+
+
+def _check_colour(value: Any) -> str | None:
+    """A background colour is written "#rrggbb" (CSS Color Level 4, hex notation)."""
+    if isinstance(value, str) and re.fullmatch(r"#[0-9A-Fa-f]{6}", value):
+        return None
+    return f'must be a colour written "#rrggbb", e.g. "#ffffff" for white, got {value!r}'
 
 
 @dataclass(frozen=True)
@@ -339,8 +239,39 @@ class Stop:
     """``[stop]``: when a gather stops on its own ("" and 0 mean never)."""
 
     max_items: int = _setting(0, at_least(0))
-    until: str = _setting("", lambda v: _check_clock(v) if v else None)
-    duration: str = _setting("", lambda v: _check_duration(v) if v else None)
+    until: str = _setting("", lambda v: check_clock(v) if v else None)
+    duration: str = _setting("", lambda v: check_duration(v) if v else None)
+
+
+def _check_tokens(values: Any) -> str | None:
+    bad = [v for v in values if not valid_product_token(v)]
+    if bad:
+        return (f"entries must be robots.txt product tokens: letters, '_' and '-' (RFC 9309 "
+                f"section 2.2.1), got {bad[0]!r}")
+    return None
+
+
+def _check_permissions(values: Any) -> str | None:
+    for name, reference in values.items():
+        if not str(reference).strip():
+            return (f"{name}: the permission needs a reference a reader can check (e.g. "
+                    "\"licence agreement FFS-2026-04 of 3 May 2026\"), not an empty text")
+    return None
+
+
+@dataclass(frozen=True)
+class Reservations:
+    """``[reservations]``: machine-readable reservations against text-and-data mining and AI
+    training are honoured by default (collector.run.reservations). ``permission`` names a
+    source and the written permission that lets us gather it anyway (kept in the ledger and
+    the datasheet); ``robots_tokens`` are further robots.txt product tokens whose groups bind
+    the run; ``when_unknown`` says what happens to an item while a tdmrep.json cannot be read
+    ("defer": asked again next run; "gather": gathered, the ledger says it was unknown)."""
+
+    when_unknown: str = _setting("defer", one_of("defer", "gather"))
+    robots_tokens: list[str] = field(default_factory=list, metadata={"check": _check_tokens})
+    permission: dict[str, str] = field(default_factory=dict,
+                                       metadata={"check": _check_permissions})
 
 
 def _condition_problem(value: Any) -> str | None:
@@ -360,6 +291,7 @@ class Items:
 SECTIONS: dict[str, type] = {
     "collection": CollectionInfo, "budgets": Budget, "network": Network,
     "licences": Licences, "images": Images, "stop": Stop, "items": Items,
+    "reservations": Reservations,
 }
 SECTION_KEYS: dict[str, dict[str, Key]] = {
     name: section_keys(cls) for name, cls in SECTIONS.items()}
@@ -389,6 +321,8 @@ class Recipe:
     stop: Stop
     sources: list[dict[str, Any]] = field(default_factory=list)
     items: Items = field(default_factory=lambda: Items())
+    reservations: Reservations = field(default_factory=Reservations)
+    text: str = field(default="", repr=False, compare=False)  # as read, for the ledger
 
     def budget_for(self, host: str) -> Budget:
         """The budget in force for ``host`` (``host`` or ``host:port``): defaults + override."""
@@ -404,6 +338,7 @@ class Recipe:
             "budgets.hosts": self.host_budgets, "network": asdict(self.network),
             "licences": asdict(self.licences), "images": asdict(self.images),
             "stop": asdict(self.stop), "items": asdict(self.items), "sources": self.sources,
+            "reservations": asdict(self.reservations),
         }
 
     def shown_settings(self) -> dict[str, Any]:
@@ -429,6 +364,24 @@ class Recipe:
             sources.append(shown)
         settings["sources"] = sources
         return settings
+
+    def kept_text(self) -> str:
+        """The recipe text as the ledger keeps it (recipe history): every secret literal
+        that :meth:`shown_settings` hides is replaced by ``REDACTED`` in the text too."""
+        text = self.text
+        for secret in sorted(_hidden_values(self.as_dict(), self.shown_settings()),
+                             key=len, reverse=True):
+            text = text.replace(secret, REDACTED)
+        return text
+
+
+def _hidden_values(plain: Any, shown: Any) -> set[str]:
+    """The string values of ``plain`` that ``shown`` replaces by REDACTED."""
+    if isinstance(plain, dict) and isinstance(shown, dict):
+        return {v for k in plain for v in _hidden_values(plain[k], shown.get(k))}
+    if isinstance(plain, list) and isinstance(shown, list):
+        return {v for a, b in zip(plain, shown, strict=False) for v in _hidden_values(a, b)}
+    return {plain} if isinstance(plain, str) and plain and shown == REDACTED else set()
 
 
 def _hide(values: Mapping[str, Any], secret: Callable[[str], bool]) -> dict[str, Any]:
@@ -484,6 +437,19 @@ def _check_sources(raw: Any, problems: Problems, *, by_kind: bool = True) -> lis
     return list(raw)
 
 
+def _check_permission_names(data: Mapping[str, Any], source_list: list[dict],
+                            problems: Problems) -> None:
+    """Each ``[reservations.permission]`` entry names a source of the recipe."""
+    names = [s.get("name") for s in source_list]
+    raw_permission = (data.get("reservations") or {}).get("permission") \
+        if isinstance(data.get("reservations"), dict) else None
+    for name in raw_permission if isinstance(raw_permission, dict) else {}:
+        if name not in names:
+            problems.add(f'reservations.permission."{name}"',
+                         f"names no source{did_you_mean(name, [str(n) for n in names])}; a "
+                         "permission is given per source, by its name")
+
+
 def parse_recipe(text: str, path: Path, *, check_source_kinds: bool = True) -> Recipe:
     """Validate recipe text; raises RecipeError listing every problem.
 
@@ -529,7 +495,7 @@ def parse_recipe(text: str, path: Path, *, check_source_kinds: bool = True) -> R
         problems.add("images.max_aspect", "must be greater than images.min_aspect")
     source_list = (_check_sources(data["sources"], problems, by_kind=check_source_kinds)
                    if "sources" in data else [])
-
+    _check_permission_names(data, source_list, problems)
     if problems:
         raise RecipeError(problems.items)
     return Recipe(
@@ -539,7 +505,8 @@ def parse_recipe(text: str, path: Path, *, check_source_kinds: bool = True) -> R
         budgets=Budget(**sections["budgets"]), host_budgets=host_budgets,
         network=Network(**sections["network"]), licences=Licences(**sections["licences"]),
         images=Images(**sections["images"]), stop=Stop(**sections["stop"]),
-        sources=source_list, items=Items(**sections["items"]))
+        sources=source_list, items=Items(**sections["items"]),
+        reservations=Reservations(**sections["reservations"]), text=text)
 
 
 def load_recipe(path: Path, *, check_source_kinds: bool = True) -> Recipe:
@@ -562,7 +529,7 @@ def check_recipe(path: Path) -> Recipe:
     except (tomllib.TOMLDecodeError, RecursionError):
         data = {}  # already reported by parse_recipe
     if _depth(data) <= MAX_DEPTH:
-        problems += _env_problems(data, str(path), unset=True)
+        problems += env_problems_in(data, str(path), unset=True)
     if problems or recipe is None:
         raise RecipeError(problems)
     return recipe

@@ -32,6 +32,8 @@ import re
 from datetime import datetime
 from typing import TYPE_CHECKING, Any
 
+from collector.exports.datasheet_reservations import rai_reservations
+
 if TYPE_CHECKING:
     from collector.exports.facts import DatasheetFacts
 
@@ -84,7 +86,7 @@ CONTEXT: dict[str, Any] = {
 PROVENANCE_FILE = "provenance.csv"
 # provenance.csv columns -> (Croissant dataType, description). Order = the CSV's columns.
 PROVENANCE_FIELDS: dict[str, tuple[str, str]] = {
-    "file_name": ("sc:Text", "stable file name in images/ (first 16 hex digits of sha256)"),
+    "file_name": ("sc:Text", "file name in images/: source, source key, 12 hex digits of sha256"),
     "sha256": ("sc:Text", "SHA-256 of the file bytes (FIPS 180-4), hex"),
     "source": ("sc:Text", "name of the recipe source the item came from"),
     "source_key": ("sc:Text", "the source's own id for the item"),
@@ -103,6 +105,9 @@ PROVENANCE_FIELDS: dict[str, tuple[str, str]] = {
     "size": ("sc:Integer", "file size in bytes"),
     "flags": ("sc:Text", "review flags separated by ';' (gps, camera_serial, owner_name, "
                          "licence_conflict, ...)"),
+    "derived_from": ("sc:Text", "SHA-256 of the stored original when the released file is "
+                                "derived from it (flattened onto a background colour), else "
+                                "empty"),
 }
 # Per-row licence and creator also mean schema.org's license/creator (Croissant 1.1's
 # equivalentProperty; mlcroissant 1.1.1 accepts it under 1.0).
@@ -143,7 +148,9 @@ def build_croissant(facts: DatasheetFacts, answers: dict[str, str]) -> dict[str,
         "name": answers.get("dataset.name") or coll.get("name") or "",
         "description": answers.get("dataset.description") or coll.get("description") or "",
         "datePublished": answers.get("dataset.date_published") or facts["generated_at"][:10],
-        "license": [spdx_url(k) for k in release["by_licence"] if k != "unknown"],
+        # RightsStatements.org keys ("rs:NoC-US") are no SPDX licences: not listed here.
+        "license": [spdx_url(k) for k in release["by_licence"]
+                    if k != "unknown" and not k.startswith("rs:")],
     }
     if answers.get("dataset.url"):
         doc["url"] = answers["dataset.url"]
@@ -243,6 +250,7 @@ def _rai(facts: DatasheetFacts, answers: dict[str, str]) -> dict[str, Any]:
             f"{dup['policy']}).",
             f"This release left out {release['excluded_licence']} files by licence policy "
             f"and {release['excluded_flagged']} flagged files.",
+            rai_reservations(facts),
         ],
         "rai:dataManipulationProtocol": (
             "No pixels or metadata were changed: files are stored as received. Crops cut "

@@ -33,16 +33,25 @@ from datetime import UTC, datetime
 from pathlib import Path
 from typing import TYPE_CHECKING, Any, TypedDict
 
-from collector import __version__
+from collector import DISTRIBUTION, __version__
 from collector.checks.licences import licence_allowed, licence_conditions, licence_deed_url
+from collector.checks.rights_statements import ALLOW_PREFIX, STATEMENTS
 from collector.config.recipe import Recipe
 from collector.errors import CollectionError, LedgerError, LedgerUnusable
+from collector.exports import changelog, release
 from collector.exports.datasheet_questions import load_answers
-from collector.exports.facts import DatasheetFacts, ResolutionBins, Timeline
+from collector.exports.datasheet_reservations import reservation_summary
+from collector.exports.facts import (
+    DatasheetFacts,
+    LicenceFacts,
+    PictureDates,
+    ResolutionBins,
+    Timeline,
+)
 from collector.safe_text import csv_cell, csv_row
-from collector.storage import queries
+from collector.storage import datasheet_queries, upkeep_queries
+from collector.storage.datasheet_queries import Timeframe
 from collector.storage.ledger import Ledger
-from collector.storage.queries import Timeframe
 from collector.storage.safe_paths import link_refused, new_temp_file, own_folder, replace_file
 
 if TYPE_CHECKING:
@@ -52,7 +61,7 @@ if TYPE_CHECKING:
 # number,
 # camera owner's name); "licence_conflict" comes from collector.run.ingest when embedded rights
 # metadata contradicts the declared licence.
-LOCAL_HOST = queries.LOCAL_HOST  # how files read from a local folder are counted by host
+LOCAL_HOST = datasheet_queries.LOCAL_HOST  # how files read from a local folder are counted by host
 PERSONAL_FLAGS = ("gps", "camera_serial", "owner_name")
 CONFLICT_FLAG = "licence_conflict"
 
@@ -64,7 +73,7 @@ IMAGES_DIR = "images"
 PROVENANCE_COLUMNS = (
     "file_name", "sha256", "source", "source_key", "page_url", "image_url", "title", "creator",
     "licence_raw", "spdx_id", "licence_url", "fetched_at", "width", "height", "format", "mime",
-    "size", "flags",
+    "size", "flags", "derived_from",
 )
 ATTRIBUTION_COLUMNS = ("file_name", "title", "author", "source", "licence", "licence_url")
 
@@ -74,38 +83,39 @@ ATTRIBUTION_COLUMNS = ("file_name", "title", "author", "source", "licence", "lic
 def _facts(ledger: Ledger, recipe: Recipe, now: str) -> DatasheetFacts:
     """Every number of the datasheet: ledger reads from :mod:`collector.storage.queries`,
     the rest from the recipe."""
-    items = queries.item_facts(ledger)
-    acc = queries.accepted_facts(ledger)
-    frame = queries.timeframe(ledger)
+    items = datasheet_queries.item_facts(ledger)
+    acc = datasheet_queries.accepted_facts(ledger)
+    frame = datasheet_queries.timeframe(ledger)
+    missing = datasheet_queries.missing_facts(ledger)
     return {
-        "generated_at": now, "tool_version": __version__,
+        "generated_at": now, "tool_version": __version__, "distribution": DISTRIBUTION,
         "collection": {"name": recipe.collection.name,
                        "description": recipe.collection.description,
                        "curator": recipe.collection.curator,
                        "contact": recipe.contact, "product_token": recipe.product_token},
-        "items": items, "accepted": acc, "missing": queries.missing_facts(ledger),
-        "flags": queries.flag_counts(ledger),
-        "flagged": queries.flagged_facts(ledger, PERSONAL_FLAGS, CONFLICT_FLAG),
+        "items": items, "accepted": acc, "missing": missing,
+        "flags": datasheet_queries.flag_counts(ledger),
+        "flagged": datasheet_queries.flagged_facts(ledger, PERSONAL_FLAGS, CONFLICT_FLAG),
         "duplicates": {
             "exact": items["by_state"].get("duplicate", 0), "near_kept": acc["near_kept"],
-            "near_dropped": queries.near_dropped(ledger),
+            "near_dropped": datasheet_queries.near_dropped(ledger),
             "policy": recipe.images.near_duplicates,
             "near_distance": recipe.images.near_distance,
         },
-        "licences": [
-            {"spdx_id": spdx, "files": n,
-             "conditions": licence_conditions(None if spdx == "unknown" else spdx),
-             "deed_url": licence_deed_url(None if spdx == "unknown" else spdx)}
-            for spdx, n in acc["by_licence"].items()],
+        "licences": [_licence_facts(spdx, n) for spdx, n in acc["by_licence"].items()],
         "timeframe": frame,
-        "requests": queries.request_facts(ledger),
-        "hosts": queries.host_facts(ledger),
+        "picture_dates": _picture_dates(ledger, acc["files"] - missing["no_date"]),
+        "requests": datasheet_queries.request_facts(ledger),
+        "hosts": datasheet_queries.host_facts(ledger),
+        "host_sources": datasheet_queries.host_sources(ledger),
         "resolution_bins": _resolution_bins(ledger, acc["width"]["max"], acc["height"]["max"]),
         "timeline": _timeline(ledger, frame),
         "sources": [{"name": s.name, "kind": s.kind, "items": s.items, "accepted": s.accepted,
-                     **_kind_facts(s.kind)} for s in queries.source_counts(ledger)],
-        "runs": queries.run_facts(ledger),
-        "notes": queries.note_counts(ledger),
+                     **_kind_facts(s.kind), "where": _where(recipe, s.name)}
+                    for s in datasheet_queries.source_counts(ledger)],
+        "runs": datasheet_queries.run_facts(ledger),
+        "notes": datasheet_queries.note_counts(ledger),
+        "reservations": reservation_summary(ledger, recipe),
         "policy": {
             "budgets": {k: getattr(recipe.budgets, k) for k in (
                 "min_interval", "requests_per_hour", "bytes_per_hour", "max_connections",
@@ -134,13 +144,38 @@ def _kind_facts(kind: str) -> _KindFacts:
     return {"mechanism": found.mechanism, "collection_type": found.collection_type}
 
 
+def _picture_dates(ledger: Ledger, dated: int) -> PictureDates:
+    earliest, latest = datasheet_queries.picture_dates(ledger)
+    return {"earliest": earliest, "latest": latest, "dated": dated}
+
+
+def _where(recipe: Recipe, name: str) -> list[str]:
+    """Where a source's archive is, read from its recipe table without knowing its kind: the
+    http(s) URLs among its top-level values (secret parameters hidden), else the values that
+    read as folder paths (a slash, no space, no wildcard); [] for a source no longer in the
+    recipe."""
+    from collector.urls import redact
+
+    everywhere = list(recipe.network.secret_params)
+    for table in recipe.shown_settings()["sources"]:
+        if table.get("name") != name:
+            continue
+        texts = [x for k, v in table.items() if k not in ("name", "kind")
+                 for x in (v if isinstance(v, list) else [v]) if isinstance(x, str)]
+        secret = [*(table.get("secret_params") or ()), *everywhere]
+        found = [redact(x, secret) for x in texts if x.startswith(("http://", "https://"))]
+        return found or [x for x in texts
+                         if "/" in x and not any(c.isspace() or c in "*?[" for c in x)]
+    return []
+
+
 def _resolution_bins(ledger: Ledger, max_w: int | None, max_h: int | None) -> ResolutionBins:
     """Accepted files counted on a grid of width x height cells (about 30 per axis)."""
     top = max(max_w or 0, max_h or 0)
     step = 1
     while top / step > 30:
         step *= 2
-    return {"step": step, "cells": queries.resolution_cells(ledger, step)}
+    return {"step": step, "cells": datasheet_queries.resolution_cells(ledger, step)}
 
 
 def _timeline(ledger: Ledger, frame: Timeframe) -> Timeline:
@@ -158,8 +193,13 @@ def _timeline(ledger: Ledger, frame: Timeframe) -> Timeline:
             unit, width = "minute", 16
         elif span is not None and span.total_seconds() <= 4 * 86400:
             unit, width = "hour", 13
-    return {"unit": unit, "requests": queries.requests_per(ledger, width),
-            "stored": queries.stored_per(ledger, width)}
+    by_host = datasheet_queries.requests_per_host(ledger, width)
+    requests: dict[str, int] = {}
+    for counts in by_host.values():  # the totals from the per-host counts: one query less
+        for slot, n in counts.items():
+            requests[slot] = requests.get(slot, 0) + n
+    return {"unit": unit, "requests": dict(sorted(requests.items())),
+            "stored": datasheet_queries.stored_per(ledger, width), "by_host": by_host}
 
 
 # --- the release: CSVs and images ------------------------------------------------------------
@@ -176,26 +216,56 @@ class ReleaseCounts:
     copied: int = 0
     by_ext: dict[str, dict[str, Any]] = field(default_factory=dict)  # ext -> {mime, files}
     by_licence: dict[str, int] = field(default_factory=dict)
+    excluded: dict[str, int] = field(default_factory=dict)  # release.EXCLUSION_REASONS -> n
 
 
-def file_name_for(sha256: str, ext: str) -> str:
-    """The stable release name of a file: 16 hex digits of its sha256 and its extension."""
-    return f"{sha256[:16]}.{ext}"
+def _licence_facts(key: str, files: int) -> LicenceFacts:
+    """Conditions and link of one licence key: an SPDX id, 'unknown', or ``rs:<id>`` for a
+    RightsStatements.org statement (its English name and statement page)."""
+    statement = STATEMENTS.get(key.removeprefix(ALLOW_PREFIX)) if key.startswith(
+        ALLOW_PREFIX) else None
+    if statement is not None:
+        return {"spdx_id": key, "files": files,
+                "conditions": [f"rights statement: {statement.name} (not a licence)"],
+                "deed_url": statement.page_url}
+    spdx = None if key == "unknown" else key
+    return {"spdx_id": key, "files": files, "conditions": licence_conditions(spdx),
+            "deed_url": licence_deed_url(spdx)}
+
+
+def _statement_words(code: str | None) -> str | None:
+    """``rights statement: <English name>`` for a RightsStatements.org id, else None."""
+    statement = STATEMENTS.get(code or "")
+    return f"rights statement: {statement.name}" if statement else None
+
 
 
 def iter_release_rows(ledger: Ledger, recipe: Recipe, counts: ReleaseCounts, *,
-                      exclude_flagged: bool) -> Iterator[dict[str, Any]]:
-    """Stream the accepted files that pass the licence policy (and the flag filter).
+                      exclude_flagged: bool, selection: release.Selection | None = None
+                      ) -> Iterator[dict[str, Any]]:
+    """Stream the files the release holds: accepted, passing the licence policy (and the
+    flag filter), then the selection and its defaults (:func:`collector.exports.release.select`).
 
     Counts what is left out; the caller counts what it keeps."""
+    withdrawn = upkeep_queries.withdrawn_sha256s(ledger)
+    rows = _policy_rows(ledger, recipe, counts, exclude_flagged=exclude_flagged)
+    return release.select(rows, selection or release.Selection(), withdrawn, counts.excluded)
+
+
+def _policy_rows(ledger: Ledger, recipe: Recipe, counts: ReleaseCounts, *,
+                 exclude_flagged: bool) -> Iterator[dict[str, Any]]:
+    """The accepted files that pass the licence policy (and the flag filter)."""
     allowed_cache: dict[str | None, bool] = {}
-    for r in queries.release_rows(ledger):
+    for r in datasheet_queries.release_rows(ledger):
         (sha, ext, mime, fmt, width, height, size, flags_json, stored_at, source, key,
-         page_url, image_url, title, creator, licence_raw, spdx, licence_url, fetched_at) = r
-        if spdx not in allowed_cache:
-            allowed_cache[spdx] = licence_allowed(spdx, recipe.licences.allow,
-                                                  recipe.licences.allow_unknown)[0]
-        if not allowed_cache[spdx]:
+         page_url, image_url, title, creator, licence_raw, spdx, licence_url, fetched_at,
+         statement, state, item_date, metadata, parent_sha256) = r
+        decided_by = spdx or (f"{ALLOW_PREFIX}{statement}" if statement else None)
+        if decided_by not in allowed_cache:
+            allowed_cache[decided_by] = licence_allowed(
+                spdx, recipe.licences.allow, recipe.licences.allow_unknown,
+                None if spdx else STATEMENTS.get(statement or ""))[0]
+        if not allowed_cache[decided_by]:
             counts.excluded_licence += 1
             continue
         try:
@@ -207,13 +277,17 @@ def iter_release_rows(ledger: Ledger, recipe: Recipe, counts: ReleaseCounts, *,
             counts.excluded_flagged += 1
             continue
         yield {
-            "file_name": file_name_for(sha, ext), "sha256": sha, "source": source,
+            "file_name": release.readable_name(source, key, sha, ext), "sha256": sha,
+            "source": source,
             "source_key": key, "page_url": page_url or "", "image_url": image_url or "",
             "title": title or "", "creator": creator or "", "licence_raw": licence_raw or "",
             "spdx_id": spdx or "", "licence_url": licence_url or licence_deed_url(spdx) or "",
             "fetched_at": fetched_at or stored_at or "", "width": width, "height": height,
             "format": fmt or "", "mime": mime or "", "size": size,
-            "flags": ";".join(flags), "_ext": ext,
+            "flags": ";".join(flags), "derived_from": "", "_ext": ext, "_statement": statement,
+            "_state": state, "_date": item_date,
+            "_metadata": release.metadata_of(metadata), "_parent_sha256": parent_sha256,
+            "_stored_at": stored_at,
         }
 
 
@@ -222,7 +296,8 @@ def _count_kept(counts: ReleaseCounts, row: dict[str, Any]) -> None:
     counts.bytes += row["size"] or 0
     slot = counts.by_ext.setdefault(row["_ext"], {"mime": row["mime"], "files": 0})
     slot["files"] += 1
-    spdx = row["spdx_id"] or "unknown"
+    statement = row.get("_statement")
+    spdx = row["spdx_id"] or (f"{ALLOW_PREFIX}{statement}" if statement else "unknown")
     counts.by_licence[spdx] = counts.by_licence.get(spdx, 0) + 1
 
 
@@ -332,7 +407,8 @@ class ExportResult:
 
 
 def write_release(ledger: Ledger, recipe: Recipe, out: Path, store_root: Path, *,
-                  with_images: bool, exclude_flagged: bool) -> tuple[ReleaseCounts, str]:
+                  with_images: bool, exclude_flagged: bool,
+                  selection: release.Selection | None = None) -> tuple[ReleaseCounts, str]:
     """Stream provenance.csv and attribution.csv (and link images/); returns the counts and
     the sha256 of provenance.csv."""
     from collector.storage.store import Store
@@ -345,7 +421,8 @@ def write_release(ledger: Ledger, recipe: Recipe, out: Path, store_root: Path, *
     attr_fd, attr_tmp = new_temp_file(out, ".attribution.csv.", ".part")
     try:
         counts, digest = _write_rows(ledger, recipe, store, images, prov_fd, attr_fd,
-                                     with_images=with_images, exclude_flagged=exclude_flagged)
+                                     with_images=with_images, exclude_flagged=exclude_flagged,
+                                     selection=selection)
         os.replace(prov_tmp, out / "provenance.csv")
         os.replace(attr_tmp, out / "attribution.csv")
     finally:
@@ -363,7 +440,8 @@ def write_release(ledger: Ledger, recipe: Recipe, out: Path, store_root: Path, *
 
 def _write_rows(ledger: Ledger, recipe: Recipe, store: Store, images: Path,
                 prov_fd: int, attr_fd: int, *, with_images: bool,
-                exclude_flagged: bool) -> tuple[ReleaseCounts, str]:
+                exclude_flagged: bool, selection: release.Selection | None = None
+                ) -> tuple[ReleaseCounts, str]:
     """Stream the rows into the two open temp files (and link images/)."""
     counts = ReleaseCounts()
     with os.fdopen(prov_fd, "wb") as prov_fh, os.fdopen(attr_fd, "w", encoding="utf-8",
@@ -373,13 +451,15 @@ def _write_rows(ledger: Ledger, recipe: Recipe, store: Store, images: Path,
         attr = csv.writer(attr_fh)
         prov.writeheader()
         attr.writerow(ATTRIBUTION_COLUMNS)
-        for row in iter_release_rows(ledger, recipe, counts, exclude_flagged=exclude_flagged):
+        for row in iter_release_rows(ledger, recipe, counts, exclude_flagged=exclude_flagged,
+                                     selection=selection):
             if with_images:
                 src = store.existing(row["sha256"], row["_ext"])
                 if src is None:
                     counts.missing_files += 1
                     continue
-                how = link_or_copy(src, images / row["file_name"])
+                flat = _flattened(src, images, row, recipe.images.release_background)
+                how = "derived" if flat else link_or_copy(src, images / row["file_name"])
                 if how == "linked":
                     counts.linked += 1
                 elif how == "copied":
@@ -390,12 +470,31 @@ def _write_rows(ledger: Ledger, recipe: Recipe, store: Store, images: Path,
             attr.writerow([csv_cell(v) for v in (
                 row["file_name"], row["title"], row["creator"],
                 row["page_url"] or row["image_url"] or row["source"],
-                row["spdx_id"] or row["licence_raw"] or "unknown", row["licence_url"])])
+                row["spdx_id"] or _statement_words(row["_statement"]) or row["licence_raw"]
+                or "unknown", row["licence_url"])])
     return counts, sink.digest.hexdigest()
+
+
+def _flattened(src: Path, images: Path, row: dict[str, Any], colour: str) -> bool:
+    """With [images] release_background set, a transparent image is released as a PNG
+    flattened onto that colour (collector.exports.flatten); the row then describes the derived
+    file and names the stored original in ``derived_from``."""
+    if not colour:
+        return False
+    from collector.exports.flatten import flatten_release_copy
+
+    flat = flatten_release_copy(src, images, row["file_name"].rsplit(".", 1)[0], colour)
+    if flat is None:
+        return False
+    row.update(file_name=flat.file_name, derived_from=row["sha256"], sha256=flat.sha256,
+               size=flat.size, format="PNG", mime="image/png", _ext="png",
+               flags=";".join(filter(None, [row["flags"], f"flattened:{colour}"])))
+    return True
 
 
 def export_datasheet(root: Path, *, out: Path | None = None, answers_path: Path | None = None,
                      with_images: bool = False, exclude_flagged: bool = False,
+                     selection: release.Selection | None = None,
                      overwrite: bool = False, now: str | None = None) -> ExportResult:
     """Write the datasheet folder for the collection at ``root``."""
     from collector.exports import croissant, plots
@@ -412,9 +511,14 @@ def export_datasheet(root: Path, *, out: Path | None = None, answers_path: Path 
         try:
             counts, prov_sha = write_release(ledger, recipe, out, collection.store.root,
                                              with_images=with_images,
-                                             exclude_flagged=exclude_flagged)
+                                             exclude_flagged=exclude_flagged,
+                                             selection=selection)
             facts = _facts(ledger, recipe, now or datetime.now(UTC)
                            .isoformat(timespec="seconds").replace("+00:00", "Z"))
+            facts["changelog"] = changelog.change_log(ledger)
+            facts["selection"] = {
+                "conditions": (selection or release.Selection()).describe(),
+                "excluded": dict(counts.excluded), "ledger_state": changelog.ledger_state(ledger)}
         except LedgerUnusable:
             raise
         except LedgerError as exc:  # the ledger translated the sqlite error; add the way out

@@ -110,6 +110,9 @@ SECTIONS: tuple[tuple[str, str, tuple[Question, ...]], ...] = (
         Question("collection.impact_analysis", "C",
                  "Was the effect on the people concerned assessed (e.g. a data-protection "
                  "impact assessment)?"),
+        Question("collection.reservations", "A",
+                 "Which machine-readable reservations against text-and-data mining and AI "
+                 "training were checked, and how many items did each one exclude?"),
         Question("collection.other", "C", "Anything else about how it was gathered?"),
     )),
     ("preprocessing", "Preprocessing, cleaning, labelling", (
@@ -150,6 +153,10 @@ SECTIONS: tuple[tuple[str, str, tuple[Question, ...]], ...] = (
         Question("maintenance.maintainer", "C", "Who looks after the collection?"),
         Question("maintenance.contact", "P", "How can they be reached?"),
         Question("maintenance.erratum", "P", "Is there a record of corrections and removals?"),
+        Question("maintenance.changelog", "A",
+                 "What changed, and when: runs, recipe changes, withdrawals, re-checks?"),
+        Question("maintenance.release", "A",
+                 "Which part of the collection is this release, made from which ledger state?"),
         Question("maintenance.updates", "P",
                  "Will it be updated: how often, by whom, and how will users hear of it?"),
         Question("maintenance.retention", "C",

@@ -1,56 +1,100 @@
 """Rendering the datasheet (Markdown and self-contained HTML) from facts and answers.
 
 :func:`build_document` turns the facts of :mod:`collector.exports.datasheet` into sections of
-questions,
-each with blocks of ledger facts and the curator's answer (or the explicit mark "Not answered by
-the curator"). The two renderers only format that document, so Markdown and HTML say the same.
-All text from the ledger came from servers: it is escaped (``html.escape`` in HTML; table pipes
-and line breaks in Markdown).
+questions, each with blocks of ledger facts and the curator's answer; questions only the
+curator can answer and that have no answer yet are gathered at the end of their section,
+marked once as not answered. The two renderers fill Jinja2 templates shipped in
+``collector/templates`` (``datasheet.html.j2``, ``datasheet.md.j2``) with that document, so
+Markdown and HTML say the same. All text from the ledger came from servers: the HTML
+environment escapes every value (autoescape on); the Markdown one escapes table pipes and line
+breaks in every value (its ``finalize``).
+
+A block is a tuple: ``("p", text)``, ``("list", [text], id?)``, ``("table", headers, rows,
+id?)`` or ``("see", id)``. A list or table with an id (a key of :data:`TABLES`) is shown once,
+where it first occurs; later occurrences become a link to it.
 """
 
 from __future__ import annotations
 
-import html
+import functools
 from collections.abc import Callable
 from dataclasses import dataclass, field
 from typing import TYPE_CHECKING, Any
 
 from collector.exports.datasheet_questions import SECTIONS, Question
+from collector.exports.datasheet_reservations import CAUTION as RESERVATIONS_CAUTION
+from collector.exports.datasheet_reservations import reservation_blocks
+from collector.exports.release import EXCLUSION_REASONS
 
 if TYPE_CHECKING:
+    import jinja2
+
     from collector.exports.facts import DatasheetFacts
 
-Block = tuple[Any, ...]  # ("p", text) | ("list", [text]) | ("table", headers, rows)
+Block = tuple[Any, ...]  # ("p", text) | ("list", [text], id?) | ("table", headers, rows, id?)
 
-CAUTION = [
-    "Licence facts are as declared by the sources, normalised to SPDX ids; declarations can "
-    "be wrong and this is not legal advice.",
-    "Files flagged for personal data (GPS position, camera serial, owner name) need review "
-    "before publication; faces and names inside pictures are not detected.",
-    "robots.txt permission is not the same as permission under a site's terms of use; read "
-    "each archive's terms.",
-]
+# Tables and lists that have an id: shown once, linked from elsewhere and from the contents.
+TABLES = {
+    "t-states": "Items by state", "t-formats": "Accepted files by format",
+    "t-modes": "Accepted files by colour mode", "t-by-source": "Accepted files by source",
+    "t-dimensions": "Image dimensions", "t-missing": "Accepted files missing a fact",
+    "t-lost": "Items that could not be obtained", "t-sources": "Sources and their archives",
+    "t-requests": "Requests", "t-hosts": "Politeness per host",
+    "t-rules": "Rules that decided what was kept", "t-reasons": "Items by state and reason",
+    "t-licences": "Licences of the files in this release",
+    "t-personal": "Possible personal data in metadata", "t-other-flags": "Other flags",
+    "t-conditions": "Licence conditions of accepted files", "t-runs": "Runs by outcome",
+}
 KIND_LABEL = {"A": "From the ledger", "P": "Pre-filled from the ledger — curator, please confirm",
               "C": "Curator's question"}
+ANSWERED_LABEL = {"A": "From the ledger, with the curator's answer",
+                  "P": "Pre-filled from the ledger, confirmed by the curator",
+                  "C": "Answered by the curator"}
 NOT_ANSWERED = "Not answered by the curator."
+PERSONAL_FLAGS = ("gps", "camera_serial", "owner_name")  # as collector.exports.datasheet
+# Pillow's image modes in words (Pillow handbook, "Concepts", section "Modes").
+MODE_WORDS = {
+    "1": "black and white, 1 bit", "L": "greyscale, 8 bit", "LA": "greyscale with transparency",
+    "I;16": "greyscale, 16 bit", "I": "greyscale, 32-bit integer", "F": "greyscale, 32-bit float",
+    "P": "palette colour", "PA": "palette colour with transparency", "RGB": "colour",
+    "RGBA": "colour with transparency", "RGBX": "colour with padding", "CMYK": "print colour",
+    "YCbCr": "colour (video encoding)", "LAB": "colour (L*a*b*)", "HSV": "colour (hue, "
+    "saturation, value)",
+}
 
 
-@dataclass
-class QuestionView:
-    question: Question
-    blocks: list[Block] = field(default_factory=list)
-    answer: str | None = None
+def in_words(n: int | float | None, *, exact: bool = False) -> str:
+    """Bytes in words with decimal SI prefixes (1 MB = 10^6 bytes): '20.5 MB', with
+    ``exact`` '20.5 MB (20,519,312 bytes)'."""
+    if n is None:
+        return "?"
+    value, unit = float(n), "bytes"
+    for unit in ("bytes", "kB", "MB", "GB", "TB"):
+        if abs(value) < 1000 or unit == "TB":
+            break
+        value /= 1000
+    if unit == "bytes":
+        return f"{int(n):,} bytes"
+    return f"{value:.1f} {unit}" + (f" ({int(n):,} bytes)" if exact else "")
 
 
-@dataclass
-class SectionView:
-    key: str
-    title: str
-    questions: list[QuestionView]
+def mode_in_words(mode: str) -> str:
+    """A Pillow mode in words with its code: 'greyscale, 8 bit (L)'."""
+    words = MODE_WORDS.get(mode)
+    return f"{words} ({mode})" if words else mode
 
 
-def _table(headers: list[str], pairs: dict[str, Any]) -> Block:
-    return ("table", headers, [[k, v] for k, v in pairs.items()])
+def host_label(facts: DatasheetFacts, host: str) -> str:
+    """A host named by the sources that used it, the host itself in brackets."""
+    names = facts["host_sources"].get(host, [])
+    if not names:
+        return host
+    shown = ", ".join(names[:3]) + (f" +{len(names) - 3}" if len(names) > 3 else "")
+    return f"{shown} ({host})"
+
+
+def _table(headers: list[str], pairs: dict[str, Any], tid: str | None = None) -> Block:
+    return ("table", headers, [[k, v] for k, v in pairs.items()], tid)
 
 
 def _dims(f: DatasheetFacts) -> Block:
@@ -60,7 +104,7 @@ def _dims(f: DatasheetFacts) -> Block:
         d = acc[dim]
         med = d["median"]
         rows.append([dim, d["min"], med if med is None or med % 1 else int(med), d["max"]])
-    return ("table", ["dimension (px)", "min", "median", "max"], rows)
+    return ("table", ["dimension (px)", "min", "median", "max"], rows, "t-dimensions")
 
 
 def _counts(f: DatasheetFacts) -> list[Block]:
@@ -68,12 +112,13 @@ def _counts(f: DatasheetFacts) -> list[Block]:
     return [
         ("p", f"Candidate items recorded in the ledger: {f['items']['total']}. Accepted files "
               f"(stored, including near duplicates kept): {acc['files']} "
-              f"({acc['bytes']} bytes). Files in this release: {rel['files']} "
-              f"({rel['bytes']} bytes)."),
-        _table(["item state", "items"], f["items"]["by_state"]),
-        _table(["format", "accepted files"], acc["formats"]),
-        _table(["colour mode", "accepted files"], acc["modes"]),
-        _table(["source", "accepted files"], acc["by_source"]),
+              f"({in_words(acc['bytes'])}). Files in this release: {rel['files']} "
+              f"({in_words(rel['bytes'])})."),
+        _table(["item state", "items"], f["items"]["by_state"], "t-states"),
+        _table(["format", "accepted files"], acc["formats"], "t-formats"),
+        _table(["colour mode", "accepted files"],
+               {mode_in_words(k): v for k, v in acc["modes"].items()}, "t-modes"),
+        _table(["source", "accepted files"], acc["by_source"], "t-by-source"),
         _dims(f),
     ]
 
@@ -85,17 +130,17 @@ def _missing(f: DatasheetFacts) -> list[Block]:
     out: list[Block] = [("table", ["accepted files without", "files"], [
         ["a title", m["no_title"]], ["a creator", m["no_creator"]],
         ["a recognised licence", m["no_licence"]], ["an item page URL", m["no_page_url"]],
-        ["a date", m["no_date"]]])]
+        ["a date", m["no_date"]]], "t-missing")]
     if lost:
-        out.append(("p", "Items that could not be obtained, by state/reason:"))
-        out.append(_table(["state/reason", "items"], lost))
+        out.append(_table(["state/reason", "items"], lost, "t-lost"))
     return out
 
 
 def _sources(f: DatasheetFacts) -> Block:
-    return ("table", ["source", "kind", "how", "items listed", "accepted"],
-            [[s["name"], s["kind"], s["mechanism"], s["items"], s["accepted"]]
-             for s in f["sources"]])
+    return ("table", ["source", "kind", "how", "archive", "items listed", "accepted"],
+            [[s["name"], s["kind"], s["mechanism"],
+              " ".join(s["where"]) or "(no longer in the recipe)", s["items"], s["accepted"]]
+             for s in f["sources"]], "t-sources")
 
 
 def _politeness(f: DatasheetFacts) -> list[Block]:
@@ -104,39 +149,41 @@ def _politeness(f: DatasheetFacts) -> list[Block]:
         ("p", f"User-Agent contact: {f['collection']['contact']}; robots.txt product token: "
               f"{f['collection']['product_token']}. Default budget per host: at least "
               f"{b['min_interval']} s between request starts, at most "
-              f"{b['requests_per_hour']} requests and {b['bytes_per_hour']} bytes per hour, "
-              f"{b['max_connections']} connection(s), {b['max_attempts']} attempts per "
+              f"{b['requests_per_hour']} requests and {in_words(b['bytes_per_hour'])} per "
+              f"hour, {b['max_connections']} connection(s), {b['max_attempts']} attempts per "
               f"request; a Retry-After over {b['max_retry_after']} s parks the host."),
         ("table", ["requests", "count"], [
             ["answered requests", r["total"]], ["attempts (incl. network errors)", r["attempts"]],
             ["429 Too Many Requests received", r["status_429"]],
             ["503 Service Unavailable received", r["status_503"]],
             ["refused by robots.txt", r["robots_disallowed"]],
-            ["errors", r["errors"]], ["bytes received", r["bytes"]]]),
+            ["errors", r["errors"]], ["received", in_words(r["bytes"], exact=True)]], "t-requests"),
     ]
     if f["hosts"]:
         rows = []
         for h in f["hosts"]:
             e = h["effective_budget"] or {}
-            rows.append([h["host"], h["robots_status"], h["robots_fetched_at"],
+            rows.append([h["host"], ", ".join(f["host_sources"].get(h["host"], [])),
+                         h["robots_status"], h["robots_fetched_at"],
                          e.get("effective_interval", e.get("min_interval")),
                          e.get("requests_per_hour"), e.get("max_connections"),
                          h["requests"], h["status_429"], h["robots_disallowed"]])
-        out.append(("table", ["host", "robots.txt status", "robots.txt read at",
+        out.append(("table", ["host", "sources", "robots.txt status", "robots.txt read at",
                               "interval applied (s)", "requests/h", "connections",
-                              "requests", "429s", "robots refusals"], rows))
+                              "requests", "429s", "robots refusals"], rows, "t-hosts"))
     return out
 
 
-def _steps(f: DatasheetFacts) -> list[Block]:
+def _rules(f: DatasheetFacts) -> Block:
     p, d, rel = f["policy"], f["duplicates"], f["release"]
     img = p["images"]
-    return [("list", [
+    return ("list", [
         f"Licence allowlist, applied before download: {', '.join(p['licence_allow'])}; "
         f"unknown licences {'allowed' if p['allow_unknown'] else 'refused'}.",
         f"Image checks: format from magic bytes, full decode, at most {img['max_pixels']} "
-        f"pixels and {p['max_image_bytes']} bytes, shortest side at least {img['min_side']} "
-        f"px, aspect bounds {img['min_aspect']}–{img['max_aspect']} (0 = off).",
+        f"pixels and {in_words(p['max_image_bytes'])}, shortest side at least "
+        f"{img['min_side']} px, aspect bounds {img['min_aspect']}–{img['max_aspect']} "
+        "(0 = off).",
         f"Exact duplicates (same SHA-256 or image URL) not stored again: {d['exact']}.",
         f"Near duplicates (perceptual hash distance ≤ {d['near_distance']}, mirror images "
         f"included; recipe: {d['policy']}): {d['near_kept']} kept and marked, "
@@ -146,7 +193,22 @@ def _steps(f: DatasheetFacts) -> list[Block]:
         + (" (--exclude-flagged)" if rel["exclude_flagged"] else "")
         + (f", {rel['missing_files']} missing from the store" if rel["missing_files"] else "")
         + ".",
-    ]), _table(["state/reason", "items"], f["items"]["by_reason"])]
+    ], "t-rules")
+
+
+def _steps(f: DatasheetFacts) -> list[Block]:
+    return [_rules(f), _table(["state/reason", "items"], f["items"]["by_reason"], "t-reasons")]
+
+
+def _errors(f: DatasheetFacts) -> list[Block]:
+    other = {k: v for k, v in f["flags"].items() if k not in PERSONAL_FLAGS}
+    out: list[Block] = [_rules(f)]
+    if other:
+        out.append(("p", "Flags on accepted files that are not about people (a licence that "
+                         "contradicts embedded rights metadata, a file whose content does not "
+                         "match its declared type, ...):"))
+        out.append(_table(["flag", "accepted files"], other, "t-other-flags"))
+    return out
 
 
 def _licences(f: DatasheetFacts) -> list[Block]:
@@ -157,7 +219,8 @@ def _licences(f: DatasheetFacts) -> list[Block]:
         conditions = info["conditions"] if info else []
         deed = info["deed_url"] if info else None
         rows.append([spdx, n, ", ".join(conditions or []) or "?", deed or ""])
-    return [("table", ["licence (SPDX)", "files in release", "conditions", "deed"], rows),
+    return [("table", ["licence (SPDX)", "files in release", "conditions", "deed"], rows,
+             "t-licences"),
             ("p", "Each file keeps its own licence; attribution.csv lists title, author, "
                   "source and licence per file (Creative Commons attribution practice). "
                   f"Files whose embedded rights metadata contradicts the declared licence: "
@@ -165,11 +228,30 @@ def _licences(f: DatasheetFacts) -> list[Block]:
 
 
 def _flags(f: DatasheetFacts) -> list[Block]:
-    return [_table(["flag", "accepted files"], f["flags"]) if f["flags"]
-            else ("p", "No metadata flags on accepted files."),
+    personal = {k: v for k, v in f["flags"].items() if k in PERSONAL_FLAGS}
+    return [_table(["flag", "accepted files"], personal, "t-personal") if personal
+            else ("p", "No accepted file has a GPS position, camera serial number or owner "
+                       "name in its metadata."),
             ("p", f"Accepted files with possible personal data in their metadata: "
                   f"{f['flagged']['personal']}. Faces or names inside pictures are not "
                   "detected; a person must look.")]
+
+
+def _restricted(f: DatasheetFacts) -> dict[str, int]:
+    """Released files by licence whose conditions restrict use (NC or ND)."""
+    conds = {x["spdx_id"]: x["conditions"] for x in f["licences"]}
+    return {spdx: n for spdx, n in f["release"]["by_licence"].items()
+            if {"non-commercial", "no-derivatives"} & set(conds.get(spdx) or [])}
+
+
+def _avoid(f: DatasheetFacts) -> list[Block]:
+    restricted = _restricted(f)
+    if not restricted:
+        return [("p", "No file in this release carries a non-commercial or no-derivatives "
+                      "licence condition.")]
+    listed = ", ".join(f"{spdx} ({n} files)" for spdx, n in restricted.items())
+    return [("p", f"Files under non-commercial (NC) or no-derivatives (ND) licences restrict "
+                  f"those uses: {listed}."), ("see", "t-licences")]
 
 
 def _risks(f: DatasheetFacts) -> list[Block]:
@@ -180,11 +262,23 @@ def _risks(f: DatasheetFacts) -> list[Block]:
     hosts = f["accepted"]["by_host"]
     total = sum(hosts.values()) or 1
     top = next(iter(hosts.items()), None)
-    out: list[Block] = [_table(["licence condition", "accepted files"], conds)]
-    if top:
-        out.append(("p", f"The largest share comes from one host: {top[0]} with {top[1]} of "
-                         f"{total} accepted files ({100 * top[1] / total:.0f} %)."))
+    out: list[Block] = [_table(["licence condition", "accepted files"], conds, "t-conditions")]
+    if top and len(hosts) > 1:
+        out.append(("p", f"The largest share comes from one host: {host_label(f, top[0])} "
+                         f"with {top[1]} of {total} accepted files "
+                         f"({100 * top[1] / total:.0f} %)."))
     return out
+
+
+def _timeframe(f: DatasheetFacts) -> list[Block]:
+    d = f["picture_dates"]
+    dated = (f"from {d['earliest']} to {d['latest']}" if d["earliest"]
+             else "none in a form that starts with a year")
+    return [("p", f"First and last request or stored file: {f['timeframe']['start']} to "
+                  f"{f['timeframe']['end']} (UTC), over {f['runs']['count']} run(s); the "
+                  "requests per host over time are drawn under At a glance."),
+            ("p", f"When the pictures were made, as the sources declare it: {d['dated']} of "
+                  f"{f['accepted']['files']} accepted files carry a date; dates {dated}.")]
 
 
 FACTS: dict[str, Callable[[DatasheetFacts], list[Block]]] = {
@@ -200,8 +294,8 @@ FACTS: dict[str, Callable[[DatasheetFacts], list[Block]]] = {
     "composition.sample": lambda f: [
         ("p", f"{f['items']['total']} candidates were listed by the sources; "
               f"{f['accepted']['files']} were accepted; {f['release']['files']} are in this "
-              "release. The rules that narrowed them are under Collection process. Whether "
-              "this represents anything larger is for the curator to judge.")],
+              "release. Whether this represents anything larger is for the curator to judge. "
+              "The rules that narrowed them:"), ("see", "t-rules")],
     "composition.contents": lambda f: [("p", "The image bytes exactly as received, plus the "
                                              "provenance columns of provenance.csv.")],
     "composition.labels": lambda f: [("p", "collector assigns no labels. Titles as declared "
@@ -215,7 +309,7 @@ FACTS: dict[str, Callable[[DatasheetFacts], list[Block]]] = {
                                               f"cut from scans, linked to their scan: "
                                               f"{f['accepted']['crops']}; exact duplicates "
                                               f"recorded: {f['duplicates']['exact']}.")],
-    "composition.errors": lambda f: _steps(f)[:1],
+    "composition.errors": _errors,
     "composition.external": lambda f: [("p", "Every file is kept locally. The item page and "
                                              "image URLs in provenance.csv point at the "
                                              "sources, which may change or disappear.")],
@@ -229,17 +323,11 @@ FACTS: dict[str, Callable[[DatasheetFacts], list[Block]]] = {
                                                "they were not verified.")],
     "collection.mechanisms": lambda f: [_sources(f), *_politeness(f)],
     "collection.sampling": _steps,
-    "collection.timeframe": lambda f: [("p", f"First and last request or stored file: "
-                                             f"{f['timeframe']['start']} to "
-                                             f"{f['timeframe']['end']} (UTC), over "
-                                             f"{f['runs']['count']} run(s). Accepted items "
-                                             f"with a date declared by the source: "
-                                             f"{f['accepted']['files'] - f['missing']['no_date']}"
-                                             ".")],
+    "collection.reservations": reservation_blocks,
+    "collection.timeframe": _timeframe,
     "collection.third_party": lambda f: [("p", "From third-party web sites and local scans, "
-                                               "not from the people shown:"),
-                                         _table(["host", "accepted files"],
-                                                f["accepted"]["by_host"])],
+                                               "not from the people shown; each source and "
+                                               "its archive:"), ("see", "t-sources")],
     "collection.notice": lambda f: [("p", "collector sent no notice to anyone.")],
     "preprocessing.steps": _steps,
     "preprocessing.raw_kept": lambda f: [("p", "Yes: files are stored byte for byte as "
@@ -252,27 +340,109 @@ FACTS: dict[str, Callable[[DatasheetFacts], list[Block]]] = {
                                                f" with {f['runs']['recipes']} recipe "
                                                "version(s).")],
     "uses.risks": _risks,
-    "uses.avoid": lambda f: [("p", "Files under non-commercial (NC) or no-derivatives (ND) "
-                                   "licences restrict those uses; see the licence table.")],
+    "uses.avoid": _avoid,
     "distribution.licence": _licences,
-    "distribution.restrictions": _licences,
+    "distribution.restrictions": lambda f: [("p", "Every file keeps the licence its source "
+                                                  "declared, with that licence's conditions:"),
+                                            ("see", "t-licences")],
     "maintenance.contact": lambda f: [("p", f"Contact in the recipe: "
                                             f"{f['collection']['contact']}.")],
     "maintenance.erratum": lambda f: [("p", "The ledger keeps every decision with its reason; "
                                             "a change log can be drawn from it.")],
-    "maintenance.updates": lambda f: [_table(["run outcome", "runs"], f["runs"]["outcomes"])],
+    "maintenance.updates": lambda f: [_table(["run outcome", "runs"], f["runs"]["outcomes"],
+                                             "t-runs")],
+    "maintenance.changelog": lambda f: [("table", ["date (UTC)", "event", "details"], [
+        [e["date"], e["event"], e["detail"]] for e in f.get("changelog", [])])],
+    "maintenance.release": lambda f: _release_state(f),
 }
 
 
+def _release_state(f: DatasheetFacts) -> list[Block]:
+    """The ledger state a release was made from, its selection and what it left out."""
+    sel = f.get("selection")
+    if sel is None:
+        return []
+    state = sel["ledger_state"]
+    words = (f"Made from the ledger as of run #{state['run_id']} ({state['time']})"
+             if state["run_id"] is not None else "Made from a ledger without runs")
+    chosen = "; ".join(sel["conditions"]) or "everything accepted"
+    left = {EXCLUSION_REASONS.get(k, k): n for k, n in sel["excluded"].items()}
+    return [("p", f"{words}. Selection: {chosen}."),
+            _table(["left out of this release", "files"], left)]
+
+
+# --- the document the templates fill ---------------------------------------------------------
+@dataclass
+class BlockView:
+    """One block as the templates see it: kind p, list, table or see (a link to a table)."""
+
+    kind: str
+    text: str = ""
+    items: list[Any] = field(default_factory=list)
+    headers: list[str] = field(default_factory=list)
+    rows: list[list[Any]] = field(default_factory=list)
+    id: str | None = None
+    caption: str = ""
+    where: str = ""  # for a link: the section the table is in
+
+
+@dataclass
+class QuestionView:
+    question: Question
+    blocks: list[BlockView] = field(default_factory=list)
+    answer: str | None = None
+
+    @property
+    def label(self) -> str:
+        """Where the content under this question comes from."""
+        if self.answer:
+            return ANSWERED_LABEL[self.question.kind]
+        return KIND_LABEL["P" if self.question.kind == "C" else self.question.kind]
+
+
+@dataclass
+class SectionView:
+    key: str
+    title: str
+    questions: list[QuestionView]
+    open: list[Question] = field(default_factory=list)  # curator's questions not answered
+
+
+def _view(block: Block, placed: dict[str, str], where: str) -> BlockView:
+    """A block as a BlockView; a list or table already shown becomes a link to it."""
+    kind = block[0]
+    tid: str | None = block[1] if kind == "see" else (
+        block[2] if kind == "list" and len(block) > 2 else
+        block[3] if kind == "table" and len(block) > 3 else None)
+    if tid is not None and (kind == "see" or tid in placed):
+        return BlockView("see", id=tid, caption=TABLES.get(tid) or tid,
+                         where=placed.get(tid, ""))
+    if tid is not None:
+        placed[tid] = where
+    caption = (TABLES.get(tid) or tid) if tid else ""
+    if kind == "p":
+        return BlockView("p", text=str(block[1]))
+    if kind == "list":
+        return BlockView("list", items=list(block[1]), id=tid, caption=caption)
+    return BlockView("table", headers=list(block[1]), rows=[list(r) for r in block[2]],
+                     id=tid, caption=caption)
+
+
 def build_document(facts: DatasheetFacts, answers: dict[str, str]) -> list[SectionView]:
-    """The datasheet as sections of questions with facts and answers."""
+    """The datasheet as sections of questions with facts and answers. A question with neither
+    facts nor an answer is listed among its section's open questions instead."""
     out = []
+    placed: dict[str, str] = {}
     for key, title, questions in SECTIONS:
-        views = []
+        section = SectionView(key, title, [])
         for q in questions:
             builder = FACTS.get(q.id)
-            views.append(QuestionView(q, builder(facts) if builder else [], answers.get(q.id)))
-        out.append(SectionView(key, title, views))
+            blocks = [_view(b, placed, title) for b in (builder(facts) if builder else [])]
+            if blocks or answers.get(q.id):
+                section.questions.append(QuestionView(q, blocks, answers.get(q.id)))
+            else:
+                section.open.append(q)
+        out.append(section)
     return out
 
 
@@ -280,50 +450,20 @@ def _title(facts: DatasheetFacts, answers: dict[str, str]) -> str:
     return answers.get("dataset.name") or facts["collection"]["name"] or "Collection"
 
 
-# --- Markdown -----------------------------------------------------------------------------------
-def _md(value: Any) -> str:
-    text = "" if value is None else str(value)
-    return text.replace("\\", "\\\\").replace("|", "\\|").replace("\r", " ").replace("\n", " ")
-
-
-def _md_block(block: Block) -> list[str]:
-    if block[0] == "p":
-        return [_md(block[1]), ""]
-    if block[0] == "list":
-        return [*(f"- {_md(x)}" for x in block[1]), ""]
-    headers, rows = block[1], block[2]
-    lines = ["| " + " | ".join(_md(h) for h in headers) + " |",
-             "|" + "---|" * len(headers)]
-    lines += ["| " + " | ".join(_md(c) for c in row) + " |" for row in rows]
-    return [*lines, ""]
-
-
-def render_markdown(facts: DatasheetFacts, answers: dict[str, str]) -> str:
-    """datasheet.md."""
-    lines = [f"# Datasheet: {_md(_title(facts, answers))}", "",
-             f"Generated {facts['generated_at']} by collector {facts['tool_version']} from the "
-             "collection's ledger. Structured after *Datasheets for Datasets* (Gebru et al.); "
-             "questions in our own words.", "", "> **Caution**", ">"]
-    lines += [f"> - {c}" for c in CAUTION] + [""]
-    lines += ["Legend: *From the ledger* = computed from the ledger; *Pre-filled* = facts "
-              "the curator should confirm; *Curator* = answers from the answers file.", ""]
-    desc = answers.get("dataset.description") or facts["collection"]["description"]
-    if desc:
-        lines += [_md(desc), ""]
-    for section in build_document(facts, answers):
-        lines += [f"## {section.title}", ""]
-        for view in section.questions:
-            q = view.question
-            lines += [f"### {_md(q.text)}", "", f"`{q.id}` — {KIND_LABEL[q.kind]}", ""]
-            if view.blocks:
-                for block in view.blocks:
-                    lines += _md_block(block)
-            if view.answer:
-                lines += [f"**Curator:** {_md(view.answer)}", ""]
-            elif q.kind != "A":
-                lines += [f"*{NOT_ANSWERED}*", ""]
-    lines += _croissant_md(facts, answers)
-    return "\n".join(lines).rstrip() + "\n"
+def cautions(facts: DatasheetFacts) -> list[str]:
+    """The cautions that apply to this collection."""
+    flagged = facts["flagged"]["personal"]
+    out = ["Licence facts are as declared by the sources, normalised to SPDX ids; "
+           "declarations can be wrong and this is not legal advice.",
+           "Pictures may show people and files may carry personal data; files flagged for it "
+           "(GPS position, camera serial, owner name: "
+           f"{flagged} accepted file{'' if flagged == 1 else 's'}) need review before "
+           "publication; faces and names inside pictures are not detected."]
+    if facts["requests"]["total"]:
+        out.append("robots.txt permission is not the same as permission under a site's terms "
+                   "of use; read each archive's terms.")
+        out.append(RESERVATIONS_CAUTION)
+    return out
 
 
 def _croissant_notes(facts: DatasheetFacts, answers: dict[str, str]) -> list[str]:
@@ -334,93 +474,54 @@ def _croissant_notes(facts: DatasheetFacts, answers: dict[str, str]) -> list[str
     return notes
 
 
-def _croissant_md(facts: DatasheetFacts, answers: dict[str, str]) -> list[str]:
-    problems = facts.get("croissant_problems") or []
-    out = ["## Croissant metadata", "", *(f"{_md(n)}\n" for n in
-                                          _croissant_notes(facts, answers))]
-    if problems:
-        out += ["", "Missing before it can be published:", ""]
-        out += [f"- {_md(p)}" for p in problems]
-    return [*out, ""]
+def _context(facts: DatasheetFacts, answers: dict[str, str],
+             plots: dict[str, str] | None) -> dict[str, Any]:
+    """Everything a template reads."""
+    from markupsafe import Markup
+
+    from collector.exports.plots import PLOT_TITLES
+
+    sections = build_document(facts, answers)
+    return {
+        "title": _title(facts, answers), "facts": facts, "cautions": cautions(facts),
+        "description": answers.get("dataset.description") or facts["collection"]["description"],
+        "sections": sections, "not_answered": NOT_ANSWERED,
+        # Our own matplotlib SVG, drawn from aggregated numbers (text as paths): trusted markup.
+        "plots": [(name, PLOT_TITLES[name], Markup(svg))
+                  for name, svg in (plots or {}).items() if svg],
+        "tables": [(b.id, b.caption) for s in sections for v in s.questions
+                   for b in v.blocks if b.kind in ("table", "list") and b.id],
+        "croissant_notes": _croissant_notes(facts, answers),
+        "croissant_problems": facts.get("croissant_problems") or [],
+        "legend": KIND_LABEL,
+    }
 
 
-# --- HTML ---------------------------------------------------------------------------------------
-CSS = """
-body{font:15px/1.5 system-ui,-apple-system,"Segoe UI",sans-serif;color:#1d232a;max-width:60rem;
-margin:2rem auto;padding:0 1rem}
-h1{font-size:1.7rem;margin-bottom:.2rem}h2{border-bottom:2px solid #d0d7de;margin-top:2.2rem}
-h3{font-size:1rem;margin:1.4rem 0 .3rem}.meta{color:#57606a;font-size:.9rem}
-.caution{border-left:5px solid #bf8700;background:#fff8c5;padding:.6rem 1rem;margin:1rem 0}
-.kind{font-size:.75rem;color:#57606a}.kind code{background:#f0f2f4;padding:0 .3rem}
-.kind.P{color:#9a6700}.answer{background:#ddf4ff;padding:.4rem .7rem;border-radius:4px}
-.none{color:#8c959f;font-style:italic}table{border-collapse:collapse;margin:.4rem 0 .8rem;
-font-size:.85rem}th,td{border:1px solid #d0d7de;padding:.2rem .5rem;text-align:left;
-vertical-align:top}th{background:#f6f8fa}td.n{text-align:right;font-variant-numeric:tabular-nums}
-figure{margin:1rem 0;page-break-inside:avoid;break-inside:avoid}figure svg{max-width:100%;
-height:auto}figcaption{font-weight:600;font-size:.9rem}.plots{display:grid;
-grid-template-columns:repeat(auto-fit,minmax(24rem,1fr));gap:1rem}
-@media print{body{margin:0;max-width:none;font-size:11pt}h2{page-break-after:avoid;
-break-after:avoid}h3{page-break-after:avoid}table,.caution{page-break-inside:avoid}
-.plots{display:block}a{color:inherit}}
-"""
+def _md_escape(value: Any) -> str:
+    """Every value in datasheet.md: table pipes and backslashes escaped, lines joined."""
+    text = "" if value is None else str(value)
+    return text.replace("\\", "\\\\").replace("|", "\\|").replace("\r", " ").replace("\n", " ")
 
 
-def _e(value: Any) -> str:
-    return html.escape("" if value is None else str(value))
+@functools.cache
+def _environment(markdown: bool) -> jinja2.Environment:
+    """The Jinja2 environment: HTML autoescaped, Markdown escaped by ``finalize``."""
+    import jinja2
+
+    return jinja2.Environment(
+        loader=jinja2.PackageLoader("collector", "templates"), autoescape=not markdown,
+        finalize=_md_escape if markdown else None, undefined=jinja2.StrictUndefined,
+        trim_blocks=True, lstrip_blocks=True, keep_trailing_newline=True)
 
 
-def _html_block(block: Block) -> str:
-    if block[0] == "p":
-        return f"<p>{_e(block[1])}</p>"
-    if block[0] == "list":
-        return "<ul>" + "".join(f"<li>{_e(x)}</li>" for x in block[1]) + "</ul>"
-    head = "".join(f"<th>{_e(h)}</th>" for h in block[1])
-    body = "".join(
-        "<tr>" + "".join(f'<td class="n">{_e(c)}</td>' if isinstance(c, int | float)
-                         else f"<td>{_e(c)}</td>" for c in row) + "</tr>"
-        for row in block[2])
-    return f"<table><thead><tr>{head}</tr></thead><tbody>{body}</tbody></table>"
+def render_markdown(facts: DatasheetFacts, answers: dict[str, str]) -> str:
+    """datasheet.md."""
+    page = _environment(True).get_template("datasheet.md.j2").render(
+        _context(facts, answers, None))
+    return page.rstrip() + "\n"
 
 
 def render_html(facts: DatasheetFacts, answers: dict[str, str], plots: dict[str, str]) -> str:
     """datasheet.html: one self-contained page (inline CSS and SVG, no external requests)."""
-    from collector.exports.plots import PLOT_TITLES
-
-    title = _title(facts, answers)
-    parts = ["<!DOCTYPE html>", '<html lang="en"><head><meta charset="utf-8">',
-             '<meta name="viewport" content="width=device-width, initial-scale=1">',
-             f"<title>Datasheet: {_e(title)}</title><style>{CSS}</style></head><body>",
-             f"<h1>Datasheet: {_e(title)}</h1>",
-             f'<p class="meta">Generated {_e(facts["generated_at"])} by collector '
-             f"{_e(facts['tool_version'])} from the collection's ledger. Structured after "
-             "<i>Datasheets for Datasets</i> (Gebru et al.); questions in our own words.</p>",
-             '<div class="caution" role="note"><strong>Caution</strong><ul>'
-             + "".join(f"<li>{_e(c)}</li>" for c in CAUTION) + "</ul></div>"]
-    desc = answers.get("dataset.description") or facts["collection"]["description"]
-    if desc:
-        parts.append(f"<p>{_e(desc)}</p>")
-    figures = [f"<figure><figcaption>{_e(PLOT_TITLES[name])}</figcaption>{svg}</figure>"
-               for name, svg in plots.items() if svg]
-    if figures:
-        parts.append('<h2>At a glance</h2><div class="plots">' + "".join(figures) + "</div>")
-    for section in build_document(facts, answers):
-        parts.append(f'<h2 id="{_e(section.key)}">{_e(section.title)}</h2>')
-        for view in section.questions:
-            q = view.question
-            parts.append(f'<h3 id="{_e(q.id)}">{_e(q.text)}</h3>'
-                         f'<div class="kind {q.kind}"><code>{_e(q.id)}</code> '
-                         f"{_e(KIND_LABEL[q.kind])}</div>")
-            parts += [_html_block(b) for b in view.blocks]
-            if view.answer:
-                parts.append(f'<p class="answer"><strong>Curator:</strong> '
-                             f"{_e(view.answer)}</p>")
-            elif q.kind != "A":
-                parts.append(f'<p class="none">{_e(NOT_ANSWERED)}</p>')
-    problems = facts.get("croissant_problems") or []
-    parts.append("<h2>Croissant metadata</h2>" + "".join(
-        f"<p>{_e(n)}</p>" for n in _croissant_notes(facts, answers)))
-    if problems:
-        parts.append("<p>Missing before it can be published:</p><ul>"
-                     + "".join(f"<li>{_e(p)}</li>" for p in problems) + "</ul>")
-    parts.append("</body></html>")
-    return "\n".join(parts) + "\n"
+    return _environment(False).get_template("datasheet.html.j2").render(
+        _context(facts, answers, plots))

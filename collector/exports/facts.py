@@ -10,7 +10,7 @@ from __future__ import annotations
 
 from typing import Any, NotRequired, TypedDict
 
-from collector.storage.queries import (
+from collector.storage.datasheet_queries import (
     AcceptedFacts,
     FlaggedFacts,
     HostFacts,
@@ -51,6 +51,15 @@ class LicenceFacts(TypedDict):
     deed_url: str | None
 
 
+class PictureDates(TypedDict):
+    """Declared dates of accepted files: earliest and latest (of those that start with a
+    year), and how many accepted files carry any date."""
+
+    earliest: str | None
+    latest: str | None
+    dated: int
+
+
 class ResolutionBins(TypedDict):
     """Accepted files on a grid of ``step`` x ``step`` pixel cells: [width, height, files]."""
 
@@ -59,15 +68,18 @@ class ResolutionBins(TypedDict):
 
 
 class Timeline(TypedDict):
-    """Requests and stored files per ``unit`` (second, minute, hour or day)."""
+    """Requests and stored files per ``unit`` (second, minute, hour or day); ``by_host``:
+    requests per host and unit (politeness budgets are per host)."""
 
     unit: str
     requests: dict[str, int]
     stored: dict[str, int]
+    by_host: dict[str, dict[str, int]]
 
 
 class SourceFacts(TypedDict):
-    """One source: kind, items, accepted files, how it obtains items, its RAI type."""
+    """One source: kind, items, accepted files, how it obtains items, its RAI type, and
+    where its archive is (the URLs of its recipe table, secrets hidden, or its folder)."""
 
     name: str
     kind: str
@@ -75,6 +87,7 @@ class SourceFacts(TypedDict):
     accepted: int
     mechanism: str
     collection_type: str
+    where: list[str]
 
 
 class ReleaseFacts(TypedDict):
@@ -94,12 +107,49 @@ class ReleaseFacts(TypedDict):
     provenance_sha256: str
 
 
+class ReservationSummary(TypedDict):
+    """Reservations against text-and-data mining: the mechanisms checked, the signals seen
+    (place, name, meaning, items), the items each reason excluded, the permissions."""
+
+    checked: list[str]
+    signals: list[dict[str, Any]]
+    excluded: dict[str, int]  # "state/reason" -> items
+    tdmrep_files: dict[str, int]  # tdmrep.json outcome -> hosts
+    permissions: dict[str, str]  # source -> the permission's reference (recipe)
+    permissions_used: dict[str, str]  # source -> reference, where a signal was overridden
+    when_unknown: str
+
+
+class ChangeEvent(TypedDict):
+    """One dated line of the change log (:mod:`collector.exports.changelog`)."""
+
+    date: str
+    event: str
+    detail: str
+
+
+class LedgerState(TypedDict):
+    """The ledger state a release was made from: the newest run and its last time."""
+
+    run_id: int | None
+    time: str | None
+
+
+class SelectionFacts(TypedDict):
+    """What a partial release selected and what it left out, by reason."""
+
+    conditions: list[str]
+    excluded: dict[str, int]
+    ledger_state: LedgerState
+
+
 class DatasheetFacts(TypedDict):
     """Everything the datasheet says, as plain data; ``release`` and ``croissant_problems``
     are added once the release is written and the Croissant document checked."""
 
     generated_at: str
     tool_version: str
+    distribution: str  # the name it is installed by (pip install ...)
     collection: CollectionFacts
     items: ItemFacts
     accepted: AcceptedFacts
@@ -109,13 +159,18 @@ class DatasheetFacts(TypedDict):
     duplicates: DuplicateFacts
     licences: list[LicenceFacts]
     timeframe: Timeframe
+    picture_dates: PictureDates
     requests: RequestFacts
     hosts: list[HostFacts]
+    host_sources: dict[str, list[str]]
     resolution_bins: ResolutionBins
     timeline: Timeline
     sources: list[SourceFacts]
     runs: RunFacts
     notes: dict[str, int]
     policy: dict[str, Any]
+    reservations: NotRequired[ReservationSummary]
     release: NotRequired[ReleaseFacts]
+    changelog: NotRequired[list[ChangeEvent]]
+    selection: NotRequired[SelectionFacts]
     croissant_problems: NotRequired[list[str]]

@@ -14,9 +14,10 @@ from datetime import datetime
 from typing import Any
 
 from collector import sources
+from collector.checks.reservations import RESERVATION_REASONS
 from collector.config.recipe import Recipe
 from collector.errors import CollectorError
-from collector.storage import queries
+from collector.storage import datasheet_queries, queries
 from collector.storage.ledger import Ledger
 from collector.urls import host_key
 
@@ -56,6 +57,8 @@ class Summary:
     run_seconds: float = 0.0  # all runs together
     last_run_seconds: float | None = None
     origins: list[queries.FileOrigin] = field(default_factory=list)
+    reservations: datasheet_queries.ReservationFacts = field(
+        default_factory=lambda: datasheet_queries.ReservationFacts((), (), (), ()))
 
     @property
     def total_items(self) -> int:
@@ -80,6 +83,7 @@ def summarise(ledger: Ledger) -> Summary:
         for flag in json.loads(flags):
             s.flags[flag.split(":", 1)[0]] += 1
     s.notes.update(dict(t.notes))
+    s.reservations = datasheet_queries.reservation_facts(ledger, RESERVATION_REASONS)
     return s
 
 
@@ -95,6 +99,12 @@ def summary_as_dict(s: Summary) -> dict[str, Any]:
         "flags": dict(s.flags), "notes": dict(s.notes), "runs": s.runs,
         "run_seconds": round(s.run_seconds, 3), "last_run": s.last_run,
         "last_run_seconds": s.last_run_seconds,
+        "reservations": {
+            "signals": [{"place": p, "name": n, "meaning": m, "items": c, "excluded": x}
+                        for p, n, m, c, x in s.reservations.signals],
+            "excluded": {f"{state}/{reason}": n for state, reason, n in s.reservations.excluded},
+            "permissions": dict(s.reservations.permissions),
+            "tdmrep_files": dict(s.reservations.files)},
     }
 
 
@@ -147,6 +157,7 @@ def format_summary(s: Summary) -> list[str]:
     if s.flags:
         lines.append("flags (review before publishing): " + ", ".join(
             f"{k} {v}" for k, v in s.flags.most_common()))
+    lines.extend(format_reservations(s.reservations))
     if s.notes:
         lines.append("source notes: " + ", ".join(f"{k} {v}" for k, v in s.notes.items())
                      + "  (see the ledger's notes table)")
@@ -181,6 +192,23 @@ def files_lines(s: Summary) -> list[str]:
         where.append(f"{local:,} read from local folders, so not received "
                      f"({human_bytes(size['local'] + size['crop'])}{crops})")
     return ["files: " + " + ".join(kinds) + "; " + ", ".join(where)]
+
+
+def format_reservations(r: datasheet_queries.ReservationFacts) -> list[str]:
+    """What status says about reservations against text-and-data mining (none: nothing)."""
+    lines: list[str] = []
+    if r.signals:
+        lines.append("reservation signals seen (items, of which excluded): " + ", ".join(
+            f"{place} {name} {meaning} {n}" + (f" ({x})" if x else "")
+            for place, name, meaning, n, x in r.signals))
+    if r.excluded:
+        lines.append("items excluded by reservations: " + ", ".join(
+            f"{reason} {n} {state}" for state, reason, n in r.excluded))
+    if r.files:
+        lines.append("tdmrep.json per host: " + ", ".join(f"{k} {n}" for k, n in r.files))
+    for name, reference in r.permissions:
+        lines.append(f"gathered despite reservations under permission: {name}: {reference}")
+    return lines
 
 
 @dataclass

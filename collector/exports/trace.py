@@ -6,12 +6,17 @@ A file is traced by its content, never its name:
    provenance record of the item that stored it (source, pages, licence, the successful image
    fetch with its robots.txt verdict, flags) plus every other item that brought the same bytes,
    and for a crop the scan it was cut from and the box.
-2. **Near**: otherwise its perceptual hash (the ingest pipeline, :func:`collector.checks.phash.
-   hash_image_file`) is compared with every stored hash and mirror hash in the memory-mapped
-   hash file (:class:`collector.storage.hashindex.HashFile`). The scan is brute force, so every
-   stored file within the threshold is found. A near match is worded as *probably* a copy, never as
-   certain: pHash cannot prove two files show the same picture.
-3. **None**: said plainly.
+2. **Near**: otherwise its perceptual hash, for each of the 8 ways to turn or flip a picture
+   (:func:`collector.checks.likeness.look_at_file`), is compared with every stored hash in the
+   memory-mapped hash file (:class:`collector.storage.hashindex.HashFile`): upright and
+   mirrored first, the rotations and loose crop candidates only when nothing is confirmed.
+   The scan is brute force, so every stored file within the threshold is found; each
+   candidate must then pass the second look (:func:`collector.checks.likeness.confirm`:
+   thumbnail and detail correlation, or the crop-box search). A near match is worded as
+   *probably* a copy (resized/re-encoded, mirrored, rotated, cropped), never as certain.
+3. **None**: said plainly; a blank picture is never compared by look.
+4. **unreadable** (with why) and **not_a_file** (FIFO, socket, broken link, link loop, link
+   to a folder): every path given or found in a folder gets a state, none is left out.
 
 The ledger is opened read-only, so tracing works while a gather runs. Licence facts are as
 declared by the sources; this module says what the ledger recorded, not what the law allows.
@@ -21,8 +26,10 @@ How the results are shown (records, tables, CSV, JSON, attribution lines) is
 
 from __future__ import annotations
 
+import errno
 import hashlib
 import os
+import stat
 import struct
 from collections.abc import Iterable, Iterator
 from dataclasses import dataclass, field
@@ -31,13 +38,16 @@ from typing import Any
 
 from collector.checks.images import sniff_format
 from collector.checks.licences import licence_allowed, licence_deed_url
+from collector.checks.likeness import Look, find_copies, look_at_file
+from collector.checks.rights_statements import STATEMENTS
 from collector.errors import CollectorError
 from collector.exports.trace_format import attribution_line, recovered_words
-from collector.storage import queries
+from collector.storage import queries, upkeep_queries
 from collector.storage.collection import Collection, open_collection
 from collector.storage.hashindex import HashFile, NearMatch
 from collector.storage.ledger import Ledger, decode_row
 from collector.storage.ledger_repair import RECOVERED_FLAG
+from collector.storage.withdrawals import describe as describe_withdrawal
 
 __all__ = [
     "DEFAULT_NEAR_DISTANCE",
@@ -52,6 +62,7 @@ __all__ = [
     "Tracer",
     "collect_targets",
     "iter_image_files",
+    "not_a_file",
     "sha256_file",
 ]
 
@@ -115,6 +126,9 @@ class ItemRecord:
     scan: ItemRecord | None = None  # for a crop: the item of the scan it was cut from
     near_of: int | None = None  # the ledger's own near-duplicate note: the earlier item
     near_distance: int | None = None
+    rights_statement: str | None = None  # RightsStatements.org id, when no SPDX licence
+    size_request: dict[str, Any] | None = None  # how the image size was negotiated
+    reservation_checks: str | None = None  # the mechanisms checked (collector.run.reservations)
 
 
 @dataclass
@@ -132,15 +146,20 @@ class FileRecord:
     copyright: str | None
     origin: ItemRecord | None
     others: list[ItemRecord] = field(default_factory=list)
+    withdrawn: str | None = None  # "withdrawn on <date>: <reason>" while a withdrawal holds
 
 
 @dataclass
 class NearCandidate:
-    """A stored file whose perceptual hash is close to the query's."""
+    """A stored file whose perceptual hash is close to the query's, confirmed by the second
+    look (collector.checks.likeness): ``how`` is "same" (resized/re-encoded), a turn of
+    collector.checks.phash.TURNS ("mirror", "rotate90", "rotate90+mirror", ...) or "crop"."""
 
     distance: int
     mirrored: bool
     file: FileRecord
+    how: str = "same"
+    score: float | None = None  # the second look's thumbnail correlation
 
 
 @dataclass
@@ -149,12 +168,12 @@ class TraceResult:
 
     path: str
     sha256: str | None
-    kind: str  # exact | near | none
+    kind: str  # exact | near | none | unreadable | not_a_file
     file: FileRecord | None = None
     near: list[NearCandidate] = field(default_factory=list)
     allowed: str = "unknown"  # yes | no | unknown (against the recipe's allowlist)
     attribution: str | None = None
-    note: str | None = None  # e.g. why no perceptual hash could be computed
+    note: str | None = None  # why no perceptual hash, why unreadable, what it is instead
     threshold: int = DEFAULT_NEAR_DISTANCE
     listed: bool = False  # found by walking a folder (shown in the table)
 
@@ -202,28 +221,35 @@ def sha256_file(path: Path) -> str:
 
 def _looks_like_image(path: Path) -> bool:
     # is_file() reads the file type without opening: a FIFO would block the open.
-    if path.suffix.lower() not in IMAGE_EXTENSIONS or not path.is_file():
+    if not path.is_file():
         return False
+    if path.suffix.lower() in IMAGE_EXTENSIONS:
+        return True  # traced even when its bytes are broken: it shows up as unreadable
     try:
         with path.open("rb") as fh:
             return sniff_format(fh.read(16)) is not None
     except OSError:
-        return False
+        return True  # cannot be read: listed, and trace says why
 
 
 def iter_image_files(folder: Path) -> Iterator[Path]:
-    """Every image below ``folder`` (recursive, sorted): an image extension and image magic
-    bytes (standards.md section 9) are both required; hidden folders are skipped."""
+    """Every entry below ``folder`` trace reports on (recursive, sorted, hidden folders
+    skipped): files with an image extension or image magic bytes (standards.md section 9),
+    and every entry that is not a regular file (FIFO, socket, device, broken link, link loop,
+    link to a folder), so that none is silently left out. Links to folders are not followed,
+    so a link loop cannot make the walk endless."""
     for dirpath, dirnames, filenames in os.walk(folder):
-        dirnames[:] = sorted(d for d in dirnames if not d.startswith("."))
-        for name in sorted(filenames):
+        linked = sorted(d for d in dirnames if (Path(dirpath) / d).is_symlink())
+        dirnames[:] = sorted(d for d in dirnames if not d.startswith(".") and d not in linked)
+        for name in sorted([*filenames, *linked]):
             path = Path(dirpath) / name
-            if _looks_like_image(path):
+            if _looks_like_image(path) or not path.is_file():
                 yield path
 
 
 def collect_targets(paths: Iterable[Path]) -> list[tuple[Path, bool]]:
-    """Expand the command's arguments into (file, came_from_a_folder) pairs.
+    """Expand the command's arguments into (path, came_from_a_folder) pairs. A path that is
+    not a regular file (FIFO, socket, broken link) is kept: trace reports it as not_a_file.
 
     Raises TraceInputError for a missing path or a folder without images.
     """
@@ -236,14 +262,36 @@ def collect_targets(paths: Iterable[Path]) -> list[tuple[Path, bool]]:
                                       f"{', '.join(sorted(IMAGE_EXTENSIONS))} with image "
                                       "signatures); give an image file or a folder of images")
             targets.extend((p, True) for p in found)
-        elif path.is_file():
+        elif path.exists() or path.is_symlink():
             targets.append((path, False))
-        elif path.exists():
-            raise TraceInputError(f"{path} is not a regular file (a FIFO, socket or device); "
-                                  "give an image file or a folder")
         else:
             raise TraceInputError(f"{path} does not exist; give an image file or a folder")
     return targets
+
+
+def not_a_file(path: Path) -> str | None:
+    """Why ``path`` is not a regular file to trace (None when it is one)."""
+    try:
+        st = path.lstat()
+    except OSError as exc:
+        return f"cannot be read ({exc.strerror})"
+    if stat.S_ISLNK(st.st_mode):
+        try:
+            target = path.stat()
+        except OSError as exc:
+            loop = exc.errno == errno.ELOOP
+            return "a symbolic link loop" if loop else "a broken symbolic link"
+        if stat.S_ISDIR(target.st_mode):
+            return "a symbolic link to a folder (not followed)"
+        st = target
+    if stat.S_ISREG(st.st_mode):
+        return None
+    for test, words in ((stat.S_ISFIFO, "a FIFO (named pipe)"), (stat.S_ISSOCK, "a socket"),
+                        (stat.S_ISDIR, "a folder"), (stat.S_ISCHR, "a device"),
+                        (stat.S_ISBLK, "a device")):
+        if test(st.st_mode):
+            return words
+    return "not a regular file"
 
 
 # --- the tracer --------------------------------------------------------------------------------
@@ -266,6 +314,7 @@ class Tracer:
         self.allow_unknown = allow_unknown
         self.recipe_problem = recipe_problem
         self._sources: dict[int, tuple[str, str]] | None = None
+        self._looks: dict[str, Look | None] = {}
 
     @classmethod
     def open(cls, root: Path, *, near_distance: int | None = None) -> Tracer:
@@ -321,59 +370,94 @@ class Tracer:
             width=row.get("width"), height=row.get("height"), stored_at=row.get("stored_at"),
             stored_path=str(stored) if stored else None, flags=list(row.get("flags") or []),
             copyright=notice, origin=origin,
-            others=[i for i in items if i is not origin])
+            others=[i for i in items if i is not origin], withdrawn=self._withdrawn(sha256))
+
+    def _withdrawn(self, sha256: str) -> str | None:
+        found = upkeep_queries.active_withdrawal_of_file(self.ledger, sha256)
+        return describe_withdrawal(found) if found is not None else None
 
     def lookup_near(self, phash: int, mirror: int | None) -> list[NearMatch]:
         """Stored files within the threshold of the hash or the mirror hash, closest first."""
         return self.hashes.nearest(phash, mirror, self.near_distance)
 
-    def allowed(self, spdx_id: str | None) -> str:
-        """'yes' / 'no' against the recipe's allowlist; 'unknown' without a licence or recipe."""
-        if self.allow is None or not spdx_id:
+    def allowed(self, spdx_id: str | None, statement: str | None = None) -> str:
+        """'yes' / 'no' against the recipe's allowlist; 'unknown' without a licence or recipe.
+        A RightsStatements.org statement is decided by its ``rs:<id>`` entry."""
+        known = STATEMENTS.get(statement or "") if not spdx_id else None
+        if self.allow is None or not (spdx_id or known):
             return "unknown"
-        ok, reason = licence_allowed(spdx_id, self.allow, self.allow_unknown)
+        ok, reason = licence_allowed(spdx_id, self.allow, self.allow_unknown, known)
         if ok:
             return "yes"
         return "unknown" if reason == "licence_unknown" else "no"
 
     def trace_file(self, path: Path, *, listed: bool = False) -> TraceResult:
-        """Trace one file: exact by sha256, else near by perceptual hash, else none."""
-        sha = sha256_file(path)
+        """Trace one path: exact by sha256, else near by perceptual hash confirmed by a
+        second look, else none; ``not_a_file`` and ``unreadable`` say why instead."""
+        why_not = not_a_file(path)
+        if why_not is not None:
+            return TraceResult(str(path), None, "not_a_file", threshold=self.near_distance,
+                               listed=listed, note=why_not)
+        try:
+            sha = sha256_file(path)
+        except OSError as exc:
+            return TraceResult(str(path), None, "unreadable", threshold=self.near_distance,
+                               listed=listed, note=f"cannot be read ({exc.strerror or exc})")
         result = TraceResult(str(path), sha, "none", threshold=self.near_distance,
                              listed=listed)
         exact = self.lookup_exact(sha)
         if exact is not None:
             result.kind, result.file = "exact", exact
         else:
-            from PIL import Image
-
-            # scipy loads only when needed
-            from collector.checks.phash import featureless, hash_image_file
-
-            try:
-                phash, mirror = hash_image_file(path)
-            except (*_DECODE_ERRORS, Image.DecompressionBombError) as exc:
-                result.note = f"not a readable image ({type(exc).__name__}: {exc})"
-                phash = None
-            if phash is not None and featureless(phash):
-                result.note = ("its picture is too plain (a flat fill or a smooth gradient) to "
-                               "compare by look, and no stored file has these bytes")
-            elif phash is not None:
-                for match in self.lookup_near(phash, mirror)[:5]:
-                    record = self.lookup_exact(match.sha256)
-                    if record is not None:
-                        result.near.append(NearCandidate(match.distance, match.mirrored, record))
-                if result.near:
-                    result.kind = "near"
+            self._trace_near(path, result)
         best = result.best
         if best is not None:
             origin = best.origin
-            result.allowed = self.allowed(origin.spdx_id if origin else None)
+            result.allowed = self.allowed(origin.spdx_id if origin else None,
+                                          origin.rights_statement if origin else None)
             result.attribution = attribution_line(origin, modified=result.kind == "near",
                                                   copyright_notice=best.copyright)
             if origin is None and RECOVERED_FLAG in best.flags:
                 result.attribution = f"No attribution: {recovered_words(best)}."
         return result
+
+    def _trace_near(self, path: Path, result: TraceResult) -> None:
+        """Candidates by pHash (8 turns, loose for crops), kept only if the second look
+        (collector.checks.likeness) agrees."""
+        from PIL import Image
+
+        try:
+            look = look_at_file(path)
+        except (*_DECODE_ERRORS, Image.DecompressionBombError) as exc:
+            result.kind = "unreadable"
+            result.note = f"not a readable image ({type(exc).__name__}: {exc})"
+            return
+        if not look.comparable:
+            result.note = ("its picture is blank or too plain (a flat fill or a smooth "
+                           "gradient) to compare by look, and no stored file has these bytes")
+            return
+        def candidates(turns: dict[str, int], crops: bool) -> list[tuple[str, int, str]]:
+            return self.hashes.candidates(turns, self.near_distance, crops)
+
+        for found in find_copies(look, candidates, self._stored_look):
+            record = self.lookup_exact(found.key)
+            if record is not None:
+                result.near.append(NearCandidate(found.distance, "mirror" in found.kind,
+                                                 record, found.kind, found.score))
+        if result.near:
+            result.kind = "near"
+
+    def _stored_look(self, sha256: str) -> Look | None:
+        """The second-look picture of a stored file (None: missing or unreadable)."""
+        from PIL import Image
+
+        if sha256 not in self._looks:
+            stored = self.collection.store.find(sha256)
+            try:
+                self._looks[sha256] = look_at_file(stored) if stored else None
+            except (*_DECODE_ERRORS, Image.DecompressionBombError):  # damaged: not confirmed
+                self._looks[sha256] = None
+        return self._looks[sha256]
 
     def trace_all(self, targets: Iterable[tuple[Path, bool]]) -> Iterator[TraceResult]:
         """Trace each (path, listed) pair in turn."""
@@ -406,10 +490,14 @@ class Tracer:
             licence_raw=row.get("licence_raw"), licence_url=row.get("licence_url"),
             spdx_id=row.get("spdx_id"), deed_url=licence_deed_url(row.get("spdx_id")),
             date=row.get("date"), run_id=row.get("run_id"), local_path=row.get("local_path"),
+            rights_statement=row.get("rights_statement"),
+            size_request=row.get("size_request") if isinstance(row.get("size_request"), dict)
+            else None,
             fetch=self._fetch(row["id"]), parent_sha256=row.get("parent_sha256"),
             crop_box=list(box) if isinstance(box, list) else None,
             near_of=row.get("duplicate_of") if row.get("state") == "near_duplicate" else None,
-            near_distance=row.get("near_distance"))
+            near_distance=row.get("near_distance"),
+            reservation_checks=row.get("reservation_checks"))
         if with_scan and item.parent_sha256:
             scans = queries.items_of_file(self.ledger, item.parent_sha256, limit=1)
             if scans:

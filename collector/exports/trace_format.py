@@ -14,6 +14,7 @@ from collections.abc import Iterable
 from dataclasses import asdict, dataclass
 from typing import TYPE_CHECKING, Any
 
+from collector.checks.rights_statements import STATEMENTS
 from collector.safe_text import csv_row, shown_name
 from collector.storage.ledger_repair import RECOVERED_FLAG
 
@@ -86,6 +87,10 @@ def attribution_line(item: ItemRecord | None, *, modified: bool = False,
         deed = item.deed_url or item.licence_url
         verb = "marked with" if item.spdx_id in _PUBLIC_DOMAIN else "licensed under"
         parts.append(f"{verb} {label}" + (f" ({deed})" if deed else ""))
+    elif item.rights_statement in STATEMENTS:
+        st = STATEMENTS[item.rights_statement or ""]
+        parts.append(f"rights statement {st.name} ({st.page_url}): not a licence, read the "
+                     "statement before reusing this image")
     else:
         raw = f" (the source said {item.licence_raw!r})" if item.licence_raw else ""
         parts.append(f"licence unknown{raw}: find the licence before reusing this image")
@@ -100,8 +105,10 @@ def licence_words(item: ItemRecord) -> str:
     """What the source gave (its text, else its licence URL) -> the SPDX id it normalises to,
     and the deed to read: never an arrow with nothing before it."""
     given = repr(item.licence_raw) if item.licence_raw else item.licence_url
-    spdx = item.spdx_id or "no SPDX id (unknown licence)"
-    deed = item.deed_url or item.licence_url
+    statement = STATEMENTS.get(item.rights_statement or "") if not item.spdx_id else None
+    spdx = item.spdx_id or (f"rights statement {statement.code} ({statement.name}; not a "
+                            "licence)" if statement else "no SPDX id (unknown licence)")
+    deed = statement.page_url if statement else item.deed_url or item.licence_url
     link = f" {deed}" if deed and deed != given else ""
     return f"{given} -> {spdx}{link}" if given else f"none given -> {spdx}"
 
@@ -118,15 +125,21 @@ class TraceSummary:
     files: int
     exact: int
     near: int
-    untraced: int
+    untraced: int  # none + unreadable + not_a_file
     outside_allowlist: int
     personal_data: int
+    unreadable: int = 0
+    not_a_file: int = 0
 
     def line(self) -> str:
         """The one-line summary."""
+        why = ", ".join(p for p in (
+            f"{self.unreadable} unreadable" if self.unreadable else "",
+            f"{self.not_a_file} not a file" if self.not_a_file else "") if p)
         files = f"{self.files} file" + ("" if self.files == 1 else "s")
         return (f"{files}: {self.exact} exact, {self.near} near, {self.untraced} "
-                f"without known provenance, {self.outside_allowlist} with licences outside "
+                f"without known provenance{f' ({why})' if why else ''}, "
+                f"{self.outside_allowlist} with licences outside "
                 f"the allowlist, {self.personal_data} with personal-data flags")
 
 
@@ -135,13 +148,25 @@ def summarise(results: Iterable[TraceResult]) -> TraceSummary:
     rs = list(results)
     return TraceSummary(
         files=len(rs), exact=sum(r.kind == "exact" for r in rs),
-        near=sum(r.kind == "near" for r in rs), untraced=sum(r.kind == "none" for r in rs),
+        near=sum(r.kind == "near" for r in rs),
+        untraced=sum(r.kind not in ("exact", "near") for r in rs),
         outside_allowlist=sum(r.allowed == "no" for r in rs),
-        personal_data=sum(r.personal_data for r in rs))
+        personal_data=sum(r.personal_data for r in rs),
+        unreadable=sum(r.kind == "unreadable" for r in rs),
+        not_a_file=sum(r.kind == "not_a_file" for r in rs))
 
 
 TABLE_COLUMNS = ("file", "match", "distance", "source", "spdx_id", "allowed", "flags",
-                 "matched_sha256")
+                 "matched_sha256", "copy_kind", "note")
+_SHOWN_COLUMNS = ("file", "match", "distance", "source", "spdx_id", "allowed", "flags",
+                  "copy_kind", "note")
+# How a near match was made, as the second look found it (collector.checks.likeness).
+COPY_KINDS = {
+    "same": "resized/re-encoded", "mirror": "mirrored", "crop": "cropped",
+    "rotate90": "rotated", "rotate180": "rotated", "rotate270": "rotated",
+    "rotate90+mirror": "rotated and mirrored", "rotate180+mirror": "rotated and mirrored",
+    "rotate270+mirror": "rotated and mirrored",
+}
 
 
 def table_row(result: TraceResult) -> dict[str, Any]:
@@ -153,8 +178,11 @@ def table_row(result: TraceResult) -> dict[str, Any]:
         "distance": "" if result.distance is None else result.distance,
         "source": (item.source or "") if item else "",
         "spdx_id": (item.spdx_id or "") if item else "",
-        "allowed": result.allowed, "flags": " ".join(result.flags),
+        "allowed": result.allowed,
+        "flags": " ".join([*result.flags, *(["withdrawn"] if best and best.withdrawn else [])]),
         "matched_sha256": best.sha256 if best else "",
+        "copy_kind": COPY_KINDS.get(result.near[0].how, "") if result.kind == "near" else "",
+        "note": result.note or "",
     }
 
 
@@ -196,7 +224,7 @@ def to_json(results: list[TraceResult]) -> str:
 def format_table(results: list[TraceResult]) -> list[str]:
     """The folder table as aligned plain-text lines."""
     rows = [table_row(r) for r in results]
-    cols = TABLE_COLUMNS[:-1]
+    cols = _SHOWN_COLUMNS
     cells = [[str(row[c]) if row[c] != "" else "-" for c in cols] for row in rows]
     widths = [max([len(c)] + [len(line[i]) for line in cells]) for i, c in enumerate(cols)]
     lines = ["  ".join(c.ljust(w) for c, w in zip(cols, widths, strict=True)).rstrip()]
@@ -205,8 +233,28 @@ def format_table(results: list[TraceResult]) -> list[str]:
     return lines
 
 
-def _copy_words(mirrored: bool) -> str:
-    return "a mirrored copy" if mirrored else "a resized/re-encoded copy"
+def _size_words(req: dict[str, Any]) -> str:
+    """How the image's size was chosen: the size asked for, of which full size, and why."""
+    def dims(value: Any) -> str:
+        return "x".join(str(v) for v in value) if isinstance(value, list) else "?"
+    if "size" not in req:
+        return str(req.get("why", "?"))
+    return (f"asked {req['size']} ({dims(req.get('asked_size'))}) of "
+            f"{dims(req.get('full_size'))} from {req.get('service', '?')}: {req.get('why', '?')}")
+
+
+
+def _copy_words(how: str) -> str:
+    return f"a {COPY_KINDS.get(how, 'resized/re-encoded')} copy"
+
+
+def _turn_words(how: str) -> str:
+    """Which turn the second look found, in words ("turned 90 degrees counter-clockwise")."""
+    if how.startswith("rotate"):
+        degrees = how[6:].split("+", 1)[0]
+        return (f" (turned {degrees} degrees counter-clockwise"
+                + (", then mirrored)" if how.endswith("+mirror") else ")"))
+    return ""
 
 
 def _item_lines(item: ItemRecord, indent: str = "  ") -> list[str]:
@@ -218,6 +266,8 @@ def _item_lines(item: ItemRecord, indent: str = "  ") -> list[str]:
         if value:
             lines.append(f"{indent}{label + ':':<13} {value}")
     lines.append(f"{indent}licence:      {licence_words(item)}")
+    if item.size_request:
+        lines.append(f"{indent}image size:   {_size_words(item.size_request)}")
     if item.fetch:
         f = item.fetch
         extra = ", ".join(p for p in (
@@ -228,6 +278,11 @@ def _item_lines(item: ItemRecord, indent: str = "  ") -> list[str]:
             robots += f" ({f.robots_rule})"
         lines.append(f"{indent}fetched at:   {f.fetched_at} HTTP {f.status}"
                      + (f", {extra}" if extra else "") + f"; robots.txt: {robots}")
+    if item.reservation_checks:
+        lines.append(f"{indent}reservations: {item.reservation_checks}")
+    elif item.fetch or item.local_path:
+        lines.append(f"{indent}reservations: not checked (gathered before collector read "
+                     "reservations against text-and-data mining)")
     if item.run_id is not None:
         lines.append(f"{indent}run:          #{item.run_id}")
     if item.parent_sha256:
@@ -253,6 +308,8 @@ def _file_lines(record: FileRecord) -> list[str]:
         lines.append(f"  provenance:   {recovered_words(record)}; no source, item or licence "
                      "is recorded")
     lines.append(f"  flags:        {', '.join(record.flags) if record.flags else 'none'}")
+    if record.withdrawn:
+        lines.append(f"  withdrawn:    {record.withdrawn}; left out of every release")
     for other in record.others:
         where = other.page_url or other.image_url or other.local_path or other.source_key
         lines.append(f"  also from:    item #{other.item_id} ({other.source or '?'}, "
@@ -268,13 +325,18 @@ def format_record(result: TraceResult) -> list[str]:
         lines += _file_lines(result.file)
     elif result.kind == "near":
         best = result.near[0]
-        lines = [f"{shown}: probably {_copy_words(best.mirrored)} of "
-                 f"{best.file.sha256[:12]} (pHash distance {best.distance} of 64 bits, "
-                 f"threshold {result.threshold}); not the same bytes, so not certain"]
+        score = f", thumbnails agree at {best.score:.2f}" if best.score is not None else ""
+        lines = [f"{shown}: probably {_copy_words(best.how)} of "
+                 f"{best.file.sha256[:12]}{_turn_words(best.how)} (pHash distance "
+                 f"{best.distance} of 64 bits, threshold {result.threshold}{score}); not the "
+                 "same bytes, so not certain"]
         lines += _file_lines(best.file)
         for other in result.near[1:]:
             lines.append(f"  also close:   {other.file.sha256[:12]} distance {other.distance}"
-                         + (" (mirrored)" if other.mirrored else ""))
+                         f" ({COPY_KINDS.get(other.how, other.how)})")
+    elif result.kind in ("unreadable", "not_a_file"):
+        what = "unreadable" if result.kind == "unreadable" else "not a file"
+        return [f"{shown}: {what}: {result.note}. Not traced."]
     else:
         why = f" ({result.note})" if result.note else (
             f": no stored file has these bytes, and none is within {result.threshold} bits "

@@ -9,7 +9,8 @@ from __future__ import annotations
 
 import json as _json
 import re
-from dataclasses import dataclass
+from collections.abc import Mapping
+from dataclasses import dataclass, field
 from datetime import UTC
 from email.utils import parsedate_to_datetime
 from pathlib import Path
@@ -127,3 +128,6 @@ class Download:
     etag: str | None
     last_modified: str | None
     not_modified: bool = False
+    # The response's header fields (reservation signals are read from them, see
+    # collector.checks.reservations).
+    headers: Mapping[str, str] = field(default_factory=dict)

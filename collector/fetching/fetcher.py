@@ -57,6 +57,7 @@ from collector.fetching.answers import (
 from collector.fetching.body import Body, exc_size, read_body
 from collector.fetching.budgets import SYSTEM_CLOCK, Budget, Clock, HostBudgets, budgets_from_recipe
 from collector.fetching.http_target import transport_target
+from collector.fetching.kept_pages import keep_answer, kept_answer
 from collector.fetching.retry import Retryable, retry_policy
 from collector.fetching.robots import (
     MAX_ROBOTS_BYTES,
@@ -94,6 +95,7 @@ class FetchSettings:
 
     contact: str
     product_token: str = "collector"
+    extra_tokens: tuple[str, ...] = ()  # [reservations] robots_tokens: their groups bind too
     budget: Budget = field(default_factory=Budget)
     host_budgets: Mapping[str, Budget] = field(default_factory=dict)
     connect_timeout: float = 10.0
@@ -131,14 +133,16 @@ class FetchSettings:
             hosts = budgets.pop("hosts", None) or get("budgets.hosts") or {}
             network = dict(get("network") or {})
             contact, token = get("contact", ""), get("product_token") or "collector"
+            extra = tuple((get("reservations") or {}).get("robots_tokens") or ())
         else:
             budgets = asdict(recipe.budgets)
             hosts = dict(recipe.host_budgets)
             network = asdict(recipe.network)
             contact, token = recipe.contact, recipe.product_token or "collector"
+            extra = tuple(recipe.reservations.robots_tokens)
         default, per_host = budgets_from_recipe({**budgets, "hosts": hosts})
         values: dict[str, Any] = {
-            "contact": contact, "product_token": token, "budget": default,
+            "contact": contact, "product_token": token, "extra_tokens": extra, "budget": default,
             "host_budgets": per_host,
         }
         for key in ("connect_timeout", "read_timeout", "download_deadline", "max_image_bytes",
@@ -179,7 +183,7 @@ def filled_from_env(values: Mapping[str, Any], url: str,
     The one place collector expands ``${NAME}``: right before a request is sent, so expanded
     secrets never sit in a recipe, a source table or the ledger. An unset variable stops the
     request before anything is sent (gather names them all before it starts, see
-    collector.config.recipe.env_problems).
+    collector.config.recipe_env.env_problems).
     """
     try:
         return {k: expand_env(v, strict=True) if isinstance(v, str) else v
@@ -225,18 +229,30 @@ class Fetcher:
     def get_page(self, url: str, *, purpose: str = "listing", item_id: int | None = None,
                  params: Mapping[str, Any] | None = None,
                  headers: Mapping[str, str] | None = None,
-                 secret_params: Iterable[str] = ()) -> Page:
-        """GET a page (JSON/HTML) politely; raises FetchError unless the final status is 2xx."""
+                 secret_params: Iterable[str] = (), max_bytes: int | None = None,
+                 keep_for: float = 0.0) -> Page:
+        """GET a page (JSON/HTML) politely; raises FetchError unless the final status is 2xx.
+        ``max_bytes`` caps the body below ``max_page_bytes`` (small files such as tdmrep.json).
+        ``keep_for`` (seconds): a 2xx answer is kept in the ledger and given again, with no
+        request, until it is that old (a IIIF service's info.json across runs)."""
         secrets = (*self.settings.secret_params, *secret_params)
         if params:
             params = filled_from_env(params, url, secrets)
         full = add_params(url, params)
+        kept = kept_answer(self.ledger, full, keep_for, self.clock.time())
+        if kept is not None:
+            return kept
         result = self._fetch(full, purpose=purpose, item_id=item_id, headers=headers or {},
-                             secret_params=secrets, max_bytes=self.settings.max_page_bytes)
+                             secret_params=secrets,
+                             max_bytes=min(max_bytes or self.settings.max_page_bytes,
+                                           self.settings.max_page_bytes))
         if not 200 <= result.status < 300:
             raise FetchError(redact(result.url, secrets), f"http_{result.status}", result.status)
-        return Page(result.url, result.status, result.headers, result.body.data or b"",
+        page = Page(result.url, result.status, result.headers, result.body.data or b"",
                     result.encoding)
+        if keep_for > 0 and not secrets:  # a page asked with a secret is never kept
+            keep_answer(self.ledger, full, page, self.clock.time())
+        return page
 
     def download(self, url: str, dest_dir: Path, *, item_id: int | None = None,
                  etag: str | None = None, last_modified: str | None = None,
@@ -263,7 +279,7 @@ class Fetcher:
             raise FetchError(redact(result.url, secrets), f"http_{result.status}", result.status)
         return Download(url, result.url, result.status, result.body.path, result.body.sha256,
                         result.body.size, hdr.get("Content-Type"), hdr.get("ETag"),
-                        hdr.get("Last-Modified"))
+                        hdr.get("Last-Modified"), headers=hdr)
 
     def robots_verdict(self, url: str) -> Verdict:
         """What robots.txt says about ``url`` (fetching robots.txt politely if needed)."""
@@ -301,12 +317,12 @@ class Fetcher:
             if robots:
                 verdict = Verdict(True, "implicit", None)  # RFC 9309 §2.2.2
             else:
-                verdict = self._robots_policy(current).verdict(current,
-                                                               self.settings.product_token)
+                verdict, by = self._robots_policy(current).binding_verdict(
+                    current, self.settings.product_token, self.settings.extra_tokens)
                 if not verdict.allowed:
-                    rule = verdict.rule or "unreachable"
+                    rule = (verdict.rule or "unreachable") + (f" (for {by})" if by else "")
                     reason = ("robots_unreachable" if verdict.verdict == "unreachable"
-                              else "robots_disallowed")
+                              else "robots_token_disallowed" if by else "robots_disallowed")
                     self._record(row, attempt=0, robots_verdict=verdict.verdict,
                                  robots_rule=verdict.rule, error=reason)
                     raise RobotsDenied(shown, rule, reason)

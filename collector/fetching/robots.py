@@ -72,6 +72,22 @@ class RobotsPolicy:
         allowed, rule = matching_rule(self.parser, token, url)
         return Verdict(allowed, "allowed" if allowed else "disallowed", rule)
 
+    def binding_verdict(self, url: str, token: str,
+                        extra: tuple[str, ...] = ()) -> tuple[Verdict, str | None]:
+        """The verdict for our own ``token``, then for each further product token the recipe
+        lists (``[reservations] robots_tokens``): a path disallowed for any of them is not
+        fetched. Returns the verdict and the extra token that disallowed (None: our own)."""
+        verdict = self.verdict(url, token)
+        if not verdict.allowed:
+            return verdict, None
+        for other in extra:
+            if self.kind != RULES or not names_group(self.parser, other):
+                continue  # only a group that names the token binds us, never "*" again
+            theirs = self.verdict(url, other)
+            if not theirs.allowed:
+                return theirs, other
+        return verdict, None
+
     def hints(self, token: str) -> Hints:
         """Crawl-delay, Request-rate and Visit-time for ``token`` (none unless rules parsed)."""
         if self.kind != RULES or self.parser is None:
@@ -185,6 +201,16 @@ def regroup_other_records(text: str) -> str:
             out.append(line)
     out.extend(agents + others)
     return "\n".join(out)
+
+
+def names_group(parser: Any, token: str) -> bool:
+    """Whether robots.txt has a group written for ``token`` itself (not only ``*``); product
+    tokens compare case-insensitively (RFC 9309 §2.2.1). Reads protego's ``_user_agents``; if
+    that vanishes, every token counts as named (the stricter reading)."""
+    try:
+        return token.lower() in parser._user_agents
+    except AttributeError:
+        return True
 
 
 def matching_rule(parser: Any, token: str, url: str) -> tuple[bool, str | None]:

@@ -17,7 +17,8 @@ import contextlib
 from collections.abc import Callable, Iterator
 from typing import Any
 
-from collector.config.recipe import Recipe, env_problems
+from collector.config.recipe import Recipe
+from collector.config.recipe_env import env_problems
 from collector.errors import RecipeError, RecipeProblem
 from collector.run.record import Progress
 from collector.run.scheduling import (

@@ -31,19 +31,27 @@ from collector.checks.licences import (
     normalise_licence,
     rights_conflict,
 )
+from collector.checks.likeness import IMAGE_ERRORS, Look, confirm, look_at_file
+from collector.checks.rights_statements import find_statement
 from collector.config.recipe import Recipe
 from collector.errors import ImageRejected, StoreError
 from collector.run import dedup
 from collector.run.dedup import Demote, Keep, NearCandidate, NearCopy, TakeOver
 from collector.run.record import RunRecord
+from collector.run.reservations import ReservationGate
 from collector.safe_text import shown_name
+from collector.storage import upkeep_queries
 from collector.storage.collection import Collection
-from collector.storage.hashindex import HashIndex
+from collector.storage.hashindex import HashIndex, NearMatch
 from collector.storage.ledger import Ledger
 from collector.storage.ledger_repair import RECOVERED_FLAG
 
+# The archive itself withdrew the record (e.g. an OAI-PMH deleted record): not the curator's
+# withdrawal; the item keeps its file and provenance.
+WITHDRAWN_BY_ARCHIVE = "withdrawn_by_archive"
 # States after which an item is not requested again.
-FINAL_STATES = frozenset({"stored", "duplicate", "near_duplicate", "rejected"})
+FINAL_STATES = frozenset({"stored", "duplicate", "near_duplicate", "rejected",
+                          WITHDRAWN_BY_ARCHIVE})
 COPY_CHUNK = 1 << 20
 # "Not Found" / "Gone" (RFC 9110 sections 15.5.5, 15.5.11) in this many runs ends the retries.
 GONE_REASONS = frozenset({"http_404", "http_410"})
@@ -98,8 +106,10 @@ class Ingest:
 
     def __init__(self, collection: Collection, recipe: Recipe, ledger: Ledger,
                  record: RunRecord, source_ids: Sequence[int],
-                 on_stored: Callable[[], None] = lambda: None) -> None:
+                 on_stored: Callable[[], None] = lambda: None,
+                 gate: ReservationGate | None = None) -> None:
         self.recipe, self.ledger, self.record = recipe, ledger, record
+        self.gate = gate or ReservationGate(recipe, ledger, None, record, source_ids)
         self.store = collection.store
         self.index = HashIndex.from_ledger(ledger)
         self._on_stored = on_stored
@@ -120,7 +130,7 @@ class Ingest:
                                     compile_condition(src["keep_if"]))]
                                   if src.get("keep_if") else [])]
             for src, sid in zip(recipe.sources, source_ids, strict=True)}
-        self._source_names = {sid: (src["name"], src.get("kind"))
+        self._source_names = {sid: src["name"]
                               for src, sid in zip(recipe.sources, source_ids, strict=True)}
         everywhere = tuple(recipe.network.secret_params)
         self._secret_params = {sid: (*(src.get("secret_params") or ()), *everywhere)
@@ -131,14 +141,21 @@ class Ingest:
         """Record a candidate and decide what happens to it before anything is downloaded:
         the image to fetch, or None when it was decided here (done, skipped, stored locally,
         a duplicate by its image URL)."""
+        if getattr(c, "withdrawn", None):
+            self._withdrawn_by_archive(source_id, c)
+            return None
         registered = self._register(source_id, c)
         if registered is None:
             return None
         item_id, spdx_id, image_url = registered
+        statement = None if spdx_id else find_statement(c.licence_raw, c.licence_url)
         ok, reason = licence_allowed(spdx_id, self.recipe.licences.allow,
-                                     self.recipe.licences.allow_unknown)
+                                     self.recipe.licences.allow_unknown, statement)
         if not ok:
-            detail = licence_detail(c.licence_raw, c.licence_url, spdx_id)
+            detail = (f"licence {c.licence_raw or c.licence_url!r} is the rights statement "
+                      f"{statement.code} ({statement.name}), not in the allowlist (add "
+                      f"\"rs:{statement.code}\" to allow it)" if statement and not spdx_id
+                      else licence_detail(c.licence_raw, c.licence_url, spdx_id))
             self.record.finish(item_id, "skipped", reason, detail)
             return None
         unmet = self._unmet_condition(source_id, c, spdx_id)
@@ -151,6 +168,11 @@ class Ingest:
         if not c.image_url:
             self.record.finish(item_id, "rejected", "no_image_url",
                                "the source gave no image URL for this item")
+            return None
+        refusal = self.gate.admission(source_id, item_id, c.page_url)
+        if refusal is not None:  # reserved on the listing or detail page: nothing requested
+            self.record.finish(item_id, refusal.state, refusal.reason, refusal.detail,
+                               reservation_checks=self.gate.checks(item_id))
             return None
         with self._url_lock:
             if c.image_url in self._waiting:  # queued or in flight for an earlier item
@@ -218,7 +240,7 @@ class Ingest:
         conditions = self._conditions.get(source_id, ())
         if not conditions:
             return None
-        name, _ = self._source_names[source_id]
+        name = self._source_names[source_id]
         view = item_view(source=name, title=c.title, creator=c.creator, date=c.date,
                          licence=spdx_id, licence_text=c.licence_raw,
                          licence_url=c.licence_url, page_url=c.page_url,
@@ -239,6 +261,8 @@ class Ingest:
             "image_url": c.image_url, "page_url": c.page_url, "title": c.title,
             "creator": c.creator, "licence_raw": c.licence_raw, "licence_url": c.licence_url,
             "spdx_id": licence.spdx_id, "date": c.date, "metadata": c.metadata or None,
+            "rights_statement": None if licence.spdx_id else _statement_code(c),
+            "size_request": getattr(c, "size_request", None),
             "crop_box": list(c.crop_box) if c.crop_box else None,
             "local_path": shown_name(str(c.local_path)) if c.local_path else None,
             "run_id": self.record.run_id,
@@ -255,13 +279,36 @@ class Ingest:
         if row and self._gone_for_good(row):
             self.record.count("given_up")
             return None
+        if row and upkeep_queries.item_is_withdrawn(self.ledger, row["id"]):
+            self.record.count("withdrawn")  # taken out on request: never fetched again
+            return None
         if row:
             item_id = row["id"]
             self.ledger.update_item(item_id, **fields)
         else:
             item_id = self.ledger.add_item(source_id, c.source_key, fields)
         self._item_source[item_id] = source_id
+        self.gate.register(item_id, source_id)
         return item_id, licence.spdx_id, fields["image_url"]
+
+    def _withdrawn_by_archive(self, source_id: int, c: Any) -> None:
+        """The archive says it withdrew the record: an item we have is marked (state
+        ``withdrawn_by_archive``, reason ``deleted_in_archive``; its file and provenance
+        stay) with a ledger note; a record we never had is only counted."""
+        row = self.ledger.item_by_key(source_id, c.source_key)
+        if row is None:
+            self.record.count("withdrawn_unseen")
+            return
+        if row["state"] == WITHDRAWN_BY_ARCHIVE:
+            self.record.count("already_done")
+            return
+        was = f"{row['state']}" + (f" ({row['reason']})" if row.get("reason") else "")
+        self.record.finish(row["id"], WITHDRAWN_BY_ARCHIVE, "deleted_in_archive",
+                           f"{c.withdrawn}; was {was}")
+        self.ledger.add_note(WITHDRAWN_BY_ARCHIVE,
+                             f"item {row['id']} ({c.source_key}) was withdrawn by the archive: "
+                             f"{c.withdrawn}; it was {was}",
+                             run_id=self.record.run_id, source_id=source_id)
 
     def _gone_for_good(self, row: dict[str, Any]) -> bool:
         """A failed item whose image the server said is gone (404/410) in GONE_RUNS runs is
@@ -307,7 +354,8 @@ class Ingest:
             self._scan_sha[(source_id, c.source_key)] = sha
         licence = normalise_licence(c.licence_raw, c.licence_url)
         self.ingest_file(item_id, licence.spdx_id, tmp, sha,
-                         url=shown_name(str(c.local_path or "")), **extra)
+                         url=shown_name(str(c.local_path or "")),
+                         reservation_checks=self.gate.checks(item_id, local=True), **extra)
 
     def _unreadable(self, item_id: int, c: Any, exc: OSError) -> None:
         """A local file that could not be copied fails its item; a full or broken store
@@ -338,9 +386,18 @@ class Ingest:
                                       max_pixels=images.max_pixels,
                                       min_side=images.min_side,
                                       min_aspect=images.min_aspect,
-                                      max_aspect=images.max_aspect, full_decode=False)
+                                      max_aspect=images.max_aspect, full_decode=False,
+                                      transparent=images.transparent,
+                                      enlarged=images.enlarged)
             except ImageRejected as exc:
                 self.record.finish(item_id, "rejected", exc.reason, exc.detail, **extra)
+                return
+            refusal = self.gate.in_file(item_id, url, facts.rights)
+            web = (url or "").lower().startswith(("http://", "https://"))
+            extra = {**extra, "reservation_checks": self.gate.checks(item_id, local=not web)}
+            if refusal is not None:  # IPTC Data Mining in the file: the temp file goes
+                self.record.finish(item_id, refusal.state, refusal.reason, refusal.detail,
+                                   **extra)
                 return
             with self._lock:
                 row = self.ledger.file(sha)
@@ -377,12 +434,15 @@ class Ingest:
             self.ledger.update_item(verdict.old_id, **plan.old_item)
         self.record.recount(plan.was, "duplicate")
 
-    def _near_verdict(self, item_id: int, sha: str, facts: ImageFacts,
+    def _near_verdict(self, item_id: int, sha: str, facts: ImageFacts, path: Path,
                       ) -> Keep | Demote | NearCopy:
-        """Look up the stored look-alikes of a new file and let dedup decide."""
+        """Look up the stored look-alikes of a new file, keep those the second look
+        confirms (collector.checks.likeness) and let dedup decide."""
         near = [m for m in self.index.nearest(facts.phash, facts.phash_mirror,
                                               self.recipe.images.near_distance)
-                if m.sha256 != sha]
+                if m.sha256 != sha and "blank" not in facts.flags]  # blank: no shape to match
+        if near:
+            near = self._confirmed(near, path)
         candidates = []
         for m in near:
             first = (self.ledger.file(m.sha256) or {}).get("first_item_id")
@@ -397,6 +457,27 @@ class Ingest:
                                   original["state"] if original else None,
                                   drop=self.recipe.images.near_duplicates == "drop")
 
+    def _confirmed(self, near: list[NearMatch], path: Path) -> list[NearMatch]:
+        """The pHash look-alikes the second look agrees with (a stored file that cannot be
+        read is not confirmed: the new file is kept, nothing is lost)."""
+        try:
+            look = look_at_file(path)
+        except IMAGE_ERRORS:
+            return []
+
+        def stored_look(key: str) -> Look | None:
+            found = self.store.find(key)
+            try:
+                return look_at_file(found) if found else None
+            except IMAGE_ERRORS:
+                return None
+
+        kinds = {m.sha256: ("mirror" if m.mirrored else "same") for m in near}
+        agreed = {c.key for c in confirm(
+            look, [(m.sha256, m.distance, kinds[m.sha256]) for m in near], stored_look,
+            limit=len(near))}
+        return [m for m in near if m.sha256 in agreed]
+
     def _store_new(self, item_id: int, spdx_id: str | None, path: Path, sha: str,
                    facts: ImageFacts, extra: dict[str, Any], *, recovered: bool = False) -> None:
         """Store a new file, or attach ``item_id`` to a file registered by rebuild-ledger
@@ -406,7 +487,7 @@ class Ingest:
         if conflict:
             flags.append("licence_conflict")
         state, reason, detail = "stored", None, conflict
-        verdict = self._near_verdict(item_id, sha, facts)
+        verdict = self._near_verdict(item_id, sha, facts, path)
         if isinstance(verdict, NearCopy):
             extra = {**extra, "duplicate_of": verdict.original_id,
                      "near_distance": verdict.distance, "near_mirrored": verdict.mirrored}
@@ -470,3 +551,9 @@ def _file_row(path: Path, facts: ImageFacts, item_id: int, flags: list[str]) -> 
     """The files row of a new file (without its sha256)."""
     return {"size": path.stat().st_size, **facts.file_columns(), "first_item_id": item_id,
             "flags": flags}
+
+
+def _statement_code(c: Any) -> str | None:
+    """The RightsStatements.org statement id the candidate's rights name, or None."""
+    found = find_statement(c.licence_raw, c.licence_url)
+    return found.code if found else None

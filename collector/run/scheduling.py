@@ -16,6 +16,8 @@ the collection folder's error log; never ``finished``.
 from __future__ import annotations
 
 import contextlib
+import hashlib
+import json
 import queue
 import signal
 import threading
@@ -30,7 +32,8 @@ from typing import Any, Protocol
 
 from collector import __version__
 from collector import sources as adapters
-from collector.config.recipe import Recipe, check_stop_options, parse_clock, parse_duration
+from collector.config.recipe import Recipe
+from collector.config.stop_times import check_stop_options, parse_clock, parse_duration
 from collector.errors import (
     CollectorError,
     FetchError,
@@ -44,7 +47,8 @@ from collector.errors import (
 )
 from collector.run.ingest import Ingest, Job
 from collector.run.record import NullProgress, Progress, RunRecord, secret_values
-from collector.sources.base import PageFetcher
+from collector.run.reservations import ReservationGate
+from collector.sources.base import ListingState, PageFetcher
 from collector.storage.collection import Collection
 from collector.storage.ledger import Ledger, utc_now
 from collector.storage.ledger_repair import backup_ledger
@@ -142,6 +146,12 @@ class RunResult:
         return 1 if self.outcome.startswith("failed") else 0
 
 
+def config_sha256(source: Mapping[str, Any]) -> str:
+    """SHA-256 of a source table's canonical JSON: what a remembered listing state belongs to."""
+    text = json.dumps(source, sort_keys=True, separators=(",", ":"), default=str)
+    return hashlib.sha256(text.encode("utf-8")).hexdigest()
+
+
 class Terminated(KeyboardInterrupt):
     """SIGTERM arrived: the run ends like a Ctrl-C (files in flight finished, run marked
     interrupted)."""
@@ -156,6 +166,16 @@ class _Note:
     kind: str
     url: str | None
     message: str
+
+
+def _import_before_threads() -> None:
+    """Import the scipy submodules the run's threads use (the pHash's DCT, the scan
+    splitter's ndimage and spatial) here, before any thread starts: first imports of two scipy
+    submodules from two threads at once can fail inside scipy ("partially initialized module",
+    its submodules import each other), which ended demo gathers as internal errors."""
+    import scipy.fft
+    import scipy.ndimage
+    import scipy.spatial  # noqa: F401
 
 
 class Gatherer:
@@ -181,11 +201,16 @@ class Gatherer:
         self._workers: list[threading.Thread] = []
         self._lock = threading.RLock()
         self._stored_this_run = 0
-        self._source_ids = [ledger.source_id(src["name"], src["kind"], src)
+        self._reached: dict[int, str] = {}  # source id -> what its complete listing remembered
+        self._source_ids = [ledger.source_id(src["name"], src["kind"], src,
+                                             tuple(src.get("former_names") or ()))
                             for src in recipe.sources]
+        self._config_sha = {sid: config_sha256(src)
+                            for src, sid in zip(recipe.sources, self._source_ids, strict=True)}
         self.record = RunRecord(ledger, self.progress, secret_values(recipe))
+        self.gate = ReservationGate(recipe, ledger, fetcher, self.record, self._source_ids)
         self.ingest = Ingest(collection, recipe, ledger, self.record, self._source_ids,
-                             on_stored=self._stored_one)
+                             on_stored=self._stored_one, gate=self.gate)
         self.dispatch = dispatch
         if dispatch is not None:
             dispatch.attach(self)
@@ -238,7 +263,12 @@ class Gatherer:
                 signal.signal(signal.SIGTERM, previous)
 
     def _run(self, options: dict[str, Any] | None) -> RunResult:
+        _import_before_threads()
         self.run_id = self.ledger.start_run(self.recipe.sha256, options or {}, __version__)
+        if self.recipe.text:  # recipe history: the text once per sha256, secrets hidden
+            self.ledger.add_row("recipes", {"sha256": self.recipe.sha256,
+                                            "text": self.recipe.kept_text(),
+                                            "first_used_at": utc_now()})
         if self.fetcher is not None and hasattr(self.fetcher, "run_id"):
             self.fetcher.run_id = self.run_id  # its fetches rows name the run
         self.progress.event("run_started", run_id=self.run_id)
@@ -256,6 +286,7 @@ class Gatherer:
             for q in list(self._queues.values()):
                 q.put(None)  # no more work: each worker ends after its queue drains
             self._wait(self._workers)
+            self._keep_listing_states()
         except KeyboardInterrupt as exc:
             terminated = isinstance(exc, Terminated)
             self.request_stop("interrupted")
@@ -337,12 +368,18 @@ class Gatherer:
                                  source_id=source_id)
             self.progress.event("note", source=source["name"], note=n.kind, message=n.message)
 
+        state = ListingState(self.ledger.listing_state(source_id, self._config_sha[source_id]))
         try:
-            for candidate in adapters.iter_candidates(source, self.fetcher, note,
-                                                      self.collection.root):
+            pages = self.gate.watching(self.fetcher, source_id)  # reservation signals
+            for candidate in adapters.iter_candidates(source, pages, note,
+                                                      self.collection.root, state):
                 if self._should_stop():
                     break
                 self._register(source_id, candidate)
+            else:
+                if state.reached is not None:
+                    with self._lock:
+                        self._reached[source_id] = state.reached
         except HostParked as exc:
             note(_Note("host_parked", exc.url, str(exc)))
         except (StoreError, LedgerError) as exc:  # the disk or the ledger: nothing can go on
@@ -353,6 +390,23 @@ class Gatherer:
             note(_Note("source_error", None, str(exc)))
         except Exception as exc:  # a bug, not the archive's fault: the run fails loudly
             self._internal_error(f"the listing of source {source['name']!r}", exc)
+
+    def _keep_listing_states(self) -> None:
+        """After every worker is done: keep what each complete listing remembered (see
+        sources.base.ListingState), unless the run is stopping or items of the source are
+        left to try again, which a listing of changes only would not bring back."""
+        if self.stop_event.is_set() or self.fatal is not None:
+            return
+        for source_id, value in self._reached.items():
+            left = self.ledger.unsettled_items(source_id, self.run_id)
+            if left:
+                self.ledger.add_note(
+                    "listing_state_kept", f"{left} item(s) of this source are to be tried "
+                    "again, so the next run lists from the same point as this one",
+                    run_id=self.run_id, source_id=source_id)
+                continue
+            self.ledger.set_listing_state(source_id, value, self._config_sha[source_id],
+                                          self.run_id)
 
     def _register(self, source_id: int, c: Any) -> None:
         """Admit a candidate (see :meth:`Ingest.admit`); an image to fetch goes to its host."""
@@ -426,6 +480,11 @@ class Gatherer:
     def _fetch_and_ingest(self, job: Job) -> None:
         if self.fetcher is None:
             raise RuntimeError("this run has no fetcher, yet an image needs one")
+        refusal = self.gate.before_image(job.item_id, job.url)  # before any image byte
+        if refusal is not None:
+            self.record.finish(job.item_id, refusal.state, refusal.reason, refusal.detail,
+                               reservation_checks=self.gate.checks(job.item_id))
+            return
         try:
             download = self.fetcher.download(job.url, self.store.incoming_dir,
                                              item_id=job.item_id,
@@ -449,5 +508,13 @@ class Gatherer:
             return
         if download.path is None or download.sha256 is None:
             raise RuntimeError(f"the fetcher returned no file for {job.url}")
+        refusal = self.gate.after_download(job.item_id, download.final_url,
+                                           getattr(download, "headers", {}))
+        if refusal is not None:  # reserved in the image's own header fields: not kept
+            download.path.unlink(missing_ok=True)
+            self.record.finish(job.item_id, refusal.state, refusal.reason, refusal.detail,
+                               reservation_checks=self.gate.checks(job.item_id))
+            return
         self.ingest.ingest_file(job.item_id, job.spdx_id, download.path, download.sha256,
-                                content_type=download.content_type, url=download.final_url)
+                                content_type=download.content_type, url=download.final_url,
+                                reservation_checks=self.gate.checks(job.item_id))

@@ -52,6 +52,49 @@ def scan(hashes: np.ndarray, phash: int, mirror: int | None,
     return sorted(found, key=lambda f: (f[1], f[2], f[0]))
 
 
+# Crops: the pHash of a copy cropped to 80-90 % per side lies 12-30 bits from the original's,
+# so crop candidates come from a loose radius and only the closest few go to the second look
+# (collector.checks.likeness), which searches the crop box. Our own values, set on
+# bench/trace_quality.py (common practice, no source).
+CROP_DISTANCE = 26
+CROP_KEEP = 16
+
+
+def scan_turns(hashes: np.ndarray, turns: dict[str, int], max_distance: int,
+               crop_distance: int = CROP_DISTANCE,
+               crop_keep: int = CROP_KEEP) -> list[tuple[int, int, str]]:
+    """Candidates for the second look, as (row, distance, kind): every row within
+    ``max_distance`` of one of the query's turned hashes (``turns``: some or all of the 8 of
+    collector.checks.phash.TURNS; kind: the turn, closest first), then the ``crop_keep``
+    closest rows within ``crop_distance`` of the upright hash (kind "crop") that are not
+    candidates already.
+
+    One XOR and popcount pass per turn over every stored hash (about 0.5 ms per pass at
+    1,000,000 hashes, bench/trace.py)."""
+    if not len(hashes) or featureless(turns["same"]):
+        return []
+    best: dict[int, tuple[int, str]] = {}
+    loose = np.zeros(0, dtype=np.intp)
+    upright = None
+    for turn, query in turns.items():
+        distances = np.bitwise_count(hashes ^ np.uint64(query))
+        for row in np.flatnonzero(distances <= max_distance).tolist():
+            d = int(distances[row])
+            if row not in best or d < best[row][0]:
+                best[row] = (d, turn)
+        if turn == "same" and crop_keep > 0:
+            upright = distances
+            loose = np.flatnonzero((distances > max_distance) & (distances <= crop_distance))
+    near = sorted(((row, d, turn) for row, (d, turn) in best.items()),
+                  key=lambda f: (f[1], f[2] != "same", f[0]))
+    if upright is None or not len(loose) or crop_keep <= 0:
+        return near
+    if len(loose) > crop_keep:  # the closest few, without sorting every loose row
+        loose = loose[np.argpartition(upright[loose], crop_keep)[:crop_keep]]
+    crops = sorted((int(upright[row]), int(row)) for row in loose if int(row) not in best)
+    return near + [(row, d, "crop") for d, row in crops]
+
+
 @dataclass(frozen=True)
 class NearMatch:
     """A stored file whose hash is close to the query."""
@@ -106,6 +149,16 @@ class HashIndex:
                        for row, distance, mirrored in found
                        if (key := keys[row]) is not None]  # None: removed
         return sorted(matches, key=lambda m: (m.distance, m.mirrored, m.sha256))
+
+    def candidates(self, turns: dict[str, int], max_distance: int,
+                   crops: bool = True) -> list[tuple[str, int, str]]:
+        """(sha256, distance, kind) for the second look (see :func:`scan_turns`)."""
+        with self._lock:
+            hashes = self._hashes[: self._count]
+            keys = self._keys
+            found = scan_turns(hashes, turns, max_distance,
+                               crop_keep=CROP_KEEP if crops else 0)
+            return [(key, d, kind) for row, d, kind in found if (key := keys[row]) is not None]
 
 
 # --- the persistent hash file ---------------------------------------------------------------
@@ -174,6 +227,13 @@ class HashFile:
         found = scan(self.hashes, phash, mirror, max_distance)
         return [NearMatch(self.keys[row].tobytes().hex(), distance, mirrored)
                 for row, distance, mirrored in found]
+
+    def candidates(self, turns: dict[str, int], max_distance: int,
+                   crops: bool = True) -> list[tuple[str, int, str]]:
+        """(sha256, distance, kind) for the second look (see :func:`scan_turns`)."""
+        found = scan_turns(self.hashes, turns, max_distance,
+                           crop_keep=CROP_KEEP if crops else 0)
+        return [(self.keys[row].tobytes().hex(), d, kind) for row, d, kind in found]
 
     # -- opening -----------------------------------------------------------------------------
     @classmethod

@@ -10,8 +10,7 @@ into a file. :meth:`Ledger.open` refuses a file without one (0 bytes, no ``schem
 table, not SQLite) with :class:`~collector.errors.LedgerUnusable`: a lost ledger silently
 re-created beside a full store would make every stored file look like crash debris.
 
-All methods are thread-safe (one connection, one lock): the gather worker pool writes from
-several threads.
+All methods are thread-safe (one connection, one lock): the gather's threads share it.
 """
 
 from __future__ import annotations
@@ -35,7 +34,7 @@ from collector.storage.safe_paths import refuse_ledger_links
 SCHEMA_VERSION = max(MIGRATIONS)  # the newest migration; a file records what it has
 
 JSON_COLUMNS = {"options", "config", "metadata", "crop_box", "exif", "rights", "flags",
-                "effective_budget"}
+                "effective_budget", "size_request"}
 
 
 def utc_now() -> str:
@@ -100,10 +99,8 @@ class Ledger:
     @classmethod
     def open(cls, path: Path, *, readonly: bool = False) -> Ledger:
         """Open an existing ledger, applying any pending migrations (unless read-only).
-
         A file that is empty, is not SQLite or has no ``schema_version`` table is refused
-        with LedgerUnusable (exit 2): it is never given a fresh schema here.
-        """
+        with LedgerUnusable (exit 2): it is never given a fresh schema here."""
         if not path.is_file():
             raise LedgerError(
                 f"no ledger at {path}; is this a collection folder? Create one with "
@@ -302,6 +299,14 @@ class Ledger:
         except sqlite3.DatabaseError as exc:
             raise LedgerUnusable(f"{source} cannot be read as a ledger ({exc})") from exc
 
+    def columns(self, table: str) -> frozenset[str]:
+        """The column names of ``table`` (a read of an older schema asks first)."""
+        return self._columns(table)
+
+    def has_table(self, table: str) -> bool:
+        """Whether the ledger has ``table`` (absent before its migration ran)."""
+        return table in self._tables()
+
     def _columns(self, table: str) -> frozenset[str]:
         # Under the lock: the connection is shared by threads, and a PRAGMA read running
         # while another thread writes the same table fails with "database table is locked".
@@ -320,11 +325,11 @@ class Ledger:
 
     # Hot paths use plain SQL: sqlite-utils inspects the table on every call, which cost
     # ~25 statements per stored file in the ingest benchmark.
-    def _insert(self, table: str, row: dict[str, Any], *, ignore: bool = False) -> int:
+    def _insert(self, table: str, row: dict[str, Any], *, ignore: bool = False,
+                replace: bool = False) -> int:
         data = self._checked(table, row)
-        names = ", ".join(data)
-        marks = ", ".join("?" for _ in data)
-        verb = "INSERT OR IGNORE" if ignore else "INSERT"
+        names, marks = ", ".join(data), ", ".join("?" for _ in data)
+        verb = "INSERT OR IGNORE" if ignore else "INSERT OR REPLACE" if replace else "INSERT"
         with self._lock, self._translate(f"write to {table}"), self._write():
             cur = self._conn.execute(f"{verb} INTO {table} ({names}) VALUES ({marks})",
                                      list(data.values()))
@@ -352,10 +357,17 @@ class Ledger:
         self._update("runs", run_id, {"ended_at": utc_now(), "outcome": outcome})
 
     # -- sources -----------------------------------------------------------------------------
-    def source_id(self, name: str, kind: str, config: dict[str, Any]) -> int:
-        """The id of the named source, created or updated with its current config."""
+    def source_id(self, name: str, kind: str, config: dict[str, Any],
+                  former_names: tuple[str, ...] = ()) -> int:
+        """The id of the named source, created or updated with its current config. A source
+        renamed in the recipe (``former_names``) keeps its row, so its items stay its own."""
         with self._lock, self._translate("write to sources"), self._conn:
             rows = self.db.execute("SELECT id FROM sources WHERE name = ?", [name]).fetchall()
+            for former in former_names:
+                if rows:
+                    break
+                rows = self.db.execute("SELECT id FROM sources WHERE name = ?",
+                                       [former]).fetchall()
             row = rows[0] if rows else None
             encoded = _encode({"name": name, "kind": kind, "config": config})
             if row:
@@ -406,8 +418,30 @@ class Ledger:
         self._update("files", sha256, fields)
 
     def known_sha256s(self) -> set[str]:
-        """Every sha256 the ledger has a files row for."""
-        return {r["sha256"] for r in self.query("SELECT sha256 FROM files")}
+        """Every sha256 the ledger has a files row for whose bytes should be in the store
+        (a file withdrawn with its bytes deleted on purpose is not expected there)."""
+        if "removed_at" not in self._columns("files"):  # before migration 4 (read-only)
+            return {r["sha256"] for r in self.query("SELECT sha256 FROM files")}
+        return {r["sha256"] for r in self.query(
+            "SELECT sha256 FROM files WHERE removed_at IS NULL")}
+
+    # -- upkeep: withdrawals, recipe texts, re-check observations (schema 7) -----------------
+    def add_row(self, table: str, row: dict[str, Any]) -> int:
+        """Append a row to withdrawals, observations or recipes (a known recipe is kept), or
+        keep a page for re-use (kept_pages: a page kept before under the URL is replaced)."""
+        if table not in ("withdrawals", "observations", "recipes", "kept_pages"):
+            raise LedgerError(f"add_row does not write to {table}")
+        return self._insert(table, row, ignore=table == "recipes",
+                            replace=table == "kept_pages")
+
+    def undo_withdrawal(self, withdrawal_id: int, fields: dict[str, Any]) -> None:
+        """Record that a withdrawal was undone (``undone_at``, ``undone_by``, ``undo_note``)."""
+        self._update("withdrawals", withdrawal_id, fields)
+
+    def mark_file_removed(self, sha256: str, when: str | None) -> None:
+        """The stored bytes of ``sha256`` were deleted on purpose (``when``), or, with None,
+        the row no longer claims that (call inside :meth:`transaction`)."""
+        self._update("files", sha256, {"removed_at": when})
 
     # -- hosts -------------------------------------------------------------------------------
     def get_host(self, host: str) -> dict[str, Any] | None:
@@ -417,8 +451,7 @@ class Ledger:
 
     def last_contact(self, host: str) -> str | None:
         """When the latest request to ``host`` ended (ISO 8601 UTC), in any run, or None."""
-        value = self.scalar("SELECT max(ended_at) FROM fetches WHERE host = ?", (host,))
-        return str(value) if value else None
+        return self.scalar("SELECT max(ended_at) FROM fetches WHERE host = ?", (host,)) or None
 
     def put_host(self, host: str, **fields: Any) -> None:
         """Insert or update a host's row."""
@@ -491,6 +524,10 @@ class Ledger:
                                       "run_id": run_id, "source_id": source_id,
                                       "created_at": utc_now()})
 
+    def record_signal(self, **fields: Any) -> int:
+        """Record one reservation signal seen (collector.run.reservations)."""
+        return self._insert("reservation_signals", {"seen_at": utc_now(), **fields})
+
     # -- what the run asks and changes -------------------------------------------------------
     # The questions and multi-row changes of collector.run (ingest and prepared_run); the run
     # itself holds no SQL.
@@ -527,6 +564,32 @@ class Ledger:
             self._conn.execute("UPDATE items SET file_sha256 = NULL WHERE file_sha256 = ?",
                                [sha256])
             self._conn.execute("DELETE FROM files WHERE sha256 = ?", [sha256])
+
+    def listing_state(self, source_id: int, config_sha256: str) -> str | None:
+        """What the source's last complete listing remembered for the next run, or None
+        (also when the source's table has changed since: a new set, prefix or URL lists
+        everything again)."""
+        return self.scalar("SELECT value FROM listing_states WHERE source_id = ? AND "
+                           "config_sha256 = ?", (source_id, config_sha256))
+
+    def set_listing_state(self, source_id: int, value: str, config_sha256: str,
+                          run_id: int) -> None:
+        """Keep what this run's complete listing of the source remembered."""
+        with self._lock, self._translate("write to listing_states"), self._write():
+            self._conn.execute(
+                "INSERT INTO listing_states (source_id, value, config_sha256, run_id, saved_at) "
+                "VALUES (?, ?, ?, ?, ?) ON CONFLICT(source_id) DO UPDATE SET "
+                "value = excluded.value, config_sha256 = excluded.config_sha256, "
+                "run_id = excluded.run_id, saved_at = excluded.saved_at",
+                (source_id, value, config_sha256, run_id, utc_now()))
+
+    def unsettled_items(self, source_id: int, run_id: int) -> int:
+        """How many items of the source this run left to try again (pending, failed,
+        deferred): a listing that only reports changes would not list them again."""
+        count = self.scalar(
+            "SELECT count(*) FROM items WHERE source_id = ? AND run_id = ? AND state IN "
+            "('pending', 'failed', 'deferred')", (source_id, run_id))
+        return int(count or 0)
 
     def mark_killed_runs(self) -> None:
         """Runs still marked ``running`` end as ``killed: did not end cleanly`` (called with

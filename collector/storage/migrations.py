@@ -84,5 +84,104 @@ def _migration_3(db: sqlite_utils.Database) -> None:
             files.add_column(name, kind)
 
 
+def _migration_4(db: sqlite_utils.Database) -> None:
+    """What a source's last complete listing handed on to the next run
+    (``sources.base.ListingState``, e.g. the OAI-PMH responseDate to harvest from), one row
+    per source, with the SHA-256 of the source table it was listed with; a source without a
+    row, or whose table changed since, lists everything."""
+    if "listing_states" in db.table_names():  # a ledger mended by hand may have it already
+        return
+    db.table("listing_states").create({
+        "source_id": int, "value": str, "config_sha256": str, "run_id": int, "saved_at": str,
+    }, pk="source_id", foreign_keys=[("source_id", "sources", "id")])
+
+
+def _migration_5(db: sqlite_utils.Database) -> None:
+    """An item's RightsStatements.org statement, kept apart from its SPDX licence: the
+    statement's id (``NoC-US``, ``InC``...; collector.checks.rights_statements); and how the
+    size of its image was chosen when the source negotiated it (``size_request``, JSON: the
+    IIIF image service, its full size, the size asked for and why). Rows recorded before stay
+    NULL (not read)."""
+    items = db.table("items")
+    for name in ("rights_statement", "size_request"):
+        if name not in items.columns_dict:
+            items.add_column(name, str)
+
+
+def _migration_6(db: sqlite_utils.Database) -> None:
+    """Reservations against text-and-data mining: every signal seen (``reservation_signals``:
+    where, the field, its raw value, what we decided, when), the mechanisms checked for each
+    item (``items.reservation_checks``, a JSON list) and each origin's tdmrep.json, cached
+    like robots.txt (``hosts.tdmrep_*``)."""
+    db.table("reservation_signals").create({
+        "id": int, "run_id": int, "item_id": int, "source_id": int, "place": str, "url": str,
+        "name": str, "value": str, "meaning": str, "decision": str, "seen_at": str,
+    }, pk="id", if_not_exists=True)  # a ledger mended by hand may have it already
+    db.table("reservation_signals").create_index(["item_id"], if_not_exists=True)
+    items, hosts = db.table("items"), db.table("hosts")
+    if "reservation_checks" not in items.columns_dict:
+        items.add_column("reservation_checks", str)
+    present = hosts.columns_dict
+    for name, kind in (("tdmrep_url", str), ("tdmrep_fetched_at", str), ("tdmrep_state", str),
+                       ("tdmrep_status", int), ("tdmrep_detail", str), ("tdmrep_body", str)):
+        if name not in present:
+            hosts.add_column(name, kind)
+
+
+def _migration_7(db: sqlite_utils.Database) -> None:
+    """Keeping a published collection honest over time.
+
+    ``withdrawals``: a file or item taken out of every release, with the reason, who asked and
+    when; undoing one fills ``undone_at`` (the row stays). ``files.removed_at``: the bytes were
+    deleted from the store on purpose (the row and its facts stay). ``recipes``: the full text
+    of every recipe a run used, by its sha256 (``runs.recipe_sha256``). ``observations``: what
+    a re-check saw for an item, one row per look, never overwritten.
+    """
+    # A ledger mended by hand may have some of these already: each is added only if absent.
+    tables = set(db.table_names())
+    if "withdrawals" not in tables:
+        db.table("withdrawals").create({
+            "id": int, "item_id": int, "sha256": str, "target": str, "reason": str,
+            "note": str, "asked_by": str, "asked_on": str, "recorded_at": str,
+            "bytes_deleted": int, "undone_at": str, "undone_by": str, "undo_note": str,
+        }, pk="id")
+        db.table("withdrawals").create_index(["item_id"])
+        db.table("withdrawals").create_index(["sha256"])
+    if "removed_at" not in db.table("files").columns_dict:
+        db.table("files").add_column("removed_at", str)
+    if "recipes" not in tables:
+        db.table("recipes").create({"sha256": str, "text": str, "first_used_at": str},
+                                   pk="sha256")
+    if "observations" not in tables:
+        db.table("observations").create({
+            "id": int, "run_id": int, "item_id": int, "observed_at": str, "finding": str,
+            "status": int, "old_value": str, "new_value": str, "new_sha256": str,
+            "detail": str,
+        }, pk="id")
+        db.table("observations").create_index(["item_id"])
+
+
+def _migration_8(db: sqlite_utils.Database) -> None:
+    """Pixel facts for training data: the share of pixels that are not fully opaque, and the
+    estimated native size of an image that looks enlarged (its own size otherwise). Rows stored
+    before stay NULL (not measured)."""
+    files = db.table("files")
+    present = files.columns_dict
+    for name, kind in (("transparent_share", float), ("native_width", int),
+                       ("native_height", int)):
+        if name not in present:
+            files.add_column(name, kind)
+
+
+def _migration_9(db: sqlite_utils.Database) -> None:
+    """Pages a source asked to keep for re-use across runs (``kept_pages``: a IIIF image
+    service's info.json), with when they were fetched; re-asked once older than the source
+    says (``Fetcher.get_page(keep_for=...)``)."""
+    db.table("kept_pages").create({
+        "url": str, "fetched_at": str, "status": int, "content_type": str, "body": bytes,
+    }, pk="url", if_not_exists=True)
+
+
 MIGRATIONS: dict[int, Callable[[sqlite_utils.Database], None]] = {
-    1: _migration_1, 2: _migration_2, 3: _migration_3}
+    1: _migration_1, 2: _migration_2, 3: _migration_3, 4: _migration_4, 5: _migration_5,
+    6: _migration_6, 7: _migration_7, 8: _migration_8, 9: _migration_9}

@@ -11,15 +11,11 @@ translate ``sqlite3.Error`` into :class:`~collector.errors.LedgerError` in one p
 
 from __future__ import annotations
 
-import functools
-import json
 from collections.abc import Iterator
 from dataclasses import dataclass
-from typing import Any, NamedTuple, TypedDict
+from typing import Any, NamedTuple
 
-from collector.errors import CollectorError
 from collector.storage.ledger import Ledger
-from collector.urls import host_key
 
 ACCEPTED_STATES = ("stored", "near_duplicate")
 LOCAL_HOST = "(local files)"
@@ -97,7 +93,7 @@ def ledger_totals(ledger: Ledger) -> LedgerTotals:
         "FROM files f LEFT JOIN items i ON i.id = f.first_item_id GROUP BY 1, 2 ORDER BY 1, 2"))
     placeholders = ", ".join("?" for _ in ACCEPTED_STATES)
     licences = tuple((r[0], int(r[1])) for r in ledger.rows(
-        f"SELECT coalesce(spdx_id, 'unknown') AS spdx, count(*) AS n FROM items "
+        f"SELECT {_licence_key(ledger, '')} AS spdx, count(*) AS n FROM items "
         f"WHERE state IN ({placeholders}) GROUP BY spdx ORDER BY n DESC", ACCEPTED_STATES))
     last = ledger.query("SELECT * FROM runs ORDER BY id DESC LIMIT 1")
     last_run = last[0] if last else None
@@ -141,8 +137,11 @@ def listed_source_names(ledger: Ledger) -> set[str]:
 
 
 def counts(ledger: Ledger) -> tuple[int, int]:
-    """(files rows, items rows): how much the ledger knows."""
-    return (int(ledger.scalar("SELECT count(*) FROM files") or 0),
+    """(files rows whose bytes belong in the store, items rows): how much the ledger knows
+    (a file withdrawn with its bytes deleted on purpose is not expected in the store)."""
+    kept = ("SELECT count(*) FROM files WHERE removed_at IS NULL"
+            if "removed_at" in ledger.columns("files") else "SELECT count(*) FROM files")
+    return (int(ledger.scalar(kept) or 0),
             int(ledger.scalar("SELECT count(*) FROM items") or 0))
 
 
@@ -152,6 +151,16 @@ def stored_jpeg_photo(ledger: Ledger) -> str | None:
         "SELECT f.sha256 FROM files f JOIN items i ON i.id = f.first_item_id "
         "WHERE f.format = 'JPEG' AND i.state = 'stored' AND i.image_url IS NOT NULL "
         "AND f.width >= 256 ORDER BY i.id LIMIT 1")
+
+
+def kept_page(ledger: Ledger, url: str) -> dict[str, Any] | None:
+    """The page kept for re-use under ``url`` (fetched_at, status, content_type, body), or
+    None (also for a ledger from before ``kept_pages``)."""
+    if not ledger.has_table("kept_pages"):
+        return None
+    rows = ledger.query("SELECT fetched_at, status, content_type, body FROM kept_pages "
+                        "WHERE url = ?", (url,))
+    return rows[0] if rows else None
 
 
 # --- trace ------------------------------------------------------------------------------------
@@ -225,368 +234,16 @@ def files_after(ledger: Ledger, rowid: int) -> list[tuple[Any, ...]]:
                        "ORDER BY rowid", (rowid,))
 
 
-# --- the datasheet ----------------------------------------------------------------------------
-_ACCEPTED_FROM = (
-    "FROM files f JOIN items i ON i.id = f.first_item_id AND i.file_sha256 = f.sha256 "
-    "JOIN sources s ON s.id = i.source_id "
-    f"WHERE i.state IN ({_STATES_IN})"
-)
-
-
-def _host_of(url: str | None) -> str:
-    """The host key of a URL, for grouping by host in SQL. A host depends only on the scheme
-    and the authority, so host_key runs once per distinct ``scheme://authority`` (cached):
-    the datasheet calls this for every accepted file."""
-    if not url:
-        return LOCAL_HOST
-    scheme, sep, rest = url.partition("://")
-    if not sep:
-        return _host_of_origin(url)
-    authority = rest.split("/", 1)[0].split("?", 1)[0].split("#", 1)[0]
-    return _host_of_origin(f"{scheme}://{authority}/")
-
-
-@functools.lru_cache(maxsize=4096)
-def _host_of_origin(origin: str) -> str:
-    try:
-        return host_key(origin)
-    except CollectorError:
-        return "?"
-
-
-def _pairs(ledger: Ledger, sql: str, params: tuple[Any, ...] = ()) -> dict[str, int]:
-    return {str(k): int(v) for k, v in ledger.rows(sql, params)}
-
-
-def _count(ledger: Ledger, where: str) -> int:
-    """Accepted files that also match ``where`` (an SQL condition)."""
-    return int(ledger.scalar(f"SELECT count(*) {_ACCEPTED_FROM} AND {where}") or 0)
-
-
-def _median(ledger: Ledger, column: str) -> float | None:
-    """The median (mean of the two middle values for an even count), computed in SQL."""
-    n = ledger.scalar(f"SELECT count({column}) {_ACCEPTED_FROM}")
-    if not n:
-        return None
-    value = ledger.scalar(f"SELECT avg(v) FROM (SELECT {column} AS v {_ACCEPTED_FROM} "
-                          f"AND {column} IS NOT NULL ORDER BY v LIMIT ? OFFSET ?)",
-                          (2 - n % 2, (n - 1) // 2))
-    return float(value)
-
-
-class ItemFacts(TypedDict):
-    """Items by state and by state/reason."""
-
-    total: int
-    by_state: dict[str, int]
-    by_reason: dict[str, int]
-
-
-class Span(TypedDict):
-    """Smallest, median and largest of a dimension of the accepted files."""
-
-    min: int | None
-    median: float | None
-    max: int | None
-
-
-class AcceptedFacts(TypedDict):
-    """The accepted files (stored and near duplicates kept): sizes, kinds, origins."""
-
-    files: int
-    bytes: int
-    formats: dict[str, int]
-    modes: dict[str, int]
-    by_licence: dict[str, int]
-    by_source: dict[str, int]
-    by_host: dict[str, int]
-    stored: int
-    near_kept: int
-    crops: int
-    width: Span
-    height: Span
-
-
-class MissingFacts(TypedDict):
-    """Accepted files without a title, creator, licence, page URL or date."""
-
-    no_title: int
-    no_creator: int
-    no_licence: int
-    no_page_url: int
-    no_date: int
-
-
-class FlaggedFacts(TypedDict):
-    """Accepted files carrying a personal-data flag or the licence-conflict flag."""
-
-    personal: int
-    conflict: int
-
-
-class Timeframe(TypedDict):
-    """First and last moment of gathering."""
-
-    start: str | None
-    end: str | None
-
-
-class RequestFacts(TypedDict):
-    """Every request the collection made and how hosts answered."""
-
-    total: int
-    attempts: int
-    status_429: int
-    status_503: int
-    errors: int
-    robots_disallowed: int
-    bytes: int
-    by_purpose: dict[str, int]
-
-
-class HostFacts(TypedDict):
-    """One host: its robots.txt, the budget in force, and how it answered."""
-
-    host: str
-    robots_url: str | None
-    robots_status: int | None
-    robots_fetched_at: str | None
-    effective_budget: dict[str, Any]  # {} when none was recorded or it is not JSON
-    requests: int
-    status_429: int
-    status_503: int
-    robots_disallowed: int
-
-
-class SourceCounts(NamedTuple):
-    """One source: its kind, its items and its accepted files."""
-
-    name: str
-    kind: str
-    items: int
-    accepted: int
-
-
-class RunFacts(TypedDict):
-    """How many runs, when, with which tool versions and recipes, and how they ended."""
-
-    count: int
-    first_started: str | None
-    last_ended: str | None
-    tool_versions: list[str]
-    recipes: int
-    outcomes: dict[str, int]
-
-
-class ReleaseRow(NamedTuple):
-    """One accepted file with its item and source, as the release files need it."""
-
-    sha256: str
-    ext: str
-    mime: str | None
-    format: str | None
-    width: int | None
-    height: int | None
-    size: int | None
-    flags: str | None  # JSON text as stored
-    stored_at: str | None
-    source: str
-    source_key: str
-    page_url: str | None
-    image_url: str | None
-    title: str | None
-    creator: str | None
-    licence_raw: str | None
-    spdx_id: str | None
-    licence_url: str | None
-    fetched_at: str | None  # the newest 2xx image request
-
-
-def item_facts(ledger: Ledger) -> ItemFacts:
-    """Items by state (most first) and by state/reason."""
-    return {
-        "total": ledger.scalar("SELECT count(*) FROM items") or 0,
-        "by_state": _pairs(ledger, "SELECT state, count(*) FROM items GROUP BY state "
-                                   "ORDER BY count(*) DESC, state"),
-        "by_reason": _pairs(ledger, "SELECT state || '/' || reason, count(*) FROM items "
-                                    "WHERE reason IS NOT NULL GROUP BY state, reason "
-                                    "ORDER BY state, reason"),
-    }
-
-
-def accepted_facts(ledger: Ledger) -> AcceptedFacts:
-    """Counts over the accepted files; hosts are named as ``host_key`` names them."""
-    ledger.sql_function("host_of", _host_of)
-
-    def span(dim: str) -> Span:
-        lo, hi = ledger.rows(f"SELECT min(f.{dim}), max(f.{dim}) {_ACCEPTED_FROM}")[0]
-        return {"min": lo, "median": _median(ledger, f"f.{dim}"), "max": hi}
-
-    def by(column: str) -> dict[str, int]:
-        return _pairs(ledger, f"SELECT {column}, count(*) {_ACCEPTED_FROM} "
-                              "GROUP BY 1 ORDER BY 2 DESC, 1")
-
-    return {
-        "files": ledger.scalar(f"SELECT count(*) {_ACCEPTED_FROM}") or 0,
-        "bytes": ledger.scalar(f"SELECT coalesce(sum(f.size), 0) {_ACCEPTED_FROM}") or 0,
-        "formats": by("f.format"), "modes": by("f.mode"),
-        "by_licence": by("coalesce(i.spdx_id, 'unknown')"), "by_source": by("s.name"),
-        "by_host": by("host_of(i.image_url)"),
-        "stored": _count(ledger, "i.state = 'stored'"),
-        "near_kept": _count(ledger, "i.state = 'near_duplicate'"),
-        "crops": _count(ledger, "i.parent_sha256 IS NOT NULL"),
-        "width": span("width"), "height": span("height"),
-    }
-
-
-def missing_facts(ledger: Ledger) -> MissingFacts:
-    """Accepted files with an empty title, creator, licence, page URL or date."""
-    return {
-        "no_title": _count(ledger, "coalesce(trim(i.title), '') = ''"),
-        "no_creator": _count(ledger, "coalesce(trim(i.creator), '') = ''"),
-        "no_licence": _count(ledger, "i.spdx_id IS NULL"),
-        "no_page_url": _count(ledger, "coalesce(i.page_url, '') = ''"),
-        "no_date": _count(ledger, "coalesce(i.date, '') = ''"),
-    }
-
-
-def flag_counts(ledger: Ledger) -> dict[str, int]:
-    """Accepted files per flag name (the part before a ':'), most first."""
-    flagged_from = _ACCEPTED_FROM.replace("FROM files f", "FROM files f, json_each(f.flags) j",
-                                          1)
-    return _pairs(ledger, "SELECT CASE WHEN instr(j.value, ':') > 0 THEN "
-                          "substr(j.value, 1, instr(j.value, ':') - 1) ELSE j.value END, "
-                          f"count(*) {flagged_from} GROUP BY 1 ORDER BY 2 DESC, 1")
-
-
-def flagged_facts(ledger: Ledger, personal: tuple[str, ...], conflict: str) -> FlaggedFacts:
-    """Accepted files with any of the ``personal`` flags, and with the ``conflict`` flag."""
-    marks = ", ".join("?" for _ in personal)
-    return {
-        "personal": int(ledger.scalar(
-            f"SELECT count(*) {_ACCEPTED_FROM} AND EXISTS (SELECT 1 FROM json_each(f.flags) "
-            f"WHERE value IN ({marks}))", personal) or 0),
-        "conflict": int(ledger.scalar(
-            f"SELECT count(*) {_ACCEPTED_FROM} AND EXISTS (SELECT 1 FROM json_each(f.flags) "
-            "WHERE value = ?)", (conflict,)) or 0),
-    }
-
-
-def near_dropped(ledger: Ledger) -> int:
-    """Near duplicates whose file was not kept."""
-    return int(ledger.scalar("SELECT count(*) FROM items WHERE state = 'near_duplicate' "
-                             "AND file_sha256 IS NULL") or 0)
-
-
-def timeframe(ledger: Ledger) -> Timeframe:
-    """First and last moment of gathering: request starts and file-store times."""
-    start, end = ledger.rows(
-        "SELECT min(t), max(t) FROM (SELECT started_at AS t FROM fetches "
-        "WHERE started_at IS NOT NULL UNION ALL SELECT stored_at FROM files "
-        "WHERE stored_at IS NOT NULL)")[0]
-    return {"start": start, "end": end}
-
-
-def request_facts(ledger: Ledger) -> RequestFacts:
-    """Requests, attempts, 429/503 answers, errors, robots refusals, bytes, purposes."""
-    def n(where: str) -> int:
-        return int(ledger.scalar(f"SELECT count(*) FROM fetches {where}") or 0)
-
-    return {
-        "total": n("WHERE status IS NOT NULL"), "attempts": n(""),
-        "status_429": n("WHERE status = 429"), "status_503": n("WHERE status = 503"),
-        "errors": n("WHERE error IS NOT NULL"),
-        "robots_disallowed": n("WHERE robots_verdict = 'disallowed'"),
-        "bytes": ledger.scalar("SELECT coalesce(sum(bytes), 0) FROM fetches") or 0,
-        "by_purpose": _pairs(ledger, "SELECT coalesce(purpose, '?'), count(*) FROM fetches "
-                                     "GROUP BY 1 ORDER BY 2 DESC, 1"),
-    }
-
-
-def _json_object(text: str | None) -> dict[str, Any]:
-    try:
-        value: Any = json.loads(text) if text else {}
-    except ValueError:
-        return {}
-    return value  # as stored: the ledger writes a JSON object here
-
-
-def host_facts(ledger: Ledger) -> list[HostFacts]:
-    """Every host row with its request counts, by host name."""
-    def per_host(where: str) -> str:
-        return f"(SELECT count(*) FROM fetches x WHERE x.host = h.host AND {where})"
-
-    refused = per_host("x.robots_verdict = 'disallowed'")
-
-    return [{"host": r[0], "robots_url": r[1], "robots_status": r[2],
-             "robots_fetched_at": r[3], "effective_budget": _json_object(r[4]),
-             "requests": r[5],
-             "status_429": r[6], "status_503": r[7], "robots_disallowed": r[8]}
-            for r in ledger.rows(
-                "SELECT h.host, h.robots_url, h.robots_status, h.robots_fetched_at, "
-                f"h.effective_budget, {per_host('x.status IS NOT NULL')}, "
-                f"{per_host('x.status = 429')}, {per_host('x.status = 503')}, "
-                f"{refused} FROM hosts h ORDER BY h.host")]
-
-
-def resolution_cells(ledger: Ledger, step: int) -> list[list[int]]:
-    """Accepted files counted on a grid of ``step`` x ``step`` pixel cells: [w, h, n]."""
-    return [[w, h, n] for w, h, n in ledger.rows(
-        f"SELECT (f.width / ?) * ?, (f.height / ?) * ?, count(*) {_ACCEPTED_FROM} "
-        "AND f.width IS NOT NULL AND f.height IS NOT NULL GROUP BY 1, 2 ORDER BY 1, 2",
-        (step, step, step, step))]
-
-
-def requests_per(ledger: Ledger, width: int) -> dict[str, int]:
-    """Requests per time slot: timestamps cut to their first ``width`` characters."""
-    return _pairs(ledger, "SELECT substr(started_at, 1, ?), count(*) FROM fetches "
-                          "WHERE started_at IS NOT NULL GROUP BY 1 ORDER BY 1", (width,))
-
-
-def stored_per(ledger: Ledger, width: int) -> dict[str, int]:
-    """Accepted files per time slot of storing (timestamps cut to ``width`` characters)."""
-    return _pairs(ledger, f"SELECT substr(f.stored_at, 1, ?), count(*) {_ACCEPTED_FROM} "
-                          "AND f.stored_at IS NOT NULL GROUP BY 1 ORDER BY 1", (width,))
-
-
-def source_counts(ledger: Ledger) -> list[SourceCounts]:
-    """Every source by name, with its items and its accepted files."""
-    return [SourceCounts(name, kind, n_items or 0, n_acc or 0)
-            for name, kind, n_items, n_acc in ledger.rows(
-                "SELECT s.name, s.kind, (SELECT count(*) FROM items i "
-                "WHERE i.source_id = s.id), (SELECT count(*) FROM items i JOIN files f "
-                "ON f.first_item_id = i.id AND f.sha256 = i.file_sha256 "
-                f"WHERE i.source_id = s.id AND i.state IN ({_STATES_IN})) "
-                "FROM sources s ORDER BY s.name")]
-
-
-def run_facts(ledger: Ledger) -> RunFacts:
-    """Runs: count, first start, last end, tool versions, distinct recipes, outcomes."""
-    count, first, last = ledger.rows(
-        "SELECT count(*), min(started_at), max(coalesce(ended_at, started_at)) "
-        "FROM runs")[0]
-    return {
-        "count": count or 0, "first_started": first, "last_ended": last,
-        "tool_versions": [r[0] for r in ledger.rows(
-            "SELECT DISTINCT tool_version FROM runs WHERE tool_version IS NOT NULL ORDER BY 1")],
-        "recipes": ledger.scalar("SELECT count(DISTINCT recipe_sha256) FROM runs") or 0,
-        "outcomes": _pairs(ledger, "SELECT outcome, count(*) FROM runs GROUP BY outcome "
-                                   "ORDER BY 2 DESC, 1"),
-    }
-
-
-def note_counts(ledger: Ledger) -> dict[str, int]:
-    """Source notes per kind, most first."""
-    return _pairs(ledger, "SELECT kind, count(*) FROM notes GROUP BY kind ORDER BY 2 DESC")
-
-
-def release_rows(ledger: Ledger) -> Iterator[ReleaseRow]:
-    """Stream every accepted file with its item and source, by sha256."""
-    for row in ledger.stream(
-            "SELECT f.sha256, f.ext, f.mime, f.format, f.width, f.height, f.size, f.flags, "
-            "f.stored_at, s.name, i.source_key, i.page_url, i.image_url, i.title, i.creator, "
-            "i.licence_raw, i.spdx_id, i.licence_url, "
-            "(SELECT max(x.started_at) FROM fetches x WHERE x.item_id = i.id AND "
-            " x.purpose = 'image' AND x.status BETWEEN 200 AND 299) "
-            f"{_ACCEPTED_FROM} ORDER BY f.sha256"):
-        yield ReleaseRow(*row)
+# --- how a licence is counted (status and the datasheet) -----------------------------------
+def _statement_column(ledger: Ledger, prefix: str = "i.") -> str:
+    """The items' rights_statement column, or NULL in a ledger older than schema 4 (read-only
+    commands do not migrate)."""
+    names = {r[0] for r in ledger.rows("SELECT name FROM pragma_table_info('items')")}
+    return f"{prefix}rights_statement" if "rights_statement" in names else "NULL"
+
+
+def _licence_key(ledger: Ledger, prefix: str = "i.") -> str:
+    """SQL for how an item's licence is counted: its SPDX id, else ``rs:<id>`` of its
+    RightsStatements.org statement, else 'unknown'."""
+    return (f"coalesce({prefix}spdx_id, 'rs:' || {_statement_column(ledger, prefix)}, "
+            "'unknown')")

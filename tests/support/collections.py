@@ -2,13 +2,16 @@
 
 - :func:`one_page_recipe`: the demo archive's smoke recipe over one listing page of 10 items,
   without an item limit (a quick web gather against ``fresh_demo_server``).
+- :func:`grid_picture`: a distinct small picture per seed, as PNG or JPEG bytes.
 - :func:`scans_collection`: a collection over a few generated scans, gathered once, no network.
 """
 
 from __future__ import annotations
 
+import io
 from pathlib import Path
 
+import numpy as np
 from PIL import Image
 
 from collector.demo_site.recipes import render
@@ -25,6 +28,16 @@ def one_page_recipe(port: int) -> str:
     return (text.replace("max_items = 10", "max_items = 0")
             .replace("max_pages = 5", "max_pages = 1")
             .replace('per_page = "20"', 'per_page = "10"'))
+
+
+def grid_picture(seed: int, fmt: str = "PNG") -> bytes:
+    """A distinct 160x120 picture for each seed, as file bytes: a seeded random 8x6 grid of grey
+    levels, enlarged (unrelated pictures, far apart in perceptual hash)."""
+    grid = np.random.default_rng(seed).integers(0, 256, (6, 8), dtype=np.uint8)
+    img = Image.fromarray(grid).resize((160, 120), Image.Resampling.NEAREST).convert("RGB")
+    out = io.BytesIO()
+    img.save(out, fmt, **({"quality": 85} if fmt == "JPEG" else {}))
+    return out.getvalue()
 
 
 def scan_image(seed: int, size: tuple[int, int] = (96, 64)) -> Image.Image:

@@ -79,8 +79,9 @@ class FakeFetcher:
 
     def get_page(self, url: str, *, purpose: str = "listing", item_id: int | None = None,
                  params: Mapping[str, str] | None = None, headers: Mapping[str, str] | None = None,
-                 secret_params: Iterable[str] = ()) -> Page:
-        """The page at url (params added), after redirects; FetchError unless 2xx."""
+                 secret_params: Iterable[str] = (), keep_for: float = 0.0) -> Page:
+        """The page at url (params added), after redirects; FetchError unless 2xx. Nothing
+        is kept between calls (``keep_for`` is the real fetcher's ledger cache)."""
         secrets = tuple(secret_params)
         self.calls.append(Call(url, purpose, dict(params) if params else None, secrets))
         # ${NAME} filled (or refused as unset_variable) exactly as the real fetcher does.

@@ -1,15 +1,15 @@
-"""Cost of the colour and tone facts (collector.checks.pixel_facts) against a bare decode.
+"""Cost of the colour and tone facts (collector.checks.colour_facts) against a bare decode.
 
 Generates ~1 MP JPEGs (varied content: gradients, shapes, noise), then per file times (best of
 several rounds, one core):
 
   bare decode          Image.open + load() at full size (what any ingest pays)
   draft + facts        the 1/8-scale draft decode the hash uses, then every pixel fact on it
-  facts alone          pixel_facts on that draft image
+  facts alone          colour_facts on that draft image
 
 and prints the totals and the ratio facts / bare decode. Target: facts alone <= 0.25x a bare
 decode (they run on the draft-size image, never on a second full decode).
-Run: .venv/bin/python bench/pixel_facts.py [--files N]
+Run: .venv/bin/python bench/colour_facts.py [--files N]
 """
 
 from __future__ import annotations
@@ -21,7 +21,7 @@ import time
 import numpy as np
 from PIL import Image, ImageDraw
 
-from collector.checks.pixel_facts import pixel_facts
+from collector.checks.colour_facts import colour_facts
 
 
 def picture(seed: int) -> bytes:
@@ -69,11 +69,11 @@ def main() -> None:
         for data in files:
             img = Image.open(io.BytesIO(data))
             img.draft("RGB", (img.width // 8, img.height // 8))
-            pixel_facts(img)
+            colour_facts(img)
 
     def facts_alone() -> None:
         for img in drafts:
-            pixel_facts(img)
+            colour_facts(img)
 
     t_bare, t_both, t_facts = best(bare), best(draft_and_facts), best(facts_alone)
     n = len(files)

@@ -1,0 +1,87 @@
+"""Any pixel format Pillow opens, made into one greyscale picture for comparing by look.
+
+Pillow's modes (Pillow handbook, "Concepts: Modes"): ``1``, ``L``, ``P``, ``RGB``, ``RGBA``,
+``CMYK``, ``YCbCr``, ``LAB``, ``HSV``, ``I`` (32-bit signed), ``F`` (32-bit float), ``LA``,
+``PA``, ``RGBa``/``La`` (premultiplied), ``I;16``/``I;16B``/``I;16L``/``I;16N`` (16-bit).
+``Image.convert("L")`` is right for the 8-bit colour modes, but it clips the others: a 16-bit
+value of 40,000 becomes 255, so every 16-bit picture used to turn (nearly) white and hash like a
+blank page. Here:
+
+- 8-bit modes without transparency: ``convert("L")`` exactly as before (ITU-R 601-2 luma,
+  Pillow handbook ``Image.convert``), so the pHash of an 8-bit RGB image stays imagehash's bits;
+- transparency (an alpha band, or a palette/``transparency`` entry): composited onto white
+  first, so the picture compared is the one a viewer shows on a page (common practice, no
+  source); a fully opaque alpha band changes nothing;
+- ``LAB``: its ``L`` band (lightness, 0..255 in Pillow);
+- 16-bit, ``I`` and ``F``: scaled to 0..255 by the full range of their type (16-bit: 0..65535;
+  ``F``: 0..1), or by the image's own range where values fall outside it; kept as floats (mode
+  ``F``) so nothing is quantised before the hash;
+- several frames: the first (Pillow opens a file on frame 0; the count is a recorded fact).
+
+A picture whose grey levels hardly vary is ``blank``: it has no shape to compare, so it never
+counts as a copy of anything (:func:`is_blank`).
+"""
+
+from __future__ import annotations
+
+import numpy as np
+from PIL import Image
+
+__all__ = ["BLANK_SPREAD", "has_transparency", "hash_ready", "is_blank"]
+
+_EIGHT_BIT = frozenset({"1", "L", "P", "RGB", "RGBX", "CMYK", "YCbCr", "HSV"})
+_WHITE = 255
+# Below this spread of grey levels (0..255 scale, max - min of a 16x16 box-averaged thumbnail,
+# so JPEG noise and the dither of a flat colour saved as 1-bit or palette are averaged away) a
+# picture is blank: a flat fill, a blank page, a white scan bed. Common practice, no source:
+# 3 levels is under what a viewer can tell apart on screen.
+BLANK_SPREAD = 3.0
+
+
+def has_transparency(im: Image.Image) -> bool:
+    """Whether the image has an alpha band or a transparent palette/colour entry."""
+    return im.mode in ("RGBA", "LA", "PA", "RGBa", "La") or "transparency" in im.info
+
+
+def _flatten_on_white(im: Image.Image) -> Image.Image:
+    """Transparent pixels shown on white, then greyscale (L)."""
+    rgba = im.convert("RGBA")
+    page = Image.new("RGBA", rgba.size, (_WHITE, _WHITE, _WHITE, 255))
+    return Image.alpha_composite(page, rgba).convert("L")
+
+
+def _scaled_float(im: Image.Image) -> Image.Image:
+    """A 16-bit, ``I`` or ``F`` image scaled to 0..255 by its type's full range (mode F)."""
+    values = np.asarray(im, dtype=np.float64)
+    if values.size == 0:
+        return Image.new("F", im.size, 0.0)
+    lo, hi = float(np.nanmin(values)), float(np.nanmax(values))
+    if im.mode == "F":
+        nominal = (0.0, 1.0)
+    elif im.mode == "I" and hi <= 255:  # 8-bit data in a 32-bit container (fromarray)
+        nominal = (0.0, 255.0)
+    else:  # I;16*, and I holding 16-bit data (PNG and TIFF readers give either)
+        nominal = (0.0, 65535.0)
+    lo, hi = min(lo, nominal[0]), max(hi, nominal[1])  # outside the type's range: its own
+    scaled = (np.nan_to_num(values, nan=lo) - lo) * (255.0 / (hi - lo))
+    return Image.fromarray(scaled.astype(np.float32), "F")
+
+
+def hash_ready(im: Image.Image) -> Image.Image:
+    """The greyscale picture to hash and compare: mode ``L``, or ``F`` on a 0..255 scale."""
+    mode = im.mode
+    if mode in _EIGHT_BIT and not has_transparency(im):
+        return im.convert("L")
+    if has_transparency(im):
+        return _flatten_on_white(im)
+    if mode == "LAB":
+        return im.getchannel("L")
+    if mode.startswith("I;16") or mode in ("I", "F"):
+        return _scaled_float(im)
+    return im.convert("RGB").convert("L")  # any other mode Pillow can turn into RGB
+
+
+def is_blank(grey: Image.Image) -> bool:
+    """Whether a :func:`hash_ready` picture is flat (see BLANK_SPREAD)."""
+    small = np.asarray(grey.resize((16, 16), Image.Resampling.BOX), dtype=np.float64)
+    return bool(small.size == 0 or float(np.ptp(small)) < BLANK_SPREAD)
