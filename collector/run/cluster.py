@@ -102,14 +102,18 @@ def connect(address: str | None = None, *, local_workers: int = 0, processes: bo
             ) -> Iterator[Any]:
     """A Dask client: on the scheduler at ``address``, or on a local cluster of
     ``local_workers`` workers (processes unless ``processes`` is False). ``tls`` is
-    (CA file, certificate, key) for a scheduler that requires TLS."""
+    (CA file, certificate, key) for a scheduler that requires TLS. Every worker runs
+    without Dask's profiler (collector.run.cluster_worker says why)."""
     require_distributed()
+    import dask
     from distributed import Client, LocalCluster
     from distributed.security import Security
 
     if local_workers:
-        with LocalCluster(n_workers=local_workers, threads_per_worker=threads,
-                          processes=processes, dashboard_address=None) as cluster, \
+        with dask.config.set({"distributed.worker.profile.enabled": False}), \
+                LocalCluster(n_workers=local_workers, threads_per_worker=threads,
+                             processes=processes, dashboard_address=None,
+                             **({"host": "127.0.0.1"} if processes else {})) as cluster, \
                 Client(cluster) as client:
             check_workers(client, address=None)
             yield client
@@ -128,9 +132,13 @@ def connect(address: str | None = None, *, local_workers: int = 0, processes: bo
 
 
 def check_workers(client: Any, *, address: str | None) -> None:
-    """Every worker must run the same collector and Dask versions as the coordinator."""
+    """The profiler goes off on every worker, now and later (cluster_worker.NoProfiler);
+    every worker must run the same collector and Dask versions as the coordinator."""
     import distributed
 
+    from collector.run.cluster_worker import NoProfiler, profiler_off
+
+    client.register_plugin(NoProfiler())
     try:
         client.wait_for_workers(1, timeout=WORKERS_TIMEOUT)
     except TimeoutError:
@@ -141,6 +149,9 @@ def check_workers(client: Any, *, address: str | None) -> None:
         if facts != mine:
             raise ClusterError(f"worker {worker} runs {facts}, this machine {mine}: install the "
                                "same versions on every machine of the cluster")
+    for worker, off in client.run(profiler_off).items():
+        if not off:  # pragma: no cover - the plugin above turns it off
+            raise ClusterError(f"worker {worker} still runs Dask's profiler")
 
 
 @dataclass(frozen=True)

@@ -117,6 +117,7 @@ class JobResult:
     sha256: str | None = None
     content_type: str | None = None
     final_url: str | None = None
+    headers: dict[str, str] = field(default_factory=dict)  # the image answer's header fields
 
 
 @dataclass
@@ -219,7 +220,8 @@ def fetch_one(fetcher: Fetcher, item_id: int, url: str, secrets: tuple[str, ...]
     if download.path is None or download.sha256 is None:
         raise RuntimeError(f"the fetcher returned no file for {url}")
     result = JobResult(item_id, "file", sha256=download.sha256,
-                       content_type=download.content_type, final_url=download.final_url)
+                       content_type=download.content_type, final_url=download.final_url,
+                       headers=dict(download.headers))
     if shared:
         result.path = str(download.path)
     else:
