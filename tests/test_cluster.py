@@ -8,50 +8,18 @@ starts a real scheduler and two worker processes and kills one mid-run.
 from __future__ import annotations
 
 import itertools
-import os
 from collections import Counter
 from pathlib import Path
 from typing import Any
 
 import pytest
+from support.cluster import is_image_request, wrong_items
 
 from collector.demo_site import DemoServer
 from collector.demo_site.recipes import render
 from collector.run.cluster import connect, run_on_cluster
 from collector.run.gather import prepared_run
 from collector.storage.collection import Collection, init_collection
-
-pytest.importorskip("distributed")
-# Known defect (branch h20): a cluster run sometimes never ends (a listing thread waits for a
-# host's task while that task keeps sleeping in the budget); until it is found, these tests
-# run only when asked, so the suite cannot hang.
-pytestmark = pytest.mark.skipif(os.environ.get("COLLECTOR_CLUSTER_TESTS") != "1",
-                                reason="cluster runs can hang (known defect); set "
-                                       "COLLECTOR_CLUSTER_TESTS=1 to run")
-
-
-def _states(col: Collection) -> dict[tuple[str, str], tuple[str, str | None]]:
-    with col.ledger(readonly=True) as ledger:
-        rows = ledger.query("SELECT s.name AS source, i.source_key, i.page_url, i.state, "
-                            "i.reason FROM items i JOIN sources s ON s.id = i.source_id")
-    keyed = {}
-    for row in rows:
-        keyed[(row["source"], row["source_key"])] = (row["state"], row["reason"])
-        if row["page_url"]:
-            keyed[(row["source"], "page:" + row["page_url"])] = (row["state"], row["reason"])
-    return keyed
-
-
-def _wrong(col: Collection, server: DemoServer) -> list[Any]:
-    keyed = _states(col)
-    wrong = []
-    for item in server.manifest["items"]:
-        got = keyed.get((item["source"], item["key"]))
-        if got is None and item.get("page_url"):
-            got = keyed.get((item["source"], "page:" + server.fill(item["page_url"])))
-        if got != (item["state"], item["reason"]):
-            wrong.append((item["source"], item["key"], item["state"], item["reason"], got))
-    return wrong
 
 
 @pytest.fixture(scope="module")
@@ -75,7 +43,7 @@ def test_cluster_run_ends_as_the_manifest_says(cluster_demo_run, demo_server) ->
     assert result.outcome == "finished"
     assert batches, "no image was fetched on the cluster"
     assert all(b.shared for b in batches)  # one machine: the worker sees the folder
-    assert _wrong(col, demo_server) == []
+    assert wrong_items(col, demo_server) == []
 
 
 def test_cluster_run_is_as_polite_as_a_local_one(cluster_demo_run) -> None:
@@ -91,8 +59,7 @@ def test_cluster_run_is_as_polite_as_a_local_one(cluster_demo_run) -> None:
         gaps = [b - a for a, b in itertools.pairwise(times)]
         floor = 0.2 if host == 1 else 0.1
         assert not gaps or min(gaps) >= 0.98 * floor, (host, min(gaps))
-    images = Counter(r.path for r in log if r.status == 200 and "/api/" not in r.path
-                     and not r.path.endswith(("/", ".html", "robots.txt")))
+    images = Counter(r.path for r in log if is_image_request(r))
     assert [p for p, n in images.items() if n > 1] == []
 
 

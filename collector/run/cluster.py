@@ -26,9 +26,9 @@ from __future__ import annotations
 import contextlib
 import hashlib
 import os
-import queue
 import threading
 import time
+import uuid
 from collections import deque
 from collections.abc import Callable, Iterator
 from dataclasses import dataclass, field
@@ -56,7 +56,8 @@ INSTALL_HINT = ("install the cluster extra first: pip install 'polite-image-coll
                 "versions)")
 LOCAL_THREADS = 32  # threads per local worker process: tasks mostly wait for their host
 WORKERS_TIMEOUT = 60.0  # s to wait for the first worker of an existing scheduler
-HANDLER_THREADS = 3  # coordinator threads that write results and ingest files
+STOP_GRACE = 60.0  # s after a stop that tasks in flight may take to come back
+TASK_LIMIT = 600.0  # s after which a task that has not come back is given up (left pending)
 
 
 def require_distributed() -> None:
@@ -193,12 +194,12 @@ class ClusterDispatch:
         self._cond = threading.Condition()
         self._lanes: dict[str, _Lane] = {}
         self._open = 0  # jobs put and not yet settled
-        self._done: queue.Queue[tuple[str, tuple[_Work, ...], Any] | None] = queue.Queue()
         self._handlers: list[threading.Thread] = []
         self._token: Path | None = None
-        # The futures in flight with their batches, kept until handled: a future nobody
-        # holds lets Dask forget its task.
-        self._futures: dict[str, tuple[Any, tuple[_Work, ...]]] = {}
+        # The futures in flight with their host, batch and submission time, kept until
+        # handled: a future nobody holds lets Dask forget its task.
+        self._futures: dict[str, tuple[Any, str, tuple[_Work, ...], float]] = {}
+        self._stopped_at: float | None = None
         self.g: Any = None
 
     # -- set-up --------------------------------------------------------------------------------
@@ -211,23 +212,40 @@ class ClusterDispatch:
         return GatedFetcher(fetcher, self)
 
     def _start(self) -> None:
-        """On the first job: the token file that tells a worker the folder is shared, and
-        the threads that handle results."""
+        """On the first job: the token file that tells a worker the folder is shared."""
         fd, self._token = self.g.store.new_temp()
         os.close(fd)
-        for n in range(HANDLER_THREADS):
-            t = threading.Thread(target=self._handle_loop, daemon=True, name=f"cluster-{n}")
-            t.start()
-            self._handlers.append(t)
 
     # -- jobs in -------------------------------------------------------------------------------
     def put(self, host: str, job: Job) -> None:
         """A job for ``host`` (called by the Gatherer instead of its host queue)."""
         with self._cond:
-            if not self._handlers:
+            if self._token is None:
                 self._start()
             self._open += 1
-        self._put(host, _Work(job, job.url))
+        work = _Work(job, job.url)
+        if not self._refused(host, work):
+            self._put(host, work)
+
+    def _refused(self, host: str, w: _Work) -> bool:
+        """Before any image byte, as the local run (Gatherer._fetch_and_ingest): a stopping
+        run leaves the job pending; the reservation gate may refuse the image (True)."""
+        item_id = w.job.item_id
+        refusal = None
+        try:
+            if not self.g._should_stop():
+                refusal = self.g.gate.before_image(item_id, w.job.url)
+                if refusal is None:
+                    return False
+                self.g.record.finish(item_id, refusal.state, refusal.reason, refusal.detail,
+                                     reservation_checks=self.g.gate.checks(item_id))
+        except (StoreError, LedgerError) as exc:
+            self.g._fail(exc)
+        except Exception as exc:
+            self.g._internal_error(f"the cluster admission for host {host}", exc,
+                                   item_id=item_id)
+        self._settled(w)
+        return True
 
     def _put(self, host: str, work: _Work) -> None:
         with self._cond:
@@ -238,35 +256,51 @@ class ClusterDispatch:
 
     def finish(self) -> None:
         """No more jobs come: wait until every job put is settled (after a stop, pending
-        jobs are left for the next run and the tasks in flight are finished)."""
+        jobs are left for the next run and the tasks in flight come back, or are given up
+        STOP_GRACE s after the stop: their jobs stay pending)."""
         with self._cond:
             hosts = list(self._lanes)
         for host in hosts:
             self._poke(host)
-        with self._cond:
-            while self._open > 0:
+        while True:
+            with self._cond:
+                if self._open <= 0:
+                    break
                 self._cond.wait(0.2)
-                if self.g._should_stop():
-                    self._cond.release()
-                    try:
-                        for host in list(self._lanes):
-                            self._poke(host)
-                    finally:
-                        self._cond.acquire()
-        for _ in self._handlers:
-            self._done.put(None)
-        for t in self._handlers:
-            t.join()
+            if self.g._should_stop():
+                for host in hosts_of(self._lanes, self._cond):
+                    self._poke(host)
+            self._expire()
+        for t in list(self._handlers):
+            t.join(STOP_GRACE)
         self._handlers.clear()
         if self._token is not None:
             self._token.unlink(missing_ok=True)
             self._token = None
 
+    def _expire(self) -> None:
+        """Give up tasks that have not come back: TASK_LIMIT s after their submission, or
+        STOP_GRACE s after the run was asked to stop. Their jobs are settled without an
+        outcome (left pending: the next run asks again)."""
+        now = time.monotonic()
+        if self.g.stop_event.is_set() and self._stopped_at is None:
+            self._stopped_at = now
+        late = self._stopped_at is not None and now - self._stopped_at > STOP_GRACE
+        with self._cond:
+            expired = [(k, entry) for k, entry in self._futures.items()
+                       if late or now - entry[3] > TASK_LIMIT]
+            for key, _ in expired:
+                self._futures.pop(key, None)
+        for _, (future, host, batch, _at) in expired:
+            with contextlib.suppress(Exception):
+                future.cancel()
+            self._release(host, batch, None)
+
     def in_flight(self, keys: Any) -> int:
         """How many images the tasks with these keys hold (a bench counts what a killed
         worker had in flight)."""
         with self._cond:
-            return sum(len(self._futures[k][1]) for k in keys if k in self._futures)
+            return sum(len(self._futures[k][2]) for k in keys if k in self._futures)
 
     def _poke(self, host: str) -> None:
         with self._cond:
@@ -322,29 +356,40 @@ class ClusterDispatch:
                          self.settings, self.g.run_id, ledger.get_host(host),
                          ledger.last_contact(host), str(self._token.parent), self._token.name,
                          carry, self.g.stop.deadline, self.force_bytes)
-        key = f"collector-{self.g.run_id}-{host}-{number}"
-        future = self.client.submit(fetch_batch, spec, pure=False, key=key)
+        # A key of its own for every submission: Dask treats two tasks with one key as one.
+        key = f"collector-{self.g.run_id}-{host}-{number}-{uuid.uuid4().hex}"
+        future = self.client.submit(fetch_batch, spec, pure=False, key=key, retries=0)
         with self._cond:
-            self._futures[key] = (future, batch)
-        future.add_done_callback(lambda f: self._done.put((host, batch, f)))
+            self._futures[key] = (future, host, batch, time.monotonic())
+        future.add_done_callback(self._arrived)
+
+    def _arrived(self, future: Any) -> None:
+        """A task came back (called on Dask's callback thread): handled on a thread of its
+        own, so a result that waits for a host (a coordinator request through
+        :meth:`listing`) never holds up the results it waits for."""
+        with self._cond:
+            entry = self._futures.pop(future.key, None)
+            if entry is None:
+                return  # given up already (_expire)
+            t = threading.Thread(target=self._handle_safely, args=(entry[1], entry[2], future),
+                                 daemon=True, name=f"cluster-{entry[1]}")
+            self._handlers = [h for h in self._handlers if h.is_alive()]
+            self._handlers.append(t)
+        t.start()
 
     # -- results -------------------------------------------------------------------------------
-    def _handle_loop(self) -> None:
-        while (entry := self._done.get()) is not None:
-            host, batch, future = entry
-            try:
-                self._handle(host, batch, future)
-            except Exception as exc:  # a bug while handling a result: the run fails loudly
-                self.g._internal_error(f"the cluster results of host {host}", exc)
-                self._release(host, batch, None)
+    def _handle_safely(self, host: str, batch: tuple[_Work, ...], future: Any) -> None:
+        try:
+            self._handle(host, batch, future)
+        except Exception as exc:  # a bug while handling a result: the run fails loudly
+            self.g._internal_error(f"the cluster results of host {host}", exc)
+            self._release(host, batch, None)
 
     def _handle(self, host: str, batch: tuple[_Work, ...], future: Any) -> None:
         from distributed import KilledWorker
 
-        with self._cond:
-            self._futures.pop(future.key, None)
         try:
-            result: BatchResult = future.result()
+            result: BatchResult = future.result(timeout=STOP_GRACE)
         except KilledWorker as exc:
             self._degrade(host, batch, exc)
             return
@@ -440,11 +485,25 @@ class ClusterDispatch:
         elif r.kind == "store":
             raise StoreError(r.detail)
         elif r.kind == "file":
-            assert r.sha256 is not None
-            path = Path(r.path) if r.path is not None else self._write(r)
-            self.g.ingest.ingest_file(job.item_id, job.spdx_id, path, r.sha256,
-                                      content_type=r.content_type, url=r.final_url)
+            self._file(job, r)
         stats.done += 1
+
+    def _file(self, job: Job, r: JobResult) -> None:
+        """A downloaded image: the reservation signals of its answer's header fields first
+        (as the local run), then the checks and the store (Ingest.ingest_file)."""
+        assert r.sha256 is not None and r.final_url is not None
+        gate = self.g.gate
+        refusal = gate.after_download(job.item_id, r.final_url, r.headers)
+        if refusal is not None:  # reserved in the image's own header fields: not kept
+            if r.path is not None:
+                Path(r.path).unlink(missing_ok=True)
+            self.g.record.finish(job.item_id, refusal.state, refusal.reason, refusal.detail,
+                                 reservation_checks=gate.checks(job.item_id))
+            return
+        path = Path(r.path) if r.path is not None else self._write(r)
+        self.g.ingest.ingest_file(job.item_id, job.spdx_id, path, r.sha256,
+                                  content_type=r.content_type, url=r.final_url,
+                                  reservation_checks=gate.checks(job.item_id))
 
     def _write(self, r: JobResult) -> Path:
         """A file returned as bytes, written into the store's incoming folder (fsynced)."""
@@ -495,6 +554,11 @@ class ClusterDispatch:
             try:
                 while lane.in_flight:
                     self._cond.wait(0.2)
+                    self._cond.release()
+                    try:
+                        self._expire()  # a task that never comes back is given up
+                    finally:
+                        self._cond.acquire()
             finally:
                 lane.wanting -= 1
             lane.listing += 1
@@ -506,6 +570,12 @@ class ClusterDispatch:
                 lane.listing -= 1
                 ready = self._take(host, lane) if self.g is not None else ((), [])
             self._launch(host, ready)
+
+
+def hosts_of(lanes: dict[str, _Lane], lock: threading.Condition) -> list[str]:
+    """The hosts with a lane, read under the dispatch's lock."""
+    with lock:
+        return list(lanes)
 
 
 class GatedFetcher:
