@@ -8,17 +8,23 @@ starts a real scheduler and two worker processes and kills one mid-run.
 from __future__ import annotations
 
 import itertools
+import os
+import signal
+import time
 from collections import Counter
 from pathlib import Path
 from typing import Any
 
 import pytest
 from support.cluster import is_image_request, wrong_items
+from support.collections import grid_picture
+from support.server import LoopbackServer, json_answer
 
 from collector.demo_site import DemoServer
 from collector.demo_site.recipes import render
 from collector.run.cluster import connect, run_on_cluster
 from collector.run.gather import prepared_run
+from collector.run.scheduling import StopRules
 from collector.storage.collection import Collection, init_collection
 
 
@@ -71,3 +77,69 @@ def test_cluster_run_writes_every_request_to_the_ledger(cluster_demo_run) -> Non
         rows = ledger.query("SELECT count(*) AS n FROM fetches WHERE status IS NOT NULL")
     assert rows[0]["n"] == len(log)
 
+
+
+RECIPE = '''contact = "x@example.org"
+[budgets]
+min_interval = 0.1
+[network]
+allow_addresses = ["127.0.0.1/32"]
+[[sources]]
+name = "leaves"
+kind = "json_api"
+url = "{url}"
+[sources.pagination]
+style = "none"
+[sources.fields]
+items = "results"
+id = "id"
+title = "title"
+licence = "licence"
+image_url = "image"
+'''
+
+
+def _terminate_once() -> Any:
+    """A batch hook that sends SIGTERM to this process once the run is under way (its first
+    batch came back)."""
+    sent: list[bool] = []
+
+    def hook(batch: Any) -> None:
+        if not sent:
+            sent.append(True)
+            os.kill(os.getpid(), signal.SIGTERM)
+
+    return hook
+
+
+@pytest.mark.parametrize("ask", ["sigterm", "time limit"])
+def test_a_cluster_run_asked_to_stop_stops(ask: str, tmp_path: Path) -> None:
+    """SIGTERM once the first batch is back, or the time limit 1.5 s into a run of 300 images
+    (30 s at 10 requests/s): the run ends within seconds (the task in flight finishes its
+    batch, about 5 s), as
+    interrupted (exit 143) or stopped; nothing failed and the rest stays pending for the next
+    run."""
+    with LoopbackServer("127.0.0.1") as server:
+        items = [{"id": str(n), "title": f"Leaf {n}", "licence": "CC0-1.0",
+                  "image": server.url(f"/img/{n}.png")} for n in range(300)]
+        for n in range(300):
+            server.route(f"/img/{n}.png", (200, grid_picture(n), {"Content-Type": "image/png"}))
+        server.route("/robots.txt", (404, b""))
+        server.route("/items", json_answer({"results": items}))
+        col = init_collection(tmp_path / "c", contact="x@example.org")
+        col.recipe_path.write_text(RECIPE.format(url=server.url("/items")))
+        with connect(local_workers=1, processes=False, threads=4) as client, \
+                prepared_run(col) as (recipe, ledger):
+            began = time.monotonic()
+            stop = StopRules(deadline=None if ask == "sigterm" else time.time() + 1.5)
+            result = run_on_cluster(col, recipe, ledger, client, stop=stop,
+                                    on_batch=_terminate_once() if ask == "sigterm" else None)
+            took = time.monotonic() - began
+    assert result.outcome == ("interrupted" if ask == "sigterm"
+                              else "stopped: the time limit was reached")
+    assert result.exit_code == (143 if ask == "sigterm" else 0)
+    assert took < 15, took  # 1.5 s + one batch of 50 at 0.1 s + start-up, with room
+    with col.ledger(readonly=True) as ledger:
+        rows = ledger.query("SELECT state, count(*) AS n FROM items GROUP BY state")
+    states = {r["state"]: r["n"] for r in rows}
+    assert set(states) <= {"stored", "pending"} and states.get("pending", 0) > 100, states
