@@ -55,6 +55,10 @@ INSTALL_HINT = ("install the cluster extra first: pip install 'polite-image-coll
                 " (it adds Dask distributed; every machine of the cluster needs the same "
                 "versions)")
 LOCAL_THREADS = 32  # threads per local worker process: tasks mostly wait for their host
+# A local cluster listens on loopback only, in-process ones too (TCP on 127.0.0.1, not Dask's
+# in-process transport, whose HTTP servers would listen on every address), and its
+# scheduler's HTTP server on a free port (Dask's default: 8787).
+LOOPBACK_HTTP = "127.0.0.1:0"
 WORKERS_TIMEOUT = 60.0  # s to wait for the first worker of an existing scheduler
 STOP_GRACE = 60.0  # s after a stop that tasks in flight may take to come back
 TASK_LIMIT = 600.0  # s after which a task that has not come back is given up (left pending)
@@ -113,8 +117,8 @@ def connect(address: str | None = None, *, local_workers: int = 0, processes: bo
     if local_workers:
         with dask.config.set({"distributed.worker.profile.enabled": False}), \
                 LocalCluster(n_workers=local_workers, threads_per_worker=threads,
-                             processes=processes, dashboard_address=None,
-                             **({"host": "127.0.0.1"} if processes else {})) as cluster, \
+                             processes=processes, dashboard_address=LOOPBACK_HTTP,
+                             protocol="tcp://", host="127.0.0.1") as cluster, \
                 Client(cluster) as client:
             check_workers(client, address=None)
             yield client
