@@ -37,7 +37,8 @@ from PIL import Image
 from collector.demo_site.loopback import LoopbackServer
 from collector.demo_site.requestlog import max_in_window
 from collector.fetching.fetcher import FetchSettings
-from collector.run.cluster import ClusterDispatch, connect
+from collector.run.cluster import ClusterDispatch
+from collector.run.cluster_setup import connect
 from collector.run.gather import prepared_run, run_prepared
 from collector.storage.collection import Collection, init_collection
 

@@ -197,8 +197,8 @@ def _gather_estimate(folder: Path, *, until: str | None, duration: str | None,
 def _cluster_options(address: str | None, local_workers: int | None,
                      tls: tuple[Path | None, ...]) -> dict[str, Any] | None:
     """gather --cluster / --local-workers / --tls-*: checked before anything starts; None
-    for a run on this machine alone (collector.run.cluster.cluster_options)."""
-    from collector.run.cluster import cluster_options
+    for a run on this machine alone (collector.run.cluster_setup.cluster_options)."""
+    from collector.run.cluster_setup import cluster_options
 
     return cluster_options(address, local_workers, tls)
 
@@ -241,7 +241,7 @@ def _cluster_client(engine: dict[str, Any] | None) -> Any:
     """A Dask client for the options of :func:`_cluster_options`, or a context of None."""
     if engine is None:
         return nullcontext(None)
-    from collector.run.cluster import connect
+    from collector.run.cluster_setup import connect
 
     return connect(**engine)
 

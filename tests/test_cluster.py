@@ -22,7 +22,8 @@ from support.server import LoopbackServer, json_answer
 
 from collector.demo_site import DemoServer
 from collector.demo_site.recipes import render
-from collector.run.cluster import connect, run_on_cluster
+from collector.run.cluster import run_on_cluster
+from collector.run.cluster_setup import connect
 from collector.run.gather import prepared_run
 from collector.run.scheduling import StopRules
 from collector.storage.collection import Collection, init_collection

@@ -31,7 +31,8 @@ from collector.demo_site import DemoServer
 from collector.demo_site.recipes import render
 from collector.demo_site.requestlog import max_in_window
 from collector.fetching.fetcher import FetchSettings
-from collector.run.cluster import ClusterDispatch, connect
+from collector.run.cluster import ClusterDispatch
+from collector.run.cluster_setup import connect
 from collector.run.gather import prepared_run, run_prepared
 from collector.storage.collection import init_collection
 

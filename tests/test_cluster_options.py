@@ -16,7 +16,7 @@ from support.collections import grid_picture
 from support.server import LoopbackServer, json_answer
 
 from collector.errors import ClusterError
-from collector.run.cluster import cluster_options
+from collector.run.cluster_setup import cluster_options
 from collector.storage.collection import Collection, init_collection
 
 
