@@ -117,9 +117,8 @@ def _terminate_once() -> Any:
 def test_a_cluster_run_asked_to_stop_stops(ask: str, tmp_path: Path) -> None:
     """SIGTERM once the first batch is back, or the time limit 1.5 s into a run of 300 images
     (30 s at 10 requests/s): the run ends within seconds (the task in flight finishes its
-    batch, about 5 s), as
-    interrupted (exit 143) or stopped; nothing failed and the rest stays pending for the next
-    run."""
+    batch, about 5 s), as interrupted (exit 143) or stopped, with well under half the images
+    stored; nothing failed and the rest stays pending for the next run."""
     with LoopbackServer("127.0.0.1") as server:
         items = [{"id": str(n), "title": f"Leaf {n}", "licence": "CC0-1.0",
                   "image": server.url(f"/img/{n}.png")} for n in range(300)]
@@ -143,4 +142,5 @@ def test_a_cluster_run_asked_to_stop_stops(ask: str, tmp_path: Path) -> None:
     with col.ledger(readonly=True) as ledger:
         rows = ledger.query("SELECT state, count(*) AS n FROM items GROUP BY state")
     states = {r["state"]: r["n"] for r in rows}
-    assert set(states) <= {"stored", "pending"} and states.get("pending", 0) > 100, states
+    # Items listed and not fetched stay pending; those not listed yet are not in the ledger.
+    assert set(states) <= {"stored", "pending"} and states.get("stored", 0) < 150, states
