@@ -39,7 +39,6 @@ from typing import Any
 from collector.errors import CollectorError, LedgerError, StoreError
 from collector.fetching.fetcher import FetchSettings
 from collector.run.cluster_task import (
-    MAX_BATCH,
     BatchResult,
     BatchSpec,
     HostCarry,
@@ -50,7 +49,6 @@ from collector.run.cluster_task import (
 from collector.run.ingest import Job
 from collector.urls import host_key
 
-SHARED_BATCH = 5  # images per task for a host the coordinator also lists from (it waits less)
 STOP_GRACE = 60.0  # s after a stop that tasks in flight may take to come back
 TASK_LIMIT = 600.0  # s after which a task that has not come back is given up (left pending)
 
@@ -80,7 +78,6 @@ class _Lane:
     carry: HostCarry = field(default_factory=HostCarry)
     degraded: str | None = None  # why the host gets no more tasks in this run
     batches: int = 0
-    listed: bool = False  # the coordinator asks this host for pages too: short batches
 
 
 class ClusterDispatch:
@@ -225,8 +222,7 @@ class ClusterDispatch:
             lane.pending.clear()
             return (), [(w, why) for w in jobs]
         budget = self.settings.host_budgets.get(host, self.settings.budget)
-        size = min(batch_size(float(budget.min_interval)), len(lane.pending),
-                   SHARED_BATCH if lane.listed else MAX_BATCH)
+        size = min(batch_size(float(budget.min_interval)), len(lane.pending))
         lane.in_flight = tuple(lane.pending.popleft() for _ in range(size))
         return lane.in_flight, []
 
@@ -456,7 +452,6 @@ class ClusterDispatch:
         in flight, keep new tasks back meanwhile; yields when its latest task ended."""
         with self._cond:
             lane = self._lanes.setdefault(host, _Lane())
-            lane.listed = True
             lane.wanting += 1
             try:
                 while lane.in_flight:
