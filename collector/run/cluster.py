@@ -302,10 +302,11 @@ class ClusterDispatch:
         if self.on_batch is not None:
             self.on_batch(result)
         ledger = self.g.ledger
-        for row in result.fetches:
-            ledger.record_fetch(**row)
-        for hk, fields in result.host_updates:
-            ledger.put_host(hk, **fields)
+        with ledger.transaction():  # one commit for the batch's requests and host facts
+            for row in result.fetches:
+                ledger.record_fetch(**row)
+            for hk, fields in result.host_updates:
+                ledger.put_host(hk, **fields)
         works = {w.job.item_id: w for w in batch}
         parked = any(r.kind == "parked" for r in result.results)
         again = [works[r.item_id] for r in result.results if r.kind == "skipped"
