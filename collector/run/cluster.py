@@ -26,6 +26,7 @@ from __future__ import annotations
 import contextlib
 import hashlib
 import os
+import queue
 import threading
 import time
 import uuid
@@ -98,6 +99,8 @@ class ClusterDispatch:
         # handled: a future nobody holds lets Dask forget its task.
         self._futures: dict[str, tuple[Any, str, tuple[_Work, ...], float]] = {}
         self._stopped_at: float | None = None
+        self._gates: dict[str, queue.Queue[_Work | None]] = {}  # host -> jobs to admit
+        self._gate_threads: list[threading.Thread] = []
         self.g: Any = None
 
     # -- set-up --------------------------------------------------------------------------------
@@ -121,9 +124,27 @@ class ClusterDispatch:
             if self._token is None:
                 self._start()
             self._open += 1
-        work = _Work(job, job.url)
-        if not self._refused(host, work):
-            self._put(host, work)
+            gate = self._gates.get(host)
+            if gate is None:
+                gate = self._gates[host] = queue.Queue()
+                t = threading.Thread(target=self._gate_loop, args=(host, gate), daemon=True,
+                                     name=f"cluster-gate-{host}")
+                self._gate_threads.append(t)
+                t.start()
+        gate.put(_Work(job, job.url))
+
+    def _gate_loop(self, host: str, gate: queue.Queue[_Work | None]) -> None:
+        """A host's jobs through the reservation gate, on a thread of the host's own (as the
+        local run's host workers): the first asks the coordinator's fetcher for the origin's
+        tdmrep.json, which waits for the host's interval, and the listing thread goes on
+        meanwhile."""
+        while (work := gate.get()) is not None:
+            try:
+                if not self._refused(host, work):
+                    self._put(host, work)
+            except Exception as exc:  # a bug on the gate thread: the run fails loudly
+                self.g._internal_error(f"the cluster admission for host {host}", exc,
+                                       item_id=work.job.item_id)
 
     def _refused(self, host: str, w: _Work) -> bool:
         """Before any image byte, as the local run (Gatherer._fetch_and_ingest): a stopping
@@ -169,7 +190,12 @@ class ClusterDispatch:
                 for host in hosts_of(self._lanes, self._cond):
                     self._poke(host)
             self._expire()
-        for t in list(self._handlers):
+        with self._cond:
+            gates, self._gates = list(self._gates.values()), {}
+            threads, self._gate_threads = self._gate_threads, []
+        for gate in gates:
+            gate.put(None)  # every job put is settled: the gate threads end
+        for t in [*threads, *self._handlers]:
             t.join(STOP_GRACE)
         self._handlers.clear()
         if self._token is not None:
