@@ -120,6 +120,7 @@ def _killer(client: Any, dispatch: ClusterDispatch, batches: list[Any],
     keys = set(client.processing(workers=[victim]).get(victim, ()))
     keys |= set(client.has_what([victim]).get(victim, ()))
     out["in_flight"] = dispatch.in_flight(keys)
+    out["cluster"] = dispatch.in_flight()  # every worker's tasks, for comparison
     os.kill(pids[victim], signal.SIGKILL)
     out["killed"] = 1
 
@@ -132,7 +133,7 @@ def run(folder: Path, *, kill: bool, force_bytes: bool) -> dict[str, Any]:
     col = init_collection(folder, contact="bench@example.org")
     col.recipe_path.write_text(_recipe(port))
     batches: list[Any] = []
-    out: dict[str, int] = {"in_flight": 0, "killed": 0}
+    out: dict[str, int] = {"in_flight": 0, "cluster": 0, "killed": 0}
     with connect(local_workers=2, threads=24) as client, \
             prepared_run(col) as (recipe, ledger):
         dispatch = ClusterDispatch(client, FetchSettings.from_recipe(recipe),
@@ -169,17 +170,18 @@ def main() -> None:
           f"processes; files {'as bytes' if force_bytes else 'through the shared folder'}")
     print(f"{'run':<10} {'outcome':<9} {'images':>6} {'wall s':>6} {'aggregate %':>11} "
           f"{'worst 1 s':>9} {'hosts over':>10} {'min gap s':>9} {'gaps < 0.98x':>12} "
-          f"{'fetched twice':>13} {'in flight':>9} {'same states':>11}")
+          f"{'fetched twice':>13} {'in flight':>9} {'of cluster':>10} {'same states':>11}")
     with tempfile.TemporaryDirectory() as tmp:
         plain = run(Path(tmp) / "plain", kill=False, force_bytes=force_bytes)
         killed = run(Path(tmp) / "killed", kill=True, force_bytes=force_bytes)
     for name, r in (("plain", plain), ("killed", killed)):
         same = "yes" if r["states"] == plain["states"] else "NO"
         flight = str(r["in_flight"]) if r["killed"] else "-"
+        everywhere = str(r["cluster"]) if r["killed"] else "-"
         print(f"{name:<10} {r['outcome']:<9} {r['images']:>6} {r['wall']:>6.1f} "
               f"{r['aggregate']:>11.1f} {r['worst']:>5}/{BUDGET:<3} {r['over']:>10} "
               f"{r['min_gap']:>9.3f} {r['close']:>12} "
-              f"{r['twice']:>13} {flight:>9} {same:>11}")
+              f"{r['twice']:>13} {flight:>9} {everywhere:>10} {same:>11}")
 
 
 if __name__ == "__main__":

@@ -98,6 +98,9 @@ class ClusterDispatch:
         # The futures in flight with their host, batch and submission time, kept until
         # handled: a future nobody holds lets Dask forget its task.
         self._futures: dict[str, tuple[Any, str, tuple[_Work, ...], float]] = {}
+        # Batches whose task is done and whose result is not yet fetched from the worker
+        # (a worker lost now takes the result with it: Dask runs the task again).
+        self._collecting: dict[str, tuple[_Work, ...]] = {}
         self._stopped_at: float | None = None
         self._gates: dict[str, queue.Queue[_Work | None]] = {}  # host -> jobs to admit
         self._gate_threads: list[threading.Thread] = []
@@ -220,11 +223,12 @@ class ClusterDispatch:
                 future.cancel()
             self._release(host, batch, None)
 
-    def in_flight(self, keys: Any) -> int:
-        """How many images the tasks with these keys hold (a bench counts what a killed
-        worker had in flight)."""
+    def in_flight(self, keys: Any = None) -> int:
+        """How many images the tasks with these keys hold, all tasks without ``keys`` (a
+        bench counts what a killed worker had in flight)."""
         with self._cond:
-            return sum(len(self._futures[k][2]) for k in keys if k in self._futures)
+            held = {**{k: e[2] for k, e in self._futures.items()}, **self._collecting}
+            return sum(len(batch) for k, batch in held.items() if keys is None or k in keys)
 
     def _poke(self, host: str) -> None:
         with self._cond:
@@ -295,6 +299,7 @@ class ClusterDispatch:
             entry = self._futures.pop(future.key, None)
             if entry is None:
                 return  # given up already (_expire)
+            self._collecting[future.key] = entry[2]
             t = threading.Thread(target=self._handle_safely, args=(entry[1], entry[2], future),
                                  daemon=True, name=f"cluster-{entry[1]}")
             self._handlers = [h for h in self._handlers if h.is_alive()]
@@ -314,7 +319,11 @@ class ClusterDispatch:
         from distributed.utils import CancelledError
 
         try:
-            result: BatchResult = future.result(timeout=STOP_GRACE)
+            try:
+                result: BatchResult = future.result(timeout=STOP_GRACE)
+            finally:
+                with self._cond:
+                    self._collecting.pop(future.key, None)
         except KilledWorker as exc:
             self._degrade(host, batch, exc)
             return
