@@ -140,6 +140,20 @@ def gather(
                                  help="Request nothing; show sources, budgets and an estimate."),
     quiet: bool = typer.Option(False, "--quiet", help="Print only notes and the summary."),
     log_json: bool = typer.Option(False, "--log-json", help="Print events as JSON lines."),
+    cluster: str = typer.Option(None, "--cluster", metavar="ADDRESS",
+                                help="Fetch images on this Dask scheduler, e.g. "
+                                     "tcp://10.0.0.5:8786 (needs the cluster extra: pip "
+                                     "install 'polite-image-collector[cluster]')."),
+    local_workers: int = typer.Option(None, "--local-workers", metavar="N",
+                                      help="Fetch images on a local Dask cluster of N worker "
+                                           "processes (needs the cluster extra)."),
+    tls_ca_file: Path = typer.Option(None, "--tls-ca-file", metavar="PATH",
+                                     help="With --cluster: the CA certificate of the "
+                                          "scheduler's TLS."),
+    tls_cert: Path = typer.Option(None, "--tls-cert", metavar="PATH",
+                                  help="With --cluster: this machine's TLS certificate."),
+    tls_key: Path = typer.Option(None, "--tls-key", metavar="PATH",
+                                 help="With --cluster: the key of --tls-cert."),
 ) -> None:
     """Run the recipe: list sources, decide licences, fetch politely, check, store, record.
 
@@ -156,8 +170,10 @@ def gather(
         if dry_run:
             _gather_estimate(folder, until=until, duration=duration, max_items=max_items)
             return
+        engine = _cluster_options(cluster, local_workers, (tls_ca_file, tls_cert, tls_key))
         result, lines = _gather_run(folder, until=until, duration=duration,
-                                    max_items=max_items, quiet=quiet, log_json=log_json)
+                                    max_items=max_items, quiet=quiet, log_json=log_json,
+                                    engine=engine)
     _gather_report(folder, result, lines, log_json=log_json)
 
 
@@ -181,9 +197,18 @@ def _gather_estimate(folder: Path, *, until: str | None, duration: str | None,
             typer.echo(one_line(line))
 
 
+def _cluster_options(address: str | None, local_workers: int | None,
+                     tls: tuple[Path | None, ...]) -> dict[str, Any] | None:
+    """gather --cluster / --local-workers / --tls-*: checked before anything starts; None
+    for a run on this machine alone (collector.run.cluster_setup.cluster_options)."""
+    from collector.run.cluster_setup import cluster_options
+
+    return cluster_options(address, local_workers, tls)
+
+
 def _gather_run(folder: Path, *, until: str | None, duration: str | None,
-                max_items: int | None, quiet: bool,
-                log_json: bool) -> tuple[RunResult, list[str]]:
+                max_items: int | None, quiet: bool, log_json: bool,
+                engine: dict[str, Any] | None = None) -> tuple[RunResult, list[str]]:
     """One gather run with the progress view; its result and the summary lines."""
     from collector.display import LiveProgress
     from collector.exports.summary import format_summary, summarise
@@ -198,14 +223,30 @@ def _gather_run(folder: Path, *, until: str | None, duration: str | None,
             typer.echo("Note: " + unknown_files_message(collection, recovery.unknown_files),
                        err=True)
 
-    with prepared_run(collection, on_recovery=on_recovery) as (recipe, ledger):
+    with _cluster_client(engine) as client, \
+            prepared_run(collection, on_recovery=on_recovery) as (recipe, ledger):
         stop = stop_rules(recipe, until=until, duration=duration, max_items=max_items)
         progress = _progress_for(quiet=quiet, log_json=log_json)
-        options = {"until": until, "for": duration, "max_items": max_items}
+        options = {"until": until, "for": duration, "max_items": max_items,
+                   **({"cluster": engine.get("address") or "local"} if engine else {})}
         with progress if isinstance(progress, LiveProgress) else nullcontext():
-            result = run_prepared(collection, recipe, ledger, stop=stop, progress=progress,
-                                  options=options)
+            if client is None:
+                result = run_prepared(collection, recipe, ledger, stop=stop, progress=progress,
+                                      options=options)
+            else:
+                from collector.run.cluster import run_on_cluster
+                result = run_on_cluster(collection, recipe, ledger, client, stop=stop,
+                                        progress=progress, options=options)
         return result, format_summary(summarise(ledger))
+
+
+def _cluster_client(engine: dict[str, Any] | None) -> Any:
+    """A Dask client for the options of :func:`_cluster_options`, or a context of None."""
+    if engine is None:
+        return nullcontext(None)
+    from collector.run.cluster_setup import connect
+
+    return connect(**engine)
 
 
 def _gather_report(folder: Path, result: RunResult, lines: list[str], *,

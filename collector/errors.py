@@ -18,6 +18,8 @@ exception escaping to the CLI is a bug and keeps its traceback.
     ├── SourceKindError              a source kind is unknown, clashes, or its package is broken
     ├── ImageRejected                an image failed the ingest checks (.reason: ledger reason)
     ├── InternalError                a bug in collector stopped a run (.where, traceback logged)
+    ├── ClusterError                 a Dask cluster cannot be used (not installed, unreachable,
+    │                                no workers, other versions) (exit 2)
     └── FetchError                   a request failed; .url is already redacted
         ├── UnsafeURL                not http/https, or an address the recipe does not allow
         ├── RobotsDenied             refused by robots.txt (.rule names the matching rule)
@@ -130,6 +132,13 @@ class InternalError(CollectorError):
         super().__init__(f"internal error in {where} ({type(exc).__name__}: {exc}); the "
                          f"traceback is in {log_path} - please report it. Nothing stored is "
                          "lost: run gather again to resume")
+
+
+class ClusterError(CollectorError):
+    """A run on a Dask cluster cannot start: the extra is not installed, the scheduler cannot
+    be reached, no worker joined, or the workers run other versions."""
+
+    exit_code = 2
 
 
 class FetchError(CollectorError):

@@ -225,6 +225,9 @@ class Fetcher:
         self._parked: dict[str, float] = {}  # host -> epoch until
         self._failures: dict[str, int] = {}
         self._seen_hosts: set[str] = set()
+        # Called with (host key, URL, purpose) before each request and redirect hop;
+        # it may raise to stop there (a cluster task keeps to its one host: run/cluster_task).
+        self.host_check: Callable[[str, str, str], None] | None = None
 
     # -- public API ----------------------------------------------------------------------------
     def get_page(self, url: str, *, purpose: str = "listing", item_id: int | None = None,
@@ -312,6 +315,8 @@ class Fetcher:
             except UnsafeURL as exc:
                 self._record(row, attempt=0, error=str(exc))
                 raise
+            if self.host_check is not None:
+                self.host_check(hk, current, purpose)
             self._first_contact(hk)
             if robots:
                 verdict = Verdict(True, "implicit", None)  # RFC 9309 §2.2.2

@@ -21,7 +21,13 @@ from collector.config.recipe import Recipe
 from collector.config.recipe_env import env_problems
 from collector.errors import RecipeError, RecipeProblem
 from collector.run.record import Progress
-from collector.run.scheduling import Gatherer, ImageFetcher, RunResult, StopRules
+from collector.run.scheduling import (
+    Gatherer,
+    HostDispatch,
+    ImageFetcher,
+    RunResult,
+    StopRules,
+)
 from collector.storage.collection import Collection, Recovery, recover
 from collector.storage.ledger import Ledger
 
@@ -81,12 +87,16 @@ def run_prepared(collection: Collection, recipe: Recipe, ledger: Ledger, *,
                  stop: StopRules | None = None, progress: Progress | None = None,
                  options: dict[str, Any] | None = None,
                  fetcher_factory: Callable[[Recipe, Ledger], ImageFetcher | None] = build_fetcher,
-                 ) -> RunResult:
-    """One run inside :func:`prepared_run`: the fetcher is built for it and closed after."""
+                 dispatch: HostDispatch | None = None) -> RunResult:
+    """One run inside :func:`prepared_run`: the fetcher is built for it and closed after.
+    With ``dispatch`` (a cluster, collector.run.cluster) images are fetched there, and the
+    fetcher lists pages through ``dispatch.gated`` (taking turns with the cluster's tasks)."""
     fetcher = fetcher_factory(recipe, ledger)
+    gated = getattr(dispatch, "gated", None)
+    listing = gated(fetcher) if gated is not None and fetcher is not None else fetcher
     try:
-        gatherer = Gatherer(collection, recipe, ledger, fetcher, stop=stop or StopRules(),
-                            progress=progress)
+        gatherer = Gatherer(collection, recipe, ledger, listing, stop=stop or StopRules(),
+                            progress=progress, dispatch=dispatch)
         return gatherer.run(options)
     finally:
         close = getattr(fetcher, "close", None)

@@ -76,6 +76,18 @@ class ImageFetcher(PageFetcher, Protocol):
     def close(self) -> None: ...
 
 
+class HostDispatch(Protocol):
+    """Where image jobs go instead of the local per-host workers: a cluster
+    (collector.run.cluster.ClusterDispatch). ``attach`` is called by the Gatherer it serves;
+    ``put`` hands over a job of a host; ``finish`` waits until every job put is settled."""
+
+    def attach(self, gatherer: Gatherer) -> None: ...
+
+    def put(self, host: str, job: Job) -> None: ...
+
+    def finish(self) -> None: ...
+
+
 @dataclass(frozen=True)
 class StopRules:
     """When a run stops on its own: an epoch deadline and/or a number of newly stored items."""
@@ -171,7 +183,8 @@ class Gatherer:
 
     def __init__(self, collection: Collection, recipe: Recipe, ledger: Ledger,
                  fetcher: ImageFetcher | None, *, stop: StopRules = StopRules(),
-                 progress: Progress | None = None) -> None:
+                 progress: Progress | None = None, dispatch: HostDispatch | None = None,
+                 ) -> None:
         self.collection, self.recipe, self.ledger, self.fetcher = (
             collection, recipe, ledger, fetcher)
         self.store = collection.store
@@ -198,6 +211,9 @@ class Gatherer:
         self.gate = ReservationGate(recipe, ledger, fetcher, self.record, self._source_ids)
         self.ingest = Ingest(collection, recipe, ledger, self.record, self._source_ids,
                              on_stored=self._stored_one, gate=self.gate)
+        self.dispatch = dispatch
+        if dispatch is not None:
+            dispatch.attach(self)
 
     @property
     def run_id(self) -> int:
@@ -265,6 +281,8 @@ class Gatherer:
             for t in threads:
                 t.start()
             self._wait(threads)
+            if self.dispatch is not None:
+                self.dispatch.finish()
             for q in list(self._queues.values()):
                 q.put(None)  # no more work: each worker ends after its queue drains
             self._wait(self._workers)
@@ -293,6 +311,8 @@ class Gatherer:
         while True:  # a signal arriving now must not leave threads behind
             try:
                 self._wait(self._workers + threads, interruptible=False)
+                if self.dispatch is not None:
+                    self.dispatch.finish()
                 return
             except KeyboardInterrupt:
                 continue
@@ -401,6 +421,11 @@ class Gatherer:
         except CollectorError as exc:
             self.record.finish(job.item_id, "failed", "unsafe_url", str(exc))
             self.ingest.settle(job)
+            return
+        if self.dispatch is not None:  # a cluster serves the hosts
+            with self._lock:
+                self.hosts.setdefault(host, HostStats()).queued += 1
+            self.dispatch.put(host, job)
             return
         with self._lock:
             q = self._queues.get(host)

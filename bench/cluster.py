@@ -1,0 +1,188 @@
+"""Cluster bench: a local Dask cluster of 2 worker processes fetches from 40 loopback hosts at
+5 requests/s each, once undisturbed and once with a worker killed (SIGKILL, by PID) mid-run.
+
+The 40 image hosts (127.0.0.10-49) and the listing host (127.0.0.50, one JSON page listing
+every image) run in a child process (demo_site.loopback.LoopbackServer), which logs arrivals
+with server-side monotonic stamps. Politeness is judged strictly from those logs: the busiest
+sliding 1.0 s window per host (demo_site.requestlog.max_in_window, no tolerance) against the
+budget of 5, and the smallest gap between two arrivals at one host against 0.98 x the 0.2 s
+interval. Printed per run: images, wall time, the aggregate image rate as % of the sum of
+budgets (40 x 5 = 200/s; measured from the first to the last image arrival), the worst window,
+hosts over budget, images fetched more than once, and for the killed run how many images the
+killed worker held in flight. Targets: aggregate >= 90 %, zero violations, every item in the
+same state as in the undisturbed run, images fetched twice <= those in flight at the kill.
+Usage: python bench/cluster.py [--bytes] (--bytes: files come back as bytes, not through the
+shared folder).
+"""
+
+from __future__ import annotations
+
+import io
+import itertools
+import json
+import multiprocessing as mp
+import os
+import signal
+import sys
+import tempfile
+import threading
+import time
+from collections import Counter
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+from PIL import Image
+
+from collector.demo_site.loopback import LoopbackServer
+from collector.demo_site.requestlog import max_in_window
+from collector.fetching.fetcher import FetchSettings
+from collector.run.cluster import ClusterDispatch
+from collector.run.cluster_setup import connect
+from collector.run.gather import prepared_run, run_prepared
+from collector.storage.collection import Collection, init_collection
+
+HOSTS, PER_HOST, INTERVAL = 40, 40, 0.2
+BUDGET = round(1 / INTERVAL)
+LISTING = "127.0.0.50"
+
+
+def _picture(n: int) -> bytes:
+    pixels = np.random.default_rng(n).integers(0, 256, (48, 48, 3), dtype=np.uint8)
+    out = io.BytesIO()
+    Image.fromarray(pixels).save(out, "PNG")
+    return out.getvalue()
+
+
+def _serve(conn: Any) -> None:
+    """Child process: the image hosts and the listing host; on request, logs and stop."""
+    addresses = [f"127.0.0.{10 + i}" for i in range(HOSTS)]
+    servers = {a: LoopbackServer(a) for a in [*addresses, LISTING]}
+    items = []
+    for h, addr in enumerate(addresses):
+        srv = servers[addr]
+        srv.route("/robots.txt", (200, b"user-agent: *\nallow: /\n"))
+        for i in range(PER_HOST):
+            srv.route(f"/img/{i}.png", (200, _picture(h * 1000 + i),
+                                        {"Content-Type": "image/png"}))
+            items.append({"id": f"{h}-{i}", "title": f"h{h} i{i}", "licence": "CC0-1.0",
+                          "image": srv.url(f"/img/{i}.png")})
+    servers[LISTING].route("/robots.txt", (404, b""))
+    servers[LISTING].route("/items", (200, json.dumps({"results": items}).encode(),
+                                      {"Content-Type": "application/json"}))
+    conn.send(servers[LISTING].port)
+    conn.recv()
+    logs = {a: [(h.mono, h.path) for h in s.hits] for a, s in servers.items()}
+    for s in servers.values():
+        s.close()
+    conn.send(logs)
+
+
+def _recipe(port: int) -> str:
+    return f'''contact = "bench@example.org"
+[budgets]
+min_interval = {INTERVAL}
+requests_per_hour = 1000000
+max_attempts = 1
+[budgets.hosts."{LISTING}:{port}"]
+min_interval = 0.01
+[network]
+allow_addresses = ["127.0.0.0/8"]
+[[sources]]
+name = "bench"
+kind = "json_api"
+url = "http://{LISTING}:{port}/items"
+[sources.pagination]
+style = "none"
+[sources.fields]
+items = "results"
+id = "id"
+title = "title"
+licence = "licence"
+image_url = "image"
+'''
+
+
+def _states(col: Collection) -> dict[str, tuple[str, str | None]]:
+    with col.ledger(readonly=True) as ledger:
+        rows = ledger.query("SELECT source_key, state, reason FROM items")
+    return {r["source_key"]: (r["state"], r["reason"]) for r in rows}
+
+
+def _killer(client: Any, dispatch: ClusterDispatch, batches: list[Any],
+            out: dict[str, int]) -> None:
+    """Kill one worker process once a fifth of the images came back."""
+    while sum(len(b.results) for b in batches) < HOSTS * PER_HOST // 5:
+        time.sleep(0.05)
+    pids = client.run(os.getpid)
+    victim = sorted(pids)[0]
+    # What the worker holds: tasks running there and results not yet collected from it.
+    keys = set(client.processing(workers=[victim]).get(victim, ()))
+    keys |= set(client.has_what([victim]).get(victim, ()))
+    out["in_flight"] = dispatch.in_flight(keys)
+    out["cluster"] = dispatch.in_flight()  # every worker's tasks, for comparison
+    os.kill(pids[victim], signal.SIGKILL)
+    out["killed"] = 1
+
+
+def run(folder: Path, *, kill: bool, force_bytes: bool) -> dict[str, Any]:
+    parent, child = mp.Pipe()
+    proc = mp.Process(target=_serve, args=(child,), daemon=True)
+    proc.start()
+    port = parent.recv()
+    col = init_collection(folder, contact="bench@example.org")
+    col.recipe_path.write_text(_recipe(port))
+    batches: list[Any] = []
+    out: dict[str, int] = {"in_flight": 0, "cluster": 0, "killed": 0}
+    with connect(local_workers=2, threads=24) as client, \
+            prepared_run(col) as (recipe, ledger):
+        dispatch = ClusterDispatch(client, FetchSettings.from_recipe(recipe),
+                                   force_bytes=force_bytes, on_batch=batches.append)
+        if kill:
+            threading.Thread(target=_killer, args=(client, dispatch, batches, out),
+                             daemon=True).start()
+        began = time.monotonic()
+        result = run_prepared(col, recipe, ledger, dispatch=dispatch)
+        wall = time.monotonic() - began
+    parent.send("stop")
+    logs = parent.recv()
+    proc.join(5)
+    images = [(t, p) for a, hits in logs.items() if a != LISTING for t, p in hits
+              if p.startswith("/img/")]
+    stamps = sorted(t for t, _ in images)
+    span = stamps[-1] - stamps[0]
+    worst = {a: max_in_window([t for t, _ in hits], 1.0) for a, hits in logs.items()
+             if a != LISTING}
+    gaps = [b - a for a_, hits in logs.items() if a_ != LISTING
+            for a, b in itertools.pairwise(sorted(t for t, _ in hits))]
+    twice = Counter(f"{a}{p}" for a, hits in logs.items() for _, p in hits
+                    if p.startswith("/img/"))
+    return {"outcome": result.outcome, "images": len(images), "wall": wall,
+            "aggregate": 100 * (len(images) - 1) / span / (HOSTS * BUDGET),
+            "worst": max(worst.values()), "over": sum(w > BUDGET for w in worst.values()),
+            "min_gap": min(gaps), "close": sum(g < 0.98 * INTERVAL for g in gaps),
+            "twice": sum(n > 1 for n in twice.values()), "states": _states(col), **out}
+
+
+def main() -> None:
+    force_bytes = "--bytes" in sys.argv[1:]
+    print(f"{HOSTS} hosts x {PER_HOST} images at {BUDGET} req/s each, 2 local worker "
+          f"processes; files {'as bytes' if force_bytes else 'through the shared folder'}")
+    print(f"{'run':<10} {'outcome':<9} {'images':>6} {'wall s':>6} {'aggregate %':>11} "
+          f"{'worst 1 s':>9} {'hosts over':>10} {'min gap s':>9} {'gaps < 0.98x':>12} "
+          f"{'fetched twice':>13} {'in flight':>9} {'of cluster':>10} {'same states':>11}")
+    with tempfile.TemporaryDirectory() as tmp:
+        plain = run(Path(tmp) / "plain", kill=False, force_bytes=force_bytes)
+        killed = run(Path(tmp) / "killed", kill=True, force_bytes=force_bytes)
+    for name, r in (("plain", plain), ("killed", killed)):
+        same = "yes" if r["states"] == plain["states"] else "NO"
+        flight = str(r["in_flight"]) if r["killed"] else "-"
+        everywhere = str(r["cluster"]) if r["killed"] else "-"
+        print(f"{name:<10} {r['outcome']:<9} {r['images']:>6} {r['wall']:>6.1f} "
+              f"{r['aggregate']:>11.1f} {r['worst']:>5}/{BUDGET:<3} {r['over']:>10} "
+              f"{r['min_gap']:>9.3f} {r['close']:>12} "
+              f"{r['twice']:>13} {flight:>9} {everywhere:>10} {same:>11}")
+
+
+if __name__ == "__main__":
+    main()

@@ -1,0 +1,42 @@
+"""What the cluster tests compare: the demo manifest's item states against a collection's
+ledger, and which logged requests were image requests."""
+
+from __future__ import annotations
+
+from typing import Any
+
+from collector.demo_site import DemoServer
+from collector.storage.collection import Collection
+
+
+def _states(col: Collection) -> dict[tuple[str, str], tuple[str, str | None]]:
+    with col.ledger(readonly=True) as ledger:
+        rows = ledger.query("SELECT s.name AS source, i.source_key, i.page_url, i.state, "
+                            "i.reason FROM items i JOIN sources s ON s.id = i.source_id")
+    keyed = {}
+    for row in rows:
+        keyed[(row["source"], row["source_key"])] = (row["state"], row["reason"])
+        if row["page_url"]:
+            keyed[(row["source"], "page:" + row["page_url"])] = (row["state"], row["reason"])
+    return keyed
+
+
+def wrong_items(col: Collection, server: DemoServer) -> list[Any]:
+    """Manifest items whose (state, reason) in the ledger is not the expected one."""
+    keyed = _states(col)
+    wrong = []
+    for item in server.manifest["items"]:
+        got = keyed.get((item["source"], item["key"]))
+        if got is None and item.get("page_url"):
+            got = keyed.get((item["source"], "page:" + server.fill(item["page_url"])))
+        if got != (item["state"], item["reason"]):
+            wrong.append((item["source"], item["key"], item["state"], item["reason"], got))
+    return wrong
+
+
+def is_image_request(record: Any) -> bool:
+    """A request the demo server answered 200 that was not a listing, page or robots.txt
+    (the filter of tests/test_gather_demo.py)."""
+    path = record.path
+    return (record.status == 200 and "/api/" not in path and not path.startswith("/oai?")
+            and not path.endswith(("/", ".html", "robots.txt")))

@@ -1,0 +1,63 @@
+"""The recipe's address guard applies on every worker of a cluster run exactly as on one
+machine: an image URL on an address the recipe does not allow, directly or through a
+redirect, fails ``unsafe_url`` and no request reaches that address (the trap server on the
+unlisted loopback address 127.0.0.9 counts them)."""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+from support.collections import grid_picture
+from support.server import LoopbackServer, json_answer
+
+from collector.run.cluster import run_on_cluster
+from collector.run.cluster_setup import connect
+from collector.run.gather import prepared_run
+from collector.storage.collection import init_collection
+
+RECIPE = '''contact = "x@example.org"
+[budgets]
+min_interval = 0.1
+[network]
+allow_addresses = ["127.0.0.1/32"]
+[[sources]]
+name = "leaves"
+kind = "json_api"
+url = "{url}"
+[sources.pagination]
+style = "none"
+[sources.fields]
+items = "results"
+id = "id"
+title = "title"
+licence = "licence"
+image_url = "image"
+'''
+
+
+def test_the_address_guard_holds_on_the_workers(tmp_path: Path) -> None:
+    """One image stored; the one on 127.0.0.9 and the one redirecting there fail unsafe_url
+    with zero requests at the trap (the guard of collector.urls, run by the task's fetcher)."""
+    with LoopbackServer("127.0.0.1") as server, LoopbackServer("127.0.0.9") as trap:
+        trap.route("/secret.png", (200, grid_picture(9), {"Content-Type": "image/png"}))
+        server.route("/robots.txt", (404, b""))
+        server.route("/img/ok.png", (200, grid_picture(1), {"Content-Type": "image/png"}))
+        server.route("/img/away.png", (302, b"", {"Location": trap.url("/secret.png")}))
+        items = [{"id": name, "title": name, "licence": "CC0-1.0", "image": url}
+                 for name, url in (("ok", server.url("/img/ok.png")),
+                                   ("direct", trap.url("/secret.png")),
+                                   ("redirected", server.url("/img/away.png")))]
+        server.route("/items", json_answer({"results": items}))
+        col = init_collection(tmp_path / "c", contact="x@example.org")
+        col.recipe_path.write_text(RECIPE.format(url=server.url("/items")))
+        with connect(local_workers=1, processes=False, threads=4) as client, \
+                prepared_run(col) as (recipe, ledger):
+            result = run_on_cluster(col, recipe, ledger, client)
+        trap_hits = len(trap.hits)
+    assert result.outcome == "finished"
+    assert trap_hits == 0
+    with col.ledger(readonly=True) as ledger:
+        rows = ledger.query("SELECT source_key, state, reason FROM items")
+    assert {r["source_key"]: (r["state"], r["reason"]) for r in rows} == {
+        "ok": ("stored", None), "direct": ("failed", "unsafe_url"),
+        "redirected": ("failed", "unsafe_url")}
