@@ -27,7 +27,7 @@ import logging
 import random
 import socket
 import threading
-from collections.abc import Callable, Iterable, Iterator, Mapping
+from collections.abc import Callable, Iterable, Mapping
 from dataclasses import asdict, dataclass, field
 from datetime import UTC, datetime
 from pathlib import Path
@@ -56,7 +56,7 @@ from collector.fetching.answers import (
 )
 from collector.fetching.body import Body, exc_size, read_body
 from collector.fetching.budgets import SYSTEM_CLOCK, Budget, Clock, HostBudgets, budgets_from_recipe
-from collector.fetching.http_target import prepared_get, transport_target
+from collector.fetching.http_target import HopByHopSession, prepared_get, transport_target
 from collector.fetching.kept_pages import keep_answer, kept_answer
 from collector.fetching.retry import Retryable, RetryPolicies
 from collector.fetching.robots import (
@@ -168,15 +168,6 @@ class _Result:
     headers: CaseInsensitiveDict
     body: Body
     encoding: str | None
-
-
-class HopByHopSession(requests.Session):
-    """A requests session that never looks at redirects: the fetcher follows them itself,
-    hop by hop, through the guard and robots.txt. (A plain session parses every Location even
-    with ``allow_redirects=False``, and a malformed one raised ValueError out of ``get``.)"""
-
-    def resolve_redirects(self, *args: Any, **kwargs: Any) -> Iterator[Any]:
-        return iter(())
 
 
 def filled_from_env(values: Mapping[str, Any], url: str,

@@ -20,8 +20,9 @@ from __future__ import annotations
 
 import re
 import unicodedata
-from collections.abc import Mapping
+from collections.abc import Iterator, Mapping
 from dataclasses import dataclass
+from typing import Any
 from urllib.parse import urlsplit
 
 import idna
@@ -148,3 +149,12 @@ def prepared_get(session: Session, url: str, headers: Mapping[str, str]) -> Prep
     prepared.prepare_auth(session.auth, url)
     prepared.prepare_hooks(session.hooks)
     return prepared
+
+
+class HopByHopSession(Session):
+    """A requests session that never looks at redirects: the fetcher follows them itself,
+    hop by hop, through the guard and robots.txt. (A plain session parses every Location even
+    with ``allow_redirects=False``, and a malformed one raised ValueError out of ``get``.)"""
+
+    def resolve_redirects(self, *args: Any, **kwargs: Any) -> Iterator[Any]:
+        return iter(())
