@@ -206,3 +206,37 @@ def test_exit_code_143_for_a_terminated_run() -> None:
     practice, no source)."""
     assert RunResult(1, "interrupted", terminated=True).exit_code == 143
     assert RunResult(1, "interrupted").exit_code == 130
+
+
+def test_sigterm_is_handled_from_the_first_statement_of_the_run(
+        tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    """The slow start (first imports, the run's row) runs before the SIGTERM handler is
+    installed, so a SIGTERM then ends the process as usual (the next run marks the run
+    killed) instead of escaping as an uncaught exception; from the run loop's first statement
+    on, the handler is in place and inside its try."""
+    import collector.run.scheduling as scheduling
+
+    col = init_collection(tmp_path / "c", contact="me@example.org")
+    (col.root / "in").mkdir()
+    col.recipe_path.write_text(col.recipe_path.read_text() + (
+        '\n[[sources]]\nname = "desk"\nkind = "scans"\npath = "in"\nlicence = "CC0-1.0"\n'))
+    seen: dict[str, Any] = {}
+    real_start, real_run = Gatherer._start, Gatherer._run
+
+    def start(self: Gatherer, options: Any) -> None:
+        seen["at start"] = signal.getsignal(signal.SIGTERM)
+        real_start(self, options)
+
+    def run(self: Gatherer) -> RunResult:
+        seen["at run"] = signal.getsignal(signal.SIGTERM)
+        return real_run(self)
+
+    monkeypatch.setattr(Gatherer, "_start", start)
+    monkeypatch.setattr(Gatherer, "_run", run)
+    before = signal.getsignal(signal.SIGTERM)
+    from collector.run.gather import gather
+
+    gather(col, fetcher_factory=lambda recipe, ledger: None)
+    assert seen["at start"] is before
+    assert seen["at run"] is scheduling._raise_terminated
+    assert signal.getsignal(signal.SIGTERM) is before  # put back after the run

@@ -254,15 +254,18 @@ class Gatherer:
     def run(self, options: dict[str, Any] | None = None) -> RunResult:
         """Run every source to the end or until a stop rule fires. SIGTERM is handled like
         Ctrl-C while the run lasts (when called from the main thread)."""
+        self._start(options)  # a SIGTERM before the handler ends the process as usual
         on_main = threading.current_thread() is threading.main_thread()
         previous = signal.signal(signal.SIGTERM, _raise_terminated) if on_main else None
         try:
-            return self._run(options)
+            return self._run()
         finally:
             if on_main:
                 signal.signal(signal.SIGTERM, previous)
 
-    def _run(self, options: dict[str, Any] | None) -> RunResult:
+    def _start(self, options: dict[str, Any] | None) -> None:
+        """The slow first imports and the run's row (and its recipe text), before SIGTERM is
+        handled: one arriving now ends the process, and the next run marks this one killed."""
         _import_before_threads()
         self.run_id = self.ledger.start_run(self.recipe.sha256, options or {}, __version__)
         if self.recipe.text:  # recipe history: the text once per sha256, secrets hidden
@@ -271,13 +274,17 @@ class Gatherer:
                                             "first_used_at": utc_now()})
         if self.fetcher is not None and hasattr(self.fetcher, "run_id"):
             self.fetcher.run_id = self.run_id  # its fetches rows name the run
-        self.progress.event("run_started", run_id=self.run_id)
-        threads = [threading.Thread(target=self._list_source, args=(src, sid), daemon=True,
-                                    name=f"source-{src['name']}")
-                   for src, sid in zip(self.recipe.sources, self._source_ids, strict=True)]
+
+    def _run(self) -> RunResult:
+        threads: list[threading.Thread] = []
         outcome = "finished"
         terminated = False
-        try:
+        try:  # first: a SIGTERM from here on ends the run like Ctrl-C
+            self.progress.event("run_started", run_id=self.run_id)
+            threads = [threading.Thread(target=self._list_source, args=(src, sid),
+                                        daemon=True, name=f"source-{src['name']}")
+                       for src, sid in zip(self.recipe.sources, self._source_ids,
+                                           strict=True)]
             for t in threads:
                 t.start()
             self._wait(threads)
