@@ -34,7 +34,7 @@ def withdraw(
 
     with user_errors():
         collection = open_collection(folder)
-        with collection.gather_lock(), collection.ledger() as ledger:
+        with collection.gather_lock("withdraw"), collection.ledger() as ledger:
             done = w.withdraw(collection, ledger, what, reason=reason, asked_by=asked_by,
                               asked_on=asked_on, note=note, delete_bytes=delete_bytes)
     typer.echo(one_line(f"Withdrawal #{done.id} of {done.target}: {w.describe(done)}"))
@@ -56,7 +56,7 @@ def undo_withdrawal(
 
     with user_errors():
         collection = open_collection(folder)
-        with collection.gather_lock(), collection.ledger() as ledger:
+        with collection.gather_lock("undo-withdrawal"), collection.ledger() as ledger:
             done = undo(ledger, number, undone_by=by, note=note)
     typer.echo(one_line(f"Withdrawal #{done.id} of {done.target}: {describe(done)}"))
     if done.bytes_deleted:

@@ -333,12 +333,14 @@ def test_it_refuses_to_run_during_a_gather_and_holds_the_lock(gathered) -> None:
     """The collection's gather lock is held: a remeasure refuses with the lock's message;
     while a remeasure runs, it holds the lock a gather needs."""
     col = make_old(gathered[0])
-    with col.gather_lock(), pytest.raises(CollectionError, match="already running"):
+    with col.gather_lock(), pytest.raises(CollectionError,
+                                          match="another gather is already running"):
         remeasure(col, dry_run=True)
     refused = []
 
     def try_to_gather(result: RemeasureResult) -> None:
-        with pytest.raises(CollectionError, match="already running"), col.gather_lock():
+        with pytest.raises(CollectionError,
+                           match="'collector remeasure' is already running"), col.gather_lock():
             pass
         refused.append(result.looked)
 

@@ -42,10 +42,11 @@ def build_fetcher(recipe: Recipe, ledger: Ledger) -> ImageFetcher:
 @contextlib.contextmanager
 def prepared_run(collection: Collection, *,
                  on_recovery: Callable[[Recovery], None] | None = None,
-                 ) -> Iterator[tuple[Recipe, Ledger]]:
+                 command: str = "gather") -> Iterator[tuple[Recipe, Ledger]]:
     """Lock the folder, load the recipe, open the ledger and recover from any crash.
     Stored files the ledger cannot explain are kept, noted in the ledger and passed to
-    ``on_recovery`` with the rest of the :class:`Recovery`."""
+    ``on_recovery`` with the rest of the :class:`Recovery`. ``command`` names the holder of
+    the lock to anyone refused it."""
     recipe = collection.recipe()
     if not recipe.sources:
         raise RecipeError([RecipeProblem(str(recipe.path), "sources",
@@ -54,7 +55,7 @@ def prepared_run(collection: Collection, *,
     missing = env_problems(recipe)
     if missing:
         raise RecipeError(missing)
-    with collection.gather_lock(), collection.ledger() as ledger:
+    with collection.gather_lock(command), collection.ledger() as ledger:
         recovery = recover(collection, ledger)
         if recovery.unknown_files:
             ledger.add_note("unknown_files", unknown_files_message(collection,

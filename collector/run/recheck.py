@@ -87,7 +87,7 @@ def recheck(collection: Collection, *, stop: StopRules | None = None,
             on_finding: Callable[[Finding], None] | None = None) -> RecheckResult:
     """Re-check the collection (see the module docstring)."""
     stop = stop or StopRules()
-    with prepared_run(collection) as (recipe, ledger):
+    with prepared_run(collection, command="recheck") as (recipe, ledger):
         earlier = uq.unfinished_rechecks(ledger)
         resumed = earlier[-1] if earlier else None
         run_id = ledger.start_run(recipe.sha256, {**(options or {}), "recheck": True,

@@ -231,7 +231,7 @@ def remeasure(collection: Collection, *, everything: bool = False, dry_run: bool
     Ctrl-C ends it with outcome "interrupted" (what was committed stays; run again)."""
     settings = Settings.from_recipe(collection.recipe(check_source_kinds=False))
     active = tuple(m for m in measurements if m.wanted(settings))
-    with collection.gather_lock(), collection.ledger() as ledger:
+    with collection.gather_lock("remeasure"), collection.ledger() as ledger:
         result = RemeasureResult(dry_run, everything, queries.files_mark(ledger).rows,
                                  counts={m.name: FactCount() for m in active},
                                  skipped=[m.name for m in measurements if m not in active],

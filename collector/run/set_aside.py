@@ -92,7 +92,7 @@ def apply_rules(collection: Collection, *, dry_run: bool = False) -> RulesReport
     if dry_run:
         with collection.ledger(readonly=True) as ledger:
             return plan(ledger, recipe)
-    with collection.gather_lock(), collection.ledger() as ledger:
+    with collection.gather_lock("apply-rules"), collection.ledger() as ledger:
         report = plan(ledger, recipe)
         record(ledger, recipe, report)
     return report

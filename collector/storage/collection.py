@@ -155,35 +155,41 @@ class Collection:
             fh.write(text if text.endswith("\n") else text + "\n")
 
     @contextlib.contextmanager
-    def gather_lock(self) -> Iterator[None]:
-        """Hold the folder's gather lock; a second holder gets a clear CollectionError.
-        The lock file is opened with O_NOFOLLOW: a planted link is refused, never truncated.
-        The lock itself is portalocker's (:mod:`collector.storage.file_locks`)."""
+    def gather_lock(self, command: str = "gather") -> Iterator[None]:
+        """Hold the folder's gather lock for ``command`` (gather, remeasure, apply-rules...);
+        a second holder gets a clear CollectionError naming the command and process that hold
+        it. The lock file is opened with O_NOFOLLOW: a planted link is refused, never
+        truncated. The lock itself is portalocker's (:mod:`collector.storage.file_locks`)."""
         path = self.root / LOCK_NAME
         with os.fdopen(open_own_file(path, os.O_RDWR | os.O_CREAT), "r+b", buffering=0) as fh:
             try:
                 lock_exclusive(fh, wait=False)
             except LockHeldElsewhere as exc:
+                pid, held_by = _lock_holder(fh)
+                what = ("another gather is" if held_by == "gather"
+                        else f"'collector {held_by}' is")
                 raise CollectionError(
-                    f"another gather is already running on {self.root} (process "
-                    f"{_lock_holder(fh)}); wait for it to finish or stop it. "
-                    "'collector status' works meanwhile."
+                    f"{what} already running on {self.root} (process {pid}); wait for it "
+                    "to finish or stop it. 'collector status' works meanwhile."
                 ) from exc
             fh.seek(0)
             fh.truncate()
-            fh.write(str(os.getpid()).encode())
+            fh.write(f"{os.getpid()} {command}".encode())
             fh.flush()
             yield
 
 
-def _lock_holder(fh: IO[bytes]) -> str:
-    """The process number the lock holder wrote, or "?" (Windows refuses reading a locked
-    range from another handle)."""
+def _lock_holder(fh: IO[bytes]) -> tuple[str, str]:
+    """The process number and command the lock holder wrote ("?" and "gather" when unknown:
+    a lock written by an older collector holds only the number, and Windows refuses reading
+    a locked range from another handle)."""
     try:
         fh.seek(0)
-        return fh.read(64).decode(errors="replace").strip() or "?"
+        words = fh.read(64).decode(errors="replace").split()
     except OSError:
-        return "?"
+        words = []
+    command = words[1] if len(words) > 1 and words[1].replace("-", "").isalpha() else "gather"
+    return (words[0] if words else "?"), command
 
 
 def store_has_files(collection: Collection) -> bool:

@@ -153,7 +153,7 @@ def restore_ledger(root: Path, backup: Path | None = None) -> RestoreResult:
     the store); if it is not, nothing is changed.
     """
     collection = _collection_folder(root)
-    with collection.gather_lock():
+    with collection.gather_lock("restore-ledger"):
         if backup is None:
             backups = list_backups(collection)
             if not backups:
@@ -258,7 +258,7 @@ def rebuild_ledger(root: Path) -> RebuildResult:
     provenance. An unusable ledger (empty, no schema, not SQLite, another collection's,
     re-created) is set aside first and a new one is made with the folder's collection id."""
     collection = _collection_folder(root)
-    with collection.gather_lock():
+    with collection.gather_lock("rebuild-ledger"):
         ledger = _usable_ledger(collection)
         if ledger is not None:
             result = RebuildResult(None)
