@@ -29,6 +29,7 @@ SAMPLE_ARGS: dict[str, Any] = {
     # the diversity panel's bins (collector.exports.diversity)
     "grey_chroma": 6.0, "lightness_edges": (50,), "chroma_edges": (6, 30),
     "pixel_edges": (0.1, 1), "aspect_edges": (1,), "max_colour_files": 10,
+    "hash_algo": "dct-phash-64/draft-v2", "window_algo": "dct-phash-64/windows-80-4x4-v1",
 }
 
 # The read modules: status/trace/hash index, the datasheet and release, its diversity panel.

@@ -289,6 +289,21 @@ def test_a_second_run_finds_nothing_due_and_all_changes_nothing(gathered) -> Non
         assert not ledger.fact(ALL_DONE_UPTO)
 
 
+def test_status_tells_of_files_measured_before_until_remeasured(gathered) -> None:
+    """collector status names the stored files an older collector measured (old hash
+    pipeline, no transparency share or crop windows) and the command that updates them; the
+    line is gone once remeasure ran."""
+    col = make_old(gathered[0])
+    before = runner.invoke(app, ["status", str(col.root), "--json"])
+    assert json.loads(before.output)["measured_before"] == 8  # every stored file
+    assert "collector remeasure" in runner.invoke(app, ["status", str(col.root)]).output
+    remeasure(col)
+    after = runner.invoke(app, ["status", str(col.root)])
+    assert "measured by an older collector" not in after.output
+    assert json.loads(runner.invoke(app, ["status", str(col.root), "--json"]).output)[
+        "measured_before"] == 0
+
+
 def test_dry_run_counts_and_changes_nothing(gathered) -> None:
     """--dry-run counts the files due per fact and leaves the ledger as it was."""
     col = make_old(gathered[0])

@@ -34,6 +34,7 @@ from typing import NamedTuple
 import numpy as np
 from PIL import Image
 
+from collector.checks.hash_versions import HASH_ALGO, WINDOW_ALGO
 from collector.checks.pixels import hash_ready, is_blank
 
 __all__ = [
@@ -61,9 +62,7 @@ __all__ = [
     "windows_of",
 ]
 
-# v2: 16-bit, float and transparent pictures hashed through pixels.hash_ready (scaled, on
-# white) instead of a clipping convert("L"); 8-bit pictures without transparency hash as in v1.
-HASH_ALGO = "dct-phash-64/draft-v2"
+# HASH_ALGO and WINDOW_ALGO: collector.checks.hash_versions (imported above, named in __all__).
 
 _HASH_SIZE = 8
 _IMG_SIZE = _HASH_SIZE * 4  # highfreq_factor 4, as imagehash
@@ -210,7 +209,6 @@ _WINDOW_SIDE = 0.8
 _WINDOW_STEPS = (0.0, 1 / 15, 2 / 15, 3 / 15)
 WINDOWS: tuple[tuple[float, float, float, float], ...] = tuple(
     (x, y, x + _WINDOW_SIDE, y + _WINDOW_SIDE) for y in _WINDOW_STEPS for x in _WINDOW_STEPS)
-WINDOW_ALGO = "dct-phash-64/windows-80-4x4-v1"
 
 
 # Pictures larger than this (shorter side, pixels) are first reduced by a whole factor (box

@@ -14,6 +14,7 @@ from datetime import datetime
 from typing import Any
 
 from collector import sources
+from collector.checks.hash_versions import HASH_ALGO, WINDOW_ALGO
 from collector.checks.reservations import RESERVATION_REASONS
 from collector.config.recipe import Recipe
 from collector.errors import CollectorError
@@ -58,6 +59,7 @@ class Summary:
     last_run_seconds: float | None = None
     origins: list[queries.FileOrigin] = field(default_factory=list)
     set_aside: Counter[str] = field(default_factory=Counter)  # pixel rule -> files it sets aside
+    measured_before: int = 0  # stored files whose facts `collector remeasure` would update
     reservations: datasheet_queries.ReservationFacts = field(
         default_factory=lambda: datasheet_queries.ReservationFacts((), (), (), ()))
 
@@ -85,6 +87,7 @@ def summarise(ledger: Ledger) -> Summary:
             s.flags[flag.split(":", 1)[0]] += 1
     s.notes.update(dict(t.notes))
     s.set_aside.update(dict(queries.set_aside_counts(ledger)))
+    s.measured_before = queries.files_measured_before(ledger, HASH_ALGO, WINDOW_ALGO)
     s.reservations = datasheet_queries.reservation_facts(ledger, RESERVATION_REASONS)
     return s
 
@@ -99,7 +102,7 @@ def summary_as_dict(s: Summary) -> dict[str, Any]:
         "file_origins": [o._asdict() for o in s.origins],
         "hosts": [vars(h) for h in s.hosts], "licences": dict(s.licences),
         "flags": dict(s.flags), "notes": dict(s.notes), "runs": s.runs,
-        "set_aside": dict(s.set_aside),
+        "set_aside": dict(s.set_aside), "measured_before": s.measured_before,
         "run_seconds": round(s.run_seconds, 3), "last_run": s.last_run,
         "last_run_seconds": s.last_run_seconds,
         "reservations": {
@@ -143,6 +146,10 @@ def format_summary(s: Summary) -> list[str]:
                      f"{s.files:,} files (" + ", ".join(
                          f"{k} {v}" for k, v in s.set_aside.most_common())
                      + "); kept in the store, left out of releases")
+    if s.measured_before:
+        lines.append(f"measured by an older collector: {s.measured_before:,} stored files "
+                     "(hashes, transparency or crop windows); `collector remeasure` on this "
+                     "folder brings them up to date, offline")
     if s.last_run:
         lines.append(f"last run: #{s.last_run['id']} started {s.last_run['started_at']}, "
                      f"{human_seconds(s.last_run_seconds or 0)}, {s.last_run['outcome']}")

@@ -132,6 +132,19 @@ def set_aside_counts(ledger: Ledger) -> tuple[tuple[str, int], ...]:
         "GROUP BY set_aside ORDER BY 2 DESC, 1"))
 
 
+def files_measured_before(ledger: Ledger, hash_algo: str, window_algo: str) -> int:
+    """Stored files (bytes kept) whose perceptual hashes, transparency share or crop window
+    hashes an older collector made or did not make (what ``collector remeasure`` brings up to
+    date); in a ledger older than those columns, every stored file."""
+    columns = ledger.columns("files")
+    if not {"transparent_share", "window_algo", "removed_at"} <= set(columns):
+        return int(ledger.scalar("SELECT count(*) FROM files") or 0)
+    return int(ledger.scalar(
+        "SELECT count(*) FROM files WHERE removed_at IS NULL AND (hash_algo IS NOT ? "
+        "OR transparent_share IS NULL OR window_algo IS NOT ?)", (hash_algo, window_algo))
+        or 0)
+
+
 def pending_image_urls(ledger: Ledger) -> Iterator[str]:
     """The image URL of every item a next run would fetch (pending, failed, deferred)."""
     for row in ledger.stream("SELECT image_url FROM items WHERE state IN "
