@@ -17,7 +17,7 @@ from typing import Any
 
 import pytest
 from support.cluster import is_image_request, wrong_items
-from support.collections import grid_picture
+from support.collections import grid_picture, one_listing_recipe
 from support.server import LoopbackServer, json_answer
 
 from collector.demo_site import DemoServer
@@ -80,24 +80,6 @@ def test_cluster_run_writes_every_request_to_the_ledger(cluster_demo_run) -> Non
 
 
 
-RECIPE = '''contact = "x@example.org"
-[budgets]
-min_interval = 0.1
-[network]
-allow_addresses = ["127.0.0.1/32"]
-[[sources]]
-name = "leaves"
-kind = "json_api"
-url = "{url}"
-[sources.pagination]
-style = "none"
-[sources.fields]
-items = "results"
-id = "id"
-title = "title"
-licence = "licence"
-image_url = "image"
-'''
 
 
 def _terminate_once() -> Any:
@@ -127,7 +109,7 @@ def test_a_cluster_run_asked_to_stop_stops(ask: str, tmp_path: Path) -> None:
         server.route("/robots.txt", (404, b""))
         server.route("/items", json_answer({"results": items}))
         col = init_collection(tmp_path / "c", contact="x@example.org")
-        col.recipe_path.write_text(RECIPE.format(url=server.url("/items")))
+        col.recipe_path.write_text(one_listing_recipe(server.url("/items")))
         with connect(local_workers=1, processes=False, threads=4) as client, \
                 prepared_run(col) as (recipe, ledger):
             began = time.monotonic()

@@ -7,32 +7,13 @@ from __future__ import annotations
 
 from pathlib import Path
 
-from support.collections import grid_picture
+from support.collections import grid_picture, one_listing_recipe
 from support.server import LoopbackServer, json_answer
 
 from collector.run.cluster import run_on_cluster
 from collector.run.cluster_setup import connect
 from collector.run.gather import prepared_run
 from collector.storage.collection import init_collection
-
-RECIPE = '''contact = "x@example.org"
-[budgets]
-min_interval = 0.1
-[network]
-allow_addresses = ["127.0.0.1/32"]
-[[sources]]
-name = "leaves"
-kind = "json_api"
-url = "{url}"
-[sources.pagination]
-style = "none"
-[sources.fields]
-items = "results"
-id = "id"
-title = "title"
-licence = "licence"
-image_url = "image"
-'''
 
 
 def test_the_address_guard_holds_on_the_workers(tmp_path: Path) -> None:
@@ -49,7 +30,7 @@ def test_the_address_guard_holds_on_the_workers(tmp_path: Path) -> None:
                                    ("redirected", server.url("/img/away.png")))]
         server.route("/items", json_answer({"results": items}))
         col = init_collection(tmp_path / "c", contact="x@example.org")
-        col.recipe_path.write_text(RECIPE.format(url=server.url("/items")))
+        col.recipe_path.write_text(one_listing_recipe(server.url("/items")))
         with connect(local_workers=1, processes=False, threads=4) as client, \
                 prepared_run(col) as (recipe, ledger):
             result = run_on_cluster(col, recipe, ledger, client)

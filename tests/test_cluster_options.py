@@ -12,7 +12,7 @@ from pathlib import Path
 from typing import Any
 
 import pytest
-from support.collections import grid_picture
+from support.collections import grid_picture, one_listing_recipe
 from support.server import LoopbackServer, json_answer
 
 from collector.errors import ClusterError
@@ -81,7 +81,8 @@ def test_without_dask_a_gather_runs_on_this_machine_as_before(tmp_path) -> None:
         server.route("/robots.txt", (404, b""))
         server.route("/items", json_answer({"results": items}))
         folder = init_collection(tmp_path / "c", contact="x@example.org").root
-        (folder / "recipe.toml").write_text(RECIPE.format(url=server.url("/items")))
+        recipe = one_listing_recipe(server.url("/items"), min_interval=None)
+        (folder / "recipe.toml").write_text(recipe)
         refused = _collector_without_dask("gather", str(folder), "--local-workers", "2")
         asked_before = len(server.hits)
         plain = _collector_without_dask("gather", str(folder), "--quiet")
@@ -94,19 +95,3 @@ def test_without_dask_a_gather_runs_on_this_machine_as_before(tmp_path) -> None:
     assert {r["state"]: r["n"] for r in rows} == {"stored": 2}
 
 
-RECIPE = '''contact = "x@example.org"
-[network]
-allow_addresses = ["127.0.0.1/32"]
-[[sources]]
-name = "leaves"
-kind = "json_api"
-url = "{url}"
-[sources.pagination]
-style = "none"
-[sources.fields]
-items = "results"
-id = "id"
-title = "title"
-licence = "licence"
-image_url = "image"
-'''

@@ -30,6 +30,31 @@ def one_page_recipe(port: int) -> str:
             .replace('per_page = "20"', 'per_page = "10"'))
 
 
+def one_listing_recipe(url: str, *, min_interval: float | None = 0.1) -> str:
+    """A recipe over one JSON listing at ``url`` on 127.0.0.1 (``results`` with ``id``,
+    ``title``, ``licence`` and ``image`` each), no pagination; ``min_interval`` None keeps the
+    default budget."""
+    budget = f"[budgets]\nmin_interval = {min_interval}\n" if min_interval is not None else ""
+    return 'contact = "x@example.org"\n' + budget + LISTING_BODY.format(url=url)
+
+
+LISTING_BODY = '''[network]
+allow_addresses = ["127.0.0.1/32"]
+[[sources]]
+name = "leaves"
+kind = "json_api"
+url = "{url}"
+[sources.pagination]
+style = "none"
+[sources.fields]
+items = "results"
+id = "id"
+title = "title"
+licence = "licence"
+image_url = "image"
+'''
+
+
 def grid_picture(seed: int, fmt: str = "PNG") -> bytes:
     """A distinct 160x120 picture for each seed, as file bytes: a seeded random 8x6 grid of grey
     levels, enlarged (unrelated pictures, far apart in perceptual hash)."""
