@@ -364,23 +364,28 @@ def _atomic_write_text(path: Path, text: str) -> None:
 
 def check_out_folder(root: Path, out: Path, *, overwrite: bool) -> None:
     """Refuse an output folder that is a file, lies in the store, or holds files (unless
-    --overwrite, which replaces only this export's own files). Inside the collection folder
-    (the default DIR/datasheet) no part of it may be a symbolic link (refused); a folder
-    outside it is the user's own choice."""
+    --overwrite, which replaces only this export's own files); see :func:`check_out_place`."""
+    check_out_place(root, out, "datasheet")
+    if out.is_dir() and any(out.iterdir()) and not overwrite:
+        raise CollectionError(
+            f"{out} is not empty; nothing was written. Choose an empty or new folder, or pass "
+            "--overwrite to replace this export's own files (nothing else is touched or "
+            "deleted)")
+
+
+def check_out_place(root: Path, out: Path, default: str) -> None:
+    """Refuse an output folder (of an export whose default is DIR/``default``) that is a file
+    or lies in the store. Inside the collection folder no part of it may be a symbolic link
+    (refused); a folder outside it is the user's own choice."""
     if _inside(root, out):
         own_folder(_absolute(root), _absolute(out))
     store = (root / "files").resolve()
     target = out.resolve()
     if target == store or store in target.parents:
         raise CollectionError(f"{out} is inside the collection's file store {store}; choose "
-                              "another output folder (e.g. the default DIR/datasheet)")
+                              f"another output folder (e.g. the default DIR/{default})")
     if out.exists() and not out.is_dir():
         raise CollectionError(f"{out} exists and is not a folder; choose another --out")
-    if out.is_dir() and any(out.iterdir()) and not overwrite:
-        raise CollectionError(
-            f"{out} is not empty; nothing was written. Choose an empty or new folder, or pass "
-            "--overwrite to replace this export's own files (nothing else is touched or "
-            "deleted)")
 
 
 def _absolute(path: Path) -> Path:

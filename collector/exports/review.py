@@ -68,16 +68,9 @@ def check_review_folder(root: Path, out: Path) -> None:
     """Refuse an output folder that is a file, lies in the store, or holds anything but a
     previous review's own files (``review.html``, the ``review-*.html`` pages, ``thumbs/``).
     Inside the collection folder no part of it may be a symbolic link."""
-    absolute_root, absolute_out = Path(os.path.abspath(root)), Path(os.path.abspath(out))
-    if absolute_out.is_relative_to(absolute_root):
-        own_folder(absolute_root, absolute_out)
-    store = (root / "files").resolve()
-    target = out.resolve()
-    if target == store or store in target.parents:
-        raise CollectionError(f"{out} is inside the collection's file store {store}; choose "
-                              "another output folder (e.g. the default DIR/review)")
-    if out.exists() and not out.is_dir():
-        raise CollectionError(f"{out} exists and is not a folder; choose another --out")
+    from collector.exports.datasheet import check_out_place
+
+    check_out_place(root, out, "review")
     others = sorted(p.name for p in out.iterdir() if not _ours(p.name)) if out.is_dir() else []
     if others:
         raise CollectionError(
