@@ -11,12 +11,8 @@ markup).
 from __future__ import annotations
 
 import io
-import os
 import re
-import shutil
 import sqlite3
-import subprocess
-import sys
 from html.parser import HTMLParser
 from pathlib import Path
 from typing import Any
@@ -24,6 +20,7 @@ from typing import Any
 import numpy as np
 import pytest
 from PIL import Image
+from support.browser import assert_opens_without_console_errors, needs_chromium
 from typer.testing import CliRunner
 
 from collector.cli import app
@@ -36,16 +33,10 @@ from collector.exports.thumbnails import render_thumbnail, thumb_size
 from collector.run.gather import gather
 from collector.storage.collection import Collection, init_collection
 
-SCREENSHOT = Path(__file__).resolve().parents[1] / "bench" / "datasheet_screenshot.py"
 HOSTILE_SCRIPT = "Fern <script>alert(1)</script> & frond"
 HOSTILE_ATTRIBUTE = 'Moss" onmouseover="alert(2)'
 runner = CliRunner()
 
-needs_chromium = pytest.mark.skipif(
-    shutil.which("chromium") is None and shutil.which("chromium-browser") is None
-    and os.environ.get("COLLECTOR_BROWSER_CHECK") != "required",
-    reason="chromium is not installed; browser check skipped (Debian/Ubuntu: "
-           "sudo apt-get install chromium)")
 
 
 class Sheet(HTMLParser):
@@ -248,11 +239,7 @@ def test_sheet_opens_in_headless_chromium_without_console_errors(
     window's size with the thumbnails drawn (strongly coloured pixels: the page's own colours
     are greys, a pale yellow and link blue)."""
     png = tmp_path / "review.png"
-    proc = subprocess.run([sys.executable, str(SCREENSHOT), str(reviewed["sheet"]), str(png)],
-                          capture_output=True, text=True, timeout=180)
-    assert proc.returncode == 0, proc.stdout + proc.stderr
-    assert re.search(r"^console errs\s+0$", proc.stdout, re.M), proc.stdout
-    assert png.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"  # PNG signature (standards.md §9)
+    assert_opens_without_console_errors(reviewed["sheet"], png)  # and a PNG screenshot
     with Image.open(png) as shot:
         assert shot.size == (1100, 2400)  # the window bench/datasheet_screenshot.py asks for
         rgb = np.asarray(shot.convert("RGB").resize((110, 240), Image.Resampling.BOX), int)
