@@ -18,10 +18,10 @@ import time
 from pathlib import Path
 
 import pytest
+from support.collections import Gathered
 from support.probes import files_count
 
 from collector.demo_site import DemoServer
-from collector.demo_site.recipes import render
 from collector.run.gather import gather
 from collector.storage.collection import Collection, init_collection
 
@@ -70,15 +70,14 @@ def run_and_kill(col: Collection, files_at_least: int, timeout: float = 90) -> N
 
 @pytest.mark.slow
 def test_killed_runs_resume_to_the_same_result_without_refetching(
-        demo_server: DemoServer, demo_content: Path, tmp_path: Path) -> None:
+        demo_gathered: Gathered, demo_server: DemoServer, tmp_path: Path) -> None:
     """SIGKILL at start-up and at 10, 40 and 80 stored files; the resumed run equals an
     uninterrupted one (item states and sha256 set), leaves no temp file, re-verifies every
     stored file's sha256, and never requests again an image it had already stored."""
-    recipe = render("demo", demo_server.port, demo_content / "scans")
-    reference = init_collection(tmp_path / "reference", contact="x@example.org")
-    reference.recipe_path.write_text(recipe)
-    demo_server.reset()
-    gather(reference)
+    # The uninterrupted run: the session's gather of the same demo recipe from the same
+    # server (conftest.py), read only.
+    reference = Collection(demo_gathered.root)
+    recipe = reference.recipe_path.read_text()
 
     col = init_collection(tmp_path / "killed", contact="x@example.org")
     col.recipe_path.write_text(recipe)

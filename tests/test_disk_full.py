@@ -15,7 +15,7 @@ from pathlib import Path
 from typing import Any
 
 import pytest
-from support.collections import one_page_recipe
+from support.collections import Gathered, one_page_recipe
 from typer.testing import CliRunner
 
 from collector.cli import app
@@ -72,14 +72,11 @@ class _FullFile:
 
 
 @pytest.fixture(scope="module")
-def reference(demo_server: DemoServer, tmp_path_factory: pytest.TempPathFactory) -> set[tuple]:
-    """The outcome of an uninterrupted run of the small recipe."""
-    demo_server.reset()
-    col = init_collection(tmp_path_factory.mktemp("disk-full") / "ref", contact="x@example.org")
-    col.recipe_path.write_text(one_page_recipe(demo_server.port))
-    assert gather(col).outcome == "finished"
-    demo_server.reset()
-    result = outcome(col)
+def reference(page_gathered: Gathered) -> set[tuple]:
+    """The outcome of an uninterrupted run of the small recipe (the session's
+    ``page_gathered``, conftest.py, read only)."""
+    assert page_gathered.result.outcome == "finished"
+    result = outcome(Collection(page_gathered.root))
     assert len(result) == 10
     return result
 

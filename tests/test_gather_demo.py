@@ -16,15 +16,15 @@ from pathlib import Path
 from typing import Any
 
 import pytest
+from support.collections import Gathered
 
 from collector import __version__
 from collector.demo_site import DemoServer
-from collector.demo_site.recipes import render
 from collector.exports.summary import format_summary, summarise
 from collector.run.gather import gather
 from collector.run.set_aside import apply_rules
 from collector.storage import upkeep_queries
-from collector.storage.collection import Collection, init_collection, open_collection
+from collector.storage.collection import Collection, open_collection
 
 
 def ledger_items(col: Collection) -> dict[tuple[str, str], dict[str, Any]]:
@@ -50,15 +50,13 @@ def find(keyed: dict, server: DemoServer, source: str, key: str, page_url: str |
 
 
 @pytest.fixture(scope="module")
-def demo_run(demo_server: DemoServer, demo_content: Path,
+def demo_run(demo_gathered: Gathered,
              tmp_path_factory: pytest.TempPathFactory) -> tuple[Collection, list, Any]:
-    """One gather of the demo recipe from an empty folder; returns the folder, the server log
-    of that run, and the run result."""
-    demo_server.reset()
-    col = init_collection(tmp_path_factory.mktemp("demo") / "c", contact="x@example.org")
-    col.recipe_path.write_text(render("demo", demo_server.port, demo_content / "scans"))
-    result = gather(col)
-    return col, list(demo_server.log), result
+    """The session's one gather of the demo recipe from an empty folder (``demo_gathered`` in
+    conftest.py), in this module's own copy (its tests add a run, the trace index and a
+    datasheet); returns the folder, the server log of that run, and the run result."""
+    col = demo_gathered.copy_to(tmp_path_factory.mktemp("demo") / "c")
+    return col, list(demo_gathered.log), demo_gathered.result
 
 
 def test_every_manifest_item_ends_in_its_expected_state(demo_run, demo_server) -> None:

@@ -16,12 +16,11 @@ import sqlite3
 from pathlib import Path
 
 import pytest
-from support.collections import one_page_recipe
+from support.collections import Gathered
 from typer.testing import CliRunner
 
 from collector.cli import app
 from collector.demo_site import DemoServer
-from collector.demo_site.recipes import render
 from collector.errors import CollectionError, LedgerUnusable
 from collector.run.gather import gather
 from collector.storage.collection import (
@@ -62,29 +61,20 @@ def provenance(col: Collection) -> list[tuple]:
     return items + files
 
 
-@pytest.fixture(scope="module")
-def gathered_demo(demo_server: DemoServer, demo_content: Path,
-                  tmp_path_factory: pytest.TempPathFactory) -> Path:
-    """The whole demo archive gathered once into a collection (copied by each test)."""
-    col = init_collection(tmp_path_factory.mktemp("gathered") / "demo", contact="x@example.org")
-    col.recipe_path.write_text(render("demo", demo_server.port, demo_content / "scans"))
-    demo_server.reset()
-    assert gather(col).outcome == "finished"
-    return col.root
+@pytest.fixture
+def demo_copy(demo_gathered: Gathered, tmp_path: Path) -> Collection:
+    """A private copy of the whole demo archive gathered once into a collection (the
+    session's ``demo_gathered``, conftest.py)."""
+    assert demo_gathered.result.outcome == "finished"
+    return demo_gathered.copy_to(tmp_path / "demo")
 
 
 @pytest.fixture
-def demo_copy(gathered_demo: Path, tmp_path: Path) -> Collection:
-    """A private copy of the gathered demo collection."""
-    return Collection(Path(shutil.copytree(gathered_demo, tmp_path / "demo")))
-
-
-@pytest.fixture
-def small(fresh_demo_server: DemoServer, tmp_path: Path) -> Collection:
-    """A small collection (10 items of one API page) gathered from the demo archive."""
-    col = init_collection(tmp_path / "small", contact="x@example.org")
-    col.recipe_path.write_text(one_page_recipe(fresh_demo_server.port))
-    assert gather(col).outcome == "finished"
+def small(page_gathered: Gathered, fresh_demo_server: DemoServer, tmp_path: Path) -> Collection:
+    """A small collection (10 items of one API page) gathered from the demo archive: a
+    private copy of the session's ``page_gathered`` (conftest.py), the server reset."""
+    assert page_gathered.result.outcome == "finished"
+    col = page_gathered.copy_to(tmp_path / "small")
     with col.ledger(readonly=True) as ledger:
         assert ledger.store_intents() == set()  # every intent went with its files row
     return col

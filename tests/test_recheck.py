@@ -12,7 +12,7 @@ from typing import Any
 
 import pytest
 from PIL import Image
-from support.collections import one_page_recipe
+from support.collections import Gathered
 from support.server import LoopbackServer, json_answer
 from typer.testing import CliRunner
 
@@ -45,16 +45,17 @@ def _store_snapshot(col: Collection) -> dict[str, tuple[str, int]]:
 
 
 @pytest.fixture(scope="module")
-def changed(tmp_path_factory: pytest.TempPathFactory, demo_server: DemoServer):
+def changed(tmp_path_factory: pytest.TempPathFactory, demo_server: DemoServer,
+            page_gathered: Gathered):
     """A collection gathered twice (the recipe changed between), one item withdrawn, then the
     archive changed (one licence, two objects removed, one image's bytes replaced) and a
-    re-check run; the archive is restored afterwards. (The resume test, last, adds runs.)"""
+    re-check run; the archive is restored afterwards. (The resume test, last, adds runs.)
+    The first gather is a copy of the session's ``page_gathered`` (conftest.py)."""
     fresh_demo_server = demo_server
     fresh_demo_server.reset()
-    col = init_collection(tmp_path_factory.mktemp("recheck") / "c", contact="me@example.org")
-    recipe = one_page_recipe(fresh_demo_server.port)
-    col.recipe_path.write_text(recipe)
-    assert gather(col).outcome == "finished"
+    assert page_gathered.result.outcome == "finished"
+    col = page_gathered.copy_to(tmp_path_factory.mktemp("recheck") / "c")
+    recipe = col.recipe_path.read_text()
     col.recipe_path.write_text(recipe.replace("min_interval = 0.1", "min_interval = 0.12"))
     assert gather(col).outcome == "finished"
     with col.ledger() as ledger:

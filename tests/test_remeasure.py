@@ -19,7 +19,7 @@ from typing import Any
 import numpy as np
 import pytest
 from PIL import Image
-from support.collections import one_page_recipe, scan_image
+from support.collections import Gathered, scan_image
 from typer.testing import CliRunner
 
 from collector.checks.phash import (
@@ -380,12 +380,13 @@ def test_the_command_reports_and_exits_1_for_a_missing_file(gathered) -> None:
     assert "moved by more than near_distance = 8 bits" in out.output
 
 
-def test_nothing_is_requested(fresh_demo_server, tmp_path: Path) -> None:
-    """A collection gathered from the demo archive is remeasured (--all) with the archive's
-    server watching: its request log stays empty, and the facts are back."""
-    col = init_collection(tmp_path / "web", contact="me@example.org")
-    col.recipe_path.write_text(one_page_recipe(fresh_demo_server.port))
-    assert gather(col).outcome == "finished"
+def test_nothing_is_requested(page_gathered: Gathered, fresh_demo_server,
+                              tmp_path: Path) -> None:
+    """A collection gathered from the demo archive (a copy of the session's one-page gather,
+    conftest.py) is remeasured (--all) with the archive's server watching: its request log
+    stays empty, and the facts are back."""
+    assert page_gathered.result.outcome == "finished"
+    col = page_gathered.copy_to(tmp_path / "web")
     fresh = facts_by_key(col)
     old = make_old(col.root)
     fresh_demo_server.clear_log()

@@ -21,17 +21,15 @@ import numpy as np
 import pytest
 from PIL import Image
 from support.browser import assert_opens_without_console_errors, needs_chromium
+from support.collections import Gathered
 from typer.testing import CliRunner
 
 from collector.cli import app
-from collector.demo_site import DemoServer
-from collector.demo_site.recipes import render
 from collector.errors import CollectionError
 from collector.exports import review_groups as rg
 from collector.exports.review import write_review
 from collector.exports.thumbnails import render_thumbnail, thumb_size
-from collector.run.gather import gather
-from collector.storage.collection import Collection, init_collection
+from collector.storage.collection import Collection
 
 HOSTILE_SCRIPT = "Fern <script>alert(1)</script> & frond"
 HOSTILE_ATTRIBUTE = 'Moss" onmouseover="alert(2)'
@@ -90,15 +88,12 @@ def _db(col: Collection) -> sqlite3.Connection:
 
 
 @pytest.fixture(scope="module")
-def reviewed(demo_server: DemoServer, demo_content: Path,
+def reviewed(demo_gathered: Gathered,
              tmp_path_factory: pytest.TempPathFactory) -> dict[str, Any]:
-    """The demo gathered once and reviewed twice through the command: before and after one
-    file was withdrawn, two were set aside (written into the ledger as a pixel rule would)
-    and two titles were made hostile."""
-    demo_server.reset()
-    col = init_collection(tmp_path_factory.mktemp("review") / "c", contact="x@example.org")
-    col.recipe_path.write_text(render("demo", demo_server.port, demo_content / "scans"))
-    gather(col)
+    """The demo gathered once (a copy of the session's ``demo_gathered``, conftest.py) and
+    reviewed twice through the command: before and after one file was withdrawn, two were set
+    aside (written into the ledger as a pixel rule would) and two titles were made hostile."""
+    col = demo_gathered.copy_to(tmp_path_factory.mktemp("review") / "c")
     first = runner.invoke(app, ["review", str(col.root)])
     assert first.exit_code == 0, first.output
     with _db(col) as db:

@@ -13,18 +13,17 @@ import pytest
 from support.fetcher import FakeFetcher, collect
 from test_splitter import iou
 
-from collector.demo_site import DemoServer, generate
+from collector.demo_site import DemoServer
 from collector.demo_site.recipes import render
 from collector.fetching.fetcher import Fetcher, FetchSettings
 
 
 @pytest.fixture(scope="module")
-def demo(tmp_path_factory: pytest.TempPathFactory) -> Iterator[tuple[DemoServer, Path]]:
-    """The generated demo archive served without a rate limit (adapters only list pages)."""
-    folder = tmp_path_factory.mktemp("demo")
-    generate(folder)
-    with DemoServer(folder, rate=0, slow={}) as server:
-        yield server, folder
+def demo(demo_content: Path) -> Iterator[tuple[DemoServer, Path]]:
+    """The session's generated demo archive (conftest.py) served by a server of this module's
+    own without a rate limit (adapters only list pages)."""
+    with DemoServer(demo_content, rate=0, slow={}) as server:
+        yield server, demo_content
 
 
 def demo_sources(server: DemoServer, folder: Path) -> dict[str, dict[str, Any]]:

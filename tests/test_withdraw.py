@@ -9,7 +9,7 @@ import hashlib
 from pathlib import Path
 
 import pytest
-from support.collections import one_page_recipe, scans_collection
+from support.collections import Gathered, scans_collection
 from typer.testing import CliRunner
 
 from collector.cli import app
@@ -22,7 +22,7 @@ from collector.run.gather import gather
 from collector.storage import datasheet_queries
 from collector.storage import ledger as ledger_module
 from collector.storage import upkeep_queries as uq
-from collector.storage.collection import Collection, init_collection, open_collection
+from collector.storage.collection import Collection, open_collection
 from collector.storage.ledger import Ledger
 from collector.storage.migrations import MIGRATIONS
 from collector.storage.withdrawals import undo, withdraw
@@ -31,11 +31,11 @@ runner = CliRunner()
 KEY = "FH-S-0002"  # an item of the demo's first listing page, stored by every gather
 
 
-def _gathered(root: Path, server: DemoServer) -> Collection:
-    col = init_collection(root, contact="me@example.org")
-    col.recipe_path.write_text(one_page_recipe(server.port))
-    assert gather(col).outcome == "finished"
-    return col
+def _gathered(root: Path, page: Gathered) -> Collection:
+    """A private copy at ``root`` of the demo's first listing page gathered (the session's
+    ``page_gathered``, conftest.py)."""
+    assert page.result.outcome == "finished"
+    return page.copy_to(root)
 
 
 def _item(col: Collection, key: str) -> uq.ItemBrief:
@@ -58,12 +58,12 @@ def _image_requests(server: DemoServer, key: str) -> int:
     return sum(1 for r in server.log if r.path.endswith(f"/{key}.png"))
 
 
-def test_withdrawn_item_leaves_releases_and_trace_says_so(tmp_path: Path,
-                                                           fresh_demo_server: DemoServer) -> None:
+def test_withdrawn_item_leaves_releases_and_trace_says_so(
+        tmp_path: Path, page_gathered: Gathered, fresh_demo_server: DemoServer) -> None:
     """Withdrawn by source key (bytes kept): provenance.csv and attribution.csv leave it out,
     trace says "withdrawn on <date>: <reason>", a rerun does not request it, undo brings it
     back."""
-    col = _gathered(tmp_path / "c", fresh_demo_server)
+    col = _gathered(tmp_path / "c", page_gathered)
     item = _item(col, KEY)
     assert item.file_sha256 is not None
     before, _ = _released(col, tmp_path / "r0")
@@ -97,11 +97,11 @@ def test_withdrawn_item_leaves_releases_and_trace_says_so(tmp_path: Path,
 
 
 def test_withdrawal_with_deleted_bytes_is_fetched_again_after_undo(
-        tmp_path: Path, fresh_demo_server: DemoServer) -> None:
+        tmp_path: Path, page_gathered: Gathered, fresh_demo_server: DemoServer) -> None:
     """Withdrawn by sha256 prefix with --delete-bytes: the store no longer holds the file,
     every command still opens the collection (the ledger-vs-store check), a rerun does not
     fetch it; after undo the next gather fetches it again and a release holds it."""
-    col = _gathered(tmp_path / "c", fresh_demo_server)
+    col = _gathered(tmp_path / "c", page_gathered)
     sha = _item(col, KEY).file_sha256
     assert sha is not None
     result = runner.invoke(app, ["withdraw", str(col.root), sha[:10], "--reason",

@@ -4,18 +4,26 @@
   without an item limit (a quick web gather against ``fresh_demo_server``).
 - :func:`grid_picture`: a distinct small picture per seed, as PNG or JPEG bytes.
 - :func:`scans_collection`: a collection over a few generated scans, gathered once, no network.
+- :func:`gather_once` and :class:`Gathered`: a web gather made once per test session
+  (``tests/conftest.py``: ``demo_gathered``, ``page_gathered``), which tests read as it is or
+  change in a private copy (:meth:`Gathered.copy_to`).
 """
 
 from __future__ import annotations
 
+import hashlib
 import io
+import shutil
+from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
 from PIL import Image
 
+from collector.demo_site import DemoServer, RequestRecord
 from collector.demo_site.recipes import render
 from collector.run.gather import gather
+from collector.run.scheduling import RunResult
 from collector.storage.collection import Collection, init_collection
 
 SCANS_SOURCE = ('\n[[sources]]\nname = "desk"\nkind = "scans"\npath = "in"\n'
@@ -81,3 +89,41 @@ def scans_collection(root: Path, count: int = 2, *, gathered: bool = True) -> Co
     if gathered:
         gather(col, fetcher_factory=lambda recipe, ledger: None)
     return col
+
+
+@dataclass(frozen=True)
+class Gathered:
+    """A collection gathered once from an empty folder, with the server's request log of that
+    run and the run's result. The folder stays as the run left it (``gather_once`` checks at
+    the end of the session): tests that change anything change a copy."""
+
+    root: Path
+    log: tuple[RequestRecord, ...]
+    result: RunResult
+
+    def copy_to(self, target: Path) -> Collection:
+        """A private copy of the collection at ``target`` (a new path). The ledger stores no
+        path of the collection folder itself (only the recipe's paths, such as the demo's
+        scans folder outside it), so the copy is the same collection in another place."""
+        return Collection(Path(shutil.copytree(self.root, target, symlinks=True)))
+
+
+def gather_once(server: DemoServer, root: Path, recipe: str) -> Gathered:
+    """Gather ``recipe`` into a new collection at ``root`` from ``server``, reset just before
+    (log cleared, rate buckets refilled, one-off misbehaviours re-armed) and again after, so
+    the tests after it find the server as ``fresh_demo_server`` leaves it."""
+    server.reset()
+    col = init_collection(root, contact="x@example.org")
+    col.recipe_path.write_text(recipe)
+    result = gather(col)
+    gathered = Gathered(col.root, tuple(server.log), result)
+    server.reset()
+    return gathered
+
+
+def folder_digest(root: Path) -> dict[str, str]:
+    """Every file below ``root`` (SQLite's -wal and -shm companions left out: a read-only
+    reader may leave them) -> the sha256 of its bytes (FIPS 180-4)."""
+    return {p.relative_to(root).as_posix(): hashlib.sha256(p.read_bytes()).hexdigest()
+            for p in sorted(root.rglob("*"))
+            if p.is_file() and not p.name.endswith(("-wal", "-shm"))}
