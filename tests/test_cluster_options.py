@@ -81,7 +81,7 @@ def test_without_dask_a_gather_runs_on_this_machine_as_before(tmp_path) -> None:
         server.route("/robots.txt", (404, b""))
         server.route("/items", json_answer({"results": items}))
         folder = init_collection(tmp_path / "c", contact="x@example.org").root
-        recipe = one_listing_recipe(server.url("/items"), min_interval=None)
+        recipe = one_listing_recipe(server.url("/items"), min_interval=0.1)
         (folder / "recipe.toml").write_text(recipe)
         refused = _collector_without_dask("gather", str(folder), "--local-workers", "2")
         asked_before = len(server.hits)
