@@ -58,7 +58,7 @@ from collector.fetching.body import Body, exc_size, read_body
 from collector.fetching.budgets import SYSTEM_CLOCK, Budget, Clock, HostBudgets, budgets_from_recipe
 from collector.fetching.http_target import HopByHopSession, prepared_get, transport_target
 from collector.fetching.kept_pages import keep_answer, kept_answer
-from collector.fetching.retry import Retryable, RetryPolicies
+from collector.fetching.retry import Retryable, RetryPolicies, first_then_retried
 from collector.fetching.robots import (
     MAX_ROBOTS_BYTES,
     MAX_ROBOTS_REDIRECTS,
@@ -353,9 +353,8 @@ class Fetcher:
                                  max_bytes, dest_dir, counter[0], final=counter[0] >= attempts,
                                  truncate=not retry)
 
-        retrying = self._policies.get(attempts, budget)
         try:
-            return retrying(one)
+            return first_then_retried(one, self._policies.get(attempts, budget))
         except Retryable as exc:
             # Retries are used up: one more failed request for the host's circuit breaker.
             self._failed(hk, shown)
