@@ -450,6 +450,11 @@ class Fetcher:
     # -- robots.txt ----------------------------------------------------------------------------
     def _robots_policy(self, url: str) -> RobotsPolicy:
         target = robots_url(url)
+        now = self.clock.time()
+        cached = self._robots.get(target)  # a fresh policy needs no lock (it is replaced whole)
+        if cached is not None and cached.is_fresh(now, self.settings.robots_ttl,
+                                                  self.settings.robots_retry):
+            return cached
         with self._lock:
             lock = self._robots_locks.setdefault(target, threading.Lock())
         with lock:  # one fetch per authority even with many workers
@@ -476,8 +481,9 @@ class Fetcher:
             return policy
 
     def _use_policy(self, target: str, hk: str, policy: RobotsPolicy) -> None:
-        self._robots[target] = policy
+        # Hints first: a thread that finds the policy without the lock paces by its hints.
         self.budgets.apply_hints(hk, policy.hints(self.settings.product_token))
+        self._robots[target] = policy
 
     def _stored_policy(self, hk: str, target: str) -> RobotsPolicy | None:
         row = self.ledger.get_host(hk) if self.ledger is not None else None
