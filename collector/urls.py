@@ -54,8 +54,10 @@ def host_key(url: str) -> str:
 
 def origin(url: str) -> str:
     """``scheme://host:port`` — RFC 9309 §2.3: each scheme+host+port has its own robots.txt."""
-    scheme, _, _ = split_checked(url)
-    return f"{scheme}://{host_key(url)}"
+    scheme, host, port = split_checked(url)
+    if ":" in host:  # IPv6 literal (as host_key writes it)
+        host = f"[{host}]"
+    return f"{scheme}://{host}:{port}"
 
 
 def robots_url(url: str) -> str:

@@ -15,7 +15,7 @@ from collector.errors import FetchError, HostParked
 from collector.fetching.answers import parse_http_date, parse_retry_after
 from collector.fetching.budgets import Budget, FakeClock
 from collector.fetching.fetcher import Fetcher, FetchSettings
-from collector.fetching.retry import Retryable, RetryPolicies
+from collector.fetching.retry import Retryable, RetryPolicies, first_then_retried
 from collector.storage.ledger import Ledger
 
 # RFC 9110 §5.6.7 examples; all three forms are Unix 784111777 (standards.md §4).
@@ -212,3 +212,50 @@ def test_a_shared_retry_policy_counts_each_threads_attempts_apart() -> None:
         t.join(20)
     assert calls == {"a": 3, "b": 3}
     assert answers == {"a": "a", "b": "b"}
+
+
+# Scripted outcomes of successive attempts: a Retryable (with or without Retry-After), another
+# error, or an answer.
+_SCRIPTS = {
+    "answer at once": ["ok"],
+    "answer at the second": [Retryable("connection", None, "refused"), "ok"],
+    "three failures": [Retryable("http_503", 503, "busy")] * 3,
+    "Retry-After then answer": [Retryable("http_429", 429, "slow", 2.0), "ok"],
+    "over the wait cap": [Retryable("http_429", 429, "slow", 600.0)] * 3,
+    "other error first": [FetchError("http://x/", "http_404", 404)],
+    "other error second": [Retryable("timeout", None, "slow"), FetchError("http://x/", "x", 1)],
+}
+
+
+def _outcome(policy_call: object, script: list) -> tuple:
+    """(answer or exception type and reason, attempts made, sleeps) of one scripted request."""
+    clock = FakeClock()
+    policy = RetryPolicies(900.0, random.Random(5), clock.sleep).get(
+        3, Budget(max_attempts=3, backoff_base=1.0))
+    made = [0]
+
+    def attempt() -> str:
+        made[0] += 1
+        step = script[made[0] - 1]
+        if isinstance(step, Exception):
+            raise step
+        return str(step)
+
+    try:
+        got: object = policy_call(attempt, policy)  # type: ignore[operator]
+    except (Retryable, FetchError) as exc:
+        got = (type(exc).__name__, exc.reason)
+    return got, made[0], clock.sleeps
+
+
+@pytest.mark.parametrize("name", list(_SCRIPTS))
+def test_first_attempt_outside_the_policy_changes_nothing(name: str) -> None:
+    """The fetcher makes a request's first attempt before entering tenacity
+    (first_then_retried); every scripted sequence ends exactly as tenacity's own
+    ``policy(attempt)`` ends it: the same answer or error, the same number of attempts and the
+    same waits (the same seeded jitter; Retry-After slept exactly, RFC 9110 §10.2.3). The
+    reference is tenacity itself."""
+    script = _SCRIPTS[name]
+    reference = _outcome(lambda attempt, policy: policy(attempt), script)
+    assert _outcome(first_then_retried, script) == reference
+    assert reference[1] == min(len(script), 3) or name == "over the wait cap"

@@ -118,3 +118,35 @@ def test_prepared_get_is_what_the_session_would_send(url: str) -> None:
     if "@" not in url:  # (cookielib matches a host read with the credentials: no cookie)
         assert got.headers["Cookie"] == "visit=1"
     assert got.hooks == expected.hooks
+
+
+def _hook(response: requests.Response, *args: object, **kwargs: object) -> None:
+    """A response hook for the comparison below (never called: nothing is sent)."""
+
+
+@pytest.mark.parametrize("setup", ["bare", "cookie", "auth", "hook", "none_header"])
+def test_prepared_get_skips_only_steps_that_cannot_change_the_get(setup: str) -> None:
+    """prepared_get skips body, cookie, auth and hook preparation when the session has none of
+    them; with each present, and with a header set to None (which drops the session's default,
+    as requests' merge_setting does), the GET is still the one Session.prepare_request makes
+    (the reference is requests itself)."""
+    session = requests.Session()
+    session.trust_env = False
+    headers: dict = {"User-Agent": "collector/test", "Accept-Encoding": "gzip"}
+    if setup == "cookie":
+        session.cookies.set("visit", "1", domain=ALLOWED, path="/")
+    elif setup == "auth":
+        session.auth = ("curator", "s3cret-pass")
+    elif setup == "hook":
+        session.hooks["response"].append(_hook)
+    elif setup == "none_header":
+        headers["Accept"] = None
+    url = f"http://{ALLOWED}:8651/x?q=1"
+    expected = session.prepare_request(requests.Request("GET", url, headers=headers))
+    got = prepared_get(session, transport_target(url).url, headers)
+    assert (got.method, got.url, got.body) == (expected.method, expected.url, expected.body)
+    assert dict(got.headers) == dict(expected.headers)
+    assert got.hooks == expected.hooks
+    assert ("Cookie" in got.headers) == (setup == "cookie")
+    assert ("Authorization" in got.headers) == (setup == "auth")
+    assert ("Accept" in got.headers) == (setup != "none_header")

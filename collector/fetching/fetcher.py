@@ -58,7 +58,7 @@ from collector.fetching.body import Body, exc_size, read_body
 from collector.fetching.budgets import SYSTEM_CLOCK, Budget, Clock, HostBudgets, budgets_from_recipe
 from collector.fetching.http_target import HopByHopSession, prepared_get, transport_target
 from collector.fetching.kept_pages import keep_answer, kept_answer
-from collector.fetching.retry import Retryable, RetryPolicies
+from collector.fetching.retry import Retryable, RetryPolicies, first_then_retried
 from collector.fetching.robots import (
     MAX_ROBOTS_BYTES,
     MAX_ROBOTS_REDIRECTS,
@@ -353,9 +353,8 @@ class Fetcher:
                                  max_bytes, dest_dir, counter[0], final=counter[0] >= attempts,
                                  truncate=not retry)
 
-        retrying = self._policies.get(attempts, budget)
         try:
-            return retrying(one)
+            return first_then_retried(one, self._policies.get(attempts, budget))
         except Retryable as exc:
             # Retries are used up: one more failed request for the host's circuit breaker.
             self._failed(hk, shown)
@@ -451,6 +450,11 @@ class Fetcher:
     # -- robots.txt ----------------------------------------------------------------------------
     def _robots_policy(self, url: str) -> RobotsPolicy:
         target = robots_url(url)
+        now = self.clock.time()
+        cached = self._robots.get(target)  # a fresh policy needs no lock (it is replaced whole)
+        if cached is not None and cached.is_fresh(now, self.settings.robots_ttl,
+                                                  self.settings.robots_retry):
+            return cached
         with self._lock:
             lock = self._robots_locks.setdefault(target, threading.Lock())
         with lock:  # one fetch per authority even with many workers
@@ -477,8 +481,9 @@ class Fetcher:
             return policy
 
     def _use_policy(self, target: str, hk: str, policy: RobotsPolicy) -> None:
-        self._robots[target] = policy
+        # Hints first: a thread that finds the policy without the lock paces by its hints.
         self.budgets.apply_hints(hk, policy.hints(self.settings.product_token))
+        self._robots[target] = policy
 
     def _stored_policy(self, hk: str, target: str) -> RobotsPolicy | None:
         row = self.ledger.get_host(hk) if self.ledger is not None else None

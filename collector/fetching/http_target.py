@@ -28,7 +28,6 @@ from urllib.parse import urlsplit
 import idna
 from requests import Session
 from requests.models import PreparedRequest
-from requests.sessions import merge_setting
 from requests.structures import CaseInsensitiveDict
 from urllib3.util import parse_url
 
@@ -138,16 +137,28 @@ def prepared_get(session: Session, url: str, headers: Mapping[str, str]) -> Prep
     the URL), without preparing the URL again: :func:`transport_target` already did, and
     checked that a second preparation changes nothing. ``Session.request``'s own preparation
     was about a third of the CPU of a request (bench/politeness.py); ``session.send`` does
-    the rest exactly as before."""
+    the rest exactly as before.
+
+    Steps that cannot change a GET are skipped, each for a reason that is checked here: the
+    body (``prepare_body(None, None)`` sets no header for a GET), cookies while the session's
+    jar is empty (no Cookie header comes from an empty jar), auth when the session has none and
+    the URL holds no ``@`` (no credentials to read), hooks when the session has none. The
+    headers are merged as ``merge_setting`` merges them (a None value drops a session header)
+    without its per-call protocol checks, which were a tenth of this function's time."""
     prepared = PreparedRequest()
     prepared.prepare_method("GET")
     prepared.url = url
-    prepared.prepare_headers(merge_setting(headers, session.headers,
-                                           dict_class=CaseInsensitiveDict))
-    prepared.prepare_cookies(session.cookies)  # read only: redirects are never resolved here
-    prepared.prepare_body(None, None)
-    prepared.prepare_auth(session.auth, url)
-    prepared.prepare_hooks(session.hooks)
+    merged = CaseInsensitiveDict(session.headers)
+    merged.update(headers)
+    for name in [k for k, v in merged.items() if v is None]:
+        del merged[name]
+    prepared.prepare_headers(merged)  # validates every header (no CR/LF injection)
+    if len(session.cookies):
+        prepared.prepare_cookies(session.cookies)  # read only: redirects are never resolved
+    if session.auth is not None or "@" in url:
+        prepared.prepare_auth(session.auth, url)
+    if any(session.hooks.values()):
+        prepared.prepare_hooks(session.hooks)
     return prepared
 
 

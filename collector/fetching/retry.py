@@ -11,13 +11,15 @@ from __future__ import annotations
 import random
 import threading
 from collections.abc import Callable
-from typing import Any
+from typing import Any, TypeVar
 
 from tenacity import Retrying, retry_if_exception_type, stop_after_attempt, stop_any
 from tenacity.stop import stop_base
 from tenacity.wait import wait_base
 
 from collector.fetching.budgets import Budget
+
+T = TypeVar("T")
 
 
 class Retryable(Exception):
@@ -90,3 +92,22 @@ class RetryPolicies:
                                       self.sleep)
                 self._made[(attempts, budget)] = policy
             return policy
+
+
+def first_then_retried(attempt: Callable[[], T], policy: Retrying) -> T:
+    """``policy(attempt)``, with the first attempt made before tenacity is entered: most
+    requests succeed at once, and the policy's bookkeeping was a few per cent of a request's
+    CPU (bench/politeness.py). After a Retryable first attempt the policy starts from that same
+    failure (replayed, no request made), so its attempt count, stop rules and waits are exactly
+    those of ``policy(attempt)``; any other exception passes through as it does there."""
+    try:
+        return attempt()
+    except Retryable as exc:
+        first = [exc]
+
+    def again() -> T:
+        if first:
+            raise first.pop()
+        return attempt()
+
+    return policy(again)
