@@ -120,9 +120,11 @@ def _states(col: Collection) -> dict[str, tuple[str, str | None]]:
 
 def _killer(client: Any, dispatch: ClusterDispatch, batches: list[Any],
             incoming: Path, out: dict[str, Any]) -> None:
-    """Kill one worker process once a fifth of the images came back; note what it held."""
-    while sum(len(b.results) for b in batches) < HOSTS * PER_HOST // 5:
-        time.sleep(0.05)
+    """Kill one worker process once a fifth of the images are fetched (journal lines); note
+    what it held."""
+    while sum(len(read_journal(p)[1]) for p in incoming.glob(f"*{SUFFIX}")) \
+            < HOSTS * PER_HOST // 5:
+        time.sleep(0.1)
     pids = client.run(os.getpid)
     victim = sorted(pids)[0]
     # What the worker holds: tasks running there and results not yet collected from it.

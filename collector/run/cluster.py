@@ -114,6 +114,8 @@ class ClusterDispatch:
         self._clock = clock_id()
         self._gates: dict[str, queue.Queue[_Work | None]] = {}  # host -> jobs to admit
         self._gate_threads: list[threading.Thread] = []
+        self._spawn: queue.Queue[tuple[str, queue.Queue[_Work | None]] | None] = queue.Queue()
+        self._spawner: threading.Thread | None = None
         self.g: Any = None
 
     # -- set-up --------------------------------------------------------------------------------
@@ -129,6 +131,19 @@ class ClusterDispatch:
         """On the first job: the token file that tells a worker the folder is shared."""
         fd, self._token = self.g.store.new_temp()
         os.close(fd)
+        self._spawner = threading.Thread(target=self._spawn_loop, daemon=True,
+                                         name="cluster-gates")
+        self._spawner.start()
+
+    def _spawn_loop(self) -> None:
+        """Starts each host's gate thread (Thread.start waits until the new thread runs: not
+        on the listing thread, which admits the next items meanwhile)."""
+        while (item := self._spawn.get()) is not None:
+            t = threading.Thread(target=self._gate_loop, args=item, daemon=True,
+                                 name=f"cluster-gate-{item[0]}")
+            with self._cond:
+                self._gate_threads.append(t)
+            t.start()
 
     # -- jobs in -------------------------------------------------------------------------------
     def put(self, host: str, job: Job) -> None:
@@ -140,10 +155,7 @@ class ClusterDispatch:
             gate = self._gates.get(host)
             if gate is None:
                 gate = self._gates[host] = queue.Queue()
-                t = threading.Thread(target=self._gate_loop, args=(host, gate), daemon=True,
-                                     name=f"cluster-gate-{host}")
-                self._gate_threads.append(t)
-                t.start()
+                self._spawn.put((host, gate))
         gate.put(_Work(job, job.url))
 
     def _gate_loop(self, host: str, gate: queue.Queue[_Work | None]) -> None:
@@ -154,7 +166,11 @@ class ClusterDispatch:
         while (work := gate.get()) is not None:
             try:
                 if not self._refused(host, work):
-                    self._put(host, work)
+                    # Jobs still waiting at the gate join the same batch: a task is submitted
+                    # when the gate is drained (a host's first batch is not one image).
+                    self._put(host, work, launch=gate.empty())
+                elif gate.empty() and host in hosts_of(self._lanes, self._cond):
+                    self._poke(host)  # jobs that passed before this one go now
             except Exception as exc:  # a bug on the gate thread: the run fails loudly
                 self.g._internal_error(f"the cluster admission for host {host}", exc,
                                        item_id=work.job.item_id)
@@ -179,10 +195,12 @@ class ClusterDispatch:
         self._settled(w)
         return True
 
-    def _put(self, host: str, work: _Work) -> None:
+    def _put(self, host: str, work: _Work, launch: bool = True) -> None:
         with self._cond:
             lane = self._lanes.setdefault(host, _Lane())
             lane.pending.append(work)
+            if not launch:
+                return
             ready = self._take(host, lane)
         self._launch(host, ready)
 
@@ -205,9 +223,14 @@ class ClusterDispatch:
             self._expire()
         with self._cond:
             gates, self._gates = list(self._gates.values()), {}
-            threads, self._gate_threads = self._gate_threads, []
         for gate in gates:
             gate.put(None)  # every job put is settled: the gate threads end
+        if self._spawner is not None:
+            self._spawn.put(None)
+            self._spawner.join(STOP_GRACE)
+            self._spawner = None
+        with self._cond:
+            threads, self._gate_threads = self._gate_threads, []
         for t in [*threads, *self._handlers]:
             t.join(STOP_GRACE)
         self._handlers.clear()
@@ -235,13 +258,6 @@ class ClusterDispatch:
                 future.cancel()
             self._forget(future)
             self._release(host, batch, None)
-
-    def in_flight(self, keys: Any = None) -> int:
-        """How many images the tasks with these keys hold, all tasks without ``keys`` (a
-        bench counts what a killed worker had in flight)."""
-        with self._cond:
-            held = {**{k: e[2] for k, e in self._futures.items()}, **self._collecting}
-            return sum(len(batch) for k, batch in held.items() if keys is None or k in keys)
 
     def batches(self, keys: Any) -> dict[str, list[tuple[int, str]]]:
         """(item id, URL) of the images of the tasks with these keys that have not come back
