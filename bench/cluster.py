@@ -122,7 +122,7 @@ def _killer(client: Any, dispatch: ClusterDispatch, batches: list[Any],
             incoming: Path, out: dict[str, Any]) -> None:
     """Kill one worker process once a fifth of the images are fetched (journal lines); note
     what it held."""
-    while sum(len(read_journal(p)[1]) for p in incoming.glob(f"*{SUFFIX}")) \
+    while sum(p.read_bytes().count(b"\n") for p in incoming.glob(f"*{SUFFIX}")) \
             < HOSTS * PER_HOST // 5:
         time.sleep(0.1)
     pids = client.run(os.getpid)

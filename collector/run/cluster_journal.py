@@ -121,6 +121,13 @@ class Journal:
         if path is None:
             return
         try:
+            self._open(path)
+        except OSError:  # no journal (the folder refuses it): treated as a rerun, no exact
+            self.close()  # spacing, and a rerun of this attempt fetches everything again
+            self.path, self.rerun = None, True
+
+    def _open(self, path: Path) -> None:
+        try:
             self._fd = os.open(path, os.O_WRONLY | os.O_CREAT | os.O_EXCL | os.O_APPEND, 0o600)
         except FileExistsError:
             self.rerun = True
@@ -153,7 +160,10 @@ class Journal:
             host_updates: list[tuple[str, dict[str, Any]]]) -> None:
         """Record one finished image durably before the next request."""
         if self._fd is not None and result.kind != "skipped":
-            self._write(Entry(self._by, result, fetches, host_updates))
+            try:
+                self._write(Entry(self._by, result, fetches, host_updates))
+            except OSError:  # a full disk: the task goes on without (a rerun asks again)
+                self.close()
 
     def _write(self, record: Any) -> None:
         assert self._fd is not None
