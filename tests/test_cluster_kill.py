@@ -6,7 +6,8 @@ arrival closer than 0.98 x the host's interval and no sliding 1.0 s window over 
 every manifest item in the state an uninterrupted run reaches (tests/test_gather_demo.py checks
 the same manifest for the local run), and the images asked for twice are at most the images
 the killed worker held (at-least-once delivery, scale.md lesson 3: only work in flight at the
-kill is done again).
+kill is done again); with the shared folder's batch journals (collector.run.cluster_journal) at
+most one image per task of the killed worker, the one whose request was under way.
 """
 
 from __future__ import annotations
@@ -83,7 +84,7 @@ def real_cluster(tmp_path: Path) -> Iterator[str]:
 def _kill_one(client: Any, dispatch: ClusterDispatch, batches: list[Any],
               out: dict[str, int]) -> None:
     """Once some batches came back and a task runs: SIGKILL the worker process running one,
-    counting the images its tasks held (running, or finished and not yet collected)."""
+    counting its tasks and the images they held (running, or finished and not collected)."""
     deadline = time.monotonic() + 60
     while time.monotonic() < deadline:
         if batches:
@@ -92,7 +93,8 @@ def _kill_one(client: Any, dispatch: ClusterDispatch, batches: list[Any],
                 victim = sorted(busy)[0]
                 pids = client.run(os.getpid, workers=[victim])
                 held = set(busy[victim]) | set(client.has_what([victim]).get(victim, ()))
-                out["in_flight"] = dispatch.in_flight(held)
+                out["in_flight"] = sum(len(b) for b in dispatch.batches(held).values())
+                out["tasks"] = len(busy[victim])
                 os.kill(pids[victim], signal.SIGKILL)
                 out["killed"] = pids[victim]
                 return
@@ -108,7 +110,7 @@ def test_a_worker_killed_mid_run_changes_nothing_but_the_work_it_held(
     col = init_collection(tmp_path / "c", contact="x@example.org")
     col.recipe_path.write_text(render("demo", demo_server.port, demo_content / "scans"))
     batches: list[Any] = []
-    out = {"in_flight": 0, "killed": 0}
+    out = {"in_flight": 0, "tasks": 0, "killed": 0}
     with connect(real_cluster) as client, prepared_run(col) as (recipe, ledger):
         dispatch = ClusterDispatch(client, FetchSettings.from_recipe(recipe),
                                    on_batch=batches.append)
@@ -132,3 +134,5 @@ def test_a_worker_killed_mid_run_changes_nothing_but_the_work_it_held(
     asked = Counter(r.path for r in log if is_image_request(r))
     twice = sum(n - 1 for n in asked.values() if n > 1)
     assert twice <= out["in_flight"], (twice, out)
+    # A task journals each image before its next request: one request per task at most.
+    assert twice <= out["tasks"], (twice, out)

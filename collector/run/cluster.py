@@ -9,7 +9,12 @@ per-host worker threads are replaced by :class:`ClusterDispatch`. The lessons of
 - the unit of distribution is the host, and at most one task per host is in flight across the
   cluster, so a host's budget lives in one fetcher at a time and needs no shared limiter;
 - a task is a batch of at most 50 of the host's images, about 10 s at its interval;
-- every task waits one full interval before its first request (a rerun cannot tell);
+- a task keeps a journal in the shared folder (:mod:`collector.run.cluster_journal`): a
+  rerun takes the images its dead attempt finished and waits one full interval before its
+  first request; any other task on the coordinator's clock spaces its first request exactly
+  from the host's last contact (the previous task's end, or the coordinator's own request);
+- a result is fetched from the worker as soon as its task ends and its future released at
+  once (a result held only by a dead worker would be computed again);
 - workers return ``fetches`` rows, host facts and file facts; the coordinator writes them,
   then checks, de-duplicates and stores the files as a local run does (``Ingest.ingest_file``);
 - a worker that dies mid-batch: Dask runs the task again elsewhere; after repeated deaths
@@ -32,19 +37,22 @@ import time
 import uuid
 from collections import deque
 from collections.abc import Callable, Iterator
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from functools import partial
 from pathlib import Path
 from typing import Any
 
 from collector.errors import CollectorError, LedgerError, StoreError
 from collector.fetching.fetcher import FetchSettings
+from collector.run.cluster_gate import GatedFetcher
+from collector.run.cluster_journal import SUFFIX, clock_id, journal_name, mark_collected
 from collector.run.cluster_task import (
     BatchResult,
     BatchSpec,
     HostCarry,
     JobResult,
     batch_size,
+    epoch,
     fetch_batch,
 )
 from collector.run.ingest import Job
@@ -76,6 +84,7 @@ class _Lane:
     listing: int = 0  # listing requests of the coordinator under way
     wanting: int = 0  # listing requests waiting for the host's task to end
     last_end: float | None = None  # epoch s the host's latest task ended
+    coord_end: float | None = None  # epoch s the coordinator's latest request to it ended
     carry: HostCarry = field(default_factory=HostCarry)
     degraded: str | None = None  # why the host gets no more tasks in this run
     batches: int = 0
@@ -102,8 +111,11 @@ class ClusterDispatch:
         # (a worker lost now takes the result with it: Dask runs the task again).
         self._collecting: dict[str, tuple[_Work, ...]] = {}
         self._stopped_at: float | None = None
+        self._clock = clock_id()
         self._gates: dict[str, queue.Queue[_Work | None]] = {}  # host -> jobs to admit
         self._gate_threads: list[threading.Thread] = []
+        self._spawn: queue.Queue[tuple[str, queue.Queue[_Work | None]] | None] = queue.Queue()
+        self._spawner: threading.Thread | None = None
         self.g: Any = None
 
     # -- set-up --------------------------------------------------------------------------------
@@ -119,6 +131,19 @@ class ClusterDispatch:
         """On the first job: the token file that tells a worker the folder is shared."""
         fd, self._token = self.g.store.new_temp()
         os.close(fd)
+        self._spawner = threading.Thread(target=self._spawn_loop, daemon=True,
+                                         name="cluster-gates")
+        self._spawner.start()
+
+    def _spawn_loop(self) -> None:
+        """Starts each host's gate thread (Thread.start waits until the new thread runs: not
+        on the listing thread, which admits the next items meanwhile)."""
+        while (item := self._spawn.get()) is not None:
+            t = threading.Thread(target=self._gate_loop, args=item, daemon=True,
+                                 name=f"cluster-gate-{item[0]}")
+            with self._cond:
+                self._gate_threads.append(t)
+            t.start()
 
     # -- jobs in -------------------------------------------------------------------------------
     def put(self, host: str, job: Job) -> None:
@@ -130,10 +155,7 @@ class ClusterDispatch:
             gate = self._gates.get(host)
             if gate is None:
                 gate = self._gates[host] = queue.Queue()
-                t = threading.Thread(target=self._gate_loop, args=(host, gate), daemon=True,
-                                     name=f"cluster-gate-{host}")
-                self._gate_threads.append(t)
-                t.start()
+                self._spawn.put((host, gate))
         gate.put(_Work(job, job.url))
 
     def _gate_loop(self, host: str, gate: queue.Queue[_Work | None]) -> None:
@@ -144,7 +166,11 @@ class ClusterDispatch:
         while (work := gate.get()) is not None:
             try:
                 if not self._refused(host, work):
-                    self._put(host, work)
+                    # Jobs still waiting at the gate join the same batch: a task is submitted
+                    # when the gate is drained (a host's first batch is not one image).
+                    self._put(host, work, launch=gate.empty())
+                elif gate.empty() and host in hosts_of(self._lanes, self._cond):
+                    self._poke(host)  # jobs that passed before this one go now
             except Exception as exc:  # a bug on the gate thread: the run fails loudly
                 self.g._internal_error(f"the cluster admission for host {host}", exc,
                                        item_id=work.job.item_id)
@@ -169,10 +195,12 @@ class ClusterDispatch:
         self._settled(w)
         return True
 
-    def _put(self, host: str, work: _Work) -> None:
+    def _put(self, host: str, work: _Work, launch: bool = True) -> None:
         with self._cond:
             lane = self._lanes.setdefault(host, _Lane())
             lane.pending.append(work)
+            if not launch:
+                return
             ready = self._take(host, lane)
         self._launch(host, ready)
 
@@ -195,13 +223,20 @@ class ClusterDispatch:
             self._expire()
         with self._cond:
             gates, self._gates = list(self._gates.values()), {}
-            threads, self._gate_threads = self._gate_threads, []
         for gate in gates:
             gate.put(None)  # every job put is settled: the gate threads end
+        if self._spawner is not None:
+            self._spawn.put(None)
+            self._spawner.join(STOP_GRACE)
+            self._spawner = None
+        with self._cond:
+            threads, self._gate_threads = self._gate_threads, []
         for t in [*threads, *self._handlers]:
             t.join(STOP_GRACE)
         self._handlers.clear()
         if self._token is not None:
+            for journal in self._token.parent.glob(f"collector-{self.g.run_id}-*{SUFFIX}"):
+                journal.unlink(missing_ok=True)
             self._token.unlink(missing_ok=True)
             self._token = None
 
@@ -221,14 +256,21 @@ class ClusterDispatch:
         for _, (future, host, batch, _at) in expired:
             with contextlib.suppress(Exception):
                 future.cancel()
+            self._forget(future)
             self._release(host, batch, None)
 
-    def in_flight(self, keys: Any = None) -> int:
-        """How many images the tasks with these keys hold, all tasks without ``keys`` (a
-        bench counts what a killed worker had in flight)."""
+    def batches(self, keys: Any) -> dict[str, list[tuple[int, str]]]:
+        """(item id, URL) of the images of the tasks with these keys that have not come back
+        or are being collected (a bench asks what a killed worker held)."""
         with self._cond:
             held = {**{k: e[2] for k, e in self._futures.items()}, **self._collecting}
-            return sum(len(batch) for k, batch in held.items() if keys is None or k in keys)
+            return {k: [(w.job.item_id, w.url) for w in batch] for k, batch in held.items()
+                    if k in keys}
+
+    def contacted(self, host: str) -> None:
+        """The coordinator's own request to ``host`` ended now (under :meth:`listing`)."""
+        with self._cond:
+            self._lanes.setdefault(host, _Lane()).coord_end = time.time()
 
     def _poke(self, host: str) -> None:
         with self._cond:
@@ -277,19 +319,34 @@ class ClusterDispatch:
         with self._cond:
             lane = self._lanes[host]
             lane.batches += 1
-            carry, number = lane.carry, lane.batches
+            carry, number, ours = lane.carry, lane.batches, lane.coord_end
         assert self._token is not None
-        spec = BatchSpec(host, tuple((w.job.item_id, w.url, w.job.secret_params)
-                                     for w in batch),
-                         self.settings, self.g.run_id, ledger.get_host(host),
-                         ledger.last_contact(host), str(self._token.parent), self._token.name,
-                         carry, self.g.stop.deadline, self.force_bytes)
+        last = ledger.last_contact(host)
         # A key of its own for every submission: Dask treats two tasks with one key as one.
         key = f"collector-{self.g.run_id}-{host}-{number}-{uuid.uuid4().hex}"
+        spec = BatchSpec(host, tuple((w.job.item_id, w.url, w.job.secret_params)
+                                     for w in batch),
+                         self.settings, self.g.run_id, ledger.get_host(host), last,
+                         str(self._token.parent), self._token.name, carry,
+                         self.g.stop.deadline, self.force_bytes, journal_name(key),
+                         self._clock if self._exact(carry, last, ours) else "")
         future = self.client.submit(fetch_batch, spec, pure=False, key=key, retries=0)
         with self._cond:
             self._futures[key] = (future, host, batch, time.monotonic())
         future.add_done_callback(self._arrived)
+
+    def _exact(self, carry: HostCarry, last: str | None, ours: float | None) -> bool:
+        """May the host's next task space its first request exactly from the times it is
+        given? Only on the coordinator's clock: after a task of this run that ended normally
+        on it, or for the host's first task when the latest contact on record is the
+        coordinator's own request in this run (a host with an earlier attempt on record, or
+        after a lost task: a full interval first)."""
+        if not self._clock:
+            return False
+        if carry.clock is not None:
+            return carry.clock == self._clock
+        moment = epoch(last) if last else None
+        return ours is not None and moment is not None and moment <= ours
 
     def _arrived(self, future: Any) -> None:
         """A task came back (called on Dask's callback thread): handled on a thread of its
@@ -324,6 +381,7 @@ class ClusterDispatch:
             finally:
                 with self._cond:
                     self._collecting.pop(future.key, None)
+                self._forget(future)
         except KilledWorker as exc:
             self._degrade(host, batch, exc)
             return
@@ -356,6 +414,16 @@ class ClusterDispatch:
             self._guarded(host, w, partial(self._outcome, host, w.job, r))
             self._settled(w)
 
+    def _forget(self, future: Any) -> None:
+        """The task's result is here (or lost): release the future at once, so Dask does not
+        compute it again, and mark its journal collected (an attempt Dask runs anyway, the
+        release not yet heard by the scheduler, asks nothing)."""
+        with contextlib.suppress(Exception):
+            future.release()
+        if self._token is not None:
+            with contextlib.suppress(OSError):
+                mark_collected(self._token.parent / journal_name(future.key))
+
     def _moved(self, host: str, w: _Work, r: JobResult) -> bool:
         """A redirect to another host: the job goes to that host's lane (True), unless it
         has used up the redirects or the new URL is not one to ask (False: it fails)."""
@@ -382,8 +450,9 @@ class ClusterDispatch:
             lane = self._lanes[host]
             lane.in_flight = ()
             lane.last_end = time.time()
-            if carry is not None:
-                lane.carry = carry
+            # No carry: the task was lost or failed and may have asked the host; the next
+            # task waits a full interval first (HostCarry.clock "": no exact spacing).
+            lane.carry = carry if carry is not None else replace(lane.carry, clock="")
             lane.pending.extendleft(reversed(again or []))
             ready = self._take(host, lane)
             self._cond.notify_all()
@@ -514,39 +583,6 @@ def hosts_of(lanes: dict[str, _Lane], lock: threading.Condition) -> list[str]:
     """The hosts with a lane, read under the dispatch's lock."""
     with lock:
         return list(lanes)
-
-
-class GatedFetcher:
-    """The coordinator's fetcher for listing pages, taking turns with the cluster's tasks
-    (see :meth:`ClusterDispatch.listing`)."""
-
-    def __init__(self, inner: Any, dispatch: ClusterDispatch) -> None:
-        self.inner, self.dispatch = inner, dispatch
-
-    @property
-    def run_id(self) -> int | None:
-        return getattr(self.inner, "run_id", None)
-
-    @run_id.setter
-    def run_id(self, value: int | None) -> None:
-        self.inner.run_id = value
-
-    def get_page(self, url: str, **kwargs: Any) -> Any:
-        try:
-            host = host_key(url)
-        except CollectorError:
-            return self.inner.get_page(url, **kwargs)  # it raises the proper error
-        with self.dispatch.listing(host) as last_end:
-            budgets = getattr(self.inner, "budgets", None)
-            if last_end is not None and budgets is not None:
-                budgets.contacted(host, time.time() - last_end)
-            return self.inner.get_page(url, **kwargs)
-
-    def download(self, url: str, dest_dir: Path, **kwargs: Any) -> Any:
-        return self.inner.download(url, dest_dir, **kwargs)
-
-    def close(self) -> None:
-        self.inner.close()
 
 
 def run_on_cluster(collection: Any, recipe: Any, ledger: Any, client: Any, *,

@@ -9,10 +9,15 @@ four ledger methods the fetcher calls, answers from the host's stored row and la
 that the coordinator passed in (so robots.txt is not fetched again each batch), and records
 ``fetches`` rows and host facts, which the task returns for the coordinator to write.
 
-A task never knows whether it is a rerun (Dask reruns a task whose worker died, and the dead
-worker's requests never reached the ledger), so every task treats its own start as a contact
-with its host and waits one full interval before its first request; this costs at most one
-interval per batch (scale.md lesson 2).
+Dask reruns a task whose worker died, and the dead worker's requests never reached the
+ledger. With a shared folder a task keeps a journal (:mod:`collector.run.cluster_journal`):
+a rerun finds the journal of the earlier attempt, takes the images it finished (no request
+again) and waits one full interval before its first request (scale.md lesson 2). A task that
+is not a rerun and reads the same clock as the times it was given (``BatchSpec.clock``)
+spaces its first request exactly from the host's last contact: the previous task's end
+(``HostCarry.not_before``) or the coordinator's own request on record. Otherwise (no shared
+folder, another machine's clock, a task lost before) it treats its own start as a contact
+and waits one full interval first.
 
 Files go into the collection's incoming folder when the worker sees it (a shared folder:
 the coordinator's token file is there), else into a temp folder of the worker and back to the
@@ -40,6 +45,7 @@ from collector.errors import (
     UnsafeURL,
 )
 from collector.fetching.fetcher import Fetcher, FetchSettings
+from collector.run.cluster_journal import Journal, clock_id
 
 # A batch is bounded by count and by time (scale.md lesson 3: <= 50 URLs or a few minutes).
 MAX_BATCH = 50
@@ -80,7 +86,8 @@ class HostCarry:
     said "slow down" (the interval doubles each time) and when it may be asked again."""
 
     slowdowns: int = 0
-    not_before: float = 0.0  # epoch s (Retry-After)
+    not_before: float = 0.0  # epoch s: Retry-After, or the interval after the last request
+    clock: str | None = None  # the clock not_before is on (clock_id); None: no task yet
 
 
 @dataclass(frozen=True)
@@ -98,6 +105,8 @@ class BatchSpec:
     carry: HostCarry = HostCarry()
     stop_at: float | None = None  # epoch s: the run's time limit; no image is started after
     force_bytes: bool = False  # return files as bytes even when the folder is shared
+    journal: str = ""  # the journal's file name in incoming_dir ("": none)
+    clock: str = ""  # the clock the given times are on when exact spacing is allowed, else ""
 
 
 @dataclass
@@ -143,6 +152,7 @@ class TaskLedger:
     host_row: dict[str, Any] | None
     started: float  # epoch s: the task's start counts as a contact (see the module doc)
     last: str | None = None
+    exact: bool = False  # the task's host: its last contact only, not the task's start
     fetches: list[dict[str, Any]] = field(default_factory=list)
     host_updates: list[tuple[str, dict[str, Any]]] = field(default_factory=list)
 
@@ -150,9 +160,13 @@ class TaskLedger:
         return dict(self.host_row) if host == self.host and self.host_row else None
 
     def last_contact(self, host: str) -> str | None:
-        """The later of the ledger's last contact and the task's start (every host)."""
-        last = _epoch(self.last) if host == self.host and self.last else None
-        moment = max(self.started, last or 0.0)
+        """The later of the ledger's last contact and the task's start (every host; the
+        task's own host without its start when its spacing is exact)."""
+        last = epoch(self.last) if host == self.host and self.last else None
+        own = 0.0 if host == self.host and self.exact else self.started
+        moment = max(own, last or 0.0)
+        if moment <= 0:
+            return None
         return datetime.fromtimestamp(moment, UTC).isoformat().replace("+00:00", "Z")
 
     def put_host(self, host: str, **fields: Any) -> None:
@@ -168,31 +182,50 @@ class TaskLedger:
 def fetch_batch(spec: BatchSpec) -> BatchResult:
     """The task: fetch the batch's images politely; never touches the ledger."""
     began = time.time()
-    ledger = TaskLedger(spec.host, spec.host_row, began, spec.last_contact)
+    shared = not spec.force_bytes and os.path.exists(os.path.join(spec.incoming_dir, spec.token))
+    journal = Journal(Path(spec.incoming_dir, spec.journal) if shared and spec.journal
+                      else None)
+    exact = journal.path is not None and not journal.rerun and spec.clock == clock_id() != ""
+    ledger = TaskLedger(spec.host, spec.host_row, began, spec.last_contact, exact)
     fetcher = Fetcher(spec.settings, ledger, run_id=spec.run_id)
     fetcher.host_check = keep_to(spec.host)
     _restore(fetcher, spec)
-    shared = not spec.force_bytes and os.path.exists(os.path.join(spec.incoming_dir, spec.token))
-    results: list[JobResult] = []
     try:
         with contextlib.ExitStack() as stack:
             dest = (Path(spec.incoming_dir) if shared else
                     Path(stack.enter_context(tempfile.TemporaryDirectory(prefix="collector-"))))
-            parked = False
-            for item_id, url, secrets in spec.jobs:
-                late = (time.time() - began > TASK_SECONDS
-                        or (spec.stop_at is not None and time.time() >= spec.stop_at))
-                if parked or late:
-                    results.append(JobResult(item_id, "skipped"))
-                    continue
-                result = fetch_one(fetcher, item_id, url, secrets, dest, shared)
-                parked = result.kind == "parked"
-                results.append(result)
+            results = _fetch_jobs(spec, fetcher, ledger, journal, dest, shared, began)
     finally:
         fetcher.close()
+        journal.close()
     return BatchResult(spec.host, results, ledger.fetches, ledger.host_updates,
                        _carry(fetcher, spec.host), shared, _worker_name(),
                        time.time() - began)
+
+
+def _fetch_jobs(spec: BatchSpec, fetcher: Fetcher, ledger: TaskLedger, journal: Journal,
+                dest: Path, shared: bool, began: float) -> list[JobResult]:
+    """The batch's images in order: taken from an earlier attempt's journal, or fetched and
+    journaled; skipped after the host is parked or once the task is late."""
+    results: list[JobResult] = []
+    parked = False
+    for item_id, url, secrets in spec.jobs:
+        late = (time.time() - began > TASK_SECONDS
+                or (spec.stop_at is not None and time.time() >= spec.stop_at))
+        earlier = journal.taken(item_id)
+        if earlier is not None:
+            ledger.fetches.extend(earlier.fetches)
+            ledger.host_updates.extend(earlier.host_updates)
+            result = earlier.result
+        elif parked or late or journal.collected():
+            result = JobResult(item_id, "skipped")
+        else:
+            rows, hosts = len(ledger.fetches), len(ledger.host_updates)
+            result = fetch_one(fetcher, item_id, url, secrets, dest, shared)
+            journal.add(result, ledger.fetches[rows:], ledger.host_updates[hosts:])
+        parked = parked or result.kind == "parked"
+        results.append(result)
+    return results
 
 
 def fetch_one(fetcher: Fetcher, item_id: int, url: str, secrets: tuple[str, ...],
@@ -244,10 +277,11 @@ def _carry(fetcher: Fetcher, host: str) -> HostCarry:
     slowdown = float(fetcher.budgets.effective(host).get("slowdown", 1.0))
     slowdowns = round(math.log2(slowdown)) if slowdown > 1.0 else 0
     ahead = fetcher.budgets.wait_time(host)
-    return HostCarry(slowdowns, time.time() + ahead if ahead > 0 else 0.0)
+    return HostCarry(slowdowns, time.time() + ahead if ahead > 0 else 0.0, clock_id())
 
 
-def _epoch(text: str) -> float | None:
+def epoch(text: str) -> float | None:
+    """An ISO 8601 time of the ledger as epoch seconds (None when unreadable)."""
     try:
         return datetime.fromisoformat(text.replace("Z", "+00:00")).timestamp()
     except ValueError:
