@@ -9,6 +9,7 @@ request from the previous task's end instead of waiting a full interval from its
 
 from __future__ import annotations
 
+import json
 import time
 from pathlib import Path
 
@@ -111,3 +112,24 @@ def test_a_follow_on_task_spaces_from_the_previous_end_not_its_own_start(
     assert clock_id(), "this Linux machine has a boot id"
     assert 0.04 <= exact < 0.4, exact
     assert full >= 0.98 * 0.5, full
+
+
+def test_lines_that_are_not_our_json_records_are_passed_over(tmp_path) -> None:
+    """A journal is data from a shared folder: a pickle, JSON of another shape or a record
+    with a field too many is passed over like a line cut short, never run or taken."""
+    import pickle
+
+    journal = tmp_path / "k.journal"
+    entry = {"entry": {"by": "w:1", "result": {"item_id": 7, "kind": "file"},
+                       "fetches": [{"url": "u", "body": {"bytes": "eA=="}}],
+                       "host_updates": [["h", {"n": 1}]]}}
+    bad = [pickle.dumps({"attempt": "x"}), b"[1, 2]", b'{"entry": 5}',
+           b'{"entry": {"by": "w", "result": {"item_id": 1, "kind": "file", "nope": 1},'
+           b' "fetches": [], "host_updates": []}}', b'{"attempt": 3}']
+    journal.write_bytes(b"\n".join([*bad, json.dumps(entry).encode()]) + b"\n")
+    attempts, entries, collected = read_journal(journal)
+    assert attempts == [] and not collected
+    assert [(e.by, e.result.item_id, e.fetches, e.host_updates) for e in entries] == [
+        ("w:1", 7, [{"url": "u", "body": b"x"}], [("h", {"n": 1})])]
+    mark_collected(journal)
+    assert read_journal(journal)[2]

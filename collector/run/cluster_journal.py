@@ -18,8 +18,9 @@ coordinator released it): that attempt finds the line and asks nothing, and an a
 running stops before its next request. The coordinator deletes the run's journals at its end
 (the next run's start clears the incoming folder of any left behind).
 
-Lines are base64 of a pickle (the rows hold bytes and dataclasses); the folder is the
-collection's own store folder, written only by the coordinator and its workers.
+Lines are JSON (bytes as ``{"bytes": base64}``), never pickles: a journal is data read back
+from a shared folder, and reading it must not run anything whoever wrote it put there. A
+line that is not a whole record of the expected shape is passed over like a line cut short.
 """
 
 from __future__ import annotations
@@ -27,8 +28,9 @@ from __future__ import annotations
 import base64
 import binascii
 import contextlib
+import dataclasses
+import json
 import os
-import pickle
 import socket
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -58,11 +60,6 @@ def clock_id() -> str:
         return ""
 
 
-@dataclass(frozen=True)
-class Collected:
-    """The journal's last line once the coordinator has the batch's result."""
-
-
 @dataclass
 class Entry:
     """One finished image of a batch, as journaled."""
@@ -71,6 +68,44 @@ class Entry:
     result: Any  # collector.run.cluster_task.JobResult
     fetches: list[dict[str, Any]] = field(default_factory=list)
     host_updates: list[tuple[str, dict[str, Any]]] = field(default_factory=list)
+
+
+COLLECTED = {"collected": True}  # the journal's last line once the coordinator has the result
+
+
+def _plain(value: Any) -> Any:
+    """``value`` with bytes as {"bytes": base64} and tuples as lists, for JSON."""
+    if isinstance(value, bytes):
+        return {"bytes": base64.b64encode(value).decode("ascii")}
+    if isinstance(value, dict):
+        return {k: _plain(v) for k, v in value.items()}
+    if isinstance(value, list | tuple):
+        return [_plain(v) for v in value]
+    return value
+
+
+def _restored(value: Any) -> Any:
+    """The inverse of :func:`_plain` (lists stay lists)."""
+    if isinstance(value, dict):
+        if value.keys() == {"bytes"}:
+            return base64.b64decode(value["bytes"], validate=True)
+        return {k: _restored(v) for k, v in value.items()}
+    if isinstance(value, list):
+        return [_restored(v) for v in value]
+    return value
+
+
+def _line(record: dict[str, Any]) -> bytes:
+    return json.dumps(_plain(record), separators=(",", ":")).encode() + b"\n"
+
+
+def _entry(record: dict[str, Any]) -> Entry:
+    """An entry line's record as an :class:`Entry` (TypeError/KeyError when malformed)."""
+    from collector.run.cluster_task import JobResult  # the task module imports this one
+
+    body = _restored(record["entry"])
+    return Entry(str(body["by"]), JobResult(**body["result"]), list(body["fetches"]),
+                 [(str(host), dict(fields)) for host, fields in body["host_updates"]])
 
 
 def read_journal(path: Path) -> tuple[list[str], list[Entry], bool]:
@@ -85,14 +120,16 @@ def read_journal(path: Path) -> tuple[list[str], list[Entry], bool]:
     collected = False
     for line in filter(None, lines):
         try:
-            record = pickle.loads(base64.b64decode(line, validate=True))
-        except (binascii.Error, pickle.UnpicklingError, EOFError, ValueError):
-            continue
-        if isinstance(record, Entry):
-            entries.append(record)
-        elif isinstance(record, str):
-            attempts.append(record)
-        collected = collected or isinstance(record, Collected)
+            record = json.loads(line)
+            if not isinstance(record, dict):
+                continue
+            if "entry" in record:
+                entries.append(_entry(record))
+            elif isinstance(record.get("attempt"), str):
+                attempts.append(record["attempt"])
+            collected = collected or record == COLLECTED
+        except (binascii.Error, ValueError, TypeError, KeyError, AttributeError):
+            continue  # cut short by a killed attempt, or not a record of ours
     return attempts, entries, collected
 
 
@@ -101,7 +138,7 @@ def mark_collected(path: Path) -> None:
     The line starts on a line of its own (after a killed attempt's cut line)."""
     fd = os.open(path, os.O_WRONLY | os.O_CREAT | os.O_APPEND, 0o600)
     try:
-        os.write(fd, b"\n" + base64.b64encode(pickle.dumps(Collected())) + b"\n")
+        os.write(fd, b"\n" + _line(COLLECTED))
         os.fsync(fd)
     finally:
         os.close(fd)
@@ -135,7 +172,7 @@ class Journal:
             self.earlier = {e.result.item_id: e for e in entries}
             self._fd = os.open(path, os.O_WRONLY | os.O_APPEND)
             os.write(self._fd, b"\n")  # after a line cut short by the killed attempt
-        self._write(self._by)
+        self._write({"attempt": self._by})
 
     def collected(self) -> bool:
         """Has the coordinator the batch's result already? (Checked before every request:
@@ -161,13 +198,14 @@ class Journal:
         """Record one finished image durably before the next request."""
         if self._fd is not None and result.kind != "skipped":
             try:
-                self._write(Entry(self._by, result, fetches, host_updates))
+                self._write({"entry": {"by": self._by, "result": dataclasses.asdict(result),
+                                       "fetches": fetches, "host_updates": host_updates}})
             except OSError:  # a full disk: the task goes on without (a rerun asks again)
                 self.close()
 
-    def _write(self, record: Any) -> None:
+    def _write(self, record: dict[str, Any]) -> None:
         assert self._fd is not None
-        os.write(self._fd, base64.b64encode(pickle.dumps(record)) + b"\n")
+        os.write(self._fd, _line(record))
         os.fsync(self._fd)
         self._size = os.fstat(self._fd).st_size
 
