@@ -157,29 +157,41 @@ def _nearest(points: np.ndarray, centres: np.ndarray) -> np.ndarray:
 
 def _seeds(points: np.ndarray, k: int, rng: np.random.Generator) -> np.ndarray:
     """k-means++ seeding: each next centre drawn with probability proportional to its squared
-    distance from the nearest centre chosen so far (Arthur and Vassilvitskii, 2007)."""
+    distance from the nearest centre chosen so far (Arthur and Vassilvitskii, 2007).
+    ``points`` in float64 (the distances are float64 whatever the points' type)."""
+    n = len(points)
     centres = np.empty((k, points.shape[1]))
-    centres[0] = points[rng.integers(len(points))]
-    d2 = ((points - centres[0]) ** 2).sum(axis=1)
+    centres[0] = points[rng.integers(n)]
+    diff = points - centres[0]
+    d2 = (diff * diff).sum(axis=1)
     for i in range(1, k):
         total = float(d2.sum())
-        pick = (int(np.searchsorted(np.cumsum(d2), rng.random() * total, side="right"))
-                if total > 0 else int(rng.integers(len(points))))
-        centres[i] = points[min(pick, len(points) - 1)]
-        d2 = np.minimum(d2, ((points - centres[i]) ** 2).sum(axis=1))
+        pick = (int(np.cumsum(d2).searchsorted(rng.random() * total, side="right"))
+                if total > 0 else int(rng.integers(n)))
+        centres[i] = points[min(pick, n - 1)]
+        np.subtract(points, centres[i], out=diff)
+        np.minimum(d2, (diff * diff).sum(axis=1), out=d2)
     return centres
+
+
+_BANDS = np.arange(3)
 
 
 def _kmeans(points: np.ndarray, k: int, rng: np.random.Generator) -> np.ndarray:
     """Lloyd's algorithm from k-means++ seeds: centres of ``points`` (n, 3), float64."""
-    centres = _seeds(points, k, rng)
+    wide = points.astype(np.float64)  # exact; what the mixed-type arithmetic used anyway
+    twice = 2.0 * points  # as _nearest forms it (exact), once for every round
+    centres = _seeds(wide, k, rng)
+    flat = wide.ravel()
     for _ in range(KMEANS_ROUNDS):
-        label = _nearest(points, centres)
+        label = np.argmin((centres * centres).sum(axis=1) - twice @ centres.T, axis=1)
         counts = np.bincount(label, minlength=k)
-        sums = np.stack([np.bincount(label, points[:, j], minlength=k) for j in range(3)], 1)
-        moved = centres.copy()
-        filled = counts > 0  # an emptied cluster keeps its centre
-        moved[filled] = sums[filled] / counts[filled, None]
+        # the three coordinate sums of every cluster in one bincount (same order of addition
+        # as one bincount per coordinate: each bin adds its points in turn)
+        sums = np.bincount((label[:, None] * 3 + _BANDS).ravel(), flat,
+                           minlength=3 * k).reshape(k, 3)
+        # an emptied cluster keeps its centre
+        moved = np.where(counts[:, None] > 0, sums / np.maximum(counts, 1)[:, None], centres)
         settled = float(np.abs(moved - centres).max()) < KMEANS_SETTLED
         centres = moved
         if settled:
@@ -195,40 +207,76 @@ def _dominant(lab: np.ndarray, k: int) -> tuple[DominantColour, ...]:
         pixels = pixels[rng.integers(0, len(pixels), MAX_SAMPLES)]
     # A picture with fewer distinct colours than k: k-means++ seeds the rest on colours
     # already taken, those clusters stay empty and are left out below.
-    centres = _kmeans(pixels, max(1, k), rng)
+    k = max(1, k)
+    centres = _kmeans(pixels, k, rng)
     counts = np.bincount(_nearest(every, centres), minlength=k)  # over every pixel
-    out = []
+    total = counts.sum()
     hexes = _lab_to_hex(centres)
-    for i in np.argsort(-counts, kind="stable"):
+    labs = centres.tolist()
+    out = []
+    for i in np.argsort(-counts, kind="stable").tolist():
         if counts[i] == 0:
             continue
         hex_colour = hexes[i]
         rgb = [int(hex_colour[j:j + 2], 16) / 255 for j in (1, 3, 5)]
         hue = colorsys.rgb_to_hsv(*rgb)[0] * 360
-        out.append(DominantColour(tuple(float(v) for v in centres[i]),  # type: ignore[arg-type]
-                                  float(counts[i] / counts.sum()), hex_colour, hue))
+        out.append(DominantColour((labs[i][0], labs[i][1], labs[i][2]),
+                                  float(counts[i] / total), hex_colour, hue))
     return tuple(out)
+
+
+def _mean_var(values: np.ndarray) -> tuple[Any, Any]:
+    """Mean and variance (population) of an array as numpy scalars of its type: the
+    arithmetic of ``np.mean`` and ``np.var`` (sum, divide; deviations squared, sum, divide)
+    without their Python layers."""
+    n = values.size
+    mean = values.sum() / n
+    dev = values - mean
+    return mean, (dev * dev).sum() / n
 
 
 def _colourfulness(rgb: np.ndarray) -> float:
     r, g, b = (rgb[..., i].astype(np.float64) for i in range(3))
     rg, yb = r - g, 0.5 * (r + g) - b
-    return float(np.hypot(rg.std(), yb.std()) + 0.3 * np.hypot(rg.mean(), yb.mean()))
+    mean_rg, var_rg = _mean_var(rg)
+    mean_yb, var_yb = _mean_var(yb)
+    return float(np.hypot(np.sqrt(var_rg), np.sqrt(var_yb)) + 0.3 * np.hypot(mean_rg, mean_yb))
 
 
 def _sharpness(grey: np.ndarray) -> float:
     """Variance of the 5-point Laplacian, edges mirrored (scipy.ndimage.laplace's "reflect")."""
-    p = np.pad(grey.astype(np.float64), 1, mode="symmetric")
+    h, w = grey.shape
+    p = np.empty((h + 2, w + 2))  # the picture with each edge repeated outside it (mirrored)
+    p[1:-1, 1:-1] = grey
+    p[0, 1:-1], p[-1, 1:-1] = grey[0], grey[-1]
+    p[1:-1, 0], p[1:-1, -1] = grey[:, 0], grey[:, -1]
     centre = p[1:-1, 1:-1]
-    return float((p[:-2, 1:-1] + p[2:, 1:-1] + p[1:-1, :-2] + p[1:-1, 2:] - 4 * centre).var())
+    return float(_mean_var(p[:-2, 1:-1] + p[2:, 1:-1] + p[1:-1, :-2] + p[1:-1, 2:]
+                           - 4 * centre)[1])
+
+
+def _gradient(values: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """``np.gradient`` of a 2-D array with unit spacing (central differences inside, one-sided
+    at the edges; the same arithmetic and type), without its general machinery."""
+    if min(values.shape) < 2:
+        raise ValueError("a side under 2 px has no gradient")  # as np.gradient refuses it
+    gy, gx = np.empty_like(values), np.empty_like(values)
+    gy[1:-1] = (values[2:] - values[:-2]) / 2.0
+    gy[0], gy[-1] = values[1] - values[0], values[-1] - values[-2]
+    gx[:, 1:-1] = (values[:, 2:] - values[:, :-2]) / 2.0
+    gx[:, 0], gx[:, -1] = values[:, 1] - values[:, 0], values[:, -1] - values[:, -2]
+    return gy, gx
+
+
+_CROSS = np.array([[0, 1, 0], [1, 1, 1], [0, 1, 0]], dtype=bool)  # ndimage.label's default
 
 
 def _background_share(lightness: np.ndarray) -> float:
     from scipy import ndimage
 
-    gy, gx = np.gradient(lightness)
+    gy, gx = _gradient(lightness)
     flat = gx * gx + gy * gy < FLAT_GRADIENT * FLAT_GRADIENT  # |gradient| < FLAT_GRADIENT
-    labels, count = ndimage.label(flat)
+    labels, count = ndimage.label(flat, _CROSS)
     if count == 0:
         return 0.0
     sizes = np.bincount(labels.ravel())[1:]
@@ -245,9 +293,10 @@ def colour_facts(image: Image.Image, *, colours: int = 5) -> ColourFacts:
     lab = srgb_to_lab(rgb)
     chroma = np.hypot(lab[..., 1], lab[..., 2])
     grey = np.asarray(image.convert("L"))
+    brightness, spread = _mean_var(lab[..., 0])  # np.mean and np.std's arithmetic
     return ColourFacts(
         colours=_dominant(lab, colours),
         greyscale=bool(np.count_nonzero(chroma < GREY_CHROMA) >= 0.95 * chroma.size),
-        brightness=float(lab[..., 0].mean()), contrast=float(lab[..., 0].std()),
+        brightness=float(brightness), contrast=float(np.sqrt(spread)),
         colourfulness=_colourfulness(rgb), sharpness=_sharpness(grey),
         background_share=_background_share(lab[..., 0]))
