@@ -145,11 +145,13 @@ def _lab_to_hex(lab: np.ndarray) -> list[str]:
     fy = (lab[:, 0] + 16) / 116
     f = np.stack([fy + lab[:, 1] / 500, fy, fy - lab[:, 2] / 200], axis=1)
     eps, kappa = 216 / 24389, 24389 / 27
-    xyz = np.where(f ** 3 > eps, f ** 3, (116 * f - 16) / kappa) * _WHITE
+    cube = f ** 3
+    xyz = np.where(cube > eps, cube, (116 * f - 16) / kappa) * _WHITE
     linear = (xyz @ _XYZ_TO_RGB.T).clip(0, 1)
     c = np.where(linear <= 0.0031308, 12.92 * linear, 1.055 * linear ** (1 / 2.4) - 0.055)
-    return ["#{:02x}{:02x}{:02x}".format(*(round(v * 255) for v in row))
-            for row in c.clip(0, 1).tolist()]
+    # np.rint rounds half to even, as Python's round() does
+    return ["#{:02x}{:02x}{:02x}".format(*row)
+            for row in np.rint(c.clip(0, 1) * 255).astype(int).tolist()]
 
 
 def _nearest(points: np.ndarray, centres: np.ndarray) -> np.ndarray:
@@ -188,25 +190,24 @@ def _seeds(points: np.ndarray, k: int, rng: np.random.Generator) -> np.ndarray:
     return centres
 
 
-_BANDS = np.arange(3)
-
-
 def _kmeans(points: np.ndarray, k: int, rng: np.random.Generator) -> np.ndarray:
     """Lloyd's algorithm from k-means++ seeds: centres of ``points`` (n, 3), float64."""
     wide = points.astype(np.float64)  # exact; what the mixed-type arithmetic used anyway
     twice = 2.0 * points  # as _nearest forms it (exact), once for every round
     centres = _seeds(wide, k, rng)
-    flat = wide.ravel()
+    columns = np.ascontiguousarray(wide.T)
+    sums = np.empty((k, 3))
     for _ in range(KMEANS_ROUNDS):
         label = np.argmin((centres * centres).sum(axis=1)
                           - twice @ np.ascontiguousarray(centres.T), axis=1)
         counts = np.bincount(label, minlength=k)
-        # the three coordinate sums of every cluster in one bincount (same order of addition
-        # as one bincount per coordinate: each bin adds its points in turn)
-        sums = np.bincount((label[:, None] * 3 + _BANDS).ravel(), flat,
-                           minlength=3 * k).reshape(k, 3)
-        # an emptied cluster keeps its centre
-        moved = np.where(counts[:, None] > 0, sums / np.maximum(counts, 1)[:, None], centres)
+        for j in range(3):  # each cluster's coordinate sums (each bin adds its points in turn)
+            sums[:, j] = np.bincount(label, columns[j], minlength=k)
+        if counts.all():
+            moved = sums / counts[:, None]
+        else:  # an emptied cluster keeps its centre
+            moved = np.where(counts[:, None] > 0, sums / np.maximum(counts, 1)[:, None],
+                             centres)
         settled = float(np.abs(moved - centres).max()) < KMEANS_SETTLED
         centres = moved
         if settled:
@@ -251,7 +252,8 @@ def _mean_var(values: np.ndarray) -> tuple[Any, Any]:
 
 
 def _colourfulness(rgb: np.ndarray) -> float:
-    r, g, b = (rgb[..., i].astype(np.float64) for i in range(3))
+    wide = rgb.astype(np.float64)
+    r, g, b = wide[..., 0], wide[..., 1], wide[..., 2]
     rg, yb = r - g, 0.5 * (r + g) - b
     mean_rg, var_rg = _mean_var(rg)
     mean_yb, var_yb = _mean_var(yb)
