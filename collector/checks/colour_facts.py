@@ -124,11 +124,14 @@ def srgb_to_lab(rgb: np.ndarray) -> np.ndarray:
     """CIELAB (D65) of sRGB values in 0-255, shape (..., 3) -> (..., 3)."""
     values = np.asarray(rgb)
     if values.dtype == np.uint8:
-        xyz = _LINEAR_8BIT_32[values] @ _TO_RELATIVE_XYZ_32
+        xyz = np.take(_LINEAR_8BIT_32, values) @ _TO_RELATIVE_XYZ_32
     else:
         xyz = _linear(values.astype(np.float64) / 255.0) @ _RGB_TO_XYZ.T / _WHITE
     eps, kappa = 216 / 24389, 24389 / 27  # CIE 15:2004 exact ratios
-    f = np.where(xyz > eps, np.cbrt(xyz), (kappa * xyz + 16) / 116)
+    f = np.cbrt(xyz)  # above eps; the linear part only where it applies (dark values)
+    dark = xyz <= eps
+    if dark.any():
+        f[dark] = (kappa * xyz[dark] + 16) / 116
     lab = np.empty_like(f)
     lab[..., 0] = 116 * f[..., 1] - 16
     lab[..., 1] = 500 * (f[..., 0] - f[..., 1])
