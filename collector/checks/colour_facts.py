@@ -12,7 +12,7 @@ a distribution. Sources of each formula:
   algorithm (S. P. Lloyd, "Least squares quantization in PCM", IEEE Trans. Inf. Theory 28(2),
   1982) from a k-means++ start (D. Arthur and S. Vassilvitskii, "k-means++: the advantages of
   careful seeding", SODA 2007) with a fixed seed, at most ``KMEANS_ROUNDS`` rounds, in numpy
-  (scipy's kmeans2 and vq took 1.2 ms a picture, this about 0.6 ms with the shares, and
+  (scipy's kmeans2 and vq took 1.2 ms a picture, this about 0.3 ms with the shares, and
   scipy.cluster's import cost 0.3 s a run); every pixel is then given to its nearest centre
   for the shares; each cluster with its sRGB colour and HSV hue in degrees (Python's
   colorsys).
