@@ -338,7 +338,9 @@ def hash_facts(im: Image.Image, orientation: int = 1) -> HashFacts:
     the windows cut from the same small greyscale picture."""
     hash_draft(im)  # a JPEG already drafted (and loaded) by the caller is taken as it is
     grey = prepare_for_hash(im, orientation)
-    turns = turned_hashes(_dct_of(grey))
+    # An 8-bit picture (mode L) is hashed as it is (hash_ready would only copy it); any other
+    # goes through hash_ready again, as it always has (a float picture is scaled once more).
+    turns = turned_hashes(_dct_of(grey) if grey.mode == "L" else dct_block(grey))
     blank = is_blank(grey)
     return HashFacts(turns["same"], turns["mirror"], blank, turns,
                      [] if blank else windows_of(grey))
