@@ -253,3 +253,20 @@ def test_ingest_hashes_are_the_hash_pipelines_bits_in_every_mode():
         phash, mirror, blank = phash_and_blank(im.copy())
         assert (facts.phash, facts.mirror, facts.blank) == (phash, mirror, blank), im.mode
         assert (facts.turns["same"], facts.turns["mirror"]) == (phash, mirror), im.mode
+
+
+def test_turned_hashes_threshold_at_numpys_median_in_the_blocks_own_type():
+    """A float picture's DCT block is float32 (scipy.fft keeps the type); each bit is set where
+    a coefficient is above the block's median as np.median computes it (the mean of the two
+    middle values, in float32 there). Blocks whose two middle values are neighbouring floats
+    tell a float32 median from a float64 one."""
+    from collector.checks.phash import turned_hashes
+
+    rng = np.random.default_rng(5)
+    for _ in range(200):
+        base = np.float32(rng.normal(0, 100))
+        block = (base + np.arange(64, dtype=np.float32) * np.spacing(base)).astype(np.float32)
+        rng.shuffle(block)
+        block = block.reshape(8, 8)
+        bits = np.packbits((block > np.median(block)).ravel())
+        assert turned_hashes(block)["same"] == int.from_bytes(bits.tobytes(), "big")

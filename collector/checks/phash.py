@@ -168,7 +168,9 @@ def turned_hashes(block: np.ndarray) -> dict[str, int]:
     signs of each turn, the transposed ones transposed, each block's median threshold (the
     arithmetic of :func:`_median`: the mean of the two middle values) and its bits read
     row-major, first bit most significant."""
-    blocks = _TURN_SIGNS * block  # negating is exact: the same values as np.where(.., -b, b)
+    # negating is exact: the same values, in the block's own type (float32 for a float
+    # picture), as np.where(.., -b, b), so the medians below round as _median's do
+    blocks = _TURN_SIGNS.astype(block.dtype) * block
     blocks[_TURN_TRANSPOSED] = blocks[_TURN_TRANSPOSED].transpose(0, 2, 1)
     flat = blocks.reshape(len(TURNS), _HASH_SIZE * _HASH_SIZE)
     ordered = np.sort(flat, axis=1)
