@@ -225,3 +225,48 @@ def test_flat_fills_and_plain_gradients_are_featureless() -> None:
     for seed in range(5):
         im = Image.effect_mandelbrot((256, 192), (-2 + seed * 0.2, -1.2, 1, 1.2), 60)
         assert not featureless(phash_from_image(im)[0]), seed
+
+
+def float_images() -> list[Image.Image]:
+    """16-bit, 32-bit integer and float pictures of gradients with grain (the modes that
+    hash_ready scales; Pillow handbook "Modes")."""
+    rng = np.random.default_rng(11)
+    out = []
+    for n in range(12):
+        h, w = int(rng.integers(40, 200)), int(rng.integers(40, 200))
+        field = np.linspace(0, 1, w)[None, :] * np.linspace(0.2, 1, h)[:, None]
+        field = np.clip(field + rng.normal(0, 0.05, (h, w)) * (n % 3), 0, 1)
+        out += [Image.fromarray((field * 30000).astype(np.uint16)),
+                Image.fromarray((field * 0.8).astype(np.float32), "F"),
+                Image.fromarray((field * 200).astype(np.int32), "I")]
+    return out
+
+
+def test_ingest_hashes_are_the_hash_pipelines_bits_in_every_mode():
+    """One HASH_ALGO pipeline (collector.checks.phash module docstring; libraries.md section
+    2: fix one pipeline and record it): the pHash, mirror and turns ingest stores
+    (hash_facts) are the bits phash_and_blank gives, for 8-bit, 16-bit, I and F pictures."""
+    from collector.checks.phash import hash_facts, phash_and_blank
+
+    for im in [*varied_images(), *float_images()]:
+        facts = hash_facts(im.copy())
+        phash, mirror, blank = phash_and_blank(im.copy())
+        assert (facts.phash, facts.mirror, facts.blank) == (phash, mirror, blank), im.mode
+        assert (facts.turns["same"], facts.turns["mirror"]) == (phash, mirror), im.mode
+
+
+def test_turned_hashes_threshold_at_numpys_median_in_the_blocks_own_type():
+    """A float picture's DCT block is float32 (scipy.fft keeps the type); each bit is set where
+    a coefficient is above the block's median as np.median computes it (the mean of the two
+    middle values, in float32 there). Blocks whose two middle values are neighbouring floats
+    tell a float32 median from a float64 one."""
+    from collector.checks.phash import turned_hashes
+
+    rng = np.random.default_rng(5)
+    for _ in range(200):
+        base = np.float32(rng.normal(0, 100))
+        block = (base + np.arange(64, dtype=np.float32) * np.spacing(base)).astype(np.float32)
+        rng.shuffle(block)
+        block = block.reshape(8, 8)
+        bits = np.packbits((block > np.median(block)).ravel())
+        assert turned_hashes(block)["same"] == int.from_bytes(bits.tobytes(), "big")

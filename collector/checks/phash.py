@@ -102,10 +102,14 @@ def _hash_block(block: np.ndarray) -> int:
 
 def dct_block(im: Image.Image) -> np.ndarray:
     """The 8x8 low-frequency DCT block of an image (any mode, through ``hash_ready``)."""
+    return _dct_of(hash_ready(im))
+
+
+def _dct_of(grey: Image.Image) -> np.ndarray:
+    """:func:`dct_block` of a :func:`hash_ready` picture (not made again)."""
     import scipy.fft  # imported lazily: the first import costs 0.1-0.25 s
 
-    grey = hash_ready(im).resize((_IMG_SIZE, _IMG_SIZE), Image.Resampling.LANCZOS)
-    pixels = np.asarray(grey)
+    pixels = np.asarray(grey.resize((_IMG_SIZE, _IMG_SIZE), Image.Resampling.LANCZOS))
     dct = scipy.fft.dct(scipy.fft.dct(pixels, axis=0), axis=1)
     return np.asarray(dct[:_HASH_SIZE, :_HASH_SIZE])
 
@@ -140,22 +144,41 @@ TURNS: dict[str, tuple[bool, bool, bool]] = {
 }
 
 
+def _turn_signs() -> tuple[np.ndarray, np.ndarray]:
+    """For :data:`TURNS` in order: the sign of each coefficient of the block (odd rows and/or
+    odd columns negated) and whether the block is then transposed."""
+    odd = np.arange(_HASH_SIZE) % 2 == 1
+    signs = np.ones((len(TURNS), _HASH_SIZE, _HASH_SIZE))
+    for n, (_, odd_rows, odd_cols) in enumerate(TURNS.values()):
+        if odd_rows:
+            signs[n, odd, :] *= -1
+        if odd_cols:
+            signs[n, :, odd] *= -1
+    return signs, np.array([transpose for transpose, _, _ in TURNS.values()])
+
+
+_TURN_SIGNS, _TURN_TRANSPOSED = _turn_signs()
+
+
 def turned_hashes(block: np.ndarray) -> dict[str, int]:
     """The hash the original would have if it were turned back from each of the 8 turns.
 
     A query that is a copy turned by ``name`` has, after undoing ``name``, the original's
-    hash; undoing is applying the inverse turn to the query's block."""
-    out: dict[str, int] = {}
-    for name, (transpose, odd_rows, odd_cols) in TURNS.items():
-        b = block
-        if odd_rows:
-            b = np.where(_ODD_COLUMNS.T, -b, b)
-        if odd_cols:
-            b = np.where(_ODD_COLUMNS, -b, b)
-        if transpose:
-            b = b.T
-        out[name] = _hash_block(b)
-    return out
+    hash; undoing is applying the inverse turn to the query's block. All 8 at once: the
+    signs of each turn, the transposed ones transposed, each block's median threshold (the
+    arithmetic of :func:`_median`: the mean of the two middle values) and its bits read
+    row-major, first bit most significant."""
+    # negating is exact: the same values, in the block's own type (float32 for a float
+    # picture), as np.where(.., -b, b), so the medians below round as _median's do
+    blocks = _TURN_SIGNS.astype(block.dtype) * block
+    blocks[_TURN_TRANSPOSED] = blocks[_TURN_TRANSPOSED].transpose(0, 2, 1)
+    flat = blocks.reshape(len(TURNS), _HASH_SIZE * _HASH_SIZE)
+    ordered = np.sort(flat, axis=1)
+    mid = flat.shape[1] // 2
+    medians = (ordered[:, mid - 1] + ordered[:, mid]) / 2
+    packed = np.packbits(flat > medians[:, None], axis=1)
+    return {name: int.from_bytes(row.tobytes(), "big") for name, row in zip(TURNS, packed,
+                                                                            strict=True)}
 
 
 def prepare_for_hash(im: Image.Image, orientation: int = 1) -> Image.Image:
@@ -273,7 +296,9 @@ def windows_of(grey: Image.Image) -> list[int]:
     # (4 tops, 8, w) then (4 tops, 4 lefts, 8, 8): window (left i, top j) is blocks[j, i]
     blocks = (rows @ pixels)[:, None] @ cols.transpose(0, 2, 1)[None]
     flat = blocks.reshape(len(WINDOWS), _HASH_SIZE * _HASH_SIZE)
-    bits = flat > np.median(flat, axis=1, keepdims=True)
+    ordered = np.sort(flat, axis=1)  # np.median's arithmetic: the two middle values' mean
+    mid = flat.shape[1] // 2
+    bits = flat > ((ordered[:, mid - 1] + ordered[:, mid]) / 2)[:, None]
     return [int.from_bytes(row.tobytes(), "big") for row in np.packbits(bits, axis=1)]
 
 
@@ -315,8 +340,9 @@ def hash_facts(im: Image.Image, orientation: int = 1) -> HashFacts:
     the windows cut from the same small greyscale picture."""
     hash_draft(im)  # a JPEG already drafted (and loaded) by the caller is taken as it is
     grey = prepare_for_hash(im, orientation)
-    block = dct_block(grey)
-    turns = turned_hashes(block)
+    # An 8-bit picture (mode L) is hashed as it is (hash_ready would only copy it); any other
+    # goes through hash_ready again, as it always has (a float picture is scaled once more).
+    turns = turned_hashes(_dct_of(grey) if grey.mode == "L" else dct_block(grey))
     blank = is_blank(grey)
     return HashFacts(turns["same"], turns["mirror"], blank, turns,
                      [] if blank else windows_of(grey))

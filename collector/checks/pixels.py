@@ -108,4 +108,4 @@ def colour_ready(im: Image.Image, side: int) -> Image.Image:
 def is_blank(grey: Image.Image) -> bool:
     """Whether a :func:`hash_ready` picture is flat (see BLANK_SPREAD)."""
     small = np.asarray(grey.resize((16, 16), Image.Resampling.BOX), dtype=np.float64)
-    return bool(small.size == 0 or float(np.ptp(small)) < BLANK_SPREAD)
+    return bool(small.size == 0 or float(small.max() - small.min()) < BLANK_SPREAD)
