@@ -19,6 +19,7 @@ import pytest
 from PIL import Image
 
 from collector.checks.colour_facts import colour_facts, srgb_to_lab
+from collector.checks.images import inspect_image
 
 PUBLISHED = [
     ((255, 255, 255), (100.0, 0.0, 0.0)),
@@ -132,3 +133,27 @@ def test_gather_stores_colour_facts_for_jpeg_and_png(tmp_path: Path) -> None:
     assert len(colours) == 3 and sum(c["share"] for c in colours) == pytest.approx(1.0)
     assert [round(c["share"], 1) for c in colours] == [0.5, 0.3, 0.2]
     assert flags["set_aside"] is None
+
+
+@pytest.mark.parametrize("size", [(50, 1), (1, 50), (1, 1), (6400, 90)])
+def test_a_line_of_pixels_gets_facts_not_an_error(tmp_path: Path, size: tuple[int, int]) -> None:
+    """A picture one pixel high or wide (a spacer, a thin banner; 6400x90 is reduced to a
+    line of 64x1) is a valid image: its facts are those of the line (three fifths red, two
+    fifths blue along its length), its missing direction adds no sharpness; ingest's
+    inspection stores it instead of calling it broken (it once raised "no gradient")."""
+    along = max(size)
+    line = np.zeros((along, 3), dtype=np.uint8)
+    line[: along * 3 // 5] = (255, 0, 0)
+    line[along * 3 // 5:] = (0, 0, 255)
+    picture = line.reshape((1, along, 3)) if size[1] <= size[0] else line.reshape((along, 1, 3))
+    image = Image.fromarray(np.ascontiguousarray(picture)).resize(size, Image.Resampling.NEAREST)
+    facts = colour_facts(image)
+    shares = sorted((c.share for c in facts.colours), reverse=True)[:2]
+    # the banner's reduction blends the pixels where red meets blue: a sliver of a third colour
+    assert shares == pytest.approx([1.0] if size == (1, 1) else [0.6, 0.4], abs=0.03)
+    assert np.isfinite(facts.sharpness) and 0.0 <= facts.background_share <= 1.0
+    path = tmp_path / "line.png"
+    image.save(path)
+    inspected = inspect_image(path)  # the whole inspection, as ingest calls it
+    main = "#0000ff" if size == (1, 1) else "#ff0000"  # a 1x1 is the line's last pixel: blue
+    assert inspected.colour is not None and inspected.colour.colours[0].hex == main

@@ -309,6 +309,11 @@ def colour_facts(image: Image.Image, *, colours: int = 5) -> ColourFacts:
     image = image.convert("RGB")  # a copy of its own, even from RGB (Pillow's convert)
     if max(image.size) > WORK_SIDE:
         image.thumbnail((WORK_SIDE, WORK_SIDE), Image.Resampling.BOX)
+    if min(image.size) < 2:  # a line of pixels (a thin banner, or one reduced to a line):
+        # repeated to two, so the missing direction has no gradient and no Laplacian, and the
+        # shares stay those of the line itself
+        image = image.resize((max(image.width, 2), max(image.height, 2)),
+                             Image.Resampling.NEAREST)
     rgb = np.asarray(image)
     lab = srgb_to_lab(rgb)
     chroma = np.hypot(lab[..., 1], lab[..., 2])
