@@ -30,6 +30,24 @@ def test_lookup_indexes_exist(tmp_path: Path) -> None:
             <= indexed
 
 
+def test_a_hosts_last_contact_is_read_from_an_index(tmp_path: Path) -> None:
+    """``last_contact`` (asked for every cluster task) is answered from the (host, ended_at)
+    index, not by reading each fetch row of the host: SQLite's planner says it searches that
+    index (sqlite.org "EXPLAIN QUERY PLAN": SEARCH ... USING COVERING INDEX), and the answer
+    is the host's latest end, other hosts' later rows aside."""
+    with Ledger.create(tmp_path / "l.sqlite") as ledger:
+        for host, ended in (("a:80", "2026-01-02T00:00:00Z"), ("a:80", "2026-01-03T00:00:00Z"),
+                            ("b:80", "2026-02-01T00:00:00Z"), ("a:80", None)):
+            ledger.record_fetch(host=host, url=f"http://{host}/", purpose="image",
+                                started_at="2026-01-01T00:00:00Z", ended_at=ended)
+        assert ledger.last_contact("a:80") == "2026-01-03T00:00:00Z"
+        plan = " ".join(str(row["detail"]) for row in ledger.query(
+            "EXPLAIN QUERY PLAN SELECT max(ended_at) FROM fetches WHERE host = ?", ("a:80",)))
+        assert "USING COVERING INDEX idx_fetches_host_ended_at" in plan, plan
+        assert {tuple(i.columns) for i in ledger.db["fetches"].indexes} == {
+            ("item_id",), ("host", "ended_at")}
+
+
 def test_open_refuses_a_newer_schema(tmp_path: Path) -> None:
     """A ledger written by a newer collector is not silently downgraded."""
     path = tmp_path / "l.sqlite"
