@@ -3,7 +3,7 @@
 One JSON listing of HOSTS x PER_HOST items (as bench/cluster.py: 40 hosts x 40 images, licence
 "CC0-1.0", loopback image URLs), mapped by the json_api kind and admitted into a real ledger
 in a fresh collection: one by one (:meth:`collector.run.ingest.Ingest.admit`, a transaction
-per item), then grouped as a run's listing thread admits them (scheduling._Listed and
+per item), then grouped as a run's listing thread admits them (listed.ListedGroup and
 :meth:`~collector.run.ingest.Ingest.admit_group`, a transaction per group), then again as a
 resumed run (every item already in the ledger, none stored yet).
 No request is made: the page is handed to the adapter as it was fetched and the jobs
@@ -27,7 +27,8 @@ from typing import Any
 
 from collector import sources as adapters
 from collector.run.gather import prepared_run
-from collector.run.scheduling import Gatherer, _Listed
+from collector.run.listed import ListedGroup
+from collector.run.scheduling import Gatherer
 from collector.storage.collection import Collection, init_collection
 
 HOSTS, PER_HOST = 40, 40
@@ -114,7 +115,7 @@ class _Jobs:
 def one_pass(folder: Path, body: bytes, *, grouped: bool,
              profile: cProfile.Profile | None) -> dict[str, Any]:
     """List and admit every item once: grouped as a run's listing thread admits them
-    (scheduling._Listed, Ingest.admit_group), or one by one (Ingest.admit)."""
+    (listed.ListedGroup, Ingest.admit_group), or one by one (Ingest.admit)."""
     col = (Collection(folder) if folder.exists()
            else init_collection(folder, contact="bench@example.org"))
     col.recipe_path.write_text(RECIPE)
@@ -129,7 +130,7 @@ def one_pass(folder: Path, body: bytes, *, grouped: bool,
             profile.enable()
         wall, cpu = time.perf_counter(), time.process_time()
         if grouped:
-            listed = _Listed(g, sid, None)
+            listed = ListedGroup(g, sid, None)
             for c in cands:
                 listed.add(c)
             listed.flush()

@@ -1,4 +1,4 @@
-"""Listed candidates admitted in groups (scheduling._Listed, Ingest.admit_group): one ledger
+"""Listed candidates admitted in groups (listed.ListedGroup, Ingest.admit_group): one ledger
 transaction per group, the same rows, states, reasons and jobs as admitting them one by one,
 and every item row committed before its image can be requested.
 
@@ -19,7 +19,8 @@ from pathlib import Path
 from typing import Any
 
 from collector.run.gather import prepared_run
-from collector.run.scheduling import LISTED_GROUP, Gatherer, _Listed
+from collector.run.listed import LISTED_GROUP, ListedGroup
+from collector.run.scheduling import Gatherer
 from collector.sources.base import Candidate
 from collector.storage.collection import Collection, init_collection
 
@@ -112,7 +113,7 @@ def _admit(folder: Path, grouped: bool) -> tuple[list[dict[str, Any]], list[Any]
         jobs = _Jobs()
         with _run(folder, jobs) as (col, g, sid):
             if grouped:
-                listed = _Listed(g, sid, None)
+                listed = ListedGroup(g, sid, None)
                 for c in _mixed():
                     listed.add(c)
                 listed.flush()
@@ -154,7 +155,7 @@ def test_every_row_is_committed_before_its_job(tmp_path: Path) -> None:
         seen.append(job.item_id)
 
     with _run(folder, _Jobs(check)) as (_col, g, sid):
-        listed = _Listed(g, sid, None)
+        listed = ListedGroup(g, sid, None)
         for i in range(LISTED_GROUP + 10):
             listed.add(Candidate(f"k{i}", IMG.format(i), licence_raw="CC0-1.0"))
         listed.flush()
@@ -179,7 +180,7 @@ def test_held_candidates_are_admitted_before_the_next_page_request(tmp_path: Pat
     jobs = _Jobs()
     with _run(tmp_path / "p", jobs) as (col, g, sid):
         pages = _Pages(col, jobs)
-        listed = _Listed(g, sid, pages)
+        listed = ListedGroup(g, sid, pages)
         for i in range(5):
             listed.add(Candidate(f"p{i}", IMG.format(i), licence_raw="CC0-1.0"))
         assert listed.fetcher.get_page("http://127.0.0.9:8000/items?page=2") == "page"

@@ -46,6 +46,7 @@ from collector.errors import (
     UnsafeURL,
 )
 from collector.run.ingest import Ingest, Job
+from collector.run.listed import AdmissionFailed, ListedGroup
 from collector.run.record import NullProgress, Progress, RunRecord, secret_values
 from collector.run.reservations import ReservationGate
 from collector.sources.base import ListingState, PageFetcher
@@ -86,73 +87,6 @@ class HostDispatch(Protocol):
     def put(self, host: str, job: Job) -> None: ...
 
     def finish(self) -> None: ...
-
-
-# Listed candidates admitted together (Ingest.admit_group): at most this many, and none held
-# longer than LISTED_WAIT s (checked as the next one comes).
-LISTED_GROUP = 64
-LISTED_WAIT = 0.05
-
-
-class _AdmissionFailed(Exception):
-    """Admission failed inside a source's page request: carried past the source's own error
-    handling (which may catch a FetchError) and raised again as it was by the listing."""
-
-    def __init__(self, error: Exception) -> None:
-        super().__init__(str(error))
-        self.error = error
-
-
-class _Listed:
-    """A source's listed candidates waiting for admission, handed to
-    :meth:`Ingest.admit_group` together: at most LISTED_GROUP, and always before the source
-    asks for another page (its :meth:`get_page` is the page fetcher the source is given), so
-    no candidate waits for a request and the reservation signals a page leaves are those of
-    its own items; a repeated source key or a local file closes the group first."""
-
-    def __init__(self, gatherer: Gatherer, source_id: int, pages: Any) -> None:
-        self._g, self._source_id, self._pages = gatherer, source_id, pages
-        self._group: list[Any] = []
-        self._keys: set[str] = set()
-        self._since = 0.0
-        self._failed: Exception | None = None
-
-    @property
-    def fetcher(self) -> Any:
-        """What the source lists through (None stays None: it requests nothing)."""
-        return None if self._pages is None else self
-
-    def get_page(self, url: str, **kwargs: Any) -> Any:
-        try:
-            self.flush()
-        except Exception as exc:  # the run's problem, not the page's: past the source
-            self._failed = exc  # raised again by the next flush should a source swallow it
-            raise _AdmissionFailed(exc) from exc
-        return self._pages.get_page(url, **kwargs)
-
-    def __getattr__(self, name: str) -> Any:
-        return getattr(self._pages, name)
-
-    def add(self, c: Any) -> None:
-        if c.source_key in self._keys:
-            self.flush()
-        if not self._group:
-            self._since = time.monotonic()
-        self._group.append(c)
-        self._keys.add(c.source_key)
-        if (len(self._group) >= LISTED_GROUP or c.content is not None
-                or c.local_path is not None or time.monotonic() - self._since > LISTED_WAIT):
-            self.flush()
-
-    def flush(self) -> None:
-        """Admit the candidates held; each image to fetch goes to its host."""
-        if self._failed is not None:
-            raise self._failed
-        group, self._group, self._keys = self._group, [], set()
-        if group:
-            for job in self._g.ingest.admit_group(self._source_id, group):
-                if job is not None:
-                    self._g._enqueue(job)
 
 
 @dataclass(frozen=True)
@@ -445,7 +379,7 @@ class Gatherer:
         state = ListingState(self.ledger.listing_state(source_id, self._config_sha[source_id]))
         try:
             # The page fetcher notes reservation signals; candidates are admitted in groups.
-            listed = _Listed(self, source_id, self.gate.watching(self.fetcher, source_id))
+            listed = ListedGroup(self, source_id, self.gate.watching(self.fetcher, source_id))
             try:
                 for candidate in adapters.iter_candidates(source, listed.fetcher, note,
                                                           self.collection.root, state):
@@ -456,8 +390,8 @@ class Gatherer:
                     if state.reached is not None:
                         with self._lock:
                             self._reached[source_id] = state.reached
-            except _AdmissionFailed as failed:
-                raise failed.error from None
+            except AdmissionFailed as failed:
+                raise failed.args[0] from None
             except CollectorError as exc:
                 if not isinstance(exc, (StoreError, LedgerError)):
                     listed.flush()  # what was listed before the listing stopped is admitted
@@ -490,6 +424,12 @@ class Gatherer:
                 continue
             self.ledger.set_listing_state(source_id, value, self._config_sha[source_id],
                                           self.run_id)
+
+    def _register(self, source_id: int, c: Any) -> None:
+        """Admit one candidate (:meth:`Ingest.admit`); an image to fetch goes to its host."""
+        job = self.ingest.admit(source_id, c)
+        if job is not None:
+            self._enqueue(job)
 
     # -- per-host workers --------------------------------------------------------------------
     def _enqueue(self, job: Job) -> None:
