@@ -300,6 +300,13 @@ def licence_allowed(
         return (True, None) if ok else (False, "rights_statement_not_allowed")
     if not spdx_id:
         return (True, None) if allow_unknown else (False, "licence_unknown")
+    return _spdx_allowed(spdx_id, tuple(allow), allow_unknown)
+
+
+@lru_cache(maxsize=4096)  # a run asks about the same few ids with the same allowlist
+def _spdx_allowed(spdx_id: str, allow: tuple[str, ...], allow_unknown: bool,
+                  ) -> tuple[bool, str | None]:
+    """:func:`licence_allowed` for an SPDX id (pure: parsed and decided once per id)."""
     try:
         expr = _licensing().parse(spdx_id, validate=False)
     except Exception:

@@ -18,7 +18,7 @@ import hashlib
 import os
 import stat
 import threading
-from collections.abc import Callable, Sequence
+from collections.abc import Callable, Iterator, Sequence
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any, BinaryIO
@@ -143,10 +143,28 @@ class Ingest:
         """Record a candidate and decide what happens to it before anything is downloaded:
         the image to fetch, or None when it was decided here (done, skipped, stored locally,
         a duplicate by its image URL)."""
+        return next(self.admit_group(source_id, [c]))
+
+    def admit_group(self, source_id: int, group: Sequence[Any]) -> Iterator[Job | None]:
+        """:meth:`admit` for candidates listed one after another (no source key twice), one
+        answer each, in order: their item rows are written in ONE transaction, committed
+        before anything else is decided, so each row is durable before any request for its
+        image (the first answer comes after the commit). Only ledger reads and writes run
+        inside it (and the record's counter lock, held for an increment): a thread waiting
+        for the ledger while it holds the image URL lock or a tdmrep.json origin lock is
+        never waited for here."""
+        with self.ledger.transaction():
+            registered = [None if getattr(c, "withdrawn", None) else self._register(source_id, c)
+                          for c in group]
+        for c, r in zip(group, registered, strict=True):
+            yield self._decide(source_id, c, r)
+
+    def _decide(self, source_id: int, c: Any,
+                registered: tuple[int, str | None, Any] | None) -> Job | None:
+        """The rest of :meth:`admit` once the candidate's row is committed."""
         if getattr(c, "withdrawn", None):
             self._withdrawn_by_archive(source_id, c)
             return None
-        registered = self._register(source_id, c)
         if registered is None:
             return None
         item_id, spdx_id, image_url = registered

@@ -46,6 +46,7 @@ from collector.errors import (
     UnsafeURL,
 )
 from collector.run.ingest import Ingest, Job
+from collector.run.listed import AdmissionFailed, ListedGroup
 from collector.run.record import NullProgress, Progress, RunRecord, secret_values
 from collector.run.reservations import ReservationGate
 from collector.sources.base import ListingState, PageFetcher
@@ -377,16 +378,25 @@ class Gatherer:
 
         state = ListingState(self.ledger.listing_state(source_id, self._config_sha[source_id]))
         try:
-            pages = self.gate.watching(self.fetcher, source_id)  # reservation signals
-            for candidate in adapters.iter_candidates(source, pages, note,
-                                                      self.collection.root, state):
-                if self._should_stop():
-                    break
-                self._register(source_id, candidate)
-            else:
-                if state.reached is not None:
-                    with self._lock:
-                        self._reached[source_id] = state.reached
+            # The page fetcher notes reservation signals; candidates are admitted in groups.
+            listed = ListedGroup(self, source_id, self.gate.watching(self.fetcher, source_id))
+            try:
+                for candidate in adapters.iter_candidates(source, listed.fetcher, note,
+                                                          self.collection.root, state):
+                    if self._should_stop():
+                        break
+                    listed.add(candidate)
+                else:
+                    if state.reached is not None:
+                        with self._lock:
+                            self._reached[source_id] = state.reached
+            except AdmissionFailed as failed:
+                raise failed.args[0] from None
+            except CollectorError as exc:
+                if not isinstance(exc, (StoreError, LedgerError)):
+                    listed.flush()  # what was listed before the listing stopped is admitted
+                raise
+            listed.flush()
         except HostParked as exc:
             note(_Note("host_parked", exc.url, str(exc)))
         except (StoreError, LedgerError) as exc:  # the disk or the ledger: nothing can go on
@@ -416,7 +426,7 @@ class Gatherer:
                                           self.run_id)
 
     def _register(self, source_id: int, c: Any) -> None:
-        """Admit a candidate (see :meth:`Ingest.admit`); an image to fetch goes to its host."""
+        """Admit one candidate (:meth:`Ingest.admit`); an image to fetch goes to its host."""
         job = self.ingest.admit(source_id, c)
         if job is not None:
             self._enqueue(job)

@@ -308,14 +308,12 @@ class Ledger:
         return table in self._tables()
 
     def _columns(self, table: str) -> frozenset[str]:
-        # Under the lock: the connection is shared by threads, and a PRAGMA read running
-        # while another thread writes the same table fails with "database table is locked".
-        with self._lock:
-            cols = self._column_cache.get(table)
-            if cols is None:
+        cols = self._column_cache.get(table)  # a dict read needs no lock
+        if cols is None:  # a PRAGMA read under the lock: one racing a write of the table
+            with self._lock:  # fails with "database table is locked" (shared connection)
                 cols = frozenset(c.name for c in self.db[table].columns)
                 self._column_cache[table] = cols
-            return cols
+        return cols
 
     def _checked(self, table: str, row: dict[str, Any]) -> dict[str, Any]:
         unknown = row.keys() - self._columns(table)
