@@ -26,6 +26,7 @@ from pathlib import Path
 from typing import Any
 
 from collector import sources as adapters
+from collector.demo_site.recipes import listing_source
 from collector.run.gather import prepared_run
 from collector.run.listed import ListedGroup
 from collector.run.scheduling import Gatherer
@@ -72,22 +73,8 @@ def _listing(items: int) -> bytes:
     return json.dumps({"results": rows}).encode()
 
 
-RECIPE = f'''contact = "bench@example.org"
-[network]
-allow_addresses = ["127.0.0.0/8"]
-[[sources]]
-name = "bench"
-kind = "json_api"
-url = "{LISTING}"
-[sources.pagination]
-style = "none"
-[sources.fields]
-items = "results"
-id = "id"
-title = "title"
-licence = "licence"
-image_url = "image"
-'''
+RECIPE = ('contact = "bench@example.org"\n[network]\nallow_addresses = ["127.0.0.0/8"]\n'
+          + listing_source("bench", LISTING))
 
 
 def _timed(work: Iterable[Any]) -> tuple[list[Any], float, float]:

@@ -43,6 +43,7 @@ import numpy as np
 from PIL import Image
 
 from collector.demo_site.loopback import LoopbackServer
+from collector.demo_site.recipes import listing_source
 from collector.demo_site.requestlog import max_in_window
 from collector.fetching.fetcher import FetchSettings
 from collector.run.cluster import ClusterDispatch
@@ -97,19 +98,7 @@ max_attempts = 1
 min_interval = 0.01
 [network]
 allow_addresses = ["127.0.0.0/8"]
-[[sources]]
-name = "bench"
-kind = "json_api"
-url = "http://{LISTING}:{port}/items"
-[sources.pagination]
-style = "none"
-[sources.fields]
-items = "results"
-id = "id"
-title = "title"
-licence = "licence"
-image_url = "image"
-'''
+''' + listing_source("bench", f"http://{LISTING}:{port}/items")
 
 
 def _states(col: Collection) -> dict[str, tuple[str, str | None]]:

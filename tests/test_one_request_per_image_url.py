@@ -21,6 +21,7 @@ import pytest
 from support.collections import grid_picture
 from support.server import Answer, LoopbackServer, json_answer
 
+from collector.demo_site.recipes import listing_source
 from collector.run.gather import gather
 from collector.storage.collection import Collection, init_collection
 from collector.storage.ledger import Ledger
@@ -64,20 +65,7 @@ def archive() -> Iterator[LoopbackServer]:
 
 
 def recipe(srv: LoopbackServer) -> str:
-    sources = "".join(f'''
-[[sources]]
-name = "{name}"
-kind = "json_api"
-url = "{srv.url(f'/api/{name}')}"
-[sources.pagination]
-style = "none"
-[sources.fields]
-items = "results"
-id = "id"
-title = "title"
-licence = "licence"
-image_url = "image"
-''' for name in ("one", "two"))
+    sources = "".join(listing_source(name, srv.url(f"/api/{name}")) for name in ("one", "two"))
     return f'''contact = "curator@example.org"
 [budgets]
 min_interval = 0.01

@@ -23,3 +23,22 @@ def render(name: str, port: int, scans_dir: Path | None = None) -> str:
     if "'" in scans:
         raise ValueError(f"scans folder {scans!r} contains a single quote; choose another")
     return text.replace("{port}", str(int(port))).replace("{scans}", scans)
+
+
+def listing_source(name: str, url: str) -> str:
+    """A ``[[sources]]`` table (TOML text) for a JSON listing at ``url`` on one page: its
+    ``results``, each with ``id``, ``title``, ``licence`` and ``image`` (the loopback listings
+    the tests and benches serve)."""
+    return f'''[[sources]]
+name = "{name}"
+kind = "json_api"
+url = "{url}"
+[sources.pagination]
+style = "none"
+[sources.fields]
+items = "results"
+id = "id"
+title = "title"
+licence = "licence"
+image_url = "image"
+'''

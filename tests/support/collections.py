@@ -21,7 +21,7 @@ import numpy as np
 from PIL import Image
 
 from collector.demo_site import DemoServer, RequestRecord
-from collector.demo_site.recipes import render
+from collector.demo_site.recipes import listing_source, render
 from collector.run.gather import gather
 from collector.run.scheduling import RunResult
 from collector.storage.collection import Collection, init_collection
@@ -43,24 +43,8 @@ def one_listing_recipe(url: str, *, min_interval: float | None = 0.1) -> str:
     ``title``, ``licence`` and ``image`` each), no pagination; ``min_interval`` None keeps the
     default budget."""
     budget = f"[budgets]\nmin_interval = {min_interval}\n" if min_interval is not None else ""
-    return 'contact = "x@example.org"\n' + budget + LISTING_BODY.format(url=url)
-
-
-LISTING_BODY = '''[network]
-allow_addresses = ["127.0.0.1/32"]
-[[sources]]
-name = "leaves"
-kind = "json_api"
-url = "{url}"
-[sources.pagination]
-style = "none"
-[sources.fields]
-items = "results"
-id = "id"
-title = "title"
-licence = "licence"
-image_url = "image"
-'''
+    return ('contact = "x@example.org"\n' + budget
+            + '[network]\nallow_addresses = ["127.0.0.1/32"]\n' + listing_source("leaves", url))
 
 
 def grid_picture(seed: int, fmt: str = "PNG") -> bytes:
