@@ -1,19 +1,25 @@
 """The recipe's address guard applies on every worker of a cluster run exactly as on one
 machine: an image URL on an address the recipe does not allow, directly or through a
 redirect, fails ``unsafe_url`` and no request reaches that address (the trap server on the
-unlisted loopback address 127.0.0.9 counts them)."""
+unlisted loopback address 127.0.0.9 counts them). And a host whose task Dask gives up on
+(``KilledWorker``) is degraded while the run goes on."""
 
 from __future__ import annotations
 
 from pathlib import Path
+from types import SimpleNamespace
+from typing import Any
 
+import pytest
 from support.collections import grid_picture, one_listing_recipe
 from support.server import LoopbackServer, json_answer
 
+from collector.run import cluster
 from collector.run.cluster import run_on_cluster
 from collector.run.cluster_setup import connect
 from collector.run.gather import prepared_run
 from collector.storage.collection import init_collection
+from collector.urls import host_key
 
 
 def test_the_address_guard_holds_on_the_workers(tmp_path: Path) -> None:
@@ -42,3 +48,48 @@ def test_the_address_guard_holds_on_the_workers(tmp_path: Path) -> None:
     assert {r["source_key"]: (r["state"], r["reason"]) for r in rows} == {
         "ok": ("stored", None), "direct": ("failed", "unsafe_url"),
         "redirected": ("failed", "unsafe_url")}
+
+
+def test_a_host_dask_gives_up_on_is_degraded_and_the_run_goes_on(
+        tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    """Two hosts (two ports of 127.0.0.1); the task for the second ends in Dask's KilledWorker
+    (its workers died too often, as Dask reports it): that host's items are deferred with
+    reason host_degraded, the run notes why and still finishes, the other host's images are
+    stored, and the degraded host is asked for no image."""
+    from distributed import KilledWorker
+
+    real = cluster.fetch_batch
+    with LoopbackServer("127.0.0.1") as server, LoopbackServer("127.0.0.1") as lost:
+        lost_host = host_key(lost.url("/"))
+
+        def fetch_or_lose(spec: Any) -> Any:
+            if spec.host == lost_host:
+                gone = SimpleNamespace(address="tcp://127.0.0.1:1")  # the last worker it died on
+                raise KilledWorker(task="lost-batch", last_worker=gone, allowed_failures=3)
+            return real(spec)
+
+        monkeypatch.setattr(cluster, "fetch_batch", fetch_or_lose)
+        for srv in (server, lost):
+            srv.route("/robots.txt", (404, b""))
+            for n in range(2):
+                srv.route(f"/img/{n}.png", (200, grid_picture(n + 10 * (srv is lost)),
+                                            {"Content-Type": "image/png"}))
+        items = [{"id": f"{name}{n}", "title": name, "licence": "CC0-1.0",
+                  "image": srv.url(f"/img/{n}.png")}
+                 for name, srv in (("kept", server), ("lost", lost)) for n in range(2)]
+        server.route("/items", json_answer({"results": items}))
+        col = init_collection(tmp_path / "c", contact="x@example.org")
+        col.recipe_path.write_text(one_listing_recipe(server.url("/items")))
+        with connect(local_workers=1, processes=False, threads=4) as client, \
+                prepared_run(col) as (recipe, ledger):
+            result = run_on_cluster(col, recipe, ledger, client)
+        lost_images = [h for h in lost.targets() if h.startswith("/img/")]
+    assert result.outcome == "finished"
+    assert lost_images == []
+    with col.ledger(readonly=True) as ledger:
+        rows = ledger.query("SELECT source_key, state, reason FROM items")
+        notes = ledger.query("SELECT kind, message FROM notes WHERE kind = 'host_degraded'")
+    assert {r["source_key"]: (r["state"], r["reason"]) for r in rows} == {
+        "kept0": ("stored", None), "kept1": ("stored", None),
+        "lost0": ("deferred", "host_degraded"), "lost1": ("deferred", "host_degraded")}
+    assert len(notes) == 1 and lost_host in notes[0]["message"]
