@@ -16,8 +16,8 @@ from pathlib import Path
 from typing import Any
 
 import pytest
-from support.cluster import is_image_request, wrong_items
-from support.collections import grid_picture, one_listing_recipe
+from support.cluster import is_image_request, run_in_process, wrong_items
+from support.collections import one_listing_recipe, serve_leaves
 from support.server import LoopbackServer, json_answer
 
 from collector.demo_site import DemoServer
@@ -37,9 +37,7 @@ def cluster_demo_run(demo_server: DemoServer, demo_content: Path,
     col = init_collection(tmp_path_factory.mktemp("cluster") / "c", contact="x@example.org")
     col.recipe_path.write_text(render("demo", demo_server.port, demo_content / "scans"))
     batches: list[Any] = []
-    with connect(local_workers=1, processes=False, threads=8) as client, \
-            prepared_run(col) as (recipe, ledger):
-        result = run_on_cluster(col, recipe, ledger, client, on_batch=batches.append)
+    result = run_in_process(col, threads=8, on_batch=batches.append)
     return col, list(demo_server.log), (result, batches)
 
 
@@ -102,12 +100,7 @@ def test_a_cluster_run_asked_to_stop_stops(ask: str, tmp_path: Path) -> None:
     batch, about 5 s), as interrupted (exit 143) or stopped, with well under half the images
     stored; nothing failed and the rest stays pending for the next run."""
     with LoopbackServer("127.0.0.1") as server:
-        items = [{"id": str(n), "title": f"Leaf {n}", "licence": "CC0-1.0",
-                  "image": server.url(f"/img/{n}.png")} for n in range(300)]
-        for n in range(300):
-            server.route(f"/img/{n}.png", (200, grid_picture(n), {"Content-Type": "image/png"}))
-        server.route("/robots.txt", (404, b""))
-        server.route("/items", json_answer({"results": items}))
+        server.route("/items", json_answer({"results": serve_leaves(server, 300)}))
         col = init_collection(tmp_path / "c", contact="x@example.org")
         col.recipe_path.write_text(one_listing_recipe(server.url("/items")))
         with connect(local_workers=1, processes=False, threads=4) as client, \

@@ -11,13 +11,11 @@ from types import SimpleNamespace
 from typing import Any
 
 import pytest
-from support.collections import grid_picture, one_listing_recipe
+from support.cluster import run_in_process
+from support.collections import grid_picture, one_listing_recipe, serve_leaves
 from support.server import LoopbackServer, json_answer
 
 from collector.run import cluster
-from collector.run.cluster import run_on_cluster
-from collector.run.cluster_setup import connect
-from collector.run.gather import prepared_run
 from collector.storage.collection import init_collection
 from collector.urls import host_key
 
@@ -37,9 +35,7 @@ def test_the_address_guard_holds_on_the_workers(tmp_path: Path) -> None:
         server.route("/items", json_answer({"results": items}))
         col = init_collection(tmp_path / "c", contact="x@example.org")
         col.recipe_path.write_text(one_listing_recipe(server.url("/items")))
-        with connect(local_workers=1, processes=False, threads=4) as client, \
-                prepared_run(col) as (recipe, ledger):
-            result = run_on_cluster(col, recipe, ledger, client)
+        result = run_in_process(col)
         trap_hits = len(trap.hits)
     assert result.outcome == "finished"
     assert trap_hits == 0
@@ -69,20 +65,12 @@ def test_a_host_dask_gives_up_on_is_degraded_and_the_run_goes_on(
             return real(spec)
 
         monkeypatch.setattr(cluster, "fetch_batch", fetch_or_lose)
-        for srv in (server, lost):
-            srv.route("/robots.txt", (404, b""))
-            for n in range(2):
-                srv.route(f"/img/{n}.png", (200, grid_picture(n + 10 * (srv is lost)),
-                                            {"Content-Type": "image/png"}))
-        items = [{"id": f"{name}{n}", "title": name, "licence": "CC0-1.0",
-                  "image": srv.url(f"/img/{n}.png")}
-                 for name, srv in (("kept", server), ("lost", lost)) for n in range(2)]
+        items = (serve_leaves(server, 2, prefix="kept")
+                 + serve_leaves(lost, 2, first=10, prefix="lost"))
         server.route("/items", json_answer({"results": items}))
         col = init_collection(tmp_path / "c", contact="x@example.org")
         col.recipe_path.write_text(one_listing_recipe(server.url("/items")))
-        with connect(local_workers=1, processes=False, threads=4) as client, \
-                prepared_run(col) as (recipe, ledger):
-            result = run_on_cluster(col, recipe, ledger, client)
+        result = run_in_process(col)
         lost_images = [h for h in lost.targets() if h.startswith("/img/")]
     assert result.outcome == "finished"
     assert lost_images == []
@@ -91,5 +79,5 @@ def test_a_host_dask_gives_up_on_is_degraded_and_the_run_goes_on(
         notes = ledger.query("SELECT kind, message FROM notes WHERE kind = 'host_degraded'")
     assert {r["source_key"]: (r["state"], r["reason"]) for r in rows} == {
         "kept0": ("stored", None), "kept1": ("stored", None),
-        "lost0": ("deferred", "host_degraded"), "lost1": ("deferred", "host_degraded")}
+        "lost10": ("deferred", "host_degraded"), "lost11": ("deferred", "host_degraded")}
     assert len(notes) == 1 and lost_host in notes[0]["message"]

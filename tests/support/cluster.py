@@ -1,12 +1,25 @@
 """What the cluster tests compare: the demo manifest's item states against a collection's
-ledger, and which logged requests were image requests."""
+ledger, and which logged requests were image requests; and a run on an in-process cluster."""
 
 from __future__ import annotations
 
 from typing import Any
 
 from collector.demo_site import DemoServer
+from collector.run.cluster import run_on_cluster
+from collector.run.cluster_setup import connect
+from collector.run.gather import prepared_run
+from collector.run.scheduling import RunResult
 from collector.storage.collection import Collection
+
+
+def run_in_process(col: Collection, *, threads: int = 4, **options: Any) -> RunResult:
+    """One gather of ``col`` on an in-process LocalCluster (one worker, ``threads``
+    threads); ``options`` go to :func:`collector.run.cluster.run_on_cluster`."""
+    with connect(local_workers=1, processes=False, threads=threads) as client, \
+            prepared_run(col) as (recipe, ledger):
+        result: RunResult = run_on_cluster(col, recipe, ledger, client, **options)
+    return result
 
 
 def _states(col: Collection) -> dict[tuple[str, str], tuple[str, str | None]]:

@@ -16,6 +16,7 @@ import io
 import shutil
 from dataclasses import dataclass
 from pathlib import Path
+from typing import Any
 
 import numpy as np
 from PIL import Image
@@ -45,6 +46,20 @@ def one_listing_recipe(url: str, *, min_interval: float | None = 0.1) -> str:
     budget = f"[budgets]\nmin_interval = {min_interval}\n" if min_interval is not None else ""
     return ('contact = "x@example.org"\n' + budget
             + '[network]\nallow_addresses = ["127.0.0.1/32"]\n' + listing_source("leaves", url))
+
+
+def serve_leaves(server: Any, count: int, *, first: int = 0,
+                 prefix: str = "") -> list[dict[str, str]]:
+    """Serve ``count`` PNG leaves ``/img/{n}.png`` (n from ``first``, each its own
+    :func:`grid_picture`) and no robots.txt (404) on ``server``; their listing entries
+    (``id`` is ``prefix`` + n, CC0-1.0) for :func:`one_listing_recipe`'s ``results``."""
+    server.route("/robots.txt", (404, b""))
+    items = []
+    for n in range(first, first + count):
+        server.route(f"/img/{n}.png", (200, grid_picture(n), {"Content-Type": "image/png"}))
+        items.append({"id": f"{prefix}{n}", "title": f"Leaf {n}", "licence": "CC0-1.0",
+                      "image": server.url(f"/img/{n}.png")})
+    return items
 
 
 def grid_picture(seed: int, fmt: str = "PNG") -> bytes:
