@@ -5,6 +5,7 @@ missing. Common practice, no source: usage errors exit 2."""
 from __future__ import annotations
 
 import builtins
+import hashlib
 import os
 import subprocess
 import sys
@@ -12,7 +13,8 @@ from pathlib import Path
 from typing import Any
 
 import pytest
-from support.collections import grid_picture, one_listing_recipe
+from support.cluster import run_in_process
+from support.collections import grid_picture, one_listing_recipe, serve_leaves
 from support.server import LoopbackServer, json_answer
 
 from collector.errors import ClusterError
@@ -74,12 +76,7 @@ def test_without_dask_a_gather_runs_on_this_machine_as_before(tmp_path) -> None:
     """Dask not importable: a plain gather stores both images of a loopback archive (exit 0);
     --local-workers stops at once with exit 2 and the install command, requesting nothing."""
     with LoopbackServer("127.0.0.1") as server:
-        items = [{"id": str(n), "title": f"Leaf {n}", "licence": "CC0-1.0",
-                  "image": server.url(f"/img/{n}.png")} for n in range(2)]
-        for n in range(2):
-            server.route(f"/img/{n}.png", (200, grid_picture(n), {"Content-Type": "image/png"}))
-        server.route("/robots.txt", (404, b""))
-        server.route("/items", json_answer({"results": items}))
+        server.route("/items", json_answer({"results": serve_leaves(server, 2)}))
         folder = init_collection(tmp_path / "c", contact="x@example.org").root
         recipe = one_listing_recipe(server.url("/items"), min_interval=0.1)
         (folder / "recipe.toml").write_text(recipe)
@@ -95,3 +92,24 @@ def test_without_dask_a_gather_runs_on_this_machine_as_before(tmp_path) -> None:
     assert {r["state"]: r["n"] for r in rows} == {"stored": 2}
 
 
+
+
+def test_files_sent_back_as_bytes_are_stored_as_served(tmp_path: Path) -> None:
+    """Without the shared folder (force_bytes) a worker returns each image's bytes: the
+    coordinator writes them into the store, and the stored files are the served bytes
+    (their SHA-256, FIPS 180-4, as Python's hashlib computes it)."""
+    with LoopbackServer("127.0.0.1") as server:
+        items = serve_leaves(server, 3)
+        server.route("/items", json_answer({"results": items}))
+        col = init_collection(tmp_path / "c", contact="x@example.org")
+        col.recipe_path.write_text(one_listing_recipe(server.url("/items")))
+        batches: list[Any] = []
+        result = run_in_process(col, force_bytes=True, on_batch=batches.append)
+    assert result.outcome == "finished"
+    assert batches and not any(b.shared for b in batches)
+    served = {hashlib.sha256(grid_picture(n)).hexdigest() for n in range(3)}
+    with col.ledger(readonly=True) as ledger:
+        stored = {r["file_sha256"] for r in ledger.query("SELECT file_sha256 FROM items")}
+    assert stored == served
+    assert all(hashlib.sha256(p.read_bytes()).hexdigest() in served
+               for p in col.root.joinpath("files").rglob("*.png"))

@@ -420,7 +420,7 @@ class ClusterDispatch:
         release not yet heard by the scheduler, asks nothing)."""
         with contextlib.suppress(Exception):
             future.release()
-        if self._token is not None:
+        if self._token is not None and not self.force_bytes:  # no journals without the folder
             with contextlib.suppress(OSError):
                 mark_collected(self._token.parent / journal_name(future.key))
 
@@ -517,17 +517,7 @@ class ClusterDispatch:
         data = r.data or b""
         if hashlib.sha256(data).hexdigest() != r.sha256:
             raise StoreError(f"the bytes of {r.final_url} changed on their way from the worker")
-        fd, tmp = self.g.store.new_temp()
-        try:
-            with os.fdopen(fd, "wb") as out:
-                out.write(data)
-                out.flush()
-                os.fsync(out.fileno())
-        except OSError as exc:
-            tmp.unlink(missing_ok=True)
-            raise StoreError(f"cannot write a temp file of the store: {exc}",
-                             errno=exc.errno) from exc
-        return tmp
+        return self.g.store.write_temp(data, f"writing a file from {r.final_url}")
 
     def _guarded(self, host: str, w: _Work, step: Callable[[], None]) -> None:
         """Run one job's step as the local worker does (Gatherer._serve_job)."""

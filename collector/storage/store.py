@@ -117,6 +117,12 @@ class Store:
         target = self.path_for(sha, ext)
         if target.exists():  # a link there is refused by adopt, never written through
             return sha, target
+        tmp = self.write_temp(data, f"writing {target.name}")
+        return sha, self.adopt(tmp, sha, ext, synced=True)
+
+    def write_temp(self, data: bytes, what: str) -> Path:
+        """``data`` in a new temp file of the incoming folder, fsynced (ready for
+        :meth:`adopt` with ``synced``); ``what`` names the work in an error."""
         fd, tmp = self.new_temp()
         try:
             with os.fdopen(fd, "wb") as fh:
@@ -125,8 +131,8 @@ class Store:
                 os.fsync(fh.fileno())
         except OSError as exc:
             tmp.unlink(missing_ok=True)
-            raise _store_error(exc, f"writing {target.name}") from exc
-        return sha, self.adopt(tmp, sha, ext, synced=True)
+            raise _store_error(exc, what) from exc
+        return tmp
 
     def existing(self, sha256: str, ext: str) -> Path | None:
         """The stored file for this digest and extension if it is there, else None; reached
