@@ -11,7 +11,7 @@ import json
 import re
 import socket
 from collections.abc import Callable, Iterable, Mapping
-from urllib.parse import parse_qsl, quote, unquote_plus, urlencode, urlsplit, urlunsplit
+from urllib.parse import quote, unquote_plus, urlencode, urlsplit, urlunsplit
 
 from collector.errors import UnsafeURL
 
@@ -119,7 +119,10 @@ def secret_values(url: str, secret_params: Iterable[str] = ()) -> list[str]:
         parts = urlsplit(url)
     except ValueError:
         return []
-    found = [v for k, v in parse_qsl(parts.query, keep_blank_values=True) if k.lower() in secrets]
+    # The pairs as redact reads them (split at "&" and ";"), each value as sent and decoded.
+    pairs = [p.partition("=") for p in _PAIR_SEPARATOR.split(parts.query)[::2]]
+    found = [form for k, _, v in pairs if unquote_plus(k).lower() in secrets
+             for form in dict.fromkeys((v, unquote_plus(v)))]
     if parts.password:
         found.append(parts.password)
     return [v for v in found if v]

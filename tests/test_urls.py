@@ -99,6 +99,14 @@ def test_redact_changes_only_secret_values(url: str, expected: str) -> None:
                                                              urlsplit(url).fragment)
 
 
+def test_secret_values_reads_the_pairs_redact_reads() -> None:
+    """A secret after ";" or under an encoded name is found for scrubbing too, as sent and
+    decoded (HTML 4.01 §B.2.2 for ";")."""
+    assert secret_values(f"{U}?a=1;key=s3cr%7Et", ["key"]) == ["s3cr%7Et", "s3cr~t"]
+    assert secret_values(f"{U}?k%65y=s3cret&q=x", ["key"]) == ["s3cret"]
+    assert secret_values(f"{U}#key=s3cret", ["key"]) == []  # a fragment is not a query
+
+
 def test_scrub_removes_raw_and_encoded_secret_forms() -> None:
     """A secret is removed from free text in raw, percent- and form-encoded forms."""
     secrets = secret_values("http://h/?key=a b/c", ["key"])
