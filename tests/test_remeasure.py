@@ -510,3 +510,12 @@ def test_the_new_facts_are_judged_by_the_pixel_rules(page_gathered: Gathered,
     # The state apply-rules would leave: it finds nothing more to move.
     again = runner.invoke(app, ["apply-rules", str(old.root), "--dry-run"])
     assert "0 would be set aside, 0 brought back, 0 with a new reason" in again.output
+
+
+def test_without_pixel_rules_nothing_moves(gathered) -> None:
+    """A recipe without pixel rules: remeasure applies none, moves nothing and says so in
+    one line."""
+    result = remeasure(make_old(gathered[0]))
+    assert result.rules is not None and result.rules.moves == []
+    assert "The recipe has no pixel rules: no file was set aside or brought back." in (
+        report_lines(result))

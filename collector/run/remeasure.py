@@ -495,6 +495,8 @@ def _rules_lines(result: RemeasureResult) -> list[str]:
                 "as they are now would move)."]
     if result.rules is None:
         return []
+    if not result.rules.rules and not result.rules.moves:
+        return ["The recipe has no pixel rules: no file was set aside or brought back."]
     return ["Pixel rules applied again to the facts, as apply-rules does:",
             *(f"  {line}" for line in set_aside.report_lines(result.rules))]
 
