@@ -159,7 +159,8 @@ def remeasure(
     """Measure the stored files again, offline: hashes, transparency, size, colour facts.
 
     Brings the facts of files gathered by an older collector up to date from the files in the
-    store; never requests anything. Safe to interrupt: rerun to continue.
+    store, then applies the recipe's pixel rules to them as apply-rules does; never requests
+    anything. Safe to interrupt: rerun to continue.
 
     Example: collector remeasure my-leaves --dry-run
     """

@@ -8,13 +8,17 @@ from __future__ import annotations
 
 import ipaddress
 import json
+import re
 import socket
 from collections.abc import Callable, Iterable, Mapping
-from urllib.parse import parse_qsl, quote, urlencode, urlsplit, urlunsplit
+from urllib.parse import quote, unquote_plus, urlencode, urlsplit, urlunsplit
 
 from collector.errors import UnsafeURL
 
 REDACTED = "REDACTED"
+# The authority of a URI with a scheme (RFC 3986 §3.2: after "//", up to "/", "?" or "#").
+_AUTHORITY = re.compile(r"[A-Za-z][A-Za-z0-9+.\-]*://([^/?#]*)")
+_PAIR_SEPARATOR = re.compile(r"([&;])")
 # Parts of header values shorter than this are not scrubbed: they would hide ordinary words,
 # and real keys are long (common practice, no source).
 MIN_SECRET_LEN = 6
@@ -76,30 +80,36 @@ def add_params(url: str, params: Mapping[str, object] | None) -> str:
 
 
 def redact(url: str, secret_params: Iterable[str] = ()) -> str:
-    """Return ``url`` with the values of secret query parameters (and any password) replaced.
+    """Return ``url`` with the values of secret query parameters (and any password) replaced
+    by ``REDACTED``; every other character stays as given, so the ledger records the URL that
+    was asked for, byte for byte when it holds no secret.
 
-    Parameter names compare case-insensitively; the value becomes ``REDACTED``.
+    Split as RFC 3986 §3 reads a URI: the fragment from the first ``#`` (a ``?`` inside it is
+    data, §3.5), the query from the first ``?`` before it (§3.4). An empty query or fragment
+    keeps its ``?`` or ``#``: ``/a?`` is not the same URI as ``/a`` (§6.2.3: normalisation
+    should not remove a delimiter of an empty component). Query pairs are split at ``&`` and
+    at ``;`` (HTML 4.01 §B.2.2 asked servers to accept both), so a server reading either
+    never gets a secret the record shows; names compare case-insensitively after form
+    decoding (``KEY``, ``k%65y``). An empty value or password hides nothing and is kept.
     """
+    before_fragment, hash_mark, fragment = url.partition("#")
+    head, query_mark, query = before_fragment.partition("?")
     secrets = {s.lower() for s in secret_params}
-    try:
-        parts = urlsplit(url)
-    except ValueError:
-        return url
-    netloc = parts.netloc
-    if parts.password is not None:
-        # user:password@host — the password is always a secret.
-        userinfo, _, hostport = netloc.rpartition("@")
-        user = userinfo.split(":", 1)[0]
-        netloc = f"{user}:{REDACTED}@{hostport}"
-    query = parts.query
     if secrets and query:
-        pairs = parse_qsl(query, keep_blank_values=True)
-        if any(k.lower() in secrets for k, _ in pairs):
-            query = "&".join(
-                f"{quote(k, safe='')}={REDACTED if k.lower() in secrets else quote(v, safe='')}"
-                for k, v in pairs
-            )
-    return urlunsplit(parts._replace(netloc=netloc, query=query))
+        pairs = _PAIR_SEPARATOR.split(query)  # separators kept at the odd places
+        for n in range(0, len(pairs), 2):
+            name, equals, value = pairs[n].partition("=")
+            if equals and value and unquote_plus(name).lower() in secrets:
+                pairs[n] = f"{name}={REDACTED}"
+        query = "".join(pairs)
+    authority = _AUTHORITY.match(head)
+    if authority is not None:
+        userinfo, at, hostport = authority.group(1).rpartition("@")
+        user, _, password = userinfo.partition(":")
+        if at and password:  # user:password@host: the password is always a secret
+            start, end = authority.span(1)
+            head = f"{head[:start]}{user}:{REDACTED}@{hostport}{head[end:]}"
+    return f"{head}{query_mark}{query}{hash_mark}{fragment}"
 
 
 def secret_values(url: str, secret_params: Iterable[str] = ()) -> list[str]:
@@ -109,7 +119,10 @@ def secret_values(url: str, secret_params: Iterable[str] = ()) -> list[str]:
         parts = urlsplit(url)
     except ValueError:
         return []
-    found = [v for k, v in parse_qsl(parts.query, keep_blank_values=True) if k.lower() in secrets]
+    # The pairs as redact reads them (split at "&" and ";"), each value as sent and decoded.
+    pairs = [p.partition("=") for p in _PAIR_SEPARATOR.split(parts.query)[::2]]
+    found = [form for k, _, v in pairs if unquote_plus(k).lower() in secrets
+             for form in dict.fromkeys((v, unquote_plus(v)))]
     if parts.password:
         found.append(parts.password)
     return [v for v in found if v]

@@ -18,7 +18,10 @@ from contextlib import contextmanager
 from pathlib import Path
 from typing import Any
 
+import pytest
+
 from collector.run.gather import prepared_run
+from collector.run.ingest import Ingest
 from collector.run.listed import LISTED_GROUP, ListedGroup
 from collector.run.scheduling import Gatherer
 from collector.sources.base import Candidate
@@ -188,3 +191,33 @@ def test_held_candidates_are_admitted_before_the_next_page_request(tmp_path: Pat
         listed.flush()
     assert pages.at_request == [(5, 5)]
     assert len(jobs.jobs) == 6
+
+
+def test_a_bug_admitting_one_candidate_fails_it_and_admits_the_rest(
+        tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    """Deciding the fourth candidate of a group raises (a stand-in for a bug): that item is
+    failed (internal_error, the error in its detail) and the group's other candidates are
+    decided as usual (jobs handed over, a licence skip recorded), none left pending
+    undecided; the bug is raised after the group, so the run still fails loudly."""
+    real = Ingest._decide
+
+    def decide(self: Ingest, source_id: int, c: Any, registered: Any) -> Any:
+        if c.source_key == "k3":
+            raise RuntimeError("injected for the test")
+        return real(self, source_id, c, registered)
+    monkeypatch.setattr(Ingest, "_decide", decide)
+    group = [Candidate(f"k{i}", IMG.format(i), licence_raw="CC0-1.0") for i in range(8)]
+    group[6] = Candidate("k6", IMG.format(6), licence_raw="All rights reserved")
+    jobs = _Jobs()
+    with _run(tmp_path / "c", jobs) as (col, g, sid):
+        listed = ListedGroup(g, sid, None)
+        with pytest.raises(RuntimeError, match="injected for the test"):
+            for c in group:
+                listed.add(c)
+            listed.flush()
+    by_key = {r["source_key"]: r for r in _rows(col)}
+    assert (by_key["k3"]["state"], by_key["k3"]["reason"]) == ("failed", "internal_error")
+    assert "RuntimeError: injected for the test" in by_key["k3"]["detail"]
+    assert (by_key["k6"]["state"], by_key["k6"]["reason"]) == ("skipped", "licence_unknown")
+    assert sorted(url for _, url in jobs.jobs) == sorted(
+        IMG.format(i) for i in (0, 1, 2, 4, 5, 7))

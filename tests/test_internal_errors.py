@@ -135,15 +135,17 @@ def test_a_bug_in_a_listing_thread_fails_the_run_and_the_next_run_resumes(
     result = CliRunner().invoke(app, ["gather", str(col.root), "--quiet"])
     assert_failed_by_bug(col, result, "the listing of source 'api-pages'")
     kept = stored_files(col)
-    # The listing stopped at the bug. The fourth candidate's group (collector.run.listed: the
-    # candidates of its page) was registered in one transaction before any was decided, so
-    # those after it are recorded too, left pending for the next run. The three decided
-    # before the bug were queued: an image already under way when the run failed is finished
-    # and stored (a failing run lets in-flight files land), the others stay pending.
+    # The listing stopped at the bug. The fourth candidate is failed (internal_error); the
+    # others of its group (collector.run.listed: the candidates of its page) were decided
+    # as usual and queued: an image already under way when the run failed is finished and
+    # stored (a failing run lets in-flight files land), the others stay pending.
+    with col.ledger(readonly=True) as ledger:
+        failed = ledger.query("SELECT reason, detail FROM items WHERE state = 'failed'")
+    assert [r["reason"] for r in failed] == ["internal_error"]
+    assert "Injected: injected for the test" in failed[0]["detail"]
     found = states(col)
     assert 4 <= len(found) <= 10
-    assert set(found.values()) <= {"pending", "stored"}
-    assert list(found.values()).count("stored") <= 3
+    assert set(found.values()) <= {"pending", "stored", "failed"}
 
     monkeypatch.undo()
     again = CliRunner().invoke(app, ["gather", str(col.root), "--quiet"])

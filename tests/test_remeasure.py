@@ -469,3 +469,53 @@ def test_ctrl_c_inside_a_batch_loses_only_that_batch(gathered) -> None:
     assert result.counts["perceptual hashes"].measured == 3
     algos = sorted(f["hash_algo"] for f in facts_by_key(col).values())
     assert algos == sorted([HASH_ALGO] * 3 + [OLD_ALGO] * 5)
+
+
+def test_the_new_facts_are_judged_by_the_pixel_rules(page_gathered: Gathered,
+                                                     fresh_demo_server, tmp_path: Path) -> None:
+    """A web collection from before the colour facts, its recipe given a rule since
+    (min_colourfulness at the median of the fresh facts) and one file set aside by a stale
+    verdict: `collector remeasure` sets aside exactly the files whose new colourfulness is
+    under the rule's minimum (a rule is failed below its min_*, README "Setting pictures
+    aside"), brings the stale one back, records each move in rule_changes as apply-rules
+    does, prints the moves, and asks the archive nothing."""
+    col = page_gathered.copy_to(tmp_path / "web")
+    fresh = facts_by_key(col)
+    old = make_old(col.root)
+    values = sorted(f["colourfulness"] for f in fresh.values())
+    floor = (values[len(values) // 2 - 1] + values[len(values) // 2]) / 2
+    dull = {f["sha256"] for f in fresh.values() if f["colourfulness"] < floor}
+    stale = max(fresh.values(), key=lambda f: f["colourfulness"])["sha256"]
+    assert 0 < len(dull) < len(fresh) and stale not in dull
+    old.recipe_path.write_text(old.recipe_path.read_text()
+                               + f'\n[[pixel_rules]]\nname = "dull"\nmin_colourfulness = {floor}\n')
+    with old.ledger() as ledger:
+        ledger.update_file(stale, {"set_aside": "dull", "set_aside_detail": "an old verdict"})
+    fresh_demo_server.clear_log()
+    out = runner.invoke(app, ["remeasure", str(old.root)])
+    assert fresh_demo_server.log == []
+    assert out.exit_code == 0, out.output
+    with old.ledger(readonly=True) as ledger:
+        aside = {r["sha256"] for r in ledger.query(
+            "SELECT sha256 FROM files WHERE set_aside = 'dull'")}
+        changes = ledger.query("SELECT sha256, rule_before, rule_after, recipe_sha256 "
+                               "FROM rule_changes")
+    assert aside == dull
+    assert sorted((c["sha256"], c["rule_before"], c["rule_after"]) for c in changes) == sorted(
+        [(sha, None, "dull") for sha in dull] + [(stale, "dull", None)])
+    assert {c["recipe_sha256"] for c in changes} == {old.recipe(check_source_kinds=False).sha256}
+    assert f"  {len(dull)} were set aside, 1 brought back" in out.output
+    assert out.output.count("set aside: ") == len(dull)
+    assert "brought back: " in out.output and stale[:12] in out.output
+    # The state apply-rules would leave: it finds nothing more to move.
+    again = runner.invoke(app, ["apply-rules", str(old.root), "--dry-run"])
+    assert "0 would be set aside, 0 brought back, 0 with a new reason" in again.output
+
+
+def test_without_pixel_rules_nothing_moves(gathered) -> None:
+    """A recipe without pixel rules: remeasure applies none, moves nothing and says so in
+    one line."""
+    result = remeasure(make_old(gathered[0]))
+    assert result.rules is not None and result.rules.moves == []
+    assert "The recipe has no pixel rules: no file was set aside or brought back." in (
+        report_lines(result))

@@ -35,7 +35,7 @@ from collector.checks.likeness import IMAGE_ERRORS, Confirmed, Look, confirm, lo
 from collector.checks.pixel_rules import PixelRules
 from collector.checks.rights_statements import find_statement
 from collector.config.recipe import Recipe
-from collector.errors import ImageRejected, StoreError
+from collector.errors import CollectorError, ImageRejected, StoreError
 from collector.run import dedup
 from collector.run.dedup import Demote, Keep, NearCandidate, NearCopy, TakeOver
 from collector.run.record import RunRecord
@@ -140,24 +140,41 @@ class Ingest:
 
     # -- admission: before any byte is requested -----------------------------------------------
     def admit(self, source_id: int, c: Any) -> Job | None:
-        """Record a candidate and decide what happens to it before anything is downloaded:
-        the image to fetch, or None when it was decided here (done, skipped, stored locally,
-        a duplicate by its image URL)."""
-        return next(self.admit_group(source_id, [c]))
+        """Record a candidate and decide its way before anything is downloaded: the image to
+        fetch, or None when decided here (done, skipped, stored locally, same image URL)."""
+        (job,) = self.admit_group(source_id, [c])  # to the end: a bug is raised after it
+        return job
 
     def admit_group(self, source_id: int, group: Sequence[Any]) -> Iterator[Job | None]:
         """:meth:`admit` for candidates listed one after another (no source key twice), one
-        answer each, in order: their item rows are written in ONE transaction, committed
-        before anything else is decided, so each row is durable before any request for its
-        image (the first answer comes after the commit). Only ledger reads and writes run
-        inside it (and the record's counter lock, held for an increment): a thread waiting
-        for the ledger while it holds the image URL lock or a tdmrep.json origin lock is
-        never waited for here."""
-        with self.ledger.transaction():
-            registered = [None if getattr(c, "withdrawn", None) else self._register(source_id, c)
-                          for c in group]
-        for c, r in zip(group, registered, strict=True):
-            yield self._decide(source_id, c, r)
+        answer each, in order: their rows written in ONE transaction, committed before any is
+        decided (so before any image request); inside it only ledger reads and writes and the
+        counter lock, no wait for a thread holding the URL lock or a tdmrep.json origin lock.
+        One whose admission raises gets its own state and reason (RunRecord.not_admitted), the
+        others go on; a store error ends the group, a bug fails the run after it."""
+        failed: dict[int, Exception] = {}
+        registered: list[Any] = [None] * len(group)
+        with self.ledger.transaction() as still_open:
+            for n, c in enumerate(group):
+                try:  # one row written, in one statement: all of it or nothing
+                    if not getattr(c, "withdrawn", None):
+                        registered[n] = self._register(source_id, c)
+                except Exception as exc:
+                    if any(registered) and not still_open():
+                        raise  # SQLite undid the group's rows itself: nothing can go on
+                    failed[n] = exc
+        for n, (c, r) in enumerate(zip(group, registered, strict=True)):
+            try:
+                job = None if n in failed else self._decide(source_id, c, r)
+            except Exception as exc:
+                if isinstance(exc, StoreError):
+                    raise
+                failed[n], job = exc, None
+            if n in failed:
+                self.record.not_admitted(source_id, c.source_key, failed[n], FINAL_STATES)
+            yield job
+        if bugs := [e for e in failed.values() if not isinstance(e, CollectorError)]:
+            raise bugs[0]
 
     def _decide(self, source_id: int, c: Any,
                 registered: tuple[int, str | None, Any] | None) -> Job | None:

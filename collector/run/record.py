@@ -13,6 +13,7 @@ from collections import Counter
 from typing import Any, Protocol
 
 from collector.config.recipe import Recipe
+from collector.errors import CollectorError, FetchError, HostParked, LedgerError
 from collector.schema import expand_env
 from collector.storage.ledger import Ledger
 from collector.urls import (
@@ -55,6 +56,24 @@ class RunRecord:
         self.count(state)
         self.progress.event("item", item_id=item_id, state=state, reason=reason)
 
+    def not_admitted(self, source_id: int, source_key: str, exc: Exception,
+                     keep: frozenset[str]) -> None:
+        """Admitting one listed candidate raised ``exc``: its item gets the state and reason
+        :func:`admission_outcome` gives (a row holding only its key when it had none), so
+        the next run tries it again; an item already in a state of ``keep`` (stored, ...)
+        keeps it and a ``not_admitted`` note says why it was not looked at again."""
+        state, reason, detail = admission_outcome(exc)
+        detail = self.scrubbed(detail)
+        row = self.ledger.item_by_key(source_id, source_key)
+        if row is not None and row["state"] in keep:
+            self.ledger.add_note("not_admitted", f"item {row['id']} ({source_key}) keeps its "
+                                 f"state {row['state']}: {detail}", run_id=self.run_id,
+                                 source_id=source_id)
+            return
+        item_id = (row["id"] if row is not None
+                   else self.ledger.add_item(source_id, source_key, {"run_id": self.run_id}))
+        self.finish(item_id, state, reason, detail)
+
     def count(self, key: str) -> None:
         """Add one to a count (a state, or "already_done", "given_up")."""
         with self._lock:
@@ -84,6 +103,27 @@ class RunRecord:
                 elif key == "metadata" and value:
                     out[key] = json.loads(scrub(json.dumps(value, default=str), self.secrets))
         return out
+
+
+def admission_outcome(exc: Exception) -> tuple[str, str, str]:
+    """(state, reason, detail) of an item whose admission raised ``exc``: deferred when its
+    host is parked, failed with the request's reason, ``ledger_error`` (its row could not be
+    written), ``not_admitted`` (another error collector explains) or ``internal_error`` (a
+    bug: the run fails after the item's group is admitted)."""
+    if isinstance(exc, HostParked):
+        state, reason, detail = "deferred", "host_parked", exc.item_detail()
+    elif isinstance(exc, FetchError):
+        state, reason, detail = "failed", exc.reason, exc.item_detail()
+    elif isinstance(exc, LedgerError):
+        state, reason, detail = "failed", "ledger_error", f"its row could not be written: {exc}"
+    elif isinstance(exc, CollectorError):
+        state, reason, detail = "failed", "not_admitted", str(exc)
+    else:
+        state, reason, detail = "failed", "internal_error", (
+            f"internal error while admitting it ({type(exc).__name__}: {exc}); the run "
+            "failed, its traceback is in the folder's errors.log")
+    # An error may quote the bad value itself (a lone surrogate): kept storable as text.
+    return state, reason, detail.encode("utf-8", "backslashreplace").decode("utf-8")
 
 
 def secret_values(recipe: Recipe) -> list[str]:

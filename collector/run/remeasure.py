@@ -39,6 +39,7 @@ from collector.checks.images import ImageFacts, inspect_image
 from collector.checks.phash import HASH_ALGO, WINDOW_ALGO, hamming, pack_windows, to_signed64
 from collector.config.recipe import Recipe
 from collector.errors import CollectorError, ImageRejected
+from collector.run import set_aside
 from collector.storage import hashindex, queries
 from collector.storage import upkeep_queries as uq
 from collector.storage.collection import Collection
@@ -217,6 +218,7 @@ class RemeasureResult:
     near_distance: int = 0
     resumed_after: int = 0  # --all: the rowid an interrupted run had reached
     outcome: str = "finished"  # or "interrupted"
+    rules: set_aside.RulesReport | None = None  # the pixel rules applied after measuring
 
 
 Progress = Callable[[RemeasureResult], None]
@@ -229,7 +231,8 @@ def remeasure(collection: Collection, *, everything: bool = False, dry_run: bool
     """Measure again the stored files whose facts are missing or stale (every stored file
     with ``everything``), under the gather lock; ``dry_run`` only counts what is due.
     Ctrl-C ends it with outcome "interrupted" (what was committed stays; run again)."""
-    settings = Settings.from_recipe(collection.recipe(check_source_kinds=False))
+    recipe = collection.recipe(check_source_kinds=False)
+    settings = Settings.from_recipe(recipe)
     active = tuple(m for m in measurements if m.wanted(settings))
     with collection.gather_lock("remeasure"), collection.ledger() as ledger:
         result = RemeasureResult(dry_run, everything, queries.files_mark(ledger).rows,
@@ -241,14 +244,15 @@ def remeasure(collection: Collection, *, everything: bool = False, dry_run: bool
         walk = _Walk(collection, ledger, settings, active, result)
         try:
             walk.run(result.resumed_after, batch, progress)
-        except KeyboardInterrupt:
-            result.outcome = "interrupted"
-        else:
             if everything and not dry_run:
                 ledger.set_fact(ALL_DONE_UPTO, "")
+            if not dry_run:  # the new facts judged as apply-rules judges them
+                result.rules = set_aside.judge_again(ledger, recipe)
+        except KeyboardInterrupt:
+            result.outcome = "interrupted"
         for moved in result.moved:  # every batch is written: partners have current hashes
             moved.near = tuple(_near_check(ledger, v) for v in moved.verdicts)
-        if not dry_run and (result.measured or result.problems):
+        if not dry_run and (result.measured or result.problems or _moves(result)):
             ledger.add_note("remeasured", note_text(result))
         if walk.rewrote_hashes:  # the first trace need not wait for the rebuild
             hashindex.HashFile.open(ledger, collection.hash_index_path)
@@ -439,6 +443,8 @@ def note_text(result: RemeasureResult) -> str:
                      f"near_distance = {result.near_distance} bits")
     if result.problems:
         parts.append(f"{len(result.problems):,} files could not be measured")
+    if _moves(result):
+        parts.append(f"pixel rules applied again: {_moves(result)}")
     if result.outcome != "finished":
         parts.append(result.outcome)
     return "; ".join(parts)
@@ -465,10 +471,34 @@ def report_lines(result: RemeasureResult) -> list[str]:
     if result.problems:
         lines.append(f"{len(result.problems):,} stored files could not be measured (their "
                      "facts are unchanged; run again once they are back).")
+    lines += _rules_lines(result)
     if result.outcome == "interrupted":
         lines.append("Interrupted: the facts measured so far are kept; run the same command "
-                     "again to finish.")
+                     "again to finish (and to apply the pixel rules to the new facts).")
     return lines
+
+
+def _moves(result: RemeasureResult) -> str:
+    """The pixel rules' moves in a few words, or "" when nothing moved."""
+    rules = result.rules
+    if rules is None or not rules.moves:
+        return ""
+    return (f"{rules.count('set aside')} set aside, {rules.count('brought back')} brought "
+            f"back, {rules.count('reason changed')} with a new reason")
+
+
+def _rules_lines(result: RemeasureResult) -> list[str]:
+    """The recipe's pixel rules applied to the new facts, as apply-rules reports them."""
+    if result.dry_run:
+        return ["Then the recipe's pixel rules would be applied again to every stored file, "
+                "as apply-rules does ('collector apply-rules --dry-run' shows what the facts "
+                "as they are now would move)."]
+    if result.rules is None:
+        return []
+    if not result.rules.rules and not result.rules.moves:
+        return ["The recipe has no pixel rules: no file was set aside or brought back."]
+    return ["Pixel rules applied again to the facts, as apply-rules does:",
+            *(f"  {line}" for line in set_aside.report_lines(result.rules))]
 
 
 def _moved_lines(result: RemeasureResult) -> list[str]:

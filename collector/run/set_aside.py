@@ -93,8 +93,15 @@ def apply_rules(collection: Collection, *, dry_run: bool = False) -> RulesReport
         with collection.ledger(readonly=True) as ledger:
             return plan(ledger, recipe)
     with collection.gather_lock("apply-rules"), collection.ledger() as ledger:
-        report = plan(ledger, recipe)
-        record(ledger, recipe, report)
+        return judge_again(ledger, recipe)
+
+
+def judge_again(ledger: Ledger, recipe: Recipe) -> RulesReport:
+    """:func:`plan` and :func:`record`: the rules applied to every stored file and the moves
+    made, under the caller's gather lock (``apply-rules``, and ``remeasure`` after it has
+    measured)."""
+    report = plan(ledger, recipe)
+    record(ledger, recipe, report)
     return report
 
 
