@@ -14,7 +14,9 @@ Bodies are streamed with a byte cap on decoded bytes and an overall deadline
 (:mod:`collector.fetching.body`). Errors raised are
 :class:`collector.errors.FetchError` subclasses whose messages carry only redacted URLs.
 
-DNS rebinding: the address check resolves the name just before each request, but requests
+Requests are sent by :mod:`collector.fetching.transport` (urllib3's pools, used directly).
+
+DNS rebinding: the address check resolves the name just before each request, but urllib3
 resolves it again when connecting. A name whose answer changes in between could slip past the
 check; closing that gap needs a connection pinned to the checked address, which we judged not
 worth a custom transport for a client that talks to sites the user chose. IP-literal URLs and
@@ -34,7 +36,6 @@ from pathlib import Path
 from typing import Any
 from urllib.parse import urljoin
 
-import requests
 from requests.structures import CaseInsensitiveDict
 
 from collector import __version__
@@ -56,7 +57,7 @@ from collector.fetching.answers import (
 )
 from collector.fetching.body import Body, exc_size, read_body
 from collector.fetching.budgets import SYSTEM_CLOCK, Budget, Clock, HostBudgets, budgets_from_recipe
-from collector.fetching.http_target import HopByHopSession, prepared_get, transport_target
+from collector.fetching.http_target import Target, transport_target
 from collector.fetching.kept_pages import keep_answer, kept_answer
 from collector.fetching.retry import Retryable, RetryPolicies, first_then_retried
 from collector.fetching.robots import (
@@ -69,6 +70,7 @@ from collector.fetching.robots import (
     policy_from_fetch,
     policy_from_stored,
 )
+from collector.fetching.transport import Answer, Transport, TransportError, TransportTimeout
 from collector.schema import expand_env
 from collector.urls import (
     MIN_SECRET_LEN,
@@ -192,7 +194,7 @@ class Fetcher:
     """The polite fetcher. Thread-safe: one instance serves the whole worker pool."""
 
     def __init__(self, settings: FetchSettings, ledger: Any | None, *,
-                 clock: Clock = SYSTEM_CLOCK, session: requests.Session | None = None,
+                 clock: Clock = SYSTEM_CLOCK, transport: Transport | None = None,
                  run_id: int | None = None, rng: random.Random | None = None) -> None:
         self.settings = settings
         self.ledger = ledger
@@ -202,14 +204,8 @@ class Fetcher:
         self._policies = RetryPolicies(settings.max_total_delay, self.rng, clock.sleep)
         self.budgets = HostBudgets(settings.budget, settings.host_budgets, clock=clock)
         self._allowed = parse_allow_list(settings.allow_addresses)
-        self._own_session = session is None
-        self.session = session or HopByHopSession()
-        if self._own_session:
-            adapter = requests.adapters.HTTPAdapter(pool_connections=KEPT_POOLS, pool_maxsize=10,
-                                                    max_retries=0)
-            self.session.mount("http://", adapter)
-            self.session.mount("https://", adapter)
-        self.session.trust_env = False  # no proxies from the environment: only what we check
+        self._own_transport = transport is None
+        self.transport = transport or Transport(pools=KEPT_POOLS)
         self._lock = threading.Lock()
         self._robots: dict[str, RobotsPolicy] = {}
         self._robots_locks: dict[str, threading.Lock] = {}
@@ -281,9 +277,9 @@ class Fetcher:
         return self._robots_policy(url).verdict(url, self.settings.product_token)
 
     def close(self) -> None:
-        """Close the HTTP session if this fetcher created it."""
-        if self._own_session:
-            self.session.close()
+        """Close the kept connections if this fetcher made its transport."""
+        if self._own_transport:
+            self.transport.close()
 
     # -- the pipeline --------------------------------------------------------------------------
     def _fetch(self, url: str, *, purpose: str, item_id: int | None,
@@ -322,7 +318,7 @@ class Fetcher:
                                  robots_rule=verdict.rule, error=reason)
                     raise RobotsDenied(shown, rule, reason)
             self._check_parked(hk, shown, row)
-            result = self._attempts(current, target.url, shown, hk, row, verdict, headers,
+            result = self._attempts(current, target, shown, hk, row, verdict, headers,
                                     secret_params, max_bytes, dest_dir, retry=not robots)
             location = result.headers.get("Location")
             if result.status not in REDIRECT_STATUSES or not location:
@@ -338,7 +334,7 @@ class Fetcher:
             except ValueError:
                 current = location  # malformed: transport_target refuses it with its reason
 
-    def _attempts(self, url: str, send_url: str, shown: str, hk: str, row: dict[str, Any],
+    def _attempts(self, url: str, target: Target, shown: str, hk: str, row: dict[str, Any],
                   verdict: Verdict, headers: Mapping[str, str],
                   secret_params: tuple[str, ...], max_bytes: int, dest_dir: Path | None,
                   retry: bool) -> _Result:
@@ -349,7 +345,7 @@ class Fetcher:
 
         def one() -> _Result:
             counter[0] += 1
-            return self._attempt(url, send_url, shown, hk, row, verdict, headers, secrets,
+            return self._attempt(url, target, shown, hk, row, verdict, headers, secrets,
                                  max_bytes, dest_dir, counter[0], final=counter[0] >= attempts,
                                  truncate=not retry)
 
@@ -362,7 +358,7 @@ class Fetcher:
                 raise
             raise FetchError(shown, exc.reason, exc.status, exc.detail) from None
 
-    def _attempt(self, url: str, send_url: str, shown: str, hk: str, row: dict[str, Any],
+    def _attempt(self, url: str, target: Target, shown: str, hk: str, row: dict[str, Any],
                  verdict: Verdict, headers: Mapping[str, str], secrets: list[str], max_bytes: int,
                  dest_dir: Path | None, attempt: int, final: bool, truncate: bool) -> _Result:
         send_headers = {"User-Agent": self.settings.user_agent, "Accept-Encoding": "gzip"}
@@ -377,15 +373,14 @@ class Fetcher:
         base.update(started_at=_iso(started), waited_s=round(slot.waited, 3))
         try:
             try:
-                # send_url is the URL exactly as transport_target checked it (http_target.py)
-                resp = self.session.send(
-                    prepared_get(self.session, send_url, send_headers), stream=True,
-                    allow_redirects=False,
-                    timeout=(self.settings.connect_timeout, self.settings.read_timeout))
+                # target is the URL exactly as transport_target checked it (http_target.py)
+                resp = self.transport.get(target, send_headers,
+                                          connect_timeout=self.settings.connect_timeout,
+                                          read_timeout=self.settings.read_timeout)
                 slot.answered()  # status line and headers are in: the next start counts from here
-            except requests.RequestException as exc:
-                reason = "timeout" if isinstance(exc, requests.Timeout) else "connection"
-                detail = scrub(f"{type(exc).__name__}: {exc}", all_secrets)
+            except TransportError as exc:
+                reason = "timeout" if isinstance(exc, TransportTimeout) else "connection"
+                detail = scrub(str(exc), all_secrets)
                 self._record(base, error=f"{reason}: {detail}", ended=True)
                 raise Retryable(reason, None, detail) from None
             except (ValueError, UnicodeError) as exc:
@@ -401,7 +396,7 @@ class Fetcher:
         finally:
             slot.release()
 
-    def _handle(self, resp: requests.Response, url: str, shown: str, hk: str,
+    def _handle(self, resp: Answer, url: str, shown: str, hk: str,
                 base: dict[str, Any], max_bytes: int, dest_dir: Path | None,
                 secrets: list[str], slot: Any, truncate: bool) -> _Result:
         status = resp.status_code
