@@ -1,4 +1,5 @@
-"""The transport sends what requests sent, keeps one connection per host, keeps no cookies.
+"""The transport sends what requests sent, keeps one connection per host, keeps no cookies,
+and connects to the address the guard checked.
 
 Every test talks to a real loopback server (collector.demo_site.loopback). The reference for
 "what is sent" is requests itself (``Session.get`` of the same URL and headers, which the
@@ -8,13 +9,21 @@ fetcher used before), compared on what the server received.
 from __future__ import annotations
 
 import socket
+import ssl
+import threading
 import time
 from collections.abc import Iterator
+from dataclasses import replace
+from http.server import BaseHTTPRequestHandler, ThreadingHTTPServer
+from pathlib import Path
 
 import pytest
 import requests
+import trustme
 
 from collector.demo_site.loopback import Answer, Handler, LoopbackServer
+from collector.errors import FetchError
+from collector.fetching.fetcher import Fetcher, FetchSettings
 from collector.fetching.http_target import transport_target
 from collector.fetching.transport import Transport, TransportError, TransportTimeout
 
@@ -37,8 +46,9 @@ def transport() -> Iterator[Transport]:
 
 
 def _get(transport: Transport, url: str, headers: dict[str, str] | None = None,
-         read_timeout: float = 10.0) -> tuple[int, bytes]:
-    with transport.get(transport_target(url), HEADERS if headers is None else headers,
+         read_timeout: float = 10.0, address: str | None = None) -> tuple[int, bytes]:
+    target = replace(transport_target(url), address=address)
+    with transport.get(target, HEADERS if headers is None else headers,
                        connect_timeout=5.0, read_timeout=read_timeout) as answer:
         return answer.status_code, answer.raw.read(decode_content=True)
 
@@ -126,3 +136,94 @@ def test_an_answer_slower_than_the_read_timeout_is_a_timeout(server: LoopbackSer
     server.route("/slow", slow)
     with pytest.raises(TransportTimeout):
         _get(transport, server.url("/slow"), read_timeout=0.2)
+
+
+# -- the connection goes to the address the guard checked -----------------------------------
+# "localhost" is answered by /etc/hosts (127.0.0.1 or ::1), never by a DNS server; the fetcher's
+# resolver says 127.0.0.2, where the server listens. Connecting to what the guard checked
+# reaches it; resolving the name a second time when connecting would not (DNS rebinding).
+CHECKED = "127.0.0.2"
+
+
+def _says_checked(host: str, port: int, **kwargs: object) -> list:
+    """A resolver (socket.getaddrinfo's shape) that answers CHECKED for every name."""
+    return [(socket.AF_INET, socket.SOCK_STREAM, 6, "", (CHECKED, port))]
+
+
+def _fetcher(transport: Transport) -> Fetcher:
+    settings = FetchSettings.from_recipe(
+        {"contact": "curator@example.org", "budgets": {"min_interval": 0.0},
+         "network": {"allow_addresses": [CHECKED]}}, resolver=_says_checked)
+    return Fetcher(settings, None, transport=transport)
+
+
+def test_the_connection_goes_to_the_checked_address_not_a_second_answer(
+        transport: Transport) -> None:
+    """http://localhost:PORT/ with the resolver answering 127.0.0.2: the request arrives at
+    127.0.0.2 with ``Host: localhost:PORT`` (RFC 9110 §7.2: the URL's authority)."""
+    with LoopbackServer(CHECKED) as server:
+        server.route("/robots.txt", (404, b""))
+        server.route("/x", (200, b"pinned"))
+        page = _fetcher(transport).get_page(f"http://localhost:{server.port}/x")
+        assert page.body == b"pinned"
+        assert [h.headers["Host"] for h in server.hits] == [f"localhost:{server.port}"] * 2
+
+
+class _TLSServer:
+    """An HTTPS server on CHECKED with a certificate for ``name`` from ``ca`` (trustme)."""
+
+    def __init__(self, ca: trustme.CA, name: str) -> None:
+        class _H(BaseHTTPRequestHandler):
+            protocol_version = "HTTP/1.1"
+
+            def do_GET(self) -> None:
+                status, body = (404, b"") if self.path == "/robots.txt" else (200, b"secure")
+                self.send_response(status)
+                self.send_header("Content-Length", str(len(body)))
+                self.end_headers()
+                self.wfile.write(body)
+
+            def log_message(self, *args: object) -> None:
+                pass
+
+        context = ssl.create_default_context(ssl.Purpose.CLIENT_AUTH)
+        ca.issue_cert(name).configure_cert(context)
+        self.server = ThreadingHTTPServer((CHECKED, 0), _H)
+        self.server.daemon_threads = True
+        self.server.socket = context.wrap_socket(self.server.socket, server_side=True)
+        self.port = self.server.server_address[1]
+        threading.Thread(target=self.server.serve_forever, args=(0.05,), daemon=True).start()
+
+    def close(self) -> None:
+        self.server.shutdown()
+        self.server.server_close()
+
+
+@pytest.mark.parametrize(("certified", "trusted", "ok"), [
+    ("localhost", True, True),           # the name in the URL, from a trusted CA
+    ("other.invalid", True, False),      # another name: refused though the address is right
+    ("localhost", False, False),         # a CA we do not trust: refused
+])
+def test_over_tls_the_checked_address_is_verified_against_the_urls_name(
+        tmp_path: Path, certified: str, trusted: bool, ok: bool) -> None:
+    """Connecting to the checked address keeps TLS whole: SNI and the certificate check use
+    the URL's host name (RFC 6125 §6: the reference identity is the name the client meant),
+    and a certificate for another name or from an untrusted CA fails the request."""
+    ca = trustme.CA()
+    bundle = tmp_path / "ca.pem"
+    (ca if trusted else trustme.CA()).cert_pem.write_to_path(str(bundle))
+    server = _TLSServer(ca, certified)
+    sender = Transport(pools=4, ca_certs=str(bundle))
+    url = f"https://localhost:{server.port}/x"
+    try:
+        if ok:
+            assert _fetcher(sender).get_page(url).body == b"secure"
+        else:
+            with pytest.raises(TransportError) as err:
+                _get(sender, url, address=CHECKED)
+            assert "CERTIFICATE_VERIFY_FAILED" in str(err.value) or "match" in str(err.value)
+            with pytest.raises(FetchError):  # robots.txt is unreachable, the page not asked
+                _fetcher(sender).get_page(url)
+    finally:
+        sender.close()
+        server.close()

@@ -16,11 +16,8 @@ Bodies are streamed with a byte cap on decoded bytes and an overall deadline
 
 Requests are sent by :mod:`collector.fetching.transport` (urllib3's pools, used directly).
 
-DNS rebinding: the address check resolves the name just before each request, but urllib3
-resolves it again when connecting. A name whose answer changes in between could slip past the
-check; closing that gap needs a connection pinned to the checked address, which we judged not
-worth a custom transport for a client that talks to sites the user chose. IP-literal URLs and
-names with stable answers are fully covered.
+DNS rebinding: the address check resolves the name just before each request, and the
+transport connects to the address that was checked, never to a second answer for the name.
 """
 
 from __future__ import annotations
@@ -30,7 +27,7 @@ import random
 import socket
 import threading
 from collections.abc import Callable, Iterable, Mapping
-from dataclasses import asdict, dataclass, field
+from dataclasses import asdict, dataclass, field, replace
 from datetime import UTC, datetime
 from pathlib import Path
 from typing import Any
@@ -297,8 +294,9 @@ class Fetcher:
                 target = transport_target(current, shown)
                 hk = host_key(current)
                 row["host"] = hk
-                check_address(target.host, target.port, self._allowed, self.settings.resolver,
-                              shown)
+                checked = check_address(target.host, target.port, self._allowed,
+                                        self.settings.resolver, shown)
+                target = replace(target, address=str(checked[0]))  # connect where checked
             except UnsafeURL as exc:
                 self._record(row, attempt=0, error=str(exc))
                 raise
@@ -374,6 +372,7 @@ class Fetcher:
         try:
             try:
                 # target is the URL exactly as transport_target checked it (http_target.py)
+                # and its address the one check_address checked (no second DNS answer)
                 resp = self.transport.get(target, send_headers,
                                           connect_timeout=self.settings.connect_timeout,
                                           read_timeout=self.settings.read_timeout)

@@ -47,6 +47,7 @@ class Target:
     port: int
     request_uri: str = "/"  # path and query of the request line, as urllib3 reads ``url``
     credentials: bool = False  # the URL holds user information (``user:pass@``)
+    address: str | None = None  # the IP address the guard checked: connect there, not again
 
 
 def _refuse(url: str, why: str) -> UnsafeURL:

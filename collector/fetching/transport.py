@@ -25,7 +25,16 @@ What stays as it was under requests:
   connect timeouts, as requests also tells them apart) :class:`TransportError`, both with
   urllib3's message.
 
-What changed on purpose: no cookie jar. A ``Set-Cookie`` from an archive is never sent back
+What changed on purpose:
+
+- the connection goes to the address the guard checked. ``check_address`` resolves a name
+  just before each request; the transport then connects to that address (the first one the
+  resolver gave) instead of letting the connection resolve the name again, so a name whose
+  answer changes between the check and the connection (DNS rebinding) cannot lead the request
+  elsewhere. ``Host`` names the host as in the URL; over TLS the name is still sent as SNI and
+  the certificate checked against it (urllib3's ``server_hostname`` and ``assert_hostname``).
+  A pool is kept per address and name.
+- no cookie jar. A ``Set-Cookie`` from an archive is never sent back
 (requests kept one per session and replayed it); a cookie an archive requires goes in the
 recipe's ``[network] headers``, where it is a secret header and never reaches the ledger.
 Every request is exactly what the recipe and the fetcher say.
@@ -95,16 +104,17 @@ class Transport:
     """Connection pools for the fetcher: ``pools`` kept at most (least recently used closed
     first), each holding up to ``per_pool`` idle connections."""
 
-    def __init__(self, *, pools: int, per_pool: int = 10) -> None:
+    def __init__(self, *, pools: int, per_pool: int = 10, ca_certs: str | None = None) -> None:
         self._manager = urllib3.PoolManager(
             num_pools=pools, maxsize=per_pool, block=False, retries=False,
-            cert_reqs="CERT_REQUIRED", ca_certs=certifi.where())
+            cert_reqs="CERT_REQUIRED", ca_certs=ca_certs or certifi.where())
 
     def get(self, target: Target, headers: Mapping[str, str], *, connect_timeout: float,
             read_timeout: float) -> Answer:
         """Send a GET of ``target`` (made and checked by :func:`http_target.transport_target`:
         its host, port and request line exactly as urllib3 reads its URL) with ``headers`` and
-        return its answer, body unread.
+        return its answer, body unread. The connection goes to ``target.address`` (the IP
+        address the guard checked for ``target.host``) when it is set.
 
         Raises :class:`TransportTimeout` or :class:`TransportError` when no answer came, and
         ``ValueError`` for a header that cannot be sent (a CR or LF in it, a leading space)."""
@@ -117,7 +127,7 @@ class Transport:
                     basic_auth=f"{user}:{password}")["authorization"]
         for item in sent.items():
             check_header_validity(item)  # raises requests' InvalidHeader, a ValueError
-        pool = self._manager.connection_from_host(target.host, target.port, target.scheme)
+        pool = self._pool(target, sent)
         try:
             raw = pool.urlopen(
                 "GET", target.request_uri, headers=sent, redirect=False,
@@ -131,6 +141,19 @@ class Transport:
         except (Urllib3Error, OSError) as exc:
             raise TransportError(f"{type(exc).__name__}: {exc}") from None
         return Answer(raw)
+
+    def _pool(self, target: Target, sent: dict[str, str]) -> urllib3.HTTPConnectionPool:
+        """The pool for ``target``, connecting to its address when that is not the host itself
+        (then ``sent`` gets the ``Host`` header the URL's host would have given)."""
+        address = target.address
+        if address is None or address == target.host:
+            return self._manager.connection_from_host(target.host, target.port, target.scheme)
+        default = 443 if target.scheme == "https" else 80
+        name = f"[{target.host}]" if ":" in target.host else target.host  # IPv6: RFC 3986 §3.2.2
+        sent["Host"] = name if target.port == default else f"{name}:{target.port}"
+        return self._manager.connection_from_host(
+            address, target.port, target.scheme,
+            pool_kwargs={"server_hostname": target.host, "assert_hostname": target.host})
 
     def close(self) -> None:
         """Close every kept connection."""
