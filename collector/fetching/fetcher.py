@@ -24,10 +24,9 @@ from __future__ import annotations
 
 import logging
 import random
-import socket
 import threading
 from collections.abc import Callable, Iterable, Mapping
-from dataclasses import asdict, dataclass, field, replace
+from dataclasses import dataclass, replace
 from datetime import UTC, datetime
 from pathlib import Path
 from typing import Any
@@ -35,7 +34,6 @@ from urllib.parse import urljoin
 
 from requests.structures import CaseInsensitiveDict
 
-from collector import __version__
 from collector.errors import (
     DownloadTimeout,
     FetchError,
@@ -53,20 +51,19 @@ from collector.fetching.answers import (
     parse_retry_after,
 )
 from collector.fetching.body import Body, exc_size, read_body
-from collector.fetching.budgets import SYSTEM_CLOCK, Budget, Clock, HostBudgets, budgets_from_recipe
+from collector.fetching.budgets import SYSTEM_CLOCK, Clock, HostBudgets
 from collector.fetching.http_target import Target, transport_target
 from collector.fetching.kept_pages import keep_answer, kept_answer
 from collector.fetching.retry import Retryable, RetryPolicies, first_then_retried
 from collector.fetching.robots import (
     MAX_ROBOTS_BYTES,
     MAX_ROBOTS_REDIRECTS,
-    ROBOTS_TTL,
-    UNREACHABLE_RETRY,
     RobotsPolicy,
     Verdict,
     policy_from_fetch,
     policy_from_stored,
 )
+from collector.fetching.settings import FetchSettings  # also the fetcher's import path
 from collector.fetching.transport import Answer, Transport, TransportError, TransportTimeout
 from collector.schema import expand_env
 from collector.urls import (
@@ -89,75 +86,6 @@ PERSISTED_PARK_MAX = 86_400.0  # seconds a parking outlives the run that saw it
 # Connection pools kept, one per host: with more hosts in turn, each request closed the least
 # recently used pool and connected anew. 256 sockets fit a 1,024-descriptor limit.
 KEPT_POOLS = 256
-
-
-@dataclass(frozen=True)
-class FetchSettings:
-    """Everything the fetcher needs from the recipe; build with :meth:`from_recipe`."""
-
-    contact: str
-    product_token: str = "collector"
-    extra_tokens: tuple[str, ...] = ()  # [reservations] robots_tokens: their groups bind too
-    budget: Budget = field(default_factory=Budget)
-    host_budgets: Mapping[str, Budget] = field(default_factory=dict)
-    connect_timeout: float = 10.0
-    read_timeout: float = 30.0
-    download_deadline: float = 300.0
-    max_image_bytes: int = 50_000_000
-    max_page_bytes: int = 10_000_000
-    allow_addresses: tuple[str, ...] = ()
-    secret_params: tuple[str, ...] = ()
-    secret_headers: tuple[str, ...] = ("Authorization", "Cookie")
-    headers: Mapping[str, str] = field(default_factory=dict)
-    max_redirects: int = 10
-    max_total_delay: float = 900.0  # s of back-off per request before giving up
-    breaker_threshold: int = 5  # consecutive failed attempts that open a host's breaker
-    breaker_cooldown: float = 600.0  # s a host stays parked after its breaker opens
-    robots_ttl: float = ROBOTS_TTL
-    robots_retry: float = UNREACHABLE_RETRY
-    resolver: Callable[..., list] = socket.getaddrinfo
-
-    @property
-    def user_agent(self) -> str:
-        """The User-Agent header: ``collector/<version> (+<contact>)``."""
-        return f"collector/{__version__} (+{self.contact})"
-
-    @classmethod
-    def from_recipe(cls, recipe: Any, **overrides: Any) -> FetchSettings:
-        """Build settings from a :class:`collector.config.recipe.Recipe` or a recipe dict.
-
-        A dict may be the parsed TOML (``budgets.hosts`` nested) or ``Recipe.as_dict()``
-        (``"budgets.hosts"`` as a top-level key). ``overrides`` set fields directly (tests).
-        """
-        if isinstance(recipe, Mapping):
-            get = recipe.get
-            budgets = dict(get("budgets") or {})
-            hosts = budgets.pop("hosts", None) or get("budgets.hosts") or {}
-            network = dict(get("network") or {})
-            contact, token = get("contact", ""), get("product_token") or "collector"
-            extra = tuple((get("reservations") or {}).get("robots_tokens") or ())
-        else:
-            budgets = asdict(recipe.budgets)
-            hosts = dict(recipe.host_budgets)
-            network = asdict(recipe.network)
-            contact, token = recipe.contact, recipe.product_token or "collector"
-            extra = tuple(recipe.reservations.robots_tokens)
-        default, per_host = budgets_from_recipe({**budgets, "hosts": hosts})
-        values: dict[str, Any] = {
-            "contact": contact, "product_token": token, "extra_tokens": extra, "budget": default,
-            "host_budgets": per_host,
-        }
-        for key in ("connect_timeout", "read_timeout", "download_deadline", "max_image_bytes",
-                    "max_page_bytes"):
-            if key in network:
-                values[key] = network[key]
-        for key in ("allow_addresses", "secret_params", "secret_headers"):
-            if key in network:
-                values[key] = tuple(network[key])
-        if "headers" in network:
-            values["headers"] = dict(network["headers"])
-        values.update(overrides)
-        return cls(**values)
 
 
 @dataclass
@@ -201,6 +129,10 @@ class Fetcher:
         self._policies = RetryPolicies(settings.max_total_delay, self.rng, clock.sleep)
         self.budgets = HostBudgets(settings.budget, settings.host_budgets, clock=clock)
         self._allowed = parse_allow_list(settings.allow_addresses)
+        # An IP-literal host's check depends on nothing but the host and the allowlist: its
+        # address, once allowed, is kept (names are resolved and checked on every request).
+        self._allowed_literals: dict[str, str] = {}
+        self._secret_names: dict[str, bool] = {}  # header name -> is_secret_header
         self._own_transport = transport is None
         self.transport = transport or Transport(pools=KEPT_POOLS)
         self._lock = threading.Lock()
@@ -294,9 +226,7 @@ class Fetcher:
                 target = transport_target(current, shown)
                 hk = host_key(current)
                 row["host"] = hk
-                checked = check_address(target.host, target.port, self._allowed,
-                                        self.settings.resolver, shown)
-                target = replace(target, address=str(checked[0]))  # connect where checked
+                target = replace(target, address=self._checked_address(target, shown))
             except UnsafeURL as exc:
                 self._record(row, attempt=0, error=str(exc))
                 raise
@@ -338,7 +268,8 @@ class Fetcher:
                   retry: bool) -> _Result:
         budget = self.budgets.budget_for(hk)
         attempts = max(1, int(budget.max_attempts)) if retry else 1
-        secrets = secret_values(url, secret_params)
+        # Secret values in the URL: those of the secret parameters and a password.
+        secrets = secret_values(url, secret_params) if secret_params or "@" in url else []
         counter = [0]
 
         def one() -> _Result:
@@ -362,7 +293,7 @@ class Fetcher:
         send_headers = {"User-Agent": self.settings.user_agent, "Accept-Encoding": "gzip"}
         send_headers.update(headers)  # recipe headers, then this request's (filled by _fetch)
         all_secrets = secrets + [part for k, v in send_headers.items()
-                                 if is_secret_header(k, self.settings.secret_headers)
+                                 if self._is_secret_header(k)
                                  for part in header_secrets(str(v)) if len(part) >= MIN_SECRET_LEN]
         base = {**row, "attempt": attempt, "robots_verdict": verdict.verdict,
                 "robots_rule": verdict.rule}
@@ -440,6 +371,25 @@ class Fetcher:
         self._succeeded(hk)
         return _Result(url, status, hdr, body, resp.encoding if "charset" in
                        (hdr.get("Content-Type") or "").lower() else None)
+
+    def _checked_address(self, target: Target, shown: str) -> str:
+        """The address to connect to for ``target``: its host's address, checked against the
+        allowlist (:func:`collector.urls.check_address`, UnsafeURL when refused)."""
+        known = self._allowed_literals.get(target.host)
+        if known is not None:
+            return known
+        checked = str(check_address(target.host, target.port, self._allowed,
+                                    self.settings.resolver, shown)[0])
+        if checked == target.host:  # an IP literal (a name never equals its address)
+            self._allowed_literals[checked] = checked
+        return checked
+
+    def _is_secret_header(self, name: str) -> bool:
+        known = self._secret_names.get(name)
+        if known is None:
+            known = self._secret_names[name] = is_secret_header(
+                name, self.settings.secret_headers)
+        return known
 
     # -- robots.txt ----------------------------------------------------------------------------
     def _robots_policy(self, url: str) -> RobotsPolicy:
