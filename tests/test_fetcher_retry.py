@@ -1,16 +1,18 @@
-"""Retry-After parsing, back-off and settings: narrow unit tests (fake clock, `responses` mocks)."""
+"""Retry-After parsing, back-off and settings: narrow unit tests (fake clock; the answers come
+from a real loopback server, scripted per path)."""
 
 from __future__ import annotations
 
 import random
 import threading
+from collections.abc import Callable, Iterator
 from pathlib import Path
 
 import pytest
-import responses
 
 from collector import urls
 from collector.config.recipe import parse_recipe
+from collector.demo_site.loopback import Answer, Handler, LoopbackServer
 from collector.errors import FetchError, HostParked
 from collector.fetching.answers import parse_http_date, parse_retry_after
 from collector.fetching.budgets import Budget, FakeClock
@@ -58,108 +60,110 @@ def _settings(**kw: object) -> FetchSettings:
     return FetchSettings.from_recipe(recipe, **kw)
 
 
-BASE = "http://127.0.0.1:8123"
+@pytest.fixture
+def server() -> Iterator[LoopbackServer]:
+    """A loopback server answering robots.txt with 404 (RFC 9309 §2.3.1.3: no rules)."""
+    with LoopbackServer("127.0.0.1") as loopback:
+        loopback.route("/robots.txt", (404, b""))
+        yield loopback
 
 
-@responses.activate
-def test_backoff_is_exponential_with_full_jitter() -> None:
+def _in_turn(*answers: Answer) -> Callable[[Handler], Answer]:
+    """A route giving ``answers`` one per request, then the last one again."""
+    left = list(answers)
+
+    def answer(h: Handler) -> Answer:
+        return left.pop(0) if len(left) > 1 else left[0]
+
+    return answer
+
+
+def test_backoff_is_exponential_with_full_jitter(server: LoopbackServer) -> None:
     """No Retry-After: wait n is uniform in [0, base * 2^(n-1)] (common practice, no source)."""
-    responses.get(f"{BASE}/robots.txt", status=404)
-    responses.get(f"{BASE}/x", status=502)
+    server.route("/x", (502, b""))
     clock = FakeClock()
     fetcher = Fetcher(_settings(), None, clock=clock, rng=random.Random(4))
     with pytest.raises(FetchError) as err:
-        fetcher.get_page(f"{BASE}/x")
+        fetcher.get_page(server.url("/x"))
     assert err.value.reason == "http_502" and err.value.status == 502
     assert len(clock.sleeps) == 3
     for n, slept in enumerate(clock.sleeps, start=1):
         assert 0.0 <= slept <= 2 ** (n - 1)
 
 
-@responses.activate
-def test_retry_after_is_slept_exactly_through_the_clock() -> None:
+def test_retry_after_is_slept_exactly_through_the_clock(server: LoopbackServer) -> None:
     """A 503 with Retry-After: 7 sleeps exactly 7 s on the injected clock, then retries."""
-    responses.get(f"{BASE}/robots.txt", status=404)
-    responses.get(f"{BASE}/y", status=503, headers={"Retry-After": "7"})
-    responses.get(f"{BASE}/y", status=200, body=b"ok")
+    server.route("/y", _in_turn((503, b"", {"Retry-After": "7"}), (200, b"ok")))
     clock = FakeClock()
-    page = Fetcher(_settings(), None, clock=clock).get_page(f"{BASE}/y")
+    page = Fetcher(_settings(), None, clock=clock).get_page(server.url("/y"))
     assert page.body == b"ok" and 7.0 in clock.sleeps
     assert sum(clock.sleeps) == pytest.approx(7.0)
 
 
-@responses.activate
-def test_total_back_off_is_capped() -> None:
+def test_total_back_off_is_capped(server: LoopbackServer) -> None:
     """Retrying stops before the summed waits pass max_total_delay."""
-    responses.get(f"{BASE}/robots.txt", status=404)
-    responses.get(f"{BASE}/z", status=429, headers={"Retry-After": "60"})
+    server.route("/z", (429, b"", {"Retry-After": "60"}))
     clock = FakeClock()
     with pytest.raises(FetchError):
-        Fetcher(_settings(max_total_delay=100.0), None, clock=clock).get_page(f"{BASE}/z")
+        Fetcher(_settings(max_total_delay=100.0), None, clock=clock).get_page(server.url("/z"))
     assert sum(clock.sleeps) <= 100.0
-    assert len(responses.calls) == 1 + 2  # robots.txt + two attempts (60 s + 60 s > 100 s)
+    assert server.paths() == ["/robots.txt", "/z", "/z"]  # two attempts: 60 s + 60 s > 100 s
 
 
-@responses.activate
-def test_retry_after_over_cap_parks_without_sleeping() -> None:
-    """Retry-After: 3600 over a 600 s cap raises HostParked at once; nothing sleeps an hour."""
-    responses.get(f"{BASE}/robots.txt", status=404)
-    responses.get(f"{BASE}/p", status=429, headers={"Retry-After": "3600"})
-    clock = FakeClock()
-    settings = FetchSettings.from_recipe(
+def _parking_settings() -> FetchSettings:
+    return FetchSettings.from_recipe(
         {"contact": "c@example.org", "budgets": {"min_interval": 0.0, "max_retry_after": 600},
          "network": {"allow_addresses": ["127.0.0.1"]}})
+
+
+def test_retry_after_over_cap_parks_without_sleeping(server: LoopbackServer) -> None:
+    """Retry-After: 3600 over a 600 s cap raises HostParked at once; nothing sleeps an hour."""
+    server.route("/p", (429, b"", {"Retry-After": "3600"}))
+    clock = FakeClock()
     with pytest.raises(HostParked) as err:
-        Fetcher(settings, None, clock=clock).get_page(f"{BASE}/p")
+        Fetcher(_parking_settings(), None, clock=clock).get_page(server.url("/p"))
     assert err.value.until == pytest.approx(clock.time() + 3600.0)
     assert clock.sleeps == []
 
 
-@responses.activate
-def test_parking_outlives_the_run_for_a_day_at_most(tmp_path: Path) -> None:
+def test_parking_outlives_the_run_for_a_day_at_most(tmp_path: Path,
+                                                    server: LoopbackServer) -> None:
     """A ten-year Retry-After parks the host in this run; the ledger keeps it 24 h at most,
     so a later run tries again (project policy; RFC 9110 section 10.2.3 sets no maximum)."""
-    responses.get(f"{BASE}/robots.txt", status=404)
-    responses.get(f"{BASE}/p", status=503, headers={"Retry-After": "315360000"})
+    server.route("/p", (503, b"", {"Retry-After": "315360000"}))
     clock = FakeClock()
-    settings = FetchSettings.from_recipe(
-        {"contact": "c@example.org", "budgets": {"min_interval": 0.0, "max_retry_after": 600},
-         "network": {"allow_addresses": ["127.0.0.1"]}})
     ledger = Ledger.create(tmp_path / "l.sqlite")
     with pytest.raises(HostParked) as err:
-        Fetcher(settings, ledger, clock=clock).get_page(f"{BASE}/p")
+        Fetcher(_parking_settings(), ledger, clock=clock).get_page(server.url("/p"))
     assert err.value.until == pytest.approx(clock.time() + 315360000.0)
-    host = urls.host_key(f"{BASE}/p")
+    host = urls.host_key(server.url("/p"))
     assert ledger.get_host(host)["parked_until"] == pytest.approx(clock.time() + 86400.0)
     clock.advance(86401.0)
-    responses.replace(responses.GET, f"{BASE}/p", status=200, body=b"{}")
-    assert Fetcher(settings, ledger, clock=clock).get_page(f"{BASE}/p").status == 200
+    server.route("/p", (200, b"{}"))
+    assert Fetcher(_parking_settings(), ledger, clock=clock).get_page(
+        server.url("/p")).status == 200
     ledger.close()
 
 
-@responses.activate
-def test_a_429_slows_the_host_and_the_ledger_shows_it(tmp_path: Path) -> None:
+def test_a_429_slows_the_host_and_the_ledger_shows_it(tmp_path: Path,
+                                                      server: LoopbackServer) -> None:
     """After a 429 the host's interval is doubled for the run, and hosts.effective_budget
     records the slow-down (RFC 6585 section 4: the client sent too many requests)."""
-    responses.get(f"{BASE}/robots.txt", status=404)
-    responses.get(f"{BASE}/p", status=429, headers={"Retry-After": "1"})
-    responses.get(f"{BASE}/p", status=200, body=b"{}")
+    server.route("/p", _in_turn((429, b"", {"Retry-After": "1"}), (200, b"{}")))
     ledger = Ledger.create(tmp_path / "l.sqlite")
-    page = Fetcher(_settings(), ledger, clock=FakeClock()).get_page(f"{BASE}/p")
+    page = Fetcher(_settings(), ledger, clock=FakeClock()).get_page(server.url("/p"))
     assert page.status == 200
-    budget = ledger.get_host(urls.host_key(f"{BASE}/p"))["effective_budget"]
+    budget = ledger.get_host(urls.host_key(server.url("/p")))["effective_budget"]
     assert budget["slowdown"] == 2.0
     ledger.close()
 
 
-@responses.activate
-def test_not_found_is_not_retried() -> None:
+def test_not_found_is_not_retried(server: LoopbackServer) -> None:
     """A 404 is final: one attempt, FetchError http_404."""
-    responses.get(f"{BASE}/robots.txt", status=404)
-    responses.get(f"{BASE}/gone", status=404)
+    server.route("/gone", (404, b""))
     with pytest.raises(FetchError) as err:
-        Fetcher(_settings(), None, clock=FakeClock()).get_page(f"{BASE}/gone")
-    assert err.value.reason == "http_404" and len(responses.calls) == 2
+        Fetcher(_settings(), None, clock=FakeClock()).get_page(server.url("/gone"))
+    assert err.value.reason == "http_404" and server.paths() == ["/robots.txt", "/gone"]
 
 
 def test_settings_are_built_from_a_validated_recipe(tmp_path: Path) -> None:

@@ -2,7 +2,8 @@
 
 The library's own decision is read from requests itself: ``PreparedRequest`` builds the URL it
 sends and ``HTTPAdapter.build_connection_pool_key_attributes`` names the host and port its
-connection pool connects to. No test here opens a connection.
+connection pool connects to (the transport connects to exactly the target's host and port:
+tests/test_transport.py). No test here opens a connection.
 """
 
 from __future__ import annotations
@@ -14,7 +15,7 @@ from hypothesis import strategies as st
 from requests.adapters import HTTPAdapter
 
 from collector.errors import UnsafeURL
-from collector.fetching.http_target import prepared_get, transport_target
+from collector.fetching.http_target import transport_target
 from collector.urls import split_checked
 
 ALLOWED = "127.0.0.51"
@@ -95,58 +96,3 @@ def test_an_approved_host_is_the_host_the_library_connects_to(authority: str) ->
     assert ledger_port == target.port
     assert ledger_host.encode("idna").decode().lower() == target.host or \
         ledger_host == target.host
-
-
-@pytest.mark.parametrize("url", [
-    f"http://{ALLOWED}:8651/x?q=1&r=%C3%A9",
-    f"http://user:pass@{ALLOWED}:8651/x",               # credentials in the URL: Basic auth
-    f"http://{ALLOWED}/caf\u00e9 bar",                  # the library quotes the path
-])
-def test_prepared_get_is_what_the_session_would_send(url: str) -> None:
-    """The fetcher's GET (prepared_get around the checked URL) is the request requests'
-    own Session.prepare_request makes of the same URL and headers: URL, every header (the
-    session's defaults under ours, its cookie for the host, Basic auth from the URL's
-    credentials, RFC 7617), body and hooks (the reference is requests itself)."""
-    session = requests.Session()
-    session.trust_env = False
-    session.cookies.set("visit", "1", domain=ALLOWED, path="/")
-    headers = {"User-Agent": "collector/test", "Accept-Encoding": "gzip", "X-Extra": "yes"}
-    expected = session.prepare_request(requests.Request("GET", url, headers=headers))
-    got = prepared_get(session, transport_target(url).url, headers)
-    assert (got.method, got.url, got.body) == (expected.method, expected.url, expected.body)
-    assert dict(got.headers) == dict(expected.headers)
-    if "@" not in url:  # (cookielib matches a host read with the credentials: no cookie)
-        assert got.headers["Cookie"] == "visit=1"
-    assert got.hooks == expected.hooks
-
-
-def _hook(response: requests.Response, *args: object, **kwargs: object) -> None:
-    """A response hook for the comparison below (never called: nothing is sent)."""
-
-
-@pytest.mark.parametrize("setup", ["bare", "cookie", "auth", "hook", "none_header"])
-def test_prepared_get_skips_only_steps_that_cannot_change_the_get(setup: str) -> None:
-    """prepared_get skips body, cookie, auth and hook preparation when the session has none of
-    them; with each present, and with a header set to None (which drops the session's default,
-    as requests' merge_setting does), the GET is still the one Session.prepare_request makes
-    (the reference is requests itself)."""
-    session = requests.Session()
-    session.trust_env = False
-    headers: dict = {"User-Agent": "collector/test", "Accept-Encoding": "gzip"}
-    if setup == "cookie":
-        session.cookies.set("visit", "1", domain=ALLOWED, path="/")
-    elif setup == "auth":
-        session.auth = ("curator", "s3cret-pass")
-    elif setup == "hook":
-        session.hooks["response"].append(_hook)
-    elif setup == "none_header":
-        headers["Accept"] = None
-    url = f"http://{ALLOWED}:8651/x?q=1"
-    expected = session.prepare_request(requests.Request("GET", url, headers=headers))
-    got = prepared_get(session, transport_target(url).url, headers)
-    assert (got.method, got.url, got.body) == (expected.method, expected.url, expected.body)
-    assert dict(got.headers) == dict(expected.headers)
-    assert got.hooks == expected.hooks
-    assert ("Cookie" in got.headers) == (setup == "cookie")
-    assert ("Authorization" in got.headers) == (setup == "auth")
-    assert ("Accept" in got.headers) == (setup != "none_header")

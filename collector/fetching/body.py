@@ -18,12 +18,12 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import BinaryIO, Protocol
 
-import requests
 import urllib3.exceptions
 
 from collector.errors import DownloadTimeout, StoreError, TooLarge
 from collector.fetching.budgets import Clock, Slot
 from collector.fetching.retry import Retryable
+from collector.fetching.transport import Answer
 from collector.storage.store import make_temp
 
 CHUNK = 65536
@@ -109,7 +109,7 @@ class _FileSink:
         return Body(data=None, path=self.path, sha256=sha256, size=size)
 
 
-def read_body(resp: requests.Response, *, shown: str, max_bytes: int, dest_dir: Path | None,
+def read_body(resp: Answer, *, shown: str, max_bytes: int, dest_dir: Path | None,
               slot: Slot, truncate: bool, clock: Clock, deadline_s: float) -> Body:
     """Stream the body with a decoded-byte cap and an overall deadline (libraries.md §6).
 
@@ -143,7 +143,7 @@ def read_body(resp: requests.Response, *, shown: str, max_bytes: int, dest_dir: 
     return sink.body(digest.hexdigest(), size)
 
 
-def _next_chunk(resp: requests.Response) -> bytes:
+def _next_chunk(resp: Answer) -> bytes:
     """The next decoded bytes that have arrived ("" at the end of the body)."""
     try:
         # read1 returns what has arrived, so the deadline check in read_body runs even

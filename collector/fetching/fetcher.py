@@ -14,30 +14,26 @@ Bodies are streamed with a byte cap on decoded bytes and an overall deadline
 (:mod:`collector.fetching.body`). Errors raised are
 :class:`collector.errors.FetchError` subclasses whose messages carry only redacted URLs.
 
-DNS rebinding: the address check resolves the name just before each request, but requests
-resolves it again when connecting. A name whose answer changes in between could slip past the
-check; closing that gap needs a connection pinned to the checked address, which we judged not
-worth a custom transport for a client that talks to sites the user chose. IP-literal URLs and
-names with stable answers are fully covered.
+Requests are sent by :mod:`collector.fetching.transport` (urllib3's pools, used directly).
+
+DNS rebinding: the address check resolves the name just before each request, and the
+transport connects to the address that was checked, never to a second answer for the name.
 """
 
 from __future__ import annotations
 
 import logging
 import random
-import socket
 import threading
 from collections.abc import Callable, Iterable, Mapping
-from dataclasses import asdict, dataclass, field
+from dataclasses import dataclass, replace
 from datetime import UTC, datetime
 from pathlib import Path
 from typing import Any
 from urllib.parse import urljoin
 
-import requests
 from requests.structures import CaseInsensitiveDict
 
-from collector import __version__
 from collector.errors import (
     DownloadTimeout,
     FetchError,
@@ -55,20 +51,20 @@ from collector.fetching.answers import (
     parse_retry_after,
 )
 from collector.fetching.body import Body, exc_size, read_body
-from collector.fetching.budgets import SYSTEM_CLOCK, Budget, Clock, HostBudgets, budgets_from_recipe
-from collector.fetching.http_target import HopByHopSession, prepared_get, transport_target
+from collector.fetching.budgets import SYSTEM_CLOCK, Clock, HostBudgets
+from collector.fetching.http_target import Target, transport_target
 from collector.fetching.kept_pages import keep_answer, kept_answer
 from collector.fetching.retry import Retryable, RetryPolicies, first_then_retried
 from collector.fetching.robots import (
     MAX_ROBOTS_BYTES,
     MAX_ROBOTS_REDIRECTS,
-    ROBOTS_TTL,
-    UNREACHABLE_RETRY,
     RobotsPolicy,
     Verdict,
     policy_from_fetch,
     policy_from_stored,
 )
+from collector.fetching.settings import FetchSettings  # also the fetcher's import path
+from collector.fetching.transport import Answer, Transport, TransportError, TransportTimeout
 from collector.schema import expand_env
 from collector.urls import (
     MIN_SECRET_LEN,
@@ -90,75 +86,6 @@ PERSISTED_PARK_MAX = 86_400.0  # seconds a parking outlives the run that saw it
 # Connection pools kept, one per host: with more hosts in turn, each request closed the least
 # recently used pool and connected anew. 256 sockets fit a 1,024-descriptor limit.
 KEPT_POOLS = 256
-
-
-@dataclass(frozen=True)
-class FetchSettings:
-    """Everything the fetcher needs from the recipe; build with :meth:`from_recipe`."""
-
-    contact: str
-    product_token: str = "collector"
-    extra_tokens: tuple[str, ...] = ()  # [reservations] robots_tokens: their groups bind too
-    budget: Budget = field(default_factory=Budget)
-    host_budgets: Mapping[str, Budget] = field(default_factory=dict)
-    connect_timeout: float = 10.0
-    read_timeout: float = 30.0
-    download_deadline: float = 300.0
-    max_image_bytes: int = 50_000_000
-    max_page_bytes: int = 10_000_000
-    allow_addresses: tuple[str, ...] = ()
-    secret_params: tuple[str, ...] = ()
-    secret_headers: tuple[str, ...] = ("Authorization", "Cookie")
-    headers: Mapping[str, str] = field(default_factory=dict)
-    max_redirects: int = 10
-    max_total_delay: float = 900.0  # s of back-off per request before giving up
-    breaker_threshold: int = 5  # consecutive failed attempts that open a host's breaker
-    breaker_cooldown: float = 600.0  # s a host stays parked after its breaker opens
-    robots_ttl: float = ROBOTS_TTL
-    robots_retry: float = UNREACHABLE_RETRY
-    resolver: Callable[..., list] = socket.getaddrinfo
-
-    @property
-    def user_agent(self) -> str:
-        """The User-Agent header: ``collector/<version> (+<contact>)``."""
-        return f"collector/{__version__} (+{self.contact})"
-
-    @classmethod
-    def from_recipe(cls, recipe: Any, **overrides: Any) -> FetchSettings:
-        """Build settings from a :class:`collector.config.recipe.Recipe` or a recipe dict.
-
-        A dict may be the parsed TOML (``budgets.hosts`` nested) or ``Recipe.as_dict()``
-        (``"budgets.hosts"`` as a top-level key). ``overrides`` set fields directly (tests).
-        """
-        if isinstance(recipe, Mapping):
-            get = recipe.get
-            budgets = dict(get("budgets") or {})
-            hosts = budgets.pop("hosts", None) or get("budgets.hosts") or {}
-            network = dict(get("network") or {})
-            contact, token = get("contact", ""), get("product_token") or "collector"
-            extra = tuple((get("reservations") or {}).get("robots_tokens") or ())
-        else:
-            budgets = asdict(recipe.budgets)
-            hosts = dict(recipe.host_budgets)
-            network = asdict(recipe.network)
-            contact, token = recipe.contact, recipe.product_token or "collector"
-            extra = tuple(recipe.reservations.robots_tokens)
-        default, per_host = budgets_from_recipe({**budgets, "hosts": hosts})
-        values: dict[str, Any] = {
-            "contact": contact, "product_token": token, "extra_tokens": extra, "budget": default,
-            "host_budgets": per_host,
-        }
-        for key in ("connect_timeout", "read_timeout", "download_deadline", "max_image_bytes",
-                    "max_page_bytes"):
-            if key in network:
-                values[key] = network[key]
-        for key in ("allow_addresses", "secret_params", "secret_headers"):
-            if key in network:
-                values[key] = tuple(network[key])
-        if "headers" in network:
-            values["headers"] = dict(network["headers"])
-        values.update(overrides)
-        return cls(**values)
 
 
 @dataclass
@@ -192,7 +119,7 @@ class Fetcher:
     """The polite fetcher. Thread-safe: one instance serves the whole worker pool."""
 
     def __init__(self, settings: FetchSettings, ledger: Any | None, *,
-                 clock: Clock = SYSTEM_CLOCK, session: requests.Session | None = None,
+                 clock: Clock = SYSTEM_CLOCK, transport: Transport | None = None,
                  run_id: int | None = None, rng: random.Random | None = None) -> None:
         self.settings = settings
         self.ledger = ledger
@@ -202,14 +129,12 @@ class Fetcher:
         self._policies = RetryPolicies(settings.max_total_delay, self.rng, clock.sleep)
         self.budgets = HostBudgets(settings.budget, settings.host_budgets, clock=clock)
         self._allowed = parse_allow_list(settings.allow_addresses)
-        self._own_session = session is None
-        self.session = session or HopByHopSession()
-        if self._own_session:
-            adapter = requests.adapters.HTTPAdapter(pool_connections=KEPT_POOLS, pool_maxsize=10,
-                                                    max_retries=0)
-            self.session.mount("http://", adapter)
-            self.session.mount("https://", adapter)
-        self.session.trust_env = False  # no proxies from the environment: only what we check
+        # An IP-literal host's check depends on nothing but the host and the allowlist: its
+        # address, once allowed, is kept (names are resolved and checked on every request).
+        self._allowed_literals: dict[str, str] = {}
+        self._secret_names: dict[str, bool] = {}  # header name -> is_secret_header
+        self._own_transport = transport is None
+        self.transport = transport or Transport(pools=KEPT_POOLS)
         self._lock = threading.Lock()
         self._robots: dict[str, RobotsPolicy] = {}
         self._robots_locks: dict[str, threading.Lock] = {}
@@ -281,9 +206,9 @@ class Fetcher:
         return self._robots_policy(url).verdict(url, self.settings.product_token)
 
     def close(self) -> None:
-        """Close the HTTP session if this fetcher created it."""
-        if self._own_session:
-            self.session.close()
+        """Close the kept connections if this fetcher made its transport."""
+        if self._own_transport:
+            self.transport.close()
 
     # -- the pipeline --------------------------------------------------------------------------
     def _fetch(self, url: str, *, purpose: str, item_id: int | None,
@@ -301,8 +226,7 @@ class Fetcher:
                 target = transport_target(current, shown)
                 hk = host_key(current)
                 row["host"] = hk
-                check_address(target.host, target.port, self._allowed, self.settings.resolver,
-                              shown)
+                target = replace(target, address=self._checked_address(target, shown))
             except UnsafeURL as exc:
                 self._record(row, attempt=0, error=str(exc))
                 raise
@@ -322,7 +246,7 @@ class Fetcher:
                                  robots_rule=verdict.rule, error=reason)
                     raise RobotsDenied(shown, rule, reason)
             self._check_parked(hk, shown, row)
-            result = self._attempts(current, target.url, shown, hk, row, verdict, headers,
+            result = self._attempts(current, target, shown, hk, row, verdict, headers,
                                     secret_params, max_bytes, dest_dir, retry=not robots)
             location = result.headers.get("Location")
             if result.status not in REDIRECT_STATUSES or not location:
@@ -338,18 +262,19 @@ class Fetcher:
             except ValueError:
                 current = location  # malformed: transport_target refuses it with its reason
 
-    def _attempts(self, url: str, send_url: str, shown: str, hk: str, row: dict[str, Any],
+    def _attempts(self, url: str, target: Target, shown: str, hk: str, row: dict[str, Any],
                   verdict: Verdict, headers: Mapping[str, str],
                   secret_params: tuple[str, ...], max_bytes: int, dest_dir: Path | None,
                   retry: bool) -> _Result:
         budget = self.budgets.budget_for(hk)
         attempts = max(1, int(budget.max_attempts)) if retry else 1
-        secrets = secret_values(url, secret_params)
+        # Secret values in the URL: those of the secret parameters and a password.
+        secrets = secret_values(url, secret_params) if secret_params or "@" in url else []
         counter = [0]
 
         def one() -> _Result:
             counter[0] += 1
-            return self._attempt(url, send_url, shown, hk, row, verdict, headers, secrets,
+            return self._attempt(url, target, shown, hk, row, verdict, headers, secrets,
                                  max_bytes, dest_dir, counter[0], final=counter[0] >= attempts,
                                  truncate=not retry)
 
@@ -362,13 +287,13 @@ class Fetcher:
                 raise
             raise FetchError(shown, exc.reason, exc.status, exc.detail) from None
 
-    def _attempt(self, url: str, send_url: str, shown: str, hk: str, row: dict[str, Any],
+    def _attempt(self, url: str, target: Target, shown: str, hk: str, row: dict[str, Any],
                  verdict: Verdict, headers: Mapping[str, str], secrets: list[str], max_bytes: int,
                  dest_dir: Path | None, attempt: int, final: bool, truncate: bool) -> _Result:
         send_headers = {"User-Agent": self.settings.user_agent, "Accept-Encoding": "gzip"}
         send_headers.update(headers)  # recipe headers, then this request's (filled by _fetch)
         all_secrets = secrets + [part for k, v in send_headers.items()
-                                 if is_secret_header(k, self.settings.secret_headers)
+                                 if self._is_secret_header(k)
                                  for part in header_secrets(str(v)) if len(part) >= MIN_SECRET_LEN]
         base = {**row, "attempt": attempt, "robots_verdict": verdict.verdict,
                 "robots_rule": verdict.rule}
@@ -377,15 +302,15 @@ class Fetcher:
         base.update(started_at=_iso(started), waited_s=round(slot.waited, 3))
         try:
             try:
-                # send_url is the URL exactly as transport_target checked it (http_target.py)
-                resp = self.session.send(
-                    prepared_get(self.session, send_url, send_headers), stream=True,
-                    allow_redirects=False,
-                    timeout=(self.settings.connect_timeout, self.settings.read_timeout))
+                # target is the URL exactly as transport_target checked it (http_target.py)
+                # and its address the one check_address checked (no second DNS answer)
+                resp = self.transport.get(target, send_headers,
+                                          connect_timeout=self.settings.connect_timeout,
+                                          read_timeout=self.settings.read_timeout)
                 slot.answered()  # status line and headers are in: the next start counts from here
-            except requests.RequestException as exc:
-                reason = "timeout" if isinstance(exc, requests.Timeout) else "connection"
-                detail = scrub(f"{type(exc).__name__}: {exc}", all_secrets)
+            except TransportError as exc:
+                reason = "timeout" if isinstance(exc, TransportTimeout) else "connection"
+                detail = scrub(str(exc), all_secrets)
                 self._record(base, error=f"{reason}: {detail}", ended=True)
                 raise Retryable(reason, None, detail) from None
             except (ValueError, UnicodeError) as exc:
@@ -401,7 +326,7 @@ class Fetcher:
         finally:
             slot.release()
 
-    def _handle(self, resp: requests.Response, url: str, shown: str, hk: str,
+    def _handle(self, resp: Answer, url: str, shown: str, hk: str,
                 base: dict[str, Any], max_bytes: int, dest_dir: Path | None,
                 secrets: list[str], slot: Any, truncate: bool) -> _Result:
         status = resp.status_code
@@ -446,6 +371,25 @@ class Fetcher:
         self._succeeded(hk)
         return _Result(url, status, hdr, body, resp.encoding if "charset" in
                        (hdr.get("Content-Type") or "").lower() else None)
+
+    def _checked_address(self, target: Target, shown: str) -> str:
+        """The address to connect to for ``target``: its host's address, checked against the
+        allowlist (:func:`collector.urls.check_address`, UnsafeURL when refused)."""
+        known = self._allowed_literals.get(target.host)
+        if known is not None:
+            return known
+        checked = str(check_address(target.host, target.port, self._allowed,
+                                    self.settings.resolver, shown)[0])
+        if checked == target.host:  # an IP literal (a name never equals its address)
+            self._allowed_literals[checked] = checked
+        return checked
+
+    def _is_secret_header(self, name: str) -> bool:
+        known = self._secret_names.get(name)
+        if known is None:
+            known = self._secret_names[name] = is_secret_header(
+                name, self.settings.secret_headers)
+        return known
 
     # -- robots.txt ----------------------------------------------------------------------------
     def _robots_policy(self, url: str) -> RobotsPolicy:

@@ -11,24 +11,20 @@ library's connection pool does, and refuses every URL on which the readings diff
 authority holds characters that make readings differ (backslash, control characters,
 characters that change under Unicode NFKC normalisation such as a full-width ``＠``).
 
-The fetcher sends exactly :attr:`Target.url` and checks the address of :attr:`Target.host`.
-:func:`prepared_get` builds the request around that URL for ``Session.send``.
-This module is the only one besides the fetcher that imports the HTTP library.
+The fetcher sends exactly :attr:`Target.url` (through urllib3's pools,
+:mod:`collector.fetching.transport`, which read it with the same ``parse_url``) and checks
+the address of :attr:`Target.host`.
 """
 
 from __future__ import annotations
 
 import re
 import unicodedata
-from collections.abc import Iterator, Mapping
 from dataclasses import dataclass
-from typing import Any
 from urllib.parse import urlsplit
 
 import idna
-from requests import Session
 from requests.models import PreparedRequest
-from requests.structures import CaseInsensitiveDict
 from urllib3.util import parse_url
 
 from collector.errors import UnsafeURL
@@ -49,6 +45,9 @@ class Target:
     scheme: str
     host: str
     port: int
+    request_uri: str = "/"  # path and query of the request line, as urllib3 reads ``url``
+    credentials: bool = False  # the URL holds user information (``user:pass@``)
+    address: str | None = None  # the IP address the guard checked: connect there, not again
 
 
 def _refuse(url: str, why: str) -> UnsafeURL:
@@ -69,11 +68,13 @@ def _prepare(url: str) -> str:
     return str(prepared.url)
 
 
-def _library_host(url: str) -> tuple[str, int | None]:
-    """Host and port as the connection pool reads a prepared URL (urllib3's parser; requests
-    2.32+ keys its pools with ``urlparse``, which the caller compares too)."""
+def _library_host(url: str) -> tuple[str, int | None, str, bool]:
+    """Host, port, request target and whether there are credentials, as the connection pool
+    reads a prepared URL (urllib3's parser, which the transport sends with; ``urlsplit``, which
+    the caller compares too, is what requests 2.32+ keys its pools with)."""
     parsed = parse_url(url)
-    return (parsed.host or "").lower().strip("[]"), parsed.port
+    return ((parsed.host or "").lower().strip("[]"), parsed.port, parsed.request_uri,
+            parsed.auth is not None)
 
 
 def _idna(host: str) -> str:
@@ -113,10 +114,13 @@ def transport_target(url: str, shown: str | None = None) -> Target:
         seen = urlsplit(url)
         seen_host, seen_port = (seen.hostname or ""), seen.port
         prepared = _prepare(url)
-        lib_host, lib_port = _library_host(prepared)
-        again = urlsplit(prepared)
-        again_host, again_port = (again.hostname or ""), again.port
-        stable = _prepare(prepared) == prepared
+        lib_host, lib_port, request_uri, credentials = _library_host(prepared)
+        if prepared == url:  # already as sent (most URLs): the same readings as above, and
+            again_host, again_port, stable = seen_host, seen_port, True  # preparing it again
+        else:                                                 # gives it back unchanged
+            again = urlsplit(prepared)
+            again_host, again_port = (again.hostname or ""), again.port
+            stable = _prepare(prepared) == prepared
         seen_ascii = _idna(seen_host) if seen_host else ""
     except Exception as exc:  # any failure to read the URL refuses it, never a crash
         raise _refuse(label, f"not a valid URL ({type(exc).__name__}: {exc})") from None
@@ -128,44 +132,5 @@ def transport_target(url: str, shown: str | None = None) -> Target:
     if not stable:
         raise _refuse(label, "the HTTP library does not send this URL as written")
     return Target(prepared, scheme, lib_host,
-                  lib_port if lib_port is not None else DEFAULT_PORTS[scheme])
-
-
-def prepared_get(session: Session, url: str, headers: Mapping[str, str]) -> PreparedRequest:
-    """A GET of ``url`` (a :attr:`Target.url`) prepared the way ``session.get`` prepares
-    one (the session's headers under ``headers``, its cookies, hooks and auth, credentials in
-    the URL), without preparing the URL again: :func:`transport_target` already did, and
-    checked that a second preparation changes nothing. ``Session.request``'s own preparation
-    was about a third of the CPU of a request (bench/politeness.py); ``session.send`` does
-    the rest exactly as before.
-
-    Steps that cannot change a GET are skipped, each for a reason that is checked here: the
-    body (``prepare_body(None, None)`` sets no header for a GET), cookies while the session's
-    jar is empty (no Cookie header comes from an empty jar), auth when the session has none and
-    the URL holds no ``@`` (no credentials to read), hooks when the session has none. The
-    headers are merged as ``merge_setting`` merges them (a None value drops a session header)
-    without its per-call protocol checks, which were a tenth of this function's time."""
-    prepared = PreparedRequest()
-    prepared.prepare_method("GET")
-    prepared.url = url
-    merged = CaseInsensitiveDict(session.headers)
-    merged.update(headers)
-    for name in [k for k, v in merged.items() if v is None]:
-        del merged[name]
-    prepared.prepare_headers(merged)  # validates every header (no CR/LF injection)
-    if len(session.cookies):
-        prepared.prepare_cookies(session.cookies)  # read only: redirects are never resolved
-    if session.auth is not None or "@" in url:
-        prepared.prepare_auth(session.auth, url)
-    if any(session.hooks.values()):
-        prepared.prepare_hooks(session.hooks)
-    return prepared
-
-
-class HopByHopSession(Session):
-    """A requests session that never looks at redirects: the fetcher follows them itself,
-    hop by hop, through the guard and robots.txt. (A plain session parses every Location even
-    with ``allow_redirects=False``, and a malformed one raised ValueError out of ``get``.)"""
-
-    def resolve_redirects(self, *args: Any, **kwargs: Any) -> Iterator[Any]:
-        return iter(())
+                  lib_port if lib_port is not None else DEFAULT_PORTS[scheme], request_uri,
+                  credentials)
