@@ -8,6 +8,7 @@ fetcher used before), compared on what the server received.
 
 from __future__ import annotations
 
+import itertools
 import socket
 import ssl
 import threading
@@ -227,3 +228,37 @@ def test_over_tls_the_checked_address_is_verified_against_the_urls_name(
     finally:
         sender.close()
         server.close()
+
+
+def test_a_name_keeps_its_address_while_the_resolver_rotates_its_answers() -> None:
+    """A DNS server rotating two addresses (round robin) does not move the requests between
+    them: the fetcher keeps the checked address it connected to while it is among the
+    answers, so one kept connection serves them all (common practice, no source)."""
+    with LoopbackServer(CHECKED) as first, LoopbackServer("127.0.0.3", first.port) as second:
+        ports: list[int] = []
+
+        def note_port(h: Handler) -> Answer:
+            ports.append(h.client_address[1])
+            return (200, b"{}")
+
+        for server in (first, second):
+            server.route("/robots.txt", (404, b""))
+            server.prefixes["/item/"] = note_port
+        answers = [[first.host, second.host], [second.host, first.host]]
+        turns = itertools.cycle(answers)
+
+        def rotating(host: str, port: int, **kwargs: object) -> list:
+            return [(socket.AF_INET, socket.SOCK_STREAM, 6, "", (a, port)) for a in next(turns)]
+
+        settings = FetchSettings.from_recipe(
+            {"contact": "curator@example.org", "budgets": {"min_interval": 0.0},
+             "network": {"allow_addresses": [first.host, second.host]}}, resolver=rotating)
+        sender = Transport(pools=4)
+        fetcher = Fetcher(settings, None, transport=sender)
+        try:
+            for i in range(6):
+                fetcher.get_page(f"http://localhost:{first.port}/item/{i}")
+        finally:
+            sender.close()
+        assert second.hits == [] and len(first.hits) == 7  # robots.txt and six pages
+        assert len(set(ports)) == 1

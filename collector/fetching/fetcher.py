@@ -132,6 +132,7 @@ class Fetcher:
         # An IP-literal host's check depends on nothing but the host and the allowlist: its
         # address, once allowed, is kept (names are resolved and checked on every request).
         self._allowed_literals: dict[str, str] = {}
+        self._addresses: dict[str, str] = {}  # host name -> the address last connected to
         self._secret_names: dict[str, bool] = {}  # header name -> is_secret_header
         self._own_transport = transport is None
         self.transport = transport or Transport(pools=KEPT_POOLS)
@@ -373,16 +374,23 @@ class Fetcher:
                        (hdr.get("Content-Type") or "").lower() else None)
 
     def _checked_address(self, target: Target, shown: str) -> str:
-        """The address to connect to for ``target``: its host's address, checked against the
-        allowlist (:func:`collector.urls.check_address`, UnsafeURL when refused)."""
+        """The address to connect to for ``target``: one of its host's addresses, all checked
+        against the allowlist (:func:`collector.urls.check_address`, UnsafeURL when one is
+        refused). A name keeps the address it was last connected to while that is among the
+        answers, so a DNS server that rotates its answers does not cost the archive a new
+        connection per request; otherwise the resolver's first answer."""
         known = self._allowed_literals.get(target.host)
         if known is not None:
             return known
-        checked = str(check_address(target.host, target.port, self._allowed,
-                                    self.settings.resolver, shown)[0])
-        if checked == target.host:  # an IP literal (a name never equals its address)
-            self._allowed_literals[checked] = checked
-        return checked
+        checked = [str(a) for a in check_address(target.host, target.port, self._allowed,
+                                                 self.settings.resolver, shown)]
+        if checked == [target.host]:  # an IP literal (a name never equals its address)
+            self._allowed_literals[target.host] = target.host
+            return target.host
+        last = self._addresses.get(target.host)
+        chosen = last if last in checked else checked[0]
+        self._addresses[target.host] = chosen
+        return chosen
 
     def _is_secret_header(self, name: str) -> bool:
         known = self._secret_names.get(name)

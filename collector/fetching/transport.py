@@ -29,7 +29,8 @@ What changed on purpose:
 
 - the connection goes to the address the guard checked. ``check_address`` resolves a name
   just before each request; the transport then connects to that address (the first one the
-  resolver gave) instead of letting the connection resolve the name again, so a name whose
+  resolver gave, or the one it connected to before while that is still among the answers)
+  instead of letting the connection resolve the name again, so a name whose
   answer changes between the check and the connection (DNS rebinding) cannot lead the request
   elsewhere. ``Host`` names the host as in the URL; over TLS the name is still sent as SNI and
   the certificate checked against it (urllib3's ``server_hostname`` and ``assert_hostname``).
