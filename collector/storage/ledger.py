@@ -23,6 +23,7 @@ from collections.abc import Callable, Iterator
 from contextlib import contextmanager, suppress
 from datetime import UTC, datetime
 from pathlib import Path
+from types import TracebackType
 from typing import Any
 
 import sqlite_utils
@@ -50,12 +51,17 @@ def ways_out(folder: Path) -> str:
             "ledger file aside instead of deleting it.")
 
 
+# json.dumps(value, sort_keys=True, default=str), made once (json.dumps makes an encoder for
+# every call with options); encode() keeps no state between calls
+_JSON = json.JSONEncoder(sort_keys=True, default=str)
+
+
 def _encode(row: dict[str, Any]) -> dict[str, Any]:
     """JSON-encode the structured columns and booleans of a row before writing it."""
     out: dict[str, Any] = {}
     for key, value in row.items():
         if key in JSON_COLUMNS and value is not None and not isinstance(value, str):
-            value = json.dumps(value, sort_keys=True, default=str)
+            value = _JSON.encode(value)
         elif isinstance(value, bool):
             value = int(value)
         out[key] = value
@@ -72,6 +78,24 @@ def decode_row(row: dict[str, Any] | None) -> dict[str, Any] | None:
             with suppress(ValueError):
                 out[key] = json.loads(out[key])
     return out
+
+
+class _Translated:
+    """The context of :meth:`Ledger._translate`: an sqlite3 error raised inside it leaves as
+    LedgerError (a class, not a generator: it is entered several times a stored file)."""
+
+    __slots__ = ("path", "what")
+
+    def __init__(self, path: Path, what: str) -> None:
+        self.path, self.what = path, what
+
+    def __enter__(self) -> None:
+        return None
+
+    def __exit__(self, kind: type[BaseException] | None, exc: BaseException | None,
+                 tb: TracebackType | None) -> None:
+        if isinstance(exc, sqlite3.Error):
+            raise LedgerError(f"ledger {self.path}: {self.what} failed: {exc}") from exc
 
 
 class Ledger:
@@ -188,13 +212,9 @@ class Ledger:
                         {"version": version, "applied_at": utc_now()})
             return SCHEMA_VERSION
 
-    @contextmanager
-    def _translate(self, what: str) -> Iterator[None]:
+    def _translate(self, what: str) -> _Translated:
         """Translate sqlite3 errors into LedgerError once, at this edge."""
-        try:
-            yield
-        except sqlite3.Error as exc:
-            raise LedgerError(f"ledger {self.path}: {what} failed: {exc}") from exc
+        return _Translated(self.path, what)
 
     @contextmanager
     def transaction(self) -> Iterator[None]:
