@@ -23,7 +23,6 @@ from collections.abc import Callable, Iterator
 from contextlib import contextmanager, suppress
 from datetime import UTC, datetime
 from pathlib import Path
-from types import TracebackType
 from typing import Any
 
 import sqlite_utils
@@ -36,6 +35,7 @@ SCHEMA_VERSION = max(MIGRATIONS)  # the newest migration; a file records what it
 
 JSON_COLUMNS = {"options", "config", "metadata", "crop_box", "exif", "rights", "flags",
                 "effective_budget", "size_request", "colours"}
+_JSON = json.JSONEncoder(sort_keys=True, default=str)  # json.dumps's, made once (not per call)
 
 
 def utc_now() -> str:
@@ -51,17 +51,12 @@ def ways_out(folder: Path) -> str:
             "ledger file aside instead of deleting it.")
 
 
-# json.dumps(value, sort_keys=True, default=str), made once (json.dumps makes an encoder for
-# every call with options); encode() keeps no state between calls
-_JSON = json.JSONEncoder(sort_keys=True, default=str)
-
-
 def _encode(row: dict[str, Any]) -> dict[str, Any]:
     """JSON-encode the structured columns and booleans of a row before writing it."""
     out: dict[str, Any] = {}
     for key, value in row.items():
         if key in JSON_COLUMNS and value is not None and not isinstance(value, str):
-            value = _JSON.encode(value)
+            value = _JSON.encode(value)  # keeps no state between calls
         elif isinstance(value, bool):
             value = int(value)
         out[key] = value
@@ -78,24 +73,6 @@ def decode_row(row: dict[str, Any] | None) -> dict[str, Any] | None:
             with suppress(ValueError):
                 out[key] = json.loads(out[key])
     return out
-
-
-class _Translated:
-    """The context of :meth:`Ledger._translate`: an sqlite3 error raised inside it leaves as
-    LedgerError (a class, not a generator: it is entered several times a stored file)."""
-
-    __slots__ = ("path", "what")
-
-    def __init__(self, path: Path, what: str) -> None:
-        self.path, self.what = path, what
-
-    def __enter__(self) -> None:
-        return None
-
-    def __exit__(self, kind: type[BaseException] | None, exc: BaseException | None,
-                 tb: TracebackType | None) -> None:
-        if isinstance(exc, sqlite3.Error):
-            raise LedgerError(f"ledger {self.path}: {self.what} failed: {exc}") from exc
 
 
 class Ledger:
@@ -212,16 +189,21 @@ class Ledger:
                         {"version": version, "applied_at": utc_now()})
             return SCHEMA_VERSION
 
-    def _translate(self, what: str) -> _Translated:
+    @contextmanager
+    def _translate(self, what: str) -> Iterator[None]:
         """Translate sqlite3 errors into LedgerError once, at this edge."""
-        return _Translated(self.path, what)
+        try:
+            yield
+        except sqlite3.Error as exc:
+            raise LedgerError(f"ledger {self.path}: {what} failed: {exc}") from exc
 
     @contextmanager
-    def transaction(self) -> Iterator[None]:
+    def transaction(self) -> Iterator[Callable[[], bool]]:
         """Group several writes into one atomic transaction (nested blocks join the
-        outermost one: only it commits, or rolls everything back)."""
+        outermost one: only it commits, or rolls everything back). Yields whether it is still
+        open: SQLite ends one by itself after a few errors (a full disk, an I/O error)."""
         with self._lock, self._translate("transaction"), self._write():
-            yield
+            yield lambda: self._conn.in_transaction
 
     @contextmanager
     def _write(self) -> Iterator[None]:
