@@ -198,12 +198,11 @@ class Ledger:
             raise LedgerError(f"ledger {self.path}: {what} failed: {exc}") from exc
 
     @contextmanager
-    def transaction(self) -> Iterator[Callable[[], bool]]:
+    def transaction(self) -> Iterator[None]:
         """Group several writes into one atomic transaction (nested blocks join the
-        outermost one: only it commits, or rolls everything back). Yields whether it is still
-        open: SQLite ends one by itself after a few errors (a full disk, an I/O error)."""
+        outermost one: only it commits, or rolls everything back)."""
         with self._lock, self._translate("transaction"), self._write():
-            yield lambda: self._conn.in_transaction
+            yield
 
     @contextmanager
     def _write(self) -> Iterator[None]:
