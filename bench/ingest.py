@@ -12,6 +12,13 @@ Prints a table of images/s and the ingest/bare ratio. Run: .venv/bin/python benc
 [POLICY]; POLICY sets [images] enlarged (default "keep"; "flag" decodes each JPEG's luma at full
 size once more for the native-size estimate).
 
+Two more rows, measured in the same interleaved rounds, split the ingest step's CPU per file:
+  draft     the one draft decode ingest makes of a JPEG (YCbCr at 1/8 scale, every block
+            entropy-decoded: the floor of the ingest step)
+  inspect   inspect_image as ingest calls it (the draft, metadata, hashes, colour facts)
+so that inspect - draft is the inspection beyond the decode and ingest - inspect the lookups,
+the move into the store and the ledger rows (bench/ingest_parts.py breaks the inspection down).
+
 The modules ingest loads on first use (scipy's DCT for the hash, about 0.2-0.5 s) are imported
 once per run, before its threads start (collector.run.scheduling); here one file is inspected
 before the clock starts, so that N files do not each carry 1/N of a one-off cost. That first
@@ -31,6 +38,7 @@ import numpy as np
 from PIL import Image
 
 from collector.checks.images import inspect_image
+from collector.checks.phash import hash_draft
 from collector.run.gather import gather, prepared_run
 from collector.run.scheduling import Gatherer
 from collector.storage.collection import init_collection
@@ -49,6 +57,24 @@ def make_images(folder: Path, count: int) -> list[Path]:
         Image.fromarray(arr).save(path, "JPEG", quality=90)
         paths.append(path)
     return paths
+
+
+def draft_decode(paths: list[Path]) -> tuple[float, float]:
+    """(wall, CPU) seconds of the one draft decode ingest makes of each file."""
+    start, cpu = time.perf_counter(), time.process_time()
+    for p in paths:
+        with Image.open(p) as im:
+            hash_draft(im, colour=True)
+            im.load()
+    return time.perf_counter() - start, time.process_time() - cpu
+
+
+def inspection(paths: list[Path]) -> tuple[float, float]:
+    """(wall, CPU) seconds of inspect_image on each file, as ingest calls it."""
+    start, cpu = time.perf_counter(), time.process_time()
+    for p in paths:
+        inspect_image(p, full_decode=False, enlarged=POLICY["enlarged"])
+    return time.perf_counter() - start, time.process_time() - cpu
 
 
 def bare_decode(paths: list[Path]) -> tuple[float, float]:
@@ -119,10 +145,13 @@ def main() -> None:
         inspect_image(paths[0], full_decode=False, enlarged=POLICY["enlarged"])
         first = time.perf_counter() - start  # the one-off imports, not timed below
         bare, step = [float("inf")] * 2, [float("inf")] * 2  # best (wall, CPU) of each
+        draft, inspect = [float("inf")] * 2, [float("inf")] * 2
         for n in range(ROUNDS):  # interleaved, each into a fresh collection
             bare = [min(b, t) for b, t in zip(bare, bare_decode(paths), strict=True)]
             step = [min(b, t) for b, t in zip(step, ingest_step(root, paths, f"step{n}"),
                                               strict=True)]
+            draft = [min(b, t) for b, t in zip(draft, draft_decode(paths), strict=True)]
+            inspect = [min(b, t) for b, t in zip(inspect, inspection(paths), strict=True)]
         full = ingest(root, paths)
     print(f"best of {ROUNDS} interleaved rounds, one process; CPU time is this process's "
           "(on a busy machine the steadier figure)")
@@ -130,6 +159,13 @@ def main() -> None:
     print(f"{'bare':<10} {count:>7} {bare[0]:>8.2f} {count / bare[0]:>9.1f} {bare[1]:>7.2f}")
     print(f"{'ingest':<10} {count:>7} {step[0]:>8.2f} {count / step[0]:>9.1f} {step[1]:>7.2f}")
     print(f"{'local':<10} {count:>7} {full:>8.2f} {count / full:>9.1f}")
+    for name, (wall, cpu) in (("draft", draft), ("inspect", inspect)):
+        print(f"{name:<10} {count:>7} {wall:>8.2f} {count / wall:>9.1f} {cpu:>7.2f}")
+    per = 1000 / count  # CPU ms per file
+    print(f"CPU per file: bare decode {bare[1] * per:.2f} ms; ingest {step[1] * per:.2f} ms = "
+          f"draft {draft[1] * per:.2f} + rest of the inspection "
+          f"{(inspect[1] - draft[1]) * per:.2f} + lookups, store and ledger "
+          f"{(step[1] - inspect[1]) * per:.2f}")
     print(f"first file, with the one-off imports: {first * 1000:.0f} ms (not in the rows above)")
     ratio, cpu_ratio = step[0] / bare[0], step[1] / bare[1]
     verdict = 'ok' if ratio <= TARGET else 'MISSED'

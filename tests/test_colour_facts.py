@@ -157,3 +157,73 @@ def test_a_line_of_pixels_gets_facts_not_an_error(tmp_path: Path, size: tuple[in
     inspected = inspect_image(path)  # the whole inspection, as ingest calls it
     main = "#0000ff" if size == (1, 1) else "#ff0000"  # a 1x1 is the line's last pixel: blue
     assert inspected.colour is not None and inspected.colour.colours[0].hex == main
+
+
+def four_noisy_regions(width: int = 640, height: int = 480) -> tuple[Image.Image, np.ndarray]:
+    """Four flat colours in vertical bands of 26, 19, 13 and 6 64ths of the width (about
+    40/30/20/10 %; edges on whole pixels of the 64-px work picture) with Gaussian noise
+    (sd 8 per channel), and the band of every pixel."""
+    band = np.zeros((height, width), np.intp)
+    for i, edge in enumerate((26, 45, 58)):
+        band[:, edge * width // 64:] = i + 1
+    colours = np.array([(190, 60, 50), (40, 150, 70), (50, 60, 180), (230, 210, 90)])
+    noise = np.random.default_rng(3).normal(0, 8, (height, width, 3))
+    pixels = np.clip(colours[band] + noise, 0, 255).astype(np.uint8)
+    return Image.fromarray(pixels), band
+
+
+def test_sampled_kmeans_agrees_with_kmeans_over_every_pixel() -> None:
+    """The k-means runs on a sample of MAX_SAMPLES pixels of the work picture (shares then
+    counted over all of them). On a larger noisy picture its shares lie within 2 % of a
+    k-means over EVERY pixel of the full-size picture, by scipy.cluster.vq.kmeans2 (k-means++
+    start, Lloyd's rounds; the reference implementation outside this project), and each of
+    its colours within 3 CIELAB units of the matching reference centre."""
+    from scipy.cluster.vq import kmeans2
+
+    from collector.checks.colour_facts import MAX_SAMPLES
+
+    image, _ = four_noisy_regions()
+    facts = colour_facts(image, colours=4)
+    assert MAX_SAMPLES < 64 * 48  # the work picture (64x48) is sampled, not used whole
+    every = srgb_to_lab(np.asarray(image)).reshape(-1, 3).astype(np.float64)
+    centres, labels = kmeans2(every, 4, minit="++", seed=np.random.default_rng(5), iter=20)
+    reference = np.bincount(labels, minlength=4) / len(labels)
+    assert sorted(reference, reverse=True) == pytest.approx([26 / 64, 19 / 64, 13 / 64,
+                                                           6 / 64], abs=0.005)
+    assert len(facts.colours) == 4
+    for found in facts.colours:
+        nearest = int(np.argmin(((centres - np.array(found.lab)) ** 2).sum(axis=1)))
+        assert found.share == pytest.approx(reference[nearest], abs=0.02)
+        assert np.linalg.norm(centres[nearest] - np.array(found.lab)) < 3.0
+    assert len({int(np.argmin(((centres - np.array(c.lab)) ** 2).sum(axis=1)))
+                for c in facts.colours}) == 4  # one reference cluster each
+
+
+def test_colour_facts_leave_the_picture_given_untouched_and_repeat_exactly() -> None:
+    """The facts reduce a copy of the picture (the caller's keeps its size and pixels), and
+    the k-means's seeded draws are the same on every call, in any thread."""
+    from concurrent.futures import ThreadPoolExecutor
+
+    image, _ = four_noisy_regions(300, 200)
+    before = image.tobytes()
+    first = colour_facts(image)
+    assert image.size == (300, 200) and image.tobytes() == before
+    with ThreadPoolExecutor(2) as pool:
+        others = list(pool.map(lambda _: colour_facts(image), range(4)))
+    assert all(other == first for other in others)
+
+
+@pytest.mark.parametrize("seed", range(4))
+def test_the_work_picture_has_the_size_pillow_thumbnail_gives(seed: int) -> None:
+    """The picture is reduced to the size Pillow's Image.thumbnail((64, 64)) gives (the
+    aspect kept, each side rounded to the nearest aspect; Pillow handbook,
+    Image.thumbnail), without changing the caller's picture in place."""
+    from collector.checks.colour_facts import WORK_SIDE, _thumbnail_size
+
+    rng = np.random.default_rng(seed)
+    for width, height in rng.integers(1, 900, (200, 2)).tolist():
+        if max(width, height) <= WORK_SIDE:
+            continue
+        made = Image.new("RGB", (width, height))
+        made.thumbnail((WORK_SIDE, WORK_SIDE), Image.Resampling.BOX)
+        assert _thumbnail_size((width, height)) == made.size, (width, height)

@@ -13,7 +13,7 @@ from pathlib import Path
 
 import pytest
 
-from collector.errors import StoreError
+from collector.errors import PathRefused, StoreError
 from collector.storage.collection import init_collection, recover
 from collector.storage.ledger import Ledger
 from collector.storage.store import Store
@@ -90,8 +90,8 @@ CRASH_SCRIPT = textwrap.dedent("""
     os.write(fd, b" and the rest"); os.close(fd)
     import hashlib
     sha = hashlib.sha256(b"half of an image and the rest").hexdigest()
-    ledger.add_store_intent(sha, None)  # write-ahead, as collector.run.ingest does
-    store.adopt(tmp, sha, "png")
+    # write-ahead, as collector.run.ingest does: the intent committed just before the move
+    store.adopt(tmp, sha, "png", before_placing=lambda: ledger.add_store_intent(sha, None))
     if point == "before-row":
         os.kill(os.getpid(), signal.SIGKILL)
     with ledger.transaction():
@@ -119,6 +119,43 @@ def test_crash_during_store_write_leaves_no_partial_file_and_no_dangling_row(
     for sha, path in stored.items():
         assert hashlib.sha256(path.read_bytes()).hexdigest() == sha
     assert (len(rows) == 1) == (point == "after-row")
+
+
+def _temp_with(store: Store, data: bytes) -> Path:
+    fd, tmp = store.new_temp()
+    os.write(fd, data)
+    os.close(fd)
+    return tmp
+
+
+def test_the_write_ahead_hook_runs_before_the_move_and_only_for_a_new_digest(
+        tmp_path: Path) -> None:
+    """Store.adopt's ``before_placing`` (where ingest commits its store intent) runs while
+    the file is not in the store yet, and not at all when a file of the digest is already
+    stored under any extension (what Store.find says); a link in the shard folder under
+    the digest's name is refused before the hook runs, and nothing is written through it."""
+    store = Store(tmp_path / "files")
+    seen: list[Path | None] = []
+
+    def hook() -> None:
+        seen.append(store.find(ABC))
+
+    path = store.adopt(_temp_with(store, b"abc"), ABC, "png", before_placing=hook)
+    assert seen == [None] and path.read_bytes() == b"abc"
+    again = store.adopt(_temp_with(store, b"abc"), ABC, "png", before_placing=hook)
+    assert again == path and seen == [None]
+    store.adopt(_temp_with(store, b"abc"), ABC, "jpg", before_placing=hook)
+    assert seen == [None]  # the digest is stored (as .png): no intent for a second name
+    outside = tmp_path / "outside"
+    outside.mkdir()
+    empty = hashlib.sha256(b"").hexdigest()
+    shard = store.root / empty[:2] / empty[2:4]
+    shard.mkdir(parents=True)
+    (shard / f"{empty}.gif").symlink_to(outside / "planted.gif")
+    with pytest.raises(PathRefused, match="symbolic link"):
+        store.adopt(_temp_with(store, b""), empty, "png", before_placing=hook)
+    assert seen == [None] and list(outside.iterdir()) == []
+    assert not (shard / f"{empty}.png").exists()
 
 
 def test_recover_resets_items_whose_file_was_deleted(tmp_path: Path) -> None:

@@ -14,6 +14,7 @@ from collector.storage.hashindex import (
     HashIndex,
     ledger_mark,
     scan,
+    scan_turns,
 )
 from collector.storage.ledger import Ledger
 
@@ -129,6 +130,33 @@ def test_scan_finds_every_hash_within_the_threshold() -> None:
         if best <= 8:
             expected.add((row, best, through < direct))
     assert got == expected and len(got) >= 9
+
+
+@pytest.mark.parametrize("at_once", [1 << 13, 0])
+def test_scan_turns_finds_every_turn_within_the_threshold(
+        at_once: int, monkeypatch: pytest.MonkeyPatch) -> None:
+    """Each stored hash within the radius of one of the 8 turned queries is found once, at its
+    smallest distance (the first turn listed wins a tie), compared with a plain popcount over
+    every pair; a small index compared with all turns in one pass (``at_once``) and one
+    scanned turn by turn give the same answer."""
+    monkeypatch.setattr("collector.storage.hashindex._TURNS_AT_ONCE", at_once)
+    rng = random.Random(5)
+    turns = {name: rng.getrandbits(64) for name in (
+        "same", "mirror", "rotate180", "rotate180+mirror", "rotate90", "rotate270",
+        "rotate90+mirror", "rotate270+mirror")}
+    stored = [rng.getrandbits(64) for _ in range(300)]
+    for n, query in enumerate(turns.values()):  # planted neighbours of each turn
+        stored += [query ^ (1 << n), query ^ (0b111 << n), query ^ (0xFFF << n)]
+    got = scan_turns(np.array(stored, dtype=np.uint64), turns, 8, crop_keep=0)
+    expected = {}
+    for row, h in enumerate(stored):
+        for name, query in turns.items():
+            d = (h ^ query).bit_count()
+            if d <= 8 and (row not in expected or d < expected[row][0]):
+                expected[row] = (d, name)
+    assert sorted(got) == sorted((row, d, name) for row, (d, name) in expected.items())
+    assert len(got) >= 16
+    assert [d for _, d, _ in got] == sorted(d for _, d, _ in got)  # closest first
 
 
 def test_in_memory_index_keeps_its_api() -> None:

@@ -556,10 +556,14 @@ class Ingest:
         Write-ahead: the intent is committed before the file appears in the store and
         dropped in the transaction that adds its row, so recovery removes a stored file
         without a row only when an intent says it was being placed."""
-        placing = self.store.find(sha) is None
-        if placing:
+        placing = False
+
+        def intent() -> None:  # called by adopt only when no file of this digest is stored
+            nonlocal placing
+            placing = True
             self.ledger.add_store_intent(sha, item_id)
-        self.store.adopt(path, sha, facts.ext, synced=True)
+
+        self.store.adopt(path, sha, facts.ext, synced=True, before_placing=intent)
         with self.ledger.transaction():
             self.ledger.add_file({"sha256": sha, **row})
             finish()

@@ -35,6 +35,7 @@ SCHEMA_VERSION = max(MIGRATIONS)  # the newest migration; a file records what it
 
 JSON_COLUMNS = {"options", "config", "metadata", "crop_box", "exif", "rights", "flags",
                 "effective_budget", "size_request", "colours"}
+_JSON = json.JSONEncoder(sort_keys=True, default=str)  # json.dumps's, made once (not per call)
 
 
 def utc_now() -> str:
@@ -55,7 +56,7 @@ def _encode(row: dict[str, Any]) -> dict[str, Any]:
     out: dict[str, Any] = {}
     for key, value in row.items():
         if key in JSON_COLUMNS and value is not None and not isinstance(value, str):
-            value = json.dumps(value, sort_keys=True, default=str)
+            value = _JSON.encode(value)  # keeps no state between calls
         elif isinstance(value, bool):
             value = int(value)
         out[key] = value

@@ -15,7 +15,7 @@ import hashlib
 import os
 import re
 import stat
-from collections.abc import Iterator
+from collections.abc import Callable, Iterator
 from pathlib import Path
 
 from collector.errors import PathRefused, StoreError
@@ -78,14 +78,22 @@ class Store:
         except OSError as exc:
             raise _store_error(exc, "creating a temp file") from exc
 
-    def adopt(self, tmp_path: Path, sha256: str, ext: str, *, synced: bool = False) -> Path:
+    def adopt(self, tmp_path: Path, sha256: str, ext: str, *, synced: bool = False,
+              before_placing: Callable[[], None] | None = None) -> Path:
         """Move a complete temp file into place (fsynced here unless the writer already did:
         ``synced``). An existing file is kept as it is. The shard folder is opened without
         following links and the rename goes into that descriptor, so a link planted at
-        ``files/ab`` or ``files/ab/cd`` never receives the file."""
+        ``files/ab`` or ``files/ab/cd`` never receives the file.
+
+        ``before_placing`` is called just before the move, and only when no file of this
+        digest is stored yet under any extension (what :meth:`find` would say): where a
+        caller commits its write-ahead intent, found out from the one opening of the shard
+        folder (no second walk down ``files/ab/cd``)."""
         target = self.path_for(sha256, ext)
         try:
             with own_folder_fd(self._base, target.parent, create=True) as shard:
+                if before_placing is not None and not self._stored_in(shard, target):
+                    before_placing()
                 try:
                     info = os.stat(target.name, dir_fd=shard, follow_symlinks=False)
                 except FileNotFoundError:
@@ -110,6 +118,19 @@ class Store:
                 tmp_path.unlink(missing_ok=True)
             raise
         return target
+
+    @staticmethod
+    def _stored_in(shard: int, target: Path) -> bool:
+        """Whether the shard folder (a descriptor) holds a file of ``target``'s digest under
+        any extension; a link there is refused, as :meth:`find` refuses it."""
+        prefix = target.name.split(".", 1)[0] + "."
+        with os.scandir(shard) as entries:
+            for entry in entries:
+                if entry.name.startswith(prefix):
+                    if entry.is_symlink():
+                        raise link_refused(target.with_name(entry.name))
+                    return True
+        return False
 
     def put_bytes(self, data: bytes, ext: str) -> tuple[str, Path]:
         """Store bytes (e.g. a crop); returns (sha256, path)."""
