@@ -13,15 +13,13 @@ it was being placed.
 from __future__ import annotations
 
 import contextlib
-import errno
 import hashlib
 import os
-import stat
 import threading
 from collections.abc import Callable, Iterator, Sequence
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Any, BinaryIO
+from typing import Any
 
 from collector.checks.conditions import compile_condition, item_view
 from collector.checks.images import ImageFacts, inspect_image
@@ -46,6 +44,7 @@ from collector.storage.collection import Collection
 from collector.storage.hashindex import HashIndex
 from collector.storage.ledger import Ledger
 from collector.storage.ledger_repair import RECOVERED_FLAG
+from collector.storage.safe_paths import NotARegularFile, open_regular
 
 # The archive itself withdrew the record (e.g. an OAI-PMH deleted record): not the curator's
 # withdrawal; the item keeps its file and provenance.
@@ -73,26 +72,6 @@ class Job:
     url: str
     spdx_id: str | None
     secret_params: tuple[str, ...] = ()
-
-
-class NotARegularFile(OSError):
-    """A local file turned out to be a FIFO, socket, device or folder when it was opened."""
-
-
-def open_regular(path: Path) -> BinaryIO:
-    """Open a local file for reading only if it is a regular file: opened non-blocking (a
-    FIFO would otherwise block until a writer comes) and checked with fstat before any read."""
-    fd = os.open(path, os.O_RDONLY | os.O_NONBLOCK)
-    try:
-        mode = os.fstat(fd).st_mode
-        if not stat.S_ISREG(mode):
-            raise NotARegularFile(errno.EINVAL, "not a regular file (FIFO, socket, device or "
-                                                "folder); not read", str(path))
-        os.set_blocking(fd, True)
-        return os.fdopen(fd, "rb")
-    except BaseException:
-        os.close(fd)
-        raise
 
 
 def _explained(row: dict[str, Any] | None) -> bool:

@@ -17,6 +17,9 @@ writes, truncates, renames into or deletes below a collection folder goes throug
 A link (or a folder where a file belongs, or the reverse) is refused with
 :class:`~collector.errors.PathRefused` (exit 2) naming the path. The collection folder itself
 (the path the user gives) may be a link: that is the user's choice.
+
+Files read from outside (a scan folder's) are opened with :func:`open_regular`: only a
+regular file is read, so a FIFO or device never blocks or feeds a run.
 """
 
 from __future__ import annotations
@@ -28,6 +31,7 @@ import stat
 import tempfile
 from collections.abc import Iterator
 from pathlib import Path
+from typing import BinaryIO
 
 from collector.errors import PathRefused
 
@@ -248,3 +252,23 @@ def refuse_ledger_links(path: Path) -> None:
     follow it and write through it."""
     for candidate in (path, *(path.with_name(path.name + s) for s in LEDGER_SIDECARS)):
         refuse_link(candidate)
+
+
+class NotARegularFile(OSError):
+    """A local file turned out to be a FIFO, socket, device or folder when it was opened."""
+
+
+def open_regular(path: Path) -> BinaryIO:
+    """Open a local file for reading only if it is a regular file: opened non-blocking (a
+    FIFO would otherwise block until a writer comes) and checked with fstat before any read."""
+    fd = os.open(path, os.O_RDONLY | os.O_NONBLOCK)
+    try:
+        mode = os.fstat(fd).st_mode
+        if not stat.S_ISREG(mode):
+            raise NotARegularFile(errno.EINVAL, "not a regular file (FIFO, socket, device or "
+                                                "folder); not read", str(path))
+        os.set_blocking(fd, True)
+        return os.fdopen(fd, "rb")
+    except BaseException:
+        os.close(fd)
+        raise
