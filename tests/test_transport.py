@@ -48,7 +48,7 @@ def transport() -> Iterator[Transport]:
 
 def _get(transport: Transport, url: str, headers: dict[str, str] | None = None,
          read_timeout: float = 10.0, address: str | None = None) -> tuple[int, bytes]:
-    target = replace(transport_target(url), address=address)
+    target = replace(transport_target(url), addresses=(address,) if address else ())
     with transport.get(target, HEADERS if headers is None else headers,
                        connect_timeout=5.0, read_timeout=read_timeout) as answer:
         return answer.status_code, answer.raw.read(decode_content=True)
@@ -262,3 +262,45 @@ def test_a_name_keeps_its_address_while_the_resolver_rotates_its_answers() -> No
             sender.close()
         assert second.hits == [] and len(first.hits) == 7  # robots.txt and six pages
         assert len(set(ports)) == 1
+
+
+def test_an_address_that_refuses_is_passed_over_for_the_next_checked_one() -> None:
+    """The resolver answers 127.0.0.3 first, where nothing listens, then 127.0.0.2: the
+    request goes to 127.0.0.2 at once, as socket.create_connection tries a name's addresses in
+    turn (nothing was sent to the first), and later requests start there."""
+    with LoopbackServer(CHECKED) as server:
+        server.route("/robots.txt", (404, b""))
+        server.fallback = (200, b"{}")
+
+        def refusing_first(host: str, port: int, **kwargs: object) -> list:
+            return [(socket.AF_INET, socket.SOCK_STREAM, 6, "", (a, port))
+                    for a in ("127.0.0.3", CHECKED)]
+
+        settings = FetchSettings.from_recipe(
+            {"contact": "curator@example.org", "budgets": {"min_interval": 0.0},
+             "network": {"allow_addresses": ["127.0.0.2", "127.0.0.3"]}},
+            resolver=refusing_first)
+        sender = Transport(pools=4)
+        fetcher = Fetcher(settings, None, transport=sender)
+        try:
+            for i in range(3):
+                assert fetcher.get_page(f"http://localhost:{server.port}/p/{i}").status == 200
+            order = fetcher._checked_addresses(
+                transport_target(f"http://localhost:{server.port}/"), "")
+        finally:
+            sender.close()
+        assert server.paths() == ["/robots.txt", "/p/0", "/p/1", "/p/2"]
+        assert order == (CHECKED, "127.0.0.3")
+
+
+def test_when_every_checked_address_refuses_the_error_names_them(transport: Transport) -> None:
+    """No checked address accepts: one TransportError (not a timeout) naming each tried."""
+    with socket.socket() as probe:
+        probe.bind(("127.0.0.1", 0))
+        port = probe.getsockname()[1]
+    target = replace(transport_target(f"http://localhost:{port}/x"),
+                     addresses=("127.0.0.3", "127.0.0.4"))
+    with pytest.raises(TransportError) as err:
+        transport.get(target, HEADERS, connect_timeout=5.0, read_timeout=5.0)
+    assert not isinstance(err.value, TransportTimeout)
+    assert "tried 127.0.0.3, 127.0.0.4" in str(err.value)

@@ -17,7 +17,7 @@ Bodies are streamed with a byte cap on decoded bytes and an overall deadline
 Requests are sent by :mod:`collector.fetching.transport` (urllib3's pools, used directly).
 
 DNS rebinding: the address check resolves the name just before each request, and the
-transport connects to the address that was checked, never to a second answer for the name.
+transport connects to the addresses that were checked, never to a second answer for the name.
 """
 
 from __future__ import annotations
@@ -131,7 +131,7 @@ class Fetcher:
         self._allowed = parse_allow_list(settings.allow_addresses)
         # An IP-literal host's check depends on nothing but the host and the allowlist: its
         # address, once allowed, is kept (names are resolved and checked on every request).
-        self._allowed_literals: dict[str, str] = {}
+        self._allowed_literals: dict[str, tuple[str, ...]] = {}
         self._addresses: dict[str, str] = {}  # host name -> the address last connected to
         self._secret_names: dict[str, bool] = {}  # header name -> is_secret_header
         self._own_transport = transport is None
@@ -227,7 +227,7 @@ class Fetcher:
                 target = transport_target(current, shown)
                 hk = host_key(current)
                 row["host"] = hk
-                target = replace(target, address=self._checked_address(target, shown))
+                target = replace(target, addresses=self._checked_addresses(target, shown))
             except UnsafeURL as exc:
                 self._record(row, attempt=0, error=str(exc))
                 raise
@@ -309,6 +309,8 @@ class Fetcher:
                                           connect_timeout=self.settings.connect_timeout,
                                           read_timeout=self.settings.read_timeout)
                 slot.answered()  # status line and headers are in: the next start counts from here
+                if resp.address is not None:
+                    self._addresses[target.host] = resp.address
             except TransportError as exc:
                 reason = "timeout" if isinstance(exc, TransportTimeout) else "connection"
                 detail = scrub(str(exc), all_secrets)
@@ -373,24 +375,25 @@ class Fetcher:
         return _Result(url, status, hdr, body, resp.encoding if "charset" in
                        (hdr.get("Content-Type") or "").lower() else None)
 
-    def _checked_address(self, target: Target, shown: str) -> str:
-        """The address to connect to for ``target``: one of its host's addresses, all checked
-        against the allowlist (:func:`collector.urls.check_address`, UnsafeURL when one is
-        refused). A name keeps the address it was last connected to while that is among the
-        answers, so a DNS server that rotates its answers does not cost the archive a new
-        connection per request; otherwise the resolver's first answer."""
+    def _checked_addresses(self, target: Target, shown: str) -> tuple[str, ...]:
+        """The addresses to connect to for ``target``, in the order to try: its host's
+        addresses, all checked against the allowlist (:func:`collector.urls.check_address`,
+        UnsafeURL when one is refused), in the resolver's order, but the one last connected
+        to first while it is among them (a DNS server rotating its answers does not cost the
+        archive a new connection per request; robots.txt goes where the page will go)."""
         known = self._allowed_literals.get(target.host)
         if known is not None:
             return known
-        checked = [str(a) for a in check_address(target.host, target.port, self._allowed,
-                                                 self.settings.resolver, shown)]
-        if checked == [target.host]:  # an IP literal (a name never equals its address)
-            self._allowed_literals[target.host] = target.host
-            return target.host
+        checked = tuple(str(a) for a in check_address(target.host, target.port, self._allowed,
+                                                      self.settings.resolver, shown))
+        if checked == (target.host,):  # an IP literal (a name never equals its address)
+            self._allowed_literals[target.host] = checked
+            return checked
         last = self._addresses.get(target.host)
-        chosen = last if last in checked else checked[0]
-        self._addresses[target.host] = chosen
-        return chosen
+        if last in checked:
+            return (last, *(a for a in checked if a != last))
+        self._addresses[target.host] = checked[0]  # until an answer says which one took it
+        return checked
 
     def _is_secret_header(self, name: str) -> bool:
         known = self._secret_names.get(name)

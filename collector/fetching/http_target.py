@@ -47,7 +47,9 @@ class Target:
     port: int
     request_uri: str = "/"  # path and query of the request line, as urllib3 reads ``url``
     credentials: bool = False  # the URL holds user information (``user:pass@``)
-    address: str | None = None  # the IP address the guard checked: connect there, not again
+    # The IP addresses the guard checked, in the order to try: connect there, never to a second
+    # DNS answer (empty: connect to ``host`` as it is).
+    addresses: tuple[str, ...] = ()
 
 
 def _refuse(url: str, why: str) -> UnsafeURL:

@@ -27,10 +27,11 @@ What stays as it was under requests:
 
 What changed on purpose:
 
-- the connection goes to the address the guard checked. ``check_address`` resolves a name
-  just before each request; the transport then connects to that address (the first one the
-  resolver gave, or the one it connected to before while that is still among the answers)
-  instead of letting the connection resolve the name again, so a name whose
+- the connection goes to an address the guard checked. ``check_address`` resolves a name
+  just before each request; the transport then connects to those addresses, in the fetcher's
+  order, each in turn while connecting fails (as ``socket.create_connection`` tries a name's
+  addresses; nothing has been sent then), instead of letting the connection resolve the name
+  again, so a name whose
   answer changes between the check and the connection (DNS rebinding) cannot lead the request
   elsewhere. ``Host`` names the host as in the URL; over TLS the name is still sent as SNI and
   the certificate checked against it (urllib3's ``server_hostname`` and ``assert_hostname``).
@@ -50,8 +51,8 @@ import certifi
 import urllib3
 from requests.structures import CaseInsensitiveDict
 from requests.utils import check_header_validity, get_auth_from_url, get_encoding_from_headers
+from urllib3.exceptions import ConnectTimeoutError, NewConnectionError
 from urllib3.exceptions import HTTPError as Urllib3Error
-from urllib3.exceptions import NewConnectionError
 from urllib3.exceptions import TimeoutError as Urllib3Timeout
 from urllib3.util import make_headers
 
@@ -77,10 +78,11 @@ class Answer:
     to its pool for the next request; one left unread closes the connection.
     """
 
-    __slots__ = ("headers", "raw", "status_code")
+    __slots__ = ("address", "headers", "raw", "status_code")
 
-    def __init__(self, raw: urllib3.BaseHTTPResponse) -> None:
+    def __init__(self, raw: urllib3.BaseHTTPResponse, address: str | None = None) -> None:
         self.raw = raw
+        self.address = address  # the checked address it came from (None: the host itself)
         self.status_code = raw.status
         self.headers: CaseInsensitiveDict[str] = CaseInsensitiveDict(raw.headers)
 
@@ -114,8 +116,9 @@ class Transport:
             read_timeout: float) -> Answer:
         """Send a GET of ``target`` (made and checked by :func:`http_target.transport_target`:
         its host, port and request line exactly as urllib3 reads its URL) with ``headers`` and
-        return its answer, body unread. The connection goes to ``target.address`` (the IP
-        address the guard checked for ``target.host``) when it is set.
+        return its answer, body unread. The connection goes to ``target.addresses`` (the IP
+        addresses the guard checked for ``target.host``) when there are any: the first one
+        that accepts a connection.
 
         Raises :class:`TransportTimeout` or :class:`TransportError` when no answer came, and
         ``ValueError`` for a header that cannot be sent (a CR or LF in it, a leading space)."""
@@ -128,25 +131,31 @@ class Transport:
                     basic_auth=f"{user}:{password}")["authorization"]
         for item in sent.items():
             check_header_validity(item)  # raises requests' InvalidHeader, a ValueError
-        pool = self._pool(target, sent)
-        try:
-            raw = pool.urlopen(
-                "GET", target.request_uri, headers=sent, redirect=False,
-                assert_same_host=False, preload_content=False, decode_content=False,
-                retries=False, timeout=urllib3.Timeout(connect=connect_timeout,
-                                                       read=read_timeout))
-        except NewConnectionError as exc:  # a subclass of urllib3's ConnectTimeoutError
-            raise TransportError(f"{type(exc).__name__}: {exc}") from None
-        except Urllib3Timeout as exc:
-            raise TransportTimeout(f"{type(exc).__name__}: {exc}") from None
-        except (Urllib3Error, OSError) as exc:
-            raise TransportError(f"{type(exc).__name__}: {exc}") from None
-        return Answer(raw)
+        timeout = urllib3.Timeout(connect=connect_timeout, read=read_timeout)
+        addresses: tuple[str | None, ...] = target.addresses or (None,)
+        for n, address in enumerate(addresses):
+            try:
+                raw = self._pool(target, address, sent).urlopen(
+                    "GET", target.request_uri, headers=sent, redirect=False,
+                    assert_same_host=False, preload_content=False, decode_content=False,
+                    retries=False, timeout=timeout)
+            except ConnectTimeoutError as exc:  # NewConnectionError too: nothing was sent
+                if n + 1 < len(addresses):
+                    continue
+                tried = f" (tried {', '.join(map(str, addresses))})" if n else ""
+                kind = TransportError if isinstance(exc, NewConnectionError) else TransportTimeout
+                raise kind(f"{type(exc).__name__}: {exc}{tried}") from None
+            except Urllib3Timeout as exc:
+                raise TransportTimeout(f"{type(exc).__name__}: {exc}") from None
+            except (Urllib3Error, OSError) as exc:
+                raise TransportError(f"{type(exc).__name__}: {exc}") from None
+            return Answer(raw, address)
+        raise AssertionError("unreachable: the loop returns or raises")
 
-    def _pool(self, target: Target, sent: dict[str, str]) -> urllib3.HTTPConnectionPool:
-        """The pool for ``target``, connecting to its address when that is not the host itself
+    def _pool(self, target: Target, address: str | None,
+              sent: dict[str, str]) -> urllib3.HTTPConnectionPool:
+        """The pool for ``target``, connecting to ``address`` when that is not the host itself
         (then ``sent`` gets the ``Host`` header the URL's host would have given)."""
-        address = target.address
         if address is None or address == target.host:
             return self._manager.connection_from_host(target.host, target.port, target.scheme)
         default = 443 if target.scheme == "https" else 80
