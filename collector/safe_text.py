@@ -7,10 +7,18 @@ override can make text read backwards (Unicode TR 9 §2, explicit directional fo
 characters). In a spreadsheet, a cell that starts with ``=``, ``+``, ``-``, ``@``, a tab or a
 carriage return is run as a formula (OWASP "CSV Injection": prefix such cells with a single
 quote). The ledger keeps the raw text; only what is shown or exported is changed.
+
+One change is made where text enters collector, before anything keeps it: a surrogate code
+point (U+D800..U+DFFF) is no Unicode scalar value, so no UTF can encode it (Unicode 15.0
+§3.9 D76 and D92; RFC 3629 §3), yet JSON's ``"\\ud800"`` escape makes one (RFC 8259 §8.2:
+such strings are allowed, their behaviour unpredictable). :func:`valid_unicode` replaces each
+with U+FFFD REPLACEMENT CHARACTER, so the ledger (UTF-8), the exports and the terminal never
+meet one.
 """
 
 from __future__ import annotations
 
+import json
 import re
 from typing import Any
 
@@ -21,6 +29,42 @@ _UNSAFE_ANY = re.compile(f"[\x00-\x1f{_DEL_C1_BIDI}]")
 _UNSAFE_BUT_NEWLINE = re.compile(f"[\x00-\x09\x0b-\x1f{_DEL_C1_BIDI}]")
 # OWASP CSV Injection: the characters that make a spreadsheet read a cell as a formula.
 FORMULA_STARTS = ("=", "+", "-", "@", "\t", "\r")
+# Surrogate code points: in a Python str they are never part of valid Unicode text (a JSON
+# surrogate pair is decoded to the one character it encodes).
+_SURROGATE = re.compile("[\ud800-\udfff]")
+REPLACEMENT = "\ufffd"
+
+
+def valid_unicode(value: Any) -> tuple[Any, bool]:
+    """``value`` with every surrogate code point replaced by U+FFFD, and whether there was one.
+
+    Strings are cleaned; lists, tuples and dicts (keys too) are cleaned through their JSON
+    form, which is what the ledger keeps of them (tuples come back as lists; two keys that
+    differ only in their surrogates both stay, the later one numbered: ``"a\ufffd (2)"``);
+    other values are returned as they are.
+    """
+    if isinstance(value, str):
+        if _SURROGATE.search(value) is None:
+            return value, False
+        return _SURROGATE.sub(REPLACEMENT, value), True
+    if not isinstance(value, list | tuple | dict):
+        return value, False
+    text = json.dumps(value, ensure_ascii=False, default=str)
+    if _SURROGATE.search(text) is None:
+        return value, False
+    return json.loads(_SURROGATE.sub(REPLACEMENT, text), object_pairs_hook=_every_key), True
+
+
+def _every_key(pairs: list[tuple[str, Any]]) -> dict[str, Any]:
+    """A JSON object whose repeated keys (made alike by the replacement) are all kept."""
+    out: dict[str, Any] = {}
+    for key, value in pairs:
+        name, n = key, 1
+        while name in out:
+            n += 1
+            name = f"{key} ({n})"
+        out[name] = value
+    return out
 
 
 def _escaped(match: re.Match[str]) -> str:

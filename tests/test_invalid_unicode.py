@@ -1,0 +1,191 @@
+"""Text that is not valid Unicode never stops a source: a lone surrogate in a listing.
+
+JSON's ``"\\ud800"`` escape is valid JSON syntax whose string holds a lone surrogate (RFC 8259
+§8.2: "the behavior of software that receives JSON texts containing such values is
+unpredictable"). A surrogate code point is no Unicode scalar value, so UTF-8 cannot encode it
+(Unicode 15.0 §3.9 D76 and D92; RFC 3629 §3: from memory). collector replaces each with
+U+FFFD REPLACEMENT CHARACTER where candidates leave their source kind, names the fields in the
+item's metadata (``invalid_unicode``), leaves one note per source and run, and never requests
+an image URL that held one (``unsafe_url``). The ledger, the exports and ``trace`` never meet
+one afterwards.
+"""
+
+from __future__ import annotations
+
+import json
+import re
+from collections.abc import Iterator
+from pathlib import Path
+
+import pytest
+from hypothesis import HealthCheck, given, settings
+from hypothesis import strategies as st
+from support.collections import one_listing_recipe, serve_leaves
+from support.server import LoopbackServer
+from typer.testing import CliRunner
+
+from collector.cli import app
+from collector.exports.datasheet import export_datasheet
+from collector.run.gather import gather
+from collector.safe_text import valid_unicode
+from collector.sources.base import Candidate, capped_json, valid_candidate
+from collector.storage.collection import Collection, init_collection
+
+SURROGATE = re.compile("[\ud800-\udfff]")
+FFFD = "\ufffd"  # U+FFFD REPLACEMENT CHARACTER (Unicode 15.0 §3.9, U+FFFD substitution)
+
+
+def _listing(server: LoopbackServer) -> list[dict[str, object]]:
+    """Five leaves; the middle ones hold lone surrogates in one field each (JSON escapes on
+    the wire: json.dumps writes "\\ud800" for them, as a hostile server would)."""
+    items: list[dict[str, object]] = list(serve_leaves(server, 5))
+    items[1]["title"] = "Leaf \ud800 one"
+    items[1]["creator"] = "Ann \udfff Example"
+    items[2]["id"] = "leaf-\udbff"
+    items[2]["licence"] = "CC0-1.0 \ud83d"
+    items[3]["note \udc00"] = ["deep", {"x": "\ud800\ud800"}]
+    items[4]["image"] = server.url("/img/4\udc00.png")
+    return items
+
+
+@pytest.fixture(scope="module")
+def gathered(tmp_path_factory: pytest.TempPathFactory) -> Iterator[tuple[Collection, list]]:
+    """One gather over the listing (twice: a rerun must finish too), the server's hits."""
+    root = tmp_path_factory.mktemp("unicode") / "col"
+    with LoopbackServer("127.0.0.1") as server:
+        body = json.dumps({"results": _listing(server)}).encode()
+        assert b"\\ud800" in body  # the lone surrogate travels as a JSON escape
+        server.route("/api", (200, body, {"Content-Type": "application/json"}))
+        col = init_collection(root, contact="x@example.org")
+        recipe = one_listing_recipe(server.url("/api"), min_interval=0.0)
+        col.recipe_path.write_text(recipe + 'creator = "creator"\n')
+        first = gather(col)
+        second = gather(col)
+        yield col, [first, second, list(server.hits)]
+
+
+def test_a_listing_with_lone_surrogates_finishes_and_admits_every_item(gathered) -> None:
+    """The run (and every rerun) finishes; the items are stored as usual, with U+FFFD where
+    the surrogates were and the fields named in their metadata."""
+    col, (first, second, _hits) = gathered
+    assert first.outcome == "finished" and second.outcome == "finished"
+    with col.ledger(readonly=True) as ledger:
+        rows = {r["source_key"]: r for r in ledger.query("SELECT * FROM items")}
+    assert set(rows) == {"0", "1", f"leaf-{FFFD}", "3", "4"}
+    assert rows["1"]["title"] == f"Leaf {FFFD} one"
+    assert rows["1"]["creator"] == f"Ann {FFFD} Example"
+    assert rows[f"leaf-{FFFD}"]["licence_raw"] == f"CC0-1.0 {FFFD}"
+    for key in ("0", "1", f"leaf-{FFFD}", "3"):
+        assert rows[key]["state"] == "stored", rows[key]
+    notes = {key: json.loads(rows[key]["metadata"]).get("invalid_unicode") for key in rows}
+    assert notes["0"] is None
+    assert set(notes["1"]) >= {"title", "creator"}
+    assert set(notes[f"leaf-{FFFD}"]) >= {"source_key", "licence_raw"}
+    assert notes["3"] == ["metadata"]
+    assert json.loads(rows["3"]["metadata"])["item"][f"note {FFFD}"] == [
+        "deep", {"x": FFFD * 2}]
+
+
+def test_an_image_url_holding_a_lone_surrogate_fails_as_unsafe_url_unrequested(
+        gathered) -> None:
+    """Item 4's image URL cannot be sent (RFC 3986 §2.5 percent-encodes UTF-8 octets, and a
+    surrogate has none): failed / unsafe_url with a clear detail; no request for it or for the
+    U+FFFD spelling reached the server."""
+    col, (_first, _second, hits) = gathered
+    with col.ledger(readonly=True) as ledger:
+        row = ledger.query("SELECT * FROM items WHERE source_key = '4'")[0]
+        notes = ledger.query("SELECT kind, message FROM notes WHERE kind = 'invalid_unicode'")
+    assert (row["state"], row["reason"]) == ("failed", "unsafe_url")
+    assert "not valid Unicode" in row["detail"] and "not requested" in row["detail"]
+    assert row["image_url"].endswith(f"/img/4{FFFD}.png")
+    assert not [h for h in hits if h.path.startswith("/img/4")]
+    assert len(notes) == 2  # one per source and run (two runs)
+    assert "U+FFFD" in notes[0]["message"]
+
+
+def test_no_lone_surrogate_reaches_the_ledger_or_the_exports(gathered, tmp_path: Path) -> None:
+    """Every text column of the ledger is valid UTF-8 (SQLite hands it back), and the datasheet
+    (HTML, Markdown), Croissant JSON-LD, the attribution list and ``trace --json`` of a stored
+    file are written and read back as strict UTF-8 without a surrogate."""
+    col, _ = gathered
+    with col.ledger(readonly=True) as ledger:
+        for table in ("items", "notes", "fetches"):
+            for row in ledger.query(f"SELECT * FROM {table}"):
+                for value in row.values():
+                    assert not (isinstance(value, str) and SURROGATE.search(value)), value
+        sha = ledger.query("SELECT file_sha256 FROM items WHERE source_key = '1'")[0][
+            "file_sha256"]
+    out = tmp_path / "sheet"
+    export_datasheet(col.root, out=out)
+    written = [p for p in out.rglob("*") if p.suffix in (".html", ".md", ".json", ".csv")]
+    assert {"datasheet.html", "datasheet.md", "croissant.json"} <= {p.name for p in written}
+    assert any("attribution" in p.name for p in written)
+    for path in written:
+        text = path.read_bytes().decode("utf-8")  # strict: raises on an encoded surrogate
+        assert not SURROGATE.search(text)
+    assert any(f"Leaf {FFFD} one" in p.read_text("utf-8") for p in written
+               if "attribution" in p.name)
+    stored = col.store.find(sha)
+    assert stored is not None
+    for shown in ("--json", "--csv", None):
+        args = ["trace", str(stored), "--in", str(col.root), *([shown] if shown else [])]
+        result = CliRunner().invoke(app, args)
+        assert result.exit_code == 0, result.output
+        assert not SURROGATE.search(result.output)
+        if shown == "--json":
+            origin = json.loads(result.output)["results"][0]["file"]["origin"]
+            assert origin["title"] == f"Leaf {FFFD} one"
+        else:
+            assert f"Leaf {FFFD} one" in result.output
+
+
+def test_capped_json_measures_a_lone_surrogate_instead_of_raising() -> None:
+    """The listing's raw item is capped by its UTF-8 size; a lone surrogate counts as the
+    three bytes "surrogatepass" gives it (the defect: UnicodeEncodeError out of the listing)."""
+    assert capped_json({"t": "\ud800"}) == {"t": "\ud800"}
+    capped = capped_json({"t": "\ud800" * 10_000}, limit=100)
+    assert capped["truncated"] is True and len(capped["json_prefix"].encode()) <= 100
+
+
+text_with_surrogates = st.text(alphabet=st.characters(min_codepoint=0, max_codepoint=0xFFFF),
+                               max_size=40)
+json_values = st.recursive(
+    st.none() | st.booleans() | st.integers() | text_with_surrogates,
+    lambda inner: st.lists(inner, max_size=4)
+    | st.dictionaries(text_with_surrogates, inner, max_size=4),
+    max_leaves=12)
+
+
+def _leaves(value: object) -> list:
+    """Every value inside nested lists and dicts (dict keys left out), as comparable text."""
+    if isinstance(value, dict):
+        return [leaf for v in value.values() for leaf in _leaves(v)]
+    if isinstance(value, list):
+        return [leaf for v in value for leaf in _leaves(v)]
+    return [value if isinstance(value, str) else repr(value)]
+
+
+@settings(max_examples=200, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+@given(title=text_with_surrogates, metadata=st.dictionaries(text_with_surrogates, json_values,
+                                                            max_size=3))
+def test_a_cleaned_candidate_always_encodes_as_utf8(title: str, metadata: dict) -> None:
+    """Whatever text a source hands over, the candidate that leaves it encodes as strict UTF-8
+    (text and JSON), changes nothing but surrogates (each one U+FFFD) and names exactly the
+    fields that held one."""
+    c = valid_candidate(Candidate(source_key="k", title=title, metadata=metadata,
+                                  image_url="http://127.0.0.1/a.png"))
+    c.title.encode("utf-8")  # strict: raises UnicodeEncodeError on a surrogate
+    json.dumps(c.metadata, ensure_ascii=False).encode("utf-8")
+    assert c.title == SURROGATE.sub(FFFD, title)
+    kept = {k: v for k, v in c.metadata.items() if k != "invalid_unicode"}
+    assert len(kept) == len(metadata)  # keys made alike by the replacement are all kept
+    assert sorted(_leaves(kept)) == sorted(
+        SURROGATE.sub(FFFD, leaf) if isinstance(leaf, str) else leaf
+        for leaf in _leaves(metadata))
+    had = bool(SURROGATE.search(title))
+    assert ("title" in c.not_unicode) == had
+    assert ("metadata" in c.not_unicode) == bool(
+        SURROGATE.search(json.dumps(metadata, ensure_ascii=False)))
+    assert "image_url" not in c.not_unicode
+    assert valid_unicode(c.title) == (c.title, False)  # cleaning twice changes nothing
+
