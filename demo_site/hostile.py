@@ -611,6 +611,10 @@ CASES: list[Case] = [
          why="every document is read once; its one canvas is stored"),
     Case("iiif-collection-cycle", "IIIF collection cycle (A -> B -> A)", "iiif",
          hostile_iiif.START, hostile_iiif.collection_cycle, reason="loop"),
+    Case("iiif-lone-surrogates", "IIIF manifest with lone surrogates in its labels and a "
+         "member id", "iiif", hostile_iiif.START, hostile_iiif.surrogate_labels,
+         reason="invalid_unicode",
+         why="labels get U+FFFD and a note; the member whose URL cannot be sent is a note"),
     Case("iiif-billion-pixels", "IIIF info.json claiming 10^9 x 10^9 pixels", "iiif",
          hostile_iiif.START, hostile_iiif.billion_pixels, reason=None,
          why="only the target size is asked for (!2048,2048), never the full size"),

@@ -12,7 +12,7 @@ from collections.abc import Callable, Iterable, Iterator, Mapping
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, Protocol
-from urllib.parse import parse_qsl, urlencode, urljoin, urlsplit, urlunsplit
+from urllib.parse import parse_qsl, urljoin, urlsplit, urlunsplit
 
 from collector import urls
 from collector.errors import FetchError, RecipeProblem, SourceError
@@ -295,7 +295,8 @@ def merge_query(url: str, params: Mapping[str, str]) -> str:
     query = parse_qsl(parts.query, keep_blank_values=True)
     present = {k for k, _ in query}
     query += [(k, v) for k, v in params.items() if k not in present]
-    return urlunsplit((parts.scheme, parts.netloc, parts.path, urlencode(query), parts.fragment))
+    return urlunsplit((parts.scheme, parts.netloc, parts.path, urls.encode_query(query),
+                       parts.fragment))
 
 
 def as_text(value: Any) -> str | None:

@@ -189,3 +189,79 @@ def test_a_cleaned_candidate_always_encodes_as_utf8(title: str, metadata: dict) 
     assert "image_url" not in c.not_unicode
     assert valid_unicode(c.title) == (c.title, False)  # cleaning twice changes nothing
 
+
+def test_a_cursor_or_detail_url_holding_a_lone_surrogate_is_refused_by_name(
+        tmp_path: Path) -> None:
+    """A json_api source whose detail URL would carry an id with a lone surrogate, and whose
+    next cursor holds one: both requests are refused as unsafe_url before anything is sent
+    (recorded in ``fetches`` with U+FFFD in the URL), the item keeps its listing values, the
+    listing stops with its reason, and the run finishes."""
+    with LoopbackServer("127.0.0.1") as server:
+        leaves = serve_leaves(server, 2)
+        leaves[1]["id"] = "leaf-\ud800"
+        page = {"results": leaves, "next": "c\udc00"}
+        server.route("/api", (200, json.dumps(page).encode(),
+                              {"Content-Type": "application/json"}))
+        server.prefixes["/detail/"] = (200, b'{"title": "From detail"}',
+                                       {"Content-Type": "application/json"})
+        col = init_collection(tmp_path / "col", contact="x@example.org")
+        col.recipe_path.write_text(f'''contact = "x@example.org"
+[budgets]
+min_interval = 0.0
+[network]
+allow_addresses = ["127.0.0.1/32"]
+[[sources]]
+name = "leaves"
+kind = "json_api"
+url = "{server.url("/api")}"
+[sources.pagination]
+style = "cursor"
+next_cursor = "next"
+send_cursor_as = "after"
+[sources.fields]
+items = "results"
+id = "id"
+title = "title"
+licence = "licence"
+image_url = "image"
+[sources.detail]
+url = "{server.url("/detail/")}{{id}}"
+when = "always"
+[sources.detail.fields]
+title = "title"
+''')
+        result = gather(col)
+        hits = [h.path for h in server.hits]
+    assert result.outcome == "finished"
+    assert "/detail/0" in hits and not [p for p in hits if p.startswith("/detail/leaf")]
+    assert not [p for p in hits if "after=" in p]
+    with col.ledger(readonly=True) as ledger:
+        items = {r["source_key"]: r for r in ledger.query("SELECT * FROM items")}
+        refused = ledger.query("SELECT purpose, url, error FROM fetches WHERE attempt = 0")
+        notes = ledger.query("SELECT kind, message FROM notes")
+    assert items["0"]["title"] == "From detail" and items["0"]["state"] == "stored"
+    assert items[f"leaf-{FFFD}"]["title"] == "Leaf 1"  # the listing's value, detail refused
+    assert items[f"leaf-{FFFD}"]["state"] == "stored"
+    assert {r["purpose"] for r in refused} == {"detail", "listing"}
+    for row in refused:
+        assert "not valid Unicode" in row["error"] and FFFD in row["url"]
+    assert any("unsafe_url" in n["message"] for n in notes)
+
+
+def test_the_guard_refuses_a_url_holding_a_lone_surrogate_and_names_it_validly() -> None:
+    """transport_target refuses such a URL as unsafe_url (urllib3 would otherwise send the
+    surrogate as the ill-formed UTF-8 bytes %ED%A0%80), and its message is valid Unicode; the
+    query helpers hand the URL on instead of raising."""
+    from collector.errors import UnsafeURL
+    from collector.fetching.http_target import transport_target
+    from collector.sources.base import merge_query
+    from collector.urls import add_params
+
+    for url in ("http://127.0.0.1/a\ud800.png", "http://127.0.0.1/?q=\udfff",
+                add_params("http://127.0.0.1/", {"after": "c\udc00"}),
+                merge_query("http://127.0.0.1/?after=c\udc00", {"key": "k"})):
+        with pytest.raises(UnsafeURL) as refused:
+            transport_target(url)
+        assert refused.value.reason == "unsafe_url"
+        str(refused.value).encode("utf-8")  # strict: no surrogate in the message
+        assert "not valid Unicode" in str(refused.value)
