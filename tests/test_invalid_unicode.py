@@ -265,3 +265,69 @@ def test_the_guard_refuses_a_url_holding_a_lone_surrogate_and_names_it_validly()
         assert refused.value.reason == "unsafe_url"
         str(refused.value).encode("utf-8")  # strict: no surrogate in the message
         assert "not valid Unicode" in str(refused.value)
+
+
+ALLOW_LOOPBACK = ('contact = "x@example.org"\n[budgets]\nmin_interval = 0.0\n'
+                  '[network]\nallow_addresses = ["127.0.0.1/32"]\n')
+
+
+def test_a_tdmrep_json_policy_holding_a_lone_surrogate_is_recorded_with_fffd(
+        tmp_path: Path) -> None:
+    """tdmrep.json is JSON too (W3C TDMRep §3.1): a rule reserving the images whose
+    tdm-policy holds a lone surrogate skips them (tdmrep_reserved) with U+FFFD in the policy,
+    where the worker used to fail the run with UnicodeEncodeError on every rerun."""
+    from collector.checks.reservations import parse_tdmrep
+
+    rules = [{"location": "/img/*", "tdm-reservation": 1, "tdm-policy": "https://p/\udc00"},
+             {"location": "/\ud800*", "tdm-reservation": 1}]
+    body = json.dumps(rules).encode()
+    parsed = parse_tdmrep(body).rules
+    assert [r.policy for r in parsed] == [f"https://p/{FFFD}", None]
+    assert parsed[1].location == f"/{FFFD}*"
+    with LoopbackServer("127.0.0.1") as server:
+        leaves = serve_leaves(server, 2)
+        server.route("/.well-known/tdmrep.json", (200, body,
+                                                  {"Content-Type": "application/json"}))
+        server.route("/api", (200, json.dumps({"results": leaves}).encode(),
+                              {"Content-Type": "application/json"}))
+        col = init_collection(tmp_path / "col", contact="x@example.org")
+        col.recipe_path.write_text(one_listing_recipe(server.url("/api"), min_interval=0.0))
+        result = gather(col)
+    assert result.outcome == "finished"
+    with col.ledger(readonly=True) as ledger:
+        rows = ledger.query("SELECT state, reason, detail FROM items")
+    assert [(r["state"], r["reason"]) for r in rows] == [("skipped", "tdmrep_reserved")] * 2
+    assert all(f"policy https://p/{FFFD}" in r["detail"] for r in rows)
+
+
+def test_a_page_whose_charset_decodes_to_lone_surrogates_reads_them_as_fffd(
+        tmp_path: Path) -> None:
+    """UTF-7 (RFC 2152) encodes UTF-16 code units, so "+2AA-" decodes to U+D800 alone:
+    Page.text gives U+FFFD in its place, as for any bad bytes. An HTML listing in UTF-7 whose
+    tdm-reservation meta holds one is gathered and the signal recorded with U+FFFD (the
+    reservation signal's ledger row used to fail the run)."""
+    from requests.structures import CaseInsensitiveDict
+
+    from collector.fetching.answers import Page
+
+    page = Page("http://127.0.0.1/", 200, CaseInsensitiveDict(), b"a +2AA- b", "utf-7")
+    assert page.text == f"a {FFFD} b"
+    with LoopbackServer("127.0.0.1") as server:
+        serve_leaves(server, 1)
+        html = (b'<html><head><meta name="tdm-reservation" content="+2AA-"></head><body>'
+                b'<ul><li class="tile"><img src="/img/0.png"><span class="licence">CC0-1.0'
+                b"</span></li></ul></body></html>")
+        server.route("/list", (200, html, {"Content-Type": "text/html; charset=utf-7"}))
+        col = init_collection(tmp_path / "col", contact="x@example.org")
+        col.recipe_path.write_text(
+            ALLOW_LOOPBACK + f'[[sources]]\nname = "h"\nkind = "html"\nlisting_pages = '
+            f'["{server.url("/list")}"]\n[sources.select]\nitem = "li.tile"\nimage = "img"\n'
+            'licence = ".licence"\n')
+        result = gather(col)
+    assert result.outcome == "finished"
+    with col.ledger(readonly=True) as ledger:
+        states = [r["state"] for r in ledger.query("SELECT state FROM items")]
+        signals = ledger.query("SELECT place, name, value FROM reservation_signals")
+    assert states == ["stored"]
+    assert [(s["place"], s["name"], s["value"]) for s in signals] == [
+        ("HTML meta", "tdm-reservation", FFFD)]
