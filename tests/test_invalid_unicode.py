@@ -331,3 +331,44 @@ def test_a_page_whose_charset_decodes_to_lone_surrogates_reads_them_as_fffd(
     assert states == ["stored"]
     assert [(s["place"], s["name"], s["value"]) for s in signals] == [
         ("HTML meta", "tdm-reservation", FFFD)]
+
+
+def _strings(value: object) -> Iterator[str]:
+    """Every string in a JSON value, keys included."""
+    if isinstance(value, str):
+        yield value
+    elif isinstance(value, dict):
+        for k, v in value.items():
+            yield k
+            yield from _strings(v)
+    elif isinstance(value, list):
+        for v in value:
+            yield from _strings(v)
+
+
+def test_a_scan_file_name_that_is_not_utf8_is_shown_escaped_everywhere(
+        tmp_path: Path) -> None:
+    """A scans folder holding ``bad\\xff.png`` (a Linux name that is not UTF-8, kept by Python
+    as the surrogate escape U+DCFF, PEP 383): gathered, and ``trace --json`` of the folder
+    names it ``bad\\xff.png`` like the table and CSV do, with no lone surrogate in the JSON
+    (it used to write the escape "\\udcff", RFC 8259 §8.2)."""
+    import os
+
+    from support.collections import SCANS_SOURCE, scan_image
+
+    col = init_collection(tmp_path / "col", contact="x@example.org")
+    scans = col.root / "in"
+    scans.mkdir()
+    with open(os.fsencode(scans) + b"/bad\xff.png", "wb") as fh:
+        scan_image(1).save(fh, "PNG")
+    col.recipe_path.write_text(col.recipe_path.read_text() + SCANS_SOURCE)
+    assert gather(col, fetcher_factory=lambda recipe, ledger: None).outcome == "finished"
+    with col.ledger(readonly=True) as ledger:
+        keys = [r["source_key"] for r in ledger.query("SELECT source_key FROM items")]
+    assert keys == ["bad\\xff.png"]
+    result = CliRunner().invoke(app, ["trace", str(scans), "--in", str(col.root), "--json"])
+    assert result.exit_code == 0, result.output
+    data = json.loads(result.output)
+    assert all(not SURROGATE.search(s) for s in _strings(data))
+    assert data["results"][0]["path"].endswith("/bad\\xff.png")
+    assert data["results"][0]["kind"] == "exact"
