@@ -372,3 +372,34 @@ def test_a_scan_file_name_that_is_not_utf8_is_shown_escaped_everywhere(
     assert all(not SURROGATE.search(s) for s in _strings(data))
     assert data["results"][0]["path"].endswith("/bad\\xff.png")
     assert data["results"][0]["kind"] == "exact"
+
+
+@settings(max_examples=25, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+@given(artist=st.binary(max_size=24), rights=text_with_surrogates)
+def test_embedded_exif_and_xmp_text_is_always_valid_unicode(
+        tmp_path_factory: pytest.TempPathFactory, artist: bytes, rights: str) -> None:
+    """Whatever bytes an EXIF Artist holds (UTF-8 ill-formed ones included: \\xed\\xa0\\x80 is
+    a surrogate in CESU-8, refused by UTF-8, Unicode 15.0 §3.9 D92), and whatever text an XMP
+    dc:rights holds (lone surrogates as XML character references, which XML 1.0 §2.2 Char
+    excludes), the facts read from a real JPEG are valid Unicode: EXIF bytes fall back to
+    Latin-1, an XMP packet the parser refuses is flagged xmp_unreadable."""
+    from html import escape
+
+    from PIL import Image
+
+    from collector.checks.images import inspect_image
+
+    exif = Image.Exif()
+    exif[0x013B] = artist + b"\xed\xa0\x80"  # Artist (Exif 2.32 §4.6.5)
+    refs = "".join(f"&#x{ord(ch):x};" if SURROGATE.match(ch) else escape(ch) for ch in rights)
+    packet = ("<x:xmpmeta xmlns:x='adobe:ns:meta/'><rdf:RDF xmlns:rdf='http://www.w3.org/1999/"
+              "02/22-rdf-syntax-ns#'><rdf:Description xmlns:dc='http://purl.org/dc/elements/"
+              f"1.1/'><dc:rights>{refs}</dc:rights></rdf:Description></rdf:RDF></x:xmpmeta>")
+    path = tmp_path_factory.mktemp("exif") / "x.jpg"
+    Image.new("RGB", (32, 32), "white").save(path, "JPEG", exif=exif.tobytes(),
+                                             xmp=packet.encode("utf-8", "surrogatepass"))
+    facts = inspect_image(path)
+    json.dumps([facts.exif, facts.rights, facts.flags], ensure_ascii=False).encode("utf-8")
+    assert "exif_artist" in facts.rights
+    if SURROGATE.search(rights):
+        assert "xmp_unreadable" in facts.flags
