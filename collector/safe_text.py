@@ -27,6 +27,11 @@ from typing import Any
 _DEL_C1_BIDI = "\x7f-\x9f\u061c\u200e\u200f\u202a-\u202e\u2066-\u2069"
 _UNSAFE_ANY = re.compile(f"[\x00-\x1f{_DEL_C1_BIDI}]")
 _UNSAFE_BUT_NEWLINE = re.compile(f"[\x00-\x09\x0b-\x1f{_DEL_C1_BIDI}]")
+# In a page collector writes (HTML, inline SVG, Markdown): the C0 controls but TAB, LF and CR,
+# which XML 1.0 §2.2 leaves out of Char, with DEL and the C1 controls, which an HTML parser
+# reports as control-character-in-input-stream (HTML Standard §13.2.3.5); U+0000 it even
+# drops from text (§13.2.6.4.7, "in body"), and CommonMark §2.3 turns it into U+FFFD.
+_NOT_IN_DOCUMENTS = re.compile("[\x00-\x08\x0b\x0c\x0e-\x1f\x7f-\x9f]")
 # OWASP CSV Injection: the characters that make a spreadsheet read a cell as a formula.
 FORMULA_STARTS = ("=", "+", "-", "@", "\t", "\r")
 # Surrogate code points: in a Python str they are never part of valid Unicode text (a JSON
@@ -81,6 +86,20 @@ def one_line(text: Any) -> str:
 def for_terminal(text: Any) -> str:
     """Like :func:`one_line` but keeps line breaks: for a paragraph of output."""
     return _UNSAFE_BUT_NEWLINE.sub(_escaped, str(text))
+
+
+def for_document(text: Any) -> str:
+    """``text`` for an HTML, SVG or Markdown page: control characters shown as escapes
+    (``\\x00``), so no parser drops or refuses them; tabs and line breaks kept."""
+    return _NOT_IN_DOCUMENTS.sub(_escaped, str(text))
+
+
+def document_value(value: Any) -> Any:
+    """A value put into an HTML page by a template (Jinja2's ``finalize``): text through
+    :func:`for_document`; markup (it has ``__html__``) and other values as they are."""
+    if isinstance(value, str) and not hasattr(value, "__html__"):
+        return for_document(value)
+    return value
 
 
 def shown_name(text: str) -> str:
