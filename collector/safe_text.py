@@ -60,6 +60,15 @@ def valid_unicode(value: Any) -> tuple[Any, bool]:
     return json.loads(_SURROGATE.sub(REPLACEMENT, text), object_pairs_hook=_every_key), True
 
 
+def escaped_surrogates(text: str) -> tuple[str, bool]:
+    """``text`` with every surrogate code point written as its escape (``\\ud800``), and
+    whether there was one: for identifiers, which must stay distinct and the same from run to
+    run (two ids differing only in their surrogates would be one id with U+FFFD)."""
+    if _SURROGATE.search(text) is None:
+        return text, False
+    return _SURROGATE.sub(lambda m: f"\\u{ord(m.group()):04x}", text), True
+
+
 def _every_key(pairs: list[tuple[str, Any]]) -> dict[str, Any]:
     """A JSON object whose repeated keys (made alike by the replacement) are all kept."""
     out: dict[str, Any] = {}

@@ -16,7 +16,7 @@ from urllib.parse import parse_qsl, urljoin, urlsplit, urlunsplit
 
 from collector import urls
 from collector.errors import FetchError, RecipeProblem, SourceError
-from collector.safe_text import valid_unicode
+from collector.safe_text import escaped_surrogates, valid_unicode
 from collector.schema import Key, Problems
 
 __all__ = [
@@ -185,17 +185,23 @@ class SourceKind:
 # The candidate's fields that hold text (or JSON of text) a source read from a listing.
 TEXT_FIELDS = ("source_key", "image_url", "page_url", "title", "creator", "licence_raw",
                "licence_url", "date", "metadata", "parent_key", "withdrawn", "size_request")
+KEY_FIELDS = ("source_key", "parent_key")  # identifiers: surrogates escaped, not replaced
 NOT_UNICODE = "invalid_unicode"  # the note kind and the item's metadata key
 
 
 def valid_candidate(c: Candidate) -> Candidate:
     """``c`` with every lone surrogate in its text replaced by U+FFFD
-    (:func:`collector.safe_text.valid_unicode`); the fields that held one are named in
+    (:func:`collector.safe_text.valid_unicode`), in its keys written as an escape instead
+    (``\\ud800``: two keys stay two items); the fields that held one are named in
     ``c.not_unicode``. A local path is left as it is (a file name's undecodable bytes are
     surrogate escapes, PEP 383, shown by ``shown_name``)."""
     repaired = []
     for name in TEXT_FIELDS:
-        value, changed = valid_unicode(getattr(c, name))
+        value = getattr(c, name)
+        if name in KEY_FIELDS and isinstance(value, str):
+            value, changed = escaped_surrogates(value)
+        else:
+            value, changed = valid_unicode(value)
         if changed:
             setattr(c, name, value)
             repaired.append(name)

@@ -32,6 +32,7 @@ from collector.sources.base import Candidate, capped_json, valid_candidate
 from collector.storage.collection import Collection, init_collection
 
 SURROGATE = re.compile("[\ud800-\udfff]")
+LEAF_2 = "leaf-\\udbff"  # an id's surrogate is kept as its escape: ids stay distinct
 FFFD = "\ufffd"  # U+FFFD REPLACEMENT CHARACTER (Unicode 15.0 §3.9, U+FFFD substitution)
 
 
@@ -71,16 +72,16 @@ def test_a_listing_with_lone_surrogates_finishes_and_admits_every_item(gathered)
     assert first.outcome == "finished" and second.outcome == "finished"
     with col.ledger(readonly=True) as ledger:
         rows = {r["source_key"]: r for r in ledger.query("SELECT * FROM items")}
-    assert set(rows) == {"0", "1", f"leaf-{FFFD}", "3", "4"}
+    assert set(rows) == {"0", "1", LEAF_2, "3", "4"}
     assert rows["1"]["title"] == f"Leaf {FFFD} one"
     assert rows["1"]["creator"] == f"Ann {FFFD} Example"
-    assert rows[f"leaf-{FFFD}"]["licence_raw"] == f"CC0-1.0 {FFFD}"
-    for key in ("0", "1", f"leaf-{FFFD}", "3"):
+    assert rows[LEAF_2]["licence_raw"] == f"CC0-1.0 {FFFD}"
+    for key in ("0", "1", LEAF_2, "3"):
         assert rows[key]["state"] == "stored", rows[key]
     notes = {key: json.loads(rows[key]["metadata"]).get("invalid_unicode") for key in rows}
     assert notes["0"] is None
     assert set(notes["1"]) >= {"title", "creator"}
-    assert set(notes[f"leaf-{FFFD}"]) >= {"source_key", "licence_raw"}
+    assert set(notes[LEAF_2]) >= {"source_key", "licence_raw"}
     assert notes["3"] == ["metadata"]
     assert json.loads(rows["3"]["metadata"])["item"][f"note {FFFD}"] == [
         "deep", {"x": FFFD * 2}]
@@ -137,6 +138,17 @@ def test_no_lone_surrogate_reaches_the_ledger_or_the_exports(gathered, tmp_path:
             assert origin["title"] == f"Leaf {FFFD} one"
         else:
             assert f"Leaf {FFFD} one" in result.output
+
+
+def test_ids_differing_only_in_their_surrogates_stay_two_items() -> None:
+    """A key keeps each surrogate as its escape (``\\ud800``), not U+FFFD: "a\ud800" and
+    "a\udc00" would otherwise both be "a\ufffd", one item whose row the second overwrites."""
+    first = valid_candidate(Candidate(source_key="a\ud800", parent_key="p\udfff"))
+    second = valid_candidate(Candidate(source_key="a\udc00"))
+    assert (first.source_key, second.source_key) == ("a\\ud800", "a\\udc00")
+    assert first.parent_key == "p\\udfff"
+    assert first.not_unicode == ("source_key", "parent_key")
+    assert first.metadata == {"invalid_unicode": ["source_key", "parent_key"]}
 
 
 def test_capped_json_measures_a_lone_surrogate_instead_of_raising() -> None:
@@ -240,8 +252,8 @@ title = "title"
         refused = ledger.query("SELECT purpose, url, error FROM fetches WHERE attempt = 0")
         notes = ledger.query("SELECT kind, message FROM notes")
     assert items["0"]["title"] == "From detail" and items["0"]["state"] == "stored"
-    assert items[f"leaf-{FFFD}"]["title"] == "Leaf 1"  # the listing's value, detail refused
-    assert items[f"leaf-{FFFD}"]["state"] == "stored"
+    assert items["leaf-\\ud800"]["title"] == "Leaf 1"  # the listing's value, detail refused
+    assert items["leaf-\\ud800"]["state"] == "stored"
     assert {r["purpose"] for r in refused} == {"detail", "listing"}
     for row in refused:
         assert "not valid Unicode" in row["error"] and FFFD in row["url"]
