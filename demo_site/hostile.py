@@ -425,6 +425,18 @@ def oai_endless_token(h: H, ctx: Ctx) -> None:
     send(h, 200, body, XML)
 
 
+def oai_utf7(h: H, ctx: Ctx) -> None:
+    """Identify answers normally; ListRecords declares UTF-7 (its title "+2AA-" would decode
+    to a lone surrogate), an encoding the XML parser refuses to read."""
+    if "Identify" in h.path:
+        send(h, 200, _oai_identify(), XML)
+        return
+    body = _oai_envelope(b"<ListRecords>" + _oai_record(ctx).replace(
+        b"<dc:title>t</dc:title>", b"<dc:title>+2AA-</dc:title>") + b"</ListRecords>")
+    send(h, 200, body.replace(b'encoding="UTF-8"', b'encoding="UTF-7"'),
+         {"Content-Type": "text/xml; charset=utf-7"})
+
+
 def oai_no_namespace(h: H, ctx: Ctx) -> None:
     """Every answer looks like OAI-PMH but has no namespace (§3.2 requires it)."""
     inner = (b"<Identify><granularity>YYYY-MM-DD</granularity></Identify>"
@@ -604,6 +616,8 @@ CASES: list[Case] = [
          oai_bomb, reason="not_oai_pmh", why="defusedxml refuses the DTD; nothing expanded"),
     Case("oai-endless-token", "OAI-PMH resumptionToken that never ends", "oai", "/oai",
          oai_endless_token, reason="max_pages", why="bounded by max_pages = 5"),
+    Case("oai-utf7", "OAI-PMH ListRecords declared in UTF-7", "oai", "/oai", oai_utf7,
+         reason="not_oai_pmh", why="OAI-PMH answers are UTF-8; the parser cannot read UTF-7"),
     Case("oai-no-namespace", "OAI-PMH answers without the OAI namespace", "oai", "/oai",
          oai_no_namespace, reason="not_oai_pmh", why="the root element is not OAI-PMH 2.0"),
     Case("iiif-self-manifest", "IIIF manifest that lists itself (and is listed twice)", "iiif",

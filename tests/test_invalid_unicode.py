@@ -415,3 +415,18 @@ def test_embedded_exif_and_xmp_text_is_always_valid_unicode(
     assert "exif_artist" in facts.rights
     if SURROGATE.search(rights):
         assert "xmp_unreadable" in facts.flags
+
+
+@pytest.mark.parametrize("encoding", ["UTF-7", "UTF-32", "Shift_JIS", "x-no-such", "zlib"])
+def test_an_oai_answer_in_an_encoding_the_parser_cannot_read_is_not_oai(encoding: str) -> None:
+    """An OAI-PMH answer declaring UTF-7 (whose "+2AA-" is a lone surrogate), another encoding
+    expat refuses ("multi-byte encodings are not supported") or an unknown name is NotOai,
+    which the source turns into a not_oai_pmh note, instead of a ValueError or LookupError
+    out of the listing (OAI-PMH 2.0 §3.1.2.1: answers are UTF-8, from memory)."""
+    from collector.sources.oai_xml import NotOai, parse_answer
+
+    body = (f'<?xml version="1.0" encoding="{encoding}"?><OAI-PMH xmlns="http://www.'
+            'openarchives.org/OAI/2.0/"><responseDate>2025-03-01T09:00:00Z</responseDate>'
+            "</OAI-PMH>").encode("ascii")
+    with pytest.raises(NotOai, match="encoding the XML parser cannot read"):
+        parse_answer(body)
