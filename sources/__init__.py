@@ -235,6 +235,7 @@ def iter_candidates(
     kind = get_kind(str(source["kind"]))
     # A kind that says it needs no network is not handed the fetcher.
     pages = fetcher if kind.uses_network else None
+
     def valid_notes(note: SourceNote) -> None:
         notes(valid_note(note))
 

@@ -207,7 +207,10 @@ def valid_candidate(c: Candidate) -> Candidate:
             repaired.append(name)
     c.not_unicode = tuple(dict.fromkeys((*c.not_unicode, *repaired)))
     if c.not_unicode:  # the item's own note: which fields held such text
-        c.metadata = {**(c.metadata or {}), NOT_UNICODE: list(c.not_unicode)}
+        meta = dict(c.metadata or {})
+        if NOT_UNICODE in meta:  # a source's own field of that name is kept beside it
+            meta[f"{NOT_UNICODE} (as listed)"] = meta.pop(NOT_UNICODE)
+        c.metadata = {**meta, NOT_UNICODE: list(c.not_unicode)}
     return c
 
 
@@ -237,7 +240,8 @@ def not_unicode_note(c: Candidate) -> str:
     """What a source note says about a candidate whose text was not valid Unicode."""
     return (f"item {c.source_key!r}: {', '.join(c.not_unicode)} held text that is not valid "
             "Unicode (a lone surrogate such as the JSON escape \\ud800, RFC 8259 §8.2); each "
-            "was replaced by U+FFFD and the item's metadata names the fields "
+            "was replaced by U+FFFD (in an id: written as its escape) and the item's metadata "
+            "names the fields "
             f"({NOT_UNICODE}); an image URL that held one is not requested (unsafe_url)")
 
 
