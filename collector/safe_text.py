@@ -7,10 +7,18 @@ override can make text read backwards (Unicode TR 9 §2, explicit directional fo
 characters). In a spreadsheet, a cell that starts with ``=``, ``+``, ``-``, ``@``, a tab or a
 carriage return is run as a formula (OWASP "CSV Injection": prefix such cells with a single
 quote). The ledger keeps the raw text; only what is shown or exported is changed.
+
+One change is made where text enters collector, before anything keeps it: a surrogate code
+point (U+D800..U+DFFF) is no Unicode scalar value, so no UTF can encode it (Unicode 15.0
+§3.9 D76 and D92; RFC 3629 §3), yet JSON's ``"\\ud800"`` escape makes one (RFC 8259 §8.2:
+such strings are allowed, their behaviour unpredictable). :func:`valid_unicode` replaces each
+with U+FFFD REPLACEMENT CHARACTER, so the ledger (UTF-8), the exports and the terminal never
+meet one.
 """
 
 from __future__ import annotations
 
+import json
 import re
 from typing import Any
 
@@ -19,8 +27,58 @@ from typing import Any
 _DEL_C1_BIDI = "\x7f-\x9f\u061c\u200e\u200f\u202a-\u202e\u2066-\u2069"
 _UNSAFE_ANY = re.compile(f"[\x00-\x1f{_DEL_C1_BIDI}]")
 _UNSAFE_BUT_NEWLINE = re.compile(f"[\x00-\x09\x0b-\x1f{_DEL_C1_BIDI}]")
+# In a page collector writes (HTML, inline SVG, Markdown): the C0 controls but TAB, LF and CR,
+# which XML 1.0 §2.2 leaves out of Char, with DEL and the C1 controls, which an HTML parser
+# reports as control-character-in-input-stream (HTML Standard §13.2.3.5); U+0000 it even
+# drops from text (§13.2.6.4.7, "in body"), and CommonMark §2.3 turns it into U+FFFD.
+_NOT_IN_DOCUMENTS = re.compile("[\x00-\x08\x0b\x0c\x0e-\x1f\x7f-\x9f]")
 # OWASP CSV Injection: the characters that make a spreadsheet read a cell as a formula.
 FORMULA_STARTS = ("=", "+", "-", "@", "\t", "\r")
+# Surrogate code points: in a Python str they are never part of valid Unicode text (a JSON
+# surrogate pair is decoded to the one character it encodes).
+_SURROGATE = re.compile("[\ud800-\udfff]")
+REPLACEMENT = "\ufffd"
+
+
+def valid_unicode(value: Any) -> tuple[Any, bool]:
+    """``value`` with every surrogate code point replaced by U+FFFD, and whether there was one.
+
+    Strings are cleaned; lists, tuples and dicts (keys too) are cleaned through their JSON
+    form, which is what the ledger keeps of them (tuples come back as lists; two keys that
+    differ only in their surrogates both stay, the later one numbered: ``"a\ufffd (2)"``);
+    other values are returned as they are.
+    """
+    if isinstance(value, str):
+        if _SURROGATE.search(value) is None:
+            return value, False
+        return _SURROGATE.sub(REPLACEMENT, value), True
+    if not isinstance(value, list | tuple | dict):
+        return value, False
+    text = json.dumps(value, ensure_ascii=False, default=str)
+    if _SURROGATE.search(text) is None:
+        return value, False
+    return json.loads(_SURROGATE.sub(REPLACEMENT, text), object_pairs_hook=_every_key), True
+
+
+def escaped_surrogates(text: str) -> tuple[str, bool]:
+    """``text`` with every surrogate code point written as its escape (``\\ud800``), and
+    whether there was one: for identifiers, which must stay distinct and the same from run to
+    run (two ids differing only in their surrogates would be one id with U+FFFD)."""
+    if _SURROGATE.search(text) is None:
+        return text, False
+    return _SURROGATE.sub(lambda m: f"\\u{ord(m.group()):04x}", text), True
+
+
+def _every_key(pairs: list[tuple[str, Any]]) -> dict[str, Any]:
+    """A JSON object whose repeated keys (made alike by the replacement) are all kept."""
+    out: dict[str, Any] = {}
+    for key, value in pairs:
+        name, n = key, 1
+        while name in out:
+            n += 1
+            name = f"{key} ({n})"
+        out[name] = value
+    return out
 
 
 def _escaped(match: re.Match[str]) -> str:
@@ -37,6 +95,20 @@ def one_line(text: Any) -> str:
 def for_terminal(text: Any) -> str:
     """Like :func:`one_line` but keeps line breaks: for a paragraph of output."""
     return _UNSAFE_BUT_NEWLINE.sub(_escaped, str(text))
+
+
+def for_document(text: Any) -> str:
+    """``text`` for an HTML, SVG or Markdown page: control characters shown as escapes
+    (``\\x00``), so no parser drops or refuses them; tabs and line breaks kept."""
+    return _NOT_IN_DOCUMENTS.sub(_escaped, str(text))
+
+
+def document_value(value: Any) -> Any:
+    """A value put into an HTML page by a template (Jinja2's ``finalize``): text through
+    :func:`for_document`; markup (it has ``__html__``) and other values as they are."""
+    if isinstance(value, str) and not hasattr(value, "__html__"):
+        return for_document(value)
+    return value
 
 
 def shown_name(text: str) -> str:

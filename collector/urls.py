@@ -74,9 +74,20 @@ def add_params(url: str, params: Mapping[str, object] | None) -> str:
     if not params:
         return url
     parts = urlsplit(url)
-    extra = urlencode([(k, str(v)) for k, v in params.items()])
+    extra = encode_query([(k, str(v)) for k, v in params.items()])
     query = f"{parts.query}&{extra}" if parts.query else extra
     return urlunsplit(parts._replace(query=query))
+
+
+def encode_query(pairs: Iterable[tuple[str, str]]) -> str:
+    """``urlencode(pairs)``; a value holding a lone surrogate (a cursor read from JSON) has no
+    UTF-8 to percent-encode (RFC 3986 §2.5), so the pairs are then joined as they are and the
+    fetcher's guard refuses the URL by name (``unsafe_url``) instead of a crash here."""
+    pairs = list(pairs)
+    try:
+        return urlencode(pairs)
+    except UnicodeEncodeError:
+        return "&".join(f"{k}={v}" for k, v in pairs)
 
 
 def redact(url: str, secret_params: Iterable[str] = ()) -> str:

@@ -324,6 +324,15 @@ def json_cycle(h: H, ctx: Ctx) -> None:
     send(h, 200, json.dumps(body).encode(), {"Content-Type": "application/json"})
 
 
+def json_lone_surrogates(h: H, ctx: Ctx) -> None:
+    """A JSON listing whose strings hold lone surrogates, written as JSON escapes ("\\ud800"):
+    valid JSON whose text no UTF can encode (RFC 8259 §8.2)."""
+    body = {"items": [{"id": f"{ctx.name}-\ud800", "image": "/good-a.png",
+                       "licence": "CC0-1.0", "caption": "fern \udfff frond",
+                       "tags \udc00": ["\ud83d"]}]}
+    send(h, 200, json.dumps(body).encode(), {"Content-Type": "application/json"})
+
+
 def html_page(ctx: Ctx, extra: str = "", next_href: str | None = None,
               image: str = "/good.png") -> bytes:
     """A listing page with one item."""
@@ -339,6 +348,13 @@ def html_invalid_utf8(h: H, ctx: Ctx) -> None:
                      .decode("latin-1"))
     body = body.replace(b"caf\xc3\xa9", b"caf\xe9").replace(b"\xc3\xbf\xc3\xbe", b"\xff\xfe")
     send(h, 200, body, {"Content-Type": "text/html; charset=utf-8"})
+
+
+def html_utf7_surrogate(h: H, ctx: Ctx) -> None:
+    """A listing labelled UTF-7 whose licence text holds "+2AA-": UTF-7 (RFC 2152) encodes
+    UTF-16 code units, so this decodes to the lone surrogate U+D800."""
+    body = html_page(ctx).replace(b">CC0-1.0<", b">CC0-1.0 +2AA-<")
+    send(h, 200, body, {"Content-Type": "text/html; charset=utf-7"})
 
 
 def html_bogus_charset(h: H, ctx: Ctx) -> None:
@@ -407,6 +423,18 @@ def oai_endless_token(h: H, ctx: Ctx) -> None:
     body = _oai_envelope(b"<ListRecords>" + _oai_record(ctx)
                          + b"<resumptionToken>t%d</resumptionToken></ListRecords>" % n)
     send(h, 200, body, XML)
+
+
+def oai_utf7(h: H, ctx: Ctx) -> None:
+    """Identify answers normally; ListRecords declares UTF-7 (its title "+2AA-" would decode
+    to a lone surrogate), an encoding the XML parser refuses to read."""
+    if "Identify" in h.path:
+        send(h, 200, _oai_identify(), XML)
+        return
+    body = _oai_envelope(b"<ListRecords>" + _oai_record(ctx).replace(
+        b"<dc:title>t</dc:title>", b"<dc:title>+2AA-</dc:title>") + b"</ListRecords>")
+    send(h, 200, body.replace(b'encoding="UTF-8"', b'encoding="UTF-7"'),
+         {"Content-Type": "text/xml; charset=utf-7"})
 
 
 def oai_no_namespace(h: H, ctx: Ctx) -> None:
@@ -487,6 +515,8 @@ CASES: list[Case] = [
          serve(b""), "failed", "unsafe_url"),
     Case("link-fullwidth-at", "listing links to forbidden\uff20allowed (full-width @)", "image",
          FULLWIDTH_TRICK, serve(b""), "failed", "unsafe_url"),
+    Case("link-lone-surrogate", "listing links to an image URL holding a lone surrogate",
+         "image", "/img/picture\udc00.png", serve(noise_image), "failed", "unsafe_url"),
     Case("redirect-bad-ipv6", "redirect to http://[::1/img/x.png (unclosed IPv6)", "image", IMG,
          redirect("http://[::1/img/x.png"), "failed", "unsafe_url"),
     Case("redirect-robots", "redirect to a robots-disallowed path on another host", "image",
@@ -567,8 +597,14 @@ CASES: list[Case] = [
          reason="too_large"),
     Case("json-cycle", "JSON pagination that cycles", "json", "/api/a", json_cycle,
          reason="loop"),
+    Case("json-lone-surrogates", 'JSON listing with lone surrogates ("\\ud800") in its text',
+         "json", "/api/a", json_lone_surrogates, reason="invalid_unicode",
+         why="each is replaced by U+FFFD and noted; the item is stored as usual"),
     Case("html-invalid-utf8", "HTML listing with invalid UTF-8", "html", "/list/a",
          html_invalid_utf8, reason=None, why="bad bytes are replaced (U+FFFD)"),
+    Case("html-utf7-surrogate", "HTML listing in UTF-7 decoding to a lone surrogate", "html",
+         "/list/a", html_utf7_surrogate, reason=None,
+         why="bad bytes: replaced (U+FFFD) when the page is decoded, as invalid UTF-8 is"),
     Case("html-bogus-charset", "HTML listing with an unknown charset label", "html", "/list/a",
          html_bogus_charset, reason=None, why="an unknown label falls back to UTF-8"),
     Case("html-wrong-charset", "UTF-8 HTML listing labelled UTF-16", "html", "/list/a",
@@ -580,6 +616,8 @@ CASES: list[Case] = [
          oai_bomb, reason="not_oai_pmh", why="defusedxml refuses the DTD; nothing expanded"),
     Case("oai-endless-token", "OAI-PMH resumptionToken that never ends", "oai", "/oai",
          oai_endless_token, reason="max_pages", why="bounded by max_pages = 5"),
+    Case("oai-utf7", "OAI-PMH ListRecords declared in UTF-7", "oai", "/oai", oai_utf7,
+         reason="not_oai_pmh", why="OAI-PMH answers are UTF-8; the parser cannot read UTF-7"),
     Case("oai-no-namespace", "OAI-PMH answers without the OAI namespace", "oai", "/oai",
          oai_no_namespace, reason="not_oai_pmh", why="the root element is not OAI-PMH 2.0"),
     Case("iiif-self-manifest", "IIIF manifest that lists itself (and is listed twice)", "iiif",
@@ -587,6 +625,10 @@ CASES: list[Case] = [
          why="every document is read once; its one canvas is stored"),
     Case("iiif-collection-cycle", "IIIF collection cycle (A -> B -> A)", "iiif",
          hostile_iiif.START, hostile_iiif.collection_cycle, reason="loop"),
+    Case("iiif-lone-surrogates", "IIIF manifest with lone surrogates in its labels and a "
+         "member id", "iiif", hostile_iiif.START, hostile_iiif.surrogate_labels,
+         reason="invalid_unicode",
+         why="labels get U+FFFD and a note; the member whose URL cannot be sent is a note"),
     Case("iiif-billion-pixels", "IIIF info.json claiming 10^9 x 10^9 pixels", "iiif",
          hostile_iiif.START, hostile_iiif.billion_pixels, reason=None,
          why="only the target size is asked for (!2048,2048), never the full size"),

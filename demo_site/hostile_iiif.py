@@ -113,3 +113,21 @@ def requested_sizes(paths: list[str]) -> list[str]:
     """The size segments of the image requests in a request log (Image API 3.0 §4)."""
     return [p.split("/")[4] for p in paths
             if p.startswith("/svc/") and not p.endswith("/info.json") and p.count("/") >= 6]
+
+
+def surrogate_labels(h: H, ctx: Any) -> None:
+    """A manifest whose label, summary and metadata hold lone surrogates (JSON escapes such as
+    "\\ud800", RFC 8259 §8.2), and a collection listing it beside a manifest whose id holds
+    one (a URL no request can carry)."""
+    if _service(h, 64, 64):
+        return
+    base = _base(h)
+    if h.path == START:
+        _json(h, _collection(base, START, [("Manifest", "/iiif/odd.json"),
+                                           ("Manifest", "/iiif/odd\udc00.json")]))
+        return
+    doc = _manifest(base, "odd")
+    doc["label"] = {"en": ["fern \ud800 frond"]}
+    doc["summary"] = {"en": ["\udfff"]}
+    doc["metadata"] = [{"label": {"en": ["Creator \udbff"]}, "value": {"en": ["Ann \ud800"]}}]
+    _json(h, doc)

@@ -39,6 +39,7 @@ from typing import Any, NoReturn
 from collector.errors import SourceKindError
 from collector.schema import Key, Problems, check_table, did_you_mean, item_condition
 from collector.sources.base import (
+    NOT_UNICODE,
     Candidate,
     ListingState,
     NoteSink,
@@ -48,6 +49,9 @@ from collector.sources.base import (
     SourceError,
     SourceKind,
     SourceNote,
+    not_unicode_note,
+    valid_candidate,
+    valid_note,
 )
 
 __all__ = [
@@ -231,7 +235,20 @@ def iter_candidates(
     kind = get_kind(str(source["kind"]))
     # A kind that says it needs no network is not handed the fetcher.
     pages = fetcher if kind.uses_network else None
+
+    def valid_notes(note: SourceNote) -> None:
+        notes(valid_note(note))
+
     if state is not None and kind.list_changes is not None:
-        yield from kind.list_changes(source, pages, notes, Path(base_dir), state)
+        listed = kind.list_changes(source, pages, valid_notes, Path(base_dir), state)
     else:
-        yield from kind.list_candidates(source, pages, notes, Path(base_dir))
+        listed = kind.list_candidates(source, pages, valid_notes, Path(base_dir))
+    # Text enters collector here: whatever a kind read, no lone surrogate goes further.
+    said = False
+    for candidate in listed:
+        candidate = valid_candidate(candidate)
+        if candidate.not_unicode and not said:
+            said = True
+            notes(SourceNote(NOT_UNICODE, None, not_unicode_note(candidate) + " (reported "
+                             "once per run)", name))
+        yield candidate

@@ -12,10 +12,11 @@ from collections.abc import Callable, Iterable, Iterator, Mapping
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, Protocol
-from urllib.parse import parse_qsl, urlencode, urljoin, urlsplit, urlunsplit
+from urllib.parse import parse_qsl, urljoin, urlsplit, urlunsplit
 
 from collector import urls
 from collector.errors import FetchError, RecipeProblem, SourceError
+from collector.safe_text import escaped_surrogates, valid_unicode
 from collector.schema import Key, Problems
 
 __all__ = [
@@ -59,6 +60,9 @@ class Candidate:
     # How the image URL's size was chosen, when the source negotiated it (IIIF: the image
     # service, its full size, the size asked for and why); kept in items.size_request.
     size_request: dict | None = None
+    # The fields whose text was not valid Unicode (lone surrogates, each replaced by U+FFFD):
+    # set where candidates leave their kind (sources.iter_candidates), recorded with the item.
+    not_unicode: tuple[str, ...] = ()
 
 
 @dataclass
@@ -175,6 +179,72 @@ class SourceKind:
     list_changes: ListChanges | None = None
 
 
+# ---------------------------------------------------------------------------------------------
+# Text that is not valid Unicode
+
+# The candidate's fields that hold text (or JSON of text) a source read from a listing.
+TEXT_FIELDS = ("source_key", "image_url", "page_url", "title", "creator", "licence_raw",
+               "licence_url", "date", "metadata", "parent_key", "withdrawn", "size_request")
+KEY_FIELDS = ("source_key", "parent_key")  # identifiers: surrogates escaped, not replaced
+NOT_UNICODE = "invalid_unicode"  # the note kind and the item's metadata key
+
+
+def valid_candidate(c: Candidate) -> Candidate:
+    """``c`` with every lone surrogate in its text replaced by U+FFFD
+    (:func:`collector.safe_text.valid_unicode`), in its keys written as an escape instead
+    (``\\ud800``: two keys stay two items); the fields that held one are named in
+    ``c.not_unicode``. A local path is left as it is (a file name's undecodable bytes are
+    surrogate escapes, PEP 383, shown by ``shown_name``)."""
+    repaired = []
+    for name in TEXT_FIELDS:
+        value = getattr(c, name)
+        if name in KEY_FIELDS and isinstance(value, str):
+            value, changed = escaped_surrogates(value)
+        else:
+            value, changed = valid_unicode(value)
+        if changed:
+            setattr(c, name, value)
+            repaired.append(name)
+    c.not_unicode = tuple(dict.fromkeys((*c.not_unicode, *repaired)))
+    if c.not_unicode:  # the item's own note: which fields held such text
+        meta = dict(c.metadata or {})
+        if NOT_UNICODE in meta:  # a source's own field of that name is kept beside it
+            meta[f"{NOT_UNICODE} (as listed)"] = meta.pop(NOT_UNICODE)
+        c.metadata = {**meta, NOT_UNICODE: list(c.not_unicode)}
+    return c
+
+
+def unusable_image_url(c: Any) -> tuple[str, str, str] | None:
+    """(state, reason, detail) of a candidate whose image URL cannot be requested before any
+    request: none given, or one that held text that is not valid Unicode (its lone
+    surrogates name no bytes a URL could send: RFC 3986 §2.5 percent-encodes UTF-8); None
+    when the URL can go to the fetcher and its guard."""
+    if not c.image_url:
+        return "rejected", "no_image_url", "the source gave no image URL for this item"
+    if "image_url" in getattr(c, "not_unicode", ()):
+        return ("failed", "unsafe_url", "the image URL held text that is not valid Unicode "
+                "(a lone surrogate such as the JSON escape \\ud800, RFC 8259 §8.2), so it "
+                "names no URL that can be sent; not requested (the ledger keeps it with "
+                "U+FFFD in that place)")
+    return None
+
+
+def valid_note(note: SourceNote) -> SourceNote:
+    """A source note whose URL and message are valid Unicode (lone surrogates replaced)."""
+    url, _ = valid_unicode(note.url)
+    message, _ = valid_unicode(note.message)
+    return SourceNote(kind=note.kind, url=url, message=message, source=note.source)
+
+
+def not_unicode_note(c: Candidate) -> str:
+    """What a source note says about a candidate whose text was not valid Unicode."""
+    return (f"item {c.source_key!r}: {', '.join(c.not_unicode)} held text that is not valid "
+            "Unicode (a lone surrogate such as the JSON escape \\ud800, RFC 8259 §8.2); each "
+            "was replaced by U+FFFD (in an id: written as its escape) and the item's metadata "
+            "names the fields "
+            f"({NOT_UNICODE}); an image URL that held one is not requested (unsafe_url)")
+
+
 class OnceNotes:
     """Forwards notes to a sink, dropping repeats of the same (kind, key) within one run."""
 
@@ -235,7 +305,8 @@ def merge_query(url: str, params: Mapping[str, str]) -> str:
     query = parse_qsl(parts.query, keep_blank_values=True)
     present = {k for k, _ in query}
     query += [(k, v) for k, v in params.items() if k not in present]
-    return urlunsplit((parts.scheme, parts.netloc, parts.path, urlencode(query), parts.fragment))
+    return urlunsplit((parts.scheme, parts.netloc, parts.path, urls.encode_query(query),
+                       parts.fragment))
 
 
 def as_text(value: Any) -> str | None:
@@ -258,7 +329,11 @@ def as_text(value: Any) -> str | None:
 def capped_json(value: Any, limit: int = 16_384) -> Any:
     """value itself if its JSON form fits in limit bytes, else a truncated JSON string marker."""
     text = json.dumps(value, ensure_ascii=False, default=str)
-    if len(text.encode("utf-8")) <= limit:
+    # "surrogatepass": a lone surrogate (JSON's "\ud800", RFC 8259 §8.2) is measured as the
+    # three bytes it takes, not raised; the candidate's text is made valid later
+    # (sources.iter_candidates).
+    data = text.encode("utf-8", "surrogatepass")
+    if len(data) <= limit:
         return value
-    prefix = text.encode("utf-8")[:limit].decode("utf-8", "ignore")
+    prefix = data[:limit].decode("utf-8", "ignore")
     return {"truncated": True, "json_prefix": prefix}

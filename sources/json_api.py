@@ -532,8 +532,8 @@ class _Walker:
                 ) -> dict[str, Any] | None:
         cfg = self.cfg
         assert cfg.detail is not None and cfg.detail_url is not None
-        fill = {"id": quote(key, safe="")}
-        fill.update({k: quote(str(v), safe="") for k, v in values.items()
+        fill = {"id": _quoted(key)}
+        fill.update({k: _quoted(str(v)) for k, v in values.items()
                      if k in ITEM_FIELDS and v is not None})
         try:
             url = cfg.detail_url.format(**fill)
@@ -553,6 +553,16 @@ class _Walker:
             if value is not None:
                 merged[name] = value
         return merged
+
+
+def _quoted(value: str) -> str:
+    """A value percent-encoded for a detail URL; one holding a lone surrogate (no UTF-8 to
+    encode, RFC 3986 §2.5) is left as it is, so the fetcher's guard refuses that URL by name
+    and the item keeps its listing values."""
+    try:
+        return quote(value, safe="")
+    except UnicodeEncodeError:
+        return value
 
 
 def iter_candidates(source: Mapping[str, Any], fetcher: PageFetcher | None, notes: NoteSink,

@@ -98,8 +98,9 @@ def _int(value: str | None) -> int | None:
 
 
 def parse_answer(body: bytes) -> Answer:
-    """Read one response body; NotOai when it is not well-formed, declares a DTD or entities,
-    or is not in the OAI-PMH 2.0 namespace."""
+    """Read one response body; NotOai when it is not well-formed, declares a DTD or entities
+    or an encoding the parser cannot read (UTF-7, UTF-32, Shift_JIS, an unknown name), or is
+    not in the OAI-PMH 2.0 namespace."""
     try:
         root = fromstring(body, forbid_dtd=True)
     except DefusedXmlException as exc:
@@ -107,6 +108,9 @@ def parse_answer(body: bytes) -> Answer:
                      f"({type(exc).__name__}); OAI-PMH answers never need them") from exc
     except ParseError as exc:
         raise NotOai(f"the answer is not well-formed XML ({exc})") from exc
+    except (ValueError, LookupError) as exc:  # expat: "multi-byte encodings are not supported"
+        raise NotOai(f"the answer declares an encoding the XML parser cannot read ({exc}); "
+                     "OAI-PMH 2.0 answers are UTF-8 (§3.1.2.1)") from exc
     if root.tag != _q("OAI-PMH"):
         raise NotOai(f"the answer's root element is {root.tag!r}, not OAI-PMH in the "
                      f"namespace {OAI_NS} (OAI-PMH 2.0 §3.2); is the url the repository's "

@@ -33,6 +33,8 @@ from dataclasses import dataclass, field
 from html.parser import HTMLParser
 from urllib.parse import urlsplit
 
+from collector.safe_text import valid_unicode
+
 # The file is read up to this many bytes (TDMRep sets no limit; we borrow RFC 9309 §2.5's
 # 500 KiB floor for robots.txt, common practice, no source) and at most this many rules.
 MAX_TDMREP_BYTES = 512 * 1024
@@ -179,6 +181,9 @@ def parse_tdmrep(body: bytes) -> TdmRules:
         data = json.loads(body.decode("utf-8-sig"))
     except (UnicodeDecodeError, ValueError, RecursionError) as exc:
         raise TdmFileUnusable(f"not valid JSON ({type(exc).__name__})") from None
+    # JSON's "\ud800" escapes make lone surrogates (RFC 8259 §8.2): U+FFFD in their place, so
+    # the rules' locations, values and policies can be recorded.
+    data, _ = valid_unicode(data)
     if not isinstance(data, list):
         raise TdmFileUnusable("not a JSON array of rules (TDMRep §3.1)")
     if len(data) > MAX_TDMREP_RULES:

@@ -27,6 +27,7 @@ from collector.exports.datasheet_questions import SECTIONS, Question
 from collector.exports.datasheet_reservations import CAUTION as RESERVATIONS_CAUTION
 from collector.exports.datasheet_reservations import reservation_blocks
 from collector.exports.release import EXCLUSION_REASONS
+from collector.safe_text import document_value, for_document
 from collector.schema import toml_value
 
 if TYPE_CHECKING:
@@ -526,9 +527,11 @@ def _context(facts: DatasheetFacts, answers: dict[str, str],
 
 
 def _md_escape(value: Any) -> str:
-    """Every value in datasheet.md: table pipes and backslashes escaped, lines joined."""
+    """Every value in datasheet.md: table pipes and backslashes escaped, lines joined,
+    control characters shown as escapes (:func:`collector.safe_text.for_document`)."""
     text = "" if value is None else str(value)
-    return text.replace("\\", "\\\\").replace("|", "\\|").replace("\r", " ").replace("\n", " ")
+    text = text.replace("\\", "\\\\").replace("|", "\\|").replace("\r", " ").replace("\n", " ")
+    return for_document(text)
 
 
 @functools.cache
@@ -538,7 +541,7 @@ def _environment(markdown: bool) -> jinja2.Environment:
 
     return jinja2.Environment(
         loader=jinja2.PackageLoader("collector", "templates"), autoescape=not markdown,
-        finalize=_md_escape if markdown else None, undefined=jinja2.StrictUndefined,
+        finalize=_md_escape if markdown else document_value, undefined=jinja2.StrictUndefined,
         trim_blocks=True, lstrip_blocks=True, keep_trailing_newline=True)
 
 

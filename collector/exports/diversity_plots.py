@@ -14,6 +14,7 @@ from typing import TYPE_CHECKING, Any
 
 from collector.exports import diversity as dv
 from collector.exports.plots import _svg
+from collector.safe_text import for_document
 
 if TYPE_CHECKING:
     from collector.exports.diversity import DiversityFacts, Share
@@ -35,7 +36,7 @@ def _shares_axes(ax: Any, rows: list[Share], title: str, colour: str) -> None:
             r["files"] for r in rest), "share": sum(r["share"] for r in rest)}]
     pos = list(range(len(rows)))[::-1]
     ax.barh(pos, [100 * r["share"] for r in rows], color=colour)
-    ax.set_yticks(pos, [r["name"][:28] for r in rows], fontsize=7)
+    ax.set_yticks(pos, [for_document(r["name"])[:28] for r in rows], fontsize=7)
     ax.set_xlim(0, 100)
     ax.axvline(50, color="#999999", lw=0.8, ls="--")  # "more than half" warns
     ax.set_title(title, fontsize=9)

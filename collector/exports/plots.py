@@ -12,6 +12,8 @@ import io
 import re
 from typing import TYPE_CHECKING, Any
 
+from collector.safe_text import for_document
+
 if TYPE_CHECKING:
     from collector.exports.facts import DatasheetFacts, ResolutionBins, Timeline
 
@@ -36,7 +38,7 @@ def _svg(fig: Any, salt: str, *, tight: bool = True) -> str:
         fig.savefig(buf, format="svg", bbox_inches="tight" if tight else None,
                     metadata={"Date": None})
     text = buf.getvalue()
-    text = text[text.index("<svg"):]
+    text = for_document(text[text.index("<svg"):])  # a label's controls: not XML characters
     # Glyph and clip-path ids repeat across plots (DejaVuSans-31 in each): prefix every id and
     # every reference to one, so the ids of the page stay unique (HTML: an id is unique).
     text = re.sub(r'\bid="([^"]+)"', rf'id="{salt}-\1"', text)
@@ -51,7 +53,7 @@ def _barh(labels: list[str], values: list[int], colour: str, xlabel: str) -> Any
     ax = fig.add_subplot()
     pos = list(range(len(labels)))[::-1]
     ax.barh(pos, values, color=colour)
-    ax.set_yticks(pos, labels)
+    ax.set_yticks(pos, [for_document(label) for label in labels])
     ax.set_xlabel(xlabel)
     for y, v in zip(pos, values, strict=True):
         ax.annotate(str(v), (v, y), xytext=(3, 0), textcoords="offset points", va="center",

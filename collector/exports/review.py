@@ -35,6 +35,7 @@ from collector.exports.thumbnails import (
     Wanted,
     ensure_thumbnails,
 )
+from collector.safe_text import document_value
 from collector.storage.safe_paths import own_folder, remove_own_file, replace_file
 
 if TYPE_CHECKING:
@@ -119,12 +120,13 @@ def build_views(entries: list[rg.Entry], links: list[NearLink], per_page: int) -
 
 
 def _environment() -> jinja2.Environment:
-    """Jinja2 with autoescape on for every value."""
+    """Jinja2 with autoescape on for every value, control characters shown as escapes."""
     import jinja2
 
     return jinja2.Environment(
         loader=jinja2.PackageLoader("collector", "templates"), autoescape=True,
-        undefined=jinja2.StrictUndefined, trim_blocks=True, lstrip_blocks=True)
+        finalize=document_value, undefined=jinja2.StrictUndefined, trim_blocks=True,
+        lstrip_blocks=True)
 
 
 def render_pages(views: list[rg.View], context: dict[str, Any]) -> dict[str, str]:

@@ -211,7 +211,9 @@ def to_csv(results: Iterable[TraceResult]) -> str:
 def to_json(results: list[TraceResult]) -> str:
     """Every result with its full provenance record, plus the summary and the caution."""
     data = {
-        "results": [{**asdict(r), "distance": r.distance} for r in results],
+        # a path's undecodable bytes as \xNN, never as a lone surrogate (RFC 8259 §8.2)
+        "results": [{**asdict(r), "path": shown_name(r.path), "distance": r.distance}
+                    for r in results],
         "summary": asdict(summarise(results)),
         "caution": CAUTION,
     }

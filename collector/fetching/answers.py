@@ -19,6 +19,8 @@ from typing import Any
 from requests.structures import CaseInsensitiveDict
 from requests.utils import parse_header_links
 
+from collector.safe_text import valid_unicode
+
 # Retried statuses: 429 (RFC 6585 §4) and the temporary 5xx answers (RFC 9110 §15.6).
 RETRY_STATUSES = frozenset({429, 500, 502, 503, 504})
 # Statuses that ask the client to slow down: the host's budget is throttled too.
@@ -82,14 +84,17 @@ class Page:
 
     def _decode(self, default: str) -> str:
         try:
-            return self.body.decode(self.encoding or default, errors="replace")
+            text = self.body.decode(self.encoding or default, errors="replace")
         except LookupError:  # the server named a charset that does not exist (or not text)
-            return self.body.decode(default, errors="replace")
+            text = self.body.decode(default, errors="replace")
+        # A codec can make lone surrogates of bytes (UTF-7, RFC 2152, encodes UTF-16 code
+        # units, unchecked): bad bytes too, replaced like the others.
+        return valid_unicode(text)[0]
 
     @property
     def text(self) -> str:
         """The body decoded with the response charset (UTF-8 if none or unknown), bad bytes
-        replaced."""
+        (and lone surrogates a codec made of them) replaced by U+FFFD."""
         return self._decode("utf-8")
 
     def json(self) -> Any:

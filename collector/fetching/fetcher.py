@@ -65,6 +65,7 @@ from collector.fetching.robots import (
 )
 from collector.fetching.settings import FetchSettings  # also the fetcher's import path
 from collector.fetching.transport import Answer, Transport, TransportError, TransportTimeout
+from collector.safe_text import valid_unicode
 from collector.schema import expand_env
 from collector.urls import (
     MIN_SECRET_LEN,
@@ -221,7 +222,7 @@ class Fetcher:
         current = url
         hops = 0
         while True:
-            shown = redact(current, secret_params)
+            shown, _ = valid_unicode(redact(current, secret_params))  # what the ledger keeps
             row = {"purpose": purpose, "item_id": item_id, "url": shown}
             try:
                 target = transport_target(current, shown)

@@ -28,6 +28,7 @@ from requests.models import PreparedRequest
 from urllib3.util import parse_url
 
 from collector.errors import UnsafeURL
+from collector.safe_text import valid_unicode
 from collector.urls import ALLOWED_SCHEMES, DEFAULT_PORTS
 
 # C0 controls, DEL and C1 controls (Unicode general category Cc).
@@ -90,11 +91,11 @@ def _idna(host: str) -> str:
 def transport_target(url: str, shown: str | None = None) -> Target:
     """The :class:`Target` of an http(s) URL, or :class:`UnsafeURL` with the reason.
 
-    Refused: other schemes, no host, an authority with a backslash, a control or bidi
-    character, or text that NFKC normalisation changes; a URL the HTTP library cannot
-    prepare; and any URL for which ``urllib.parse`` and the HTTP library name different hosts
-    or ports (so the ledger's URL always names the host that was contacted). Messages show
-    ``shown`` (the redacted URL) when it is given.
+    Refused: other schemes, no host, a lone surrogate anywhere, an authority with a backslash,
+    a control or bidi character, or text that NFKC normalisation changes; a URL the HTTP
+    library cannot prepare; and any URL for which ``urllib.parse`` and the HTTP library name
+    different hosts or ports (so the ledger's URL always names the host that was contacted).
+    Messages show ``shown`` (the redacted URL) when it is given.
     """
     label = url if shown is None else shown
     match = _SCHEME.match(url)
@@ -103,6 +104,10 @@ def transport_target(url: str, shown: str | None = None) -> Target:
         raise _refuse(label, f"scheme {scheme or '(none)'!r} is not http or https")
     if _CONTROL.search(url):
         raise _refuse(label, "the URL holds a control character")
+    if valid_unicode(url)[1]:
+        raise _refuse(valid_unicode(label)[0], "the URL holds text that is not valid Unicode "
+                      "(a lone surrogate, shown as U+FFFD): it names no bytes a request could "
+                      "send (RFC 3986 §2.5 percent-encodes UTF-8)")
     authority = _authority(url)
     if "\\" in authority:
         raise _refuse(label, "the URL's host part holds a backslash, which HTTP libraries and "

@@ -39,6 +39,7 @@ from collector.run.dedup import Demote, Keep, NearCandidate, NearCopy, TakeOver
 from collector.run.record import RunRecord
 from collector.run.reservations import ReservationGate
 from collector.safe_text import shown_name
+from collector.sources.base import unusable_image_url
 from collector.storage import upkeep_queries
 from collector.storage.collection import Collection
 from collector.storage.hashindex import HashIndex
@@ -181,9 +182,8 @@ class Ingest:
         if c.content is not None or c.local_path is not None:
             self.ingest_local(source_id, item_id, c)
             return None
-        if not c.image_url:
-            self.record.finish(item_id, "rejected", "no_image_url",
-                               "the source gave no image URL for this item")
+        if (unusable := unusable_image_url(c)) is not None:  # none, or not valid Unicode
+            self.record.finish(item_id, *unusable)
             return None
         refusal = self.gate.admission(source_id, item_id, c.page_url)
         if refusal is not None:  # reserved on the listing or detail page: nothing requested
