@@ -153,3 +153,26 @@ def test_the_newly_recognised_forms_pass_the_default_allowlist():
     from collector.checks.licences import DEFAULT_ALLOW
     spdx = normalise_licence(None, "//creativecommons.org/licenses/by-sa/4.0/").spdx_id
     assert licence_allowed(spdx, DEFAULT_ALLOW, False) == (True, None)
+
+
+@pytest.mark.parametrize("text", [
+    "CC0-1.0x", "CC0 2.0", "CC-BY-4.0X", "CC-BY-4.0.1", "CC BY 4.0x",
+    "Creative Commons Attribution 4.0x", "Public Domain Mark 1.0x", "CC BY-SA 4.01",
+])
+def test_a_version_with_something_glued_to_it_names_no_licence(text):
+    """A CC version number that goes on ("4.0x", "4.0.1") or a version the tool never had
+    (CC0 and the Public Domain Mark exist in 1.0 only: SPDX License List 3.28.0, CC0-1.0 and
+    CC-PDM-1.0) is read as no licence, not as the licence whose name it begins with."""
+    assert normalise_licence(text, None).spdx_id is None
+
+
+@pytest.mark.parametrize(("text", "expected"), [
+    ("Licensed under CC-BY-4.0.", "CC-BY-4.0"),        # a sentence's full stop
+    ("Released as CC0.", "CC0-1.0"),
+    ("CC0 1.0 Universal", "CC0-1.0"),
+    ("CC-BY-SA-4.0; see the site", "CC-BY-SA-4.0"),
+    ("Public Domain Mark 1.0, no known copyright", "CC-PDM-1.0"),
+])
+def test_a_version_that_ends_where_it_should_is_still_read(text, expected):
+    """The same names followed by punctuation or words are read as before."""
+    assert normalise_licence(text, None).spdx_id == expected

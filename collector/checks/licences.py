@@ -131,21 +131,28 @@ _ELEMENT_NAMES = {
     "attribution": "BY", "noncommercial": "NC", "sharealike": "SA",
     "noderivatives": "ND", "noderivs": "ND",
 }  # fmt: skip
+# A version ends there: no letter, digit or further ".digit" glued to it ("4.0x", "4.0.1" name
+# no licence; a sentence's full stop after "4.0" is fine).
+_VERSION_END = r"(?!\w|\.\d)"
 _LONG_ELEMENTS = (
     r"(?P<els>attribution(?:[\s-]*(?:non[\s-]?commercial|share[\s-]?alike"
-    r"|no[\s-]?derivatives|no[\s-]?derivs))*)[\s-]+(?P<ver>\d\.\d)(?P<rest>[\w\s&:-]*)")
+    r"|no[\s-]?derivatives|no[\s-]?derivs))*)[\s-]+(?P<ver>\d\.\d)" + _VERSION_END +
+    r"(?P<rest>[\w\s&:-]*)")
 _LONG_NAME = re.compile(r"creative\s+commons\s+" + _LONG_ELEMENTS, re.I)
 # CC's deeds title a licence without the words "Creative Commons" ("Attribution-NonCommercial-
 # ShareAlike 4.0 International"): read only as a whole string, where nothing else can be meant.
 _TITLE_NAME = re.compile(_LONG_ELEMENTS, re.I)
 _SHORT_NAME = re.compile(
-    r"\bcc[\s-]+(?P<els>by(?:[\s-]+(?:nc|sa|nd)\b)*)[\s-]+(?P<ver>\d\.\d)"
+    r"\bcc[\s-]+(?P<els>by(?:[\s-]+(?:nc|sa|nd)\b)*)[\s-]+(?P<ver>\d\.\d)" + _VERSION_END +
     r"(?P<rest>(?:[\s-]+[a-z]{2,13})?)",
     re.I,
 )
+# CC0 and the Public Domain Mark have version 1.0 only: a name followed by another version
+# ("CC0 2.0", "CC0-1.0x") names nothing that exists.
+_ONLY_V1 = r"(?:(?P<ver>[\s-]+v?1\.0)" + _VERSION_END + r"|(?![\s-]+v?\d))"
 _CC0_NAME = re.compile(
-    r"\b(?:cc[\s-]?(?:0|zero)|creative\s+commons\s+zero)\b(?P<ver>[\s-]+v?1\.0)?", re.I)
-_PDM_NAME = re.compile(r"\bpublic[\s-]+domain[\s-]+mark\b(?P<ver>[\s-]+v?1\.0)?", re.I)
+    r"\b(?:cc[\s-]?(?:0|zero)|creative\s+commons\s+zero)\b" + _ONLY_V1, re.I)
+_PDM_NAME = re.compile(r"\bpublic[\s-]+domain[\s-]+mark\b" + _ONLY_V1, re.I)
 _RESERVED = re.compile(r"\ball\s+rights\s+reserved\b", re.I)
 
 
