@@ -1,9 +1,11 @@
-"""The ledger methods the run asks and changes through (collector.run holds no SQL)."""
+"""The ledger methods and queries the run asks and changes through (collector.run holds no
+SQL)."""
 
 from __future__ import annotations
 
 from pathlib import Path
 
+from collector.storage import queries
 from collector.storage.ledger import Ledger
 
 SHA_A = "a" * 64
@@ -27,10 +29,11 @@ def test_stored_with_image_url_finds_another_kept_item(tmp_path: Path) -> None:
     """Only another item in a kept state with a file counts as "same image URL"."""
     with Ledger.create(tmp_path / "l.sqlite") as ledger:
         one, _, three = _items(ledger)
-        assert ledger.stored_with_image_url("http://127.0.0.59/a.jpg", three) == {
+        assert queries.stored_with_image_url(ledger, "http://127.0.0.59/a.jpg", three) == {
             "id": one, "file_sha256": SHA_A}
-        assert ledger.stored_with_image_url("http://127.0.0.59/a.jpg", one) is None
-        assert ledger.stored_with_image_url("http://127.0.0.59/b.jpg", three) is None  # dup
+        assert queries.stored_with_image_url(ledger, "http://127.0.0.59/a.jpg", one) is None
+        assert queries.stored_with_image_url(
+            ledger, "http://127.0.0.59/b.jpg", three) is None  # dup
 
 
 def test_gone_runs_counts_runs_not_requests(tmp_path: Path) -> None:
@@ -41,7 +44,7 @@ def test_gone_runs_counts_runs_not_requests(tmp_path: Path) -> None:
                                      (3, 500, "image"), (4, 404, "listing")]:
             ledger.record_fetch(run_id=run, item_id=one, purpose=purpose, status=status,
                                 url="http://127.0.0.59/a.jpg")
-        assert ledger.gone_runs(one) == 2
+        assert queries.gone_runs(ledger, one) == 2
 
 
 def test_pass_file_to_moves_the_file_and_its_duplicates(tmp_path: Path) -> None:

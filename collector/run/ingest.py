@@ -40,7 +40,7 @@ from collector.run.record import RunRecord
 from collector.run.reservations import ReservationGate
 from collector.safe_text import shown_name
 from collector.sources.base import unusable_image_url
-from collector.storage import upkeep_queries
+from collector.storage import queries, upkeep_queries
 from collector.storage.collection import Collection
 from collector.storage.hashindex import HashIndex
 from collector.storage.ledger import Ledger
@@ -196,7 +196,7 @@ class Ingest:
                 return None
             settled = self._settled.get(c.image_url)
             same = (None if settled is not None
-                    else self.ledger.stored_with_image_url(image_url, item_id))
+                    else queries.stored_with_image_url(self.ledger, image_url, item_id))
             if settled is None and same is None:
                 self._waiting[c.image_url] = []
         if settled is not None:
@@ -331,7 +331,7 @@ class Ingest:
         not requested again: retrying a missing file every night only costs the archive."""
         if row["state"] != "failed" or row["reason"] not in GONE_REASONS:
             return False
-        return self.ledger.gone_runs(row["id"]) >= GONE_RUNS
+        return queries.gone_runs(self.ledger, row["id"]) >= GONE_RUNS
 
     def rank(self, item_id: int) -> dedup.Rank:
         """The item's place in listing order (see :func:`collector.run.dedup.listing_rank`)."""

@@ -50,6 +50,7 @@ from collector.run.listed import AdmissionFailed, ListedGroup
 from collector.run.record import NullProgress, Progress, RunRecord, secret_values
 from collector.run.reservations import ReservationGate
 from collector.sources.base import ListingState, PageFetcher
+from collector.storage import queries
 from collector.storage.collection import Collection
 from collector.storage.ledger import Ledger, utc_now
 from collector.storage.ledger_repair import backup_ledger
@@ -376,7 +377,8 @@ class Gatherer:
                                  source_id=source_id)
             self.progress.event("note", source=source["name"], note=n.kind, message=n.message)
 
-        state = ListingState(self.ledger.listing_state(source_id, self._config_sha[source_id]))
+        state = ListingState(queries.listing_state(self.ledger, source_id,
+                                                  self._config_sha[source_id]))
         try:
             # The page fetcher notes reservation signals; candidates are admitted in groups.
             listed = ListedGroup(self, source_id, self.gate.watching(self.fetcher, source_id))
@@ -415,7 +417,7 @@ class Gatherer:
         if self.stop_event.is_set() or self.fatal is not None:
             return
         for source_id, value in self._reached.items():
-            left = self.ledger.unsettled_items(source_id, self.run_id)
+            left = queries.unsettled_items(self.ledger, source_id, self.run_id)
             if left:
                 self.ledger.add_note(
                     "listing_state_kept", f"{left} item(s) of this source are to be tried "

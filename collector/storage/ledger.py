@@ -529,25 +529,8 @@ class Ledger:
         return self._insert("reservation_signals", {"seen_at": utc_now(), **fields})
 
     # -- what the run asks and changes -------------------------------------------------------
-    # The questions and multi-row changes of collector.run (ingest and prepared_run); the run
-    # itself holds no SQL.
-    def stored_with_image_url(self, image_url: str | None,
-                              other_than: int) -> dict[str, Any] | None:
-        """Another item whose file came from ``image_url`` and is kept (stored or near
-        duplicate), as ``{"id", "file_sha256"}``, or None."""
-        rows = self.query(
-            "SELECT id, file_sha256 FROM items WHERE image_url = ? AND id != ? AND state IN "
-            "('stored', 'near_duplicate') AND file_sha256 IS NOT NULL LIMIT 1",
-            (image_url, other_than))
-        return rows[0] if rows else None
-
-    def gone_runs(self, item_id: int) -> int:
-        """In how many runs the server answered 404 or 410 to the item's image request."""
-        runs = self.scalar(
-            "SELECT count(DISTINCT run_id) FROM fetches WHERE item_id = ? AND purpose = 'image' "
-            "AND status IN (404, 410)", (item_id,))
-        return int(runs or 0)
-
+    # The multi-row changes of collector.run (ingest and prepared_run; its questions are in
+    # collector.storage.queries); the run itself holds no SQL.
     def pass_file_to(self, sha256: str, old_id: int, new_id: int) -> None:
         """``new_id`` becomes the item the file ``sha256`` belongs to, and the original of
         every item that named ``old_id`` as its original (a take-over by listing order)."""
@@ -565,13 +548,6 @@ class Ledger:
                                [sha256])
             self._conn.execute("DELETE FROM files WHERE sha256 = ?", [sha256])
 
-    def listing_state(self, source_id: int, config_sha256: str) -> str | None:
-        """What the source's last complete listing remembered for the next run, or None
-        (also when the source's table has changed since: a new set, prefix or URL lists
-        everything again)."""
-        return self.scalar("SELECT value FROM listing_states WHERE source_id = ? AND "
-                           "config_sha256 = ?", (source_id, config_sha256))
-
     def set_listing_state(self, source_id: int, value: str, config_sha256: str,
                           run_id: int) -> None:
         """Keep what this run's complete listing of the source remembered."""
@@ -582,14 +558,6 @@ class Ledger:
                 "value = excluded.value, config_sha256 = excluded.config_sha256, "
                 "run_id = excluded.run_id, saved_at = excluded.saved_at",
                 (source_id, value, config_sha256, run_id, utc_now()))
-
-    def unsettled_items(self, source_id: int, run_id: int) -> int:
-        """How many items of the source this run left to try again (pending, failed,
-        deferred): a listing that only reports changes would not list them again."""
-        count = self.scalar(
-            "SELECT count(*) FROM items WHERE source_id = ? AND run_id = ? AND state IN "
-            "('pending', 'failed', 'deferred')", (source_id, run_id))
-        return int(count or 0)
 
     def mark_killed_runs(self) -> None:
         """Runs still marked ``running`` end as ``killed: did not end cleanly`` (called with

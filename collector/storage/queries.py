@@ -283,3 +283,40 @@ def _licence_key(ledger: Ledger, prefix: str = "i.") -> str:
     RightsStatements.org statement, else 'unknown'."""
     return (f"coalesce({prefix}spdx_id, 'rs:' || {_statement_column(ledger, prefix)}, "
             "'unknown')")
+
+
+# -- what the run asks (collector.run holds no SQL) ------------------------------------------
+def stored_with_image_url(ledger: Ledger, image_url: str | None,
+                          other_than: int) -> dict[str, Any] | None:
+    """Another item whose file came from ``image_url`` and is kept (stored or near
+    duplicate), as ``{"id", "file_sha256"}``, or None."""
+    rows = ledger.query(
+        "SELECT id, file_sha256 FROM items WHERE image_url = ? AND id != ? AND state IN "
+        "('stored', 'near_duplicate') AND file_sha256 IS NOT NULL LIMIT 1",
+        (image_url, other_than))
+    return rows[0] if rows else None
+
+
+def gone_runs(ledger: Ledger, item_id: int) -> int:
+    """In how many runs the server answered 404 or 410 to the item's image request."""
+    runs = ledger.scalar(
+        "SELECT count(DISTINCT run_id) FROM fetches WHERE item_id = ? AND purpose = 'image' "
+        "AND status IN (404, 410)", (item_id,))
+    return int(runs or 0)
+
+
+def listing_state(ledger: Ledger, source_id: int, config_sha256: str) -> str | None:
+    """What the source's last complete listing remembered for the next run, or None (also
+    when the source's table has changed since: a new set, prefix or URL lists everything
+    again)."""
+    return ledger.scalar("SELECT value FROM listing_states WHERE source_id = ? AND "
+                         "config_sha256 = ?", (source_id, config_sha256))
+
+
+def unsettled_items(ledger: Ledger, source_id: int, run_id: int) -> int:
+    """How many items of the source this run left to try again (pending, failed, deferred):
+    a listing that only reports changes would not list them again."""
+    count = ledger.scalar(
+        "SELECT count(*) FROM items WHERE source_id = ? AND run_id = ? AND state IN "
+        "('pending', 'failed', 'deferred')", (source_id, run_id))
+    return int(count or 0)
