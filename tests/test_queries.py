@@ -30,6 +30,9 @@ SAMPLE_ARGS: dict[str, Any] = {
     "grey_chroma": 6.0, "lightness_edges": (50,), "chroma_edges": (6, 30),
     "pixel_edges": (0.1, 1), "aspect_edges": (1,), "max_colour_files": 10,
     "hash_algo": "dct-phash-64/draft-v2", "window_algo": "dct-phash-64/windows-80-4x4-v1",
+    # what the run asks (collector.run.ingest and scheduling)
+    "image_url": "http://127.0.0.59/a.png", "other_than": 2, "source_id": 1, "run_id": 1,
+    "config_sha256": "cd" * 32,
 }
 
 # The read modules: status/trace/hash index, the datasheet and release, its diversity panel.
@@ -93,6 +96,8 @@ def ledger(tmp_path: Path) -> Iterator[Ledger]:
         led.add_file({"sha256": "ab" * 32, "size": 3, "ext": "png", "format": "PNG",
                       "width": 4, "height": 2, "phash": -5, "first_item_id": item})
         led.update_item(item, state="stored", file_sha256="ab" * 32)
+        run = led.start_run("ef" * 32, {}, "test")
+        led.set_listing_state(source, "next-token", SAMPLE_ARGS["config_sha256"], run)
         yield led
 
 
