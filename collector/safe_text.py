@@ -40,6 +40,11 @@ _SURROGATE = re.compile("[\ud800-\udfff]")
 REPLACEMENT = "\ufffd"
 
 
+# The key, in an item's metadata, naming the fields that held text that was not valid
+# Unicode (written where candidates enter: sources.base.valid_candidate; shown by trace).
+NOT_UNICODE = "invalid_unicode"
+
+
 def valid_unicode(value: Any) -> tuple[Any, bool]:
     """``value`` with every surrogate code point replaced by U+FFFD, and whether there was one.
 

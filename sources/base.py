@@ -16,7 +16,7 @@ from urllib.parse import parse_qsl, urljoin, urlsplit, urlunsplit
 
 from collector import urls
 from collector.errors import FetchError, RecipeProblem, SourceError
-from collector.safe_text import escaped_surrogates, valid_unicode
+from collector.safe_text import NOT_UNICODE, escaped_surrogates, valid_unicode
 from collector.schema import Key, Problems
 
 __all__ = [
@@ -186,7 +186,7 @@ class SourceKind:
 TEXT_FIELDS = ("source_key", "image_url", "page_url", "title", "creator", "licence_raw",
                "licence_url", "date", "metadata", "parent_key", "withdrawn", "size_request")
 KEY_FIELDS = ("source_key", "parent_key")  # identifiers: surrogates escaped, not replaced
-NOT_UNICODE = "invalid_unicode"  # the note kind and the item's metadata key
+# NOT_UNICODE (collector.safe_text): the note kind and the item's metadata key
 
 
 def valid_candidate(c: Candidate) -> Candidate:

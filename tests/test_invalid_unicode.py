@@ -140,6 +140,29 @@ def test_no_lone_surrogate_reaches_the_ledger_or_the_exports(gathered, tmp_path:
             assert f"Leaf {FFFD} one" in result.output
 
 
+def test_trace_says_which_listed_fields_held_text_that_is_not_unicode(gathered) -> None:
+    """``trace`` of a file whose item had surrogates in its title and creator names those
+    fields (its record is otherwise as usual); a clean item's record says nothing of it."""
+    col, _ = gathered
+    with col.ledger(readonly=True) as ledger:
+        sha = {r["source_key"]: r["file_sha256"] for r in ledger.query(
+            "SELECT source_key, file_sha256 FROM items WHERE state = 'stored'")}
+    outputs = {}
+    for key in ("0", "1"):
+        stored = col.store.find(sha[key])
+        assert stored is not None
+        result = CliRunner().invoke(app, ["trace", str(stored), "--in", str(col.root)])
+        assert result.exit_code == 0, result.output
+        outputs[key] = result.output
+    line = next(ln for ln in outputs["1"].splitlines() if "listed text:" in ln)
+    assert "title" in line and "creator" in line and "not valid Unicode" in line
+    assert "listed text:" not in outputs["0"]
+    shown = CliRunner().invoke(app, ["trace", str(col.store.find(sha["1"])), "--in",
+                                     str(col.root), "--json"])
+    origin = json.loads(shown.output)["results"][0]["file"]["origin"]
+    assert set(origin["not_unicode"]) >= {"title", "creator"}
+
+
 def test_ids_differing_only_in_their_surrogates_stay_two_items() -> None:
     """A key keeps each surrogate as its escape (``\\ud800``), not U+FFFD: "a\ud800" and
     "a\udc00" would otherwise both be "a\ufffd", one item whose row the second overwrites."""

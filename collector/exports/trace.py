@@ -42,6 +42,7 @@ from collector.checks.likeness import Look, find_copies, look_at_file
 from collector.checks.rights_statements import STATEMENTS
 from collector.errors import CollectorError
 from collector.exports.trace_format import attribution_line, recovered_words
+from collector.safe_text import NOT_UNICODE
 from collector.storage import queries, upkeep_queries
 from collector.storage.collection import Collection, open_collection
 from collector.storage.hashindex import HashFile, NearMatch
@@ -129,6 +130,7 @@ class ItemRecord:
     rights_statement: str | None = None  # RightsStatements.org id, when no SPDX licence
     size_request: dict[str, Any] | None = None  # how the image size was negotiated
     reservation_checks: str | None = None  # the mechanisms checked (collector.run.reservations)
+    not_unicode: list[str] = field(default_factory=list)  # fields that held invalid text
 
 
 @dataclass
@@ -218,6 +220,13 @@ def sha256_file(path: Path) -> str:
         while chunk := fh.read(_CHUNK):
             digest.update(chunk)
     return digest.hexdigest()
+
+
+def _not_unicode(metadata: Any) -> list[str]:
+    """The fields of an item that held text that was not valid Unicode (its metadata's
+    ``invalid_unicode`` list, written where candidates enter), or none."""
+    named = metadata.get(NOT_UNICODE) if isinstance(metadata, dict) else None
+    return [str(name) for name in named] if isinstance(named, list) else []
 
 
 def _looks_like_image(path: Path) -> bool:
@@ -500,7 +509,8 @@ class Tracer:
             crop_box=list(box) if isinstance(box, list) else None,
             near_of=row.get("duplicate_of") if row.get("state") == "near_duplicate" else None,
             near_distance=row.get("near_distance"),
-            reservation_checks=row.get("reservation_checks"))
+            reservation_checks=row.get("reservation_checks"),
+            not_unicode=_not_unicode(row.get("metadata")))
         if with_scan and item.parent_sha256:
             scans = queries.items_of_file(self.ledger, item.parent_sha256, limit=1)
             if scans:

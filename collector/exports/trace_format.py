@@ -265,6 +265,9 @@ def _item_lines(item: ItemRecord, indent: str = "  ") -> list[str]:
         if value:
             lines.append(f"{indent}{label + ':':<13} {value}")
     lines.append(f"{indent}licence:      {licence_words(item)}")
+    if item.not_unicode:
+        lines.append(f"{indent}listed text:  {', '.join(item.not_unicode)} held text that is not "
+                     "valid Unicode; kept with U+FFFD in its place")
     if item.size_request:
         lines.append(f"{indent}image size:   {_size_words(item.size_request)}")
     if item.fetch:
