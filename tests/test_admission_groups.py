@@ -20,6 +20,7 @@ from typing import Any
 
 import pytest
 
+from collector.demo_site.recipes import listing_source
 from collector.run.gather import prepared_run
 from collector.run.ingest import Ingest
 from collector.run.listed import LISTED_GROUP, ListedGroup
@@ -27,20 +28,8 @@ from collector.run.scheduling import Gatherer
 from collector.sources.base import Candidate
 from collector.storage.collection import Collection, init_collection
 
-RECIPE = '''contact = "tests@example.org"
-[network]
-allow_addresses = ["127.0.0.0/8"]
-[[sources]]
-name = "api"
-kind = "json_api"
-url = "http://127.0.0.9:8000/items"
-[sources.pagination]
-style = "none"
-[sources.fields]
-items = "results"
-id = "id"
-image_url = "image"
-'''
+RECIPE = ('contact = "tests@example.org"\n[network]\nallow_addresses = ["127.0.0.0/8"]\n'
+          + listing_source("api", "http://127.0.0.9:8000/items"))
 IMG = "http://127.0.0.9:8001/img/{}.png"
 
 

@@ -242,31 +242,11 @@ def test_a_cursor_or_detail_url_holding_a_lone_surrogate_is_refused_by_name(
         server.prefixes["/detail/"] = (200, b'{"title": "From detail"}',
                                        {"Content-Type": "application/json"})
         col = init_collection(tmp_path / "col", contact="x@example.org")
-        col.recipe_path.write_text(f'''contact = "x@example.org"
-[budgets]
-min_interval = 0.0
-[network]
-allow_addresses = ["127.0.0.1/32"]
-[[sources]]
-name = "leaves"
-kind = "json_api"
-url = "{server.url("/api")}"
-[sources.pagination]
-style = "cursor"
-next_cursor = "next"
-send_cursor_as = "after"
-[sources.fields]
-items = "results"
-id = "id"
-title = "title"
-licence = "licence"
-image_url = "image"
-[sources.detail]
-url = "{server.url("/detail/")}{{id}}"
-when = "always"
-[sources.detail.fields]
-title = "title"
-''')
+        cursor = 'style = "cursor"\nnext_cursor = "next"\nsend_cursor_as = "after"'
+        col.recipe_path.write_text(
+            one_listing_recipe(server.url("/api"), min_interval=0.0, pagination=cursor)
+            + f'[sources.detail]\nurl = "{server.url("/detail/")}{{id}}"\nwhen = "always"\n'
+            '[sources.detail.fields]\ntitle = "title"\n')
         result = gather(col)
         hits = [h.path for h in server.hits]
     assert result.outcome == "finished"

@@ -25,16 +25,17 @@ def render(name: str, port: int, scans_dir: Path | None = None) -> str:
     return text.replace("{port}", str(int(port))).replace("{scans}", scans)
 
 
-def listing_source(name: str, url: str) -> str:
-    """A ``[[sources]]`` table (TOML text) for a JSON listing at ``url`` on one page: its
-    ``results``, each with ``id``, ``title``, ``licence`` and ``image`` (the loopback listings
-    the tests and benches serve)."""
+def listing_source(name: str, url: str, *, pagination: str = 'style = "none"') -> str:
+    """A ``[[sources]]`` table (TOML text) for a JSON listing at ``url``: its ``results``,
+    each with ``id``, ``title``, ``licence`` and ``image`` (the loopback listings the tests
+    and benches serve); one page unless ``pagination`` (the lines of its
+    ``[sources.pagination]`` table) says otherwise."""
     return f'''[[sources]]
 name = "{name}"
 kind = "json_api"
 url = "{url}"
 [sources.pagination]
-style = "none"
+{pagination}
 [sources.fields]
 items = "results"
 id = "id"

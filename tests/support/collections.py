@@ -39,13 +39,15 @@ def one_page_recipe(port: int) -> str:
             .replace('per_page = "20"', 'per_page = "10"'))
 
 
-def one_listing_recipe(url: str, *, min_interval: float | None = 0.1) -> str:
+def one_listing_recipe(url: str, *, min_interval: float | None = 0.1,
+                       pagination: str = 'style = "none"') -> str:
     """A recipe over one JSON listing at ``url`` on 127.0.0.1 (``results`` with ``id``,
-    ``title``, ``licence`` and ``image`` each), no pagination; ``min_interval`` None keeps the
-    default budget."""
+    ``title``, ``licence`` and ``image`` each), no pagination unless ``pagination`` (the
+    lines of its table) says so; ``min_interval`` None keeps the default budget."""
     budget = f"[budgets]\nmin_interval = {min_interval}\n" if min_interval is not None else ""
     return ('contact = "x@example.org"\n' + budget
-            + '[network]\nallow_addresses = ["127.0.0.1/32"]\n' + listing_source("leaves", url))
+            + '[network]\nallow_addresses = ["127.0.0.1/32"]\n'
+            + listing_source("leaves", url, pagination=pagination))
 
 
 def serve_leaves(server: Any, count: int, *, first: int = 0,
