@@ -14,6 +14,7 @@ from typing import Any, Protocol
 
 from collector.config.recipe import Recipe
 from collector.errors import CollectorError, FetchError, HostParked, LedgerError
+from collector.safe_text import escaped_surrogates
 from collector.schema import expand_env
 from collector.storage.ledger import Ledger
 from collector.urls import (
@@ -123,7 +124,7 @@ def admission_outcome(exc: Exception) -> tuple[str, str, str]:
             f"internal error while admitting it ({type(exc).__name__}: {exc}); the run "
             "failed, its traceback is in the folder's errors.log")
     # An error may quote the bad value itself (a lone surrogate): kept storable as text.
-    return state, reason, detail.encode("utf-8", "backslashreplace").decode("utf-8")
+    return state, reason, escaped_surrogates(detail)[0]
 
 
 def secret_values(recipe: Recipe) -> list[str]:
