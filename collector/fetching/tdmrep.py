@@ -26,7 +26,6 @@ import threading
 import time
 from dataclasses import dataclass
 from datetime import UTC, datetime
-from functools import lru_cache
 from typing import Any
 from urllib.parse import urlsplit, urlunsplit
 
@@ -64,7 +63,6 @@ class TdmFile:
         return 0 <= age < (UNKNOWN_RETRY if self.state in (UNKNOWN, NOT_READ) else TDMREP_TTL)
 
 
-@lru_cache(maxsize=4096)  # asked for every item's listing page and image: few origins
 def tdmrep_url(url: str) -> str:
     """The tdmrep.json URL of ``url``'s origin (scheme, host and port)."""
     parts = urlsplit(url)
