@@ -13,9 +13,10 @@ import requests
 from hypothesis import given, settings
 from hypothesis import strategies as st
 from requests.adapters import HTTPAdapter
+from urllib3.util import parse_url
 
 from collector.errors import UnsafeURL
-from collector.fetching.http_target import transport_target
+from collector.fetching.http_target import _library_target, _plain_target, transport_target
 from collector.urls import split_checked
 
 ALLOWED = "127.0.0.51"
@@ -96,3 +97,65 @@ def test_an_approved_host_is_the_host_the_library_connects_to(authority: str) ->
     assert ledger_port == target.port
     assert ledger_host.encode("idna").decode().lower() == target.host or \
         ledger_host == target.host
+
+
+# The quick reading of plain URLs (http_target._plain_target) against the library's own.
+PLAIN_URLS = [
+    "http://127.0.0.51:8651/a/b.png",
+    "https://archive.example/iiif/2/plate-01/full/max/0/default.jpg",
+    "http://127.0.0.51:8651/api/items?page=2&per_page=50",
+    "http://127.0.0.51:8651/scans/Plate%2001%20(recto).jpg",
+    "http://127.0.0.51:8651/a;v=1/b@c:d/~x_y-z.jpg?q=a,b;c=$1&d=(2)*'3'!",
+    "http://h.example:1/x?y=/z?w",
+]
+
+
+@pytest.mark.parametrize("url", PLAIN_URLS)
+def test_plain_urls_are_read_without_the_library_as_the_library_reads_them(url: str) -> None:
+    """The common plain form takes the quick path, and its target is what requests prepares
+    (the URL sent as written) and where its pool connects, with urllib3's request line."""
+    quick = _plain_target(url)
+    assert quick is not None
+    assert quick == _library_target(url) == transport_target(url)
+    assert requests.Request("GET", url).prepare().url == url
+    assert library_connects_to(url) == (quick.host, quick.port)
+    assert parse_url(url).request_uri == quick.request_uri
+
+
+@pytest.mark.parametrize("url", [
+    "HTTP://h/a", "http://H/a", "http://h", "http://h/a?", "http://h/a#f", "http://h/./a",
+    "http://h/a/../b", "http://h:080/a", "http://h:99999/a", "http://u:p@h/a", "http://h./a",
+    "http://h/%41", "http://h/%2f", "http://h/a b", "http://h/\u00e9", "http://a..b/x",
+])
+def test_urls_the_library_would_change_take_the_library_path(url: str) -> None:
+    """Upper case, no path, an empty query, a fragment, dot segments, a padded or too large
+    port, user information, an escaped unreserved character (RFC 3986 §2.3) or a lower-case
+    escape, a space or non-ASCII text: read by the library itself."""
+    assert _plain_target(url) is None
+
+
+PLAIN_PARTS = st.sampled_from([
+    "a", "Z", "0", "9", ".", "-", "_", "~", "/", "?", "#", "%", "%20", "%2F", "%2f", "%41",
+    "%7E", "%E2%82%AC", "@", ":", ";", "=", "&", "+", "!", "$", "'", "(", "*", ",", " ",
+    "\u00e9", "..", "/./", "/../", "[", "]", "\\", "|", "^", "`", "{", '"', "<",
+])
+HOST_PARTS = st.sampled_from(["a", "b", "0", "9", ".", "-", "..", "A", "h.example", "127.0.0.51"])
+
+
+@settings(max_examples=1500, derandomize=True, deadline=None)
+@given(st.sampled_from(["http", "https", "HTTP"]),
+       st.lists(HOST_PARTS, min_size=1, max_size=4).map("".join),
+       st.sampled_from(["", ":1", ":80", ":8651", ":080", ":65535", ":65536", ":"]),
+       st.lists(PLAIN_PARTS, max_size=10).map("".join))
+def test_the_quick_reading_never_differs_from_the_library(scheme: str, host: str, port: str,
+                                                          rest: str) -> None:
+    """Property: whenever the quick path takes a URL, requests sends it as written, connects
+    where the quick reading says, and the library's own reading gives the same target."""
+    url = f"{scheme}://{host}{port}/{rest}"
+    quick = _plain_target(url)
+    if quick is None:
+        return
+    assert quick == _library_target(url)
+    assert requests.Request("GET", url).prepare().url == url
+    assert library_connects_to(url) == (quick.host, quick.port)
+    assert parse_url(url).request_uri == quick.request_uri

@@ -36,6 +36,20 @@ _CONTROL = re.compile(r"[\x00-\x1f\x7f-\x9f]")
 # Bidirectional overrides and isolates show one host and spell another (Unicode TR 9 §2).
 _BIDI = re.compile("[\u202a-\u202e\u2066-\u2069\u200e\u200f]")
 _SCHEME = re.compile(r"^([A-Za-z][A-Za-z0-9+.-]*):")
+# A URL the HTTP library sends exactly as written, read here without it: a lower-case http(s)
+# scheme, a host of lower-case letters, digits, dots and hyphens, a port without leading zero,
+# a path (and a non-empty query) of RFC 3986 unreserved and sub-delims characters, ":", "@" and
+# "/" and upper-case percent-encodings of other octets (§2.1-2.3, §3.3-3.4): no user
+# information, fragment or empty "?". requests' preparation leaves such a URL as it is (no
+# character to quote, no escaped unreserved character to unquote, §2.3; nothing to lower-case
+# or IDNA-encode), and urllib3 reads the same host, port and request line
+# (tests/test_http_target.py compares the two readings). Dot segments ("/./", "/../") are
+# left to the library, which removes them (RFC 3986 §5.2.4).
+_PLAIN = re.compile(r"(https?)://([a-z0-9][a-z0-9.-]*)(?::([1-9][0-9]{0,4}))?"
+                    r"(/(?:[A-Za-z0-9._~!$&'()*+,;=:@/-]|%[0-9A-F]{2})*"
+                    r"(?:\?(?:[A-Za-z0-9._~!$&'()*+,;=:@/?-]|%[0-9A-F]{2})+)?)")
+_ESCAPE = re.compile(r"%([0-9A-F]{2})")
+_UNRESERVED = frozenset("ABCDEFGHIJKLMNOPQRSTUVWXYZabcdefghijklmnopqrstuvwxyz0123456789-._~")
 
 
 @dataclass(frozen=True)
@@ -97,6 +111,12 @@ def transport_target(url: str, shown: str | None = None) -> Target:
     different hosts or ports (so the ledger's URL always names the host that was contacted).
     Messages show ``shown`` (the redacted URL) when it is given.
     """
+    plain = _plain_target(url)
+    return plain if plain is not None else _library_target(url, shown)
+
+
+def _library_target(url: str, shown: str | None = None) -> Target:
+    """:func:`transport_target` read by the HTTP library itself (any URL)."""
     label = url if shown is None else shown
     match = _SCHEME.match(url)
     scheme = match.group(1).lower() if match else ""
@@ -141,3 +161,19 @@ def transport_target(url: str, shown: str | None = None) -> Target:
     return Target(prepared, scheme, lib_host,
                   lib_port if lib_port is not None else DEFAULT_PORTS[scheme], request_uri,
                   credentials)
+
+
+def _plain_target(url: str) -> Target | None:
+    """The :class:`Target` of a URL of the plain form ``_PLAIN`` reads (most URLs an archive
+    gives), or None: read with the slower path of :func:`transport_target`."""
+    plain = _PLAIN.fullmatch(url)
+    if plain is None:
+        return None
+    scheme, host, port, request_uri = plain.groups()
+    number = int(port) if port else DEFAULT_PORTS[scheme]
+    if number > 65535 or "/." in request_uri or ".." in host or host.endswith((".", "-")):
+        return None
+    if "%" in request_uri and any(chr(int(code, 16)) in _UNRESERVED
+                                  for code in _ESCAPE.findall(request_uri)):
+        return None  # the library unquotes it (RFC 3986 §2.3): not sent as written
+    return Target(url, scheme, host, number, request_uri)
