@@ -6,7 +6,9 @@ files. Shown raw, an escape sequence can move the cursor, erase lines or retitle
 override can make text read backwards (Unicode TR 9 §2, explicit directional formatting
 characters). In a spreadsheet, a cell that starts with ``=``, ``+``, ``-``, ``@``, a tab or a
 carriage return is run as a formula (OWASP "CSV Injection": prefix such cells with a single
-quote). The ledger keeps the raw text; only what is shown or exported is changed.
+quote). The pages and CSV files collector writes show control characters as escapes
+(:func:`for_document`, :func:`csv_cell`). The ledger keeps the raw text; only what is shown or
+exported is changed.
 
 One change is made where text enters collector, before anything keeps it: a surrogate code
 point (U+D800..U+DFFF) is no Unicode scalar value, so no UTF can encode it (Unicode 15.0
@@ -123,16 +125,36 @@ def shown_name(text: str) -> str:
 
 
 def csv_cell(value: Any) -> Any:
-    """A CSV cell that no spreadsheet runs as a formula: text starting with ``=``, ``+``,
-    ``-``, ``@``, tab or CR gets a leading ``'`` (OWASP CSV Injection); numbers and None are
-    returned as they are."""
-    if isinstance(value, str) and value.startswith(FORMULA_STARTS):
-        return "'" + value
+    """A CSV cell as collector writes it: text gets the page rule of :func:`for_document`,
+    then, when it starts with ``=``, ``+``, ``-``, ``@``, tab or CR, a leading ``'`` (OWASP
+    CSV Injection); numbers and None are returned as they are.
+
+    Escaped (``\\x00``, ``\\x85``): the C0 controls but TAB, LF and CR, DEL and the C1
+    controls, as in the datasheet and the review sheet, so a text reads the same in every file
+    collector writes. RFC 4180 §2 has no place for them (its TEXTDATA is printable ASCII, CR and
+    LF stand only inside a quoted field, rule 6), and a spreadsheet may cut a cell at a NUL
+    (both from memory); NEL (U+0085), FF, VT and U+001C..U+001E end a line for Python's
+    ``str.splitlines`` (Python docs, str.splitlines). Kept raw: TAB, and line breaks, which
+    the csv module quotes (RFC 4180 §2 rule 6), so a title of two lines reads back from the
+    csv module as the ledger holds it. An escape is shown, not undone: a title that spells
+    ``\\x00`` itself reads the same as one that held a NUL (the ledger keeps which)."""
+    if isinstance(value, str):
+        if not value.isprintable():  # a control character is never printable (category Cc)
+            value = _NOT_IN_DOCUMENTS.sub(_escaped, value)
+        if value.startswith(FORMULA_STARTS):
+            return "'" + value
     return value
 
 
 def csv_row(row: dict[str, Any]) -> dict[str, Any]:
     """Every cell of a CSV row passed through :func:`csv_cell` (inlined: the datasheet writes
     one row per file)."""
-    return {key: "'" + value if isinstance(value, str) and value.startswith(FORMULA_STARTS)
-            else value for key, value in row.items()}
+    out = {}
+    for key, value in row.items():
+        if isinstance(value, str):
+            if not value.isprintable():
+                value = _NOT_IN_DOCUMENTS.sub(_escaped, value)
+            if value.startswith(FORMULA_STARTS):
+                value = "'" + value
+        out[key] = value
+    return out

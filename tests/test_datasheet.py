@@ -184,6 +184,20 @@ def test_duplicates_missing_fields_flags_and_timeframe_match(coll: Path,
     assert f"{start} to {end} (UTC)" in md
 
 
+def test_no_word_on_text_that_is_not_unicode_when_no_item_held_any(
+        coll: Path, export: ds.ExportResult) -> None:
+    """No item's metadata (read with Python's json) names a field that held text that is not
+    valid Unicode, so the datasheet counts none and says nothing of it
+    (tests/test_invalid_unicode.py has the collection that did)."""
+    named = [json.loads(m or "{}").get("invalid_unicode") for (m,) in
+             q(coll, "SELECT metadata FROM items")]
+    assert named and not any(named)
+    assert export.facts["not_unicode"] == {"items": 0, "accepted": 0, "fields": {}}
+    for page in ("datasheet.md", "datasheet.html"):
+        text = (export.out / page).read_text("utf-8")
+        assert "not valid Unicode" not in text and "t-not-unicode" not in text
+
+
 def test_answers_fill_questions_and_the_rest_is_marked_unanswered(coll: Path,
                                                                   tmp_path: Path) -> None:
     """Curator answers appear; every other curator/pre-filled question says it is unanswered."""

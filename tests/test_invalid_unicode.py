@@ -14,6 +14,7 @@ from __future__ import annotations
 
 import json
 import re
+from collections import Counter
 from collections.abc import Iterator
 from pathlib import Path
 
@@ -161,6 +162,42 @@ def test_trace_says_which_listed_fields_held_text_that_is_not_unicode(gathered) 
                                      str(col.root), "--json"])
     origin = json.loads(shown.output)["results"][0]["file"]["origin"]
     assert set(origin["not_unicode"]) >= {"title", "creator"}
+
+
+def _section(text: str, start: str, end: str) -> str:
+    """The part of a page from ``start`` up to the next ``end`` after it."""
+    head = text.index(start)
+    return text[head:text.index(end, head + len(start))]
+
+
+def test_the_datasheet_counts_items_whose_listing_was_not_unicode_by_field(
+        gathered, tmp_path: Path) -> None:
+    """Where the datasheet discusses errors and noise (``composition.errors``), Markdown and
+    HTML say how many items held text that is not valid Unicode and in which fields: the
+    counts are ours, read from each item's metadata with Python's json, and the fixture's
+    listing says what they must be (items 1, leaf-\\udbff, 3 and 4 held one; title and
+    creator only in item 1; ``metadata``, which keeps the listed item as it came, in all
+    four)."""
+    col, _ = gathered
+    with col.ledger(readonly=True) as ledger:
+        named = [json.loads(r["metadata"]).get("invalid_unicode") or []
+                 for r in ledger.query("SELECT metadata FROM items")]
+    fields = Counter(field for names in named for field in names)
+    items = sum(1 for names in named if names)
+    assert items == 4 and (fields["title"], fields["creator"], fields["metadata"]) == (1, 1, 4)
+    out = tmp_path / "sheet"
+    result = export_datasheet(col.root, out=out)
+    assert result.facts["not_unicode"]["items"] == items
+    assert result.facts["not_unicode"]["fields"] == dict(fields)
+    md = _section((out / "datasheet.md").read_text("utf-8"),
+                  "### What is known about errors, noise and repeats", "\n### ")
+    html = _section((out / "datasheet.html").read_text("utf-8"),
+                    'id="composition.errors"', "<h3 ")
+    for page in (md, html):
+        assert f"{items} of the 5 items" in page and "not valid Unicode" in page
+    for field, n in fields.items():
+        assert f"| {field} | {n} |" in md
+        assert re.search(rf"<td>{re.escape(field)}</td>\s*<td[^>]*>{n}</td>", html), field
 
 
 def test_ids_differing_only_in_their_surrogates_stay_two_items() -> None:

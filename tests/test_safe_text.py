@@ -20,7 +20,7 @@ from typer.testing import CliRunner
 from collector.cli import app
 from collector.display import PlainProgress
 from collector.exports.datasheet import export_datasheet
-from collector.safe_text import csv_cell, for_terminal, one_line
+from collector.safe_text import csv_cell, csv_row, for_terminal, one_line
 from collector.storage.collection import Collection
 
 FORMULAS = ['=HYPERLINK("http://127.0.0.59/x","click")', "+cmd|' /C calc'!A0", "@SUM(1+1)*cmd",
@@ -38,6 +38,21 @@ def test_formula_cells_get_a_leading_quote(cell: str) -> None:
 def test_ordinary_cells_and_numbers_are_unchanged(value: object) -> None:
     """Text that starts harmlessly, and numbers (not text), are written as they are."""
     assert csv_cell(value) == value
+
+
+@pytest.mark.parametrize(("value", "cell"), [
+    ("Leaf\x00one", "Leaf\\x00one"), ("=\x00SUM(1)", "'=\\x00SUM(1)"),
+    ("\x00=1+1", "\\x00=1+1"), ("a\x85b\x7f", "a\\x85b\\x7f"),
+    ("two\nlines\r\tend", "two\nlines\r\tend"), ("\u2028\ufffd é", "\u2028\ufffd é"),
+    ("\tx", "'\tx"), (7, 7), (None, None)])
+def test_csv_cells_show_controls_as_escapes_then_neutralise_formulas(value: object,
+                                                                     cell: object) -> None:
+    """A CSV cell follows the datasheet's rule (C0 but TAB, LF, CR; DEL; C1 as ``\\xNN``:
+    XML 1.0 §2.2 Char, HTML Standard §13.2.3.5, from memory), line breaks kept for quoting
+    (RFC 4180 §2 rule 6), and the OWASP quote is decided on the escaped text; csv_row
+    (inlined) agrees."""
+    assert csv_cell(value) == cell
+    assert csv_row({"k": value}) == {"k": cell}
 
 
 def test_control_and_bidi_characters_are_shown_as_escapes() -> None:

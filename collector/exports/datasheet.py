@@ -95,6 +95,7 @@ def _facts(ledger: Ledger, recipe: Recipe, now: str) -> DatasheetFacts:
                        "curator": recipe.collection.curator,
                        "contact": recipe.contact, "product_token": recipe.product_token},
         "items": items, "accepted": acc, "missing": missing,
+        "not_unicode": datasheet_queries.not_unicode_facts(ledger),
         "flags": datasheet_queries.flag_counts(ledger),
         "flagged": datasheet_queries.flagged_facts(ledger, PERSONAL_FLAGS, CONFLICT_FLAG),
         "duplicates": {

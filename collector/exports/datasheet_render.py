@@ -48,6 +48,7 @@ TABLES = {
     "t-licences": "Licences of the files in this release",
     "t-personal": "Possible personal data in metadata", "t-other-flags": "Other flags",
     "t-conditions": "Licence conditions of accepted files", "t-runs": "Runs by outcome",
+    "t-not-unicode": "Items whose listed text was not valid Unicode",
     **DIVERSITY_TABLES,
 }
 KIND_LABEL = {"A": "From the ledger", "P": "Pre-filled from the ledger — curator, please confirm",
@@ -228,7 +229,21 @@ def _errors(f: DatasheetFacts) -> list[Block]:
                          "contradicts embedded rights metadata, a file whose content does not "
                          "match its declared type, ...):"))
         out.append(_table(["flag", "accepted files"], other, "t-other-flags"))
-    return out
+    return out + _not_unicode(f)
+
+
+def _not_unicode(f: DatasheetFacts) -> list[Block]:
+    """Items whose listing held text that is not valid Unicode, by field (none: nothing)."""
+    n = f["not_unicode"]
+    if not n["items"]:
+        return []
+    return [("p", f"Items whose listing held text that is not valid Unicode (a lone surrogate, "
+                  "which no UTF can encode; replaced by U+FFFD, \ufffd, before it was kept, so "
+                  f"these texts differ from what the archive sent): {n['items']} of the "
+                  f"{f['items']['total']} items recorded, {n['accepted']} of them with an "
+                  "accepted file; 'collector trace' names the fields per file. Items by "
+                  "field (metadata: the item as listed, kept whole):"),
+            _table(["field", "items"], n["fields"], "t-not-unicode")]
 
 
 def _licences(f: DatasheetFacts) -> list[Block]:

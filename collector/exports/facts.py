@@ -17,6 +17,7 @@ from collector.storage.datasheet_queries import (
     HostFacts,
     ItemFacts,
     MissingFacts,
+    NotUnicodeFacts,
     RequestFacts,
     RunFacts,
     Timeframe,
@@ -155,6 +156,7 @@ class DatasheetFacts(TypedDict):
     items: ItemFacts
     accepted: AcceptedFacts
     missing: MissingFacts
+    not_unicode: NotUnicodeFacts  # items whose listing held text that is not Unicode
     flags: dict[str, int]
     flagged: FlaggedFacts
     duplicates: DuplicateFacts

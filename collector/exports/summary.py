@@ -50,6 +50,9 @@ class Summary:
     fetched_bytes: int = 0
     requests: int = 0
     hosts: list[HostPoliteness] = field(default_factory=list)
+    # Requests refused before a host was read from their URL (not http or https, no host, or
+    # unsafe to read: the fetches rows without a host); never sent, so no host's row.
+    refused_before_host: int = 0
     licences: Counter[str] = field(default_factory=Counter)
     flags: Counter[str] = field(default_factory=Counter)
     notes: Counter[str] = field(default_factory=Counter)
@@ -79,8 +82,10 @@ def summarise(ledger: Ledger) -> Summary:
         s.states[row.state] += row.n
         if row.reason:
             s.reasons[(row.state, row.reason)] += row.n
-    s.hosts = [HostPoliteness(h.host or "?", h.requests, h.too_many, h.unavailable,
-                              h.waited_s, h.errors, h.bytes, h.held_back) for h in t.hosts]
+    s.hosts = [HostPoliteness(h.host, h.requests, h.too_many, h.unavailable,
+                              h.waited_s, h.errors, h.bytes, h.held_back) for h in t.hosts
+               if h.host is not None]
+    s.refused_before_host = sum(h.requests + h.held_back for h in t.hosts if h.host is None)
     s.licences.update(dict(t.licences))
     for flags in t.flag_lists:
         for flag in json.loads(flags):
@@ -100,7 +105,8 @@ def summary_as_dict(s: Summary) -> dict[str, Any]:
         "files": s.files, "file_bytes": s.file_bytes, "requests": s.requests,
         "fetched_bytes": s.fetched_bytes,
         "file_origins": [o._asdict() for o in s.origins],
-        "hosts": [vars(h) for h in s.hosts], "licences": dict(s.licences),
+        "hosts": [vars(h) for h in s.hosts], "refused_before_host": s.refused_before_host,
+        "licences": dict(s.licences),
         "flags": dict(s.flags), "notes": dict(s.notes), "runs": s.runs,
         "set_aside": dict(s.set_aside), "measured_before": s.measured_before,
         "run_seconds": round(s.run_seconds, 3), "last_run": s.last_run,
@@ -169,6 +175,10 @@ def format_summary(s: Summary) -> list[str]:
                          f"{h.too_many} x 429, {h.unavailable} x 503, waited "
                          f"{human_seconds(h.waited_s)}, {h.errors} failed"
                          + (f", {h.held_back} held back" if h.held_back else ""))
+    if s.refused_before_host:
+        lines.append(f"refused before any host: {plural(s.refused_before_host, 'request')} "
+                     "whose URL collector would not read a host from (not http or https, no "
+                     "host, or unsafe to read; the reasons are in the ledger's fetches table)")
     if s.flags:
         lines.append("flags (review before publishing): " + ", ".join(
             f"{k} {v}" for k, v in s.flags.most_common()))

@@ -15,6 +15,7 @@ from collections.abc import Iterator
 from typing import Any, NamedTuple, TypedDict
 
 from collector.errors import CollectorError
+from collector.safe_text import NOT_UNICODE
 from collector.storage.ledger import Ledger
 from collector.storage.queries import _STATES_IN, LOCAL_HOST, _licence_key, _statement_column
 from collector.urls import host_key
@@ -285,6 +286,38 @@ def flagged_facts(ledger: Ledger, personal: tuple[str, ...], conflict: str) -> F
             f"SELECT count(*) {_accepted_from(ledger)} "
             "AND EXISTS (SELECT 1 FROM json_each(f.flags) "
             "WHERE value = ?)", (conflict,)) or 0),
+    }
+
+
+class NotUnicodeFacts(TypedDict):
+    """Items whose listing held text that is not valid Unicode (lone surrogates, replaced by
+    U+FFFD where candidates enter; the item's metadata names the fields under
+    ``invalid_unicode``): how many items, how many accepted files such an item brought, and
+    the items per field, most first."""
+
+    items: int
+    accepted: int
+    fields: dict[str, int]
+
+
+# An item's metadata when it may name such fields (a cheap text test first); metadata that is
+# not JSON (a ledger edited by hand) counts as naming none instead of stopping the datasheet.
+_NAMING = (f"CASE WHEN instr(i.metadata, '\"{NOT_UNICODE}\"') AND json_valid(i.metadata) "
+           "THEN i.metadata END")
+_NAMED_PATH = f"'$.\"{NOT_UNICODE}\"'"
+
+
+def not_unicode_facts(ledger: Ledger) -> NotUnicodeFacts:
+    """Items (all recorded) whose metadata names fields that held text that is not valid
+    Unicode, the accepted files among them, and the items per field."""
+    named = f"json_type({_NAMING}, {_NAMED_PATH}) = 'array'"
+    return {
+        "items": int(ledger.scalar(f"SELECT count(*) FROM items i WHERE {named}") or 0),
+        "accepted": _count(ledger, named),
+        "fields": _pairs(ledger, f"SELECT j.value, count(DISTINCT i.id) FROM items i, "
+                                 f"json_each({_NAMING}, {_NAMED_PATH}) j "
+                                 f"WHERE j.type = 'text' AND {named} "
+                                 "GROUP BY 1 ORDER BY 2 DESC, 1"),
     }
 
 
