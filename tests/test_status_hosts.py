@@ -17,9 +17,16 @@ from support.server import LoopbackServer
 from typer.testing import CliRunner
 
 from collector.cli import app
-from collector.exports.summary import format_summary, summarise, summary_as_dict
+from collector.exports.summary import (
+    estimate,
+    format_estimate,
+    format_summary,
+    summarise,
+    summary_as_dict,
+)
 from collector.run.gather import gather
 from collector.storage.collection import Collection, init_collection
+from collector.storage.datasheet_queries import requests_per_host
 
 
 @pytest.fixture(scope="module")
@@ -82,3 +89,48 @@ def test_the_status_command_prints_the_same_lines(refused) -> None:
     assert "refused before any host: 1 request whose URL" in shown.output
     assert f"  {host} " in shown.output
     assert not [ln for ln in shown.output.splitlines() if ln.strip().startswith("? ")]
+
+
+def test_the_datasheet_timeline_has_no_host_for_a_refusal_before_any_host(refused) -> None:
+    """The datasheet's requests-per-host timeline counts requests sent to a host: the refusal
+    (never sent) is in no host's line, and the server's line holds every request it logged."""
+    col, host, hits = refused
+    with col.ledger(readonly=True) as ledger:
+        timeline = requests_per_host(ledger, 16)
+    assert list(timeline) == [host]
+    assert sum(timeline[host].values()) == len(hits)
+
+
+@pytest.fixture(scope="module")
+def unreadable_listed(tmp_path_factory: pytest.TempPathFactory) -> Collection:
+    """Two leaves listed with http URLs, the second answering 404, and one listed as
+    ``file:///leaf.png`` (refused by the run without a request); both failed, so a next run
+    would try them again."""
+    with LoopbackServer("127.0.0.1") as server:
+        leaves = serve_leaves(server, 2)
+        server.route("/img/1.png", (404, b""))
+        leaves.append({**leaves[0], "id": "file", "image": "file:///leaf.png"})
+        server.route("/api", (200, json.dumps({"results": leaves}).encode(),
+                              {"Content-Type": "application/json"}))
+        col = init_collection(tmp_path_factory.mktemp("estimate") / "col",
+                              contact="x@example.org")
+        col.recipe_path.write_text(one_listing_recipe(server.url("/api"), min_interval=0.0))
+        assert gather(col).outcome == "finished"
+        return col
+
+
+def test_the_dry_run_counts_listed_urls_without_a_host_apart(unreadable_listed) -> None:
+    """``gather --dry-run``'s estimate: the URL no host can be read from is no host named
+    ``?`` with a time of its own, but a line of its own; the hosts' time is unchanged."""
+    col = unreadable_listed
+    with col.ledger(readonly=True) as ledger:
+        (state, reason), = ledger.rows("SELECT state, reason FROM items WHERE source_key = "
+                                       "'file'")
+        est = estimate(col.recipe(), ledger)
+    assert (state, reason) == ("failed", "unsafe_url")
+    assert list(est.per_host.values()) == [1] and "?" not in est.per_host
+    assert est.unreadable == 1
+    lines = format_estimate(col.recipe(), est)
+    (line,) = [ln for ln in lines if ln.startswith("no host:")]
+    assert line.startswith("no host: 1 listed image URL from which no host can be read")
+    assert not any(ln.split()[:1] == ["?"] for ln in lines)

@@ -245,6 +245,8 @@ class Estimate:
     seconds: float
     unknown_sources: list[str]
     connections: dict[str, int] = field(default_factory=dict)
+    # Listed image URLs no host can be read from: the run refuses them without a request.
+    unreadable: int = 0
 
     def fits_within(self, seconds: float) -> int:
         """How many of the listed images the hosts can serve in ``seconds`` (each host in
@@ -258,11 +260,12 @@ def estimate(recipe: Recipe, ledger: Ledger) -> Estimate:
     """Estimate a run from what earlier runs listed: per host, pending items times the
     effective interval; hosts run in parallel, so the slowest host decides."""
     per_host: Counter[str] = Counter()
+    unreadable = 0
     for url in queries.pending_image_urls(ledger):
         try:
             per_host[host_key(url)] += 1
-        except CollectorError:  # a malformed URL is counted under an unknown host
-            per_host["?"] += 1
+        except CollectorError:  # refused before any request: no host's time, counted apart
+            unreadable += 1
     listed = queries.listed_source_names(ledger)
     unknown = [s["name"] for s in recipe.sources
                if sources.get_kind(s["kind"]).uses_network and s["name"] not in listed]
@@ -278,7 +281,8 @@ def estimate(recipe: Recipe, ledger: Ledger) -> Estimate:
         interval[host] = step
         connections[host] = max(1, budget.max_connections)
         seconds = max(seconds, n * step / connections[host])
-    return Estimate(dict(per_host), interval, math.ceil(seconds), unknown, connections)
+    return Estimate(dict(per_host), interval, math.ceil(seconds), unknown, connections,
+                    unreadable)
 
 
 def default_interval(recipe: Recipe) -> float:
@@ -305,6 +309,10 @@ def format_estimate(recipe: Recipe, est: Estimate, *, deadline: float | None = N
                          f"-> {human_seconds(n * step)}")
         lines.append(f"estimated time for the images already listed: "
                      f"{human_seconds(est.seconds)} (hosts are served in parallel)")
+    if est.unreadable:
+        lines.append(f"no host: {plural(est.unreadable, 'listed image URL')} from which no "
+                     "host can be read (not http or https, or malformed); the run refuses "
+                     "them without a request (state failed, reason unsafe_url)")
     if est.unknown_sources:
         step = default_interval(recipe)
         lines.append(f"not listed yet: {', '.join(est.unknown_sources)}. Their size is unknown "

@@ -394,11 +394,14 @@ def stored_per(ledger: Ledger, width: int) -> dict[str, int]:
 
 
 def requests_per_host(ledger: Ledger, width: int) -> dict[str, dict[str, int]]:
-    """Requests per host and time slot (timestamps cut to ``width`` characters)."""
+    """Requests per host and time slot (timestamps cut to ``width`` characters). A URL
+    refused before a host was read from it (``fetches.host`` empty) sent no request to any
+    host and is left out."""
     out: dict[str, dict[str, int]] = {}
     for host, slot, n in ledger.rows(
-            "SELECT coalesce(host, '?'), substr(started_at, 1, ?), count(*) FROM fetches "
-            "WHERE started_at IS NOT NULL GROUP BY 1, 2 ORDER BY 1, 2", (width,)):
+            "SELECT host, substr(started_at, 1, ?), count(*) FROM fetches "
+            "WHERE started_at IS NOT NULL AND host IS NOT NULL GROUP BY 1, 2 ORDER BY 1, 2",
+            (width,)):
         out.setdefault(str(host), {})[str(slot)] = int(n)
     return out
 
