@@ -15,16 +15,18 @@ import threading
 import tracemalloc
 import zlib
 from collections.abc import Callable, Iterator
+from dataclasses import replace
 from pathlib import Path
 
 import pytest
+import urllib3
 from support.server import LoopbackServer, send
 
 from collector.demo_site.loopback import Answer, Handler
 from collector.errors import FetchError, TooLarge
 from collector.fetching.fetcher import Fetcher, FetchSettings
 from collector.fetching.http_target import transport_target
-from collector.fetching.transport import Transport, TransportError
+from collector.fetching.transport import DEFAULT_HEADERS, Transport, TransportError
 
 HEADERS = {"User-Agent": "collector/test (+curator@example.org)", "Accept-Encoding": "gzip"}
 # Compressible but not trivial: random runs between long repeats (seeded, so every run the same).
@@ -84,6 +86,32 @@ def _get(transport: Transport, url: str, n: int = 65536) -> tuple[int, bytes, in
         while piece := answer.read1(n):
             pieces.append(piece)
         return answer.status_code, b"".join(pieces), max(map(len, pieces), default=0)
+
+
+# -- the request on the wire ---------------------------------------------------------------
+@pytest.mark.parametrize("pinned", [False, True])
+def test_headers_arrive_in_the_order_urllib3_sent_them(transport: Transport,
+                                                       pinned: bool) -> None:
+    """Header names and values in the order urllib3's pool sent them when it was given the
+    same headers (the transport's previous sender; test_transport.py compares the set of
+    headers with requests'): Host first when connecting to the host named, last when
+    connecting to a checked address for a name."""
+    with LoopbackServer("127.0.0.2") as site:
+        host = "localhost" if pinned else site.host
+        target = transport_target(f"http://{host}:{site.port}/order?x=1")
+        if pinned:
+            target = replace(target, addresses=(site.host,))
+        with transport.get(target, {**HEADERS, "X-Extra": "yes"}, connect_timeout=5.0,
+                           read_timeout=10.0) as answer:
+            answer.read()
+        sent = {**DEFAULT_HEADERS, **HEADERS, "X-Extra": "yes"}
+        if pinned:
+            sent["Host"] = f"localhost:{site.port}"
+        with urllib3.HTTPConnectionPool(site.host, site.port) as pool:
+            pool.urlopen("GET", "/order?x=1", headers=sent, retries=False)
+        ours, reference = site.hits
+    assert list(ours.headers.items()) == list(reference.headers.items())
+    assert ours.path == reference.path
 
 
 # -- keep-alive: connections the server closed ----------------------------------------------

@@ -75,6 +75,7 @@ import zlib
 from collections import OrderedDict
 from collections.abc import Mapping
 from types import TracebackType
+from typing import NamedTuple
 
 import certifi
 from requests.structures import CaseInsensitiveDict
@@ -286,6 +287,8 @@ def _dropped(conn: http.client.HTTPConnection) -> bool:
     sock = conn.sock
     if sock is None:
         return True
+    if not hasattr(select, "poll"):  # Windows: select() (its 512-socket limit is per call)
+        return bool(select.select([sock], [], [], 0)[0])
     poller = select.poll()
     poller.register(sock, select.POLLIN)
     return bool(poller.poll(0))
@@ -298,11 +301,36 @@ def _host_field(target: Target) -> str:
     return name if target.port == DEFAULT_PORTS.get(target.scheme) else f"{name}:{target.port}"
 
 
-def _request_headers(target: Target, headers: Mapping[str, str],
-                     pinned: bool) -> dict[str, str]:
+class _Request(NamedTuple):
+    """What :meth:`Transport._exchange` sends: the request line's target, the headers in
+    order (no ``Host``), the ``Host`` to send first when connecting to the host itself (the
+    caller's if it named one, as http.client puts its own first), the ``Host`` to send last
+    when connecting to a checked address (always ours, as urllib3 was given it), whether
+    the caller named an Accept-Encoding, and the read timeout."""
+
+    uri: str
+    headers: dict[str, str]
+    host_first: str
+    host_last: str
+    skip_accept_encoding: bool
+    read_timeout: float
+
+
+def _request(target: Target, headers: Mapping[str, str], read_timeout: float) -> _Request:
+    """The request for ``target``; ValueError for a header that cannot be sent."""
+    sent = _request_headers(target, headers)
+    names = [name.lower() for name in sent]
+    ours = _host_field(target)
+    theirs = [value for name, value in zip(names, sent.values(), strict=True) if name == "host"]
+    if theirs:
+        sent = {k: v for k, v in sent.items() if k.lower() != "host"}
+    return _Request(target.request_uri, sent, theirs[-1] if theirs else ours, ours,
+                    "accept-encoding" in names, read_timeout)
+
+
+def _request_headers(target: Target, headers: Mapping[str, str]) -> dict[str, str]:
     """The headers to send, in order: requests' defaults, the caller's, Basic auth from URL
-    credentials, and ``Host`` last when connecting to a checked address. Raises ValueError
-    for one that cannot be sent."""
+    credentials. Raises ValueError for one that cannot be sent."""
     sent = {**DEFAULT_HEADERS, **headers}
     if target.credentials:  # in the URL: Basic auth (RFC 7617), as requests sends it
         user, password = get_auth_from_url(target.url)  # percent-decoded
@@ -310,9 +338,6 @@ def _request_headers(target: Target, headers: Mapping[str, str],
             sent = {k: v for k, v in sent.items() if k.lower() != "authorization"}
             token = base64.b64encode(f"{user}:{password}".encode("latin-1")).decode()
             sent["Authorization"] = f"Basic {token}"
-    if pinned:
-        sent = {k: v for k, v in sent.items() if k.lower() != "host"}
-        sent["Host"] = _host_field(target)
     for item in sent.items():
         check_header_validity(item)  # raises requests' InvalidHeader, a ValueError
     return sent
@@ -327,6 +352,7 @@ class Transport:
         self._tls = ssl.create_default_context(cafile=ca_certs or certifi.where())
         self._tls.check_hostname = True
         self._tls.verify_mode = ssl.CERT_REQUIRED
+        self._tls.set_alpn_protocols(["http/1.1"])  # as urllib3 offered it
         self._idle: OrderedDict[_Key, list[http.client.HTTPConnection]] = OrderedDict()
         self._lock = threading.Lock()
 
@@ -339,24 +365,16 @@ class Transport:
 
         Raises :class:`TransportTimeout` or :class:`TransportError` when no answer came, and
         ``ValueError`` for a header that cannot be sent (a CR or LF in it, a leading space)."""
-        plain = _request_headers(target, headers, pinned=False)
-        named = None if any(k.lower() == "host" for k in plain) else _host_field(target)
-        pinned: dict[str, str] | None = None
+        request = _request(target, headers, read_timeout)
         addresses: tuple[str | None, ...] = target.addresses or (None,)
         for n, address in enumerate(addresses):
             where = address or target.host
-            if where == target.host:  # no Host of ours: first, as http.client puts it
-                sent, host = plain, named
-            else:
-                pinned = pinned or _request_headers(target, headers, pinned=True)
-                sent, host = pinned, None
             key = (target.scheme, where, target.port, target.host)
-            request = (target.request_uri, sent, host, read_timeout)
             conn = self._kept(key)
             if conn is not None:
                 try:
-                    return Answer(self._exchange(conn, request, fresh=False), conn, self, key,
-                                  address)
+                    return Answer(self._exchange(conn, request, where != target.host,
+                                                 fresh=False), conn, self, key, address)
                 except _Stale:
                     pass  # sent again below on a new connection
             try:
@@ -365,7 +383,8 @@ class Transport:
                 if n + 1 < len(addresses):
                     continue
                 raise _connect_error(exc, target, where, connect_timeout, addresses, n) from None
-            return Answer(self._exchange(conn, request, fresh=True), conn, self, key, address)
+            return Answer(self._exchange(conn, request, where != target.host, fresh=True),
+                          conn, self, key, address)
         raise AssertionError("unreachable: the loop returns or raises")
 
     def _connect(self, target: Target, where: str,
@@ -389,22 +408,23 @@ class Transport:
         conn.sock, conn.auto_open = sock, 0  # never reconnects by itself
         return conn
 
-    def _exchange(self, conn: http.client.HTTPConnection,
-                  request: tuple[str, dict[str, str], str | None, float],
+    def _exchange(self, conn: http.client.HTTPConnection, request: _Request, pinned: bool,
                   fresh: bool) -> http.client.HTTPResponse:
-        """Send the request on ``conn`` and read the answer's head. On a kept connection a
-        failure before any byte of the answer raises _Stale (the caller sends it again)."""
-        uri, sent, host, read_timeout = request
+        """Send ``request`` on ``conn`` (``pinned``: connected to a checked address, not to
+        the host itself) and read the answer's head. On a kept connection a failure before
+        any byte of the answer raises _Stale (the caller sends it again)."""
+        read_timeout = request.read_timeout
         try:
             assert conn.sock is not None
             conn.sock.settimeout(read_timeout)
-            conn.putrequest("GET", uri, skip_host=True,
-                            skip_accept_encoding=any(k.lower() == "accept-encoding"
-                                                     for k in sent))
-            if host is not None:
-                conn.putheader("Host", host)
-            for name, value in sent.items():
+            conn.putrequest("GET", request.uri, skip_host=True,
+                            skip_accept_encoding=request.skip_accept_encoding)
+            if not pinned:
+                conn.putheader("Host", request.host_first)
+            for name, value in request.headers.items():
                 conn.putheader(name, value)
+            if pinned:
+                conn.putheader("Host", request.host_last)
             conn.endheaders()
             return conn.getresponse()
         except TimeoutError:
