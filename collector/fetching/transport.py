@@ -82,15 +82,16 @@ from requests.structures import CaseInsensitiveDict
 from requests.utils import check_header_validity, get_auth_from_url, get_encoding_from_headers
 
 from collector.fetching.http_target import Target
+from collector.urls import DEFAULT_PORTS
 
 # Sent with every request unless the fetcher's headers name them (as requests' defaults were).
 DEFAULT_HEADERS = {"Accept": "*/*", "Connection": "keep-alive"}
-DEFAULT_PORTS = {"http": 80, "https": 443}
 READ_SIZE = 65536  # decoded bytes :meth:`Answer.read` asks for at a time
 _GZIP = 16 + zlib.MAX_WBITS  # a gzip member (RFC 1952)
 _ZLIB = zlib.MAX_WBITS  # a zlib stream (RFC 1950), the "deflate" of RFC 9110 §8.4.1.2
 _RAW = -zlib.MAX_WBITS  # bare deflate data (RFC 1951), which some servers send as "deflate"
 _CODINGS = {"gzip": _GZIP, "x-gzip": _GZIP, "deflate": _ZLIB}
+_FIRST_MAX = 65536  # "deflate" input kept for a raw retry while no output came, at most
 # A kept connection the server closed: the send fails or the answer ends before its first byte.
 _STALE = (BrokenPipeError, ConnectionResetError, ConnectionAbortedError,
           http.client.RemoteDisconnected)
@@ -161,6 +162,8 @@ class _Inflater:
             raise
         if out:
             self._first, self._yielded = None, True
+        elif self._first is not None and len(self._first) > _FIRST_MAX:
+            self._first = None  # a zlib header that long without output: no raw retry
         return out
 
 
