@@ -18,12 +18,10 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import BinaryIO, Protocol
 
-import urllib3.exceptions
-
 from collector.errors import DownloadTimeout, StoreError, TooLarge
 from collector.fetching.budgets import Clock, Slot
 from collector.fetching.retry import Retryable
-from collector.fetching.transport import Answer
+from collector.fetching.transport import Answer, TransportError, TransportTimeout
 from collector.storage.store import make_temp
 
 CHUNK = 65536
@@ -148,13 +146,11 @@ def _next_chunk(resp: Answer) -> bytes:
     try:
         # read1 returns what has arrived, so the deadline check in read_body runs even
         # against a server that drips one byte at a time (libraries.md §6).
-        chunk: bytes = resp.raw.read1(CHUNK, decode_content=True)
-    except (urllib3.exceptions.ReadTimeoutError, TimeoutError) as exc:
+        return resp.read1(CHUNK)
+    except TransportTimeout as exc:
         raise Retryable("timeout", resp.status_code, f"read timeout: {exc}") from None
-    except (urllib3.exceptions.HTTPError, OSError) as exc:
-        raise Retryable("connection", resp.status_code,
-                        f"{type(exc).__name__}: {exc}") from None
-    return chunk
+    except TransportError as exc:  # reset, a body shorter than its length, corrupt coding
+        raise Retryable("connection", resp.status_code, str(exc)) from None
 
 
 def _capped(chunk: bytes, size: int, max_bytes: int, shown: str, truncate: bool) -> bytes:
