@@ -12,6 +12,7 @@ from __future__ import annotations
 import gzip
 import random
 import threading
+import time
 import tracemalloc
 import zlib
 from collections.abc import Callable, Iterator
@@ -23,7 +24,7 @@ import urllib3
 from support.server import LoopbackServer, send
 
 from collector.demo_site.loopback import Answer, Handler
-from collector.errors import FetchError, TooLarge
+from collector.errors import DownloadTimeout, FetchError, TooLarge
 from collector.fetching.fetcher import Fetcher, FetchSettings
 from collector.fetching.http_target import transport_target
 from collector.fetching.transport import DEFAULT_HEADERS, Transport, TransportError
@@ -380,3 +381,46 @@ def test_truncated_gzip_data_is_an_error(server: LoopbackServer, transport: Tran
     server.route("/cut", (200, gzip.compress(DATA)[:-100], {"Content-Encoding": "gzip"}))
     with pytest.raises(TransportError, match="truncated"):
         _get(transport, server.url("/cut"))
+
+
+# RFC 1952 §2.3: a gzip member header (ID1 ID2, CM 8 = deflate, no flags, no time, XFL 0, OS
+# 255); RFC 1951 §3.2.4: a stored block that is not the last (BFINAL 0, BTYPE 00) of length 0
+# (LEN 0000, NLEN FFFF) holds no data, so a stream of them decodes to nothing for ever.
+_GZIP_HEADER = b"\x1f\x8b\x08\x00\x00\x00\x00\x00\x00\xff"
+_EMPTY_BLOCK = b"\x00\x00\x00\xff\xff"
+
+
+def _empty_blocks(h: Handler) -> None:
+    """A gzip body of empty deflate blocks, one every 0.05 s for 3 s (no length: it ends when
+    the connection closes)."""
+    h.send_response(200)
+    h.send_header("Content-Encoding", "gzip")
+    h.send_header("Connection", "close")
+    h.end_headers()
+    h.close_connection = True
+    try:
+        h.wfile.write(_GZIP_HEADER)
+        for _ in range(60):
+            h.wfile.write(_EMPTY_BLOCK)
+            h.wfile.flush()
+            time.sleep(0.05)
+    except OSError:
+        pass
+
+
+def test_compressed_data_that_never_decodes_stops_at_the_download_deadline(
+        server: LoopbackServer, tmp_path: Path) -> None:
+    """Empty deflate blocks sent slowly decode to nothing, each arriving well within the read
+    timeout: the download still stops at its overall deadline (1 s here; the server would go
+    on for 3 s), with no file kept (libraries.md §6: a deadline over the whole body)."""
+    server.route("/robots.txt", (404, b""))
+    server.route("/nothing.png", _empty_blocks)
+    fetcher = Fetcher(_settings(download_deadline=1.0), None)
+    began = time.monotonic()
+    try:
+        with pytest.raises(DownloadTimeout):
+            fetcher.download(server.url("/nothing.png"), tmp_path)
+    finally:
+        fetcher.close()
+    assert time.monotonic() - began < 2.5
+    assert list(tmp_path.iterdir()) == []

@@ -122,13 +122,17 @@ def read_body(resp: Answer, *, shown: str, max_bytes: int, dest_dir: Path | None
     size = 0
     sink: _Sink = _FileSink(dest_dir) if dest_dir is not None else _MemorySink()
     try:
-        while chunk := _next_chunk(resp):
-            chunk = _capped(chunk, size, max_bytes, shown, truncate)
-            size += len(chunk)
-            slot.add_bytes(len(chunk))
-            digest.update(chunk)
-            sink.write(chunk)
-            if truncate and size >= max_bytes:
+        while True:
+            chunk = _next_chunk(resp)
+            if chunk:
+                chunk = _capped(chunk, size, max_bytes, shown, truncate)
+                size += len(chunk)
+                slot.add_bytes(len(chunk))
+                digest.update(chunk)
+                sink.write(chunk)
+                if truncate and size >= max_bytes:
+                    break
+            elif resp.ended:
                 break
             if clock.monotonic() > deadline:
                 err = DownloadTimeout(shown, deadline_s)
@@ -142,11 +146,14 @@ def read_body(resp: Answer, *, shown: str, max_bytes: int, dest_dir: Path | None
 
 
 def _next_chunk(resp: Answer) -> bytes:
-    """The next decoded bytes that have arrived ("" at the end of the body)."""
+    """The next decoded bytes that have arrived: "" at the end of the body
+    (``resp.ended``), or when compressed bytes arrived that decoded to nothing yet."""
     try:
-        # read1 returns what has arrived, so the deadline check in read_body runs even
-        # against a server that drips one byte at a time (libraries.md §6).
-        return resp.read1(CHUNK)
+        # read_some returns what has arrived, and comes back after every read from the
+        # network, so the deadline check in read_body runs even against a server that drips
+        # one byte at a time (libraries.md §6) or sends compressed data that never decodes
+        # to anything (empty deflate blocks).
+        return resp.read_some(CHUNK)
     except TransportTimeout as exc:
         raise Retryable("timeout", resp.status_code, f"read timeout: {exc}") from None
     except TransportError as exc:  # reset, a body shorter than its length, corrupt coding

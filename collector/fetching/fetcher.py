@@ -14,7 +14,8 @@ Bodies are streamed with a byte cap on decoded bytes and an overall deadline
 (:mod:`collector.fetching.body`). Errors raised are
 :class:`collector.errors.FetchError` subclasses whose messages carry only redacted URLs.
 
-Requests are sent by :mod:`collector.fetching.transport` (urllib3's pools, used directly).
+Requests are sent by :mod:`collector.fetching.transport` (the standard library's
+``http.client``, with a keep-alive connection cache of its own).
 
 DNS rebinding: the address check resolves the name just before each request, and the
 transport connects to the addresses that were checked, never to a second answer for the name.

@@ -11,9 +11,10 @@ library's connection pool does, and refuses every URL on which the readings diff
 authority holds characters that make readings differ (backslash, control characters,
 characters that change under Unicode NFKC normalisation such as a full-width ``＠``).
 
-The fetcher sends exactly :attr:`Target.url` (through urllib3's pools,
-:mod:`collector.fetching.transport`, which read it with the same ``parse_url``) and checks
-the address of :attr:`Target.host`.
+The fetcher sends exactly :attr:`Target.url`: :mod:`collector.fetching.transport` connects
+to :attr:`Target.host` and port (to the addresses the guard checked for it) and sends
+:attr:`Target.request_uri`, the request line urllib3's ``parse_url`` reads from the URL, as
+urllib3 sent it when the transport went through its pools.
 """
 
 from __future__ import annotations

@@ -207,10 +207,26 @@ class Answer:
         only when nothing is there); ``b""`` at its end. Raises :class:`TransportTimeout` when
         nothing arrives within the read timeout, :class:`TransportError` for a broken
         connection, a body shorter than its ``Content-Length`` or corrupt compressed data."""
+        return self._read(n, decode_content, once=False)
+
+    def read_some(self, n: int = READ_SIZE) -> bytes:
+        """:meth:`read1`, but back after each read from the network even when the compressed
+        data read so far decoded to nothing: ``b""`` is the end only when :attr:`ended`.
+        Compressed data can yield nothing for as long as a server sends it (empty deflate
+        blocks, RFC 1951 §3.2.4), so a caller with a deadline reads with this and checks its
+        deadline between calls."""
+        return self._read(n, True, once=True)
+
+    @property
+    def ended(self) -> bool:
+        """The body was read to its end."""
+        return self._done
+
+    def _read(self, n: int, decode_content: bool, *, once: bool) -> bytes:
         try:
             if self._inflater is None or not decode_content:
                 return self._plain(n)
-            return self._decoded(max(n, 1), self._inflater)
+            return self._decoded(max(n, 1), self._inflater, once)
         except TimeoutError:
             where = f"{self._key[1]}:{self._key[2]}"
             raise TransportTimeout(f"ReadTimeoutError: {where}: read timed out") from None
@@ -236,7 +252,7 @@ class Answer:
             self._done = True
         return chunk
 
-    def _decoded(self, n: int, inflater: _Inflater) -> bytes:
+    def _decoded(self, n: int, inflater: _Inflater, once: bool) -> bytes:
         # zlib may hold output it had no room for: take it before reading more
         if self._last == n and (out := inflater.feed(b"", n)):
             self._last = len(out)
@@ -250,6 +266,8 @@ class Answer:
             if not data:
                 if inflater.started and not inflater.finished:
                     raise zlib.error("it ends before its compressed data does (truncated)")
+                return b""
+            if once:  # nothing decoded from what arrived: back to the caller's deadline
                 return b""
 
     def close(self) -> None:
