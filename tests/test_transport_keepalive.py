@@ -27,7 +27,13 @@ from collector.demo_site.loopback import Answer, Handler
 from collector.errors import DownloadTimeout, FetchError, TooLarge
 from collector.fetching.fetcher import Fetcher, FetchSettings
 from collector.fetching.http_target import transport_target
-from collector.fetching.transport import DEFAULT_HEADERS, Transport, TransportError
+from collector.fetching.transport import (
+    DEFAULT_HEADERS,
+    DRAIN_MAX,
+    DRAIN_SECONDS,
+    Transport,
+    TransportError,
+)
 
 HEADERS = {"User-Agent": "collector/test (+curator@example.org)", "Accept-Encoding": "gzip"}
 # Compressible but not trivial: random runs between long repeats (seeded, so every run the same).
@@ -424,3 +430,81 @@ def test_compressed_data_that_never_decodes_stops_at_the_download_deadline(
         fetcher.close()
     assert time.monotonic() - began < 2.5
     assert list(tmp_path.iterdir()) == []
+
+
+# -- bodies nobody reads: short ones are read and dropped, so the connection is kept ----------
+def _port_noting(ports: list[int], status: int, body: bytes,
+                 headers: dict[str, str] | None = None) -> Callable[[Handler], None]:
+    def answer(h: Handler) -> None:
+        ports.append(h.client_address[1])
+        send(h, status, body, headers)
+    return answer
+
+
+def test_a_redirect_with_a_short_note_keeps_its_connection(server: LoopbackServer,
+                                                           tmp_path: Path) -> None:
+    """RFC 9110 §15.4: a redirect usually carries a short hypertext note, which the fetcher
+    never reads. It is read and dropped on close, so robots.txt, the redirect and its target
+    go over one connection (before: a new connection after every redirect)."""
+    ports: list[int] = []
+    server.route("/robots.txt", _port_noting(ports, 404, b"<p>none</p>"))
+    server.route("/moved.png", _port_noting(
+        ports, 302, b"<p>Found: <a href='/here.png'>here</a></p>", {"Location": "/here.png"}))
+    server.route("/here.png", _port_noting(ports, 200, b"\x89PNG-ish", {"Content-Type":
+                                                                          "image/png"}))
+    fetcher = Fetcher(_settings(), None)
+    try:
+        fetched = fetcher.download(server.url("/moved.png"), tmp_path)
+    finally:
+        fetcher.close()
+    assert fetched.status == 200 and fetched.final_url.endswith("/here.png")
+    assert server.paths() == ["/robots.txt", "/moved.png", "/here.png"]
+    assert len(set(ports)) == 1
+
+
+@pytest.mark.parametrize(("body", "kept"), [
+    (b"<p>slow down</p>", True),                                # short, its length known
+    (b"x" * (DRAIN_MAX + 1), False),                             # longer than DRAIN_MAX
+])
+def test_an_unread_body_is_dropped_only_when_short(server: LoopbackServer, transport: Transport,
+                                                   body: bytes, kept: bool) -> None:
+    """A 503 whose body is never read: the next request reuses the connection when the body
+    was short (read and dropped), and goes over a new one when it was not."""
+    ports: list[int] = []
+    server.route("/busy", _port_noting(ports, 503, body))
+    server.route("/next", _noting(ports))
+    with transport.get(transport_target(server.url("/busy")), HEADERS, connect_timeout=5.0,
+                       read_timeout=10.0) as answer:
+        assert answer.status_code == 503  # its body left unread, as the fetcher leaves it
+    assert _get(transport, server.url("/next"))[:2] == (200, b"{}")
+    assert (ports[0] == ports[1]) is kept
+
+
+def test_a_short_body_that_does_not_come_is_not_waited_for(server: LoopbackServer,
+                                                           transport: Transport) -> None:
+    """A short body announced but held back: closing the answer waits DRAIN_SECONDS at most,
+    then closes the connection; the next request goes over a new one."""
+    ports: list[int] = []
+    release = threading.Event()
+
+    def held_back(h: Handler) -> None:
+        ports.append(h.client_address[1])
+        h.send_response(302)
+        h.send_header("Location", "/elsewhere")
+        h.send_header("Content-Length", "20")
+        h.end_headers()
+        h.wfile.flush()
+        release.wait(10.0)
+        h.close_connection = True
+
+    server.route("/held", held_back)
+    server.route("/next", _noting(ports))
+    answer = transport.get(transport_target(server.url("/held")), HEADERS, connect_timeout=5.0,
+                           read_timeout=10.0)
+    began = time.monotonic()
+    answer.close()
+    waited = time.monotonic() - began
+    release.set()
+    assert waited < DRAIN_SECONDS + 1.0
+    assert _get(transport, server.url("/next"))[:2] == (200, b"{}")
+    assert ports[0] != ports[1]

@@ -57,6 +57,11 @@ Every request is exactly what the recipe and the fetcher say.
   or the connection ends before any byte of the answer) is sent once more on a new
   connection: it is a GET, and no answer came (urllib3 left that to a retry policy the
   fetcher had turned off, so such a request failed).
+- a body nobody read (the fetcher reads none of a redirect or a 429/503), of a known length
+  of at most ``DRAIN_MAX`` bytes that arrives within ``DRAIN_SECONDS``, is read and dropped
+  on close, so its connection is kept: an archive that redirects every image URL no longer
+  gets a new connection (and TLS handshake) per redirect, as it did under urllib3 and
+  requests, which closed such a connection;
 - a ``Content-Encoding`` other than ``gzip``, ``x-gzip``, ``deflate`` or ``identity`` (``br``,
   ``zstd``, several codings stacked) is passed through undecoded: urllib3 decoded br and zstd
   only when optional packages were installed, which are not dependencies; the fetcher asks
@@ -72,6 +77,7 @@ import select
 import socket
 import ssl
 import threading
+import time
 import zlib
 from collections import OrderedDict
 from collections.abc import Mapping
@@ -88,6 +94,12 @@ from collector.urls import DEFAULT_PORTS
 # Sent with every request unless the fetcher's headers name them (as requests' defaults were).
 DEFAULT_HEADERS = {"Accept": "*/*", "Connection": "keep-alive"}
 READ_SIZE = 65536  # decoded bytes :meth:`Answer.read` asks for at a time
+# A body nobody read (a redirect's or a 429/503's short note, RFC 9110 §15.4, §15.6.4) of at
+# most this many bytes is read and dropped on close, within DRAIN_SECONDS, so that the
+# connection is kept for the next request to the host: no new TCP (and TLS) handshake per
+# redirect. Our own values (common practice, no source).
+DRAIN_MAX = 65536
+DRAIN_SECONDS = 1.0
 _GZIP = 16 + zlib.MAX_WBITS  # a gzip member (RFC 1952)
 _ZLIB = zlib.MAX_WBITS  # a zlib stream (RFC 1950), the "deflate" of RFC 9110 §8.4.1.2
 _RAW = -zlib.MAX_WBITS  # bare deflate data (RFC 1951), which some servers send as "deflate"
@@ -174,11 +186,12 @@ class Answer:
     :meth:`read1` gives decoded bytes as they arrive (``b""`` at the end); ``raw`` is the
     answer itself, so code written for urllib3's response (``answer.raw.read1(n,
     decode_content=True)``) reads it unchanged. Close it (or use ``with``): a body read to its
-    end gives the connection back for the next request; one left unread closes it.
+    end gives the connection back for the next request, and so does a short one nobody
+    read (:data:`DRAIN_MAX`, read and dropped); one left partly read closes it.
     """
 
     __slots__ = ("_conn", "_done", "_inflater", "_key", "_last", "_owner", "_response",
-                 "address", "headers", "status_code")
+                 "_touched", "address", "headers", "status_code")
 
     def __init__(self, response: http.client.HTTPResponse,
                  conn: http.client.HTTPConnection | None, owner: Transport, key: _Key,
@@ -190,6 +203,7 @@ class Answer:
         coding = (self.headers.get("Content-Encoding") or "").strip().lower()
         self._inflater = _Inflater(_CODINGS[coding]) if coding in _CODINGS else None
         self._done = False  # the body was read to its end
+        self._touched = False  # a read of the body was asked for
         self._last = 0  # size of the last decoded output (a full one may have more behind)
 
     @property
@@ -244,6 +258,7 @@ class Answer:
         return b"".join(chunks)
 
     def _plain(self, n: int) -> bytes:
+        self._touched = True
         response = self._response
         chunk = response.read1(n)
         if not chunk and not self._done:
@@ -276,7 +291,8 @@ class Answer:
         if conn is None:
             return
         response = self._response
-        ended = self._done or (not response.chunked and response.length == 0)
+        ended = (self._done or (not response.chunked and response.length == 0)
+                 or (not self._touched and _drained(response, conn)))
         response.close()
         if ended and not response.will_close and conn.sock is not None:
             self._owner._keep(self._key, conn)
@@ -289,6 +305,25 @@ class Answer:
     def __exit__(self, exc_type: type[BaseException] | None, exc: BaseException | None,
                  tb: TracebackType | None) -> None:
         self.close()
+
+
+def _drained(response: http.client.HTTPResponse, conn: http.client.HTTPConnection) -> bool:
+    """Whether an unread body of a known length of at most DRAIN_MAX bytes was read to its
+    end (and dropped) within DRAIN_SECONDS. A longer body, one of unknown length or one
+    that does not come at once is not waited for: its connection is closed instead."""
+    if response.chunked or response.length is None or response.length > DRAIN_MAX:
+        return False
+    if conn.sock is None:
+        return False
+    deadline = time.monotonic() + DRAIN_SECONDS
+    try:
+        conn.sock.settimeout(DRAIN_SECONDS)
+        while response.length:
+            if not response.read1(response.length) or time.monotonic() > deadline:
+                return False
+    except (OSError, http.client.HTTPException):
+        return False
+    return True
 
 
 def _headers(message: http.client.HTTPMessage) -> CaseInsensitiveDict[str]:
