@@ -198,7 +198,7 @@ def _transport_alone(url: str, count: int, interval: float, conn: Connection) ->
 
     def one(target: Target) -> None:
         with sender.get(target, headers, connect_timeout=10.0, read_timeout=30.0) as answer:
-            while answer.raw.read1(65536, decode_content=True):  # as urllib3's answer too
+            while answer.read1(65536):
                 pass
 
     one(targets[0])
