@@ -38,6 +38,7 @@ import os
 import tempfile
 import threading
 import time
+from collections.abc import Callable
 from dataclasses import replace
 from multiprocessing.connection import Connection
 from pathlib import Path
@@ -168,20 +169,30 @@ def _library_client(urls: list[str], per_host: int, interval: float, conn: Conne
     conn.send(cpu)
 
 
-def _plain_alone(url: str, count: int, interval: float, conn: Connection) -> None:
-    """Child process: ``count`` GETs of one host at the same pace with http.client alone (the
-    standard library under urllib3): the floor under the HTTP library itself."""
-    parts = urlsplit(url)
-    plain = http.client.HTTPConnection(parts.hostname or "", parts.port)
-    plain.request("GET", "/robots.txt")  # the connection, as the fetcher's robots.txt opens it
-    plain.getresponse().read()
+def _paced_cpu(one: Callable[[int], object], count: int, interval: float) -> float:
+    """CPU seconds of ``one(i)`` for i in range(count), each call ``interval`` after the end
+    of the one before (a host's pace), the idle time not counted."""
     cpu = 0.0
     for i in range(count):
         time.sleep(interval)
         t0 = time.process_time()
-        plain.request("GET", f"/item/{i}")
-        plain.getresponse().read()
+        one(i)
         cpu += time.process_time() - t0
+    return cpu
+
+
+def _plain_alone(url: str, count: int, interval: float, conn: Connection) -> None:
+    """Child process: ``count`` GETs of one host at the same pace with http.client alone (the
+    standard library the transport sends through): the floor under the transport."""
+    parts = urlsplit(url)
+    plain = http.client.HTTPConnection(parts.hostname or "", parts.port)
+
+    def one(path: str) -> None:
+        plain.request("GET", path)
+        plain.getresponse().read()
+
+    one("/robots.txt")  # the connection, as the fetcher's robots.txt opens it
+    cpu = _paced_cpu(lambda i: one(f"/item/{i}"), count, interval)
     plain.close()
     conn.send(cpu)
 
@@ -198,16 +209,11 @@ def _transport_alone(url: str, count: int, interval: float, conn: Connection) ->
 
     def one(target: Target) -> None:
         with sender.get(target, headers, connect_timeout=10.0, read_timeout=30.0) as answer:
-            while answer.raw.read1(65536, decode_content=True):  # as urllib3's answer too
+            while answer.read1(65536):
                 pass
 
     one(targets[0])
-    cpu = 0.0
-    for target in targets[1:]:
-        time.sleep(interval)
-        t0 = time.process_time()
-        one(target)
-        cpu += time.process_time() - t0
+    cpu = _paced_cpu(lambda i: one(targets[i + 1]), count, interval)
     sender.close()
     conn.send(cpu)
 
@@ -219,16 +225,15 @@ def _pool_alone(url: str, count: int, interval: float, conn: Connection) -> None
     parts = urlsplit(url)
     pool = urllib3.HTTPConnectionPool(parts.hostname or "", parts.port, maxsize=10)
     pool.urlopen("GET", "/robots.txt", retries=False).read()
-    cpu = 0.0
-    for i in range(count):
-        time.sleep(interval)
-        t0 = time.process_time()
+
+    def one(i: int) -> None:
         answer = pool.urlopen("GET", f"/item/{i}", redirect=False, assert_same_host=False,
                               preload_content=False, decode_content=False, retries=False,
                               timeout=urllib3.Timeout(connect=10.0, read=30.0))
         answer.read(decode_content=True)
         answer.release_conn()
-        cpu += time.process_time() - t0
+
+    cpu = _paced_cpu(one, count, interval)
     pool.close()
     conn.send(cpu)
 

@@ -140,21 +140,12 @@ def csv_cell(value: Any) -> Any:
     ``\\x00`` itself reads the same as one that held a NUL (the ledger keeps which)."""
     if isinstance(value, str):
         if not value.isprintable():  # a control character is never printable (category Cc)
-            value = _NOT_IN_DOCUMENTS.sub(_escaped, value)
+            value = for_document(value)
         if value.startswith(FORMULA_STARTS):
             return "'" + value
     return value
 
 
 def csv_row(row: dict[str, Any]) -> dict[str, Any]:
-    """Every cell of a CSV row passed through :func:`csv_cell` (inlined: the datasheet writes
-    one row per file)."""
-    out = {}
-    for key, value in row.items():
-        if isinstance(value, str):
-            if not value.isprintable():
-                value = _NOT_IN_DOCUMENTS.sub(_escaped, value)
-            if value.startswith(FORMULA_STARTS):
-                value = "'" + value
-        out[key] = value
-    return out
+    """Every cell of a CSV row passed through :func:`csv_cell`."""
+    return {key: csv_cell(value) for key, value in row.items()}

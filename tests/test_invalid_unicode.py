@@ -21,7 +21,7 @@ from pathlib import Path
 import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
-from support.collections import one_listing_recipe, serve_leaves
+from support.collections import gather_listing, one_listing_recipe, serve_leaves
 from support.server import LoopbackServer
 from typer.testing import CliRunner
 
@@ -342,11 +342,7 @@ def test_a_tdmrep_json_policy_holding_a_lone_surrogate_is_recorded_with_fffd(
         leaves = serve_leaves(server, 2)
         server.route("/.well-known/tdmrep.json", (200, body,
                                                   {"Content-Type": "application/json"}))
-        server.route("/api", (200, json.dumps({"results": leaves}).encode(),
-                              {"Content-Type": "application/json"}))
-        col = init_collection(tmp_path / "col", contact="x@example.org")
-        col.recipe_path.write_text(one_listing_recipe(server.url("/api"), min_interval=0.0))
-        result = gather(col)
+        col, result = gather_listing(server, leaves, tmp_path / "col")
     assert result.outcome == "finished"
     with col.ledger(readonly=True) as ledger:
         rows = ledger.query("SELECT state, reason, detail FROM items")

@@ -8,11 +8,10 @@ host named ``?``; they are counted on a line of their own.
 
 from __future__ import annotations
 
-import json
 from collections.abc import Iterator
 
 import pytest
-from support.collections import one_listing_recipe, serve_leaves
+from support.collections import gather_listing, serve_leaves
 from support.server import LoopbackServer
 from typer.testing import CliRunner
 
@@ -24,8 +23,7 @@ from collector.exports.summary import (
     summarise,
     summary_as_dict,
 )
-from collector.run.gather import gather
-from collector.storage.collection import Collection, init_collection
+from collector.storage.collection import Collection
 from collector.storage.datasheet_queries import requests_per_host
 
 
@@ -36,12 +34,8 @@ def refused(tmp_path_factory: pytest.TempPathFactory) -> Iterator[tuple[Collecti
     with LoopbackServer("127.0.0.1") as server:
         leaves = serve_leaves(server, 3)
         server.route("/img/1.png", (302, b"", {"Location": "file:///leaf.png"}))
-        server.route("/api", (200, json.dumps({"results": leaves}).encode(),
-                              {"Content-Type": "application/json"}))
-        col = init_collection(tmp_path_factory.mktemp("status") / "col",
-                              contact="x@example.org")
-        col.recipe_path.write_text(one_listing_recipe(server.url("/api"), min_interval=0.0))
-        assert gather(col).outcome == "finished"
+        col, result = gather_listing(server, leaves, tmp_path_factory.mktemp("status") / "col")
+        assert result.outcome == "finished"
         yield col, f"127.0.0.1:{server.port}", [h.path for h in server.hits]
 
 
@@ -110,12 +104,9 @@ def unreadable_listed(tmp_path_factory: pytest.TempPathFactory) -> Collection:
         leaves = serve_leaves(server, 2)
         server.route("/img/1.png", (404, b""))
         leaves.append({**leaves[0], "id": "file", "image": "file:///leaf.png"})
-        server.route("/api", (200, json.dumps({"results": leaves}).encode(),
-                              {"Content-Type": "application/json"}))
-        col = init_collection(tmp_path_factory.mktemp("estimate") / "col",
-                              contact="x@example.org")
-        col.recipe_path.write_text(one_listing_recipe(server.url("/api"), min_interval=0.0))
-        assert gather(col).outcome == "finished"
+        col, result = gather_listing(server, leaves,
+                                     tmp_path_factory.mktemp("estimate") / "col")
+        assert result.outcome == "finished"
         return col
 
 

@@ -51,7 +51,7 @@ def _get(transport: Transport, url: str, headers: dict[str, str] | None = None,
     target = replace(transport_target(url), addresses=(address,) if address else ())
     with transport.get(target, HEADERS if headers is None else headers,
                        connect_timeout=5.0, read_timeout=read_timeout) as answer:
-        return answer.status_code, answer.raw.read(decode_content=True)
+        return answer.status_code, answer.read()
 
 
 @pytest.mark.parametrize("path", [

@@ -26,6 +26,7 @@ from urllib.parse import urlsplit
 
 import idna
 from requests.models import PreparedRequest
+from requests.utils import UNRESERVED_SET
 from urllib3.util import parse_url
 
 from collector.errors import UnsafeURL
@@ -50,7 +51,6 @@ _PLAIN = re.compile(r"(https?)://([a-z0-9][a-z0-9.-]*)(?::([1-9][0-9]{0,4}))?"
                     r"(/(?:[A-Za-z0-9._~!$&'()*+,;=:@/-]|%[0-9A-F]{2})*"
                     r"(?:\?(?:[A-Za-z0-9._~!$&'()*+,;=:@/?-]|%[0-9A-F]{2})+)?)")
 _ESCAPE = re.compile(r"%([0-9A-F]{2})")
-_UNRESERVED = frozenset("ABCDEFGHIJKLMNOPQRSTUVWXYZabcdefghijklmnopqrstuvwxyz0123456789-._~")
 
 
 @dataclass(frozen=True)
@@ -174,7 +174,7 @@ def _plain_target(url: str) -> Target | None:
     number = int(port) if port else DEFAULT_PORTS[scheme]
     if number > 65535 or "/." in request_uri or ".." in host or host.endswith((".", "-")):
         return None
-    if "%" in request_uri and any(chr(int(code, 16)) in _UNRESERVED
+    if "%" in request_uri and any(chr(int(code, 16)) in UNRESERVED_SET
                                   for code in _ESCAPE.findall(request_uri)):
         return None  # the library unquotes it (RFC 3986 §2.3): not sent as written
     return Target(url, scheme, host, number, request_uri)

@@ -183,11 +183,10 @@ class _Inflater:
 class Answer:
     """One answer's status and headers, with its body still to be read.
 
-    :meth:`read1` gives decoded bytes as they arrive (``b""`` at the end); ``raw`` is the
-    answer itself, so code written for urllib3's response (``answer.raw.read1(n,
-    decode_content=True)``) reads it unchanged. Close it (or use ``with``): a body read to its
-    end gives the connection back for the next request, and so does a short one nobody
-    read (:data:`DRAIN_MAX`, read and dropped); one left partly read closes it.
+    :meth:`read1` gives decoded bytes as they arrive (``b""`` at the end). Close it (or use
+    ``with``): a body read to its end gives the connection back for the next request, and so
+    does a short one nobody read (:data:`DRAIN_MAX`, read and dropped); one left partly read
+    closes it.
     """
 
     __slots__ = ("_conn", "_done", "_inflater", "_key", "_last", "_owner", "_response",
@@ -207,21 +206,16 @@ class Answer:
         self._last = 0  # size of the last decoded output (a full one may have more behind)
 
     @property
-    def raw(self) -> Answer:
-        """The answer itself (where urllib3's answer kept its body stream)."""
-        return self
-
-    @property
     def encoding(self) -> str | None:
         """The charset of the answer's Content-Type, read as requests reads it."""
         return get_encoding_from_headers(self.headers)
 
-    def read1(self, n: int = READ_SIZE, decode_content: bool = True) -> bytes:
+    def read1(self, n: int = READ_SIZE) -> bytes:
         """At most ``n`` bytes of the body, decoded, from what has arrived (waiting for more
         only when nothing is there); ``b""`` at its end. Raises :class:`TransportTimeout` when
         nothing arrives within the read timeout, :class:`TransportError` for a broken
         connection, a body shorter than its ``Content-Length`` or corrupt compressed data."""
-        return self._read(n, decode_content, once=False)
+        return self._read(n, once=False)
 
     def read_some(self, n: int = READ_SIZE) -> bytes:
         """:meth:`read1`, but back after each read from the network even when the compressed
@@ -229,16 +223,16 @@ class Answer:
         Compressed data can yield nothing for as long as a server sends it (empty deflate
         blocks, RFC 1951 §3.2.4), so a caller with a deadline reads with this and checks its
         deadline between calls."""
-        return self._read(n, True, once=True)
+        return self._read(n, once=True)
 
     @property
     def ended(self) -> bool:
         """The body was read to its end."""
         return self._done
 
-    def _read(self, n: int, decode_content: bool, *, once: bool) -> bytes:
+    def _read(self, n: int, *, once: bool) -> bytes:
         try:
-            if self._inflater is None or not decode_content:
+            if self._inflater is None:
                 return self._plain(n)
             return self._decoded(max(n, 1), self._inflater, once)
         except TimeoutError:
@@ -250,10 +244,10 @@ class Answer:
         except (OSError, http.client.HTTPException, ValueError) as exc:
             raise TransportError(f"{type(exc).__name__}: {exc}") from None
 
-    def read(self, decode_content: bool = True) -> bytes:
-        """The rest of the body (decoded unless ``decode_content`` is false)."""
+    def read(self) -> bytes:
+        """The rest of the body, decoded."""
         chunks = []
-        while chunk := self.read1(READ_SIZE, decode_content):
+        while chunk := self.read1(READ_SIZE):
             chunks.append(chunk)
         return b"".join(chunks)
 

@@ -2,6 +2,8 @@
 
 - :func:`one_page_recipe`: the demo archive's smoke recipe over one listing page of 10 items,
   without an item limit (a quick web gather against ``fresh_demo_server``).
+- :func:`gather_listing`: a collection over one JSON listing of :func:`serve_leaves`'
+  leaves on a loopback server, gathered once.
 - :func:`grid_picture`: a distinct small picture per seed, as PNG or JPEG bytes.
 - :func:`scans_collection`: a collection over a few generated scans, gathered once, no network.
 - :func:`gather_once` and :class:`Gathered`: a web gather made once per test session
@@ -13,6 +15,7 @@ from __future__ import annotations
 
 import hashlib
 import io
+import json
 import shutil
 from dataclasses import dataclass
 from pathlib import Path
@@ -48,6 +51,18 @@ def one_listing_recipe(url: str, *, min_interval: float | None = 0.1,
     return ('contact = "x@example.org"\n' + budget
             + '[network]\nallow_addresses = ["127.0.0.1/32"]\n'
             + listing_source("leaves", url, pagination=pagination))
+
+
+def gather_listing(server: Any, leaves: list[dict[str, str]],
+                   folder: Path) -> tuple[Collection, RunResult]:
+    """Serve ``leaves`` as the JSON listing ``/api`` on ``server``, make a collection at
+    ``folder`` over it (:func:`one_listing_recipe`, no wait between requests) and gather it
+    once: the collection and the run's result."""
+    server.route("/api", (200, json.dumps({"results": leaves}).encode(),
+                          {"Content-Type": "application/json"}))
+    col = init_collection(folder, contact="x@example.org")
+    col.recipe_path.write_text(one_listing_recipe(server.url("/api"), min_interval=0.0))
+    return col, gather(col)
 
 
 def serve_leaves(server: Any, count: int, *, first: int = 0,
