@@ -467,7 +467,8 @@ class Transport:
         read_timeout = request.read_timeout
         try:
             assert conn.sock is not None
-            conn.sock.settimeout(read_timeout)
+            if conn.sock.gettimeout() != read_timeout:  # a kept one has it already (a syscall)
+                conn.sock.settimeout(read_timeout)
             conn.putrequest("GET", request.uri, skip_host=True,
                             skip_accept_encoding=request.skip_accept_encoding)
             if not pinned:
