@@ -115,6 +115,27 @@ def test_a_header_that_would_split_is_refused_before_anything_is_sent(
     assert server.hits == []
 
 
+def test_a_request_made_again_sends_its_own_target_and_a_bad_header_is_refused_each_time(
+        server: LoopbackServer, transport: Transport) -> None:
+    """The transport makes a request's head once for the same headers and host: each
+    request still sends its own target and Host, and a header it refused is refused again
+    (RFC 9110 §5.5), never sent from what an earlier request made."""
+    other = LoopbackServer("127.0.0.1")
+    server.fallback = other.fallback = (200, b"{}")
+    try:
+        for path in ("/a?x=1", "/b", "/a?x=2"):
+            assert _get(transport, server.url(path))[0] == 200
+        assert _get(transport, other.url("/c"))[0] == 200
+        for _ in range(2):
+            with pytest.raises(ValueError):
+                _get(transport, server.url("/d"), {**HEADERS, "X-Note": "a\r\nInjected: yes"})
+        assert [(h.path, h.headers["Host"]) for h in server.hits] == [
+            ("/a?x=1", server.key), ("/b", server.key), ("/a?x=2", server.key)]
+        assert [(h.path, h.headers["Host"]) for h in other.hits] == [("/c", other.key)]
+    finally:
+        other.close()
+
+
 def test_a_refused_connection_is_an_error_not_a_timeout(transport: Transport) -> None:
     """Nothing listening on the port: TransportError, not TransportTimeout (urllib3 files its
     NewConnectionError under connect timeouts; requests told them apart too)."""

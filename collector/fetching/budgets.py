@@ -38,6 +38,8 @@ MAX_SLOWDOWN = 8.0
 # Bytes counted within this many seconds share one entry of the bytes/hour log (see
 # HostBudgets.record_bytes): an hour of a busy host is at most 3,600 entries, not one per chunk.
 BYTE_BUCKET = 1.0
+# A last contact the ledger puts ahead of now counts at most this far ahead (see contacted).
+AHEAD_MAX = 5.0
 
 
 class Clock(Protocol):
@@ -109,10 +111,16 @@ def budgets_from_recipe(table: Mapping[str, Any] | None) -> tuple[Budget, dict[s
     return default, overrides
 
 
+def _slots(count: int) -> threading.BoundedSemaphore | threading.Lock:
+    """A host's connection slots: a plain lock for one (the common budget; taken and given
+    back in C, where a semaphore runs a few dozen lines of Python per request)."""
+    return threading.Lock() if count <= 1 else threading.BoundedSemaphore(count)
+
+
 @dataclass
 class _HostState:
     budget: Budget
-    semaphore: threading.BoundedSemaphore
+    semaphore: threading.BoundedSemaphore | threading.Lock  # connection slots (see _state)
     last_start: float | None = None
     last_answer: float | None = None  # when the latest answer began to arrive (see module doc)
     starts: deque[float] | None = None
@@ -189,7 +197,7 @@ class HostBudgets:
             budget = self.budget_for(host)
             state = _HostState(
                 budget=budget,
-                semaphore=threading.BoundedSemaphore(max(1, int(budget.max_connections))),
+                semaphore=_slots(int(budget.max_connections)),
                 starts=deque(maxlen=max(1, int(budget.requests_per_hour))),
                 byte_log=deque(),
             )
@@ -321,10 +329,14 @@ class HostBudgets:
 
     def contacted(self, host: str, seconds_ago: float) -> None:
         """``host`` was last contacted ``seconds_ago`` (by an earlier run, from the ledger):
-        its first request in this run keeps a full interval after that contact."""
+        its first request in this run keeps a full interval after that contact. A negative
+        value (a moment ahead: the end of the request rows a killed run may not have
+        written) counts up to AHEAD_MAX s ahead; a ledger time further ahead (a clock set
+        back) counts as now."""
         with self._lock:
             state = self._state_locked(host)
-            at = self.clock.monotonic() - max(0.0, seconds_ago)
+            ahead = -seconds_ago if -AHEAD_MAX <= seconds_ago < 0 else 0.0
+            at = self.clock.monotonic() - max(0.0, seconds_ago) + ahead
             state.last_answer = max(state.last_answer or at, at)
 
     def record_bytes(self, host: str, count: int) -> None:

@@ -24,8 +24,10 @@ transport connects to the addresses that were checked, never to a second answer 
 from __future__ import annotations
 
 import logging
+import math
 import random
 import threading
+import time
 from collections.abc import Callable, Iterable, Mapping
 from dataclasses import dataclass, replace
 from datetime import UTC, datetime
@@ -136,6 +138,13 @@ class Fetcher:
         self._allowed_literals: dict[str, tuple[str, ...]] = {}
         self._addresses: dict[str, str] = {}  # host name -> the address last connected to
         self._secret_names: dict[str, bool] = {}  # header name -> is_secret_header
+        # The recipe's headers when none refers to ${NAME} (nothing to fill in): the headers
+        # a request without headers of its own sends, and their secret parts, made once.
+        self._plain_headers: Mapping[str, str] | None = None
+        if not any("${" in str(v) for v in settings.headers.values()):
+            self._plain_headers = dict(settings.headers)
+            sent = self._sent_headers(self._plain_headers)
+            self._plain_sent = (sent, self._header_secrets(sent))
         self._own_transport = transport is None
         self.transport = transport or Transport(pools=KEPT_POOLS)
         self._lock = threading.Lock()
@@ -218,7 +227,10 @@ class Fetcher:
                headers: Mapping[str, str], secret_params: Iterable[str], max_bytes: int,
                dest_dir: Path | None = None, robots: bool = False) -> _Result:
         secret_params = tuple(secret_params)
-        headers = filled_from_env({**self.settings.headers, **headers}, url, secret_params)
+        if headers or self._plain_headers is None:
+            headers = filled_from_env({**self.settings.headers, **headers}, url, secret_params)
+        else:
+            headers = self._plain_headers
         max_hops = MAX_ROBOTS_REDIRECTS if robots else self.settings.max_redirects
         current = url
         hops = 0
@@ -293,11 +305,12 @@ class Fetcher:
     def _attempt(self, url: str, target: Target, shown: str, hk: str, row: dict[str, Any],
                  verdict: Verdict, headers: Mapping[str, str], secrets: list[str], max_bytes: int,
                  dest_dir: Path | None, attempt: int, final: bool, truncate: bool) -> _Result:
-        send_headers = {"User-Agent": self.settings.user_agent, "Accept-Encoding": "gzip"}
-        send_headers.update(headers)  # recipe headers, then this request's (filled by _fetch)
-        all_secrets = secrets + [part for k, v in send_headers.items()
-                                 if self._is_secret_header(k)
-                                 for part in header_secrets(str(v)) if len(part) >= MIN_SECRET_LEN]
+        if headers is self._plain_headers:
+            send_headers, header_parts = self._plain_sent
+        else:
+            send_headers = self._sent_headers(headers)
+            header_parts = self._header_secrets(send_headers)
+        all_secrets = secrets + header_parts
         base = {**row, "attempt": attempt, "robots_verdict": verdict.verdict,
                 "robots_rule": verdict.rule}
         slot = self.budgets.acquire(hk)
@@ -396,6 +409,16 @@ class Fetcher:
             return (last, *(a for a in checked if a != last))
         self._addresses[target.host] = checked[0]  # until an answer says which one took it
         return checked
+
+    def _sent_headers(self, headers: Mapping[str, str]) -> dict[str, str]:
+        """Our User-Agent and Accept-Encoding, then the recipe's headers and this request's
+        (filled by _fetch)."""
+        return {"User-Agent": self.settings.user_agent, "Accept-Encoding": "gzip", **headers}
+
+    def _header_secrets(self, headers: Mapping[str, str]) -> list[str]:
+        """The secret parts of the secret headers' values (hidden in errors)."""
+        return [part for k, v in headers.items() if self._is_secret_header(k)
+                for part in header_secrets(str(v)) if len(part) >= MIN_SECRET_LEN]
 
     def _is_secret_header(self, name: str) -> bool:
         known = self._secret_names.get(name)
@@ -544,9 +567,27 @@ class Fetcher:
         self.ledger.record_fetch(**fields)
 
 
+_SECOND: tuple[float, str] = (-1.0, "")  # the second _iso wrote last, and its text
+
+
 def _iso(epoch: float) -> str:
-    return (datetime.fromtimestamp(epoch, UTC).isoformat(timespec="milliseconds")
-            .replace("+00:00", "Z"))
+    """``epoch`` as the ledger writes times: what ``datetime.fromtimestamp(epoch, UTC)
+    .isoformat(timespec="milliseconds")`` gives, with Z for +00:00 (its microseconds rounded
+    half to even, then cut to milliseconds); the date and time of a second are formatted
+    once, not twice a request."""
+    global _SECOND
+    if not 0 <= epoch < 253402300800:  # before 1970 or after 9999: the general way
+        return (datetime.fromtimestamp(epoch, UTC).isoformat(timespec="milliseconds")
+                .replace("+00:00", "Z"))
+    fraction, whole = math.modf(epoch)
+    micro = round(fraction * 1e6)
+    if micro >= 1_000_000:
+        whole, micro = whole + 1, micro - 1_000_000
+    second, text = _SECOND
+    if second != whole:
+        text = time.strftime("%Y-%m-%dT%H:%M:%S", time.gmtime(whole))
+        _SECOND = (whole, text)
+    return f"{text}.{micro // 1000:03d}Z"
 
 
 def _from_iso(text: str) -> float | None:

@@ -82,7 +82,7 @@ import zlib
 from collections import OrderedDict
 from collections.abc import Mapping
 from types import TracebackType
-from typing import NamedTuple
+from typing import Any, NamedTuple
 
 import certifi
 from requests.structures import CaseInsensitiveDict
@@ -379,6 +379,31 @@ def _request(target: Target, headers: Mapping[str, str], read_timeout: float) ->
                     "accept-encoding" in names, read_timeout)
 
 
+# The requests made last, by their headers and host: a fetcher sends the same headers to a
+# host request after request, and checking and ordering them again cost more than the rest
+# of the request's making. Bounded: cleared whole when full.
+_MADE: dict[tuple[Any, ...], _Request] = {}
+_MADE_MAX = 512
+
+
+def _request_for(target: Target, headers: Mapping[str, str], read_timeout: float) -> _Request:
+    """:func:`_request`, made once for the same headers, host, port and timeout (a URL
+    with credentials is made every time: its Authorization header comes from the URL)."""
+    if target.credentials:
+        return _request(target, headers, read_timeout)
+    key = (tuple(headers.items()), target.scheme, target.host, target.port, read_timeout)
+    try:
+        made = _MADE.get(key)
+    except TypeError:  # a value that is no text (refused by _request with its reason)
+        return _request(target, headers, read_timeout)
+    if made is None:
+        made = _request(target, headers, read_timeout)
+        if len(_MADE) >= _MADE_MAX:
+            _MADE.clear()
+        _MADE[key] = made
+    return made._replace(uri=target.request_uri)
+
+
 def _request_headers(target: Target, headers: Mapping[str, str]) -> dict[str, str]:
     """The headers to send, in order: requests' defaults, the caller's, Basic auth from URL
     credentials. Raises ValueError for one that cannot be sent."""
@@ -416,7 +441,7 @@ class Transport:
 
         Raises :class:`TransportTimeout` or :class:`TransportError` when no answer came, and
         ``ValueError`` for a header that cannot be sent (a CR or LF in it, a leading space)."""
-        request = _request(target, headers, read_timeout)
+        request = _request_for(target, headers, read_timeout)
         addresses: tuple[str | None, ...] = target.addresses or (None,)
         for n, address in enumerate(addresses):
             where = address or target.host
@@ -467,7 +492,8 @@ class Transport:
         read_timeout = request.read_timeout
         try:
             assert conn.sock is not None
-            conn.sock.settimeout(read_timeout)
+            if conn.sock.gettimeout() != read_timeout:  # a kept one has it already (a syscall)
+                conn.sock.settimeout(read_timeout)
             conn.putrequest("GET", request.uri, skip_host=True,
                             skip_accept_encoding=request.skip_accept_encoding)
             if not pinned:

@@ -15,32 +15,26 @@ All methods are thread-safe (one connection, one lock): the gather's threads sha
 
 from __future__ import annotations
 
-import json
+import logging
 import sqlite3
 import threading
 import uuid
 from collections.abc import Callable, Iterator
-from contextlib import contextmanager, suppress
-from datetime import UTC, datetime
+from contextlib import contextmanager
 from pathlib import Path
 from typing import Any
 
 import sqlite_utils
 
 from collector.errors import LedgerError, LedgerUnusable
+from collector.storage import fetch_batch
 from collector.storage.migrations import MIGRATIONS
+from collector.storage.row_codec import decode_row, encode_row, utc_now
 from collector.storage.safe_paths import refuse_ledger_links
 
 SCHEMA_VERSION = max(MIGRATIONS)  # the newest migration; a file records what it has
-
-JSON_COLUMNS = {"options", "config", "metadata", "crop_box", "exif", "rights", "flags",
-                "effective_budget", "size_request", "colours"}
-_JSON = json.JSONEncoder(sort_keys=True, default=str)  # json.dumps's, made once (not per call)
-
-
-def utc_now() -> str:
-    """The current time as an ISO 8601 UTC string with milliseconds (the ledger's time format)."""
-    return datetime.now(UTC).isoformat(timespec="milliseconds").replace("+00:00", "Z")
+_SET_FACT = ("INSERT INTO ledger_facts (name, value) VALUES (?, ?) "
+             "ON CONFLICT(name) DO UPDATE SET value = excluded.value")
 
 
 def ways_out(folder: Path) -> str:
@@ -49,30 +43,6 @@ def ways_out(folder: Path) -> str:
             f"restore-ledger {folder}', or register the stored files again (provenance "
             f"unknown) with 'collector rebuild-ledger {folder}'; both set the current "
             "ledger file aside instead of deleting it.")
-
-
-def _encode(row: dict[str, Any]) -> dict[str, Any]:
-    """JSON-encode the structured columns and booleans of a row before writing it."""
-    out: dict[str, Any] = {}
-    for key, value in row.items():
-        if key in JSON_COLUMNS and value is not None and not isinstance(value, str):
-            value = _JSON.encode(value)  # keeps no state between calls
-        elif isinstance(value, bool):
-            value = int(value)
-        out[key] = value
-    return out
-
-
-def decode_row(row: dict[str, Any] | None) -> dict[str, Any] | None:
-    """Decode the JSON columns of a row read from the ledger."""
-    if row is None:
-        return None
-    out = dict(row)
-    for key in JSON_COLUMNS & out.keys():
-        if isinstance(out[key], str):
-            with suppress(ValueError):
-                out[key] = json.loads(out[key])
-    return out
 
 
 class Ledger:
@@ -85,6 +55,9 @@ class Ledger:
         self._lock = threading.RLock()
         self._column_cache: dict[str, frozenset[str]] = {}
         self._depth = 0  # transaction() nesting: only the outermost block commits
+        self._batch = fetch_batch.FetchBatch(self._batch_due)  # fetches rows not yet committed
+        self._closed = False
+        self._lost_until: str | None = None  # see last_contact
 
     # -- opening -----------------------------------------------------------------------------
     @classmethod
@@ -146,6 +119,7 @@ class Ledger:
                                      + ways_out(path.parent))
             if not readonly:
                 ledger.migrate()
+                ledger._lost_until = fetch_batch.lost_until(ledger.fact(fetch_batch.BATCH_FACT))
             return ledger
         except sqlite3.DatabaseError as exc:
             if "not a database" in str(exc) or "malformed" in str(exc):
@@ -154,9 +128,21 @@ class Ledger:
             raise LedgerError(f"cannot open the ledger {path}: {exc}") from exc
 
     def close(self) -> None:
-        """Close the connection (WAL contents are checkpointed by SQLite)."""
+        """Commit the request rows in memory and close (SQLite checkpoints the WAL)."""
         with self._lock:
-            self._conn.close()
+            if self._closed:
+                return
+            try:
+                with self._translate("write the last request rows"):
+                    self._flush_fetches()
+                    if self._batch.marked:  # every row is in: the next run need not wait
+                        with self._conn:
+                            self._conn.execute("DELETE FROM ledger_facts WHERE name = ?",
+                                               (fetch_batch.BATCH_FACT,))
+            finally:
+                self._closed = True
+                self._batch.stop()
+                self._conn.close()
 
     def __enter__(self) -> Ledger:
         return self
@@ -217,6 +203,7 @@ class Ledger:
                 finally:
                     self._depth -= 1
                 return
+            self._flush_fetches()  # on their own: a failing block rolls back only itself
             self._depth = 1
             try:
                 with self._conn:
@@ -228,6 +215,7 @@ class Ledger:
     def query(self, sql: str, params: tuple[Any, ...] | dict[str, Any] = ()) -> list[dict]:
         """Run a read query and return rows as dicts."""
         with self._lock, self._translate("query"):
+            self._flush_fetches()  # a question of this process sees every row it made
             cur = self._conn.execute(sql, params)
             names = [d[0] for d in cur.description or ()]
             return [dict(zip(names, row, strict=True)) for row in cur.fetchall()]
@@ -235,6 +223,7 @@ class Ledger:
     def scalar(self, sql: str, params: tuple[Any, ...] | dict[str, Any] = ()) -> Any:
         """Run a query that returns one value."""
         with self._lock, self._translate("query"):
+            self._flush_fetches()
             rows = self._conn.execute(sql, params).fetchall()  # all: leave no statement open
             return rows[0][0] if rows else None
 
@@ -243,6 +232,7 @@ class Ledger:
              ) -> list[tuple[Any, ...]]:
         """Run a read query and return plain tuples (cheaper than a dict per row)."""
         with self._lock, self._translate("query"):
+            self._flush_fetches()
             return self._conn.execute(sql, params).fetchall()
 
     def stream(self, sql: str, params: tuple[Any, ...] | dict[str, Any] = (), *,
@@ -251,6 +241,7 @@ class Ledger:
         error while reading is translated like every other."""
         with self._translate("query"):
             with self._lock:
+                self._flush_fetches()
                 cur = self._conn.execute(sql, params)
             try:
                 while True:
@@ -321,7 +312,7 @@ class Ledger:
         unknown = row.keys() - self._columns(table)
         if unknown:
             raise LedgerError(f"ledger table {table} has no column(s) {sorted(unknown)}")
-        return _encode(row)
+        return encode_row(row)
 
     # Hot paths use plain SQL: sqlite-utils inspects the table on every call, which cost
     # ~25 statements per stored file in the ingest benchmark.
@@ -369,7 +360,7 @@ class Ledger:
                 rows = self.db.execute("SELECT id FROM sources WHERE name = ?",
                                        [former]).fetchall()
             row = rows[0] if rows else None
-            encoded = _encode({"name": name, "kind": kind, "config": config})
+            encoded = encode_row({"name": name, "kind": kind, "config": config})
             if row:
                 self.db.table("sources").update(row[0], encoded)
                 return int(row[0])
@@ -399,9 +390,49 @@ class Ledger:
         self._update("items", item_id, {**fields, "updated_at": utc_now()})
 
     # -- fetches -----------------------------------------------------------------------------
-    def record_fetch(self, **fields: Any) -> int:
-        """Record one HTTP request attempt; ``url`` must already be redacted."""
-        return self._insert("fetches", fields)
+    def record_fetch(self, **fields: Any) -> None:
+        """Record one HTTP request attempt (``url`` already redacted); committed in batches,
+        see collector.storage.fetch_batch."""
+        data = self._checked("fetches", fields)
+        with self._lock, self._translate("write to fetches"):
+            if self._depth:  # inside transaction(): that block commits it
+                self._insert_fetches([data])
+                return
+            now = fetch_batch.now()
+            keep = self._batch.keeps(now)
+            self._batch.rows.append(data)  # kept there until a commit takes it
+            if keep:
+                return
+            with self._conn:  # this row opens a batch: committed at once, the waiting ones too
+                self._insert_fetches(self._batch.rows)
+                self._conn.execute(_SET_FACT, (fetch_batch.BATCH_FACT, utc_now()))
+            self._batch.rows = []
+            self._batch.opened(now)
+
+    def _insert_fetches(self, rows: list[dict[str, Any]]) -> None:
+        for data in rows:
+            self._conn.execute(f"INSERT INTO fetches ({', '.join(data)}) VALUES "
+                               f"({', '.join('?' * len(data))})", list(data.values()))
+
+    def _flush_fetches(self) -> None:
+        """Commit the fetches rows waiting in memory (the caller holds the lock)."""
+        if self._batch.rows:
+            with self._conn:
+                self._insert_fetches(self._batch.rows)
+            self._batch.rows = []
+
+    def _batch_due(self) -> None:
+        """The batch timer: commit the rows in memory (an error is reported by the next
+        write, read or close, which try again)."""
+        with self._lock:
+            if self._closed:
+                return
+            try:
+                self._flush_fetches()
+            except sqlite3.Error as exc:
+                logging.getLogger(__name__).warning("ledger %s: request rows not written yet: "
+                                                    "%s", self.path, exc)
+            self._batch.timer_fired(fetch_batch.now())
 
     # -- files -------------------------------------------------------------------------------
     def file(self, sha256: str) -> dict[str, Any] | None:
@@ -450,8 +481,11 @@ class Ledger:
         return decode_row(rows[0]) if rows else None
 
     def last_contact(self, host: str) -> str | None:
-        """When the latest request to ``host`` ended (ISO 8601 UTC), in any run, or None."""
-        return self.scalar("SELECT max(ended_at) FROM fetches WHERE host = ?", (host,)) or None
+        """When the latest request to ``host`` ended (ISO 8601 UTC), in any run, or None; or
+        the end of the request rows a killed process may not have written, if later
+        (collector.storage.fetch_batch: every host may have been contacted until then)."""
+        last = self.scalar("SELECT max(ended_at) FROM fetches WHERE host = ?", (host,))
+        return max(last or "", self._lost_until or "") or None
 
     def put_host(self, host: str, **fields: Any) -> None:
         """Insert or update a host's row."""
@@ -473,9 +507,7 @@ class Ledger:
     def set_fact(self, name: str, value: str) -> None:
         """Set a value of ``ledger_facts``."""
         with self._lock, self._translate("write to ledger_facts"), self._write():
-            self._conn.execute("INSERT INTO ledger_facts (name, value) VALUES (?, ?) "
-                               "ON CONFLICT(name) DO UPDATE SET value = excluded.value",
-                               (name, value))
+            self._conn.execute(_SET_FACT, (name, value))
 
     def collection_id(self) -> str | None:
         """The id of the collection this ledger belongs to (None: a version 1 ledger)."""
@@ -508,6 +540,7 @@ class Ledger:
         consistent copy while others read; https://www.sqlite.org/backup.html)."""
         refuse_ledger_links(target)
         with self._lock, self._translate(f"backup to {target}"):
+            self._flush_fetches()
             dest = sqlite3.connect(target)
             try:
                 self._conn.backup(dest)
