@@ -533,6 +533,8 @@ def _colour_draft(path: Path, max_pixels: int, colours: int) -> ColourFacts:
 def _colour(im: Image.Image, colours: int, path: Path) -> ColourFacts:
     """The colour facts of the first frame (collector.checks.colour_facts)."""
     try:
-        return colour_facts(colour_ready(im, WORK_SIDE), colours=colours)
+        # a JPEG's YCbCr draft as it is: colour_facts reduces it before converting it
+        picture = im if im.mode == "YCbCr" else colour_ready(im, WORK_SIDE)
+        return colour_facts(picture, colours=colours)
     except _DECODE_ERRORS as exc:
         raise ImageRejected("broken_image", damage(exc)) from exc
