@@ -23,6 +23,7 @@ from collections.abc import Callable, Iterator
 from contextlib import contextmanager, suppress
 from datetime import UTC, datetime
 from pathlib import Path
+from types import TracebackType
 from typing import Any
 
 import sqlite_utils
@@ -73,6 +74,24 @@ def decode_row(row: dict[str, Any] | None) -> dict[str, Any] | None:
             with suppress(ValueError):
                 out[key] = json.loads(out[key])
     return out
+
+
+class _Translated:
+    """A block whose sqlite3 errors leave it as LedgerError (``Ledger._translate``): a class
+    rather than a generator, as it wraps every statement (a dozen blocks per stored file)."""
+
+    __slots__ = ("path", "what")
+
+    def __init__(self, path: Path, what: str) -> None:
+        self.path, self.what = path, what
+
+    def __enter__(self) -> None:
+        return None
+
+    def __exit__(self, kind: type[BaseException] | None, exc: BaseException | None,
+                 traceback: TracebackType | None) -> None:
+        if isinstance(exc, sqlite3.Error):
+            raise LedgerError(f"ledger {self.path}: {self.what} failed: {exc}") from exc
 
 
 class Ledger:
@@ -189,13 +208,9 @@ class Ledger:
                         {"version": version, "applied_at": utc_now()})
             return SCHEMA_VERSION
 
-    @contextmanager
-    def _translate(self, what: str) -> Iterator[None]:
+    def _translate(self, what: str) -> _Translated:
         """Translate sqlite3 errors into LedgerError once, at this edge."""
-        try:
-            yield
-        except sqlite3.Error as exc:
-            raise LedgerError(f"ledger {self.path}: {what} failed: {exc}") from exc
+        return _Translated(self.path, what)
 
     @contextmanager
     def transaction(self) -> Iterator[Callable[[], bool]]:
