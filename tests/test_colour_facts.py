@@ -228,3 +228,17 @@ def test_the_work_picture_has_the_size_pillow_thumbnail_gives(seed: int) -> None
         made = Image.new("RGB", (width, height))
         made.thumbnail((WORK_SIDE, WORK_SIDE), Image.Resampling.BOX)
         assert _thumbnail_size((width, height)) == made.size, (width, height)
+
+
+def test_the_hex_colour_is_the_srgb_colour_of_its_cielab_value() -> None:
+    """The dominant colours' sRGB (hex) come from their CIELAB centres by the inverse
+    formulas (CIE 15:2004 CIELAB to XYZ, IEC 61966-2-1:1999 XYZ to sRGB and its transfer
+    function): every colour of a 17-step grid of 8-bit sRGB goes to CIELAB and back to
+    itself."""
+    from collector.checks.colour_facts import _lab_to_srgb8
+
+    steps = [*range(0, 256, 16), 255]
+    grid = np.array([(r, g, b) for r in steps for g in steps for b in steps], dtype=np.uint8)
+    labs = srgb_to_lab(grid).astype(np.float64).tolist()
+    back = [tuple(_lab_to_srgb8(lab)) for lab in labs]
+    assert back == [tuple(c) for c in grid.tolist()]

@@ -160,19 +160,25 @@ def srgb_to_lab(rgb: np.ndarray) -> np.ndarray:
 _XYZ_TO_RGB = np.linalg.inv(_RGB_TO_XYZ)
 
 
-def _lab_to_hex(lab: np.ndarray) -> list[str]:
-    """The sRGB colours of CIELAB values, shape (n, 3) (inverse of srgb_to_lab, clipped to
-    the gamut), as hex strings."""
-    fy = (lab[:, 0] + 16) / 116
-    f = np.stack([fy + lab[:, 1] / 500, fy, fy - lab[:, 2] / 200], axis=1)
-    eps, kappa = 216 / 24389, 24389 / 27
-    cube = f ** 3
-    xyz = np.where(cube > eps, cube, (116 * f - 16) / kappa) * _WHITE
-    linear = (xyz @ _XYZ_TO_RGB.T).clip(0, 1)
-    c = np.where(linear <= 0.0031308, 12.92 * linear, 1.055 * linear ** (1 / 2.4) - 0.055)
-    # np.rint rounds half to even, as Python's round() does
-    return ["#{:02x}{:02x}{:02x}".format(*row)
-            for row in np.rint(c.clip(0, 1) * 255).astype(int).tolist()]
+_XYZ_TO_RGB_ROWS = _XYZ_TO_RGB.tolist()
+_WHITE_VALUES = _WHITE.tolist()
+
+
+def _lab_to_srgb8(lab: list[float]) -> list[int]:
+    """The 8-bit sRGB colour of one CIELAB value (the inverse of srgb_to_lab, clipped to the
+    gamut), in plain Python floats: it runs for the handful of dominant colours of a picture,
+    where numpy's calls cost more than the arithmetic."""
+    eps, kappa = 216 / 24389, 24389 / 27  # CIE 15:2004 exact ratios
+    fy = (lab[0] + 16) / 116
+    xyz = [(f ** 3 if f ** 3 > eps else (116 * f - 16) / kappa) * white
+           for f, white in zip((fy + lab[1] / 500, fy, fy - lab[2] / 200), _WHITE_VALUES,
+                               strict=True)]
+    out = []
+    for r, g, b in _XYZ_TO_RGB_ROWS:
+        linear = min(max(r * xyz[0] + g * xyz[1] + b * xyz[2], 0.0), 1.0)
+        c = 12.92 * linear if linear <= 0.0031308 else 1.055 * linear ** (1 / 2.4) - 0.055
+        out.append(round(min(max(c, 0.0), 1.0) * 255))  # round() halves to even
+    return out
 
 
 # |p - c|^2 = |p|^2 - 2 p.c + |c|^2, and |p|^2 is the same for every centre of a point: the
@@ -291,17 +297,15 @@ def _dominant(lab: np.ndarray, k: int) -> tuple[DominantColour, ...]:
     k = max(1, k)
     counts, centres = _kmeans(pixels, every, k, rng)  # counted over every pixel
     total = len(every)
-    hexes = _lab_to_hex(centres)
     labs = centres.tolist()
     out = []
     for count, i in sorted(zip((-counts).tolist(), range(k), strict=True)):  # largest first
         if count == 0:
             continue
-        hex_colour = hexes[i]
-        rgb = [int(hex_colour[j:j + 2], 16) / 255 for j in (1, 3, 5)]
-        hue = colorsys.rgb_to_hsv(*rgb)[0] * 360
+        red, green, blue = _lab_to_srgb8(labs[i])
+        hue = colorsys.rgb_to_hsv(red / 255, green / 255, blue / 255)[0] * 360
         out.append(DominantColour((labs[i][0], labs[i][1], labs[i][2]), -count / total,
-                                  hex_colour, hue))
+                                  f"#{red:02x}{green:02x}{blue:02x}", hue))
     return tuple(out)
 
 
