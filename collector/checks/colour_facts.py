@@ -138,6 +138,10 @@ _LINEAR_8BIT_32 = _LINEAR_8BIT.astype(np.float32)
 _TO_RELATIVE_XYZ_32 = (_RGB_TO_XYZ / _WHITE[:, None]).T.astype(np.float32)
 
 
+_F_TO_LAB = np.array([[0.0, 500.0, 0.0], [116.0, -500.0, 200.0], [0.0, 0.0, -200.0]])
+_F_TO_LAB_32 = _F_TO_LAB.astype(np.float32)
+
+
 def srgb_to_lab(rgb: np.ndarray) -> np.ndarray:
     """CIELAB (D65) of sRGB values in 0-255, shape (..., 3) -> (..., 3)."""
     values = np.asarray(rgb)
@@ -150,10 +154,9 @@ def srgb_to_lab(rgb: np.ndarray) -> np.ndarray:
     dark = xyz <= eps
     if dark.any():
         f[dark] = (kappa * xyz[dark] + 16) / 116
-    lab = np.empty_like(f)
-    lab[..., 0] = 116 * f[..., 1] - 16
-    lab[..., 1] = 500 * (f[..., 0] - f[..., 1])
-    lab[..., 2] = 200 * (f[..., 1] - f[..., 2])
+    # L* = 116 fy - 16, a* = 500 (fx - fy), b* = 200 (fy - fz): one product for all three
+    lab = f @ (_F_TO_LAB_32 if f.dtype == np.float32 else _F_TO_LAB)
+    lab[..., 0] -= 16
     return lab
 
 
