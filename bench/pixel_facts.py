@@ -8,8 +8,9 @@ shared machine counts as little as it can):
   draft                the one draft decode ingest makes of a JPEG (collector.checks.phash.
                        hash_draft with colour: YCbCr at 1/8 scale, whose Y band is the hash's)
   hash on draft        the pHash pair and the blank check on it
-  facts on draft       every colour and tone fact (collector.checks.colour_facts, on
-                       collector.checks.pixels.colour_ready of the draft), the target row
+  facts on draft       every colour and tone fact (collector.checks.colour_facts) of the
+                       YCbCr draft as ingest hands it over (reduced in YCbCr, then made
+                       RGB), the target row
   native size         the enlargement estimate (collector.checks.pixel_facts): a full-size
                        luma decode and the estimate, paid only with [images] enlarged = "flag"
                        or "reject"
@@ -29,10 +30,9 @@ from collections.abc import Callable
 import numpy as np
 from PIL import Image, ImageDraw
 
-from collector.checks.colour_facts import WORK_SIDE, colour_facts
+from collector.checks.colour_facts import colour_facts
 from collector.checks.phash import hash_draft, phash_and_blank
 from collector.checks.pixel_facts import estimate_enlargement
-from collector.checks.pixels import colour_ready
 
 TARGET = 0.25
 
@@ -86,7 +86,7 @@ def main() -> None:
         "bare decode": lambda: [bare(d) for d in files],
         "draft": lambda: [draft(d).close() for d in files],
         "hash on draft": lambda: [phash_and_blank(im) for im in drafts],
-        "facts on draft": lambda: [colour_facts(colour_ready(im, WORK_SIDE)) for im in drafts],
+        "facts on draft": lambda: [colour_facts(im) for im in drafts],  # YCbCr, as ingest
         "native size": lambda: [native_size(d) for d in files],
     }
     best = dict.fromkeys(steps, float("inf"))

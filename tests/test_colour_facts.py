@@ -18,7 +18,7 @@ import numpy as np
 import pytest
 from PIL import Image
 
-from collector.checks.colour_facts import colour_facts, srgb_to_lab
+from collector.checks.colour_facts import COLOUR_ALGO, colour_facts, srgb_to_lab
 from collector.checks.images import inspect_image
 
 PUBLISHED = [
@@ -108,7 +108,7 @@ def test_every_pillow_mode_gets_colour_facts_by_the_hash_rules() -> None:
 
 def test_gather_stores_colour_facts_for_jpeg_and_png(tmp_path: Path) -> None:
     """Ingest fills the files' colour columns (schema 10) from the JPEG's 1/8-scale colour
-    draft and the PNG's decoded pixels; [images] dominant_colours = 0 computes none."""
+    draft and the PNG's decoded pixels, with the way they were computed (schema 14)."""
     from collector.run.gather import gather
     from collector.storage.collection import init_collection
 
@@ -122,8 +122,8 @@ def test_gather_stores_colour_facts_for_jpeg_and_png(tmp_path: Path) -> None:
     col.recipe_path.write_text(recipe + (
         '\n[[sources]]\nname = "desk"\nkind = "scans"\npath = "in"\nlicence = "CC0-1.0"\n'))
     gather(col, fetcher_factory=lambda recipe, ledger: None)
-    query = ("SELECT i.source_key, f.greyscale, f.colourfulness, f.colours, f.set_aside "
-             "FROM items i JOIN files f ON f.sha256 = i.file_sha256")
+    query = ("SELECT i.source_key, f.greyscale, f.colourfulness, f.colours, f.set_aside, "
+             "f.colour_algo FROM items i JOIN files f ON f.sha256 = i.file_sha256")
     with col.ledger(readonly=True) as ledger:
         rows = {r["source_key"]: r for r in ledger.query(query)}
     flags, grey = rows["flags.jpg"], rows["grey.png"]
@@ -133,6 +133,7 @@ def test_gather_stores_colour_facts_for_jpeg_and_png(tmp_path: Path) -> None:
     assert len(colours) == 3 and sum(c["share"] for c in colours) == pytest.approx(1.0)
     assert [round(c["share"], 1) for c in colours] == [0.5, 0.3, 0.2]
     assert flags["set_aside"] is None
+    assert flags["colour_algo"] == grey["colour_algo"] == COLOUR_ALGO  # how they were made
 
 
 @pytest.mark.parametrize("size", [(50, 1), (1, 50), (1, 1), (6400, 90)])
@@ -227,3 +228,17 @@ def test_the_work_picture_has_the_size_pillow_thumbnail_gives(seed: int) -> None
         made = Image.new("RGB", (width, height))
         made.thumbnail((WORK_SIDE, WORK_SIDE), Image.Resampling.BOX)
         assert _thumbnail_size((width, height)) == made.size, (width, height)
+
+
+def test_the_hex_colour_is_the_srgb_colour_of_its_cielab_value() -> None:
+    """The dominant colours' sRGB (hex) come from their CIELAB centres by the inverse
+    formulas (CIE 15:2004 CIELAB to XYZ, IEC 61966-2-1:1999 XYZ to sRGB and its transfer
+    function): every colour of a 17-step grid of 8-bit sRGB goes to CIELAB and back to
+    itself."""
+    from collector.checks.colour_facts import _lab_to_srgb8
+
+    steps = [*range(0, 256, 16), 255]
+    grid = np.array([(r, g, b) for r in steps for g in steps for b in steps], dtype=np.uint8)
+    labs = srgb_to_lab(grid).astype(np.float64).tolist()
+    back = [tuple(_lab_to_srgb8(lab)) for lab in labs]
+    assert back == [tuple(c) for c in grid.tolist()]

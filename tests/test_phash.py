@@ -270,3 +270,27 @@ def test_turned_hashes_threshold_at_numpys_median_in_the_blocks_own_type():
         block = block.reshape(8, 8)
         bits = np.packbits((block > np.median(block)).ravel())
         assert turned_hashes(block)["same"] == int.from_bytes(bits.tobytes(), "big")
+
+
+def test_the_dct_block_is_the_two_one_dimensional_dcts_bit_for_bit():
+    """dct_block transforms both axes in one scipy.fft.dctn call; its coefficients are those of
+    scipy.fft.dct along axis 0 then axis 1 (what imagehash computes, with scipy.fftpack) bit
+    for bit, in the picture's own type, on the pictures where rounding decides bits: flat
+    fills and plain gradients (8-bit and float), and on structured ones."""
+    import scipy.fft
+
+    from collector.checks.phash import dct_block
+    from collector.checks.pixels import hash_ready
+
+    pictures = [*varied_images(), *float_images(),
+                *(Image.new(mode, (40, 30), value) for mode, value in
+                  (("L", 0), ("L", 128), ("L", 255), ("F", 0.25), ("F", 0.7)))]
+    pictures += [Image.fromarray(np.tile(np.linspace(lo, hi, 64), (48, 1)).astype(dtype))
+                 for lo, hi, dtype in ((0, 255, np.uint8), (30, 90, np.uint8),
+                                       (0.1, 0.9, np.float32))]
+    for im in pictures:
+        ready = hash_ready(im)  # what dct_block transforms: mode L, or F on a 0..255 scale
+        pixels = np.asarray(ready.resize((32, 32), Image.Resampling.LANCZOS))
+        two = scipy.fft.dct(scipy.fft.dct(pixels, axis=0), axis=1)[:8, :8]
+        block = dct_block(im)
+        assert block.dtype == two.dtype and np.array_equal(block, two), im.mode

@@ -22,6 +22,7 @@ from PIL import Image
 from support.collections import Gathered, scan_image
 from typer.testing import CliRunner
 
+from collector.checks.colour_facts import COLOUR_ALGO
 from collector.checks.phash import (
     HASH_ALGO,
     hamming,
@@ -49,8 +50,8 @@ runner = CliRunner()
 OLD_ALGO = "dct-phash-64/draft-v1"  # the first pipeline's name (collector.checks.phash, v2 note)
 FACTS = ("phash", "phash_mirror", "hash_algo", "flags", "transparent_share", "native_width",
          "native_height", "greyscale", "brightness", "contrast", "colourfulness", "sharpness",
-         "background_share", "colours", "window_hashes", "window_algo")
-NULLED = FACTS[4:]  # the columns of schemas 8, 10 and 12: NULL in a ledger from before them
+         "background_share", "colours", "window_hashes", "window_algo", "colour_algo")
+NULLED = FACTS[4:]  # the columns of schemas 8, 10, 12, 14: NULL in a ledger from before them
 SOURCE = ('\n[[sources]]\nname = "desk"\nkind = "scans"\npath = "in"\n'
           'include = ["*.png", "*.tif", "*.jpg"]\nlicence = "CC0-1.0"\n')
 
@@ -330,6 +331,28 @@ def test_an_interrupted_run_keeps_whole_batches_and_resumes(gathered) -> None:
     assert sum(colours) == 3
     rest = remeasure(col, batch=3)
     assert rest.outcome == "finished" and rest.measured == 5
+
+
+def test_colour_facts_computed_the_first_way_are_computed_again(gathered) -> None:
+    """Facts an older collector computed (``colour_algo`` NULL: the first way, before schema
+    14) are due for the colour facts alone, made again as a fresh gather makes them (with
+    the current COLOUR_ALGO); facts of the current way are not due."""
+    root, fresh = gathered
+    copy = root.parent / f"old-{len(list(root.parent.iterdir()))}"
+    shutil.copytree(root, copy)
+    col = Collection(copy)
+    photo = fresh["photo.jpg"]["sha256"]
+    with col.ledger() as ledger:
+        ledger.db.execute("UPDATE files SET colour_algo = NULL, colourfulness = 0, colours = "
+                          "'[]' WHERE sha256 = ?", [photo])
+        ledger.db.conn.commit()
+    result = remeasure(col)
+    counts = {name: (c.due, c.measured, c.changed) for name, c in result.counts.items()}
+    assert counts["colour and tone facts"] == (1, 1, 1)
+    assert all(c == (0, 0, 0) for name, c in counts.items() if name != "colour and tone facts")
+    now = facts_by_key(col)
+    assert now == fresh and now["photo.jpg"]["colour_algo"] == COLOUR_ALGO
+    assert remeasure(col).due == 0  # measured the current way: nothing more to do
 
 
 def test_an_interrupted_all_run_resumes_where_it_stopped(gathered) -> None:

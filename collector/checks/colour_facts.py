@@ -8,16 +8,17 @@ a distribution. Sources of each formula:
   D65 white) and CIE 15:2004 (CIELAB from XYZ, with the reference white D65 X=0.95047,
   Y=1.0, Z=1.08883). Worked values: sRGB white -> L*=100, a*=b*=0; sRGB red (255, 0, 0) ->
   L*=53.24, a*=80.09, b*=67.20 (the values published with these formulas, from memory).
-- Dominant colours: k-means on a sample of at most ``MAX_SAMPLES`` CIELAB values: Lloyd's
-  algorithm (S. P. Lloyd, "Least squares quantization in PCM", IEEE Trans. Inf. Theory 28(2),
-  1982) from a k-means++ start (D. Arthur and S. Vassilvitskii, "k-means++: the advantages of
-  careful seeding", SODA 2007) with a fixed seed, at most ``KMEANS_ROUNDS`` rounds, in numpy
-  (scipy's kmeans2 and vq took 1.2 ms a picture, this about 0.3 ms with the shares, and
-  scipy.cluster's import cost 0.3 s a run); every pixel is then given to its nearest centre
-  for the shares; each cluster with its sRGB colour and HSV hue in degrees (Python's
-  colorsys). Clustering a random sample and then giving every pixel to its nearest centre
-  is the usual way to run k-means for colour quantisation (common practice, no source): a
-  few hundred pixels place the centres of a picture's main colours within a unit or two of
+- Dominant colours: k-means on the CIELAB values: Lloyd's algorithm (S. P. Lloyd, "Least
+  squares quantization in PCM", IEEE Trans. Inf. Theory 28(2), 1982) from a k-means++ start
+  (D. Arthur and S. Vassilvitskii, "k-means++: the advantages of careful seeding", SODA
+  2007) with a fixed seed, in numpy (scipy's kmeans2 and vq took 1.2 ms a picture, this
+  about 0.2 ms with the shares, and scipy.cluster's import cost 0.3 s a run): the seeds and
+  at most ``KMEANS_ROUNDS`` rounds on a sample of ``MAX_SAMPLES`` pixels, then one last
+  round over every pixel, which gives the shares (every pixel counted at its nearest
+  centre) and the colours (the mean of the pixels so counted); each cluster with its sRGB
+  colour and HSV hue in degrees (Python's colorsys). Starting on a random sample is the
+  usual way to run k-means for colour quantisation (common practice, no source): a few
+  hundred pixels place the centres of a picture's main colours within a unit or two of
   where all of them would (tests/test_colour_facts.py checks it against scipy's kmeans2
   over every pixel of a larger picture), at a fraction of the cost. The sample is drawn
   from a generator seeded with 0, so the same picture always gets the same colours.
@@ -32,7 +33,8 @@ a distribution. Sources of each formula:
 - Sharpness: the variance of the Laplacian of the grey image (common practice, no source; the
   5-point stencil with mirrored edges, as scipy.ndimage.laplace), on the picture reduced to
   ``WORK_SIDE`` px: it tells a blurred or empty picture from a
-  detailed one, not fine focus.
+  detailed one, not fine focus. The grey image is ITU-R BT.601 luma (Pillow's
+  ``convert("L")``; a JPEG draft's own Y band, the same weights, JFIF).
 - Background share: the share of the picture covered by its largest connected region of
   near-flat pixels (L* gradient below ``FLAT_GRADIENT``; common practice, no source) - a
   "mostly empty" scan scores near 1.
@@ -50,10 +52,17 @@ from typing import Any
 import numpy as np
 from PIL import Image
 
-__all__ = ["ColourFacts", "DominantColour", "colour_facts", "srgb_to_lab"]
+__all__ = ["COLOUR_ALGO", "ColourFacts", "DominantColour", "colour_facts", "srgb_to_lab"]
 
+# The way the facts are computed, recorded beside them (``files.colour_algo``) so that
+# ``collector remeasure`` can tell facts an older collector made (NULL: the first way, v1) and
+# compute them again. v2: a JPEG's draft reduced in YCbCr (its grey the Y band), k-means with
+# 2 rounds on the sample and a last one over every pixel of the work picture (the colours are
+# the means of the pixels counted in their shares), colourfulness from sums of products.
+COLOUR_ALGO = "lab-kmeans-64px/v2"
 MAX_SAMPLES = 256  # pixels sampled for k-means (a distribution, not every pixel)
-KMEANS_ROUNDS = 4  # Lloyd rounds at most (common practice, no source)
+KMEANS_ROUNDS = 2  # Lloyd rounds at most on the sample, before the last one over every
+# pixel (common practice, no source; see _kmeans)
 # A round that moves no centre by this much (CIELAB units: half a just-noticeable difference
 # of about 1 unit, common practice, no source) ends the k-means.
 KMEANS_SETTLED = 0.5
@@ -102,10 +111,11 @@ class ColourFacts:
     background_share: float  # largest flat connected region, 0-1
 
     def columns(self) -> dict[str, Any]:
-        """The ledger ``files`` columns these facts fill (schema 10)."""
+        """The ledger ``files`` columns these facts fill (schema 10), with the way they were
+        computed (``colour_algo``)."""
         data = self.as_json()
         return {"greyscale": int(self.greyscale), "colours": data["colours"],
-                **{key: data[key] for key in _MEASURES}}
+                **{key: data[key] for key in _MEASURES}, "colour_algo": COLOUR_ALGO}
 
     def as_json(self) -> dict[str, Any]:
         """Plain data for the ledger (rounded: these are estimates)."""
@@ -128,6 +138,10 @@ _LINEAR_8BIT_32 = _LINEAR_8BIT.astype(np.float32)
 _TO_RELATIVE_XYZ_32 = (_RGB_TO_XYZ / _WHITE[:, None]).T.astype(np.float32)
 
 
+_F_TO_LAB = np.array([[0.0, 500.0, 0.0], [116.0, -500.0, 200.0], [0.0, 0.0, -200.0]])
+_F_TO_LAB_32 = _F_TO_LAB.astype(np.float32)
+
+
 def srgb_to_lab(rgb: np.ndarray) -> np.ndarray:
     """CIELAB (D65) of sRGB values in 0-255, shape (..., 3) -> (..., 3)."""
     values = np.asarray(rgb)
@@ -140,37 +154,40 @@ def srgb_to_lab(rgb: np.ndarray) -> np.ndarray:
     dark = xyz <= eps
     if dark.any():
         f[dark] = (kappa * xyz[dark] + 16) / 116
-    lab = np.empty_like(f)
-    lab[..., 0] = 116 * f[..., 1] - 16
-    lab[..., 1] = 500 * (f[..., 0] - f[..., 1])
-    lab[..., 2] = 200 * (f[..., 1] - f[..., 2])
+    # L* = 116 fy - 16, a* = 500 (fx - fy), b* = 200 (fy - fz): one product for all three
+    lab = f @ (_F_TO_LAB_32 if f.dtype == np.float32 else _F_TO_LAB)
+    lab[..., 0] -= 16
     return lab
 
 
 _XYZ_TO_RGB = np.linalg.inv(_RGB_TO_XYZ)
 
 
-def _lab_to_hex(lab: np.ndarray) -> list[str]:
-    """The sRGB colours of CIELAB values, shape (n, 3) (inverse of srgb_to_lab, clipped to
-    the gamut), as hex strings."""
-    fy = (lab[:, 0] + 16) / 116
-    f = np.stack([fy + lab[:, 1] / 500, fy, fy - lab[:, 2] / 200], axis=1)
-    eps, kappa = 216 / 24389, 24389 / 27
-    cube = f ** 3
-    xyz = np.where(cube > eps, cube, (116 * f - 16) / kappa) * _WHITE
-    linear = (xyz @ _XYZ_TO_RGB.T).clip(0, 1)
-    c = np.where(linear <= 0.0031308, 12.92 * linear, 1.055 * linear ** (1 / 2.4) - 0.055)
-    # np.rint rounds half to even, as Python's round() does
-    return ["#{:02x}{:02x}{:02x}".format(*row)
-            for row in np.rint(c.clip(0, 1) * 255).astype(int).tolist()]
+_XYZ_TO_RGB_ROWS = _XYZ_TO_RGB.tolist()
+_WHITE_VALUES = _WHITE.tolist()
 
 
-def _nearest(points: np.ndarray, centres: np.ndarray) -> np.ndarray:
-    """Index of the nearest centre (squared Euclidean distance) for each point."""
-    # |p - c|^2 = |p|^2 - 2 p.c + |c|^2; |p|^2 is the same for every centre of a point.
-    # (The centres transposed into a contiguous array: the same products, a faster call.)
-    return np.argmin((centres * centres).sum(axis=1)
-                     - 2.0 * points @ np.ascontiguousarray(centres.T), axis=1)
+def _lab_to_srgb8(lab: list[float]) -> list[int]:
+    """The 8-bit sRGB colour of one CIELAB value (the inverse of srgb_to_lab, clipped to the
+    gamut), in plain Python floats: it runs for the handful of dominant colours of a picture,
+    where numpy's calls cost more than the arithmetic."""
+    eps, kappa = 216 / 24389, 24389 / 27  # CIE 15:2004 exact ratios
+    fy = (lab[0] + 16) / 116
+    xyz = [(f ** 3 if f ** 3 > eps else (116 * f - 16) / kappa) * white
+           for f, white in zip((fy + lab[1] / 500, fy, fy - lab[2] / 200), _WHITE_VALUES,
+                               strict=True)]
+    out = []
+    for r, g, b in _XYZ_TO_RGB_ROWS:
+        linear = min(max(r * xyz[0] + g * xyz[1] + b * xyz[2], 0.0), 1.0)
+        c = 12.92 * linear if linear <= 0.0031308 else 1.055 * linear ** (1 / 2.4) - 0.055
+        out.append(round(min(max(c, 0.0), 1.0) * 255))  # round() halves to even
+    return out
+
+
+# |p - c|^2 = |p|^2 - 2 p.c + |c|^2, and |p|^2 is the same for every centre of a point: the
+# nearest centre is the one with the least |c|^2 - 2 p.c (sums by np.add.reduce: the
+# arithmetic of ndarray.sum without its Python layer)
+_SUM = np.add.reduce
 
 
 def _squared_distances(columns: np.ndarray, centre: np.ndarray) -> np.ndarray:
@@ -184,50 +201,77 @@ def _squared_distances(columns: np.ndarray, centre: np.ndarray) -> np.ndarray:
 
 
 def _seeds(points: np.ndarray, k: int, rng: np.random.Generator) -> np.ndarray:
-    """k-means++ seeding: each next centre drawn with probability proportional to its squared
-    distance from the nearest centre chosen so far (Arthur and Vassilvitskii, 2007).
-    ``points`` (n, 3) in float64 (the distances are float64 whatever the points' type)."""
+    """k-means++ seeding: the first centre drawn uniformly, each next one with probability
+    proportional to its squared distance from the nearest centre chosen so far (Arthur and
+    Vassilvitskii, 2007); the k uniform draws taken at once. ``points`` (n, 3) in float64."""
     n = len(points)
+    draws = rng.random(k).tolist()
     columns = np.ascontiguousarray(points.T)
     centres = np.empty((k, points.shape[1]))
-    centres[0] = points[rng.integers(n)]
+    centres[0] = points[min(int(draws[0] * n), n - 1)]
     d2 = _squared_distances(columns, centres[0])
     for i in range(1, k):
-        total = float(d2.sum())
-        pick = (int(np.cumsum(d2).searchsorted(rng.random() * total, side="right"))
-                if total > 0 else int(rng.integers(n)))
+        cumulative = np.add.accumulate(d2)
+        total = float(cumulative[-1])
+        pick = (int(cumulative.searchsorted(draws[i] * total, side="right"))
+                if total > 0 else int(draws[i] * n))
         centres[i] = points[min(pick, n - 1)]
-        np.minimum(d2, _squared_distances(columns, centres[i]), out=d2)
+        if i + 1 < k:  # the last centre's distances are not needed
+            np.minimum(d2, _squared_distances(columns, centres[i]), out=d2)
     return centres
 
 
 _XYZ = np.arange(3)
 
 
-def _kmeans(points: np.ndarray, k: int, rng: np.random.Generator) -> np.ndarray:
-    """Lloyd's algorithm from k-means++ seeds: centres of ``points`` (n, 3), float64."""
-    wide = points.astype(np.float64)  # exact; what the mixed-type arithmetic used anyway
-    twice = 2.0 * points  # as _nearest forms it (exact), once for every round
+def _lloyd_step(points: np.ndarray, flat: np.ndarray, twice: np.ndarray,
+                centres: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """One round of Lloyd's algorithm: each point (``points`` (n, 3); ``flat`` the same
+    values raveled, ``twice`` doubled, both float64) given to its nearest centre, then each
+    centre moved to the mean of its points (an emptied cluster keeps its centre). Returns
+    (the labels, the centres moved)."""
+    k = len(centres)
+    label = (_SUM(centres * centres, 1) - twice @ centres.T).argmin(1)
+    counts = np.bincount(label, minlength=k)
+    # each cluster's coordinate sums in one count: bin 3 * cluster + coordinate adds its
+    # points in turn, as a count per coordinate does
+    sums = np.bincount((3 * label[:, None] + _XYZ).ravel(), flat,
+                       minlength=3 * k).reshape(k, 3)
+    if counts.all():
+        return label, sums / counts[:, None]
+    return label, np.where(counts[:, None] > 0, sums / np.maximum(counts, 1)[:, None],
+                           centres)
+
+
+def _kmeans(sample: np.ndarray, every: np.ndarray, k: int,
+            rng: np.random.Generator) -> tuple[np.ndarray, np.ndarray]:
+    """Lloyd's algorithm from k-means++ seeds: at most ``KMEANS_ROUNDS`` rounds on the
+    ``sample`` (n, 3), then one last round over ``every`` point (m, 3, float32). Returns (how
+    many points each centre has in that round, the centres: the means of those points, an
+    emptied cluster keeping its centre; float64)."""
+    wide = sample.astype(np.float64)  # exact; what the mixed-type arithmetic used anyway
+    twice = 2.0 * wide
     centres = _seeds(wide, k, rng)
     flat = wide.ravel()
     for _ in range(KMEANS_ROUNDS):
-        label = np.argmin((centres * centres).sum(axis=1)
-                          - twice @ np.ascontiguousarray(centres.T), axis=1)
-        counts = np.bincount(label, minlength=k)
-        # each cluster's coordinate sums in one count: bin 3 * cluster + coordinate adds its
-        # points in turn, as a count per coordinate does
-        sums = np.bincount((3 * label[:, None] + _XYZ).ravel(), flat,
-                           minlength=3 * k).reshape(k, 3)
-        if counts.all():
-            moved = sums / counts[:, None]
-        else:  # an emptied cluster keeps its centre
-            moved = np.where(counts[:, None] > 0, sums / np.maximum(counts, 1)[:, None],
-                             centres)
+        moved = _lloyd_step(wide, flat, twice, centres)[1]
         settled = float(np.abs(moved - centres).max()) < KMEANS_SETTLED
         centres = moved
         if settled:
             break
-    return centres
+    # the last round over every point: distances in float32 (the points' own type), sums in
+    # float64 by one product with the clusters' indicator rows
+    label = (every @ (-2.0 * centres.T).astype(np.float32)
+             + _SUM(centres * centres, 1).astype(np.float32)).argmin(1)
+    members = (label == _CLUSTERS[:k, None]).astype(np.float64)
+    counts = _SUM(members, 1)
+    sums = members @ every.astype(np.float64)
+    if counts.all():
+        return counts, sums / counts[:, None]
+    return counts, np.where(counts[:, None] > 0, sums / np.maximum(counts, 1)[:, None], centres)
+
+
+_CLUSTERS = np.arange(64)  # cluster numbers (k is at most 16: collector.config.recipe)
 
 
 _SEEDED = np.random.default_rng(0).bit_generator.state  # the generator of seed 0, as made
@@ -254,20 +298,17 @@ def _dominant(lab: np.ndarray, k: int) -> tuple[DominantColour, ...]:
     # A picture with fewer distinct colours than k: k-means++ seeds the rest on colours
     # already taken, those clusters stay empty and are left out below.
     k = max(1, k)
-    centres = _kmeans(pixels, k, rng)
-    counts = np.bincount(_nearest(every, centres), minlength=k)  # over every pixel
-    total = counts.sum()
-    hexes = _lab_to_hex(centres)
+    counts, centres = _kmeans(pixels, every, k, rng)  # counted over every pixel
+    total = len(every)
     labs = centres.tolist()
     out = []
-    for i in np.argsort(-counts, kind="stable").tolist():
-        if counts[i] == 0:
+    for count, i in sorted(zip((-counts).tolist(), range(k), strict=True)):  # largest first
+        if count == 0:
             continue
-        hex_colour = hexes[i]
-        rgb = [int(hex_colour[j:j + 2], 16) / 255 for j in (1, 3, 5)]
-        hue = colorsys.rgb_to_hsv(*rgb)[0] * 360
-        out.append(DominantColour((labs[i][0], labs[i][1], labs[i][2]),
-                                  float(counts[i] / total), hex_colour, hue))
+        red, green, blue = _lab_to_srgb8(labs[i])
+        hue = colorsys.rgb_to_hsv(red / 255, green / 255, blue / 255)[0] * 360
+        out.append(DominantColour((labs[i][0], labs[i][1], labs[i][2]), -count / total,
+                                  f"#{red:02x}{green:02x}{blue:02x}", hue))
     return tuple(out)
 
 
@@ -282,12 +323,20 @@ def _mean_var(values: np.ndarray) -> tuple[Any, Any]:
 
 
 def _colourfulness(rgb: np.ndarray) -> float:
-    wide = rgb.astype(np.float64)
-    r, g, b = wide[..., 0], wide[..., 1], wide[..., 2]
-    rg, yb = r - g, 0.5 * (r + g) - b
-    mean_rg, var_rg = _mean_var(rg)
-    mean_yb, var_yb = _mean_var(yb)
-    return float(np.hypot(np.sqrt(var_rg), np.sqrt(var_yb)) + 0.3 * np.hypot(mean_rg, mean_yb))
+    """Hasler and Suesstrunk's M from the sums and the sums of products of R, G and B (one
+    product of the pixels with themselves): rg = R - G and yb = (R + G) / 2 - B are linear
+    in R, G, B, so their means and variances follow from those nine numbers. The sums of
+    8-bit values are whole numbers held exactly in float64 (up to 2**53), so a grey picture
+    (R = G = B) has exactly M = 0."""
+    wide = rgb.reshape(-1, 3).astype(np.float64)
+    n = len(wide)
+    columns = np.ascontiguousarray(wide.T)  # (3, n): the product and sums run along rows
+    (rr, rg, rb), (_, gg, gb), (_, _, bb) = (columns @ wide).tolist()
+    r, g, b = _SUM(columns, 1).tolist()
+    mean_rg, mean_yb = (r - g) / n, (0.5 * (r + g) - b) / n
+    var_rg = max((rr - 2 * rg + gg) / n - mean_rg * mean_rg, 0.0)
+    var_yb = max((0.25 * (rr + gg) + 0.5 * rg + bb - rb - gb) / n - mean_yb * mean_yb, 0.0)
+    return math.hypot(math.sqrt(var_rg), math.sqrt(var_yb)) + 0.3 * math.hypot(mean_rg, mean_yb)
 
 
 def _sharpness(grey: np.ndarray) -> float:
@@ -347,10 +396,13 @@ def _nearest_side(number: float, key: Callable[[int], float]) -> int:
     return max(min(math.floor(number), math.ceil(number), key=key), 1)
 
 
-def colour_facts(image: Image.Image, *, colours: int = 5) -> ColourFacts:
-    """The facts of a small picture (any mode; converted to sRGB, transparency ignored),
-    reduced first to at most ``WORK_SIDE`` pixels on its longest side."""
-    if image.mode != "RGB":
+def _work_picture(image: Image.Image) -> tuple[np.ndarray, np.ndarray]:
+    """The facts' picture: sRGB values (h, w, 3) and grey levels (h, w), uint8, of the
+    picture reduced to the size ``Image.thumbnail((WORK_SIDE, WORK_SIDE))`` gives. A
+    ``YCbCr`` picture (a JPEG's draft) is reduced in YCbCr and only then converted, and its
+    grey is its Y band, the luma ``convert("L")`` computes from RGB (ITU-R BT.601 weights;
+    JFIF); any other mode is converted to RGB first."""
+    if image.mode not in ("RGB", "YCbCr"):
         image = image.convert("RGB")
     if max(image.size) > WORK_SIDE:  # what Image.thumbnail does, into a new image
         image = image.resize(_thumbnail_size(image.size), Image.Resampling.BOX,
@@ -360,14 +412,22 @@ def colour_facts(image: Image.Image, *, colours: int = 5) -> ColourFacts:
         # shares stay those of the line itself
         image = image.resize((max(image.width, 2), max(image.height, 2)),
                              Image.Resampling.NEAREST)
-    rgb = np.asarray(image)
+    if image.mode == "YCbCr":
+        return np.asarray(image.convert("RGB")), np.asarray(image)[..., 0]
+    return np.asarray(image), np.asarray(image.convert("L"))
+
+
+def colour_facts(image: Image.Image, *, colours: int = 5) -> ColourFacts:
+    """The facts of a small picture (any mode; converted to sRGB, transparency ignored),
+    reduced first to at most ``WORK_SIDE`` pixels on its longest side."""
+    rgb, grey = _work_picture(image)
     lab = srgb_to_lab(rgb)
-    chroma = np.hypot(lab[..., 1], lab[..., 2])
-    grey = np.asarray(image.convert("L"))
-    brightness, spread = _mean_var(lab[..., 0])  # np.mean and np.std's arithmetic
+    lightness, a, b = lab[..., 0], lab[..., 1], lab[..., 2]
+    grey_chroma = np.count_nonzero(a * a + b * b < GREY_CHROMA * GREY_CHROMA)  # C*ab < limit
+    brightness, spread = _mean_var(lightness)  # np.mean and np.std's arithmetic
     return ColourFacts(
         colours=_dominant(lab, colours),
-        greyscale=bool(np.count_nonzero(chroma < GREY_CHROMA) >= 0.95 * chroma.size),
+        greyscale=bool(grey_chroma >= 0.95 * lightness.size),
         brightness=float(brightness), contrast=float(np.sqrt(spread)),
         colourfulness=_colourfulness(rgb), sharpness=_sharpness(grey),
-        background_share=_background_share(lab[..., 0]))
+        background_share=_background_share(lightness))

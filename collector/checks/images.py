@@ -18,13 +18,15 @@ and a draft (1/8 scale) decode that serves the hash and the colour facts; on the
 
 from __future__ import annotations
 
+import contextlib
 import io
 import re
 import struct
 import warnings
+from collections.abc import Iterator
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any
+from typing import Any, BinaryIO
 
 from PIL import ExifTags, Image
 
@@ -174,8 +176,9 @@ def _hash(im: Image.Image, orientation: int, path: Path) -> HashFacts:
 _DECODE_ERRORS = (OSError, SyntaxError, ValueError, EOFError, IndexError, TypeError, struct.error)
 
 
-def _open(path: Path, max_pixels: int) -> Image.Image:
-    """Image.open with Pillow's bomb warning raised as an error here only (libraries.md 7)."""
+def _open(path: Path | BinaryIO, max_pixels: int) -> Image.Image:
+    """Image.open with Pillow's bomb warning raised as an error here only (libraries.md 7);
+    ``path`` may be the file already open (Pillow reads it from its start, never closes it)."""
     try:
         with warnings.catch_warnings():
             warnings.simplefilter("error", Image.DecompressionBombWarning)
@@ -268,14 +271,23 @@ class _Described:
     dpi: tuple[float, float] | None
 
 
-def _identify(path: Path) -> tuple[bytes, str]:
-    """The first 64 bytes and the format their signature names; not_an_image otherwise."""
-    with path.open("rb") as fh:
-        head = fh.read(64)
+def _identify(fh: BinaryIO) -> tuple[bytes, str]:
+    """The first 64 bytes of the file open as ``fh`` and the format their signature names;
+    not_an_image otherwise."""
+    head = fh.read(64)
     fmt = sniff_format(head)
     if fmt is None:
         raise ImageRejected("not_an_image", describe_non_image(head))
     return head, fmt
+
+
+@contextlib.contextmanager
+def _open_identified(fh: BinaryIO, max_pixels: int) -> Iterator[tuple[bytes, str, Image.Image]]:
+    """(first bytes, format, the image opened) of the file open as ``fh``: the signature
+    first (not_an_image), then :func:`_open`; the image is closed after."""
+    head, fmt = _identify(fh)
+    with _open(fh, max_pixels) as im:
+        yield head, fmt, im
 
 
 def _mismatch_flag(mismatch: str | None, flags: list[str]) -> None:
@@ -456,11 +468,11 @@ def inspect_image(
     colours: dominant colours in the colour facts (collector.checks.colour_facts); 0: none.
     """
     path = Path(path)
-    head, fmt = _identify(path)
     flags: list[str] = []
-    mismatch = type_mismatch(fmt, content_type, url)
-    _mismatch_flag(mismatch, flags)
-    with _open(path, max_pixels) as im:
+    # one opening of the file for its signature and for the image library
+    with path.open("rb") as fh, _open_identified(fh, max_pixels) as (head, fmt, im):
+        mismatch = type_mismatch(fmt, content_type, url)
+        _mismatch_flag(mismatch, flags)
         geo = _geometry(im, fmt, path)
         _check_shape(geo, path, min_side, min_aspect, max_aspect)
         described = _describe(im, fmt, head, flags)
@@ -533,6 +545,8 @@ def _colour_draft(path: Path, max_pixels: int, colours: int) -> ColourFacts:
 def _colour(im: Image.Image, colours: int, path: Path) -> ColourFacts:
     """The colour facts of the first frame (collector.checks.colour_facts)."""
     try:
-        return colour_facts(colour_ready(im, WORK_SIDE), colours=colours)
+        # a JPEG's YCbCr draft as it is: colour_facts reduces it before converting it
+        picture = im if im.mode == "YCbCr" else colour_ready(im, WORK_SIDE)
+        return colour_facts(picture, colours=colours)
     except _DECODE_ERRORS as exc:
         raise ImageRejected("broken_image", damage(exc)) from exc

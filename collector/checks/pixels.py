@@ -107,5 +107,10 @@ def colour_ready(im: Image.Image, side: int) -> Image.Image:
 
 def is_blank(grey: Image.Image) -> bool:
     """Whether a :func:`hash_ready` picture is flat (see BLANK_SPREAD)."""
-    small = np.asarray(grey.resize((16, 16), Image.Resampling.BOX), dtype=np.float64)
-    return bool(small.size == 0 or float(small.max() - small.min()) < BLANK_SPREAD)
+    small = np.asarray(grey.resize((16, 16), Image.Resampling.BOX))
+    if small.size == 0:
+        return True
+    if small.dtype == np.uint8:  # whole grey levels: their spread is exact as it is
+        return int(small.max()) - int(small.min()) < BLANK_SPREAD
+    small = small.astype(np.float64)
+    return float(small.max() - small.min()) < BLANK_SPREAD

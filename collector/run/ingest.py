@@ -465,7 +465,9 @@ class Ingest:
                 candidates.append(NearCandidate(m.key, m.distance, "mirror" in m.kind, first,
                                                 self.rank(first), m.kind))
         best = dedup.closest(candidates)
-        original = self.ledger.item(best.original_id) if best is not None else None
+        if best is None:  # no look-alike: kept, whatever the item's rank (not looked up)
+            return Keep()
+        original = self.ledger.item(best.original_id)
         return dedup.near_verdict(self.rank(item_id), best,
                                   original["state"] if original else None,
                                   drop=self.recipe.images.near_duplicates == "drop")

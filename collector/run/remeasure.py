@@ -4,7 +4,9 @@ A collection gathered by an older collector holds files whose facts are stale or
 perceptual hash made by an older pipeline (``files.hash_algo`` differs from
 :data:`collector.checks.phash.HASH_ALGO`; the first pipeline clipped 16-bit pictures to a
 blank page), no transparency share or native size (stored before schema 8), no colour and
-tone facts (stored before schema 10), no crop window hashes (stored before schema 12).
+tone facts (stored before schema 10) or facts computed another way (``files.colour_algo``
+differs from :data:`collector.checks.colour_facts.COLOUR_ALGO`, schema 14), no crop window
+hashes (stored before schema 12).
 :func:`remeasure` re-reads the stored bytes from the
 collection's store (it never builds a fetcher: nothing is requested) and measures them with
 :func:`collector.checks.images.inspect_image`, the function ingest uses, with the recipe's
@@ -35,6 +37,7 @@ from functools import cached_property
 from pathlib import Path
 from typing import Any
 
+from collector.checks.colour_facts import COLOUR_ALGO
 from collector.checks.images import ImageFacts, inspect_image
 from collector.checks.phash import HASH_ALGO, WINDOW_ALGO, hamming, pack_windows, to_signed64
 from collector.config.recipe import Recipe
@@ -149,7 +152,8 @@ MEASUREMENTS: tuple[Measurement, ...] = (
     Measurement("transparency and native size",
                 lambda led, a, b, s: uq.pixel_facts_due(led, a, b), _pixel_columns),
     Measurement("colour and tone facts",
-                lambda led, a, b, s: uq.colour_facts_due(led, a, b), _colour_columns,
+                lambda led, a, b, s: uq.colour_facts_due(led, a, b, COLOUR_ALGO),
+                _colour_columns, bookkeeping=("colour_algo",),
                 wanted=lambda settings: settings.colours > 0),
     Measurement("crop window hashes",
                 lambda led, a, b, s: uq.windows_due(led, a, b, WINDOW_ALGO), _window_columns,

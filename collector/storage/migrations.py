@@ -234,7 +234,16 @@ def _migration_13(db: sqlite_utils.Database) -> None:
             fetches.drop_index(index.name)
 
 
+def _migration_14(db: sqlite_utils.Database) -> None:
+    """The way a file's colour and tone facts were computed (``files.colour_algo``,
+    collector.checks.colour_facts.COLOUR_ALGO). Rows measured before stay NULL: the first way,
+    which ``collector remeasure`` computes again."""
+    files = db.table("files")
+    if "colour_algo" not in files.columns_dict:
+        files.add_column("colour_algo", str)
+
+
 MIGRATIONS: dict[int, Callable[[sqlite_utils.Database], None]] = {
     1: _migration_1, 2: _migration_2, 3: _migration_3, 4: _migration_4, 5: _migration_5,
     6: _migration_6, 7: _migration_7, 8: _migration_8, 9: _migration_9, 10: _migration_10,
-    11: _migration_11, 12: _migration_12, 13: _migration_13}
+    11: _migration_11, 12: _migration_12, 13: _migration_13, 14: _migration_14}

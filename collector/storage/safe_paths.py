@@ -99,8 +99,14 @@ def own_file_exists(path: Path) -> bool:
 
 
 def _parts(root: Path, path: Path) -> tuple[str, ...]:
-    try:
-        return Path(os.path.normpath(path)).relative_to(os.path.normpath(root)).parts
+    below, inside = os.path.normpath(path), os.path.normpath(root)
+    if below == inside:
+        return ()
+    prefix = inside if inside.endswith(os.sep) else inside + os.sep
+    if below.startswith(prefix):  # the usual case, read without pathlib (it runs per file)
+        return tuple(below[len(prefix):].split(os.sep))
+    try:  # anything else as pathlib reads it (case-insensitive on Windows)
+        return Path(below).relative_to(inside).parts
     except ValueError as exc:
         raise PathRefused(f"{path} is not inside {root}; collector writes only inside the "
                           "collection folder") from exc
@@ -129,10 +135,9 @@ def open_own_folder(root: Path, path: Path, *, create: bool = False) -> int:
     ``O_NOFOLLOW`` relative to the one before (``dir_fd``): no link is followed, even one
     swapped in after a check. Missing folders are created when ``create``."""
     fd = os.open(root, _DIR_FLAGS)
-    current = root
+    parts = _parts(root, path)
     try:
-        for part in _parts(root, path):
-            current = current / part
+        for n, part in enumerate(parts):
             try:
                 child = os.open(part, _DIR_FLAGS | os.O_NOFOLLOW, dir_fd=fd)
             except FileNotFoundError:
@@ -140,9 +145,10 @@ def open_own_folder(root: Path, path: Path, *, create: bool = False) -> int:
                     raise
                 with contextlib.suppress(FileExistsError):
                     os.mkdir(part, dir_fd=fd)
-                child = _open_child(fd, part, current)
+                child = _open_child(fd, part, root.joinpath(*parts[:n + 1]))
             except OSError as exc:
                 if exc.errno in (errno.ELOOP, errno.ENOTDIR):
+                    current = root.joinpath(*parts[:n + 1])  # named only when refused
                     _check(current, os.lstat(current), folder=True)
                 raise
             os.close(fd)

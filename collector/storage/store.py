@@ -92,12 +92,12 @@ class Store:
         target = self.path_for(sha256, ext)
         try:
             with own_folder_fd(self._base, target.parent, create=True) as shard:
+                info = None
                 if before_placing is not None and not self._stored_in(shard, target):
-                    before_placing()
-                try:
-                    info = os.stat(target.name, dir_fd=shard, follow_symlinks=False)
-                except FileNotFoundError:
-                    info = None
+                    before_placing()  # and no file of the digest is there to look at
+                else:
+                    with contextlib.suppress(FileNotFoundError):
+                        info = os.stat(target.name, dir_fd=shard, follow_symlinks=False)
                 if info is not None:
                     if stat.S_ISLNK(info.st_mode):
                         raise link_refused(target)

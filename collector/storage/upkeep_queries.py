@@ -350,10 +350,12 @@ def pixel_facts_due(ledger: Ledger, after_rowid: int, last_rowid: int) -> set[st
     return _kept_between(ledger, after_rowid, last_rowid, "transparent_share IS NULL")
 
 
-def colour_facts_due(ledger: Ledger, after_rowid: int, last_rowid: int) -> set[str]:
-    """Files in the rowid range without colour and tone facts (schema 10): ``greyscale``
-    is NULL."""
-    return _kept_between(ledger, after_rowid, last_rowid, "greyscale IS NULL")
+def colour_facts_due(ledger: Ledger, after_rowid: int, last_rowid: int,
+                     colour_algo: str) -> set[str]:
+    """Files in the rowid range without colour and tone facts (schema 10: ``greyscale`` is
+    NULL) or with facts computed another way than ``colour_algo`` (schema 14)."""
+    return _kept_between(ledger, after_rowid, last_rowid,
+                         "(greyscale IS NULL OR colour_algo IS NOT ?)", (colour_algo,))
 
 
 def windows_due(ledger: Ledger, after_rowid: int, last_rowid: int,
