@@ -6,6 +6,7 @@ resolver (``socket.getaddrinfo`` by default).
 
 from __future__ import annotations
 
+import functools
 import ipaddress
 import json
 import re
@@ -31,7 +32,22 @@ IPNetwork = ipaddress.IPv4Network | ipaddress.IPv6Network
 
 
 def split_checked(url: str) -> tuple[str, str, int]:
-    """Return (scheme, host, port) of an http/https URL; raise UnsafeURL for anything else."""
+    """Return (scheme, host, port) of an http/https URL; raise UnsafeURL for anything else.
+
+    They depend on the scheme and authority alone (``urllib.parse`` delimits the authority at
+    the first ``/``, ``?`` or ``#``, after dropping tabs and line breaks, which stay inside
+    it), so they are worked out once per ``scheme://authority``: a host's URLs are asked for
+    twice a request (its budget key and its robots.txt)."""
+    found = _AUTHORITY.match(url)
+    if found is not None:
+        try:
+            return _split_authority(found.group())
+        except UnsafeURL:
+            pass  # refused again below, naming the whole URL
+    return _split(url)
+
+
+def _split(url: str) -> tuple[str, str, int]:
     try:
         parts = urlsplit(url)
         port = parts.port
@@ -46,6 +62,9 @@ def split_checked(url: str) -> tuple[str, str, int]:
     if not host:
         raise UnsafeURL(url, "unsafe_url", detail="the URL has no host")
     return scheme, host, port if port is not None else DEFAULT_PORTS[scheme]
+
+
+_split_authority = functools.lru_cache(maxsize=1024)(_split)
 
 
 def host_key(url: str) -> str:

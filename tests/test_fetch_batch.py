@@ -52,7 +52,7 @@ def ledger(tmp_path: Path) -> Ledger:
 
 def test_a_batch_commits_its_first_row_at_once_and_the_rest_together(
         ledger: Ledger, monkeypatch: pytest.MonkeyPatch) -> None:
-    monkeypatch.setattr(fetch_batch, "FLUSH_S", 60.0)  # no timer ends this batch in the test
+    monkeypatch.setattr(fetch_batch, "FLUSH_S", 60.0)  # nothing ends this batch in the test
     for i in range(5):
         ledger.record_fetch(**_row(i))
     urls = [f"http://127.0.0.9:80/item/{i}" for i in range(5)]
@@ -64,12 +64,12 @@ def test_a_batch_commits_its_first_row_at_once_and_the_rest_together(
     ledger.close()
 
 
-def test_the_timer_commits_a_batch_within_its_time(
+def test_the_batch_thread_commits_a_batch_within_its_time(
         ledger: Ledger, monkeypatch: pytest.MonkeyPatch) -> None:
     monkeypatch.setattr(fetch_batch, "FLUSH_S", 0.2)
     for i in range(3):
         ledger.record_fetch(**_row(i))
-    deadline = time.monotonic() + 20  # generous: the timer thread may start late on a busy CI
+    deadline = time.monotonic() + 20  # generous: the thread may wake late on a busy CI
     while len(_seen_by_another_reader(ledger.path)) < 3 and time.monotonic() < deadline:
         time.sleep(0.05)
     assert len(_seen_by_another_reader(ledger.path)) == 3
@@ -132,7 +132,7 @@ for i in range(6):
                         attempt=1, status=200, ended_at=now)
     print(now, flush=True)
     time.sleep(0.05)
-os._exit(9)  # killed: no close, no timer
+os._exit(9)  # killed: no close, the batch never ends
 """
 
 

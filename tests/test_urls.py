@@ -196,3 +196,31 @@ def test_secret_headers_are_known_by_name_or_listing(name: str, secret: bool) ->
 
     assert is_secret_header(name) is secret
     assert is_secret_header(name, ["referer", "accept", "user-agent", "if-none-match"])
+
+
+def test_scheme_host_and_port_are_worked_out_once_per_authority_with_the_same_answers() -> None:
+    """split_checked keeps its answers by ``scheme://authority``; on 20,000 generated URLs
+    (tabs, brackets, ports, user information, other schemes) it gives what urllib.parse reads
+    from the whole URL, refusals with the whole URL named (Python documentation,
+    urllib.parse.urlsplit: the authority ends at the first "/", "?" or "#")."""
+    import random
+
+    from collector import urls
+
+    rng = random.Random(3)
+    schemes = ["http", "https", "HTTP", "Https", "ftp", "h\ttp", ""]
+    hosts = ["example.org", "EXAMPLE.org", "127.0.0.1", "[::1]", "[::1", "b\u00fccher.example",
+             "", "ex\tample.org", "user:pw@h.org", "h.org:", "h.org:0080", "h.org:65536",
+             "h.org:8x", "h.org%2f"]
+    tails = ["", "/", "/a/b?c=d#e", "?q", "#f", "/\t/x", "/a@b", "?x=/y", "\\path"]
+
+    def answer(read: object, url: str) -> tuple[object, ...]:
+        try:
+            return ("ok", read(url))  # type: ignore[operator]
+        except UnsafeURL as exc:
+            return ("refused", str(exc))
+
+    for _ in range(20_000):
+        url = (rng.choice(schemes) + rng.choice(["://", ":/", "//"]) + rng.choice(hosts)
+               + rng.choice(tails))
+        assert answer(urls.split_checked, url) == answer(urls._split, url), url

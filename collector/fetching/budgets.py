@@ -53,13 +53,11 @@ class Clock(Protocol):
 
 
 class SystemClock:
-    """The real clock."""
+    """The real clock (its readings are the time module's own functions: called a few times
+    a request, a method around each cost more than the reading)."""
 
-    def time(self) -> float:
-        return _time.time()
-
-    def monotonic(self) -> float:
-        return _time.monotonic()
+    time = staticmethod(_time.time)
+    monotonic = staticmethod(_time.monotonic)
 
     def sleep(self, seconds: float) -> None:
         if seconds > 0:
@@ -257,8 +255,9 @@ class HostBudgets:
 
     def _next_at(self, state: _HostState, now: float) -> float:
         at = state.not_before
-        last = max((t for t in (state.last_start, state.last_answer) if t is not None),
-                   default=None)
+        last, answer = state.last_start, state.last_answer
+        if last is None or (answer is not None and answer > last):
+            last = answer
         if last is not None:
             at = max(at, last + self._interval(state))
         starts = state.starts

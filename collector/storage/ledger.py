@@ -422,8 +422,8 @@ class Ledger:
             self._batch.rows = []
 
     def _batch_due(self) -> None:
-        """The batch timer: commit the rows in memory (an error is reported by the next
-        write, read or close, which try again)."""
+        """The end of a batch (its thread): commit the rows in memory (an error is reported
+        by the next write, read or close, which try again)."""
         with self._lock:
             if self._closed:
                 return
@@ -432,7 +432,7 @@ class Ledger:
             except sqlite3.Error as exc:
                 logging.getLogger(__name__).warning("ledger %s: request rows not written yet: "
                                                     "%s", self.path, exc)
-            self._batch.timer_fired(fetch_batch.now())
+            self._batch.ended(fetch_batch.now())
 
     # -- files -------------------------------------------------------------------------------
     def file(self, sha256: str) -> dict[str, Any] | None:
