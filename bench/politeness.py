@@ -7,9 +7,10 @@ the client's CPU time and memory are its own: ``time.process_time`` of the clien
 its threads, user and system time) and its resident memory (``/proc/self/statm``, sampled every
 0.5 s; "-" where there is no /proc). The client writes a ``fetches`` row per request into a real
 ledger (a SQLite file in a temporary folder), as every run does; the CPU spent in those writes
-is shown on its own too (``record_fetch`` in the request threads: the rows a batch's timer
-commits a second later, collector.storage.fetch_batch, count in the total only). The servers log server-side monotonic timestamps (CLOCK_MONOTONIC is
-system-wide on Linux, so they compare across processes).
+is shown on its own too (``record_fetch`` in the request threads: the rows the ledger's batch
+thread commits a second later, collector.storage.fetch_batch, count in the total only). The
+servers log server-side monotonic timestamps (CLOCK_MONOTONIC is system-wide on Linux, so
+they compare across processes).
 
 Printed per row: the per-host budget, achieved per-host rate as % of budget, the worst 1 s
 window seen by any host against the budget, violations (hosts whose worst window, shortened by
