@@ -4,8 +4,10 @@ For 1, 10, 50 and 200 loopback hosts (one ThreadingHTTPServer per 127.0.0.x addr
 fetcher downloads a bounded number of small pages per host, one worker thread per host, as a
 run's per-host workers do. The servers run in one child process and the client in another, so
 the client's CPU time and memory are its own: ``time.process_time`` of the client process (all
-its threads, user and system time) and its resident memory (``/proc/self/statm``, sampled every
-0.5 s; "-" where there is no /proc). The client writes a ``fetches`` row per request into a real
+its threads, user and system time) and its resident memory (Linux: the peak resident size
+``VmHWM`` of ``/proc/self/status`` at the end of the row, reset to the resident size at its
+start through ``/proc/self/clear_refs``, so no thread of the measured process wakes to sample
+it; "-" where that is not possible). The client writes a ``fetches`` row per request into a real
 ledger (a SQLite file in a temporary folder), as every run does; the CPU spent in those writes
 is shown on its own too (``record_fetch`` in the request threads: the rows the ledger's batch
 thread commits a second later, collector.storage.fetch_batch, count in the total only). The
@@ -87,6 +89,29 @@ def _serve(addresses: list[str], conn: Connection) -> None:
     conn.send({a: [h.mono for h in s.hits] for a, s in zip(addresses, servers, strict=True)})
 
 
+def _peak_from_now() -> int | None:
+    """The resident memory of this process in bytes, with its peak reset to it (Linux 4.0+:
+    "5" written to /proc/self/clear_refs), or None where that cannot be done."""
+    try:
+        with open("/proc/self/clear_refs", "w") as f:
+            f.write("5")
+    except OSError:
+        return None
+    return _rss()
+
+
+def _peak() -> int | None:
+    """The peak resident memory of this process since the last reset (VmHWM), in bytes."""
+    try:
+        with open("/proc/self/status") as f:
+            for line in f:
+                if line.startswith("VmHWM:"):
+                    return int(line.split()[1]) * 1024
+    except OSError:
+        pass
+    return None
+
+
 def _rss() -> int | None:
     """The resident memory of this process in bytes, or None without /proc."""
     try:
@@ -127,18 +152,15 @@ def _client(urls: list[str], per_host: int, interval: float, conn: Connection) -
             for i in range(per_host):
                 fetcher.get_page(f"{base}/item/{i}")
 
-        rss0 = _rss()
-        peak = rss0
+        rss0 = _peak_from_now()
         cpu0, wall0 = time.process_time(), time.monotonic()
         threads = [threading.Thread(target=worker, args=(u,)) for u in urls]
         for t in threads:
             t.start()
         for t in threads:
-            while t.is_alive():
-                t.join(0.5)
-                now = _rss()
-                peak = max(peak, now) if peak is not None and now is not None else None
+            t.join()
         cpu, wall = time.process_time() - cpu0, time.monotonic() - wall0
+        peak = _peak() if rss0 is not None else None
         fetcher.close()
         ledger.close()
     growth = None if peak is None or rss0 is None else peak - rss0
