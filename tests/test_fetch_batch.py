@@ -23,17 +23,18 @@ import pytest
 from collector.demo_site.loopback import LoopbackServer
 from collector.fetching import budgets
 from collector.fetching.budgets import FakeClock, HostBudgets
-from collector.fetching.fetcher import Fetcher, FetchSettings, _iso
+from collector.fetching.fetcher import Fetcher, FetchSettings
 from collector.storage import fetch_batch
 from collector.storage.fetch_batch import BATCH_FACT
 from collector.storage.ledger import Ledger
+from collector.storage.row_codec import iso_time
 
 ROOT = Path(__file__).resolve().parent.parent
 
 
 def _row(i: int, host: str = "127.0.0.9:80") -> dict[str, object]:
     return {"purpose": "listing", "url": f"http://{host}/item/{i}", "host": host,
-            "attempt": 1, "status": 200, "ended_at": _iso(time.time())}
+            "attempt": 1, "status": 200, "ended_at": iso_time(time.time())}
 
 
 def _seen_by_another_reader(path: Path) -> list[str]:
@@ -123,11 +124,12 @@ _KILLED_RUN = """
 import os, sys, time
 from pathlib import Path
 from collector.storage.ledger import Ledger
-from collector.fetching.fetcher import _iso
+from collector.storage.row_codec import iso_time
+from collector.storage.row_codec import iso_time
 ledger = Ledger.open(Path(sys.argv[1]))
 host = sys.argv[2]
 for i in range(6):
-    now = _iso(time.time())
+    now = iso_time(time.time())
     ledger.record_fetch(purpose="listing", url=f"http://{host}/item/{i}", host=host,
                         attempt=1, status=200, ended_at=now)
     print(now, flush=True)
@@ -182,7 +184,7 @@ def test_a_contact_ahead_counts_up_to_its_limit() -> None:
 
 
 def test_request_times_are_written_as_datetime_writes_them() -> None:
-    """_iso formats a second once; the text equals datetime's ISO 8601 for any moment
+    """iso_time formats a second once; the text equals datetime's ISO 8601 for any moment
     (Python documentation, datetime.isoformat(timespec="milliseconds"))."""
     rng = random.Random(11)
     moments = [rng.uniform(0, 4e9) for _ in range(20_000)]
@@ -191,4 +193,4 @@ def test_request_times_are_written_as_datetime_writes_them() -> None:
                 for part in (0.0, 0.0005, 0.0009995, 0.4999995, 0.9995, 0.9999995)]
     for moment in moments:
         expected = datetime.fromtimestamp(moment, UTC).isoformat(timespec="milliseconds")
-        assert _iso(moment) == expected.replace("+00:00", "Z"), moment
+        assert iso_time(moment) == expected.replace("+00:00", "Z"), moment

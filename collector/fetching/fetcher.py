@@ -24,13 +24,11 @@ transport connects to the addresses that were checked, never to a second answer 
 from __future__ import annotations
 
 import logging
-import math
 import random
 import threading
-import time
 from collections.abc import Callable, Iterable, Mapping
 from dataclasses import dataclass, replace
-from datetime import UTC, datetime
+from datetime import datetime
 from pathlib import Path
 from typing import Any
 from urllib.parse import urljoin
@@ -70,6 +68,7 @@ from collector.fetching.settings import FetchSettings  # also the fetcher's impo
 from collector.fetching.transport import Answer, Transport, TransportError, TransportTimeout
 from collector.safe_text import valid_unicode
 from collector.schema import expand_env
+from collector.storage.row_codec import iso_time
 from collector.urls import (
     MIN_SECRET_LEN,
     add_params,
@@ -315,7 +314,7 @@ class Fetcher:
                 "robots_rule": verdict.rule}
         slot = self.budgets.acquire(hk)
         started = self.clock.time()
-        base.update(started_at=_iso(started), waited_s=round(slot.waited, 3))
+        base.update(started_at=iso_time(started), waited_s=round(slot.waited, 3))
         try:
             try:
                 # target is the URL exactly as transport_target checked it (http_target.py)
@@ -454,7 +453,7 @@ class Fetcher:
             self._use_policy(target, hk, policy)
             if self.ledger is not None:
                 self.ledger.put_host(
-                    hk, robots_url=target, robots_fetched_at=_iso(policy.fetched_at),
+                    hk, robots_url=target, robots_fetched_at=iso_time(policy.fetched_at),
                     robots_status=policy.status, robots_sha256=policy.sha256,
                     robots_body=policy.body if policy.body else None,
                     effective_budget=self.budgets.effective(hk))
@@ -553,7 +552,7 @@ class Fetcher:
                 **extra: Any) -> None:
         if self.ledger is None:
             return
-        now = _iso(self.clock.time())
+        now = iso_time(self.clock.time())
         fields = {**row, **extra, "run_id": self.run_id, "error": error}
         if attempt is not None:
             fields["attempt"] = attempt
@@ -565,29 +564,6 @@ class Fetcher:
         # A 304 answers a conditional request: the copy we hold is current (RFC 9110 15.4.5).
         fields["from_cache"] = int(fields.get("status") == 304)
         self.ledger.record_fetch(**fields)
-
-
-_SECOND: tuple[float, str] = (-1.0, "")  # the second _iso wrote last, and its text
-
-
-def _iso(epoch: float) -> str:
-    """``epoch`` as the ledger writes times: what ``datetime.fromtimestamp(epoch, UTC)
-    .isoformat(timespec="milliseconds")`` gives, with Z for +00:00 (its microseconds rounded
-    half to even, then cut to milliseconds); the date and time of a second are formatted
-    once, not twice a request."""
-    global _SECOND
-    if not 0 <= epoch < 253402300800:  # before 1970 or after 9999: the general way
-        return (datetime.fromtimestamp(epoch, UTC).isoformat(timespec="milliseconds")
-                .replace("+00:00", "Z"))
-    fraction, whole = math.modf(epoch)
-    micro = round(fraction * 1e6)
-    if micro >= 1_000_000:
-        whole, micro = whole + 1, micro - 1_000_000
-    second, text = _SECOND
-    if second != whole:
-        text = time.strftime("%Y-%m-%dT%H:%M:%S", time.gmtime(whole))
-        _SECOND = (whole, text)
-    return f"{text}.{micro // 1000:03d}Z"
 
 
 def _from_iso(text: str) -> float | None:

@@ -5,21 +5,16 @@ parameters are kept; a kept answer older than ``keep_for`` seconds is asked agai
 
 from __future__ import annotations
 
-from datetime import UTC, datetime
+from datetime import datetime
 from typing import Any
 
 from requests.structures import CaseInsensitiveDict
 
 from collector.fetching.answers import Page
 from collector.storage import queries
+from collector.storage.row_codec import iso_time
 
 __all__ = ["keep_answer", "kept_answer"]
-
-
-def _iso(epoch: float) -> str:
-    """The ledger's time format (ISO 8601 UTC with milliseconds and "Z")."""
-    return (datetime.fromtimestamp(epoch, UTC).isoformat(timespec="milliseconds")
-            .replace("+00:00", "Z"))
 
 
 def kept_answer(ledger: Any, url: str, keep_for: float, now: float) -> Page | None:
@@ -46,6 +41,6 @@ def keep_answer(ledger: Any, url: str, page: Page, now: float) -> None:
     """Keep ``page`` (a 2xx answer to ``url``) for re-use from ``now`` on."""
     if ledger is None:
         return
-    ledger.add_row("kept_pages", {"url": url, "fetched_at": _iso(now), "status": page.status,
+    ledger.add_row("kept_pages", {"url": url, "fetched_at": iso_time(now), "status": page.status,
                                   "content_type": page.headers.get("Content-Type"),
                                   "body": page.body})

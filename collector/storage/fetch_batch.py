@@ -28,8 +28,10 @@ from __future__ import annotations
 import threading
 import time
 from collections.abc import Callable
-from datetime import UTC, datetime, timedelta
+from datetime import datetime
 from typing import Any
+
+from collector.storage.row_codec import iso_time
 
 FLUSH_S = 1.0  # a row waits in memory at most this long after its batch's first row
 BATCH_MAX = 256  # rows kept in memory at most (a busy many-host run commits more often)
@@ -102,11 +104,10 @@ def lost_until(opened: str | None) -> str | None:
     if not opened:
         return None
     try:
-        since = datetime.fromisoformat(opened.replace("Z", "+00:00"))
+        since = datetime.fromisoformat(opened.replace("Z", "+00:00")).timestamp()
     except ValueError:
         return None
-    return ((since + timedelta(seconds=FLUSH_S)).astimezone(UTC)
-            .isoformat(timespec="milliseconds").replace("+00:00", "Z"))
+    return iso_time(since + FLUSH_S)
 
 
 def now() -> float:

@@ -7,6 +7,8 @@ ledger module stays about its connection, its writes and its locking.
 from __future__ import annotations
 
 import json
+import math
+import time
 from contextlib import suppress
 from datetime import UTC, datetime
 from typing import Any
@@ -16,9 +18,32 @@ JSON_COLUMNS = {"options", "config", "metadata", "crop_box", "exif", "rights", "
 _JSON = json.JSONEncoder(sort_keys=True, default=str)  # json.dumps's, made once (not per call)
 
 
+_SECOND: tuple[float, str] = (-1.0, "")  # the second iso_time wrote last, and its text
+
+
+def iso_time(epoch: float) -> str:
+    """``epoch`` in the ledger's time format: what ``datetime.fromtimestamp(epoch, UTC)
+    .isoformat(timespec="milliseconds")`` gives, with Z for +00:00 (its microseconds rounded
+    half to even, then cut to milliseconds); the date and time of a second are formatted
+    once, not twice a request."""
+    global _SECOND
+    if not 0 <= epoch < 253402300800:  # before 1970 or after 9999: the general way
+        return (datetime.fromtimestamp(epoch, UTC).isoformat(timespec="milliseconds")
+                .replace("+00:00", "Z"))
+    fraction, whole = math.modf(epoch)
+    micro = round(fraction * 1e6)
+    if micro >= 1_000_000:
+        whole, micro = whole + 1, micro - 1_000_000
+    second, text = _SECOND
+    if second != whole:
+        text = time.strftime("%Y-%m-%dT%H:%M:%S", time.gmtime(whole))
+        _SECOND = (whole, text)
+    return f"{text}.{micro // 1000:03d}Z"
+
+
 def utc_now() -> str:
     """The current time as an ISO 8601 UTC string with milliseconds (the ledger's time format)."""
-    return datetime.now(UTC).isoformat(timespec="milliseconds").replace("+00:00", "Z")
+    return iso_time(time.time())
 
 
 def encode_row(row: dict[str, Any]) -> dict[str, Any]:
