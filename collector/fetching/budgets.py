@@ -118,7 +118,7 @@ def _slots(count: int) -> threading.BoundedSemaphore | threading.Lock:
 @dataclass
 class _HostState:
     budget: Budget
-    semaphore: threading.BoundedSemaphore | threading.Lock  # connection slots (see _state)
+    semaphore: threading.BoundedSemaphore | threading.Lock  # connection slots (_slots)
     last_start: float | None = None
     last_answer: float | None = None  # when the latest answer began to arrive (see module doc)
     starts: deque[float] | None = None
@@ -334,8 +334,7 @@ class HostBudgets:
         back) counts as now."""
         with self._lock:
             state = self._state_locked(host)
-            ahead = -seconds_ago if -AHEAD_MAX <= seconds_ago < 0 else 0.0
-            at = self.clock.monotonic() - max(0.0, seconds_ago) + ahead
+            at = self.clock.monotonic() - (seconds_ago if seconds_ago >= -AHEAD_MAX else 0.0)
             state.last_answer = max(state.last_answer or at, at)
 
     def record_bytes(self, host: str, count: int) -> None:

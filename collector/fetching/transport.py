@@ -44,15 +44,14 @@ What changed on purpose:
   just before each request; the transport then connects to those addresses, in the fetcher's
   order, each in turn while connecting fails (as ``socket.create_connection`` tries a name's
   addresses; nothing has been sent then), instead of letting the connection resolve the name
-  again, so a name whose
-  answer changes between the check and the connection (DNS rebinding) cannot lead the request
-  elsewhere. ``Host`` names the host as in the URL; over TLS the name is still sent as SNI and
-  the certificate checked against it (``server_hostname``). Connections are kept per address
-  and name.
-- no cookie jar. A ``Set-Cookie`` from an archive is never sent back
-(requests kept one per session and replayed it); a cookie an archive requires goes in the
-recipe's ``[network] headers``, where it is a secret header and never reaches the ledger.
-Every request is exactly what the recipe and the fetcher say.
+  again, so a name whose answer changes between the check and the connection (DNS
+  rebinding) cannot lead the request elsewhere. ``Host`` names the host as in the URL; over
+  TLS the name is still sent as SNI and the certificate checked against it
+  (``server_hostname``). Connections are kept per address and name.
+- no cookie jar. A ``Set-Cookie`` from an archive is never sent back (requests kept one per
+  session and replayed it); a cookie an archive requires goes in the recipe's ``[network]
+  headers``, where it is a secret header and never reaches the ledger. Every request is
+  exactly what the recipe and the fetcher say.
 - a request sent on a kept connection that the server closed in the meantime (the send fails,
   or the connection ends before any byte of the answer) is sent once more on a new
   connection: it is a GET, and no answer came (urllib3 left that to a retry policy the
