@@ -336,7 +336,8 @@ def test_an_interrupted_run_keeps_whole_batches_and_resumes(gathered) -> None:
 def test_colour_facts_computed_the_first_way_are_computed_again(gathered) -> None:
     """Facts an older collector computed (``colour_algo`` NULL: the first way, before schema
     14) are due for the colour facts alone, made again as a fresh gather makes them (with
-    the current COLOUR_ALGO); facts of the current way are not due."""
+    the current COLOUR_ALGO); facts of the current way are not due. collector status counts
+    the file among those measured by an older collector until then."""
     root, fresh = gathered
     copy = root.parent / f"old-{len(list(root.parent.iterdir()))}"
     shutil.copytree(root, copy)
@@ -346,6 +347,8 @@ def test_colour_facts_computed_the_first_way_are_computed_again(gathered) -> Non
         ledger.db.execute("UPDATE files SET colour_algo = NULL, colourfulness = 0, colours = "
                           "'[]' WHERE sha256 = ?", [photo])
         ledger.db.conn.commit()
+    status = runner.invoke(app, ["status", str(col.root), "--json"])
+    assert json.loads(status.output)["measured_before"] == 1  # its colour facts alone
     result = remeasure(col)
     counts = {name: (c.due, c.measured, c.changed) for name, c in result.counts.items()}
     assert counts["colour and tone facts"] == (1, 1, 1)
@@ -353,6 +356,8 @@ def test_colour_facts_computed_the_first_way_are_computed_again(gathered) -> Non
     now = facts_by_key(col)
     assert now == fresh and now["photo.jpg"]["colour_algo"] == COLOUR_ALGO
     assert remeasure(col).due == 0  # measured the current way: nothing more to do
+    status = runner.invoke(app, ["status", str(col.root), "--json"])
+    assert json.loads(status.output)["measured_before"] == 0
 
 
 def test_an_interrupted_all_run_resumes_where_it_stopped(gathered) -> None:

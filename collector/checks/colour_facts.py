@@ -52,14 +52,13 @@ from typing import Any
 import numpy as np
 from PIL import Image
 
+from collector.checks.hash_versions import COLOUR_ALGO
+
 __all__ = ["COLOUR_ALGO", "ColourFacts", "DominantColour", "colour_facts", "srgb_to_lab"]
 
-# The way the facts are computed, recorded beside them (``files.colour_algo``) so that
-# ``collector remeasure`` can tell facts an older collector made (NULL: the first way, v1) and
-# compute them again. v2: a JPEG's draft reduced in YCbCr (its grey the Y band), k-means with
-# 2 rounds on the sample and a last one over every pixel of the work picture (the colours are
-# the means of the pixels counted in their shares), colourfulness from sums of products.
-COLOUR_ALGO = "lab-kmeans-64px/v2"
+# COLOUR_ALGO (collector.checks.hash_versions, named in __all__): the way these facts are made,
+# recorded beside them (``files.colour_algo``) so that ``collector remeasure`` can tell facts an
+# older collector made and compute them again.
 MAX_SAMPLES = 256  # pixels sampled for k-means (a distribution, not every pixel)
 KMEANS_ROUNDS = 2  # Lloyd rounds at most on the sample, before the last one over every
 # pixel (common practice, no source; see _kmeans)

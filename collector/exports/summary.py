@@ -14,7 +14,7 @@ from datetime import datetime
 from typing import Any
 
 from collector import sources
-from collector.checks.hash_versions import HASH_ALGO, WINDOW_ALGO
+from collector.checks.hash_versions import COLOUR_ALGO, HASH_ALGO, WINDOW_ALGO
 from collector.checks.reservations import RESERVATION_REASONS
 from collector.config.recipe import Recipe
 from collector.errors import CollectorError
@@ -92,7 +92,8 @@ def summarise(ledger: Ledger) -> Summary:
             s.flags[flag.split(":", 1)[0]] += 1
     s.notes.update(dict(t.notes))
     s.set_aside.update(dict(queries.set_aside_counts(ledger)))
-    s.measured_before = queries.files_measured_before(ledger, HASH_ALGO, WINDOW_ALGO)
+    s.measured_before = queries.files_measured_before(ledger, HASH_ALGO, WINDOW_ALGO,
+                                                       COLOUR_ALGO)
     s.reservations = datasheet_queries.reservation_facts(ledger, RESERVATION_REASONS)
     return s
 
@@ -154,8 +155,8 @@ def format_summary(s: Summary) -> list[str]:
                      + "); kept in the store, left out of releases")
     if s.measured_before:
         lines.append(f"measured by an older collector: {s.measured_before:,} stored files "
-                     "(hashes, transparency or crop windows); `collector remeasure` on this "
-                     "folder brings them up to date, offline")
+                     "(hashes, transparency, crop windows or colour facts); `collector "
+                     "remeasure` on this folder brings them up to date, offline")
     if s.last_run:
         lines.append(f"last run: #{s.last_run['id']} started {s.last_run['started_at']}, "
                      f"{human_seconds(s.last_run_seconds or 0)}, {s.last_run['outcome']}")

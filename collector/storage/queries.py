@@ -132,17 +132,20 @@ def set_aside_counts(ledger: Ledger) -> tuple[tuple[str, int], ...]:
         "GROUP BY set_aside ORDER BY 2 DESC, 1"))
 
 
-def files_measured_before(ledger: Ledger, hash_algo: str, window_algo: str) -> int:
-    """Stored files (bytes kept) whose perceptual hashes, transparency share or crop window
-    hashes an older collector made or did not make (what ``collector remeasure`` brings up to
-    date); in a ledger older than those columns, every stored file."""
+def files_measured_before(ledger: Ledger, hash_algo: str, window_algo: str,
+                          colour_algo: str) -> int:
+    """Stored files (bytes kept) whose perceptual hashes, transparency share, crop window
+    hashes or colour and tone facts an older collector made another way or did not make (what
+    ``collector remeasure`` brings up to date); in a ledger older than those columns, every
+    stored file."""
     columns = ledger.columns("files")
-    if not {"transparent_share", "window_algo", "removed_at"} <= set(columns):
+    if not {"transparent_share", "window_algo", "removed_at", "greyscale",
+            "colour_algo"} <= set(columns):
         return int(ledger.scalar("SELECT count(*) FROM files") or 0)
     return int(ledger.scalar(
         "SELECT count(*) FROM files WHERE removed_at IS NULL AND (hash_algo IS NOT ? "
-        "OR transparent_share IS NULL OR window_algo IS NOT ?)", (hash_algo, window_algo))
-        or 0)
+        "OR transparent_share IS NULL OR window_algo IS NOT ? OR greyscale IS NULL "
+        "OR colour_algo IS NOT ?)", (hash_algo, window_algo, colour_algo)) or 0)
 
 
 def pending_image_urls(ledger: Ledger) -> Iterator[str]:
