@@ -19,6 +19,11 @@ Two more rows, measured in the same interleaved rounds, split the ingest step's 
 so that inspect - draft is the inspection beyond the decode and ingest - inspect the lookups,
 the move into the store and the ledger rows (bench/ingest_parts.py breaks the inspection down).
 
+A last table: the near-duplicate lookup ingest makes for each new file (the 8 turned hashes
+and the window hashes, HashIndex.candidates as ingest calls it) against an index of 10,000,
+100,000 and 1,000,000 stored files (random hashes: the scan's cost does not depend on them),
+because the rows above, with 150 files stored, do not show how it grows with the collection.
+
 The modules ingest loads on first use (scipy's DCT for the hash, about 0.2-0.5 s) are imported
 once per run, before its threads start (collector.run.scheduling); here one file is inspected
 before the clock starts, so that N files do not each carry 1/N of a one-off cost. That first
@@ -38,10 +43,12 @@ import numpy as np
 from PIL import Image
 
 from collector.checks.images import inspect_image
-from collector.checks.phash import hash_draft
+from collector.checks.phash import TURNS, hash_draft
+from collector.config.recipe import Images
 from collector.run.gather import gather, prepared_run
 from collector.run.scheduling import Gatherer
 from collector.storage.collection import init_collection
+from collector.storage.hashindex import N_WINDOWS, HashIndex
 
 
 def make_images(folder: Path, count: int) -> list[Path]:
@@ -133,6 +140,23 @@ def ingest(root: Path, paths: list[Path]) -> float:
     return elapsed
 
 
+def lookup_cost(stored: int, queries: int = 30) -> float:
+    """CPU ms of ingest's near-duplicate lookup for one new file, ``stored`` files stored."""
+    rng = np.random.default_rng(stored)
+    index = HashIndex()
+    index._hashes = rng.integers(0, 2**64 - 1, stored, dtype=np.uint64, endpoint=True)
+    index._windows = rng.integers(0, 2**64 - 1, (stored, N_WINDOWS), dtype=np.uint64,
+                                  endpoint=True)
+    index._keys, index._count = [f"{n:064x}" for n in range(stored)], stored
+    asked = [dict(zip(TURNS, rng.integers(0, 2**63, len(TURNS)).tolist(), strict=True))
+             for _ in range(queries)]
+    cpu = time.process_time()
+    near = Images().near_distance  # the recipe's default
+    for turns in asked:  # as Ingest._confirmed asks
+        index.candidates(turns, near, crops=True, loose=False)
+    return (time.process_time() - cpu) / queries * 1000
+
+
 def main() -> None:
     count = int(sys.argv[1]) if len(sys.argv) > 1 else 150
     POLICY["enlarged"] = sys.argv[2] if len(sys.argv) > 2 else "keep"
@@ -172,6 +196,9 @@ def main() -> None:
     print(f'[images] enlarged = "{POLICY["enlarged"]}"')
     print(f"ratio ingest/bare = {ratio:.2f}x wall, {cpu_ratio:.2f}x CPU "
           f"(target <= {TARGET}x): {verdict}")
+    print("near-duplicate lookup per new file (CPU ms) with this many files stored:")
+    for stored in (10_000, 100_000, 1_000_000):
+        print(f"  {stored:>9,}  {lookup_cost(stored):6.2f} ms")
 
 if __name__ == "__main__":
     main()
