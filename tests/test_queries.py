@@ -30,6 +30,7 @@ SAMPLE_ARGS: dict[str, Any] = {
     "grey_chroma": 6.0, "lightness_edges": (50,), "chroma_edges": (6, 30),
     "pixel_edges": (0.1, 1), "aspect_edges": (1,), "max_colour_files": 10,
     "hash_algo": "dct-phash-64/draft-v2", "window_algo": "dct-phash-64/windows-80-4x4-v1",
+    "colour_algo": "lab-kmeans-64px/v2",
     # what the run asks (collector.run.ingest and scheduling)
     "image_url": "http://127.0.0.59/a.png", "other_than": 2, "source_id": 1, "run_id": 1,
     "config_sha256": "cd" * 32,
