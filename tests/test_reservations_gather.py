@@ -177,6 +177,8 @@ def test_the_ledger_records_each_signal_seen(gathered: Collection) -> None:
         checks = ledger.query("SELECT reservation_checks FROM items WHERE source_key = "
                               "'plain'")[0]["reservation_checks"]
         host = ledger.query("SELECT tdmrep_state, tdmrep_status FROM hosts")[0]
+        read_at = ledger.query("SELECT h.tdmrep_fetched_at, r.started_at FROM hosts h, runs r"
+                               )[0]
     seen = {(r["source_key"], r["place"], r["name"], r["meaning"]) for r in rows}
     assert ("header-reserved", "HTTP header", "tdm-reservation", "reserved") in seen
     assert ("noimageai", "HTTP header", "X-Robots-Tag", "reserved") in seen
@@ -189,6 +191,9 @@ def test_the_ledger_records_each_signal_seen(gathered: Collection) -> None:
     assert "/img/reserved/ -> tdm-reservation 1" in decided["value"]
     assert "tdmrep.json" in checks and "C2PA content credentials not read" in checks
     assert host == {"tdmrep_state": "rules", "tdmrep_status": 200}
+    # the ledger's one time format (ISO 8601 UTC, milliseconds, Z), as the run's own start
+    assert re.fullmatch(r"\d{4}-\d\d-\d\dT\d\d:\d\d:\d\d\.\d{3}Z", read_at["tdmrep_fetched_at"])
+    assert read_at["tdmrep_fetched_at"] >= read_at["started_at"]
 
 
 def test_a_permission_gathers_the_source_and_says_so(archive: LoopbackServer,

@@ -25,7 +25,7 @@ from __future__ import annotations
 import threading
 import time
 from dataclasses import dataclass
-from datetime import UTC, datetime
+from datetime import datetime
 from typing import Any
 from urllib.parse import urlsplit, urlunsplit
 
@@ -36,6 +36,7 @@ from collector.checks.reservations import (
     parse_tdmrep,
 )
 from collector.errors import FetchError, HostParked, RobotsDenied, TooLarge, UnsafeURL
+from collector.storage.row_codec import iso_time
 from collector.urls import host_key
 
 TDMREP_PATH = "/.well-known/tdmrep.json"
@@ -67,10 +68,6 @@ def tdmrep_url(url: str) -> str:
     """The tdmrep.json URL of ``url``'s origin (scheme, host and port)."""
     parts = urlsplit(url)
     return urlunsplit((parts.scheme, parts.netloc.rsplit("@", 1)[-1], TDMREP_PATH, "", ""))
-
-
-def _iso(epoch: float) -> str:
-    return datetime.fromtimestamp(epoch, UTC).isoformat(timespec="seconds")
 
 
 def _epoch(text: str | None) -> float | None:
@@ -168,6 +165,6 @@ class TdmRepFiles:
         if self.ledger is None:
             return
         self.ledger.put_host(host_key(url), tdmrep_url=found.url,
-                             tdmrep_fetched_at=_iso(found.fetched_at),
+                             tdmrep_fetched_at=iso_time(found.fetched_at),
                              tdmrep_state=found.state, tdmrep_status=found.status,
                              tdmrep_detail=found.detail, tdmrep_body=found.body)
