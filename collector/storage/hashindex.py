@@ -10,8 +10,9 @@ Crops are found through a third array, the window hashes of every stored picture
 (:data:`collector.checks.phash.WINDOWS`, 16 a file; 0 where a file has none, e.g. one stored
 before they were recorded): the closest few files with a window within
 :data:`WINDOW_DISTANCE` bits of the query go to the second look as crop candidates. That scan
-covers 16 hashes a file (about 13-20 ms at 1,000,000 files, bench/trace.py), so it runs only
-when upright and mirrored copies found nothing.
+covers 16 hashes a file (about 13-20 ms at 1,000,000 files, bench/trace.py), so trace runs it
+only when upright and mirrored copies found nothing; ingest runs it for every new file (its
+lookup per file at 10,000 to 1,000,000 stored files: the last table of bench/ingest.py).
 """
 
 from __future__ import annotations
