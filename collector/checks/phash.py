@@ -203,7 +203,8 @@ def hash_draft(im: Image.Image, *, colour: bool = False) -> None:
     rgb_coded = im.info.get("adobe_transform") == 0
     im.draft("YCbCr" if colour and not rgb_coded else "L", _DRAFT_SIZE)
     # Read in blocks of _DRAFT_READ instead of Pillow's 64 KiB: a 1 MP JPEG in one or two
-    # reads and decoder calls, 1-2 % less CPU for the draft (bench/ingest.py, interleaved).
+    # reads and decoder calls, 2 % less CPU for the draft (bench/ingest.py's pictures, the two
+    # ways timed in turn in one process).
     im.decodermaxblock = _DRAFT_READ
 
 
