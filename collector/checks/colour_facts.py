@@ -224,11 +224,10 @@ _XYZ = np.arange(3)
 
 
 def _lloyd_step(points: np.ndarray, flat: np.ndarray, twice: np.ndarray,
-                centres: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+                centres: np.ndarray) -> np.ndarray:
     """One round of Lloyd's algorithm: each point (``points`` (n, 3); ``flat`` the same
     values raveled, ``twice`` doubled, both float64) given to its nearest centre, then each
-    centre moved to the mean of its points (an emptied cluster keeps its centre). Returns
-    (the labels, the centres moved)."""
+    centre moved to the mean of its points (:func:`_means`). Returns the centres moved."""
     k = len(centres)
     label = (_SUM(centres * centres, 1) - twice @ centres.T).argmin(1)
     counts = np.bincount(label, minlength=k)
@@ -236,10 +235,15 @@ def _lloyd_step(points: np.ndarray, flat: np.ndarray, twice: np.ndarray,
     # points in turn, as a count per coordinate does
     sums = np.bincount((3 * label[:, None] + _XYZ).ravel(), flat,
                        minlength=3 * k).reshape(k, 3)
+    return _means(sums, counts, centres)
+
+
+def _means(sums: np.ndarray, counts: np.ndarray, centres: np.ndarray) -> np.ndarray:
+    """Each cluster's mean (its coordinate ``sums`` over its point ``counts``); an emptied
+    cluster keeps its centre."""
     if counts.all():
-        return label, sums / counts[:, None]
-    return label, np.where(counts[:, None] > 0, sums / np.maximum(counts, 1)[:, None],
-                           centres)
+        return sums / counts[:, None]
+    return np.where(counts[:, None] > 0, sums / np.maximum(counts, 1)[:, None], centres)
 
 
 def _kmeans(sample: np.ndarray, every: np.ndarray, k: int,
@@ -253,7 +257,7 @@ def _kmeans(sample: np.ndarray, every: np.ndarray, k: int,
     centres = _seeds(wide, k, rng)
     flat = wide.ravel()
     for _ in range(KMEANS_ROUNDS):
-        moved = _lloyd_step(wide, flat, twice, centres)[1]
+        moved = _lloyd_step(wide, flat, twice, centres)
         settled = float(np.abs(moved - centres).max()) < KMEANS_SETTLED
         centres = moved
         if settled:
@@ -264,10 +268,7 @@ def _kmeans(sample: np.ndarray, every: np.ndarray, k: int,
              + _SUM(centres * centres, 1).astype(np.float32)).argmin(1)
     members = (label == _CLUSTERS[:k, None]).astype(np.float64)
     counts = _SUM(members, 1)
-    sums = members @ every.astype(np.float64)
-    if counts.all():
-        return counts, sums / counts[:, None]
-    return counts, np.where(counts[:, None] > 0, sums / np.maximum(counts, 1)[:, None], centres)
+    return counts, _means(members @ every.astype(np.float64), counts, centres)
 
 
 _CLUSTERS = np.arange(64)  # cluster numbers (k is at most 16: collector.config.recipe)
