@@ -28,7 +28,6 @@ import random
 import threading
 from collections.abc import Callable, Iterable, Mapping
 from dataclasses import dataclass, replace
-from datetime import datetime
 from pathlib import Path
 from typing import Any
 from urllib.parse import urljoin
@@ -68,7 +67,7 @@ from collector.fetching.settings import FetchSettings  # also the fetcher's impo
 from collector.fetching.transport import Answer, Transport, TransportError, TransportTimeout
 from collector.safe_text import valid_unicode
 from collector.schema import expand_env
-from collector.storage.row_codec import iso_time
+from collector.storage.row_codec import epoch_of, iso_time
 from collector.urls import (
     MIN_SECRET_LEN,
     add_params,
@@ -468,7 +467,7 @@ class Fetcher:
         row = self.ledger.get_host(hk) if self.ledger is not None else None
         if not row or row.get("robots_url") != target or not row.get("robots_fetched_at"):
             return None
-        fetched = _from_iso(row["robots_fetched_at"])
+        fetched = epoch_of(row["robots_fetched_at"])
         if fetched is None:
             return None
         return policy_from_stored(row.get("robots_status"), row.get("robots_body"), fetched,
@@ -501,7 +500,7 @@ class Fetcher:
         if self.ledger is None:
             return
         last = self.ledger.last_contact(hk)
-        ended = _from_iso(last) if last else None
+        ended = epoch_of(last)
         if ended is not None:  # a resumed run: a full interval after the last contact
             self.budgets.contacted(hk, self.clock.time() - ended)
         row = self.ledger.get_host(hk)
@@ -565,9 +564,3 @@ class Fetcher:
         fields["from_cache"] = int(fields.get("status") == 304)
         self.ledger.record_fetch(**fields)
 
-
-def _from_iso(text: str) -> float | None:
-    try:
-        return datetime.fromisoformat(text.replace("Z", "+00:00")).timestamp()
-    except ValueError:
-        return None

@@ -5,14 +5,13 @@ parameters are kept; a kept answer older than ``keep_for`` seconds is asked agai
 
 from __future__ import annotations
 
-from datetime import datetime
 from typing import Any
 
 from requests.structures import CaseInsensitiveDict
 
 from collector.fetching.answers import Page
 from collector.storage import queries
-from collector.storage.row_codec import iso_time
+from collector.storage.row_codec import epoch_of, iso_time
 
 __all__ = ["keep_answer", "kept_answer"]
 
@@ -25,12 +24,8 @@ def kept_answer(ledger: Any, url: str, keep_for: float, now: float) -> Page | No
     kept = queries.kept_page(ledger, url)
     if kept is None:
         return None
-    try:
-        fetched = datetime.fromisoformat(str(kept["fetched_at"]).replace("Z", "+00:00")
-                                         ).timestamp()
-    except ValueError:
-        return None
-    if now - fetched >= keep_for:
+    fetched = epoch_of(str(kept["fetched_at"]))
+    if fetched is None or now - fetched >= keep_for:
         return None
     kind = kept["content_type"]
     headers = CaseInsensitiveDict({"Content-Type": kind} if kind else {})

@@ -25,7 +25,6 @@ from __future__ import annotations
 import threading
 import time
 from dataclasses import dataclass
-from datetime import datetime
 from typing import Any
 from urllib.parse import urlsplit, urlunsplit
 
@@ -36,7 +35,7 @@ from collector.checks.reservations import (
     parse_tdmrep,
 )
 from collector.errors import FetchError, HostParked, RobotsDenied, TooLarge, UnsafeURL
-from collector.storage.row_codec import iso_time
+from collector.storage.row_codec import epoch_of, iso_time
 from collector.urls import host_key
 
 TDMREP_PATH = "/.well-known/tdmrep.json"
@@ -68,13 +67,6 @@ def tdmrep_url(url: str) -> str:
     """The tdmrep.json URL of ``url``'s origin (scheme, host and port)."""
     parts = urlsplit(url)
     return urlunsplit((parts.scheme, parts.netloc.rsplit("@", 1)[-1], TDMREP_PATH, "", ""))
-
-
-def _epoch(text: str | None) -> float | None:
-    try:
-        return datetime.fromisoformat(text).timestamp() if text else None
-    except ValueError:
-        return None
 
 
 def classify(status: int | None, body: bytes | None, reason: str, url: str,
@@ -146,7 +138,7 @@ class TdmRepFiles:
         if self.ledger is None:
             return None
         row = self.ledger.get_host(host_key(url)) or {}
-        fetched = _epoch(row.get("tdmrep_fetched_at"))
+        fetched = epoch_of(row.get("tdmrep_fetched_at"))
         if row.get("tdmrep_url") != target or fetched is None:
             return None
         if row.get("tdmrep_state") not in (RULES, NO_FILE, UNUSABLE):

@@ -52,10 +52,10 @@ from collector.run.cluster_task import (
     HostCarry,
     JobResult,
     batch_size,
-    epoch,
     fetch_batch,
 )
 from collector.run.ingest import Job
+from collector.storage.row_codec import epoch_of
 from collector.urls import host_key
 
 STOP_GRACE = 60.0  # s after a stop that tasks in flight may take to come back
@@ -345,7 +345,7 @@ class ClusterDispatch:
             return False
         if carry.clock is not None:
             return carry.clock == self._clock
-        moment = epoch(last) if last else None
+        moment = epoch_of(last)
         return ours is not None and moment is not None and moment <= ours
 
     def _arrived(self, future: Any) -> None:

@@ -46,6 +46,7 @@ from collector.errors import (
 )
 from collector.fetching.fetcher import Fetcher, FetchSettings
 from collector.run.cluster_journal import Journal, clock_id
+from collector.storage.row_codec import epoch_of
 
 # A batch is bounded by count and by time (scale.md lesson 3: <= 50 URLs or a few minutes).
 MAX_BATCH = 50
@@ -162,7 +163,7 @@ class TaskLedger:
     def last_contact(self, host: str) -> str | None:
         """The later of the ledger's last contact and the task's start (every host; the
         task's own host without its start when its spacing is exact)."""
-        last = epoch(self.last) if host == self.host and self.last else None
+        last = epoch_of(self.last) if host == self.host else None
         own = 0.0 if host == self.host and self.exact else self.started
         moment = max(own, last or 0.0)
         if moment <= 0:
@@ -278,14 +279,6 @@ def _carry(fetcher: Fetcher, host: str) -> HostCarry:
     slowdowns = round(math.log2(slowdown)) if slowdown > 1.0 else 0
     ahead = fetcher.budgets.wait_time(host)
     return HostCarry(slowdowns, time.time() + ahead if ahead > 0 else 0.0, clock_id())
-
-
-def epoch(text: str) -> float | None:
-    """An ISO 8601 time of the ledger as epoch seconds (None when unreadable)."""
-    try:
-        return datetime.fromisoformat(text.replace("Z", "+00:00")).timestamp()
-    except ValueError:
-        return None
 
 
 def _worker_name() -> str:

@@ -28,10 +28,9 @@ from __future__ import annotations
 import threading
 import time
 from collections.abc import Callable
-from datetime import datetime
 from typing import Any
 
-from collector.storage.row_codec import iso_time
+from collector.storage.row_codec import epoch_of, iso_time
 
 FLUSH_S = 1.0  # a row waits in memory at most this long after its batch's first row
 BATCH_MAX = 256  # rows kept in memory at most (a busy many-host run commits more often)
@@ -101,13 +100,8 @@ class FetchBatch:
 def lost_until(opened: str | None) -> str | None:
     """The end (ISO 8601 UTC, the ledger's format) of the batch whose first row was made at
     ``opened`` (the :data:`BATCH_FACT` an earlier process left), or None when there is none."""
-    if not opened:
-        return None
-    try:
-        since = datetime.fromisoformat(opened.replace("Z", "+00:00")).timestamp()
-    except ValueError:
-        return None
-    return iso_time(since + FLUSH_S)
+    since = epoch_of(opened)
+    return None if since is None else iso_time(since + FLUSH_S)
 
 
 def now() -> float:

@@ -41,6 +41,17 @@ def iso_time(epoch: float) -> str:
     return f"{text}.{micro // 1000:03d}Z"
 
 
+def epoch_of(text: str | None) -> float | None:
+    """A time of the ledger (:func:`iso_time`'s format, or any ISO 8601 time with an offset)
+    as epoch seconds; None when there is none or it cannot be read."""
+    if not text:
+        return None
+    try:
+        return datetime.fromisoformat(text.replace("Z", "+00:00")).timestamp()
+    except ValueError:
+        return None
+
+
 def utc_now() -> str:
     """The current time as an ISO 8601 UTC string with milliseconds (the ledger's time format)."""
     return iso_time(time.time())
