@@ -16,6 +16,12 @@ from dataclasses import dataclass
 from typing import Any, NamedTuple
 
 from collector.storage.ledger import Ledger
+from collector.storage.upkeep_queries import (
+    COLOUR_FACTS_DUE,
+    HASHES_DUE,
+    PIXEL_FACTS_DUE,
+    WINDOWS_DUE,
+)
 
 ACCEPTED_STATES = ("stored", "near_duplicate")
 LOCAL_HOST = "(local files)"
@@ -142,10 +148,9 @@ def files_measured_before(ledger: Ledger, hash_algo: str, window_algo: str,
     if not {"transparent_share", "window_algo", "removed_at", "greyscale",
             "colour_algo"} <= set(columns):
         return int(ledger.scalar("SELECT count(*) FROM files") or 0)
-    return int(ledger.scalar(
-        "SELECT count(*) FROM files WHERE removed_at IS NULL AND (hash_algo IS NOT ? "
-        "OR transparent_share IS NULL OR window_algo IS NOT ? OR greyscale IS NULL "
-        "OR colour_algo IS NOT ?)", (hash_algo, window_algo, colour_algo)) or 0)
+    due = " OR ".join((HASHES_DUE, PIXEL_FACTS_DUE, WINDOWS_DUE, COLOUR_FACTS_DUE))
+    return int(ledger.scalar(f"SELECT count(*) FROM files WHERE removed_at IS NULL AND ({due})",
+                             (hash_algo, window_algo, colour_algo)) or 0)
 
 
 def pending_image_urls(ledger: Ledger) -> Iterator[str]:

@@ -338,32 +338,40 @@ def kept_files_between(ledger: Ledger, after_rowid: int, last_rowid: int) -> set
     return _kept_between(ledger, after_rowid, last_rowid, "1")
 
 
+# When a kept file is due for each measurement: what remeasure measures again, and, all
+# together, what collector status counts as "measured by an older collector"
+# (queries.files_measured_before), written once so that the two agree.
+HASHES_DUE = "hash_algo IS NOT ?"  # made by another pipeline than the current (or never)
+PIXEL_FACTS_DUE = "transparent_share IS NULL"  # stored before schema 8
+# none (schema 10), or made another way than the current (schema 14)
+COLOUR_FACTS_DUE = "(greyscale IS NULL OR colour_algo IS NOT ?)"
+WINDOWS_DUE = "window_algo IS NOT ?"  # another layout than the current (or never)
+
+
 def hashes_due(ledger: Ledger, after_rowid: int, last_rowid: int,
                hash_algo: str) -> set[str]:
     """Files in the rowid range hashed by another pipeline than ``hash_algo`` (or never)."""
-    return _kept_between(ledger, after_rowid, last_rowid, "hash_algo IS NOT ?", (hash_algo,))
+    return _kept_between(ledger, after_rowid, last_rowid, HASHES_DUE, (hash_algo,))
 
 
 def pixel_facts_due(ledger: Ledger, after_rowid: int, last_rowid: int) -> set[str]:
     """Files in the rowid range stored before the transparency share and native size were
     measured (schema 8): ``transparent_share`` is NULL (every file stored since has one)."""
-    return _kept_between(ledger, after_rowid, last_rowid, "transparent_share IS NULL")
+    return _kept_between(ledger, after_rowid, last_rowid, PIXEL_FACTS_DUE)
 
 
 def colour_facts_due(ledger: Ledger, after_rowid: int, last_rowid: int,
                      colour_algo: str) -> set[str]:
     """Files in the rowid range without colour and tone facts (schema 10: ``greyscale`` is
     NULL) or with facts computed another way than ``colour_algo`` (schema 14)."""
-    return _kept_between(ledger, after_rowid, last_rowid,
-                         "(greyscale IS NULL OR colour_algo IS NOT ?)", (colour_algo,))
+    return _kept_between(ledger, after_rowid, last_rowid, COLOUR_FACTS_DUE, (colour_algo,))
 
 
 def windows_due(ledger: Ledger, after_rowid: int, last_rowid: int,
                 window_algo: str) -> set[str]:
     """Files in the rowid range whose crop window hashes were made another way or never
     (schema 12): ``window_algo`` is not ``window_algo``."""
-    return _kept_between(ledger, after_rowid, last_rowid, "window_algo IS NOT ?",
-                         (window_algo,))
+    return _kept_between(ledger, after_rowid, last_rowid, WINDOWS_DUE, (window_algo,))
 
 
 class NearVerdict(NamedTuple):
